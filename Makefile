@@ -1,0 +1,52 @@
+# stint — build, test and benchmark. `make help` lists the targets.
+GO      ?= go
+PKGS    := ./...
+FUZZTIME ?= 8s
+
+# Fuzz targets run briefly by `make test` (package:target).
+FUZZ_TARGETS := \
+	./cache/canon:FuzzCanonical \
+	./proxy/sse:FuzzReader \
+	./proxy/localmodel/gguf:FuzzParse \
+	./proxy/localmodel/tokenizer:FuzzRoundTrip \
+	./budget/tokens:FuzzUpperBound
+
+.PHONY: help build test vet unit fuzz-short bench bench-local bench-go clean
+
+help:
+	@echo "make build        build ./stint"
+	@echo "make test         vet, race-enabled unit tests, short fuzz runs (what CI runs)"
+	@echo "make bench        cache-hit and miss-path throughput against a bare Go server (needs wrk)"
+	@echo "make bench-go     Go benchmarks: keys, stores, hot tier"
+	@echo "make bench-local  local model benchmarks (tokens/s, FLOP ceiling)"
+
+build:
+	$(GO) build -o stint ./cmd/stint
+
+test: vet unit fuzz-short
+
+vet:
+	@test -z "$$(gofmt -l cmd proxy cache budget searcher)" || { echo "gofmt needed:"; gofmt -l cmd proxy cache budget searcher; exit 1; }
+	$(GO) vet $(PKGS)
+
+unit:
+	$(GO) test -race -count=1 -timeout 20m $(PKGS)
+
+fuzz-short:
+	@for t in $(FUZZ_TARGETS); do \
+		pkg=$${t%%:*}; name=$${t##*:}; \
+		echo "fuzz $$pkg $$name for $(FUZZTIME)"; \
+		$(GO) test -run '^$$' -fuzz "^$$name$$" -fuzztime $(FUZZTIME) $$pkg || exit 1; \
+	done
+
+bench: build
+	bash proxy/bench/bench.sh
+
+bench-go:
+	$(GO) test -run '^$$' -bench . -benchmem -benchtime 2000x ./cache/... ./proxy/
+
+bench-local:
+	$(GO) test -run '^$$' -bench . -benchtime 3x -timeout 30m ./proxy/localmodel/...
+
+clean:
+	rm -f stint

@@ -1,0 +1,398 @@
+// Package redisledger is the shared budget backend: a budget.Ledger and a
+// budget.Journal on Redis or Redis Cluster, so that several stint processes
+// share one budget exactly.
+//
+// Each operation on a team is one Lua script (run with EVALSHA, falling back
+// to EVAL), so it is atomic. A team's keys are hash-tagged with its name,
+// "stint:{lab}:sums", "stint:{lab}:holds", "stint:{lab}:leases" and
+// "stint:{lab}:journal", so every script touches one slot and works on a
+// cluster.
+//
+// The global cap across teams cannot share a slot with every team, and a
+// cluster script cannot touch two slots. It therefore has its own trio of
+// keys in the slot "{#global}" ('#' is not allowed in team names, so no team
+// can collide with it) and a reservation with a global cap takes two
+// scripts: first the global hold, then the team hold. If the team refuses,
+// the global hold is released again (compensation). If the process dies
+// between the two, or the release fails, the global hold stays until its
+// lease expires and is then charged in full like any expired hold: the
+// global sum may count money that was never spent, but never less than was
+// spent. Settling runs the team script first and then settles the global
+// hold with the amount the team was charged; the same reasoning covers a
+// crash between those two steps. The set "stint:{#global}:teams" lists the
+// teams the ledger has seen, for Expire and for journal scans across teams.
+//
+// Times go to Redis from the caller (milliseconds), so replicas should keep
+// their clocks in sync; lease deadlines are truncated to the millisecond.
+// Durability is Redis's: run it with appendonly for a ledger that survives a
+// Redis restart.
+package redisledger
+
+import (
+	"context"
+	"crypto/rand"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"strconv"
+	"sync"
+	"time"
+
+	"github.com/redis/go-redis/v9"
+
+	"github.com/stintlab/stint/budget"
+)
+
+// expireBatch bounds the reservations one expire script charges, so that a
+// long backlog never blocks Redis for long.
+const expireBatch = 100
+
+// Options configure a Ledger. The zero value is usable.
+type Options struct {
+	// Prefix starts every key. Empty means "stint".
+	Prefix string
+	// Location is the time zone budget periods follow. Nil means UTC.
+	Location *time.Location
+}
+
+// Ledger is a budget.Ledger and budget.Journal on Redis. It is safe for
+// concurrent use, and any number of Ledgers in any number of processes may
+// share one Redis (or cluster) with the same Prefix.
+type Ledger struct {
+	c      redis.UniversalClient
+	prefix string
+	loc    *time.Location
+
+	// guards teams
+	mu sync.Mutex
+	// teams this Ledger has already added to the teams set
+	teams map[string]bool
+}
+
+var (
+	_ budget.Ledger  = (*Ledger)(nil)
+	_ budget.Journal = (*Ledger)(nil)
+)
+
+// New returns a Ledger on c. The caller keeps ownership of c and closes it
+// after the Ledger's last use.
+func New(c redis.UniversalClient, opts Options) *Ledger {
+	p := opts.Prefix
+	if p == "" {
+		p = "stint"
+	}
+	loc := opts.Location
+	if loc == nil {
+		loc = time.UTC
+	}
+	return &Ledger{c: c, prefix: p, loc: loc, teams: map[string]bool{}}
+}
+
+// trio returns the sums, holds and leases keys of a team ("" for global).
+func (l *Ledger) trio(team string) []string {
+	tag := l.tag(team)
+	return []string{tag + ":sums", tag + ":holds", tag + ":leases"}
+}
+
+func (l *Ledger) tag(team string) string {
+	if team == "" {
+		return l.prefix + ":{#global}"
+	}
+	return l.prefix + ":{" + team + "}"
+}
+
+func (l *Ledger) teamsKey() string { return l.tag("") + ":teams" }
+
+// record is the JSON a holds hash keeps per reservation; the scripts read
+// a, d, f and l.
+type record struct {
+	A   int64              `json:"a"` // amount held
+	D   int64              `json:"d"` // lease deadline, Unix ms
+	F   []string           `json:"f"` // sums fields held against
+	L   []int64            `json:"l"` // the limit of each field
+	Res budget.Reservation `json:"r"` // as returned by Reserve
+}
+
+// remember adds team to the teams set once per Ledger.
+func (l *Ledger) remember(ctx context.Context, team string) error {
+	l.mu.Lock()
+	known := l.teams[team]
+	l.mu.Unlock()
+	if known {
+		return nil
+	}
+	if err := l.c.SAdd(ctx, l.teamsKey(), team).Err(); err != nil {
+		return err
+	}
+	l.mu.Lock()
+	l.teams[team] = true
+	l.mu.Unlock()
+	return nil
+}
+
+// Reserve implements budget.Ledger.
+func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request) (budget.Reservation, error) {
+	if err := req.Validate(); err != nil {
+		return budget.Reservation{}, err
+	}
+	if err := l.remember(ctx, req.Team); err != nil {
+		return budget.Reservation{}, fmt.Errorf("redisledger: reserve: %w", err)
+	}
+	local, global := req.Caps.Fields(req.Team, req.Key, now, l.loc)
+	res := budget.Reservation{
+		ID: rand.Text(), Team: req.Team, Key: req.Key, Amount: req.Amount, Caps: req.Caps,
+		Created: now, Deadline: now.Add(req.Lease).Truncate(time.Millisecond), Remaining: -1,
+	}
+	if global != nil {
+		rem, err := l.hold(ctx, "", res, []budget.CapField{*global})
+		if err != nil {
+			return budget.Reservation{}, err
+		}
+		res.Remaining = rem
+	}
+	rem, err := l.hold(ctx, req.Team, res, local)
+	if err != nil {
+		if global != nil {
+			// Compensate; if this fails too, the global hold expires and
+			// is charged in full (see the package doc).
+			cctx := context.WithoutCancel(ctx)
+			_ = releaseScript.Run(cctx, l.c, l.trio(""), res.ID, now.UnixMilli()).Err()
+		}
+		return budget.Reservation{}, err
+	}
+	if rem >= 0 && (res.Remaining < 0 || rem < res.Remaining) {
+		res.Remaining = rem
+	}
+	return res, nil
+}
+
+// hold runs the reserve script for res on team's trio ("" for global) and
+// returns the least remaining budget, or an *budget.ExhaustedError.
+func (l *Ledger) hold(ctx context.Context, team string, res budget.Reservation, caps []budget.CapField) (budget.Nanos, error) {
+	rec := record{A: int64(res.Amount), D: res.Deadline.UnixMilli(), F: []string{}, L: []int64{}, Res: res}
+	for _, c := range caps {
+		rec.F = append(rec.F, c.Field)
+		rec.L = append(rec.L, int64(c.Cap.Limit))
+	}
+	raw, err := json.Marshal(rec)
+	if err != nil {
+		return 0, fmt.Errorf("redisledger: encode reservation: %w", err)
+	}
+	args := []any{res.ID, int64(res.Amount), rec.D, raw, len(caps)}
+	for _, c := range caps {
+		args = append(args, c.Field, int64(c.Cap.Limit))
+	}
+	out, err := ints(reserveScript.Run(ctx, l.c, l.trio(team), args...).Slice())
+	if err != nil {
+		return 0, fmt.Errorf("redisledger: reserve: %w", err)
+	}
+	if out[0] == 1 && len(out) == 2 {
+		return budget.Nanos(out[1]), nil
+	}
+	if len(out) != 3 || out[1] < 0 || int(out[1]) >= len(caps) {
+		return 0, fmt.Errorf("redisledger: reserve: unexpected script reply %v", out)
+	}
+	c := caps[out[1]]
+	return 0, &budget.ExhaustedError{Scope: c.Scope, Period: c.Cap.Period, Limit: c.Cap.Limit,
+		Remaining: max(budget.Nanos(out[2]), 0), Requested: res.Amount}
+}
+
+// Settle implements budget.Ledger. If the team's part succeeds but settling
+// the global hold fails, Settle returns the team's Settlement together with
+// the error; the global hold is then charged in full when its lease expires.
+func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos) (budget.Settlement, error) {
+	if err := budget.CheckActual(actual); err != nil {
+		return budget.Settlement{}, err
+	}
+	if err := budget.ValidateName(res.Team); err != nil {
+		return budget.Settlement{}, err
+	}
+	out, err := ints(settleScript.Run(ctx, l.c, l.trio(res.Team), res.ID, int64(actual), now.UnixMilli()).Slice())
+	if err != nil {
+		return budget.Settlement{}, fmt.Errorf("redisledger: settle: %w", err)
+	}
+	if out[0] == 0 {
+		return budget.Settlement{}, budget.ErrNotHeld
+	}
+	if len(out) != 4 {
+		return budget.Settlement{}, fmt.Errorf("redisledger: settle: unexpected script reply %v", out)
+	}
+	s := budget.Settlement{Charged: budget.Nanos(out[1]), Expired: out[2] == 1, Remaining: budget.Nanos(out[3])}
+	s.Released = max(res.Amount-s.Charged, 0)
+	if res.Caps.Global == nil {
+		return s, nil
+	}
+	g, err := ints(settleScript.Run(context.WithoutCancel(ctx), l.c, l.trio(""), res.ID, int64(s.Charged), now.UnixMilli()).Slice())
+	if err != nil {
+		return s, fmt.Errorf("redisledger: settle global hold (it will be charged in full at lease expiry): %w", err)
+	}
+	if g[0] == 1 && len(g) == 4 {
+		if rem := budget.Nanos(g[3]); rem >= 0 && (s.Remaining < 0 || rem < s.Remaining) {
+			s.Remaining = rem
+		}
+	}
+	return s, nil
+}
+
+// Expire implements budget.Ledger. It sweeps every team in the teams set,
+// then the global holds.
+func (l *Ledger) Expire(ctx context.Context, now time.Time) ([]budget.Reservation, error) {
+	teams, err := l.c.SMembers(ctx, l.teamsKey()).Result()
+	if err != nil {
+		return nil, fmt.Errorf("redisledger: expire: list teams: %w", err)
+	}
+	var out []budget.Reservation
+	for _, team := range teams {
+		if budget.ValidateName(team) != nil {
+			continue
+		}
+		recs, err := l.sweep(ctx, team, now)
+		if err != nil {
+			return out, err
+		}
+		for _, r := range recs {
+			out = append(out, r.Res)
+		}
+	}
+	if _, err := l.sweep(ctx, "", now); err != nil {
+		return out, err
+	}
+	return out, nil
+}
+
+// sweep runs the expire script on team's trio until no due lease is left.
+func (l *Ledger) sweep(ctx context.Context, team string, now time.Time) ([]record, error) {
+	var out []record
+	for {
+		raws, err := expireScript.Run(ctx, l.c, l.trio(team), now.UnixMilli(), expireBatch).StringSlice()
+		if err != nil && !errors.Is(err, redis.Nil) {
+			return out, fmt.Errorf("redisledger: expire: %w", err)
+		}
+		for _, raw := range raws {
+			var r record
+			if err := json.Unmarshal([]byte(raw), &r); err != nil {
+				return out, fmt.Errorf("redisledger: expire: decode reservation: %w", err)
+			}
+			out = append(out, r)
+		}
+		if len(raws) < expireBatch {
+			return out, nil
+		}
+	}
+}
+
+// Balance implements budget.Ledger.
+func (l *Ledger) Balance(ctx context.Context, now time.Time, scope budget.Scope, p budget.Period) (budget.Balance, error) {
+	if err := budget.ValidateScope(scope); err != nil {
+		return budget.Balance{}, err
+	}
+	if err := p.Validate(); err != nil {
+		return budget.Balance{}, fmt.Errorf("%w: %w", budget.ErrInvalid, err)
+	}
+	f := scope.Field(p, now, l.loc)
+	vals, err := l.c.HMGet(ctx, l.trio(scope.Team)[0], "s|"+f, "h|"+f).Result()
+	if err != nil {
+		return budget.Balance{}, fmt.Errorf("redisledger: balance: %w", err)
+	}
+	out, err := ints(vals, nil)
+	if err != nil {
+		return budget.Balance{}, fmt.Errorf("redisledger: balance: %w", err)
+	}
+	return budget.Balance{Spent: budget.Nanos(out[0]), Held: budget.Nanos(out[1])}, nil
+}
+
+// journalItem makes each sorted-set member unique.
+type journalItem struct {
+	ID string       `json:"id"` // random, so equal entries stay apart
+	E  budget.Entry `json:"e"`  // the entry
+}
+
+// Append implements budget.Journal: one ZADD to the team's journal, scored
+// by the entry's time in milliseconds.
+func (l *Ledger) Append(ctx context.Context, e budget.Entry) error {
+	if err := budget.ValidateName(e.Team); err != nil {
+		return err
+	}
+	raw, err := json.Marshal(journalItem{ID: rand.Text(), E: e})
+	if err != nil {
+		return fmt.Errorf("redisledger: encode journal entry: %w", err)
+	}
+	if err := l.remember(ctx, e.Team); err != nil {
+		return fmt.Errorf("redisledger: append journal entry: %w", err)
+	}
+	z := redis.Z{Score: float64(e.Time.UnixMilli()), Member: raw}
+	if err := l.c.ZAdd(ctx, l.tag(e.Team)+":journal", z).Err(); err != nil {
+		return fmt.Errorf("redisledger: append journal entry: %w", err)
+	}
+	return nil
+}
+
+// scanPage is how many journal entries one ZRANGEBYSCORE fetches.
+const scanPage = 1000
+
+// Scan implements budget.Journal.
+func (l *Ledger) Scan(ctx context.Context, since time.Time, team string, fn func(budget.Entry) error) error {
+	teams := []string{team}
+	if team == "" {
+		var err error
+		if teams, err = l.c.SMembers(ctx, l.teamsKey()).Result(); err != nil {
+			return fmt.Errorf("redisledger: scan journal: list teams: %w", err)
+		}
+	}
+	for _, t := range teams {
+		if budget.ValidateName(t) != nil {
+			continue
+		}
+		for off := int64(0); ; off += scanPage {
+			raws, err := l.c.ZRangeByScore(ctx, l.tag(t)+":journal", &redis.ZRangeBy{
+				Min: strconv.FormatInt(since.UnixMilli(), 10), Max: "+inf", Offset: off, Count: scanPage,
+			}).Result()
+			if err != nil {
+				return fmt.Errorf("redisledger: scan journal: %w", err)
+			}
+			for _, raw := range raws {
+				var it journalItem
+				if err := json.Unmarshal([]byte(raw), &it); err != nil {
+					return fmt.Errorf("redisledger: decode journal entry: %w", err)
+				}
+				if it.E.Time.Before(since) {
+					continue
+				}
+				if err := fn(it.E); err != nil {
+					return err
+				}
+			}
+			if len(raws) < scanPage {
+				break
+			}
+		}
+	}
+	return nil
+}
+
+// ints converts a script or HMGET reply to integers; nil counts as 0.
+func ints(vals []any, err error) ([]int64, error) {
+	if err != nil {
+		return nil, err
+	}
+	if len(vals) == 0 {
+		return nil, fmt.Errorf("empty reply")
+	}
+	out := make([]int64, len(vals))
+	for i, v := range vals {
+		switch v := v.(type) {
+		case nil:
+		case int64:
+			out[i] = v
+		case string:
+			n, err := strconv.ParseInt(v, 10, 64)
+			if err != nil {
+				return nil, fmt.Errorf("reply item %d: %w", i, err)
+			}
+			out[i] = n
+		default:
+			return nil, fmt.Errorf("reply item %d has type %T", i, v)
+		}
+	}
+	return out, nil
+}

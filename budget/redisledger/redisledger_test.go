@@ -1,0 +1,119 @@
+package redisledger_test
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"strings"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/redis/go-redis/v9"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/internal/redistest"
+	"github.com/stintlab/stint/budget/ledgertest"
+	"github.com/stintlab/stint/budget/redisledger"
+)
+
+// suite runs the conformance suite on c, giving each test its own prefix
+// so that tests share the server but no data.
+func suite(t *testing.T, c redis.UniversalClient) {
+	var n atomic.Int64
+	ledgertest.Run(t, func(t *testing.T, loc *time.Location) func() ledgertest.Store {
+		prefix := fmt.Sprintf("test%d", n.Add(1))
+		return func() ledgertest.Store {
+			return redisledger.New(c, redisledger.Options{Prefix: prefix, Location: loc})
+		}
+	})
+}
+
+func TestConformance(t *testing.T) {
+	suite(t, redistest.Start(t).Client(t))
+}
+
+// TestConformanceCluster runs the suite on a one-node Redis Cluster, where
+// Redis rejects any script whose keys span hash slots (CROSSSLOT).
+func TestConformanceCluster(t *testing.T) {
+	c := redistest.StartCluster(t).ClusterClient(t)
+	// The node must refuse a script over two slots, or this test proves
+	// nothing about the layout.
+	err := c.Eval(context.Background(), "return 1", []string{"x:{a}", "x:{b}"}).Err()
+	if err == nil || !strings.Contains(err.Error(), "CROSSSLOT") {
+		t.Fatalf("EVAL over two slots: error = %v, want CROSSSLOT", err)
+	}
+	suite(t, c)
+}
+
+// TestSeparateClients has three ledgers with their own connections to one
+// Redis, as three proxy processes would, share one budget.
+func TestSeparateClients(t *testing.T) {
+	srv := redistest.Start(t)
+	ledgertest.Run(t, func(t *testing.T, loc *time.Location) func() ledgertest.Store {
+		prefix := fmt.Sprintf("sep-%s", t.Name())
+		return func() ledgertest.Store {
+			return redisledger.New(srv.Client(t), redisledger.Options{Prefix: prefix, Location: loc})
+		}
+	})
+}
+
+// TestUnreachable checks a ledger fails closed: with Redis down, Reserve
+// reports an error that is not ErrExhausted, so the proxy answers 503 and
+// forwards nothing.
+func TestUnreachable(t *testing.T) {
+	srv := redistest.Start(t)
+	c := redis.NewClient(&redis.Options{Addr: srv.Addr, MaxRetries: -1, DialTimeout: time.Second})
+	defer c.Close()
+	l := redisledger.New(c, redisledger.Options{})
+	ctx := context.Background()
+	if _, err := l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute}); err != nil {
+		t.Fatalf("Reserve while up: %v", err)
+	}
+	if err := c.Do(ctx, "SHUTDOWN", "NOSAVE").Err(); err != nil && !errors.Is(err, redis.ErrClosed) && err.Error() != "EOF" {
+		t.Logf("SHUTDOWN: %v", err)
+	}
+	_, err := l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute})
+	if err == nil || errors.Is(err, budget.ErrExhausted) {
+		t.Fatalf("Reserve with Redis down: error = %v, want a connection error", err)
+	}
+}
+
+func BenchmarkReserveSettle(b *testing.B) {
+	c := redistest.Start(b).Client(b)
+	l := redisledger.New(c, redisledger.Options{})
+	now := time.Now()
+	caps := budget.Caps{Team: &budget.Cap{Limit: budget.MaxNanos, Period: budget.Month}}
+	for _, global := range []bool{false, true} {
+		b.Run(fmt.Sprintf("global=%v", global), func(b *testing.B) {
+			caps := caps
+			if global {
+				caps.Global = &budget.Cap{Limit: budget.MaxNanos, Period: budget.Month}
+			}
+			for b.Loop() {
+				reserveSettle(b, l, now, caps)
+			}
+			b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "reserve+settle/s")
+		})
+	}
+	b.Run("parallel64", func(b *testing.B) {
+		b.SetParallelism(32) // 64 goroutines on 2 cores
+		b.RunParallel(func(pb *testing.PB) {
+			for pb.Next() {
+				reserveSettle(b, l, now, caps)
+			}
+		})
+		b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "reserve+settle/s")
+	})
+}
+
+func reserveSettle(b *testing.B, l *redisledger.Ledger, now time.Time, caps budget.Caps) {
+	ctx := context.Background()
+	res, err := l.Reserve(ctx, now, budget.Request{Team: "lab", Key: "k1", Amount: 1000, Caps: caps, Lease: time.Minute})
+	if err != nil {
+		b.Fatal(err)
+	}
+	if _, err := l.Settle(ctx, now, res, 500); err != nil {
+		b.Fatal(err)
+	}
+}

@@ -1,0 +1,316 @@
+package cache_test
+
+import (
+	"bytes"
+	"context"
+	"errors"
+	"fmt"
+	"math/rand/v2"
+	"path/filepath"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/cache/storetest"
+)
+
+func newBolt(tb testing.TB, opts boltstore.Options) *boltstore.Store {
+	tb.Helper()
+	if opts.SweepInterval == 0 {
+		opts.SweepInterval = -1
+	}
+	s, err := boltstore.Open(filepath.Join(tb.TempDir(), "cache.db"), opts)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	tb.Cleanup(func() { _ = s.Close() })
+	return s
+}
+
+// plainStore hides the backing store's GetWithExpiry, so Hot falls back to
+// FillTTL.
+type plainStore struct{ cache.Store }
+
+// watchedStore wraps a real store, counting Gets and, when pause is set,
+// stopping each Get after it has read the store until release is closed.
+type watchedStore struct {
+	cache.Store
+	gets    atomic.Int64
+	pause   atomic.Bool
+	paused  chan struct{}
+	release chan struct{}
+}
+
+func (w *watchedStore) Get(ctx context.Context, key string) ([]byte, bool, error) {
+	w.gets.Add(1)
+	v, found, err := w.Store.Get(ctx, key)
+	if w.pause.Load() {
+		w.paused <- struct{}{}
+		<-w.release
+	}
+	return v, found, err
+}
+
+func TestHotConformance(t *testing.T) {
+	t.Run("over boltstore", func(t *testing.T) {
+		storetest.Run(t, func(t *testing.T) cache.Store {
+			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{})
+		})
+	})
+	t.Run("over a store without expiry times", func(t *testing.T) {
+		storetest.Run(t, func(t *testing.T) cache.Store {
+			return cache.NewHot(plainStore{newBolt(t, boltstore.Options{})}, cache.HotOptions{FillTTL: 20 * time.Millisecond})
+		})
+	})
+	t.Run("tier off", func(t *testing.T) {
+		storetest.Run(t, func(t *testing.T) cache.Store {
+			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxBytes: -1})
+		})
+	})
+	t.Run("tiny tier", func(t *testing.T) {
+		storetest.Run(t, func(t *testing.T) cache.Store {
+			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxBytes: 4 << 10})
+		})
+	})
+}
+
+func hotKey(i int) string { return cache.Key(cache.KeyParts{Namespace: "hot"}, []byte(fmt.Sprint(i))) }
+
+func TestHotAnswersFromMemory(t *testing.T) {
+	w := &watchedStore{Store: newBolt(t, boltstore.Options{})}
+	h := cache.NewHot(w, cache.HotOptions{})
+	ctx := t.Context()
+	if err := w.Store.Put(ctx, hotKey(1), []byte("from the store"), 0); err != nil {
+		t.Fatal(err)
+	}
+	for range 5 {
+		v, found, err := h.Get(ctx, hotKey(1))
+		if err != nil || !found || string(v) != "from the store" {
+			t.Fatalf("Get = %q, %v, %v", v, found, err)
+		}
+	}
+	if got := w.gets.Load(); got != 1 {
+		t.Errorf("backing Gets for 5 hot Gets = %d, want 1 (the fill)", got)
+	}
+	// A Put is answered from memory without a store read.
+	if err := h.Put(ctx, hotKey(2), []byte("put"), 0); err != nil {
+		t.Fatal(err)
+	}
+	if v, _, _ := h.Get(ctx, hotKey(2)); string(v) != "put" {
+		t.Errorf("Get after Put = %q", v)
+	}
+	if got := w.gets.Load(); got != 1 {
+		t.Errorf("backing Gets = %d, want still 1", got)
+	}
+	// Misses are not remembered: a value that appears in the store later is found.
+	if _, found, _ := h.Get(ctx, hotKey(3)); found {
+		t.Fatal("found a key never stored")
+	}
+	if err := w.Store.Put(ctx, hotKey(3), []byte("late"), 0); err != nil {
+		t.Fatal(err)
+	}
+	if v, found, _ := h.Get(ctx, hotKey(3)); !found || string(v) != "late" {
+		t.Errorf("Get after the store gained the key = %q, %v", v, found)
+	}
+	st := h.Stats()
+	if st.Hits != 5 || st.Misses != 3 || st.Entries != 3 {
+		t.Errorf("Stats = %+v, want 5 hits, 3 misses, 3 entries", st)
+	}
+}
+
+type fakeClock struct {
+	mu sync.Mutex
+	t  time.Time
+}
+
+func (c *fakeClock) Now() time.Time {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return c.t
+}
+
+func (c *fakeClock) Advance(d time.Duration) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	c.t = c.t.Add(d)
+}
+
+func TestHotTTL(t *testing.T) {
+	clock := &fakeClock{t: time.Date(2030, 5, 6, 7, 8, 9, 0, time.UTC)}
+	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
+	h := cache.NewHot(w, cache.HotOptions{Now: clock.Now})
+	ctx := t.Context()
+	if err := h.Put(ctx, hotKey(1), []byte("a"), time.Minute); err != nil {
+		t.Fatal(err)
+	}
+	// Filled from the store: the memory copy keeps the store's expiry.
+	if err := w.Store.Put(ctx, hotKey(2), []byte("b"), 2*time.Minute); err != nil {
+		t.Fatal(err)
+	}
+	if err := h.Put(ctx, hotKey(3), []byte("c"), 0); err != nil {
+		t.Fatal(err)
+	}
+	if _, found, _ := h.Get(ctx, hotKey(2)); !found {
+		t.Fatal("fill of key 2 missed")
+	}
+	clock.Advance(61 * time.Second)
+	gets := w.gets.Load()
+	if _, found, err := h.Get(ctx, hotKey(1)); found || err != nil {
+		t.Errorf("Get of an entry past its TTL = found %v, err %v; want a miss", found, err)
+	}
+	if w.gets.Load() != gets+1 {
+		t.Error("an expired memory entry was not checked against the store")
+	}
+	if v, found, _ := h.Get(ctx, hotKey(2)); !found || string(v) != "b" {
+		t.Errorf("Get of key 2 at +61s = %q, %v; want b", v, found)
+	}
+	clock.Advance(time.Minute)
+	gets = w.gets.Load()
+	if _, found, _ := h.Get(ctx, hotKey(2)); found {
+		t.Error("filled entry outlived the store's expiry")
+	}
+	if w.gets.Load() != gets+1 {
+		t.Error("filled entry was still answered from memory after its store expiry")
+	}
+	clock.Advance(1000 * time.Hour)
+	if v, found, _ := h.Get(ctx, hotKey(3)); !found || string(v) != "c" {
+		t.Errorf("entry without TTL = %q, %v after 1000h", v, found)
+	}
+}
+
+func TestHotFillTTLWithoutExpiryGetter(t *testing.T) {
+	clock := &fakeClock{t: time.Date(2030, 5, 6, 7, 8, 9, 0, time.UTC)}
+	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
+	h := cache.NewHot(plainStore{w}, cache.HotOptions{Now: clock.Now, FillTTL: 10 * time.Second})
+	ctx := t.Context()
+	if err := w.Store.Put(ctx, hotKey(1), []byte("v"), 0); err != nil {
+		t.Fatal(err)
+	}
+	for range 3 {
+		if _, found, _ := h.Get(ctx, hotKey(1)); !found {
+			t.Fatal("miss")
+		}
+	}
+	if got := w.gets.Load(); got != 1 {
+		t.Fatalf("backing Gets = %d, want 1", got)
+	}
+	clock.Advance(11 * time.Second)
+	if _, found, _ := h.Get(ctx, hotKey(1)); !found {
+		t.Fatal("miss after FillTTL")
+	}
+	if got := w.gets.Load(); got != 2 {
+		t.Errorf("backing Gets after FillTTL = %d, want 2 (a refill)", got)
+	}
+}
+
+// TestHotFillDoesNotResurrect: a Get that read the store before a Delete
+// does not put the deleted value into memory afterwards.
+func TestHotFillDoesNotResurrect(t *testing.T) {
+	w := &watchedStore{Store: newBolt(t, boltstore.Options{}), paused: make(chan struct{}), release: make(chan struct{})}
+	h := cache.NewHot(plainStore{w}, cache.HotOptions{})
+	ctx := t.Context()
+	if err := w.Store.Put(ctx, hotKey(1), []byte("old"), 0); err != nil {
+		t.Fatal(err)
+	}
+	w.pause.Store(true)
+	done := make(chan []byte)
+	go func() {
+		v, _, _ := h.Get(ctx, hotKey(1))
+		done <- v
+	}()
+	<-w.paused // the Get has read "old" from the store
+	w.pause.Store(false)
+	if err := h.Delete(ctx, hotKey(1)); err != nil {
+		t.Fatal(err)
+	}
+	close(w.release)
+	if v := <-done; string(v) != "old" {
+		t.Errorf("the racing Get returned %q, want old (it read before the Delete)", v)
+	}
+	if v, found, _ := h.Get(ctx, hotKey(1)); found {
+		t.Errorf("Get after Delete = %q; the fill resurrected a deleted entry", v)
+	}
+}
+
+func TestHotBoundedBytes(t *testing.T) {
+	const maxBytes = 64 << 10
+	h := cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxBytes: maxBytes})
+	ctx := t.Context()
+	value := bytes.Repeat([]byte("x"), 1000)
+	for i := range 300 {
+		if err := h.Put(ctx, hotKey(i), value, 0); err != nil {
+			t.Fatal(err)
+		}
+	}
+	// Eviction runs in otter's maintenance; force it before measuring.
+	for i := range 300 {
+		if v, found, err := h.Get(ctx, hotKey(i)); err != nil || !found || !bytes.Equal(v, value) {
+			t.Fatalf("Get(%d) = found %v, err %v: the store must still have it", i, found, err)
+		}
+	}
+	st := h.Stats()
+	if st.Bytes > maxBytes {
+		t.Errorf("memory holds %d bytes, over the %d-byte bound", st.Bytes, maxBytes)
+	}
+	if st.Evictions == 0 {
+		t.Errorf("no evictions after 300 kB of Puts into a 64 kB tier: %+v", st)
+	}
+}
+
+func TestHotLargeValuesSkipMemory(t *testing.T) {
+	w := &watchedStore{Store: newBolt(t, boltstore.Options{})}
+	h := cache.NewHot(w, cache.HotOptions{MaxBytes: 1 << 20, MaxEntryBytes: 1000})
+	ctx := t.Context()
+	big := bytes.Repeat([]byte("y"), 1001)
+	if err := h.Put(ctx, hotKey(1), []byte("small"), 0); err != nil {
+		t.Fatal(err)
+	}
+	if err := h.Put(ctx, hotKey(1), big, 0); err != nil { // replaces the small one in memory too
+		t.Fatal(err)
+	}
+	for range 2 {
+		if v, found, _ := h.Get(ctx, hotKey(1)); !found || !bytes.Equal(v, big) {
+			t.Fatalf("Get = %d bytes, %v; want the big value", len(v), found)
+		}
+	}
+	if got := w.gets.Load(); got != 2 {
+		t.Errorf("backing Gets = %d, want 2: values over MaxEntryBytes stay out of memory", got)
+	}
+}
+
+func TestHotFailedPutLeavesMemory(t *testing.T) {
+	h := cache.NewHot(newBolt(t, boltstore.Options{MaxBytes: 2000}), cache.HotOptions{})
+	ctx := t.Context()
+	if err := h.Put(ctx, hotKey(1), []byte("kept"), 0); err != nil {
+		t.Fatal(err)
+	}
+	noise := make([]byte, 5000) // random, so it does not compress below the cap
+	r := rand.New(rand.NewPCG(1, 2))
+	for i := range noise {
+		noise[i] = byte(r.Uint32())
+	}
+	err := h.Put(ctx, hotKey(1), noise, 0)
+	if !errors.Is(err, cache.ErrTooLarge) {
+		t.Fatalf("Put over the store's cap: err = %v, want cache.ErrTooLarge", err)
+	}
+	if v, _, _ := h.Get(ctx, hotKey(1)); string(v) != "kept" {
+		t.Errorf("Get after a failed Put = %q, want kept", v)
+	}
+}
+
+func TestHotCloseClosesBacking(t *testing.T) {
+	b := newBolt(t, boltstore.Options{})
+	h := cache.NewHot(b, cache.HotOptions{})
+	if err := h.Close(); err != nil {
+		t.Fatal(err)
+	}
+	if _, _, err := b.Get(t.Context(), hotKey(1)); !errors.Is(err, cache.ErrClosed) {
+		t.Errorf("backing Get after Hot.Close: err = %v, want cache.ErrClosed", err)
+	}
+	if err := h.Close(); err != nil {
+		t.Errorf("second Close = %v, want nil", err)
+	}
+}

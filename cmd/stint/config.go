@@ -1,0 +1,323 @@
+package main
+
+import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"fmt"
+	"io"
+	"net"
+	"os"
+	"strconv"
+	"strings"
+	"time"
+
+	"go.yaml.in/yaml/v3"
+)
+
+// Config is the file given to `stint serve --config`. The library packages
+// never see YAML: buildServer turns a Config into their option structs.
+type Config struct {
+	Listen    string           `yaml:"listen"`
+	Data      string           `yaml:"data"`
+	Upstreams []UpstreamConfig `yaml:"upstreams"`
+	Teams     []TeamConfig     `yaml:"teams"`
+	Cache     CacheConfig      `yaml:"cache"`
+	Server    ServerConfig     `yaml:"server"`
+	Log       LogConfig        `yaml:"log"`
+}
+
+// UpstreamConfig is one inference API.
+type UpstreamConfig struct {
+	Name    string   `yaml:"name"`
+	URL     string   `yaml:"url"`
+	KeyEnv  string   `yaml:"key_env"`
+	Timeout Duration `yaml:"timeout"`
+	Models  []string `yaml:"models"`
+}
+
+// TeamConfig is one client team.
+type TeamConfig struct {
+	Name      string   `yaml:"name"`
+	Keys      []string `yaml:"keys"`
+	Namespace string   `yaml:"namespace"`
+	Cache     *bool    `yaml:"cache"`
+}
+
+// CacheConfig sets how answers are kept.
+type CacheConfig struct {
+	TTL            Duration `yaml:"ttl"`
+	MaxBytes       ByteSize `yaml:"max_bytes"`
+	HotBytes       ByteSize `yaml:"hot_bytes"`
+	Sampled        bool     `yaml:"sampled"`
+	UncachedModels []string `yaml:"uncached_models"`
+}
+
+// ServerConfig sets HTTP limits.
+type ServerConfig struct {
+	MaxBodyBytes    ByteSize `yaml:"max_body_bytes"`
+	ShutdownTimeout Duration `yaml:"shutdown_timeout"`
+}
+
+// LogConfig sets request logging.
+type LogConfig struct {
+	Format  string `yaml:"format"`
+	Prompts bool   `yaml:"prompts"`
+}
+
+// DefaultConfig is the configuration used without --config.
+func DefaultConfig() Config {
+	return Config{
+		Listen: "127.0.0.1:8787",
+		Data:   "./stint-data",
+		Cache: CacheConfig{
+			MaxBytes: 2 << 30,
+			HotBytes: 128 << 20,
+		},
+		Server: ServerConfig{MaxBodyBytes: 4 << 20, ShutdownTimeout: Duration(30 * time.Second)},
+		Log:    LogConfig{Format: "text"},
+	}
+}
+
+// ConfigError is a problem in the config file, naming the field and line.
+type ConfigError struct {
+	Field string
+	Line  int
+	Err   error
+}
+
+func (e *ConfigError) Error() string {
+	if e.Line > 0 {
+		return fmt.Sprintf("config line %d: %s: %v", e.Line, e.Field, e.Err)
+	}
+	return fmt.Sprintf("config: %s: %v", e.Field, e.Err)
+}
+
+func (e *ConfigError) Unwrap() error { return e.Err }
+
+// ParseConfig reads a YAML config over the defaults and validates it.
+// Unknown keys are errors.
+func ParseConfig(r io.Reader) (Config, error) {
+	src, err := io.ReadAll(r)
+	if err != nil {
+		return Config{}, fmt.Errorf("read config: %w", err)
+	}
+	cfg := DefaultConfig()
+	var root yaml.Node
+	if err := yaml.Unmarshal(src, &root); err != nil {
+		return Config{}, fmt.Errorf("config is not valid YAML: %w", err)
+	}
+	dec := yaml.NewDecoder(bytes.NewReader(src))
+	dec.KnownFields(true)
+	if err := dec.Decode(&cfg); err != nil && !errors.Is(err, io.EOF) {
+		return Config{}, fmt.Errorf("config: %w", err)
+	}
+	if err := cfg.Validate(&root); err != nil {
+		return Config{}, err
+	}
+	return cfg, nil
+}
+
+// LoadConfig reads and validates the config file at path.
+func LoadConfig(path string) (Config, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return Config{}, fmt.Errorf("open config: %w", err)
+	}
+	defer f.Close()
+	return ParseConfig(f)
+}
+
+// Validate checks the config; root (may be nil) supplies line numbers.
+func (c *Config) Validate(root *yaml.Node) error {
+	bad := func(err error, path ...any) error {
+		return &ConfigError{Field: fieldPath(path), Line: lineOf(root, path), Err: err}
+	}
+	if c.Listen != "" {
+		if _, _, err := net.SplitHostPort(c.Listen); err != nil {
+			return bad(err, "listen")
+		}
+	}
+	names := map[string]bool{}
+	for i, u := range c.Upstreams {
+		if u.URL == "" {
+			return bad(errors.New("url is required"), "upstreams", i, "url")
+		}
+		if !strings.HasPrefix(u.URL, "http://") && !strings.HasPrefix(u.URL, "https://") && !strings.HasPrefix(u.URL, "local:") {
+			return bad(fmt.Errorf("url %q must start with http://, https:// or local:", u.URL), "upstreams", i, "url")
+		}
+		if u.Timeout < 0 {
+			return bad(errors.New("timeout must not be negative"), "upstreams", i, "timeout")
+		}
+		name := u.Name
+		if name == "" {
+			name = fmt.Sprintf("upstream-%d", i)
+		}
+		if names[name] {
+			return bad(fmt.Errorf("duplicate upstream name %q", name), "upstreams", i, "name")
+		}
+		names[name] = true
+	}
+	teams := map[string]bool{}
+	keys := map[string]string{}
+	for i, t := range c.Teams {
+		if t.Name == "" {
+			return bad(errors.New("name is required"), "teams", i, "name")
+		}
+		if teams[t.Name] {
+			return bad(fmt.Errorf("duplicate team %q", t.Name), "teams", i, "name")
+		}
+		teams[t.Name] = true
+		if len(t.Keys) == 0 {
+			return bad(errors.New("a team needs at least one key (make one with `stint keys new --team NAME`)"), "teams", i, "keys")
+		}
+		for j, k := range t.Keys {
+			h, err := parseKeyHash(k)
+			if err != nil {
+				return bad(err, "teams", i, "keys", j)
+			}
+			hx := hex.EncodeToString(h[:])
+			if other, dup := keys[hx]; dup {
+				return bad(fmt.Errorf("key is also listed for team %q", other), "teams", i, "keys", j)
+			}
+			keys[hx] = t.Name
+		}
+	}
+	if c.Cache.TTL < 0 {
+		return bad(errors.New("ttl must not be negative"), "cache", "ttl")
+	}
+	if c.Cache.MaxBytes < 0 {
+		return bad(errors.New("max_bytes must not be negative"), "cache", "max_bytes")
+	}
+	if c.Cache.HotBytes < 0 {
+		return bad(errors.New("hot_bytes must not be negative"), "cache", "hot_bytes")
+	}
+	if c.Server.MaxBodyBytes <= 0 {
+		return bad(errors.New("max_body_bytes must be positive"), "server", "max_body_bytes")
+	}
+	switch c.Log.Format {
+	case "json", "text":
+	default:
+		return bad(fmt.Errorf("format %q must be json or text", c.Log.Format), "log", "format")
+	}
+	return nil
+}
+
+// parseKeyHash reads a stored key of the form sha256:<64 hex digits>.
+func parseKeyHash(s string) ([sha256.Size]byte, error) {
+	var h [sha256.Size]byte
+	hx, ok := strings.CutPrefix(s, "sha256:")
+	if !ok {
+		return h, errors.New(`keys are stored as "sha256:<hex of the key>", never in the clear (see stint keys new)`)
+	}
+	b, err := hex.DecodeString(hx)
+	if err != nil || len(b) != sha256.Size {
+		return h, errors.New("sha256: must be followed by 64 hex digits")
+	}
+	copy(h[:], b)
+	return h, nil
+}
+
+func fieldPath(path []any) string {
+	var b strings.Builder
+	for _, p := range path {
+		switch v := p.(type) {
+		case int:
+			fmt.Fprintf(&b, "[%d]", v)
+		default:
+			if b.Len() > 0 {
+				b.WriteByte('.')
+			}
+			fmt.Fprint(&b, v)
+		}
+	}
+	return b.String()
+}
+
+// lineOf finds the line of the node at path in a YAML document, or of the
+// deepest ancestor present; 0 when unknown.
+func lineOf(root *yaml.Node, path []any) int {
+	if root == nil {
+		return 0
+	}
+	n := root
+	if n.Kind == yaml.DocumentNode && len(n.Content) > 0 {
+		n = n.Content[0]
+	}
+	line := 0
+	for _, p := range path {
+		var next *yaml.Node
+		switch v := p.(type) {
+		case string:
+			if n.Kind == yaml.MappingNode {
+				for i := 0; i+1 < len(n.Content); i += 2 {
+					if n.Content[i].Value == v {
+						next = n.Content[i+1]
+						line = n.Content[i].Line
+					}
+				}
+			}
+		case int:
+			if n.Kind == yaml.SequenceNode && v < len(n.Content) {
+				next = n.Content[v]
+				line = next.Line
+			}
+		}
+		if next == nil {
+			return line
+		}
+		n = next
+	}
+	if n.Line > 0 {
+		return n.Line
+	}
+	return line
+}
+
+// Duration is a time.Duration written as a Go duration string ("90s", "12h").
+type Duration time.Duration
+
+// UnmarshalYAML reads a duration string.
+func (d *Duration) UnmarshalYAML(n *yaml.Node) error {
+	v, err := time.ParseDuration(n.Value)
+	if err != nil {
+		return fmt.Errorf("line %d: %q is not a duration like 90s or 12h", n.Line, n.Value)
+	}
+	*d = Duration(v)
+	return nil
+}
+
+// ByteSize is a size in bytes, written as a number or with a unit
+// (KiB, MiB, GiB, KB, MB, GB).
+type ByteSize int64
+
+// UnmarshalYAML reads a byte size.
+func (s *ByteSize) UnmarshalYAML(n *yaml.Node) error {
+	v, err := parseByteSize(n.Value)
+	if err != nil {
+		return fmt.Errorf("line %d: %w", n.Line, err)
+	}
+	*s = ByteSize(v)
+	return nil
+}
+
+func parseByteSize(s string) (int64, error) {
+	s = strings.TrimSpace(s)
+	units := []struct {
+		suffix string
+		mult   int64
+	}{{"KiB", 1 << 10}, {"MiB", 1 << 20}, {"GiB", 1 << 30}, {"TiB", 1 << 40}, {"KB", 1e3}, {"MB", 1e6}, {"GB", 1e9}, {"TB", 1e12}, {"B", 1}}
+	mult := int64(1)
+	for _, u := range units {
+		if num, ok := strings.CutSuffix(s, u.suffix); ok {
+			s, mult = strings.TrimSpace(num), u.mult
+			break
+		}
+	}
+	v, err := strconv.ParseFloat(s, 64)
+	if err != nil {
+		return 0, fmt.Errorf("%q is not a size like 4194304, 512MiB or 2GiB", s)
+	}
+	return int64(v * float64(mult)), nil
+}

@@ -1,0 +1,271 @@
+package main
+
+import (
+	"bufio"
+	"bytes"
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"net/http"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"regexp"
+	"strings"
+	"sync"
+	"syscall"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+// TestMain lets a test run the stint command itself in a child process:
+// with STINT_TEST_MAIN set, the test binary is stint.
+func TestMain(m *testing.M) {
+	if args := os.Getenv("STINT_TEST_MAIN"); args != "" {
+		var argv []string
+		if err := json.Unmarshal([]byte(args), &argv); err != nil {
+			fmt.Fprintln(os.Stderr, "bad STINT_TEST_MAIN:", err)
+			os.Exit(2)
+		}
+		os.Args = append([]string{"stint"}, argv...)
+		main()
+		os.Exit(0)
+	}
+	os.Exit(m.Run())
+}
+
+// child is a stint process started by a test.
+type child struct {
+	cmd  *exec.Cmd
+	addr string
+	mu   sync.Mutex
+	logs bytes.Buffer
+	// exited is closed when the process has been reaped; err is its result.
+	exited chan struct{}
+	err    error
+}
+
+var listenRE = regexp.MustCompile(`addr=([0-9.:\[\]]+)`)
+
+// startStint runs `stint args...` in a child process and waits until it
+// listens.
+func startStint(t *testing.T, env []string, args ...string) *child {
+	t.Helper()
+	argv, _ := json.Marshal(args)
+	cmd := exec.Command(os.Args[0], "-test.run=^$")
+	cmd.Env = append(append(os.Environ(), "STINT_TEST_MAIN="+string(argv)), env...)
+	stderr, err := cmd.StderrPipe()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	c := &child{cmd: cmd, exited: make(chan struct{})}
+	addrc := make(chan string, 1)
+	go func() {
+		sc := bufio.NewScanner(stderr)
+		for sc.Scan() {
+			line := sc.Text()
+			c.mu.Lock()
+			c.logs.WriteString(line + "\n")
+			c.mu.Unlock()
+			if m := listenRE.FindStringSubmatch(line); m != nil && strings.Contains(line, "listening") {
+				select {
+				case addrc <- m[1]:
+				default:
+				}
+			}
+		}
+		c.err = cmd.Wait()
+		close(c.exited)
+	}()
+	t.Cleanup(func() {
+		_ = cmd.Process.Kill()
+		<-c.exited
+	})
+	select {
+	case c.addr = <-addrc:
+	case <-c.exited:
+		t.Fatalf("stint exited before listening (%v):\n%s", c.err, c.output())
+	case <-time.After(30 * time.Second):
+		t.Fatalf("stint did not start listening:\n%s", c.output())
+	}
+	return c
+}
+
+func (c *child) output() string {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	return c.logs.String()
+}
+
+func (c *child) complete(t *testing.T, body string) (int, string, []byte) {
+	t.Helper()
+	resp, err := http.Post("http://"+c.addr+"/v1/completions", "application/json", strings.NewReader(body))
+	if err != nil {
+		t.Fatalf("POST: %v", err)
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	return resp.StatusCode, resp.Header.Get("Stint-Cache"), b
+}
+
+func greedyBody(i int) string {
+	return fmt.Sprintf(`{"model":"quill-small","prompt":"crate number %d leaves the dock","temperature":0,"max_tokens":6}`, i)
+}
+
+// TestKilledProcessKeepsAcknowledgedEntries SIGKILLs a serving process and
+// checks a new one on the same data dir answers every acknowledged call from
+// the cache.
+func TestKilledProcessKeepsAcknowledgedEntries(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	data := t.TempDir()
+	args := []string{"serve", "--listen", "127.0.0.1:0", "--upstream", up.URL(), "--data", data}
+	first := startStint(t, nil, args...)
+	const n = 40
+	for i := range n {
+		if status, outcome, body := first.complete(t, greedyBody(i)); status != 200 || outcome != "miss" {
+			t.Fatalf("call %d: %d %s %s", i, status, outcome, body)
+		}
+	}
+	if err := first.cmd.Process.Signal(syscall.SIGKILL); err != nil {
+		t.Fatal(err)
+	}
+	<-first.exited
+	calls := up.Calls().Completions
+
+	second := startStint(t, nil, args...)
+	for i := range n {
+		if status, outcome, body := second.complete(t, greedyBody(i)); status != 200 || outcome != "hit" {
+			t.Errorf("after SIGKILL, call %d: %d %s %s", i, status, outcome, body)
+		}
+	}
+	if got := up.Calls().Completions; got != calls {
+		t.Errorf("upstream calls went from %d to %d after restart", calls, got)
+	}
+}
+
+// TestGracefulShutdownFinishesInFlight sends SIGTERM while a call is held
+// upstream: the call still completes and the process exits cleanly.
+func TestGracefulShutdownFinishesInFlight(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", up.URL(), "--data", t.TempDir())
+	up.Block()
+	type result struct {
+		status int
+		err    error
+	}
+	resc := make(chan result, 1)
+	go func() {
+		resp, err := http.Post("http://"+c.addr+"/v1/completions", "application/json", strings.NewReader(greedyBody(1)))
+		if err != nil {
+			resc <- result{err: err}
+			return
+		}
+		_, _ = io.Copy(io.Discard, resp.Body)
+		resp.Body.Close()
+		resc <- result{status: resp.StatusCode}
+	}()
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	if err := up.AwaitHeld(ctx, 1); err != nil {
+		t.Fatal(err)
+	}
+	if err := c.cmd.Process.Signal(syscall.SIGTERM); err != nil {
+		t.Fatal(err)
+	}
+	waitForLog(t, c, "shutting down")
+	up.Release()
+	res := <-resc
+	if res.err != nil || res.status != 200 {
+		t.Fatalf("in-flight call during shutdown: %d %v", res.status, res.err)
+	}
+	<-c.exited
+	if c.err != nil {
+		t.Fatalf("stint exited with %v:\n%s", c.err, c.output())
+	}
+}
+
+func waitForLog(t *testing.T, c *child, text string) {
+	t.Helper()
+	deadline := time.Now().Add(30 * time.Second)
+	for !strings.Contains(c.output(), text) {
+		if time.Now().After(deadline) {
+			t.Fatalf("log never said %q:\n%s", text, c.output())
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+}
+
+func TestServeRefusesOpenModeOffLoopback(t *testing.T) {
+	_, err := resolveConfig(serveFlags{listen: "0.0.0.0:8787", upstream: "http://127.0.0.1:1/v1"})
+	if err == nil || !strings.Contains(err.Error(), "refusing to listen") {
+		t.Fatalf("got %v, want a refusal", err)
+	}
+	for _, addr := range []string{"127.0.0.1:8787", "[::1]:8787", "localhost:8787"} {
+		if _, err := resolveConfig(serveFlags{listen: addr, upstream: "http://127.0.0.1:1/v1"}); err != nil {
+			t.Errorf("%s: %v", addr, err)
+		}
+	}
+	if _, err := resolveConfig(serveFlags{}); err == nil || !strings.Contains(err.Error(), "no upstream") {
+		t.Errorf("no upstream: got %v", err)
+	}
+}
+
+func TestCheckConfigAndExample(t *testing.T) {
+	dir := t.TempDir()
+	path := filepath.Join(dir, "stint.yaml")
+	if err := os.WriteFile(path, []byte(exampleConfig), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	cmd := newRootCmd()
+	var out bytes.Buffer
+	cmd.SetOut(&out)
+	cmd.SetArgs([]string{"serve", "--config", path, "--check-config"})
+	if err := cmd.Execute(); err != nil {
+		t.Fatalf("example config fails --check-config: %v", err)
+	}
+	if !strings.Contains(out.String(), "config ok") {
+		t.Errorf("output %q", out.String())
+	}
+}
+
+// TestServeWithLocalModelUpstream runs the proxy with the real local model
+// in-process as its upstream. Check value: the model's published greedy
+// output from BOS begins "Once upon a time, there was a little girl named
+// Lily." (llama2.c doc/stories260K.md, recorded in shared/models/MODEL-SOURCE.md).
+func TestServeWithLocalModelUpstream(t *testing.T) {
+	model := modeltest.Path(t)
+	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
+	body := `{"model":"stories260K","prompt":"","temperature":0,"max_tokens":16}`
+	var texts [2]string
+	for i, want := range []string{"miss", "hit"} {
+		status, outcome, b := c.complete(t, body)
+		if status != 200 || outcome != want {
+			t.Fatalf("call %d: %d %s %s", i, status, outcome, b)
+		}
+		var a struct {
+			Choices []struct {
+				Text string `json:"text"`
+			} `json:"choices"`
+		}
+		if err := json.Unmarshal(b, &a); err != nil || len(a.Choices) != 1 {
+			t.Fatalf("answer %s: %v", b, err)
+		}
+		texts[i] = a.Choices[0].Text
+	}
+	const published = "Once upon a time, there was a little girl named Lily."
+	if !strings.HasPrefix(strings.TrimSpace(texts[0]), published) {
+		t.Errorf("greedy text %q does not start with %q", texts[0], published)
+	}
+	if texts[0] != texts[1] {
+		t.Errorf("hit %q differs from miss %q", texts[1], texts[0])
+	}
+}

@@ -1,0 +1,291 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"path/filepath"
+	"strings"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/spf13/cobra"
+
+	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/proxy"
+)
+
+// serveFlags are the command-line settings of `stint serve`.
+type serveFlags struct {
+	listen      string
+	upstream    string
+	data        string
+	config      string
+	logFormat   string
+	logPrompts  bool
+	checkConfig bool
+}
+
+func newServeCmd() *cobra.Command {
+	var f serveFlags
+	cmd := &cobra.Command{
+		Use:   "serve",
+		Short: "Run the caching proxy in front of an inference API",
+		Long: `Run the caching proxy. Point any client of the completions wire format at
+http://LISTEN/v1 instead of the paid API: repeated deterministic calls
+(temperature 0) are answered from the cache in the data directory.
+
+The upstream credential is read from the environment variable
+STINT_UPSTREAM_KEY (or the variable a config file names), never from a flag.
+
+Without --config there is one team, "default", and no client key is needed;
+that is allowed only on a loopback address.`,
+		Example: `  STINT_UPSTREAM_KEY=... stint serve --upstream https://api.example.com/v1
+  stint serve --upstream local:../shared/models/stories260K.gguf
+  stint serve --config stint.yaml --check-config`,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			return runServe(cmd.Context(), cmd, f)
+		},
+	}
+	fl := cmd.Flags()
+	fl.StringVar(&f.listen, "listen", "", "address to listen on (default 127.0.0.1:8787)")
+	fl.StringVar(&f.upstream, "upstream", "", "upstream base URL including its version path (https://host/v1), or local:MODEL.gguf to run the local model in-process")
+	fl.StringVar(&f.data, "data", "", "data directory for the embedded store (default ./stint-data)")
+	fl.StringVar(&f.config, "config", "", "YAML config file (see `stint config example`)")
+	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text (default text)")
+	fl.BoolVar(&f.logPrompts, "log-prompts", false, "include prompt text in request logs (debugging only)")
+	fl.BoolVar(&f.checkConfig, "check-config", false, "validate the configuration and exit")
+	return cmd
+}
+
+// resolveConfig merges defaults, the config file and flags.
+func resolveConfig(f serveFlags) (Config, error) {
+	cfg := DefaultConfig()
+	if f.config != "" {
+		var err error
+		if cfg, err = LoadConfig(f.config); err != nil {
+			return Config{}, err
+		}
+	}
+	if f.listen != "" {
+		cfg.Listen = f.listen
+	}
+	if f.data != "" {
+		cfg.Data = f.data
+	}
+	if f.logFormat != "" {
+		cfg.Log.Format = f.logFormat
+	}
+	if f.logPrompts {
+		cfg.Log.Prompts = true
+	}
+	if f.upstream != "" {
+		cfg.Upstreams = []UpstreamConfig{{Name: "default", URL: f.upstream, KeyEnv: "STINT_UPSTREAM_KEY"}}
+	}
+	if len(cfg.Upstreams) == 0 {
+		return Config{}, errors.New("no upstream: give --upstream URL (or local:MODEL.gguf) or list upstreams in the config")
+	}
+	if err := cfg.Validate(nil); err != nil {
+		return Config{}, err
+	}
+	if len(cfg.Teams) == 0 && !isLoopback(cfg.Listen) {
+		return Config{}, fmt.Errorf("refusing to listen on %s without a config: with no teams configured anyone who can reach the port could spend on your upstream key; listen on a loopback address (127.0.0.1) or give --config with teams and keys", cfg.Listen)
+	}
+	return cfg, nil
+}
+
+// isLoopback reports whether addr's host is a loopback address.
+func isLoopback(addr string) bool {
+	host, _, err := net.SplitHostPort(addr)
+	if err != nil {
+		return false
+	}
+	if strings.EqualFold(host, "localhost") {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsLoopback()
+}
+
+func newLogger(format string, w *os.File) *slog.Logger {
+	if format == "json" {
+		return slog.New(slog.NewJSONHandler(w, nil))
+	}
+	return slog.New(slog.NewTextHandler(w, nil))
+}
+
+func runServe(ctx context.Context, cmd *cobra.Command, f serveFlags) error {
+	cfg, err := resolveConfig(f)
+	if err != nil {
+		return err
+	}
+	if f.checkConfig {
+		fmt.Fprintln(cmd.OutOrStdout(), "config ok")
+		return nil
+	}
+	log := newLogger(cfg.Log.Format, os.Stderr)
+	srv, err := buildServer(ctx, cfg, log)
+	if err != nil {
+		return err
+	}
+	return srv.run(ctx)
+}
+
+// server is a wired proxy with its store and listener settings.
+type server struct {
+	cfg     Config
+	log     *slog.Logger
+	proxy   *proxy.Proxy
+	store   cache.Store
+	closers []func() error
+}
+
+func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, error) {
+	if err := os.MkdirAll(cfg.Data, 0o700); err != nil {
+		return nil, fmt.Errorf("create data dir: %w", err)
+	}
+	s := &server{cfg: cfg, log: log}
+	disk, err := boltstore.Open(filepath.Join(cfg.Data, "stint.db"), boltstore.Options{MaxBytes: int64(cfg.Cache.MaxBytes)})
+	if err != nil {
+		return nil, fmt.Errorf("open store: %w", err)
+	}
+	s.closers = append(s.closers, disk.Close)
+	var store cache.Store = disk
+	if cfg.Cache.HotBytes > 0 {
+		store = cache.NewHot(disk, cache.HotOptions{MaxBytes: int64(cfg.Cache.HotBytes)})
+	}
+	s.store = store
+
+	ups, closers, err := buildUpstreams(ctx, cfg.Upstreams)
+	if err != nil {
+		s.close()
+		return nil, err
+	}
+	s.closers = append(s.closers, closers...)
+	teams, err := buildTeams(cfg.Teams)
+	if err != nil {
+		s.close()
+		return nil, err
+	}
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	p, err := proxy.New(proxy.Options{
+		Store:          store,
+		Upstreams:      ups,
+		Teams:          teams,
+		MaxBodyBytes:   int64(cfg.Server.MaxBodyBytes),
+		CacheTTL:       time.Duration(cfg.Cache.TTL),
+		CacheSampled:   cfg.Cache.Sampled,
+		UncachedModels: cfg.Cache.UncachedModels,
+		Logger:         log,
+		LogPrompts:     cfg.Log.Prompts,
+		Registerer:     reg,
+		Gatherer:       reg,
+	})
+	if err != nil {
+		s.close()
+		return nil, err
+	}
+	s.proxy = p
+	return s, nil
+}
+
+func buildTeams(cfgs []TeamConfig) ([]proxy.Team, error) {
+	teams := make([]proxy.Team, 0, len(cfgs))
+	for _, tc := range cfgs {
+		t := proxy.Team{Name: tc.Name, Namespace: tc.Namespace, CacheOff: tc.Cache != nil && !*tc.Cache}
+		for _, k := range tc.Keys {
+			h, err := parseKeyHash(k)
+			if err != nil {
+				return nil, fmt.Errorf("team %s: %w", tc.Name, err)
+			}
+			t.KeyHashes = append(t.KeyHashes, h)
+		}
+		teams = append(teams, t)
+	}
+	return teams, nil
+}
+
+func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstream, []func() error, error) {
+	var ups []proxy.Upstream
+	var closers []func() error
+	for i, uc := range cfgs {
+		u := proxy.Upstream{Name: uc.Name, BaseURL: uc.URL, Timeout: time.Duration(uc.Timeout), Models: uc.Models}
+		if u.Name == "" {
+			u.Name = fmt.Sprintf("upstream-%d", i)
+		}
+		if path, ok := strings.CutPrefix(uc.URL, "local:"); ok {
+			client, closeFn, err := localUpstreamClient(ctx, path)
+			if err != nil {
+				return nil, closers, fmt.Errorf("upstream %s: %w", u.Name, err)
+			}
+			u.BaseURL = "http://local.stint.invalid/v1"
+			u.Client = client
+			closers = append(closers, closeFn)
+		} else if uc.KeyEnv != "" {
+			u.Key = os.Getenv(uc.KeyEnv)
+		}
+		ups = append(ups, u)
+	}
+	return ups, closers, nil
+}
+
+func (s *server) close() error {
+	var first error
+	for i := len(s.closers) - 1; i >= 0; i-- {
+		if err := s.closers[i](); err != nil && first == nil {
+			first = err
+		}
+	}
+	s.closers = nil
+	return first
+}
+
+// run serves until ctx ends, then drains: new work is refused by /readyz,
+// in-flight requests finish (up to the shutdown timeout) and the store
+// closes cleanly.
+func (s *server) run(ctx context.Context) error {
+	ln, err := net.Listen("tcp", s.cfg.Listen)
+	if err != nil {
+		s.close()
+		return fmt.Errorf("listen: %w", err)
+	}
+	return s.serve(ctx, ln)
+}
+
+func (s *server) serve(ctx context.Context, ln net.Listener) error {
+	hs := &http.Server{
+		Handler:           s.proxy,
+		ReadHeaderTimeout: 30 * time.Second,
+		ErrorLog:          slog.NewLogLogger(s.log.Handler(), slog.LevelWarn),
+	}
+	errc := make(chan error, 1)
+	go func() { errc <- hs.Serve(ln) }()
+	s.log.Info("stint serve listening", "addr", ln.Addr().String(), "upstreams", len(s.cfg.Upstreams), "teams", len(s.cfg.Teams), "data", s.cfg.Data)
+	var serveErr error
+	select {
+	case serveErr = <-errc:
+	case <-ctx.Done():
+		s.log.Info("shutting down: finishing in-flight requests")
+		s.proxy.Drain()
+		sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), time.Duration(s.cfg.Server.ShutdownTimeout))
+		defer cancel()
+		if err := hs.Shutdown(sctx); err != nil {
+			serveErr = fmt.Errorf("shutdown: %w", err)
+		}
+	}
+	if errors.Is(serveErr, http.ErrServerClosed) {
+		serveErr = nil
+	}
+	if err := s.close(); err != nil && serveErr == nil {
+		serveErr = fmt.Errorf("close store: %w", err)
+	}
+	return serveErr
+}

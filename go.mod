@@ -1,0 +1,34 @@
+module github.com/stintlab/stint
+
+go 1.26.8
+
+require (
+	github.com/gowebpki/jcs v1.0.2
+	github.com/klauspost/compress v1.20.4
+	github.com/maypok86/otter/v2 v2.4.0
+	github.com/prometheus/client_golang v1.25.0
+	github.com/redis/go-redis/v9 v9.23.0
+	github.com/sashabaranov/go-openai v1.43.0
+	github.com/spf13/cobra v1.10.2
+	github.com/tiktoken-go/tokenizer v0.10.0
+	go.etcd.io/bbolt v1.5.0
+	go.yaml.in/yaml/v3 v3.0.6
+	golang.org/x/time v0.16.0
+	gonum.org/v1/gonum v0.17.0
+)
+
+require (
+	github.com/beorn7/perks v1.0.1 // indirect
+	github.com/cespare/xxhash/v2 v2.3.0 // indirect
+	github.com/dlclark/regexp2/v2 v2.5.1 // indirect
+	github.com/inconshreveable/mousetrap v1.1.0 // indirect
+	github.com/munnerz/goautoneg v0.0.0-20191010083416-a7dc8b61c822 // indirect
+	github.com/prometheus/client_model v0.6.3 // indirect
+	github.com/prometheus/common v0.72.0 // indirect
+	github.com/prometheus/procfs v0.22.0 // indirect
+	github.com/spf13/pflag v1.0.10 // indirect
+	go.uber.org/atomic v1.12.0 // indirect
+	golang.org/x/sync v0.25.0 // indirect
+	golang.org/x/sys v0.48.0 // indirect
+	google.golang.org/protobuf v1.36.12 // indirect
+)

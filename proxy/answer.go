@@ -1,0 +1,214 @@
+package proxy
+
+import (
+	"encoding/json"
+	"fmt"
+	"io"
+	"net/http"
+	"strconv"
+)
+
+// answer writes the reply to a request whose every prompt now has an answer.
+// full, when set, is the upstream's whole answer for the whole request and is
+// sent unchanged.
+func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items []item, full []byte, outcome string) {
+	parts := make([]served, len(items))
+	for i := range items {
+		parts[i] = *items[i].hit
+	}
+	body, u := full, usage{}
+	if body == nil {
+		var err error
+		body, u, err = mergeAnswers(req, parts)
+		if err != nil {
+			ll.status = http.StatusBadGateway
+			writeError(w, &apiError{status: http.StatusBadGateway, typ: errCache, code: "bad_stored_answer", message: err.Error()})
+			return
+		}
+	} else {
+		_, u = mergeUsage(parts)
+	}
+	ll.usage = u
+	ll.status = http.StatusOK
+	if req.promptsArray {
+		w.Header().Set(HeaderCachedPrompt, fmt.Sprintf("%d/%d", ll.hits, ll.prompts))
+	}
+	if req.stream {
+		if err := writeStream(w, req.endpoint, body, req.includeUsage, outcome); err != nil {
+			p.log.Warn("cannot stream answer", "err", err)
+		}
+		return
+	}
+	h := w.Header()
+	h.Set("Content-Type", "application/json")
+	h.Set("Content-Length", strconv.Itoa(len(body)))
+	h.Set(HeaderCache, outcome)
+	w.WriteHeader(http.StatusOK)
+	_, _ = w.Write(body)
+}
+
+func mergeUsage(parts []served) (int, usage) {
+	var u usage
+	for _, s := range parts {
+		u = u.add(s.usage)
+	}
+	return len(parts), u
+}
+
+// mergeAnswers joins single-prompt answers into the answer for the whole
+// request: choices renumbered prompt*n + j in prompt order, usage summed,
+// the other top-level fields taken from the first answer.
+func mergeAnswers(req *request, parts []served) ([]byte, usage, error) {
+	if len(parts) == 1 {
+		return parts[0].body, parts[0].usage, nil
+	}
+	var env map[string]json.RawMessage
+	var all []json.RawMessage
+	var total usage
+	for i, s := range parts {
+		var e map[string]json.RawMessage
+		if err := json.Unmarshal(s.body, &e); err != nil {
+			return nil, usage{}, fmt.Errorf("stored answer %d: %w", i, err)
+		}
+		if env == nil {
+			env = e
+		}
+		var choices []map[string]json.RawMessage
+		if err := json.Unmarshal(e["choices"], &choices); err != nil {
+			return nil, usage{}, fmt.Errorf("stored answer %d choices: %w", i, err)
+		}
+		for _, ch := range choices {
+			var j int
+			if err := json.Unmarshal(ch["index"], &j); err != nil {
+				return nil, usage{}, fmt.Errorf("stored answer %d: bad choice index", i)
+			}
+			ch["index"] = json.RawMessage(strconv.Itoa(i*req.n + j))
+			all = append(all, mustMarshal(ch))
+		}
+		total = total.add(s.usage)
+	}
+	env["choices"] = mustMarshal(all)
+	env["usage"] = mustMarshal(total)
+	b, err := json.Marshal(env)
+	return b, total, err
+}
+
+// writeUpstreamError passes an upstream's error answer through (status, body
+// and the headers a client acts on), or maps a transport failure to 502/504.
+func (p *Proxy) writeUpstreamError(w http.ResponseWriter, ll *logLine, ue *upstreamError) {
+	if ue.status == 0 {
+		e := ue.apiError()
+		ll.status = e.status
+		writeError(w, e)
+		return
+	}
+	ll.status = ue.status
+	h := w.Header()
+	for _, name := range []string{"Content-Type", "Retry-After"} {
+		if v := ue.header.Get(name); v != "" {
+			h.Set(name, v)
+		}
+	}
+	h.Set(HeaderCache, ll.outcome)
+	h.Set("Content-Length", strconv.Itoa(len(ue.body)))
+	w.WriteHeader(ue.status)
+	_, _ = w.Write(ue.body)
+}
+
+// forward sends a request that is not cacheable upstream as it came and
+// relays the answer byte for byte.
+func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, up *Upstream, req *request) {
+	ctx := r.Context()
+	start := p.now()
+	resp, err := up.post(ctx, req.endpoint, req.raw)
+	p.countUpstream(up, req.endpoint, err)
+	if err != nil {
+		if ue, ok := err.(*upstreamError); ok {
+			p.writeUpstreamError(w, ll, ue)
+			return
+		}
+		writeError(w, &apiError{status: http.StatusBadGateway, typ: errUpstream, message: err.Error()})
+		return
+	}
+	defer resp.Body.Close()
+	h := w.Header()
+	for _, name := range []string{"Content-Type", "Content-Length"} {
+		if v := resp.Header.Get(name); v != "" {
+			h.Set(name, v)
+		}
+	}
+	h.Set(HeaderCache, OutcomeBypass)
+	w.WriteHeader(resp.StatusCode)
+	ll.status = resp.StatusCode
+	buf := make([]byte, 32<<10)
+	rc := http.NewResponseController(w)
+	for {
+		n, rerr := resp.Body.Read(buf)
+		if n > 0 {
+			if _, werr := w.Write(buf[:n]); werr != nil {
+				break
+			}
+			if req.stream {
+				_ = rc.Flush()
+			}
+		}
+		if rerr != nil {
+			if rerr != io.EOF {
+				ll.upstream = p.now().Sub(start)
+				panic(http.ErrAbortHandler)
+			}
+			break
+		}
+	}
+	ll.upstream = p.now().Sub(start)
+	p.metrics.upstreamSeconds.WithLabelValues(up.Name, string(req.endpoint)).Observe(ll.upstream.Seconds())
+}
+
+// tokenFacts reads from a single-prompt answer its finish reason and how many
+// completion tokens its token-level data list (-1 when it has none or they
+// cannot be trusted to cut it, as with echo).
+func tokenFacts(req *request, body []byte) (string, int) {
+	var a struct {
+		Choices []struct {
+			FinishReason string `json:"finish_reason"`
+			Logprobs     *struct {
+				Tokens  []string          `json:"tokens"`
+				Content []json.RawMessage `json:"content"`
+			} `json:"logprobs"`
+		} `json:"choices"`
+	}
+	if err := json.Unmarshal(body, &a); err != nil || len(a.Choices) != 1 {
+		return "", noLevel
+	}
+	c := a.Choices[0]
+	if c.Logprobs == nil || req.echo {
+		return c.FinishReason, noLevel
+	}
+	if req.endpoint == endpointChat {
+		return c.FinishReason, len(c.Logprobs.Content)
+	}
+	return c.FinishReason, len(c.Logprobs.Tokens)
+}
+
+// keyBody is the canonical JSON of the fields of req that shape its answer,
+// with prompt set to one item. Transport fields (stream, stream_options,
+// user) are left out, and so are the fields a stored answer can be cut down
+// to (max_tokens and log-probability depth): those are kept per variant.
+func keyBody(req *request, prompt json.RawMessage) ([]byte, error) {
+	fields := make(map[string]json.RawMessage, len(req.fields))
+	for k, v := range req.fields {
+		switch k {
+		case "stream", "stream_options", "user", "max_tokens", "max_completion_tokens", "logprobs", "top_logprobs":
+			continue
+		}
+		fields[k] = v
+	}
+	if prompt != nil {
+		fields["prompt"] = prompt
+	}
+	raw, err := json.Marshal(fields)
+	if err != nil {
+		return nil, err
+	}
+	return canonicalize(raw)
+}

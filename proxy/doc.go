@@ -1,0 +1,11 @@
+// Package proxy is stint's HTTP front: it speaks the completions wire format
+// to clients, answers repeated deterministic calls from a cache.Store,
+// merges identical concurrent misses, splits batched prompts so only the
+// missing ones go upstream, and streams answers as text/event-stream.
+//
+// The request pipeline is: authenticate the team key, decode and validate
+// the body, derive a canonical cache key per prompt, look up (serving smaller
+// requests from larger stored answers when that is exact), and on a miss
+// coalesce, call the upstream, store and answer. Response headers say what
+// happened (Stint-Cache), and Prometheus metrics count it.
+package proxy

@@ -1,0 +1,59 @@
+package proxy
+
+import (
+	"encoding/json"
+	"net/http"
+)
+
+// Error types used in the wire format's error body.
+const (
+	errInvalidRequest = "invalid_request_error"
+	errAuthentication = "authentication_error"
+	errUpstream       = "upstream_error"
+	errCache          = "cache_error"
+	errServer         = "server_error"
+)
+
+// wireError is the wire format's error body: {"error":{"message","type","code"}}.
+type wireError struct {
+	Error wireErrorBody `json:"error"`
+}
+
+type wireErrorBody struct {
+	Message string  `json:"message"`
+	Type    string  `json:"type"`
+	Param   *string `json:"param"`
+	Code    *string `json:"code"`
+}
+
+// apiError is an error that knows its HTTP status and wire error fields.
+type apiError struct {
+	status  int
+	typ     string
+	code    string
+	param   string
+	message string
+}
+
+func (e *apiError) Error() string { return e.message }
+
+func badRequest(param, format string, args ...any) *apiError {
+	return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "invalid_value", param: param, message: sprintf(format, args...)}
+}
+
+// writeError writes err in the wire format's error shape. Errors that are not
+// *apiError become a 500 without their text (it may hold internals).
+func writeError(w http.ResponseWriter, e *apiError) {
+	body := wireError{Error: wireErrorBody{Message: e.message, Type: e.typ}}
+	if e.code != "" {
+		body.Error.Code = &e.code
+	}
+	if e.param != "" {
+		body.Error.Param = &e.param
+	}
+	b, _ := json.Marshal(body)
+	w.Header().Set("Content-Type", "application/json")
+	w.Header().Set("Content-Length", itoa(len(b)))
+	w.WriteHeader(e.status)
+	_, _ = w.Write(b)
+}

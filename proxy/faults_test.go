@@ -1,0 +1,192 @@
+package proxy_test
+
+import (
+	"context"
+	"encoding/json"
+	"net/http"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+func TestBadRequestsGetWireErrors(t *testing.T) {
+	r := newRig(t, func(o *proxy.Options) { o.MaxBodyBytes = 4096 })
+	tests := []struct {
+		name   string
+		path   string
+		body   string
+		status int
+		param  string
+	}{
+		{"malformed JSON", "/v1/completions", `{"model": "quill-small", "prompt": `, 400, ""},
+		{"not an object", "/v1/completions", `["model"]`, 400, ""},
+		{"trailing data", "/v1/completions", `{"model":"quill-small","prompt":"a"} {}`, 400, ""},
+		{"missing model", "/v1/completions", `{"prompt":"a"}`, 400, "model"},
+		{"model not a string", "/v1/completions", `{"model":7,"prompt":"a"}`, 400, "model"},
+		{"missing prompt", "/v1/completions", `{"model":"quill-small"}`, 400, "prompt"},
+		{"prompt wrong type", "/v1/completions", `{"model":"quill-small","prompt":{"a":1}}`, 400, "prompt"},
+		{"prompt mixed array", "/v1/completions", `{"model":"quill-small","prompt":["a",3]}`, 400, "prompt"},
+		{"negative max_tokens", "/v1/completions", `{"model":"quill-small","prompt":"a","max_tokens":-1}`, 400, "max_tokens"},
+		{"absurd max_tokens", "/v1/completions", `{"model":"quill-small","prompt":"a","max_tokens":1e12}`, 400, "max_tokens"},
+		{"fractional max_tokens", "/v1/completions", `{"model":"quill-small","prompt":"a","max_tokens":2.5}`, 400, "max_tokens"},
+		{"string max_tokens", "/v1/completions", `{"model":"quill-small","prompt":"a","max_tokens":"8"}`, 400, "max_tokens"},
+		{"negative logprobs", "/v1/completions", `{"model":"quill-small","prompt":"a","logprobs":-2}`, 400, "logprobs"},
+		{"absurd logprobs", "/v1/completions", `{"model":"quill-small","prompt":"a","logprobs":100000000}`, 400, "logprobs"},
+		{"negative temperature", "/v1/completions", `{"model":"quill-small","prompt":"a","temperature":-1}`, 400, "temperature"},
+		{"n zero", "/v1/completions", `{"model":"quill-small","prompt":"a","n":0}`, 400, "n"},
+		{"stream not bool", "/v1/completions", `{"model":"quill-small","prompt":"a","stream":"yes"}`, 400, "stream"},
+		{"chat missing messages", "/v1/chat/completions", `{"model":"quill-small"}`, 400, "messages"},
+		{"chat empty messages", "/v1/chat/completions", `{"model":"quill-small","messages":[]}`, 400, "messages"},
+		{"chat top_logprobs without logprobs", "/v1/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"a"}],"top_logprobs":2}`, 400, "top_logprobs"},
+		{"body too large", "/v1/completions", `{"model":"quill-small","prompt":"` + strings.Repeat("a", 5000) + `"}`, 413, ""},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			got := r.post(tt.path, tt.body)
+			if got.status != tt.status {
+				t.Fatalf("status %d, want %d: %s", got.status, tt.status, got.body)
+			}
+			var e struct {
+				Error struct {
+					Message string  `json:"message"`
+					Type    string  `json:"type"`
+					Param   *string `json:"param"`
+					Code    *string `json:"code"`
+				} `json:"error"`
+			}
+			if err := json.Unmarshal(got.body, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
+				t.Fatalf("not the wire error shape: %s (%v)", got.body, err)
+			}
+			if tt.param != "" && (e.Error.Param == nil || *e.Error.Param != tt.param) {
+				t.Errorf("param %v, want %q", e.Error.Param, tt.param)
+			}
+		})
+	}
+	if r.upstreamGenerations() != 0 {
+		t.Errorf("bad requests reached the upstream %d times", r.upstreamGenerations())
+	}
+}
+
+func TestUnknownKeyIs401(t *testing.T) {
+	r := newRig(t, withTeams(teamWithKey("lab", "good-key")))
+	for _, key := range []string{"", "wrong-key"} {
+		r.key = key
+		if got := r.complete(greedy("a")); got.status != http.StatusUnauthorized {
+			t.Errorf("key %q: status %d, want 401", key, got.status)
+		}
+	}
+	r.key = "good-key"
+	if got := r.complete(greedy("a")); got.status != http.StatusOK {
+		t.Errorf("good key: status %d", got.status)
+	}
+}
+
+func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
+	r := newRig(t)
+	r.up.Block()
+	const clients = 64
+	var wg sync.WaitGroup
+	bodies := make([][]byte, clients)
+	outcomes := make([]string, clients)
+	for i := range clients {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			got := r.complete(greedy("sixty-four keepers ask at once"))
+			bodies[i], outcomes[i] = got.body, got.cache()
+		}()
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	if err := r.up.AwaitHeld(ctx, 1); err != nil {
+		t.Fatal(err)
+	}
+	waitFor(t, "63 coalesced waiters", func() bool { return r.metric("stint_coalesced_waiting") == clients-1 })
+	r.up.Release()
+	wg.Wait()
+	if got := r.upstreamGenerations(); got != 1 {
+		t.Fatalf("upstream calls = %d, want 1", got)
+	}
+	misses, shared := 0, 0
+	for i := range clients {
+		if string(bodies[i]) != string(bodies[0]) {
+			t.Fatalf("client %d got a different answer", i)
+		}
+		switch outcomes[i] {
+		case proxy.OutcomeMiss:
+			misses++
+		case proxy.OutcomeShared:
+			shared++
+		}
+	}
+	if misses != 1 || shared != clients-1 {
+		t.Errorf("outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
+	}
+}
+
+func TestNothingIsCachedFromAFailedCall(t *testing.T) {
+	r := newRig(t)
+	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "7", Body: `{"error":{"message":"slow down","type":"rate_limit","code":"rate_limited"}}`})
+	got := r.complete(greedy("queen cell"))
+	if got.status != http.StatusTooManyRequests || got.header.Get("Retry-After") != "7" || !strings.Contains(string(got.body), "slow down") {
+		t.Fatalf("upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	}
+	again := r.complete(greedy("queen cell"))
+	if again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss {
+		t.Fatalf("after a failed call: %d %q, want 200 miss", again.status, again.cache())
+	}
+}
+
+func TestUpstreamUnreachableOrSlow(t *testing.T) {
+	t.Run("unreachable", func(t *testing.T) {
+		r := newRig(t)
+		r.up.Close()
+		got := r.complete(greedy("x"))
+		if got.status != http.StatusBadGateway {
+			t.Fatalf("status %d, want 502: %s", got.status, got.body)
+		}
+	})
+	t.Run("timeout", func(t *testing.T) {
+		r := newRig(t, func(o *proxy.Options) { o.Upstreams[0].Timeout = 200 * time.Millisecond })
+		r.up.FailNext(1, upstreamtest.Fault{Hang: true})
+		got := r.complete(greedy("x"))
+		if got.status != http.StatusGatewayTimeout {
+			t.Fatalf("status %d, want 504: %s", got.status, got.body)
+		}
+		if again := r.complete(greedy("x")); again.cache() != proxy.OutcomeMiss || again.status != http.StatusOK {
+			t.Fatalf("after timeout: %d %q", again.status, again.cache())
+		}
+	})
+}
+
+func TestHealthReadyMetrics(t *testing.T) {
+	r := newRig(t)
+	r.complete(greedy("metrics please"))
+	r.complete(greedy("metrics please"))
+	for _, path := range []string{"/healthz", "/readyz", "/metrics"} {
+		resp, err := http.Get(r.srv.URL + path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		if resp.StatusCode != http.StatusOK {
+			t.Errorf("%s: %d", path, resp.StatusCode)
+		}
+	}
+	if got := r.metric("stint_requests_total", "cache", "hit"); got != 1 {
+		t.Errorf("stint_requests_total{cache=hit} = %v, want 1", got)
+	}
+	r.proxy.Drain()
+	resp, err := http.Get(r.srv.URL + "/readyz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusServiceUnavailable {
+		t.Errorf("/readyz while draining: %d, want 503", resp.StatusCode)
+	}
+}

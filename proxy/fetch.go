@@ -1,0 +1,293 @@
+package proxy
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"net/http"
+	"strconv"
+
+	"github.com/stintlab/stint/proxy/sse"
+)
+
+// fetch makes the upstream call for the missing prompts of req. When streamTo
+// is set (every prompt missed and the client asked for a stream) the answer is
+// relayed to it as it arrives and assembled for storing.
+func (p *Proxy) fetch(ctx context.Context, up *Upstream, req *request, items []item, misses []int, streamTo http.ResponseWriter) (*flightResult, error) {
+	stream := streamTo != nil
+	var prompts []json.RawMessage
+	if len(misses) != len(items) {
+		prompts = make([]json.RawMessage, len(misses))
+		for j, i := range misses {
+			prompts[j] = items[i].prompt
+		}
+	}
+	body, err := upstreamBody(req, prompts, stream)
+	if err != nil {
+		return nil, err
+	}
+	start := p.now()
+	resp, err := up.post(ctx, req.endpoint, body)
+	p.countUpstream(up, req.endpoint, err)
+	if err != nil {
+		return nil, err
+	}
+	defer resp.Body.Close()
+	res := &flightResult{}
+	if stream {
+		res.full, err = p.relay(streamTo, resp, req, res)
+	} else {
+		res.full, err = io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
+		if err != nil {
+			err = &upstreamError{err: err}
+		}
+	}
+	res.latency = p.now().Sub(start)
+	p.metrics.upstreamSeconds.WithLabelValues(up.Name, string(req.endpoint)).Observe(res.latency.Seconds())
+	if errors.Is(err, errUnstorable) {
+		res.unstorable = true
+		return res, nil
+	}
+	if err != nil {
+		return res, err
+	}
+	res.items, err = splitAnswer(req, res.full, len(misses), itemPrompts(items, misses))
+	if err != nil {
+		return res, err
+	}
+	return res, nil
+}
+
+func itemPrompts(items []item, misses []int) []json.RawMessage {
+	out := make([]json.RawMessage, len(misses))
+	for j, i := range misses {
+		out[j] = items[i].prompt
+	}
+	return out
+}
+
+func (p *Proxy) countUpstream(up *Upstream, ep endpoint, err error) {
+	status := "200"
+	var ue *upstreamError
+	if errors.As(err, &ue) {
+		if ue.status != 0 {
+			status = strconv.Itoa(ue.status)
+		} else {
+			status = "transport_error"
+		}
+	}
+	p.metrics.upstreamCalls.WithLabelValues(up.Name, string(ep), status).Inc()
+}
+
+// upstreamBody builds the body sent upstream: the client's own bytes when
+// nothing needs changing, else its fields with the prompt replaced by the
+// missing prompts and streaming set as the proxy needs it (a relayed stream
+// always asks for the usage chunk, so the stored answer has real usage).
+func upstreamBody(req *request, prompts []json.RawMessage, stream bool) ([]byte, error) {
+	if prompts == nil && stream == req.stream && (!stream || req.includeUsage) {
+		return req.raw, nil
+	}
+	fields := make(map[string]json.RawMessage, len(req.fields)+1)
+	for k, v := range req.fields {
+		fields[k] = v
+	}
+	if prompts != nil {
+		b, err := json.Marshal(prompts)
+		if err != nil {
+			return nil, err
+		}
+		fields["prompt"] = b
+	}
+	if stream {
+		fields["stream"] = json.RawMessage("true")
+		so := map[string]json.RawMessage{}
+		if raw, ok := req.fields["stream_options"]; ok && !isNull(raw) {
+			if err := json.Unmarshal(raw, &so); err != nil {
+				return nil, err
+			}
+		}
+		so["include_usage"] = json.RawMessage("true")
+		b, _ := json.Marshal(so)
+		fields["stream_options"] = b
+	} else {
+		delete(fields, "stream")
+		delete(fields, "stream_options")
+	}
+	return json.Marshal(fields)
+}
+
+// relay copies an upstream event stream to the client while assembling the
+// whole answer. A client that goes away does not stop the relay: the call is
+// paid for, so it is read to the end and stored.
+func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, res *flightResult) ([]byte, error) {
+	h := w.Header()
+	h.Set("Content-Type", "text/event-stream")
+	h.Set("Cache-Control", "no-cache")
+	h.Set(HeaderCache, OutcomeMiss)
+	w.WriteHeader(http.StatusOK)
+	res.streamed = true
+	sw := sse.NewWriter(w)
+	clientOK := true
+	asm := newAssembler(req.endpoint)
+	rd := sse.NewReader(resp.Body)
+	for {
+		ev, err := rd.Next()
+		if err != nil {
+			if errors.Is(err, io.EOF) {
+				err = io.ErrUnexpectedEOF
+			}
+			return nil, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
+		}
+		if ev.IsDone() {
+			if clientOK {
+				_ = sw.WriteDone()
+			}
+			break
+		}
+		usageOnly, err := asm.add([]byte(ev.Data))
+		if err != nil {
+			return nil, &upstreamError{err: err}
+		}
+		if clientOK && (!usageOnly || req.includeUsage) {
+			if err := sw.WriteData([]byte(ev.Data)); err != nil {
+				clientOK = false
+			}
+		}
+	}
+	return asm.result()
+}
+
+// splitAnswer cuts an upstream answer for nPrompts prompts into one
+// single-prompt answer per prompt. A completions answer for several prompts
+// carries choices with index prompt*n + j and one usage for all; each
+// prompt's share of usage is apportioned (exact when the answer has token
+// data, by length otherwise) and flagged as estimated.
+func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMessage) ([]served, error) {
+	var env map[string]json.RawMessage
+	if err := json.Unmarshal(full, &env); err != nil {
+		return nil, fmt.Errorf("upstream answer is not a JSON object: %w", err)
+	}
+	var u usage
+	if raw, ok := env["usage"]; ok && !isNull(raw) {
+		if err := json.Unmarshal(raw, &u); err != nil {
+			return nil, fmt.Errorf("upstream usage: %w", err)
+		}
+	}
+	var choices []map[string]json.RawMessage
+	if err := json.Unmarshal(env["choices"], &choices); err != nil {
+		return nil, fmt.Errorf("upstream answer has no choices array: %w", err)
+	}
+	if len(choices) != nPrompts*req.n {
+		return nil, fmt.Errorf("upstream answered %d choices for %d prompts × n=%d", len(choices), nPrompts, req.n)
+	}
+	if nPrompts == 1 {
+		return []served{{body: full, usage: u}}, nil
+	}
+	groups := make([][]map[string]json.RawMessage, nPrompts)
+	for _, ch := range choices {
+		var idx int
+		if err := json.Unmarshal(ch["index"], &idx); err != nil || idx < 0 || idx >= nPrompts*req.n {
+			return nil, fmt.Errorf("upstream choice has a bad index %s", ch["index"])
+		}
+		ch["index"] = json.RawMessage(strconv.Itoa(idx % req.n))
+		groups[idx/req.n] = append(groups[idx/req.n], ch)
+	}
+	shares := apportion(u, groups, prompts)
+	out := make([]served, nPrompts)
+	for j, g := range groups {
+		if len(g) != req.n {
+			return nil, fmt.Errorf("upstream answered %d choices for prompt %d, want %d", len(g), j, req.n)
+		}
+		e := make(map[string]json.RawMessage, len(env))
+		for k, v := range env {
+			e[k] = v
+		}
+		cb, err := json.Marshal(g)
+		if err != nil {
+			return nil, err
+		}
+		e["choices"] = cb
+		ub, _ := json.Marshal(shares[j])
+		e["usage"] = ub
+		b, err := json.Marshal(e)
+		if err != nil {
+			return nil, err
+		}
+		out[j] = served{body: b, usage: shares[j]}
+	}
+	return out, nil
+}
+
+// apportion splits a batched call's usage among its prompts so the shares add
+// up exactly: completion tokens by each prompt's token count when logprobs
+// list the tokens, else by text length; prompt tokens by prompt length.
+func apportion(total usage, groups [][]map[string]json.RawMessage, prompts []json.RawMessage) []usage {
+	pw := make([]int, len(groups))
+	cw := make([]int, len(groups))
+	for j, g := range groups {
+		pw[j] = len(prompts[j])
+		for _, ch := range g {
+			var c struct {
+				Text     string `json:"text"`
+				Logprobs *struct {
+					Tokens []string `json:"tokens"`
+				} `json:"logprobs"`
+			}
+			_ = json.Unmarshal(mustMarshal(ch), &c)
+			if c.Logprobs != nil && len(c.Logprobs.Tokens) > 0 {
+				cw[j] += len(c.Logprobs.Tokens)
+			} else {
+				cw[j] += len(c.Text)
+			}
+		}
+	}
+	ps := splitInt(total.PromptTokens, pw)
+	cs := splitInt(total.CompletionTokens, cw)
+	out := make([]usage, len(groups))
+	for j := range out {
+		out[j] = usage{PromptTokens: ps[j], CompletionTokens: cs[j], TotalTokens: ps[j] + cs[j]}
+	}
+	return out
+}
+
+func mustMarshal(v any) []byte {
+	b, _ := json.Marshal(v)
+	return b
+}
+
+// splitInt divides total in proportion to weights by the largest-remainder
+// method, so the parts sum to total exactly.
+func splitInt(total int, weights []int) []int {
+	out := make([]int, len(weights))
+	sum := 0
+	for _, w := range weights {
+		sum += w
+	}
+	if sum == 0 {
+		for i := range weights {
+			weights[i] = 1
+		}
+		sum = len(weights)
+	}
+	type rem struct{ i, r int }
+	rems := make([]rem, len(weights))
+	given := 0
+	for i, w := range weights {
+		out[i] = total * w / sum
+		given += out[i]
+		rems[i] = rem{i, total * w % sum}
+	}
+	for left := total - given; left > 0; left-- {
+		best := 0
+		for k := range rems {
+			if rems[k].r > rems[best].r {
+				best = k
+			}
+		}
+		out[rems[best].i]++
+		rems[best].r = -1
+	}
+	return out
+}

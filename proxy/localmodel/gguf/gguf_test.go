@@ -1,0 +1,370 @@
+package gguf
+
+import (
+	"bytes"
+	"encoding/binary"
+	"errors"
+	"math"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"testing"
+)
+
+// modelPath finds the real model file: env STINT_MODEL, else
+// ../shared/models/stories260K.gguf beside the directory holding go.mod. It
+// fails (never skips) when the file is missing, so CI notices breakage.
+func modelPath(tb testing.TB) string {
+	tb.Helper()
+	if p := os.Getenv("STINT_MODEL"); p != "" {
+		if _, err := os.Stat(p); err != nil {
+			tb.Fatalf("STINT_MODEL=%q: %v", p, err)
+		}
+		return p
+	}
+	wd, err := os.Getwd()
+	if err != nil {
+		tb.Fatal(err)
+	}
+	for dir := wd; ; dir = filepath.Dir(dir) {
+		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
+			p := filepath.Join(dir, "..", "shared", "models", "stories260K.gguf")
+			if _, err := os.Stat(p); err != nil {
+				tb.Fatalf("model file not found: STINT_MODEL is unset and %s: %v", p, err)
+			}
+			return p
+		}
+		if filepath.Dir(dir) == dir {
+			tb.Fatalf("model file not found: STINT_MODEL is unset and no go.mod above %s", wd)
+		}
+	}
+}
+
+// smallFile builds a small valid GGUF file covering every metadata type.
+func smallFile(tb testing.TB) []byte {
+	tb.Helper()
+	meta := []KeyValue{
+		{"general.architecture", Value{Type: TypeString, V: "llama"}},
+		{"u8", Value{Type: TypeUint8, V: uint8(7)}},
+		{"i8", Value{Type: TypeInt8, V: int8(-7)}},
+		{"u16", Value{Type: TypeUint16, V: uint16(700)}},
+		{"i16", Value{Type: TypeInt16, V: int16(-700)}},
+		{"u32", Value{Type: TypeUint32, V: uint32(70000)}},
+		{"i32", Value{Type: TypeInt32, V: int32(-70000)}},
+		{"f32", Value{Type: TypeFloat32, V: float32(1.5)}},
+		{"b", Value{Type: TypeBool, V: true}},
+		{"u64", Value{Type: TypeUint64, V: uint64(1 << 40)}},
+		{"i64", Value{Type: TypeInt64, V: int64(-1 << 40)}},
+		{"f64", Value{Type: TypeFloat64, V: 2.25}},
+		{"strs", Value{Type: TypeArray, Elem: TypeString, V: []string{"a", "bc", ""}}},
+		{"scores", Value{Type: TypeArray, Elem: TypeFloat32, V: []float32{0, -1, -2}}},
+		{"types", Value{Type: TypeArray, Elem: TypeInt32, V: []int32{1, 2, 3}}},
+	}
+	b, err := Encode(meta, []F32Tensor{
+		{Name: "a", Dims: []uint64{3, 2}, Data: []float32{1, 2, 3, 4, 5, 6}},
+		{Name: "b", Dims: []uint64{1}, Data: []float32{-1}},
+	})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return b
+}
+
+func TestParseSmallFile(t *testing.T) {
+	f, err := Parse(smallFile(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got, want := len(f.Keys), 15; got != want {
+		t.Errorf("keys: got %d, want %d", got, want)
+	}
+	if s, err := f.String("general.architecture"); err != nil || s != "llama" {
+		t.Errorf("architecture: got %q, %v; want llama", s, err)
+	}
+	for _, tc := range []struct {
+		key  string
+		want uint64
+	}{{"u8", 7}, {"u16", 700}, {"u32", 70000}, {"u64", 1 << 40}} {
+		if got, err := f.Uint(tc.key); err != nil || got != tc.want {
+			t.Errorf("Uint(%q): got %d, %v; want %d", tc.key, got, err, tc.want)
+		}
+	}
+	if _, err := f.Uint("i8"); !errors.Is(err, ErrWrongType) {
+		t.Errorf("Uint of negative: got %v, want ErrWrongType", err)
+	}
+	if _, err := f.String("u8"); !errors.Is(err, ErrWrongType) {
+		t.Errorf("String of uint8: got %v, want ErrWrongType", err)
+	}
+	if _, err := f.Value("missing"); !errors.Is(err, ErrNotFound) {
+		t.Errorf("missing key: got %v, want ErrNotFound", err)
+	}
+	if got, err := f.Float("f64"); err != nil || got != 2.25 {
+		t.Errorf("Float(f64): got %v, %v", got, err)
+	}
+	v, _ := f.Value("strs")
+	if s, ok := v.V.([]string); !ok || len(s) != 3 || s[1] != "bc" {
+		t.Errorf("strs: got %#v", v.V)
+	}
+	a, err := f.Float32s("a")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if want := []float32{1, 2, 3, 4, 5, 6}; !equalF32(a, want) {
+		t.Errorf("tensor a: got %v, want %v", a, want)
+	}
+	if ti, _ := f.Tensor("b"); ti.Offset%DefaultAlignment != 0 || ti.Offset == 0 {
+		t.Errorf("tensor b offset %d not aligned", ti.Offset)
+	}
+	if _, err := f.Float32s("zz"); !errors.Is(err, ErrNotFound) {
+		t.Errorf("missing tensor: got %v", err)
+	}
+}
+
+func equalF32(a, b []float32) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if math.Float32bits(a[i]) != math.Float32bits(b[i]) {
+			return false
+		}
+	}
+	return true
+}
+
+// TestRealModelHeader checks the facts recorded in MODEL-SOURCE.md ("Format
+// (checked by parsing the header)"): v3, 19 keys, 48 F32 tensors, data at 14176.
+func TestRealModelHeader(t *testing.T) {
+	f, err := Open(modelPath(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if f.Version != 3 || len(f.Keys) != 19 || len(f.Tensors) != 48 || f.DataOffset != 14176 {
+		t.Errorf("got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176",
+			f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
+	}
+	for _, ti := range f.Tensors {
+		if ti.Type != TensorF32 {
+			t.Errorf("tensor %s: type %v, want F32", ti.Name, ti.Type)
+		}
+	}
+	ti, err := f.Tensor("blk.0.ffn_gate.weight")
+	if err != nil || len(ti.Dims) != 2 || ti.Dims[0] != 64 || ti.Dims[1] != 172 {
+		t.Errorf("ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+	}
+}
+
+func TestParseErrors(t *testing.T) {
+	good := smallFile(t)
+	patch := func(off int, v any) []byte {
+		b := bytes.Clone(good)
+		var w bytes.Buffer
+		_ = binary.Write(&w, binary.LittleEndian, v)
+		copy(b[off:], w.Bytes())
+		return b
+	}
+	f, err := Parse(good)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Offset of tensor "a"'s type field: the directory ends right before
+	// the aligned data start; find it by re-encoding a file without tensors.
+	dirStart := len(mustEncodeMeta(t))
+	// name "a": 8+1 bytes, ndims 4, dims 16 -> type at +29, offset at +33.
+	typeOff := dirStart + 8 + 1 + 4 + 16
+	offsetOff := typeOff + 4
+	tests := []struct {
+		name string
+		in   []byte
+		want error
+	}{
+		{"empty", nil, ErrTruncated},
+		{"wrong magic", append([]byte("GGML"), good[4:]...), ErrBadMagic},
+		{"version 1", patch(4, uint32(1)), ErrUnsupportedVersion},
+		{"version 4", patch(4, uint32(4)), ErrUnsupportedVersion},
+		{"huge tensor count", patch(8, uint64(1<<60)), ErrTruncated},
+		{"huge kv count", patch(16, uint64(1<<60)), ErrTruncated},
+		{"tensor type Q4_0", patch(typeOff, uint32(2)), ErrUnsupportedType},
+		{"tensor beyond file", patch(offsetOff, uint64(1<<20)), ErrOutOfBounds},
+		{"unaligned tensor", patch(offsetOff, uint64(4)), ErrOutOfBounds},
+		{"cut data", good[:len(good)-40], ErrOutOfBounds},
+	}
+	_ = f
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			_, err := Parse(tc.in)
+			if !errors.Is(err, tc.want) {
+				t.Errorf("got %v, want %v", err, tc.want)
+			}
+		})
+	}
+}
+
+func mustEncodeMeta(tb testing.TB) []byte {
+	tb.Helper()
+	f, err := Parse(smallFile(tb))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	var meta []KeyValue
+	for _, k := range f.Keys {
+		v, _ := f.Value(k)
+		meta = append(meta, KeyValue{k, v})
+	}
+	b, err := Encode(meta, nil)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	// Encode pads to the alignment; find the unpadded end by re-parsing:
+	// with no tensors the directory is empty, so the header ends where the
+	// reader stopped. Recompute it from the last value instead of padding.
+	r := &reader{b: b}
+	_, _ = r.bytes(24)
+	for range f.Keys {
+		_, _ = r.str()
+		t, _ := r.u32()
+		_, _ = r.value(ValueType(t), 0)
+	}
+	return b[:r.off]
+}
+
+// TestTruncatedEveryOffset cuts the small file at every offset: each prefix
+// must give an error, never a panic.
+func TestTruncatedEveryOffset(t *testing.T) {
+	good := smallFile(t)
+	for n := 0; n < len(good); n++ {
+		if _, err := Parse(good[:n]); err == nil {
+			t.Fatalf("prefix of %d/%d bytes parsed without error", n, len(good))
+		}
+	}
+}
+
+// TestTruncatedRealModel cuts the real file inside its header and directory
+// at every offset, and at a sample of offsets in the data section.
+func TestTruncatedRealModel(t *testing.T) {
+	b, err := os.ReadFile(modelPath(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for n := 0; n < 14176+64; n++ {
+		if _, err := Parse(b[:n]); err == nil {
+			t.Fatalf("prefix of %d bytes parsed without error", n)
+		}
+	}
+	rng := rand.New(rand.NewPCG(1, 2))
+	for range 200 {
+		n := rng.IntN(len(b))
+		if _, err := Parse(b[:n]); err == nil {
+			t.Fatalf("prefix of %d bytes parsed without error", n)
+		}
+	}
+}
+
+func TestRandomBytes(t *testing.T) {
+	rng := rand.New(rand.NewPCG(3, 4))
+	good := smallFile(t)
+	for i := range 2000 {
+		var b []byte
+		if i%2 == 0 {
+			b = make([]byte, rng.IntN(256))
+			for j := range b {
+				b[j] = byte(rng.Uint32())
+			}
+			if i%4 == 0 && len(b) >= 8 {
+				copy(b, "GGUF\x03\x00\x00\x00")
+			}
+		} else { // flip a few bytes of a valid file
+			b = bytes.Clone(good)
+			for range 1 + rng.IntN(4) {
+				b[rng.IntN(len(b))] = byte(rng.Uint32())
+			}
+		}
+		parseAndRead(b)
+	}
+}
+
+// parseAndRead parses b and, when that succeeds, reads every tensor; it
+// must never panic.
+func parseAndRead(b []byte) {
+	f, err := Parse(b)
+	if err != nil {
+		return
+	}
+	for _, ti := range f.Tensors {
+		_, _ = f.Float32s(ti.Name)
+	}
+}
+
+func FuzzParse(f *testing.F) {
+	good := smallFile(f)
+	f.Add(good)
+	f.Add(good[:40])
+	f.Add([]byte("GGUF"))
+	f.Add([]byte{})
+	f.Add(q8File(f))
+	f.Fuzz(func(t *testing.T, b []byte) {
+		parseAndRead(b)
+	})
+}
+
+// q8File builds by hand a file with one Q8_0 tensor of 32 weights (scale
+// 0.5 as f16 0x3800) and one F16 tensor of 4 values.
+func q8File(tb testing.TB) []byte {
+	tb.Helper()
+	var b bytes.Buffer
+	w := func(v any) { _ = binary.Write(&b, binary.LittleEndian, v) }
+	b.WriteString("GGUF")
+	w(uint32(3))
+	w(uint64(2)) // tensors
+	w(uint64(0)) // metadata
+	w(uint64(1))
+	b.WriteString("q")
+	w(uint32(1))
+	w(uint64(32))
+	w(uint32(TensorQ8_0))
+	w(uint64(0))
+	w(uint64(1))
+	b.WriteString("h")
+	w(uint32(1))
+	w(uint64(5))
+	w(uint32(TensorF16))
+	w(uint64(64))
+	for b.Len()%32 != 0 {
+		b.WriteByte(0)
+	}
+	w(uint16(0x3800)) // 0.5
+	for i := range 32 {
+		w(int8(i - 16))
+	}
+	for b.Len()%32 != 0 {
+		b.WriteByte(0)
+	}
+	// IEEE 754 binary16 encodings (from memory): 1.0, -2.0, +Inf,
+	// smallest subnormal 2^-24, 65504 (largest finite).
+	w([]uint16{0x3C00, 0xC000, 0x7C00, 0x0001, 0x7BFF})
+	return b.Bytes()
+}
+
+func TestDequantize(t *testing.T) {
+	f, err := Parse(q8File(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	q, err := f.Float32s("q")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i, got := range q {
+		if want := 0.5 * float32(i-16); got != want {
+			t.Errorf("q[%d]: got %v, want %v", i, got, want)
+		}
+	}
+	h, err := f.Float32s("h")
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := []float32{1, -2, float32(math.Inf(1)), float32(math.Ldexp(1, -24)), 65504}
+	if !equalF32(h, want) {
+		t.Errorf("f16: got %v, want %v", h, want)
+	}
+}

@@ -1,0 +1,669 @@
+package localmodel
+
+import (
+	"context"
+	"crypto/rand"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"net/http"
+	"runtime"
+	"strings"
+	"sync/atomic"
+	"time"
+)
+
+// HandlerOptions configures NewHandler. The zero value of every field
+// selects its default.
+type HandlerOptions struct {
+	// Name is the model id reported in responses and by GET /v1/models;
+	// "" means "stories260K". Requests may name any model: the field is
+	// not checked.
+	Name string
+	// Workers bounds how many requests compute at once; others wait for a
+	// slot (honouring their context). 0 means runtime.GOMAXPROCS(0).
+	Workers int
+	// PrefixCacheTokens bounds the positions kept by the prefix cache; 0
+	// means 65536, -1 turns the cache off.
+	PrefixCacheTokens int
+	// MaxBodyBytes bounds a request body (413 beyond it); 0 means 4 MiB.
+	MaxBodyBytes int64
+	// Now returns the time for "created"; nil means time.Now.
+	Now func() time.Time
+}
+
+// DefaultName is the model id reported when HandlerOptions.Name is empty.
+const DefaultName = "stories260K"
+
+// defaultCompletionTokens is max_tokens for completions when absent (the
+// wire format's customary default).
+const defaultCompletionTokens = 16
+
+// maxChoices bounds prompts × n in one request.
+const maxChoices = 128
+
+// handler serves the completions wire format for one model.
+type handler struct {
+	m       *Model
+	eng     *engine
+	name    string
+	maxBody int64
+	now     func() time.Time
+	slots   chan struct{}
+
+	// waitHook, when set (tests only), runs when a request finds every
+	// worker busy and starts to wait.
+	waitHook func()
+	// active counts requests holding a worker slot; maxActive is its peak.
+	active, maxActive atomic.Int64
+}
+
+// NewHandler returns an http.Handler that serves m on the completions wire
+// format. It routes these exact paths itself:
+//
+//   - POST /v1/completions: prompt as a string, array of strings, array of
+//     token ids or array of token-id arrays; max_tokens (default 16; 0 with
+//     echo scores a prompt), temperature (default 1; 0 is greedy), top_p,
+//     seed, stop (string or array), n, logprobs (0 … vocabulary size), echo
+//     (prompt text first, with prompt-token logprobs, the first null),
+//     stream and stream_options.include_usage.
+//   - POST /v1/chat/completions: messages rendered with the chat template
+//     below; max_tokens or max_completion_tokens (default: the rest of the
+//     context), temperature, top_p, seed, stop, n, logprobs, top_logprobs,
+//     stream, stream_options.include_usage.
+//   - GET /v1/models.
+//
+// BOS precedes every prompt; prompt_tokens in usage counts it. Generation
+// ends at EOS (or BOS, which this model uses between stories), a stop
+// string, max_tokens or the context length. Log-probabilities are those of
+// the model's distribution (temperature 1), whatever the sampling settings.
+//
+// Chat template: each message becomes "Role: content\n" with Role one of
+// System, User or Assistant (the role capitalized), and the prompt ends with
+// "Assistant:"; one leading space of the reply is dropped.
+//
+// Unknown request fields are ignored; malformed ones get 400 with the body
+// {"error":{"message","type","code"}}. Streams are server-sent events,
+// "data: {json}\n\n" each flushed, ending with "data: [DONE]\n\n". A request
+// whose context ends stops generating at the next token.
+func NewHandler(m *Model, opts HandlerOptions) http.Handler {
+	h := &handler{m: m, name: opts.Name, maxBody: opts.MaxBodyBytes, now: opts.Now}
+	if h.name == "" {
+		h.name = DefaultName
+	}
+	if h.maxBody == 0 {
+		h.maxBody = 4 << 20
+	}
+	if h.now == nil {
+		h.now = time.Now
+	}
+	workers := opts.Workers
+	if workers <= 0 {
+		workers = runtime.GOMAXPROCS(0)
+	}
+	h.slots = make(chan struct{}, workers)
+	h.eng = &engine{m: m}
+	switch {
+	case opts.PrefixCacheTokens == 0:
+		h.eng.cache = newPrefixCache(1 << 16)
+	case opts.PrefixCacheTokens > 0:
+		h.eng.cache = newPrefixCache(opts.PrefixCacheTokens)
+	}
+	return h
+}
+
+func (h *handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	var method string
+	var serve func(http.ResponseWriter, *http.Request)
+	switch r.URL.Path {
+	case "/v1/completions":
+		method, serve = http.MethodPost, h.serveCompletions
+	case "/v1/chat/completions":
+		method, serve = http.MethodPost, h.serveChat
+	case "/v1/models":
+		method, serve = http.MethodGet, h.serveModels
+	default:
+		writeError(w, http.StatusNotFound, "invalid_request_error", "not_found", fmt.Sprintf("no route for %s", r.URL.Path))
+		return
+	}
+	if r.Method != method {
+		w.Header().Set("Allow", method)
+		writeError(w, http.StatusMethodNotAllowed, "invalid_request_error", "method_not_allowed",
+			fmt.Sprintf("%s %s is not allowed; use %s", r.Method, r.URL.Path, method))
+		return
+	}
+	serve(w, r)
+}
+
+func (h *handler) serveModels(w http.ResponseWriter, r *http.Request) {
+	writeJSON(w, http.StatusOK, modelList{Object: "list", Data: []modelInfo{{ID: h.name, Object: "model", Created: 0, OwnedBy: "stint"}}})
+}
+
+// decode reads the JSON body into v, mapping failures to request errors.
+func (h *handler) decode(w http.ResponseWriter, r *http.Request, v any) bool {
+	body := http.MaxBytesReader(w, r.Body, h.maxBody)
+	if err := json.NewDecoder(body).Decode(v); err != nil {
+		var tooBig *http.MaxBytesError
+		if errors.As(err, &tooBig) {
+			writeError(w, http.StatusRequestEntityTooLarge, "invalid_request_error", "body_too_large",
+				fmt.Sprintf("request body exceeds %d bytes", h.maxBody))
+			return false
+		}
+		writeError(w, http.StatusBadRequest, "invalid_request_error", "invalid_json", "cannot decode request body: "+err.Error())
+		return false
+	}
+	return true
+}
+
+// acquire waits for a worker slot; the returned func gives it back.
+func (h *handler) acquire(ctx context.Context) (func(), error) {
+	select {
+	case h.slots <- struct{}{}:
+	default:
+		if h.waitHook != nil {
+			h.waitHook()
+		}
+		select {
+		case h.slots <- struct{}{}:
+		case <-ctx.Done():
+			return nil, ctx.Err()
+		}
+	}
+	n := h.active.Add(1)
+	for {
+		old := h.maxActive.Load()
+		if n <= old || h.maxActive.CompareAndSwap(old, n) {
+			break
+		}
+	}
+	return func() { h.active.Add(-1); <-h.slots }, nil
+}
+
+// common holds the validated settings shared by both endpoints.
+type common struct {
+	n      int
+	stream bool
+	usage  bool
+	gp     genParams
+}
+
+func (h *handler) validate(maxTokens *int, defMax int, temperature, topP *float64, n *int, stopRaw json.RawMessage, seed *int64) (common, error) {
+	c := common{n: 1, gp: genParams{maxTokens: defMax, temperature: 1, topP: 1, logprobs: -1}}
+	if maxTokens != nil {
+		if *maxTokens < 0 {
+			return c, badRequest("max_tokens must be >= 0, got %d", *maxTokens)
+		}
+		c.gp.maxTokens = *maxTokens
+	}
+	if temperature != nil {
+		if *temperature < 0 || *temperature > 2 {
+			return c, badRequest("temperature must be in [0, 2], got %v", *temperature)
+		}
+		c.gp.temperature = *temperature
+	}
+	if topP != nil {
+		if *topP <= 0 || *topP > 1 {
+			return c, badRequest("top_p must be in (0, 1], got %v", *topP)
+		}
+		c.gp.topP = *topP
+	}
+	if n != nil {
+		if *n < 1 || *n > maxChoices {
+			return c, badRequest("n must be in [1, %d], got %d", maxChoices, *n)
+		}
+		c.n = *n
+	}
+	stop, err := parseStop(stopRaw)
+	if err != nil {
+		return c, err
+	}
+	c.gp.stop = stop
+	if seed != nil {
+		s := uint64(*seed)
+		c.gp.seed = &s
+	}
+	return c, nil
+}
+
+// withBOS tokenizes prompts and checks them against the context length.
+func (h *handler) withBOS(texts []string, ids [][]int) ([][]int, error) {
+	bos := h.m.tok.BOS()
+	var out [][]int
+	for _, t := range texts {
+		out = append(out, append([]int{bos}, h.m.tok.Encode(t)...))
+	}
+	for i, p := range ids {
+		for _, id := range p {
+			if id < 0 || id >= h.m.cfg.VocabSize {
+				return nil, badRequest("prompt %d has token id %d outside [0, %d)", i, id, h.m.cfg.VocabSize)
+			}
+		}
+		out = append(out, append([]int{bos}, p...))
+	}
+	for i, p := range out {
+		if len(p) > h.m.cfg.ContextLength {
+			return nil, fmt.Errorf("%w: prompt %d has %d tokens with BOS; the context holds %d",
+				ErrContextFull, i, len(p), h.m.cfg.ContextLength)
+		}
+	}
+	return out, nil
+}
+
+func (h *handler) fail(w http.ResponseWriter, err error) {
+	switch {
+	case errors.Is(err, errBadRequest):
+		writeError(w, http.StatusBadRequest, "invalid_request_error", "invalid_value", err.Error())
+	case errors.Is(err, ErrContextFull):
+		writeError(w, http.StatusBadRequest, "invalid_request_error", "context_length_exceeded", err.Error())
+	case errors.Is(err, context.Canceled), errors.Is(err, context.DeadlineExceeded):
+		writeError(w, http.StatusServiceUnavailable, "server_error", "cancelled", "request ended before it was served: "+err.Error())
+	default:
+		writeError(w, http.StatusInternalServerError, "server_error", "internal_error", err.Error())
+	}
+}
+
+func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
+	var req completionRequest
+	if !h.decode(w, r, &req) {
+		return
+	}
+	c, err := h.validate(req.MaxTokens, defaultCompletionTokens, req.Temperature, req.TopP, req.N, req.Stop, req.Seed)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	if req.Logprobs != nil {
+		if *req.Logprobs < 0 || *req.Logprobs > h.m.cfg.VocabSize {
+			h.fail(w, badRequest("logprobs must be in [0, %d], got %d", h.m.cfg.VocabSize, *req.Logprobs))
+			return
+		}
+		c.gp.logprobs = *req.Logprobs
+		c.gp.promptLogprobs = req.Echo
+	}
+	texts, ids, err := parsePrompt(req.Prompt)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	prompts, err := h.withBOS(texts, ids)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	if len(prompts)*c.n > maxChoices {
+		h.fail(w, badRequest("%d prompts × n=%d exceeds %d choices", len(prompts), c.n, maxChoices))
+		return
+	}
+	c.stream = req.Stream
+	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
+	ctx, cancel := context.WithCancel(r.Context())
+	defer cancel()
+	release, err := h.acquire(ctx)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	defer release()
+
+	id, created := "cmpl-"+newID(), h.now().Unix()
+	resp := completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name}
+	var sse *sseWriter
+	var emitPrompt func(*promptState, int)
+	var emit func(*choice, delta)
+	if c.stream {
+		sse = newSSE(w, cancel)
+		emitPrompt = func(ps *promptState, pi int) {
+			if !req.Echo {
+				return
+			}
+			text, starts := promptText(h.m, ps.tokens[1:])
+			for j := 0; j < c.n; j++ {
+				ch := completionChoice{Text: text, Index: pi*c.n + j}
+				if c.gp.logprobs >= 0 {
+					ch.Logprobs = h.completionLogprobs(ps.lps, starts, 0)
+				}
+				sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{ch}})
+			}
+		}
+		bases := make([]int, len(prompts)) // echoed prompt bytes before each reply
+		if req.Echo {
+			for i, p := range prompts {
+				text, _ := promptText(h.m, p[1:])
+				bases[i] = len(text)
+			}
+		}
+		emit = func(ch *choice, d delta) {
+			if d.text == "" && len(d.toks) == 0 && d.finish == "" {
+				return
+			}
+			base := bases[ch.prompt]
+			out := completionChoice{Text: d.text, Index: ch.index}
+			if c.gp.logprobs >= 0 {
+				out.Logprobs = h.completionLogprobs(d.toks, d.starts, base)
+			}
+			if d.finish != "" {
+				out.FinishReason = &d.finish
+			}
+			sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{out}})
+		}
+	}
+	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
+	if err != nil {
+		if sse != nil && sse.started {
+			sse.fail(err)
+			return
+		}
+		h.fail(w, err)
+		return
+	}
+	u := h.usage(states, choices)
+	if c.stream {
+		if c.usage {
+			sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{}, Usage: &u})
+		}
+		sse.done()
+		return
+	}
+	for _, ch := range choices {
+		ps := states[ch.prompt]
+		var prefix string
+		var lp *completionLogprobs
+		if req.Echo {
+			var starts []int
+			prefix, starts = promptText(h.m, ps.tokens[1:])
+			if c.gp.logprobs >= 0 {
+				lp = h.completionLogprobs(ps.lps, starts, 0)
+			}
+		}
+		if c.gp.logprobs >= 0 {
+			more := h.completionLogprobs(ch.toks, ch.starts, len(prefix))
+			if lp == nil {
+				lp = more
+			} else {
+				lp.Tokens = append(lp.Tokens, more.Tokens...)
+				lp.TokenLogprobs = append(lp.TokenLogprobs, more.TokenLogprobs...)
+				lp.TopLogprobs = append(lp.TopLogprobs, more.TopLogprobs...)
+				lp.TextOffset = append(lp.TextOffset, more.TextOffset...)
+			}
+		}
+		finish := ch.finish
+		resp.Choices = append(resp.Choices, completionChoice{Text: prefix + string(ch.text), Index: ch.index, Logprobs: lp, FinishReason: &finish})
+	}
+	resp.Usage = &u
+	writeJSON(w, http.StatusOK, resp)
+}
+
+func (h *handler) usage(states []*promptState, choices []*choice) usage {
+	var u usage
+	for _, ps := range states {
+		u.PromptTokens += len(ps.tokens)
+	}
+	for _, c := range choices {
+		u.CompletionTokens += c.ntoks
+	}
+	u.TotalTokens = u.PromptTokens + u.CompletionTokens
+	return u
+}
+
+// completionLogprobs renders tokens in the completions format, offsets
+// shifted by base.
+func (h *handler) completionLogprobs(toks []tokenLogprob, starts []int, base int) *completionLogprobs {
+	lp := &completionLogprobs{Tokens: []string{}, TokenLogprobs: []*float64{}, TopLogprobs: []map[string]float64{}, TextOffset: []int{}}
+	for i, t := range toks {
+		lp.Tokens = append(lp.Tokens, h.m.tok.Display(t.id))
+		lp.TextOffset = append(lp.TextOffset, base+starts[i])
+		if !t.valid {
+			lp.TokenLogprobs = append(lp.TokenLogprobs, nil)
+			lp.TopLogprobs = append(lp.TopLogprobs, nil)
+			continue
+		}
+		v := t.lp
+		lp.TokenLogprobs = append(lp.TokenLogprobs, &v)
+		top := make(map[string]float64, len(t.top))
+		for _, a := range t.top {
+			top[h.m.tok.Display(a.id)] = a.lp
+		}
+		lp.TopLogprobs = append(lp.TopLogprobs, top)
+	}
+	return lp
+}
+
+// chatPrompt renders messages with the documented template.
+func chatPrompt(msgs []chatMessage) (string, error) {
+	if len(msgs) == 0 {
+		return "", badRequest("messages must not be empty")
+	}
+	var b strings.Builder
+	for i, m := range msgs {
+		role := strings.ToLower(m.Role)
+		switch role {
+		case "system", "developer", "user", "assistant":
+		default:
+			return "", badRequest("messages[%d].role %q is not system, user or assistant", i, m.Role)
+		}
+		if role == "developer" {
+			role = "system"
+		}
+		content, err := parseContent(m.Content)
+		if err != nil {
+			return "", fmt.Errorf("messages[%d]: %w", i, err)
+		}
+		b.WriteString(strings.ToUpper(role[:1]) + role[1:] + ": " + content + "\n")
+	}
+	b.WriteString("Assistant:")
+	return b.String(), nil
+}
+
+func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
+	var req chatRequest
+	if !h.decode(w, r, &req) {
+		return
+	}
+	maxTokens := req.MaxCompletionTokens
+	if maxTokens == nil {
+		maxTokens = req.MaxTokens
+	}
+	c, err := h.validate(maxTokens, h.m.cfg.ContextLength, req.Temperature, req.TopP, req.N, req.Stop, req.Seed)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	c.gp.stripLead = true
+	if req.TopLogprobs != nil {
+		if !req.Logprobs {
+			h.fail(w, badRequest("top_logprobs requires logprobs: true"))
+			return
+		}
+		if *req.TopLogprobs < 0 || *req.TopLogprobs > h.m.cfg.VocabSize {
+			h.fail(w, badRequest("top_logprobs must be in [0, %d], got %d", h.m.cfg.VocabSize, *req.TopLogprobs))
+			return
+		}
+	}
+	if req.Logprobs {
+		c.gp.logprobs = 0
+		if req.TopLogprobs != nil {
+			c.gp.logprobs = *req.TopLogprobs
+		}
+	}
+	text, err := chatPrompt(req.Messages)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	prompts, err := h.withBOS([]string{text}, nil)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	c.stream = req.Stream
+	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
+	ctx, cancel := context.WithCancel(r.Context())
+	defer cancel()
+	release, err := h.acquire(ctx)
+	if err != nil {
+		h.fail(w, err)
+		return
+	}
+	defer release()
+
+	id, created := "chatcmpl-"+newID(), h.now().Unix()
+	chunk := func(choices []chatChoice, u *usage) chatResponse {
+		return chatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: h.name, Choices: choices, Usage: u}
+	}
+	var sse *sseWriter
+	var emitPrompt func(*promptState, int)
+	var emit func(*choice, delta)
+	if c.stream {
+		sse = newSSE(w, cancel)
+		emitPrompt = func(_ *promptState, _ int) {
+			empty := ""
+			for j := 0; j < c.n; j++ {
+				sse.send(chunk([]chatChoice{{Index: j, Delta: &chatOutMessage{Role: "assistant", Content: &empty}}}, nil))
+			}
+		}
+		emit = func(ch *choice, d delta) {
+			if d.text == "" && len(d.toks) == 0 && d.finish == "" {
+				return
+			}
+			out := chatChoice{Index: ch.index, Delta: &chatOutMessage{}}
+			if d.text != "" {
+				t := d.text
+				out.Delta.Content = &t
+			}
+			if c.gp.logprobs >= 0 {
+				out.Logprobs = h.chatLogprobs(d.toks)
+			}
+			if d.finish != "" {
+				out.FinishReason = &d.finish
+			}
+			sse.send(chunk([]chatChoice{out}, nil))
+		}
+	}
+	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
+	if err != nil {
+		if sse != nil && sse.started {
+			sse.fail(err)
+			return
+		}
+		h.fail(w, err)
+		return
+	}
+	u := h.usage(states, choices)
+	if c.stream {
+		if c.usage {
+			sse.send(chunk([]chatChoice{}, &u))
+		}
+		sse.done()
+		return
+	}
+	resp := chatResponse{ID: id, Object: "chat.completion", Created: created, Model: h.name, Usage: &u}
+	for _, ch := range choices {
+		content, finish := string(ch.text), ch.finish
+		out := chatChoice{Index: ch.index, Message: &chatOutMessage{Role: "assistant", Content: &content}, FinishReason: &finish}
+		if c.gp.logprobs >= 0 {
+			out.Logprobs = h.chatLogprobs(ch.toks)
+		}
+		resp.Choices = append(resp.Choices, out)
+	}
+	writeJSON(w, http.StatusOK, resp)
+}
+
+func (h *handler) chatLogprobs(toks []tokenLogprob) *chatLogprobs {
+	out := &chatLogprobs{Content: []chatTokenLogprob{}}
+	for _, t := range toks {
+		e := chatTokenLogprob{Token: h.m.tok.Display(t.id), Logprob: t.lp, Bytes: byteInts(h.m.tok.Bytes(t.id)), TopLogprobs: []chatTopLogprob{}}
+		for _, a := range t.top {
+			e.TopLogprobs = append(e.TopLogprobs, chatTopLogprob{Token: h.m.tok.Display(a.id), Logprob: a.lp, Bytes: byteInts(h.m.tok.Bytes(a.id))})
+		}
+		out.Content = append(out.Content, e)
+	}
+	return out
+}
+
+func byteInts(b []byte) []int {
+	out := make([]int, len(b))
+	for i, x := range b {
+		out[i] = int(x)
+	}
+	return out
+}
+
+func newID() string {
+	var b [12]byte
+	_, _ = rand.Read(b[:])
+	return hex.EncodeToString(b[:])
+}
+
+func writeJSON(w http.ResponseWriter, status int, v any) {
+	b, err := json.Marshal(v)
+	if err != nil {
+		status = http.StatusInternalServerError
+		b, _ = json.Marshal(errorBody{Error: errorDetail{Message: err.Error(), Type: "server_error", Code: "internal_error"}})
+	}
+	w.Header().Set("Content-Type", "application/json")
+	w.WriteHeader(status)
+	_, _ = w.Write(append(b, '\n'))
+}
+
+func writeError(w http.ResponseWriter, status int, typ, code, msg string) {
+	writeJSON(w, status, errorBody{Error: errorDetail{Message: msg, Type: typ, Code: code}})
+}
+
+// sseWriter writes server-sent events, flushing each one. A failed write
+// cancels the request so generation stops.
+type sseWriter struct {
+	w       http.ResponseWriter
+	flusher http.Flusher
+	cancel  context.CancelFunc
+	started bool
+	failed  bool
+}
+
+func newSSE(w http.ResponseWriter, cancel context.CancelFunc) *sseWriter {
+	f, _ := w.(http.Flusher)
+	return &sseWriter{w: w, flusher: f, cancel: cancel}
+}
+
+func (s *sseWriter) start() {
+	if s.started {
+		return
+	}
+	s.started = true
+	h := s.w.Header()
+	h.Set("Content-Type", "text/event-stream")
+	h.Set("Cache-Control", "no-cache")
+	s.w.WriteHeader(http.StatusOK)
+}
+
+func (s *sseWriter) write(data []byte) {
+	if s.failed {
+		return
+	}
+	s.start()
+	if _, err := s.w.Write(data); err != nil {
+		s.failed = true
+		s.cancel()
+		return
+	}
+	if s.flusher != nil {
+		s.flusher.Flush()
+	}
+}
+
+func (s *sseWriter) send(v any) {
+	b, err := json.Marshal(v)
+	if err != nil {
+		s.fail(err)
+		return
+	}
+	s.write([]byte("data: " + string(b) + "\n\n"))
+}
+
+// fail reports an error after the stream has started (no [DONE] follows).
+func (s *sseWriter) fail(err error) {
+	b, _ := json.Marshal(errorBody{Error: errorDetail{Message: err.Error(), Type: "server_error", Code: "stream_error"}})
+	s.write([]byte("data: " + string(b) + "\n\n"))
+}
+
+func (s *sseWriter) done() { s.write([]byte("data: [DONE]\n\n")) }

@@ -1,0 +1,527 @@
+package localmodel
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"io"
+	"math"
+	"net/http"
+	"net/http/httptest"
+	"strings"
+	"sync"
+	"testing"
+
+	openai "github.com/sashabaranov/go-openai"
+)
+
+func TestArrayPromptsAndN(t *testing.T) {
+	m := loadModel(t)
+	srv, _ := testServer(t, m, HandlerOptions{})
+	prompts := []string{"Lily saw", "Tim had a big"}
+	r := complete(t, srv, map[string]any{"prompt": prompts, "n": 2, "temperature": 0, "max_tokens": 6})
+	if len(r.Choices) != 4 {
+		t.Fatalf("got %d choices, want 4", len(r.Choices))
+	}
+	wantPrompt := 0
+	for pi, p := range prompts {
+		// Greedy output is the same whatever batch it ran in.
+		single := complete(t, srv, map[string]any{"prompt": p, "temperature": 0, "max_tokens": 6})
+		for j := 0; j < 2; j++ {
+			c := r.Choices[pi*2+j]
+			if c.Index != pi*2+j || c.Text != single.Choices[0].Text {
+				t.Errorf("choice %d: index %d text %q; want index %d text %q", pi*2+j, c.Index, c.Text, pi*2+j, single.Choices[0].Text)
+			}
+		}
+		wantPrompt += 1 + len(m.tok.Encode(p))
+	}
+	if r.Usage.PromptTokens != wantPrompt || r.Usage.CompletionTokens != 24 || r.Usage.TotalTokens != wantPrompt+24 {
+		t.Errorf("usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	}
+	if r.Object != "text_completion" || r.Model != DefaultName || !strings.HasPrefix(r.ID, "cmpl-") {
+		t.Errorf("envelope: %+v", r)
+	}
+}
+
+func TestTokenPrompt(t *testing.T) {
+	m := loadModel(t)
+	srv, _ := testServer(t, m, HandlerOptions{})
+	text := complete(t, srv, map[string]any{"prompt": "Once upon", "temperature": 0, "max_tokens": 4})
+	ids := complete(t, srv, map[string]any{"prompt": m.tok.Encode("Once upon"), "temperature": 0, "max_tokens": 4})
+	nested := complete(t, srv, map[string]any{"prompt": [][]int{m.tok.Encode("Once upon")}, "temperature": 0, "max_tokens": 4})
+	if ids.Choices[0].Text != text.Choices[0].Text || nested.Choices[0].Text != text.Choices[0].Text {
+		t.Errorf("token prompt gave %q / %q, text prompt %q", ids.Choices[0].Text, nested.Choices[0].Text, text.Choices[0].Text)
+	}
+}
+
+// TestEchoLogprobs: echo puts the prompt first with its token logprobs (the
+// first null); each equals the log-softmax of Forward's logits.
+func TestEchoLogprobs(t *testing.T) {
+	m := loadModel(t)
+	srv, _ := testServer(t, m, HandlerOptions{})
+	prompt := "Once upon a time"
+	r := complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 2, "max_tokens": 3, "temperature": 0})
+	c := r.Choices[0]
+	if !strings.HasPrefix(c.Text, prompt) || len(c.Text) <= len(prompt) {
+		t.Fatalf("text %q does not start with the prompt", c.Text)
+	}
+	ptoks := m.tok.Encode(prompt)
+	lp := c.Logprobs
+	if len(lp.Tokens) != len(ptoks)+3 {
+		t.Fatalf("got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
+	}
+	if lp.TokenLogprobs[0] != nil || lp.TopLogprobs[0] != nil || lp.TextOffset[0] != 0 {
+		t.Errorf("first prompt token: logprob %v top %v offset %d; want null, null, 0", lp.TokenLogprobs[0], lp.TopLogprobs[0], lp.TextOffset[0])
+	}
+	out, err := m.Forward(context.Background(), append([]int{1}, ptoks...))
+	if err != nil {
+		t.Fatal(err)
+	}
+	for i := 1; i < len(ptoks); i++ {
+		row := out.Logits.Row(i) // position i predicts prompt token i (BOS is position 0)
+		want := float64(row[ptoks[i]]) - logSumExp(row)
+		if got := *lp.TokenLogprobs[i]; math.Abs(got-want) > 1e-9 {
+			t.Errorf("prompt token %d: logprob %v, want %v", i, got, want)
+		}
+		if len(lp.TopLogprobs[i]) != 2 {
+			t.Errorf("prompt token %d: %d alternatives, want 2", i, len(lp.TopLogprobs[i]))
+		}
+	}
+	for i := range lp.Tokens {
+		tok, off := lp.Tokens[i], lp.TextOffset[i]
+		if i == 0 {
+			tok = strings.TrimPrefix(tok, " ")
+		}
+		if !strings.HasPrefix(c.Text[off:], tok) {
+			t.Errorf("token %d %q not at offset %d of %q", i, tok, off, c.Text)
+		}
+	}
+	// max_tokens 0 with echo scores the prompt without generating.
+	r = complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 0, "max_tokens": 0})
+	if c := r.Choices[0]; c.Text != prompt || len(c.Logprobs.Tokens) != len(ptoks) || r.Usage.CompletionTokens != 0 || *c.FinishReason != "length" {
+		t.Errorf("scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	}
+}
+
+func TestStop(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	body := map[string]any{"prompt": "", "temperature": 0, "max_tokens": 40, "stop": []string{"girl", "zebra"}, "logprobs": 0}
+	r := complete(t, srv, body)
+	c := r.Choices[0]
+	if want := "Once upon a time, there was a little "; c.Text != want || *c.FinishReason != "stop" {
+		t.Errorf("got %q (%s), want %q (stop)", c.Text, *c.FinishReason, want)
+	}
+	// Logprobs cover the tokens whose text starts before the cut (the
+	// last one, " g", straddles it).
+	lp := c.Logprobs
+	if got := strings.TrimPrefix(strings.Join(lp.Tokens, ""), " "); !strings.HasPrefix(got, c.Text) || lp.TextOffset[len(lp.TextOffset)-1] >= len(c.Text) {
+		t.Errorf("tokens %q offsets %v do not end at the cut of %q", got, lp.TextOffset, c.Text)
+	}
+	body["stream"] = true
+	events, _ := stream(t, srv.URL+"/v1/completions", body)
+	if got := joinCompletionStream(t, events); got != c.Text {
+		t.Errorf("stream text %q, want %q", got, c.Text)
+	}
+}
+
+func joinCompletionStream(tb testing.TB, events []string) string {
+	tb.Helper()
+	if len(events) == 0 || events[len(events)-1] != "[DONE]" {
+		tb.Fatalf("stream does not end with [DONE]: %q", events)
+	}
+	var b strings.Builder
+	for _, e := range events[:len(events)-1] {
+		var c completionResponse
+		if err := json.Unmarshal([]byte(e), &c); err != nil {
+			tb.Fatalf("event %q: %v", e, err)
+		}
+		for _, ch := range c.Choices {
+			b.WriteString(ch.Text)
+		}
+	}
+	return b.String()
+}
+
+func TestSeededSampling(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	texts := func(seed int, topP float64) []string {
+		r := complete(t, srv, map[string]any{"prompt": "Tim", "temperature": 1, "top_p": topP, "seed": seed, "n": 3, "max_tokens": 20})
+		var out []string
+		for _, c := range r.Choices {
+			out = append(out, c.Text)
+		}
+		return out
+	}
+	a, b, other := texts(42, 1), texts(42, 1), texts(43, 1)
+	if strings.Join(a, "|") != strings.Join(b, "|") {
+		t.Errorf("same seed gave %q and %q", a, b)
+	}
+	if strings.Join(a, "|") == strings.Join(other, "|") || a[0] == a[1] {
+		t.Errorf("seeds 42 and 43 (or two choices) gave the same samples: %q %q", a, other)
+	}
+	// A nucleus this small holds only the top token: sampling is greedy.
+	greedy := complete(t, srv, map[string]any{"prompt": "Tim", "temperature": 0, "max_tokens": 20}).Choices[0].Text
+	for _, s := range texts(7, 1e-9) {
+		if s != greedy {
+			t.Errorf("top_p 1e-9 gave %q, want greedy %q", s, greedy)
+		}
+	}
+}
+
+func TestStreamMatchesNonStream(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	body := map[string]any{"prompt": []string{"A little dog", "The sun"}, "n": 2, "temperature": 0, "max_tokens": 12, "logprobs": 1, "echo": true}
+	plain := complete(t, srv, body)
+	body["stream"] = true
+	body["stream_options"] = map[string]any{"include_usage": true}
+	events, hdr := stream(t, srv.URL+"/v1/completions", body)
+	if ct := hdr.Get("Content-Type"); ct != "text/event-stream" {
+		t.Errorf("Content-Type %q", ct)
+	}
+	texts := map[int]string{}
+	toks := map[int][]string{}
+	finish := map[int]string{}
+	var u *usage
+	for _, e := range events[:len(events)-1] {
+		var c completionResponse
+		if err := json.Unmarshal([]byte(e), &c); err != nil {
+			t.Fatal(err)
+		}
+		if c.Usage != nil {
+			if len(c.Choices) != 0 {
+				t.Errorf("usage chunk has choices")
+			}
+			u = c.Usage
+		}
+		for _, ch := range c.Choices {
+			texts[ch.Index] += ch.Text
+			toks[ch.Index] = append(toks[ch.Index], ch.Logprobs.Tokens...)
+			if ch.FinishReason != nil {
+				finish[ch.Index] = *ch.FinishReason
+			}
+		}
+	}
+	for _, c := range plain.Choices {
+		if texts[c.Index] != c.Text || strings.Join(toks[c.Index], "") != strings.Join(c.Logprobs.Tokens, "") || finish[c.Index] != *c.FinishReason {
+			t.Errorf("choice %d: stream %q %q %s, plain %q %q %s", c.Index, texts[c.Index], toks[c.Index], finish[c.Index], c.Text, c.Logprobs.Tokens, *c.FinishReason)
+		}
+	}
+	if u == nil || *u != *plain.Usage {
+		t.Errorf("stream usage %v, want %+v", u, *plain.Usage)
+	}
+}
+
+func TestChat(t *testing.T) {
+	m := loadModel(t)
+	srv, _ := testServer(t, m, HandlerOptions{Name: "tiny"})
+	body := map[string]any{
+		"messages":    []map[string]any{{"role": "system", "content": "Tell short stories."}, {"role": "user", "content": []map[string]string{{"type": "text", "text": "A story about a cat"}}}},
+		"temperature": 0, "max_tokens": 8, "logprobs": true, "top_logprobs": 3,
+	}
+	status, out, _ := post(t, srv.URL+"/v1/chat/completions", body)
+	if status != http.StatusOK {
+		t.Fatalf("status %d: %s", status, out)
+	}
+	var r chatResponse
+	if err := json.Unmarshal(out, &r); err != nil {
+		t.Fatal(err)
+	}
+	c := r.Choices[0]
+	if r.Object != "chat.completion" || r.Model != "tiny" || c.Message.Role != "assistant" || *c.FinishReason != "length" {
+		t.Errorf("envelope %s %s %+v", r.Object, r.Model, c)
+	}
+	prompt := "System: Tell short stories.\nUser: A story about a cat\nAssistant:"
+	if want := 1 + len(m.tok.Encode(prompt)); r.Usage.PromptTokens != want || r.Usage.CompletionTokens != 8 {
+		t.Errorf("usage %+v; want prompt %d (template + BOS), completion 8", *r.Usage, want)
+	}
+	var joined []byte
+	for i, e := range c.Logprobs.Content {
+		for _, b := range e.Bytes {
+			joined = append(joined, byte(b))
+		}
+		if len(e.TopLogprobs) != 3 || e.TopLogprobs[0].Token != e.Token || e.TopLogprobs[0].Logprob != e.Logprob {
+			t.Errorf("token %d %q: top %+v; want 3 with the greedy token first", i, e.Token, e.TopLogprobs)
+		}
+	}
+	if got := strings.TrimPrefix(string(joined), " "); got != *c.Message.Content {
+		t.Errorf("logprob bytes %q, content %q", got, *c.Message.Content)
+	}
+	body["stream"] = true
+	events, _ := stream(t, srv.URL+"/v1/chat/completions", body)
+	var content strings.Builder
+	var role string
+	for _, e := range events[:len(events)-1] {
+		var ch chatResponse
+		if err := json.Unmarshal([]byte(e), &ch); err != nil {
+			t.Fatal(err)
+		}
+		if ch.Object != "chat.completion.chunk" {
+			t.Errorf("object %q", ch.Object)
+		}
+		for _, x := range ch.Choices {
+			if x.Delta.Role != "" {
+				role = x.Delta.Role
+			}
+			if x.Delta.Content != nil {
+				content.WriteString(*x.Delta.Content)
+			}
+		}
+	}
+	if role != "assistant" || content.String() != *c.Message.Content {
+		t.Errorf("stream role %q content %q; want assistant %q", role, content.String(), *c.Message.Content)
+	}
+}
+
+func TestBadRequests(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{MaxBodyBytes: 1 << 10})
+	long := strings.Repeat("a ", 3000)
+	tests := []struct {
+		name, path, body string
+		status           int
+	}{
+		{"invalid json", "/v1/completions", `{"prompt":`, 400},
+		{"prompt wrong type", "/v1/completions", `{"prompt": 5}`, 400},
+		{"prompt empty array", "/v1/completions", `{"prompt": []}`, 400},
+		{"max_tokens wrong type", "/v1/completions", `{"prompt": "a", "max_tokens": "x"}`, 400},
+		{"negative max_tokens", "/v1/completions", `{"prompt": "a", "max_tokens": -1}`, 400},
+		{"logprobs beyond vocab", "/v1/completions", `{"prompt": "a", "logprobs": 513}`, 400},
+		{"temperature too high", "/v1/completions", `{"prompt": "a", "temperature": 3}`, 400},
+		{"top_p zero", "/v1/completions", `{"prompt": "a", "top_p": 0}`, 400},
+		{"n zero", "/v1/completions", `{"prompt": "a", "n": 0}`, 400},
+		{"stop wrong type", "/v1/completions", `{"prompt": "a", "stop": 3}`, 400},
+		{"token out of range", "/v1/completions", `{"prompt": [1, 999]}`, 400},
+		{"body too large", "/v1/completions", `{"prompt": "` + long + `"}`, 413},
+		{"no messages", "/v1/chat/completions", `{"messages": []}`, 400},
+		{"bad role", "/v1/chat/completions", `{"messages": [{"role": "robot", "content": "x"}]}`, 400},
+		{"image part", "/v1/chat/completions", `{"messages": [{"role": "user", "content": [{"type": "image_url"}]}]}`, 400},
+		{"top_logprobs without logprobs", "/v1/chat/completions", `{"messages": [{"role": "user", "content": "x"}], "top_logprobs": 2}`, 400},
+		{"top_logprobs beyond vocab", "/v1/chat/completions", `{"messages": [{"role": "user", "content": "x"}], "logprobs": true, "top_logprobs": 600}`, 400},
+		{"unknown path", "/v1/embeddings", `{}`, 404},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			status, out, hdr := post(t, srv.URL+tc.path, tc.body)
+			if status != tc.status {
+				t.Fatalf("status %d, want %d: %s", status, tc.status, out)
+			}
+			checkErrorBody(t, out, hdr)
+		})
+	}
+	resp, err := http.Get(srv.URL + "/v1/completions")
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "POST" {
+		t.Errorf("GET completions: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
+	}
+	checkErrorBody(t, b, resp.Header)
+}
+
+func TestContextTooLong(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	ids := make([]int, 2048) // with BOS: one more than the context
+	for i := range ids {
+		ids[i] = 300
+	}
+	status, out, hdr := post(t, srv.URL+"/v1/completions", map[string]any{"prompt": ids})
+	if status != 400 || !strings.Contains(string(out), "context_length_exceeded") {
+		t.Errorf("status %d body %s", status, out)
+	}
+	checkErrorBody(t, out, hdr)
+}
+
+func checkErrorBody(tb testing.TB, out []byte, hdr http.Header) {
+	tb.Helper()
+	var e errorBody
+	if err := json.Unmarshal(out, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" || e.Error.Code == "" {
+		tb.Errorf("error body %s (%v)", out, err)
+	}
+	if ct := hdr.Get("Content-Type"); ct != "application/json" {
+		tb.Errorf("Content-Type %q", ct)
+	}
+}
+
+func TestUnknownFieldsAndModels(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{Name: "story-box"})
+	r := complete(t, srv, `{"prompt": "a", "max_tokens": 1, "frobnicate": {"x": [1, 2]}, "user": "u1"}`)
+	if len(r.Choices) != 1 || r.Model != "story-box" {
+		t.Errorf("got %+v", r)
+	}
+	resp, err := http.Get(srv.URL + "/v1/models")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	var l modelList
+	if err := json.NewDecoder(resp.Body).Decode(&l); err != nil || len(l.Data) != 1 || l.Data[0].ID != "story-box" || l.Object != "list" {
+		t.Errorf("models: %+v %v", l, err)
+	}
+}
+
+// cancelWriter is a ResponseWriter that cancels the request on its first
+// write, like a client that disconnects after one event.
+type cancelWriter struct {
+	header http.Header
+	cancel context.CancelFunc
+	buf    bytes.Buffer
+	writes int
+}
+
+func (w *cancelWriter) Header() http.Header { return w.header }
+func (w *cancelWriter) WriteHeader(int)     {}
+func (w *cancelWriter) Write(b []byte) (int, error) {
+	w.writes++
+	w.cancel()
+	return w.buf.Write(b)
+}
+
+func TestCancellationStopsGeneration(t *testing.T) {
+	m := loadModel(t)
+	h := NewHandler(m, HandlerOptions{})
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	body := `{"prompt": "", "max_tokens": 2000, "stream": true, "temperature": 0}`
+	req := httptest.NewRequestWithContext(ctx, http.MethodPost, "/v1/completions", strings.NewReader(body))
+	w := &cancelWriter{header: http.Header{}, cancel: cancel}
+	h.ServeHTTP(w, req)
+	// Generation checks the context before every token, so after the
+	// first event at most one more token's event (and an error) follow.
+	if w.writes > 3 {
+		t.Errorf("%d events written after cancellation, want at most 3", w.writes)
+	}
+}
+
+// blockingWriter blocks its first Write until release is closed.
+type blockingWriter struct {
+	header  http.Header
+	entered chan struct{}
+	release chan struct{}
+	once    sync.Once
+	buf     bytes.Buffer
+}
+
+func (w *blockingWriter) Header() http.Header { return w.header }
+func (w *blockingWriter) WriteHeader(int)     {}
+func (w *blockingWriter) Write(b []byte) (int, error) {
+	w.once.Do(func() { close(w.entered); <-w.release })
+	return w.buf.Write(b)
+}
+
+// TestWorkerPoolBound: with one worker, a second request waits while the
+// first holds the slot, and runs once it is freed.
+func TestWorkerPoolBound(t *testing.T) {
+	m := loadModel(t)
+	hh := NewHandler(m, HandlerOptions{Workers: 1})
+	h := hh.(*handler)
+	waiting := make(chan struct{})
+	h.waitHook = func() { close(waiting) }
+	a := &blockingWriter{header: http.Header{}, entered: make(chan struct{}), release: make(chan struct{})}
+	doneA := make(chan struct{})
+	go func() {
+		defer close(doneA)
+		req := httptest.NewRequest(http.MethodPost, "/v1/completions", strings.NewReader(`{"prompt": "a", "max_tokens": 3, "stream": true}`))
+		h.ServeHTTP(a, req)
+	}()
+	<-a.entered // A holds the only slot, blocked writing
+	recB := httptest.NewRecorder()
+	doneB := make(chan struct{})
+	go func() {
+		defer close(doneB)
+		req := httptest.NewRequest(http.MethodPost, "/v1/completions", strings.NewReader(`{"prompt": "b", "max_tokens": 3}`))
+		h.ServeHTTP(recB, req)
+	}()
+	<-waiting // B found no free worker
+	close(a.release)
+	<-doneA
+	<-doneB
+	if recB.Code != http.StatusOK || h.maxActive.Load() != 1 {
+		t.Errorf("B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	}
+	if !strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n") {
+		t.Errorf("A's stream did not finish: %q", a.buf.String())
+	}
+	// A waiting request whose context ends gives up.
+	h.waitHook = nil
+	ctx, cancel := context.WithCancel(context.Background())
+	cancel()
+	h.slots <- struct{}{} // occupy the slot
+	rec := httptest.NewRecorder()
+	h.ServeHTTP(rec, httptest.NewRequestWithContext(ctx, http.MethodPost, "/v1/completions", strings.NewReader(`{"prompt": "c"}`)))
+	<-h.slots
+	if rec.Code != http.StatusServiceUnavailable {
+		t.Errorf("cancelled while waiting: status %d, want 503", rec.Code)
+	}
+}
+
+// TestConcurrentGreedy: concurrent identical greedy requests (sharing the
+// prefix cache) all get the same text.
+func TestConcurrentGreedy(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{Workers: 3})
+	body := map[string]any{"prompt": "The little bird", "temperature": 0, "max_tokens": 10}
+	want := complete(t, srv, body).Choices[0].Text
+	var wg sync.WaitGroup
+	got := make([]string, 8)
+	for i := range got {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			got[i] = complete(t, srv, body).Choices[0].Text
+		}()
+	}
+	wg.Wait()
+	for i, g := range got {
+		if g != want {
+			t.Errorf("request %d: %q, want %q", i, g, want)
+		}
+	}
+}
+
+// TestOpenAIClient drives the server with a real client library of the
+// wire format.
+func TestOpenAIClient(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	cfg := openai.DefaultConfig("unused")
+	cfg.BaseURL = srv.URL + "/v1"
+	client := openai.NewClientWithConfig(cfg)
+	ctx := context.Background()
+	seed := 3
+	cr, err := client.CreateCompletion(ctx, openai.CompletionRequest{Model: DefaultName, Prompt: []string{"Lily", "Tim"}, MaxTokens: 5, Seed: &seed, LogProbs: 2})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(cr.Choices) != 2 || len(cr.Choices[1].LogProbs.Tokens) != 5 || cr.Usage.CompletionTokens != 10 {
+		t.Errorf("completion: %+v", cr)
+	}
+	st, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{
+		Model: DefaultName, MaxTokens: 6, Seed: &seed,
+		Messages:      []openai.ChatCompletionMessage{{Role: openai.ChatMessageRoleUser, Content: "Hello"}},
+		StreamOptions: &openai.StreamOptions{IncludeUsage: true},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	var text string
+	var u *openai.Usage
+	for {
+		resp, err := st.Recv()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, c := range resp.Choices {
+			text += c.Delta.Content
+		}
+		if resp.Usage != nil {
+			u = resp.Usage
+		}
+	}
+	if text == "" || u == nil || u.CompletionTokens != 6 {
+		t.Errorf("chat stream: text %q usage %+v", text, u)
+	}
+}

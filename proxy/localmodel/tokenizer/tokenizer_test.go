@@ -1,0 +1,252 @@
+package tokenizer
+
+import (
+	"errors"
+	"fmt"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"unicode/utf8"
+
+	"github.com/stintlab/stint/proxy/localmodel/gguf"
+)
+
+// modelPath finds the real model file: env STINT_MODEL, else
+// ../shared/models/stories260K.gguf beside the directory holding go.mod. It
+// fails (never skips) when the file is missing.
+func modelPath(tb testing.TB) string {
+	tb.Helper()
+	if p := os.Getenv("STINT_MODEL"); p != "" {
+		return p
+	}
+	wd, err := os.Getwd()
+	if err != nil {
+		tb.Fatal(err)
+	}
+	for dir := wd; ; dir = filepath.Dir(dir) {
+		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
+			p := filepath.Join(dir, "..", "shared", "models", "stories260K.gguf")
+			if _, err := os.Stat(p); err != nil {
+				tb.Fatalf("model file not found: STINT_MODEL is unset and %s: %v", p, err)
+			}
+			return p
+		}
+		if filepath.Dir(dir) == dir {
+			tb.Fatalf("model file not found: STINT_MODEL is unset and no go.mod above %s", wd)
+		}
+	}
+}
+
+func realTokenizer(tb testing.TB) *Tokenizer {
+	tb.Helper()
+	f, err := gguf.Open(modelPath(tb))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	get := func(k string) gguf.Value {
+		v, err := f.Value(k)
+		if err != nil {
+			tb.Fatal(err)
+		}
+		return v
+	}
+	tok, err := New(Vocab{
+		Pieces: get("tokenizer.ggml.tokens").V.([]string),
+		Scores: get("tokenizer.ggml.scores").V.([]float32),
+		Types:  get("tokenizer.ggml.token_type").V.([]int32),
+		BOS:    1, EOS: 2, Unknown: 0,
+	})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return tok
+}
+
+// handVocab is a tiny vocabulary whose BPE results are worked out by hand.
+func handVocab(tb testing.TB, extra map[string]float32) *Tokenizer {
+	tb.Helper()
+	v := Vocab{Pieces: []string{"<unk>", "<s>", "</s>"}, Types: []int32{2, 3, 3}, Scores: []float32{0, 0, 0}, BOS: 1, EOS: 2}
+	for b := 0; b < 256; b++ {
+		v.Pieces = append(v.Pieces, fmt.Sprintf("<0x%02X>", b))
+		v.Types = append(v.Types, TypeByte)
+		v.Scores = append(v.Scores, 0)
+	}
+	for _, p := range []string{"▁", "a", "b", "c"} {
+		v.Pieces = append(v.Pieces, p)
+		v.Types = append(v.Types, TypeNormal)
+		v.Scores = append(v.Scores, -100)
+	}
+	for p, s := range extra {
+		v.Pieces = append(v.Pieces, p)
+		v.Types = append(v.Types, TypeNormal)
+		v.Scores = append(v.Scores, s)
+	}
+	tok, err := New(v)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return tok
+}
+
+func pieces(t *Tokenizer, ids []int) []string {
+	out := make([]string, len(ids))
+	for i, id := range ids {
+		out[i] = t.Piece(id)
+	}
+	return out
+}
+
+func TestEncodeHandVocab(t *testing.T) {
+	tests := []struct {
+		name  string
+		extra map[string]float32
+		in    string
+		want  string
+	}{
+		// "▁abc": ab (score 0) beats bc (-1) and ▁a (-2); then ▁+ab is
+		// not a piece, ab+c = abc (-3) merges.
+		{"best score first", map[string]float32{"ab": 0, "bc": -1, "▁a": -2, "abc": -3}, "abc", "▁|abc"},
+		// Equal scores: symbols ▁,a,a,a; both a+a pairs score 0, the
+		// leftmost merges first, leaving ▁,aa,a.
+		{"leftmost on ties", map[string]float32{"aa": 0}, "aaa", "▁|aa|a"},
+		{"space becomes mark", map[string]float32{"▁a": 0}, "a a", "▁a|▁a"},
+		{"unknown char falls back to bytes", nil, "é", "▁|<0xC3>|<0xA9>"},
+		{"literal mark is bytes", nil, "▁", "▁|<0xE2>|<0x96>|<0x81>"},
+		{"invalid utf8 is bytes", nil, "a\xff", "▁|a|<0xFF>"},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			tok := handVocab(t, tc.extra)
+			ids := tok.Encode(tc.in)
+			if got := strings.Join(pieces(tok, ids), "|"); got != tc.want {
+				t.Errorf("Encode(%q): got %s, want %s", tc.in, got, tc.want)
+			}
+			if got := tok.Decode(ids); got != tc.in {
+				t.Errorf("Decode: got %q, want %q", got, tc.in)
+			}
+		})
+	}
+}
+
+func TestEncodeRealVocab(t *testing.T) {
+	tok := realTokenizer(t)
+	if got := tok.Encode(""); len(got) != 0 {
+		t.Errorf("Encode(\"\"): got %v, want none", got)
+	}
+	// The opening words of the model's published greedy output (llama2.c
+	// doc/stories260K.md, via MODEL-SOURCE.md) are whole pieces of this
+	// vocabulary, so BPE must reach them.
+	ids := tok.Encode("Once upon a time")
+	if got, want := strings.Join(pieces(tok, ids), "|"), "▁Once|▁upon|▁a|▁time"; got != want {
+		t.Errorf("got %s, want %s", got, want)
+	}
+}
+
+// TestByteTokensCoverEveryByte checks each byte value has a token that
+// decodes to exactly that byte, and a lone invalid byte encodes through it.
+func TestByteTokensCoverEveryByte(t *testing.T) {
+	tok := realTokenizer(t)
+	for b := 0; b < 256; b++ {
+		id := tok.byteTok[b]
+		if got := tok.Bytes(id); len(got) != 1 || got[0] != byte(b) {
+			t.Errorf("byte 0x%02X: token %d gives %q", b, id, got)
+		}
+		s := string([]byte{'x', byte(b)})
+		if got := tok.Decode(tok.Encode(s)); got != s {
+			t.Errorf("round trip of %q: got %q", s, got)
+		}
+	}
+}
+
+func TestDisplayUnique(t *testing.T) {
+	tok := realTokenizer(t)
+	seen := map[string]int{}
+	for id := 0; id < tok.Len(); id++ {
+		d := tok.Display(id)
+		if prev, dup := seen[d]; dup {
+			t.Errorf("display %q shared by %d and %d", d, prev, id)
+		}
+		seen[d] = id
+		if !utf8.ValidString(d) || d == "" {
+			t.Errorf("display of %d is %q", id, d)
+		}
+	}
+	if got := tok.Display(tok.pieces["e"]); got != "e" {
+		t.Errorf("display of e: got %q", got)
+	}
+}
+
+// randomText mixes ASCII, spaces, the "▁" mark, multi-byte runes and
+// (when raw) invalid bytes.
+func randomText(rng *rand.Rand, raw bool) string {
+	var b strings.Builder
+	for range rng.IntN(40) {
+		switch rng.IntN(7) {
+		case 0:
+			b.WriteByte(' ')
+		case 1:
+			b.WriteString("▁")
+		case 2:
+			b.WriteRune(rune(0x80 + rng.IntN(0x800)))
+		case 3:
+			b.WriteRune(rune(0x10000 + rng.IntN(0x10000)))
+		case 4:
+			if raw {
+				b.WriteByte(byte(rng.Uint32()))
+			}
+		default:
+			b.WriteByte(byte('!' + rng.IntN(94)))
+		}
+	}
+	return b.String()
+}
+
+// TestRoundTripProperty: Decode(Encode(s)) == s on random strings.
+func TestRoundTripProperty(t *testing.T) {
+	tok := realTokenizer(t)
+	rng := rand.New(rand.NewPCG(7, 8))
+	for i := range 3000 {
+		s := randomText(rng, i%2 == 1)
+		ids := tok.Encode(s)
+		if got := tok.Decode(ids); got != s {
+			t.Fatalf("round trip: got %q, want %q (ids %v)", got, s, ids)
+		}
+		for _, id := range ids {
+			if id < 0 || id >= tok.Len() || id == tok.BOS() || id == tok.EOS() {
+				t.Fatalf("Encode(%q) gave id %d", s, id)
+			}
+		}
+	}
+}
+
+func FuzzRoundTrip(f *testing.F) {
+	tok := realTokenizer(f)
+	for _, s := range []string{"", " ", "  a", "Once upon a time", "▁▁", "é\xff\x00", "日本語 text\n"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, s string) {
+		if got := tok.Decode(tok.Encode(s)); got != s {
+			t.Errorf("got %q, want %q", got, s)
+		}
+	})
+}
+
+func TestNewErrors(t *testing.T) {
+	tests := []struct {
+		name string
+		v    Vocab
+	}{
+		{"empty", Vocab{}},
+		{"length mismatch", Vocab{Pieces: []string{"a"}, Scores: []float32{0, 0}, Types: []int32{1}}},
+		{"no byte tokens", Vocab{Pieces: []string{"a"}, Scores: []float32{0}, Types: []int32{1}}},
+		{"bad byte token", Vocab{Pieces: []string{"<0xZZ>"}, Scores: []float32{0}, Types: []int32{TypeByte}}},
+		{"bos out of range", Vocab{Pieces: []string{"a"}, Scores: []float32{0}, Types: []int32{1}, BOS: 5}},
+	}
+	for _, tc := range tests {
+		if _, err := New(tc.v); !errors.Is(err, ErrInvalid) {
+			t.Errorf("%s: got %v, want ErrInvalid", tc.name, err)
+		}
+	}
+}

@@ -1,0 +1,235 @@
+package localmodel
+
+import (
+	"encoding/json"
+	"errors"
+	"fmt"
+)
+
+// Wire structs of the completions format, local to this package so it stays
+// a leaf. Pointers mark optional fields whose zero value is meaningful.
+
+type streamOptions struct {
+	IncludeUsage bool `json:"include_usage"`
+}
+
+type completionRequest struct {
+	Model         string          `json:"model"`
+	Prompt        json.RawMessage `json:"prompt"`
+	MaxTokens     *int            `json:"max_tokens"`
+	Temperature   *float64        `json:"temperature"`
+	TopP          *float64        `json:"top_p"`
+	N             *int            `json:"n"`
+	Stream        bool            `json:"stream"`
+	StreamOptions *streamOptions  `json:"stream_options"`
+	Logprobs      *int            `json:"logprobs"`
+	Echo          bool            `json:"echo"`
+	Stop          json.RawMessage `json:"stop"`
+	Seed          *int64          `json:"seed"`
+}
+
+type chatMessage struct {
+	Role    string          `json:"role"`
+	Content json.RawMessage `json:"content"`
+}
+
+type chatRequest struct {
+	Model               string          `json:"model"`
+	Messages            []chatMessage   `json:"messages"`
+	MaxTokens           *int            `json:"max_tokens"`
+	MaxCompletionTokens *int            `json:"max_completion_tokens"`
+	Temperature         *float64        `json:"temperature"`
+	TopP                *float64        `json:"top_p"`
+	N                   *int            `json:"n"`
+	Stream              bool            `json:"stream"`
+	StreamOptions       *streamOptions  `json:"stream_options"`
+	Logprobs            bool            `json:"logprobs"`
+	TopLogprobs         *int            `json:"top_logprobs"`
+	Stop                json.RawMessage `json:"stop"`
+	Seed                *int64          `json:"seed"`
+}
+
+type usage struct {
+	PromptTokens     int `json:"prompt_tokens"`
+	CompletionTokens int `json:"completion_tokens"`
+	TotalTokens      int `json:"total_tokens"`
+}
+
+// completionLogprobs is the completions format's logprobs object. Entries
+// of TokenLogprobs and TopLogprobs are null for the first echoed prompt
+// token.
+type completionLogprobs struct {
+	Tokens        []string             `json:"tokens"`
+	TokenLogprobs []*float64           `json:"token_logprobs"`
+	TopLogprobs   []map[string]float64 `json:"top_logprobs"`
+	TextOffset    []int                `json:"text_offset"`
+}
+
+type completionChoice struct {
+	Text         string              `json:"text"`
+	Index        int                 `json:"index"`
+	Logprobs     *completionLogprobs `json:"logprobs"`
+	FinishReason *string             `json:"finish_reason"`
+}
+
+type completionResponse struct {
+	ID      string             `json:"id"`
+	Object  string             `json:"object"`
+	Created int64              `json:"created"`
+	Model   string             `json:"model"`
+	Choices []completionChoice `json:"choices"`
+	Usage   *usage             `json:"usage,omitempty"`
+}
+
+type chatTopLogprob struct {
+	Token   string  `json:"token"`
+	Logprob float64 `json:"logprob"`
+	Bytes   []int   `json:"bytes"`
+}
+
+type chatTokenLogprob struct {
+	Token       string           `json:"token"`
+	Logprob     float64          `json:"logprob"`
+	Bytes       []int            `json:"bytes"`
+	TopLogprobs []chatTopLogprob `json:"top_logprobs"`
+}
+
+type chatLogprobs struct {
+	Content []chatTokenLogprob `json:"content"`
+}
+
+type chatOutMessage struct {
+	Role    string  `json:"role,omitempty"`
+	Content *string `json:"content,omitempty"`
+}
+
+type chatChoice struct {
+	Index        int             `json:"index"`
+	Message      *chatOutMessage `json:"message,omitempty"`
+	Delta        *chatOutMessage `json:"delta,omitempty"`
+	Logprobs     *chatLogprobs   `json:"logprobs"`
+	FinishReason *string         `json:"finish_reason"`
+}
+
+type chatResponse struct {
+	ID      string       `json:"id"`
+	Object  string       `json:"object"`
+	Created int64        `json:"created"`
+	Model   string       `json:"model"`
+	Choices []chatChoice `json:"choices"`
+	Usage   *usage       `json:"usage,omitempty"`
+}
+
+type modelInfo struct {
+	ID      string `json:"id"`
+	Object  string `json:"object"`
+	Created int64  `json:"created"`
+	OwnedBy string `json:"owned_by"`
+}
+
+type modelList struct {
+	Object string      `json:"object"`
+	Data   []modelInfo `json:"data"`
+}
+
+type errorBody struct {
+	Error errorDetail `json:"error"`
+}
+
+type errorDetail struct {
+	Message string  `json:"message"`
+	Type    string  `json:"type"`
+	Param   *string `json:"param"`
+	Code    string  `json:"code"`
+}
+
+// errBadRequest marks request errors (400).
+var errBadRequest = errors.New("invalid request")
+
+func badRequest(format string, args ...any) error {
+	return fmt.Errorf("%w: %s", errBadRequest, fmt.Sprintf(format, args...))
+}
+
+// parseStop reads stop as null, a string or an array of strings.
+func parseStop(raw json.RawMessage) ([]string, error) {
+	if len(raw) == 0 || string(raw) == "null" {
+		return nil, nil
+	}
+	var one string
+	if err := json.Unmarshal(raw, &one); err == nil {
+		if one == "" {
+			return nil, nil
+		}
+		return []string{one}, nil
+	}
+	var many []string
+	if err := json.Unmarshal(raw, &many); err != nil {
+		return nil, badRequest("stop must be a string or an array of strings")
+	}
+	if len(many) > 16 {
+		return nil, badRequest("stop has %d entries (at most 16)", len(many))
+	}
+	out := many[:0]
+	for _, s := range many {
+		if s != "" {
+			out = append(out, s)
+		}
+	}
+	return out, nil
+}
+
+// parsePrompt reads prompt as a string, an array of strings, an array of
+// token ids or an array of token-id arrays. It returns either texts or
+// token lists (exactly one is non-nil).
+func parsePrompt(raw json.RawMessage) (texts []string, ids [][]int, err error) {
+	if len(raw) == 0 || string(raw) == "null" {
+		return []string{""}, nil, nil
+	}
+	var one string
+	if json.Unmarshal(raw, &one) == nil {
+		return []string{one}, nil, nil
+	}
+	if json.Unmarshal(raw, &texts) == nil {
+		if len(texts) == 0 {
+			return nil, nil, badRequest("prompt is an empty array")
+		}
+		return texts, nil, nil
+	}
+	var flat []int
+	if json.Unmarshal(raw, &flat) == nil {
+		if len(flat) == 0 {
+			return nil, nil, badRequest("prompt is an empty array")
+		}
+		return nil, [][]int{flat}, nil
+	}
+	if json.Unmarshal(raw, &ids) == nil && len(ids) > 0 {
+		return nil, ids, nil
+	}
+	return nil, nil, badRequest("prompt must be a string, an array of strings, or token ids")
+}
+
+// parseContent reads a message's content: a string, or an array of parts
+// of which only {"type":"text","text":…} are accepted.
+func parseContent(raw json.RawMessage) (string, error) {
+	if len(raw) == 0 || string(raw) == "null" {
+		return "", nil
+	}
+	var s string
+	if json.Unmarshal(raw, &s) == nil {
+		return s, nil
+	}
+	var parts []struct {
+		Type string `json:"type"`
+		Text string `json:"text"`
+	}
+	if err := json.Unmarshal(raw, &parts); err != nil {
+		return "", badRequest("message content must be a string or an array of text parts")
+	}
+	for _, p := range parts {
+		if p.Type != "text" {
+			return "", badRequest("message content part type %q is not supported (only text)", p.Type)
+		}
+		s += p.Text
+	}
+	return s, nil
+}

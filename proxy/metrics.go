@@ -1,0 +1,58 @@
+package proxy
+
+import (
+	"github.com/prometheus/client_golang/prometheus"
+)
+
+// metrics are the proxy's Prometheus collectors. Labels never carry keys or
+// prompt text.
+type metrics struct {
+	requests        *prometheus.CounterVec   // team, endpoint, cache outcome
+	prompts         *prometheus.CounterVec   // team, outcome (hit|miss)
+	upstreamCalls   *prometheus.CounterVec   // upstream, endpoint, status class
+	upstreamSeconds *prometheus.HistogramVec // upstream, endpoint
+	requestSeconds  *prometheus.HistogramVec // endpoint, cache outcome
+	storeErrors     *prometheus.CounterVec   // op
+	coalesceWaiting prometheus.GaugeFunc
+	tokens          *prometheus.CounterVec // team, kind (prompt|completion), source (upstream|cache)
+}
+
+func newMetrics(reg prometheus.Registerer, waiting func() float64) (*metrics, error) {
+	m := &metrics{
+		requests: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_requests_total", Help: "Generation requests answered, by team, endpoint and cache outcome.",
+		}, []string{"team", "endpoint", "cache"}),
+		prompts: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_prompts_total", Help: "Prompt items looked up in the cache (a batched request counts each prompt), by outcome.",
+		}, []string{"team", "outcome"}),
+		upstreamCalls: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_upstream_calls_total", Help: "Calls sent upstream, by upstream, endpoint and status (or error kind).",
+		}, []string{"upstream", "endpoint", "status"}),
+		upstreamSeconds: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "stint_upstream_seconds", Help: "Upstream call latency until the full answer was read.",
+			Buckets: prometheus.ExponentialBuckets(0.001, 2.5, 14),
+		}, []string{"upstream", "endpoint"}),
+		requestSeconds: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "stint_request_seconds", Help: "Time to answer a generation request, by endpoint and cache outcome.",
+			Buckets: prometheus.ExponentialBuckets(0.0001, 3, 14),
+		}, []string{"endpoint", "cache"}),
+		storeErrors: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_store_errors_total", Help: "Cache store operations that failed (the request was served without the cache).",
+		}, []string{"op"}),
+		coalesceWaiting: prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+			Name: "stint_coalesced_waiting", Help: "Requests waiting on an identical in-flight upstream call.",
+		}, waiting),
+		tokens: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_tokens_total", Help: "Tokens in answers, by team, kind and source (upstream or cache).",
+		}, []string{"team", "kind", "source"}),
+	}
+	if reg == nil {
+		return m, nil
+	}
+	for _, c := range []prometheus.Collector{m.requests, m.prompts, m.upstreamCalls, m.upstreamSeconds, m.requestSeconds, m.storeErrors, m.coalesceWaiting, m.tokens} {
+		if err := reg.Register(c); err != nil {
+			return nil, err
+		}
+	}
+	return m, nil
+}

@@ -1,0 +1,569 @@
+package proxy
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net/http"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/coalesce"
+)
+
+// Header names stint sets on answers.
+const (
+	HeaderCache        = "Stint-Cache"
+	HeaderCachedPrompt = "Stint-Cached-Prompts"
+)
+
+// Cache outcomes reported in the Stint-Cache header and metrics.
+const (
+	OutcomeHit     = "hit"     // answered from the cache
+	OutcomeMiss    = "miss"    // answered by an upstream call this request made
+	OutcomeShared  = "shared"  // answered by coalescing onto another request's upstream call
+	OutcomePartial = "partial" // a batch with some prompts from the cache, the rest from upstream
+	OutcomeBypass  = "bypass"  // not cacheable (sampled, or caching is off): forwarded as is
+)
+
+// DefaultGreedyBelow is the default of Options.GreedyBelow.
+const DefaultGreedyBelow = 1e-6
+
+// DefaultMaxBodyBytes bounds a request body unless Options says otherwise.
+const DefaultMaxBodyBytes = 4 << 20
+
+// maxUpstreamBody bounds an upstream answer the proxy reads whole.
+const maxUpstreamBody = 256 << 20
+
+// Options configure a Proxy. Zero values mean the documented default.
+type Options struct {
+	// Store holds cached answers. Required.
+	Store cache.Store
+	// Upstreams receive misses; a request goes to the first whose Models match.
+	// At least one is required.
+	Upstreams []Upstream
+	// Teams are the clients allowed in. Empty means open mode: every request
+	// belongs to one team named "default" and no key is needed.
+	Teams []Team
+	// MaxBodyBytes bounds a request body; zero means DefaultMaxBodyBytes.
+	MaxBodyBytes int64
+	// CacheTTL is how long an answer stays cached; zero means until evicted.
+	CacheTTL time.Duration
+	// CacheSampled also caches sampled requests (temperature > 0 or n > 1),
+	// freezing the first sample. Off by default.
+	CacheSampled bool
+	// GreedyBelow is the temperature at or below which a request counts as
+	// greedy (deterministic) and is cached. Zero means DefaultGreedyBelow;
+	// -1 means only an exact 0. Some client libraries cannot send a zero
+	// temperature and send the smallest float instead.
+	GreedyBelow float64
+	// UncachedModels are forwarded without caching.
+	UncachedModels []string
+	// ModelsTTL is how long a /v1/models answer is reused; zero means a minute,
+	// -1 means not at all.
+	ModelsTTL time.Duration
+	// Logger receives one line per request; nil discards.
+	Logger *slog.Logger
+	// LogPrompts adds prompt text to request log lines (debugging only).
+	LogPrompts bool
+	// Registerer receives the proxy's metrics; nil registers none.
+	Registerer prometheus.Registerer
+	// Gatherer serves /metrics; nil serves no metrics endpoint.
+	Gatherer prometheus.Gatherer
+	// Now is the clock; nil means time.Now.
+	Now func() time.Time
+}
+
+// Proxy is the caching proxy. It is an http.Handler; create it with New.
+type Proxy struct {
+	store          cache.Store
+	upstreams      []Upstream
+	teams          []Team
+	open           *Team
+	maxBody        int64
+	ttl            time.Duration
+	cacheSampled   bool
+	greedyBelow    float64
+	uncachedModels map[string]bool
+	modelsTTL      time.Duration
+	log            *slog.Logger
+	logPrompts     bool
+	metrics        *metrics
+	now            func() time.Time
+	mux            *http.ServeMux
+
+	flights coalesce.Group[*flightResult]
+
+	draining atomic.Bool
+
+	modelsMu   sync.Mutex // guards modelsBody, modelsAt
+	modelsBody []byte
+	modelsCode int
+	modelsAt   time.Time
+}
+
+// New builds a Proxy from opts.
+func New(opts Options) (*Proxy, error) {
+	if opts.Store == nil {
+		return nil, errors.New("proxy: Options.Store is required")
+	}
+	if len(opts.Upstreams) == 0 {
+		return nil, errors.New("proxy: at least one upstream is required")
+	}
+	p := &Proxy{
+		store:          opts.Store,
+		upstreams:      make([]Upstream, len(opts.Upstreams)),
+		teams:          append([]Team(nil), opts.Teams...),
+		maxBody:        opts.MaxBodyBytes,
+		ttl:            opts.CacheTTL,
+		cacheSampled:   opts.CacheSampled,
+		greedyBelow:    opts.GreedyBelow,
+		uncachedModels: map[string]bool{},
+		modelsTTL:      opts.ModelsTTL,
+		log:            opts.Logger,
+		logPrompts:     opts.LogPrompts,
+		now:            opts.Now,
+	}
+	copy(p.upstreams, opts.Upstreams)
+	for i := range p.upstreams {
+		if p.upstreams[i].Name == "" {
+			p.upstreams[i].Name = fmt.Sprintf("upstream-%d", i)
+		}
+		if p.upstreams[i].Client == nil {
+			p.upstreams[i].Client = NewUpstreamClient()
+		}
+	}
+	if len(p.teams) == 0 {
+		p.open = &Team{Name: "default"}
+	}
+	if p.maxBody <= 0 {
+		p.maxBody = DefaultMaxBodyBytes
+	}
+	switch {
+	case p.greedyBelow == 0:
+		p.greedyBelow = DefaultGreedyBelow
+	case p.greedyBelow < 0:
+		p.greedyBelow = 0
+	}
+	if p.modelsTTL == 0 {
+		p.modelsTTL = time.Minute
+	}
+	for _, m := range opts.UncachedModels {
+		p.uncachedModels[m] = true
+	}
+	if p.log == nil {
+		p.log = slog.New(slog.DiscardHandler)
+	}
+	if p.now == nil {
+		p.now = time.Now
+	}
+	m, err := newMetrics(opts.Registerer, func() float64 { return float64(p.flights.TotalWaiting()) })
+	if err != nil {
+		return nil, fmt.Errorf("proxy: register metrics: %w", err)
+	}
+	p.metrics = m
+
+	mux := http.NewServeMux()
+	mux.HandleFunc("POST /v1/completions", func(w http.ResponseWriter, r *http.Request) { p.serveGenerate(w, r, endpointCompletions) })
+	mux.HandleFunc("POST /v1/chat/completions", func(w http.ResponseWriter, r *http.Request) { p.serveGenerate(w, r, endpointChat) })
+	mux.HandleFunc("GET /v1/models", p.serveModels)
+	mux.HandleFunc("GET /healthz", p.serveHealth)
+	mux.HandleFunc("GET /readyz", p.serveReady)
+	if opts.Gatherer != nil {
+		mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}))
+	}
+	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "unknown_url", message: fmt.Sprintf("no route for %s %s", r.Method, r.URL.Path)})
+	})
+	p.mux = mux
+	return p, nil
+}
+
+// ServeHTTP implements http.Handler.
+func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) { p.mux.ServeHTTP(w, r) }
+
+// Drain marks the proxy as shutting down: /readyz answers 503 so load
+// balancers stop sending new work while in-flight requests finish.
+func (p *Proxy) Drain() { p.draining.Store(true) }
+
+func (p *Proxy) serveHealth(w http.ResponseWriter, _ *http.Request) {
+	w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+	_, _ = io.WriteString(w, "ok\n")
+}
+
+func (p *Proxy) serveReady(w http.ResponseWriter, r *http.Request) {
+	w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+	if p.draining.Load() {
+		w.WriteHeader(http.StatusServiceUnavailable)
+		_, _ = io.WriteString(w, "draining\n")
+		return
+	}
+	ctx, cancel := context.WithTimeout(r.Context(), 2*time.Second)
+	defer cancel()
+	if _, _, err := p.store.Get(ctx, "readyz-probe"); err != nil {
+		w.WriteHeader(http.StatusServiceUnavailable)
+		_, _ = io.WriteString(w, "cache store unavailable\n")
+		return
+	}
+	_, _ = io.WriteString(w, "ready\n")
+}
+
+// route picks the upstream for model.
+func (p *Proxy) route(model string) *Upstream {
+	for i := range p.upstreams {
+		if p.upstreams[i].matches(model) {
+			return &p.upstreams[i]
+		}
+	}
+	return nil
+}
+
+// cacheable reports whether req may be answered from and stored in the cache.
+func (p *Proxy) cacheable(t *Team, req *request) bool {
+	if t.CacheOff || p.uncachedModels[req.model] {
+		return false
+	}
+	if p.cacheSampled {
+		return true
+	}
+	return p.greedy(req) && req.n == 1
+}
+
+// greedy reports whether req decodes deterministically.
+func (p *Proxy) greedy(req *request) bool { return req.temperature <= p.greedyBelow }
+
+// served is one prompt's answer: a complete single-prompt response body.
+type served struct {
+	body  []byte
+	usage usage
+}
+
+// flightResult is what one upstream call yields, shared by coalesced waiters.
+type flightResult struct {
+	full     []byte   // the upstream's whole answer, assembled when streamed
+	items    []served // one per prompt sent
+	streamed bool     // the leader already streamed the answer to its client
+	// unstorable: the streamed answer was relayed but cannot be rebuilt for
+	// storing or for sharing with waiters.
+	unstorable bool
+	latency    time.Duration
+}
+
+// logLine gathers what the request's log line reports.
+type logLine struct {
+	team, model, outcome string
+	endpoint             endpoint
+	status               int
+	upstream             time.Duration
+	usage                usage
+	prompts, hits        int
+	promptText           string
+}
+
+func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoint) {
+	start := p.now()
+	ll := &logLine{endpoint: ep}
+	defer func() { p.finish(ll, start) }()
+	fail := func(e *apiError) {
+		ll.status = e.status
+		if ll.outcome == "" {
+			ll.outcome = "error"
+		}
+		writeError(w, e)
+	}
+
+	team, aerr := p.authenticate(r)
+	if aerr != nil {
+		fail(aerr)
+		return
+	}
+	ll.team = team.Name
+	body, aerr := p.readBody(w, r)
+	if aerr != nil {
+		fail(aerr)
+		return
+	}
+	req, aerr := parseRequest(ep, body)
+	if aerr != nil {
+		fail(aerr)
+		return
+	}
+	ll.model = req.model
+	if p.logPrompts {
+		ll.promptText = promptText(req)
+	}
+	up := p.route(req.model)
+	if up == nil {
+		fail(&apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model", message: fmt.Sprintf("no upstream serves model %q", req.model)})
+		return
+	}
+	d := parseDirectives(r.Header)
+	if !p.cacheable(team, req) {
+		if d.onlyIfCached {
+			fail(notCached())
+			return
+		}
+		ll.outcome = OutcomeBypass
+		p.forward(w, r, ll, up, req)
+		return
+	}
+	p.serveCached(w, r, ll, team, up, req, d, fail)
+}
+
+func notCached() *apiError {
+	return &apiError{status: http.StatusGatewayTimeout, typ: errCache, code: "not_cached", message: "the answer is not in the cache and the request said only-if-cached"}
+}
+
+// item is one prompt of a request and its cache state.
+type item struct {
+	prompt json.RawMessage // nil for chat
+	key    string
+	hit    *served
+}
+
+func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, up *Upstream, req *request, d directives, fail func(*apiError)) {
+	ctx := r.Context()
+	items := make([]item, 1)
+	if req.endpoint == endpointCompletions {
+		items = make([]item, len(req.prompts))
+		for i, pr := range req.prompts {
+			items[i].prompt = pr
+		}
+	}
+	greedy := p.greedy(req)
+	var misses []int
+	for i := range items {
+		k, err := itemKey(team, up, req, items[i].prompt)
+		if err != nil {
+			fail(badRequest("", "request cannot be canonicalized: %v", err))
+			return
+		}
+		items[i].key = k
+		if !d.noCache {
+			items[i].hit = p.lookup(ctx, req, k, greedy)
+		}
+		if items[i].hit == nil {
+			misses = append(misses, i)
+		}
+	}
+	ll.prompts, ll.hits = len(items), len(items)-len(misses)
+	p.metrics.prompts.WithLabelValues(team.Name, "hit").Add(float64(ll.hits))
+	p.metrics.prompts.WithLabelValues(team.Name, "miss").Add(float64(len(misses)))
+
+	if len(misses) == 0 {
+		ll.outcome = OutcomeHit
+		p.answer(w, ll, req, items, nil, OutcomeHit)
+		return
+	}
+	if d.onlyIfCached {
+		fail(notCached())
+		return
+	}
+
+	flightKey := flightKeyFor(items, misses, req)
+	var leaderStreamed bool
+	res, shared, err := p.flights.Do(ctx, flightKey, func() (*flightResult, error) {
+		// One client's disconnect must not cancel a call others may share.
+		cctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), up.timeout())
+		defer cancel()
+		streamTo := http.ResponseWriter(nil)
+		if req.stream && len(misses) == len(items) {
+			streamTo = w
+		}
+		res, err := p.fetch(cctx, up, req, items, misses, streamTo)
+		if res != nil && res.streamed {
+			leaderStreamed = true
+		}
+		if err != nil {
+			return nil, err
+		}
+		if !d.noStore && !res.unstorable {
+			p.storeItems(cctx, req, items, misses, res.items, greedy)
+		}
+		return res, nil
+	})
+	if err != nil {
+		if leaderStreamed {
+			// Headers and part of the stream are out; abort so the client sees a broken stream.
+			ll.outcome, ll.status = OutcomeMiss, http.StatusBadGateway
+			panic(http.ErrAbortHandler)
+		}
+		var ue *upstreamError
+		if errors.As(err, &ue) {
+			ll.outcome = OutcomeMiss
+			if shared {
+				ll.outcome = OutcomeShared
+			}
+			p.writeUpstreamError(w, ll, ue)
+			return
+		}
+		if errors.Is(err, context.Canceled) || errors.Is(err, context.DeadlineExceeded) {
+			fail(&apiError{status: http.StatusGatewayTimeout, typ: errUpstream, code: "client_gone", message: "the request ended before the answer arrived"})
+			return
+		}
+		fail(&apiError{status: http.StatusBadGateway, typ: errUpstream, code: "bad_upstream_answer", message: err.Error()})
+		return
+	}
+	ll.upstream = res.latency
+	if res.unstorable && !(leaderStreamed && !shared) {
+		fail(&apiError{status: http.StatusBadGateway, typ: errUpstream, code: "not_shareable", message: "an identical streamed call was in flight but its answer could not be shared; retry"})
+		return
+	}
+	outcome := OutcomeMiss
+	switch {
+	case ll.hits > 0:
+		outcome = OutcomePartial
+	case shared:
+		outcome = OutcomeShared
+	}
+	ll.outcome = outcome
+	if leaderStreamed && !shared {
+		ll.status = http.StatusOK
+		_, ll.usage = mergeUsage(res.items)
+		return
+	}
+	for j, i := range misses {
+		items[i].hit = &res.items[j]
+	}
+	var full []byte
+	if ll.hits == 0 {
+		full = res.full
+	}
+	p.answer(w, ll, req, items, full, outcome)
+}
+
+// lookup returns the cached answer for key shaped to req, or nil.
+func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy bool) *served {
+	b, ok, err := p.store.Get(ctx, key)
+	if err != nil {
+		p.metrics.storeErrors.WithLabelValues("get").Inc()
+		p.log.Warn("cache get failed; treating as a miss", "err", err)
+		return nil
+	}
+	if !ok {
+		return nil
+	}
+	rec, err := decodeRecord(b)
+	if err != nil {
+		p.metrics.storeErrors.WithLabelValues("decode").Inc()
+		return nil
+	}
+	v, ok := rec.pick(req.logprobs, req.maxTokens, greedy, req.stop)
+	if !ok {
+		return nil
+	}
+	body, u, err := shape(req.endpoint, v, req.logprobs, req.maxTokens)
+	if err != nil {
+		return nil
+	}
+	return &served{body: body, usage: u}
+}
+
+// storeItems records each fetched prompt's answer under its key.
+func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, misses []int, got []served, greedy bool) {
+	for j, i := range misses {
+		key := items[i].key
+		var rec record
+		if b, ok, err := p.store.Get(ctx, key); err == nil && ok {
+			if old, err := decodeRecord(b); err == nil {
+				rec = old
+			}
+		}
+		v := variant{
+			Logprobs:  req.logprobs,
+			MaxTokens: req.maxTokens,
+			Usage:     got[j].usage,
+			Estimated: len(misses) > 1,
+			StoredAt:  nowUnix(p.now()),
+			Body:      got[j].body,
+		}
+		v.Finish, v.Tokens = tokenFacts(req, got[j].body)
+		b, err := rec.with(v, greedy, req.stop).encode()
+		if err == nil {
+			err = p.store.Put(ctx, key, b, p.ttl)
+		}
+		if err != nil {
+			p.metrics.storeErrors.WithLabelValues("put").Inc()
+			p.log.Warn("cache put failed; answer served but not stored", "err", err)
+		}
+	}
+}
+
+// itemKey derives the cache key of one prompt of req (prompt is nil for chat).
+func itemKey(t *Team, up *Upstream, req *request, prompt json.RawMessage) (string, error) {
+	canonical, err := keyBody(req, prompt)
+	if err != nil {
+		return "", err
+	}
+	return cache.Key(cache.KeyParts{
+		Namespace: t.namespace(),
+		Upstream:  up.Name,
+		Endpoint:  string(req.endpoint),
+		Model:     req.model,
+	}, canonical), nil
+}
+
+// flightKeyFor identifies an upstream call: the missing prompts' keys and the
+// fields that shape the answer but are not in the keys.
+func flightKeyFor(items []item, misses []int, req *request) string {
+	h := sha256.New()
+	for _, i := range misses {
+		io.WriteString(h, items[i].key)
+		h.Write([]byte{0})
+	}
+	fmt.Fprintf(h, "lp=%d mt=%d", req.logprobs, req.maxTokens)
+	return hex.EncodeToString(h.Sum(nil))
+}
+
+func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiError) {
+	body, err := io.ReadAll(http.MaxBytesReader(w, r.Body, p.maxBody))
+	if err != nil {
+		var mbe *http.MaxBytesError
+		if errors.As(err, &mbe) {
+			return nil, &apiError{status: http.StatusRequestEntityTooLarge, typ: errInvalidRequest, code: "body_too_large", message: fmt.Sprintf("request body is larger than %d bytes", p.maxBody)}
+		}
+		return nil, badRequest("", "cannot read request body: %v", err)
+	}
+	return body, nil
+}
+
+func (p *Proxy) finish(ll *logLine, start time.Time) {
+	d := p.now().Sub(start)
+	if ll.outcome != "" && ll.outcome != "error" {
+		p.metrics.requests.WithLabelValues(ll.team, string(ll.endpoint), ll.outcome).Inc()
+		p.metrics.requestSeconds.WithLabelValues(string(ll.endpoint), ll.outcome).Observe(d.Seconds())
+		source := "cache"
+		if ll.outcome == OutcomeMiss || ll.outcome == OutcomeBypass {
+			source = "upstream"
+		}
+		p.metrics.tokens.WithLabelValues(ll.team, "prompt", source).Add(float64(ll.usage.PromptTokens))
+		p.metrics.tokens.WithLabelValues(ll.team, "completion", source).Add(float64(ll.usage.CompletionTokens))
+	}
+	attrs := []any{
+		"team", ll.team, "endpoint", string(ll.endpoint), "model", ll.model,
+		"cache", ll.outcome, "status", ll.status, "prompts", ll.prompts, "cached_prompts", ll.hits,
+		"prompt_tokens", ll.usage.PromptTokens, "completion_tokens", ll.usage.CompletionTokens,
+		"upstream_ms", float64(ll.upstream.Microseconds()) / 1000, "duration_ms", float64(d.Microseconds()) / 1000,
+	}
+	if ll.promptText != "" {
+		attrs = append(attrs, "prompt", ll.promptText)
+	}
+	p.log.Info("request", attrs...)
+}
+
+func promptText(req *request) string {
+	if req.endpoint == endpointChat {
+		return string(req.fields["messages"])
+	}
+	return string(req.fields["prompt"])
+}

@@ -1,0 +1,141 @@
+package proxy
+
+import (
+	"encoding/json"
+	"fmt"
+	"time"
+)
+
+// maxVariants bounds how many answers of one key a record keeps.
+const maxVariants = 8
+
+// record is what the proxy stores under one cache key: the answers seen for
+// that key, which differ only in the fields subsumption can serve from
+// (log-probability depth and max_tokens).
+type record struct {
+	Variants []variant `json:"v"`
+}
+
+// variant is one stored answer: a complete single-prompt response body as a
+// client would have received it, plus what it covers.
+type variant struct {
+	Logprobs  int             `json:"lp"`
+	MaxTokens int             `json:"mt"`
+	Finish    string          `json:"fr,omitempty"`
+	Tokens    int             `json:"tk"` // completion tokens with token-level data; -1 when not known
+	Usage     usage           `json:"u"`
+	Estimated bool            `json:"est,omitempty"` // usage apportioned from a batched call
+	StoredAt  int64           `json:"at"`
+	Body      json.RawMessage `json:"b"`
+}
+
+// usage is the wire format's token accounting.
+type usage struct {
+	PromptTokens     int `json:"prompt_tokens"`
+	CompletionTokens int `json:"completion_tokens"`
+	TotalTokens      int `json:"total_tokens"`
+}
+
+func (u usage) add(o usage) usage {
+	return usage{u.PromptTokens + o.PromptTokens, u.CompletionTokens + o.CompletionTokens, u.TotalTokens + o.TotalTokens}
+}
+
+func decodeRecord(b []byte) (record, error) {
+	var rec record
+	if err := json.Unmarshal(b, &rec); err != nil {
+		return record{}, fmt.Errorf("decode cache record: %w", err)
+	}
+	return rec, nil
+}
+
+func (rec record) encode() ([]byte, error) {
+	b, err := json.Marshal(rec)
+	if err != nil {
+		return nil, fmt.Errorf("encode cache record: %w", err)
+	}
+	return b, nil
+}
+
+// with returns rec with v added, dropping the variants v can serve and the
+// oldest ones beyond maxVariants.
+func (rec record) with(v variant, greedy, stop bool) record {
+	out := record{Variants: make([]variant, 0, len(rec.Variants)+1)}
+	out.Variants = append(out.Variants, v)
+	for _, old := range rec.Variants {
+		if covers(v, old.Logprobs, old.MaxTokens, greedy, stop) {
+			continue
+		}
+		out.Variants = append(out.Variants, old)
+	}
+	if len(out.Variants) > maxVariants {
+		out.Variants = out.Variants[:maxVariants]
+	}
+	return out
+}
+
+// pick returns the variant that best serves a request for (logprobs,
+// maxTokens), preferring an exact match.
+func (rec record) pick(logprobs, maxTokens int, greedy, stop bool) (variant, bool) {
+	for _, v := range rec.Variants {
+		if v.Logprobs == logprobs && v.MaxTokens == maxTokens {
+			return v, true
+		}
+	}
+	for _, v := range rec.Variants {
+		if covers(v, logprobs, maxTokens, greedy, stop) {
+			return v, true
+		}
+	}
+	return variant{}, false
+}
+
+// covers reports whether v can answer a request for (logprobs, maxTokens)
+// exactly.
+func covers(v variant, logprobs, maxTokens int, greedy, stop bool) bool {
+	if !coversLogprobs(v.Logprobs, logprobs) {
+		return false
+	}
+	if v.MaxTokens == maxTokens {
+		return true
+	}
+	return coversMaxTokens(v, maxTokens, greedy, stop)
+}
+
+// coversLogprobs: fewer top log-probabilities than cached can be cut from the
+// cached lists; none at all by dropping them. A depth of 0 must match exactly
+// because providers differ in how they render it.
+func coversLogprobs(have, want int) bool {
+	switch {
+	case want == have:
+		return true
+	case want == noLevel:
+		return true
+	case want == 0:
+		return false
+	default:
+		return have > want
+	}
+}
+
+// coversMaxTokens: a greedy answer with token-level data holds every shorter
+// greedy answer as its prefix.
+func coversMaxTokens(v variant, want int, greedy, stop bool) bool {
+	if !greedy || want == noLevel || v.MaxTokens == noLevel || v.Tokens < 0 {
+		return false
+	}
+	switch v.Finish {
+	case "length":
+		// The model was cut off at its cap: every shorter cap is a prefix.
+		return want < v.Tokens
+	case "stop":
+		// It ended on its own. A stop sequence may have removed text the
+		// tokens no longer show, so only plain end-of-text answers qualify.
+		if stop {
+			return false
+		}
+		return true
+	}
+	return false
+}
+
+func nowUnix(now time.Time) int64 { return now.Unix() }

@@ -1,0 +1,146 @@
+package proxy
+
+import (
+	"bytes"
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"net"
+	"net/http"
+	"strings"
+	"time"
+)
+
+// Upstream is one inference API the proxy forwards misses to.
+type Upstream struct {
+	// Name identifies the upstream in cache keys, logs and metrics.
+	Name string
+	// BaseURL is the API's base URL including its version path, as client
+	// libraries take it: a request to /v1/completions goes to BaseURL+"/completions".
+	BaseURL string
+	// Key is the upstream credential, sent as a bearer token. Empty sends none.
+	Key string
+	// Client sends the requests; nil uses a client with a pooled transport.
+	Client *http.Client
+	// Timeout bounds one upstream call; zero means 10 minutes.
+	Timeout time.Duration
+	// Models routes requests by model name: an exact name, or a prefix ending
+	// in "*". Empty matches every model.
+	Models []string
+}
+
+func (u *Upstream) timeout() time.Duration {
+	if u.Timeout > 0 {
+		return u.Timeout
+	}
+	return 10 * time.Minute
+}
+
+func (u *Upstream) matches(model string) bool {
+	if len(u.Models) == 0 {
+		return true
+	}
+	for _, m := range u.Models {
+		if p, ok := strings.CutSuffix(m, "*"); ok {
+			if strings.HasPrefix(model, p) {
+				return true
+			}
+		} else if m == model {
+			return true
+		}
+	}
+	return false
+}
+
+// NewUpstreamClient returns an HTTP client tuned for many concurrent calls to
+// one host.
+func NewUpstreamClient() *http.Client {
+	t := http.DefaultTransport.(*http.Transport).Clone()
+	t.MaxIdleConns = 512
+	t.MaxIdleConnsPerHost = 256
+	t.IdleConnTimeout = 90 * time.Second
+	return &http.Client{Transport: t}
+}
+
+// upstreamError is a failed call: either a status the upstream answered with
+// (passed through to the client with its body) or a transport failure.
+type upstreamError struct {
+	status int // upstream's own status; 0 for a transport failure
+	header http.Header
+	body   []byte
+	err    error
+}
+
+func (e *upstreamError) Error() string {
+	if e.status != 0 {
+		return fmt.Sprintf("upstream answered %d", e.status)
+	}
+	return "upstream call failed: " + e.err.Error()
+}
+
+func (e *upstreamError) Unwrap() error { return e.err }
+
+// apiError maps a transport failure to 502 or 504.
+func (e *upstreamError) apiError() *apiError {
+	var ne net.Error
+	if errors.Is(e.err, context.DeadlineExceeded) || (errors.As(e.err, &ne) && ne.Timeout()) {
+		return &apiError{status: http.StatusGatewayTimeout, typ: errUpstream, code: "upstream_timeout", message: "the upstream did not answer in time"}
+	}
+	return &apiError{status: http.StatusBadGateway, typ: errUpstream, code: "upstream_unreachable", message: "the upstream could not be reached: " + e.err.Error()}
+}
+
+// post sends body to the upstream endpoint and returns the response when its
+// status is 2xx. Other statuses come back as *upstreamError with the body read.
+func (u *Upstream) post(ctx context.Context, ep endpoint, body []byte) (*http.Response, error) {
+	req, err := http.NewRequestWithContext(ctx, http.MethodPost, strings.TrimSuffix(u.BaseURL, "/")+"/"+string(ep), bytes.NewReader(body))
+	if err != nil {
+		return nil, &upstreamError{err: err}
+	}
+	req.Header.Set("Content-Type", "application/json")
+	req.Header.Set("Accept", "application/json, text/event-stream")
+	if u.Key != "" {
+		req.Header.Set("Authorization", "Bearer "+u.Key)
+	}
+	resp, err := u.client().Do(req)
+	if err != nil {
+		return nil, &upstreamError{err: err}
+	}
+	if resp.StatusCode/100 != 2 {
+		defer resp.Body.Close()
+		b, rerr := io.ReadAll(io.LimitReader(resp.Body, 1<<20))
+		if rerr != nil {
+			return nil, &upstreamError{err: rerr}
+		}
+		return nil, &upstreamError{status: resp.StatusCode, header: resp.Header, body: b}
+	}
+	return resp, nil
+}
+
+// get fetches a path below the base URL (used for /models).
+func (u *Upstream) get(ctx context.Context, path string) ([]byte, int, error) {
+	req, err := http.NewRequestWithContext(ctx, http.MethodGet, strings.TrimSuffix(u.BaseURL, "/")+path, nil)
+	if err != nil {
+		return nil, 0, &upstreamError{err: err}
+	}
+	if u.Key != "" {
+		req.Header.Set("Authorization", "Bearer "+u.Key)
+	}
+	resp, err := u.client().Do(req)
+	if err != nil {
+		return nil, 0, &upstreamError{err: err}
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(io.LimitReader(resp.Body, 8<<20))
+	if err != nil {
+		return nil, 0, &upstreamError{err: err}
+	}
+	return b, resp.StatusCode, nil
+}
+
+func (u *Upstream) client() *http.Client {
+	if u.Client != nil {
+		return u.Client
+	}
+	return http.DefaultClient
+}

@@ -1,0 +1,201 @@
+package upstreamtest_test
+
+import (
+	"bytes"
+	"encoding/json"
+	"io"
+	"math"
+	"net/http"
+	"testing"
+
+	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+// Wire types as a client decodes them, with pointers where the wire format
+// has nulls.
+type completion struct {
+	ID      string             `json:"id"`
+	Object  string             `json:"object"`
+	Created int64              `json:"created"`
+	Model   string             `json:"model"`
+	Choices []completionChoice `json:"choices"`
+	Usage   *usage             `json:"usage"`
+}
+
+type completionChoice struct {
+	Text         string    `json:"text"`
+	Index        int       `json:"index"`
+	Logprobs     *logprobs `json:"logprobs"`
+	FinishReason *string   `json:"finish_reason"`
+}
+
+type logprobs struct {
+	Tokens        []string             `json:"tokens"`
+	TokenLogprobs []*float64           `json:"token_logprobs"`
+	TopLogprobs   []map[string]float64 `json:"top_logprobs"`
+	TextOffset    []int                `json:"text_offset"`
+}
+
+type usage struct {
+	PromptTokens     int `json:"prompt_tokens"`
+	CompletionTokens int `json:"completion_tokens"`
+	TotalTokens      int `json:"total_tokens"`
+}
+
+type chatCompletion struct {
+	ID      string       `json:"id"`
+	Object  string       `json:"object"`
+	Model   string       `json:"model"`
+	Choices []chatChoice `json:"choices"`
+	Usage   *usage       `json:"usage"`
+}
+
+type chatChoice struct {
+	Index   int `json:"index"`
+	Message *struct {
+		Role    string `json:"role"`
+		Content string `json:"content"`
+	} `json:"message"`
+	Delta *struct {
+		Role    string  `json:"role"`
+		Content *string `json:"content"`
+	} `json:"delta"`
+	Logprobs *struct {
+		Content []chatTokenLogprob `json:"content"`
+	} `json:"logprobs"`
+	FinishReason *string `json:"finish_reason"`
+}
+
+type chatTokenLogprob struct {
+	Token       string  `json:"token"`
+	Logprob     float64 `json:"logprob"`
+	Bytes       []int   `json:"bytes"`
+	TopLogprobs []struct {
+		Token   string  `json:"token"`
+		Logprob float64 `json:"logprob"`
+		Bytes   []int   `json:"bytes"`
+	} `json:"top_logprobs"`
+}
+
+type errorEnvelope struct {
+	Error *struct {
+		Message string  `json:"message"`
+		Type    string  `json:"type"`
+		Param   *string `json:"param"`
+		Code    *string `json:"code"`
+	} `json:"error"`
+}
+
+// post sends body to path (below the /v1 base) and returns the response
+// with its body read.
+func post(tb testing.TB, up *upstreamtest.Server, path, body string, header http.Header) (*http.Response, []byte) {
+	tb.Helper()
+	req, err := http.NewRequest(http.MethodPost, up.URL()+path, bytes.NewReader([]byte(body)))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	req.Header.Set("Content-Type", "application/json")
+	for k, v := range header {
+		req.Header[k] = v
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	if err != nil {
+		tb.Fatalf("reading %s answer: %v", path, err)
+	}
+	return resp, b
+}
+
+// postOK sends body and decodes a 200 answer into v.
+func postOK(tb testing.TB, up *upstreamtest.Server, path, body string, v any) {
+	tb.Helper()
+	resp, b := post(tb, up, path, body, nil)
+	if resp.StatusCode != http.StatusOK {
+		tb.Fatalf("POST %s %s: status %d, body %s", path, body, resp.StatusCode, b)
+	}
+	if err := json.Unmarshal(b, v); err != nil {
+		tb.Fatalf("decoding %s: %v", b, err)
+	}
+}
+
+// streamEvents parses an event-stream answer into its data payloads,
+// which must end with [DONE].
+func streamEvents(tb testing.TB, body []byte) [][]byte {
+	tb.Helper()
+	r := sse.NewReader(bytes.NewReader(body))
+	var out [][]byte
+	for {
+		ev, err := r.Next()
+		if err != nil {
+			tb.Fatalf("stream ended without [DONE]: %v", err)
+		}
+		if ev.IsDone() {
+			break
+		}
+		out = append(out, []byte(ev.Data))
+	}
+	if _, err := r.Next(); err != io.EOF {
+		tb.Fatalf("after [DONE]: %v; want io.EOF", err)
+	}
+	return out
+}
+
+// checkLogprobs checks the invariants of a completions logprobs object
+// against its choice text: tokens concatenate to text, offsets count from
+// the start of the text, exactly k top entries with probabilities summing
+// to at most one, and (greedy) the chosen token is the most likely.
+func checkLogprobs(tb testing.TB, text string, lp *logprobs, k int, greedy bool, base int) {
+	tb.Helper()
+	if lp == nil {
+		tb.Fatal("logprobs = null; want an object")
+	}
+	n := len(lp.Tokens)
+	if len(lp.TokenLogprobs) != n || len(lp.TopLogprobs) != n || len(lp.TextOffset) != n {
+		tb.Fatalf("logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	}
+	joined, off := "", base
+	for i, tok := range lp.Tokens {
+		if lp.TextOffset[i] != off {
+			tb.Errorf("text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
+		}
+		joined += tok
+		off += len(tok)
+		if lp.TokenLogprobs[i] == nil {
+			if i != 0 || lp.TopLogprobs[i] != nil {
+				tb.Errorf("token %d %q has a null logprob; only the first echoed token may", i, tok)
+			}
+			continue
+		}
+		if *lp.TokenLogprobs[i] >= 0 {
+			tb.Errorf("token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
+		}
+		top := lp.TopLogprobs[i]
+		if len(top) != k {
+			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
+		}
+		var mass float64
+		best, bestLP := "", -1e300
+		for t, v := range top {
+			mass += exp(v)
+			if v > bestLP {
+				best, bestLP = t, v
+			}
+		}
+		if mass > 1 {
+			tb.Errorf("top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
+		}
+		if greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]) {
+			tb.Errorf("greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
+		}
+	}
+	if joined != text {
+		tb.Errorf("tokens join to %q; want the text %q", joined, text)
+	}
+}
+
+func exp(x float64) float64 { return math.Exp(x) }

@@ -1,0 +1,1008 @@
+package upstreamtest_test
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"net/http"
+	"slices"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+func TestValidation(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const c, ch = "/completions", "/chat/completions"
+	tests := []struct {
+		name       string
+		path, body string
+		status     int
+		param      string // "" for null
+		code       string // "" for null
+	}{
+		{"bad JSON", c, `{"model":`, 400, "", ""},
+		{"not an object", c, `["quill-small"]`, 400, "", ""},
+		{"missing model", c, `{"prompt":"hi"}`, 400, "model", ""},
+		{"unknown model", c, `{"model":"quill-huge","prompt":"hi"}`, 404, "", "model_not_found"},
+		{"model of wrong type", c, `{"model":7,"prompt":"hi"}`, 400, "model", ""},
+		{"max_tokens of wrong type", c, `{"model":"quill-small","prompt":"hi","max_tokens":"ten"}`, 400, "max_tokens", ""},
+		{"negative max_tokens", c, `{"model":"quill-small","prompt":"hi","max_tokens":-1}`, 400, "max_tokens", "invalid_value"},
+		{"max_tokens past the context", c, `{"model":"quill-small","prompt":"hi","max_tokens":1000000}`, 400, "max_tokens", "context_length_exceeded"},
+		{"temperature out of range", c, `{"model":"quill-small","prompt":"hi","temperature":2.5}`, 400, "temperature", "invalid_value"},
+		{"top_p out of range", c, `{"model":"quill-small","prompt":"hi","top_p":1.5}`, 400, "top_p", "invalid_value"},
+		{"n zero", c, `{"model":"quill-small","prompt":"hi","n":0}`, 400, "n", "invalid_value"},
+		{"logprobs over 20", c, `{"model":"quill-small","prompt":"hi","logprobs":21}`, 400, "logprobs", "invalid_value"},
+		{"logprobs negative", c, `{"model":"quill-small","prompt":"hi","logprobs":-1}`, 400, "logprobs", "invalid_value"},
+		{"logprobs of wrong type", c, `{"model":"quill-small","prompt":"hi","logprobs":true}`, 400, "logprobs", ""},
+		{"echo of wrong type", c, `{"model":"quill-small","prompt":"hi","echo":"yes"}`, 400, "echo", ""},
+		{"missing prompt", c, `{"model":"quill-small"}`, 400, "prompt", ""},
+		{"empty prompt array", c, `{"model":"quill-small","prompt":[]}`, 400, "prompt", ""},
+		{"mixed prompt array", c, `{"model":"quill-small","prompt":["a",1]}`, 400, "prompt", ""},
+		{"empty token list", c, `{"model":"quill-small","prompt":[[]]}`, 400, "prompt", ""},
+		{"token id out of range", c, `{"model":"quill-small","prompt":[1,99999]}`, 400, "prompt", ""},
+		{"prompt of wrong type", c, `{"model":"quill-small","prompt":{"text":"hi"}}`, 400, "prompt", ""},
+		{"stop of wrong type", c, `{"model":"quill-small","prompt":"hi","stop":7}`, 400, "stop", ""},
+		{"too many stops", c, `{"model":"quill-small","prompt":"hi","stop":["a","b","c","d","e"]}`, 400, "stop", ""},
+		{"stream_options without stream", c, `{"model":"quill-small","prompt":"hi","stream_options":{"include_usage":true}}`, 400, "stream_options", ""},
+		{"chat without messages", ch, `{"model":"quill-small"}`, 400, "messages", ""},
+		{"chat with empty messages", ch, `{"model":"quill-small","messages":[]}`, 400, "messages", ""},
+		{"chat with an unknown role", ch, `{"model":"quill-small","messages":[{"role":"robot","content":"hi"}]}`, 400, "messages[0].role", ""},
+		{"chat content of wrong type", ch, `{"model":"quill-small","messages":[{"role":"user","content":5}]}`, 400, "messages[0].content", ""},
+		{"chat top_logprobs without logprobs", ch, `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"top_logprobs":2}`, 400, "top_logprobs", ""},
+		{"chat top_logprobs over 20", ch, `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"logprobs":true,"top_logprobs":21}`, 400, "top_logprobs", "invalid_value"},
+		{"chat max_tokens zero", ch, `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"max_tokens":0}`, 400, "max_tokens", "invalid_value"},
+		{"chat unknown model", ch, `{"model":"quill-huge","messages":[{"role":"user","content":"hi"}]}`, 404, "", "model_not_found"},
+		{"chat missing model", ch, `{"messages":[{"role":"user","content":"hi"}]}`, 400, "model", ""},
+		{"unknown fields are accepted", c, `{"model":"quill-small","prompt":"hi","best_of":3,"frobnicate":{"x":[1]},"user":"u1"}`, 200, "", ""},
+		{"chat unknown fields are accepted", ch, `{"model":"quill-small","messages":[{"role":"user","content":[{"type":"text","text":"hi"}]}],"tools":[],"user":"u1"}`, 200, "", ""},
+		{"max_tokens zero is allowed", c, `{"model":"quill-small","prompt":"hi","max_tokens":0,"echo":true,"logprobs":1}`, 200, "", ""},
+		{"null logprobs means none", c, `{"model":"quill-small","prompt":"hi","logprobs":null}`, 200, "", ""},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			resp, body := post(t, up, tt.path, tt.body, nil)
+			if resp.StatusCode != tt.status {
+				t.Fatalf("status = %d; want %d (body %s)", resp.StatusCode, tt.status, body)
+			}
+			if ct := resp.Header.Get("Content-Type"); ct != "application/json" {
+				t.Errorf("Content-Type = %q; want application/json", ct)
+			}
+			if resp.Header.Get("x-request-id") == "" {
+				t.Error("no x-request-id header")
+			}
+			if tt.status == 200 {
+				return
+			}
+			var env errorEnvelope
+			if err := json.Unmarshal(body, &env); err != nil || env.Error == nil {
+				t.Fatalf("error body %s does not have the error shape (%v)", body, err)
+			}
+			e := env.Error
+			if e.Message == "" || e.Type != "invalid_request_error" {
+				t.Errorf("error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
+			}
+			if got := deref(e.Param); got != tt.param {
+				t.Errorf("param = %q; want %q", got, tt.param)
+			}
+			if got := deref(e.Code); got != tt.code {
+				t.Errorf("code = %q; want %q", got, tt.code)
+			}
+		})
+	}
+	if got := up.Prompts(); got != 4 {
+		t.Errorf("Prompts() = %d after four accepted requests; want 4 (refused ones count none)", got)
+	}
+}
+
+func deref(s *string) string {
+	if s == nil {
+		return ""
+	}
+	return *s
+}
+
+func TestRoutes(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	tests := []struct {
+		method, path string
+		status       int
+	}{
+		{"GET", "/completions", 405},
+		{"GET", "/chat/completions", 405},
+		{"POST", "/models", 405},
+		{"GET", "/embeddings", 404},
+		{"GET", "/models/quill-large", 200},
+		{"GET", "/models/quill-huge", 404},
+	}
+	for _, tt := range tests {
+		req, _ := http.NewRequest(tt.method, up.URL()+tt.path, nil)
+		resp, err := http.DefaultClient.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		if resp.StatusCode != tt.status {
+			t.Errorf("%s %s: status %d; want %d", tt.method, tt.path, resp.StatusCode, tt.status)
+		}
+	}
+	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 1, Chat: 1, Models: 3, Other: 1}); got != want {
+		t.Errorf("Calls() = %+v; want %+v", got, want)
+	}
+}
+
+func TestModelsList(t *testing.T) {
+	for _, tt := range []struct {
+		opts upstreamtest.Options
+		want []string
+	}{
+		{upstreamtest.Options{}, []string{upstreamtest.ModelSmall, upstreamtest.ModelLarge}},
+		{upstreamtest.Options{Models: []string{"heron-1"}}, []string{"heron-1"}},
+	} {
+		up := upstreamtest.New(tt.opts)
+		resp, err := http.Get(up.URL() + "/models")
+		if err != nil {
+			t.Fatal(err)
+		}
+		var list struct {
+			Object string `json:"object"`
+			Data   []struct {
+				ID     string `json:"id"`
+				Object string `json:"object"`
+			} `json:"data"`
+		}
+		err = json.NewDecoder(resp.Body).Decode(&list)
+		resp.Body.Close()
+		up.Close()
+		if err != nil {
+			t.Fatal(err)
+		}
+		var got []string
+		for _, m := range list.Data {
+			got = append(got, m.ID)
+			if m.Object != "model" {
+				t.Errorf("model object = %q; want model", m.Object)
+			}
+		}
+		if list.Object != "list" || !slices.Equal(got, tt.want) {
+			t.Errorf("models = %q (%s); want %q (list)", got, list.Object, tt.want)
+		}
+	}
+}
+
+func TestAuth(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{Key: "up-secret"})
+	defer up.Close()
+	body := `{"model":"quill-small","prompt":"hi","max_tokens":2}`
+	tests := []struct {
+		auth   string
+		status int
+	}{
+		{"", 401},
+		{"Bearer client-key", 401},
+		{"up-secret", 401},
+		{"Bearer up-secret", 200},
+	}
+	for _, tt := range tests {
+		h := http.Header{}
+		if tt.auth != "" {
+			h.Set("Authorization", tt.auth)
+		}
+		resp, b := post(t, up, "/completions", body, h)
+		if resp.StatusCode != tt.status {
+			t.Errorf("Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
+		}
+		if tt.status == 401 {
+			var env errorEnvelope
+			if json.Unmarshal(b, &env) != nil || env.Error == nil || deref(env.Error.Code) != "invalid_api_key" {
+				t.Errorf("401 body %s; want code invalid_api_key", b)
+			}
+		}
+	}
+	if got := up.Calls().Completions; got != 4 {
+		t.Errorf("Calls().Completions = %d; want 4 (refused calls reached it too)", got)
+	}
+	if got := up.Prompts(); got != 1 {
+		t.Errorf("Prompts() = %d; want 1", got)
+	}
+}
+
+func TestCountersRequestsReset(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	var out completion
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":["a","b","c"],"max_tokens":1,"n":2}`, &out)
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[1,2],[3]],"max_tokens":1}`, &out)
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[1,2,3],"max_tokens":1}`, &out)
+	var chat chatCompletion
+	h := http.Header{"Authorization": {"Bearer team-key"}, "X-Trace": {"t1"}}
+	resp, _ := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"max_tokens":1}`, h)
+	if resp.StatusCode != 200 {
+		t.Fatalf("chat status %d", resp.StatusCode)
+	}
+	_ = chat
+	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1}); got != want {
+		t.Errorf("Calls() = %+v; want %+v", got, want)
+	}
+	if got, want := up.Calls().Total(), 4; got != want {
+		t.Errorf("Calls().Total() = %d; want %d", got, want)
+	}
+	// 3 + 2 + 1 prompts, and the chat call counts one.
+	if got := up.Prompts(); got != 7 {
+		t.Errorf("Prompts() = %d; want 7", got)
+	}
+	reqs := up.Requests()
+	if len(reqs) != 4 {
+		t.Fatalf("Requests() has %d entries; want 4", len(reqs))
+	}
+	last := reqs[3]
+	if last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1" {
+		t.Errorf("last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	}
+	if !strings.Contains(string(last.Body), `"messages"`) {
+		t.Errorf("last body = %s; want the chat body", last.Body)
+	}
+	// Copies: changing them does not change what the server holds.
+	last.Body[0] = 'X'
+	last.Header.Set("Authorization", "changed")
+	again := up.Requests()[3]
+	if again.Body[0] != '{' || again.Header.Get("Authorization") != "Bearer team-key" {
+		t.Error("Requests() returned the server's own slices or headers, not copies")
+	}
+	up.Reset()
+	if got := up.Calls(); got != (upstreamtest.Calls{}) {
+		t.Errorf("after Reset, Calls() = %+v; want zero", got)
+	}
+	if up.Prompts() != 0 || len(up.Requests()) != 0 {
+		t.Errorf("after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
+	}
+}
+
+func TestCompletionsGreedyAndLogprobs(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const prompt = "The skipper moors the barge at dusk"
+	req := func(maxTokens, k int, echo bool) string {
+		return fmt.Sprintf(`{"model":"quill-large","prompt":%q,"max_tokens":%d,"temperature":0,"logprobs":%d,"echo":%v}`, prompt, maxTokens, k, echo)
+	}
+	var long completion
+	postOK(t, up, "/completions", req(40, 5, false), &long)
+	if long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0 {
+		t.Errorf("envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	}
+	lc := long.Choices[0]
+	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
+	if got, want := *long.Usage, (usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)}); got != want {
+		t.Errorf("usage = %+v; want %+v", got, want)
+	}
+	// Same prompt, same answer; fewer tokens give a prefix.
+	for _, n := range []int{0, 1, 5, 16} {
+		var short completion
+		postOK(t, up, "/completions", req(n, 3, false), &short)
+		sc := short.Choices[0]
+		checkLogprobs(t, sc.Text, sc.Logprobs, 3, true, 0)
+		wantToks := lc.Logprobs.Tokens[:min(n, len(lc.Logprobs.Tokens))]
+		if !slices.Equal(sc.Logprobs.Tokens, wantToks) {
+			t.Errorf("max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
+		}
+		if n < len(lc.Logprobs.Tokens) && *sc.FinishReason != "length" {
+			t.Errorf("max_tokens %d: finish_reason %q; want length", n, *sc.FinishReason)
+		}
+	}
+	// Echo: the prompt's tokens first, the first without a log-probability,
+	// offsets counted from the start of the prompt.
+	var echoed completion
+	postOK(t, up, "/completions", req(4, 2, true), &echoed)
+	ec := echoed.Choices[0]
+	checkLogprobs(t, ec.Text, ec.Logprobs, 2, false, 0)
+	if !strings.HasPrefix(ec.Text, prompt) || ec.Text[len(prompt):] != strings.Join(lc.Logprobs.Tokens[:4], "") {
+		t.Errorf("echoed text %q; want the prompt then %q", ec.Text, strings.Join(lc.Logprobs.Tokens[:4], ""))
+	}
+	if ec.Logprobs.TokenLogprobs[0] != nil || len(ec.Logprobs.Tokens) != 7+4 {
+		t.Errorf("echo tokens %q, first logprob %v; want 11 tokens, the first null", ec.Logprobs.Tokens, ec.Logprobs.TokenLogprobs[0])
+	}
+	if echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7 {
+		t.Errorf("echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
+	}
+	// Without logprobs the field is null.
+	var plain completion
+	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
+	if resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`) {
+		t.Errorf("answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
+	}
+	json.Unmarshal(b, &plain)
+	if got := strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""); plain.Choices[0].Text != got {
+		t.Errorf("default max_tokens answer %q; want the first 16 tokens %q", plain.Choices[0].Text, got)
+	}
+}
+
+func TestModelsDiffer(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	var a, b completion
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":"hive","max_tokens":30,"temperature":0}`, &a)
+	postOK(t, up, "/completions", `{"model":"quill-large","prompt":"hive","max_tokens":30,"temperature":0}`, &b)
+	if a.Choices[0].Text == b.Choices[0].Text {
+		t.Errorf("both models answered %q; want different answers", a.Choices[0].Text)
+	}
+}
+
+func TestArrayPromptsAndIndexes(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	prompts := []string{"The queen", "Three jars of heather honey", "fog on the river"}
+	single := make([]string, len(prompts))
+	promptTokens := 0
+	for i, p := range prompts {
+		var c completion
+		postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%q,"max_tokens":6,"temperature":0}`, p), &c)
+		single[i] = c.Choices[0].Text
+		promptTokens += c.Usage.PromptTokens
+	}
+	pj, _ := json.Marshal(prompts)
+	var batch completion
+	postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%s,"max_tokens":6,"temperature":0,"n":2,"logprobs":1}`, pj), &batch)
+	if len(batch.Choices) != 6 {
+		t.Fatalf("%d choices; want 3 prompts x n=2", len(batch.Choices))
+	}
+	completionTokens := 0
+	for i, c := range batch.Choices {
+		if c.Index != i {
+			t.Errorf("choice %d has index %d", i, c.Index)
+		}
+		if want := single[c.Index/2]; c.Text != want {
+			t.Errorf("choice %d (prompt %d) = %q; want %q", c.Index, c.Index/2, c.Text, want)
+		}
+		completionTokens += len(c.Logprobs.Tokens)
+	}
+	if got, want := *batch.Usage, (usage{promptTokens, completionTokens, promptTokens + completionTokens}); got != want {
+		t.Errorf("usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
+	}
+}
+
+func TestTokenIDPrompts(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	// Read the tokens back from an echo to learn ids' text: ids 24 and 56
+	// are " barge" and " hive" in the vocabulary.
+	var ids, text completion
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[24,56],"max_tokens":5,"temperature":0,"echo":true}`, &ids)
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":" barge hive","max_tokens":5,"temperature":0,"echo":true}`, &text)
+	if ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive") {
+		t.Errorf("token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
+	}
+	if ids.Usage.PromptTokens != 2 {
+		t.Errorf("prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
+	}
+	var lists completion
+	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
+	if len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3 {
+		t.Errorf("array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
+	}
+}
+
+func TestStopSequences(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const body = `{"model":"quill-small","prompt":"Before dawn the crew","max_tokens":20,"temperature":0,"logprobs":0%s}`
+	var full completion
+	postOK(t, up, "/completions", fmt.Sprintf(body, ""), &full)
+	toks := full.Choices[0].Logprobs.Tokens
+	if len(toks) < 6 {
+		t.Fatalf("answer %q too short for the test", toks)
+	}
+	tests := []struct {
+		name string
+		stop string
+		keep int // tokens kept
+	}{
+		{"whole token", toks[4], 4},
+		{"inside a token", toks[3][2:], 3},
+		{"across tokens", toks[2] + toks[3], 2},
+	}
+	for _, tt := range tests {
+		stop, _ := json.Marshal([]string{"zzz", tt.stop})
+		var got completion
+		postOK(t, up, "/completions", fmt.Sprintf(body, `,"stop":`+string(stop)), &got)
+		c := got.Choices[0]
+		want := strings.Join(toks[:tt.keep], "")
+		if strings.Index(strings.Join(toks, ""), tt.stop) < len(want) {
+			t.Fatalf("%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
+		}
+		if c.Text != want || *c.FinishReason != "stop" {
+			t.Errorf("%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
+		}
+		checkLogprobs(t, c.Text, c.Logprobs, 0, true, 0)
+	}
+	var one completion
+	postOK(t, up, "/completions", fmt.Sprintf(body, fmt.Sprintf(`,"stop":%q`, toks[1])), &one)
+	if strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop" {
+		t.Errorf("stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
+	}
+}
+
+func TestEndsOnItsOwn(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	stops := 0
+	for i := range 40 {
+		var c completion
+		postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":"jar %d","max_tokens":16,"temperature":0,"logprobs":0}`, i), &c)
+		ch := c.Choices[0]
+		switch *ch.FinishReason {
+		case "stop":
+			stops++
+			n := len(ch.Logprobs.Tokens)
+			if last := ch.Logprobs.Tokens[n-1]; !slices.Contains([]string{".", "!", "?"}, last) {
+				t.Errorf("stopped after %q", last)
+			}
+		case "length":
+			if len(ch.Logprobs.Tokens) != 16 {
+				t.Errorf("length with %d tokens", len(ch.Logprobs.Tokens))
+			}
+		default:
+			t.Errorf("finish_reason %q", *ch.FinishReason)
+		}
+	}
+	if stops == 0 || stops == 40 {
+		t.Errorf("%d of 40 answers ended on their own; want some but not all", stops)
+	}
+}
+
+func TestSampling(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	text := func(extra string) []string {
+		var c completion
+		postOK(t, up, "/completions", `{"model":"quill-small","prompt":"The swarm","max_tokens":32,"n":3`+extra+`}`, &c)
+		var out []string
+		for _, ch := range c.Choices {
+			out = append(out, ch.Text)
+		}
+		return out
+	}
+	a, b := text(`,"temperature":1`), text("") // the default temperature is 1
+	if slices.Equal(a, b) {
+		t.Errorf("two unseeded sampled calls both answered %q; want them to differ", a)
+	}
+	if a[0] == a[1] && a[1] == a[2] {
+		t.Errorf("n=3 sampled choices are all %q; want them to differ", a[0])
+	}
+	s1, s2, s3 := text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":8`)
+	if !slices.Equal(s1, s2) {
+		t.Errorf("seed 7 answered %q, then %q; want the same", s1, s2)
+	}
+	if slices.Equal(s1, s3) {
+		t.Errorf("seeds 7 and 8 both answered %q; want them to differ", s1)
+	}
+	g1, g2 := text(`,"temperature":0`), text(`,"temperature":0,"seed":99`)
+	if !slices.Equal(g1, g2) || g1[0] != g1[1] {
+		t.Errorf("greedy answers %q and %q; want all equal", g1, g2)
+	}
+}
+
+// assembled is a streamed choice put back together.
+type assembled struct {
+	text   string
+	lp     logprobs
+	finish string
+}
+
+func TestCompletionStreamMatchesAnswer(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const base = `{"model":"quill-small","prompt":["The ferry","Dusk over the weir"],"max_tokens":7,"temperature":0,"n":2,"logprobs":3,"echo":true`
+	var whole completion
+	postOK(t, up, "/completions", base+`}`, &whole)
+
+	resp, body := post(t, up, "/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
+	if ct := resp.Header.Get("Content-Type"); !strings.HasPrefix(ct, "text/event-stream") {
+		t.Fatalf("Content-Type = %q; want text/event-stream", ct)
+	}
+	events := streamEvents(t, body)
+	got := map[int]*assembled{}
+	var streamUsage *usage
+	for i, data := range events {
+		var c completion
+		if err := json.Unmarshal(data, &c); err != nil {
+			t.Fatalf("event %d %s: %v", i, data, err)
+		}
+		if c.Object != "text_completion" {
+			t.Errorf("event %d object %q", i, c.Object)
+		}
+		if c.Usage != nil {
+			if i != len(events)-1 || len(c.Choices) != 0 {
+				t.Errorf("usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
+			}
+			streamUsage = c.Usage
+			continue
+		}
+		if len(c.Choices) != 1 {
+			t.Fatalf("event %d has %d choices; want 1", i, len(c.Choices))
+		}
+		ch := c.Choices[0]
+		a := got[ch.Index]
+		if a == nil {
+			a = &assembled{}
+			got[ch.Index] = a
+		}
+		if a.finish != "" {
+			t.Errorf("choice %d has a chunk after its finish_reason", ch.Index)
+		}
+		if ch.Logprobs == nil {
+			t.Fatalf("event %d: logprobs null", i)
+		}
+		for j, off := range ch.Logprobs.TextOffset {
+			if off != len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")) {
+				t.Errorf("choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
+			}
+		}
+		a.text += ch.Text
+		a.lp.Tokens = append(a.lp.Tokens, ch.Logprobs.Tokens...)
+		a.lp.TokenLogprobs = append(a.lp.TokenLogprobs, ch.Logprobs.TokenLogprobs...)
+		a.lp.TopLogprobs = append(a.lp.TopLogprobs, ch.Logprobs.TopLogprobs...)
+		a.lp.TextOffset = append(a.lp.TextOffset, ch.Logprobs.TextOffset...)
+		if ch.FinishReason != nil {
+			a.finish = *ch.FinishReason
+		}
+	}
+	if len(got) != len(whole.Choices) {
+		t.Fatalf("stream has %d choices; want %d", len(got), len(whole.Choices))
+	}
+	for _, w := range whole.Choices {
+		a := got[w.Index]
+		if a.text != w.Text || a.finish != *w.FinishReason {
+			t.Errorf("choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
+		}
+		wl, _ := json.Marshal(w.Logprobs)
+		al, _ := json.Marshal(a.lp)
+		if string(wl) != string(al) {
+			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
+		}
+	}
+	if streamUsage == nil || *streamUsage != *whole.Usage {
+		t.Errorf("stream usage %+v; want %+v", streamUsage, *whole.Usage)
+	}
+
+	// Without include_usage there is no usage chunk.
+	_, body = post(t, up, "/completions", base+`,"stream":true}`, nil)
+	for _, data := range streamEvents(t, body) {
+		var c completion
+		json.Unmarshal(data, &c)
+		if c.Usage != nil || len(c.Choices) != 1 {
+			t.Errorf("event %s without include_usage; want one choice and no usage", data)
+		}
+	}
+}
+
+func TestChat(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const base = `{"model":"quill-large","messages":[{"role":"system","content":"You keep bees."},{"role":"user","content":"Where is the barge?"}],"temperature":0,"logprobs":true,"top_logprobs":4`
+	var long, short chatCompletion
+	postOK(t, up, "/chat/completions", base+`,"max_completion_tokens":12}`, &long)
+	postOK(t, up, "/chat/completions", base+`,"max_tokens":5}`, &short)
+	if long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-") {
+		t.Errorf("envelope %q %q", long.Object, long.ID)
+	}
+	lc := long.Choices[0]
+	if lc.Message == nil || lc.Message.Role != "assistant" {
+		t.Fatalf("message = %+v; want an assistant message", lc.Message)
+	}
+	var joined string
+	for i, tl := range lc.Logprobs.Content {
+		joined += tl.Token
+		if string(bytesOf(tl.Bytes)) != tl.Token {
+			t.Errorf("token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
+		}
+		if len(tl.TopLogprobs) != 4 {
+			t.Fatalf("token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
+		}
+		if tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0 {
+			t.Errorf("greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
+		}
+		var mass float64
+		for j, top := range tl.TopLogprobs {
+			mass += exp(top.Logprob)
+			if j > 0 && top.Logprob >= tl.TopLogprobs[j-1].Logprob {
+				t.Errorf("token %d: top_logprobs not in decreasing order", i)
+			}
+			if string(bytesOf(top.Bytes)) != top.Token {
+				t.Errorf("top entry bytes %v; want the bytes of %q", top.Bytes, top.Token)
+			}
+		}
+		if mass > 1 {
+			t.Errorf("token %d: top probabilities sum to %v", i, mass)
+		}
+	}
+	if joined != lc.Message.Content {
+		t.Errorf("logprob tokens join to %q; content %q", joined, lc.Message.Content)
+	}
+	n := len(short.Choices[0].Logprobs.Content)
+	if !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop") {
+		t.Errorf("5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
+	}
+	if long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens {
+		t.Errorf("usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+	}
+	// logprobs without top_logprobs: the content list with empty tops.
+	var bare chatCompletion
+	postOK(t, up, "/chat/completions", `{"model":"quill-large","messages":[{"role":"user","content":"hi"}],"max_tokens":3,"logprobs":true}`, &bare)
+	for _, tl := range bare.Choices[0].Logprobs.Content {
+		if len(tl.TopLogprobs) != 0 {
+			t.Errorf("top_logprobs %v; want none", tl.TopLogprobs)
+		}
+	}
+}
+
+func bytesOf(b []int) []byte {
+	out := make([]byte, len(b))
+	for i, v := range b {
+		out[i] = byte(v)
+	}
+	return out
+}
+
+func TestChatStreamMatchesAnswer(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const base = `{"model":"quill-small","messages":[{"role":"user","content":"Count the hives."}],"temperature":0,"n":2,"max_tokens":6,"logprobs":true,"top_logprobs":2`
+	var whole chatCompletion
+	postOK(t, up, "/chat/completions", base+`}`, &whole)
+	_, body := post(t, up, "/chat/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
+	events := streamEvents(t, body)
+	type acc struct {
+		role, content string
+		tokens        []chatTokenLogprob
+		finish        string
+		chunks        int
+	}
+	got := map[int]*acc{}
+	var streamUsage *usage
+	for i, data := range events {
+		var c chatCompletion
+		if err := json.Unmarshal(data, &c); err != nil {
+			t.Fatal(err)
+		}
+		if c.Object != "chat.completion.chunk" {
+			t.Errorf("object %q", c.Object)
+		}
+		if c.Usage != nil {
+			if i != len(events)-1 || len(c.Choices) != 0 {
+				t.Errorf("usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
+			}
+			streamUsage = c.Usage
+			continue
+		}
+		ch := c.Choices[0]
+		a := got[ch.Index]
+		if a == nil {
+			a = &acc{}
+			got[ch.Index] = a
+		}
+		a.chunks++
+		if ch.Delta == nil {
+			t.Fatalf("chunk %s has no delta", data)
+		}
+		if a.chunks == 1 && ch.Delta.Role != "assistant" {
+			t.Errorf("choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
+		}
+		if a.chunks > 1 && ch.Delta.Role != "" {
+			t.Errorf("choice %d role repeated in chunk %d", ch.Index, a.chunks)
+		}
+		if ch.Delta.Content != nil {
+			a.content += *ch.Delta.Content
+		}
+		if ch.Logprobs != nil {
+			a.tokens = append(a.tokens, ch.Logprobs.Content...)
+		}
+		if ch.FinishReason != nil {
+			a.finish = *ch.FinishReason
+		}
+	}
+	for _, w := range whole.Choices {
+		a := got[w.Index]
+		if a == nil || a.content != w.Message.Content || a.finish != *w.FinishReason {
+			t.Fatalf("choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		}
+		al, _ := json.Marshal(a.tokens)
+		wl, _ := json.Marshal(w.Logprobs.Content)
+		if string(al) != string(wl) {
+			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
+		}
+	}
+	if streamUsage == nil || *streamUsage != *whole.Usage {
+		t.Errorf("stream usage %+v; want %+v", streamUsage, whole.Usage)
+	}
+}
+
+func TestFaultStatus(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const body = `{"model":"quill-small","prompt":"hi","max_tokens":1}`
+	up.FailNext(2, upstreamtest.Fault{Status: 429, RetryAfter: "3"})
+	for i := range 2 {
+		resp, b := post(t, up, "/completions", body, nil)
+		var env errorEnvelope
+		json.Unmarshal(b, &env)
+		if resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error" {
+			t.Errorf("call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		}
+	}
+	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
+		t.Errorf("third call: %d; want 200 once the two faults are used", resp.StatusCode)
+	}
+	if up.Calls().Completions != 3 || up.Prompts() != 1 {
+		t.Errorf("Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
+	}
+
+	up.FailNext(1, upstreamtest.Fault{Path: upstreamtest.PathChat, Status: 503, Body: "upstream busy"})
+	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
+		t.Errorf("completions call under a chat-only fault: %d; want 200", resp.StatusCode)
+	}
+	resp, b := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}]}`, nil)
+	if resp.StatusCode != 503 || string(b) != "upstream busy" {
+		t.Errorf("chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
+	}
+
+	up.FailNext(5, upstreamtest.Fault{Status: 500})
+	up.ClearFaults()
+	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
+		t.Errorf("after ClearFaults: %d; want 200", resp.StatusCode)
+	}
+}
+
+func TestFaultRatio(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	up.FailRatio(0.5, upstreamtest.Fault{Status: 502})
+	var got []int
+	for range 6 {
+		resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil)
+		got = append(got, resp.StatusCode)
+	}
+	if want := []int{200, 502, 200, 502, 200, 502}; !slices.Equal(got, want) {
+		t.Errorf("statuses %v; want %v", got, want)
+	}
+	up.Reset()
+	if resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil); resp.StatusCode != 200 {
+		t.Errorf("after Reset: %d; want 200", resp.StatusCode)
+	}
+}
+
+// do sends a completions request under ctx and returns the response with
+// its body read, or the error.
+func do(ctx context.Context, up *upstreamtest.Server, body string) (*http.Response, []byte, error) {
+	req, err := http.NewRequestWithContext(ctx, http.MethodPost, up.URL()+"/completions", strings.NewReader(body))
+	if err != nil {
+		return nil, nil, err
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		return nil, nil, err
+	}
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	return resp, b, err
+}
+
+func TestFaultHangAndDelay(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const body = `{"model":"quill-small","prompt":"hi","max_tokens":1}`
+	for _, f := range []upstreamtest.Fault{{Hang: true}, {Delay: time.Hour}} {
+		up.FailNext(1, f)
+		ctx, cancel := context.WithTimeout(context.Background(), 50*time.Millisecond)
+		_, _, err := do(ctx, up, body)
+		cancel()
+		if !errors.Is(err, context.DeadlineExceeded) {
+			t.Errorf("fault %+v: error %v; want the client's deadline", f, err)
+		}
+	}
+	up.FailNext(1, upstreamtest.Fault{Delay: time.Millisecond})
+	if resp, _, err := do(context.Background(), up, body); err != nil || resp.StatusCode != 200 {
+		t.Errorf("short delay: %v; want a normal answer", err)
+	}
+	if got := up.Calls().Completions; got != 3 {
+		t.Errorf("Calls().Completions = %d; want 3", got)
+	}
+}
+
+func TestFaultHangReleasedByClose(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	up.FailNext(1, upstreamtest.Fault{Hang: true})
+	up.Block() // to know when the call has arrived
+	errc := make(chan error, 1)
+	go func() {
+		_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+		errc <- err
+	}()
+	if err := up.AwaitHeld(context.Background(), 1); err != nil {
+		t.Fatal(err)
+	}
+	up.Release() // now it hangs in the fault
+	up.Close()   // must not wait for the hanging call forever
+	<-errc
+}
+
+func TestFaultReset(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	up.FailNext(1, upstreamtest.Fault{Reset: true})
+	if _, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err == nil {
+		t.Error("reset connection: no error; want the client to see the connection drop")
+	}
+	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
+		t.Errorf("next call: %v; want a normal answer", err)
+	}
+}
+
+func TestFaultCut(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	up.FailNext(1, upstreamtest.Fault{Cut: 20})
+	if _, b, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); !errors.Is(err, io.ErrUnexpectedEOF) || len(b) != 20 {
+		t.Errorf("cut JSON answer: %d bytes, error %v; want 20 bytes and an unexpected EOF", len(b), err)
+	}
+	up.FailNext(1, upstreamtest.Fault{Cut: 3})
+	req, _ := http.NewRequest(http.MethodPost, up.URL()+"/completions", strings.NewReader(`{"model":"quill-small","prompt":"hi","stream":true,"max_tokens":10}`))
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	r := sse.NewReader(resp.Body)
+	n := 0
+	for {
+		ev, err := r.Next()
+		if err != nil {
+			if !errors.Is(err, io.ErrUnexpectedEOF) {
+				t.Errorf("cut stream ended with %v; want an unexpected EOF", err)
+			}
+			break
+		}
+		if ev.IsDone() {
+			t.Fatal("cut stream sent [DONE]")
+		}
+		n++
+	}
+	if n != 3 {
+		t.Errorf("cut stream gave %d events; want 3", n)
+	}
+}
+
+func TestBlockRelease(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	up.Block()
+	const callers = 8
+	results := make(chan int, callers)
+	var wg sync.WaitGroup
+	for range callers {
+		wg.Go(func() {
+			resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi","max_tokens":2}`)
+			if err != nil {
+				t.Error(err)
+				results <- 0
+				return
+			}
+			results <- resp.StatusCode
+		})
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+	defer cancel()
+	if err := up.AwaitHeld(ctx, callers); err != nil {
+		t.Fatal(err)
+	}
+	if got := up.Held(); got != callers {
+		t.Errorf("Held() = %d; want %d", got, callers)
+	}
+	if got := up.Calls().Completions; got != callers {
+		t.Errorf("held calls counted %d; want %d (counted on arrival)", got, callers)
+	}
+	select {
+	case s := <-results:
+		t.Fatalf("a held call answered (%d) before Release", s)
+	default:
+	}
+	if up.Prompts() != 0 {
+		t.Errorf("Prompts() = %d while held; want 0", up.Prompts())
+	}
+	up.Release()
+	wg.Wait()
+	close(results)
+	for s := range results {
+		if s != 200 {
+			t.Errorf("released call: status %d", s)
+		}
+	}
+	if up.Held() != 0 || up.Prompts() != callers {
+		t.Errorf("after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
+	}
+	// Not blocked any more.
+	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
+		t.Errorf("call after Release: %v", err)
+	}
+}
+
+func TestHeldCallGivesUp(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	up.Block()
+	defer up.Release()
+	ctx, cancel := context.WithCancel(context.Background())
+	errc := make(chan error, 1)
+	go func() {
+		_, _, err := do(ctx, up, `{"model":"quill-small","prompt":"hi"}`)
+		errc <- err
+	}()
+	if err := up.AwaitHeld(context.Background(), 1); err != nil {
+		t.Fatal(err)
+	}
+	cancel()
+	if err := <-errc; !errors.Is(err, context.Canceled) {
+		t.Errorf("error %v; want context.Canceled", err)
+	}
+	// The server notices the client leaving and stops holding the call.
+	waitCtx, stop := context.WithTimeout(context.Background(), 10*time.Second)
+	defer stop()
+	if err := up.AwaitHeld(waitCtx, 0); err != nil {
+		t.Fatalf("held call not released after the client left: %v", err)
+	}
+	short, stop2 := context.WithCancel(context.Background())
+	stop2()
+	if err := up.AwaitHeld(short, 1); !errors.Is(err, context.Canceled) {
+		t.Errorf("AwaitHeld with a done context: %v; want context.Canceled", err)
+	}
+}
+
+// TestTopLogprobsOrder checks that each top_logprobs object lists its
+// entries most likely first, as the real API does, by reading the raw
+// JSON in order.
+func TestTopLogprobsOrder(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	_, body := post(t, up, "/completions", `{"model":"quill-small","prompt":"The warden counts crates","max_tokens":6,"temperature":0,"logprobs":8}`, nil)
+	var raw struct {
+		Choices []struct {
+			Logprobs struct {
+				TopLogprobs []json.RawMessage `json:"top_logprobs"`
+			} `json:"logprobs"`
+		} `json:"choices"`
+	}
+	if err := json.Unmarshal(body, &raw); err != nil {
+		t.Fatal(err)
+	}
+	tops := raw.Choices[0].Logprobs.TopLogprobs
+	if len(tops) == 0 {
+		t.Fatalf("no top_logprobs in %s", body)
+	}
+	for i, obj := range tops {
+		dec := json.NewDecoder(strings.NewReader(string(obj)))
+		dec.Token() // {
+		prev, n := 0.0, 0
+		for dec.More() {
+			dec.Token() // key
+			var v float64
+			if err := dec.Decode(&v); err != nil {
+				t.Fatal(err)
+			}
+			if n > 0 && v >= prev {
+				t.Errorf("position %d: entry %d (%v) not below the one before (%v) in %s", i, n, v, prev, obj)
+			}
+			prev = v
+			n++
+		}
+		if n != 8 {
+			t.Errorf("position %d: %d entries; want 8", i, n)
+		}
+	}
+}
