@@ -190,3 +190,24 @@ func TestHealthReadyMetrics(t *testing.T) {
 		t.Errorf("/readyz while draining: %d, want 503", resp.StatusCode)
 	}
 }
+
+func TestCutShortAnswersAreNotCached(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		stream bool
+	}{{"plain", false}, {"streamed", true}} {
+		t.Run(tc.name, func(t *testing.T) {
+			r := newRig(t)
+			r.up.FailNext(1, upstreamtest.Fault{Cut: 3})
+			body := greedy("the hive went quiet", "max_tokens", 12, "stream", tc.stream)
+			got := r.complete(body)
+			if got.status == http.StatusOK && got.readErr == nil {
+				t.Fatalf("a cut-short answer reached the client as a whole one: %s", got.body)
+			}
+			again := r.complete(body)
+			if again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss {
+				t.Fatalf("after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
+			}
+		})
+	}
+}

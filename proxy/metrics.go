@@ -14,10 +14,11 @@ type metrics struct {
 	requestSeconds  *prometheus.HistogramVec // endpoint, cache outcome
 	storeErrors     *prometheus.CounterVec   // op
 	coalesceWaiting prometheus.GaugeFunc
+	pendingWrites   prometheus.GaugeFunc
 	tokens          *prometheus.CounterVec // team, kind (prompt|completion), source (upstream|cache)
 }
 
-func newMetrics(reg prometheus.Registerer, waiting func() float64) (*metrics, error) {
+func newMetrics(reg prometheus.Registerer, waiting, pending func() float64) (*metrics, error) {
 	m := &metrics{
 		requests: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_requests_total", Help: "Generation requests answered, by team, endpoint and cache outcome.",
@@ -42,6 +43,9 @@ func newMetrics(reg prometheus.Registerer, waiting func() float64) (*metrics, er
 		coalesceWaiting: prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 			Name: "stint_coalesced_waiting", Help: "Requests waiting on an identical in-flight upstream call.",
 		}, waiting),
+		pendingWrites: prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+			Name: "stint_store_pending_writes", Help: "Answers already sent whose store write has not landed yet.",
+		}, pending),
 		tokens: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_tokens_total", Help: "Tokens in answers, by team, kind and source (upstream or cache).",
 		}, []string{"team", "kind", "source"}),
@@ -49,7 +53,7 @@ func newMetrics(reg prometheus.Registerer, waiting func() float64) (*metrics, er
 	if reg == nil {
 		return m, nil
 	}
-	for _, c := range []prometheus.Collector{m.requests, m.prompts, m.upstreamCalls, m.upstreamSeconds, m.requestSeconds, m.storeErrors, m.coalesceWaiting, m.tokens} {
+	for _, c := range []prometheus.Collector{m.requests, m.prompts, m.upstreamCalls, m.upstreamSeconds, m.requestSeconds, m.storeErrors, m.coalesceWaiting, m.pendingWrites, m.tokens} {
 		if err := reg.Register(c); err != nil {
 			return nil, err
 		}

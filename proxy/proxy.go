@@ -103,6 +103,8 @@ type Proxy struct {
 	mux            *http.ServeMux
 
 	flights coalesce.Group[*flightResult]
+	writes  *writeBehind
+	memo    *requestMemo
 
 	draining atomic.Bool
 
@@ -134,6 +136,8 @@ func New(opts Options) (*Proxy, error) {
 		logPrompts:     opts.LogPrompts,
 		now:            opts.Now,
 	}
+	p.writes = newWriteBehind(opts.Store)
+	p.memo = newRequestMemo()
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
 		if p.upstreams[i].Name == "" {
@@ -167,7 +171,9 @@ func New(opts Options) (*Proxy, error) {
 	if p.now == nil {
 		p.now = time.Now
 	}
-	m, err := newMetrics(opts.Registerer, func() float64 { return float64(p.flights.TotalWaiting()) })
+	m, err := newMetrics(opts.Registerer,
+		func() float64 { return float64(p.flights.TotalWaiting()) },
+		func() float64 { return float64(p.writes.inFlight()) })
 	if err != nil {
 		return nil, fmt.Errorf("proxy: register metrics: %w", err)
 	}
@@ -191,6 +197,10 @@ func New(opts Options) (*Proxy, error) {
 
 // ServeHTTP implements http.Handler.
 func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) { p.mux.ServeHTTP(w, r) }
+
+// Close waits until every answer already sent has been written to the store
+// (or ctx ends). It does not close the store, which the caller owns.
+func (p *Proxy) Close(ctx context.Context) error { return p.writes.wait(ctx) }
 
 // Drain marks the proxy as shutting down: /readyz answers 503 so load
 // balancers stop sending new work while in-flight requests finish.
@@ -293,6 +303,17 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		fail(aerr)
 		return
 	}
+	d := parseDirectives(r.Header)
+	mk := memoKey(team, ep, body)
+	if m, ok := p.memo.get(mk); ok && !d.noCache && !p.logPrompts {
+		// Seen these exact bytes before: go straight to the cache.
+		if hit := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
+			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
+			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
+			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit)
+			return
+		}
+	}
 	req, aerr := parseRequest(ep, body)
 	if aerr != nil {
 		fail(aerr)
@@ -307,7 +328,6 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		fail(&apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model", message: fmt.Sprintf("no upstream serves model %q", req.model)})
 		return
 	}
-	d := parseDirectives(r.Header)
 	if !p.cacheable(team, req) {
 		if d.onlyIfCached {
 			fail(notCached())
@@ -317,7 +337,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		p.forward(w, r, ll, up, req)
 		return
 	}
-	p.serveCached(w, r, ll, team, up, req, d, fail)
+	p.serveCached(w, r, ll, team, up, req, d, mk, fail)
 }
 
 func notCached() *apiError {
@@ -331,7 +351,7 @@ type item struct {
 	hit    *served
 }
 
-func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, up *Upstream, req *request, d directives, fail func(*apiError)) {
+func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, up *Upstream, req *request, d directives, mk [32]byte, fail func(*apiError)) {
 	ctx := r.Context()
 	items := make([]item, 1)
 	if req.endpoint == endpointCompletions {
@@ -349,6 +369,9 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			return
 		}
 		items[i].key = k
+		if len(items) == 1 && !req.promptsArray {
+			p.memo.remember(mk, req, k)
+		}
 		if !d.noCache {
 			items[i].hit = p.lookup(ctx, req, k, greedy)
 		}
@@ -444,7 +467,7 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 
 // lookup returns the cached answer for key shaped to req, or nil.
 func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy bool) *served {
-	b, ok, err := p.store.Get(ctx, key)
+	b, ok, err := p.writes.get(ctx, key)
 	if err != nil {
 		p.metrics.storeErrors.WithLabelValues("get").Inc()
 		p.log.Warn("cache get failed; treating as a miss", "err", err)
@@ -469,12 +492,13 @@ func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy boo
 	return &served{body: body, usage: u}
 }
 
-// storeItems records each fetched prompt's answer under its key.
+// storeItems records each fetched prompt's answer under its key. The writes
+// land behind the answer (see writeBehind).
 func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, misses []int, got []served, greedy bool) {
 	for j, i := range misses {
 		key := items[i].key
 		var rec record
-		if b, ok, err := p.store.Get(ctx, key); err == nil && ok {
+		if b, ok, err := p.writes.get(ctx, key); err == nil && ok {
 			if old, err := decodeRecord(b); err == nil {
 				rec = old
 			}
@@ -489,13 +513,14 @@ func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, miss
 		}
 		v.Finish, v.Tokens = tokenFacts(req, got[j].body)
 		b, err := rec.with(v, greedy, req.stop).encode()
-		if err == nil {
-			err = p.store.Put(ctx, key, b, p.ttl)
-		}
 		if err != nil {
+			p.metrics.storeErrors.WithLabelValues("encode").Inc()
+			continue
+		}
+		p.writes.put(key, b, p.ttl, func(err error) {
 			p.metrics.storeErrors.WithLabelValues("put").Inc()
 			p.log.Warn("cache put failed; answer served but not stored", "err", err)
-		}
+		})
 	}
 }
 
@@ -549,16 +574,20 @@ func (p *Proxy) finish(ll *logLine, start time.Time) {
 		p.metrics.tokens.WithLabelValues(ll.team, "prompt", source).Add(float64(ll.usage.PromptTokens))
 		p.metrics.tokens.WithLabelValues(ll.team, "completion", source).Add(float64(ll.usage.CompletionTokens))
 	}
-	attrs := []any{
-		"team", ll.team, "endpoint", string(ll.endpoint), "model", ll.model,
-		"cache", ll.outcome, "status", ll.status, "prompts", ll.prompts, "cached_prompts", ll.hits,
-		"prompt_tokens", ll.usage.PromptTokens, "completion_tokens", ll.usage.CompletionTokens,
-		"upstream_ms", float64(ll.upstream.Microseconds()) / 1000, "duration_ms", float64(d.Microseconds()) / 1000,
+	if !p.log.Enabled(context.Background(), slog.LevelInfo) {
+		return
 	}
+	attrs := make([]slog.Attr, 0, 14)
+	attrs = append(attrs,
+		slog.String("team", ll.team), slog.String("endpoint", string(ll.endpoint)), slog.String("model", ll.model),
+		slog.String("cache", ll.outcome), slog.Int("status", ll.status), slog.Int("prompts", ll.prompts), slog.Int("cached_prompts", ll.hits),
+		slog.Int("prompt_tokens", ll.usage.PromptTokens), slog.Int("completion_tokens", ll.usage.CompletionTokens),
+		slog.Int64("upstream_us", ll.upstream.Microseconds()), slog.Int64("duration_us", d.Microseconds()),
+	)
 	if ll.promptText != "" {
-		attrs = append(attrs, "prompt", ll.promptText)
+		attrs = append(attrs, slog.String("prompt", ll.promptText))
 	}
-	p.log.Info("request", attrs...)
+	p.log.LogAttrs(context.Background(), slog.LevelInfo, "request", attrs...)
 }
 
 func promptText(req *request) string {

@@ -1,8 +1,11 @@
 package proxy
 
 import (
+	"encoding/binary"
 	"encoding/json"
+	"errors"
 	"fmt"
+	"math"
 	"time"
 )
 
@@ -40,20 +43,87 @@ func (u usage) add(o usage) usage {
 	return usage{u.PromptTokens + o.PromptTokens, u.CompletionTokens + o.CompletionTokens, u.TotalTokens + o.TotalTokens}
 }
 
+// Records are stored in a small binary form so a cache hit decodes by
+// slicing, without parsing JSON: a version byte, a variant count, then per
+// variant its fixed fields and its length-prefixed finish reason and body.
+// Decoded bodies alias the stored bytes and must not be modified.
+const recordVersion = 1
+
+var errBadRecord = errors.New("cache record is malformed")
+
 func decodeRecord(b []byte) (record, error) {
-	var rec record
-	if err := json.Unmarshal(b, &rec); err != nil {
-		return record{}, fmt.Errorf("decode cache record: %w", err)
+	if len(b) < 2 || b[0] != recordVersion {
+		return record{}, fmt.Errorf("%w: unknown version", errBadRecord)
+	}
+	n := int(b[1])
+	b = b[2:]
+	rec := record{Variants: make([]variant, 0, n)}
+	for range n {
+		const fixed = 4*7 + 1 + 8 + 1
+		if len(b) < fixed {
+			return record{}, fmt.Errorf("%w: truncated", errBadRecord)
+		}
+		v := variant{
+			Logprobs:  int(int32(binary.BigEndian.Uint32(b[0:]))),
+			MaxTokens: int(int32(binary.BigEndian.Uint32(b[4:]))),
+			Tokens:    int(int32(binary.BigEndian.Uint32(b[8:]))),
+			Usage: usage{
+				PromptTokens:     int(int32(binary.BigEndian.Uint32(b[12:]))),
+				CompletionTokens: int(int32(binary.BigEndian.Uint32(b[16:]))),
+				TotalTokens:      int(int32(binary.BigEndian.Uint32(b[20:]))),
+			},
+			Estimated: b[28] == 1,
+			StoredAt:  int64(binary.BigEndian.Uint64(b[29:])),
+		}
+		bodyLen := int(binary.BigEndian.Uint32(b[24:]))
+		finishLen := int(b[37])
+		b = b[fixed:]
+		if len(b) < finishLen+bodyLen {
+			return record{}, fmt.Errorf("%w: truncated", errBadRecord)
+		}
+		v.Finish = string(b[:finishLen])
+		v.Body = b[finishLen : finishLen+bodyLen : finishLen+bodyLen]
+		b = b[finishLen+bodyLen:]
+		rec.Variants = append(rec.Variants, v)
+	}
+	if len(b) != 0 {
+		return record{}, fmt.Errorf("%w: trailing bytes", errBadRecord)
 	}
 	return rec, nil
 }
 
 func (rec record) encode() ([]byte, error) {
-	b, err := json.Marshal(rec)
-	if err != nil {
-		return nil, fmt.Errorf("encode cache record: %w", err)
+	if len(rec.Variants) > 255 {
+		return nil, fmt.Errorf("encode cache record: %d variants", len(rec.Variants))
 	}
-	return b, nil
+	size := 2
+	for _, v := range rec.Variants {
+		size += 38 + len(v.Finish) + len(v.Body)
+	}
+	out := make([]byte, 0, size)
+	out = append(out, recordVersion, byte(len(rec.Variants)))
+	for _, v := range rec.Variants {
+		if len(v.Finish) > 255 || len(v.Body) > math.MaxUint32 {
+			return nil, errors.New("encode cache record: field too long")
+		}
+		for _, x := range []int{v.Logprobs, v.MaxTokens, v.Tokens, v.Usage.PromptTokens, v.Usage.CompletionTokens, v.Usage.TotalTokens} {
+			if x < math.MinInt32 || x > math.MaxInt32 {
+				return nil, errors.New("encode cache record: number out of range")
+			}
+			out = binary.BigEndian.AppendUint32(out, uint32(int32(x)))
+		}
+		out = binary.BigEndian.AppendUint32(out, uint32(len(v.Body)))
+		est := byte(0)
+		if v.Estimated {
+			est = 1
+		}
+		out = append(out, est)
+		out = binary.BigEndian.AppendUint64(out, uint64(v.StoredAt))
+		out = append(out, byte(len(v.Finish)))
+		out = append(out, v.Finish...)
+		out = append(out, v.Body...)
+	}
+	return out, nil
 }
 
 // with returns rec with v added, dropping the variants v can serve and the

@@ -17,6 +17,7 @@ package boltstore
 
 import (
 	"bytes"
+	"cmp"
 	"context"
 	"encoding/binary"
 	"errors"
@@ -52,6 +53,8 @@ const (
 	// DefaultLockTimeout is how long Open waits for the file lock when
 	// Options.LockTimeout is zero.
 	DefaultLockTimeout = 2 * time.Second
+	// DefaultBatchDelay is the default of Options.BatchDelay.
+	DefaultBatchDelay = 2 * time.Millisecond
 )
 
 // Errors callers can act on, wrapped by the errors this package returns.
@@ -85,6 +88,10 @@ type Options struct {
 	// the file lock before it fails with ErrLocked. 0 means
 	// DefaultLockTimeout; -1 means try once. New ignores it.
 	LockTimeout time.Duration
+	// BatchDelay is how long a Put waits for concurrent Puts to share its
+	// commit and fsync (bbolt's MaxBatchDelay). 0 means DefaultBatchDelay.
+	// Open sets it on the file it owns; New leaves a shared handle as it is.
+	BatchDelay time.Duration
 	// Now is the clock for stored-at and expiry times. nil means time.Now.
 	Now func() time.Time
 	// Logger receives background sweep errors. nil means they are dropped.
@@ -165,6 +172,9 @@ func Open(path string, opts Options) (*Store, error) {
 		return nil, fmt.Errorf("boltstore: create directory for %s: %w", path, err)
 	}
 	db, err := openDB(path, timeout)
+	if err == nil {
+		db.MaxBatchDelay = cmp.Or(opts.BatchDelay, DefaultBatchDelay)
+	}
 	if err != nil {
 		return nil, err
 	}
@@ -247,7 +257,7 @@ func newStore(db *bbolt.DB, opts Options, owns bool) (*Store, error) {
 	}
 	// EncodeAll and DecodeAll are safe for concurrent use. The store keeps
 	// its own CRC, so zstd's frame checksum would be redundant.
-	s.enc, err = zstd.NewWriter(nil, zstd.WithEncoderCRC(false), zstd.WithEncoderLevel(zstd.SpeedDefault))
+	s.enc, err = zstd.NewWriter(nil, zstd.WithEncoderCRC(false), zstd.WithEncoderLevel(zstd.SpeedFastest))
 	if err != nil {
 		return nil, fmt.Errorf("boltstore: zstd encoder: %w", err)
 	}
@@ -380,7 +390,9 @@ func (s *Store) Put(ctx context.Context, key string, value []byte, ttl time.Dura
 		return fmt.Errorf("boltstore: put %.16s…: %d bytes stored, cap %d: %w", key, size, s.maxBytes, cache.ErrTooLarge)
 	}
 	k := []byte(key)
-	err := s.update(func(tx *bbolt.Tx) error {
+	// Concurrent Puts share one transaction and one fsync (bbolt's Batch):
+	// the function reads all its state from tx, so a retry is safe.
+	err := s.batch(func(tx *bbolt.Tx) error {
 		w, err := openWriter(tx)
 		if err != nil {
 			return err
@@ -522,6 +534,11 @@ func (s *Store) view(fn func(*bbolt.Tx) error) (err error) {
 func (s *Store) update(fn func(*bbolt.Tx) error) (err error) {
 	defer recoverCorrupt(&err)
 	return s.db.Update(fn)
+}
+
+func (s *Store) batch(fn func(*bbolt.Tx) error) (err error) {
+	defer recoverCorrupt(&err)
+	return s.db.Batch(fn)
 }
 
 func recoverCorrupt(err *error) {

@@ -134,6 +134,9 @@ func TestKilledProcessKeepsAcknowledgedEntries(t *testing.T) {
 			t.Fatalf("call %d: %d %s %s", i, status, outcome, body)
 		}
 	}
+	// Answers are stored right after they are sent: kill only once the
+	// store has acknowledged every write.
+	waitForMetric(t, first, "stint_store_pending_writes 0")
 	if err := first.cmd.Process.Signal(syscall.SIGKILL); err != nil {
 		t.Fatal(err)
 	}
@@ -190,6 +193,25 @@ func TestGracefulShutdownFinishesInFlight(t *testing.T) {
 	<-c.exited
 	if c.err != nil {
 		t.Fatalf("stint exited with %v:\n%s", c.err, c.output())
+	}
+}
+
+func waitForMetric(t *testing.T, c *child, line string) {
+	t.Helper()
+	deadline := time.Now().Add(30 * time.Second)
+	for {
+		resp, err := http.Get("http://" + c.addr + "/metrics")
+		if err == nil {
+			b, _ := io.ReadAll(resp.Body)
+			resp.Body.Close()
+			if strings.Contains(string(b), "\n"+line+"\n") {
+				return
+			}
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("metrics never showed %q", line)
+		}
+		time.Sleep(5 * time.Millisecond)
 	}
 }
 

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"io"
 	"log/slog"
 	"net"
 	"net/http"
@@ -114,7 +115,7 @@ func isLoopback(addr string) bool {
 	return ip != nil && ip.IsLoopback()
 }
 
-func newLogger(format string, w *os.File) *slog.Logger {
+func newLogger(format string, w io.Writer) *slog.Logger {
 	if format == "json" {
 		return slog.New(slog.NewJSONHandler(w, nil))
 	}
@@ -130,7 +131,9 @@ func runServe(ctx context.Context, cmd *cobra.Command, f serveFlags) error {
 		fmt.Fprintln(cmd.OutOrStdout(), "config ok")
 		return nil
 	}
-	log := newLogger(cfg.Log.Format, os.Stderr)
+	sink := newBufferedLog(os.Stderr)
+	defer sink.Close()
+	log := newLogger(cfg.Log.Format, sink)
 	srv, err := buildServer(ctx, cfg, log)
 	if err != nil {
 		return err
@@ -152,7 +155,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		return nil, fmt.Errorf("create data dir: %w", err)
 	}
 	s := &server{cfg: cfg, log: log}
-	disk, err := boltstore.Open(filepath.Join(cfg.Data, "stint.db"), boltstore.Options{MaxBytes: int64(cfg.Cache.MaxBytes)})
+	disk, err := boltstore.Open(filepath.Join(cfg.Data, "stint.db"), boltstore.Options{MaxBytes: int64(cfg.Cache.MaxBytes), BatchDelay: 10 * time.Millisecond})
 	if err != nil {
 		return nil, fmt.Errorf("open store: %w", err)
 	}
@@ -283,6 +286,11 @@ func (s *server) serve(ctx context.Context, ln net.Listener) error {
 	}
 	if errors.Is(serveErr, http.ErrServerClosed) {
 		serveErr = nil
+	}
+	wctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), time.Duration(s.cfg.Server.ShutdownTimeout))
+	defer cancel()
+	if err := s.proxy.Close(wctx); err != nil && serveErr == nil {
+		serveErr = fmt.Errorf("finish store writes: %w", err)
 	}
 	if err := s.close(); err != nil && serveErr == nil {
 		serveErr = fmt.Errorf("close store: %w", err)

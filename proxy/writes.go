@@ -1,0 +1,96 @@
+package proxy
+
+import (
+	"context"
+	"errors"
+	"sync"
+	"time"
+
+	"github.com/stintlab/stint/cache"
+)
+
+// maxPendingWrites bounds the store writes running behind answers; past it a
+// request writes before it answers, so a slow disk slows clients instead of
+// piling up memory.
+const maxPendingWrites = 256
+
+// writeTimeout bounds one store write.
+const writeTimeout = 30 * time.Second
+
+// writeBehind stores answers after they have been sent, so the client does
+// not wait for the store's fsync. Until a write has landed its record is
+// served from memory, so a repeat arriving meanwhile is still a hit.
+type writeBehind struct {
+	store cache.Store
+	sem   chan struct{}
+	wg    sync.WaitGroup
+
+	mu      sync.Mutex // guards pending
+	pending map[string][]byte
+}
+
+func newWriteBehind(store cache.Store) *writeBehind {
+	return &writeBehind{store: store, sem: make(chan struct{}, maxPendingWrites), pending: map[string][]byte{}}
+}
+
+// get returns the record for key: one still being written, else the store's.
+func (wb *writeBehind) get(ctx context.Context, key string) ([]byte, bool, error) {
+	wb.mu.Lock()
+	b, ok := wb.pending[key]
+	wb.mu.Unlock()
+	if ok {
+		return b, true, nil
+	}
+	return wb.store.Get(ctx, key)
+}
+
+// put schedules value to be stored under key; onErr reports a failed write.
+func (wb *writeBehind) put(key string, value []byte, ttl time.Duration, onErr func(error)) {
+	wb.mu.Lock()
+	wb.pending[key] = value
+	wb.mu.Unlock()
+	write := func() {
+		ctx, cancel := context.WithTimeout(context.Background(), writeTimeout)
+		defer cancel()
+		err := wb.store.Put(ctx, key, value, ttl)
+		wb.mu.Lock()
+		if cur, ok := wb.pending[key]; ok && len(cur) > 0 && len(value) > 0 && &cur[0] == &value[0] {
+			delete(wb.pending, key)
+		}
+		wb.mu.Unlock()
+		if err != nil && !errors.Is(err, cache.ErrTooLarge) {
+			onErr(err)
+		}
+	}
+	wb.wg.Add(1)
+	select {
+	case wb.sem <- struct{}{}:
+		go func() {
+			defer wb.wg.Done()
+			defer func() { <-wb.sem }()
+			write()
+		}()
+	default:
+		defer wb.wg.Done()
+		write()
+	}
+}
+
+// inFlight reports how many writes have not landed yet.
+func (wb *writeBehind) inFlight() int {
+	wb.mu.Lock()
+	defer wb.mu.Unlock()
+	return len(wb.pending)
+}
+
+// wait blocks until every scheduled write has finished or ctx ends.
+func (wb *writeBehind) wait(ctx context.Context) error {
+	done := make(chan struct{})
+	go func() { wb.wg.Wait(); close(done) }()
+	select {
+	case <-done:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
