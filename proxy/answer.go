@@ -2,6 +2,7 @@ package proxy
 
 import (
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"net/http"
@@ -123,7 +124,8 @@ func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, up 
 	resp, err := up.post(ctx, req.endpoint, req.raw)
 	p.countUpstream(up, req.endpoint, err)
 	if err != nil {
-		if ue, ok := err.(*upstreamError); ok {
+		var ue *upstreamError
+		if errors.As(err, &ue) {
 			p.writeUpstreamError(w, ll, ue)
 			return
 		}

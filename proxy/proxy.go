@@ -307,7 +307,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 	mk := memoKey(team, ep, body)
 	if m, ok := p.memo.get(mk); ok && !d.noCache && !p.logPrompts {
 		// Seen these exact bytes before: go straight to the cache.
-		if hit := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
+		if hit, _ := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
 			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
 			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit)
@@ -349,6 +349,10 @@ type item struct {
 	prompt json.RawMessage // nil for chat
 	key    string
 	hit    *served
+	// looked: the store was asked for key; stored is the record it held (nil
+	// for none), reused when the answer is stored so the store is read once.
+	looked bool
+	stored []byte
 }
 
 func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, up *Upstream, req *request, d directives, mk [32]byte, fail func(*apiError)) {
@@ -373,7 +377,8 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			p.memo.remember(mk, req, k)
 		}
 		if !d.noCache {
-			items[i].hit = p.lookup(ctx, req, k, greedy)
+			items[i].hit, items[i].stored = p.lookup(ctx, req, k, greedy)
+			items[i].looked = true
 		}
 		if items[i].hit == nil {
 			misses = append(misses, i)
@@ -465,31 +470,32 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 	p.answer(w, ll, req, items, full, outcome)
 }
 
-// lookup returns the cached answer for key shaped to req, or nil.
-func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy bool) *served {
+// lookup returns the cached answer for key shaped to req (nil when there is
+// none that fits) and the stored record's bytes (nil when there is none).
+func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy bool) (*served, []byte) {
 	b, ok, err := p.writes.get(ctx, key)
 	if err != nil {
 		p.metrics.storeErrors.WithLabelValues("get").Inc()
 		p.log.Warn("cache get failed; treating as a miss", "err", err)
-		return nil
+		return nil, nil
 	}
 	if !ok {
-		return nil
+		return nil, nil
 	}
 	rec, err := decodeRecord(b)
 	if err != nil {
 		p.metrics.storeErrors.WithLabelValues("decode").Inc()
-		return nil
+		return nil, nil
 	}
 	v, ok := rec.pick(req.logprobs, req.maxTokens, greedy, req.stop)
 	if !ok {
-		return nil
+		return nil, b
 	}
 	body, u, err := shape(req.endpoint, v, req.logprobs, req.maxTokens)
 	if err != nil {
-		return nil
+		return nil, b
 	}
-	return &served{body: body, usage: u}
+	return &served{body: body, usage: u}, b
 }
 
 // storeItems records each fetched prompt's answer under its key. The writes
@@ -498,7 +504,11 @@ func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, miss
 	for j, i := range misses {
 		key := items[i].key
 		var rec record
-		if b, ok, err := p.writes.get(ctx, key); err == nil && ok {
+		b := items[i].stored
+		if !items[i].looked {
+			b, _, _ = p.writes.get(ctx, key)
+		}
+		if b != nil {
 			if old, err := decodeRecord(b); err == nil {
 				rec = old
 			}

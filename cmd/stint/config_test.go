@@ -5,6 +5,7 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"errors"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
@@ -43,14 +44,12 @@ func TestParseConfigErrorsNameFieldAndLine(t *testing.T) {
 			if !strings.Contains(err.Error(), tt.wantText) {
 				t.Errorf("error %q does not mention %q", err, tt.wantText)
 			}
-			if tt.wantLine > 0 && !strings.Contains(err.Error(), "line "+itoa(tt.wantLine)) {
+			if tt.wantLine > 0 && !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
 				t.Errorf("error %q does not name line %d", err, tt.wantLine)
 			}
 		})
 	}
 }
-
-func itoa(n int) string { return strings.TrimSpace(strings.Repeat(" ", 0) + string(rune('0'+n))) }
 
 func TestParseConfigValues(t *testing.T) {
 	cfg, err := ParseConfig(strings.NewReader(`

@@ -63,7 +63,7 @@ bare_out="$(run "$bare" "$work/hit.lua")"; hit_out="$(run "$proxy" "$work/hit.lu
 bare_rps="$(echo "$bare_out" | rps)"; hit_rps="$(echo "$hit_out" | rps)"
 printf 'bare Go server        %10.0f req/s   p50 %6.0f us\n' "$bare_rps" "$(echo "$bare_out" | p50us)"
 printf 'stint serve (hits)    %10.0f req/s   p50 %6.0f us\n' "$hit_rps" "$(echo "$hit_out" | p50us)"
-printf 'hit throughput ratio  %10.2f x bare  (target >= 0.80)\n' "$(echo "$hit_rps / $bare_rps" | bc -l)"
+printf 'hit throughput ratio  %10.2f x bare  (target >= 0.80)\n' "$(awk -v a="$hit_rps" -v b="$bare_rps" 'BEGIN {print a / b}')"
 
 echo "== misses: unique prompts, 1 connection (latency without queueing)"
 direct_out="$(wrk -t1 -c1 -d"$DURATION" --latency -s "$work/miss.lua" "http://$up/v1/completions")"
@@ -71,4 +71,4 @@ miss_out="$(wrk -t1 -c1 -d"$DURATION" --latency -s "$work/miss.lua" "http://$pro
 d50="$(echo "$direct_out" | p50us)"; m50="$(echo "$miss_out" | p50us)"
 printf 'upstream directly     %10.0f req/s   p50 %6.0f us\n' "$(echo "$direct_out" | rps)" "$d50"
 printf 'through stint (miss)  %10.0f req/s   p50 %6.0f us\n' "$(echo "$miss_out" | rps)" "$m50"
-printf 'miss-path overhead    %10.0f us at p50  (target <= 150)\n' "$(echo "$m50 - $d50" | bc -l)"
+printf 'miss-path overhead    %10.0f us at p50  (target <= 150)\n' "$(awk -v a="$m50" -v b="$d50" 'BEGIN {print a - b}')"

@@ -7,37 +7,15 @@ import (
 	"math"
 	"math/rand/v2"
 	"os"
-	"path/filepath"
 	"testing"
+
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 )
 
-// modelPath finds the real model file: env STINT_MODEL, else
-// ../shared/models/stories260K.gguf beside the directory holding go.mod. It
-// fails (never skips) when the file is missing, so CI notices breakage.
+// modelPath finds the real model file (see modeltest).
 func modelPath(tb testing.TB) string {
 	tb.Helper()
-	if p := os.Getenv("STINT_MODEL"); p != "" {
-		if _, err := os.Stat(p); err != nil {
-			tb.Fatalf("STINT_MODEL=%q: %v", p, err)
-		}
-		return p
-	}
-	wd, err := os.Getwd()
-	if err != nil {
-		tb.Fatal(err)
-	}
-	for dir := wd; ; dir = filepath.Dir(dir) {
-		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
-			p := filepath.Join(dir, "..", "shared", "models", "stories260K.gguf")
-			if _, err := os.Stat(p); err != nil {
-				tb.Fatalf("model file not found: STINT_MODEL is unset and %s: %v", p, err)
-			}
-			return p
-		}
-		if filepath.Dir(dir) == dir {
-			tb.Fatalf("model file not found: STINT_MODEL is unset and no go.mod above %s", wd)
-		}
-	}
+	return modeltest.Path(tb)
 }
 
 // smallFile builds a small valid GGUF file covering every metadata type.
