@@ -7,6 +7,9 @@ import (
 	"io"
 	"net/http"
 	"strconv"
+	"sync"
+
+	"github.com/stintlab/stint/cache/canon"
 )
 
 // answer writes the reply to a request whose every prompt now has an answer.
@@ -208,9 +211,25 @@ func keyBody(req *request, prompt json.RawMessage) ([]byte, error) {
 	if prompt != nil {
 		fields["prompt"] = prompt
 	}
-	raw, err := json.Marshal(fields)
-	if err != nil {
-		return nil, err
-	}
-	return canonicalize(raw)
+	c := canonicalizers.Get().(*canon.Canonicalizer)
+	defer canonicalizers.Put(c)
+	return c.AppendValue(nil, fields)
 }
+
+// canonicalizers reuses canonicalizers' scratch buffers across requests.
+var canonicalizers = sync.Pool{New: func() any { return new(canon.Canonicalizer) }}
+
+// checkCanonical reports whether body is I-JSON as RFC 8785 §3.1 requires (no
+// duplicate member names, no lone surrogates, numbers a double can hold), so
+// the key and the upstream read the same request.
+func checkCanonical(body []byte) error {
+	c := canonicalizers.Get().(*canon.Canonicalizer)
+	defer canonicalizers.Put(c)
+	buf := scratch.Get().(*[]byte)
+	defer scratch.Put(buf)
+	out, err := c.Append((*buf)[:0], body)
+	*buf = out[:0]
+	return err
+}
+
+var scratch = sync.Pool{New: func() any { b := make([]byte, 0, 4096); return &b }}

@@ -26,6 +26,8 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 		{"not an object", "/v1/completions", `["model"]`, 400, ""},
 		{"trailing data", "/v1/completions", `{"model":"quill-small","prompt":"a"} {}`, 400, ""},
 		{"missing model", "/v1/completions", `{"prompt":"a"}`, 400, "model"},
+		{"duplicate member (RFC 8785 §3.1, I-JSON)", "/v1/completions", `{"model":"quill-small","prompt":"a","prompt":"b"}`, 400, ""},
+		{"nested duplicate member", "/v1/completions", `{"model":"quill-small","prompt":"a","x":{"k":1,"k":2}}`, 400, ""},
 		{"model not a string", "/v1/completions", `{"model":7,"prompt":"a"}`, 400, "model"},
 		{"missing prompt", "/v1/completions", `{"model":"quill-small"}`, 400, "prompt"},
 		{"prompt wrong type", "/v1/completions", `{"model":"quill-small","prompt":{"a":1}}`, 400, "prompt"},

@@ -165,6 +165,23 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 // prompt's share of usage is apportioned (exact when the answer has token
 // data, by length otherwise) and flagged as estimated.
 func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMessage) ([]served, error) {
+	if nPrompts == 1 {
+		var one struct {
+			Choices []json.RawMessage `json:"choices"`
+			Usage   *usage            `json:"usage"`
+		}
+		if err := json.Unmarshal(full, &one); err != nil {
+			return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
+		}
+		if len(one.Choices) != req.n {
+			return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(one.Choices), req.n)
+		}
+		var u usage
+		if one.Usage != nil {
+			u = *one.Usage
+		}
+		return []served{{body: full, usage: u}}, nil
+	}
 	var env map[string]json.RawMessage
 	if err := json.Unmarshal(full, &env); err != nil {
 		return nil, fmt.Errorf("upstream answer is not a JSON object: %w", err)
@@ -181,9 +198,6 @@ func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMess
 	}
 	if len(choices) != nPrompts*req.n {
 		return nil, fmt.Errorf("upstream answered %d choices for %d prompts × n=%d", len(choices), nPrompts, req.n)
-	}
-	if nPrompts == 1 {
-		return []served{{body: full, usage: u}}, nil
 	}
 	groups := make([][]map[string]json.RawMessage, nPrompts)
 	for _, ch := range choices {

@@ -6,11 +6,7 @@ import (
 	"net/http"
 	"strconv"
 	"time"
-
-	"github.com/stintlab/stint/cache/canon"
 )
-
-func canonicalize(raw []byte) ([]byte, error) { return canon.Transform(raw) }
 
 // serveModels answers GET /v1/models from the upstreams, merged when there
 // are several, and reuses the answer for ModelsTTL.

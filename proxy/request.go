@@ -76,6 +76,9 @@ func parseRequest(ep endpoint, body []byte) (*request, *apiError) {
 	if fields == nil {
 		return nil, badRequest("", "request body must be a JSON object, not null")
 	}
+	if err := checkCanonical(body); err != nil {
+		return nil, badRequest("", "request body is not I-JSON (RFC 8785 §3.1): %v", err)
+	}
 	r := &request{endpoint: ep, raw: body, fields: fields, n: 1, temperature: 1, maxTokens: noLevel, logprobs: noLevel}
 	var e *apiError
 	if r.model, e = requiredString(fields, "model"); e != nil {

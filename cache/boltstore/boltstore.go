@@ -194,7 +194,9 @@ func openDB(path string, timeout time.Duration) (db *bbolt.DB, err error) {
 			db, err = nil, fmt.Errorf("%w: %s: %v", ErrCorrupt, path, r)
 		}
 	}()
-	db, err = bbolt.Open(path, 0o600, &bbolt.Options{Timeout: timeout, FreelistType: bbolt.FreelistMapType})
+	// NoFreelistSync: commits do not write the free-page list; a reopen
+	// rebuilds it by scanning the file (etcd runs bbolt this way too).
+	db, err = bbolt.Open(path, 0o600, &bbolt.Options{Timeout: timeout, FreelistType: bbolt.FreelistMapType, NoFreelistSync: true})
 	switch {
 	case err == nil:
 		return db, nil
