@@ -1,6 +1,8 @@
 package proxy
 
 import (
+	"sync"
+
 	"github.com/prometheus/client_golang/prometheus"
 )
 
@@ -16,6 +18,40 @@ type metrics struct {
 	coalesceWaiting prometheus.GaugeFunc
 	pendingWrites   prometheus.GaugeFunc
 	tokens          *prometheus.CounterVec // team, kind (prompt|completion), source (upstream|cache)
+
+	// outcomes caches the series one request touches, by (team, endpoint,
+	// outcome): looking labels up hashes them, and that showed on cache hits.
+	outcomes sync.Map // outcomeKey → *outcomeSeries
+}
+
+type outcomeKey struct{ team, endpoint, outcome string }
+
+// outcomeSeries are the series a request with one (team, endpoint, outcome)
+// updates.
+type outcomeSeries struct {
+	requests         prometheus.Counter
+	seconds          prometheus.Observer
+	promptTokens     prometheus.Counter
+	completionTokens prometheus.Counter
+}
+
+func (m *metrics) series(team, endpoint, outcome string) *outcomeSeries {
+	k := outcomeKey{team, endpoint, outcome}
+	if s, ok := m.outcomes.Load(k); ok {
+		return s.(*outcomeSeries)
+	}
+	source := "cache"
+	if outcome == OutcomeMiss || outcome == OutcomeBypass {
+		source = "upstream"
+	}
+	s := &outcomeSeries{
+		requests:         m.requests.WithLabelValues(team, endpoint, outcome),
+		seconds:          m.requestSeconds.WithLabelValues(endpoint, outcome),
+		promptTokens:     m.tokens.WithLabelValues(team, "prompt", source),
+		completionTokens: m.tokens.WithLabelValues(team, "completion", source),
+	}
+	got, _ := m.outcomes.LoadOrStore(k, s)
+	return got.(*outcomeSeries)
 }
 
 func newMetrics(reg prometheus.Registerer, waiting, pending func() float64) (*metrics, error) {

@@ -575,14 +575,11 @@ func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiEr
 func (p *Proxy) finish(ll *logLine, start time.Time) {
 	d := p.now().Sub(start)
 	if ll.outcome != "" && ll.outcome != "error" {
-		p.metrics.requests.WithLabelValues(ll.team, string(ll.endpoint), ll.outcome).Inc()
-		p.metrics.requestSeconds.WithLabelValues(string(ll.endpoint), ll.outcome).Observe(d.Seconds())
-		source := "cache"
-		if ll.outcome == OutcomeMiss || ll.outcome == OutcomeBypass {
-			source = "upstream"
-		}
-		p.metrics.tokens.WithLabelValues(ll.team, "prompt", source).Add(float64(ll.usage.PromptTokens))
-		p.metrics.tokens.WithLabelValues(ll.team, "completion", source).Add(float64(ll.usage.CompletionTokens))
+		ms := p.metrics.series(ll.team, string(ll.endpoint), ll.outcome)
+		ms.requests.Inc()
+		ms.seconds.Observe(d.Seconds())
+		ms.promptTokens.Add(float64(ll.usage.PromptTokens))
+		ms.completionTokens.Add(float64(ll.usage.CompletionTokens))
 	}
 	if !p.log.Enabled(context.Background(), slog.LevelInfo) {
 		return
