@@ -1,6 +1,7 @@
 package proxy
 
 import (
+	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -9,13 +10,14 @@ import (
 	"strconv"
 	"sync"
 
+	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/cache/canon"
 )
 
 // answer writes the reply to a request whose every prompt now has an answer.
 // full, when set, is the upstream's whole answer for the whole request and is
 // sent unchanged.
-func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items []item, full []byte, outcome string) {
+func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items []item, full []byte, outcome string, fig spendFigures) {
 	parts := make([]served, len(items))
 	for i := range items {
 		parts[i] = *items[i].hit
@@ -37,6 +39,7 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 	if req.promptsArray {
 		w.Header().Set(HeaderCachedPrompt, fmt.Sprintf("%d/%d", ll.hits, ll.prompts))
 	}
+	p.spendHeaders(context.Background(), w.Header(), fig.team, fig.cost, fig.saved)
 	if req.stream {
 		if err := writeStream(w, req.endpoint, body, req.includeUsage, outcome); err != nil {
 			p.log.Warn("cannot stream answer", "err", err)
@@ -120,19 +123,20 @@ func (p *Proxy) writeUpstreamError(w http.ResponseWriter, ll *logLine, ue *upstr
 }
 
 // forward sends a request that is not cacheable upstream as it came and
-// relays the answer byte for byte.
-func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, up *Upstream, req *request) {
+// relays the answer byte for byte. Under spend control the call is admitted
+// first and settled from the answer's usage; a stream is then relayed event
+// by event with the usage chunk requested, so it can be settled.
+func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, keyID string, up *Upstream, req *request) {
+	if p.spend != nil {
+		p.forwardAccounted(w, r, ll, team, keyID, up, req)
+		return
+	}
 	ctx := r.Context()
 	start := p.now()
 	resp, err := up.post(ctx, req.endpoint, req.raw)
 	p.countUpstream(up, req.endpoint, err)
 	if err != nil {
-		var ue *upstreamError
-		if errors.As(err, &ue) {
-			p.writeUpstreamError(w, ll, ue)
-			return
-		}
-		writeError(w, &apiError{status: http.StatusBadGateway, typ: errUpstream, message: err.Error()})
+		p.forwardFailed(w, ll, err)
 		return
 	}
 	defer resp.Body.Close()
@@ -167,6 +171,89 @@ func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, up 
 	}
 	ll.upstream = p.now().Sub(start)
 	p.metrics.upstreamSeconds.WithLabelValues(up.Name, string(req.endpoint)).Observe(ll.upstream.Seconds())
+}
+
+func (p *Proxy) forwardFailed(w http.ResponseWriter, ll *logLine, err error) {
+	var ue *upstreamError
+	if errors.As(err, &ue) {
+		p.writeUpstreamError(w, ll, ue)
+		return
+	}
+	ll.status = http.StatusBadGateway
+	writeError(w, &apiError{status: http.StatusBadGateway, typ: errUpstream, message: err.Error()})
+}
+
+// forwardAccounted is forward under spend control.
+func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, keyID string, up *Upstream, req *request) {
+	items := make([]item, len(req.prompts))
+	for i, pr := range req.prompts {
+		items[i].prompt = pr
+	}
+	ticket, err := p.spend.Admit(r.Context(), spendCall(team, keyID, up, req, items, nil))
+	if err != nil {
+		e := spendError(err)
+		ll.status = e.status
+		writeError(w, e)
+		return
+	}
+	// Settle even if the client leaves: the provider bills either way.
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(r.Context()), up.timeout())
+	defer cancel()
+	body, err := upstreamBody(req, nil, req.stream)
+	if err != nil {
+		_ = ticket.Cancel(ctx)
+		e := badRequest("", "cannot forward the request: %v", err)
+		ll.status = e.status
+		writeError(w, e)
+		return
+	}
+	start := p.now()
+	resp, err := up.post(ctx, req.endpoint, body)
+	p.countUpstream(up, req.endpoint, err)
+	if err != nil {
+		_, _ = ticket.Fail(ctx, billed(err))
+		p.forwardFailed(w, ll, err)
+		return
+	}
+	defer resp.Body.Close()
+	res := &flightResult{}
+	if req.stream {
+		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass)
+		ll.status, ll.usage = http.StatusOK, u
+		if hasUsage {
+			res.items = []served{{usage: u}}
+			rerr = nil
+		}
+		p.settle(ctx, ticket, team.Name, res, rerr, budget.Bypass)
+		p.spendHeaders(ctx, w.Header(), team.Name, res.cost, 0)
+		ll.upstream = p.now().Sub(start)
+		return
+	}
+	full, err := io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
+	if err != nil {
+		_, _ = ticket.Fail(ctx, true)
+		p.forwardFailed(w, ll, &upstreamError{err: err})
+		return
+	}
+	var a struct {
+		Usage *usage `json:"usage"`
+	}
+	if json.Unmarshal(full, &a) != nil || a.Usage == nil {
+		p.settle(ctx, ticket, team.Name, &flightResult{unstorable: true}, nil, budget.Bypass)
+	} else {
+		res.items = []served{{usage: *a.Usage}}
+		p.settle(ctx, ticket, team.Name, res, nil, budget.Bypass)
+		ll.usage = *a.Usage
+	}
+	ll.upstream = p.now().Sub(start)
+	h := w.Header()
+	h.Set("Content-Type", "application/json")
+	h.Set("Content-Length", strconv.Itoa(len(full)))
+	h.Set(HeaderCache, OutcomeBypass)
+	p.spendHeaders(ctx, h, team.Name, res.cost, 0)
+	ll.status = http.StatusOK
+	w.WriteHeader(http.StatusOK)
+	_, _ = w.Write(full)
 }
 
 // tokenFacts reads from a single-prompt answer its finish reason and how many

@@ -5,6 +5,8 @@ import (
 	"crypto/subtle"
 	"net/http"
 	"strings"
+
+	"github.com/stintlab/stint/budget/guard"
 )
 
 // Team is a client team: its keys, cache namespace and cache switch.
@@ -29,13 +31,13 @@ func (t *Team) namespace() string {
 
 // authenticate maps the request's bearer key to a team. In open mode (no
 // teams configured) every request belongs to the default team.
-func (p *Proxy) authenticate(r *http.Request) (*Team, *apiError) {
+func (p *Proxy) authenticate(r *http.Request) (*Team, string, *apiError) {
 	if p.open != nil {
-		return p.open, nil
+		return p.open, "", nil
 	}
 	key, ok := bearer(r.Header.Get("Authorization"))
 	if !ok {
-		return nil, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "missing_key", message: "missing bearer key: send Authorization: Bearer <team key>"}
+		return nil, "", &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "missing_key", message: "missing bearer key: send Authorization: Bearer <team key>"}
 	}
 	sum := sha256.Sum256([]byte(key))
 	var found *Team
@@ -49,9 +51,9 @@ func (p *Proxy) authenticate(r *http.Request) (*Team, *apiError) {
 		}
 	}
 	if found == nil {
-		return nil, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "invalid_key", message: "unknown key"}
+		return nil, "", &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "invalid_key", message: "unknown key"}
 	}
-	return found, nil
+	return found, guard.KeyID(sum), nil
 }
 
 func bearer(h string) (string, bool) {

@@ -3,6 +3,7 @@ package proxy
 import (
 	"encoding/json"
 	"net/http"
+	"time"
 )
 
 // Error types used in the wire format's error body.
@@ -33,6 +34,8 @@ type apiError struct {
 	code    string
 	param   string
 	message string
+	// retryAfter, when set, is sent as Retry-After (RFC 9110 §10.2.3).
+	retryAfter time.Duration
 }
 
 func (e *apiError) Error() string { return e.message }
@@ -54,6 +57,9 @@ func writeError(w http.ResponseWriter, e *apiError) {
 	b, _ := json.Marshal(body)
 	w.Header().Set("Content-Type", "application/json")
 	w.Header().Set("Content-Length", itoa(len(b)))
+	if e.retryAfter > 0 {
+		w.Header().Set("Retry-After", retryAfterSeconds(e.retryAfter))
+	}
 	w.WriteHeader(e.status)
 	_, _ = w.Write(b)
 }

@@ -37,7 +37,8 @@ func (p *Proxy) fetch(ctx context.Context, up *Upstream, req *request, items []i
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if stream {
-		res.full, err = p.relay(streamTo, resp, req, res)
+		res.streamed = true
+		res.full, _, _, err = p.relay(streamTo, resp, req, OutcomeMiss)
 	} else {
 		res.full, err = io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
 		if err != nil {
@@ -121,13 +122,19 @@ func upstreamBody(req *request, prompts []json.RawMessage, stream bool) ([]byte,
 // relay copies an upstream event stream to the client while assembling the
 // whole answer. A client that goes away does not stop the relay: the call is
 // paid for, so it is read to the end and stored.
-func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, res *flightResult) ([]byte, error) {
+//
+// It returns the assembled answer (or errUnstorable) and the usage the
+// stream reported, if it did. Spend figures, known only at the end, are sent
+// as HTTP trailers.
+func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, outcome string) ([]byte, usage, bool, error) {
 	h := w.Header()
 	h.Set("Content-Type", "text/event-stream")
 	h.Set("Cache-Control", "no-cache")
-	h.Set(HeaderCache, OutcomeMiss)
+	h.Set(HeaderCache, outcome)
+	if p.spend != nil {
+		h.Set("Trailer", HeaderCost+", "+HeaderSaved+", "+HeaderBudgetLeft)
+	}
 	w.WriteHeader(http.StatusOK)
-	res.streamed = true
 	sw := sse.NewWriter(w)
 	clientOK := true
 	asm := newAssembler(req.endpoint)
@@ -138,7 +145,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 			if errors.Is(err, io.EOF) {
 				err = io.ErrUnexpectedEOF
 			}
-			return nil, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
+			return nil, usage{}, false, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
 		}
 		if ev.IsDone() {
 			if clientOK {
@@ -148,7 +155,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 		}
 		usageOnly, err := asm.add([]byte(ev.Data))
 		if err != nil {
-			return nil, &upstreamError{err: err}
+			return nil, usage{}, false, &upstreamError{err: err}
 		}
 		if clientOK && (!usageOnly || req.includeUsage) {
 			if err := sw.WriteData([]byte(ev.Data)); err != nil {
@@ -156,7 +163,9 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 			}
 		}
 	}
-	return asm.result()
+	u, hasUsage := asm.reportedUsage()
+	full, err := asm.result()
+	return full, u, hasUsage, err
 }
 
 // splitAnswer cuts an upstream answer for nPrompts prompts into one

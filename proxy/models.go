@@ -11,7 +11,7 @@ import (
 // serveModels answers GET /v1/models from the upstreams, merged when there
 // are several, and reuses the answer for ModelsTTL.
 func (p *Proxy) serveModels(w http.ResponseWriter, r *http.Request) {
-	if _, aerr := p.authenticate(r); aerr != nil {
+	if _, _, aerr := p.authenticate(r); aerr != nil {
 		writeError(w, aerr)
 		return
 	}

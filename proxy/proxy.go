@@ -17,6 +17,8 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/coalesce"
 )
@@ -82,6 +84,9 @@ type Options struct {
 	Gatherer prometheus.Gatherer
 	// Now is the clock; nil means time.Now.
 	Now func() time.Time
+	// Spend admits and accounts upstream calls (budgets, rate limits,
+	// prices); nil means no spend control.
+	Spend SpendControl
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -105,6 +110,9 @@ type Proxy struct {
 	flights coalesce.Group[*flightResult]
 	writes  *writeBehind
 	memo    *requestMemo
+	spend   SpendControl
+	left    leftCache
+	tasks   *background // journal writes for savings
 
 	draining atomic.Bool
 
@@ -138,6 +146,8 @@ func New(opts Options) (*Proxy, error) {
 	}
 	p.writes = newWriteBehind(opts.Store)
 	p.memo = newRequestMemo()
+	p.spend = opts.Spend
+	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
 		if p.upstreams[i].Name == "" {
@@ -200,7 +210,12 @@ func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) { p.mux.ServeH
 
 // Close waits until every answer already sent has been written to the store
 // (or ctx ends). It does not close the store, which the caller owns.
-func (p *Proxy) Close(ctx context.Context) error { return p.writes.wait(ctx) }
+func (p *Proxy) Close(ctx context.Context) error {
+	if err := p.writes.wait(ctx); err != nil {
+		return err
+	}
+	return p.tasks.wait(ctx)
+}
 
 // Drain marks the proxy as shutting down: /readyz answers 503 so load
 // balancers stop sending new work while in-flight requests finish.
@@ -267,6 +282,7 @@ type flightResult struct {
 	// storing or for sharing with waiters.
 	unstorable bool
 	latency    time.Duration
+	cost       budget.Nanos // what the call was charged (spend control on)
 }
 
 // logLine gathers what the request's log line reports.
@@ -292,7 +308,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		writeError(w, e)
 	}
 
-	team, aerr := p.authenticate(r)
+	team, keyID, aerr := p.authenticate(r)
 	if aerr != nil {
 		fail(aerr)
 		return
@@ -310,7 +326,8 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		if hit, _ := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
 			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
-			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit)
+			fig := spendFigures{team: team.Name, saved: p.noteSaved(team, keyID, &m.req, hit.usage)}
+			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit, fig)
 			return
 		}
 	}
@@ -334,10 +351,10 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 			return
 		}
 		ll.outcome = OutcomeBypass
-		p.forward(w, r, ll, up, req)
+		p.forward(w, r, ll, team, keyID, up, req)
 		return
 	}
-	p.serveCached(w, r, ll, team, up, req, d, mk, fail)
+	p.serveCached(w, r, ll, team, keyID, up, req, d, mk, fail)
 }
 
 func notCached() *apiError {
@@ -355,7 +372,7 @@ type item struct {
 	stored []byte
 }
 
-func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, up *Upstream, req *request, d directives, mk [32]byte, fail func(*apiError)) {
+func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine, team *Team, keyID string, up *Upstream, req *request, d directives, mk [32]byte, fail func(*apiError)) {
 	ctx := r.Context()
 	items := make([]item, 1)
 	if req.endpoint == endpointCompletions {
@@ -390,7 +407,8 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 
 	if len(misses) == 0 {
 		ll.outcome = OutcomeHit
-		p.answer(w, ll, req, items, nil, OutcomeHit)
+		fig := spendFigures{team: team.Name, saved: p.noteSaved(team, keyID, req, itemsUsage(items, nil))}
+		p.answer(w, ll, req, items, nil, OutcomeHit, fig)
 		return
 	}
 	if d.onlyIfCached {
@@ -408,9 +426,23 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if req.stream && len(misses) == len(items) {
 			streamTo = w
 		}
+		var ticket *guard.Ticket
+		if p.spend != nil {
+			t, err := p.spend.Admit(cctx, spendCall(team, keyID, up, req, items, misses))
+			if err != nil {
+				return nil, &admitError{err}
+			}
+			ticket = t
+		}
 		res, err := p.fetch(cctx, up, req, items, misses, streamTo)
 		if res != nil && res.streamed {
 			leaderStreamed = true
+		}
+		if ticket != nil {
+			p.settle(cctx, ticket, team.Name, res, err, budget.Miss)
+			if leaderStreamed && err == nil {
+				p.spendHeaders(cctx, w.Header(), team.Name, res.cost, 0)
+			}
 		}
 		if err != nil {
 			return nil, err
@@ -421,6 +453,11 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		return res, nil
 	})
 	if err != nil {
+		var ae *admitError
+		if errors.As(err, &ae) {
+			fail(spendError(ae.err))
+			return
+		}
 		if leaderStreamed {
 			// Headers and part of the stream are out; abort so the client sees a broken stream.
 			ll.outcome, ll.status = OutcomeMiss, http.StatusBadGateway
@@ -467,7 +504,17 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 	if ll.hits == 0 {
 		full = res.full
 	}
-	p.answer(w, ll, req, items, full, outcome)
+	fig := spendFigures{team: team.Name}
+	if shared {
+		// Answered by another request's call: all of it was free to this one.
+		fig.saved = p.noteSaved(team, keyID, req, itemsUsage(items, nil))
+	} else {
+		fig.cost = res.cost
+		if ll.hits > 0 {
+			fig.saved = p.noteSaved(team, keyID, req, itemsUsage(items, hitIndexes(items, misses)))
+		}
+	}
+	p.answer(w, ll, req, items, full, outcome, fig)
 }
 
 // lookup returns the cached answer for key shaped to req (nil when there is

@@ -155,6 +155,15 @@ func (a *assembler) addChat(c *assembledChoice, ch map[string]json.RawMessage) e
 	return nil
 }
 
+// reportedUsage is the usage the stream's usage chunk reported.
+func (a *assembler) reportedUsage() (usage, bool) {
+	var u usage
+	if a.usage == nil || json.Unmarshal(a.usage, &u) != nil {
+		return usage{}, false
+	}
+	return u, true
+}
+
 // errUnstorable marks an assembled stream that cannot be stored.
 var errUnstorable = errors.New("streamed answer holds parts the proxy does not store")
 

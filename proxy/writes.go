@@ -22,15 +22,14 @@ const writeTimeout = 30 * time.Second
 // served from memory, so a repeat arriving meanwhile is still a hit.
 type writeBehind struct {
 	store cache.Store
-	sem   chan struct{}
-	wg    sync.WaitGroup
+	bg    *background
 
 	mu      sync.Mutex // guards pending
 	pending map[string][]byte
 }
 
 func newWriteBehind(store cache.Store) *writeBehind {
-	return &writeBehind{store: store, sem: make(chan struct{}, maxPendingWrites), pending: map[string][]byte{}}
+	return &writeBehind{store: store, bg: newBackground(maxPendingWrites), pending: map[string][]byte{}}
 }
 
 // get returns the record for key: one still being written, else the store's.
@@ -62,18 +61,7 @@ func (wb *writeBehind) put(key string, value []byte, ttl time.Duration, onErr fu
 			onErr(err)
 		}
 	}
-	wb.wg.Add(1)
-	select {
-	case wb.sem <- struct{}{}:
-		go func() {
-			defer wb.wg.Done()
-			defer func() { <-wb.sem }()
-			write()
-		}()
-	default:
-		defer wb.wg.Done()
-		write()
-	}
+	wb.bg.run(write)
 }
 
 // inFlight reports how many writes have not landed yet.
@@ -84,9 +72,39 @@ func (wb *writeBehind) inFlight() int {
 }
 
 // wait blocks until every scheduled write has finished or ctx ends.
-func (wb *writeBehind) wait(ctx context.Context) error {
+func (wb *writeBehind) wait(ctx context.Context) error { return wb.bg.wait(ctx) }
+
+// background runs work after the answer is sent, at most a bound at once;
+// past the bound the caller runs it itself, so a slow disk or journal slows
+// clients instead of piling up goroutines.
+type background struct {
+	sem chan struct{}
+	wg  sync.WaitGroup
+}
+
+func newBackground(bound int) *background {
+	return &background{sem: make(chan struct{}, bound)}
+}
+
+func (b *background) run(fn func()) {
+	b.wg.Add(1)
+	select {
+	case b.sem <- struct{}{}:
+		go func() {
+			defer b.wg.Done()
+			defer func() { <-b.sem }()
+			fn()
+		}()
+	default:
+		defer b.wg.Done()
+		fn()
+	}
+}
+
+// wait blocks until every task has finished or ctx ends.
+func (b *background) wait(ctx context.Context) error {
 	done := make(chan struct{})
-	go func() { wb.wg.Wait(); close(done) }()
+	go func() { b.wg.Wait(); close(done) }()
 	select {
 	case <-done:
 		return nil

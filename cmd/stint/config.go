@@ -26,6 +26,11 @@ type Config struct {
 	Cache     CacheConfig      `yaml:"cache"`
 	Server    ServerConfig     `yaml:"server"`
 	Log       LogConfig        `yaml:"log"`
+	// Spend control (budgetconfig.go): prices in USD per million tokens,
+	// the price of models not listed, and shared budget settings.
+	Prices       map[string]PriceConfig `yaml:"prices"`
+	DefaultPrice *PriceConfig           `yaml:"default_price"`
+	Budget       BudgetConfig           `yaml:"budget"`
 }
 
 // UpstreamConfig is one inference API.
@@ -35,6 +40,8 @@ type UpstreamConfig struct {
 	KeyEnv  string   `yaml:"key_env"`
 	Timeout Duration `yaml:"timeout"`
 	Models  []string `yaml:"models"`
+	// Limits is the shared ceiling of all teams on this upstream.
+	Limits *LimitsConfig `yaml:"limits"`
 }
 
 // TeamConfig is one client team.
@@ -43,6 +50,13 @@ type TeamConfig struct {
 	Keys      []string `yaml:"keys"`
 	Namespace string   `yaml:"namespace"`
 	Cache     *bool    `yaml:"cache"`
+	// Budget caps the team's spend; nil: no team budget.
+	Budget *CapConfig `yaml:"budget"`
+	// Limits are the team's rate limits.
+	Limits *LimitsConfig `yaml:"limits"`
+	// KeyBudgets caps single keys, by key id: the first 12 hex digits of
+	// the key's sha256 as listed under keys.
+	KeyBudgets map[string]CapConfig `yaml:"key_budgets"`
 }
 
 // CacheConfig sets how answers are kept.
@@ -201,7 +215,7 @@ func (c *Config) Validate(root *yaml.Node) error {
 	default:
 		return bad(fmt.Errorf("format %q must be json or text", c.Log.Format), "log", "format")
 	}
-	return nil
+	return c.validateSpend(root)
 }
 
 // parseKeyHash reads a stored key of the form sha256:<64 hex digits>.

@@ -18,6 +18,7 @@ func newRootCmd() *cobra.Command {
 		newLocalCmd(),
 		newConfigCmd(),
 		newKeysCmd(),
+		newSpendCmd(),
 	)
 	return root
 }

@@ -17,6 +17,9 @@ import (
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/spf13/cobra"
 
+	"github.com/stintlab/stint/budget/boltledger"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/proxy"
@@ -177,6 +180,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		s.close()
 		return nil, err
 	}
+	spend, err := s.buildSpend(ctx, cfg, disk)
+	if err != nil {
+		s.close()
+		return nil, err
+	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := proxy.New(proxy.Options{
@@ -191,6 +199,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		LogPrompts:     cfg.Log.Prompts,
 		Registerer:     reg,
 		Gatherer:       reg,
+		Spend:          spend,
 	})
 	if err != nil {
 		s.close()
@@ -198,6 +207,39 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 	}
 	s.proxy = p
 	return s, nil
+}
+
+// spendOn reports whether the config asks for spend control: it does as
+// soon as it prices anything.
+func spendOn(cfg Config) bool { return len(cfg.Prices) > 0 || cfg.DefaultPrice != nil }
+
+// buildSpend wires spend control on the embedded ledger (the same file as
+// the cache) and starts the sweep that settles expired leases; nil when the
+// config prices nothing.
+func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Store) (proxy.SpendControl, error) {
+	if !spendOn(cfg) {
+		return nil, nil
+	}
+	gc, err := guardConfig(cfg)
+	if err != nil {
+		return nil, err
+	}
+	ledger, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Batch: true})
+	if err != nil {
+		return nil, fmt.Errorf("open ledger: %w", err)
+	}
+	g, err := guard.New(gc, ledger, ledger, &ratelimit.Local{}, nil)
+	if err != nil {
+		return nil, fmt.Errorf("spend control: %w", err)
+	}
+	sweepCtx, cancel := context.WithCancel(context.WithoutCancel(ctx))
+	done := make(chan struct{})
+	go func() {
+		defer close(done)
+		_ = g.Run(sweepCtx, func(err error) { s.log.Warn("lease sweep failed", "err", err) })
+	}()
+	s.closers = append(s.closers, func() error { cancel(); <-done; return nil })
+	return g, nil
 }
 
 func buildTeams(cfgs []TeamConfig) ([]proxy.Team, error) {

@@ -1,0 +1,247 @@
+package proxy_test
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"net/http"
+	"path/filepath"
+	"strconv"
+	"sync"
+	"testing"
+	"time"
+
+	"go.etcd.io/bbolt"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/boltledger"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/budget/ratelimit"
+	"github.com/stintlab/stint/proxy"
+)
+
+// Prices for the fake's models in these tests (invented): USD per million
+// tokens.
+const (
+	testInputPrice  = 2.0
+	testOutputPrice = 6.0
+)
+
+// spendRig is a rig whose proxy runs under a real guard on a real bbolt
+// ledger.
+type spendRig struct {
+	*rig
+	ledger *boltledger.Ledger
+}
+
+func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Config)) *spendRig {
+	t.Helper()
+	db, err := bbolt.Open(filepath.Join(t.TempDir(), "ledger.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = db.Close() })
+	ledger, err := boltledger.New(db, boltledger.Options{Batch: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg := guard.Config{
+		Prices: budget.PriceTable{Models: map[string]budget.Price{model: {Input: testInputPrice, Output: testOutputPrice}}},
+		Teams:  map[string]guard.TeamPolicy{"lab": policy},
+	}
+	for _, fn := range extra {
+		fn(&cfg)
+	}
+	g, err := guard.New(cfg, ledger, ledger, &ratelimit.Local{}, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")), func(o *proxy.Options) { o.Spend = g })
+	r.key = "lab-key"
+	return &spendRig{rig: r, ledger: ledger}
+}
+
+func usdCap(t *testing.T, usd float64) *budget.Cap {
+	t.Helper()
+	n, err := budget.FromUSD(usd)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return &budget.Cap{Limit: n, Period: budget.Total}
+}
+
+// billedNanos is what the fake upstream's own usage costs at the test prices
+// (hand-worked: tokens × USD per million × 1e9 nanos / 1e6 = tokens × price × 1000).
+func billedNanos(promptTokens, completionTokens int) int64 {
+	return int64(promptTokens)*int64(testInputPrice*1000) + int64(completionTokens)*int64(testOutputPrice*1000)
+}
+
+func headerNanos(t *testing.T, h http.Header, name string) int64 {
+	t.Helper()
+	v := h.Get(name)
+	if v == "" {
+		t.Fatalf("no %s header", name)
+	}
+	f, err := strconv.ParseFloat(v, 64)
+	if err != nil {
+		t.Fatalf("%s = %q: %v", name, v, err)
+	}
+	n, err := budget.FromUSD(f)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return int64(n)
+}
+
+func TestSpendHeadersOnMissAndHit(t *testing.T) {
+	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
+	miss := r.complete(greedy("price of a crate of honey"))
+	if miss.status != http.StatusOK {
+		t.Fatalf("miss: %d %s", miss.status, miss.body)
+	}
+	u := decodeCompletion(t, miss.body).Usage
+	want := billedNanos(u.PromptTokens, u.CompletionTokens)
+	if got := headerNanos(t, miss.header, proxy.HeaderCost); got != want {
+		t.Errorf("miss %s = %d nanos, want %d (usage %+v at the test prices)", proxy.HeaderCost, got, want, u)
+	}
+	if got := headerNanos(t, miss.header, proxy.HeaderBudgetLeft); got != int64(budget.NanosPerUSD)-want {
+		t.Errorf("budget left %d nanos, want %d", got, int64(budget.NanosPerUSD)-want)
+	}
+	hit := r.complete(greedy("price of a crate of honey"))
+	if hit.cache() != proxy.OutcomeHit {
+		t.Fatalf("second call: %q", hit.cache())
+	}
+	if got := headerNanos(t, hit.header, proxy.HeaderCost); got != 0 {
+		t.Errorf("hit cost %d, want 0", got)
+	}
+	if got := headerNanos(t, hit.header, proxy.HeaderSaved); got != want {
+		t.Errorf("hit saved %d, want %d (what the call costs now)", got, want)
+	}
+	if err := r.proxy.Close(context.Background()); err != nil {
+		t.Fatal(err)
+	}
+	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if int64(b.Spent) != want || b.Held != 0 {
+		t.Errorf("ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
+	}
+	rows, err := budget.Report(context.Background(), r.ledger, budget.Query{By: budget.ByTeam})
+	if err != nil || len(rows) != 1 {
+		t.Fatalf("report: %v %+v", err, rows)
+	}
+	if rows[0].Requests != 2 || rows[0].UpstreamCalls != 1 || int64(rows[0].Saved) != want {
+		t.Errorf("journal row %+v, want 2 requests, 1 upstream call, saved %d", rows[0], want)
+	}
+}
+
+func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
+	const budgetUSD = 0.002
+	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, budgetUSD)})
+	const clients = 64
+	var (
+		mu           sync.Mutex
+		billed, cost int64
+		ok, refused  int
+	)
+	var wg sync.WaitGroup
+	for i := range clients {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			got := r.complete(greedy(fmt.Sprintf("crate %d of clover honey for the market", i), "max_tokens", 12))
+			mu.Lock()
+			defer mu.Unlock()
+			switch got.status {
+			case http.StatusOK:
+				ok++
+				u := decodeCompletion(t, got.body).Usage
+				billed += billedNanos(u.PromptTokens, u.CompletionTokens)
+				cost += headerNanos(t, got.header, proxy.HeaderCost)
+			case http.StatusPaymentRequired:
+				refused++
+				var e struct {
+					Error struct {
+						Code string `json:"code"`
+					} `json:"error"`
+				}
+				if json.Unmarshal(got.body, &e) != nil || e.Error.Code != "budget_exhausted" {
+					t.Errorf("402 body %s", got.body)
+				}
+			default:
+				t.Errorf("status %d: %s", got.status, got.body)
+			}
+		}()
+	}
+	wg.Wait()
+	limit, _ := budget.FromUSD(budgetUSD)
+	if ok == 0 || refused == 0 {
+		t.Fatalf("%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	}
+	if billed > int64(limit) {
+		t.Errorf("the upstream billed %d nanos, over the %d budget", billed, limit)
+	}
+	if r.upstreamGenerations() != ok {
+		t.Errorf("upstream calls %d, answered %d: a refused call reached the upstream", r.upstreamGenerations(), ok)
+	}
+	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if int64(b.Spent) != billed || cost != billed || b.Held != 0 {
+		t.Errorf("ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	}
+}
+
+func TestSpendRefusals(t *testing.T) {
+	t.Run("rate limit", func(t *testing.T) {
+		r := newSpendRig(t, guard.TeamPolicy{Limits: guard.Limits{RequestsPerMinute: 1}}, func(c *guard.Config) { c.MaxWait = -1 })
+		if got := r.complete(greedy("first")); got.status != http.StatusOK {
+			t.Fatalf("first: %d %s", got.status, got.body)
+		}
+		got := r.complete(greedy("second"))
+		if got.status != http.StatusTooManyRequests {
+			t.Fatalf("second: %d %s, want 429", got.status, got.body)
+		}
+		// RFC 9110 §10.2.3: delay-seconds, a whole number.
+		if s, err := strconv.Atoi(got.header.Get("Retry-After")); err != nil || s < 1 {
+			t.Errorf("Retry-After %q", got.header.Get("Retry-After"))
+		}
+		if hit := r.complete(greedy("first")); hit.status != http.StatusOK || hit.cache() != proxy.OutcomeHit {
+			t.Errorf("a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
+		}
+	})
+	t.Run("unpriced model", func(t *testing.T) {
+		r := newSpendRig(t, guard.TeamPolicy{})
+		got := r.complete(map[string]any{"model": "quill-large", "prompt": "x", "temperature": 0})
+		if got.status != http.StatusBadRequest || r.upstreamGenerations() != 0 {
+			t.Fatalf("unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
+		}
+	})
+	t.Run("bypass is settled from usage", func(t *testing.T) {
+		r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
+		for _, stream := range []bool{false, true} {
+			body := greedy("sampled honey", "temperature", 0.9, "stream", stream)
+			if stream {
+				body["stream_options"] = map[string]any{"include_usage": false}
+			}
+			got := r.complete(body)
+			if got.status != http.StatusOK || got.cache() != proxy.OutcomeBypass {
+				t.Fatalf("stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
+			}
+			if stream {
+				if _, usageChunk := streamedText(t, false, events(t, got.body)); usageChunk != nil {
+					t.Error("the client did not ask for usage but got a usage chunk")
+				}
+			}
+		}
+		if err := r.proxy.Close(context.Background()); err != nil {
+			t.Fatal(err)
+		}
+		b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+		if err != nil || b.Spent <= 0 || b.Held != 0 {
+			t.Errorf("after two bypassed calls: spent %d held %d (%v)", b.Spent, b.Held, err)
+		}
+	})
+}
