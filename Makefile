@@ -11,13 +11,14 @@ FUZZ_TARGETS := \
 	./proxy/localmodel/tokenizer:FuzzRoundTrip \
 	./budget/tokens:FuzzUpperBound
 
-.PHONY: help build test vet unit fuzz-short bench bench-local bench-go clean
+.PHONY: help build test vet unit fuzz-short bench bench-budgets bench-local bench-go clean
 
 help:
 	@echo "make build        build ./stint"
 	@echo "make test         vet, race-enabled unit tests, short fuzz runs (what CI runs)"
 	@echo "make bench        cache-hit and miss-path throughput against a bare Go server (needs wrk)"
 	@echo "make bench-go     Go benchmarks: keys, stores, hot tier"
+	@echo "make bench-budgets hit and miss throughput with spend control on vs off"
 	@echo "make bench-local  local model benchmarks (tokens/s, FLOP ceiling)"
 
 build:
@@ -41,6 +42,9 @@ fuzz-short:
 
 bench: build
 	bash proxy/bench/bench.sh
+
+bench-budgets:
+	bash proxy/bench/budgets.sh
 
 bench-go:
 	$(GO) test -run '^$$' -bench . -benchmem -benchtime 2000x ./cache/... ./proxy/

@@ -6,8 +6,15 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"path/filepath"
+	"sync/atomic"
 	"testing"
 
+	"go.etcd.io/bbolt"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/boltledger"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/proxy"
@@ -15,7 +22,7 @@ import (
 
 // benchProxy is a proxy on a real embedded store in front of a minimal
 // upstream answering fixed bytes, so the figures are the proxy's own cost.
-func benchProxy(b *testing.B) http.Handler {
+func benchProxy(b *testing.B, opts ...rigOption) http.Handler {
 	b.Helper()
 	answer := []byte(`{"id":"cmpl-bench","object":"text_completion","created":1780000000,"model":"bench-model","choices":[{"text":" the barge drifted past the old mill","index":0,"logprobs":null,"finish_reason":"length"}],"usage":{"prompt_tokens":9,"completion_tokens":8,"total_tokens":17}}`)
 	up := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
@@ -28,10 +35,14 @@ func benchProxy(b *testing.B) http.Handler {
 		b.Fatal(err)
 	}
 	b.Cleanup(func() { _ = disk.Close() })
-	p, err := proxy.New(proxy.Options{
+	o := proxy.Options{
 		Store:     cache.NewHot(disk, cache.HotOptions{MaxBytes: 64 << 20}),
 		Upstreams: []proxy.Upstream{{Name: "bench", BaseURL: up.URL + "/v1"}},
-	})
+	}
+	for _, fn := range opts {
+		fn(&o)
+	}
+	p, err := proxy.New(o)
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -86,5 +97,87 @@ func BenchmarkMiss(b *testing.B) {
 		i++
 		body := fmt.Appendf(nil, `{"model":"bench-model","prompt":"unique prompt %d","temperature":0,"max_tokens":16}`, i)
 		serveOnce(b, h, body)
+	}
+}
+
+// withBenchBudget turns spend control on: a guard on a batched bbolt
+// ledger in the store's own file, a budget too large to run out.
+func withBenchBudget(b *testing.B) rigOption {
+	db, err := bbolt.Open(filepath.Join(b.TempDir(), "ledger.db"), 0o600, &bbolt.Options{NoFreelistSync: true})
+	if err != nil {
+		b.Fatal(err)
+	}
+	b.Cleanup(func() { _ = db.Close() })
+	ledger, err := boltledger.New(db, boltledger.Options{Batch: true})
+	if err != nil {
+		b.Fatal(err)
+	}
+	limit, _ := budget.FromUSD(1e6)
+	g, err := guard.New(guard.Config{
+		Prices: budget.PriceTable{Models: map[string]budget.Price{"bench-model": {Input: 0.5, Output: 1.5}}},
+		Teams:  map[string]guard.TeamPolicy{"default": {Budget: &budget.Cap{Limit: limit, Period: budget.Total}}},
+	}, ledger, ledger, &ratelimit.Local{}, nil)
+	if err != nil {
+		b.Fatal(err)
+	}
+	return func(o *proxy.Options) { o.Spend = g }
+}
+
+// BenchmarkBudgets compares hits and misses with spend control off and on
+// in one run: a hit journals its saving in the background, a miss
+// reserves, settles and journals before it answers.
+func BenchmarkBudgets(b *testing.B) {
+	for _, kind := range []string{"hit", "miss"} {
+		for _, on := range []bool{false, true} {
+			name := kind + "/budgets=off"
+			if on {
+				name = kind + "/budgets=on"
+			}
+			b.Run(name, func(b *testing.B) {
+				var h http.Handler
+				if on {
+					h = benchProxy(b, withBenchBudget(b))
+				} else {
+					h = benchProxy(b)
+				}
+				hit := []byte(`{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}`)
+				serveOnce(b, h, hit)
+				b.ReportAllocs()
+				i := 0
+				for b.Loop() {
+					body := hit
+					if kind == "miss" {
+						i++
+						body = fmt.Appendf(nil, `{"model":"bench-model","prompt":"unique prompt %d","temperature":0,"max_tokens":16}`, i)
+					}
+					serveOnce(b, h, body)
+				}
+			})
+		}
+	}
+}
+
+// BenchmarkBudgetsParallel is BenchmarkBudgets' miss case with 16
+// concurrent clients per core: shared commits let one sync serve many
+// calls.
+func BenchmarkBudgetsParallel(b *testing.B) {
+	for _, on := range []bool{false, true} {
+		b.Run(fmt.Sprintf("miss/budgets=%v", map[bool]string{false: "off", true: "on"}[on]), func(b *testing.B) {
+			var h http.Handler
+			if on {
+				h = benchProxy(b, withBenchBudget(b))
+			} else {
+				h = benchProxy(b)
+			}
+			var n atomic.Int64
+			b.SetParallelism(16) // 16 × GOMAXPROCS clients
+			b.ReportAllocs()
+			b.RunParallel(func(pb *testing.PB) {
+				for pb.Next() {
+					body := fmt.Appendf(nil, `{"model":"bench-model","prompt":"unique prompt %d","temperature":0,"max_tokens":16}`, n.Add(1))
+					serveOnce(b, h, body)
+				}
+			})
+		})
 	}
 }

@@ -10,6 +10,7 @@ import (
 const (
 	errInvalidRequest = "invalid_request_error"
 	errAuthentication = "authentication_error"
+	errPermission     = "permission_error"
 	errUpstream       = "upstream_error"
 	errCache          = "cache_error"
 	errServer         = "server_error"

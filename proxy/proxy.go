@@ -87,6 +87,9 @@ type Options struct {
 	// Spend admits and accounts upstream calls (budgets, rate limits,
 	// prices); nil means no spend control.
 	Spend SpendControl
+	// AdminKeyHashes are SHA-256 digests of the keys that may use the
+	// admin endpoints (AdminPrefix); empty turns them off.
+	AdminKeyHashes [][sha256.Size]byte
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -107,12 +110,13 @@ type Proxy struct {
 	now            func() time.Time
 	mux            *http.ServeMux
 
-	flights coalesce.Group[*flightResult]
-	writes  *writeBehind
-	memo    *requestMemo
-	spend   SpendControl
-	left    leftCache
-	tasks   *background // journal writes for savings
+	flights   coalesce.Group[*flightResult]
+	writes    *writeBehind
+	memo      *requestMemo
+	spend     SpendControl
+	adminKeys [][sha256.Size]byte
+	left      leftCache
+	tasks     *background // journal writes for savings
 
 	draining atomic.Bool
 
@@ -147,6 +151,7 @@ func New(opts Options) (*Proxy, error) {
 	p.writes = newWriteBehind(opts.Store)
 	p.memo = newRequestMemo()
 	p.spend = opts.Spend
+	p.adminKeys = opts.AdminKeyHashes
 	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
@@ -195,6 +200,7 @@ func New(opts Options) (*Proxy, error) {
 	mux.HandleFunc("GET /v1/models", p.serveModels)
 	mux.HandleFunc("GET /healthz", p.serveHealth)
 	mux.HandleFunc("GET /readyz", p.serveReady)
+	p.routeAdmin(mux)
 	if opts.Gatherer != nil {
 		mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}))
 	}

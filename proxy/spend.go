@@ -161,6 +161,13 @@ func (lc *leftCache) set(team string, left budget.Nanos, has bool, now time.Time
 	lc.m[team] = leftEntry{left, has, now}
 }
 
+// forget drops team's figure, so the next answer reads the ledger.
+func (lc *leftCache) forget(team string) {
+	lc.mu.Lock()
+	defer lc.mu.Unlock()
+	delete(lc.m, team)
+}
+
 // left returns the team's budget left, asking sc when the cached figure is
 // older than a second.
 func (p *Proxy) budgetLeft(ctx context.Context, team string) (budget.Nanos, bool) {

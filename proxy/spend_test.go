@@ -2,6 +2,7 @@ package proxy_test
 
 import (
 	"context"
+	"crypto/sha256"
 	"encoding/json"
 	"fmt"
 	"net/http"
@@ -47,7 +48,9 @@ func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Con
 	}
 	cfg := guard.Config{
 		Prices: budget.PriceTable{Models: map[string]budget.Price{model: {Input: testInputPrice, Output: testOutputPrice}}},
-		Teams:  map[string]guard.TeamPolicy{"lab": policy},
+		Teams:  map[string]guard.TeamPolicy{"lab": policy, "kiln": {}},
+		// Budgets set at run time live beside the sums they cap.
+		Overrides: ledger,
 	}
 	for _, fn := range extra {
 		fn(&cfg)
@@ -56,10 +59,16 @@ func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Con
 	if err != nil {
 		t.Fatal(err)
 	}
-	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")), func(o *proxy.Options) { o.Spend = g })
+	r := newRig(t, withTeams(teamWithKey("lab", "lab-key"), teamWithKey("kiln", "kiln-key")), func(o *proxy.Options) {
+		o.Spend = g
+		o.AdminKeyHashes = [][sha256.Size]byte{sha256.Sum256([]byte(adminKey))}
+	})
 	r.key = "lab-key"
 	return &spendRig{rig: r, ledger: ledger}
 }
+
+// adminKey may use the spend rig's admin endpoints.
+const adminKey = "admin-key-of-the-depot"
 
 func usdCap(t *testing.T, usd float64) *budget.Cap {
 	t.Helper()

@@ -31,16 +31,16 @@ var (
 	holdsBucket   = []byte("budget.reservations") // id -> JSON record
 	leasesBucket  = []byte("budget.leases")       // deadline(8) id -> empty
 	journalBucket = []byte("budget.journal")      // time(8) seq(8) -> JSON entry
+	capsBucket    = []byte("budget.team-caps")    // team -> JSON budget.Cap set at run time
 )
 
 // Options configure a Ledger. The zero value is usable.
 type Options struct {
 	// Location is the time zone budget periods follow. Nil means UTC.
 	Location *time.Location
-	// Batch makes writes go through bbolt's DB.Batch, which commits the
-	// writes of concurrent callers in one transaction (one fsync). It
-	// raises throughput under concurrency but delays a lone writer by up
-	// to the DB's MaxBatchDelay (10ms by default). False means one
+	// Batch commits the writes of concurrent callers in shared
+	// transactions (one fsync for all who queued while the previous
+	// commit ran); a lone writer still commits at once. False means one
 	// transaction per operation.
 	Batch bool
 }
@@ -48,9 +48,9 @@ type Options struct {
 // Ledger is a budget.Ledger and budget.Journal on a bbolt database. It is
 // safe for concurrent use; several Ledgers may share one DB.
 type Ledger struct {
-	db    *bbolt.DB
-	loc   *time.Location
-	batch bool
+	db     *bbolt.DB
+	loc    *time.Location
+	shared *groupCommit // nil: one transaction per operation
 }
 
 var (
@@ -66,7 +66,7 @@ func New(db *bbolt.DB, opts Options) (*Ledger, error) {
 		loc = time.UTC
 	}
 	err := db.Update(func(tx *bbolt.Tx) error {
-		for _, b := range [][]byte{sumsBucket, holdsBucket, leasesBucket, journalBucket} {
+		for _, b := range [][]byte{sumsBucket, holdsBucket, leasesBucket, journalBucket, capsBucket} {
 			if _, err := tx.CreateBucketIfNotExists(b); err != nil {
 				return err
 			}
@@ -76,15 +76,19 @@ func New(db *bbolt.DB, opts Options) (*Ledger, error) {
 	if err != nil {
 		return nil, fmt.Errorf("boltledger: create buckets: %w", err)
 	}
-	return &Ledger{db: db, loc: loc, batch: opts.Batch}, nil
+	l := &Ledger{db: db, loc: loc}
+	if opts.Batch {
+		l.shared = &groupCommit{db: db}
+	}
+	return l, nil
 }
 
-// update runs fn in a read-write transaction, batched if so configured.
-// fn may run more than once (DB.Batch retries), so it must start from
-// scratch each time.
+// update runs fn in a read-write transaction, shared with concurrent
+// callers if so configured. fn may run more than once (see groupCommit),
+// so it must start from scratch each time.
 func (l *Ledger) update(fn func(*bbolt.Tx) error) error {
-	if l.batch {
-		return l.db.Batch(fn)
+	if l.shared != nil {
+		return l.shared.update(fn)
 	}
 	return l.db.Update(fn)
 }
@@ -151,6 +155,20 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 
 // Settle implements budget.Ledger.
 func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos) (budget.Settlement, error) {
+	return l.settle(ctx, now, res, actual, nil)
+}
+
+// SettleAndAppend settles res like Settle and appends e to the journal in
+// the same transaction, so the pair costs one sync instead of two. e.Cost
+// is set to the amount charged; when res is no longer held (the sweep
+// charged it), e is appended with Cost 0 and ErrNotHeld returned.
+func (l *Ledger) SettleAndAppend(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos, e budget.Entry) (budget.Settlement, error) {
+	return l.settle(ctx, now, res, actual, &e)
+}
+
+// settle settles res, and appends e (when not nil) in the same
+// transaction.
+func (l *Ledger) settle(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos, e *budget.Entry) (budget.Settlement, error) {
 	if err := budget.CheckActual(actual); err != nil {
 		return budget.Settlement{}, err
 	}
@@ -158,11 +176,18 @@ func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservati
 		return budget.Settlement{}, err
 	}
 	var out budget.Settlement
+	var notHeld bool
 	err := l.update(func(tx *bbolt.Tx) error {
-		out = budget.Settlement{}
+		out, notHeld = budget.Settlement{}, false
 		raw := tx.Bucket(holdsBucket).Get([]byte(res.ID))
 		if raw == nil {
-			return budget.ErrNotHeld
+			if e == nil {
+				return budget.ErrNotHeld
+			}
+			notHeld = true
+			ne := *e
+			ne.Cost = 0
+			return appendLocked(tx, ne)
 		}
 		var rec record
 		if err := json.Unmarshal(raw, &rec); err != nil {
@@ -176,10 +201,20 @@ func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservati
 		out.Charged = charged
 		out.Released = max(rec.Res.Amount-charged, 0)
 		var err error
-		out.Remaining, err = l.chargeLocked(tx, rec, charged)
-		return err
+		if out.Remaining, err = l.chargeLocked(tx, rec, charged); err != nil {
+			return err
+		}
+		if e != nil {
+			ne := *e
+			ne.Cost = charged
+			return appendLocked(tx, ne)
+		}
+		return nil
 	})
-	if errors.Is(err, budget.ErrNotHeld) {
+	if notHeld || errors.Is(err, budget.ErrNotHeld) {
+		if err != nil && !errors.Is(err, budget.ErrNotHeld) {
+			return budget.Settlement{}, fmt.Errorf("boltledger: settle: %w", err)
+		}
 		return budget.Settlement{}, budget.ErrNotHeld
 	}
 	if err != nil {
@@ -282,25 +317,27 @@ func (l *Ledger) Append(ctx context.Context, e budget.Entry) error {
 	if err := ctx.Err(); err != nil {
 		return err
 	}
-	raw, err := json.Marshal(e)
-	if err != nil {
-		return fmt.Errorf("boltledger: encode journal entry: %w", err)
-	}
-	err = l.update(func(tx *bbolt.Tx) error {
-		b := tx.Bucket(journalBucket)
-		seq, err := b.NextSequence()
-		if err != nil {
-			return err
-		}
-		k := make([]byte, 16)
-		binary.BigEndian.PutUint64(k, timeKey(e.Time))
-		binary.BigEndian.PutUint64(k[8:], seq)
-		return b.Put(k, raw)
-	})
-	if err != nil {
+	if err := l.update(func(tx *bbolt.Tx) error { return appendLocked(tx, e) }); err != nil {
 		return fmt.Errorf("boltledger: append journal entry: %w", err)
 	}
 	return nil
+}
+
+// appendLocked adds e to the journal inside a read-write transaction.
+func appendLocked(tx *bbolt.Tx, e budget.Entry) error {
+	raw, err := json.Marshal(e)
+	if err != nil {
+		return fmt.Errorf("encode journal entry: %w", err)
+	}
+	b := tx.Bucket(journalBucket)
+	seq, err := b.NextSequence()
+	if err != nil {
+		return err
+	}
+	k := make([]byte, 16)
+	binary.BigEndian.PutUint64(k, timeKey(e.Time))
+	binary.BigEndian.PutUint64(k[8:], seq)
+	return b.Put(k, raw)
 }
 
 // Scan implements budget.Journal. Entries come in time order.

@@ -127,6 +127,13 @@ type Config struct {
 	// SweepEvery is how often Run expires leases. 0 means a tenth of the
 	// lease, at least 1 s and at most 1 minute.
 	SweepEvery time.Duration
+	// Overrides, when not nil, holds team budgets set at run time (see
+	// SetBudget); they replace the configured Budget of their team.
+	Overrides Overrides
+	// OverrideRefresh is how often a Guard rereads Overrides, so that a
+	// budget set through another replica applies here within it. 0 means
+	// one second.
+	OverrideRefresh time.Duration
 	// Location is the time zone budget periods roll over in (nil: UTC).
 	// The ledger buckets spend itself, so open it with the same zone; the
 	// Guard uses Location for Charge.Resets.
@@ -137,12 +144,16 @@ type Config struct {
 // several Guards (in several processes) may share one ledger, journal and
 // limiter.
 type Guard struct {
+	caps    capsView
 	cfg     Config
 	counter *tokens.Counter
 	ledger  budget.Ledger
 	journal budget.Journal
 	limiter ratelimit.Limiter
 	now     func() time.Time
+	// settleJournal is the ledger when it is also the journal and can
+	// settle and journal in one step; else nil.
+	settleJournal SettleJournaler
 }
 
 // New validates cfg and returns a Guard on the given backends. now is the
@@ -185,6 +196,9 @@ func New(cfg Config, ledger budget.Ledger, journal budget.Journal, limiter ratel
 	if cfg.Location == nil {
 		cfg.Location = time.UTC
 	}
+	if cfg.OverrideRefresh <= 0 {
+		cfg.OverrideRefresh = time.Second
+	}
 	if cfg.Global != nil {
 		if err := cfg.Global.Validate(); err != nil {
 			return nil, fmt.Errorf("guard: global cap: %w", err)
@@ -222,7 +236,11 @@ func New(cfg Config, ledger budget.Ledger, journal budget.Journal, limiter ratel
 	if now == nil {
 		now = time.Now
 	}
-	return &Guard{cfg: cfg, counter: counter, ledger: ledger, journal: journal, limiter: limiter, now: now}, nil
+	g := &Guard{cfg: cfg, counter: counter, ledger: ledger, journal: journal, limiter: limiter, now: now}
+	if sj, ok := ledger.(SettleJournaler); ok && any(ledger) == any(journal) {
+		g.settleJournal = sj
+	}
+	return g, nil
 }
 
 func (l Limits) validate() error {
@@ -331,7 +349,7 @@ func (g *Guard) Admit(ctx context.Context, c Call) (*Ticket, error) {
 		return nil, err
 	}
 	pol := g.cfg.Teams[c.Team]
-	caps := budget.Caps{Team: pol.Budget, Global: g.cfg.Global}
+	caps := budget.Caps{Team: g.teamCap(ctx, c.Team), Global: g.cfg.Global}
 	if c.KeyID != "" {
 		caps.Key = pol.Keys[c.KeyID]
 	}
@@ -554,14 +572,23 @@ func (t *Ticket) finish(ctx context.Context, cost budget.Nanos, u budget.Usage, 
 		return Charge{}, ErrSettled
 	}
 	ctx = context.WithoutCancel(ctx)
+	e := budget.Entry{
+		Team: t.call.Team, KeyID: t.call.KeyID, Model: t.call.Model, Run: t.call.Run,
+		InputTokens: u.InputTokens, OutputTokens: u.OutputTokens, Outcome: outcome, Upstream: upstream,
+	}
+	if sj := t.g.settleJournal; sj != nil {
+		// One durable step for the charge and its journal entry.
+		e.Time = t.g.now()
+		ch, err := t.settleWith(e.Time, func(now time.Time) (budget.Settlement, error) {
+			return sj.SettleAndAppend(ctx, now, t.res, cost, e)
+		})
+		return ch.Charge, err
+	}
 	ch, err := t.settle(ctx, cost)
 	if err != nil {
 		return Charge{}, err
 	}
-	e := budget.Entry{
-		Time: t.g.now(), Team: t.call.Team, KeyID: t.call.KeyID, Model: t.call.Model, Run: t.call.Run,
-		InputTokens: u.InputTokens, OutputTokens: u.OutputTokens, Cost: ch.Cost, Outcome: outcome, Upstream: upstream,
-	}
+	e.Time, e.Cost = t.g.now(), ch.Cost
 	if ch.notHeld {
 		// The sweep charged the reservation in full and journaled that
 		// as an Expired entry; this entry records the answer only, so
@@ -574,6 +601,15 @@ func (t *Ticket) finish(ctx context.Context, cost budget.Nanos, u budget.Usage, 
 	return ch.Charge, nil
 }
 
+// SettleJournaler settles a reservation and journals its entry in one
+// durable step (boltledger.Ledger does); a Guard whose ledger is also its
+// journal and implements it saves a write per call. The entry's Cost is
+// set by the ledger: the amount charged, or 0 when the reservation was no
+// longer held (then ErrNotHeld is returned).
+type SettleJournaler interface {
+	SettleAndAppend(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos, e budget.Entry) (budget.Settlement, error)
+}
+
 type settled struct {
 	Charge
 	notHeld bool // the sweep had already charged the reservation
@@ -581,9 +617,14 @@ type settled struct {
 
 // settle settles the reservation at cost on the ledger.
 func (t *Ticket) settle(ctx context.Context, cost budget.Nanos) (settled, error) {
-	g := t.g
-	now := g.now()
-	st, err := g.ledger.Settle(ctx, now, t.res, cost)
+	return t.settleWith(t.g.now(), func(now time.Time) (budget.Settlement, error) {
+		return t.g.ledger.Settle(ctx, now, t.res, cost)
+	})
+}
+
+// settleWith runs a settlement at now and reads its outcome.
+func (t *Ticket) settleWith(now time.Time, do func(time.Time) (budget.Settlement, error)) (settled, error) {
+	st, err := do(now)
 	var out settled
 	out.Resets = t.resets(now)
 	switch {
@@ -649,7 +690,7 @@ func (g *Guard) Left(ctx context.Context, team string) (left budget.Nanos, has b
 		}
 		return nil
 	}
-	if err := check(budget.Scope{Team: team}, g.cfg.Teams[team].Budget); err != nil {
+	if err := check(budget.Scope{Team: team}, g.teamCap(ctx, team)); err != nil {
 		return 0, false, err
 	}
 	if err := check(budget.Scope{}, g.cfg.Global); err != nil {

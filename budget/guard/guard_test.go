@@ -15,10 +15,10 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/boltledger"
 	"github.com/stintlab/stint/budget/guard"
-	"github.com/stintlab/stint/budget/internal/redistest"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
 	"github.com/stintlab/stint/budget/redisledger"
+	"github.com/stintlab/stint/budget/redistest"
 	"github.com/stintlab/stint/budget/tokens"
 )
 

@@ -12,9 +12,9 @@ import (
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/budget"
-	"github.com/stintlab/stint/budget/internal/redistest"
 	"github.com/stintlab/stint/budget/ledgertest"
 	"github.com/stintlab/stint/budget/redisledger"
+	"github.com/stintlab/stint/budget/redistest"
 )
 
 // suite runs the conformance suite on c, giving each test its own prefix

@@ -31,6 +31,18 @@ type Config struct {
 	Prices       map[string]PriceConfig `yaml:"prices"`
 	DefaultPrice *PriceConfig           `yaml:"default_price"`
 	Budget       BudgetConfig           `yaml:"budget"`
+	// Store says where state shared between replicas lives
+	// (storeconfig.go).
+	Store StoreConfig `yaml:"store"`
+	// Admin holds the keys of the admin endpoints (/stint/admin/).
+	Admin AdminConfig `yaml:"admin"`
+}
+
+// AdminConfig is the `admin:` section.
+type AdminConfig struct {
+	// Keys may read spend and set budgets over HTTP, stored as
+	// "sha256:<hex>" like team keys. None: the admin endpoints are off.
+	Keys []string `yaml:"keys"`
 }
 
 // UpstreamConfig is one inference API.
@@ -214,6 +226,18 @@ func (c *Config) Validate(root *yaml.Node) error {
 	case "json", "text":
 	default:
 		return bad(fmt.Errorf("format %q must be json or text", c.Log.Format), "log", "format")
+	}
+	for j, k := range c.Admin.Keys {
+		h, err := parseKeyHash(k)
+		if err != nil {
+			return bad(err, "admin", "keys", j)
+		}
+		if team, dup := keys[hex.EncodeToString(h[:])]; dup {
+			return bad(fmt.Errorf("an admin key must not also be a key of team %q", team), "admin", "keys", j)
+		}
+	}
+	if err := c.validateStore(root); err != nil {
+		return err
 	}
 	return c.validateSpend(root)
 }

@@ -37,6 +37,7 @@ func newKeysCmd() *cobra.Command {
 		Short: "Make client keys for teams",
 	}
 	var team string
+	var admin bool
 	newCmd := &cobra.Command{
 		Use:   "new",
 		Short: "Print a fresh random key and the config line that admits it",
@@ -45,20 +46,26 @@ the team's keys in the config. Only the key's SHA-256 goes into the config;
 hand the key itself to the team and keep it out of files.`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			if team == "" {
-				return errors.New("--team is required")
+			if (team == "") == !admin {
+				return errors.New("give --team NAME for a client key, or --admin for an admin key")
 			}
 			key, hash, err := newClientKey()
 			if err != nil {
 				return err
 			}
 			out := cmd.OutOrStdout()
+			if admin {
+				fmt.Fprintf(out, "admin key (set it as STINT_ADMIN_KEY where you run stint spend/budget --proxy; it is not stored anywhere):\n  %s\n", key)
+				fmt.Fprintf(out, "add to admin.keys in the config:\n  - \"%s\"\n", hash)
+				return nil
+			}
 			fmt.Fprintf(out, "key for team %s (give it to the team; it is not stored anywhere):\n  %s\n", team, key)
 			fmt.Fprintf(out, "add to teams[name=%s].keys in the config:\n  - \"%s\"\n", team, hash)
 			return nil
 		},
 	}
-	newCmd.Flags().StringVar(&team, "team", "", "team the key is for (required)")
+	newCmd.Flags().StringVar(&team, "team", "", "team the key is for")
+	newCmd.Flags().BoolVar(&admin, "admin", false, "make a key for the admin endpoints instead")
 	cmd.AddCommand(newCmd)
 	return cmd
 }

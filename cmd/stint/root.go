@@ -19,6 +19,7 @@ func newRootCmd() *cobra.Command {
 		newConfigCmd(),
 		newKeysCmd(),
 		newSpendCmd(),
+		newBudgetCmd(),
 	)
 	return root
 }

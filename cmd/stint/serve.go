@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"crypto/sha256"
 	"errors"
 	"fmt"
 	"io"
@@ -17,9 +18,12 @@ import (
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/spf13/cobra"
 
+	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/boltledger"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
+	"github.com/stintlab/stint/budget/ratelimit/redisrate"
+	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/proxy"
@@ -185,6 +189,15 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		s.close()
 		return nil, err
 	}
+	var adminKeys [][sha256.Size]byte
+	for _, k := range cfg.Admin.Keys {
+		h, err := parseKeyHash(k)
+		if err != nil {
+			s.close()
+			return nil, fmt.Errorf("admin: %w", err)
+		}
+		adminKeys = append(adminKeys, h)
+	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := proxy.New(proxy.Options{
@@ -200,6 +213,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		Registerer:     reg,
 		Gatherer:       reg,
 		Spend:          spend,
+		AdminKeyHashes: adminKeys,
 	})
 	if err != nil {
 		s.close()
@@ -214,7 +228,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 func spendOn(cfg Config) bool { return len(cfg.Prices) > 0 || cfg.DefaultPrice != nil }
 
 // buildSpend wires spend control on the embedded ledger (the same file as
-// the cache) and starts the sweep that settles expired leases; nil when the
+// the cache), or on Redis when the config has store.redis, and starts the sweep that settles expired leases; nil when the
 // config prices nothing.
 func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Store) (proxy.SpendControl, error) {
 	if !spendOn(cfg) {
@@ -224,11 +238,28 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 	if err != nil {
 		return nil, err
 	}
-	ledger, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Batch: true})
-	if err != nil {
-		return nil, fmt.Errorf("open ledger: %w", err)
+	var (
+		ledger  budget.Ledger
+		journal budget.Journal
+		limiter ratelimit.Limiter
+	)
+	if rc := cfg.Store.Redis; rc != nil {
+		client, err := rc.client(ctx)
+		if err != nil {
+			return nil, fmt.Errorf("budgets on redis: %w", err)
+		}
+		s.closers = append(s.closers, client.Close)
+		l := redisledger.New(client, redisledger.Options{Prefix: rc.prefix(), Location: gc.Location})
+		ledger, journal, gc.Overrides = l, l, l
+		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix()})
+	} else {
+		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Batch: true})
+		if err != nil {
+			return nil, fmt.Errorf("open ledger: %w", err)
+		}
+		ledger, journal, limiter, gc.Overrides = l, l, &ratelimit.Local{}, l
 	}
-	g, err := guard.New(gc, ledger, ledger, &ratelimit.Local{}, nil)
+	g, err := guard.New(gc, ledger, journal, limiter, nil)
 	if err != nil {
 		return nil, fmt.Errorf("spend control: %w", err)
 	}

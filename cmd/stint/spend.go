@@ -6,9 +6,11 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"maps"
+	"net/http"
+	"net/url"
 	"os"
 	"path/filepath"
-	"strconv"
 	"strings"
 	"text/tabwriter"
 	"time"
@@ -18,6 +20,9 @@ import (
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/boltledger"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/budget/redisledger"
+	"github.com/stintlab/stint/proxy"
 )
 
 // spendFlags are the command-line settings of `stint spend`.
@@ -28,6 +33,7 @@ type spendFlags struct {
 	since  string
 	by     string
 	json   bool
+	proxy  string
 }
 
 // spendLockTimeout bounds the wait for the store's file lock.
@@ -38,7 +44,8 @@ func newSpendCmd() *cobra.Command {
 	cmd := &cobra.Command{
 		Use:   "spend",
 		Short: "Report what was spent and what the cache saved",
-		Long: `Print spend from the journal in the embedded store (DATA/stint.db): per
+		Long: `Print spend from the journal in the embedded store (DATA/stint.db), or on
+Redis when the config has store.redis: per
 group, the requests, upstream calls, share served from the cache, tokens,
 USD spent and USD saved. With --config, each team's budget left this period
 is shown too.
@@ -46,8 +53,8 @@ is shown too.
 Costs are estimates from the configured prices and the upstream's usage
 counts; the provider's bill is the record.
 
-The store file is locked while stint serve runs; stop it first (or read
-spend from the proxy's admin endpoint).`,
+The store file is locked while stint serve runs: stop it first, or ask the
+running proxy with --proxy (admin key in STINT_ADMIN_KEY).`,
 		Example: `  stint spend --data ./stint-data --since 7d
   stint spend --config stint.yaml --team lab --by model
   stint spend --by day --since 30d --json`,
@@ -63,57 +70,29 @@ spend from the proxy's admin endpoint).`,
 	fl.StringVar(&f.since, "since", "7d", "how far back: 30m, 12h, 7d, or a date 2026-12-01 (UTC)")
 	fl.StringVar(&f.by, "by", "team", "group by model, team, run or day")
 	fl.BoolVar(&f.json, "json", false, "print JSON instead of a table")
+	fl.StringVar(&f.proxy, "proxy", "", "ask a running proxy's admin endpoint (http://host:port) instead of reading the store; the admin key comes from STINT_ADMIN_KEY")
 	return cmd
 }
 
-// parseSince reads "7d", "12h", "30m" (any Go duration, plus days) or a
-// date, and returns the time that far before now.
+// parseSince reads --since; see budget.ParseSince.
 func parseSince(s string, now time.Time) (time.Time, error) {
-	s = strings.TrimSpace(s)
-	if d, err := time.Parse(time.DateOnly, s); err == nil {
-		return d, nil
+	t, err := budget.ParseSince(s, now)
+	if err != nil {
+		return time.Time{}, fmt.Errorf("--since %w", err)
 	}
-	if days, ok := strings.CutSuffix(s, "d"); ok {
-		n, err := strconv.ParseFloat(days, 64)
-		if err == nil && n >= 0 && n <= 365*1000 {
-			return now.Add(-time.Duration(n * 24 * float64(time.Hour))), nil
-		}
-	} else if d, err := time.ParseDuration(s); err == nil && d >= 0 {
-		return now.Add(-d), nil
-	}
-	return time.Time{}, fmt.Errorf("--since %q: want a span like 30m, 12h or 7d, or a date like 2026-12-01", s)
+	return t, nil
 }
 
 // spendReport is the JSON form of the output.
-type spendReport struct {
-	Since   time.Time    `json:"since"`
-	By      string       `json:"by"`
-	Rows    []spendRow   `json:"rows"`
-	Total   spendRow     `json:"total"`
-	Budgets []budgetLeft `json:"budgets,omitempty"`
-}
+type spendReport = budget.Statement
 
-type spendRow struct {
-	Group         string  `json:"group"`
-	Requests      int64   `json:"requests"`
-	UpstreamCalls int64   `json:"upstream_calls"`
-	CacheShare    float64 `json:"cache_share"`
-	InputTokens   int64   `json:"input_tokens"`
-	OutputTokens  int64   `json:"output_tokens"`
-	SpentUSD      string  `json:"spent_usd"` // exact decimal
-	SavedUSD      string  `json:"saved_usd"`
-}
-
-type budgetLeft struct {
-	Team     string `json:"team"`
-	Period   string `json:"period"`
-	LimitUSD string `json:"limit_usd"`
-	SpentUSD string `json:"spent_usd"`
-	HeldUSD  string `json:"held_usd"`
-	LeftUSD  string `json:"left_usd"`
-}
+// spendRow is one line of it.
+type spendRow = budget.StatementRow
 
 func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) error {
+	if f.proxy != "" {
+		return runSpendRemote(ctx, out, f)
+	}
 	var cfg *Config
 	if f.config != "" {
 		c, err := LoadConfig(f.config)
@@ -140,70 +119,41 @@ func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) e
 			return err
 		}
 	}
-	db, err := openStoreForReport(filepath.Join(dir, "stint.db"))
+	ledger, closeLedger, err := openReportLedger(ctx, cfg, dir, loc)
 	if err != nil {
 		return err
 	}
-	defer db.Close()
-	ledger, err := boltledger.New(db, boltledger.Options{Location: loc})
-	if err != nil {
-		return err
-	}
-	rows, err := budget.Report(ctx, ledger, budget.Query{Since: since, Team: f.team, By: by, Location: loc})
-	if err != nil {
-		return err
-	}
-	rep := spendReport{Since: since, By: string(by)}
-	var total budget.Row
-	for _, r := range rows {
-		rep.Rows = append(rep.Rows, toSpendRow(r))
-		total.Requests += r.Requests
-		total.UpstreamCalls += r.UpstreamCalls
-		total.CacheHits += r.CacheHits
-		total.InputTokens += r.InputTokens
-		total.OutputTokens += r.OutputTokens
-		total.Spent += r.Spent
-		total.Saved += r.Saved
-	}
-	total.Group = "total"
-	rep.Total = toSpendRow(total)
+	defer closeLedger()
+	caps := map[string]budget.Cap{}
 	if cfg != nil {
 		for _, t := range cfg.Teams {
-			if t.Budget == nil || (f.team != "" && t.Name != f.team) {
+			if t.Budget == nil {
 				continue
 			}
 			c, err := capOf(*t.Budget, nil, "teams", t.Name, "budget")
 			if err != nil {
 				return err
 			}
-			b, err := ledger.Balance(ctx, now, budget.Scope{Team: t.Name}, c.Period)
+			caps[t.Name] = *c
+		}
+		if ov, ok := ledger.(guard.Overrides); ok {
+			set, err := ov.TeamCaps(ctx)
 			if err != nil {
 				return err
 			}
-			rep.Budgets = append(rep.Budgets, budgetLeft{
-				Team: t.Name, Period: string(c.Period), LimitUSD: c.Limit.String(), SpentUSD: b.Spent.String(),
-				HeldUSD: b.Held.String(), LeftUSD: max(c.Limit-b.Spent-b.Held, 0).String(),
-			})
+			maps.Copy(caps, set)
 		}
 	}
-	if f.json {
-		enc := json.NewEncoder(out)
-		enc.SetIndent("", "  ")
-		return enc.Encode(rep)
+	rep, err := budget.NewStatement(ctx, ledger, ledger, budget.Query{Since: since, Team: f.team, By: by, Location: loc}, caps, now)
+	if err != nil {
+		return err
 	}
-	return printSpend(out, rep)
-}
-
-func toSpendRow(r budget.Row) spendRow {
-	return spendRow{
-		Group: r.Group, Requests: r.Requests, UpstreamCalls: r.UpstreamCalls, CacheShare: r.CacheShare(),
-		InputTokens: r.InputTokens, OutputTokens: r.OutputTokens, SpentUSD: r.Spent.String(), SavedUSD: r.Saved.String(),
-	}
+	return writeSpend(out, rep, f.json)
 }
 
 func printSpend(out io.Writer, rep spendReport) error {
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintf(w, "%s\tREQUESTS\tUPSTREAM\tCACHED\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(rep.By))
+	fmt.Fprintf(w, "%s\tREQUESTS\tUPSTREAM\tCACHED\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(string(rep.By)))
 	for _, r := range append(rep.Rows, rep.Total) {
 		g := r.Group
 		if g == "" {
@@ -217,12 +167,7 @@ func printSpend(out io.Writer, rep spendReport) error {
 	}
 	if len(rep.Budgets) > 0 {
 		fmt.Fprintln(out)
-		w = tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
-		fmt.Fprintln(w, "TEAM\tPERIOD\tBUDGET USD\tSPENT USD\tHELD USD\tLEFT USD\t")
-		for _, b := range rep.Budgets {
-			fmt.Fprintf(w, "%s\t%s\t%s\t%s\t%s\t%s\t\n", b.Team, b.Period, b.LimitUSD, b.SpentUSD, b.HeldUSD, b.LeftUSD)
-		}
-		if err := w.Flush(); err != nil {
+		if err := printStandings(out, rep.Budgets); err != nil {
 			return err
 		}
 	}
@@ -233,6 +178,36 @@ func printSpend(out io.Writer, rep spendReport) error {
 // openStoreForReport opens an existing store file, waiting at most
 // spendLockTimeout for its lock. It opens it read-write because the
 // journal's buckets are created on first use; it writes nothing else.
+// reportLedger is what a spend report reads: the journal and the balances.
+type reportLedger interface {
+	budget.Journal
+	Balance(ctx context.Context, now time.Time, scope budget.Scope, p budget.Period) (budget.Balance, error)
+}
+
+// openReportLedger opens the ledger the config's proxies write: Redis when
+// the config has store.redis, else the embedded file in dir.
+func openReportLedger(ctx context.Context, cfg *Config, dir string, loc *time.Location) (reportLedger, func(), error) {
+	if cfg != nil && cfg.Store.Redis != nil {
+		rc := cfg.Store.Redis
+		client, err := rc.client(ctx)
+		if err != nil {
+			return nil, nil, err
+		}
+		l := redisledger.New(client, redisledger.Options{Prefix: rc.prefix(), Location: loc})
+		return l, func() { client.Close() }, nil
+	}
+	db, err := openStoreForReport(filepath.Join(dir, "stint.db"))
+	if err != nil {
+		return nil, nil, err
+	}
+	l, err := boltledger.New(db, boltledger.Options{Location: loc})
+	if err != nil {
+		db.Close()
+		return nil, nil, err
+	}
+	return l, func() { db.Close() }, nil
+}
+
 func openStoreForReport(path string) (*bbolt.DB, error) {
 	if _, err := os.Stat(path); err != nil {
 		return nil, fmt.Errorf("no store at %s (give --data DIR, or --config with its data directory): %w", path, err)
@@ -245,4 +220,29 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 		return nil, fmt.Errorf("open store %s: %w", path, err)
 	}
 	return db, nil
+}
+
+// runSpendRemote asks a running proxy for the statement.
+func runSpendRemote(ctx context.Context, out io.Writer, f spendFlags) error {
+	if f.data != "" || f.config != "" {
+		return errors.New("--proxy asks the running proxy; leave out --data and --config")
+	}
+	q := url.Values{"since": {f.since}, "by": {f.by}}
+	if f.team != "" {
+		q.Set("team", f.team)
+	}
+	var rep spendReport
+	if err := adminCall(ctx, http.MethodGet, f.proxy, proxy.AdminPrefix+"spend", q, nil, &rep); err != nil {
+		return err
+	}
+	return writeSpend(out, rep, f.json)
+}
+
+func writeSpend(out io.Writer, rep spendReport, asJSON bool) error {
+	if asJSON {
+		enc := json.NewEncoder(out)
+		enc.SetIndent("", "  ")
+		return enc.Encode(rep)
+	}
+	return printSpend(out, rep)
 }

@@ -198,7 +198,7 @@ func (s *Server) chat(out responder, body []byte) {
 		gens[j], finishes[j] = m.generate(p, maxTokens, s.samplingFor(st, call, p.state, j), st.stops)
 		genTokens += len(gens[j])
 	}
-	s.countPrompts(1)
+	s.countPrompts(1, len(toks), genTokens)
 
 	id, created := s.newID("chatcmpl-"), time.Now().Unix()
 	fp := fmt.Sprintf("fp_%08x", uint32(hashString(st.model)))

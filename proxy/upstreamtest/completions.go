@@ -202,7 +202,7 @@ func (s *Server) completions(out responder, body []byte) {
 			choices = append(choices, completionChoiceData{index: idx, echo: echoed, gen: gen, finish: finish})
 		}
 	}
-	s.countPrompts(len(prompts))
+	s.countPrompts(len(prompts), promptTokens, genTokens)
 
 	id, created := s.newID("cmpl-"), time.Now().Unix()
 	u := newUsage(promptTokens, genTokens)

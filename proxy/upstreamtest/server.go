@@ -151,6 +151,7 @@ type Server struct {
 	mu       sync.Mutex
 	calls    Calls
 	prompts  int
+	billed   Tokens
 	requests []Request
 	faults   []*faultRule
 	blocked  bool
@@ -227,6 +228,7 @@ func (s *Server) Reset() {
 	defer s.mu.Unlock()
 	s.calls = Calls{}
 	s.prompts = 0
+	s.billed = Tokens{}
 	s.requests = nil
 	s.faults = nil
 }
@@ -384,11 +386,32 @@ func (s *Server) modelFor(name string) (*model, *apiError) {
 	return m, nil
 }
 
-// countPrompts records n answered prompts.
-func (s *Server) countPrompts(n int) {
+// countPrompts records n answered prompts and the tokens the answer
+// bills.
+func (s *Server) countPrompts(n, promptTokens, completionTokens int) {
 	s.mu.Lock()
 	s.prompts += n
+	s.billed.Prompt += promptTokens
+	s.billed.Completion += completionTokens
 	s.mu.Unlock()
+}
+
+// Tokens are the tokens the server has answered, as a provider would bill
+// them.
+type Tokens struct {
+	Prompt     int // prompt tokens, each prompt of an array once
+	Completion int // generated tokens over all choices
+}
+
+// Billed returns the tokens of every answer generated since the server
+// started or since Reset, counted by the server itself (the same numbers
+// its usage objects report). A streamed answer counts in full once
+// generated, even if its client hangs up before reading it all, as a
+// provider's bill would.
+func (s *Server) Billed() Tokens {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	return s.billed
 }
 
 type modelObject struct {

@@ -5,10 +5,10 @@ import (
 	"sync/atomic"
 	"testing"
 
-	"github.com/stintlab/stint/budget/internal/redistest"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/ratelimit/ratelimittest"
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
+	"github.com/stintlab/stint/budget/redistest"
 )
 
 // TestConformance runs the shared limiter suite, whose WindowBound test

@@ -1,9 +1,9 @@
 // Package redistest starts real redis-server processes for tests, each on a
 // free loopback port with persistence off, stopped when the test ends.
 //
-// It lives under budget/internal because the top-level layout is fixed; the
-// cache's Redis backend cannot import it from here and would need its own
-// copy (or a move to a shared place the lead chooses).
+// It is exported (not internal) so that the proxy's and the command's
+// tests can run their replicas on a real Redis too. The cache tree keeps its
+// own small copy because cache must not import budget.
 package redistest
 
 import (
@@ -27,7 +27,8 @@ const Binary = "/usr/bin/redis-server"
 // Server is one running redis-server.
 type Server struct {
 	Addr string // host:port on 127.0.0.1
-	cmd  *exec.Cmd
+	args []string
+	cmd  *exec.Cmd // nil while stopped
 }
 
 // Start runs a standalone redis-server and returns once it accepts
@@ -114,13 +115,23 @@ func tryStart(tb testing.TB, cluster bool) (*Server, error) {
 	if cluster {
 		args = append(args, "--cluster-enabled", "yes", "--cluster-config-file", dir+"/nodes.conf")
 	}
-	cmd := exec.Command(Binary, args...)
-	out, err := cmd.StdoutPipe()
-	if err != nil {
+	s := &Server{Addr: net.JoinHostPort("127.0.0.1", strconv.Itoa(port)), args: args}
+	if err := s.launch(); err != nil {
 		return nil, err
 	}
+	tb.Cleanup(s.kill)
+	return s, nil
+}
+
+// launch runs redis-server with s.args and waits until it is ready.
+func (s *Server) launch() error {
+	cmd := exec.Command(Binary, s.args...)
+	out, err := cmd.StdoutPipe()
+	if err != nil {
+		return err
+	}
 	if err := cmd.Start(); err != nil {
-		return nil, err
+		return err
 	}
 	ready := make(chan error, 1)
 	go func() {
@@ -145,14 +156,35 @@ func tryStart(tb testing.TB, cluster bool) (*Server, error) {
 	if err != nil {
 		_ = cmd.Process.Kill()
 		_ = cmd.Wait()
-		return nil, err
+		return err
 	}
-	s := &Server{Addr: net.JoinHostPort("127.0.0.1", strconv.Itoa(port)), cmd: cmd}
-	tb.Cleanup(func() {
-		_ = cmd.Process.Kill()
-		_ = cmd.Wait()
-	})
-	return s, nil
+	s.cmd = cmd
+	return nil
+}
+
+func (s *Server) kill() {
+	if s.cmd == nil {
+		return
+	}
+	_ = s.cmd.Process.Kill()
+	_ = s.cmd.Wait()
+	s.cmd = nil
+}
+
+// Stop kills the server (SIGKILL, as a crash or a network cut looks to
+// clients); Restart brings it back on the same address, empty.
+func (s *Server) Stop() { s.kill() }
+
+// Restart starts a stopped server again on the same address. Persistence
+// is off, so it comes back empty.
+func (s *Server) Restart(tb testing.TB) {
+	tb.Helper()
+	if s.cmd != nil {
+		tb.Fatal("redistest: Restart of a running server")
+	}
+	if err := s.launch(); err != nil {
+		tb.Fatalf("redistest: restart on %s: %v", s.Addr, err)
+	}
 }
 
 func freePort() (int, error) {

@@ -1,0 +1,267 @@
+package main
+
+import (
+	"context"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"fmt"
+	"net/http"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/redisledger"
+	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+// Prices of the fake's model in these tests (invented), USD per million
+// tokens, as in spendConfig.
+const (
+	replicaInputPrice  = 2.0
+	replicaOutputPrice = 6.0
+)
+
+// redisConfig writes a config whose budgets live on the Redis at addr, with
+// a data dir of its own (each replica keeps its own cache file).
+func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string) (path, key string) {
+	t.Helper()
+	key = "lab-replica-key"
+	sum := sha256.Sum256([]byte(key))
+	cfg := fmt.Sprintf(`listen: 127.0.0.1:0
+data: %s
+upstreams:
+  - name: fake
+    url: %s
+teams:
+  - name: lab
+    keys: ["sha256:%s"]
+    budget: {usd: %s, per: total}
+prices:
+  quill-small: {input: %v, output: %v}   # invented test prices
+store:
+  redis:
+    addrs: [%q]
+    timeout: 300ms
+admin:
+  keys: ["sha256:%s"]
+`, t.TempDir(), upURL, hex.EncodeToString(sum[:]), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, adminKeyHash())
+	path = filepath.Join(t.TempDir(), "stint.yaml")
+	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	return path, key
+}
+
+// replicaAdminKey is the admin key of the replica configs.
+const replicaAdminKey = "depot-admin-key"
+
+func adminKeyHash() string {
+	sum := sha256.Sum256([]byte(replicaAdminKey))
+	return hex.EncodeToString(sum[:])
+}
+
+// billedNanos prices tokens at the test prices (hand-worked: tokens × USD
+// per million × 1e9 nanos / 1e6 = tokens × price × 1000).
+func billedNanos(tk upstreamtest.Tokens) int64 {
+	return int64(tk.Prompt)*int64(replicaInputPrice*1000) + int64(tk.Completion)*int64(replicaOutputPrice*1000)
+}
+
+func usdNanos(t *testing.T, s string) int64 {
+	t.Helper()
+	f, err := strconv.ParseFloat(s, 64)
+	if err != nil {
+		t.Fatalf("USD %q: %v", s, err)
+	}
+	n, err := budget.FromUSD(f)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return int64(n)
+}
+
+// TestReplicasOnRedisNeverOverspend runs three proxy processes on one real
+// Redis and 64 concurrent clients spread over them, with a budget that runs
+// out mid-test: what the upstream billed (its own token counts × prices)
+// stays within the budget, and the shared ledger, the answers' cost headers
+// and the upstream's bill agree to the nano-dollar.
+func TestReplicasOnRedisNeverOverspend(t *testing.T) {
+	rs := redistest.Start(t)
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const budgetUSD = "0.002"
+	var replicas []*child
+	var key string
+	for range 3 {
+		var path string
+		path, key = redisConfig(t, up.URL(), rs.Addr, budgetUSD)
+		replicas = append(replicas, startStint(t, nil, "serve", "--config", path))
+	}
+	const clients = 64
+	var (
+		mu          sync.Mutex
+		cost        int64
+		ok, refused int
+		wg          sync.WaitGroup
+	)
+	for i := range clients {
+		wg.Go(func() {
+			body := fmt.Sprintf(`{"model":"quill-small","prompt":"pallet %d of oat crates for the north depot","temperature":0,"max_tokens":12}`, i)
+			resp, b := post(t, replicas[i%len(replicas)], key, body)
+			mu.Lock()
+			defer mu.Unlock()
+			switch resp.StatusCode {
+			case http.StatusOK:
+				ok++
+				cost += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
+			case http.StatusPaymentRequired:
+				refused++
+			default:
+				t.Errorf("status %d: %s", resp.StatusCode, b)
+			}
+		})
+	}
+	wg.Wait()
+	if ok == 0 || refused == 0 {
+		t.Fatalf("%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	}
+	billed := billedNanos(up.Billed())
+	limit := usdNanos(t, budgetUSD)
+	if billed > limit {
+		t.Errorf("the upstream billed %d nano-USD, over the %d budget", billed, limit)
+	}
+	if got := up.Calls().Completions; got != ok {
+		t.Errorf("%d upstream calls for %d answers: a refused call reached the upstream", got, ok)
+	}
+	ledger := redisledger.New(rs.Client(t), redisledger.Options{})
+	b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if int64(b.Spent) != billed || cost != billed || b.Held != 0 {
+		t.Errorf("ledger spent %d, headers %d, upstream billed %d, held %d: all must agree exactly, nothing held",
+			b.Spent, cost, billed, b.Held)
+	}
+}
+
+// TestDeadRedisFailsClosedAndRecovers stops the Redis that holds the
+// budgets: a miss is refused with 503 and never forwarded, a cache hit is
+// still served, and once Redis is back the same process forwards again
+// without a restart.
+func TestDeadRedisFailsClosedAndRecovers(t *testing.T) {
+	rs := redistest.Start(t)
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	path, key := redisConfig(t, up.URL(), rs.Addr, "1.00")
+	c := startStint(t, nil, "serve", "--config", path)
+	cached := greedyBody(1)
+	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK {
+		t.Fatalf("first call: %d %s", resp.StatusCode, b)
+	}
+	before := up.Calls().Completions
+
+	rs.Stop()
+	resp, b := post(t, c, key, greedyBody(2))
+	var e struct {
+		Error struct {
+			Code    string `json:"code"`
+			Message string `json:"message"`
+		} `json:"error"`
+	}
+	if resp.StatusCode != http.StatusServiceUnavailable || json.Unmarshal(b, &e) != nil || e.Error.Code != "spend_control_unavailable" {
+		t.Errorf("miss with Redis down: %d %s, want 503 spend_control_unavailable", resp.StatusCode, b)
+	}
+	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK || resp.Header.Get("Stint-Cache") != "hit" {
+		t.Errorf("hit with Redis down: %d %q %s, want 200 hit", resp.StatusCode, resp.Header.Get("Stint-Cache"), b)
+	}
+	if got := up.Calls().Completions; got != before {
+		t.Errorf("upstream calls went from %d to %d with the budget store down: nothing may be forwarded unbudgeted", before, got)
+	}
+
+	rs.Restart(t)
+	resp, b = post(t, c, key, greedyBody(3))
+	if resp.StatusCode != http.StatusOK {
+		t.Errorf("after Redis came back: %d %s, want 200 without a restart", resp.StatusCode, b)
+	}
+}
+
+// runCLI runs a stint command in-process and returns its output.
+func runCLI(t *testing.T, args ...string) (string, error) {
+	t.Helper()
+	cmd := newRootCmd()
+	var out strings.Builder
+	cmd.SetOut(&out)
+	cmd.SetErr(&out)
+	cmd.SetArgs(args)
+	err := cmd.Execute()
+	return out.String(), err
+}
+
+// TestBudgetSetThroughOneReplicaHoldsOnAll lowers the team's budget with
+// `stint budget set` on one replica; the other replica, sharing the Redis,
+// refuses the team's next miss, and `stint spend --proxy` reports the
+// spend both replicas made.
+func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
+	rs := redistest.Start(t)
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	pathA, key := redisConfig(t, up.URL(), rs.Addr, "1.00")
+	pathB, _ := redisConfig(t, up.URL(), rs.Addr, "1.00") // each replica its own cache file
+	a := startStint(t, nil, "serve", "--config", pathA)
+	b := startStint(t, nil, "serve", "--config", pathB)
+	var cost int64
+	for i, c := range []*child{a, b} {
+		resp, body := post(t, c, key, greedyBody(10+i))
+		if resp.StatusCode != http.StatusOK {
+			t.Fatalf("call on replica %d: %d %s", i, resp.StatusCode, body)
+		}
+		cost += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
+	}
+	t.Setenv(adminKeyEnv, replicaAdminKey)
+	out, err := runCLI(t, "spend", "--proxy", "http://"+b.addr, "--json")
+	if err != nil {
+		t.Fatalf("stint spend --proxy: %v\n%s", err, out)
+	}
+	var rep spendReport
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatalf("spend JSON %s: %v", out, err)
+	}
+	if rep.Total.UpstreamCalls != 2 || usdNanos(t, rep.Total.SpentUSD) != cost {
+		t.Errorf("spend via the proxy %+v, want 2 upstream calls costing %d nano-USD", rep.Total, cost)
+	}
+
+	if out, err := runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "lab", "--usd", "0.000001", "--per", "total"); err != nil || !strings.Contains(out, "0.000001") {
+		t.Fatalf("stint budget set: %v\n%s", err, out)
+	}
+	// Replica b rereads budgets set elsewhere within a second; poll for
+	// its refusal (bounded), asserting no timing.
+	before := up.Calls().Completions
+	deadline := time.Now().Add(20 * time.Second)
+	for i := 0; ; i++ {
+		resp, body := post(t, b, key, greedyBody(100+i))
+		if resp.StatusCode == http.StatusPaymentRequired {
+			break
+		}
+		if resp.StatusCode != http.StatusOK || time.Now().After(deadline) {
+			t.Fatalf("replica b after the budget was lowered: %d %s", resp.StatusCode, body)
+		}
+		before++ // admitted before the change reached b
+		time.Sleep(100 * time.Millisecond)
+	}
+	if got := up.Calls().Completions; got != before {
+		t.Errorf("upstream calls %d, want %d: the refused call was forwarded", got, before)
+	}
+	if _, err := runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "nobody", "--usd", "1"); err == nil || !strings.Contains(err.Error(), "no team") {
+		t.Errorf("budget for an unknown team: %v, want a clear refusal", err)
+	}
+	t.Setenv(adminKeyEnv, "not-the-admin-key")
+	if _, err := runCLI(t, "budget", "show", "--proxy", "http://"+a.addr); err == nil || !strings.Contains(err.Error(), "401") {
+		t.Errorf("budget show with a wrong key: %v, want 401", err)
+	}
+}

@@ -1,0 +1,144 @@
+package proxy_test
+
+import (
+	"encoding/json"
+	"fmt"
+	"io"
+	"net/http"
+	"strings"
+	"testing"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/proxy"
+)
+
+// adminDo sends an admin request with key (none when empty).
+func (r *rig) adminDo(method, path, key, body string) (int, []byte) {
+	r.t.Helper()
+	req, err := http.NewRequest(method, r.srv.URL+proxy.AdminPrefix+path, strings.NewReader(body))
+	if err != nil {
+		r.t.Fatal(err)
+	}
+	if key != "" {
+		req.Header.Set("Authorization", "Bearer "+key)
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		r.t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	return resp.StatusCode, b
+}
+
+func errorCode(t *testing.T, b []byte) string {
+	t.Helper()
+	var e struct {
+		Error struct {
+			Code string `json:"code"`
+		} `json:"error"`
+	}
+	if err := json.Unmarshal(b, &e); err != nil {
+		t.Fatalf("error body %s: %v", b, err)
+	}
+	return e.Error.Code
+}
+
+func TestAdminRefusals(t *testing.T) {
+	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
+	tests := []struct {
+		name, method, path, key, body string
+		status                        int
+		code                          string
+	}{
+		{"no key", "GET", "spend", "", "", 401, "missing_key"},
+		{"a team's key", "GET", "spend", "lab-key", "", 401, "invalid_key"},
+		{"bad since", "GET", "spend?since=yesterday", adminKey, "", 400, "invalid_value"},
+		{"bad grouping", "GET", "spend?by=colour", adminKey, "", 400, "invalid_value"},
+		{"unknown team", "PUT", "budgets/ghost", adminKey, `{"usd":1,"per":"day"}`, 404, "unknown_team"},
+		{"unknown field", "PUT", "budgets/lab", adminKey, `{"usd":1,"per":"day","color":"red"}`, 400, "invalid_value"},
+		{"malformed JSON", "PUT", "budgets/lab", adminKey, `{"usd":`, 400, "invalid_value"},
+		{"two objects", "PUT", "budgets/lab", adminKey, `{"usd":1,"per":"day"}{}`, 400, "invalid_value"},
+		{"no usd", "PUT", "budgets/lab", adminKey, `{"per":"day"}`, 400, "invalid_value"},
+		{"negative usd", "PUT", "budgets/lab", adminKey, `{"usd":-1,"per":"day"}`, 400, "invalid_value"},
+		{"bad period", "PUT", "budgets/lab", adminKey, `{"usd":1,"per":"fortnight"}`, 400, "invalid_value"},
+		{"usd as text", "PUT", "budgets/lab", adminKey, `{"usd":"1","per":"day"}`, 400, "invalid_value"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			status, b := r.adminDo(tt.method, tt.path, tt.key, tt.body)
+			if status != tt.status || errorCode(t, b) != tt.code {
+				t.Errorf("%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
+			}
+		})
+	}
+	// None of the refused changes took: the configured budget stands.
+	status, b := r.adminDo("GET", "budgets", adminKey, "")
+	if status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`) {
+		t.Errorf("budgets after refusals: %d %s, want the configured 1.00", status, b)
+	}
+}
+
+func TestAdminOffWithoutKeys(t *testing.T) {
+	r := newRig(t)
+	status, b := r.adminDo("GET", "spend", "anything", "")
+	if status != http.StatusForbidden || errorCode(t, b) != "admin_off" {
+		t.Errorf("admin without keys: %d %s, want 403 admin_off", status, b)
+	}
+}
+
+// TestAdminSetsBudgetAndReadsSpend lowers a team's budget at run time (the
+// next call is refused), reads spend that matches the answers' headers,
+// and clears the override (calls are admitted again).
+func TestAdminSetsBudgetAndReadsSpend(t *testing.T) {
+	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
+	var spent int64
+	for i := range 3 {
+		got := r.complete(greedy(fmt.Sprintf("ledger line %d for the kiln", i), "max_tokens", 8))
+		if got.status != 200 {
+			t.Fatalf("call %d: %d %s", i, got.status, got.body)
+		}
+		spent += headerNanos(t, got.header, proxy.HeaderCost)
+	}
+	r.complete(greedy("ledger line 0 for the kiln", "max_tokens", 8)) // a hit
+
+	var st budget.Statement
+	// The hit's saving is journaled in the background; wait until it is.
+	waitFor(t, "the hit in the journal", func() bool {
+		status, b := r.adminDo("GET", "spend?by=team", adminKey, "")
+		if status != 200 || json.Unmarshal(b, &st) != nil {
+			t.Fatalf("spend: %d %s", status, b)
+		}
+		return st.Total.Requests == 4
+	})
+	if st.Total.Requests != 4 || st.Total.UpstreamCalls != 3 || st.Total.SpentUSD != budget.Nanos(spent).String() {
+		t.Errorf("statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	}
+	if len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String() {
+		t.Errorf("standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+	}
+
+	// A budget below what is spent: the next miss is refused.
+	if status, b := r.adminDo("PUT", "budgets/lab", adminKey, `{"usd":0.000001,"per":"total"}`); status != 200 {
+		t.Fatalf("set budget: %d %s", status, b)
+	}
+	before := r.upstreamGenerations()
+	if got := r.complete(greedy("a new line after the cut", "max_tokens", 8)); got.status != http.StatusPaymentRequired {
+		t.Errorf("after lowering the budget: %d %s, want 402", got.status, got.body)
+	}
+	if r.upstreamGenerations() != before {
+		t.Error("a refused call reached the upstream")
+	}
+	// Cleared: the configured 1 USD applies again.
+	if status, b := r.adminDo("DELETE", "budgets/lab", adminKey, ""); status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`) {
+		t.Fatalf("clear budget: %d %s", status, b)
+	}
+	if got := r.complete(greedy("a new line after the cut", "max_tokens", 8)); got.status != 200 {
+		t.Errorf("after clearing the override: %d %s, want 200", got.status, got.body)
+	}
+	// A team without a configured budget can be given one.
+	if status, b := r.adminDo("PUT", "budgets/kiln", adminKey, `{"usd":2.5,"per":"week"}`); status != 200 || !strings.Contains(string(b), `"team":"kiln"`) {
+		t.Errorf("budget for kiln: %d %s", status, b)
+	}
+}
