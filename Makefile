@@ -9,7 +9,8 @@ FUZZ_TARGETS := \
 	./proxy/sse:FuzzReader \
 	./proxy/localmodel/gguf:FuzzParse \
 	./proxy/localmodel/tokenizer:FuzzRoundTrip \
-	./budget/tokens:FuzzUpperBound
+	./budget/tokens:FuzzUpperBound \
+	./cache/runs:FuzzImport
 
 .PHONY: help build test vet unit fuzz-short bench bench-budgets bench-local bench-go clean
 

@@ -189,7 +189,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	for i, pr := range req.prompts {
 		items[i].prompt = pr
 	}
-	ticket, err := p.spend.Admit(r.Context(), spendCall(team, keyID, up, req, items, nil))
+	ticket, err := p.spend.Admit(r.Context(), spendCall(r.Context(), team, keyID, up, req, items, nil))
 	if err != nil {
 		e := spendError(err)
 		ll.status = e.status

@@ -21,6 +21,7 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/coalesce"
+	"github.com/stintlab/stint/cache/runs"
 )
 
 // Header names stint sets on answers.
@@ -87,6 +88,9 @@ type Options struct {
 	// Spend admits and accounts upstream calls (budgets, rate limits,
 	// prices); nil means no spend control.
 	Spend SpendControl
+	// Runs journals calls that carry a Stint-Run header and answers
+	// replays from it; nil turns record/replay off.
+	Runs runs.Journal
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
 	// admin endpoints (AdminPrefix); empty turns them off.
 	AdminKeyHashes [][sha256.Size]byte
@@ -115,6 +119,8 @@ type Proxy struct {
 	memo      *requestMemo
 	spend     SpendControl
 	adminKeys [][sha256.Size]byte
+	runs      runs.Journal
+	cursor    runs.Cursor // replay positions
 	left      leftCache
 	tasks     *background // journal writes for savings
 
@@ -152,6 +158,7 @@ func New(opts Options) (*Proxy, error) {
 	p.memo = newRequestMemo()
 	p.spend = opts.Spend
 	p.adminKeys = opts.AdminKeyHashes
+	p.runs = opts.Runs
 	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
@@ -201,6 +208,7 @@ func New(opts Options) (*Proxy, error) {
 	mux.HandleFunc("GET /healthz", p.serveHealth)
 	mux.HandleFunc("GET /readyz", p.serveReady)
 	p.routeAdmin(mux)
+	p.routeRuns(mux)
 	if opts.Gatherer != nil {
 		mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}))
 	}
@@ -325,6 +333,27 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		fail(aerr)
 		return
 	}
+	rc, aerr := runHeaders(r.Header)
+	if aerr != nil {
+		fail(aerr)
+		return
+	}
+	if rc.id != "" {
+		if p.runs == nil {
+			fail(runsOff())
+			return
+		}
+		if rc.replay {
+			if aerr := p.serveReplay(w, r, ll, team, rc, ep, body); aerr != nil {
+				fail(aerr)
+			}
+			return
+		}
+		r = r.WithContext(withRun(r.Context(), rc.id)) // spend entries name the run
+		rr := &runRecorder{w: w}
+		w = rr // fail and every answer below write through the recorder
+		defer rr.finish(func(a runs.Answer) error { return p.recordCall(r.Context(), team, rc, ep, body, rr.Header(), a) })
+	}
 	d := parseDirectives(r.Header)
 	mk := memoKey(team, ep, body)
 	if m, ok := p.memo.get(mk); ok && !d.noCache && !p.logPrompts {
@@ -332,7 +361,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		if hit, _ := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
 			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
-			fig := spendFigures{team: team.Name, saved: p.noteSaved(team, keyID, &m.req, hit.usage)}
+			fig := spendFigures{team: team.Name, saved: p.noteSaved(r.Context(), team, keyID, &m.req, hit.usage)}
 			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit, fig)
 			return
 		}
@@ -413,7 +442,7 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 
 	if len(misses) == 0 {
 		ll.outcome = OutcomeHit
-		fig := spendFigures{team: team.Name, saved: p.noteSaved(team, keyID, req, itemsUsage(items, nil))}
+		fig := spendFigures{team: team.Name, saved: p.noteSaved(ctx, team, keyID, req, itemsUsage(items, nil))}
 		p.answer(w, ll, req, items, nil, OutcomeHit, fig)
 		return
 	}
@@ -434,7 +463,7 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		}
 		var ticket *guard.Ticket
 		if p.spend != nil {
-			t, err := p.spend.Admit(cctx, spendCall(team, keyID, up, req, items, misses))
+			t, err := p.spend.Admit(cctx, spendCall(cctx, team, keyID, up, req, items, misses))
 			if err != nil {
 				return nil, &admitError{err}
 			}
@@ -513,11 +542,11 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 	fig := spendFigures{team: team.Name}
 	if shared {
 		// Answered by another request's call: all of it was free to this one.
-		fig.saved = p.noteSaved(team, keyID, req, itemsUsage(items, nil))
+		fig.saved = p.noteSaved(ctx, team, keyID, req, itemsUsage(items, nil))
 	} else {
 		fig.cost = res.cost
 		if ll.hits > 0 {
-			fig.saved = p.noteSaved(team, keyID, req, itemsUsage(items, hitIndexes(items, misses)))
+			fig.saved = p.noteSaved(ctx, team, keyID, req, itemsUsage(items, hitIndexes(items, misses)))
 		}
 	}
 	p.answer(w, ll, req, items, full, outcome, fig)

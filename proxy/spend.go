@@ -37,8 +37,8 @@ type SpendControl interface {
 }
 
 // spendCall describes the upstream call for the prompts at idx (nil: all).
-func spendCall(t *Team, keyID string, up *Upstream, req *request, items []item, idx []int) guard.Call {
-	c := guard.Call{Team: t.Name, KeyID: keyID, Model: req.model, Upstream: up.Name, MaxTokens: req.maxTokens, N: req.n}
+func spendCall(ctx context.Context, t *Team, keyID string, up *Upstream, req *request, items []item, idx []int) guard.Call {
+	c := guard.Call{Team: t.Name, KeyID: keyID, Model: req.model, Upstream: up.Name, MaxTokens: req.maxTokens, N: req.n, Run: runOf(ctx)}
 	if req.endpoint == endpointChat {
 		c.Endpoint = guard.Chat
 		c.Messages = chatMessages(req.fields["messages"])
@@ -249,11 +249,11 @@ func (p *Proxy) settle(ctx context.Context, ticket *guard.Ticket, team string, r
 // noteSaved prices what a cache-served answer would have cost now and
 // journals it behind the answer. It returns the amount (0 without spend
 // control or for a model without a price).
-func (p *Proxy) noteSaved(t *Team, keyID string, req *request, u usage) budget.Nanos {
+func (p *Proxy) noteSaved(ctx context.Context, t *Team, keyID string, req *request, u usage) budget.Nanos {
 	if p.spend == nil {
 		return 0
 	}
-	c := guard.Call{Team: t.Name, KeyID: keyID, Model: req.model, MaxTokens: req.maxTokens, N: req.n}
+	c := guard.Call{Team: t.Name, KeyID: keyID, Model: req.model, MaxTokens: req.maxTokens, N: req.n, Run: runOf(ctx)}
 	gu := guardUsage(u)
 	worth, err := p.spend.Worth(c, gu)
 	if err != nil {

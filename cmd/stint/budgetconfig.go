@@ -40,6 +40,9 @@ type BudgetConfig struct {
 	// DefaultOutputCap is the output cap of models not in OutputCaps;
 	// absent or 0 means 4096.
 	DefaultOutputCap Number `yaml:"default_output_cap"`
+	// OutageAllowance, with store.redis, is what each process may spend on
+	// a local ledger while Redis is unreachable; nil: fail closed.
+	OutageAllowance *CapConfig `yaml:"outage_allowance"`
 	// Tokenizers maps models to cl100k_base, o200k_base or r50k_base;
 	// other models are counted with a conservative upper bound.
 	Tokenizers map[string]string `yaml:"tokenizers"`
@@ -175,6 +178,14 @@ func (c *Config) validateSpend(root *yaml.Node) error {
 	if b.Global != nil {
 		if _, err := capOf(*b.Global, bad, "budget", "global"); err != nil {
 			return err
+		}
+	}
+	if b.OutageAllowance != nil {
+		if _, err := capOf(*b.OutageAllowance, bad, "budget", "outage_allowance"); err != nil {
+			return err
+		}
+		if c.Store.Redis == nil {
+			return bad(errors.New("an outage allowance only applies with store.redis (the embedded ledger has no outage)"), "budget", "outage_allowance")
 		}
 	}
 	if _, err := loadZone(b.TimeZone); err != nil {

@@ -30,7 +30,7 @@ const (
 
 // redisConfig writes a config whose budgets live on the Redis at addr, with
 // a data dir of its own (each replica keeps its own cache file).
-func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string) (path, key string) {
+func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string, extra ...string) (path, key string) {
 	t.Helper()
 	key = "lab-replica-key"
 	sum := sha256.Sum256([]byte(key))
@@ -51,7 +51,7 @@ store:
     timeout: 300ms
 admin:
   keys: ["sha256:%s"]
-`, t.TempDir(), upURL, hex.EncodeToString(sum[:]), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, adminKeyHash())
+%s`, t.TempDir(), upURL, hex.EncodeToString(sum[:]), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, adminKeyHash(), strings.Join(extra, ""))
 	path = filepath.Join(t.TempDir(), "stint.yaml")
 	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
 		t.Fatal(err)
@@ -263,5 +263,55 @@ func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 	t.Setenv(adminKeyEnv, "not-the-admin-key")
 	if _, err := runCLI(t, "budget", "show", "--proxy", "http://"+a.addr); err == nil || !strings.Contains(err.Error(), "401") {
 		t.Errorf("budget show with a wrong key: %v, want 401", err)
+	}
+}
+
+// TestOutageAllowanceCarriesSpendOver stops Redis under a proxy that has
+// an outage allowance: misses go on within the allowance and are refused
+// (503) past it; when Redis is back, the proxy carries what it spent over,
+// so the shared ledger holds every charge the answers' headers reported.
+func TestOutageAllowanceCarriesSpendOver(t *testing.T) {
+	rs := redistest.Start(t)
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	// 6 output tokens at 6 USD per million plus a short prompt at 2 is
+	// about 0.00005 USD a call (hand-worked), so 0.0002 USD lasts a few
+	// calls; the 10 s lease makes the sweep (which carries over) run
+	// every second.
+	path, key := redisConfig(t, up.URL(), rs.Addr, "1.00", "budget:\n  lease: 10s\n  outage_allowance: {usd: 0.0002, per: day}\n")
+	c := startStint(t, nil, "serve", "--config", path)
+	rs.Stop()
+	var spent int64
+	var ok, refused int
+	for i := range 12 {
+		resp, body := post(t, c, key, greedyBody(200+i))
+		switch resp.StatusCode {
+		case http.StatusOK:
+			ok++
+			spent += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
+		case http.StatusServiceUnavailable:
+			refused++
+		default:
+			t.Fatalf("call %d during the outage: %d %s", i, resp.StatusCode, body)
+		}
+	}
+	if ok == 0 || refused == 0 {
+		t.Fatalf("%d admitted, %d refused during the outage: want the allowance to admit some and run out", ok, refused)
+	}
+	if billed := billedNanos(up.Billed()); billed != spent {
+		t.Errorf("upstream billed %d, headers say %d", billed, spent)
+	}
+	rs.Restart(t) // empty: only what the proxy carries over will be there
+	ledger := redisledger.New(rs.Client(t), redisledger.Options{})
+	deadline := time.Now().Add(30 * time.Second)
+	for {
+		b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+		if err == nil && int64(b.Spent) == spent {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("shared ledger shows %+v (%v) after Redis came back, want %d spent carried over", b, err, spent)
+		}
+		time.Sleep(200 * time.Millisecond)
 	}
 }

@@ -20,6 +20,7 @@ func newRootCmd() *cobra.Command {
 		newKeysCmd(),
 		newSpendCmd(),
 		newBudgetCmd(),
+		newRunsCmd(),
 	)
 	return root
 }

@@ -19,6 +19,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/allowance"
 	"github.com/stintlab/stint/budget/boltledger"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
@@ -26,6 +27,7 @@ import (
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 )
 
@@ -198,6 +200,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		}
 		adminKeys = append(adminKeys, h)
 	}
+	journal, err := runs.NewBolt(disk.DB())
+	if err != nil {
+		s.close()
+		return nil, fmt.Errorf("open run journal: %w", err)
+	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := proxy.New(proxy.Options{
@@ -214,6 +221,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		Gatherer:       reg,
 		Spend:          spend,
 		AdminKeyHashes: adminKeys,
+		Runs:           journal,
 	})
 	if err != nil {
 		s.close()
@@ -252,6 +260,17 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 		l := redisledger.New(client, redisledger.Options{Prefix: rc.prefix(), Location: gc.Location})
 		ledger, journal, gc.Overrides = l, l, l
 		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix()})
+		if oa := cfg.Budget.OutageAllowance; oa != nil {
+			c, err := capOf(*oa, nil, "budget", "outage_allowance")
+			if err != nil {
+				return nil, err
+			}
+			al, err := allowance.New(l, disk.DB(), allowance.Options{Allowance: *c, Location: gc.Location})
+			if err != nil {
+				return nil, err
+			}
+			ledger, journal, gc.Overrides = al, al, al
+		}
 	} else {
 		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Batch: true})
 		if err != nil {

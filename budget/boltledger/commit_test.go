@@ -1,0 +1,58 @@
+package boltledger
+
+import (
+	"errors"
+	"fmt"
+	"path/filepath"
+	"sync"
+	"testing"
+
+	"go.etcd.io/bbolt"
+)
+
+// TestGroupCommitIsolatesFailures runs many writes at once, some failing:
+// each failing write reports its own error and leaves nothing behind, and
+// every other write lands.
+func TestGroupCommitIsolatesFailures(t *testing.T) {
+	db, err := bbolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	bucket := []byte("g")
+	if err := db.Update(func(tx *bbolt.Tx) error { _, err := tx.CreateBucket(bucket); return err }); err != nil {
+		t.Fatal(err)
+	}
+	g := &groupCommit{db: db}
+	const writers = 64
+	errBad := errors.New("refused write")
+	errs := make([]error, writers)
+	var wg sync.WaitGroup
+	for i := range writers {
+		wg.Go(func() {
+			errs[i] = g.update(func(tx *bbolt.Tx) error {
+				if err := tx.Bucket(bucket).Put(fmt.Appendf(nil, "k%02d", i), []byte("v")); err != nil {
+					return err
+				}
+				if i%7 == 0 {
+					return errBad // after its Put, which must be rolled back
+				}
+				return nil
+			})
+		})
+	}
+	wg.Wait()
+	err = db.View(func(tx *bbolt.Tx) error {
+		for i := range writers {
+			landed := tx.Bucket(bucket).Get(fmt.Appendf(nil, "k%02d", i)) != nil
+			wantFail := i%7 == 0
+			if wantFail != errors.Is(errs[i], errBad) || landed == wantFail {
+				t.Errorf("write %d: err %v, landed %v; want failed=%v", i, errs[i], landed, wantFail)
+			}
+		}
+		return nil
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+}

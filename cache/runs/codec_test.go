@@ -1,0 +1,134 @@
+package runs
+
+import (
+	"bytes"
+	"context"
+	"crypto/sha256"
+	"errors"
+	"io"
+	"strings"
+	"testing"
+	"testing/iotest"
+	"time"
+)
+
+func TestRecordRoundTrip(t *testing.T) {
+	tests := []record{
+		{Entry: Entry{Seq: 1, Key: "k", Occurrence: 1, Ref: refOf(nil), Time: time.Unix(0, 0).UTC()}, Status: 200},
+		{Entry: Entry{Seq: 1 << 40, Key: strings.Repeat("é", 300), Occurrence: 1 << 33, Ref: refOf([]byte("x")),
+			Outcome: "miss", Upstream: true, CostNanos: -5, SavedNanos: 1 << 62, Model: "m", Stream: true,
+			Time: time.Date(2262, 1, 1, 0, 0, 0, 1, time.UTC)}, Status: 599, ContentType: "text/event-stream"},
+		{Entry: Entry{Seq: 7, Key: "k", Occurrence: 2, Ref: refOf([]byte("y")), Time: time.Date(1700, 1, 1, 0, 0, 0, 0, time.UTC)}, Status: 100},
+	}
+	for i, want := range tests {
+		b, err := encodeRecord(&want)
+		if err != nil {
+			t.Fatal(err)
+		}
+		got, err := decodeRecord(b)
+		if err != nil {
+			t.Fatalf("case %d: %v", i, err)
+		}
+		if got.Time != want.Time {
+			t.Errorf("case %d: time got %v, want %v", i, got.Time, want.Time)
+		}
+		got.Time, want.Time = time.Time{}, time.Time{}
+		if got != want {
+			t.Errorf("case %d:\n got %+v\nwant %+v", i, got, want)
+		}
+	}
+}
+
+// TestDecodeDamaged decodes every truncation and every single-bit change
+// of a record and of a tally: each is an ErrCorrupt or decodes, never a
+// panic, and truncations are always errors.
+func TestDecodeDamaged(t *testing.T) {
+	r := record{Entry: Entry{Seq: 3, Key: "key", Occurrence: 2, Ref: refOf([]byte("b")), Outcome: "hit", Model: "m",
+		Time: time.Unix(1700000000, 5).UTC()}, Status: 200, ContentType: "application/json"}
+	rb, _ := encodeRecord(&r)
+	tb := encodeTally(&tally{Calls: 3, Upstream: 1, Cost: 9, Saved: 2, Keys: 2, Bodies: 2, Bytes: 10, First: 1, Last: 2})
+	decoders := []struct {
+		name   string
+		b      []byte
+		decode func([]byte) error
+	}{
+		{"record", rb, func(b []byte) error { _, err := decodeRecord(b); return err }},
+		{"tally", tb, func(b []byte) error { _, err := decodeTally(b); return err }},
+	}
+	for _, d := range decoders {
+		if err := d.decode(d.b); err != nil {
+			t.Fatalf("%s: undamaged: %v", d.name, err)
+		}
+		for n := range len(d.b) {
+			if err := d.decode(d.b[:n]); !errors.Is(err, ErrCorrupt) {
+				t.Errorf("%s truncated to %d: got %v, want ErrCorrupt", d.name, n, err)
+			}
+		}
+		for i := range len(d.b) * 8 {
+			b := bytes.Clone(d.b)
+			b[i/8] ^= 1 << (i % 8)
+			if err := d.decode(b); err != nil && !errors.Is(err, ErrCorrupt) {
+				t.Errorf("%s bit %d: got %v, want nil or ErrCorrupt", d.name, i, err)
+			}
+		}
+	}
+}
+
+func TestValidID(t *testing.T) {
+	tests := []struct {
+		id   string
+		ok   bool
+		want string // in the error
+	}{
+		{"a", true, ""},
+		{"sweep-2026.03_b", true, ""},
+		{strings.Repeat("x", 128), true, ""},
+		{"", false, "empty"},
+		{strings.Repeat("x", 129), false, "129 characters"},
+		{"has space", false, `' '`},
+		{"slash/y", false, `'/'`},
+		{"brace}", false, `'}'`},
+		{"naïve", false, "byte 2"},
+	}
+	for _, tc := range tests {
+		err := ValidID(tc.id)
+		if (err == nil) != tc.ok || err != nil && (!errors.Is(err, ErrInvalid) || !strings.Contains(err.Error(), tc.want)) {
+			t.Errorf("ValidID(%.20q): got %v, want ok=%v mentioning %q", tc.id, err, tc.ok, tc.want)
+		}
+	}
+}
+
+// TestTrailerReader feeds an archive-shaped stream in reads of every
+// shape: the trailer is found however the bytes arrive.
+func TestTrailerReader(t *testing.T) {
+	body := bytes.Repeat([]byte("0123456789"), 500)
+	sum := sha256.Sum256(body)
+	good := append(append(bytes.Clone(body), trailerHead...), sum[:]...)
+	bad := bytes.Clone(good)
+	bad[len(bad)-1] ^= 1
+	readers := []struct {
+		name string
+		wrap func(io.Reader) io.Reader
+	}{
+		{"whole", func(r io.Reader) io.Reader { return r }},
+		{"one byte", iotest.OneByteReader},
+		{"half", iotest.HalfReader},
+		{"data with EOF", iotest.DataErrReader},
+	}
+	for _, rd := range readers {
+		for _, tc := range []struct {
+			name string
+			in   []byte
+			want bool
+		}{{"good", good, true}, {"bad sum", bad, false}, {"no trailer", body, false}, {"short", good[:30], false}} {
+			tr := newTrailerReader(context.Background(), rd.wrap(bytes.NewReader(tc.in)), 1<<20)
+			got, err := io.ReadAll(tr)
+			if err != nil || !bytes.Equal(got, tc.in) {
+				t.Fatalf("%s/%s: passed %d bytes, %v", rd.name, tc.name, len(got), err)
+			}
+			if ok := tr.check(); ok != tc.want {
+				t.Errorf("%s/%s: check got %v, want %v", rd.name, tc.name, ok, tc.want)
+			}
+		}
+	}
+}

@@ -1,0 +1,77 @@
+package runs_test
+
+import (
+	"context"
+	"errors"
+	"testing"
+
+	"github.com/stintlab/stint/cache/internal/redistest"
+	"github.com/stintlab/stint/cache/runs"
+)
+
+// TestRedisCorruptValues damages a run's hashes in Redis: reads fail with
+// ErrCorrupt, never panic, and never return wrong bytes.
+func TestRedisCorruptValues(t *testing.T) {
+	t.Parallel()
+	c := redistest.Start(t).Client(t)
+	ctx := context.Background()
+	calls := mixedCalls(6)
+	tests := []struct {
+		name   string
+		suffix string // of the damaged hash's key
+		damage func(string) string
+	}{
+		{"record truncated", "e", func(v string) string { return v[:len(v)/2] }},
+		{"record version", "e", func(v string) string { return "\x09" + v[1:] }},
+		{"record occurrence", "e", func(v string) string { b := []byte(v); b[16] ^= 1; return string(b) }},
+		{"body flipped", "b", func(v string) string { return v + "!" }},
+		{"index", "x", func(string) string { return "99" }},
+	}
+	for i, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			prefix := "c" + string(rune('a'+i))
+			j := runs.NewRedis(c, runs.RedisOptions{Prefix: prefix})
+			recordAll(t, j, "lab", "r", calls)
+			key := prefix + ":run:{lab/r}:" + tc.suffix
+			all, err := c.HGetAll(ctx, key).Result()
+			if err != nil || len(all) == 0 {
+				t.Fatalf("HGETALL %s: %d fields, %v", key, len(all), err)
+			}
+			for f, v := range all {
+				if err := c.HSet(ctx, key, f, tc.damage(v)).Err(); err != nil {
+					t.Fatal(err)
+				}
+			}
+			for _, call := range calls {
+				_, a, err := j.Lookup(ctx, "lab", "r", call.key, 1)
+				if err == nil && string(a.Body) != string(call.answer.Body) {
+					t.Fatal("Lookup returned wrong bytes after damage")
+				}
+				if !errors.Is(err, runs.ErrCorrupt) {
+					t.Errorf("Lookup: got %v, want ErrCorrupt", err)
+				}
+			}
+			if tc.suffix != "x" { // Export does not read the index
+				if err := j.Export(ctx, "lab", "r", discard{}); !errors.Is(err, runs.ErrCorrupt) {
+					t.Errorf("Export: got %v, want ErrCorrupt", err)
+				}
+			}
+		})
+	}
+	// A damaged summary.
+	j := runs.NewRedis(c, runs.RedisOptions{Prefix: "cs"})
+	recordAll(t, j, "lab", "r", calls)
+	if err := c.HSet(ctx, "cs:run:{lab/r}:m", "cost", "lots").Err(); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := j.Summary(ctx, "lab", "r"); !errors.Is(err, runs.ErrCorrupt) {
+		t.Errorf("Summary: got %v, want ErrCorrupt", err)
+	}
+	if _, err := j.List(ctx, "lab"); !errors.Is(err, runs.ErrCorrupt) {
+		t.Errorf("List: got %v, want ErrCorrupt", err)
+	}
+}
+
+type discard struct{}
+
+func (discard) Write(p []byte) (int, error) { return len(p), nil }

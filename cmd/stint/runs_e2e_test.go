@@ -1,0 +1,154 @@
+package main
+
+import (
+	"bytes"
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"fmt"
+	"net/http"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"github.com/stintlab/stint/proxy/upstreamtest"
+)
+
+// twoTeamConfig writes a config with teams lab and kiln on data.
+func twoTeamConfig(t *testing.T, upURL, data string) string {
+	t.Helper()
+	hash := func(k string) string { s := sha256.Sum256([]byte(k)); return hex.EncodeToString(s[:]) }
+	cfg := fmt.Sprintf(`listen: 127.0.0.1:0
+data: %s
+upstreams:
+  - name: fake
+    url: %s
+teams:
+  - name: lab
+    keys: ["sha256:%s"]
+  - name: kiln
+    keys: ["sha256:%s"]
+prices:
+  quill-small: {input: 2.0, output: 6.0}   # invented test prices
+admin:
+  keys: ["sha256:%s"]
+`, data, upURL, hash("lab-run-key"), hash("kiln-run-key"), hash(replicaAdminKey))
+	path := filepath.Join(t.TempDir(), "stint.yaml")
+	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
+func runPost(t *testing.T, c *child, key, body string, headers ...string) (int, string, []byte) {
+	t.Helper()
+	req, _ := http.NewRequest(http.MethodPost, "http://"+c.addr+"/v1/completions", strings.NewReader(body))
+	req.Header.Set("Authorization", "Bearer "+key)
+	for i := 0; i+1 < len(headers); i += 2 {
+		req.Header.Set(headers[i], headers[i+1])
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatalf("POST: %v", err)
+	}
+	defer resp.Body.Close()
+	var b bytes.Buffer
+	_, _ = b.ReadFrom(resp.Body)
+	return resp.StatusCode, resp.Header.Get("Stint-Cache"), b.Bytes()
+}
+
+// TestRunSurvivesRestartAndExportImport records a run, restarts the proxy
+// and replays it, exports it, imports it into a fresh data dir behind
+// another proxy and replays it there: every answer byte-identical, no
+// upstream call during any replay; another team sees none of it.
+func TestRunSurvivesRestartAndExportImport(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	cfg := twoTeamConfig(t, up.URL(), t.TempDir())
+	c := startStint(t, nil, "serve", "--config", cfg)
+	bodies := []string{
+		`{"model":"quill-small","prompt":"the quince harvest begins","temperature":0.8,"max_tokens":6}`,
+		`{"model":"quill-small","prompt":"the quince harvest begins","temperature":0.8,"max_tokens":6}`,
+		`{"model":"quill-small","prompt":"the quince harvest begins","temperature":0,"max_tokens":6}`,
+		`{"model":"quill-small","prompt":"the quince harvest begins","temperature":0.8,"max_tokens":6,"stream":true}`,
+	}
+	var recorded [][]byte
+	for i, b := range bodies {
+		status, _, body := runPost(t, c, "lab-run-key", b, "Stint-Run", "quince-1")
+		if status != http.StatusOK {
+			t.Fatalf("record %d: %d %s", i, status, body)
+		}
+		recorded = append(recorded, body)
+	}
+	replayAll := func(c *child, where string) {
+		t.Helper()
+		calls := up.Calls()
+		for i, b := range bodies {
+			status, outcome, body := runPost(t, c, "lab-run-key", b, "Stint-Run", "quince-1", "Stint-Run-Mode", "replay", "Stint-Replay-Session", where)
+			if status != http.StatusOK || outcome != "replay" || !bytes.Equal(body, recorded[i]) {
+				t.Errorf("%s: replay %d: %d %q, identical %v", where, i, status, outcome, bytes.Equal(body, recorded[i]))
+			}
+		}
+		if up.Calls() != calls {
+			t.Errorf("%s: the replay reached the upstream", where)
+		}
+	}
+	stop(t, c)
+	c = startStint(t, nil, "serve", "--config", cfg)
+	replayAll(c, "after-restart")
+
+	proxyAt := "http://" + c.addr
+	t.Setenv(teamKeyEnv, "lab-run-key")
+	if out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt); err != nil || !strings.Contains(out, "quince-1") {
+		t.Fatalf("runs show: %v\n%s", err, out)
+	}
+	archive := filepath.Join(t.TempDir(), "quince-1.stintrun")
+	if out, err := runCLI(t, "runs", "export", "quince-1", "-o", archive, "--proxy", proxyAt); err != nil {
+		t.Fatalf("runs export: %v\n%s", err, out)
+	}
+
+	// The spend journal names the run of each call it recorded.
+	t.Setenv(adminKeyEnv, replicaAdminKey)
+	out, err := runCLI(t, "spend", "--proxy", proxyAt, "--by", "run", "--json")
+	var rep spendReport
+	if err != nil || json.Unmarshal([]byte(out), &rep) != nil {
+		t.Fatalf("spend by run: %v\n%s", err, out)
+	}
+	var found bool
+	for _, row := range rep.Rows {
+		found = found || (row.Group == "quince-1" && row.Requests == int64(len(bodies)))
+	}
+	if !found {
+		t.Errorf("spend by run %+v: want a row for quince-1 with %d requests", rep.Rows, len(bodies))
+	}
+
+	t.Setenv(teamKeyEnv, "kiln-run-key")
+	if out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt); err == nil || !strings.Contains(err.Error(), "404") {
+		t.Errorf("another team's runs show: %v\n%s, want 404", err, out)
+	}
+	if out, err := runCLI(t, "runs", "list", "--proxy", proxyAt); err != nil || strings.Contains(out, "quince-1") {
+		t.Errorf("another team's runs list shows the run: %v\n%s", err, out)
+	}
+	if status, _, body := runPost(t, c, "kiln-run-key", bodies[0], "Stint-Run", "quince-1", "Stint-Run-Mode", "replay"); status != http.StatusNotFound {
+		t.Errorf("another team's replay: %d %s, want 404", status, body)
+	}
+
+	fresh := startStint(t, nil, "serve", "--config", twoTeamConfig(t, up.URL(), t.TempDir()))
+	t.Setenv(teamKeyEnv, "lab-run-key")
+	raw, err := os.ReadFile(archive)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cut := filepath.Join(t.TempDir(), "cut.stintrun")
+	if err := os.WriteFile(cut, raw[:len(raw)/2], 0o600); err != nil {
+		t.Fatal(err)
+	}
+	if out, err := runCLI(t, "runs", "import", cut, "--proxy", "http://"+fresh.addr); err == nil || !strings.Contains(err.Error(), "corrupt") {
+		t.Errorf("import of a cut archive: %v\n%s, want a corrupt-archive refusal", err, out)
+	}
+	if out, err := runCLI(t, "runs", "import", archive, "--proxy", "http://"+fresh.addr); err != nil {
+		t.Fatalf("runs import: %v\n%s", err, out)
+	}
+	replayAll(fresh, "after-import")
+}

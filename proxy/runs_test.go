@@ -1,0 +1,233 @@
+package proxy_test
+
+import (
+	"bytes"
+	"fmt"
+	"net/http"
+	"path/filepath"
+	"slices"
+	"sync"
+	"testing"
+
+	"go.etcd.io/bbolt"
+
+	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/proxy"
+)
+
+// newRunRig is a rig with a run journal on its own bbolt file and two
+// teams, lab (whose key the rig sends) and kiln.
+func newRunRig(t *testing.T) *rig {
+	t.Helper()
+	r, _ := newRunRigDB(t)
+	return r
+}
+
+func newRunRigDB(t *testing.T) (*rig, *bbolt.DB) {
+	t.Helper()
+	db, err := bbolt.Open(filepath.Join(t.TempDir(), "runs.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = db.Close() })
+	j, err := runs.NewBolt(db)
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := newRig(t, withTeams(teamWithKey("lab", "lab-key"), teamWithKey("kiln", "kiln-key")), func(o *proxy.Options) { o.Runs = j })
+	r.key = "lab-key"
+	return r, db
+}
+
+// runCall is one call of a scripted run.
+type runCall struct {
+	chat bool
+	body map[string]any
+}
+
+func (c runCall) send(r *rig, headers ...string) response {
+	r.t.Helper()
+	if c.chat {
+		return r.chat(c.body, headers...)
+	}
+	return r.complete(c.body, headers...)
+}
+
+func sampled(prompt string, extra ...any) map[string]any {
+	b := greedy(prompt, extra...)
+	b["temperature"] = 0.9
+	return b
+}
+
+// script is a run mixing greedy and sampled calls, repeats, a batch, chat
+// and streams.
+func script() []runCall {
+	chat := func(text string, temp float64, stream bool) runCall {
+		return runCall{chat: true, body: map[string]any{"model": model, "temperature": temp, "max_tokens": 6, "stream": stream,
+			"messages": []map[string]string{{"role": "user", "content": text}}}}
+	}
+	return []runCall{
+		{body: greedy("the orchard ledger opens", "max_tokens", 6)},
+		{body: sampled("name a pear variety", "max_tokens", 6)},
+		{body: sampled("name a pear variety", "max_tokens", 6)},     // a repeat: its own sample
+		{body: greedy("the orchard ledger opens", "max_tokens", 6)}, // a hit while recording
+		{body: sampled("name a pear variety", "max_tokens", 6, "stream", true)},
+		{body: greedy([]string{"crate one", "crate two", "crate three"}, "max_tokens", 4)},
+		chat("pick a harvest day", 0.9, false),
+		chat("pick a harvest day", 0, true),
+		{body: sampled("name a pear variety", "max_tokens", 6)},
+	}
+}
+
+func TestRunReplaysBitForBitWithoutUpstream(t *testing.T) {
+	r := newRunRig(t)
+	var recorded [][]byte
+	for i, c := range script() {
+		got := c.send(r, proxy.HeaderRun, "orchard-7")
+		if got.status != http.StatusOK {
+			t.Fatalf("call %d: %d %s", i, got.status, got.body)
+		}
+		recorded = append(recorded, got.body)
+	}
+	if bytes.Equal(recorded[1], recorded[2]) {
+		t.Fatal("two sampled calls gave the same answer: the test would not tell their replays apart")
+	}
+	calls := r.up.Calls()
+	for round := range 2 { // a second replay in the same session wraps around to the first answers
+		for i, c := range script() {
+			got := c.send(r, proxy.HeaderRun, "orchard-7", proxy.HeaderRunMode, "replay")
+			if got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay {
+				t.Fatalf("round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
+			}
+			if !bytes.Equal(got.body, recorded[i]) {
+				t.Errorf("round %d replay %d differs:\n got %s\nwant %s", round, i, got.body, recorded[i])
+			}
+		}
+	}
+	if r.up.Calls() != calls {
+		t.Errorf("upstream calls went from %+v to %+v during replay; want none", calls, r.up.Calls())
+	}
+}
+
+func TestReplayRefusals(t *testing.T) {
+	r := newRunRig(t)
+	if got := r.complete(greedy("the cider press starts", "max_tokens", 4), proxy.HeaderRun, "press-1"); got.status != 200 {
+		t.Fatalf("record: %d %s", got.status, got.body)
+	}
+	calls := r.up.Calls()
+	tests := []struct {
+		name    string
+		body    map[string]any
+		headers []string
+		status  int
+		code    string
+	}{
+		{"a call the run never made", greedy("another prompt", "max_tokens", 4),
+			[]string{proxy.HeaderRun, "press-1", proxy.HeaderRunMode, "replay"}, http.StatusConflict, "replay_miss"},
+		{"the same call, streamed", greedy("the cider press starts", "max_tokens", 4, "stream", true),
+			[]string{proxy.HeaderRun, "press-1", proxy.HeaderRunMode, "replay"}, http.StatusConflict, "replay_miss"},
+		{"a run that does not exist", greedy("the cider press starts", "max_tokens", 4),
+			[]string{proxy.HeaderRun, "press-2", proxy.HeaderRunMode, "replay"}, http.StatusNotFound, "run_not_found"},
+		{"another team's run", greedy("the cider press starts", "max_tokens", 4),
+			[]string{proxy.HeaderRun, "press-1", proxy.HeaderRunMode, "replay", "Authorization", "Bearer kiln-key"}, http.StatusNotFound, "run_not_found"},
+		{"a bad run id", greedy("the cider press starts", "max_tokens", 4),
+			[]string{proxy.HeaderRun, "press 1/../x"}, http.StatusBadRequest, "invalid_value"},
+		{"an unknown mode", greedy("the cider press starts", "max_tokens", 4),
+			[]string{proxy.HeaderRun, "press-1", proxy.HeaderRunMode, "rewind"}, http.StatusBadRequest, "invalid_value"},
+		{"a mode without a run", greedy("the cider press starts", "max_tokens", 4),
+			[]string{proxy.HeaderRunMode, "replay"}, http.StatusBadRequest, "invalid_value"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			got := r.complete(tt.body, tt.headers...)
+			if got.status != tt.status || errorCode(t, got.body) != tt.code {
+				t.Errorf("%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
+			}
+		})
+	}
+	if r.up.Calls() != calls {
+		t.Errorf("refused replays reached the upstream: %+v → %+v", calls, r.up.Calls())
+	}
+}
+
+// TestConcurrentRunReplays records 12 identical sampled calls at once and
+// 8 distinct ones, then replays them all at once in another order: the
+// identical calls get the recorded answers, each once (any assignment is a
+// valid replay of interchangeable requests), and each distinct call its
+// own answer.
+func TestConcurrentRunReplays(t *testing.T) {
+	r := newRunRig(t)
+	const same, distinct = 12, 8
+	bodies := make([]map[string]any, 0, same+distinct)
+	for range same {
+		bodies = append(bodies, sampled("a name for the new orchard", "max_tokens", 5))
+	}
+	for i := range distinct {
+		bodies = append(bodies, sampled(fmt.Sprintf("a name for orchard row %d", i), "max_tokens", 5))
+	}
+	sendAll := func(order []int, headers ...string) [][]byte {
+		out := make([][]byte, len(bodies))
+		var wg sync.WaitGroup
+		for _, i := range order {
+			wg.Go(func() {
+				got := r.complete(bodies[i], headers...)
+				if got.status != http.StatusOK {
+					t.Errorf("call %d: %d %s", i, got.status, got.body)
+				}
+				out[i] = got.body
+			})
+		}
+		wg.Wait()
+		return out
+	}
+	order := make([]int, len(bodies))
+	for i := range order {
+		order[i] = i
+	}
+	rec := sendAll(order, proxy.HeaderRun, "rows")
+	calls := r.up.Calls()
+	slices.Reverse(order)
+	rep := sendAll(order, proxy.HeaderRun, "rows", proxy.HeaderRunMode, "replay", proxy.HeaderReplaySession, "audit")
+	sortedStrings := func(bs [][]byte) []string {
+		s := make([]string, len(bs))
+		for i, b := range bs {
+			s[i] = string(b)
+		}
+		slices.Sort(s)
+		return s
+	}
+	if !slices.Equal(sortedStrings(rep[:same]), sortedStrings(rec[:same])) {
+		t.Error("the replayed identical calls are not the recorded answers, each once")
+	}
+	for i := same; i < len(bodies); i++ {
+		if !bytes.Equal(rep[i], rec[i]) {
+			t.Errorf("distinct call %d replayed another answer", i)
+		}
+	}
+	if r.up.Calls() != calls {
+		t.Errorf("replay reached the upstream: %+v → %+v", calls, r.up.Calls())
+	}
+}
+
+// TestUnrecordedAnswerIsNotAcknowledged breaks the journal (its file is
+// closed): a recorded call's plain answer turns into a 503 instead of an
+// answer the run could not replay, and a streamed one ends without its
+// final event.
+func TestUnrecordedAnswerIsNotAcknowledged(t *testing.T) {
+	r, db := newRunRigDB(t)
+	if err := db.Close(); err != nil {
+		t.Fatal(err)
+	}
+	got := r.complete(greedy("the orchard ledger opens", "max_tokens", 6), proxy.HeaderRun, "broken")
+	if got.status != http.StatusServiceUnavailable || errorCode(t, got.body) != "run_journal_unavailable" {
+		t.Errorf("plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
+	}
+	got = r.complete(greedy("the orchard ledger opens", "max_tokens", 6, "stream", true), proxy.HeaderRun, "broken")
+	if bytes.Contains(got.body, []byte("[DONE]")) {
+		t.Errorf("stream with the journal down ended normally:\n%s", got.body)
+	}
+	// Without a run header the same proxy answers as usual.
+	if got := r.complete(greedy("the orchard ledger opens", "max_tokens", 6)); got.status != http.StatusOK {
+		t.Errorf("unrecorded call: %d %s", got.status, got.body)
+	}
+}
