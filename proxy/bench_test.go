@@ -16,7 +16,9 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 )
 
@@ -108,7 +110,7 @@ func withBenchBudget(b *testing.B) rigOption {
 		b.Fatal(err)
 	}
 	b.Cleanup(func() { _ = db.Close() })
-	ledger, err := boltledger.New(db, boltledger.Options{Batch: true})
+	ledger, err := boltledger.New(db, boltledger.Options{Update: boltgroup.New(db).Update})
 	if err != nil {
 		b.Fatal(err)
 	}
@@ -178,6 +180,39 @@ func BenchmarkBudgetsParallel(b *testing.B) {
 					serveOnce(b, h, body)
 				}
 			})
+		})
+	}
+}
+
+// BenchmarkRunRecording compares a cache hit with and without a Stint-Run
+// header: a recorded call waits for its journal entry to be durable.
+func BenchmarkRunRecording(b *testing.B) {
+	for _, recorded := range []bool{false, true} {
+		b.Run(map[bool]string{false: "hit/plain", true: "hit/recorded"}[recorded], func(b *testing.B) {
+			db, err := bbolt.Open(filepath.Join(b.TempDir(), "runs.db"), 0o600, &bbolt.Options{NoFreelistSync: true})
+			if err != nil {
+				b.Fatal(err)
+			}
+			b.Cleanup(func() { _ = db.Close() })
+			j, err := runs.NewBolt(db, runs.BoltOptions{Update: boltgroup.New(db).Update})
+			if err != nil {
+				b.Fatal(err)
+			}
+			h := benchProxy(b, func(o *proxy.Options) { o.Runs = j })
+			body := []byte(`{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}`)
+			serveOnce(b, h, body)
+			b.ReportAllocs()
+			for b.Loop() {
+				req := httptest.NewRequest(http.MethodPost, "/v1/completions", bytes.NewReader(body))
+				if recorded {
+					req.Header.Set(proxy.HeaderRun, "bench-run")
+				}
+				rec := httptest.NewRecorder()
+				h.ServeHTTP(rec, req)
+				if rec.Code != http.StatusOK {
+					b.Fatalf("status %d: %s", rec.Code, rec.Body)
+				}
+			}
 		})
 	}
 }

@@ -30,7 +30,7 @@ func newRunRigDB(t *testing.T) (*rig, *bbolt.DB) {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { _ = db.Close() })
-	j, err := runs.NewBolt(db)
+	j, err := runs.NewBolt(db, runs.BoltOptions{})
 	if err != nil {
 		t.Fatal(err)
 	}

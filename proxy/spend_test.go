@@ -18,6 +18,7 @@ import (
 	"github.com/stintlab/stint/budget/boltledger"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
+	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/proxy"
 )
 
@@ -42,7 +43,7 @@ func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Con
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { _ = db.Close() })
-	ledger, err := boltledger.New(db, boltledger.Options{Batch: true})
+	ledger, err := boltledger.New(db, boltledger.Options{Update: boltgroup.New(db).Update})
 	if err != nil {
 		t.Fatal(err)
 	}

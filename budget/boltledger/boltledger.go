@@ -38,19 +38,23 @@ var (
 type Options struct {
 	// Location is the time zone budget periods follow. Nil means UTC.
 	Location *time.Location
-	// Batch commits the writes of concurrent callers in shared
-	// transactions (one fsync for all who queued while the previous
-	// commit ran); a lone writer still commits at once. False means one
-	// transaction per operation.
+	// Update, when set, runs every write transaction; give it a group
+	// committer shared with the file's other writers (the proxy uses
+	// cache/boltgroup) so concurrent writes share one fsync. Functions
+	// passed to it may run more than once. Nil means Batch decides.
+	Update func(func(*bbolt.Tx) error) error
+	// Batch, without Update, writes through bbolt's DB.Batch (concurrent
+	// writers share commits, a lone one waits up to MaxBatchDelay); false
+	// means one transaction per operation.
 	Batch bool
 }
 
 // Ledger is a budget.Ledger and budget.Journal on a bbolt database. It is
 // safe for concurrent use; several Ledgers may share one DB.
 type Ledger struct {
-	db     *bbolt.DB
-	loc    *time.Location
-	shared *groupCommit // nil: one transaction per operation
+	db    *bbolt.DB
+	loc   *time.Location
+	write func(func(*bbolt.Tx) error) error
 }
 
 var (
@@ -76,21 +80,21 @@ func New(db *bbolt.DB, opts Options) (*Ledger, error) {
 	if err != nil {
 		return nil, fmt.Errorf("boltledger: create buckets: %w", err)
 	}
-	l := &Ledger{db: db, loc: loc}
-	if opts.Batch {
-		l.shared = &groupCommit{db: db}
+	l := &Ledger{db: db, loc: loc, write: opts.Update}
+	if l.write == nil {
+		l.write = db.Update
+		if opts.Batch {
+			l.write = db.Batch
+		}
 	}
 	return l, nil
 }
 
 // update runs fn in a read-write transaction, shared with concurrent
-// callers if so configured. fn may run more than once (see groupCommit),
-// so it must start from scratch each time.
+// callers if so configured. fn may run more than once (DB.Batch and group
+// committers retry), so it must start from scratch each time.
 func (l *Ledger) update(fn func(*bbolt.Tx) error) error {
-	if l.shared != nil {
-		return l.shared.update(fn)
-	}
-	return l.db.Update(fn)
+	return l.write(fn)
 }
 
 // record is what the ledger keeps for one reservation.

@@ -33,12 +33,23 @@ var (
 // (the proxy keeps its cache and ledger in the same file): it touches only
 // the top-level bucket "stint.runs.v1". It is safe for concurrent use.
 //
-// Record runs in db.Batch, so concurrent recorders share one commit and one
-// fsync; a lone recorder waits up to db.MaxBatchDelay for company. Reads
+// Record writes through BoltOptions.Update when set (a group committer
+// shared with the file's other writers: concurrent recorders share one
+// commit and one fsync, a lone one commits at once), else through
+// db.Batch (a lone recorder waits up to db.MaxBatchDelay for company). Reads
 // run in parallel in read transactions, and no read transaction is held
 // while a caller's function runs or while Export writes.
 type BoltJournal struct {
-	db *bbolt.DB
+	db    *bbolt.DB
+	write func(func(*bbolt.Tx) error) error // Record's write transaction
+}
+
+// BoltOptions configure a BoltJournal; the zero value is usable.
+type BoltOptions struct {
+	// Update, when set, runs Record's write transactions, for example a
+	// cache/boltgroup Committer shared with the file's other writers. Its
+	// functions may run more than once. Nil means db.Batch.
+	Update func(func(*bbolt.Tx) error) error
 }
 
 var _ Journal = (*BoltJournal)(nil)
@@ -46,7 +57,7 @@ var _ Journal = (*BoltJournal)(nil)
 // NewBolt returns a BoltJournal on an open db, creating its bucket. The
 // caller keeps ownership of db and closes it after the journal's last use.
 // A file opened with bbolt's NoSync loses Record's durability.
-func NewBolt(db *bbolt.DB) (*BoltJournal, error) {
+func NewBolt(db *bbolt.DB, opts BoltOptions) (*BoltJournal, error) {
 	if db == nil {
 		return nil, errors.New("runs: NewBolt: nil *bbolt.DB")
 	}
@@ -57,7 +68,11 @@ func NewBolt(db *bbolt.DB) (*BoltJournal, error) {
 	if err != nil {
 		return nil, fmt.Errorf("runs: create bucket %s: %w", topBucket, err)
 	}
-	return &BoltJournal{db: db}, nil
+	write := opts.Update
+	if write == nil {
+		write = db.Batch
+	}
+	return &BoltJournal{db: db, write: write}, nil
 }
 
 // runBuckets are the buckets of one run.
@@ -85,6 +100,27 @@ func openRun(tx *bbolt.Tx, team, run string) (*runBuckets, error) {
 		return nil, fmt.Errorf("%w: run %q lacks one of its buckets", ErrCorrupt, run)
 	}
 	return b, nil
+}
+
+// putEntry stores an encoded entry with its occurrence count and index.
+func (b *runBuckets) putEntry(r *record, encoded []byte) error {
+	if err := b.entries.Put(u64(r.Seq), encoded); err != nil {
+		return err
+	}
+	if err := b.occ.Put([]byte(r.Key), u64(r.Occurrence)); err != nil {
+		return err
+	}
+	return b.index.Put(indexKey(r.Key, r.Occurrence), u64(r.Seq))
+}
+
+// existingRun opens team's run, failing with ErrNotFound when the team has
+// none by that id.
+func existingRun(tx *bbolt.Tx, team, run string) (*runBuckets, error) {
+	b, err := openRun(tx, team, run)
+	if err == nil && b == nil {
+		err = fmt.Errorf("%w: team has no run %q", ErrNotFound, run)
+	}
+	return b, err
 }
 
 // createRun creates team's run, which must not exist, with its buckets.
@@ -182,9 +218,9 @@ func (j *BoltJournal) Record(ctx context.Context, team, run string, e Entry, a A
 		return Entry{}, err
 	}
 	var out record
-	// Batch may run the function more than once; it recomputes everything
-	// from the transaction each time.
-	err = j.db.Batch(func(tx *bbolt.Tx) error {
+	// The write may run the function more than once; it recomputes
+	// everything from the transaction each time.
+	err = j.write(func(tx *bbolt.Tx) error {
 		b, err := openRun(tx, team, run)
 		if err != nil {
 			return err
@@ -214,13 +250,7 @@ func (j *BoltJournal) Record(ctx context.Context, team, run string, e Entry, a A
 			return err
 		}
 		t.add(&rec, n == 0, newBody, len(a.Body))
-		if err := b.entries.Put(u64(rec.Seq), v); err != nil {
-			return err
-		}
-		if err := b.occ.Put([]byte(rec.Key), u64(rec.Occurrence)); err != nil {
-			return err
-		}
-		if err := b.index.Put(indexKey(rec.Key, rec.Occurrence), u64(rec.Seq)); err != nil {
+		if err := b.putEntry(&rec, v); err != nil {
 			return err
 		}
 		if err := b.run.Put(tallyKey, encodeTally(&t)); err != nil {
@@ -251,12 +281,9 @@ func (j *BoltJournal) Lookup(ctx context.Context, team, run, key string, occurre
 		body []byte
 	)
 	err := j.db.View(func(tx *bbolt.Tx) error {
-		b, err := openRun(tx, team, run)
+		b, err := existingRun(tx, team, run)
 		if err != nil {
 			return err
-		}
-		if b == nil {
-			return fmt.Errorf("%w: team has no run %q", ErrNotFound, run)
 		}
 		seq := b.index.Get(indexKey(key, occurrence))
 		if seq == nil {

@@ -72,8 +72,8 @@ func TestBoltSharedFile(t *testing.T) {
 	if len(names) != 2 || names[0] != "stint.cache.v1" || names[1] != "stint.runs.v1" {
 		t.Errorf("top-level buckets: got %q, want the cache's and stint.runs.v1", names)
 	}
-	if _, err := runs.NewBolt(nil); err == nil {
-		t.Error("NewBolt(nil): got no error")
+	if _, err := runs.NewBolt(nil, runs.BoltOptions{}); err == nil {
+		t.Error("NewBolt(nil, runs.BoltOptions{}): got no error")
 	}
 }
 

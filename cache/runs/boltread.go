@@ -22,12 +22,9 @@ func (j *BoltJournal) Summary(ctx context.Context, team, run string) (Summary, e
 	}
 	var t tally
 	err := j.db.View(func(tx *bbolt.Tx) error {
-		b, err := openRun(tx, team, run)
+		b, err := existingRun(tx, team, run)
 		if err != nil {
 			return err
-		}
-		if b == nil {
-			return fmt.Errorf("%w: team has no run %q", ErrNotFound, run)
 		}
 		t, err = b.tally()
 		return err
@@ -150,12 +147,8 @@ func (j *BoltJournal) Delete(ctx context.Context, team, run string) error {
 		return err
 	}
 	err := j.db.Update(func(tx *bbolt.Tx) error {
-		b, err := openRun(tx, team, run)
-		if err != nil {
+		if _, err := existingRun(tx, team, run); err != nil {
 			return err
-		}
-		if b == nil {
-			return fmt.Errorf("%w: team has no run %q", ErrNotFound, run)
 		}
 		return deleteRun(tx, team, run)
 	})
@@ -172,12 +165,9 @@ func (j *BoltJournal) snapshot(ctx context.Context, team, run string) (*snapshot
 	}
 	s := &snapshot{sizes: map[string]int64{}}
 	err := j.db.View(func(tx *bbolt.Tx) error {
-		b, err := openRun(tx, team, run)
+		b, err := existingRun(tx, team, run)
 		if err != nil {
 			return err
-		}
-		if b == nil {
-			return fmt.Errorf("%w: team has no run %q", ErrNotFound, run)
 		}
 		t, err := b.tally()
 		if err != nil {
@@ -266,13 +256,7 @@ func (j *BoltJournal) store(ctx context.Context, team, run string, a *archive, r
 			if err != nil {
 				return err
 			}
-			if err := b.entries.Put(u64(r.Seq), v); err != nil {
-				return err
-			}
-			if err := b.occ.Put([]byte(r.Key), u64(r.Occurrence)); err != nil {
-				return err
-			}
-			if err := b.index.Put(indexKey(r.Key, r.Occurrence), u64(r.Seq)); err != nil {
+			if err := b.putEntry(r, v); err != nil {
 				return err
 			}
 		}

@@ -42,7 +42,7 @@ func openBolt(t testing.TB, path string) (*runs.BoltJournal, *bbolt.DB) {
 	}
 	db.MaxBatchDelay = 2 * time.Millisecond // what boltstore.Open sets on the shared file
 	t.Cleanup(func() { _ = db.Close() })
-	j, err := runs.NewBolt(db)
+	j, err := runs.NewBolt(db, runs.BoltOptions{})
 	if err != nil {
 		t.Fatal(err)
 	}

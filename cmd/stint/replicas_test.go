@@ -2,13 +2,9 @@ package main
 
 import (
 	"context"
-	"crypto/sha256"
-	"encoding/hex"
 	"encoding/json"
 	"fmt"
 	"net/http"
-	"os"
-	"path/filepath"
 	"strconv"
 	"strings"
 	"sync"
@@ -33,13 +29,7 @@ const (
 func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string, extra ...string) (path, key string) {
 	t.Helper()
 	key = "lab-replica-key"
-	sum := sha256.Sum256([]byte(key))
-	cfg := fmt.Sprintf(`listen: 127.0.0.1:0
-data: %s
-upstreams:
-  - name: fake
-    url: %s
-teams:
+	return writeConfig(t, configHead(t.TempDir(), upURL)+fmt.Sprintf(`teams:
   - name: lab
     keys: ["sha256:%s"]
     budget: {usd: %s, per: total}
@@ -51,21 +41,11 @@ store:
     timeout: 300ms
 admin:
   keys: ["sha256:%s"]
-%s`, t.TempDir(), upURL, hex.EncodeToString(sum[:]), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, adminKeyHash(), strings.Join(extra, ""))
-	path = filepath.Join(t.TempDir(), "stint.yaml")
-	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	return path, key
+%s`, keyHash(key), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, keyHash(replicaAdminKey), strings.Join(extra, ""))), key
 }
 
 // replicaAdminKey is the admin key of the replica configs.
 const replicaAdminKey = "depot-admin-key"
-
-func adminKeyHash() string {
-	sum := sha256.Sum256([]byte(replicaAdminKey))
-	return hex.EncodeToString(sum[:])
-}
 
 // billedNanos prices tokens at the test prices (hand-worked: tokens × USD
 // per million × 1e9 nanos / 1e6 = tokens × price × 1000).

@@ -2,8 +2,6 @@ package main
 
 import (
 	"bytes"
-	"crypto/sha256"
-	"encoding/hex"
 	"encoding/json"
 	"fmt"
 	"net/http"
@@ -18,13 +16,7 @@ import (
 // twoTeamConfig writes a config with teams lab and kiln on data.
 func twoTeamConfig(t *testing.T, upURL, data string) string {
 	t.Helper()
-	hash := func(k string) string { s := sha256.Sum256([]byte(k)); return hex.EncodeToString(s[:]) }
-	cfg := fmt.Sprintf(`listen: 127.0.0.1:0
-data: %s
-upstreams:
-  - name: fake
-    url: %s
-teams:
+	return writeConfig(t, configHead(data, upURL)+fmt.Sprintf(`teams:
   - name: lab
     keys: ["sha256:%s"]
   - name: kiln
@@ -33,12 +25,7 @@ prices:
   quill-small: {input: 2.0, output: 6.0}   # invented test prices
 admin:
   keys: ["sha256:%s"]
-`, data, upURL, hash("lab-run-key"), hash("kiln-run-key"), hash(replicaAdminKey))
-	path := filepath.Join(t.TempDir(), "stint.yaml")
-	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	return path
+`, keyHash("lab-run-key"), keyHash("kiln-run-key"), keyHash(replicaAdminKey)))
 }
 
 func runPost(t *testing.T, c *child, key, body string, headers ...string) (int, string, []byte) {

@@ -26,6 +26,7 @@ import (
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
@@ -156,6 +157,7 @@ type server struct {
 	log     *slog.Logger
 	proxy   *proxy.Proxy
 	store   cache.Store
+	commits *boltgroup.Committer // the embedded file's shared group commit
 	closers []func() error
 }
 
@@ -169,6 +171,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		return nil, fmt.Errorf("open store: %w", err)
 	}
 	s.closers = append(s.closers, disk.Close)
+	// The ledger's and run journal's writes share commits.
+	s.commits = boltgroup.New(disk.DB())
 	var store cache.Store = disk
 	if cfg.Cache.HotBytes > 0 {
 		store = cache.NewHot(disk, cache.HotOptions{MaxBytes: int64(cfg.Cache.HotBytes)})
@@ -200,7 +204,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		}
 		adminKeys = append(adminKeys, h)
 	}
-	journal, err := runs.NewBolt(disk.DB())
+	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update})
 	if err != nil {
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
@@ -272,7 +276,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 			ledger, journal, gc.Overrides = al, al, al
 		}
 	} else {
-		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Batch: true})
+		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Update: s.commits.Update})
 		if err != nil {
 			return nil, fmt.Errorf("open ledger: %w", err)
 		}

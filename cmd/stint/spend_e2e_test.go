@@ -19,17 +19,33 @@ import (
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
+// configHead starts a test config: a loopback port, the data dir and the
+// fake upstream.
+func configHead(data, upURL string) string {
+	return fmt.Sprintf("listen: 127.0.0.1:0\ndata: %s\nupstreams:\n  - name: fake\n    url: %s\n", data, upURL)
+}
+
+// keyHash is a key's stored form without its "sha256:" prefix.
+func keyHash(key string) string {
+	sum := sha256.Sum256([]byte(key))
+	return hex.EncodeToString(sum[:])
+}
+
+// writeConfig writes a config file and returns its path.
+func writeConfig(t *testing.T, text string) string {
+	t.Helper()
+	path := filepath.Join(t.TempDir(), "stint.yaml")
+	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
 // spendConfig writes a config with one priced model and a team budget.
 func spendConfig(t *testing.T, upURL, data, lease string) (path, key string) {
 	t.Helper()
 	key = "lab-e2e-key"
-	sum := sha256.Sum256([]byte(key))
-	cfg := fmt.Sprintf(`listen: 127.0.0.1:0
-data: %s
-upstreams:
-  - name: fake
-    url: %s
-teams:
+	return writeConfig(t, configHead(data, upURL)+fmt.Sprintf(`teams:
   - name: lab
     keys: ["sha256:%s"]
     budget: {usd: 1.00, per: total}
@@ -37,12 +53,7 @@ prices:
   quill-small: {input: 2.0, output: 6.0}   # invented test prices
 budget:
   lease: %s
-`, data, upURL, hex.EncodeToString(sum[:]), lease)
-	path = filepath.Join(t.TempDir(), "stint.yaml")
-	if err := os.WriteFile(path, []byte(cfg), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	return path, key
+`, keyHash(key), lease)), key
 }
 
 func post(t *testing.T, c *child, key, body string) (*http.Response, []byte) {

@@ -1,4 +1,7 @@
-package boltledger
+// Package boltgroup commits bbolt writes in shared transactions without
+// making a lone writer wait: the group commit the proxy's ledger and run
+// journal share, so the writes of one file go through one committer.
+package boltgroup
 
 import (
 	"errors"
@@ -7,7 +10,7 @@ import (
 	"go.etcd.io/bbolt"
 )
 
-// groupCommit runs write functions in shared transactions: while one
+// Committer runs write functions in shared transactions: while one
 // transaction commits (and syncs the file), the functions that arrive
 // queue up and then commit together in the next one. A lone writer commits
 // at once, so unlike bbolt's DB.Batch nobody waits for a timer; under
@@ -16,7 +19,7 @@ import (
 // Written here rather than taken from bbolt because DB.Batch delays every
 // lone caller by MaxBatchDelay, which for a proxy answering one call at a
 // time tripled the latency of each budgeted miss.
-type groupCommit struct {
+type Committer struct {
 	db *bbolt.DB
 
 	mu      sync.Mutex // guards queue and running
@@ -37,11 +40,14 @@ type failedWrite struct {
 
 func (f *failedWrite) Error() string { return f.err.Error() }
 
-// update runs fn in a read-write transaction, shared with other callers'
+// New returns a Committer for db.
+func New(db *bbolt.DB) *Committer { return &Committer{db: db} }
+
+// Update runs fn in a read-write transaction, shared with other callers'
 // functions when they overlap. fn may run more than once (after another
 // function failed the shared transaction, each runs again alone), so it
 // must start from scratch each time. It returns fn's error or the commit's.
-func (g *groupCommit) update(fn func(*bbolt.Tx) error) error {
+func (g *Committer) Update(fn func(*bbolt.Tx) error) error {
 	p := pendingWrite{fn: fn, done: make(chan error, 1)}
 	g.mu.Lock()
 	g.queue = append(g.queue, p)
@@ -54,7 +60,7 @@ func (g *groupCommit) update(fn func(*bbolt.Tx) error) error {
 }
 
 // loop commits queued functions until the queue is empty.
-func (g *groupCommit) loop() {
+func (g *Committer) loop() {
 	for {
 		g.mu.Lock()
 		batch := g.queue
@@ -69,7 +75,7 @@ func (g *groupCommit) loop() {
 	}
 }
 
-func (g *groupCommit) commit(batch []pendingWrite) {
+func (g *Committer) commit(batch []pendingWrite) {
 	err := g.db.Update(func(tx *bbolt.Tx) error {
 		for i, p := range batch {
 			if err := p.fn(tx); err != nil {

@@ -1,4 +1,4 @@
-package boltledger
+package boltgroup
 
 import (
 	"errors"
@@ -23,14 +23,14 @@ func TestGroupCommitIsolatesFailures(t *testing.T) {
 	if err := db.Update(func(tx *bbolt.Tx) error { _, err := tx.CreateBucket(bucket); return err }); err != nil {
 		t.Fatal(err)
 	}
-	g := &groupCommit{db: db}
+	g := New(db)
 	const writers = 64
 	errBad := errors.New("refused write")
 	errs := make([]error, writers)
 	var wg sync.WaitGroup
 	for i := range writers {
 		wg.Go(func() {
-			errs[i] = g.update(func(tx *bbolt.Tx) error {
+			errs[i] = g.Update(func(tx *bbolt.Tx) error {
 				if err := tx.Bucket(bucket).Put(fmt.Appendf(nil, "k%02d", i), []byte("v")); err != nil {
 					return err
 				}
