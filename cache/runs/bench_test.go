@@ -10,9 +10,9 @@ import (
 )
 
 // BenchmarkRecord measures Record of a 1 KB answer into one run, from one
-// goroutine (each Record waits for its own commit) and from many (bbolt
-// Batch shares commits; Redis pipelines nothing, so it measures round
-// trips in parallel).
+// goroutine (each Record waits for its own commit) and from many (the
+// group committer shares commits; Redis pipelines nothing, so it measures
+// round trips in parallel).
 func BenchmarkRecord(b *testing.B) {
 	body := []byte(fmt.Sprintf(`{"choices":[{"text":%q}]}`, make([]byte, 1000)))
 	for _, mk := range []func(testing.TB) backend{func(testing.TB) backend { return boltBackend() }, redisBackend} {

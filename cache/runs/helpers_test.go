@@ -15,6 +15,7 @@ import (
 
 	"go.etcd.io/bbolt"
 
+	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/runs"
 )
@@ -42,7 +43,8 @@ func openBolt(t testing.TB, path string) (*runs.BoltJournal, *bbolt.DB) {
 	}
 	db.MaxBatchDelay = 2 * time.Millisecond // what boltstore.Open sets on the shared file
 	t.Cleanup(func() { _ = db.Close() })
-	j, err := runs.NewBolt(db, runs.BoltOptions{})
+	// Writes go through a group committer, as stint serve's do.
+	j, err := runs.NewBolt(db, runs.BoltOptions{Update: boltgroup.New(db).Update})
 	if err != nil {
 		t.Fatal(err)
 	}
