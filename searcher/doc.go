@@ -1,5 +1,15 @@
-// Package searcher will hold the prompt-search sidecar: tasks and datasets,
-// rewards, the soft Q-learning policy and trainer, baselines and reports. It
-// talks to the proxy only over HTTP, like any user's job. Nothing is built
-// here yet.
+// Package searcher is the root of the prompt-search sidecar: RL prompt
+// search with soft Q-learning that scores prompts only through
+// completion/log-probability calls sent over HTTP, like any user's job.
+//
+//   - searcher/task: task files (YAML) and their datasets
+//   - searcher/reward: the classification reward (gap, piecewise weights,
+//     per-input z-score)
+//   - searcher/scorer: the HTTP scoring client (completions prompt arrays,
+//     or chat with top_logprobs)
+//   - searcher/policy: the policy network on a frozen local backbone and
+//     its soft Q-learning trainer, with checkpoints
+//
+// The search loop, baselines, reports and the `stint search` command are
+// still to come.
 package searcher

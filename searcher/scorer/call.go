@@ -1,0 +1,100 @@
+package scorer
+
+import (
+	"net/http"
+	"strconv"
+	"strings"
+)
+
+// Headers the proxy sets on its answers (see the stint README).
+const (
+	HeaderCache         = "Stint-Cache"          // hit | miss | shared | partial | bypass
+	HeaderCachedPrompts = "Stint-Cached-Prompts" // "2/3": prompts of a batch answered from the cache
+	HeaderCost          = "Stint-Cost-Usd"       // this answer's charge, an estimate
+	HeaderRun           = "Stint-Run"            // the run id a call is journaled under
+)
+
+// Usage is the wire format's token count for one call.
+type Usage struct {
+	PromptTokens     int `json:"prompt_tokens"`
+	CompletionTokens int `json:"completion_tokens"`
+	TotalTokens      int `json:"total_tokens"`
+}
+
+// Call describes one HTTP call a Score made.
+type Call struct {
+	// Prompts is the number of texts the call scored.
+	Prompts int
+	// Usage is the answer's usage (zero when it had none).
+	Usage Usage
+	// Cache is the Stint-Cache header ("" when not behind the proxy).
+	Cache string
+	// CachedPrompts is how many of Prompts came from the cache: from
+	// Stint-Cached-Prompts, else Prompts for a hit and 0 otherwise; −1 when
+	// the answer said nothing about the cache.
+	CachedPrompts int
+	// CostUSD is the Stint-Cost-Usd header, 0 when absent: the proxy's
+	// estimate from its price table, not the provider's bill.
+	CostUSD float64
+}
+
+// readCall fills a Call's cache and cost fields from an answer's headers.
+func readCall(h http.Header, prompts int) Call {
+	c := Call{Prompts: prompts, Cache: h.Get(HeaderCache), CachedPrompts: -1}
+	switch c.Cache {
+	case "":
+	case "hit":
+		c.CachedPrompts = prompts
+	default:
+		c.CachedPrompts = 0
+	}
+	if v := h.Get(HeaderCachedPrompts); v != "" {
+		if got, _, ok := strings.Cut(v, "/"); ok {
+			if n, err := strconv.Atoi(strings.TrimSpace(got)); err == nil && n >= 0 && n <= prompts {
+				c.CachedPrompts = n
+			}
+		}
+	}
+	if v := h.Get(HeaderCost); v != "" {
+		if f, err := strconv.ParseFloat(strings.TrimSpace(v), 64); err == nil && f >= 0 {
+			c.CostUSD = f
+		}
+	}
+	return c
+}
+
+// Totals sums a list of calls.
+type Totals struct {
+	// Calls and Prompts count the calls and the texts they scored.
+	Calls, Prompts int
+	// CachedPrompts counts texts answered from the cache (calls that said
+	// nothing about the cache count as not cached).
+	CachedPrompts int
+	// Usage sums the calls' usage.
+	Usage Usage
+	// CostUSD sums the proxy's cost estimates.
+	CostUSD float64
+}
+
+// Sum adds up calls.
+func Sum(calls []Call) Totals {
+	var t Totals
+	for _, c := range calls {
+		t.Calls++
+		t.Prompts += c.Prompts
+		t.CachedPrompts += max(c.CachedPrompts, 0)
+		t.Usage.PromptTokens += c.Usage.PromptTokens
+		t.Usage.CompletionTokens += c.Usage.CompletionTokens
+		t.Usage.TotalTokens += c.Usage.TotalTokens
+		t.CostUSD += c.CostUSD
+	}
+	return t
+}
+
+// CacheShare is the share of prompts answered from the cache, 0 with none.
+func (t Totals) CacheShare() float64 {
+	if t.Prompts == 0 {
+		return 0
+	}
+	return float64(t.CachedPrompts) / float64(t.Prompts)
+}

@@ -1,0 +1,66 @@
+package task
+
+// ExampleFile is a complete, commented task file in an invented scenario: notes
+// left on the board of the Larkspur Hill orchard co-op, sorted into
+// "harvest" notes and "repair" notes. Its datasets ship in the repository's
+// testdata/search folder (orchard-train.jsonl, orchard-dev.jsonl,
+// orchard-test.jsonl); parse it with that folder as dir. The verbalizers are
+// single tokens of the stories260K model, so the offline demo can score it.
+const ExampleFile = `# A prompt-search task: classify the Larkspur Hill orchard co-op's notes.
+name: orchard-notes
+
+# Datasets, relative to this file. JSONL (one {"text": ..., "label": ...}
+# object a line) or CSV with a header row; the format follows the extension
+# unless format is set. text_field and label_field name the JSON fields or
+# CSV columns (defaults: text, label).
+data:
+  train: orchard-train.jsonl
+  dev: orchard-dev.jsonl
+  test: orchard-test.jsonl        # optional: held out for the final report
+  text_field: text
+  label_field: label
+
+# Each label and its verbalizer: the single token (as the API names it,
+# leading space included) whose next-token probability is the model's vote.
+labels:
+  harvest: " happy"
+  repair: " big"
+
+# What is sent for one example. {prompt} (required) is the searched prompt,
+# {input} the example's text.
+template: "{input} {prompt} They were"
+
+endpoint: completions             # completions (batched prompt arrays) or chat
+model: stories260K
+
+prompt_length: 5                  # tokens in a searched prompt
+steps: 200
+prompts_per_step: 16              # prompts sampled per step (at least 2: rewards are z-scored across them)
+examples_per_step: 16             # training examples each prompt is scored on per step
+seed: 7
+concurrency: 4                    # scoring calls in flight
+spend_cap_usd: 2.50               # stop once the proxy reports this much spent; 0 for no cap of the search's own
+top_logprobs: 20                  # next-token log-probabilities asked for; hosted chat APIs cap this at about 20
+
+# Hand-written prompts the search is compared with.
+manual_prompts:
+  - "The note is about"
+  - "Is this picking or fixing?"
+
+# The classification reward (Deng et al. 2022, RLPrompt): 200·Gap when the
+# true label wins, 180·Gap when it does not, z-scored per input across the
+# step's prompts, then multiplied by factor and clipped to ±clip (0: none).
+reward:
+  correct: 200
+  wrong: 180
+  zscore: true
+  scale: {factor: 1, clip: 0}
+  # missing_logprob: -20          # log-probability of a verbalizer absent from the top-k list;
+                                  # unset: the lowest one returned minus ln 2
+
+# Which tokens the search may build prompts from.
+allow_list:
+  word_initial: true              # only tokens that start a word
+  letters_only: true
+  exclude: [" happy", " big"]     # never the verbalizers themselves
+`

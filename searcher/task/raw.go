@@ -1,0 +1,53 @@
+package task
+
+import "go.yaml.in/yaml/v3"
+
+// rawTask is the task file as written. Pointers tell an absent field
+// (default) from an explicit zero.
+type rawTask struct {
+	Name            string     `yaml:"name"`
+	Data            *rawData   `yaml:"data"`
+	Labels          yaml.Node  `yaml:"labels"` // a mapping, read in file order
+	Template        string     `yaml:"template"`
+	Endpoint        string     `yaml:"endpoint"`
+	Model           string     `yaml:"model"`
+	PromptLength    *int       `yaml:"prompt_length"`
+	Steps           *int       `yaml:"steps"`
+	PromptsPerStep  *int       `yaml:"prompts_per_step"`
+	ExamplesPerStep *int       `yaml:"examples_per_step"`
+	Seed            int64      `yaml:"seed"`
+	Concurrency     *int       `yaml:"concurrency"`
+	SpendCapUSD     float64    `yaml:"spend_cap_usd"`
+	TopLogprobs     *int       `yaml:"top_logprobs"`
+	ManualPrompts   []string   `yaml:"manual_prompts"`
+	Reward          *rawReward `yaml:"reward"`
+	AllowList       *rawAllow  `yaml:"allow_list"`
+}
+
+type rawData struct {
+	Format     string `yaml:"format"`
+	Train      string `yaml:"train"`
+	Dev        string `yaml:"dev"`
+	Test       string `yaml:"test"`
+	TextField  string `yaml:"text_field"`
+	LabelField string `yaml:"label_field"`
+}
+
+type rawReward struct {
+	Correct        *float64  `yaml:"correct"`
+	Wrong          *float64  `yaml:"wrong"`
+	ZScore         *bool     `yaml:"zscore"`
+	Scale          *rawScale `yaml:"scale"`
+	MissingLogprob *float64  `yaml:"missing_logprob"`
+}
+
+type rawScale struct {
+	Factor *float64 `yaml:"factor"`
+	Clip   *float64 `yaml:"clip"`
+}
+
+type rawAllow struct {
+	WordInitial bool     `yaml:"word_initial"`
+	LettersOnly bool     `yaml:"letters_only"`
+	Exclude     []string `yaml:"exclude"`
+}

@@ -1,0 +1,160 @@
+package task
+
+import (
+	"strings"
+	"unicode"
+
+	"github.com/stintlab/stint/searcher/reward"
+)
+
+// Endpoint names the wire-format endpoint that scores prompts.
+type Endpoint string
+
+// The endpoints a task may score through.
+const (
+	// Completions is POST {base}/completions: filled templates are sent as a
+	// prompt array, scored in batches.
+	Completions Endpoint = "completions"
+	// Chat is POST {base}/chat/completions: one user message per example.
+	Chat Endpoint = "chat"
+)
+
+// Placeholders in Task.Template.
+const (
+	InputPlaceholder  = "{input}"
+	PromptPlaceholder = "{prompt}"
+)
+
+// Defaults for fields a task file leaves out.
+const (
+	DefaultPromptLength    = 5
+	DefaultSteps           = 200
+	DefaultPromptsPerStep  = 16
+	DefaultExamplesPerStep = 16
+	DefaultConcurrency     = 4
+	// DefaultTopLogprobs is the largest depth hosted chat APIs commonly
+	// allow (about 20); the local model allows up to its vocabulary size.
+	DefaultTopLogprobs = 20
+)
+
+// Task is a validated task file. Every field is filled (defaults applied);
+// Test is nil when the file names no test set.
+type Task struct {
+	// Name identifies the task in reports.
+	Name string
+	// Train, Dev and Test are the datasets; each example's Label is one of
+	// Labels' names.
+	Train, Dev, Test []Example
+	// Labels are the classes in file order, each with its verbalizer.
+	Labels []Label
+	// Template is the text sent for one example, holding PromptPlaceholder
+	// and usually InputPlaceholder.
+	Template string
+	// Endpoint scores the filled templates.
+	Endpoint Endpoint
+	// Model is the model id sent in requests.
+	Model string
+	// PromptLength is the number of tokens in a searched prompt.
+	PromptLength int
+	// Steps, PromptsPerStep and ExamplesPerStep size the search.
+	Steps, PromptsPerStep, ExamplesPerStep int
+	// Seed seeds the search's random number generator.
+	Seed int64
+	// Concurrency bounds scoring calls in flight.
+	Concurrency int
+	// SpendCapUSD stops the search once this much has been spent (as
+	// reported by the proxy's Stint-Cost-Usd); 0 means no cap of the
+	// search's own (the proxy's budgets still apply).
+	SpendCapUSD float64
+	// TopLogprobs is how many next-token log-probabilities to ask for.
+	TopLogprobs int
+	// ManualPrompts are hand-written prompts to compare the search against.
+	ManualPrompts []string
+	// Reward configures the classification reward.
+	Reward reward.Config
+	// AllowList restricts the tokens a searched prompt may use.
+	AllowList AllowList
+}
+
+// Label is one class and the single token that stands for it.
+type Label struct {
+	// Name is the label as written in the datasets.
+	Name string
+	// Verbalizer is the token read as the model's answer, as the API names
+	// it in log-probabilities (usually with a leading space, " great").
+	Verbalizer string
+}
+
+// Example is one dataset row.
+type Example struct {
+	Text, Label string
+}
+
+// AllowList restricts the action vocabulary of the search: the tokens a
+// prompt may be built from. The zero value allows every token.
+type AllowList struct {
+	// WordInitial allows only tokens that start a word (a leading space).
+	WordInitial bool
+	// LettersOnly allows only tokens whose text, past a leading space, is
+	// letters.
+	LettersOnly bool
+	// Exclude lists tokens never to use (for instance the verbalizers).
+	Exclude []string
+}
+
+// Allowed reports whether token (its text as the API names it) may be used
+// in a prompt.
+func (a AllowList) Allowed(token string) bool {
+	if token == "" {
+		return false
+	}
+	for _, x := range a.Exclude {
+		if x == token {
+			return false
+		}
+	}
+	rest, initial := strings.CutPrefix(token, " ")
+	if a.WordInitial && (!initial || rest == "") {
+		return false
+	}
+	if a.LettersOnly {
+		if rest == "" {
+			return false
+		}
+		for _, r := range rest {
+			if !unicode.IsLetter(r) {
+				return false
+			}
+		}
+	}
+	return true
+}
+
+// Fill returns the template with input and prompt substituted. Every
+// occurrence of a placeholder is replaced in one pass over the template, so
+// a placeholder-like text inside input or prompt is left as it is.
+func Fill(template, input, prompt string) string {
+	return strings.NewReplacer(InputPlaceholder, input, PromptPlaceholder, prompt).Replace(template)
+}
+
+// Fill returns t's template filled with input and prompt.
+func (t *Task) Fill(input, prompt string) string { return Fill(t.Template, input, prompt) }
+
+// Verbalizers returns the labels' verbalizers in label order.
+func (t *Task) Verbalizers() []string {
+	out := make([]string, len(t.Labels))
+	for i, l := range t.Labels {
+		out[i] = l.Verbalizer
+	}
+	return out
+}
+
+// LabelIndex returns the index in Labels of name, or −1.
+func (t *Task) LabelIndex(name string) int {
+	for i, l := range t.Labels {
+		if l.Name == name {
+			return i
+		}
+	}
+	return -1
+}

@@ -1,0 +1,170 @@
+package task
+
+import (
+	"errors"
+	"strings"
+	"testing"
+)
+
+func TestExampleFileParses(t *testing.T) {
+	task, err := Parse([]byte(ExampleFile), searchTestdata, localTokenizer(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Sizes of testdata/search/orchard-{train,dev,test}.jsonl.
+	if len(task.Train) != 40 || len(task.Dev) != 20 || len(task.Test) != 20 {
+		t.Errorf("sizes = %d/%d/%d, want 40/20/20", len(task.Train), len(task.Dev), len(task.Test))
+	}
+	want := []Label{{"harvest", " happy"}, {"repair", " big"}}
+	if len(task.Labels) != 2 || task.Labels[0] != want[0] || task.Labels[1] != want[1] {
+		t.Errorf("labels = %q, want %q (file order)", task.Labels, want)
+	}
+	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 2.5 {
+		t.Errorf("endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
+	}
+	if task.Reward.Correct != 200 || task.Reward.Wrong != 180 || task.Reward.NoZScore || task.Reward.Factor != 1 {
+		t.Errorf("reward = %+v", task.Reward)
+	}
+	if !task.AllowList.WordInitial || len(task.ManualPrompts) != 2 {
+		t.Errorf("allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
+	}
+	if got, want := task.Fill("The fence fell down.", "Note:"), "The fence fell down. Note: They were"; got != want {
+		t.Errorf("Fill = %q, want %q", got, want)
+	}
+	if got := task.Verbalizers(); len(got) != 2 || got[1] != " big" {
+		t.Errorf("Verbalizers = %q", got)
+	}
+	if task.LabelIndex("repair") != 1 || task.LabelIndex("weed") != -1 {
+		t.Error("LabelIndex: wrong index")
+	}
+}
+
+// minimal is the smallest valid task file over the files of minimalData.
+const minimal = `name: t
+model: stories260K
+labels:
+  harvest: " happy"
+  repair: " big"
+template: "{input} {prompt} It was"
+data:
+  train: train.jsonl
+  dev: dev.jsonl
+`
+
+var minimalData = map[string]string{
+	"train.jsonl": `{"text":"We picked apples.","label":"harvest"}` + "\n\n" + `{"text":"The gate broke.","label":"repair"}` + "\n",
+	"dev.jsonl":   `{"text":"Pears are ripe.","label":"harvest"}` + "\n",
+	"notes.csv":   "id,note,kind\n1,\"We picked plums, lots.\",harvest\n2,The roof leaks.,repair\n",
+	"empty.jsonl": "",
+	"weeds.jsonl": `{"text":"Pull the weeds.","label":"weeding"}` + "\n",
+}
+
+func TestDefaults(t *testing.T) {
+	task, err := Parse([]byte(minimal), writeFiles(t, minimalData), nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	got := []int{task.PromptLength, task.Steps, task.PromptsPerStep, task.ExamplesPerStep, task.Concurrency, task.TopLogprobs}
+	want := []int{DefaultPromptLength, DefaultSteps, DefaultPromptsPerStep, DefaultExamplesPerStep, DefaultConcurrency, DefaultTopLogprobs}
+	for i := range got {
+		if got[i] != want[i] {
+			t.Errorf("default %d = %d, want %d", i, got[i], want[i])
+		}
+	}
+	if task.Endpoint != Completions || task.Test != nil || len(task.Train) != 2 {
+		t.Errorf("endpoint %q, test %v, train %d", task.Endpoint, task.Test, len(task.Train))
+	}
+}
+
+func TestCSVData(t *testing.T) {
+	src := strings.Replace(minimal, "  train: train.jsonl\n", "  train: notes.csv\n  text_field: note\n  label_field: kind\n", 1)
+	src = strings.Replace(src, "  dev: dev.jsonl\n", "  dev: notes.csv\n", 1)
+	task, err := Parse([]byte(src), writeFiles(t, minimalData), nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if want := (Example{"We picked plums, lots.", "harvest"}); len(task.Train) != 2 || task.Train[0] != want {
+		t.Errorf("train = %q, want first %q", task.Train, want)
+	}
+}
+
+func TestParseErrors(t *testing.T) {
+	tok := localTokenizer(t)
+	dir := writeFiles(t, minimalData)
+	tests := []struct {
+		name      string
+		edit      func(string) string
+		tokenizer bool
+		want      error
+		field     string
+		line      int
+	}{
+		{"unknown key", func(s string) string { return s + "temprature: 0\n" }, false, ErrUnknownField, "temprature", 10},
+		{"unknown nested key", func(s string) string {
+			return strings.Replace(s, "  dev: dev.jsonl\n", "  dev: dev.jsonl\n  tset: x.jsonl\n", 1)
+		}, false, ErrUnknownField, "data.tset", 10},
+		{"wrong type", func(s string) string { return s + "steps: many\n" }, false, ErrInvalid, "steps", 10},
+		{"syntax", func(s string) string { return s + "model: [\n" }, false, ErrInvalid, "(file)", 10},
+		{"no name", func(s string) string { return strings.Replace(s, "name: t\n", "", 1) }, false, ErrMissing, "name", 0},
+		{"no labels", func(s string) string {
+			return strings.Replace(s, "labels:\n  harvest: \" happy\"\n  repair: \" big\"\n", "", 1)
+		}, false, ErrMissing, "labels", 0},
+		{"one label", func(s string) string { return strings.Replace(s, "  repair: \" big\"\n", "", 1) }, false, ErrMissing, "labels", 3},
+		{"empty verbalizer", func(s string) string { return strings.Replace(s, `" big"`, `""`, 1) }, false, ErrMissing, "labels.repair", 5},
+		{"duplicate verbalizer", func(s string) string { return strings.Replace(s, `" big"`, `" happy"`, 1) }, false, ErrVerbalizer, "labels.repair", 5},
+		// " harvest" is not a piece of the stories260K vocabulary (512 tokens).
+		{"multi-token verbalizer", func(s string) string { return strings.Replace(s, `" big"`, `" harvest"`, 1) }, true, ErrVerbalizer, "labels.repair", 5},
+		// "big" without its space is not one token either: the vocabulary
+		// has " big" but no "big".
+		{"verbalizer without space", func(s string) string { return strings.Replace(s, `" big"`, `"big"`, 1) }, true, ErrVerbalizer, "labels.repair", 5},
+		{"no prompt placeholder", func(s string) string { return strings.Replace(s, "{prompt} ", "", 1) }, false, ErrInvalid, "template", 6},
+		{"no input placeholder", func(s string) string { return strings.Replace(s, "{input} ", "", 1) }, false, ErrInvalid, "template", 6},
+		{"bad endpoint", func(s string) string { return s + "endpoint: embeddings\n" }, false, ErrInvalid, "endpoint", 10},
+		{"no data", func(s string) string { return s[:strings.Index(s, "data:")] }, false, ErrMissing, "data", 0},
+		{"no dev", func(s string) string { return strings.Replace(s, "  dev: dev.jsonl\n", "", 1) }, false, ErrMissing, "data.dev", 7},
+		{"missing file", func(s string) string { return strings.Replace(s, "dev.jsonl", "nope.jsonl", 1) }, false, ErrDataset, "data.dev", 9},
+		{"empty dataset", func(s string) string { return strings.Replace(s, "dev.jsonl", "empty.jsonl", 1) }, false, ErrDataset, "data.dev", 9},
+		{"unknown label in data", func(s string) string { return strings.Replace(s, "dev.jsonl", "weeds.jsonl", 1) }, false, ErrDataset, "data.dev", 9},
+		{"bad format", func(s string) string { return s + "  format: parquet\n" }, false, ErrInvalid, "data.format", 10},
+		{"zero prompt length", func(s string) string { return s + "prompt_length: 0\n" }, false, ErrInvalid, "prompt_length", 10},
+		{"one prompt per step with z-score", func(s string) string { return s + "prompts_per_step: 1\n" }, false, ErrInvalid, "prompts_per_step", 10},
+		{"negative cap", func(s string) string { return s + "spend_cap_usd: -1\n" }, false, ErrInvalid, "spend_cap_usd", 10},
+		{"empty manual prompt", func(s string) string { return s + "manual_prompts: [\"ok\", \"\"]\n" }, false, ErrInvalid, "manual_prompts[1]", 10},
+		{"zero correct", func(s string) string { return s + "reward:\n  correct: 0\n" }, false, ErrInvalid, "reward.correct", 11},
+		{"positive floor", func(s string) string { return s + "reward:\n  missing_logprob: 1\n" }, false, ErrInvalid, "reward.missing_logprob", 11},
+		{"negative clip", func(s string) string { return s + "reward:\n  scale: {clip: -1}\n" }, false, ErrInvalid, "reward.scale.clip", 11},
+		{"empty file", func(string) string { return "" }, false, ErrMissing, "(file)", 0},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			var tk Tokenizer
+			if tt.tokenizer {
+				tk = tok
+			}
+			_, err := Parse([]byte(tt.edit(minimal)), dir, tk)
+			if !errors.Is(err, tt.want) {
+				t.Fatalf("err = %v, want %v", err, tt.want)
+			}
+			var fe *FieldError
+			if !errors.As(err, &fe) {
+				t.Fatalf("err = %v, want a *FieldError", err)
+			}
+			if fe.Field != tt.field || fe.Line != tt.line {
+				t.Errorf("at %s line %d, want %s line %d (%v)", fe.Field, fe.Line, tt.field, tt.line, err)
+			}
+			if tt.line > 0 && !strings.Contains(err.Error(), "line ") {
+				t.Errorf("message %q does not name the line", err)
+			}
+		})
+	}
+}
+
+func TestSeveralErrorsJoined(t *testing.T) {
+	src := strings.Replace(minimal, "name: t\n", "", 1) + "prompt_length: 0\n"
+	_, err := Parse([]byte(src), writeFiles(t, minimalData), nil)
+	for _, want := range []string{"name:", "prompt_length:"} {
+		if err == nil || !strings.Contains(err.Error(), want) {
+			t.Errorf("err = %v, want it to mention %q", err, want)
+		}
+	}
+}
