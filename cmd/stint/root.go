@@ -21,6 +21,7 @@ func newRootCmd() *cobra.Command {
 		newSpendCmd(),
 		newBudgetCmd(),
 		newRunsCmd(),
+		newSearchCmd(),
 	)
 	return root
 }

@@ -12,6 +12,7 @@ const (
 	HeaderCachedPrompts = "Stint-Cached-Prompts" // "2/3": prompts of a batch answered from the cache
 	HeaderCost          = "Stint-Cost-Usd"       // this answer's charge, an estimate
 	HeaderRun           = "Stint-Run"            // the run id a call is journaled under
+	HeaderRunMode       = "Stint-Run-Mode"       // "replay": answer from the run's journal only
 )
 
 // Usage is the wire format's token count for one call.

@@ -33,6 +33,9 @@ type Options struct {
 	// Run, when set, is sent as the Stint-Run header so the proxy journals
 	// the calls for replay.
 	Run string
+	// RunMode, when set, is sent as Stint-Run-Mode: "replay" answers every
+	// call from the run's journal, never from upstream.
+	RunMode string
 	// Model is the model id sent in every request. Required.
 	Model string
 	// Endpoint is Completions (the default when empty) or Chat.
@@ -189,6 +192,9 @@ func (c *Client) call(ctx context.Context, texts []string) ([]map[string]float64
 	}
 	if c.opts.Run != "" {
 		req.Header.Set(HeaderRun, c.opts.Run)
+	}
+	if c.opts.RunMode != "" {
+		req.Header.Set(HeaderRunMode, c.opts.RunMode)
 	}
 	resp, err := c.opts.HTTPClient.Do(req)
 	if err != nil {

@@ -1,0 +1,98 @@
+package main
+
+import (
+	"bytes"
+	"io"
+	"net/http"
+	"os"
+	"path/filepath"
+	"regexp"
+	"strconv"
+	"strings"
+	"testing"
+
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/searcher/task"
+)
+
+// upstreamCalls sums stint_upstream_calls_total from a proxy's /metrics.
+func upstreamCalls(t *testing.T, c *child) int {
+	t.Helper()
+	resp, err := http.Get("http://" + c.addr + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	total := 0
+	for _, m := range regexp.MustCompile(`(?m)^stint_upstream_calls_total\{[^}]*\} (\d+)`).FindAllSubmatch(b, -1) {
+		n, _ := strconv.Atoi(string(m[1]))
+		total += n
+	}
+	return total
+}
+
+// shortTask writes the example task, cut to a few steps, next to copies
+// of its datasets.
+func shortTask(t *testing.T) string {
+	t.Helper()
+	dir := t.TempDir()
+	for _, name := range []string{"orchard-train.jsonl", "orchard-dev.jsonl", "orchard-test.jsonl"} {
+		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(filepath.Join(dir, name), b, 0o600); err != nil {
+			t.Fatal(err)
+		}
+	}
+	text := strings.NewReplacer("steps: 200", "steps: 4", "prompts_per_step: 16", "prompts_per_step: 4",
+		"examples_per_step: 16", "examples_per_step: 6").Replace(task.ExampleFile)
+	path := filepath.Join(dir, "task.yaml")
+	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	return path
+}
+
+// TestSearchReplaysToTheSameResults runs a short search through a real
+// stint serve on the real model, then replays it from the proxy's journal:
+// results.json comes out byte-for-byte the same and the replay makes no
+// upstream call.
+func TestSearchReplaysToTheSameResults(t *testing.T) {
+	model := modeltest.Path(t)
+	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
+	t.Setenv("STINT_MODEL", model)
+	taskPath := shortTask(t)
+	proxyURL := "http://" + c.addr + "/v1"
+	first, second := t.TempDir(), t.TempDir()
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "orchard-e2e"); err != nil {
+		t.Fatalf("search run: %v\n%s", err, out)
+	}
+	recorded := upstreamCalls(t, c)
+	if recorded == 0 {
+		t.Fatal("the search made no upstream call")
+	}
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", second, "--run", "orchard-e2e", "--replay"); err != nil {
+		t.Fatalf("search replay: %v\n%s", err, out)
+	}
+	if got := upstreamCalls(t, c); got != recorded {
+		t.Errorf("upstream calls went from %d to %d during the replay", recorded, got)
+	}
+	a, err := os.ReadFile(filepath.Join(first, "results.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := os.ReadFile(filepath.Join(second, "results.json"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(a, b) {
+		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
+	}
+	for _, name := range []string{"history.csv", "report.md"} {
+		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {
+			t.Errorf("%s missing or empty: %v", name, err)
+		}
+	}
+}

@@ -1,0 +1,76 @@
+package search
+
+import (
+	"encoding/csv"
+	"encoding/json"
+	"fmt"
+	"io"
+	"strconv"
+	"strings"
+)
+
+// WriteResults writes r as indented JSON. The output depends only on the
+// search's decisions and the answers it got, so a replay writes the same
+// bytes.
+func WriteResults(w io.Writer, r Results) error {
+	enc := json.NewEncoder(w)
+	enc.SetIndent("", "  ")
+	return enc.Encode(r)
+}
+
+// WriteHistory writes one CSV line per step.
+func WriteHistory(w io.Writer, h []Point) error {
+	cw := csv.NewWriter(w)
+	if err := cw.Write([]string{"step", "mean_reward", "train_accuracy", "dev_accuracy", "loss", "greedy_prompt"}); err != nil {
+		return err
+	}
+	f := func(x float64) string { return strconv.FormatFloat(x, 'g', 8, 64) }
+	for _, p := range h {
+		dev := ""
+		if p.DevAcc >= 0 {
+			dev = f(p.DevAcc)
+		}
+		if err := cw.Write([]string{strconv.Itoa(p.Step), f(p.MeanReward), f(p.TrainAcc), dev, f(p.Loss), p.Prompt}); err != nil {
+			return err
+		}
+	}
+	cw.Flush()
+	return cw.Error()
+}
+
+// Table renders the contenders as a text table.
+func Table(r Results) string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11s\n", "METHOD", "PROMPT", "TRAIN", "DEV", "TEST", "JUDGEMENTS")
+	for _, c := range r.Ranking {
+		test := "-"
+		if c.TestAcc >= 0 {
+			test = pct(c.TestAcc)
+		}
+		fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11d\n", c.Method, strconv.Quote(c.Prompt), pct(c.TrainAcc), pct(c.DevAcc), test, c.Calls)
+	}
+	return b.String()
+}
+
+func pct(x float64) string { return strconv.FormatFloat(100*x, 'f', 1, 64) + "%" }
+
+// WriteReport writes a short Markdown report: the results table, the
+// proxy's figures and how often verbalizers were missing from the
+// answers.
+func WriteReport(w io.Writer, r Results, wall string) error {
+	s := r.Spending
+	_, err := fmt.Fprintf(w, `# Prompt search: %s
+
+Seed %d, %d steps. Judgements are prompt × example scorings; the RL search and
+the random baseline spend the same number.
+
+%s
+## Through the proxy
+
+- scoring calls: %d (%d texts), %.1f%% of texts served from the cache
+- spend reported by the proxy: %.6f USD (an estimate from its configured prices; the provider's bill is the record)
+- verbalizers missing from the returned log-probabilities: %d of %d look-ups
+- wall time: %s
+`, r.Task, r.Seed, r.Steps, "```\n"+Table(r)+"```\n", s.Calls, s.Prompts, 100*s.CacheShare(), s.CostUSD, r.Floored, r.Lookups, wall)
+	return err
+}

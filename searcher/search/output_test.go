@@ -1,0 +1,51 @@
+package search
+
+import (
+	"bytes"
+	"strings"
+	"testing"
+)
+
+func TestPromptText(t *testing.T) {
+	tests := []struct {
+		pieces []string
+		want   string
+	}{
+		{nil, ""},
+		{[]string{" Once", " upon"}, "Once upon"},
+		{[]string{"T", " T"}, "T T"},
+	}
+	for _, tt := range tests {
+		if got := PromptText(tt.pieces); got != tt.want {
+			t.Errorf("PromptText(%q) = %q, want %q", tt.pieces, got, tt.want)
+		}
+	}
+}
+
+func TestHistoryAndResultsAreDeterministic(t *testing.T) {
+	r := Results{Task: "orchard", Seed: 3, Steps: 2,
+		Ranking: []Contender{{Method: "rl", Prompt: "the big", TrainAcc: 0.5, DevAcc: 0.25, TestAcc: -1, Calls: 8}},
+		History: []Point{{Step: 1, MeanReward: 1.5, TrainAcc: 0.5, DevAcc: -1}, {Step: 2, MeanReward: -2, TrainAcc: 0.25, DevAcc: 0.75, Prompt: "the big"}}}
+	var h bytes.Buffer
+	if err := WriteHistory(&h, r.History); err != nil {
+		t.Fatal(err)
+	}
+	want := "step,mean_reward,train_accuracy,dev_accuracy,loss,greedy_prompt\n1,1.5,0.5,,0,\n2,-2,0.25,0.75,0,the big\n"
+	if h.String() != want {
+		t.Errorf("history:\n%s\nwant\n%s", h.String(), want)
+	}
+	var a, b bytes.Buffer
+	if err := WriteResults(&a, r); err != nil {
+		t.Fatal(err)
+	}
+	r.Spending.Calls = 99 // run figures are not part of the results
+	if err := WriteResults(&b, r); err != nil {
+		t.Fatal(err)
+	}
+	if a.String() != b.String() || strings.Contains(a.String(), "99") {
+		t.Errorf("results depend on run figures:\n%s", b.String())
+	}
+	if tab := Table(r); !strings.Contains(tab, `"the big"`) || !strings.Contains(tab, "25.0%") {
+		t.Errorf("table:\n%s", tab)
+	}
+}

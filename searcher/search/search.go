@@ -1,0 +1,331 @@
+// Package search runs one prompt search: the soft Q-learning policy
+// proposes prompts, the scorer has them judged through the proxy, the
+// reward turns the judgements into the policy's training signal. Baselines
+// (no prompt, the task's manual prompts, random search at the same number
+// of scoring calls) are scored in the same run, so the results compare
+// like with like.
+//
+// Everything a search decides comes from the task's seed and the answers
+// it gets, so a search replayed from the proxy's run journal produces the
+// same results.
+package search
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math/rand/v2"
+	"slices"
+	"strings"
+
+	"github.com/stintlab/stint/searcher/reward"
+	"github.com/stintlab/stint/searcher/scorer"
+	"github.com/stintlab/stint/searcher/task"
+)
+
+// Scorer judges filled templates; *scorer.Client is one.
+type Scorer interface {
+	Score(ctx context.Context, texts []string) (scorer.Result, error)
+}
+
+// Policy proposes prompts and learns from their rewards;
+// *policy.Trainer is one.
+type Policy interface {
+	Sample(ctx context.Context, n int) ([][]int, error)
+	Update(ctx context.Context, prompts [][]int, rewards []float64) (PolicyStats, error)
+	Greedy(ctx context.Context) ([]int, error)
+}
+
+// PolicyStats is what one policy update reports.
+type PolicyStats struct {
+	Loss       float64
+	MeanReward float64
+}
+
+// Vocabulary turns token ids into prompt text and lists the actions.
+type Vocabulary interface {
+	// Text returns the prompt text of ids.
+	Text(ids []int) string
+	// Actions are the token ids prompts are built from.
+	Actions() []int
+}
+
+// Options are a search's parts.
+type Options struct {
+	Task   *task.Task
+	Scorer Scorer
+	Policy Policy
+	Vocab  Vocabulary
+	// EvalEvery is how often (in steps) the greedy prompt is scored on the
+	// dev set; 0 means every tenth of the steps.
+	EvalEvery int
+	// Progress, when set, is called after every step.
+	Progress func(Progress)
+}
+
+// Progress is the state of a search after a step.
+type Progress struct {
+	Step, Steps  int
+	MeanReward   float64
+	TrainAcc     float64 // mean accuracy of the step's sampled prompts
+	DevAcc       float64 // of the latest greedy prompt; -1 before the first evaluation
+	Prompt       string  // the latest greedy prompt
+	Calls        scorer.Totals
+	FlooredShare float64
+}
+
+// Point is one line of the history.
+type Point struct {
+	Step       int     `json:"step"`
+	MeanReward float64 `json:"mean_reward"`
+	TrainAcc   float64 `json:"train_accuracy"`
+	DevAcc     float64 `json:"dev_accuracy"` // -1 when not evaluated at this step
+	Loss       float64 `json:"loss"`
+	Prompt     string  `json:"greedy_prompt,omitempty"`
+}
+
+// Contender is a prompt and how it did.
+type Contender struct {
+	Method   string  `json:"method"` // "rl", "empty", "manual", "random"
+	Prompt   string  `json:"prompt"`
+	TrainAcc float64 `json:"train_accuracy"`
+	DevAcc   float64 `json:"dev_accuracy"`
+	TestAcc  float64 `json:"test_accuracy"` // -1 without a test set
+	// Calls is how many prompt×example judgements the method spent
+	// finding its prompt (the evaluation on train/dev/test not counted).
+	Calls int `json:"search_judgements"`
+}
+
+// Results are a finished search. They hold nothing that differs between a
+// run and its replay (no times, no spend, no cache figures).
+type Results struct {
+	Task     string        `json:"task"`
+	Seed     int64         `json:"seed"`
+	Steps    int           `json:"steps"`
+	Best     Contender     `json:"best"`
+	Ranking  []Contender   `json:"contenders"`
+	History  []Point       `json:"-"`
+	Floored  int           `json:"floored_verbalizers"`
+	Lookups  int           `json:"verbalizer_lookups"`
+	Spending scorer.Totals `json:"-"`
+}
+
+// Run searches, then scores the baselines and every contender on the dev
+// and test sets.
+func Run(ctx context.Context, o Options) (Results, error) {
+	t := o.Task
+	if t == nil || o.Scorer == nil || o.Policy == nil || o.Vocab == nil {
+		return Results{}, errors.New("search: task, scorer, policy and vocabulary are required")
+	}
+	if len(t.Train) == 0 || len(t.Dev) == 0 {
+		return Results{}, errors.New("search: the task needs train and dev examples")
+	}
+	evalEvery := o.EvalEvery
+	if evalEvery <= 0 {
+		evalEvery = max(1, t.Steps/10)
+	}
+	r := &runner{o: o, t: t, rng: rand.New(rand.NewPCG(uint64(t.Seed), 0x5eed))}
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps}
+	devAcc, greedyText := -1.0, ""
+	for step := 1; step <= t.Steps; step++ {
+		prompts, err := o.Policy.Sample(ctx, t.PromptsPerStep)
+		if err != nil {
+			return res, fmt.Errorf("search: step %d: sample: %w", step, err)
+		}
+		texts := make([]string, len(prompts))
+		for i, p := range prompts {
+			texts[i] = o.Vocab.Text(p)
+		}
+		batch := r.trainBatch()
+		st, err := r.judge(ctx, texts, batch)
+		if err != nil {
+			return res, fmt.Errorf("search: step %d: %w", step, err)
+		}
+		ps, err := o.Policy.Update(ctx, prompts, st.PerPrompt)
+		if err != nil {
+			return res, fmt.Errorf("search: step %d: update: %w", step, err)
+		}
+		pt := Point{Step: step, MeanReward: meanOf(st.Raw), TrainAcc: meanOf1(st.Accuracy), DevAcc: -1, Loss: ps.Loss}
+		if step%evalEvery == 0 || step == t.Steps {
+			g, err := o.Policy.Greedy(ctx)
+			if err != nil {
+				return res, fmt.Errorf("search: step %d: greedy: %w", step, err)
+			}
+			greedyText = o.Vocab.Text(g)
+			if devAcc, err = r.accuracy(ctx, greedyText, t.Dev); err != nil {
+				return res, fmt.Errorf("search: step %d: dev: %w", step, err)
+			}
+			pt.DevAcc, pt.Prompt = devAcc, greedyText
+		}
+		res.History = append(res.History, pt)
+		if o.Progress != nil {
+			o.Progress(Progress{Step: step, Steps: t.Steps, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
+				Prompt: greedyText, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
+		}
+	}
+	searchCalls := t.Steps * t.PromptsPerStep * t.ExamplesPerStep
+	contenders := []Contender{{Method: "rl", Prompt: greedyText, Calls: searchCalls}, {Method: "empty", Prompt: ""}}
+	for _, m := range t.ManualPrompts {
+		contenders = append(contenders, Contender{Method: "manual", Prompt: m})
+	}
+	random, err := r.randomSearch(ctx, searchCalls)
+	if err != nil {
+		return res, err
+	}
+	contenders = append(contenders, random)
+	for i := range contenders {
+		c := &contenders[i]
+		var err error
+		if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, t.Train); err != nil {
+			return res, err
+		}
+		if c.DevAcc, err = r.accuracy(ctx, c.Prompt, t.Dev); err != nil {
+			return res, err
+		}
+		c.TestAcc = -1
+		if len(t.Test) > 0 {
+			if c.TestAcc, err = r.accuracy(ctx, c.Prompt, t.Test); err != nil {
+				return res, err
+			}
+		}
+	}
+	res.Ranking = contenders
+	res.Best = contenders[0]
+	res.Floored, res.Lookups = r.floored, r.lookups
+	res.Spending = scorer.Sum(r.calls)
+	return res, nil
+}
+
+// runner is one search's state beyond the policy.
+type runner struct {
+	o       Options
+	t       *task.Task
+	rng     *rand.Rand
+	calls   []scorer.Call
+	floored int
+	lookups int
+}
+
+// trainBatch draws the step's training examples, without repeats when the
+// set is large enough.
+func (r *runner) trainBatch() []task.Example {
+	n := min(r.t.ExamplesPerStep, len(r.t.Train))
+	idx := r.rng.Perm(len(r.t.Train))[:n]
+	slices.Sort(idx) // a stable order for the batched calls
+	out := make([]task.Example, n)
+	for i, j := range idx {
+		out[i] = r.t.Train[j]
+	}
+	return out
+}
+
+// judge scores every prompt on every example and computes the rewards.
+func (r *runner) judge(ctx context.Context, prompts []string, examples []task.Example) (reward.Step, error) {
+	texts := make([]string, 0, len(prompts)*len(examples))
+	for _, p := range prompts {
+		for _, e := range examples {
+			texts = append(texts, r.t.Fill(e.Text, p))
+		}
+	}
+	got, err := r.o.Scorer.Score(ctx, texts)
+	if err != nil {
+		return reward.Step{}, err
+	}
+	r.calls = append(r.calls, got.Calls...)
+	top := make([][]map[string]float64, len(prompts))
+	for p := range prompts {
+		top[p] = got.Top[p*len(examples) : (p+1)*len(examples)]
+	}
+	truth := make([]int, len(examples))
+	for i, e := range examples {
+		truth[i] = r.t.LabelIndex(e.Label)
+	}
+	cfg := r.t.Reward
+	if len(prompts) < 2 {
+		cfg.NoZScore = true // one prompt has nothing to be compared with
+	}
+	st, err := cfg.Score(top, truth, r.t.Verbalizers())
+	if err != nil {
+		return reward.Step{}, err
+	}
+	r.floored += st.Floored
+	r.lookups += st.Lookups
+	return st, nil
+}
+
+// accuracy is the share of examples prompt classifies correctly.
+func (r *runner) accuracy(ctx context.Context, prompt string, examples []task.Example) (float64, error) {
+	st, err := r.judge(ctx, []string{prompt}, examples)
+	if err != nil {
+		return 0, err
+	}
+	return st.Accuracy[0], nil
+}
+
+// randomSearch draws uniformly random prompts of the task's length from
+// the same actions and keeps the one with the best raw reward on a train
+// batch, spending the same number of judgements as the search.
+func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error) {
+	actions := r.o.Vocab.Actions()
+	perPrompt := min(r.t.ExamplesPerStep, len(r.t.Train))
+	best := Contender{Method: "random"}
+	bestScore := 0.0
+	spent := 0
+	for spent+perPrompt <= budget {
+		n := min(r.t.PromptsPerStep, (budget-spent)/perPrompt)
+		texts := make([]string, n)
+		for i := range texts {
+			ids := make([]int, r.t.PromptLength)
+			for j := range ids {
+				ids[j] = actions[r.rng.IntN(len(actions))]
+			}
+			texts[i] = r.o.Vocab.Text(ids)
+		}
+		st, err := r.judge(ctx, texts, r.trainBatch())
+		if err != nil {
+			return best, fmt.Errorf("search: random baseline: %w", err)
+		}
+		for i, row := range st.Raw {
+			if s := mean(row); spent == 0 && i == 0 || s > bestScore {
+				best.Prompt, bestScore = texts[i], s
+			}
+		}
+		spent += n * perPrompt
+	}
+	best.Calls = spent
+	return best, nil
+}
+
+func mean(xs []float64) float64 {
+	if len(xs) == 0 {
+		return 0
+	}
+	var s float64
+	for _, x := range xs {
+		s += x
+	}
+	return s / float64(len(xs))
+}
+
+func meanOf1(xs []float64) float64 { return mean(xs) }
+
+func meanOf(rows [][]float64) float64 {
+	var all []float64
+	for _, r := range rows {
+		all = append(all, r...)
+	}
+	return mean(all)
+}
+
+func share(a, b int) float64 {
+	if b == 0 {
+		return 0
+	}
+	return float64(a) / float64(b)
+}
+
+// PromptText joins token texts into a prompt, without the leading space a
+// word-initial first token brings (the template supplies the spacing).
+func PromptText(pieces []string) string {
+	return strings.TrimPrefix(strings.Join(pieces, ""), " ")
+}
