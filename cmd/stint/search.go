@@ -47,7 +47,8 @@ same number of scorings) run in the same search.
 With --replay the run is answered from the proxy's journal only: it makes no
 upstream call and writes the same results.json.
 
-Outputs in --out: results.json, history.csv, report.md.`,
+Outputs in --out: results.json, history.csv, report.md and the learning
+curve as learning-curve.png and .svg.`,
 		Example: `  stint search run orchard.yaml --proxy http://127.0.0.1:8787/v1 --out ./orchard-out
   STINT_KEY=... stint search run task.yaml --run orchard-7 --replay`,
 		Args: cobra.ExactArgs(1),
@@ -137,6 +138,8 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 		{"results.json", func(w io.Writer) error { return search.WriteResults(w, res) }},
 		{"history.csv", func(w io.Writer) error { return search.WriteHistory(w, res.History) }},
 		{"report.md", func(w io.Writer) error { return search.WriteReport(w, res, wall) }},
+		{"learning-curve.png", func(w io.Writer) error { return search.WritePlot(w, res, search.PNG) }},
+		{"learning-curve.svg", func(w io.Writer) error { return search.WritePlot(w, res, search.SVG) }},
 	}
 	for _, file := range files {
 		if err := policy.WriteFileAtomic(filepath.Join(f.out, file.name), file.write); err != nil {

@@ -90,7 +90,7 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	if !bytes.Equal(a, b) {
 		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
 	}
-	for _, name := range []string{"history.csv", "report.md"} {
+	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {
 		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {
 			t.Errorf("%s missing or empty: %v", name, err)
 		}

@@ -71,6 +71,8 @@ the random baseline spend the same number.
 - spend reported by the proxy: %.6f USD (an estimate from its configured prices; the provider's bill is the record)
 - verbalizers missing from the returned log-probabilities: %d of %d look-ups
 - wall time: %s
+
+![learning curve](learning-curve.svg)
 `, r.Task, r.Seed, r.Steps, "```\n"+Table(r)+"```\n", s.Calls, s.Prompts, 100*s.CacheShare(), s.CostUSD, r.Floored, r.Lookups, wall)
 	return err
 }
