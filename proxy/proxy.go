@@ -224,7 +224,11 @@ func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) { p.mux.ServeH
 
 // Close waits until every answer already sent has been written to the store
 // (or ctx ends). It does not close the store, which the caller owns.
-func (p *Proxy) Close(ctx context.Context) error {
+func (p *Proxy) Close(ctx context.Context) error { return p.Flush(ctx) }
+
+// Flush waits until the work that runs behind answers already sent (store
+// writes, journal entries of cache savings) has landed, or ctx ends.
+func (p *Proxy) Flush(ctx context.Context) error {
 	if err := p.writes.wait(ctx); err != nil {
 		return err
 	}

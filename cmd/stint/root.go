@@ -22,6 +22,7 @@ func newRootCmd() *cobra.Command {
 		newBudgetCmd(),
 		newRunsCmd(),
 		newSearchCmd(),
+		newDemoCmd(),
 	)
 	return root
 }

@@ -96,3 +96,35 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 		}
 	}
 }
+
+// TestDemoRunsOfflineAndSaves runs a short `stint demo`: the local model,
+// the proxy and two searches; the second is answered from the cache and
+// the printed savings say so.
+func TestDemoRunsOfflineAndSaves(t *testing.T) {
+	t.Setenv("STINT_MODEL", modeltest.Path(t))
+	out, err := runCLI(t, "demo", "--steps", "3", "--data", t.TempDir(), "--out", t.TempDir(),
+		"--dataset", filepath.Join("..", "..", "testdata", "search"))
+	if err != nil {
+		t.Fatalf("stint demo: %v\n%s", err, out)
+	}
+	m := regexp.MustCompile(`upstream calls (\d+), served from the cache [0-9.]+%, calls saved (\d+)`).FindStringSubmatch(out)
+	if m == nil {
+		t.Fatalf("no savings line in:\n%s", out)
+	}
+	upstream, _ := strconv.Atoi(m[1])
+	saved, _ := strconv.Atoi(m[2])
+	if upstream == 0 || saved < upstream {
+		t.Errorf("demo: %d upstream calls, %d saved; the repeated search should be served from the cache", upstream, saved)
+	}
+	if !strings.Contains(out, "100.0% of texts from the cache") {
+		t.Errorf("the second search was not served from the cache:\n%s", out)
+	}
+}
+
+func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
+	t.Setenv("STINT_MODEL", filepath.Join(t.TempDir(), "absent.gguf"))
+	_, err := runCLI(t, "demo", "--data", t.TempDir())
+	if err == nil || !strings.Contains(err.Error(), "stint local --download") {
+		t.Errorf("demo without a model: %v, want instructions naming stint local --download", err)
+	}
+}

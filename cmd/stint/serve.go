@@ -158,6 +158,7 @@ type server struct {
 	proxy   *proxy.Proxy
 	store   cache.Store
 	commits *boltgroup.Committer // the embedded file's shared group commit
+	spend   proxy.SpendControl   // nil when the config prices nothing
 	closers []func() error
 }
 
@@ -195,6 +196,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		s.close()
 		return nil, err
 	}
+	s.spend = spend
 	var adminKeys [][sha256.Size]byte
 	for _, k := range cfg.Admin.Keys {
 		h, err := parseKeyHash(k)

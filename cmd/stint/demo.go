@@ -1,0 +1,166 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+	"time"
+
+	"github.com/spf13/cobra"
+
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/guard"
+	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/searcher/task"
+)
+
+// demoFlags are the settings of `stint demo`.
+type demoFlags struct {
+	model   string
+	data    string
+	out     string
+	dataset string
+	steps   int
+}
+
+// demoPrice is what the demo charges per million tokens: invented demo
+// prices, not any provider's.
+var demoPrice = PriceConfig{Input: Number{Value: 0.50, Set: true}, Output: Number{Value: 1.50, Set: true}}
+
+func newDemoCmd() *cobra.Command {
+	var f demoFlags
+	cmd := &cobra.Command{
+		Use:   "demo",
+		Short: "Run the local model, the proxy and a short prompt search, all offline",
+		Long: `Start the local model, the caching proxy on the embedded store and a prompt
+search on the demo task (notes from an invented orchard co-op, labelled
+"harvest" or "repair"), then run the same search again to show the cache at
+work. Prints the results table and what the proxy saved, at invented demo
+prices; writes the report, history and learning curve to --out.
+
+Run it from the repository root (the demo data is in testdata/search).`,
+		Example: `  go run ./cmd/stint demo
+  stint demo --model ../shared/models/stories260K.gguf --steps 40`,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			return runDemo(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), f)
+		},
+	}
+	fl := cmd.Flags()
+	fl.StringVar(&f.model, "model", "", "GGUF model file (default: $STINT_MODEL, else the downloaded copy)")
+	fl.StringVar(&f.data, "data", "./stint-demo-data", "data directory of the demo's proxy")
+	fl.StringVar(&f.out, "out", "./stint-demo-out", "where the search writes its results")
+	fl.StringVar(&f.dataset, "dataset", filepath.Join("testdata", "search"), "folder with the demo task's data")
+	fl.IntVar(&f.steps, "steps", 60, "search steps")
+	return cmd
+}
+
+func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
+	modelPath, err := localmodel.Locate(f.model, os.Getenv)
+	if errors.Is(err, localmodel.ErrModelNotFound) {
+		cached, _ := localmodel.CachePath()
+		return fmt.Errorf(`the demo needs the model file stories260K.gguf (%w).
+Get it one of these ways:
+  - pass --model PATH, or set %s=PATH, to a copy you have;
+  - run "stint local --download" once: it fetches the file from its public source into %s and checks its SHA-256`,
+			err, localmodel.ModelEnv, cached)
+	}
+	if err != nil {
+		return err
+	}
+	taskPath, err := writeDemoTask(f)
+	if err != nil {
+		return err
+	}
+	cfg := DefaultConfig()
+	cfg.Listen, cfg.Data = "127.0.0.1:0", f.data
+	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
+	cfg.Prices = map[string]PriceConfig{"stories260K": demoPrice}
+	if err := cfg.Validate(nil); err != nil {
+		return err
+	}
+	srv, err := buildServer(ctx, cfg, slog.New(slog.NewTextHandler(io.Discard, nil)))
+	if err != nil {
+		return err
+	}
+	ln, err := net.Listen("tcp", cfg.Listen)
+	if err != nil {
+		srv.close()
+		return err
+	}
+	sctx, stop := context.WithCancel(ctx)
+	served := make(chan error, 1)
+	go func() { served <- srv.serve(sctx, ln) }()
+	defer func() { stop(); <-served }()
+	proxyURL := "http://" + ln.Addr().String() + "/v1"
+	fmt.Fprintf(out, "stint demo: proxy on %s, local model %s in-process as its upstream\n\n", proxyURL, filepath.Base(modelPath))
+
+	start := time.Now()
+	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
+	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("orchard-demo-%d", start.Unix())}
+	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
+		return err
+	}
+	fmt.Fprintln(out, "\n== the same search again: same seed, same prompts, answered from the cache")
+	sf.run += "-again"
+	sf.out = filepath.Join(f.out, "again")
+	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
+		return err
+	}
+	return printDemoSavings(ctx, out, srv, start)
+}
+
+// writeDemoTask writes the example task with the demo's step count and
+// absolute dataset paths into the data dir.
+func writeDemoTask(f demoFlags) (string, error) {
+	dir, err := filepath.Abs(f.dataset)
+	if err != nil {
+		return "", err
+	}
+	if _, err := os.Stat(filepath.Join(dir, "orchard-train.jsonl")); err != nil {
+		return "", fmt.Errorf("the demo data is not at %s (run stint demo from the repository root, or give --dataset): %w", dir, err)
+	}
+	if f.steps <= 0 {
+		return "", errors.New("--steps must be positive")
+	}
+	text := strings.NewReplacer(
+		"train: orchard-train.jsonl", "train: "+filepath.Join(dir, "orchard-train.jsonl"),
+		"dev: orchard-dev.jsonl", "dev: "+filepath.Join(dir, "orchard-dev.jsonl"),
+		"test: orchard-test.jsonl", "test: "+filepath.Join(dir, "orchard-test.jsonl"),
+		"steps: 200", fmt.Sprintf("steps: %d", f.steps),
+	).Replace(task.ExampleFile)
+	if err := os.MkdirAll(f.data, 0o700); err != nil {
+		return "", err
+	}
+	path := filepath.Join(f.data, "demo-task.yaml")
+	return path, os.WriteFile(path, []byte(text), 0o600)
+}
+
+// printDemoSavings reports, from the proxy's spend journal, what the two
+// searches cost and what the cache saved, at the demo prices.
+func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since time.Time) error {
+	g, ok := srv.spend.(*guard.Guard)
+	if !ok {
+		return errors.New("demo: spend control is off")
+	}
+	// Savings of hits are journaled just behind their answers.
+	if err := srv.proxy.Flush(ctx); err != nil {
+		return err
+	}
+	st, err := g.Statement(ctx, budget.Query{Since: since.Add(-time.Second), By: budget.ByTeam})
+	if err != nil {
+		return err
+	}
+	t := st.Total
+	fmt.Fprintf(out, "\n== what the proxy did (demo prices: 0.50 / 1.50 USD per million input / output tokens, invented)\n")
+	fmt.Fprintf(out, "requests %d, upstream calls %d, served from the cache %.1f%%, calls saved %d\n",
+		t.Requests, t.UpstreamCalls, 100*t.CacheShare, t.Requests-t.UpstreamCalls)
+	fmt.Fprintf(out, "spent %s USD, saved %s USD (estimates from the demo prices)\n", t.SpentUSD, t.SavedUSD)
+	return nil
+}
