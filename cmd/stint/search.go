@@ -26,6 +26,10 @@ type searchFlags struct {
 	model  string
 	run    string
 	replay bool
+	// price prices the forecast (USD per million tokens); overCap starts
+	// a search whose forecast is over the task's spend cap.
+	price   scorer.Price
+	overCap bool
 }
 
 func newSearchCmd() *cobra.Command {
@@ -63,6 +67,9 @@ curve as learning-curve.png and .svg.`,
 	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
 	fl.StringVar(&f.run, "run", "", "run id the calls are recorded under (default: TASKNAME-sSEED)")
 	fl.BoolVar(&f.replay, "replay", false, "answer every call from the run's journal; no upstream calls")
+	fl.Float64Var(&f.price.InputPerMillion, "input-price", 0, "USD per million input tokens, for the cost forecast")
+	fl.Float64Var(&f.price.OutputPerMillion, "output-price", 0, "USD per million output tokens, for the cost forecast")
+	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd")
 	example := &cobra.Command{
 		Use:   "example",
 		Short: "Print a complete, commented task file",
@@ -118,12 +125,23 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if err != nil {
 		return err
 	}
+	plan := search.PlanFor(t, 0)
+	forecast := plan.Cost(f.price)
+	fmt.Fprintf(out, "forecast: %d scorings (search %d, random baseline %d, evaluation %d) of at most %d prompt tokens each",
+		plan.Judgements(), plan.Search, plan.Random, plan.Evaluation, plan.TokensPerJudgement)
+	if f.price != (scorer.Price{}) {
+		fmt.Fprintf(out, ": at most %.4f USD at the given prices, before the cache (an estimate; the provider's bill is the record)", forecast)
+	}
+	fmt.Fprintln(out)
+	if t.SpendCapUSD > 0 && forecast > t.SpendCapUSD && !f.overCap && !f.replay {
+		return fmt.Errorf("the forecast %.4f USD is over the task's spend_cap_usd %.4f: lower steps, prompts_per_step or examples_per_step, or pass --over-cap (the cache usually makes the real spend lower; the search still stops at the cap)", forecast, t.SpendCapUSD)
+	}
 	if err := os.MkdirAll(f.out, 0o755); err != nil {
 		return err
 	}
 	start := time.Now()
 	res, err := search.Run(ctx, search.Options{
-		Task: t, Scorer: sc, Policy: search.Trainer{Trainer: trainer}, Vocab: vocab,
+		Task: t, Scorer: sc, Policy: search.Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
 		Progress: func(p search.Progress) { printProgress(progress, p, start) },
 	})
 	fmt.Fprintln(progress)

@@ -128,3 +128,35 @@ func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
 		t.Errorf("demo without a model: %v, want instructions naming stint local --download", err)
 	}
 }
+
+// TestSearchRefusesAForecastOverTheCap never reaches a proxy: the
+// forecast is over the task's cap, so the search does not start.
+func TestSearchRefusesAForecastOverTheCap(t *testing.T) {
+	t.Setenv("STINT_MODEL", modeltest.Path(t))
+	out, err := runCLI(t, "search", "run", shortTask(t), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir(),
+		"--input-price", "1000000", "--output-price", "1000000")
+	if err == nil || !strings.Contains(err.Error(), "spend_cap_usd") || !strings.Contains(out, "forecast:") {
+		t.Errorf("search over its cap: %v\n%s, want a refusal naming spend_cap_usd after the forecast", err, out)
+	}
+}
+
+// TestSearchStopsAtItsSpendCap runs against a proxy that prices the model:
+// the search stops once the spend the proxy reports reaches the task's cap.
+func TestSearchStopsAtItsSpendCap(t *testing.T) {
+	model := modeltest.Path(t)
+	t.Setenv("STINT_MODEL", model)
+	cfg := writeConfig(t, configHead(t.TempDir(), "local:"+model)+"prices:\n  stories260K: {input: 0.50, output: 1.50}   # invented test prices\n")
+	c := startStint(t, nil, "serve", "--config", cfg)
+	path := shortTask(t)
+	raw, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 2.50"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir())
+	if err == nil || !strings.Contains(err.Error(), "spend cap") {
+		t.Errorf("search with a tiny cap: %v\n%s, want it stopped at the cap", err, out)
+	}
+}

@@ -61,7 +61,13 @@ type Options struct {
 	EvalEvery int
 	// Progress, when set, is called after every step.
 	Progress func(Progress)
+	// SpendCapUSD, when positive, stops the search once the proxy has
+	// reported that much spent on its calls (ErrSpendCap).
+	SpendCapUSD float64
 }
+
+// ErrSpendCap stops a search whose calls reached its spend cap.
+var ErrSpendCap = errors.New("search: the spend cap is reached")
 
 // Progress is the state of a search after a step.
 type Progress struct {
@@ -158,6 +164,9 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			pt.DevAcc, pt.Prompt = devAcc, greedyText
 		}
 		res.History = append(res.History, pt)
+		if spent := scorer.Sum(r.calls).CostUSD; o.SpendCapUSD > 0 && spent >= o.SpendCapUSD {
+			return res, fmt.Errorf("%w: %.6f USD of %.6f after step %d (as the proxy reported)", ErrSpendCap, spent, o.SpendCapUSD, step)
+		}
 		if o.Progress != nil {
 			o.Progress(Progress{Step: step, Steps: t.Steps, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
 				Prompt: greedyText, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
