@@ -30,6 +30,11 @@ type searchFlags struct {
 	// a search whose forecast is over the task's spend cap.
 	price   scorer.Price
 	overCap bool
+	// checkpointEvery, stopAfter and resume control checkpoints in
+	// OUT/checkpoint.json.
+	checkpointEvery int
+	stopAfter       int
+	resume          bool
 }
 
 func newSearchCmd() *cobra.Command {
@@ -70,6 +75,9 @@ curve as learning-curve.png and .svg.`,
 	fl.Float64Var(&f.price.InputPerMillion, "input-price", 0, "USD per million input tokens, for the cost forecast")
 	fl.Float64Var(&f.price.OutputPerMillion, "output-price", 0, "USD per million output tokens, for the cost forecast")
 	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd")
+	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps (default: every tenth of the steps)")
+	fl.IntVar(&f.stopAfter, "stop-after", 0, "stop after step N with a checkpoint (resume later with --resume)")
+	fl.BoolVar(&f.resume, "resume", false, "continue from OUT/checkpoint.json exactly where it stopped")
 	example := &cobra.Command{
 		Use:   "example",
 		Short: "Print a complete, commented task file",
@@ -104,8 +112,18 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if err != nil {
 		return err
 	}
-	trainer, err := policy.NewTrainer(backbone, policy.Config{PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions()})
-	if err != nil {
+	ckptPath := filepath.Join(f.out, "checkpoint.json")
+	var resume *search.State
+	var trainer *policy.Trainer
+	if f.resume {
+		if resume, err = readCheckpoint(ckptPath, t); err != nil {
+			return err
+		}
+		if trainer, err = policy.Load(resume.PolicyReader(), backbone); err != nil {
+			return fmt.Errorf("resume %s: %w", ckptPath, err)
+		}
+		fmt.Fprintf(out, "resuming after step %d from %s\n", resume.Step, ckptPath)
+	} else if trainer, err = policy.NewTrainer(backbone, policy.Config{PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions()}); err != nil {
 		return err
 	}
 	key := f.key
@@ -142,9 +160,17 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	start := time.Now()
 	res, err := search.Run(ctx, search.Options{
 		Task: t, Scorer: sc, Policy: search.Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
+		Resume: resume, StopAfter: f.stopAfter, CheckpointEvery: f.checkpointEvery,
+		Checkpoint: func(st *search.State) error {
+			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return search.WriteState(w, st) })
+		},
 		Progress: func(p search.Progress) { printProgress(progress, p, start) },
 	})
 	fmt.Fprintln(progress)
+	if errors.Is(err, search.ErrStopped) {
+		fmt.Fprintf(out, "%v: %s\n", err, ckptPath)
+		return nil
+	}
 	if err != nil {
 		return err
 	}
@@ -199,4 +225,17 @@ func progressBar(done, total, width int) string {
 		}
 	}
 	return string(b)
+}
+
+func readCheckpoint(path string, t *task.Task) (*search.State, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, fmt.Errorf("--resume: %w", err)
+	}
+	defer f.Close()
+	st, err := search.ReadState(f, t.Name, t.Seed)
+	if err != nil {
+		return nil, fmt.Errorf("--resume %s: %w", path, err)
+	}
+	return st, nil
 }

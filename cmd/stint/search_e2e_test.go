@@ -160,3 +160,40 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 		t.Errorf("search with a tiny cap: %v\n%s, want it stopped at the cap", err, out)
 	}
 }
+
+// TestResumedSearchFollowsTheSameTrajectory records an uninterrupted
+// search, then runs the same search in replay mode in two pieces: stopped
+// after step 2 with a checkpoint, and resumed from it. A replay answers
+// only the calls the recording made, so a resumed search that strayed from
+// the recorded trajectory would fail; it finishes with the same
+// results.json, byte for byte.
+func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
+	model := modeltest.Path(t)
+	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
+	t.Setenv("STINT_MODEL", model)
+	taskPath := shortTask(t)
+	proxyURL := "http://" + c.addr + "/v1"
+	whole, pieces := t.TempDir(), t.TempDir()
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", whole, "--run", "orchard-resume"); err != nil {
+		t.Fatalf("search run: %v\n%s", err, out)
+	}
+	calls := upstreamCalls(t, c)
+	replay := []string{"search", "run", taskPath, "--proxy", proxyURL, "--out", pieces, "--run", "orchard-resume", "--replay", "--checkpoint-every", "1"}
+	if out, err := runCLI(t, append(replay, "--stop-after", "2")...); err != nil || !strings.Contains(out, "stopped early") {
+		t.Fatalf("first piece: %v\n%s", err, out)
+	}
+	if _, err := os.Stat(filepath.Join(pieces, "results.json")); err == nil {
+		t.Fatal("a stopped search wrote results")
+	}
+	if out, err := runCLI(t, append(replay, "--resume")...); err != nil || !strings.Contains(out, "resuming after step 2") {
+		t.Fatalf("resumed piece: %v\n%s", err, out)
+	}
+	a, _ := os.ReadFile(filepath.Join(whole, "results.json"))
+	b, err := os.ReadFile(filepath.Join(pieces, "results.json"))
+	if err != nil || !bytes.Equal(a, b) {
+		t.Errorf("resumed results differ (%v):\n%s\nvs\n%s", err, a, b)
+	}
+	if got := upstreamCalls(t, c); got != calls {
+		t.Errorf("upstream calls %d → %d during the replayed pieces", calls, got)
+	}
+}

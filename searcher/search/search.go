@@ -14,6 +14,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"io"
 	"math/rand/v2"
 	"slices"
 	"strings"
@@ -34,6 +35,8 @@ type Policy interface {
 	Sample(ctx context.Context, n int) ([][]int, error)
 	Update(ctx context.Context, prompts [][]int, rewards []float64) (PolicyStats, error)
 	Greedy(ctx context.Context) ([]int, error)
+	// Save writes the policy's whole state (see Options.Checkpoint).
+	Save(w io.Writer) error
 }
 
 // PolicyStats is what one policy update reports.
@@ -61,6 +64,17 @@ type Options struct {
 	EvalEvery int
 	// Progress, when set, is called after every step.
 	Progress func(Progress)
+	// Checkpoint, when set, receives the search's state every
+	// CheckpointEvery steps (0: every tenth of the steps) and at StopAfter;
+	// it should store it atomically.
+	Checkpoint      func(*State) error
+	CheckpointEvery int
+	// Resume, when set, continues from a checkpoint; the Policy must have
+	// been loaded from the same checkpoint (State.PolicyReader).
+	Resume *State
+	// StopAfter, when positive, ends the search after that step with
+	// ErrStopped, once its checkpoint is written.
+	StopAfter int
 	// SpendCapUSD, when positive, stops the search once the proxy has
 	// reported that much spent on its calls (ErrSpendCap).
 	SpendCapUSD float64
@@ -130,10 +144,22 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	if evalEvery <= 0 {
 		evalEvery = max(1, t.Steps/10)
 	}
-	r := &runner{o: o, t: t, rng: rand.New(rand.NewPCG(uint64(t.Seed), 0x5eed))}
+	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
+	r.rng = rand.New(r.pcg)
 	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps}
 	devAcc, greedyText := -1.0, ""
-	for step := 1; step <= t.Steps; step++ {
+	first := 1
+	if s := o.Resume; s != nil {
+		if err := r.restore(s, &res); err != nil {
+			return res, err
+		}
+		devAcc, greedyText, first = s.DevAcc, s.GreedyText, s.Step+1
+	}
+	every := o.CheckpointEvery
+	if every <= 0 {
+		every = max(1, t.Steps/10)
+	}
+	for step := first; step <= t.Steps; step++ {
 		prompts, err := o.Policy.Sample(ctx, t.PromptsPerStep)
 		if err != nil {
 			return res, fmt.Errorf("search: step %d: sample: %w", step, err)
@@ -164,6 +190,19 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			pt.DevAcc, pt.Prompt = devAcc, greedyText
 		}
 		res.History = append(res.History, pt)
+		stop := o.StopAfter > 0 && step == o.StopAfter && step < t.Steps
+		if o.Checkpoint != nil && (step%every == 0 || stop) {
+			st, err := r.snapshot(step, &res, devAcc, greedyText)
+			if err != nil {
+				return res, err
+			}
+			if err := o.Checkpoint(st); err != nil {
+				return res, fmt.Errorf("search: checkpoint after step %d: %w", step, err)
+			}
+		}
+		if stop {
+			return res, fmt.Errorf("%w (after step %d)", ErrStopped, step)
+		}
 		if spent := scorer.Sum(r.calls).CostUSD; o.SpendCapUSD > 0 && spent >= o.SpendCapUSD {
 			return res, fmt.Errorf("%w: %.6f USD of %.6f after step %d (as the proxy reported)", ErrSpendCap, spent, o.SpendCapUSD, step)
 		}
@@ -209,6 +248,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 type runner struct {
 	o       Options
 	t       *task.Task
+	pcg     *rand.PCG // rng's source, kept for checkpoints
 	rng     *rand.Rand
 	calls   []scorer.Call
 	floored int
