@@ -9,7 +9,6 @@
 //     or chat with top_logprobs)
 //   - searcher/policy: the policy network on a frozen local backbone and
 //     its soft Q-learning trainer, with checkpoints
-//
-// The search loop, baselines, reports and the `stint search` command are
-// still to come.
+//   - searcher/search: one search (loop, baselines, checkpoints, outputs)
+//   - searcher/jobs: the sidecar's job manager and HTTP API
 package searcher

@@ -2,9 +2,10 @@ package main
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"io"
+	"net"
+	"net/http"
 	"os"
 	"path/filepath"
 	"time"
@@ -12,7 +13,7 @@ import (
 	"github.com/spf13/cobra"
 
 	"github.com/stintlab/stint/proxy/localmodel"
-	"github.com/stintlab/stint/searcher/policy"
+	"github.com/stintlab/stint/searcher/jobs"
 	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
@@ -87,8 +88,74 @@ curve as learning-curve.png and .svg.`,
 			return err
 		},
 	}
-	cmd.AddCommand(run, example)
+	cmd.AddCommand(run, example, newSearchServeCmd())
 	return cmd
+}
+
+func newSearchServeCmd() *cobra.Command {
+	var listen, proxyURL, data, model, key string
+	var every int
+	cmd := &cobra.Command{
+		Use:   "serve",
+		Short: "Run the search sidecar: an HTTP API to submit, watch and cancel searches",
+		Long: `Run searches submitted over HTTP, one at a time, through the proxy:
+
+  POST /jobs              {"task": "/path/task.yaml", "run": "ID", "over_cap": false}
+  GET  /jobs              every job, newest first
+  GET  /jobs/{id}         state, step, best prompt so far, accuracies, calls, cache share, spend
+  POST /jobs/{id}/cancel
+
+Jobs and their outputs are kept under --data; a job that was running when
+the sidecar stopped resumes from its last checkpoint when it starts again.
+The team key is --key or $STINT_KEY.`,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every)
+		},
+	}
+	fl := cmd.Flags()
+	fl.StringVar(&listen, "listen", "127.0.0.1:8788", "address of the job API")
+	fl.StringVar(&proxyURL, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
+	fl.StringVar(&data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
+	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
+	fl.StringVar(&key, "key", "", "the team's client key (default: $STINT_KEY)")
+	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps (default: every tenth of the steps)")
+	return cmd
+}
+
+func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int) error {
+	modelPath, err := localmodel.Locate(modelFlag, os.Getenv)
+	if err != nil {
+		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
+	}
+	m, err := localmodel.Load(modelPath)
+	if err != nil {
+		return err
+	}
+	if key == "" {
+		key = os.Getenv(teamKeyEnv)
+	}
+	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every})
+	if err != nil {
+		return err
+	}
+	defer mgr.Close()
+	ln, err := net.Listen("tcp", listen)
+	if err != nil {
+		return err
+	}
+	hs := &http.Server{Handler: mgr.Handler(), ReadHeaderTimeout: 30 * time.Second}
+	errc := make(chan error, 1)
+	go func() { errc <- hs.Serve(ln) }()
+	fmt.Fprintf(log, "stint search serve listening addr=%s data=%s proxy=%s\n", ln.Addr(), data, proxyURL)
+	select {
+	case err := <-errc:
+		return err
+	case <-ctx.Done():
+		sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
+		defer cancel()
+		return hs.Shutdown(sctx)
+	}
 }
 
 func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f searchFlags) error {
@@ -100,100 +167,27 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if err != nil {
 		return err
 	}
-	t, err := task.Load(taskPath, task.NewLocalTokenizer(m.Tokenizer()))
-	if err != nil {
-		return err
-	}
-	vocab := search.NewLocalVocab(m.Tokenizer(), t.AllowList)
-	if len(vocab.Actions()) == 0 {
-		return errors.New("the task's allow_list admits no token of the model")
-	}
-	backbone, err := policy.NewLocal(m, policy.LocalOptions{})
-	if err != nil {
-		return err
-	}
-	ckptPath := filepath.Join(f.out, "checkpoint.json")
-	var resume *search.State
-	var trainer *policy.Trainer
-	if f.resume {
-		if resume, err = readCheckpoint(ckptPath, t); err != nil {
-			return err
-		}
-		if trainer, err = policy.Load(resume.PolicyReader(), backbone); err != nil {
-			return fmt.Errorf("resume %s: %w", ckptPath, err)
-		}
-		fmt.Fprintf(out, "resuming after step %d from %s\n", resume.Step, ckptPath)
-	} else if trainer, err = policy.NewTrainer(backbone, policy.Config{PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions()}); err != nil {
-		return err
-	}
 	key := f.key
 	if key == "" {
 		key = os.Getenv(teamKeyEnv)
 	}
-	runID := f.run
-	if runID == "" {
-		runID = fmt.Sprintf("%s-s%d", t.Name, t.Seed)
-	}
-	so := scorer.Options{BaseURL: f.proxy, Key: key, Run: runID, Model: t.Model, Endpoint: scorer.Endpoint(t.Endpoint),
-		TopLogprobs: t.TopLogprobs, Concurrency: t.Concurrency}
-	if f.replay {
-		so.RunMode = "replay"
-	}
-	sc, err := scorer.New(so)
+	start := time.Now()
+	oc, err := search.RunJob(ctx, m, search.Job{
+		TaskPath: taskPath, Proxy: f.proxy, Key: key, Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
+		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter,
+	}, out, func(p search.Progress) { printProgress(progress, p, start) })
+	fmt.Fprintln(progress)
 	if err != nil {
 		return err
 	}
-	plan := search.PlanFor(t, 0)
-	forecast := plan.Cost(f.price)
-	fmt.Fprintf(out, "forecast: %d scorings (search %d, random baseline %d, evaluation %d) of at most %d prompt tokens each",
-		plan.Judgements(), plan.Search, plan.Random, plan.Evaluation, plan.TokensPerJudgement)
-	if f.price != (scorer.Price{}) {
-		fmt.Fprintf(out, ": at most %.4f USD at the given prices, before the cache (an estimate; the provider's bill is the record)", forecast)
-	}
-	fmt.Fprintln(out)
-	if t.SpendCapUSD > 0 && forecast > t.SpendCapUSD && !f.overCap && !f.replay {
-		return fmt.Errorf("the forecast %.4f USD is over the task's spend_cap_usd %.4f: lower steps, prompts_per_step or examples_per_step, or pass --over-cap (the cache usually makes the real spend lower; the search still stops at the cap)", forecast, t.SpendCapUSD)
-	}
-	if err := os.MkdirAll(f.out, 0o755); err != nil {
-		return err
-	}
-	start := time.Now()
-	res, err := search.Run(ctx, search.Options{
-		Task: t, Scorer: sc, Policy: search.Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
-		Resume: resume, StopAfter: f.stopAfter, CheckpointEvery: f.checkpointEvery,
-		Checkpoint: func(st *search.State) error {
-			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return search.WriteState(w, st) })
-		},
-		Progress: func(p search.Progress) { printProgress(progress, p, start) },
-	})
-	fmt.Fprintln(progress)
-	if errors.Is(err, search.ErrStopped) {
-		fmt.Fprintf(out, "%v: %s\n", err, ckptPath)
+	if oc.Stopped {
+		fmt.Fprintf(out, "stopped early after step %d; resume with --resume from %s\n", len(oc.Results.History), filepath.Join(f.out, search.CheckpointFile))
 		return nil
 	}
-	if err != nil {
-		return err
-	}
-	wall := time.Since(start).Round(time.Second).String()
-	files := []struct {
-		name  string
-		write func(io.Writer) error
-	}{
-		{"results.json", func(w io.Writer) error { return search.WriteResults(w, res) }},
-		{"history.csv", func(w io.Writer) error { return search.WriteHistory(w, res.History) }},
-		{"report.md", func(w io.Writer) error { return search.WriteReport(w, res, wall) }},
-		{"learning-curve.png", func(w io.Writer) error { return search.WritePlot(w, res, search.PNG) }},
-		{"learning-curve.svg", func(w io.Writer) error { return search.WritePlot(w, res, search.SVG) }},
-	}
-	for _, file := range files {
-		if err := policy.WriteFileAtomic(filepath.Join(f.out, file.name), file.write); err != nil {
-			return fmt.Errorf("write %s: %w", file.name, err)
-		}
-	}
-	fmt.Fprint(out, search.Table(res))
-	s := res.Spending
+	fmt.Fprint(out, search.Table(oc.Results))
+	s := oc.Results.Spending
 	fmt.Fprintf(out, "\nrun %s: %d scoring calls, %.1f%% of texts from the cache, %.6f USD reported by the proxy (an estimate), %s\nwrote %s\n",
-		runID, s.Calls, 100*s.CacheShare(), s.CostUSD, wall, f.out)
+		oc.Run, s.Calls, 100*s.CacheShare(), s.CostUSD, oc.Wall.Round(time.Second), f.out)
 	return nil
 }
 
@@ -225,17 +219,4 @@ func progressBar(done, total, width int) string {
 		}
 	}
 	return string(b)
-}
-
-func readCheckpoint(path string, t *task.Task) (*search.State, error) {
-	f, err := os.Open(path)
-	if err != nil {
-		return nil, fmt.Errorf("--resume: %w", err)
-	}
-	defer f.Close()
-	st, err := search.ReadState(f, t.Name, t.Seed)
-	if err != nil {
-		return nil, fmt.Errorf("--resume %s: %w", path, err)
-	}
-	return st, nil
 }

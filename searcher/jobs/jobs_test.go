@@ -1,0 +1,177 @@
+package jobs_test
+
+import (
+	"bytes"
+	"encoding/json"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/searcher/jobs"
+	"github.com/stintlab/stint/searcher/task"
+)
+
+// rig is a model server on the completions wire format standing where the
+// proxy would (the scorer needs only the wire format) and a task file.
+type rig struct {
+	model *localmodel.Model
+	api   string
+	task  string
+}
+
+func newRig(t *testing.T, steps int) rig {
+	t.Helper()
+	m, err := localmodel.Load(modeltest.Path(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
+	t.Cleanup(srv.Close)
+	dir := t.TempDir()
+	for _, name := range []string{"orchard-train.jsonl", "orchard-dev.jsonl", "orchard-test.jsonl"} {
+		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := os.WriteFile(filepath.Join(dir, name), b, 0o600); err != nil {
+			t.Fatal(err)
+		}
+	}
+	text := strings.NewReplacer("steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 16", "prompts_per_step: 4",
+		"examples_per_step: 16", "examples_per_step: 4").Replace(task.ExampleFile)
+	path := filepath.Join(dir, "task.yaml")
+	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	return rig{model: m, api: srv.URL + "/v1", task: path}
+}
+
+// waitFor polls the manager (bounded) until cond holds for job id.
+func waitFor(t *testing.T, m *jobs.Manager, id string, what string, cond func(jobs.Status) bool) jobs.Status {
+	t.Helper()
+	deadline := time.Now().Add(2 * time.Minute)
+	for {
+		st, err := m.Get(id)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if cond(st) {
+			return st
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("job %s never %s: %+v", id, what, st)
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+}
+
+func TestJobAPIRunsASearch(t *testing.T) {
+	r := newRig(t, 3)
+	m, err := jobs.Open(t.TempDir(), r.model, jobs.Options{Proxy: r.api})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer m.Close()
+	api := httptest.NewServer(m.Handler())
+	defer api.Close()
+
+	post := func(path, body string) (int, []byte) {
+		resp, err := http.Post(api.URL+path, "application/json", strings.NewReader(body))
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer resp.Body.Close()
+		var b bytes.Buffer
+		_, _ = b.ReadFrom(resp.Body)
+		return resp.StatusCode, b.Bytes()
+	}
+	for _, bad := range []string{`{"task": 7}`, `{"task": "/no/such/task.yaml"}`, `{"task": "x", "colour": 1}`, `{`} {
+		if status, b := post("/jobs", bad); status != http.StatusBadRequest {
+			t.Errorf("submit %s: %d %s, want 400", bad, status, b)
+		}
+	}
+	status, b := post("/jobs", `{"task": "`+r.task+`"}`)
+	var st jobs.Status
+	if status != http.StatusCreated || json.Unmarshal(b, &st) != nil || st.State != jobs.Queued {
+		t.Fatalf("submit: %d %s", status, b)
+	}
+	done := waitFor(t, m, st.ID, "finished", func(s jobs.Status) bool { return s.State != jobs.Queued && s.State != jobs.Running })
+	if done.State != jobs.Done || done.Step != 3 || done.Calls == 0 {
+		t.Fatalf("finished job: %+v", done)
+	}
+	if _, err := os.Stat(filepath.Join(m.Out(st.ID), "results.json")); err != nil {
+		t.Errorf("no results: %v", err)
+	}
+	resp, err := http.Get(api.URL + "/jobs/" + st.ID)
+	if err != nil || resp.StatusCode != http.StatusOK {
+		t.Errorf("GET job: %v %v", err, resp.Status)
+	}
+	resp.Body.Close()
+	resp, _ = http.Get(api.URL + "/jobs/job-unknown")
+	if resp.StatusCode != http.StatusNotFound {
+		t.Errorf("unknown job: %d, want 404", resp.StatusCode)
+	}
+	resp.Body.Close()
+	if status, _ := post("/jobs/job-unknown/cancel", ""); status != http.StatusNotFound {
+		t.Errorf("cancel unknown: %d, want 404", status)
+	}
+}
+
+// TestJobResumesAfterRestart closes the manager while a job runs; a new
+// manager on the same directory resumes it from its checkpoint and
+// finishes it.
+func TestJobResumesAfterRestart(t *testing.T) {
+	r := newRig(t, 8)
+	dir := t.TempDir()
+	m, err := jobs.Open(dir, r.model, jobs.Options{Proxy: r.api, CheckpointEvery: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	st, err := m.Submit(jobs.Spec{Task: r.task})
+	if err != nil {
+		t.Fatal(err)
+	}
+	waitFor(t, m, st.ID, "reached step 2", func(s jobs.Status) bool { return s.Step >= 2 })
+	m.Close()
+	if got, _ := m.Get(st.ID); got.State != jobs.Running {
+		t.Fatalf("after close the job is %q, want it left running to resume", got.State)
+	}
+
+	m2, err := jobs.Open(dir, r.model, jobs.Options{Proxy: r.api, CheckpointEvery: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer m2.Close()
+	done := waitFor(t, m2, st.ID, "finished", func(s jobs.Status) bool { return s.State != jobs.Queued && s.State != jobs.Running })
+	if done.State != jobs.Done || done.Step != 8 || done.Resumed < 1 {
+		t.Errorf("resumed job: %+v, want done at step 8, resumed after step ≥ 1", done)
+	}
+}
+
+func TestCancelStopsAJob(t *testing.T) {
+	r := newRig(t, 200)
+	m, err := jobs.Open(t.TempDir(), r.model, jobs.Options{Proxy: r.api})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer m.Close()
+	st, err := m.Submit(jobs.Spec{Task: r.task, OverCap: true})
+	if err != nil {
+		t.Fatal(err)
+	}
+	waitFor(t, m, st.ID, "started", func(s jobs.Status) bool { return s.Step >= 1 })
+	if _, err := m.Cancel(st.ID); err != nil {
+		t.Fatal(err)
+	}
+	got := waitFor(t, m, st.ID, "stopped", func(s jobs.Status) bool { return s.State == jobs.Canceled })
+	if got.Step >= 200 {
+		t.Errorf("canceled job ran to the end: %+v", got)
+	}
+}

@@ -1,0 +1,159 @@
+package search
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"time"
+
+	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/searcher/policy"
+	"github.com/stintlab/stint/searcher/scorer"
+	"github.com/stintlab/stint/searcher/task"
+)
+
+// Job is one search as a user asks for it.
+type Job struct {
+	TaskPath string // the task file
+	Proxy    string // the proxy's base URL, version path included
+	Key      string // the team's client key
+	Run      string // the run id the calls are recorded under; "" means TASK-sSEED
+	Out      string // the output directory
+	// Replay answers every call from the run's journal.
+	Replay bool
+	// Resume continues from Out/checkpoint.json.
+	Resume bool
+	// Price prices the forecast; OverCap starts a search whose forecast
+	// is over the task's spend cap.
+	Price   scorer.Price
+	OverCap bool
+	// CheckpointEvery and StopAfter are as in Options.
+	CheckpointEvery, StopAfter int
+}
+
+// Outcome is what a job did.
+type Outcome struct {
+	Results  Results
+	Run      string
+	Plan     Plan
+	Forecast float64 // USD at Job.Price; 0 without prices
+	Wall     time.Duration
+	Stopped  bool // StopAfter ended it; its checkpoint resumes it
+}
+
+// CheckpointFile is the checkpoint's name in a job's output directory.
+const CheckpointFile = "checkpoint.json"
+
+// RunJob runs j with model m as the policy's backbone: it loads the task,
+// forecasts the cost (refusing a forecast over the task's cap unless
+// j.OverCap), searches, checkpoints, and writes results.json, history.csv,
+// report.md and the learning curve to j.Out. log receives a few lines for
+// people (forecast, resume); progress, when set, every step.
+func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, progress func(Progress)) (Outcome, error) {
+	var oc Outcome
+	t, err := task.Load(j.TaskPath, task.NewLocalTokenizer(m.Tokenizer()))
+	if err != nil {
+		return oc, err
+	}
+	vocab := NewLocalVocab(m.Tokenizer(), t.AllowList)
+	if len(vocab.Actions()) == 0 {
+		return oc, errors.New("search: the task's allow_list admits no token of the model")
+	}
+	backbone, err := policy.NewLocal(m, policy.LocalOptions{})
+	if err != nil {
+		return oc, err
+	}
+	ckptPath := filepath.Join(j.Out, CheckpointFile)
+	var resume *State
+	var trainer *policy.Trainer
+	if j.Resume {
+		if resume, err = readCheckpoint(ckptPath, t); err != nil {
+			return oc, err
+		}
+		if trainer, err = policy.Load(resume.PolicyReader(), backbone); err != nil {
+			return oc, fmt.Errorf("search: resume %s: %w", ckptPath, err)
+		}
+		fmt.Fprintf(log, "resuming after step %d from %s\n", resume.Step, ckptPath)
+	} else if trainer, err = policy.NewTrainer(backbone, policy.Config{PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions()}); err != nil {
+		return oc, err
+	}
+	oc.Run = j.Run
+	if oc.Run == "" {
+		oc.Run = fmt.Sprintf("%s-s%d", t.Name, t.Seed)
+	}
+	so := scorer.Options{BaseURL: j.Proxy, Key: j.Key, Run: oc.Run, Model: t.Model, Endpoint: scorer.Endpoint(t.Endpoint),
+		TopLogprobs: t.TopLogprobs, Concurrency: t.Concurrency}
+	if j.Replay {
+		so.RunMode = "replay"
+	}
+	sc, err := scorer.New(so)
+	if err != nil {
+		return oc, err
+	}
+	oc.Plan = PlanFor(t, 0)
+	oc.Forecast = oc.Plan.Cost(j.Price)
+	fmt.Fprintf(log, "forecast: %d scorings (search %d, random baseline %d, evaluation %d) of at most %d prompt tokens each",
+		oc.Plan.Judgements(), oc.Plan.Search, oc.Plan.Random, oc.Plan.Evaluation, oc.Plan.TokensPerJudgement)
+	if j.Price != (scorer.Price{}) {
+		fmt.Fprintf(log, ": at most %.4f USD at the given prices, before the cache (an estimate; the provider's bill is the record)", oc.Forecast)
+	}
+	fmt.Fprintln(log)
+	if t.SpendCapUSD > 0 && oc.Forecast > t.SpendCapUSD && !j.OverCap && !j.Replay {
+		return oc, fmt.Errorf("search: the forecast %.4f USD is over the task's spend_cap_usd %.4f: lower steps, prompts_per_step or examples_per_step, or start it over the cap (the cache usually makes the real spend lower; the search still stops at the cap)", oc.Forecast, t.SpendCapUSD)
+	}
+	if err := os.MkdirAll(j.Out, 0o755); err != nil {
+		return oc, err
+	}
+	start := time.Now()
+	res, err := Run(ctx, Options{
+		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
+		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress,
+		Checkpoint: func(st *State) error {
+			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return WriteState(w, st) })
+		},
+	})
+	oc.Results, oc.Wall = res, time.Since(start)
+	if errors.Is(err, ErrStopped) {
+		oc.Stopped = true
+		return oc, nil
+	}
+	if err != nil {
+		return oc, err
+	}
+	return oc, writeOutputs(j.Out, res, oc.Wall.Round(time.Second).String())
+}
+
+func writeOutputs(dir string, res Results, wall string) error {
+	files := []struct {
+		name  string
+		write func(io.Writer) error
+	}{
+		{"results.json", func(w io.Writer) error { return WriteResults(w, res) }},
+		{"history.csv", func(w io.Writer) error { return WriteHistory(w, res.History) }},
+		{"report.md", func(w io.Writer) error { return WriteReport(w, res, wall) }},
+		{"learning-curve.png", func(w io.Writer) error { return WritePlot(w, res, PNG) }},
+		{"learning-curve.svg", func(w io.Writer) error { return WritePlot(w, res, SVG) }},
+	}
+	for _, f := range files {
+		if err := policy.WriteFileAtomic(filepath.Join(dir, f.name), f.write); err != nil {
+			return fmt.Errorf("search: write %s: %w", f.name, err)
+		}
+	}
+	return nil
+}
+
+func readCheckpoint(path string, t *task.Task) (*State, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, fmt.Errorf("search: resume: %w", err)
+	}
+	defer f.Close()
+	st, err := ReadState(f, t.Name, t.Seed)
+	if err != nil {
+		return nil, fmt.Errorf("search: resume %s: %w", path, err)
+	}
+	return st, nil
+}
