@@ -127,7 +127,28 @@ type Results struct {
 	History  []Point       `json:"-"`
 	Floored  int           `json:"floored_verbalizers"`
 	Lookups  int           `json:"verbalizer_lookups"`
+	Config   Settings      `json:"config"`
+	Versions Versions      `json:"versions"`
 	Spending scorer.Totals `json:"-"`
+}
+
+// Settings are the task settings a result depends on.
+type Settings struct {
+	Model           string            `json:"model"`
+	Endpoint        string            `json:"endpoint"`
+	Template        string            `json:"template"`
+	Labels          map[string]string `json:"labels"` // label → verbalizer
+	PromptLength    int               `json:"prompt_length"`
+	PromptsPerStep  int               `json:"prompts_per_step"`
+	ExamplesPerStep int               `json:"examples_per_step"`
+	TopLogprobs     int               `json:"top_logprobs"`
+	Actions         int               `json:"action_vocabulary"`
+}
+
+// Versions say what produced a result.
+type Versions struct {
+	Format int    `json:"results_format"`
+	Stint  string `json:"stint"` // the module version or VCS revision of the binary
 }
 
 // Run searches, then scores the baselines and every contender on the dev
@@ -146,7 +167,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	}
 	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
 	r.rng = rand.New(r.pcg)
-	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps}
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions())), Versions: versions()}
 	devAcc, greedyText := -1.0, ""
 	first := 1
 	if s := o.Resume; s != nil {
