@@ -1,6 +1,7 @@
 package task
 
 import (
+	"path/filepath"
 	"slices"
 	"testing"
 )
@@ -83,6 +84,22 @@ func TestFill(t *testing.T) {
 	for _, tt := range tests {
 		if got := Fill(tt.template, tt.input, tt.prompt); got != tt.want {
 			t.Errorf("Fill(%q, %q, %q) = %q, want %q", tt.template, tt.input, tt.prompt, got, tt.want)
+		}
+	}
+}
+
+// TestShippedTaskFilesLoad keeps the task files in testdata valid for the
+// real model: every verbalizer one token, every dataset readable.
+func TestShippedTaskFilesLoad(t *testing.T) {
+	tok := localTokenizer(t)
+	for _, name := range []string{"names.yaml"} {
+		tk, err := Load(filepath.Join("..", "..", "testdata", "search", name), tok)
+		if err != nil {
+			t.Errorf("%s: %v", name, err)
+			continue
+		}
+		if len(tk.Train) == 0 || len(tk.Dev) == 0 {
+			t.Errorf("%s: %d train, %d dev examples", name, len(tk.Train), len(tk.Dev))
 		}
 	}
 }
