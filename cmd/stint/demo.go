@@ -29,10 +29,6 @@ type demoFlags struct {
 	steps   int
 }
 
-// demoPrice is what the demo charges per million tokens: invented demo
-// prices, not any provider's.
-var demoPrice = PriceConfig{Input: Number{Value: 0.50, Set: true}, Output: Number{Value: 1.50, Set: true}}
-
 func newDemoCmd() *cobra.Command {
 	var f demoFlags
 	cmd := &cobra.Command{
@@ -81,7 +77,8 @@ Get it one of these ways:
 	cfg := DefaultConfig()
 	cfg.Listen, cfg.Data = "127.0.0.1:0", f.data
 	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
-	cfg.Prices = map[string]PriceConfig{"stories260K": demoPrice}
+	// Invented demo prices, USD per million tokens, not any provider's.
+	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: 0.50, Set: true}, Output: Number{Value: 1.50, Set: true}}}
 	if err := cfg.Validate(nil); err != nil {
 		return err
 	}

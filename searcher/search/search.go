@@ -198,7 +198,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		if err != nil {
 			return res, fmt.Errorf("search: step %d: update: %w", step, err)
 		}
-		pt := Point{Step: step, MeanReward: meanOf(st.Raw), TrainAcc: meanOf1(st.Accuracy), DevAcc: -1, Loss: ps.Loss}
+		pt := Point{Step: step, MeanReward: meanOf(st.Raw), TrainAcc: mean(st.Accuracy), DevAcc: -1, Loss: ps.Loss}
 		if step%evalEvery == 0 || step == t.Steps {
 			g, err := o.Policy.Greedy(ctx)
 			if err != nil {
@@ -376,8 +376,6 @@ func mean(xs []float64) float64 {
 	}
 	return s / float64(len(xs))
 }
-
-func meanOf1(xs []float64) float64 { return mean(xs) }
 
 func meanOf(rows [][]float64) float64 {
 	var all []float64
