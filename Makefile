@@ -14,7 +14,8 @@ FUZZ_TARGETS := \
 	./proxy/localmodel/gguf:FuzzParse:400000 \
 	./proxy/localmodel/tokenizer:FuzzRoundTrip:90000 \
 	./budget/tokens:FuzzUpperBound:25000 \
-	./cache/runs:FuzzImport:60000
+	./cache/runs:FuzzImport:60000 \
+	./proxy:FuzzRequestLine:60000
 
 .PHONY: help build test vet unit fuzz-short bench bench-budgets bench-local bench-go clean
 

@@ -3,6 +3,8 @@ package proxy_test
 import (
 	"bytes"
 	"fmt"
+	"io"
+	"log/slog"
 	"net/http"
 	"net/http/httptest"
 	"path/filepath"
@@ -214,5 +216,21 @@ func BenchmarkRunRecording(b *testing.B) {
 				}
 			}
 		})
+	}
+}
+
+// BenchmarkHitLogged is BenchmarkHit with the JSON request log stint serve
+// writes, so the log line's share of a hit shows.
+func BenchmarkHitLogged(b *testing.B) {
+	h := benchProxy(b, func(o *proxy.Options) {
+		o.Logger = slog.New(slog.NewJSONHandler(io.Discard, nil))
+	})
+	body := []byte(`{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}`)
+	serveOnce(b, h, body)
+	b.ReportAllocs()
+	for b.Loop() {
+		if rec := serveOnce(b, h, body); rec.Header().Get(proxy.HeaderCache) != proxy.OutcomeHit {
+			b.Fatal("not a hit")
+		}
 	}
 }

@@ -79,6 +79,11 @@ type Options struct {
 	Logger *slog.Logger
 	// LogPrompts adds prompt text to request log lines (debugging only).
 	LogPrompts bool
+	// RequestLog, when set, receives the one-line-per-request log as JSON
+	// objects (the shape slog's JSON handler writes) instead of Logger:
+	// a faster path for the line written on every request. Logger still
+	// gets everything else.
+	RequestLog io.Writer
 	// Registerer receives the proxy's metrics; nil registers none.
 	Registerer prometheus.Registerer
 	// Gatherer serves /metrics; nil serves no metrics endpoint.
@@ -110,6 +115,7 @@ type Proxy struct {
 	modelsTTL      time.Duration
 	log            *slog.Logger
 	logPrompts     bool
+	requestLog     *requestLog
 	metrics        *metrics
 	now            func() time.Time
 	mux            *http.ServeMux
@@ -189,6 +195,9 @@ func New(opts Options) (*Proxy, error) {
 	}
 	if p.log == nil {
 		p.log = slog.New(slog.DiscardHandler)
+	}
+	if opts.RequestLog != nil {
+		p.requestLog = newRequestLog(opts.RequestLog)
 	}
 	if p.now == nil {
 		p.now = time.Now
@@ -666,6 +675,10 @@ func (p *Proxy) finish(ll *logLine, start time.Time) {
 		ms.seconds.Observe(d.Seconds())
 		ms.promptTokens.Add(float64(ll.usage.PromptTokens))
 		ms.completionTokens.Add(float64(ll.usage.CompletionTokens))
+	}
+	if p.requestLog != nil {
+		p.requestLog.write(p.now(), ll, d)
+		return
 	}
 	if !p.log.Enabled(context.Background(), slog.LevelInfo) {
 		return

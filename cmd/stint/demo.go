@@ -82,7 +82,7 @@ Get it one of these ways:
 	if err := cfg.Validate(nil); err != nil {
 		return err
 	}
-	srv, err := buildServer(ctx, cfg, slog.New(slog.NewTextHandler(io.Discard, nil)))
+	srv, err := buildServer(ctx, cfg, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
 	if err != nil {
 		return err
 	}

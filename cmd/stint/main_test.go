@@ -49,7 +49,7 @@ type child struct {
 	err    error
 }
 
-var listenRE = regexp.MustCompile(`addr=([0-9.:\[\]]+)`)
+var listenRE = regexp.MustCompile(`"?addr"?[=:]"?([0-9.:\[\]]+)`)
 
 // startStint runs `stint args...` in a child process and waits until it
 // listens.

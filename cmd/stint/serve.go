@@ -144,7 +144,11 @@ func runServe(ctx context.Context, cmd *cobra.Command, f serveFlags) error {
 	sink := newBufferedLog(os.Stderr)
 	defer sink.Close()
 	log := newLogger(cfg.Log.Format, sink)
-	srv, err := buildServer(ctx, cfg, log)
+	var requestLog io.Writer // nil: request lines go through log
+	if cfg.Log.Format == "json" {
+		requestLog = sink
+	}
+	srv, err := buildServer(ctx, cfg, log, requestLog)
 	if err != nil {
 		return err
 	}
@@ -162,7 +166,9 @@ type server struct {
 	closers []func() error
 }
 
-func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, error) {
+// buildServer opens the stores and builds the proxy. requestLog, when not
+// nil, takes the per-request JSON lines on the proxy's fast path.
+func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog io.Writer) (*server, error) {
 	if err := os.MkdirAll(cfg.Data, 0o700); err != nil {
 		return nil, fmt.Errorf("create data dir: %w", err)
 	}
@@ -223,6 +229,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger) (*server, er
 		UncachedModels: cfg.Cache.UncachedModels,
 		Logger:         log,
 		LogPrompts:     cfg.Log.Prompts,
+		RequestLog:     requestLog,
 		Registerer:     reg,
 		Gatherer:       reg,
 		Spend:          spend,
