@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/klauspost/compress/s2"
 	"github.com/klauspost/compress/zstd"
 
 	"github.com/stintlab/stint/cache/boltstore"
@@ -68,9 +69,9 @@ func BenchmarkGet(b *testing.B) {
 	}
 }
 
-// BenchmarkCompression measures what zstd (at the store's level) saves on
-// completion-shaped answers of several sizes, and what it costs; it is how
-// DefaultCompressMin was chosen.
+// BenchmarkCompression measures what zstd (at two levels) and S2 save on
+// completion-shaped answers of several sizes, and what they cost; it is how
+// DefaultCompressMin and the default codec were chosen.
 func BenchmarkCompression(b *testing.B) {
 	for _, level := range []zstd.EncoderLevel{zstd.SpeedFastest, zstd.SpeedDefault} {
 		enc, _ := zstd.NewWriter(nil, zstd.WithEncoderCRC(false), zstd.WithEncoderLevel(level))
@@ -95,5 +96,23 @@ func BenchmarkCompression(b *testing.B) {
 		}
 		enc.Close()
 		dec.Close()
+	}
+	for _, size := range []int{32, 64, 128, 256, 512, 2048, 8192} {
+		v := answer(max(size, 512))[:size]
+		c := s2.Encode(nil, v)
+		name := fmt.Sprintf("s2/bytes=%d", size)
+		b.Run("encode/"+name, func(b *testing.B) {
+			buf := make([]byte, s2.MaxEncodedLen(size))
+			for b.Loop() {
+				_ = s2.Encode(buf, v)
+			}
+			b.ReportMetric(float64(len(c))/float64(len(v)), "ratio")
+		})
+		b.Run("decode/"+name, func(b *testing.B) {
+			buf := make([]byte, size)
+			for b.Loop() {
+				_, _ = s2.Decode(buf, c)
+			}
+		})
 	}
 }

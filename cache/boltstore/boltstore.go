@@ -3,7 +3,8 @@
 // transaction is fsynced before Put returns, so an acknowledged entry survives
 // the process being killed.
 //
-// Values are compressed with zstd when that pays (see Options.CompressMin)
+// Values are compressed when that pays (see Options.CompressMin and
+// Options.Codec: S2 by default, zstd on request; both are read back)
 // and carry a CRC-32C, so a damaged entry reads as an error instead of as a
 // wrong answer. Entries expire by TTL (checked on every read, and removed by
 // a background sweeper) and are evicted oldest-stored first once the stored
@@ -30,6 +31,7 @@ import (
 	"time"
 	"unsafe"
 
+	"github.com/klauspost/compress/s2"
 	"github.com/klauspost/compress/zstd"
 	"go.etcd.io/bbolt"
 	bberrors "go.etcd.io/bbolt/errors"
@@ -80,10 +82,13 @@ type Options struct {
 	// entries. 0 means DefaultSweepInterval; -1 means no sweeper (expired
 	// entries are still never returned; Sweep removes them on demand).
 	SweepInterval time.Duration
-	// CompressMin is the smallest value length that is zstd-compressed;
-	// values that do not shrink are stored as they are. 0 means
+	// CompressMin is the smallest value length that is compressed; values
+	// that do not shrink are stored as they are. 0 means
 	// DefaultCompressMin; -1 means never compress.
 	CompressMin int
+	// Codec compresses new values: CodecS2 (the default) or CodecZstd.
+	// Records written with either are read whatever it is set to.
+	Codec Codec
 	// LockTimeout is how long Open waits for another process to release
 	// the file lock before it fails with ErrLocked. 0 means
 	// DefaultLockTimeout; -1 means try once. New ignores it.
@@ -98,6 +103,21 @@ type Options struct {
 	Logger *slog.Logger
 }
 
+// Codec names a compression format for stored values.
+type Codec int
+
+const (
+	// CodecS2 is S2 (a faster Snappy successor, github.com/klauspost/compress/s2):
+	// measured with BenchmarkCompression on completion-shaped JSON (2 KiB)
+	// it encodes in 4.7 µs against zstd's 18-38 µs and decodes in 1.3 µs
+	// against 13 µs, for a ratio of 0.40 instead of 0.30. The proxy
+	// compresses on the miss path, on the same cores that answer requests,
+	// so speed wins by default.
+	CodecS2 Codec = iota
+	// CodecZstd is zstd at its fastest level: smaller files, more CPU.
+	CodecZstd
+)
+
 // Bucket layout, inside the top-level bucket:
 //
 //	entries: key -> record
@@ -107,7 +127,7 @@ type Options struct {
 //
 // A record is a 22-byte header and the payload:
 //
-//	[0] format version (1)   [1] flags (bit 0: payload is zstd)
+//	[0] format version (1)   [1] flags (bit 0: payload is zstd; bit 1: payload is S2)
 //	[2:10] storedAt   [10:18] expiresAt (0: never)   [18:22] CRC-32C of the value
 var (
 	topBucket     = []byte("stint.cache.v1")
@@ -122,8 +142,11 @@ var (
 const (
 	recordVersion = 1
 	flagZstd      = 1
-	headerLen     = 22
-	sweepBatch    = 512
+	flagS2        = 2
+	// maxDecoded bounds a decompressed value.
+	maxDecoded = 1 << 31
+	headerLen  = 22
+	sweepBatch = 512
 	// maxKeyLen leaves room for the 8-byte index prefix under bbolt's
 	// MaxKeySize.
 	maxKeyLen = bbolt.MaxKeySize - 8
@@ -139,6 +162,7 @@ type Store struct {
 	ownsDB      bool
 	maxBytes    int64 // <= 0: no cap
 	compressMin int   // < 0: never
+	codec       Codec
 	now         func() time.Time
 	logger      *slog.Logger
 	enc         *zstd.Encoder
@@ -230,6 +254,7 @@ func newStore(db *bbolt.DB, opts Options, owns bool) (*Store, error) {
 	default:
 		s.maxBytes = opts.MaxBytes
 	}
+	s.codec = opts.Codec
 	switch {
 	case opts.CompressMin == 0:
 		s.compressMin = DefaultCompressMin
@@ -263,7 +288,7 @@ func newStore(db *bbolt.DB, opts Options, owns bool) (*Store, error) {
 	if err != nil {
 		return nil, fmt.Errorf("boltstore: zstd encoder: %w", err)
 	}
-	s.dec, err = zstd.NewReader(nil, zstd.WithDecoderMaxMemory(1<<31))
+	s.dec, err = zstd.NewReader(nil, zstd.WithDecoderMaxMemory(maxDecoded))
 	if err != nil {
 		s.enc.Close()
 		return nil, fmt.Errorf("boltstore: zstd decoder: %w", err)
@@ -575,9 +600,17 @@ func (s *Store) encode(value []byte, storedAt, expiresAt int64) []byte {
 	binary.BigEndian.PutUint64(rec[10:], uint64(expiresAt))
 	binary.BigEndian.PutUint32(rec[18:], crc32.Checksum(value, castagnoli))
 	if s.compressMin >= 0 && len(value) >= s.compressMin {
-		rec = s.enc.EncodeAll(value, rec)
+		flag := byte(flagZstd)
+		if s.codec == CodecS2 {
+			flag = flagS2
+			buf := make([]byte, headerLen+s2.MaxEncodedLen(len(value)))
+			copy(buf, rec)
+			rec = buf[:headerLen+len(s2.Encode(buf[headerLen:], value))]
+		} else {
+			rec = s.enc.EncodeAll(value, rec)
+		}
 		if len(rec)-headerLen < len(value) {
-			rec[1] = flagZstd
+			rec[1] = flag
 			return rec
 		}
 		rec = rec[:headerLen]
@@ -588,13 +621,23 @@ func (s *Store) encode(value []byte, storedAt, expiresAt int64) []byte {
 // decode returns a fresh copy of the value in payload.
 func (s *Store) decode(h header, payload []byte) ([]byte, error) {
 	var value []byte
-	if h.flags&flagZstd != 0 {
+	switch {
+	case h.flags&flagZstd != 0:
 		var err error
 		value, err = s.dec.DecodeAll(payload, nil)
 		if err != nil {
 			return nil, fmt.Errorf("%w: %w", ErrCorrupt, err)
 		}
-	} else {
+	case h.flags&flagS2 != 0:
+		n, err := s2.DecodedLen(payload)
+		if err != nil || n > maxDecoded {
+			return nil, fmt.Errorf("%w: S2 payload of %d bytes: %v", ErrCorrupt, n, err)
+		}
+		value, err = s2.Decode(make([]byte, n), payload)
+		if err != nil {
+			return nil, fmt.Errorf("%w: %w", ErrCorrupt, err)
+		}
+	default:
 		value = make([]byte, len(payload))
 		copy(value, payload)
 	}

@@ -296,7 +296,8 @@ func TestCompression(t *testing.T) {
 		wantAtMost  int
 		wantAtLeast int
 	}{
-		{"compressible", boltstore.Options{}, big, true, len(big) / 5, 0},
+		{"compressible, S2 (default)", boltstore.Options{}, big, true, len(big) / 5, 0},
+		{"compressible, zstd", boltstore.Options{Codec: boltstore.CodecZstd}, big, true, len(big) / 5, 0},
 		{"compression off", boltstore.Options{CompressMin: -1}, big, false, 0, len(big)},
 		{"below threshold", boltstore.Options{CompressMin: 1 << 20}, big, false, 0, len(big)},
 		{"tiny", boltstore.Options{}, []byte(`{"a":1}`), false, 0, 7},
@@ -320,6 +321,48 @@ func TestCompression(t *testing.T) {
 			if err != nil || !found || !bytes.Equal(got, tc.value) {
 				t.Errorf("Get = found %v, err %v, equal %v", found, err, bytes.Equal(got, tc.value))
 			}
+		})
+	}
+}
+
+// TestCodecsReadEachOther: a file written with one codec reads back whole
+// when reopened with the other, so changing Codec never strands entries.
+func TestCodecsReadEachOther(t *testing.T) {
+	ctx := t.Context()
+	tests := []struct {
+		name          string
+		write, reopen boltstore.Codec
+	}{
+		{"zstd then S2", boltstore.CodecZstd, boltstore.CodecS2},
+		{"S2 then zstd", boltstore.CodecS2, boltstore.CodecZstd},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			path := filepath.Join(t.TempDir(), "c.db")
+			values := map[string][]byte{}
+			for i := range 20 {
+				values[k(i)] = bytes.Repeat(fmt.Appendf(nil, `{"choice":%d,"text":"the reading corner's lantern"},`, i), 10+i*7)
+			}
+			s, err := boltstore.Open(path, boltstore.Options{SweepInterval: -1, Codec: tc.write})
+			if err != nil {
+				t.Fatal(err)
+			}
+			for key, v := range values {
+				if err := s.Put(ctx, key, v, 0); err != nil {
+					t.Fatal(err)
+				}
+			}
+			if err := s.Close(); err != nil {
+				t.Fatal(err)
+			}
+			r := openStore(t, path, boltstore.Options{SweepInterval: -1, Codec: tc.reopen})
+			for key, v := range values {
+				got, found, err := r.Get(ctx, key)
+				if err != nil || !found || !bytes.Equal(got, v) {
+					t.Errorf("%s: found %v, err %v, equal %v", key, found, err, bytes.Equal(got, v))
+				}
+			}
+			checkStore(t, r)
 		})
 	}
 }
@@ -411,10 +454,11 @@ func TestCorruptFile(t *testing.T) {
 // TestDamagedEntry flips a byte of a stored value behind the store's back:
 // Get reports ErrCorrupt rather than a wrong answer, and Check finds it.
 func TestDamagedEntry(t *testing.T) {
-	for _, compress := range []int{-1, 0} {
-		t.Run(fmt.Sprint("CompressMin=", compress), func(t *testing.T) {
+	for _, opts := range []boltstore.Options{{CompressMin: -1}, {}, {Codec: boltstore.CodecZstd}} {
+		t.Run(fmt.Sprintf("CompressMin=%d/Codec=%d", opts.CompressMin, opts.Codec), func(t *testing.T) {
 			path := filepath.Join(t.TempDir(), "c.db")
-			s := openStore(t, path, boltstore.Options{SweepInterval: -1, CompressMin: compress})
+			opts.SweepInterval = -1
+			s := openStore(t, path, opts)
 			value := bytes.Repeat([]byte(`{"answer":"forty-two"}`), 40)
 			if err := s.Put(t.Context(), k(1), value, 0); err != nil {
 				t.Fatal(err)
