@@ -220,17 +220,27 @@ func BenchmarkRunRecording(b *testing.B) {
 }
 
 // BenchmarkHitLogged is BenchmarkHit with the JSON request log stint serve
-// writes, so the log line's share of a hit shows.
+// writes, through slog's JSON handler and through the proxy's own request
+// line (Options.RequestLog), so the log line's share of a hit shows.
 func BenchmarkHitLogged(b *testing.B) {
-	h := benchProxy(b, func(o *proxy.Options) {
-		o.Logger = slog.New(slog.NewJSONHandler(io.Discard, nil))
-	})
+	sinks := []struct {
+		name string
+		opt  rigOption
+	}{
+		{"slog-json", func(o *proxy.Options) { o.Logger = slog.New(slog.NewJSONHandler(io.Discard, nil)) }},
+		{"request-log", func(o *proxy.Options) { o.RequestLog = io.Discard }},
+	}
 	body := []byte(`{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}`)
-	serveOnce(b, h, body)
-	b.ReportAllocs()
-	for b.Loop() {
-		if rec := serveOnce(b, h, body); rec.Header().Get(proxy.HeaderCache) != proxy.OutcomeHit {
-			b.Fatal("not a hit")
-		}
+	for _, sink := range sinks {
+		b.Run(sink.name, func(b *testing.B) {
+			h := benchProxy(b, sink.opt)
+			serveOnce(b, h, body)
+			b.ReportAllocs()
+			for b.Loop() {
+				if rec := serveOnce(b, h, body); rec.Header().Get(proxy.HeaderCache) != proxy.OutcomeHit {
+					b.Fatal("not a hit")
+				}
+			}
+		})
 	}
 }
