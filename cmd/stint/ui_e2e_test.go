@@ -215,7 +215,15 @@ func (r *uiRig) registerBreakerIfAbsent(t *testing.T) bool {
 		Help: "Circuit breaker state per upstream: 0 closed, 1 half-open, 2 open."}, []string{"upstream"})
 	trips := prometheus.NewCounterVec(prometheus.CounterOpts{Name: "stint_upstream_breaker_trips_total",
 		Help: "Times the upstream's breaker opened."}, []string{"upstream"})
-	r.reg.MustRegister(state, trips)
+	// A proxy whose breaker registers these names (with no series yet)
+	// refuses ours: then the page must show what the proxy exports.
+	if err := r.reg.Register(state); err != nil {
+		return false
+	}
+	if err := r.reg.Register(trips); err != nil {
+		r.reg.Unregister(state)
+		return false
+	}
 	state.WithLabelValues("quill").Set(1)
 	state.WithLabelValues("local").Set(0)
 	trips.WithLabelValues("quill").Add(2)
@@ -295,6 +303,19 @@ func (r *uiRig) traffic(t *testing.T) {
 	wg.Wait()
 	if !(outcomes[0] == "miss" && outcomes[1] == "shared" || outcomes[0] == "shared" && outcomes[1] == "miss") {
 		t.Fatalf("concurrent identical calls: %v, want one miss and one shared", outcomes)
+	}
+
+	// One call the upstream refuses: the page counts it as failed.
+	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusBadRequest})
+	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(quillBody("a line the upstream refuses")))
+	req.Header.Set("Authorization", "Bearer "+uiLabKey)
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusBadRequest {
+		t.Fatalf("refused call: %d, want the upstream's 400 passed through", resp.StatusCode)
 	}
 
 	// A recorded run: a miss, then the same call again from the cache.
@@ -495,9 +516,16 @@ func TestOperatorPageInABrowser(t *testing.T) {
 
 	t.Run("upstreams match /metrics", func(t *testing.T) {
 		fams := r.scrape(t)
-		calls := map[string]int64{}
+		calls, failed := map[string]int64{}, map[string]int64{}
 		for _, m := range fams["stint_upstream_calls_total"].GetMetric() {
-			calls[labelOf(m, "upstream")] += int64(m.GetCounter().GetValue())
+			n := int64(m.GetCounter().GetValue())
+			calls[labelOf(m, "upstream")] += n
+			if labelOf(m, "status") != "200" {
+				failed[labelOf(m, "upstream")] += n
+			}
+		}
+		if failed["quill"] == 0 {
+			t.Errorf("/metrics counts no failed call on quill: %v", failed)
 		}
 		type hist struct {
 			count  uint64
@@ -520,6 +548,9 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		for _, u := range []string{"quill", "local"} {
 			if got := fig("upstream-calls-" + u); got.Value != strconv.FormatInt(calls[u], 10) || calls[u] == 0 {
 				t.Errorf("%s calls: page %+v, /metrics %d", u, got, calls[u])
+			}
+			if got := fig("upstream-failed-" + u); got.Value != strconv.FormatInt(failed[u], 10) {
+				t.Errorf("%s failed calls: page %+v, /metrics %d", u, got, failed[u])
 			}
 			h := hists[u]
 			if h == nil || h.count == 0 {

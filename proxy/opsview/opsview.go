@@ -146,11 +146,12 @@ func New(opts Options) *View {
 
 // Route registers the page's endpoints on mux:
 //
-//	GET /ui                 the page
+//	GET /ui                 the page (/ui/ redirects to it)
 //	GET /ui/snapshot.json   the same figures as JSON
 //	GET /ui/static/{file}   the stylesheet and the script
 func (v *View) Route(mux *http.ServeMux) {
 	mux.HandleFunc("GET "+Prefix, v.guard(v.servePage))
+	mux.Handle("GET "+Prefix+"/{$}", http.RedirectHandler(Prefix, http.StatusMovedPermanently))
 	mux.HandleFunc("GET "+Prefix+"/snapshot.json", v.guard(v.serveSnapshot))
 	mux.HandleFunc("GET "+Prefix+"/static/{file}", v.guard(v.serveAsset))
 }

@@ -108,6 +108,10 @@ func TestAssetsAndTypes(t *testing.T) {
 			t.Errorf("%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
 		}
 	}
+	srv.Client().CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
+	if resp, _ := get(t, srv, "/ui/", ""); resp.StatusCode != http.StatusMovedPermanently || resp.Header.Get("Location") != "/ui" {
+		t.Errorf("/ui/: %d to %q, want a redirect to /ui", resp.StatusCode, resp.Header.Get("Location"))
+	}
 	if resp, _ := get(t, srv, "/ui/static/page.html", auth); resp.StatusCode != http.StatusNotFound {
 		t.Errorf("the template is served as an asset: %d", resp.StatusCode)
 	}
