@@ -99,6 +99,7 @@ type Options struct {
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
 	// admin endpoints (AdminPrefix); empty turns them off.
 	AdminKeyHashes [][sha256.Size]byte
+	UI             UIOptions // the operator page at /ui (ui.go); on with admin keys
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -218,6 +219,7 @@ func New(opts Options) (*Proxy, error) {
 	mux.HandleFunc("GET /readyz", p.serveReady)
 	p.routeAdmin(mux)
 	p.routeRuns(mux)
+	p.routeUI(mux, opts)
 	if opts.Gatherer != nil {
 		mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}))
 	}

@@ -36,6 +36,7 @@ type Config struct {
 	Store StoreConfig `yaml:"store"`
 	// Admin holds the keys of the admin endpoints (/stint/admin/).
 	Admin AdminConfig `yaml:"admin"`
+	UI    UIConfig    `yaml:"ui"` // the operator page (uiconfig.go)
 }
 
 // AdminConfig is the `admin:` section.
@@ -235,6 +236,9 @@ func (c *Config) Validate(root *yaml.Node) error {
 		if team, dup := keys[hex.EncodeToString(h[:])]; dup {
 			return bad(fmt.Errorf("an admin key must not also be a key of team %q", team), "admin", "keys", j)
 		}
+	}
+	if err := c.validateUI(root); err != nil {
+		return err
 	}
 	if err := c.validateStore(root); err != nil {
 		return err

@@ -235,6 +235,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Spend:          spend,
 		AdminKeyHashes: adminKeys,
 		Runs:           journal,
+		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
 	})
 	if err != nil {
 		s.close()

@@ -14,6 +14,7 @@ const maxSpecBytes = 64 << 10
 //	POST /jobs              submit {"task": PATH, "run": ID, "over_cap": false} → 201 and the job
 //	GET  /jobs              {"jobs": [...]}, newest first
 //	GET  /jobs/{id}         one job: state, step, best prompt so far, accuracies, calls, cache share, spend
+//	GET  /jobs/{id}/history the learning curve so far (see History)
 //	POST /jobs/{id}/cancel  stop a queued or running job
 //	GET  /healthz           ok
 func (m *Manager) Handler() http.Handler {
@@ -26,6 +27,7 @@ func (m *Manager) Handler() http.Handler {
 		st, err := m.Get(r.PathValue("id"))
 		answer(w, http.StatusOK, st, err)
 	})
+	mux.HandleFunc("GET /jobs/{id}/history", m.serveHistory)
 	mux.HandleFunc("POST /jobs/{id}/cancel", func(w http.ResponseWriter, r *http.Request) {
 		st, err := m.Cancel(r.PathValue("id"))
 		answer(w, http.StatusOK, st, err)

@@ -1,0 +1,750 @@
+package main
+
+import (
+	"context"
+	"encoding/base64"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"math"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"slices"
+	"strconv"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/chromedp/cdproto/cdp"
+	"github.com/chromedp/cdproto/emulation"
+	"github.com/chromedp/cdproto/network"
+	"github.com/chromedp/chromedp"
+	"github.com/prometheus/client_golang/prometheus"
+	dto "github.com/prometheus/client_model/go"
+	"github.com/prometheus/common/expfmt"
+	"github.com/prometheus/common/model"
+
+	"github.com/stintlab/stint/cache/boltgroup"
+	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/proxy"
+	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/proxy/upstreamtest"
+	"github.com/stintlab/stint/searcher/jobs"
+)
+
+// Keys of the operator page test (invented).
+const (
+	uiAdminKey = "sk-admin-ui-e2e-7f3a"
+	uiLabKey   = "sk-lab-ui-e2e-19c4"
+	uiKilnKey  = "sk-kiln-ui-e2e-52d8"
+	uiUpKey    = "sk-upstream-ui-e2e-b611"
+)
+
+// chromiumPath finds Debian's chromium. Outside CI a missing browser skips
+// the test; in CI (CI=true) it fails it, since .ci/run installs chromium.
+func chromiumPath(t *testing.T) string {
+	t.Helper()
+	for _, name := range []string{"chromium", "chromium-browser", "google-chrome"} {
+		if p, err := exec.LookPath(name); err == nil {
+			return p
+		}
+	}
+	if os.Getenv("CI") == "true" {
+		t.Fatal("chromium is not installed; .ci/run installs it (apt-get install chromium)")
+	}
+	t.Skip("chromium is not installed (apt-get install chromium); the operator page's browser test needs it")
+	return ""
+}
+
+// artifactDir is where screenshots go: $STINT_ARTIFACTS when set, else a
+// temporary directory.
+func artifactDir(t *testing.T) string {
+	t.Helper()
+	if d := os.Getenv("STINT_ARTIFACTS"); d != "" {
+		if err := os.MkdirAll(d, 0o755); err != nil {
+			t.Fatal(err)
+		}
+		return d
+	}
+	return t.TempDir()
+}
+
+// uiRig is a proxy wired as stint serve wires it (the spend control, store
+// and run journal of the embedded file), on a fake paid upstream and the
+// local model, with a search sidecar serving the real job API.
+type uiRig struct {
+	url     string // the proxy's base URL
+	proxy   *proxy.Proxy
+	reg     *prometheus.Registry
+	up      *upstreamtest.Server
+	sidecar string
+	jobs    *jobs.Manager
+	// breakerOwn: the test registered the breaker gauge itself because the
+	// proxy exports none.
+	breakerOwn bool
+}
+
+func newUIRig(t *testing.T) *uiRig {
+	t.Helper()
+	modelPath := modeltest.Path(t)
+	up := upstreamtest.New(upstreamtest.Options{Key: uiUpKey})
+	t.Cleanup(up.Close)
+	t.Setenv("STINT_UI_UPSTREAM_KEY", uiUpKey)
+
+	// The proxy's address must be known before the sidecar opens, and the
+	// sidecar's before the proxy is built.
+	proxySrv := httptest.NewUnstartedServer(nil)
+	proxyURL := "http://" + proxySrv.Listener.Addr().String()
+	m, err := localmodel.Load(modelPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	mgr, err := jobs.Open(t.TempDir(), m, jobs.Options{Proxy: proxyURL + "/v1", Key: uiLabKey, CheckpointEvery: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	sidecar := httptest.NewServer(mgr.Handler())
+
+	text := fmt.Sprintf(`listen: 127.0.0.1:0
+data: %s
+upstreams:
+  - name: quill
+    url: %s
+    key_env: STINT_UI_UPSTREAM_KEY
+    models: ["quill-*"]
+  - name: local
+    url: local:%s
+    models: [stories260K]
+teams:
+  - name: lab
+    keys: ["sha256:%s"]
+    budget: {usd: 0.25, per: total}
+  - name: kiln
+    keys: ["sha256:%s"]
+    budget: {usd: 0.01, per: day}
+  - name: quarry
+    keys: ["sha256:%s"]
+prices:   # invented test prices, USD per million tokens
+  quill-small: {input: 40.0, output: 120.0}
+  stories260K: {input: 0.50, output: 1.50}
+admin:
+  keys: ["sha256:%s"]
+ui:
+  search_sidecar: %s
+  refresh: 250ms
+`, t.TempDir(), up.URL(), modelPath, keyHash(uiLabKey), keyHash(uiKilnKey), keyHash("sk-quarry-unused"), keyHash(uiAdminKey), sidecar.URL)
+	cfg, err := ParseConfig(strings.NewReader(text))
+	if err != nil {
+		t.Fatal(err)
+	}
+
+	ctx := context.Background()
+	s := &server{cfg: cfg, log: slog.New(slog.DiscardHandler)}
+	disk, err := boltstore.Open(filepath.Join(cfg.Data, "stint.db"), boltstore.Options{BatchDelay: time.Millisecond})
+	if err != nil {
+		t.Fatal(err)
+	}
+	s.closers = append(s.closers, disk.Close)
+	s.commits = boltgroup.New(disk.DB())
+	ups, closers, err := buildUpstreams(ctx, cfg.Upstreams)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s.closers = append(s.closers, closers...)
+	teams, err := buildTeams(cfg.Teams)
+	if err != nil {
+		t.Fatal(err)
+	}
+	spend, err := s.buildSpend(ctx, cfg, disk)
+	if err != nil {
+		t.Fatal(err)
+	}
+	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update})
+	if err != nil {
+		t.Fatal(err)
+	}
+	adminHash, _ := parseKeyHash(cfg.Admin.Keys[0])
+	reg := prometheus.NewRegistry()
+	p, err := proxy.New(proxy.Options{
+		Store: disk, Upstreams: ups, Teams: teams, Registerer: reg, Gatherer: reg, Spend: spend, Runs: journal,
+		AdminKeyHashes: [][32]byte{adminHash},
+		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, Refresh: time.Duration(cfg.UI.Refresh)},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := &uiRig{url: proxyURL, proxy: p, reg: reg, up: up, sidecar: sidecar.URL, jobs: mgr}
+	r.breakerOwn = r.registerBreakerIfAbsent(t)
+	proxySrv.Config.Handler = p
+	proxySrv.Start()
+	t.Cleanup(func() {
+		mgr.Close()
+		sidecar.Close()
+		proxySrv.Close()
+		_ = p.Close(context.Background())
+		_ = s.close()
+	})
+	return r
+}
+
+// registerBreakerIfAbsent registers stint_upstream_breaker_state and
+// stint_upstream_breaker_trips_total, as the proxy's breaker exports them
+// (0 closed, 1 half-open, 2 open), when the proxy does not export them
+// itself: quill half-open after 2 trips, local closed. It reports whether
+// it did.
+func (r *uiRig) registerBreakerIfAbsent(t *testing.T) bool {
+	t.Helper()
+	mfs, err := r.reg.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, mf := range mfs {
+		if mf.GetName() == "stint_upstream_breaker_state" {
+			return false
+		}
+	}
+	state := prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "stint_upstream_breaker_state",
+		Help: "Circuit breaker state per upstream: 0 closed, 1 half-open, 2 open."}, []string{"upstream"})
+	trips := prometheus.NewCounterVec(prometheus.CounterOpts{Name: "stint_upstream_breaker_trips_total",
+		Help: "Times the upstream's breaker opened."}, []string{"upstream"})
+	// A proxy whose breaker registers these names (with no series yet)
+	// refuses ours: then the page must show what the proxy exports.
+	if err := r.reg.Register(state); err != nil {
+		return false
+	}
+	if err := r.reg.Register(trips); err != nil {
+		r.reg.Unregister(state)
+		return false
+	}
+	state.WithLabelValues("quill").Set(1)
+	state.WithLabelValues("local").Set(0)
+	trips.WithLabelValues("quill").Add(2)
+	trips.WithLabelValues("local").Add(0)
+	return true
+}
+
+// call sends one completion request with key and extra headers, and
+// returns the cache outcome.
+func (r *uiRig) call(t *testing.T, key, body string, header ...string) string {
+	t.Helper()
+	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(body))
+	req.Header.Set("Authorization", "Bearer "+key)
+	req.Header.Set("Content-Type", "application/json")
+	for i := 0; i+1 < len(header); i += 2 {
+		req.Header.Set(header[i], header[i+1])
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	if resp.StatusCode != http.StatusOK {
+		t.Fatalf("POST %s: %d %s", body, resp.StatusCode, b)
+	}
+	return resp.Header.Get(proxy.HeaderCache)
+}
+
+func quillBody(prompt string) string {
+	return fmt.Sprintf(`{"model":"quill-small","prompt":%q,"temperature":0,"max_tokens":5}`, prompt)
+}
+
+// traffic makes every cache outcome at least once on the fake upstream,
+// and a recorded run.
+func (r *uiRig) traffic(t *testing.T) {
+	t.Helper()
+	want := func(got, outcome string) {
+		t.Helper()
+		if got != outcome {
+			t.Fatalf("cache outcome %q, want %q", got, outcome)
+		}
+	}
+	want(r.call(t, uiLabKey, quillBody("the barge leaves at dawn")), "miss")
+	want(r.call(t, uiLabKey, quillBody("the hives are counted twice")), "miss")
+	for range 3 {
+		want(r.call(t, uiLabKey, quillBody("the barge leaves at dawn")), "hit")
+	}
+	want(r.call(t, uiLabKey, `{"model":"quill-small","prompt":"a sampled note","temperature":0.8,"max_tokens":5}`), "bypass")
+	want(r.call(t, uiLabKey, `{"model":"quill-small","prompt":["the hives are counted twice","a new line for the ledger"],"temperature":0,"max_tokens":5}`), "partial")
+	want(r.call(t, uiKilnKey, quillBody("kiln fires on thursday")), "miss")
+
+	// Two identical calls in flight at once share one upstream call.
+	r.up.Block()
+	outcomes := make([]string, 2)
+	var wg sync.WaitGroup
+	for i := range outcomes {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			outcomes[i] = r.call(t, uiLabKey, quillBody("two keepers ask at once"))
+		}()
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	if err := r.up.AwaitHeld(ctx, 1); err != nil {
+		t.Fatal(err)
+	}
+	for gaugeOf(t, r.reg, "stint_coalesced_waiting") != 1 {
+		select {
+		case <-ctx.Done():
+			t.Fatal("the second call never waited on the first")
+		case <-time.After(5 * time.Millisecond):
+		}
+	}
+	r.up.Release()
+	wg.Wait()
+	if !(outcomes[0] == "miss" && outcomes[1] == "shared" || outcomes[0] == "shared" && outcomes[1] == "miss") {
+		t.Fatalf("concurrent identical calls: %v, want one miss and one shared", outcomes)
+	}
+
+	// One call the upstream refuses: the page counts it as failed.
+	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusBadRequest})
+	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(quillBody("a line the upstream refuses")))
+	req.Header.Set("Authorization", "Bearer "+uiLabKey)
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusBadRequest {
+		t.Fatalf("refused call: %d, want the upstream's 400 passed through", resp.StatusCode)
+	}
+
+	// A recorded run: a miss, then the same call again from the cache.
+	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "miss")
+	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "hit")
+}
+
+func gaugeOf(t *testing.T, g prometheus.Gatherer, name string) float64 {
+	t.Helper()
+	mfs, err := g.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, mf := range mfs {
+		if mf.GetName() == name && len(mf.GetMetric()) > 0 {
+			return mf.GetMetric()[0].GetGauge().GetValue()
+		}
+	}
+	return math.NaN()
+}
+
+// getJSON fetches url with an Authorization header into dst.
+func getJSON(t *testing.T, url, auth string, dst any) {
+	t.Helper()
+	req, _ := http.NewRequest(http.MethodGet, url, nil)
+	if auth != "" {
+		req.Header.Set("Authorization", auth)
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	if resp.StatusCode != http.StatusOK {
+		t.Fatalf("GET %s: %d %s", url, resp.StatusCode, b)
+	}
+	if err := json.Unmarshal(b, dst); err != nil {
+		t.Fatalf("GET %s: %v", url, err)
+	}
+}
+
+// scrape parses the proxy's /metrics with the Prometheus text parser.
+func (r *uiRig) scrape(t *testing.T) map[string]*dto.MetricFamily {
+	t.Helper()
+	resp, err := http.Get(r.url + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	p := expfmt.NewTextParser(model.UTF8Validation)
+	fams, err := p.TextToMetricFamilies(resp.Body)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return fams
+}
+
+func labelOf(m *dto.Metric, name string) string {
+	for _, lp := range m.GetLabel() {
+		if lp.GetName() == name {
+			return lp.GetValue()
+		}
+	}
+	return ""
+}
+
+// figure is one [data-figure] element of the page.
+type figure struct {
+	Value string `json:"value"`
+	Text  string `json:"text"`
+}
+
+const readFigures = `Object.fromEntries(Array.from(document.querySelectorAll("[data-figure]"),
+  e => [e.getAttribute("data-figure"), {value: e.getAttribute("data-value"), text: e.textContent.trim()}]))`
+
+// TestOperatorPageInABrowser loads /ui in headless Chromium against a live
+// proxy with traffic on every cache outcome, a recorded run and a real
+// search running on the sidecar. The page updates itself while the test
+// watches, and the figures it finally shows match /metrics, what `stint
+// spend` prints, the run API and the sidecar. Screenshots in light and
+// dark go to $STINT_ARTIFACTS (or a temporary directory).
+func TestOperatorPageInABrowser(t *testing.T) {
+	chrome := chromiumPath(t)
+	r := newUIRig(t)
+	r.traffic(t)
+
+	// A search on the sidecar, through the proxy, recorded as run orchard-ui.
+	var job jobs.Status
+	body := fmt.Sprintf(`{"task": %q, "run": "orchard-ui"}`, shortTask(t))
+	resp, err := http.Post(r.sidecar+"/jobs", "application/json", strings.NewReader(body))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := json.NewDecoder(resp.Body).Decode(&job); err != nil || resp.StatusCode != http.StatusCreated {
+		t.Fatalf("submit the search: %d %v", resp.StatusCode, err)
+	}
+	resp.Body.Close()
+
+	alloc, cancelAlloc := chromedp.NewExecAllocator(context.Background(), append(chromedp.DefaultExecAllocatorOptions[:],
+		chromedp.ExecPath(chrome), chromedp.NoSandbox, chromedp.WindowSize(1280, 900))...)
+	defer cancelAlloc()
+	tab, cancelTab := chromedp.NewContext(alloc)
+	defer cancelTab()
+	// The first action starts the browser and lives as long as its context:
+	// no timeout on that one.
+	if err := chromedp.Do(tab); err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithTimeout(tab, 4*time.Minute)
+	defer cancel()
+
+	// The browser sends the admin key as the Basic password, as a person
+	// typing it into the browser's prompt would.
+	basicAuth := "Basic " + basicToken("operator", uiAdminKey)
+	if err := chromedp.Do(ctx,
+		chromedp.Func(func(ctx context.Context, tg *chromedp.Target) error {
+			if _, err := cdp.Call(ctx, tg, network.Enable, network.EnableParams{}); err != nil {
+				return err
+			}
+			_, err := cdp.Call(ctx, tg, network.SetExtraHTTPHeaders, network.SetExtraHTTPHeadersParams{Headers: network.Headers{"Authorization": basicAuth}})
+			return err
+		}),
+		chromedp.Navigate(r.url+"/ui"), chromedp.WaitVisible(chromedp.CSS(`main[data-digest]`))); err != nil {
+		t.Fatal(err)
+	}
+
+	// Live: a request made after the page loaded shows up without a reload.
+	before, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]figure](readFigures))
+	if err != nil {
+		t.Fatal(err)
+	}
+	loaded, _ := strconv.Atoi(before["requests-total"].Value)
+	r.call(t, uiKilnKey, quillBody("kiln fires on thursday"))
+	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(
+		`Number(document.querySelector('[data-figure="requests-total"]').getAttribute("data-value")) > %d`, loaded)))); err != nil {
+		t.Fatalf("the page never showed the new request: %v", err)
+	}
+
+	// Live: the search's curve grows until it is done.
+	sel := func(f string) string { return fmt.Sprintf(`[data-figure="%s-%s"]`, f, job.ID) }
+	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(
+		`(() => { const s = document.querySelector('%s'); return s !== null && s.getAttribute("data-value") === "done"; })()`, sel("search-state")),
+		chromedp.WithPollingTimeout(3*time.Minute)))); err != nil {
+		st, _ := r.jobs.Get(job.ID)
+		t.Fatalf("the page never showed the search done (sidecar says %+v): %v", st, err)
+	}
+	if err := r.proxy.Flush(ctx); err != nil {
+		t.Fatal(err)
+	}
+	// Settled: wait until the page shows the current snapshot.
+	var snap struct {
+		Digest string `json:"digest"`
+	}
+	for {
+		getJSON(t, r.url+"/ui/snapshot.json", "Bearer "+uiAdminKey, &snap)
+		if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`document.querySelector("main").getAttribute("data-digest") === %q`, snap.Digest),
+			chromedp.WithPollingTimeout(5*time.Second)))); err == nil {
+			break
+		} else if !errors.Is(err, chromedp.ErrPollingTimeout) {
+			t.Fatal(err)
+		}
+		shown, _ := chromedp.Run(ctx, chromedp.AttributeValue(chromedp.CSS("main"), "data-digest"))
+		t.Logf("page shows digest %s, snapshot %s: waiting", shown.Value, snap.Digest)
+	}
+	figs, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]figure](readFigures))
+	if err != nil {
+		t.Fatal(err)
+	}
+	fig := func(name string) figure {
+		t.Helper()
+		f, ok := figs[name]
+		if !ok {
+			t.Errorf("the page shows no figure %q", name)
+		}
+		return f
+	}
+
+	t.Run("cache outcomes match /metrics", func(t *testing.T) {
+		fams := r.scrape(t)
+		byOutcome := map[string]int64{}
+		var total int64
+		for _, m := range fams["stint_requests_total"].GetMetric() {
+			n := int64(m.GetCounter().GetValue())
+			byOutcome[labelOf(m, "cache")] += n
+			total += n
+		}
+		for _, o := range []string{"hit", "miss", "shared", "partial", "bypass"} {
+			got := fig("outcome-" + o)
+			if got.Value != strconv.FormatInt(byOutcome[o], 10) || got.Text != got.Value || byOutcome[o] == 0 {
+				t.Errorf("outcome %s: page %+v, /metrics %d (each outcome was made at least once)", o, got, byOutcome[o])
+			}
+		}
+		if got := fig("requests-total"); got.Value != strconv.FormatInt(total, 10) {
+			t.Errorf("requests: page %+v, /metrics %d", got, total)
+		}
+	})
+
+	t.Run("upstreams match /metrics", func(t *testing.T) {
+		fams := r.scrape(t)
+		calls, failed := map[string]int64{}, map[string]int64{}
+		for _, m := range fams["stint_upstream_calls_total"].GetMetric() {
+			n := int64(m.GetCounter().GetValue())
+			calls[labelOf(m, "upstream")] += n
+			if labelOf(m, "status") != "200" {
+				failed[labelOf(m, "upstream")] += n
+			}
+		}
+		if failed["quill"] == 0 {
+			t.Errorf("/metrics counts no failed call on quill: %v", failed)
+		}
+		type hist struct {
+			count  uint64
+			sum    float64
+			bounds map[float64]uint64
+		}
+		hists := map[string]*hist{}
+		for _, m := range fams["stint_upstream_seconds"].GetMetric() {
+			u := labelOf(m, "upstream")
+			if hists[u] == nil {
+				hists[u] = &hist{bounds: map[float64]uint64{}}
+			}
+			h := m.GetHistogram()
+			hists[u].count += h.GetSampleCount()
+			hists[u].sum += h.GetSampleSum()
+			for _, b := range h.GetBucket() {
+				hists[u].bounds[b.GetUpperBound()] += b.GetCumulativeCount()
+			}
+		}
+		for _, u := range []string{"quill", "local"} {
+			if got := fig("upstream-calls-" + u); got.Value != strconv.FormatInt(calls[u], 10) || calls[u] == 0 {
+				t.Errorf("%s calls: page %+v, /metrics %d", u, got, calls[u])
+			}
+			if got := fig("upstream-failed-" + u); got.Value != strconv.FormatInt(failed[u], 10) {
+				t.Errorf("%s failed calls: page %+v, /metrics %d", u, got, failed[u])
+			}
+			h := hists[u]
+			if h == nil || h.count == 0 {
+				t.Errorf("%s: no latency in /metrics", u)
+				continue
+			}
+			mean, err := strconv.ParseFloat(fig("upstream-mean-"+u).Value, 64)
+			if want := h.sum / float64(h.count); err != nil || math.Abs(mean-want) > 1e-9*want {
+				t.Errorf("%s mean latency: page %v (%v), /metrics sum/count %v", u, mean, err, want)
+			}
+			// The p95 lies in the bucket holding the 95th percentile's rank.
+			p95, err := strconv.ParseFloat(fig("upstream-p95-"+u).Value, 64)
+			lo, hi := bucketOfRank(h.bounds, 0.95*float64(h.count))
+			if err != nil || p95 < lo || p95 > hi {
+				t.Errorf("%s p95: page %v (%v), want within its bucket [%v, %v]", u, p95, err, lo, hi)
+			}
+			if text := fig("upstream-p95-" + u).Text; !strings.HasSuffix(text, "s") {
+				t.Errorf("%s p95 shown as %q, want a unit", u, text)
+			}
+		}
+		for _, m := range fams["stint_upstream_breaker_state"].GetMetric() {
+			u := labelOf(m, "upstream")
+			want := map[float64]string{0: "closed", 1: "half-open", 2: "open"}[m.GetGauge().GetValue()]
+			if got := fig("breaker-" + u); got.Value != want || got.Text != want {
+				t.Errorf("%s breaker: page %+v, /metrics %v (%s)", u, got, m.GetGauge().GetValue(), want)
+			}
+		}
+		if r.breakerOwn {
+			if fig("breaker-quill").Value != "half-open" || fig("breaker-trips-quill").Value != "2" {
+				t.Errorf("quill breaker: %+v, trips %+v; the test set half-open after 2 trips", fig("breaker-quill"), fig("breaker-trips-quill"))
+			}
+		}
+	})
+
+	t.Run("spend matches stint spend", func(t *testing.T) {
+		t.Setenv(adminKeyEnv, uiAdminKey)
+		out, err := runCLI(t, "spend", "--proxy", r.url, "--json")
+		if err != nil {
+			t.Fatalf("stint spend: %v\n%s", err, out)
+		}
+		var rep spendReport
+		if err := json.Unmarshal([]byte(out), &rep); err != nil {
+			t.Fatal(err)
+		}
+		if got := fig("saved-usd"); got.Value != rep.Total.SavedUSD || got.Text != "$"+rep.Total.SavedUSD || rep.Total.SavedUSD == "0.00" {
+			t.Errorf("saved: page %+v, stint spend %s", got, rep.Total.SavedUSD)
+		}
+		if got := fig("spent-usd"); got.Value != rep.Total.SpentUSD || rep.Total.SpentUSD == "0.00" {
+			t.Errorf("spent: page %+v, stint spend %s", got, rep.Total.SpentUSD)
+		}
+		for _, row := range rep.Rows {
+			if got := fig("team-spent-" + row.Group); got.Value != row.SpentUSD {
+				t.Errorf("team %s spent: page %+v, stint spend %s", row.Group, got, row.SpentUSD)
+			}
+			if got := fig("team-saved-" + row.Group); got.Value != row.SavedUSD {
+				t.Errorf("team %s saved: page %+v, stint spend %s", row.Group, got, row.SavedUSD)
+			}
+			if got := fig("team-requests-" + row.Group); got.Value != strconv.FormatInt(row.Requests, 10) {
+				t.Errorf("team %s requests: page %+v, stint spend %d", row.Group, got, row.Requests)
+			}
+		}
+		if len(rep.Budgets) != 2 {
+			t.Fatalf("budgets %+v, want lab's and kiln's", rep.Budgets)
+		}
+		for _, b := range rep.Budgets {
+			for name, want := range map[string]string{"spent": b.SpentUSD, "limit": b.LimitUSD, "left": b.LeftUSD} {
+				if got := fig("budget-" + name + "-" + b.Team); got.Value != want || got.Text != "$"+want {
+					t.Errorf("%s budget %s: page %+v, stint spend %s", b.Team, name, got, want)
+				}
+			}
+		}
+		if _, ok := figs["budget-limit-quarry"]; ok {
+			t.Error("quarry has no budget but the page shows one")
+		}
+	})
+
+	t.Run("runs match the run API", func(t *testing.T) {
+		var list proxy.RunList
+		getJSON(t, r.url+proxy.RunsPrefix, "Bearer "+uiLabKey, &list)
+		seen := map[string]bool{}
+		for _, run := range list.Runs {
+			seen[run.Run] = true
+			id := "lab/" + run.Run
+			if got := fig("run-calls-" + id); got.Value != strconv.FormatInt(run.Calls, 10) {
+				t.Errorf("run %s calls: page %+v, API %d", run.Run, got, run.Calls)
+			}
+			if got := fig("run-upstream-" + id); got.Value != strconv.FormatInt(run.UpstreamCalls, 10) {
+				t.Errorf("run %s upstream calls: page %+v, API %d", run.Run, got, run.UpstreamCalls)
+			}
+			share, err := strconv.ParseFloat(fig("run-share-"+id).Value, 64)
+			if err != nil || math.Abs(share-run.CacheShare) > 1e-12 {
+				t.Errorf("run %s cache share: page %v, API %v", run.Run, share, run.CacheShare)
+			}
+		}
+		if !seen["pear-tune"] || !seen["orchard-ui"] {
+			t.Fatalf("runs %+v, want pear-tune and orchard-ui", list.Runs)
+		}
+		if got := fig("run-share-lab/pear-tune"); got.Value != "0.5" || got.Text != "50.0%" {
+			t.Errorf("pear-tune: %+v, want half its 2 calls from the cache", got)
+		}
+	})
+
+	t.Run("searches match the sidecar", func(t *testing.T) {
+		var st jobs.Status
+		getJSON(t, r.sidecar+"/jobs/"+job.ID, "", &st)
+		var hist jobs.History
+		getJSON(t, r.sidecar+"/jobs/"+job.ID+"/history", "", &hist)
+		if st.State != jobs.Done || len(hist.Points) != st.Steps || st.Steps == 0 {
+			t.Fatalf("sidecar: %+v, %d points", st, len(hist.Points))
+		}
+		if got := fig("search-step-" + job.ID); got.Value != strconv.Itoa(st.Step) {
+			t.Errorf("step: page %+v, sidecar %d", got, st.Step)
+		}
+		if got := fig("curve-points-" + job.ID); got.Value != strconv.Itoa(len(hist.Points)) {
+			t.Errorf("curve: page %+v points, sidecar history %d", got, len(hist.Points))
+		}
+		if got := fig("sidecar"); got.Value != "ok" {
+			t.Errorf("sidecar: %+v", got)
+		}
+		polyline, err := chromedp.Run(ctx, chromedp.Evaluate[int](fmt.Sprintf(
+			`document.querySelector('[data-search="%s"] polyline.train').getAttribute("points").trim().split(/\s+/).length`, job.ID)))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if polyline != max(len(hist.Points), 2) {
+			t.Errorf("the drawn curve has %d points, the history %d", polyline, len(hist.Points))
+		}
+	})
+
+	t.Run("no key on the page", func(t *testing.T) {
+		html, err := chromedp.Run(ctx, chromedp.OuterHTML(chromedp.CSS("html")))
+		if err != nil {
+			t.Fatal(err)
+		}
+		var raw json.RawMessage
+		getJSON(t, r.url+"/ui/snapshot.json", "Bearer "+uiAdminKey, &raw)
+		for _, k := range []string{uiAdminKey, uiLabKey, uiKilnKey, uiUpKey, keyHash(uiAdminKey), keyHash(uiLabKey)} {
+			if strings.Contains(html, k) || strings.Contains(string(raw), k) {
+				t.Errorf("a key (%.10s…) is on the page or in the snapshot", k)
+			}
+		}
+	})
+
+	dir := artifactDir(t)
+	for _, scheme := range []string{"light", "dark"} {
+		media := chromedp.Func(func(ctx context.Context, tg *chromedp.Target) error {
+			_, err := cdp.Call(ctx, tg, emulation.SetEmulatedMedia, emulation.SetEmulatedMediaParams{
+				Features: []*emulation.MediaFeature{{Name: "prefers-color-scheme", Value: scheme}}})
+			return err
+		})
+		if err := chromedp.Do(ctx, media, voidOf(chromedp.Poll[bool](fmt.Sprintf(`matchMedia("(prefers-color-scheme: %s)").matches`, scheme)))); err != nil {
+			t.Fatal(err)
+		}
+		png, err := chromedp.Run(ctx, chromedp.FullScreenshot(100))
+		if err != nil {
+			t.Fatal(err)
+		}
+		path := filepath.Join(dir, "operator-page-"+scheme+".png")
+		if err := os.WriteFile(path, png, 0o644); err != nil {
+			t.Fatal(err)
+		}
+		t.Logf("screenshot: %s", path)
+	}
+}
+
+// bucketOfRank returns the bounds of the histogram bucket holding rank.
+func bucketOfRank(cum map[float64]uint64, rank float64) (lo, hi float64) {
+	bounds := make([]float64, 0, len(cum))
+	for b := range cum {
+		bounds = append(bounds, b)
+	}
+	slices.Sort(bounds)
+	lo = 0
+	for _, b := range bounds {
+		if float64(cum[b]) >= rank {
+			if math.IsInf(b, 1) {
+				return lo, lo
+			}
+			return lo, b
+		}
+		lo = b
+	}
+	return lo, lo
+}
+
+// basicToken is the credentials of HTTP Basic authentication (RFC 7617).
+func basicToken(user, pass string) string {
+	return base64.StdEncoding.EncodeToString([]byte(user + ":" + pass))
+}
+
+// voidOf drops an action's value.
+func voidOf[T any](a chromedp.Action[T]) chromedp.Action[chromedp.Void] {
+	return func(ctx context.Context, t *chromedp.Target) (chromedp.Void, error) {
+		_, err := a(ctx, t)
+		return chromedp.Void{}, err
+	}
+}
