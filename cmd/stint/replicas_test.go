@@ -28,6 +28,13 @@ const (
 // a data dir of its own (each replica keeps its own cache file).
 func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string, extra ...string) (path, key string) {
 	t.Helper()
+	return redisConfigWith(t, upURL, redisAddr, budgetUSD, "", extra...)
+}
+
+// redisConfigWith is redisConfig with more store.redis settings (lines
+// indented by four spaces).
+func redisConfigWith(t *testing.T, upURL, redisAddr, budgetUSD, redisExtra string, extra ...string) (path, key string) {
+	t.Helper()
 	key = "lab-replica-key"
 	return writeConfig(t, configHead(t.TempDir(), upURL)+fmt.Sprintf(`teams:
   - name: lab
@@ -39,9 +46,9 @@ store:
   redis:
     addrs: [%q]
     timeout: 300ms
-admin:
+%sadmin:
   keys: ["sha256:%s"]
-%s`, keyHash(key), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, keyHash(replicaAdminKey), strings.Join(extra, ""))), key
+%s`, keyHash(key), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, redisExtra, keyHash(replicaAdminKey), strings.Join(extra, ""))), key
 }
 
 // replicaAdminKey is the admin key of the replica configs.
@@ -132,13 +139,13 @@ func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 
 // TestDeadRedisFailsClosedAndRecovers stops the Redis that holds the
 // budgets: a miss is refused with 503 and never forwarded, a cache hit is
-// still served, and once Redis is back the same process forwards again
-// without a restart.
+// still served (the cache is in the replica's own file here, cache: false),
+// and once Redis is back the same process forwards again without a restart.
 func TestDeadRedisFailsClosedAndRecovers(t *testing.T) {
 	rs := redistest.Start(t)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
-	path, key := redisConfig(t, up.URL(), rs.Addr, "1.00")
+	path, key := redisConfigWith(t, up.URL(), rs.Addr, "1.00", "    cache: false\n")
 	c := startStint(t, nil, "serve", "--config", path)
 	cached := greedyBody(1)
 	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK {
