@@ -267,6 +267,12 @@ func (p *Proxy) serveReady(w http.ResponseWriter, r *http.Request) {
 	ctx, cancel := context.WithTimeout(r.Context(), 2*time.Second)
 	defer cancel()
 	if _, _, err := p.store.Get(ctx, "readyz-probe"); err != nil {
+		if p.shared != nil {
+			// Every replica shares this store: failing them all would turn
+			// a degraded cache into an outage. Answers go on from upstream.
+			_, _ = io.WriteString(w, "ready (cache store unavailable)\n")
+			return
+		}
 		w.WriteHeader(http.StatusServiceUnavailable)
 		_, _ = io.WriteString(w, "cache store unavailable\n")
 		return

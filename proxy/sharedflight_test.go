@@ -166,6 +166,11 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 			t.Errorf("call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.header.Get(proxy.HeaderCacheStore), got.body)
 		}
 	}
+	if resp, err := http.Get(r.srv.URL + "/readyz"); err != nil || resp.StatusCode != http.StatusOK {
+		t.Errorf("/readyz with the shared store down: %v %v, want 200 (the replica still answers)", resp, err)
+	} else {
+		resp.Body.Close()
+	}
 	if n := r.metric("stint_store_degraded_requests_total"); n != 3 {
 		t.Errorf("degraded requests = %v, want 3", n)
 	}
