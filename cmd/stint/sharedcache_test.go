@@ -201,7 +201,7 @@ func TestClusterLeaseHolderKilled(t *testing.T) {
 	cl := redisstoretest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
-	rs := startReplicas(t, 2, up.URL(), cl, "    lease: 1s\n")
+	rs := startReplicas(t, 2, up.URL(), cl, "    lease: 3s\n")
 	a, b := rs[0], rs[1]
 	up.Block()
 	body := greedyBody(777)
