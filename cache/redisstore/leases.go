@@ -81,7 +81,15 @@ func (s *Store) Claim(ctx context.Context, key string) (release func(context.Con
 func (s *Store) hold(key, token string) func(context.Context) error {
 	lk := s.leaseKey(key)
 	stop := make(chan struct{})
+	s.mu.Lock()
+	if s.closed.Load() { // closed since Claim began: leave the lease to expire
+		s.mu.Unlock()
+		return func(context.Context) error {
+			return fmt.Errorf("redisstore: release %.16s…: %w (the lease expires by itself)", key, cache.ErrClosed)
+		}
+	}
 	s.renewals.Add(1)
+	s.mu.Unlock()
 	go func() {
 		defer s.renewals.Done()
 		t := time.NewTicker(s.leaseTTL / 3)

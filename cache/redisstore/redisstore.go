@@ -137,21 +137,24 @@ type Options struct {
 // number of Stores in any number of processes may share one Redis with the
 // same Prefix.
 type Store struct {
-	c             redis.UniversalClient
-	prefix        string
-	timeout       time.Duration // <= 0: none
-	cooldown      time.Duration // <= 0: none
-	compressMin   int           // < 0: never
-	maxEntry      int           // <= 0: no limit
-	leaseTTL      time.Duration
-	leasePoll     time.Duration
-	now           func() time.Time
-	enc           *zstd.Encoder
-	dec           *zstd.Decoder
-	downUntil     atomic.Int64 // Unix ns until which calls fail fast
-	closed        atomic.Bool
-	closeCtx      context.Context // ends at Close; lease renewals run under it
-	cancel        context.CancelFunc
+	c           redis.UniversalClient
+	prefix      string
+	timeout     time.Duration // <= 0: none
+	cooldown    time.Duration // <= 0: none
+	compressMin int           // < 0: never
+	maxEntry    int           // <= 0: no limit
+	leaseTTL    time.Duration
+	leasePoll   time.Duration
+	now         func() time.Time
+	enc         *zstd.Encoder
+	dec         *zstd.Decoder
+	downUntil   atomic.Int64 // Unix ns until which calls fail fast
+	closed      atomic.Bool
+	closeCtx    context.Context // ends at Close; lease renewals run under it
+	cancel      context.CancelFunc
+	// mu orders starting a renewal (renewals.Add) with Close, which sets
+	// closed under it and then waits for the renewals.
+	mu            sync.Mutex
 	renewals      sync.WaitGroup
 	releaseScript *redis.Script
 	renewScript   *redis.Script
@@ -376,7 +379,10 @@ func (s *Store) Delete(ctx context.Context, key string) error {
 // LeaseTTL) and makes later calls fail with cache.ErrClosed. It does not
 // close the client. A second Close returns nil.
 func (s *Store) Close() error {
-	if s.closed.Swap(true) {
+	s.mu.Lock()
+	already := s.closed.Swap(true)
+	s.mu.Unlock()
+	if already {
 		return nil
 	}
 	s.cancel()
