@@ -196,3 +196,37 @@ func completeWithin(t *testing.T, r *rig, d time.Duration, body map[string]any) 
 	b, err := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b, readErr: err}
 }
+
+// TestSharedFlightsAfterAStream: the replica holding the key streams the
+// upstream's answer to its client; the waiting replica serves the same
+// answer, assembled and stored by the holder, as JSON.
+func TestSharedFlightsAfterAStream(t *testing.T) {
+	sr := newSharedRigs(t, 2, 8<<20)
+	a, b := sr.rigs[0], sr.rigs[1]
+	sr.up.Block()
+	ra := make(chan response, 1)
+	go func() { ra <- a.complete(greedy("the barge sings as it streams", "stream", true)) }()
+	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
+	defer cancel()
+	if err := sr.up.AwaitHeld(ctx, 1); err != nil {
+		t.Fatal(err)
+	}
+	rb := make(chan response, 1)
+	go func() { rb <- b.complete(greedy("the barge sings as it streams")) }()
+	waitFor(t, "b waiting on a's call", func() bool { return b.metric("stint_coalesced_remote_waiting") == 1 })
+	sr.up.Release()
+	gotA, gotB := <-ra, <-rb
+	if gotA.status != http.StatusOK || gotA.cache() != proxy.OutcomeMiss {
+		t.Fatalf("a's stream: %d %q", gotA.status, gotA.cache())
+	}
+	texts, _ := streamedText(t, false, events(t, gotA.body))
+	if gotB.status != http.StatusOK || gotB.cache() != proxy.OutcomeShared {
+		t.Fatalf("b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	}
+	if c := decodeCompletion(t, gotB.body); len(c.Choices) != 1 || c.Choices[0].Text != texts[0] {
+		t.Errorf("b's text %+v, a streamed %q", c.Choices, texts[0])
+	}
+	if calls := sr.up.Calls().Completions; calls != 1 {
+		t.Errorf("upstream calls = %d, want 1", calls)
+	}
+}

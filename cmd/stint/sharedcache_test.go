@@ -12,6 +12,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache/redisstore/redisstoretest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
@@ -315,5 +317,58 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 	}
 	if g := call(rs[1], deadline, body); g.err != nil || g.header.Get("Stint-Cache") != "hit" {
 		t.Errorf("repeat on the other replica after recovery: %v %q, want a hit", g.err, g.header.Get("Stint-Cache"))
+	}
+}
+
+// TestClusterCoalescedMissesChargeOnce is TestClusterFiftyMissesOneCall
+// with budgets on the same cluster: the one upstream call is charged once,
+// the answers shared across replicas cost nothing, and the shared ledger
+// holds exactly what the upstream billed.
+func TestClusterCoalescedMissesChargeOnce(t *testing.T) {
+	cl := redisstoretest.StartCluster(t, 3)
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	var rs []*child
+	var key string
+	for range 3 {
+		var path string
+		path, key = redisConfig(t, up.URL(), strings.Join(cl.Addrs, ","), "1.00")
+		rs = append(rs, startStint(t, nil, "serve", "--config", path))
+	}
+	up.Block()
+	const clients = 30
+	body := greedyBody(9090)
+	got := make([]answer, clients)
+	var wg sync.WaitGroup
+	for i := range clients {
+		wg.Go(func() { got[i] = call(rs[i%len(rs)], 60*time.Second, body, "Authorization", "Bearer "+key) })
+	}
+	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
+	defer cancel()
+	if err := up.AwaitHeld(ctx, 1); err != nil {
+		t.Fatal(err)
+	}
+	awaitMetric(t, rs, clients-1, "stint_coalesced_waiting", "stint_coalesced_remote_waiting")
+	up.Release()
+	wg.Wait()
+	if calls := up.Calls().Completions; calls != 1 {
+		t.Fatalf("upstream calls = %d, want 1", calls)
+	}
+	var cost int64
+	for i, g := range got {
+		if g.err != nil || g.status != http.StatusOK {
+			t.Fatalf("client %d: %v %d %s", i, g.err, g.status, g.body)
+		}
+		cost += usdNanos(t, g.header.Get("Stint-Cost-Usd"))
+	}
+	billed := billedNanos(up.Billed())
+	ledger := redisledger.New(cl.Client(t), redisledger.Options{})
+	b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if billed == 0 || cost != billed || int64(b.Spent) != billed || b.Held != 0 {
+		t.Errorf("upstream billed %d nano-USD, answers' cost headers sum to %d, ledger spent %d, held %d: want all equal, nothing held",
+			billed, cost, b.Spent, b.Held)
 	}
 }
