@@ -230,3 +230,21 @@ func TestSharedFlightsAfterAStream(t *testing.T) {
 		t.Errorf("upstream calls = %d, want 1", calls)
 	}
 }
+
+// TestSharedStoreSlowIsBounded pauses Redis (CLIENT PAUSE: it accepts
+// connections but answers nothing, as an overloaded server): a request
+// waits for it no longer than the store's timeout, then is answered from
+// upstream, marked unavailable, well before its own deadline.
+func TestSharedStoreSlowIsBounded(t *testing.T) {
+	sr := newSharedRigs(t, 1, -1)
+	r := sr.rigs[0]
+	admin := sr.redis.Client(t)
+	if err := admin.Do(t.Context(), "CLIENT", "PAUSE", 4000, "ALL").Err(); err != nil {
+		t.Fatal(err)
+	}
+	defer admin.Do(context.Background(), "CLIENT", "UNPAUSE")
+	got := completeWithin(t, r, 2500*time.Millisecond, greedy("while the lock is jammed"))
+	if got.status != http.StatusOK || got.header.Get(proxy.HeaderCacheStore) != "unavailable" {
+		t.Errorf("with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.header.Get(proxy.HeaderCacheStore), got.body)
+	}
+}
