@@ -40,6 +40,12 @@ type HotOptions struct {
 	// implement ExpiryGetter is kept in memory, which bounds how long it can
 	// outlive its expiry in the store. 0 means DefaultHotFillTTL.
 	FillTTL time.Duration
+	// MaxAge bounds how long any entry stays in memory, whatever its TTL in
+	// the backing store. In front of a store that several processes share
+	// (Redis), it bounds how long this process can keep serving an answer
+	// that another one has since replaced (a no-cache refresh) or deleted.
+	// 0 means no bound beyond the entry's TTL.
+	MaxAge time.Duration
 	// Now is the clock for expiry in memory. nil means time.Now.
 	Now func() time.Time
 }
@@ -81,6 +87,7 @@ type Hot struct {
 	counter  *stats.Counter
 	maxEntry int64 // < 0: no limit
 	fillTTL  time.Duration
+	maxAge   time.Duration // <= 0: none
 	now      func() time.Time
 	closed   atomic.Bool
 	// writes counts Puts and Deletes, so a fill can tell that one ran
@@ -95,7 +102,7 @@ var _ Store = (*Hot)(nil)
 
 // NewHot returns a Hot tier in front of backing.
 func NewHot(backing Store, opts HotOptions) *Hot {
-	h := &Hot{backing: backing, fillTTL: opts.FillTTL, now: opts.Now}
+	h := &Hot{backing: backing, fillTTL: opts.FillTTL, maxAge: opts.MaxAge, now: opts.Now}
 	h.expiring, _ = backing.(ExpiryGetter)
 	if h.fillTTL <= 0 {
 		h.fillTTL = DefaultHotFillTTL
@@ -185,10 +192,7 @@ func (h *Hot) fill(ctx context.Context, key string) ([]byte, bool, error) {
 	if h.maxEntry >= 0 && int64(len(value)) > h.maxEntry {
 		return value, true, nil
 	}
-	e := hotEntry{value: value}
-	if !exp.IsZero() {
-		e.expiresAt = exp.UnixNano()
-	}
+	e := hotEntry{value: value, expiresAt: h.capAge(exp)}
 	h.mem.Compute(key, func(old hotEntry, present bool) (hotEntry, otter.ComputeOp) {
 		if present || h.writes.Load() != seen {
 			return old, otter.CancelOp
@@ -196,6 +200,20 @@ func (h *Hot) fill(ctx context.Context, key string) ([]byte, bool, error) {
 		return e, otter.WriteOp
 	})
 	return value, true, nil
+}
+
+// capAge returns the in-memory expiry (Unix ns, 0: never) of an entry that
+// expires in the store at exp (zero: never), bounded by MaxAge.
+func (h *Hot) capAge(exp time.Time) int64 {
+	if h.maxAge > 0 {
+		if limit := h.now().Add(h.maxAge); exp.IsZero() || exp.After(limit) {
+			exp = limit
+		}
+	}
+	if exp.IsZero() {
+		return 0
+	}
+	return exp.UnixNano()
 }
 
 // Put stores value under key in the backing store and then in memory.
@@ -219,11 +237,11 @@ func (h *Hot) Put(ctx context.Context, key string, value []byte, ttl time.Durati
 		h.mem.Invalidate(key) // an older, smaller value may be in memory
 		return nil
 	}
-	e := hotEntry{value: v}
+	var exp time.Time
 	if ttl > 0 {
-		e.expiresAt = h.now().Add(ttl).UnixNano()
+		exp = h.now().Add(ttl)
 	}
-	h.mem.Set(key, e)
+	h.mem.Set(key, hotEntry{value: v, expiresAt: h.capAge(exp)})
 	return nil
 }
 

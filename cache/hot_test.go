@@ -314,3 +314,47 @@ func TestHotCloseClosesBacking(t *testing.T) {
 		t.Errorf("second Close = %v, want nil", err)
 	}
 }
+
+// TestHotMaxAge runs two tiers on one backing store, as two replicas on one
+// Redis: after replica a replaces an answer, replica b serves its older copy
+// no longer than MaxAge, whether b filled it from the store or stored it
+// itself without a TTL.
+func TestHotMaxAge(t *testing.T) {
+	clock := &fakeClock{t: time.Date(2030, 5, 6, 7, 8, 9, 0, time.UTC)}
+	shared := newBolt(t, boltstore.Options{Now: clock.Now})
+	a := cache.NewHot(shared, cache.HotOptions{Now: clock.Now, MaxAge: 2 * time.Second})
+	b := cache.NewHot(shared, cache.HotOptions{Now: clock.Now, MaxAge: 2 * time.Second})
+	ctx := t.Context()
+	tests := []struct {
+		name  string
+		setup func(k string)
+	}{
+		{"filled by b", func(k string) {
+			if err := a.Put(ctx, k, []byte("old"), time.Hour); err != nil {
+				t.Fatal(err)
+			}
+			if v, _, _ := b.Get(ctx, k); string(v) != "old" {
+				t.Fatalf("b's first read = %q", v)
+			}
+		}},
+		{"stored by b without a TTL", func(k string) {
+			if err := b.Put(ctx, k, []byte("old"), 0); err != nil {
+				t.Fatal(err)
+			}
+		}},
+	}
+	for i, tc := range tests {
+		k := hotKey(100 + i)
+		tc.setup(k)
+		if err := a.Put(ctx, k, []byte("new"), time.Hour); err != nil { // a refresh on a
+			t.Fatal(err)
+		}
+		if v, _, _ := b.Get(ctx, k); string(v) != "old" {
+			t.Errorf("%s: b right after a's refresh = %q, want its memory copy old (within MaxAge)", tc.name, v)
+		}
+		clock.Advance(2*time.Second + time.Millisecond)
+		if v, _, _ := b.Get(ctx, k); string(v) != "new" {
+			t.Errorf("%s: b after MaxAge = %q, want new", tc.name, v)
+		}
+	}
+}

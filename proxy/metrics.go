@@ -17,6 +17,8 @@ type metrics struct {
 	storeErrors     *prometheus.CounterVec   // op
 	coalesceWaiting prometheus.GaugeFunc
 	pendingWrites   prometheus.GaugeFunc
+	remoteWaiting   prometheus.GaugeFunc
+	degraded        prometheus.Counter
 	tokens          *prometheus.CounterVec // team, kind (prompt|completion), source (upstream|cache)
 
 	// outcomes caches the series one request touches, by (team, endpoint,
@@ -54,7 +56,7 @@ func (m *metrics) series(team, endpoint, outcome string) *outcomeSeries {
 	return got.(*outcomeSeries)
 }
 
-func newMetrics(reg prometheus.Registerer, waiting, pending func() float64) (*metrics, error) {
+func newMetrics(reg prometheus.Registerer, waiting, pending, remote func() float64) (*metrics, error) {
 	m := &metrics{
 		requests: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_requests_total", Help: "Generation requests answered, by team, endpoint and cache outcome.",
@@ -82,6 +84,12 @@ func newMetrics(reg prometheus.Registerer, waiting, pending func() float64) (*me
 		pendingWrites: prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 			Name: "stint_store_pending_writes", Help: "Answers already sent whose store write has not landed yet.",
 		}, pending),
+		remoteWaiting: prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+			Name: "stint_coalesced_remote_waiting", Help: "Requests waiting on an identical upstream call another replica is making (shared store).",
+		}, remote),
+		degraded: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "stint_store_degraded_requests_total", Help: "Requests answered without the cache store because it failed (their answers carry Stint-Cache-Store: unavailable).",
+		}),
 		tokens: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_tokens_total", Help: "Tokens in answers, by team, kind and source (upstream or cache).",
 		}, []string{"team", "kind", "source"}),
@@ -89,7 +97,7 @@ func newMetrics(reg prometheus.Registerer, waiting, pending func() float64) (*me
 	if reg == nil {
 		return m, nil
 	}
-	for _, c := range []prometheus.Collector{m.requests, m.prompts, m.upstreamCalls, m.upstreamSeconds, m.requestSeconds, m.storeErrors, m.coalesceWaiting, m.pendingWrites, m.tokens} {
+	for _, c := range []prometheus.Collector{m.requests, m.prompts, m.upstreamCalls, m.upstreamSeconds, m.requestSeconds, m.storeErrors, m.coalesceWaiting, m.pendingWrites, m.remoteWaiting, m.degraded, m.tokens} {
 		if err := reg.Register(c); err != nil {
 			return nil, err
 		}

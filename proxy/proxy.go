@@ -100,6 +100,12 @@ type Options struct {
 	// admin endpoints (AdminPrefix); empty turns them off.
 	AdminKeyHashes [][sha256.Size]byte
 	UI             UIOptions // the operator page at /ui (ui.go); on with admin keys
+	// SharedFlights, when set, coalesces misses across replicas sharing
+	// Store: a cacheable miss of one prompt first claims the key, the
+	// holder fetches and stores the answer before it releases, and the
+	// other replicas then answer from the store (Stint-Cache: shared).
+	// nil coalesces only within this process.
+	SharedFlights SharedFlights
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -132,6 +138,11 @@ type Proxy struct {
 	tasks     *background // journal writes for savings
 
 	draining atomic.Bool
+
+	// shared coalesces misses across replicas (nil: off); remoteWaiting
+	// counts requests in its Claim.
+	shared        SharedFlights
+	remoteWaiting atomic.Int64
 
 	modelsMu   sync.Mutex // guards modelsBody, modelsAt
 	modelsBody []byte
@@ -166,6 +177,7 @@ func New(opts Options) (*Proxy, error) {
 	p.spend = opts.Spend
 	p.adminKeys = opts.AdminKeyHashes
 	p.runs = opts.Runs
+	p.shared = opts.SharedFlights
 	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
@@ -205,7 +217,8 @@ func New(opts Options) (*Proxy, error) {
 	}
 	m, err := newMetrics(opts.Registerer,
 		func() float64 { return float64(p.flights.TotalWaiting()) },
-		func() float64 { return float64(p.writes.inFlight()) })
+		func() float64 { return float64(p.writes.inFlight()) },
+		func() float64 { return float64(p.remoteWaiting.Load()) })
 	if err != nil {
 		return nil, fmt.Errorf("proxy: register metrics: %w", err)
 	}
@@ -265,6 +278,12 @@ func (p *Proxy) serveReady(w http.ResponseWriter, r *http.Request) {
 	ctx, cancel := context.WithTimeout(r.Context(), 2*time.Second)
 	defer cancel()
 	if _, _, err := p.store.Get(ctx, "readyz-probe"); err != nil {
+		if p.shared != nil {
+			// Every replica shares this store: failing them all would turn
+			// a degraded cache into an outage. Answers go on from upstream.
+			_, _ = io.WriteString(w, "ready (cache store unavailable)\n")
+			return
+		}
 		w.WriteHeader(http.StatusServiceUnavailable)
 		_, _ = io.WriteString(w, "cache store unavailable\n")
 		return
@@ -310,8 +329,11 @@ type flightResult struct {
 	// unstorable: the streamed answer was relayed but cannot be rebuilt for
 	// storing or for sharing with waiters.
 	unstorable bool
-	latency    time.Duration
-	cost       budget.Nanos // what the call was charged (spend control on)
+	// fromStore: answered from the shared store after another replica's
+	// call (see SharedFlights), not by a call of this process.
+	fromStore bool
+	latency   time.Duration
+	cost      budget.Nanos // what the call was charged (spend control on)
 }
 
 // logLine gathers what the request's log line reports.
@@ -323,11 +345,15 @@ type logLine struct {
 	usage                usage
 	prompts, hits        int
 	promptText           string
+	// header is the answer's header map; storeDown notes that the cache
+	// store failed during the request (see storeFailed).
+	header    http.Header
+	storeDown bool
 }
 
 func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoint) {
 	start := p.now()
-	ll := &logLine{endpoint: ep}
+	ll := &logLine{endpoint: ep, header: w.Header()}
 	defer func() { p.finish(ll, start) }()
 	fail := func(e *apiError) {
 		ll.status = e.status
@@ -373,7 +399,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 	mk := memoKey(team, ep, body)
 	if m, ok := p.memo.get(mk); ok && !d.noCache && !p.logPrompts {
 		// Seen these exact bytes before: go straight to the cache.
-		if hit, _ := p.lookup(r.Context(), &m.req, m.key, p.greedy(&m.req)); hit != nil {
+		if hit, _ := p.lookup(r.Context(), ll, &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
 			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
 			fig := spendFigures{team: team.Name, saved: p.noteSaved(r.Context(), team, keyID, &m.req, hit.usage)}
@@ -444,7 +470,7 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			p.memo.remember(mk, req, k)
 		}
 		if !d.noCache {
-			items[i].hit, items[i].stored = p.lookup(ctx, req, k, greedy)
+			items[i].hit, items[i].stored = p.lookup(ctx, ll, req, k, greedy)
 			items[i].looked = true
 		}
 		if items[i].hit == nil {
@@ -472,6 +498,21 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		// One client's disconnect must not cancel a call others may share.
 		cctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), up.timeout())
 		defer cancel()
+		holding := false
+		if p.shared != nil && len(misses) == 1 && !d.noCache && !d.noStore {
+			res, release := p.claimShared(cctx, ll, req, &items[misses[0]], greedy)
+			if res != nil {
+				return res, nil
+			}
+			if release != nil {
+				holding = true
+				defer func() {
+					if err := release(cctx); err != nil {
+						p.log.Warn("cannot release a shared lease; it expires by itself", "err", err)
+					}
+				}()
+			}
+		}
 		streamTo := http.ResponseWriter(nil)
 		if req.stream && len(misses) == len(items) {
 			streamTo = w
@@ -498,7 +539,9 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			return nil, err
 		}
 		if !d.noStore && !res.unstorable {
-			p.storeItems(cctx, req, items, misses, res.items, greedy)
+			// A lease holder stores before it releases, so the replicas
+			// waiting on it find the answer.
+			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding)
 		}
 		return res, nil
 	})
@@ -528,6 +571,9 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		}
 		fail(&apiError{status: http.StatusBadGateway, typ: errUpstream, code: "bad_upstream_answer", message: err.Error()})
 		return
+	}
+	if res.fromStore {
+		shared = true // another replica's call answered it
 	}
 	ll.upstream = res.latency
 	if res.unstorable && !(leaderStreamed && !shared) {
@@ -569,16 +615,20 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 
 // lookup returns the cached answer for key shaped to req (nil when there is
 // none that fits) and the stored record's bytes (nil when there is none).
-func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy bool) (*served, []byte) {
+func (p *Proxy) lookup(ctx context.Context, ll *logLine, req *request, key string, greedy bool) (*served, []byte) {
 	b, ok, err := p.writes.get(ctx, key)
 	if err != nil {
-		p.metrics.storeErrors.WithLabelValues("get").Inc()
-		p.log.Warn("cache get failed; treating as a miss", "err", err)
+		p.storeFailed(ll, "get", err)
 		return nil, nil
 	}
 	if !ok {
 		return nil, nil
 	}
+	return p.fromRecord(req, b, greedy)
+}
+
+// fromRecord is lookup's answer from the stored record b.
+func (p *Proxy) fromRecord(req *request, b []byte, greedy bool) (*served, []byte) {
 	rec, err := decodeRecord(b)
 	if err != nil {
 		p.metrics.storeErrors.WithLabelValues("decode").Inc()
@@ -596,8 +646,9 @@ func (p *Proxy) lookup(ctx context.Context, req *request, key string, greedy boo
 }
 
 // storeItems records each fetched prompt's answer under its key. The writes
-// land behind the answer (see writeBehind).
-func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, misses []int, got []served, greedy bool) {
+// land behind the answer (see writeBehind), or before storeItems returns
+// when sync is set.
+func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items []item, misses []int, got []served, greedy, sync bool) {
 	for j, i := range misses {
 		key := items[i].key
 		var rec record
@@ -622,6 +673,12 @@ func (p *Proxy) storeItems(ctx context.Context, req *request, items []item, miss
 		b, err := rec.with(v, greedy, req.stop).encode()
 		if err != nil {
 			p.metrics.storeErrors.WithLabelValues("encode").Inc()
+			continue
+		}
+		if sync {
+			if err := p.store.Put(ctx, key, b, p.ttl); err != nil && !errors.Is(err, cache.ErrTooLarge) {
+				p.storeFailed(ll, "put", err)
+			}
 			continue
 		}
 		p.writes.put(key, b, p.ttl, func(err error) {

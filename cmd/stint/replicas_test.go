@@ -11,9 +11,12 @@ import (
 	"testing"
 	"time"
 
+	"github.com/redis/go-redis/v9"
+
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/cache/redisstore/redisstoretest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -28,6 +31,14 @@ const (
 // a data dir of its own (each replica keeps its own cache file).
 func redisConfig(t *testing.T, upURL, redisAddr, budgetUSD string, extra ...string) (path, key string) {
 	t.Helper()
+	return redisConfigWith(t, upURL, redisAddr, budgetUSD, "", extra...)
+}
+
+// redisConfigWith is redisConfig with more store.redis settings (lines
+// indented by four spaces). redisAddr may list several addresses, comma
+// separated: the nodes of a cluster.
+func redisConfigWith(t *testing.T, upURL, redisAddr, budgetUSD, redisExtra string, extra ...string) (path, key string) {
+	t.Helper()
 	key = "lab-replica-key"
 	return writeConfig(t, configHead(t.TempDir(), upURL)+fmt.Sprintf(`teams:
   - name: lab
@@ -37,11 +48,20 @@ prices:
   quill-small: {input: %v, output: %v}   # invented test prices
 store:
   redis:
-    addrs: [%q]
+    addrs: [%s]
     timeout: 300ms
-admin:
+%sadmin:
   keys: ["sha256:%s"]
-%s`, keyHash(key), budgetUSD, replicaInputPrice, replicaOutputPrice, redisAddr, keyHash(replicaAdminKey), strings.Join(extra, ""))), key
+%s`, keyHash(key), budgetUSD, replicaInputPrice, replicaOutputPrice, quoteAddrs(redisAddr), redisExtra, keyHash(replicaAdminKey), strings.Join(extra, ""))), key
+}
+
+// quoteAddrs turns "a,b" into the YAML list items "a", "b".
+func quoteAddrs(addrs string) string {
+	parts := strings.Split(addrs, ",")
+	for i, a := range parts {
+		parts[i] = strconv.Quote(a)
+	}
+	return strings.Join(parts, ", ")
 }
 
 // replicaAdminKey is the admin key of the replica configs.
@@ -73,6 +93,18 @@ func usdNanos(t *testing.T, s string) int64 {
 // and the upstream's bill agree to the nano-dollar.
 func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 	rs := redistest.Start(t)
+	testNeverOverspend(t, rs.Addr, rs.Client(t))
+}
+
+// TestReplicasOnClusterNeverOverspend is the same on a real three-master
+// Redis Cluster, where the cache's keys and the ledgers spread over the
+// nodes.
+func TestReplicasOnClusterNeverOverspend(t *testing.T) {
+	cl := redisstoretest.StartCluster(t, 3)
+	testNeverOverspend(t, strings.Join(cl.Addrs, ","), cl.Client(t))
+}
+
+func testNeverOverspend(t *testing.T, redisAddrs string, client redis.UniversalClient) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	const budgetUSD = "0.002"
@@ -80,7 +112,7 @@ func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 	var key string
 	for range 3 {
 		var path string
-		path, key = redisConfig(t, up.URL(), rs.Addr, budgetUSD)
+		path, key = redisConfig(t, up.URL(), redisAddrs, budgetUSD)
 		replicas = append(replicas, startStint(t, nil, "serve", "--config", path))
 	}
 	const clients = 64
@@ -119,7 +151,7 @@ func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 	if got := up.Calls().Completions; got != ok {
 		t.Errorf("%d upstream calls for %d answers: a refused call reached the upstream", got, ok)
 	}
-	ledger := redisledger.New(rs.Client(t), redisledger.Options{})
+	ledger := redisledger.New(client, redisledger.Options{})
 	b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
 	if err != nil {
 		t.Fatal(err)
@@ -132,13 +164,13 @@ func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 
 // TestDeadRedisFailsClosedAndRecovers stops the Redis that holds the
 // budgets: a miss is refused with 503 and never forwarded, a cache hit is
-// still served, and once Redis is back the same process forwards again
-// without a restart.
+// still served (the cache is in the replica's own file here, cache: false),
+// and once Redis is back the same process forwards again without a restart.
 func TestDeadRedisFailsClosedAndRecovers(t *testing.T) {
 	rs := redistest.Start(t)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
-	path, key := redisConfig(t, up.URL(), rs.Addr, "1.00")
+	path, key := redisConfigWith(t, up.URL(), rs.Addr, "1.00", "    cache: false\n")
 	c := startStint(t, nil, "serve", "--config", path)
 	cached := greedyBody(1)
 	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK {

@@ -16,6 +16,7 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/redis/go-redis/v9"
 	"github.com/spf13/cobra"
 
 	"github.com/stintlab/stint/budget"
@@ -28,6 +29,7 @@ import (
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
+	"github.com/stintlab/stint/cache/redisstore"
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 )
@@ -164,6 +166,10 @@ type server struct {
 	commits *boltgroup.Committer // the embedded file's shared group commit
 	spend   proxy.SpendControl   // nil when the config prices nothing
 	closers []func() error
+
+	// redis is the client of store.redis (nil without it), shared by the
+	// cache store, the run journal and spend control.
+	redis redis.UniversalClient
 }
 
 // buildServer opens the stores and builds the proxy. requestLog, when not
@@ -180,9 +186,10 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	s.closers = append(s.closers, disk.Close)
 	// The ledger's and run journal's writes share commits.
 	s.commits = boltgroup.New(disk.DB())
-	var store cache.Store = disk
-	if cfg.Cache.HotBytes > 0 {
-		store = cache.NewHot(disk, cache.HotOptions{MaxBytes: int64(cfg.Cache.HotBytes)})
+	store, shared, err := s.buildStore(ctx, cfg, disk)
+	if err != nil {
+		s.close()
+		return nil, err
 	}
 	s.store = store
 
@@ -212,8 +219,10 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		}
 		adminKeys = append(adminKeys, h)
 	}
-	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update})
-	if err != nil {
+	var journal runs.Journal
+	if s.redis != nil {
+		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix()})
+	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update}); err != nil {
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
 	}
@@ -236,6 +245,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		AdminKeyHashes: adminKeys,
 		Runs:           journal,
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
+		SharedFlights:  shared,
 	})
 	if err != nil {
 		s.close()
@@ -243,6 +253,41 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	}
 	s.proxy = p
 	return s, nil
+}
+
+// buildStore opens the cache store: the embedded file, or with store.redis
+// (and its cache not turned off) Redis, shared by every replica, which then
+// also coalesces misses across replicas. The hot tier goes in front of
+// either; in front of Redis its entries live at most store.redis.hot_ttl, so
+// a replica serves an answer another has refreshed only that long. It
+// connects s.redis when the config has store.redis.
+func (s *server) buildStore(ctx context.Context, cfg Config, disk *boltstore.Store) (cache.Store, proxy.SharedFlights, error) {
+	var (
+		store  cache.Store = disk
+		shared proxy.SharedFlights
+		hot    = cache.HotOptions{MaxBytes: int64(cfg.Cache.HotBytes)}
+	)
+	if rc := cfg.Store.Redis; rc != nil {
+		client, err := rc.client(ctx)
+		if err != nil {
+			return nil, nil, fmt.Errorf("store.redis: %w", err)
+		}
+		s.closers = append(s.closers, client.Close)
+		s.redis = client
+		if rc.sharedCache() {
+			rs, err := redisstore.New(client, redisstore.Options{Prefix: rc.prefix(), Timeout: rc.timeout(), LeaseTTL: rc.lease()})
+			if err != nil {
+				return nil, nil, fmt.Errorf("store.redis: %w", err)
+			}
+			s.closers = append(s.closers, rs.Close) // before the client's
+			store, shared = rs, rs
+			hot.MaxAge = rc.hotTTL()
+		}
+	}
+	if cfg.Cache.HotBytes > 0 {
+		store = cache.NewHot(store, hot)
+	}
+	return store, shared, nil
 }
 
 // spendOn reports whether the config asks for spend control: it does as
@@ -266,11 +311,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 		limiter ratelimit.Limiter
 	)
 	if rc := cfg.Store.Redis; rc != nil {
-		client, err := rc.client(ctx)
-		if err != nil {
-			return nil, fmt.Errorf("budgets on redis: %w", err)
-		}
-		s.closers = append(s.closers, client.Close)
+		client := s.redis
 		l := redisledger.New(client, redisledger.Options{Prefix: rc.prefix(), Location: gc.Location})
 		ledger, journal, gc.Overrides = l, l, l
 		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix()})

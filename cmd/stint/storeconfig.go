@@ -16,8 +16,9 @@ import (
 // StoreConfig is the `store:` section: where state shared between replicas
 // lives. Without it everything is in the embedded file under data.
 type StoreConfig struct {
-	// Redis, when set, holds budgets, spend and rate limits, so that
-	// several stint serve processes share them exactly.
+	// Redis, when set, holds budgets, spend, rate limits, run journals and
+	// (unless Cache is false) cached answers, so that several stint serve
+	// processes share them exactly.
 	Redis *RedisConfig `yaml:"redis"`
 }
 
@@ -42,10 +43,31 @@ type RedisConfig struct {
 	Timeout Duration `yaml:"timeout"`
 	// TLS connects with TLS (system roots).
 	TLS bool `yaml:"tls"`
+	// Cache keeps cached answers on Redis, shared by every replica, with
+	// misses coalesced across replicas; false keeps them in each
+	// replica's embedded file. Default true.
+	Cache *bool `yaml:"cache"`
+	// HotTTL is the longest an answer read from Redis stays in this
+	// replica's in-memory tier (cache.hot_bytes): it bounds how long a
+	// replica keeps serving an answer that another one has since
+	// refreshed (Cache-Control: no-cache). Default 2s.
+	HotTTL Duration `yaml:"hot_ttl"`
+	// Lease is how long a replica fetching a miss holds the key for the
+	// others without renewing it (it renews every third of it while
+	// fetching): after a replica dies mid-call, the others wait this long
+	// at most before one of them fetches. Default 10s.
+	Lease Duration `yaml:"lease"`
 }
 
-// defaultRedisTimeout bounds each Redis command when the config does not.
-const defaultRedisTimeout = 500 * time.Millisecond
+// Defaults of the store.redis settings.
+const (
+	// defaultRedisTimeout bounds each Redis command when the config does not.
+	defaultRedisTimeout = 500 * time.Millisecond
+	// defaultHotTTL is store.redis.hot_ttl's default.
+	defaultHotTTL = 2 * time.Second
+	// defaultLease is store.redis.lease's default.
+	defaultLease = 10 * time.Second
+)
 
 // validateStore checks the store section; Validate calls it.
 func (c *Config) validateStore(root *yaml.Node) error {
@@ -70,6 +92,12 @@ func (c *Config) validateStore(root *yaml.Node) error {
 	if r.DB < 0 || (r.DB > 0 && (len(r.Addrs) > 1 || r.Cluster)) {
 		return bad(errors.New("db must be 0 or more, and 0 on a cluster"), "store", "redis", "db")
 	}
+	if r.HotTTL < 0 {
+		return bad(errors.New("hot_ttl must not be negative (set cache.hot_bytes: 0 for no in-memory tier)"), "store", "redis", "hot_ttl")
+	}
+	if r.Lease < 0 || (r.Lease > 0 && time.Duration(r.Lease) < 100*time.Millisecond) {
+		return bad(errors.New("lease must be at least 100ms"), "store", "redis", "lease")
+	}
 	if strings.ContainsAny(r.Prefix, "{}") {
 		return bad(errors.New("prefix must not hold '{' or '}' (they pick the cluster slot)"), "store", "redis", "prefix")
 	}
@@ -92,14 +120,38 @@ func (r *RedisConfig) prefix() string {
 	return r.Prefix
 }
 
+// sharedCache reports whether cached answers live on Redis.
+func (r *RedisConfig) sharedCache() bool { return r.Cache == nil || *r.Cache }
+
+// timeout is the bound of one Redis command.
+func (r *RedisConfig) timeout() time.Duration {
+	if r.Timeout == 0 {
+		return defaultRedisTimeout
+	}
+	return time.Duration(r.Timeout)
+}
+
+// hotTTL is the in-memory age bound in front of the shared cache.
+func (r *RedisConfig) hotTTL() time.Duration {
+	if r.HotTTL == 0 {
+		return defaultHotTTL
+	}
+	return time.Duration(r.HotTTL)
+}
+
+// lease is the lease time of a miss being fetched.
+func (r *RedisConfig) lease() time.Duration {
+	if r.Lease == 0 {
+		return defaultLease
+	}
+	return time.Duration(r.Lease)
+}
+
 // client opens a UniversalClient (standalone or cluster) and checks that it
 // answers. Every command is bounded by the configured timeout, so a dead
 // Redis turns into a quick error rather than a hung request.
 func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error) {
-	timeout := time.Duration(r.Timeout)
-	if timeout == 0 {
-		timeout = defaultRedisTimeout
-	}
+	timeout := r.timeout()
 	opts := &redis.UniversalOptions{
 		Addrs:         r.Addrs,
 		IsClusterMode: r.Cluster,
@@ -110,6 +162,9 @@ func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error)
 		WriteTimeout:  timeout,
 		PoolTimeout:   timeout,
 		MaxRetries:    1,
+		// Callers' deadlines (the cache store's per-call timeout, a
+		// request's own) end a command, not only the socket timeouts.
+		ContextTimeoutEnabled: true,
 	}
 	if r.PasswordEnv != "" {
 		opts.Password = os.Getenv(r.PasswordEnv)

@@ -25,6 +25,8 @@ const Binary = "/usr/bin/redis-server"
 // Server is one running redis-server.
 type Server struct {
 	Addr string // host:port on 127.0.0.1
+	args []string
+	cmd  *exec.Cmd // nil while stopped
 }
 
 // Start runs a standalone redis-server and returns once it accepts
@@ -42,9 +44,27 @@ func (s *Server) Client(tb testing.TB) *redis.Client {
 	return c
 }
 
+// Stop kills the server (SIGKILL, as a crash or a network cut looks to
+// clients). Restart brings it back on the same address.
+func (s *Server) Stop() { s.kill() }
+
+// Restart starts a stopped server again on the same address. Persistence
+// is off, so a standalone server comes back empty; a cluster node comes
+// back with its node id and slots (its nodes.conf) but no data.
+func (s *Server) Restart(tb testing.TB) {
+	tb.Helper()
+	if s.cmd != nil {
+		tb.Fatal("redistest: Restart of a running server")
+	}
+	if err := s.launch(); err != nil {
+		tb.Fatalf("redistest: restart on %s: %v", s.Addr, err)
+	}
+}
+
 // Cluster is a running Redis Cluster of masters only (no replicas).
 type Cluster struct {
 	Addrs []string
+	nodes []*Server
 }
 
 // StartCluster runs a Redis Cluster of n masters, the 16384 slots split
@@ -58,6 +78,7 @@ func StartCluster(tb testing.TB, n int) *Cluster {
 	for i := range n {
 		s := start(tb, true)
 		cl.Addrs = append(cl.Addrs, s.Addr)
+		cl.nodes = append(cl.nodes, s)
 		c := s.Client(tb)
 		nodes = append(nodes, c)
 		lo, hi := i*16384/n, (i+1)*16384/n-1
@@ -71,10 +92,18 @@ func StartCluster(tb testing.TB, n int) *Cluster {
 			tb.Fatalf("redistest: CLUSTER MEET %s: %v", addr, err)
 		}
 	}
-	// Gossip spreads the slot map; wait for it with a bounded poll of the
-	// servers (outside processes, not goroutines of ours).
-	want := "cluster_known_nodes:" + strconv.Itoa(n)
-	deadline := time.Now().Add(20 * time.Second)
+	cl.awaitOK(tb, nodes)
+	return cl
+}
+
+// awaitOK waits until every node reports cluster_state:ok and knows all
+// the nodes. Gossip spreads the slot map; this is a bounded poll of the
+// servers (outside processes, not goroutines of ours).
+func (c *Cluster) awaitOK(tb testing.TB, nodes []*redis.Client) {
+	tb.Helper()
+	ctx := context.Background()
+	want := "cluster_known_nodes:" + strconv.Itoa(len(nodes))
+	deadline := time.Now().Add(30 * time.Second)
 	for i := 0; i < len(nodes); {
 		info, err := nodes[i].ClusterInfo(ctx).Result()
 		if err == nil && strings.Contains(info, "cluster_state:ok") && strings.Contains(info, want) {
@@ -82,12 +111,11 @@ func StartCluster(tb testing.TB, n int) *Cluster {
 			continue
 		}
 		if time.Now().After(deadline) {
-			tb.Fatalf("redistest: cluster node %s not ready: %v %q", cl.Addrs[i], err, info)
+			tb.Fatalf("redistest: cluster node %s not ready: %v %q", c.Addrs[i], err, info)
 		}
 		t := time.NewTimer(20 * time.Millisecond)
 		<-t.C
 	}
-	return cl
 }
 
 // Client returns a cluster client of c, closed when tb's test ends.
@@ -96,6 +124,30 @@ func (c *Cluster) Client(tb testing.TB) *redis.ClusterClient {
 	cc := redis.NewClusterClient(&redis.ClusterOptions{Addrs: c.Addrs})
 	tb.Cleanup(func() { cc.Close() })
 	return cc
+}
+
+// Stop kills every node of the cluster (SIGKILL).
+func (c *Cluster) Stop() {
+	for _, s := range c.nodes {
+		s.kill()
+	}
+}
+
+// Restart starts every stopped node again on its address with its cluster
+// config, and returns once the cluster is ok again. The nodes come back
+// empty.
+func (c *Cluster) Restart(tb testing.TB) {
+	tb.Helper()
+	var nodes []*redis.Client
+	for _, s := range c.nodes {
+		if s.cmd == nil {
+			s.Restart(tb)
+		}
+		cl := redis.NewClient(&redis.Options{Addr: s.Addr})
+		defer cl.Close()
+		nodes = append(nodes, cl)
+	}
+	c.awaitOK(tb, nodes)
 }
 
 func start(tb testing.TB, cluster bool) *Server {
@@ -128,13 +180,23 @@ func tryStart(tb testing.TB, cluster bool) (*Server, error) {
 	if cluster {
 		args = append(args, "--cluster-enabled", "yes", "--cluster-config-file", dir+"/nodes.conf")
 	}
-	cmd := exec.Command(Binary, args...)
-	out, err := cmd.StdoutPipe()
-	if err != nil {
+	s := &Server{Addr: net.JoinHostPort("127.0.0.1", strconv.Itoa(port)), args: args}
+	if err := s.launch(); err != nil {
 		return nil, err
 	}
+	tb.Cleanup(s.kill)
+	return s, nil
+}
+
+// launch runs redis-server with s.args and waits until it is ready.
+func (s *Server) launch() error {
+	cmd := exec.Command(Binary, s.args...)
+	out, err := cmd.StdoutPipe()
+	if err != nil {
+		return err
+	}
 	if err := cmd.Start(); err != nil {
-		return nil, err
+		return err
 	}
 	ready := make(chan error, 1)
 	go func() {
@@ -159,13 +221,19 @@ func tryStart(tb testing.TB, cluster bool) (*Server, error) {
 	if err != nil {
 		_ = cmd.Process.Kill()
 		_ = cmd.Wait()
-		return nil, err
+		return err
 	}
-	tb.Cleanup(func() {
-		_ = cmd.Process.Kill()
-		_ = cmd.Wait()
-	})
-	return &Server{Addr: net.JoinHostPort("127.0.0.1", strconv.Itoa(port))}, nil
+	s.cmd = cmd
+	return nil
+}
+
+func (s *Server) kill() {
+	if s.cmd == nil {
+		return
+	}
+	_ = s.cmd.Process.Kill()
+	_ = s.cmd.Wait()
+	s.cmd = nil
 }
 
 func freePort() (int, error) {

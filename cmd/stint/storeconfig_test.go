@@ -1,0 +1,91 @@
+package main
+
+import (
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+)
+
+func TestStoreConfigErrorsNameField(t *testing.T) {
+	const head = "store:\n  redis:\n    addrs: [\"127.0.0.1:7000\"]\n"
+	tests := []struct {
+		name     string
+		yaml     string
+		wantLine int
+		wantText string
+	}{
+		{"no addrs", "store:\n  redis:\n    prefix: x\n", 2, "store.redis.addrs"},
+		{"negative hot_ttl", head + "    hot_ttl: -1s\n", 4, "store.redis.hot_ttl"},
+		{"tiny lease", head + "    lease: 10ms\n", 4, "store.redis.lease"},
+		{"negative lease", head + "    lease: -3s\n", 4, "store.redis.lease"},
+		{"cache not a bool", head + "    cache: sometimes\n", 4, "bool"},
+		{"brace in prefix", head + "    prefix: \"a{b}\"\n", 4, "store.redis.prefix"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig(strings.NewReader(tt.yaml))
+			if err == nil {
+				t.Fatal("got no error")
+			}
+			if !strings.Contains(err.Error(), tt.wantText) {
+				t.Errorf("error %q does not mention %q", err, tt.wantText)
+			}
+			if !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
+				t.Errorf("error %q does not name line %d", err, tt.wantLine)
+			}
+		})
+	}
+}
+
+func TestStoreConfigValues(t *testing.T) {
+	tests := []struct {
+		name   string
+		extra  string
+		shared bool
+		hotTTL time.Duration
+		lease  time.Duration
+	}{
+		{"defaults", "", true, defaultHotTTL, defaultLease},
+		{"set", "    cache: true\n    hot_ttl: 500ms\n    lease: 3s\n", true, 500 * time.Millisecond, 3 * time.Second},
+		{"cache off", "    cache: false\n", false, defaultHotTTL, defaultLease},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cfg, err := ParseConfig(strings.NewReader("store:\n  redis:\n    addrs: [\"127.0.0.1:7000\"]\n" + tt.extra))
+			if err != nil {
+				t.Fatal(err)
+			}
+			r := cfg.Store.Redis
+			if r.sharedCache() != tt.shared || r.hotTTL() != tt.hotTTL || r.lease() != tt.lease {
+				t.Errorf("shared %v, hot_ttl %v, lease %v; want %v, %v, %v", r.sharedCache(), r.hotTTL(), r.lease(), tt.shared, tt.hotTTL, tt.lease)
+			}
+		})
+	}
+}
+
+// TestExampleStoreSectionParses uncomments the example config's store
+// section and parses it, so the keys it documents are the real ones.
+func TestExampleStoreSectionParses(t *testing.T) {
+	_, section, ok := strings.Cut(exampleConfig, "\n# store:\n")
+	if !ok {
+		t.Fatal("example config has no commented store section")
+	}
+	var b strings.Builder
+	b.WriteString("store:\n")
+	for _, line := range strings.Split(section, "\n") {
+		rest, ok := strings.CutPrefix(line, "# ")
+		if !ok || strings.HasPrefix(strings.TrimSpace(rest), "#") {
+			continue // a continued comment
+		}
+		b.WriteString(rest + "\n")
+	}
+	cfg, err := ParseConfig(strings.NewReader(b.String()))
+	if err != nil {
+		t.Fatalf("example store section: %v\n%s", err, b.String())
+	}
+	r := cfg.Store.Redis
+	if r == nil || !r.sharedCache() || r.hotTTL() != 2*time.Second || r.lease() != 10*time.Second || r.timeout() != 500*time.Millisecond {
+		t.Errorf("example store section parsed as %+v", r)
+	}
+}
