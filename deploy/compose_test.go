@@ -197,9 +197,9 @@ func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 		t.Fatalf("compose.yaml: %v", p)
 	}
 	tests := []struct {
-		name  string
-		break_ func(*composeService)
-		want  string
+		name    string
+		breakIt func(*composeService)
+		want    string
 	}{
 		{"inline upstream key", func(s *composeService) { s.Environment = map[string]string{"STINT_UPSTREAM_KEY": "anything"} }, "sets STINT_UPSTREAM_KEY inline"},
 		{"key-shaped value", func(s *composeService) { s.Environment = map[string]string{"EXTRA": "sk-" + strings.Repeat("a1", 12)} }, "looks like a key"},
@@ -210,7 +210,7 @@ func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			broken := composeFile{Services: map[string]composeService{}}
 			s := c.Services["search"]
-			tc.break_(&s)
+			tc.breakIt(&s)
 			broken.Services["search"] = s
 			p := composeSecretProblems(broken)
 			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {

@@ -295,9 +295,9 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 		t.Fatal("no Deployment stint-proxy")
 	}
 	tests := []struct {
-		name  string
-		break_ func(*corev1.PodSpec)
-		want  string
+		name    string
+		breakIt func(*corev1.PodSpec)
+		want    string
 	}{
 		{"root allowed", func(s *corev1.PodSpec) { s.SecurityContext.RunAsNonRoot = nil }, "runAsNonRoot"},
 		{"no seccomp", func(s *corev1.PodSpec) { s.SecurityContext.SeccompProfile = nil }, "seccompProfile"},
@@ -316,7 +316,7 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			spec := *base.Spec.Template.Spec.DeepCopy()
-			tc.break_(&spec)
+			tc.breakIt(&spec)
 			p := hardeningProblems(spec)
 			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
 				t.Errorf("problems %v do not mention %q", p, tc.want)
