@@ -74,7 +74,7 @@ that is allowed only on a loopback address.`,
 	fl.StringVar(&f.config, "config", "", "YAML config file (see `stint config example`)")
 	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text (default text)")
 	fl.BoolVar(&f.logPrompts, "log-prompts", false, "include prompt text in request logs (debugging only)")
-	fl.BoolVar(&f.checkConfig, "check-config", false, "validate the configuration and exit")
+	fl.BoolVar(&f.checkConfig, "check-config", false, "validate the configuration, print a one-line summary and exit, opening nothing (no store, Redis, model or listener)")
 	return cmd
 }
 
@@ -140,7 +140,11 @@ func runServe(ctx context.Context, cmd *cobra.Command, f serveFlags) error {
 		return err
 	}
 	if f.checkConfig {
-		fmt.Fprintln(cmd.OutOrStdout(), "config ok")
+		summary, err := checkConfig(cfg, os.LookupEnv)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintln(cmd.OutOrStdout(), "config ok: "+summary)
 		return nil
 	}
 	sink := newBufferedLog(os.Stderr)
@@ -155,6 +159,63 @@ func runServe(ctx context.Context, cmd *cobra.Command, f serveFlags) error {
 		return err
 	}
 	return srv.run(ctx)
+}
+
+// checkConfig finishes what --check-config checks after resolveConfig has
+// loaded and validated the config: the spend settings are built as
+// buildSpend builds them, and nothing is opened (no store, no Redis, no
+// model file, no listener). It returns a one-line summary. Environment
+// variables the config names for secrets are reported as set or not set
+// but are not required, since configs are often checked where the secrets
+// are absent (CI, image builds); their values are never printed.
+func checkConfig(cfg Config, lookupEnv func(string) (string, bool)) (string, error) {
+	if spendOn(cfg) {
+		if _, err := guardConfig(cfg); err != nil {
+			return "", fmt.Errorf("spend control: %w", err)
+		}
+	}
+	var names, env []string
+	for i, u := range cfg.Upstreams {
+		name := u.Name
+		if name == "" {
+			name = fmt.Sprintf("upstream-%d", i)
+		}
+		names = append(names, name)
+		if u.KeyEnv != "" && !strings.HasPrefix(u.URL, "local:") {
+			env = append(env, u.KeyEnv)
+		}
+	}
+	var b strings.Builder
+	fmt.Fprintf(&b, "listen %s, data %s, upstreams %s, %d teams, %d admin keys", cfg.Listen, cfg.Data, strings.Join(names, " "), len(cfg.Teams), len(cfg.Admin.Keys))
+	if spendOn(cfg) {
+		fmt.Fprintf(&b, ", spend control on (%d prices)", len(cfg.Prices))
+	} else {
+		b.WriteString(", spend control off")
+	}
+	if r := cfg.Store.Redis; r != nil {
+		mode := "standalone"
+		if len(r.Addrs) > 1 || r.Cluster {
+			mode = "cluster"
+		}
+		fmt.Fprintf(&b, ", redis %s (%s)", mode, strings.Join(r.Addrs, " "))
+		if r.PasswordEnv != "" {
+			env = append(env, r.PasswordEnv)
+		}
+	} else {
+		b.WriteString(", embedded store only")
+	}
+	for i, name := range env {
+		sep := ", "
+		if i == 0 {
+			sep = "; env "
+		}
+		state := "set"
+		if v, ok := lookupEnv(name); !ok || v == "" {
+			state = "not set"
+		}
+		fmt.Fprintf(&b, "%s%s %s", sep, name, state)
+	}
+	return b.String(), nil
 }
 
 // server is a wired proxy with its store and listener settings.

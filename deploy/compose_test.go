@@ -1,0 +1,358 @@
+package deploy
+
+import (
+	"bytes"
+	"fmt"
+	"net/url"
+	"os"
+	"path/filepath"
+	"regexp"
+	"slices"
+	"strings"
+	"testing"
+
+	"go.yaml.in/yaml/v3"
+)
+
+// composeFile is the subset of the Compose specification compose.yaml
+// uses. Decoding is strict: a key outside it (a typo, or a feature these
+// tests do not check) is an error.
+type composeFile struct {
+	Name     string                    `yaml:"name"`
+	XStint   composeService            `yaml:"x-stint"` // the settings merged into every stint service
+	Services map[string]composeService `yaml:"services"`
+	Volumes  map[string]struct{}       `yaml:"volumes"`
+}
+
+type composeService struct {
+	Image           string                   `yaml:"image"`
+	Build           *composeBuild            `yaml:"build"`
+	PullPolicy      string                   `yaml:"pull_policy"`
+	Restart         string                   `yaml:"restart"`
+	User            string                   `yaml:"user"`
+	Command         []string                 `yaml:"command"`
+	EnvFile         []composeEnvFile         `yaml:"env_file"`
+	Environment     map[string]string        `yaml:"environment"`
+	Volumes         []string                 `yaml:"volumes"`
+	Ports           []string                 `yaml:"ports"`
+	DependsOn       map[string]composeDepend `yaml:"depends_on"`
+	Healthcheck     *composeHealthcheck      `yaml:"healthcheck"`
+	ReadOnly        bool                     `yaml:"read_only"`
+	Tmpfs           []string                 `yaml:"tmpfs"`
+	CapDrop         []string                 `yaml:"cap_drop"`
+	SecurityOpt     []string                 `yaml:"security_opt"`
+	StopGracePeriod string                   `yaml:"stop_grace_period"`
+}
+
+type composeBuild struct {
+	Context    string `yaml:"context"`
+	Dockerfile string `yaml:"dockerfile"`
+}
+
+type composeEnvFile struct {
+	Path     string `yaml:"path"`
+	Required *bool  `yaml:"required"`
+}
+
+type composeDepend struct {
+	Condition string `yaml:"condition"`
+}
+
+type composeHealthcheck struct {
+	Test        []string `yaml:"test"`
+	Interval    string   `yaml:"interval"`
+	Timeout     string   `yaml:"timeout"`
+	StartPeriod string   `yaml:"start_period"`
+	Retries     int      `yaml:"retries"`
+}
+
+func decodeCompose(src []byte) (composeFile, error) {
+	var c composeFile
+	dec := yaml.NewDecoder(bytes.NewReader(src))
+	dec.KnownFields(true)
+	if err := dec.Decode(&c); err != nil {
+		return composeFile{}, fmt.Errorf("compose.yaml: %w", err)
+	}
+	return c, nil
+}
+
+func loadCompose(t *testing.T) composeFile {
+	t.Helper()
+	c, err := decodeCompose(readFile(t, "compose.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return c
+}
+
+// stintServices are the services that run the stint image.
+func stintServices(c composeFile) map[string]composeService {
+	out := map[string]composeService{}
+	for name, s := range c.Services {
+		if s.Image == c.XStint.Image {
+			out[name] = s
+		}
+	}
+	return out
+}
+
+// healthURL returns the URL a stint-probe health check asks.
+func healthURL(t *testing.T, name string, s composeService) *url.URL {
+	t.Helper()
+	h := s.Healthcheck
+	if h == nil || len(h.Test) != 3 || h.Test[0] != "CMD" || h.Test[1] != "/usr/local/bin/stint-probe" {
+		t.Fatalf("service %s: health check %v is not [CMD, /usr/local/bin/stint-probe, URL]", name, h)
+	}
+	u, err := url.Parse(h.Test[2])
+	if err != nil {
+		t.Fatalf("service %s: %v", name, err)
+	}
+	return u
+}
+
+// splitVolume splits a short-syntax volume "SOURCE:TARGET[:MODE]", where
+// SOURCE may be a "${VAR:-default}" interpolation holding colons.
+func splitVolume(v string) (source, target, mode string) {
+	head := ""
+	if strings.HasPrefix(v, "${") {
+		if end := strings.IndexByte(v, '}'); end > 0 {
+			head, v = v[:end+1], v[end+1:]
+		}
+	}
+	parts := strings.SplitN(v, ":", 3)
+	source = head + parts[0]
+	if len(parts) > 1 {
+		target = parts[1]
+	}
+	if len(parts) > 2 {
+		mode = parts[2]
+	}
+	return source, target, mode
+}
+
+// volumeSource returns the source of the volume mounted at target.
+func volumeSource(s composeService, target string) (string, bool) {
+	for _, v := range s.Volumes {
+		if src, tgt, _ := splitVolume(v); tgt == target {
+			return src, true
+		}
+	}
+	return "", false
+}
+
+var (
+	stintKeyRE = regexp.MustCompile(`stint-[0-9a-f]{64}`)
+	// Values shaped like provider keys, tokens or private keys.
+	keyLikeRE = regexp.MustCompile(`\bsk-[A-Za-z0-9_-]{16,}|\bAKIA[0-9A-Z]{16}\b|-----BEGIN [A-Z ]*PRIVATE KEY-----|\bgh[pousr]_[A-Za-z0-9]{30,}|\bxox[baprs]-[A-Za-z0-9-]{10,}`)
+)
+
+// composeSecretProblems lists secrets set inline in a compose file.
+func composeSecretProblems(c composeFile) []string {
+	var p []string
+	for name, s := range c.Services {
+		for k, v := range s.Environment {
+			if secretName(k) {
+				p = append(p, fmt.Sprintf("service %s sets %s inline; secrets go in the env file", name, k))
+			}
+			if stintKeyRE.MatchString(v) || keyLikeRE.MatchString(v) {
+				p = append(p, fmt.Sprintf("service %s: %s looks like a key", name, k))
+			}
+		}
+		for _, arg := range s.Command {
+			if stintKeyRE.MatchString(arg) || keyLikeRE.MatchString(arg) || arg == "--key" {
+				p = append(p, fmt.Sprintf("service %s passes a key on its command line", name))
+			}
+		}
+	}
+	return p
+}
+
+func TestComposeDecodingIsStrict(t *testing.T) {
+	src := string(readFile(t, "compose.yaml"))
+	tests := []struct {
+		name    string
+		src     string
+		wantErr string
+	}{
+		{"as written", src, ""},
+		{"typo'd service key", strings.Replace(src, "healthcheck: &proxy-health", "healtcheck: &proxy-health", 1), "field healtcheck not found"},
+		{"unknown top-level key", src + "secrets: {}\n", "field secrets not found"},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			_, err := decodeCompose([]byte(tc.src))
+			if tc.wantErr == "" && err != nil {
+				t.Fatal(err)
+			}
+			if tc.wantErr != "" && (err == nil || !strings.Contains(err.Error(), tc.wantErr)) {
+				t.Fatalf("got %v, want an error containing %q", err, tc.wantErr)
+			}
+		})
+	}
+}
+
+func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
+	c := loadCompose(t)
+	if p := composeSecretProblems(c); len(p) > 0 {
+		t.Fatalf("compose.yaml: %v", p)
+	}
+	tests := []struct {
+		name    string
+		breakIt func(*composeService)
+		want    string
+	}{
+		{"inline upstream key", func(s *composeService) { s.Environment = map[string]string{"STINT_UPSTREAM_KEY": "anything"} }, "sets STINT_UPSTREAM_KEY inline"},
+		{"key-shaped value", func(s *composeService) { s.Environment = map[string]string{"EXTRA": "sk-" + strings.Repeat("a1", 12)} }, "looks like a key"},
+		{"stint key in a value", func(s *composeService) { s.Environment = map[string]string{"X": "stint-" + strings.Repeat("0f", 32)} }, "looks like a key"},
+		{"key flag", func(s *composeService) { s.Command = append(slices.Clone(s.Command), "--key", "k") }, "command line"},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			broken := composeFile{Services: map[string]composeService{}}
+			s := c.Services["search"]
+			tc.breakIt(&s)
+			broken.Services["search"] = s
+			p := composeSecretProblems(broken)
+			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
+				t.Errorf("problems %v do not mention %q", p, tc.want)
+			}
+		})
+	}
+}
+
+// TestCompose checks the compose file's services: every one has a health
+// check, stint services take secrets only from env files and run
+// hardened, health checks and links use the ports the services listen on,
+// and mounted files exist.
+func TestCompose(t *testing.T) {
+	c := loadCompose(t)
+	for _, want := range []string{"redis", "proxy-a", "proxy-b", "lb", "local", "search"} {
+		if _, ok := c.Services[want]; !ok {
+			t.Errorf("no service %s", want)
+		}
+	}
+	if b := c.XStint.Build; b == nil || filepath.Join(b.Context, b.Dockerfile) != "../deploy/Dockerfile" {
+		t.Errorf("stint services build %+v, want context .. and deploy/Dockerfile", b)
+	}
+	for name, s := range c.Services {
+		if s.Healthcheck == nil || len(s.Healthcheck.Test) < 2 {
+			t.Errorf("service %s has no health check", name)
+		}
+		for dep, d := range s.DependsOn {
+			if _, ok := c.Services[dep]; !ok || d.Condition != "service_healthy" {
+				t.Errorf("service %s depends on %s (%q): want an existing service and condition service_healthy", name, dep, d.Condition)
+			}
+		}
+		if !s.ReadOnly || !slices.Equal(s.CapDrop, []string{"ALL"}) || !slices.Contains(s.SecurityOpt, "no-new-privileges:true") {
+			t.Errorf("service %s: want read_only, cap_drop [ALL] and no-new-privileges", name)
+		}
+		for _, v := range s.Volumes {
+			src, tgt, mode := splitVolume(v)
+			if (strings.HasPrefix(src, "./") || strings.HasPrefix(src, "${")) && mode != "ro" {
+				t.Errorf("service %s mounts host path %s at %s writable; host files are mounted :ro", name, src, tgt)
+			}
+			switch {
+			case strings.HasPrefix(src, "./"):
+				if _, err := os.Stat(src); err != nil {
+					t.Errorf("service %s mounts %s: %v", name, src, err)
+				}
+			case strings.HasPrefix(src, "${"):
+				// a host path the operator chooses (model, tasks)
+			default:
+				if _, ok := c.Volumes[src]; !ok {
+					t.Errorf("service %s mounts volume %s, not declared under volumes", name, src)
+				}
+			}
+		}
+		for _, p := range s.Ports {
+			if !strings.HasPrefix(p, "127.0.0.1:") {
+				t.Errorf("service %s publishes %s on every interface; bind 127.0.0.1 and put TLS in front for more", name, p)
+			}
+		}
+	}
+	stint := stintServices(c)
+	if len(stint) != 4 {
+		t.Errorf("stint services %v, want proxy-a, proxy-b, local and search", slices.Collect(mapsKeys(stint)))
+	}
+	for name, s := range stint {
+		paths := []string{}
+		for _, e := range s.EnvFile {
+			paths = append(paths, e.Path)
+		}
+		if !slices.Equal(paths, []string{"stint.env.example", "stint.env"}) || s.EnvFile[1].Required == nil || *s.EnvFile[1].Required {
+			t.Errorf("service %s env_file %v: want the placeholders, then an optional stint.env", name, paths)
+		}
+		// Every stint service's health check asks its own --listen port.
+		listen := flagValue(s.Command, "--listen")
+		if slices.Contains(s.Command, "serve") && s.Command[0] == "serve" {
+			listen = parseStintConfig(t, readFile(t, mustSource(t, name, s, flagValue(s.Command, "--config")))).Listen
+		}
+		if u := healthURL(t, name, s); u.Port() != port(t, listen) || u.Hostname() != "127.0.0.1" {
+			t.Errorf("service %s health check %s does not ask its listen address %s", name, u, listen)
+		}
+		if m := flagValue(s.Command, "--model"); m != "" {
+			if _, ok := volumeSource(s, filepath.Dir(m)); !ok {
+				t.Errorf("service %s reads the model %s from no mounted volume", name, m)
+			}
+		}
+	}
+	if _, err := os.Stat("stint.env.example"); err != nil {
+		t.Error(err)
+	}
+	// Each proxy replica has its own data volume: bbolt allows one process
+	// per file.
+	a, _ := volumeSource(c.Services["proxy-a"], "/var/lib/stint")
+	b, _ := volumeSource(c.Services["proxy-b"], "/var/lib/stint")
+	if a == "" || a == b {
+		t.Errorf("proxy-a and proxy-b data volumes %q and %q: want one each", a, b)
+	}
+}
+
+// mustSource returns the host file mounted at target in service s.
+func mustSource(t *testing.T, name string, s composeService, target string) string {
+	t.Helper()
+	src, ok := volumeSource(s, target)
+	if !ok {
+		t.Fatalf("service %s mounts nothing at %s", name, target)
+	}
+	return src
+}
+
+// TestNoSecretsInDeployFiles scans every deployment file for keys, and
+// holds the env file example and the example Secret to placeholders.
+func TestNoSecretsInDeployFiles(t *testing.T) {
+	for _, f := range deployFiles(t) {
+		b := readFile(t, f)
+		if loc := stintKeyRE.FindIndex(b); loc != nil {
+			t.Errorf("%s holds a stint client key at byte %d; configs hold sha256 hashes only", f, loc[0])
+		}
+		if loc := keyLikeRE.FindIndex(b); loc != nil {
+			t.Errorf("%s holds something shaped like a key at byte %d: %q", f, loc[0], b[loc[0]:loc[1]])
+		}
+	}
+	lines := strings.Split(string(readFile(t, "stint.env.example")), "\n")
+	n := 0
+	for _, line := range lines {
+		line = strings.TrimSpace(line)
+		if line == "" || strings.HasPrefix(line, "#") {
+			continue
+		}
+		k, v, ok := strings.Cut(line, "=")
+		if !ok || !strings.HasPrefix(v, "replace-") {
+			t.Errorf("stint.env.example: %q is not NAME=replace-… (placeholders only)", line)
+		}
+		if !strings.HasPrefix(k, "STINT_") {
+			t.Errorf("stint.env.example: %s is not a STINT_ variable", k)
+		}
+		n++
+	}
+	if n == 0 {
+		t.Error("stint.env.example sets nothing")
+	}
+	if !strings.Contains(string(readFile(t, ".gitignore")), "/stint.env") {
+		t.Error("deploy/.gitignore does not ignore stint.env")
+	}
+	if !strings.Contains(string(readFile(t, "../.dockerignore")), "/deploy/stint.env") {
+		t.Error(".dockerignore does not keep deploy/stint.env out of the build context")
+	}
+}
