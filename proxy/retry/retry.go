@@ -7,6 +7,7 @@
 package retry
 
 import (
+	"errors"
 	"math/rand/v2"
 	"net/http"
 	"strconv"
@@ -36,6 +37,19 @@ type Policy struct {
 	// (with its Retry-After) back to its client. Zero means
 	// DefaultMaxDelay.
 	MaxDelay time.Duration
+}
+
+// Validate reports the first bad field, by its name.
+func (p Policy) Validate() error {
+	switch {
+	case p.Attempts < -1:
+		return errors.New("attempts must be positive, 0 (default) or -1 (no retries)")
+	case p.Base < 0:
+		return errors.New("base_delay must not be negative")
+	case p.MaxDelay < 0:
+		return errors.New("max_delay must not be negative")
+	}
+	return nil
 }
 
 // MaxAttempts returns the most calls the policy allows, at least 1.
