@@ -136,10 +136,11 @@ type Proxy struct {
 
 	draining atomic.Bool
 
-	modelsMu   sync.Mutex // guards modelsBody, modelsAt
-	modelsBody []byte
-	modelsCode int
-	modelsAt   time.Time
+	modelsMu      sync.Mutex // guards modelsBody, modelsCode, modelsMissing, modelsAt
+	modelsBody    []byte
+	modelsCode    int
+	modelsMissing []string
+	modelsAt      time.Time
 }
 
 // New builds a Proxy from opts.
