@@ -10,6 +10,7 @@ import (
 	"sync"
 	"time"
 
+	"github.com/prometheus/client_golang/prometheus"
 	"github.com/sony/gobreaker/v2"
 
 	"github.com/stintlab/stint/budget"
@@ -163,7 +164,8 @@ func (u *Upstream) chain(model string) []*Upstream {
 }
 
 // acquire takes a concurrency slot, waiting while both contexts last.
-func (rt *upstreamState) acquire(clientCtx, ctx context.Context) (func(), error) {
+// waiting counts the calls that wait.
+func (rt *upstreamState) acquire(clientCtx, ctx context.Context, waiting prometheus.Gauge) (func(), error) {
 	if rt.slots == nil {
 		return func() {}, nil
 	}
@@ -172,6 +174,8 @@ func (rt *upstreamState) acquire(clientCtx, ctx context.Context) (func(), error)
 		return func() { <-rt.slots }, nil
 	default:
 	}
+	waiting.Inc()
+	defer waiting.Dec()
 	select {
 	case rt.slots <- struct{}{}:
 		return func() { <-rt.slots }, nil
@@ -246,7 +250,7 @@ func (p *Proxy) send(clientCtx, ctx context.Context, up *Upstream, model string,
 			}
 			ticket = t
 		}
-		release, err := u.rt.acquire(clientCtx, ctx)
+		release, err := u.rt.acquire(clientCtx, ctx, p.resil.m.slotWaiting.WithLabelValues(u.Name))
 		if err != nil {
 			permit.Done(breaker.Ignored)
 			if ticket != nil {

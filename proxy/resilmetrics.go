@@ -12,6 +12,7 @@ type resilienceMetrics struct {
 	retries     *prometheus.CounterVec // upstream, reason
 	fallbacks   *prometheus.CounterVec // from, to
 	modelErrors *prometheus.CounterVec // upstream
+	slotWaiting *prometheus.GaugeVec   // upstream
 }
 
 func newResilienceMetrics(reg prometheus.Registerer, ups []Upstream) (*resilienceMetrics, error) {
@@ -34,11 +35,14 @@ func newResilienceMetrics(reg prometheus.Registerer, ups []Upstream) (*resilienc
 		modelErrors: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_upstream_model_list_errors_total", Help: "Upstreams left out of a merged /v1/models answer because their list failed.",
 		}, []string{"upstream"}),
+		slotWaiting: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "stint_upstream_slot_waiting", Help: "Calls waiting for a slot under an upstream's max_concurrent cap.",
+		}, []string{"upstream"}),
 	}
 	if reg == nil {
 		return m, nil
 	}
-	for _, c := range []prometheus.Collector{m.state, m.trips, m.storeErrors, m.retries, m.fallbacks, m.modelErrors} {
+	for _, c := range []prometheus.Collector{m.state, m.trips, m.storeErrors, m.retries, m.fallbacks, m.modelErrors, m.slotWaiting} {
 		if err := reg.Register(c); err != nil {
 			return nil, err
 		}
