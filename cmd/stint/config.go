@@ -79,9 +79,11 @@ type BreakerConfig struct {
 	// (default 5).
 	ConsecutiveFailures int `yaml:"consecutive_failures"`
 	// FailureRatio opens it when this share of the calls in Window failed
-	// (default 0.5), once Window holds MinRequests calls (default 20).
+	// (default 0.5), once Window holds MinRequests calls.
 	FailureRatio float64 `yaml:"failure_ratio"`
-	MinRequests  int     `yaml:"min_requests"`
+	// MinRequests is how many calls Window must hold before FailureRatio
+	// applies (default 20).
+	MinRequests int `yaml:"min_requests"`
 	// Window is the rolling window of FailureRatio (default 1m).
 	Window Duration `yaml:"window"`
 	// OpenFor is how long it stays open before probing (default 30s).
