@@ -129,7 +129,7 @@ func (p *Proxy) initUpstreams(opts Options) error {
 				m.storeErrors.WithLabelValues(name).Inc()
 				p.log.Warn("shared breaker state unreachable; using this replica's own", "upstream", name, "err", err)
 			},
-		}, p.now)
+		})
 		if err != nil {
 			return fmt.Errorf("proxy: upstream %s: %w", u.Name, err)
 		}

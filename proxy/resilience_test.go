@@ -150,6 +150,7 @@ func TestFailureRatioTrips(t *testing.T) {
 func TestClientErrorsDoNotTrip(t *testing.T) {
 	for _, status := range []int{400, 401, 404, 422, 429} {
 		t.Run(strconv.Itoa(status), func(t *testing.T) {
+			noLeaks(t)
 			r := newRig(t, withResilience(breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, noRetries, nil))
 			r.up.FailRatio(1, upstreamtest.Fault{Status: status})
 			for i := range 6 {
@@ -260,6 +261,9 @@ func TestRetryBackoffAndLimits(t *testing.T) {
 		{"a Retry-After above max_delay is passed through", upstreamtest.Fault{Status: 429, RetryAfter: "9"}, 1, 0, 1, 429, 0},
 		{"a Retry-After past the deadline is not waited for", upstreamtest.Fault{Status: 503, RetryAfter: "2"}, 1, 2 * time.Second, 1, 503, 0},
 		{"a stream cut after it began is not retried", upstreamtest.Fault{Cut: 2}, 1, 0, 1, 200, 0},
+		// The routed upstream's timeout bounds the retries too: a hang uses
+		// it up, so the client gets 504 and no retry is made past it.
+		{"a hang to the timeout is not retried past it", upstreamtest.Fault{Hang: true}, 9, 300 * time.Millisecond, 1, 504, 0},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -345,6 +349,7 @@ func TestRetriedCallsAreChargedConservatively(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
+			noLeaks(t)
 			r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
 			sl := &sleeps{}
 			r2 := newRigOn(t, r.rig, withResilience(breaker.Settings{}, retry.Policy{Attempts: 2}, sl))

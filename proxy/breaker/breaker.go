@@ -199,16 +199,13 @@ type Breaker struct {
 }
 
 // New returns a Breaker named name (the shared state's key). store nil
-// keeps the state in the process. now is the clock for Retry-After
-// figures (nil: time.Now); gobreaker itself reads time.Now.
-func New(name string, s Settings, store gobreaker.SharedDataStore, hooks Hooks, now func() time.Time) (*Breaker, error) {
+// keeps the state in the process. Times are read from time.Now, as
+// gobreaker does: the open timer cannot run on another clock.
+func New(name string, s Settings, store gobreaker.SharedDataStore, hooks Hooks) (*Breaker, error) {
 	if err := s.Validate(); err != nil {
 		return nil, fmt.Errorf("breaker %s: %w", name, err)
 	}
-	if now == nil {
-		now = time.Now
-	}
-	b := &Breaker{name: name, set: s.withDefaults(), hooks: hooks, now: now, store: store}
+	b := &Breaker{name: name, set: s.withDefaults(), hooks: hooks, now: time.Now, store: store}
 	b.gs = gobreaker.Settings{
 		Name:         name,
 		MaxRequests:  uint32(b.set.Probes),

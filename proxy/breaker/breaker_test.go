@@ -62,7 +62,7 @@ func TestTripRules(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			var trips atomic.Int32
-			b, err := breaker.New("up", tt.set, nil, breaker.Hooks{OnTrip: func() { trips.Add(1) }}, nil)
+			b, err := breaker.New("up", tt.set, nil, breaker.Hooks{OnTrip: func() { trips.Add(1) }})
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -81,7 +81,7 @@ func TestTripRules(t *testing.T) {
 }
 
 func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
-	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 30 * time.Second}, nil, breaker.Hooks{}, nil)
+	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 30 * time.Second}, nil, breaker.Hooks{})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -120,7 +120,7 @@ func TestHalfOpenProbe(t *testing.T) {
 		want  gobreaker.State
 	}{{"success closes", breaker.Success, gobreaker.StateClosed}, {"failure reopens", breaker.Failure, gobreaker.StateOpen}} {
 		t.Run(tc.name, func(t *testing.T) {
-			b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 50 * time.Millisecond}, nil, breaker.Hooks{}, nil)
+			b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 50 * time.Millisecond}, nil, breaker.Hooks{})
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -149,7 +149,7 @@ func TestSharedStateAcrossReplicas(t *testing.T) {
 			t.Fatal(err)
 		}
 		b, err := breaker.New("shared-up", breaker.Settings{ConsecutiveFailures: 4, FailureRatio: -1, OpenFor: 300 * time.Millisecond}, st,
-			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { t.Errorf("store error: %v", err) }}, nil)
+			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { t.Errorf("store error: %v", err) }})
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -192,7 +192,7 @@ func TestStoreOutageFallsBackToLocalState(t *testing.T) {
 	}
 	var storeErrs atomic.Int32
 	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, st,
-		breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }}, nil)
+		breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -217,7 +217,7 @@ func TestSettingsValidate(t *testing.T) {
 		{Probes: -1},
 		{ConsecutiveFailures: -1, FailureRatio: -1},
 	} {
-		if _, err := breaker.New("x", s, nil, breaker.Hooks{}, nil); err == nil {
+		if _, err := breaker.New("x", s, nil, breaker.Hooks{}); err == nil {
 			t.Errorf("%+v accepted", s)
 		}
 	}
