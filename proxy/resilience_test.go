@@ -565,3 +565,28 @@ func newRigOn(t *testing.T, base *rig, opts ...rigOption) *rig {
 	t.Cleanup(srv.Close)
 	return &rig{t: t, up: base.up, srv: srv, proxy: p, reg: reg, store: base.store, key: base.key}
 }
+
+func TestSharedBreakerWithRedisDownUsesLocalState(t *testing.T) {
+	noLeaks(t)
+	srv := redistest.Start(t)
+	r := newRig(t, func(o *proxy.Options) {
+		st, err := redisstate.New(srv.Client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
+		if err != nil {
+			t.Fatal(err)
+		}
+		o.BreakerStore = st
+		o.Upstreams[0].Breaker = breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}
+		o.Upstreams[0].Retry = noRetries
+	})
+	srv.Stop()
+	if got := r.complete(greedy("redis is away")); got.status != http.StatusOK {
+		t.Fatalf("with Redis down: %d %s, want the answer", got.status, got.body)
+	}
+	if n := r.metric("stint_upstream_breaker_store_errors_total", "upstream", "fake"); n < 1 {
+		t.Errorf("store errors %v, want at least 1", n)
+	}
+	r.up.FailRatio(1, upstreamtest.Fault{Status: 500})
+	r.complete(greedy("fails once"))
+	r.complete(greedy("fails twice"))
+	assertOpenAnswer(t, r.complete(greedy("local state tripped")), breaker.DefaultOpenFor)
+}
