@@ -43,9 +43,11 @@ import (
 //     answer; after the upstream's Retry-After (delay-seconds or
 //     HTTP-date, RFC 9110 §10.2.3) when it sent one, else after a full
 //     jitter backoff (retry.Policy); never when the wait would pass the
-//     deadline of the request's upstream exchange or the client has gone,
-//     and never once an answer has started to reach the client. When no
-//     retry is left the client gets the last failure as it was.
+//     deadline of the request's upstream exchange (the routed upstream's
+//     Timeout) or the client whose request made the call has gone (others
+//     coalesced onto the call then get its last failure), and never once
+//     an answer has started to reach the client. When no retry is left
+//     the client gets the last failure as it was.
 //
 // The breaker counts 5xx answers, timeouts, connection errors and answers
 // cut short as failures; any other answer, 4xx included, as a success;

@@ -9,7 +9,8 @@
 // a dead Redis turns into a quick error, on which the breaker uses its
 // local state. The lock is SET NX PX with a random token, released by a
 // compare-and-delete script, and it expires on its own after LockTTL if
-// its holder dies.
+// its holder dies. A breaker takes it only to record an outcome (a few
+// round trips after each upstream call), never around the call itself.
 package redisstate
 
 import (
@@ -57,7 +58,7 @@ var ErrLockBusy = errors.New("redisstate: breaker lock is busy")
 // gobreaker v2.4.0's getSharedState checks for empty data before it checks
 // the error, so empty data would read an outage as "no state yet" and
 // overwrite the shared state with a fresh closed one.
-var unreachable = []byte("redis unreachable")
+const unreachable = "redis unreachable"
 
 // Store is a gobreaker.SharedDataStore on Redis. It is safe for concurrent
 // use; one Store serves any number of breakers.
@@ -190,7 +191,7 @@ func (s *Store) GetData(name string) ([]byte, error) {
 		return nil, nil
 	}
 	if err != nil {
-		return unreachable, fmt.Errorf("redisstate: get %s: %w", key, err)
+		return []byte(unreachable), fmt.Errorf("redisstate: get %s: %w", key, err)
 	}
 	return b, nil
 }
