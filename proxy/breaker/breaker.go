@@ -14,7 +14,9 @@
 // the Permit afterwards. The call itself never runs under a lock: gobreaker
 // v2's distributed Execute holds the shared lock for the whole call, which
 // would serialize every replica's calls, so the Breaker uses Execute only to
-// record an outcome that is already known.
+// record an outcome that is already known, under a lock of its own (that
+// Execute reads the shared state before taking its lock, which loses
+// concurrent updates).
 package breaker
 
 import (
@@ -340,7 +342,7 @@ func (b *Breaker) record(success bool) {
 	if b.useStore() {
 		dcb, err := b.sharedBreaker()
 		if err == nil {
-			_, err = dcb.Execute(req)
+			err = b.recordShared(dcb, req)
 			if err == nil || errors.Is(err, errFailed) || errors.Is(err, gobreaker.ErrOpenState) || errors.Is(err, gobreaker.ErrTooManyRequests) {
 				return
 			}
@@ -354,6 +356,25 @@ func (b *Breaker) record(success bool) {
 		b.storeFailed(err)
 	}
 	_, _ = b.local.Execute(req)
+}
+
+// recordLock names the lock held around recording an outcome.
+func recordLock(name string) string { return "gobreaker:record:" + name }
+
+// recordShared runs the distributed breaker's Execute under a lock of its
+// own. gobreaker v2.4.0's Execute reads the shared state before it takes
+// its lock, so two concurrent Executes would each write back an update
+// based on the same read and one would be lost; holding recordLock around
+// the whole read-update-write makes it atomic.
+func (b *Breaker) recordShared(dcb *gobreaker.DistributedCircuitBreaker[struct{}], req func() (struct{}, error)) error {
+	if err := b.store.Lock(recordLock(b.name)); err != nil {
+		return err
+	}
+	_, err := dcb.Execute(req)
+	if uerr := b.store.Unlock(recordLock(b.name)); uerr != nil && (err == nil || errors.Is(err, errFailed)) {
+		err = uerr
+	}
+	return err
 }
 
 // sharedBreaker returns the distributed breaker, creating it (which

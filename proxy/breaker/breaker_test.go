@@ -1,7 +1,9 @@
 package breaker_test
 
 import (
+	"encoding/json"
 	"errors"
+	"sync"
 	"sync/atomic"
 	"testing"
 	"time"
@@ -220,5 +222,50 @@ func TestSettingsValidate(t *testing.T) {
 		if _, err := breaker.New("x", s, nil, breaker.Hooks{}); err == nil {
 			t.Errorf("%+v accepted", s)
 		}
+	}
+}
+
+// Outcomes recorded at once from many goroutines on two replicas are all
+// counted in the shared state: the lock loses no update.
+func TestSharedRecordsLoseNoUpdate(t *testing.T) {
+	srv := redistest.Start(t)
+	c := srv.Client(t)
+	var storeErrs atomic.Int32
+	var replicas []*breaker.Breaker
+	for range 2 {
+		st, err := redisstate.New(c, redisstate.Options{Prefix: "count"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := breaker.New("busy-up", breaker.Settings{ConsecutiveFailures: 100000, FailureRatio: -1, Window: time.Hour}, st,
+			breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
+		if err != nil {
+			t.Fatal(err)
+		}
+		replicas = append(replicas, b)
+	}
+	const workers, each = 32, 10
+	var wg sync.WaitGroup
+	for w := range workers {
+		wg.Go(func() {
+			for range each {
+				run(t, replicas[w%2], breaker.Failure)
+			}
+		})
+	}
+	wg.Wait()
+	if n := storeErrs.Load(); n != 0 {
+		t.Fatalf("%d store errors under contention", n)
+	}
+	raw, err := c.Get(t.Context(), "count:breaker:{busy-up}:state").Bytes()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var s gobreaker.SharedState
+	if err := json.Unmarshal(raw, &s); err != nil {
+		t.Fatal(err)
+	}
+	if s.Counts.TotalFailures != workers*each {
+		t.Errorf("shared state counts %d failures, want %d", s.Counts.TotalFailures, workers*each)
 	}
 }

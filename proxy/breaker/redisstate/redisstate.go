@@ -3,8 +3,9 @@
 // (proxy/breaker), so every replica of the proxy sees one state per
 // upstream.
 //
-// Keys are "<prefix>:breaker:{<breaker name>}:state" and ":lock": the hash
-// tag keeps one breaker's keys in one cluster slot. Every command is
+// Keys are "<prefix>:breaker:{<breaker name>}:state", ":lock" and
+// ":record" (the lock proxy/breaker holds while it records an outcome):
+// the hash tag keeps one breaker's keys in one cluster slot. Every command is
 // bounded by Options.Timeout (gobreaker's interface takes no context), so
 // a dead Redis turns into a quick error, on which the breaker uses its
 // local state. The lock is SET NX PX with a random token, released by a
@@ -98,14 +99,18 @@ func New(c redis.UniversalClient, o Options) (*Store, error) {
 
 var _ gobreaker.SharedDataStore = (*Store)(nil)
 
-// key maps gobreaker's names ("gobreaker:mutex:NAME",
-// "gobreaker:state:NAME") to hash-tagged keys of this Store.
+// key maps the names a breaker uses ("gobreaker:mutex:NAME" and
+// "gobreaker:state:NAME" from gobreaker, "gobreaker:record:NAME" from
+// proxy/breaker) to hash-tagged keys of this Store.
 func (s *Store) key(name string) string {
 	kind, bname := "data", name
-	if rest, ok := strings.CutPrefix(name, "gobreaker:mutex:"); ok {
-		kind, bname = "lock", rest
-	} else if rest, ok := strings.CutPrefix(name, "gobreaker:state:"); ok {
-		kind, bname = "state", rest
+	for _, k := range []struct{ prefix, kind string }{
+		{"gobreaker:mutex:", "lock"}, {"gobreaker:state:", "state"}, {"gobreaker:record:", "record"},
+	} {
+		if rest, ok := strings.CutPrefix(name, k.prefix); ok {
+			kind, bname = k.kind, rest
+			break
+		}
 	}
 	bname = strings.NewReplacer("{", "%7B", "}", "%7D").Replace(bname)
 	return s.o.Prefix + ":breaker:{" + bname + "}:" + kind
