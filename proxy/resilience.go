@@ -11,7 +11,6 @@ import (
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
-	"github.com/sony/gobreaker/v2"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
@@ -121,11 +120,7 @@ func (p *Proxy) initUpstreams(opts Options) error {
 			return fmt.Errorf("proxy: upstream %s: %w", u.Name, err)
 		}
 		name := u.Name
-		var store gobreaker.SharedDataStore
-		if opts.BreakerStore != nil {
-			store = opts.BreakerStore
-		}
-		b, err := breaker.New(name, u.Breaker, store, breaker.Hooks{
+		b, err := breaker.New(name, u.Breaker, opts.BreakerStore, breaker.Hooks{
 			OnTrip: func() { m.trips.WithLabelValues(name).Inc() },
 			OnStoreError: func(err error) {
 				m.storeErrors.WithLabelValues(name).Inc()
