@@ -53,7 +53,9 @@ func TestStateRoundTripAndKeysShareASlot(t *testing.T) {
 
 func TestLockIsExclusiveAndExpires(t *testing.T) {
 	srv := redistest.Start(t)
-	opts := redisstate.Options{LockTTL: 300 * time.Millisecond, LockWait: 50 * time.Millisecond}
+	// A long LockTTL for the exclusive part, so a slow machine cannot let
+	// the lock expire in between.
+	opts := redisstate.Options{LockTTL: time.Minute, LockWait: 50 * time.Millisecond}
 	a, _ := redisstate.New(srv.Client(t), opts)
 	b, _ := redisstate.New(srv.Client(t), opts)
 	if err := a.Lock("gobreaker:mutex:x"); err != nil {
@@ -67,14 +69,26 @@ func TestLockIsExclusiveAndExpires(t *testing.T) {
 	if err := b.Lock("gobreaker:mutex:x"); !errors.Is(err, redisstate.ErrLockBusy) {
 		t.Fatalf("after b's unlock: %v, want still busy", err)
 	}
+	if err := a.Unlock("gobreaker:mutex:x"); err != nil {
+		t.Fatal(err)
+	}
+	if err := b.Lock("gobreaker:mutex:x"); err != nil {
+		t.Fatalf("after a's unlock: %v", err)
+	}
 	// A holder that never unlocks loses the lock after LockTTL.
+	short := redisstate.Options{LockTTL: 200 * time.Millisecond, LockWait: 50 * time.Millisecond}
+	c, _ := redisstate.New(srv.Client(t), short)
+	d, _ := redisstate.New(srv.Client(t), short)
+	if err := c.Lock("gobreaker:mutex:y"); err != nil {
+		t.Fatal(err)
+	}
 	deadline := time.Now().Add(10 * time.Second)
-	for b.Lock("gobreaker:mutex:x") != nil {
+	for d.Lock("gobreaker:mutex:y") != nil {
 		if time.Now().After(deadline) {
 			t.Fatal("the lock never expired")
 		}
 	}
-	if err := b.Unlock("gobreaker:mutex:x"); err != nil {
+	if err := d.Unlock("gobreaker:mutex:y"); err != nil {
 		t.Fatal(err)
 	}
 }
