@@ -12,6 +12,9 @@
 // compare-and-delete script, and it expires on its own after LockTTL if
 // its holder dies. A breaker takes it only to record an outcome (a few
 // round trips after each upstream call), never around the call itself.
+// gobreaker retries a failed Lock every 500 ms for up to 5 s, so a Redis
+// that dies in the middle of a record can hold that one record up to 5 s;
+// the breaker then keeps to local state for a while (breaker.StoreRetry).
 package redisstate
 
 import (
