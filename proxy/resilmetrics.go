@@ -57,8 +57,10 @@ type breakerStateCollector struct {
 	desc *prometheus.Desc
 }
 
+// Describe implements prometheus.Collector.
 func (c *breakerStateCollector) Describe(ch chan<- *prometheus.Desc) { ch <- c.desc }
 
+// Collect implements prometheus.Collector: one gauge per upstream.
 func (c *breakerStateCollector) Collect(ch chan<- prometheus.Metric) {
 	for i := range c.ups {
 		u := &c.ups[i]

@@ -136,6 +136,7 @@ type OpenError struct {
 	Probing bool
 }
 
+// Error says which breaker refused and until when.
 func (e *OpenError) Error() string {
 	if e.Probing {
 		return fmt.Sprintf("circuit breaker of %s is half-open and its probes are in flight", e.Name)
