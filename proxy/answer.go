@@ -11,6 +11,7 @@ import (
 	"sync"
 
 	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache/canon"
 )
 
@@ -133,12 +134,14 @@ func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, tea
 	}
 	ctx := r.Context()
 	start := p.now()
-	resp, err := up.post(ctx, req.endpoint, req.raw)
-	p.countUpstream(up, req.endpoint, err)
+	x, err := p.send(ctx, ctx, up, req.model, req.endpoint, req.raw, nil)
 	if err != nil {
 		p.forwardFailed(w, ll, err)
 		return
 	}
+	resp := x.resp
+	var readErr error
+	defer func() { x.finish(readErr) }()
 	defer resp.Body.Close()
 	h := w.Header()
 	for _, name := range []string{"Content-Type", "Content-Length"} {
@@ -164,6 +167,7 @@ func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, tea
 		if rerr != nil {
 			if rerr != io.EOF {
 				ll.upstream = p.now().Sub(start)
+				readErr = &upstreamError{err: rerr}
 				panic(http.ErrAbortHandler)
 			}
 			break
@@ -189,32 +193,35 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	for i, pr := range req.prompts {
 		items[i].prompt = pr
 	}
-	ticket, err := p.spend.Admit(r.Context(), spendCall(r.Context(), team, keyID, up, req, items, nil))
-	if err != nil {
-		e := spendError(err)
-		ll.status = e.status
-		writeError(w, e)
-		return
-	}
 	// Settle even if the client leaves: the provider bills either way.
 	ctx, cancel := context.WithTimeout(context.WithoutCancel(r.Context()), up.timeout())
 	defer cancel()
 	body, err := upstreamBody(req, nil, req.stream)
 	if err != nil {
-		_ = ticket.Cancel(ctx)
 		e := badRequest("", "cannot forward the request: %v", err)
 		ll.status = e.status
 		writeError(w, e)
 		return
 	}
+	admit := func(ctx context.Context, u *Upstream) (*guard.Ticket, error) {
+		return p.spend.Admit(ctx, spendCall(ctx, team, keyID, u, req, items, nil))
+	}
 	start := p.now()
-	resp, err := up.post(ctx, req.endpoint, body)
-	p.countUpstream(up, req.endpoint, err)
+	x, err := p.send(r.Context(), ctx, up, req.model, req.endpoint, body, admit)
 	if err != nil {
-		_, _ = ticket.Fail(ctx, billed(err))
+		var ae *admitError
+		if errors.As(err, &ae) {
+			e := spendError(ae.err)
+			ll.status = e.status
+			writeError(w, e)
+			return
+		}
 		p.forwardFailed(w, ll, err)
 		return
 	}
+	ticket, resp := x.ticket, x.resp
+	var readErr error
+	defer func() { x.finish(readErr) }()
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if req.stream {
@@ -224,15 +231,18 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 			res.items = []served{{usage: u}}
 			rerr = nil
 		}
+		readErr = rerr
 		p.settle(ctx, ticket, team.Name, res, rerr, budget.Bypass)
+		res.cost += x.failedCost
 		p.spendHeaders(ctx, w.Header(), team.Name, res.cost, 0)
 		ll.upstream = p.now().Sub(start)
 		return
 	}
 	full, err := io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
 	if err != nil {
+		readErr = &upstreamError{err: err}
 		_, _ = ticket.Fail(ctx, true)
-		p.forwardFailed(w, ll, &upstreamError{err: err})
+		p.forwardFailed(w, ll, readErr)
 		return
 	}
 	var a struct {
@@ -246,6 +256,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 		ll.usage = *a.Usage
 	}
 	ll.upstream = p.now().Sub(start)
+	res.cost += x.failedCost
 	h := w.Header()
 	h.Set("Content-Type", "application/json")
 	h.Set("Content-Length", strconv.Itoa(len(full)))

@@ -8,4 +8,8 @@
 // requests from larger stored answers when that is exact), and on a miss
 // coalesce, call the upstream, store and answer. Response headers say what
 // happened (Stint-Cache), and Prometheus metrics count it.
+//
+// Upstream calls go through each upstream's circuit breaker
+// (proxy/breaker), its fallbacks and concurrency cap, with bounded retries
+// (proxy/retry); resilience.go describes the rules.
 package proxy

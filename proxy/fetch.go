@@ -9,13 +9,29 @@ import (
 	"net/http"
 	"strconv"
 
+	"github.com/stintlab/stint/budget"
+	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/sse"
 )
 
-// fetch makes the upstream call for the missing prompts of req. When streamTo
-// is set (every prompt missed and the client asked for a stream) the answer is
-// relayed to it as it arrives and assembled for storing.
-func (p *Proxy) fetch(ctx context.Context, up *Upstream, req *request, items []item, misses []int, streamTo http.ResponseWriter) (*flightResult, error) {
+// missCall is the upstream call for the missing prompts of a request.
+type missCall struct {
+	team   *Team
+	keyID  string
+	up     *Upstream // the routed upstream
+	req    *request
+	items  []item
+	misses []int
+}
+
+// fetch makes the upstream call for the missing prompts of c.req (through
+// send: breaker, fallback, concurrency cap, retries, a reservation per
+// attempt) and settles its cost. When streamTo is set (every prompt missed
+// and the client asked for a stream) the answer is relayed to it as it
+// arrives and assembled for storing. clientCtx is the requesting client's
+// context; ctx bounds the call and outlives the client.
+func (p *Proxy) fetch(clientCtx, ctx context.Context, c missCall, streamTo http.ResponseWriter) (*flightResult, error) {
+	req, items, misses := c.req, c.items, c.misses
 	stream := streamTo != nil
 	var prompts []json.RawMessage
 	if len(misses) != len(items) {
@@ -28,12 +44,18 @@ func (p *Proxy) fetch(ctx context.Context, up *Upstream, req *request, items []i
 	if err != nil {
 		return nil, err
 	}
+	var admit admitFunc
+	if p.spend != nil {
+		admit = func(ctx context.Context, u *Upstream) (*guard.Ticket, error) {
+			return p.spend.Admit(ctx, spendCall(ctx, c.team, c.keyID, u, req, items, misses))
+		}
+	}
 	start := p.now()
-	resp, err := up.post(ctx, req.endpoint, body)
-	p.countUpstream(up, req.endpoint, err)
+	x, err := p.send(clientCtx, ctx, c.up, req.model, req.endpoint, body, admit)
 	if err != nil {
 		return nil, err
 	}
+	resp := x.resp
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if stream {
@@ -45,16 +67,19 @@ func (p *Proxy) fetch(ctx context.Context, up *Upstream, req *request, items []i
 			err = &upstreamError{err: err}
 		}
 	}
+	x.finish(err)
 	res.latency = p.now().Sub(start)
-	p.metrics.upstreamSeconds.WithLabelValues(up.Name, string(req.endpoint)).Observe(res.latency.Seconds())
+	p.metrics.upstreamSeconds.WithLabelValues(x.up.Name, string(req.endpoint)).Observe(res.latency.Seconds())
 	if errors.Is(err, errUnstorable) {
 		res.unstorable = true
-		return res, nil
+		err = nil
+	} else if err == nil {
+		res.items, err = splitAnswer(req, res.full, len(misses), itemPrompts(items, misses))
 	}
-	if err != nil {
-		return res, err
+	if x.ticket != nil {
+		p.settle(ctx, x.ticket, c.team.Name, res, err, budget.Miss)
 	}
-	res.items, err = splitAnswer(req, res.full, len(misses), itemPrompts(items, misses))
+	res.cost += x.failedCost
 	if err != nil {
 		return res, err
 	}

@@ -33,6 +33,7 @@ type rig struct {
 	reg   *prometheus.Registry
 	store cache.Store
 	key   string // client key sent with every request ("" in open mode)
+	opts  *proxy.Options
 }
 
 type rigOption func(*proxy.Options)
@@ -45,8 +46,8 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 	if err != nil {
 		t.Fatalf("open store: %v", err)
 	}
-	t.Cleanup(func() { _ = disk.Close() })
 	store := cache.NewHot(disk, cache.HotOptions{MaxBytes: 8 << 20})
+	t.Cleanup(func() { _ = store.Close() }) // stops the tier's goroutines and closes disk
 	reg := prometheus.NewRegistry()
 	o := proxy.Options{
 		Store:      store,
@@ -68,7 +69,7 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 	})
 	srv := httptest.NewServer(p)
 	t.Cleanup(srv.Close)
-	r := &rig{t: t, up: up, srv: srv, proxy: p, reg: reg, store: store}
+	r := &rig{t: t, up: up, srv: srv, proxy: p, reg: reg, store: store, opts: &o}
 	return r
 }
 

@@ -9,6 +9,7 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"math/rand/v2"
 	"net/http"
 	"sync"
 	"sync/atomic"
@@ -16,9 +17,9 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"github.com/sony/gobreaker/v2"
 
 	"github.com/stintlab/stint/budget"
-	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/coalesce"
 	"github.com/stintlab/stint/cache/runs"
@@ -106,6 +107,14 @@ type Options struct {
 	// other replicas then answer from the store (Stint-Cache: shared).
 	// nil coalesces only within this process.
 	SharedFlights SharedFlights
+	// BreakerStore shares the upstreams' circuit breaker state between
+	// replicas (proxy/breaker/redisstate); nil keeps it in the process.
+	BreakerStore gobreaker.SharedDataStore
+	// Sleep waits before a retry and must return early with ctx's error
+	// when ctx ends; nil waits on a timer (tests pass one that records).
+	Sleep func(ctx context.Context, d time.Duration) error
+	// Rand is the source of retry jitter; nil seeds one at random.
+	Rand rand.Source
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -133,6 +142,7 @@ type Proxy struct {
 	spend     SpendControl
 	adminKeys [][sha256.Size]byte
 	runs      runs.Journal
+	resil     *resilience
 	cursor    runs.Cursor // replay positions
 	left      leftCache
 	tasks     *background // journal writes for savings
@@ -144,10 +154,11 @@ type Proxy struct {
 	shared        SharedFlights
 	remoteWaiting atomic.Int64
 
-	modelsMu   sync.Mutex // guards modelsBody, modelsAt
-	modelsBody []byte
-	modelsCode int
-	modelsAt   time.Time
+	modelsMu      sync.Mutex // guards modelsBody, modelsCode, modelsMissing, modelsAt
+	modelsBody    []byte
+	modelsCode    int
+	modelsMissing []string
+	modelsAt      time.Time
 }
 
 // New builds a Proxy from opts.
@@ -223,6 +234,9 @@ func New(opts Options) (*Proxy, error) {
 		return nil, fmt.Errorf("proxy: register metrics: %w", err)
 	}
 	p.metrics = m
+	if err := p.initUpstreams(opts); err != nil {
+		return nil, err
+	}
 
 	mux := http.NewServeMux()
 	mux.HandleFunc("POST /v1/completions", func(w http.ResponseWriter, r *http.Request) { p.serveGenerate(w, r, endpointCompletions) })
@@ -517,23 +531,12 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if req.stream && len(misses) == len(items) {
 			streamTo = w
 		}
-		var ticket *guard.Ticket
-		if p.spend != nil {
-			t, err := p.spend.Admit(cctx, spendCall(cctx, team, keyID, up, req, items, misses))
-			if err != nil {
-				return nil, &admitError{err}
-			}
-			ticket = t
-		}
-		res, err := p.fetch(cctx, up, req, items, misses, streamTo)
+		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses}, streamTo)
 		if res != nil && res.streamed {
 			leaderStreamed = true
 		}
-		if ticket != nil {
-			p.settle(cctx, ticket, team.Name, res, err, budget.Miss)
-			if leaderStreamed && err == nil {
-				p.spendHeaders(cctx, w.Header(), team.Name, res.cost, 0)
-			}
+		if leaderStreamed && err == nil {
+			p.spendHeaders(cctx, w.Header(), team.Name, res.cost, 0)
 		}
 		if err != nil {
 			return nil, err

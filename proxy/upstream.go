@@ -10,6 +10,9 @@ import (
 	"net/http"
 	"strings"
 	"time"
+
+	"github.com/stintlab/stint/proxy/breaker"
+	"github.com/stintlab/stint/proxy/retry"
 )
 
 // Upstream is one inference API the proxy forwards misses to.
@@ -23,11 +26,29 @@ type Upstream struct {
 	Key string
 	// Client sends the requests; nil uses a client with a pooled transport.
 	Client *http.Client
-	// Timeout bounds one upstream call; zero means 10 minutes.
+	// Timeout bounds one upstream call; zero means 10 minutes. The routed
+	// upstream's Timeout also bounds a request's whole upstream exchange,
+	// retries and fallbacks included.
 	Timeout time.Duration
 	// Models routes requests by model name: an exact name, or a prefix ending
 	// in "*". Empty matches every model.
 	Models []string
+	// Breaker configures the upstream's circuit breaker; the zero value is
+	// on with package breaker's defaults.
+	Breaker breaker.Settings
+	// Retry bounds the retries of a failed call routed here; the zero value
+	// is package retry's defaults.
+	Retry retry.Policy
+	// Fallback names upstreams to send a call to, in order, while this
+	// one's breaker is open; only those whose Models match the request's
+	// model are used. Their answers are cached under this upstream's name,
+	// as the routed upstream's. Empty: no fallback.
+	Fallback []string
+	// MaxConcurrent caps this proxy's calls in flight to the upstream;
+	// zero means no cap.
+	MaxConcurrent int
+
+	rt *upstreamState // set by New
 }
 
 func (u *Upstream) timeout() time.Duration {
@@ -81,8 +102,20 @@ func (e *upstreamError) Error() string {
 
 func (e *upstreamError) Unwrap() error { return e.err }
 
-// apiError maps a transport failure to 502 or 504.
+// apiError maps a failure without an upstream answer to its status: 503
+// when a breaker is open or no concurrency slot came free (both with
+// Retry-After), 504 for a timeout, 502 otherwise.
 func (e *upstreamError) apiError() *apiError {
+	var oe *breaker.OpenError
+	if errors.As(e.err, &oe) {
+		return &apiError{status: http.StatusServiceUnavailable, typ: errUpstream, code: "upstream_circuit_open", retryAfter: oe.RetryAfter(time.Now()),
+			message: "the upstream is failing and its circuit breaker is open, so nothing was sent: " + oe.Error()}
+	}
+	var be *busyError
+	if errors.As(e.err, &be) {
+		return &apiError{status: http.StatusServiceUnavailable, typ: errUpstream, code: "upstream_busy", retryAfter: time.Second,
+			message: "no upstream slot came free before the request's deadline, so nothing was sent: " + be.Error()}
+	}
 	var ne net.Error
 	if errors.Is(e.err, context.DeadlineExceeded) || (errors.As(e.err, &ne) && ne.Timeout()) {
 		return &apiError{status: http.StatusGatewayTimeout, typ: errUpstream, code: "upstream_timeout", message: "the upstream did not answer in time"}

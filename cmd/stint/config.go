@@ -14,6 +14,9 @@ import (
 	"time"
 
 	"go.yaml.in/yaml/v3"
+
+	"github.com/stintlab/stint/proxy/breaker"
+	"github.com/stintlab/stint/proxy/retry"
 )
 
 // Config is the file given to `stint serve --config`. The library packages
@@ -55,6 +58,53 @@ type UpstreamConfig struct {
 	Models  []string `yaml:"models"`
 	// Limits is the shared ceiling of all teams on this upstream.
 	Limits *LimitsConfig `yaml:"limits"`
+	// Breaker is the upstream's circuit breaker; absent: on with the
+	// defaults.
+	Breaker *BreakerConfig `yaml:"breaker"`
+	// Retry bounds the retries of failed calls; absent: the defaults.
+	Retry *RetryConfig `yaml:"retry"`
+	// Fallback names upstreams to use, in order, while this one's breaker
+	// is open.
+	Fallback []string `yaml:"fallback"`
+	// MaxConcurrent caps this replica's calls in flight to the upstream;
+	// 0: no cap.
+	MaxConcurrent int `yaml:"max_concurrent"`
+}
+
+// BreakerConfig is an upstream's `breaker:` section. Absent or 0 fields
+// take the defaults; -1 turns a trip rule off.
+type BreakerConfig struct {
+	// Enabled false turns the breaker off; absent: on.
+	Enabled *bool `yaml:"enabled"`
+	// ConsecutiveFailures opens it after this many failures in a row
+	// (default 5).
+	ConsecutiveFailures int `yaml:"consecutive_failures"`
+	// FailureRatio opens it when this share of the calls in Window failed
+	// (default 0.5), once Window holds MinRequests calls.
+	FailureRatio float64 `yaml:"failure_ratio"`
+	// MinRequests is how many calls Window must hold before FailureRatio
+	// applies (default 20).
+	MinRequests int `yaml:"min_requests"`
+	// Window is the rolling window of FailureRatio (default 1m).
+	Window Duration `yaml:"window"`
+	// OpenFor is how long it stays open before probing (default 30s).
+	OpenFor Duration `yaml:"open_for"`
+	// Probes is how many calls a half-open breaker lets through at once
+	// per replica, and the successes that close it (default 1).
+	Probes int `yaml:"probes"`
+}
+
+// RetryConfig is an upstream's `retry:` section.
+type RetryConfig struct {
+	// Attempts is the most calls in all, the first included (default 3;
+	// 1 means no retries).
+	Attempts int `yaml:"attempts"`
+	// BaseDelay is the first backoff ceiling (default 250ms); retry n waits
+	// a random time up to min(max_delay, base_delay·2^n).
+	BaseDelay Duration `yaml:"base_delay"`
+	// MaxDelay caps the backoff and is the longest Retry-After waited for
+	// (default 5s).
+	MaxDelay Duration `yaml:"max_delay"`
 }
 
 // TeamConfig is one client team.
@@ -185,6 +235,27 @@ func (c *Config) Validate(root *yaml.Node) error {
 			return bad(fmt.Errorf("duplicate upstream name %q", name), "upstreams", i, "name")
 		}
 		names[name] = true
+		if err := validateResilience(u, bad, "upstreams", i); err != nil {
+			return err
+		}
+	}
+	for i, u := range c.Upstreams {
+		name := u.Name
+		if name == "" {
+			name = fmt.Sprintf("upstream-%d", i)
+		}
+		seen := map[string]bool{}
+		for j, fb := range u.Fallback {
+			switch {
+			case !names[fb]:
+				return bad(fmt.Errorf("fallback %q is not the name of an upstream", fb), "upstreams", i, "fallback", j)
+			case fb == name:
+				return bad(errors.New("an upstream cannot be its own fallback"), "upstreams", i, "fallback", j)
+			case seen[fb]:
+				return bad(fmt.Errorf("fallback %q is listed twice", fb), "upstreams", i, "fallback", j)
+			}
+			seen[fb] = true
+		}
 	}
 	teams := map[string]bool{}
 	keys := map[string]string{}
@@ -244,6 +315,74 @@ func (c *Config) Validate(root *yaml.Node) error {
 		return err
 	}
 	return c.validateSpend(root)
+}
+
+// breakerSettings turns the breaker section into the proxy's settings.
+func (u UpstreamConfig) breakerSettings() breaker.Settings {
+	b := u.Breaker
+	if b == nil {
+		return breaker.Settings{}
+	}
+	return breaker.Settings{
+		Off:                 b.Enabled != nil && !*b.Enabled,
+		ConsecutiveFailures: b.ConsecutiveFailures,
+		FailureRatio:        b.FailureRatio,
+		MinRequests:         b.MinRequests,
+		Window:              time.Duration(b.Window),
+		OpenFor:             time.Duration(b.OpenFor),
+		Probes:              b.Probes,
+	}
+}
+
+// retryPolicy turns the retry section into the proxy's policy.
+func (u UpstreamConfig) retryPolicy() retry.Policy {
+	r := u.Retry
+	if r == nil {
+		return retry.Policy{}
+	}
+	p := retry.Policy{Attempts: r.Attempts, Base: time.Duration(r.BaseDelay), MaxDelay: time.Duration(r.MaxDelay)}
+	if p.Attempts == 1 {
+		p.Attempts = -1
+	}
+	return p
+}
+
+// validateResilience checks an upstream's breaker, retry and
+// max_concurrent settings.
+func validateResilience(u UpstreamConfig, bad func(err error, path ...any) error, path ...any) error {
+	at := func(p ...any) []any { return append(append([]any{}, path...), p...) }
+	if u.MaxConcurrent < 0 {
+		return bad(errors.New("max_concurrent must be 0 (no cap) or more"), at("max_concurrent")...)
+	}
+	if b := u.Breaker; b != nil {
+		switch {
+		case b.ConsecutiveFailures < -1:
+			return bad(errors.New("consecutive_failures must be positive, 0 (default 5) or -1 (off)"), at("breaker", "consecutive_failures")...)
+		case b.FailureRatio != -1 && (b.FailureRatio < 0 || b.FailureRatio > 1):
+			return bad(errors.New("failure_ratio must be above 0 and at most 1, 0 (default 0.5) or -1 (off)"), at("breaker", "failure_ratio")...)
+		case b.MinRequests < 0:
+			return bad(errors.New("min_requests must not be negative"), at("breaker", "min_requests")...)
+		case b.Window < 0:
+			return bad(errors.New("window must not be negative"), at("breaker", "window")...)
+		case b.OpenFor < 0:
+			return bad(errors.New("open_for must not be negative"), at("breaker", "open_for")...)
+		case b.Probes < 0:
+			return bad(errors.New("probes must not be negative"), at("breaker", "probes")...)
+		case b.ConsecutiveFailures == -1 && b.FailureRatio == -1 && (b.Enabled == nil || *b.Enabled):
+			return bad(errors.New("both trip rules are off; say enabled: false to turn the breaker off"), at("breaker")...)
+		}
+	}
+	if r := u.Retry; r != nil {
+		switch {
+		case r.Attempts < 0:
+			return bad(errors.New("attempts must be 1 (no retries) or more, or 0 for the default 3"), at("retry", "attempts")...)
+		case r.BaseDelay < 0:
+			return bad(errors.New("base_delay must not be negative"), at("retry", "base_delay")...)
+		case r.MaxDelay < 0:
+			return bad(errors.New("max_delay must not be negative"), at("retry", "max_delay")...)
+		}
+	}
+	return nil
 }
 
 // parseKeyHash reads a stored key of the form sha256:<64 hex digits>.

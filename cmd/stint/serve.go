@@ -17,6 +17,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/redis/go-redis/v9"
+	"github.com/sony/gobreaker/v2"
 	"github.com/spf13/cobra"
 
 	"github.com/stintlab/stint/budget"
@@ -32,6 +33,7 @@ import (
 	"github.com/stintlab/stint/cache/redisstore"
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
+	"github.com/stintlab/stint/proxy/breaker/redisstate"
 )
 
 // serveFlags are the command-line settings of `stint serve`.
@@ -260,6 +262,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		return nil, err
 	}
 	s.closers = append(s.closers, closers...)
+	breakerStore, err := s.buildBreakerStore(ctx, cfg)
+	if err != nil {
+		s.close()
+		return nil, err
+	}
 	teams, err := buildTeams(cfg.Teams)
 	if err != nil {
 		s.close()
@@ -307,6 +314,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Runs:           journal,
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
 		SharedFlights:  shared,
+		BreakerStore:   breakerStore,
 	})
 	if err != nil {
 		s.close()
@@ -408,6 +416,31 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 	return g, nil
 }
 
+// buildBreakerStore shares the upstreams' breaker state on Redis when the
+// config has store.redis (nil otherwise: each replica keeps its own). A
+// Redis that fails later is not fatal: each breaker falls back to its
+// replica's own state until Redis answers again.
+func (s *server) buildBreakerStore(ctx context.Context, cfg Config) (gobreaker.SharedDataStore, error) {
+	rc := cfg.Store.Redis
+	if rc == nil {
+		return nil, nil
+	}
+	client, err := rc.client(ctx)
+	if err != nil {
+		return nil, fmt.Errorf("breaker state on redis: %w", err)
+	}
+	s.closers = append(s.closers, client.Close)
+	timeout := time.Duration(rc.Timeout)
+	if timeout == 0 {
+		timeout = defaultRedisTimeout
+	}
+	st, err := redisstate.New(client, redisstate.Options{Prefix: rc.prefix(), Timeout: timeout})
+	if err != nil {
+		return nil, fmt.Errorf("breaker state on redis: %w", err)
+	}
+	return st, nil
+}
+
 func buildTeams(cfgs []TeamConfig) ([]proxy.Team, error) {
 	teams := make([]proxy.Team, 0, len(cfgs))
 	for _, tc := range cfgs {
@@ -428,7 +461,8 @@ func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstrea
 	var ups []proxy.Upstream
 	var closers []func() error
 	for i, uc := range cfgs {
-		u := proxy.Upstream{Name: uc.Name, BaseURL: uc.URL, Timeout: time.Duration(uc.Timeout), Models: uc.Models}
+		u := proxy.Upstream{Name: uc.Name, BaseURL: uc.URL, Timeout: time.Duration(uc.Timeout), Models: uc.Models,
+			Breaker: uc.breakerSettings(), Retry: uc.retryPolicy(), Fallback: uc.Fallback, MaxConcurrent: uc.MaxConcurrent}
 		if u.Name == "" {
 			u.Name = fmt.Sprintf("upstream-%d", i)
 		}

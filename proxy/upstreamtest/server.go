@@ -67,6 +67,8 @@
 // Retry-After, a hang until the client gives up, a delay, a reset
 // connection, or an answer cut short), and Block and Release hold calls in
 // flight so a test can line up concurrent callers deterministically.
+// MaxConcurrent reports the most calls served at once, for checking a
+// client's concurrency cap.
 package upstreamtest
 
 import (
@@ -146,6 +148,8 @@ type Server struct {
 
 	ids     atomic.Uint64 // response and request ids
 	samples atomic.Uint64 // per-call counter for unseeded sampling
+	active  atomic.Int64  // requests being served now
+	peak    atomic.Int64  // most requests served at once since start or Reset
 
 	// mu guards the fields below.
 	mu       sync.Mutex
@@ -221,11 +225,29 @@ func (s *Server) Requests() []Request {
 	return out
 }
 
+// MaxConcurrent returns the most requests the server was serving at the
+// same time since it started or since Reset.
+func (s *Server) MaxConcurrent() int { return int(s.peak.Load()) }
+
+// enter counts a request in and raises the high-water mark; the returned
+// function counts it out.
+func (s *Server) enter() func() {
+	n := s.active.Add(1)
+	for {
+		p := s.peak.Load()
+		if n <= p || s.peak.CompareAndSwap(p, n) {
+			break
+		}
+	}
+	return func() { s.active.Add(-1) }
+}
+
 // Reset zeroes the counters and forgets the recorded requests and every
 // pending fault. It does not release held calls.
 func (s *Server) Reset() {
 	s.mu.Lock()
 	defer s.mu.Unlock()
+	s.peak.Store(s.active.Load())
 	s.calls = Calls{}
 	s.prompts = 0
 	s.billed = Tokens{}
@@ -312,6 +334,7 @@ func (s *Server) newID(prefix string) string {
 }
 
 func (s *Server) serveHTTP(w http.ResponseWriter, r *http.Request) {
+	defer s.enter()()
 	body, err := io.ReadAll(io.LimitReader(r.Body, maxBody))
 	if err != nil {
 		http.Error(w, "reading body: "+err.Error(), http.StatusBadRequest)

@@ -1006,3 +1006,33 @@ func TestTopLogprobsOrder(t *testing.T) {
 		}
 	}
 }
+
+func TestMaxConcurrentCountsCallsServedAtOnce(t *testing.T) {
+	s := upstreamtest.New(upstreamtest.Options{})
+	defer s.Close()
+	s.Block()
+	const n = 5
+	var wg sync.WaitGroup
+	for range n {
+		wg.Go(func() {
+			resp, err := http.Post(s.URL()+"/completions", "application/json", strings.NewReader(`{"model":"quill-small","prompt":"a","temperature":0}`))
+			if err == nil {
+				resp.Body.Close()
+			}
+		})
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+	defer cancel()
+	if err := s.AwaitHeld(ctx, n); err != nil {
+		t.Fatal(err)
+	}
+	s.Release()
+	wg.Wait()
+	if got := s.MaxConcurrent(); got != n {
+		t.Errorf("MaxConcurrent = %d, want %d", got, n)
+	}
+	s.Reset()
+	if got := s.MaxConcurrent(); got != 0 {
+		t.Errorf("after Reset: MaxConcurrent = %d, want 0", got)
+	}
+}

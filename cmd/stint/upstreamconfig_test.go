@@ -1,0 +1,120 @@
+package main
+
+import (
+	"slices"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy/breaker"
+	"github.com/stintlab/stint/proxy/retry"
+)
+
+func TestUpstreamResilienceErrorsNameFieldAndLine(t *testing.T) {
+	const head = "upstreams:\n  - name: main\n    url: http://127.0.0.1:1/v1\n"
+	tests := []struct {
+		name     string
+		yaml     string
+		wantLine int
+		wantText string
+	}{
+		{"negative max_concurrent", head + "    max_concurrent: -2\n", 4, "upstreams[0].max_concurrent"},
+		{"ratio above one", head + "    breaker:\n      failure_ratio: 1.5\n", 5, "upstreams[0].breaker.failure_ratio"},
+		{"consecutive below -1", head + "    breaker:\n      consecutive_failures: -3\n", 5, "breaker.consecutive_failures"},
+		{"negative open_for", head + "    breaker:\n      open_for: -1s\n", 5, "breaker.open_for"},
+		{"negative window", head + "    breaker:\n      window: -1m\n", 5, "breaker.window"},
+		{"negative probes", head + "    breaker:\n      probes: -1\n", 5, "breaker.probes"},
+		{"negative min_requests", head + "    breaker:\n      min_requests: -1\n", 5, "breaker.min_requests"},
+		{"both rules off", head + "    breaker:\n      consecutive_failures: -1\n      failure_ratio: -1\n", 5, "enabled: false"},
+		{"unknown breaker key", head + "    breaker:\n      trip_after: 3\n", 5, "trip_after"},
+		{"negative attempts", head + "    retry:\n      attempts: -1\n", 5, "retry.attempts"},
+		{"negative base_delay", head + "    retry:\n      base_delay: -1s\n", 5, "retry.base_delay"},
+		{"negative max_delay", head + "    retry:\n      max_delay: -1s\n", 5, "retry.max_delay"},
+		{"bad delay", head + "    retry:\n      max_delay: later\n", 5, "duration"},
+		{"unknown fallback", head + "    fallback: [nowhere]\n", 4, `"nowhere"`},
+		{"own fallback", head + "    fallback: [main]\n", 4, "its own fallback"},
+		{"fallback twice", head + "    fallback: [b, b]\n  - name: b\n    url: http://127.0.0.1:2/v1\n", 4, "twice"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig(strings.NewReader(tt.yaml))
+			if err == nil {
+				t.Fatal("got no error")
+			}
+			if !strings.Contains(err.Error(), tt.wantText) {
+				t.Errorf("error %q does not mention %q", err, tt.wantText)
+			}
+			if !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
+				t.Errorf("error %q does not name line %d", err, tt.wantLine)
+			}
+		})
+	}
+}
+
+func TestUpstreamResilienceValues(t *testing.T) {
+	cfg, err := ParseConfig(strings.NewReader(`
+upstreams:
+  - name: main
+    url: http://127.0.0.1:1/v1
+    max_concurrent: 8
+    fallback: [spare]
+    breaker:
+      consecutive_failures: 3
+      failure_ratio: -1
+      open_for: 10s
+      probes: 2
+    retry:
+      attempts: 1
+  - name: spare
+    url: http://127.0.0.1:2/v1
+    breaker: {enabled: false}
+    retry: {attempts: 4, base_delay: 100ms, max_delay: 2s}
+  - name: plain
+    url: http://127.0.0.1:3/v1
+`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	ups, _, err := buildUpstreams(t.Context(), cfg.Upstreams)
+	if err != nil {
+		t.Fatal(err)
+	}
+	main, spare, plain := ups[0], ups[1], ups[2]
+	if want := (breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1, OpenFor: 10 * time.Second, Probes: 2}); main.Breaker != want {
+		t.Errorf("main breaker %+v, want %+v", main.Breaker, want)
+	}
+	if main.Retry.MaxAttempts() != 1 || main.MaxConcurrent != 8 || !slices.Equal(main.Fallback, []string{"spare"}) {
+		t.Errorf("main: attempts %d, max_concurrent %d, fallback %v", main.Retry.MaxAttempts(), main.MaxConcurrent, main.Fallback)
+	}
+	if !spare.Breaker.Off {
+		t.Error("spare: enabled: false did not turn the breaker off")
+	}
+	if want := (retry.Policy{Attempts: 4, Base: 100 * time.Millisecond, MaxDelay: 2 * time.Second}); spare.Retry != want {
+		t.Errorf("spare retry %+v, want %+v", spare.Retry, want)
+	}
+	// Nothing said: breaker on and retries on, with the defaults.
+	if plain.Breaker != (breaker.Settings{}) || plain.Retry.MaxAttempts() != retry.DefaultAttempts || plain.MaxConcurrent != 0 {
+		t.Errorf("plain: %+v %+v %d, want the defaults", plain.Breaker, plain.Retry, plain.MaxConcurrent)
+	}
+}
+
+// The example config's upstream section spells out the defaults: parsing it
+// gives the same settings as leaving the sections out.
+func TestExampleUpstreamSpellsOutTheDefaults(t *testing.T) {
+	cfg, err := ParseConfig(strings.NewReader(exampleConfig))
+	if err != nil {
+		t.Fatalf("example config: %v", err)
+	}
+	u := cfg.Upstreams[0]
+	want := breaker.Settings{
+		ConsecutiveFailures: breaker.DefaultConsecutiveFailures, FailureRatio: breaker.DefaultFailureRatio,
+		MinRequests: breaker.DefaultMinRequests, Window: breaker.DefaultWindow, OpenFor: breaker.DefaultOpenFor, Probes: breaker.DefaultProbes,
+	}
+	if got := u.breakerSettings(); got != want {
+		t.Errorf("example breaker %+v, want the defaults %+v", got, want)
+	}
+	if got := u.retryPolicy(); got != (retry.Policy{Attempts: retry.DefaultAttempts, Base: retry.DefaultBase, MaxDelay: retry.DefaultMaxDelay}) {
+		t.Errorf("example retry %+v, want the defaults", got)
+	}
+}

@@ -1,0 +1,271 @@
+package breaker_test
+
+import (
+	"encoding/json"
+	"errors"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/sony/gobreaker/v2"
+	"go.uber.org/goleak"
+
+	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/proxy/breaker"
+	"github.com/stintlab/stint/proxy/breaker/redisstate"
+)
+
+func TestMain(m *testing.M) { goleak.VerifyTestMain(m) }
+
+// run makes calls with the given outcomes, stopping at the first refusal;
+// it returns how many were allowed.
+func run(t *testing.T, b *breaker.Breaker, outcomes ...breaker.Outcome) int {
+	t.Helper()
+	for i, o := range outcomes {
+		p, err := b.Allow()
+		if err != nil {
+			if !errors.Is(err, breaker.ErrOpen) {
+				t.Fatalf("Allow: %v, want an OpenError", err)
+			}
+			return i
+		}
+		p.Done(o)
+	}
+	return len(outcomes)
+}
+
+func repeat(o breaker.Outcome, n int) []breaker.Outcome {
+	out := make([]breaker.Outcome, n)
+	for i := range out {
+		out[i] = o
+	}
+	return out
+}
+
+func TestTripRules(t *testing.T) {
+	S, F, I := breaker.Success, breaker.Failure, breaker.Ignored
+	tests := []struct {
+		name     string
+		set      breaker.Settings
+		outcomes []breaker.Outcome
+		allowed  int // calls let through before the first refusal
+	}{
+		{"three in a row", breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1}, repeat(F, 10), 3},
+		{"a success resets the run", breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1}, []breaker.Outcome{F, F, S, F, F, S, F, F, F, S}, 9},
+		{"ignored outcomes do not count", breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, []breaker.Outcome{F, I, I, I, F, S}, 5},
+		{"successes never trip", breaker.Settings{ConsecutiveFailures: 1}, repeat(S, 50), 50},
+		// Ratio 0.5 over at least 10 calls: S,F alternating reaches 5 of
+		// 10 failed at the 10th call.
+		{"failure ratio", breaker.Settings{ConsecutiveFailures: -1, FailureRatio: 0.5, MinRequests: 10}, []breaker.Outcome{S, F, S, F, S, F, S, F, S, F, S, S}, 10},
+		{"ratio needs min requests", breaker.Settings{ConsecutiveFailures: -1, FailureRatio: 0.1, MinRequests: 10}, []breaker.Outcome{F, S, S, S, S, S, S, S, S}, 9},
+		{"off", breaker.Settings{Off: true}, repeat(F, 30), 30},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			var trips atomic.Int32
+			b, err := breaker.New("up", tt.set, nil, breaker.Hooks{OnTrip: func() { trips.Add(1) }})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if got := run(t, b, tt.outcomes...); got != tt.allowed {
+				t.Errorf("allowed %d calls, want %d", got, tt.allowed)
+			}
+			wantTrips := int32(0)
+			if tt.allowed < len(tt.outcomes) {
+				wantTrips = 1
+			}
+			if trips.Load() != wantTrips {
+				t.Errorf("trips = %d, want %d", trips.Load(), wantTrips)
+			}
+		})
+	}
+}
+
+func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
+	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 30 * time.Second}, nil, breaker.Hooks{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	run(t, b, breaker.Failure)
+	_, err = b.Allow()
+	var oe *breaker.OpenError
+	if !errors.As(err, &oe) {
+		t.Fatalf("Allow after a trip: %v", err)
+	}
+	if ra := oe.RetryAfter(time.Now()); ra < 25*time.Second || ra > 30*time.Second {
+		t.Errorf("RetryAfter = %v, want 30s rounded up from the time left", ra)
+	}
+}
+
+// awaitState polls b until it reports want (gobreaker's open timer runs on
+// the real clock).
+func awaitState(t *testing.T, b *breaker.Breaker, want gobreaker.State) {
+	t.Helper()
+	deadline := time.Now().Add(10 * time.Second)
+	for {
+		if st, _ := b.State(); st == want {
+			return
+		}
+		if time.Now().After(deadline) {
+			st, _ := b.State()
+			t.Fatalf("breaker stayed %v, want %v", st, want)
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+}
+
+func TestHalfOpenProbe(t *testing.T) {
+	for _, tc := range []struct {
+		name  string
+		probe breaker.Outcome
+		want  gobreaker.State
+	}{{"success closes", breaker.Success, gobreaker.StateClosed}, {"failure reopens", breaker.Failure, gobreaker.StateOpen}} {
+		t.Run(tc.name, func(t *testing.T) {
+			b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 50 * time.Millisecond}, nil, breaker.Hooks{})
+			if err != nil {
+				t.Fatal(err)
+			}
+			run(t, b, breaker.Failure)
+			awaitState(t, b, gobreaker.StateHalfOpen)
+			probe, err := b.Allow()
+			if err != nil {
+				t.Fatalf("first half-open call: %v", err)
+			}
+			if _, err := b.Allow(); !errors.Is(err, breaker.ErrOpen) {
+				t.Fatalf("second call while the probe is out: %v, want refused", err)
+			}
+			probe.Done(tc.probe)
+			if st, _ := b.State(); st != tc.want {
+				t.Errorf("after the probe: %v, want %v", st, tc.want)
+			}
+		})
+	}
+}
+
+func TestSharedStateAcrossReplicas(t *testing.T) {
+	srv := redistest.Start(t)
+	newReplica := func(c *atomic.Int32) *breaker.Breaker {
+		st, err := redisstate.New(srv.Client(t), redisstate.Options{Prefix: "t"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := breaker.New("shared-up", breaker.Settings{ConsecutiveFailures: 4, FailureRatio: -1, OpenFor: 1500 * time.Millisecond}, st,
+			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { t.Errorf("store error: %v", err) }})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return b
+	}
+	var tripsA, tripsB atomic.Int32
+	a, b := newReplica(&tripsA), newReplica(&tripsB)
+	// Failures split between the replicas add up: A sees two, B two.
+	run(t, a, breaker.Failure, breaker.Failure)
+	run(t, b, breaker.Failure)
+	if st, _ := a.State(); st != gobreaker.StateClosed {
+		t.Fatalf("after 3 of 4 failures: %v", st)
+	}
+	run(t, b, breaker.Failure)
+	for name, r := range map[string]*breaker.Breaker{"A": a, "B": b} {
+		if _, err := r.Allow(); !errors.Is(err, breaker.ErrOpen) {
+			t.Errorf("replica %s after the 4th failure: %v, want open", name, err)
+		}
+	}
+	if tripsA.Load()+tripsB.Load() != 1 {
+		t.Errorf("trips A %d + B %d, want 1 in all", tripsA.Load(), tripsB.Load())
+	}
+	// A probe on A closes it for B too.
+	awaitState(t, b, gobreaker.StateHalfOpen)
+	p, err := a.Allow()
+	if err != nil {
+		t.Fatal(err)
+	}
+	p.Done(breaker.Success)
+	if st, _ := b.State(); st != gobreaker.StateClosed {
+		t.Errorf("B after A's probe succeeded: %v, want closed", st)
+	}
+}
+
+func TestStoreOutageFallsBackToLocalState(t *testing.T) {
+	srv := redistest.Start(t)
+	st, err := redisstate.New(srv.Client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
+	if err != nil {
+		t.Fatal(err)
+	}
+	var storeErrs atomic.Int32
+	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, st,
+		breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
+	if err != nil {
+		t.Fatal(err)
+	}
+	run(t, b, breaker.Success)
+	srv.Stop()
+	// Local state counts from the outage on and still trips.
+	if got := run(t, b, repeat(breaker.Failure, 5)...); got != 2 {
+		t.Errorf("allowed %d failing calls during the outage, want 2", got)
+	}
+	if storeErrs.Load() == 0 {
+		t.Error("no store error reported")
+	}
+}
+
+func TestSettingsValidate(t *testing.T) {
+	for _, s := range []breaker.Settings{
+		{ConsecutiveFailures: -2},
+		{FailureRatio: 1.5},
+		{MinRequests: -1},
+		{Window: -time.Second},
+		{OpenFor: -time.Second},
+		{Probes: -1},
+		{ConsecutiveFailures: -1, FailureRatio: -1},
+	} {
+		if _, err := breaker.New("x", s, nil, breaker.Hooks{}); err == nil {
+			t.Errorf("%+v accepted", s)
+		}
+	}
+}
+
+// Outcomes recorded at once from many goroutines on two replicas are all
+// counted in the shared state: the lock loses no update.
+func TestSharedRecordsLoseNoUpdate(t *testing.T) {
+	srv := redistest.Start(t)
+	c := srv.Client(t)
+	var storeErrs atomic.Int32
+	var replicas []*breaker.Breaker
+	for range 2 {
+		st, err := redisstate.New(c, redisstate.Options{Prefix: "count"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := breaker.New("busy-up", breaker.Settings{ConsecutiveFailures: 100000, FailureRatio: -1, Window: time.Hour}, st,
+			breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
+		if err != nil {
+			t.Fatal(err)
+		}
+		replicas = append(replicas, b)
+	}
+	const workers, each = 32, 10
+	var wg sync.WaitGroup
+	for w := range workers {
+		wg.Go(func() {
+			for range each {
+				run(t, replicas[w%2], breaker.Failure)
+			}
+		})
+	}
+	wg.Wait()
+	if n := storeErrs.Load(); n != 0 {
+		t.Fatalf("%d store errors under contention", n)
+	}
+	raw, err := c.Get(t.Context(), "count:breaker:{busy-up}:state").Bytes()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var s gobreaker.SharedState
+	if err := json.Unmarshal(raw, &s); err != nil {
+		t.Fatal(err)
+	}
+	if s.Counts.TotalFailures != workers*each {
+		t.Errorf("shared state counts %d failures, want %d", s.Counts.TotalFailures, workers*each)
+	}
+}

@@ -1,0 +1,98 @@
+package retry_test
+
+import (
+	"math/rand/v2"
+	"net/http"
+	"testing"
+	"time"
+
+	"github.com/stintlab/stint/proxy/retry"
+)
+
+func TestRetryAfter(t *testing.T) {
+	now := time.Date(2026, 3, 4, 5, 6, 7, 0, time.UTC)
+	tests := []struct {
+		name   string
+		header string
+		want   time.Duration
+		ok     bool
+	}{
+		{"absent", "", 0, false},
+		// RFC 9110 §10.2.3: Retry-After = HTTP-date / delay-seconds.
+		{"delay-seconds", "120", 120 * time.Second, true},
+		{"zero seconds", "0", 0, true},
+		{"spaces around", " 3 ", 3 * time.Second, true},
+		// The RFC's own example date (IMF-fixdate), taken relative to now.
+		{"HTTP-date in the future", now.Add(90 * time.Second).Format(http.TimeFormat), 90 * time.Second, true},
+		{"HTTP-date in the past", "Fri, 31 Dec 1999 23:59:59 GMT", 0, true},
+		{"obsolete RFC 850 date", now.Add(time.Minute).Format(time.RFC850), time.Minute, true},
+		{"negative", "-1", 0, false},
+		{"fraction", "1.5", 0, false},
+		{"garbage", "soon", 0, false},
+		{"overflow", "99999999999999999999", 0, false},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			h := http.Header{}
+			if tt.header != "" {
+				h.Set("Retry-After", tt.header)
+			}
+			got, ok := retry.RetryAfter(h, now)
+			if got != tt.want || ok != tt.ok {
+				t.Errorf("RetryAfter(%q) = %v, %v; want %v, %v", tt.header, got, ok, tt.want, tt.ok)
+			}
+		})
+	}
+}
+
+func TestBackoffStaysWithinFullJitterBounds(t *testing.T) {
+	p := retry.Policy{Base: 100 * time.Millisecond, MaxDelay: time.Second}
+	wantCeil := []time.Duration{100, 200, 400, 800, 1000, 1000, 1000}
+	r := rand.New(rand.NewPCG(1, 2))
+	for n, ms := range wantCeil {
+		ceil := ms * time.Millisecond
+		if got := p.Ceiling(n); got != ceil {
+			t.Fatalf("Ceiling(%d) = %v, want %v", n, got, ceil)
+		}
+		var lo, hi time.Duration = ceil, 0
+		for range 2000 {
+			d := p.Backoff(n, r)
+			if d < 0 || d > ceil {
+				t.Fatalf("Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
+			}
+			lo, hi = min(lo, d), max(hi, d)
+		}
+		// Full jitter spreads over the whole range, not just near the top.
+		if lo > ceil/10 || hi < ceil*9/10 {
+			t.Errorf("retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
+		}
+	}
+	if got := p.Ceiling(200); got != time.Second {
+		t.Errorf("Ceiling(200) = %v, want the cap (no overflow)", got)
+	}
+}
+
+func TestNextPrefersRetryAfterUpToTheCap(t *testing.T) {
+	p := retry.Policy{MaxDelay: 10 * time.Second}
+	r := rand.New(rand.NewPCG(3, 4))
+	now := time.Now()
+	h := http.Header{"Retry-After": {"7"}}
+	if d, ok := p.Next(0, h, now, r); !ok || d.Wait != 7*time.Second || !d.FromHeader {
+		t.Errorf("Retry-After 7: got %+v %v", d, ok)
+	}
+	h.Set("Retry-After", "11")
+	if d, ok := p.Next(0, h, now, r); ok || d.Wait != 11*time.Second {
+		t.Errorf("Retry-After above the cap: got %+v %v, want not ok", d, ok)
+	}
+	if d, ok := p.Next(2, nil, now, r); !ok || d.FromHeader || d.Wait > p.Ceiling(2) {
+		t.Errorf("no header: got %+v %v", d, ok)
+	}
+}
+
+func TestMaxAttempts(t *testing.T) {
+	for _, tt := range []struct{ in, want int }{{0, retry.DefaultAttempts}, {-1, 1}, {1, 1}, {5, 5}} {
+		if got := (retry.Policy{Attempts: tt.in}).MaxAttempts(); got != tt.want {
+			t.Errorf("Attempts %d: MaxAttempts = %d, want %d", tt.in, got, tt.want)
+		}
+	}
+}
