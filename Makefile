@@ -17,12 +17,13 @@ FUZZ_TARGETS := \
 	./cache/runs:FuzzImport:60000 \
 	./proxy:FuzzRequestLine:60000
 
-.PHONY: help build test vet unit fuzz-short bench bench-budgets bench-local bench-go clean
+.PHONY: help build test vet unit fuzz-short bench bench-shared bench-budgets bench-local bench-go clean
 
 help:
 	@echo "make build        build ./stint"
 	@echo "make test         vet, race-enabled unit tests, short fuzz runs (what CI runs)"
 	@echo "make bench        cache-hit and miss-path throughput against a bare Go server (needs wrk)"
+	@echo "make bench-shared hit throughput on embedded, Redis and Redis Cluster stores; p99 at half load"
 	@echo "make bench-go     Go benchmarks: keys, stores, hot tier"
 	@echo "make bench-budgets hit and miss throughput with spend control on vs off"
 	@echo "make bench-local  local model benchmarks (tokens/s, FLOP ceiling)"
@@ -33,7 +34,7 @@ build:
 test: vet unit fuzz-short
 
 vet:
-	@test -z "$$(gofmt -l cmd proxy cache budget searcher)" || { echo "gofmt needed:"; gofmt -l cmd proxy cache budget searcher; exit 1; }
+	@test -z "$$(gofmt -l cmd proxy cache budget searcher deploy)" || { echo "gofmt needed:"; gofmt -l cmd proxy cache budget searcher deploy; exit 1; }
 	$(GO) vet $(PKGS)
 
 unit:
@@ -48,6 +49,9 @@ fuzz-short:
 
 bench: build
 	bash proxy/bench/bench.sh
+
+bench-shared:
+	bash proxy/bench/shared.sh
 
 bench-budgets:
 	bash proxy/bench/budgets.sh

@@ -23,7 +23,17 @@ go build -o "$work/stint" ./cmd/stint
 go build -o "$work/benchserver" ./proxy/bench/benchserver
 go build -o "$work/openload" ./proxy/bench/openload
 
-free_port() { python3 -c 'import socket; s=socket.socket(); s.bind(("127.0.0.1",0)); print(s.getsockname()[1])'; }
+# A free port at most 55535: a cluster node also listens 10000 above its port.
+free_port() { python3 -c '
+import random, socket
+while True:
+    p = random.randint(20000, 45000)
+    try:
+        for q in (p, p + 10000):
+            socket.socket().bind(("127.0.0.1", q))
+        print(p); break
+    except OSError:
+        pass'; }
 start_redis() { # $1 port, rest: extra args
 	local port="$1"; shift
 	mkdir -p "$work/redis-$port"
@@ -37,12 +47,12 @@ start_bench() { # $1 = output file for the address, rest = args
 	for _ in $(seq 100); do [ -s "$out" ] && break; sleep 0.05; done
 	cat "$out"
 }
-start_stint() { # $1 name, $2 config file; prints the address
-	"$work/stint" serve --config "$2" --log-format json 2>"$work/stint-$1.log" & pids+=($!)
+start_stint() { # $1 name, $2 config file; sets addr[$1]
+	"$work/stint" serve --config "$2" --log-format json >/dev/null 2>"$work/stint-$1.log" & pids+=($!)
 	for _ in $(seq 200); do grep -q '"addr"' "$work/stint-$1.log" 2>/dev/null && break; sleep 0.05; done
 	local addr; addr="$(sed -n 's/.*"addr":"\([^"]*\)".*/\1/p' "$work/stint-$1.log" | head -1)"
 	[ -n "$addr" ] || { echo "stint ($1) did not start:" >&2; cat "$work/stint-$1.log" >&2; exit 1; }
-	echo "$addr"
+	addrs[$1]="$addr"
 }
 
 up="$(start_bench "$work/up.addr")"
@@ -65,19 +75,19 @@ YAML
 	echo "$work/$1.yaml"
 }
 list() { local IFS=,; echo "$*"; }
-declare -A addr
-addr[embedded]="$(start_stint embedded "$(config embedded "" "")")"
-addr[redis]="$(start_stint redis "$(config redis "store: {redis: {addrs: [127.0.0.1:$standalone]}}" "")")"
-addr[redis-nohot]="$(start_stint redis-nohot "$(config redis-nohot "store: {redis: {addrs: [127.0.0.1:$standalone], prefix: nohot}}" "cache: {hot_bytes: 0}")")"
-addr[cluster]="$(start_stint cluster "$(config cluster "store: {redis: {addrs: [$(list "${cluster[@]}")]}}" "")")"
-addr[cluster-nohot]="$(start_stint cluster-nohot "$(config cluster-nohot "store: {redis: {addrs: [$(list "${cluster[@]}")], prefix: nohot}}" "cache: {hot_bytes: 0}")")"
+declare -A addrs
+start_stint embedded "$(config embedded "" "")"
+start_stint redis "$(config redis "store: {redis: {addrs: [127.0.0.1:$standalone]}}" "")"
+start_stint redis-nohot "$(config redis-nohot "store: {redis: {addrs: [127.0.0.1:$standalone], prefix: nohot}}" "cache: {hot_bytes: 0}")"
+start_stint cluster "$(config cluster "store: {redis: {addrs: [$(list "${cluster[@]}")]}}" "")"
+start_stint cluster-nohot "$(config cluster-nohot "store: {redis: {addrs: [$(list "${cluster[@]}")], prefix: nohot}}" "cache: {hot_bytes: 0}")"
 
 hitbody='{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}'
 printf '%s' "$hitbody" >"$work/hit.body"
 setups=(embedded redis redis-nohot cluster cluster-nohot)
 for s in "${setups[@]}"; do
-	curl -s -o /dev/null "http://${addr[$s]}/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
-	curl -s -o "$work/hit-$s.json" -D "$work/hit-$s.hdr" "http://${addr[$s]}/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
+	curl -s -o /dev/null "http://${addrs[$s]}/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
+	curl -s -o "$work/hit-$s.json" -D "$work/hit-$s.hdr" "http://${addrs[$s]}/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
 	grep -qi '^stint-cache: hit' "$work/hit-$s.hdr" || { echo "$s: warm-up request was not a hit"; cat "$work/hit-$s.hdr"; exit 1; }
 done
 bare="$(start_bench "$work/bare.addr" --body "$work/hit-embedded.json")"
@@ -95,7 +105,7 @@ declare -A peak
 peak[bare]="$(run "$bare" | rps)"
 printf '%-26s %10.0f req/s\n' "bare Go server" "${peak[bare]}"
 for s in "${setups[@]}"; do
-	peak[$s]="$(run "${addr[$s]}" | rps)"
+	peak[$s]="$(run "${addrs[$s]}" | rps)"
 	printf '%-26s %10.0f req/s   %.2f x bare   %.2f x embedded\n' "stint serve, $s" "${peak[$s]}" \
 		"$(awk -v a="${peak[$s]}" -v b="${peak[bare]}" 'BEGIN {print a / b}')" \
 		"$(awk -v a="${peak[$s]}" -v b="${peak[embedded]}" 'BEGIN {print a / b}')"
@@ -104,5 +114,5 @@ done
 echo "== p99 of a hit at half of each setup's peak rate (open loop, $DURATION)"
 for s in "${setups[@]}"; do
 	half="$(awk -v p="${peak[$s]}" 'BEGIN {printf "%d", p / 2}')"
-	printf '%-26s at %6d/s: %s\n' "$s" "$half" "$("$work/openload" -url "http://${addr[$s]}/v1/completions" -body "$work/hit.body" -rate "$half" -duration "$DURATION")"
+	printf '%-26s at %6d/s: %s\n' "$s" "$half" "$("$work/openload" -url "http://${addrs[$s]}/v1/completions" -body "$work/hit.body" -rate "$half" -duration "$DURATION")"
 done
