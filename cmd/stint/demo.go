@@ -27,6 +27,7 @@ type demoFlags struct {
 	out     string
 	dataset string
 	steps   int
+	seed    int64
 }
 
 func newDemoCmd() *cobra.Command {
@@ -35,14 +36,14 @@ func newDemoCmd() *cobra.Command {
 		Use:   "demo",
 		Short: "Run the local model, the proxy and a short prompt search, all offline",
 		Long: `Start the local model, the caching proxy on the embedded store and a prompt
-search on the demo task (notes from an invented orchard co-op, labelled
-"harvest" or "repair"), then run the same search again to show the cache at
-work. Prints the results table and what the proxy saved, at invented demo
+search on the demo task (short sentences from an invented co-op's reading
+corner, to be named after the girl or the boy of its picture books, " Lily"
+or " Tim"), then run the same search again to show the cache at work. Prints the results table and what the proxy saved, at invented demo
 prices; writes the report, history and learning curve to --out.
 
 Run it from the repository root (the demo data is in testdata/search).`,
 		Example: `  go run ./cmd/stint demo
-  stint demo --model ../shared/models/stories260K.gguf --steps 40`,
+  stint demo --model ../shared/models/stories260K.gguf --steps 60 --seed 3`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			return runDemo(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), f)
@@ -53,7 +54,8 @@ Run it from the repository root (the demo data is in testdata/search).`,
 	fl.StringVar(&f.data, "data", "./stint-demo-data", "data directory of the demo's proxy")
 	fl.StringVar(&f.out, "out", "./stint-demo-out", "where the search writes its results")
 	fl.StringVar(&f.dataset, "dataset", filepath.Join("testdata", "search"), "folder with the demo task's data")
-	fl.IntVar(&f.steps, "steps", 60, "search steps")
+	fl.IntVar(&f.steps, "steps", 120, "search steps")
+	fl.Int64Var(&f.seed, "seed", 7, "the search's seed")
 	return cmd
 }
 
@@ -100,7 +102,7 @@ Get it one of these ways:
 
 	start := time.Now()
 	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
-	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("orchard-demo-%d", start.Unix())}
+	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix())}
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}
@@ -120,17 +122,18 @@ func writeDemoTask(f demoFlags) (string, error) {
 	if err != nil {
 		return "", err
 	}
-	if _, err := os.Stat(filepath.Join(dir, "orchard-train.jsonl")); err != nil {
+	if _, err := os.Stat(filepath.Join(dir, "reading-corner-train.jsonl")); err != nil {
 		return "", fmt.Errorf("the demo data is not at %s (run stint demo from the repository root, or give --dataset): %w", dir, err)
 	}
 	if f.steps <= 0 {
 		return "", errors.New("--steps must be positive")
 	}
 	text := strings.NewReplacer(
-		"train: orchard-train.jsonl", "train: "+filepath.Join(dir, "orchard-train.jsonl"),
-		"dev: orchard-dev.jsonl", "dev: "+filepath.Join(dir, "orchard-dev.jsonl"),
-		"test: orchard-test.jsonl", "test: "+filepath.Join(dir, "orchard-test.jsonl"),
+		"train: reading-corner-train.jsonl", "train: "+filepath.Join(dir, "reading-corner-train.jsonl"),
+		"dev: reading-corner-dev.jsonl", "dev: "+filepath.Join(dir, "reading-corner-dev.jsonl"),
+		"test: reading-corner-test.jsonl", "test: "+filepath.Join(dir, "reading-corner-test.jsonl"),
 		"steps: 200", fmt.Sprintf("steps: %d", f.steps),
+		"seed: 7", fmt.Sprintf("seed: %d", f.seed),
 	).Replace(task.ExampleFile)
 	if err := os.MkdirAll(f.data, 0o700); err != nil {
 		return "", err

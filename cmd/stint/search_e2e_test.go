@@ -37,7 +37,7 @@ func upstreamCalls(t *testing.T, c *child) int {
 func shortTask(t *testing.T) string {
 	t.Helper()
 	dir := t.TempDir()
-	for _, name := range []string{"orchard-train.jsonl", "orchard-dev.jsonl", "orchard-test.jsonl"} {
+	for _, name := range []string{"reading-corner-train.jsonl", "reading-corner-dev.jsonl", "reading-corner-test.jsonl"} {
 		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
 		if err != nil {
 			t.Fatal(err)
@@ -46,7 +46,7 @@ func shortTask(t *testing.T) string {
 			t.Fatal(err)
 		}
 	}
-	text := strings.NewReplacer("steps: 200", "steps: 4", "prompts_per_step: 16", "prompts_per_step: 4",
+	text := strings.NewReplacer("steps: 200", "steps: 4", "prompts_per_step: 8", "prompts_per_step: 4",
 		"examples_per_step: 16", "examples_per_step: 6").Replace(task.ExampleFile)
 	path := filepath.Join(dir, "task.yaml")
 	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
@@ -66,14 +66,14 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
 	first, second := t.TempDir(), t.TempDir()
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "orchard-e2e"); err != nil {
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e"); err != nil {
 		t.Fatalf("search run: %v\n%s", err, out)
 	}
 	recorded := upstreamCalls(t, c)
 	if recorded == 0 {
 		t.Fatal("the search made no upstream call")
 	}
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", second, "--run", "orchard-e2e", "--replay"); err != nil {
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", second, "--run", "reading-e2e", "--replay"); err != nil {
 		t.Fatalf("search replay: %v\n%s", err, out)
 	}
 	if got := upstreamCalls(t, c); got != recorded {
@@ -174,11 +174,11 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
 	whole, pieces := t.TempDir(), t.TempDir()
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", whole, "--run", "orchard-resume"); err != nil {
+	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", whole, "--run", "reading-resume"); err != nil {
 		t.Fatalf("search run: %v\n%s", err, out)
 	}
 	calls := upstreamCalls(t, c)
-	replay := []string{"search", "run", taskPath, "--proxy", proxyURL, "--out", pieces, "--run", "orchard-resume", "--replay", "--checkpoint-every", "1"}
+	replay := []string{"search", "run", taskPath, "--proxy", proxyURL, "--out", pieces, "--run", "reading-resume", "--replay", "--checkpoint-every", "1"}
 	if out, err := runCLI(t, append(replay, "--stop-after", "2")...); err != nil || !strings.Contains(out, "stopped early") {
 		t.Fatalf("first piece: %v\n%s", err, out)
 	}

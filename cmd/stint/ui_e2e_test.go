@@ -403,9 +403,9 @@ func TestOperatorPageInABrowser(t *testing.T) {
 	r := newUIRig(t)
 	r.traffic(t)
 
-	// A search on the sidecar, through the proxy, recorded as run orchard-ui.
+	// A search on the sidecar, through the proxy, recorded as run reading-ui.
 	var job jobs.Status
-	body := fmt.Sprintf(`{"task": %q, "run": "orchard-ui"}`, shortTask(t))
+	body := fmt.Sprintf(`{"task": %q, "run": "reading-ui"}`, shortTask(t))
 	resp, err := http.Post(r.sidecar+"/jobs", "application/json", strings.NewReader(body))
 	if err != nil {
 		t.Fatal(err)
@@ -645,8 +645,8 @@ func TestOperatorPageInABrowser(t *testing.T) {
 				t.Errorf("run %s cache share: page %v, API %v", run.Run, share, run.CacheShare)
 			}
 		}
-		if !seen["pear-tune"] || !seen["orchard-ui"] {
-			t.Fatalf("runs %+v, want pear-tune and orchard-ui", list.Runs)
+		if !seen["pear-tune"] || !seen["reading-ui"] {
+			t.Fatalf("runs %+v, want pear-tune and reading-ui", list.Runs)
 		}
 		if got := fig("run-share-lab/pear-tune"); got.Value != "0.5" || got.Text != "50.0%" {
 			t.Errorf("pear-tune: %+v, want half its 2 calls from the cache", got)

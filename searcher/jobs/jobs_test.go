@@ -35,7 +35,7 @@ func newRig(t *testing.T, steps int) rig {
 	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	t.Cleanup(srv.Close)
 	dir := t.TempDir()
-	for _, name := range []string{"orchard-train.jsonl", "orchard-dev.jsonl", "orchard-test.jsonl"} {
+	for _, name := range []string{"reading-corner-train.jsonl", "reading-corner-dev.jsonl", "reading-corner-test.jsonl"} {
 		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
 		if err != nil {
 			t.Fatal(err)
@@ -44,7 +44,7 @@ func newRig(t *testing.T, steps int) rig {
 			t.Fatal(err)
 		}
 	}
-	text := strings.NewReplacer("steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 16", "prompts_per_step: 4",
+	text := strings.NewReplacer("steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 8", "prompts_per_step: 4",
 		"examples_per_step: 16", "examples_per_step: 4").Replace(task.ExampleFile)
 	path := filepath.Join(dir, "task.yaml")
 	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {

@@ -22,9 +22,9 @@ func localServer(tb testing.TB) string {
 	return ts.URL + "/v1"
 }
 
-// orchardTexts fills the example task's template with the first n dev
+// exampleTexts fills the example task's template with the first n dev
 // examples under each prompt.
-func orchardTexts(tb testing.TB, n int, prompts ...string) (*task.Task, []string) {
+func exampleTexts(tb testing.TB, n int, prompts ...string) (*task.Task, []string) {
 	tb.Helper()
 	tk, err := task.Parse([]byte(task.ExampleFile), "../../testdata/search", nil)
 	if err != nil {

@@ -16,7 +16,7 @@ const vocabSize = 512
 // bit for bit, and a prompt array is the same prompts in one forward batch.
 func TestBatchedEqualsOneByOne(t *testing.T) {
 	base := localServer(t)
-	_, texts := orchardTexts(t, 4, "Note:", "the little tree")
+	_, texts := exampleTexts(t, 4, "Note:", "the little tree")
 	ctx := context.Background()
 	batched, err := newClient(t, Options{BaseURL: base, Model: "stories260K", TopLogprobs: 8, BatchSize: 8}).Score(ctx, texts)
 	if err != nil {
@@ -53,7 +53,7 @@ func TestBatchedEqualsOneByOne(t *testing.T) {
 // probabilities form a distribution (they sum to 1, a property of softmax).
 func TestVerbalizersAndFullDistribution(t *testing.T) {
 	base := localServer(t)
-	tk, texts := orchardTexts(t, 3, "Note:")
+	tk, texts := exampleTexts(t, 3, "Note:")
 	for _, ep := range []Endpoint{Completions, Chat} {
 		t.Run(string(ep), func(t *testing.T) {
 			c := newClient(t, Options{BaseURL: base, Model: "stories260K", Endpoint: ep, TopLogprobs: vocabSize})
@@ -86,7 +86,7 @@ func TestVerbalizersAndFullDistribution(t *testing.T) {
 // counts how often, so a search can tell the answer was cut.
 func TestShallowTopKFeedsReward(t *testing.T) {
 	base := localServer(t)
-	tk, texts := orchardTexts(t, 4, "Note:", "the big day")
+	tk, texts := exampleTexts(t, 4, "Note:", "the big day")
 	res, err := newClient(t, Options{BaseURL: base, Model: "stories260K", TopLogprobs: 2}).Score(context.Background(), texts)
 	if err != nil {
 		t.Fatal(err)

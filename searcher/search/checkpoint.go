@@ -12,7 +12,7 @@ import (
 )
 
 // checkpointVersion is the layout of State; a reader refuses any other.
-const checkpointVersion = 1
+const checkpointVersion = 2
 
 // ErrStopped ends a search that stopped early on purpose (StopAfter); its
 // last checkpoint resumes it.
@@ -37,6 +37,8 @@ type State struct {
 	Lookups    int           `json:"lookups"`
 	DevAcc     float64       `json:"dev_accuracy"`
 	GreedyText string        `json:"greedy_prompt"`
+	BestText   string        `json:"best_sampled_prompt"`
+	BestScore  float64       `json:"best_sampled_reward"`
 	Policy     []byte        `json:"policy"` // the policy's own checkpoint
 }
 
@@ -83,6 +85,7 @@ func (r *runner) snapshot(step int, res *Results, devAcc float64, greedy string)
 		Version: checkpointVersion, Task: r.t.Name, Seed: r.t.Seed, Step: step, Random: rnd,
 		History: append([]Point(nil), res.History...), Calls: append([]scorer.Call(nil), r.calls...),
 		Floored: r.floored, Lookups: r.lookups, DevAcc: devAcc, GreedyText: greedy, Policy: pol.Bytes(),
+		BestText: r.bestText, BestScore: r.bestScore,
 	}, nil
 }
 
@@ -95,5 +98,6 @@ func (r *runner) restore(s *State, res *Results) error {
 	res.History = append([]Point(nil), s.History...)
 	r.calls = append([]scorer.Call(nil), s.Calls...)
 	r.floored, r.lookups = s.Floored, s.Lookups
+	r.bestText, r.bestScore, r.seenBest = s.BestText, s.BestScore, s.Step > 0
 	return nil
 }

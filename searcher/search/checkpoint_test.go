@@ -2,18 +2,19 @@ package search
 
 import (
 	"errors"
+	"fmt"
 	"strings"
 	"testing"
 )
 
 func TestReadStateRefuses(t *testing.T) {
-	good := `{"version":1,"task":"orchard","seed":7,"step":3,"random":"AAAA","policy":"AAAA"}`
+	good := `{"version":2,"task":"orchard","seed":7,"step":3,"random":"AAAA","policy":"AAAA"}`
 	if _, err := ReadState(strings.NewReader(good), "orchard", 7); err != nil {
 		t.Fatalf("good checkpoint: %v", err)
 	}
 	tests := []struct{ name, text string }{
 		{"truncated", good[:len(good)/2]},
-		{"another version", strings.Replace(good, `"version":1`, `"version":2`, 1)},
+		{"another version", strings.Replace(good, `"version":2`, `"version":1`, 1)},
 		{"another task", strings.Replace(good, `"orchard"`, `"pantry"`, 1)},
 		{"another seed", strings.Replace(good, `"seed":7`, `"seed":8`, 1)},
 		{"no policy", strings.Replace(good, `,"policy":"AAAA"`, ``, 1)},
@@ -25,6 +26,34 @@ func TestReadStateRefuses(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			if _, err := ReadState(strings.NewReader(tt.text), "orchard", 7); !errors.Is(err, ErrCheckpoint) {
 				t.Errorf("ReadState: %v, want ErrCheckpoint", err)
+			}
+		})
+	}
+}
+
+func TestNoteBestKeepsTheFirstHighestMean(t *testing.T) {
+	tests := []struct {
+		name  string
+		steps [][][]float64 // per step, per prompt, the raw rewards
+		want  string
+	}{
+		{"one step", [][][]float64{{{1, 2}, {3, 4}, {0, 0}}}, "p0-1"},
+		{"ties keep the first", [][][]float64{{{2, 2}, {1, 3}}}, "p0-0"},
+		{"a later step wins", [][][]float64{{{1, 1}, {0, 0}}, {{0, 0}, {5, 5}}}, "p1-1"},
+		{"all negative", [][][]float64{{{-3, -3}, {-1, -2}}}, "p0-1"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			var r runner
+			for s, raw := range tt.steps {
+				texts := make([]string, len(raw))
+				for i := range texts {
+					texts[i] = fmt.Sprintf("p%d-%d", s, i)
+				}
+				r.noteBest(texts, raw)
+			}
+			if r.bestText != tt.want {
+				t.Errorf("best = %q, want %q", r.bestText, tt.want)
 			}
 		})
 	}

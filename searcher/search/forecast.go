@@ -34,7 +34,7 @@ func PlanFor(t *task.Task, evalEvery int) Plan {
 	if t.Steps%evalEvery != 0 {
 		evals++
 	}
-	contenders := 3 + len(t.ManualPrompts) // rl, empty, random and the manual prompts
+	contenders := 4 + len(t.ManualPrompts) // rl, rl-best, empty, random and the manual prompts
 	longest := 0
 	for _, set := range [][]task.Example{t.Train, t.Dev, t.Test} {
 		for _, e := range set {

@@ -14,19 +14,20 @@ func TestPlanForTheExampleTask(t *testing.T) {
 		t.Fatal(err)
 	}
 	p := PlanFor(tk, 0)
-	// Hand-worked from the example: 200 steps × 16 prompts × 16 examples =
-	// 51,200 scorings for the search and as many for random search; dev
-	// (20 notes) every 20 steps is 10 × 20 = 200, and the 5 contenders
-	// (rl, empty, 2 manual, random) on 40 + 20 + 20 notes are 400.
-	if p.Search != 51200 || p.Random != 51200 || p.Evaluation != 600 || p.Judgements() != 103000 {
-		t.Errorf("plan %+v, want 51200 + 51200 + 600", p)
+	// Hand-worked from the example: 200 steps × 8 prompts × 16 examples =
+	// 25,600 scorings for the search and as many for random search; dev
+	// (20 sentences) every 20 steps is 10 × 20 = 200, and the 6 contenders
+	// (rl, rl-best, empty, 2 manual, random) on 40 + 20 + 40 sentences are
+	// 600.
+	if p.Search != 25600 || p.Random != 25600 || p.Evaluation != 800 || p.Judgements() != 52000 {
+		t.Errorf("plan %+v, want 25600 + 25600 + 800", p)
 	}
 	if p.TokensPerJudgement <= 0 {
 		t.Errorf("tokens per judgement %d", p.TokensPerJudgement)
 	}
-	// 103,000 scorings × T tokens at 1 USD per million in, plus one output
+	// 52,000 scorings × T tokens at 1 USD per million in, plus one output
 	// token each at 2 USD per million.
-	want := (103000*float64(p.TokensPerJudgement)*1 + 103000*2) / 1e6
+	want := (52000*float64(p.TokensPerJudgement)*1 + 52000*2) / 1e6
 	if got := p.Cost(scorer.Price{InputPerMillion: 1, OutputPerMillion: 2}); got != want {
 		t.Errorf("cost %v, want %v", got, want)
 	}

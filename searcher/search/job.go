@@ -62,6 +62,9 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	if len(vocab.Actions()) == 0 {
 		return oc, errors.New("search: the task's allow_list admits no token of the model")
 	}
+	if t.AutoFactor {
+		t.Reward.Factor = task.AutoRewardFactor(t.PromptLength, len(vocab.Actions()))
+	}
 	backbone, err := policy.NewLocal(m, policy.LocalOptions{})
 	if err != nil {
 		return oc, err
@@ -77,7 +80,10 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 			return oc, fmt.Errorf("search: resume %s: %w", ckptPath, err)
 		}
 		fmt.Fprintf(log, "resuming after step %d from %s\n", resume.Step, ckptPath)
-	} else if trainer, err = policy.NewTrainer(backbone, policy.Config{PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions()}); err != nil {
+	} else if trainer, err = policy.NewTrainer(backbone, policy.Config{
+		PromptLength: t.PromptLength, Seed: uint64(t.Seed), Actions: vocab.Actions(),
+		LearningRate: t.Policy.LearningRate, TopK: t.Policy.TopK, Polyak: t.Policy.TargetRate,
+	}); err != nil {
 		return oc, err
 	}
 	oc.Run = j.Run

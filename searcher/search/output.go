@@ -62,7 +62,9 @@ func WriteReport(w io.Writer, r Results, wall string) error {
 	_, err := fmt.Fprintf(w, `# Prompt search: %s
 
 Seed %d, %d steps. Judgements are prompt × example scorings; the RL search and
-the random baseline spend the same number.
+the random baseline spend the same number. "rl" is the policy's greedy prompt
+at the end; "rl-best" (when it differs) the prompt the policy sampled with the
+best reward on its step's batch, picked the way random search picks its own.
 
 %s
 ## Through the proxy

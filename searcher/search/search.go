@@ -106,7 +106,7 @@ type Point struct {
 
 // Contender is a prompt and how it did.
 type Contender struct {
-	Method   string  `json:"method"` // "rl", "empty", "manual", "random"
+	Method   string  `json:"method"` // "rl", "rl-best", "empty", "manual", "random"
 	Prompt   string  `json:"prompt"`
 	TrainAcc float64 `json:"train_accuracy"`
 	DevAcc   float64 `json:"dev_accuracy"`
@@ -143,6 +143,10 @@ type Settings struct {
 	ExamplesPerStep int               `json:"examples_per_step"`
 	TopLogprobs     int               `json:"top_logprobs"`
 	Actions         int               `json:"action_vocabulary"`
+	RewardFactor    float64           `json:"reward_factor"`
+	LearningRate    float64           `json:"learning_rate"`
+	TopK            int               `json:"top_k"`
+	TargetRate      float64           `json:"target_rate"`
 }
 
 // Versions say what produced a result.
@@ -194,6 +198,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		if err != nil {
 			return res, fmt.Errorf("search: step %d: %w", step, err)
 		}
+		r.noteBest(texts, st.Raw)
 		ps, err := o.Policy.Update(ctx, prompts, st.PerPrompt)
 		if err != nil {
 			return res, fmt.Errorf("search: step %d: update: %w", step, err)
@@ -233,7 +238,11 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		}
 	}
 	searchCalls := t.Steps * t.PromptsPerStep * t.ExamplesPerStep
-	contenders := []Contender{{Method: "rl", Prompt: greedyText, Calls: searchCalls}, {Method: "empty", Prompt: ""}}
+	contenders := []Contender{{Method: "rl", Prompt: greedyText, Calls: searchCalls}}
+	if r.bestText != greedyText {
+		contenders = append(contenders, Contender{Method: "rl-best", Prompt: r.bestText, Calls: searchCalls})
+	}
+	contenders = append(contenders, Contender{Method: "empty", Prompt: ""})
 	for _, m := range t.ManualPrompts {
 		contenders = append(contenders, Contender{Method: "manual", Prompt: m})
 	}
@@ -274,6 +283,20 @@ type runner struct {
 	calls   []scorer.Call
 	floored int
 	lookups int
+	// bestText is the sampled prompt with the highest mean raw reward on
+	// its step's batch so far (the first one on ties), bestScore that mean.
+	bestText  string
+	bestScore float64
+	seenBest  bool
+}
+
+// noteBest keeps the step's best sampled prompt if it beats the best so far.
+func (r *runner) noteBest(texts []string, raw [][]float64) {
+	for i, row := range raw {
+		if s := mean(row); !r.seenBest || s > r.bestScore {
+			r.bestText, r.bestScore, r.seenBest = texts[i], s, true
+		}
+	}
 }
 
 // trainBatch draws the step's training examples, without repeats when the
@@ -333,7 +356,7 @@ func (r *runner) accuracy(ctx context.Context, prompt string, examples []task.Ex
 }
 
 // randomSearch draws uniformly random prompts of the task's length from
-// the same actions and keeps the one with the best raw reward on a train
+// the same actions and keeps the one with the best raw reward on one train
 // batch, spending the same number of judgements as the search.
 func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error) {
 	actions := r.o.Vocab.Actions()
@@ -341,6 +364,9 @@ func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error
 	best := Contender{Method: "random"}
 	bestScore := 0.0
 	spent := 0
+	// Every random prompt is judged on the same batch, so their rewards
+	// compare like with like and the best one is picked on one yardstick.
+	batch := r.trainBatch()
 	for spent+perPrompt <= budget {
 		n := min(r.t.PromptsPerStep, (budget-spent)/perPrompt)
 		texts := make([]string, n)
@@ -351,7 +377,7 @@ func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error
 			}
 			texts[i] = r.o.Vocab.Text(ids)
 		}
-		st, err := r.judge(ctx, texts, r.trainBatch())
+		st, err := r.judge(ctx, texts, batch)
 		if err != nil {
 			return best, fmt.Errorf("search: random baseline: %w", err)
 		}

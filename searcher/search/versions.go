@@ -1,13 +1,14 @@
 package search
 
 import (
+	"cmp"
 	"runtime/debug"
 
 	"github.com/stintlab/stint/searcher/task"
 )
 
 // resultsFormat is the layout version of results.json.
-const resultsFormat = 1
+const resultsFormat = 2
 
 func settingsOf(t *task.Task, actions int) Settings {
 	labels := make(map[string]string, len(t.Labels))
@@ -17,7 +18,8 @@ func settingsOf(t *task.Task, actions int) Settings {
 	return Settings{
 		Model: t.Model, Endpoint: string(t.Endpoint), Template: t.Template, Labels: labels,
 		PromptLength: t.PromptLength, PromptsPerStep: t.PromptsPerStep, ExamplesPerStep: t.ExamplesPerStep,
-		TopLogprobs: t.TopLogprobs, Actions: actions,
+		TopLogprobs: t.TopLogprobs, Actions: actions, RewardFactor: cmp.Or(t.Reward.Factor, 1),
+		LearningRate: t.Policy.LearningRate, TopK: min(t.Policy.TopK, actions), TargetRate: t.Policy.TargetRate,
 	}
 }
 

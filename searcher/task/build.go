@@ -77,15 +77,37 @@ func (b *builder) build(r *rawTask) *Task {
 	t.PromptsPerStep = b.count("prompts_per_step", r.PromptsPerStep, DefaultPromptsPerStep, minPrompts)
 	if r.AllowList != nil {
 		t.AllowList = AllowList{WordInitial: r.AllowList.WordInitial, LettersOnly: r.AllowList.LettersOnly, Exclude: r.AllowList.Exclude}
+		t.AllowList.MinChars = b.count("allow_list.min_chars", r.AllowList.MinChars, 0, 0)
 		for i, x := range t.AllowList.Exclude {
 			if x == "" {
 				b.fail(fmt.Sprintf("allow_list.exclude[%d]", i), ErrInvalid, "an excluded token must not be empty")
 			}
 		}
 	}
+	t.AutoFactor = r.Reward == nil || r.Reward.Scale == nil || r.Reward.Scale.Factor == nil
+	t.Policy = b.policy(r.Policy)
 	t.Labels = b.labels(&r.Labels)
 	b.data(t, r.Data)
 	return t
+}
+
+func (b *builder) policy(r *rawPolicy) PolicySettings {
+	p := PolicySettings{LearningRate: DefaultLearningRate, TopK: DefaultTopK, TargetRate: DefaultTargetRate}
+	if r == nil {
+		return p
+	}
+	if r.LearningRate != nil {
+		if p.LearningRate = *r.LearningRate; !(p.LearningRate > 0 && p.LearningRate < 1) {
+			b.fail("policy.learning_rate", ErrInvalid, "must be in (0, 1), got %v", p.LearningRate)
+		}
+	}
+	p.TopK = b.count("policy.top_k", r.TopK, DefaultTopK, 1)
+	if r.TargetRate != nil {
+		if p.TargetRate = *r.TargetRate; !(p.TargetRate > 0 && p.TargetRate <= 1) {
+			b.fail("policy.target_rate", ErrInvalid, "must be in (0, 1], got %v", p.TargetRate)
+		}
+	}
+	return p
 }
 
 // count returns *v, or def when absent, refusing values below least.

@@ -1,41 +1,45 @@
 package task
 
-// ExampleFile is a complete, commented task file in an invented scenario: notes
-// left on the board of the Larkspur Hill orchard co-op, sorted into
-// "harvest" notes and "repair" notes. Its datasets ship in the repository's
-// testdata/search folder (orchard-train.jsonl, orchard-dev.jsonl,
-// orchard-test.jsonl); parse it with that folder as dir. The verbalizers are
-// single tokens of the stories260K model, so the offline demo can score it.
-const ExampleFile = `# A prompt-search task: classify the Larkspur Hill orchard co-op's notes.
-name: orchard-notes
+// ExampleFile is a complete, commented task file in an invented scenario:
+// the reading corner of the Larkspur Hill co-op sorts short sentences by
+// who they are about, naming them after the two children of its picture
+// books, Lily and Tim. Its datasets ship in the repository's
+// testdata/search folder (reading-corner-train.jsonl, -dev.jsonl and
+// -test.jsonl); parse it with that folder as dir. The verbalizers are single
+// tokens of the stories260K model, so the offline demo can score it.
+const ExampleFile = `# A prompt-search task: the Larkspur Hill co-op's reading corner names who a
+# short sentence is about, after its picture books' two children. The
+# sentences carry only pronouns ("she", "his", "the girl"), so a prompt that
+# ties them to the names helps the model.
+name: reading-corner
 
 # Datasets, relative to this file. JSONL (one {"text": ..., "label": ...}
 # object a line) or CSV with a header row; the format follows the extension
 # unless format is set. text_field and label_field name the JSON fields or
 # CSV columns (defaults: text, label).
 data:
-  train: orchard-train.jsonl
-  dev: orchard-dev.jsonl
-  test: orchard-test.jsonl        # optional: held out for the final report
+  train: reading-corner-train.jsonl
+  dev: reading-corner-dev.jsonl
+  test: reading-corner-test.jsonl   # optional: held out for the final report
   text_field: text
   label_field: label
 
 # Each label and its verbalizer: the single token (as the API names it,
 # leading space included) whose next-token probability is the model's vote.
 labels:
-  harvest: " happy"
-  repair: " big"
+  lily: " Lily"
+  tim: " Tim"
 
 # What is sent for one example. {prompt} (required) is the searched prompt,
 # {input} the example's text.
-template: "{input} {prompt} They were"
+template: "{input} {prompt} The name was"
 
 endpoint: completions             # completions (batched prompt arrays) or chat
 model: stories260K
 
 prompt_length: 5                  # tokens in a searched prompt
 steps: 200
-prompts_per_step: 16              # prompts sampled per step (at least 2: rewards are z-scored across them)
+prompts_per_step: 8               # prompts sampled per step (at least 2: rewards are z-scored across them)
 examples_per_step: 16             # training examples each prompt is scored on per step
 seed: 7
 concurrency: 4                    # scoring calls in flight
@@ -44,8 +48,8 @@ top_logprobs: 20                  # next-token log-probabilities asked for; host
 
 # Hand-written prompts the search is compared with.
 manual_prompts:
-  - "The note is about"
-  - "Is this picking or fixing?"
+  - "Lily is a girl. Tim is a boy."
+  - "A story"
 
 # The classification reward (Deng et al. 2022, RLPrompt): 200·Gap when the
 # true label wins, 180·Gap when it does not, z-scored per input across the
@@ -54,7 +58,7 @@ reward:
   correct: 200
   wrong: 180
   zscore: true
-  scale: {factor: 1, clip: 0}
+  # scale: {factor: 100, clip: 0}  # unset factor: 5 × prompt_length × ln(allowed tokens)
   # missing_logprob: -20          # log-probability of a verbalizer absent from the top-k list;
                                   # unset: the lowest one returned minus ln 2
 
@@ -62,5 +66,12 @@ reward:
 allow_list:
   word_initial: true              # only tokens that start a word
   letters_only: true
-  exclude: [" happy", " big"]     # never the verbalizers themselves
+  min_chars: 2                    # at least this many letters past the space
+  exclude: [" Lily", " Tim"]      # never the verbalizers themselves
+
+# The learner (soft Q-learning). All optional.
+policy:
+  learning_rate: 0.003            # Adam's step size
+  top_k: 256                      # sampling draws from the k most likely tokens
+  target_rate: 0.001              # Polyak rate of the target network
 `

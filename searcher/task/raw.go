@@ -22,6 +22,7 @@ type rawTask struct {
 	ManualPrompts   []string   `yaml:"manual_prompts"`
 	Reward          *rawReward `yaml:"reward"`
 	AllowList       *rawAllow  `yaml:"allow_list"`
+	Policy          *rawPolicy `yaml:"policy"`
 }
 
 type rawData struct {
@@ -49,5 +50,12 @@ type rawScale struct {
 type rawAllow struct {
 	WordInitial bool     `yaml:"word_initial"`
 	LettersOnly bool     `yaml:"letters_only"`
+	MinChars    *int     `yaml:"min_chars"`
 	Exclude     []string `yaml:"exclude"`
+}
+
+type rawPolicy struct {
+	LearningRate *float64 `yaml:"learning_rate"`
+	TopK         *int     `yaml:"top_k"`
+	TargetRate   *float64 `yaml:"target_rate"`
 }

@@ -1,8 +1,10 @@
 package task
 
 import (
+	"math"
 	"strings"
 	"unicode"
+	"unicode/utf8"
 
 	"github.com/stintlab/stint/searcher/reward"
 )
@@ -35,6 +37,15 @@ const (
 	// DefaultTopLogprobs is the largest depth hosted chat APIs commonly
 	// allow (about 20); the local model allows up to its vocabulary size.
 	DefaultTopLogprobs = 20
+	// DefaultLearningRate is the policy's Adam step size when the task
+	// sets none: a value that learned on the demo task, not a tuned one.
+	DefaultLearningRate = 0.003
+	// DefaultTopK is how many of the policy's most likely tokens a sampled
+	// prompt draws from (Deng et al. 2022 use 256).
+	DefaultTopK = 256
+	// DefaultTargetRate is the Polyak rate of the target network (Deng et
+	// al. 2022 use 0.001).
+	DefaultTargetRate = 0.001
 )
 
 // Task is a validated task file. Every field is filled (defaults applied);
@@ -74,6 +85,34 @@ type Task struct {
 	Reward reward.Config
 	// AllowList restricts the tokens a searched prompt may use.
 	AllowList AllowList
+	// Policy tunes the learner.
+	Policy PolicySettings
+	// AutoFactor is set when the file leaves reward.scale.factor out: the
+	// search then scales rewards by AutoRewardFactor of its action count.
+	AutoFactor bool
+}
+
+// PolicySettings tune the soft Q-learning policy.
+type PolicySettings struct {
+	// LearningRate is Adam's step size.
+	LearningRate float64
+	// TopK is how many of the most likely tokens sampling draws from.
+	TopK int
+	// TargetRate is τ of the target network's Polyak update.
+	TargetRate float64
+}
+
+// AutoRewardFactor is the reward scale used when a task sets none:
+// 5·L·ln|A| for prompts of length L over |A| actions. A z-scored reward is
+// about 1 in size, while a near-uniform policy's soft value over a whole
+// prompt is about L·ln|A|; rewards on that scale move the policy within a
+// few hundred steps instead of being drowned by the entropy term. The
+// constant 5 is an engineering choice measured on the demo task.
+func AutoRewardFactor(promptLength, actions int) float64 {
+	if promptLength < 1 || actions < 2 {
+		return 1
+	}
+	return 5 * float64(promptLength) * math.Log(float64(actions))
 }
 
 // Label is one class and the single token that stands for it.
@@ -98,6 +137,10 @@ type AllowList struct {
 	// LettersOnly allows only tokens whose text, past a leading space, is
 	// letters.
 	LettersOnly bool
+	// MinChars, when positive, allows only tokens with at least that many
+	// characters past a leading space (short pieces like " a" rarely carry
+	// meaning a prompt can use).
+	MinChars int
 	// Exclude lists tokens never to use (for instance the verbalizers).
 	Exclude []string
 }
@@ -115,6 +158,9 @@ func (a AllowList) Allowed(token string) bool {
 	}
 	rest, initial := strings.CutPrefix(token, " ")
 	if a.WordInitial && (!initial || rest == "") {
+		return false
+	}
+	if a.MinChars > 0 && utf8.RuneCountInString(rest) < a.MinChars {
 		return false
 	}
 	if a.LettersOnly {

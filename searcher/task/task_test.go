@@ -2,6 +2,7 @@ package task
 
 import (
 	"errors"
+	"math"
 	"strings"
 	"testing"
 )
@@ -11,30 +12,33 @@ func TestExampleFileParses(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Sizes of testdata/search/orchard-{train,dev,test}.jsonl.
-	if len(task.Train) != 40 || len(task.Dev) != 20 || len(task.Test) != 20 {
-		t.Errorf("sizes = %d/%d/%d, want 40/20/20", len(task.Train), len(task.Dev), len(task.Test))
+	// Sizes of testdata/search/reading-corner-{train,dev,test}.jsonl.
+	if len(task.Train) != 40 || len(task.Dev) != 20 || len(task.Test) != 40 {
+		t.Errorf("sizes = %d/%d/%d, want 40/20/40", len(task.Train), len(task.Dev), len(task.Test))
 	}
-	want := []Label{{"harvest", " happy"}, {"repair", " big"}}
+	want := []Label{{"lily", " Lily"}, {"tim", " Tim"}}
 	if len(task.Labels) != 2 || task.Labels[0] != want[0] || task.Labels[1] != want[1] {
 		t.Errorf("labels = %q, want %q (file order)", task.Labels, want)
 	}
 	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 2.5 {
 		t.Errorf("endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
 	}
-	if task.Reward.Correct != 200 || task.Reward.Wrong != 180 || task.Reward.NoZScore || task.Reward.Factor != 1 {
-		t.Errorf("reward = %+v", task.Reward)
+	if task.Reward.Correct != 200 || task.Reward.Wrong != 180 || task.Reward.NoZScore || task.Reward.Factor != 0 || !task.AutoFactor {
+		t.Errorf("reward = %+v, auto factor %v", task.Reward, task.AutoFactor)
 	}
-	if !task.AllowList.WordInitial || len(task.ManualPrompts) != 2 {
+	if !task.AllowList.WordInitial || task.AllowList.MinChars != 2 || len(task.ManualPrompts) != 2 {
 		t.Errorf("allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
 	}
-	if got, want := task.Fill("The fence fell down.", "Note:"), "The fence fell down. Note: They were"; got != want {
+	if want := (PolicySettings{LearningRate: 0.003, TopK: 256, TargetRate: 0.001}); task.Policy != want {
+		t.Errorf("policy = %+v, want %+v", task.Policy, want)
+	}
+	if got, want := task.Fill("She hugged her doll.", "Story:"), "She hugged her doll. Story: The name was"; got != want {
 		t.Errorf("Fill = %q, want %q", got, want)
 	}
-	if got := task.Verbalizers(); len(got) != 2 || got[1] != " big" {
+	if got := task.Verbalizers(); len(got) != 2 || got[1] != " Tim" {
 		t.Errorf("Verbalizers = %q", got)
 	}
-	if task.LabelIndex("repair") != 1 || task.LabelIndex("weed") != -1 {
+	if task.LabelIndex("tim") != 1 || task.LabelIndex("tom") != -1 {
 		t.Error("LabelIndex: wrong index")
 	}
 }
@@ -133,6 +137,11 @@ func TestParseErrors(t *testing.T) {
 		{"zero correct", func(s string) string { return s + "reward:\n  correct: 0\n" }, false, ErrInvalid, "reward.correct", 11},
 		{"positive floor", func(s string) string { return s + "reward:\n  missing_logprob: 1\n" }, false, ErrInvalid, "reward.missing_logprob", 11},
 		{"negative clip", func(s string) string { return s + "reward:\n  scale: {clip: -1}\n" }, false, ErrInvalid, "reward.scale.clip", 11},
+		{"negative min_chars", func(s string) string { return s + "allow_list:\n  min_chars: -1\n" }, false, ErrInvalid, "allow_list.min_chars", 11},
+		{"learning rate too big", func(s string) string { return s + "policy:\n  learning_rate: 2\n" }, false, ErrInvalid, "policy.learning_rate", 11},
+		{"zero top_k", func(s string) string { return s + "policy:\n  top_k: 0\n" }, false, ErrInvalid, "policy.top_k", 11},
+		{"zero target rate", func(s string) string { return s + "policy:\n  target_rate: 0\n" }, false, ErrInvalid, "policy.target_rate", 11},
+		{"unknown policy key", func(s string) string { return s + "policy:\n  temperature: 1\n" }, false, ErrUnknownField, "policy.temperature", 11},
 		{"empty file", func(string) string { return "" }, false, ErrMissing, "(file)", 0},
 	}
 	for _, tt := range tests {
@@ -165,6 +174,23 @@ func TestSeveralErrorsJoined(t *testing.T) {
 	for _, want := range []string{"name:", "prompt_length:"} {
 		if err == nil || !strings.Contains(err.Error(), want) {
 			t.Errorf("err = %v, want it to mention %q", err, want)
+		}
+	}
+}
+
+func TestAutoRewardFactor(t *testing.T) {
+	tests := []struct {
+		length, actions int
+		want            float64
+	}{
+		{5, 100, 5 * 5 * math.Log(100)}, // 115.13: 5·L·ln|A|
+		{1, 2, 5 * math.Ln2},
+		{0, 100, 1}, // no prompt: no scale to match
+		{5, 1, 1},   // one action: the policy has no entropy
+	}
+	for _, tt := range tests {
+		if got := AutoRewardFactor(tt.length, tt.actions); math.Abs(got-tt.want) > 1e-12 {
+			t.Errorf("AutoRewardFactor(%d, %d) = %v, want %v", tt.length, tt.actions, got, tt.want)
 		}
 	}
 }
