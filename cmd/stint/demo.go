@@ -38,7 +38,8 @@ func newDemoCmd() *cobra.Command {
 		Long: `Start the local model, the caching proxy on the embedded store and a prompt
 search on the demo task (short sentences from an invented co-op's reading
 corner, to be named after the girl or the boy of its picture books, " Lily"
-or " Tim"), then run the same search again to show the cache at work. Prints the results table and what the proxy saved, at invented demo
+or " Tim"), then run the same search again to show the cache at work.
+Prints the results table and what the proxy saved, at invented demo
 prices; writes the report, history and learning curve to --out.
 
 Run it from the repository root (the demo data is in testdata/search).`,

@@ -4,6 +4,7 @@ import (
 	"cmp"
 	"runtime/debug"
 
+	"github.com/stintlab/stint/searcher/policy"
 	"github.com/stintlab/stint/searcher/task"
 )
 
@@ -19,7 +20,8 @@ func settingsOf(t *task.Task, actions int) Settings {
 		Model: t.Model, Endpoint: string(t.Endpoint), Template: t.Template, Labels: labels,
 		PromptLength: t.PromptLength, PromptsPerStep: t.PromptsPerStep, ExamplesPerStep: t.ExamplesPerStep,
 		TopLogprobs: t.TopLogprobs, Actions: actions, RewardFactor: cmp.Or(t.Reward.Factor, 1),
-		LearningRate: t.Policy.LearningRate, TopK: min(t.Policy.TopK, actions), TargetRate: t.Policy.TargetRate,
+		LearningRate: t.Policy.LearningRate, TopK: min(cmp.Or(t.Policy.TopK, policy.DefaultTopK), actions),
+		TargetRate: cmp.Or(t.Policy.TargetRate, policy.DefaultPolyak),
 	}
 }
 

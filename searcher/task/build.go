@@ -92,7 +92,7 @@ func (b *builder) build(r *rawTask) *Task {
 }
 
 func (b *builder) policy(r *rawPolicy) PolicySettings {
-	p := PolicySettings{LearningRate: DefaultLearningRate, TopK: DefaultTopK, TargetRate: DefaultTargetRate}
+	p := PolicySettings{LearningRate: DefaultLearningRate}
 	if r == nil {
 		return p
 	}
@@ -101,7 +101,7 @@ func (b *builder) policy(r *rawPolicy) PolicySettings {
 			b.fail("policy.learning_rate", ErrInvalid, "must be in (0, 1), got %v", p.LearningRate)
 		}
 	}
-	p.TopK = b.count("policy.top_k", r.TopK, DefaultTopK, 1)
+	p.TopK = b.count("policy.top_k", r.TopK, 0, 1)
 	if r.TargetRate != nil {
 		if p.TargetRate = *r.TargetRate; !(p.TargetRate > 0 && p.TargetRate <= 1) {
 			b.fail("policy.target_rate", ErrInvalid, "must be in (0, 1], got %v", p.TargetRate)

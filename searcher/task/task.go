@@ -38,14 +38,9 @@ const (
 	// allow (about 20); the local model allows up to its vocabulary size.
 	DefaultTopLogprobs = 20
 	// DefaultLearningRate is the policy's Adam step size when the task
-	// sets none: a value that learned on the demo task, not a tuned one.
+	// sets none: a value that learned on the demo task, not a tuned one
+	// (the policy package's own default, for any caller, is 1e-3).
 	DefaultLearningRate = 0.003
-	// DefaultTopK is how many of the policy's most likely tokens a sampled
-	// prompt draws from (Deng et al. 2022 use 256).
-	DefaultTopK = 256
-	// DefaultTargetRate is the Polyak rate of the target network (Deng et
-	// al. 2022 use 0.001).
-	DefaultTargetRate = 0.001
 )
 
 // Task is a validated task file. Every field is filled (defaults applied);
@@ -94,11 +89,13 @@ type Task struct {
 
 // PolicySettings tune the soft Q-learning policy.
 type PolicySettings struct {
-	// LearningRate is Adam's step size.
+	// LearningRate is Adam's step size (DefaultLearningRate when unset).
 	LearningRate float64
-	// TopK is how many of the most likely tokens sampling draws from.
+	// TopK is how many of the most likely tokens sampling draws from; 0
+	// means the policy's default.
 	TopK int
-	// TargetRate is τ of the target network's Polyak update.
+	// TargetRate is τ of the target network's Polyak update; 0 means the
+	// policy's default.
 	TargetRate float64
 }
 

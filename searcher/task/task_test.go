@@ -78,6 +78,11 @@ func TestDefaults(t *testing.T) {
 	if task.Endpoint != Completions || task.Test != nil || len(task.Train) != 2 {
 		t.Errorf("endpoint %q, test %v, train %d", task.Endpoint, task.Test, len(task.Train))
 	}
+	// No policy section: the task's learning rate, the policy's own top-k
+	// and target rate (zero); no reward scale: the automatic factor.
+	if want := (PolicySettings{LearningRate: DefaultLearningRate}); task.Policy != want || !task.AutoFactor || task.AllowList.MinChars != 0 {
+		t.Errorf("policy %+v, auto factor %v, min chars %d", task.Policy, task.AutoFactor, task.AllowList.MinChars)
+	}
 }
 
 func TestCSVData(t *testing.T) {
