@@ -12,6 +12,7 @@ import (
 	"time"
 
 	"github.com/stintlab/stint/proxy/breaker"
+	"github.com/stintlab/stint/proxy/plainhttp"
 	"github.com/stintlab/stint/proxy/retry"
 )
 
@@ -75,13 +76,15 @@ func (u *Upstream) matches(model string) bool {
 }
 
 // NewUpstreamClient returns an HTTP client tuned for many concurrent calls to
-// one host.
+// one host: plain-HTTP upstreams (a model server nearby) are called inline
+// on the request's goroutine (package plainhttp), HTTPS ones through
+// net/http's pooled transport.
 func NewUpstreamClient() *http.Client {
 	t := http.DefaultTransport.(*http.Transport).Clone()
 	t.MaxIdleConns = 512
 	t.MaxIdleConnsPerHost = 256
 	t.IdleConnTimeout = 90 * time.Second
-	return &http.Client{Transport: t}
+	return &http.Client{Transport: plainhttp.New(plainhttp.Options{Fallback: t, MaxIdlePerHost: 256})}
 }
 
 // upstreamError is a failed call: either a status the upstream answered with
