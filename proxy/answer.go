@@ -47,10 +47,12 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 		}
 		return
 	}
+	// The names are canonical already, so the map is written directly
+	// rather than through Header.Set, which canonicalizes each one again.
 	h := w.Header()
-	h.Set("Content-Type", "application/json")
-	h.Set("Content-Length", strconv.Itoa(len(body)))
-	h.Set(HeaderCache, outcome)
+	h["Content-Type"] = []string{"application/json"}
+	h["Content-Length"] = []string{strconv.Itoa(len(body))}
+	h[HeaderCache] = []string{outcome}
 	w.WriteHeader(http.StatusOK)
 	_, _ = w.Write(body)
 }

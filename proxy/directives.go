@@ -14,7 +14,7 @@ type directives struct {
 
 func parseDirectives(h http.Header) directives {
 	var d directives
-	for _, line := range h.Values("Cache-Control") {
+	for _, line := range h["Cache-Control"] {
 		for _, part := range strings.Split(line, ",") {
 			name, _, _ := strings.Cut(strings.TrimSpace(part), "=")
 			switch strings.ToLower(strings.TrimSpace(name)) {

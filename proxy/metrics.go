@@ -35,6 +35,8 @@ type outcomeSeries struct {
 	seconds          prometheus.Observer
 	promptTokens     prometheus.Counter
 	completionTokens prometheus.Counter
+	// hitPrompts is the team's prompts{outcome="hit"} series.
+	hitPrompts prometheus.Counter
 }
 
 func (m *metrics) series(team, endpoint, outcome string) *outcomeSeries {
@@ -51,6 +53,7 @@ func (m *metrics) series(team, endpoint, outcome string) *outcomeSeries {
 		seconds:          m.requestSeconds.WithLabelValues(endpoint, outcome),
 		promptTokens:     m.tokens.WithLabelValues(team, "prompt", source),
 		completionTokens: m.tokens.WithLabelValues(team, "completion", source),
+		hitPrompts:       m.prompts.WithLabelValues(team, "hit"),
 	}
 	got, _ := m.outcomes.LoadOrStore(k, s)
 	return got.(*outcomeSeries)

@@ -415,7 +415,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		// Seen these exact bytes before: go straight to the cache.
 		if hit, _ := p.lookup(r.Context(), ll, &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
-			p.metrics.prompts.WithLabelValues(team.Name, "hit").Inc()
+			p.metrics.series(team.Name, string(ep), OutcomeHit).hitPrompts.Inc()
 			fig := spendFigures{team: team.Name, saved: p.noteSaved(r.Context(), team, keyID, &m.req, hit.usage)}
 			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit, fig)
 			return
@@ -718,7 +718,7 @@ func flightKeyFor(items []item, misses []int, req *request) string {
 }
 
 func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiError) {
-	body, err := io.ReadAll(http.MaxBytesReader(w, r.Body, p.maxBody))
+	body, err := readAllSized(http.MaxBytesReader(w, r.Body, p.maxBody), r.ContentLength, p.maxBody)
 	if err != nil {
 		var mbe *http.MaxBytesError
 		if errors.As(err, &mbe) {
@@ -729,8 +729,33 @@ func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiEr
 	return body, nil
 }
 
+// readAllSized reads r to its end like io.ReadAll, starting from a buffer
+// of the announced length (when it is known and within limit) so a body
+// is read into one allocation of its own size.
+func readAllSized(r io.Reader, announced, limit int64) ([]byte, error) {
+	if announced <= 0 || announced > limit {
+		return io.ReadAll(r)
+	}
+	// One byte more than announced, so reaching the end needs no growth.
+	b := make([]byte, 0, announced+1)
+	for {
+		n, err := r.Read(b[len(b):cap(b)])
+		b = b[:len(b)+n]
+		if err == io.EOF {
+			return b, nil
+		}
+		if err != nil {
+			return b, err
+		}
+		if len(b) == cap(b) {
+			b = append(b, 0)[:len(b)] // grow: the body is longer than announced
+		}
+	}
+}
+
 func (p *Proxy) finish(ll *logLine, start time.Time) {
-	d := p.now().Sub(start)
+	end := p.now()
+	d := end.Sub(start)
 	if ll.outcome != "" && ll.outcome != "error" {
 		ms := p.metrics.series(ll.team, string(ll.endpoint), ll.outcome)
 		ms.requests.Inc()
@@ -739,7 +764,7 @@ func (p *Proxy) finish(ll *logLine, start time.Time) {
 		ms.completionTokens.Add(float64(ll.usage.CompletionTokens))
 	}
 	if p.requestLog != nil {
-		p.requestLog.write(p.now(), ll, d)
+		p.requestLog.write(end, ll, d)
 		return
 	}
 	if !p.log.Enabled(context.Background(), slog.LevelInfo) {

@@ -42,6 +42,9 @@ type runCall struct {
 // runHeaders reads and validates the run headers; a zero runCall means
 // the request is not part of a run.
 func runHeaders(h http.Header) (runCall, *apiError) {
+	if h[HeaderRun] == nil && h[HeaderRunMode] == nil && h[HeaderReplaySession] == nil {
+		return runCall{}, nil // the common case, decided without canonicalizing names
+	}
 	rc := runCall{id: h.Get(HeaderRun), session: h.Get(HeaderReplaySession)}
 	mode := strings.ToLower(strings.TrimSpace(h.Get(HeaderRunMode)))
 	switch mode {

@@ -4,7 +4,9 @@
 #      server answering the same bytes from memory, and their ratio;
 #   2. miss-path overhead: p50 latency of unique (always-miss) requests through
 #      the proxy to a local upstream, minus p50 of the same requests sent to
-#      the upstream directly.
+#      the upstream directly; and, as the floor any Go proxy pays here, the
+#      same through a bare forwarding hop (benchserver --forward: no parsing,
+#      no cache, net/http's client).
 # Needs wrk (apt-get install wrk). Loopback only; every load is bounded in time.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
@@ -20,14 +22,18 @@ trap cleanup EXIT
 go build -o "$work/stint" ./cmd/stint
 go build -o "$work/benchserver" ./proxy/bench/benchserver
 
-start_bench() { # $1 = output file for the address, rest = args
-	local out="$1"; shift
-	"$work/benchserver" "$@" >"$out" 2>"$work/bench.err" & pids+=($!)
+# start_bench VAR ARGS...: starts a benchserver and sets VAR to its address.
+# Not called in $(...): a subshell would keep the pid from the cleanup list.
+start_bench() {
+	local var="$1" out="$work/$1.addr"; shift
+	"$work/benchserver" "$@" >"$out" 2>>"$work/bench.err" & pids+=($!)
 	for _ in $(seq 100); do [ -s "$out" ] && break; sleep 0.05; done
-	cat "$out"
+	[ -s "$out" ] || { echo "benchserver $* did not start:"; cat "$work/bench.err"; exit 1; }
+	printf -v "$var" '%s' "$(cat "$out")"
 }
 
-up="$(start_bench "$work/up.addr")"
+start_bench up
+start_bench hop --forward "http://$up"
 "$work/stint" serve --listen 127.0.0.1:0 --upstream "http://$up/v1" --data "$work/data" --log-format json 2>"$work/stint.log" & pids+=($!)
 for _ in $(seq 200); do grep -q '"addr"' "$work/stint.log" 2>/dev/null && break; sleep 0.05; done
 proxy="$(sed -n 's/.*"addr":"\([^"]*\)".*/\1/p' "$work/stint.log" | head -1)"
@@ -37,7 +43,7 @@ hitbody='{"model":"bench-model","prompt":"The keepers counted the hives on the t
 curl -s -o /dev/null "http://$proxy/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
 curl -s -o "$work/hit.json" -D "$work/hit.hdr" "http://$proxy/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
 grep -qi '^stint-cache: hit' "$work/hit.hdr" || { echo "warm-up request was not a hit"; cat "$work/hit.hdr"; exit 1; }
-bare="$(start_bench "$work/bare.addr" --body "$work/hit.json")"
+start_bench bare --body "$work/hit.json"
 
 cat >"$work/hit.lua" <<LUA
 wrk.method = "POST"
@@ -67,8 +73,12 @@ printf 'hit throughput ratio  %10.2f x bare  (target >= 0.80)\n' "$(awk -v a="$h
 
 echo "== misses: unique prompts, 1 connection (latency without queueing)"
 direct_out="$(wrk -t1 -c1 -d"$DURATION" --latency -s "$work/miss.lua" "http://$up/v1/completions")"
+hop_out="$(wrk -t1 -c1 -d"$DURATION" --latency -s "$work/miss.lua" "http://$hop/v1/completions")"
 miss_out="$(wrk -t1 -c1 -d"$DURATION" --latency -s "$work/miss.lua" "http://$proxy/v1/completions")"
-d50="$(echo "$direct_out" | p50us)"; m50="$(echo "$miss_out" | p50us)"
+d50="$(echo "$direct_out" | p50us)"; h50="$(echo "$hop_out" | p50us)"; m50="$(echo "$miss_out" | p50us)"
 printf 'upstream directly     %10.0f req/s   p50 %6.0f us\n' "$(echo "$direct_out" | rps)" "$d50"
+printf 'bare Go forwarder     %10.0f req/s   p50 %6.0f us\n' "$(echo "$hop_out" | rps)" "$h50"
 printf 'through stint (miss)  %10.0f req/s   p50 %6.0f us\n' "$(echo "$miss_out" | rps)" "$m50"
+printf 'bare hop overhead     %10.0f us at p50  (the floor for a Go proxy here)\n' "$(awk -v a="$h50" -v b="$d50" 'BEGIN {print a - b}')"
 printf 'miss-path overhead    %10.0f us at p50  (target <= 150)\n' "$(awk -v a="$m50" -v b="$d50" 'BEGIN {print a - b}')"
+printf 'stint beyond the hop  %10.0f us at p50\n' "$(awk -v a="$m50" -v b="$h50" 'BEGIN {print a - b}')"

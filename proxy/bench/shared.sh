@@ -41,11 +41,14 @@ start_redis() { # $1 port, rest: extra args
 	for _ in $(seq 100); do redis-cli -p "$port" ping >/dev/null 2>&1 && return; sleep 0.05; done
 	echo "redis-server on $port did not start"; cat "$work/redis-$port.log"; exit 1
 }
-start_bench() { # $1 = output file for the address, rest = args
-	local out="$1"; shift
-	"$work/benchserver" "$@" >"$out" 2>"$work/bench.err" & pids+=($!)
+# start_bench VAR ARGS...: starts a benchserver and sets VAR to its address.
+# Not called in $(...): a subshell would keep the pid from the cleanup list.
+start_bench() {
+	local var="$1" out="$work/$1.addr"; shift
+	"$work/benchserver" "$@" >"$out" 2>>"$work/bench.err" & pids+=($!)
 	for _ in $(seq 100); do [ -s "$out" ] && break; sleep 0.05; done
-	cat "$out"
+	[ -s "$out" ] || { echo "benchserver $* did not start:"; cat "$work/bench.err"; exit 1; }
+	printf -v "$var" '%s' "$(cat "$out")"
 }
 start_stint() { # $1 name, $2 config file; sets addr[$1]
 	"$work/stint" serve --config "$2" --log-format json >/dev/null 2>"$work/stint-$1.log" & pids+=($!)
@@ -55,7 +58,7 @@ start_stint() { # $1 name, $2 config file; sets addr[$1]
 	addrs[$1]="$addr"
 }
 
-up="$(start_bench "$work/up.addr")"
+start_bench up
 standalone="$(free_port)"; start_redis "$standalone"
 cluster=()
 for _ in 1 2 3; do p="$(free_port)"; start_redis "$p" --cluster-enabled yes --cluster-config-file "$work/nodes-$p.conf"; cluster+=("127.0.0.1:$p"); done
@@ -90,7 +93,7 @@ for s in "${setups[@]}"; do
 	curl -s -o "$work/hit-$s.json" -D "$work/hit-$s.hdr" "http://${addrs[$s]}/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"
 	grep -qi '^stint-cache: hit' "$work/hit-$s.hdr" || { echo "$s: warm-up request was not a hit"; cat "$work/hit-$s.hdr"; exit 1; }
 done
-bare="$(start_bench "$work/bare.addr" --body "$work/hit-embedded.json")"
+start_bench bare --body "$work/hit-embedded.json"
 
 cat >"$work/hit.lua" <<LUA
 wrk.method = "POST"

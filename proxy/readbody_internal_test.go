@@ -1,0 +1,61 @@
+package proxy
+
+import (
+	"errors"
+	"io"
+	"net/http"
+	"net/textproto"
+	"strings"
+	"testing"
+	"testing/iotest"
+)
+
+// TestReadAllSized: whatever the announced length says, the whole body and
+// nothing else comes back, and the reader's errors are kept.
+func TestReadAllSized(t *testing.T) {
+	body := strings.Repeat("honey ", 50) // 300 bytes
+	cases := []struct {
+		name      string
+		announced int64
+		limit     int64
+		r         func() io.Reader
+		want      string
+		wantErr   error
+	}{
+		{"exact", 300, 1 << 20, func() io.Reader { return strings.NewReader(body) }, body, nil},
+		{"unknown length", -1, 1 << 20, func() io.Reader { return strings.NewReader(body) }, body, nil},
+		{"announced too short", 10, 1 << 20, func() io.Reader { return strings.NewReader(body) }, body, nil},
+		{"announced too long", 5000, 1 << 20, func() io.Reader { return strings.NewReader(body) }, body, nil},
+		{"announced past the limit", 1 << 30, 1 << 20, func() io.Reader { return strings.NewReader(body) }, body, nil},
+		{"one byte at a time", 300, 1 << 20, func() io.Reader { return iotest.OneByteReader(strings.NewReader(body)) }, body, nil},
+		{"empty", 0, 1 << 20, func() io.Reader { return strings.NewReader("") }, "", nil},
+		{"reader fails", 300, 1 << 20, func() io.Reader { return iotest.TimeoutReader(strings.NewReader(body)) }, "", iotest.ErrTimeout},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			got, err := readAllSized(tc.r(), tc.announced, tc.limit)
+			if tc.wantErr != nil {
+				if !errors.Is(err, tc.wantErr) {
+					t.Fatalf("err = %v, want %v", err, tc.wantErr)
+				}
+				return
+			}
+			if err != nil || string(got) != tc.want {
+				t.Fatalf("got %d bytes, %v; want %d bytes", len(got), err, len(tc.want))
+			}
+		})
+	}
+}
+
+// TestHeaderNamesCanonical: the proxy writes and reads these names in the
+// header map directly, which is right only for canonical names.
+func TestHeaderNamesCanonical(t *testing.T) {
+	for _, name := range []string{HeaderCache, HeaderCachedPrompt, HeaderCacheStore, HeaderRun, HeaderRunMode, HeaderReplaySession, HeaderCost, HeaderSaved, HeaderBudgetLeft, HeaderModelsMissing, "Content-Type", "Content-Length", "Cache-Control"} {
+		if c := textproto.CanonicalMIMEHeaderKey(name); c != name {
+			t.Errorf("%q is not canonical (%q)", name, c)
+		}
+	}
+	if h := (http.Header{"Stint-Run": {"r1"}}); h.Get(HeaderRun) != "r1" {
+		t.Error("direct map key does not match Header.Get")
+	}
+}
