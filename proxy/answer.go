@@ -274,18 +274,35 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 // cannot be trusted to cut it, as with echo).
 func tokenFacts(req *request, body []byte) (string, int) {
 	var a struct {
-		Choices []struct {
-			FinishReason string `json:"finish_reason"`
-			Logprobs     *struct {
-				Tokens  []string          `json:"tokens"`
-				Content []json.RawMessage `json:"content"`
-			} `json:"logprobs"`
-		} `json:"choices"`
+		Choices []factChoice `json:"choices"`
 	}
-	if err := json.Unmarshal(body, &a); err != nil || len(a.Choices) != 1 {
+	if err := json.Unmarshal(body, &a); err != nil {
 		return "", noLevel
 	}
-	c := a.Choices[0]
+	return choiceFacts(req, a.Choices)
+}
+
+// answerFacts are tokenFacts' results, when the answer was decoded anyway.
+type answerFacts struct {
+	finish string
+	tokens int
+}
+
+// factChoice is the part of an answer's choice tokenFacts reads.
+type factChoice struct {
+	FinishReason string `json:"finish_reason"`
+	Logprobs     *struct {
+		Tokens  []string          `json:"tokens"`
+		Content []json.RawMessage `json:"content"`
+	} `json:"logprobs"`
+}
+
+// choiceFacts is tokenFacts on decoded choices.
+func choiceFacts(req *request, choices []factChoice) (string, int) {
+	if len(choices) != 1 {
+		return "", noLevel
+	}
+	c := choices[0]
 	if c.Logprobs == nil || req.echo {
 		return c.FinishReason, noLevel
 	}

@@ -200,21 +200,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 // data, by length otherwise) and flagged as estimated.
 func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMessage) ([]served, error) {
 	if nPrompts == 1 {
-		var one struct {
-			Choices []json.RawMessage `json:"choices"`
-			Usage   *usage            `json:"usage"`
-		}
-		if err := json.Unmarshal(full, &one); err != nil {
-			return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
-		}
-		if len(one.Choices) != req.n {
-			return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(one.Choices), req.n)
-		}
-		var u usage
-		if one.Usage != nil {
-			u = *one.Usage
-		}
-		return []served{{body: full, usage: u}}, nil
+		return splitOne(req, full)
 	}
 	var env map[string]json.RawMessage
 	if err := json.Unmarshal(full, &env); err != nil {
@@ -266,6 +252,43 @@ func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMess
 		out[j] = served{body: b, usage: shares[j]}
 	}
 	return out, nil
+}
+
+// splitOne is splitAnswer for one prompt: the answer is served as it is,
+// and the one decoding pass also yields the facts the stored variant needs
+// (see tokenFacts). An answer whose choices do not fit that shape is still
+// served; only its facts are then unknown.
+func splitOne(req *request, full []byte) ([]served, error) {
+	var typed struct {
+		Choices []factChoice `json:"choices"`
+		Usage   *usage       `json:"usage"`
+	}
+	if err := json.Unmarshal(full, &typed); err == nil {
+		if len(typed.Choices) != req.n {
+			return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(typed.Choices), req.n)
+		}
+		var u usage
+		if typed.Usage != nil {
+			u = *typed.Usage
+		}
+		finish, tokens := choiceFacts(req, typed.Choices)
+		return []served{{body: full, usage: u, facts: &answerFacts{finish: finish, tokens: tokens}}}, nil
+	}
+	var one struct {
+		Choices []json.RawMessage `json:"choices"`
+		Usage   *usage            `json:"usage"`
+	}
+	if err := json.Unmarshal(full, &one); err != nil {
+		return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
+	}
+	if len(one.Choices) != req.n {
+		return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(one.Choices), req.n)
+	}
+	var u usage
+	if one.Usage != nil {
+		u = *one.Usage
+	}
+	return []served{{body: full, usage: u, facts: &answerFacts{tokens: noLevel}}}, nil
 }
 
 // apportion splits a batched call's usage among its prompts so the shares add

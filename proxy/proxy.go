@@ -333,6 +333,8 @@ func (p *Proxy) greedy(req *request) bool { return req.temperature <= p.greedyBe
 type served struct {
 	body  []byte
 	usage usage
+	// facts, when set, are tokenFacts of body, found while decoding it.
+	facts *answerFacts
 }
 
 // flightResult is what one upstream call yields, shared by coalesced waiters.
@@ -672,7 +674,11 @@ func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items
 			StoredAt:  nowUnix(p.now()),
 			Body:      got[j].body,
 		}
-		v.Finish, v.Tokens = tokenFacts(req, got[j].body)
+		if f := got[j].facts; f != nil {
+			v.Finish, v.Tokens = f.finish, f.tokens
+		} else {
+			v.Finish, v.Tokens = tokenFacts(req, got[j].body)
+		}
 		b, err := rec.with(v, greedy, req.stop).encode()
 		if err != nil {
 			p.metrics.storeErrors.WithLabelValues("encode").Inc()
