@@ -11,7 +11,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 DURATION="${DURATION:-5s}"
-ROUNDS="${ROUNDS:-3}"
+ROUNDS="${ROUNDS:-5}"
 CONNS="${CONNS:-32}"
 command -v wrk >/dev/null || { echo "wrk is needed: apt-get install wrk" >&2; exit 1; }
 
