@@ -161,7 +161,14 @@ func (t *Transport) exchange(ctx context.Context, c *conn, req *http.Request) (*
 		if resp.StatusCode >= 100 && resp.StatusCode < 200 && resp.StatusCode != http.StatusSwitchingProtocols {
 			continue
 		}
-		resp.Body = &body{ReadCloser: resp.Body, ctx: ctx, t: t, c: c, stop: stop, keep: !resp.Close && !req.Close}
+		b := &body{ReadCloser: resp.Body, ctx: ctx, t: t, c: c, stop: stop, keep: !resp.Close && !req.Close}
+		if resp.Body == http.NoBody {
+			// A 204, 304 or zero-length answer is whole already: the
+			// connection goes back now, not when (or if) it is closed.
+			b.finish(true)
+			return resp, nil
+		}
+		resp.Body = b
 		return resp, nil
 	}
 }

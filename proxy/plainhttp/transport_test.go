@@ -397,3 +397,24 @@ func TestCancelledWhileReadingBody(t *testing.T) {
 		t.Fatalf("read after cancel: %v, want context.Canceled", err)
 	}
 }
+
+// TestNoBodyAnswerReturnsConnection: an answer without a body gives its
+// connection back at once, even if the caller only closes it.
+func TestNoBodyAnswerReturnsConnection(t *testing.T) {
+	srv := newCountingServer(t, func(w http.ResponseWriter, r *http.Request) {
+		w.WriteHeader(http.StatusNoContent)
+	})
+	tr := New(Options{})
+	defer tr.CloseIdleConnections()
+	for i := range 3 {
+		req, _ := http.NewRequestWithContext(t.Context(), http.MethodPost, srv.URL, strings.NewReader("x"))
+		resp, err := tr.RoundTrip(req)
+		if err != nil || resp.StatusCode != http.StatusNoContent {
+			t.Fatalf("call %d: %v %v", i, resp, err)
+		}
+		resp.Body.Close()
+	}
+	if n := srv.conns.Load(); n != 1 {
+		t.Errorf("server saw %d connections, want 1", n)
+	}
+}
