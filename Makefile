@@ -24,7 +24,7 @@ help:
 	@echo "make test         vet, race-enabled unit tests, short fuzz runs (what CI runs)"
 	@echo "make bench        cache-hit and miss-path throughput against a bare Go server (needs wrk)"
 	@echo "make bench-shared hit throughput on embedded, Redis and Redis Cluster stores; p99 at half load"
-	@echo "make bench-go     Go benchmarks: keys, stores, hot tier"
+	@echo "make bench-go     Go benchmarks: keys, stores, hot tier, proxy paths, upstream round trip"
 	@echo "make bench-budgets hit and miss throughput with spend control on vs off"
 	@echo "make bench-local  local model benchmarks (tokens/s, FLOP ceiling)"
 
@@ -57,7 +57,7 @@ bench-budgets:
 	bash proxy/bench/budgets.sh
 
 bench-go:
-	$(GO) test -run '^$$' -bench . -benchmem -benchtime 2000x ./cache/... ./proxy/
+	$(GO) test -run '^$$' -bench . -benchmem -benchtime 2000x ./cache/... ./proxy/ ./proxy/plainhttp/
 
 bench-local:
 	$(GO) test -run '^$$' -bench . -benchtime 3x -timeout 30m ./proxy/localmodel/...

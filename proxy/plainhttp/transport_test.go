@@ -19,7 +19,12 @@ import (
 	"go.uber.org/goleak"
 )
 
-func TestMain(m *testing.M) { goleak.VerifyTestMain(m) }
+func TestMain(m *testing.M) {
+	if runBenchServer() {
+		return
+	}
+	goleak.VerifyTestMain(m)
+}
 
 // countingServer is a real HTTP server that counts the connections it
 // accepted.
