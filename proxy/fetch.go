@@ -259,36 +259,36 @@ func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMess
 // (see tokenFacts). An answer whose choices do not fit that shape is still
 // served; only its facts are then unknown.
 func splitOne(req *request, full []byte) ([]served, error) {
+	var (
+		choices int
+		u       *usage
+		facts   = &answerFacts{tokens: noLevel}
+	)
 	var typed struct {
 		Choices []factChoice `json:"choices"`
 		Usage   *usage       `json:"usage"`
 	}
 	if err := json.Unmarshal(full, &typed); err == nil {
-		if len(typed.Choices) != req.n {
-			return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(typed.Choices), req.n)
+		choices, u = len(typed.Choices), typed.Usage
+		facts.finish, facts.tokens = choiceFacts(req, typed.Choices)
+	} else {
+		var loose struct {
+			Choices []json.RawMessage `json:"choices"`
+			Usage   *usage            `json:"usage"`
 		}
-		var u usage
-		if typed.Usage != nil {
-			u = *typed.Usage
+		if err := json.Unmarshal(full, &loose); err != nil {
+			return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
 		}
-		finish, tokens := choiceFacts(req, typed.Choices)
-		return []served{{body: full, usage: u, facts: &answerFacts{finish: finish, tokens: tokens}}}, nil
+		choices, u = len(loose.Choices), loose.Usage
 	}
-	var one struct {
-		Choices []json.RawMessage `json:"choices"`
-		Usage   *usage            `json:"usage"`
+	if choices != req.n {
+		return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", choices, req.n)
 	}
-	if err := json.Unmarshal(full, &one); err != nil {
-		return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
+	var total usage
+	if u != nil {
+		total = *u
 	}
-	if len(one.Choices) != req.n {
-		return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", len(one.Choices), req.n)
-	}
-	var u usage
-	if one.Usage != nil {
-		u = *one.Usage
-	}
-	return []served{{body: full, usage: u, facts: &answerFacts{tokens: noLevel}}}, nil
+	return []served{{body: full, usage: total, facts: facts}}, nil
 }
 
 // apportion splits a batched call's usage among its prompts so the shares add
