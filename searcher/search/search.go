@@ -171,7 +171,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	}
 	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
 	r.rng = rand.New(r.pcg)
-	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions())), Versions: versions()}
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions()}
 	devAcc, greedyText := -1.0, ""
 	first := 1
 	if s := o.Resume; s != nil {
