@@ -15,30 +15,11 @@ ROUNDS="${ROUNDS:-5}"
 CONNS="${CONNS:-32}"
 command -v wrk >/dev/null || { echo "wrk is needed: apt-get install wrk" >&2; exit 1; }
 
-work="$(mktemp -d)"
-pids=()
-cleanup() { for p in "${pids[@]}"; do kill "$p" 2>/dev/null || true; done; wait 2>/dev/null || true; rm -rf "$work"; }
-trap cleanup EXIT
-
-go build -o "$work/stint" ./cmd/stint
-go build -o "$work/benchserver" ./proxy/bench/benchserver
-
-# start_bench VAR ARGS...: starts a benchserver and sets VAR to its address.
-# Not called in $(...): a subshell would keep the pid from the cleanup list.
-start_bench() {
-	local var="$1" out="$work/$1.addr"; shift
-	"$work/benchserver" "$@" >"$out" 2>>"$work/bench.err" & pids+=($!)
-	for _ in $(seq 100); do [ -s "$out" ] && break; sleep 0.05; done
-	[ -s "$out" ] || { echo "benchserver $* did not start:"; cat "$work/bench.err"; exit 1; }
-	printf -v "$var" '%s' "$(cat "$out")"
-}
+source proxy/bench/common.sh
 
 start_bench up
 start_bench hop --forward "http://$up"
-"$work/stint" serve --listen 127.0.0.1:0 --upstream "http://$up/v1" --data "$work/data" --log-format json 2>"$work/stint.log" & pids+=($!)
-for _ in $(seq 200); do grep -q '"addr"' "$work/stint.log" 2>/dev/null && break; sleep 0.05; done
-proxy="$(sed -n 's/.*"addr":"\([^"]*\)".*/\1/p' "$work/stint.log" | head -1)"
-[ -n "$proxy" ] || { echo "stint did not start:"; cat "$work/stint.log"; exit 1; }
+start_stint proxy stint --listen 127.0.0.1:0 --upstream "http://$up/v1" --data "$work/data"
 
 hitbody='{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}'
 curl -s -o /dev/null "http://$proxy/v1/completions" -H 'Content-Type: application/json' -d "$hitbody"

@@ -14,13 +14,7 @@ for c in wrk redis-server redis-cli; do
 	command -v "$c" >/dev/null || { echo "$c is needed: apt-get install wrk redis-server" >&2; exit 1; }
 done
 
-work="$(mktemp -d)"
-pids=()
-cleanup() { for p in "${pids[@]}"; do kill "$p" 2>/dev/null || true; done; wait 2>/dev/null || true; rm -rf "$work"; }
-trap cleanup EXIT
-
-go build -o "$work/stint" ./cmd/stint
-go build -o "$work/benchserver" ./proxy/bench/benchserver
+source proxy/bench/common.sh
 go build -o "$work/openload" ./proxy/bench/openload
 
 # A free port at most 55535: a cluster node also listens 10000 above its port.
@@ -41,22 +35,8 @@ start_redis() { # $1 port, rest: extra args
 	for _ in $(seq 100); do redis-cli -p "$port" ping >/dev/null 2>&1 && return; sleep 0.05; done
 	echo "redis-server on $port did not start"; cat "$work/redis-$port.log"; exit 1
 }
-# start_bench VAR ARGS...: starts a benchserver and sets VAR to its address.
-# Not called in $(...): a subshell would keep the pid from the cleanup list.
-start_bench() {
-	local var="$1" out="$work/$1.addr"; shift
-	"$work/benchserver" "$@" >"$out" 2>>"$work/bench.err" & pids+=($!)
-	for _ in $(seq 100); do [ -s "$out" ] && break; sleep 0.05; done
-	[ -s "$out" ] || { echo "benchserver $* did not start:"; cat "$work/bench.err"; exit 1; }
-	printf -v "$var" '%s' "$(cat "$out")"
-}
-start_stint() { # $1 name, $2 config file; sets addr[$1]
-	"$work/stint" serve --config "$2" --log-format json >/dev/null 2>"$work/stint-$1.log" & pids+=($!)
-	for _ in $(seq 200); do grep -q '"addr"' "$work/stint-$1.log" 2>/dev/null && break; sleep 0.05; done
-	local addr; addr="$(sed -n 's/.*"addr":"\([^"]*\)".*/\1/p' "$work/stint-$1.log" | head -1)"
-	[ -n "$addr" ] || { echo "stint ($1) did not start:" >&2; cat "$work/stint-$1.log" >&2; exit 1; }
-	addrs[$1]="$addr"
-}
+# stint_with NAME CONFIG: starts stint serve on CONFIG; sets addrs[NAME].
+stint_with() { start_stint "addrs[$1]" "stint-$1" --config "$2"; }
 
 start_bench up
 standalone="$(free_port)"; start_redis "$standalone"
@@ -79,11 +59,11 @@ YAML
 }
 list() { local IFS=,; echo "$*"; }
 declare -A addrs
-start_stint embedded "$(config embedded "" "")"
-start_stint redis "$(config redis "store: {redis: {addrs: [127.0.0.1:$standalone]}}" "")"
-start_stint redis-nohot "$(config redis-nohot "store: {redis: {addrs: [127.0.0.1:$standalone], prefix: nohot}}" "cache: {hot_bytes: 0}")"
-start_stint cluster "$(config cluster "store: {redis: {addrs: [$(list "${cluster[@]}")]}}" "")"
-start_stint cluster-nohot "$(config cluster-nohot "store: {redis: {addrs: [$(list "${cluster[@]}")], prefix: nohot}}" "cache: {hot_bytes: 0}")"
+stint_with embedded "$(config embedded "" "")"
+stint_with redis "$(config redis "store: {redis: {addrs: [127.0.0.1:$standalone]}}" "")"
+stint_with redis-nohot "$(config redis-nohot "store: {redis: {addrs: [127.0.0.1:$standalone], prefix: nohot}}" "cache: {hot_bytes: 0}")"
+stint_with cluster "$(config cluster "store: {redis: {addrs: [$(list "${cluster[@]}")]}}" "")"
+stint_with cluster-nohot "$(config cluster-nohot "store: {redis: {addrs: [$(list "${cluster[@]}")], prefix: nohot}}" "cache: {hot_bytes: 0}")"
 
 hitbody='{"model":"bench-model","prompt":"The keepers counted the hives on the third barge","temperature":0,"max_tokens":16}'
 printf '%s' "$hitbody" >"$work/hit.body"
