@@ -84,7 +84,7 @@ func NewUpstreamClient() *http.Client {
 	t.MaxIdleConns = 512
 	t.MaxIdleConnsPerHost = 256
 	t.IdleConnTimeout = 90 * time.Second
-	return &http.Client{Transport: plainhttp.New(plainhttp.Options{Fallback: t, MaxIdlePerHost: 256})}
+	return &http.Client{Transport: plainhttp.New(plainhttp.Options{Fallback: t})}
 }
 
 // upstreamError is a failed call: either a status the upstream answered with

@@ -278,17 +278,6 @@ func (t *Transport) CloseIdleConnections() {
 	}
 }
 
-// idleCount reports the pooled connections (for tests).
-func (t *Transport) idleCount() int {
-	t.mu.Lock()
-	defer t.mu.Unlock()
-	n := 0
-	for _, list := range t.idle {
-		n += len(list)
-	}
-	return n
-}
-
 // ended reports the context error behind err: ctx's own, or its deadline
 // when err is the connection deadline set from it firing a moment before
 // the context's timer.

@@ -360,6 +360,17 @@ func TestConcurrentCalls(t *testing.T) {
 	}
 }
 
+// idleCount reports the connections tr holds in its pool.
+func (tr *Transport) idleCount() int {
+	tr.mu.Lock()
+	defer tr.mu.Unlock()
+	n := 0
+	for _, list := range tr.idle {
+		n += len(list)
+	}
+	return n
+}
+
 func waitFor(t *testing.T, what string, cond func() bool) {
 	t.Helper()
 	deadline := time.Now().Add(10 * time.Second)
