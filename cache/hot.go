@@ -131,7 +131,11 @@ func NewHot(backing Store, opts HotOptions) *Hot {
 			if e.Value.expiresAt == 0 {
 				return neverExpires
 			}
-			return time.Duration(e.Value.expiresAt - h.now().UnixNano())
+			// otter keeps an entry forever when told a non-positive
+			// duration, so one already past its expiry (a fill racing the
+			// store's own expiry, a TTL shorter than this call took) is
+			// given the shortest life instead.
+			return max(time.Duration(e.Value.expiresAt-h.now().UnixNano()), time.Nanosecond)
 		}),
 		StatsRecorder: h.counter,
 	}

@@ -181,6 +181,30 @@ func TestHotTTL(t *testing.T) {
 	}
 }
 
+// TestHotFillPastExpiry: a fill that reads an entry whose expiry has
+// passed by the tier's clock, though not yet by the store's (Redis expires
+// a key from when it received the write, after the writer's clock stamped
+// the record), must not stay in memory: otter keeps an entry forever when
+// its expiry works out non-positive.
+func TestHotFillPastExpiry(t *testing.T) {
+	storeClock := &fakeClock{t: time.Date(2030, 5, 6, 7, 8, 9, 0, time.UTC)}
+	hotClock := &fakeClock{t: storeClock.Now().Add(20 * time.Second)}
+	store := newBolt(t, boltstore.Options{Now: storeClock.Now}) // an ExpiryGetter, so fills keep its expiry
+	h := cache.NewHot(store, cache.HotOptions{Now: hotClock.Now})
+	ctx := t.Context()
+	if err := store.Put(ctx, hotKey(1), []byte("late"), 10*time.Second); err != nil {
+		t.Fatal(err)
+	}
+	if _, found, _ := h.Get(ctx, hotKey(1)); !found {
+		t.Fatal("the store still holds the entry by its own clock, so the fill should find it")
+	}
+	storeClock.Advance(time.Minute)
+	hotClock.Advance(time.Second)
+	if _, found, _ := h.Get(ctx, hotKey(1)); found {
+		t.Error("an entry filled past its expiry was answered from memory after the store dropped it")
+	}
+}
+
 func TestHotFillTTLWithoutExpiryGetter(t *testing.T) {
 	clock := &fakeClock{t: time.Date(2030, 5, 6, 7, 8, 9, 0, time.UTC)}
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
