@@ -87,9 +87,6 @@ type uiRig struct {
 	up      *upstreamtest.Server
 	sidecar string
 	jobs    *jobs.Manager
-	// breakerOwn: the test registered the breaker gauge itself because the
-	// proxy exports none.
-	breakerOwn bool
 }
 
 func newUIRig(t *testing.T) *uiRig {
@@ -120,6 +117,7 @@ upstreams:
     url: %s
     key_env: STINT_UI_UPSTREAM_KEY
     models: ["quill-*"]
+    breaker: {consecutive_failures: 2, failure_ratio: -1, open_for: 1h}   # trips in traffic, stays open for the test
   - name: local
     url: local:%s
     models: [stories260K]
@@ -182,7 +180,6 @@ ui:
 		t.Fatal(err)
 	}
 	r := &uiRig{url: proxyURL, proxy: p, reg: reg, up: up, sidecar: sidecar.URL, jobs: mgr}
-	r.breakerOwn = r.registerBreakerIfAbsent(t)
 	proxySrv.Config.Handler = p
 	proxySrv.Start()
 	t.Cleanup(func() {
@@ -195,45 +192,20 @@ ui:
 	return r
 }
 
-// registerBreakerIfAbsent registers stint_upstream_breaker_state and
-// stint_upstream_breaker_trips_total, as the proxy's breaker exports them
-// (0 closed, 1 half-open, 2 open), when the proxy does not export them
-// itself: quill half-open after 2 trips, local closed. It reports whether
-// it did.
-func (r *uiRig) registerBreakerIfAbsent(t *testing.T) bool {
-	t.Helper()
-	mfs, err := r.reg.Gather()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, mf := range mfs {
-		if mf.GetName() == "stint_upstream_breaker_state" {
-			return false
-		}
-	}
-	state := prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "stint_upstream_breaker_state",
-		Help: "Circuit breaker state per upstream: 0 closed, 1 half-open, 2 open."}, []string{"upstream"})
-	trips := prometheus.NewCounterVec(prometheus.CounterOpts{Name: "stint_upstream_breaker_trips_total",
-		Help: "Times the upstream's breaker opened."}, []string{"upstream"})
-	// A proxy whose breaker registers these names (with no series yet)
-	// refuses ours: then the page must show what the proxy exports.
-	if err := r.reg.Register(state); err != nil {
-		return false
-	}
-	if err := r.reg.Register(trips); err != nil {
-		r.reg.Unregister(state)
-		return false
-	}
-	state.WithLabelValues("quill").Set(1)
-	state.WithLabelValues("local").Set(0)
-	trips.WithLabelValues("quill").Add(2)
-	trips.WithLabelValues("local").Add(0)
-	return true
-}
-
 // call sends one completion request with key and extra headers, and
 // returns the cache outcome.
 func (r *uiRig) call(t *testing.T, key, body string, header ...string) string {
+	t.Helper()
+	status, b, outcome := r.post(t, key, body, header...)
+	if status != http.StatusOK {
+		t.Fatalf("POST %s: %d %s", body, status, b)
+	}
+	return outcome
+}
+
+// post sends one completion request and returns its status, body and
+// cache outcome.
+func (r *uiRig) post(t *testing.T, key, body string, header ...string) (int, []byte, string) {
 	t.Helper()
 	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(body))
 	req.Header.Set("Authorization", "Bearer "+key)
@@ -247,10 +219,7 @@ func (r *uiRig) call(t *testing.T, key, body string, header ...string) string {
 	}
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	if resp.StatusCode != http.StatusOK {
-		t.Fatalf("POST %s: %d %s", body, resp.StatusCode, b)
-	}
-	return resp.Header.Get(proxy.HeaderCache)
+	return resp.StatusCode, b, resp.Header.Get(proxy.HeaderCache)
 }
 
 func quillBody(prompt string) string {
@@ -305,22 +274,32 @@ func (r *uiRig) traffic(t *testing.T) {
 		t.Fatalf("concurrent identical calls: %v, want one miss and one shared", outcomes)
 	}
 
-	// One call the upstream refuses: the page counts it as failed.
+	// One call the upstream refuses: the page counts it as failed (a 4xx
+	// is the caller's fault, so the breaker does not count it).
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusBadRequest})
-	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(quillBody("a line the upstream refuses")))
-	req.Header.Set("Authorization", "Bearer "+uiLabKey)
-	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
-	resp.Body.Close()
-	if resp.StatusCode != http.StatusBadRequest {
-		t.Fatalf("refused call: %d, want the upstream's 400 passed through", resp.StatusCode)
+	if status, b, _ := r.post(t, uiLabKey, quillBody("a line the upstream refuses")); status != http.StatusBadRequest {
+		t.Fatalf("refused call: %d %s, want the upstream's 400 passed through", status, b)
 	}
 
 	// A recorded run: a miss, then the same call again from the cache.
 	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "miss")
 	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "hit")
+
+	// quill's breaker trips: two server errors in a row (its
+	// consecutive_failures), then a miss is refused without reaching it.
+	r.up.FailNext(2, upstreamtest.Fault{Status: http.StatusInternalServerError})
+	for _, prompt := range []string{"the mill wheel stalls", "the mill wheel stalls again"} {
+		if status, b, _ := r.post(t, uiLabKey, quillBody(prompt)); status != http.StatusInternalServerError {
+			t.Fatalf("failing call: %d %s, want the upstream's 500 passed through", status, b)
+		}
+	}
+	reached := r.up.Calls()
+	if status, b, _ := r.post(t, uiLabKey, quillBody("the mill wheel is mended")); status != http.StatusServiceUnavailable {
+		t.Fatalf("call after two failures: %d %s, want 503 from quill's open breaker", status, b)
+	}
+	if got := r.up.Calls(); got != reached {
+		t.Fatalf("the open breaker let a call through: upstream calls %+v, then %+v", reached, got)
+	}
 }
 
 func gaugeOf(t *testing.T, g prometheus.Gatherer, name string) float64 {
@@ -571,16 +550,38 @@ func TestOperatorPageInABrowser(t *testing.T) {
 				t.Errorf("%s p95 shown as %q, want a unit", u, text)
 			}
 		}
+		// The gauge's values are the proxy's (0 closed, 1 half-open, 2
+		// open); quill tripped in the traffic and stays open for an hour,
+		// local never failed.
+		states := map[string]float64{}
 		for _, m := range fams["stint_upstream_breaker_state"].GetMetric() {
-			u := labelOf(m, "upstream")
-			want := map[float64]string{0: "closed", 1: "half-open", 2: "open"}[m.GetGauge().GetValue()]
-			if got := fig("breaker-" + u); got.Value != want || got.Text != want {
-				t.Errorf("%s breaker: page %+v, /metrics %v (%s)", u, got, m.GetGauge().GetValue(), want)
-			}
+			states[labelOf(m, "upstream")] = m.GetGauge().GetValue()
 		}
-		if r.breakerOwn {
-			if fig("breaker-quill").Value != "half-open" || fig("breaker-trips-quill").Value != "2" {
-				t.Errorf("quill breaker: %+v, trips %+v; the test set half-open after 2 trips", fig("breaker-quill"), fig("breaker-trips-quill"))
+		// A counter series exists once an upstream has tripped; the page
+		// shows no count for one without.
+		trips, tripsShown := map[string]int64{}, map[string]string{}
+		for _, m := range fams["stint_upstream_breaker_trips_total"].GetMetric() {
+			trips[labelOf(m, "upstream")] += int64(m.GetCounter().GetValue())
+			tripsShown[labelOf(m, "upstream")] = strconv.FormatInt(trips[labelOf(m, "upstream")], 10)
+		}
+		for _, tt := range []struct {
+			upstream string
+			gauge    float64
+			shown    string
+			trips    int64
+		}{{"quill", 2, "open", 1}, {"local", 0, "closed", 0}} {
+			g, ok := states[tt.upstream]
+			if !ok || g != tt.gauge {
+				t.Errorf("%s: /metrics stint_upstream_breaker_state %v (present %v), want %v", tt.upstream, g, ok, tt.gauge)
+			}
+			if got := fig("breaker-" + tt.upstream); got.Value != tt.shown || got.Text != tt.shown {
+				t.Errorf("%s breaker: page %+v, /metrics %v; want %s", tt.upstream, got, g, tt.shown)
+			}
+			if trips[tt.upstream] != tt.trips {
+				t.Errorf("%s: /metrics counts %d breaker trips, want %d", tt.upstream, trips[tt.upstream], tt.trips)
+			}
+			if got := fig("breaker-trips-" + tt.upstream); got.Value != tripsShown[tt.upstream] {
+				t.Errorf("%s breaker trips: page %+v, /metrics %q", tt.upstream, got, tripsShown[tt.upstream])
 			}
 		}
 	})
