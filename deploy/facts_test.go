@@ -148,6 +148,15 @@ func TestFilesAgree(t *testing.T) {
 	if searchProxyHost != "lb" || k8sSearchProxyHost != k8sService.Name {
 		t.Errorf("the sidecar's --proxy hosts are %s (compose) and %s (k8s), want lb and %s", searchProxyHost, k8sSearchProxyHost, k8sService.Name)
 	}
+	// The operator page's sidecar URL: host and port, and nothing that
+	// would make the page ask another path than the job API's root.
+	sidecarAddr := func(rawURL string) string {
+		u, err := url.Parse(rawURL)
+		if err != nil || u.Scheme != "http" || strings.Trim(u.Path, "/") != "" {
+			return fmt.Sprintf("(not an http:// base URL: %q)", rawURL)
+		}
+		return u.Host
+	}
 	var configItem string
 	for _, v := range proxy.Volumes {
 		if v.Name == "config" && v.ConfigMap != nil && v.ConfigMap.Name == "stint-config" && len(v.ConfigMap.Items) == 1 {
@@ -237,6 +246,15 @@ func TestFilesAgree(t *testing.T) {
 			{"compose service name and --listen port", "local:" + port(t, flagValue(c.Services["local"].Command, "--listen"))},
 			{"compose local health check", "local:" + healthURL(t, "local", c.Services["local"]).Port()},
 			{"config/proxy.yaml upstream local", localHost + ":" + localPort},
+		}},
+		{"compose sidecar address", []source{
+			{"compose service search and its --listen port", "search:" + port(t, flagValue(c.Services["search"].Command, "--listen"))},
+			{"config/proxy.yaml ui.search_sidecar", sidecarAddr(composeCfg.UI.SearchSidecar)},
+		}},
+		{"k8s sidecar address", []source{
+			{"k8s Service stint-search name and port", k8sSearchService.Name + ":" + fmt.Sprint(k8sSearchService.Spec.Ports[0].Port)},
+			{"k8s Service name and stint-search --listen port", k8sSearchService.Name + ":" + port(t, flagValue(sc.Args, "--listen"))},
+			{"k8s ConfigMap ui.search_sidecar", sidecarAddr(k8sCfg.UI.SearchSidecar)},
 		}},
 		{"model file", []source{
 			{"compose local --model", flagValue(c.Services["local"].Command, "--model")},

@@ -52,6 +52,9 @@ type stintConfig struct {
 			PasswordEnv string   `yaml:"password_env"`
 		} `yaml:"redis"`
 	} `yaml:"store"`
+	UI struct {
+		SearchSidecar string `yaml:"search_sidecar"`
+	} `yaml:"ui"`
 }
 
 func parseStintConfig(t *testing.T, src []byte) stintConfig {

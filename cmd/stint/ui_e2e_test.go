@@ -11,6 +11,8 @@ import (
 	"math"
 	"net/http"
 	"net/http/httptest"
+	"net/http/httputil"
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -79,7 +81,8 @@ func artifactDir(t *testing.T) string {
 
 // uiRig is a proxy wired as stint serve wires it (the spend control, store
 // and run journal of the embedded file), on a fake paid upstream and the
-// local model, with a search sidecar serving the real job API.
+// local model, with a search sidecar serving the real job API. The sidecar
+// reaches the proxy through gate, which holds a search between steps.
 type uiRig struct {
 	url     string // the proxy's base URL
 	proxy   *proxy.Proxy
@@ -87,9 +90,55 @@ type uiRig struct {
 	up      *upstreamtest.Server
 	sidecar string
 	jobs    *jobs.Manager
-	// breakerOwn: the test registered the breaker gauge itself because the
-	// proxy exports none.
-	breakerOwn bool
+	gate    *stepGate
+}
+
+// stepGate stands between the sidecar and the proxy, forwarding every call
+// unchanged, except that while a limit is set it holds each call that
+// arrives once the watched search's curve has that many points. A search
+// checkpoints its curve after each step before it sends the next step's
+// calls, so with limit n the search stops at exactly n points until the
+// limit is raised.
+type stepGate struct {
+	next http.Handler
+
+	mu      sync.Mutex
+	limit   int        // points the curve may reach; negative: no limit
+	points  func() int // the watched search's points so far
+	changed chan struct{}
+}
+
+func newStepGate(next http.Handler) *stepGate {
+	return &stepGate{next: next, limit: -1, changed: make(chan struct{})}
+}
+
+// Hold lets the search whose curve points reports reach limit points and
+// no more; a negative limit lets every call through.
+func (g *stepGate) Hold(points func() int, limit int) {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	g.points, g.limit = points, limit
+	close(g.changed)
+	g.changed = make(chan struct{})
+}
+
+// ServeHTTP implements http.Handler.
+func (g *stepGate) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	for {
+		g.mu.Lock()
+		limit, points, changed := g.limit, g.points, g.changed
+		g.mu.Unlock()
+		if limit < 0 || points() < limit {
+			break
+		}
+		select {
+		case <-changed:
+		case <-r.Context().Done():
+			http.Error(w, "step gate: the caller gave up", http.StatusServiceUnavailable)
+			return
+		}
+	}
+	g.next.ServeHTTP(w, r)
 }
 
 func newUIRig(t *testing.T) *uiRig {
@@ -107,7 +156,13 @@ func newUIRig(t *testing.T) *uiRig {
 	if err != nil {
 		t.Fatal(err)
 	}
-	mgr, err := jobs.Open(t.TempDir(), m, jobs.Options{Proxy: proxyURL + "/v1", Key: uiLabKey, CheckpointEvery: 1})
+	target, err := url.Parse(proxyURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	gate := newStepGate(httputil.NewSingleHostReverseProxy(target))
+	gateSrv := httptest.NewServer(gate)
+	mgr, err := jobs.Open(t.TempDir(), m, jobs.Options{Proxy: gateSrv.URL + "/v1", Key: uiLabKey, CheckpointEvery: 1})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -120,6 +175,7 @@ upstreams:
     url: %s
     key_env: STINT_UI_UPSTREAM_KEY
     models: ["quill-*"]
+    breaker: {consecutive_failures: 2, failure_ratio: -1, open_for: 1h}   # trips in traffic, stays open for the test
   - name: local
     url: local:%s
     models: [stories260K]
@@ -181,13 +237,14 @@ ui:
 	if err != nil {
 		t.Fatal(err)
 	}
-	r := &uiRig{url: proxyURL, proxy: p, reg: reg, up: up, sidecar: sidecar.URL, jobs: mgr}
-	r.breakerOwn = r.registerBreakerIfAbsent(t)
+	r := &uiRig{url: proxyURL, proxy: p, reg: reg, up: up, sidecar: sidecar.URL, jobs: mgr, gate: gate}
 	proxySrv.Config.Handler = p
 	proxySrv.Start()
 	t.Cleanup(func() {
+		gate.Hold(nil, -1)
 		mgr.Close()
 		sidecar.Close()
+		gateSrv.Close()
 		proxySrv.Close()
 		_ = p.Close(context.Background())
 		_ = s.close()
@@ -195,45 +252,20 @@ ui:
 	return r
 }
 
-// registerBreakerIfAbsent registers stint_upstream_breaker_state and
-// stint_upstream_breaker_trips_total, as the proxy's breaker exports them
-// (0 closed, 1 half-open, 2 open), when the proxy does not export them
-// itself: quill half-open after 2 trips, local closed. It reports whether
-// it did.
-func (r *uiRig) registerBreakerIfAbsent(t *testing.T) bool {
-	t.Helper()
-	mfs, err := r.reg.Gather()
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, mf := range mfs {
-		if mf.GetName() == "stint_upstream_breaker_state" {
-			return false
-		}
-	}
-	state := prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: "stint_upstream_breaker_state",
-		Help: "Circuit breaker state per upstream: 0 closed, 1 half-open, 2 open."}, []string{"upstream"})
-	trips := prometheus.NewCounterVec(prometheus.CounterOpts{Name: "stint_upstream_breaker_trips_total",
-		Help: "Times the upstream's breaker opened."}, []string{"upstream"})
-	// A proxy whose breaker registers these names (with no series yet)
-	// refuses ours: then the page must show what the proxy exports.
-	if err := r.reg.Register(state); err != nil {
-		return false
-	}
-	if err := r.reg.Register(trips); err != nil {
-		r.reg.Unregister(state)
-		return false
-	}
-	state.WithLabelValues("quill").Set(1)
-	state.WithLabelValues("local").Set(0)
-	trips.WithLabelValues("quill").Add(2)
-	trips.WithLabelValues("local").Add(0)
-	return true
-}
-
 // call sends one completion request with key and extra headers, and
 // returns the cache outcome.
 func (r *uiRig) call(t *testing.T, key, body string, header ...string) string {
+	t.Helper()
+	status, b, outcome := r.post(t, key, body, header...)
+	if status != http.StatusOK {
+		t.Fatalf("POST %s: %d %s", body, status, b)
+	}
+	return outcome
+}
+
+// post sends one completion request and returns its status, body and
+// cache outcome.
+func (r *uiRig) post(t *testing.T, key, body string, header ...string) (int, []byte, string) {
 	t.Helper()
 	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(body))
 	req.Header.Set("Authorization", "Bearer "+key)
@@ -247,10 +279,7 @@ func (r *uiRig) call(t *testing.T, key, body string, header ...string) string {
 	}
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	if resp.StatusCode != http.StatusOK {
-		t.Fatalf("POST %s: %d %s", body, resp.StatusCode, b)
-	}
-	return resp.Header.Get(proxy.HeaderCache)
+	return resp.StatusCode, b, resp.Header.Get(proxy.HeaderCache)
 }
 
 func quillBody(prompt string) string {
@@ -305,22 +334,32 @@ func (r *uiRig) traffic(t *testing.T) {
 		t.Fatalf("concurrent identical calls: %v, want one miss and one shared", outcomes)
 	}
 
-	// One call the upstream refuses: the page counts it as failed.
+	// One call the upstream refuses: the page counts it as failed (a 4xx
+	// is the caller's fault, so the breaker does not count it).
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusBadRequest})
-	req, _ := http.NewRequest(http.MethodPost, r.url+"/v1/completions", strings.NewReader(quillBody("a line the upstream refuses")))
-	req.Header.Set("Authorization", "Bearer "+uiLabKey)
-	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
-	resp.Body.Close()
-	if resp.StatusCode != http.StatusBadRequest {
-		t.Fatalf("refused call: %d, want the upstream's 400 passed through", resp.StatusCode)
+	if status, b, _ := r.post(t, uiLabKey, quillBody("a line the upstream refuses")); status != http.StatusBadRequest {
+		t.Fatalf("refused call: %d %s, want the upstream's 400 passed through", status, b)
 	}
 
 	// A recorded run: a miss, then the same call again from the cache.
 	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "miss")
 	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "hit")
+
+	// quill's breaker trips: two server errors in a row (its
+	// consecutive_failures), then a miss is refused without reaching it.
+	r.up.FailNext(2, upstreamtest.Fault{Status: http.StatusInternalServerError})
+	for _, prompt := range []string{"the mill wheel stalls", "the mill wheel stalls again"} {
+		if status, b, _ := r.post(t, uiLabKey, quillBody(prompt)); status != http.StatusInternalServerError {
+			t.Fatalf("failing call: %d %s, want the upstream's 500 passed through", status, b)
+		}
+	}
+	reached := r.up.Calls()
+	if status, b, _ := r.post(t, uiLabKey, quillBody("the mill wheel is mended")); status != http.StatusServiceUnavailable {
+		t.Fatalf("call after two failures: %d %s, want 503 from quill's open breaker", status, b)
+	}
+	if got := r.up.Calls(); got != reached {
+		t.Fatalf("the open breaker let a call through: upstream calls %+v, then %+v", reached, got)
+	}
 }
 
 func gaugeOf(t *testing.T, g prometheus.Gatherer, name string) float64 {
@@ -393,18 +432,32 @@ const readFigures = `Object.fromEntries(Array.from(document.querySelectorAll("[d
   e => [e.getAttribute("data-figure"), {value: e.getAttribute("data-value"), text: e.textContent.trim()}]))`
 
 // TestOperatorPageInABrowser loads /ui in headless Chromium against a live
-// proxy with traffic on every cache outcome, a recorded run and a real
-// search running on the sidecar. The page updates itself while the test
-// watches, and the figures it finally shows match /metrics, what `stint
-// spend` prints, the run API and the sidecar. Screenshots in light and
-// dark go to $STINT_ARTIFACTS (or a temporary directory).
+// proxy with traffic on every cache outcome, a recorded run, one upstream
+// whose breaker has tripped and a real search running on the sidecar. The
+// page updates itself while the test watches (a new request, and the
+// search's curve growing while the gate holds the search between steps),
+// and the figures it finally shows match /metrics, what `stint spend`
+// prints, the run API and the sidecar. Screenshots in light and dark go to
+// $STINT_ARTIFACTS (or a temporary directory).
 func TestOperatorPageInABrowser(t *testing.T) {
 	chrome := chromiumPath(t)
 	r := newUIRig(t)
 	r.traffic(t)
 
-	// A search on the sidecar, through the proxy, recorded as run reading-ui.
+	// A search on the sidecar, through the proxy, recorded as run reading-ui,
+	// held after its first step until the page has shown it.
 	var job jobs.Status
+	var submitted sync.WaitGroup
+	submitted.Add(1)
+	curvePoints := func() int {
+		submitted.Wait()
+		h, err := r.jobs.History(job.ID)
+		if err != nil {
+			return math.MaxInt // unreadable: hold until the test raises the limit
+		}
+		return len(h.Points)
+	}
+	r.gate.Hold(curvePoints, 1)
 	body := fmt.Sprintf(`{"task": %q, "run": "reading-ui"}`, shortTask(t))
 	resp, err := http.Post(r.sidecar+"/jobs", "application/json", strings.NewReader(body))
 	if err != nil {
@@ -414,6 +467,7 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		t.Fatalf("submit the search: %d %v", resp.StatusCode, err)
 	}
 	resp.Body.Close()
+	submitted.Done()
 
 	alloc, cancelAlloc := chromedp.NewExecAllocator(context.Background(), append(chromedp.DefaultExecAllocatorOptions[:],
 		chromedp.ExecPath(chrome), chromedp.NoSandbox, chromedp.WindowSize(1280, 900))...)
@@ -443,6 +497,12 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		t.Fatal(err)
 	}
 
+	// Marks of this load: a reload would drop the window's property, and a
+	// body swapped in by the page's script is another main element.
+	if _, err := chromedp.Run(ctx, chromedp.Evaluate[bool](`(window.stintLoad = {main: document.querySelector("main")}, true)`)); err != nil {
+		t.Fatal(err)
+	}
+
 	// Live: a request made after the page loaded shows up without a reload.
 	before, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]figure](readFigures))
 	if err != nil {
@@ -455,13 +515,49 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		t.Fatalf("the page never showed the new request: %v", err)
 	}
 
-	// Live: the search's curve grows until it is done.
+	// Live: the search's curve grows on the page while the search runs.
+	// The gate holds the search at one point, then at two: the page must
+	// show each while the sidecar still runs the search, then the search
+	// is let run to its end.
 	sel := func(f string) string { return fmt.Sprintf(`[data-figure="%s-%s"]`, f, job.ID) }
-	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(
-		`(() => { const s = document.querySelector('%s'); return s !== null && s.getAttribute("data-value") === "done"; })()`, sel("search-state")),
+	type searchShown struct {
+		Points int    `json:"points"`
+		State  string `json:"state"`
+	}
+	readSearch := fmt.Sprintf(`(() => { const c = document.querySelector('%s'), s = document.querySelector('%s');
+  return c === null || s === null ? {points: -1, state: ""} : {points: Number(c.getAttribute("data-value")), state: s.getAttribute("data-value")}; })()`,
+		sel("curve-points"), sel("search-state"))
+	awaitPoints := func(n int) searchShown {
+		t.Helper()
+		if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`(%s).points >= %d`, readSearch, n),
+			chromedp.WithPollingTimeout(2*time.Minute)))); err != nil {
+			st, _ := r.jobs.Get(job.ID)
+			t.Fatalf("the page never showed %d curve points (sidecar says %+v): %v", n, st, err)
+		}
+		shown, err := chromedp.Run(ctx, chromedp.Evaluate[searchShown](readSearch))
+		if err != nil {
+			t.Fatal(err)
+		}
+		return shown
+	}
+	first := awaitPoints(1)
+	r.gate.Hold(curvePoints, first.Points+1)
+	second := awaitPoints(first.Points + 1)
+	if st, _ := r.jobs.Get(job.ID); first.State != string(jobs.Running) || second.State != string(jobs.Running) || second.Points <= first.Points || st.State != jobs.Running {
+		t.Fatalf("page showed %+v, then %+v (sidecar now %s); want the curve grown on the page while the search runs", first, second, st.State)
+	}
+	r.gate.Hold(nil, -1)
+	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`(%s).state === "done"`, readSearch),
 		chromedp.WithPollingTimeout(3*time.Minute)))); err != nil {
 		st, _ := r.jobs.Get(job.ID)
 		t.Fatalf("the page never showed the search done (sidecar says %+v): %v", st, err)
+	}
+	reloaded, err := chromedp.Run(ctx, chromedp.Evaluate[string](`window.stintLoad === undefined ? "reloaded" : window.stintLoad.main === document.querySelector("main") ? "never swapped" : "swapped"`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if reloaded != "swapped" {
+		t.Fatalf("page %s; want the first load still open with fresh bodies swapped in by its script", reloaded)
 	}
 	if err := r.proxy.Flush(ctx); err != nil {
 		t.Fatal(err)
@@ -571,16 +667,38 @@ func TestOperatorPageInABrowser(t *testing.T) {
 				t.Errorf("%s p95 shown as %q, want a unit", u, text)
 			}
 		}
+		// The gauge's values are the proxy's (0 closed, 1 half-open, 2
+		// open); quill tripped in the traffic and stays open for an hour,
+		// local never failed.
+		states := map[string]float64{}
 		for _, m := range fams["stint_upstream_breaker_state"].GetMetric() {
-			u := labelOf(m, "upstream")
-			want := map[float64]string{0: "closed", 1: "half-open", 2: "open"}[m.GetGauge().GetValue()]
-			if got := fig("breaker-" + u); got.Value != want || got.Text != want {
-				t.Errorf("%s breaker: page %+v, /metrics %v (%s)", u, got, m.GetGauge().GetValue(), want)
-			}
+			states[labelOf(m, "upstream")] = m.GetGauge().GetValue()
 		}
-		if r.breakerOwn {
-			if fig("breaker-quill").Value != "half-open" || fig("breaker-trips-quill").Value != "2" {
-				t.Errorf("quill breaker: %+v, trips %+v; the test set half-open after 2 trips", fig("breaker-quill"), fig("breaker-trips-quill"))
+		// A counter series exists once an upstream has tripped; the page
+		// shows no count for one without.
+		trips, tripsShown := map[string]int64{}, map[string]string{}
+		for _, m := range fams["stint_upstream_breaker_trips_total"].GetMetric() {
+			trips[labelOf(m, "upstream")] += int64(m.GetCounter().GetValue())
+			tripsShown[labelOf(m, "upstream")] = strconv.FormatInt(trips[labelOf(m, "upstream")], 10)
+		}
+		for _, tt := range []struct {
+			upstream string
+			gauge    float64
+			shown    string
+			trips    int64
+		}{{"quill", 2, "open", 1}, {"local", 0, "closed", 0}} {
+			g, ok := states[tt.upstream]
+			if !ok || g != tt.gauge {
+				t.Errorf("%s: /metrics stint_upstream_breaker_state %v (present %v), want %v", tt.upstream, g, ok, tt.gauge)
+			}
+			if got := fig("breaker-" + tt.upstream); got.Value != tt.shown || got.Text != tt.shown {
+				t.Errorf("%s breaker: page %+v, /metrics %v; want %s", tt.upstream, got, g, tt.shown)
+			}
+			if trips[tt.upstream] != tt.trips {
+				t.Errorf("%s: /metrics counts %d breaker trips, want %d", tt.upstream, trips[tt.upstream], tt.trips)
+			}
+			if got := fig("breaker-trips-" + tt.upstream); got.Value != tripsShown[tt.upstream] {
+				t.Errorf("%s breaker trips: page %+v, /metrics %q", tt.upstream, got, tripsShown[tt.upstream])
 			}
 		}
 	})
