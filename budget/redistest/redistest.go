@@ -1,9 +1,11 @@
 // Package redistest starts real redis-server processes for tests, each on a
-// free loopback port with persistence off, stopped when the test ends.
+// free loopback port with persistence off, killed when the test ends:
+// standalone servers and multi-master Redis Clusters.
 //
 // It is exported (not internal) so that the proxy's and the command's
-// tests can run their replicas on a real Redis too. The cache tree keeps its
-// own small copy because cache must not import budget.
+// tests can run their replicas on a real Redis too. The cache tree keeps a
+// copy, cache/internal/redistest, because cache must not import budget;
+// the two differ only in this comment (TestCopiesAgree checks it).
 package redistest
 
 import (
@@ -38,36 +40,6 @@ func Start(tb testing.TB) *Server {
 	return start(tb, false)
 }
 
-// StartCluster runs a redis-server in cluster mode as a one-node cluster
-// owning all 16384 slots, so that Redis enforces the cluster's rules
-// (CROSSSLOT errors for scripts whose keys span slots). Use it with
-// redis.NewClusterClient.
-func StartCluster(tb testing.TB) *Server {
-	tb.Helper()
-	s := start(tb, true)
-	ctx := context.Background()
-	c := redis.NewClient(&redis.Options{Addr: s.Addr})
-	defer c.Close()
-	if err := c.Do(ctx, "CLUSTER", "ADDSLOTSRANGE", 0, 16383).Err(); err != nil {
-		tb.Fatalf("redistest: CLUSTER ADDSLOTSRANGE: %v", err)
-	}
-	// The node reports cluster_state:ok once it has taken the slots; wait
-	// for that with a bounded poll of the server (an outside process, not
-	// a goroutine of ours).
-	deadline := time.Now().Add(10 * time.Second)
-	for {
-		info, err := c.ClusterInfo(ctx).Result()
-		if err == nil && strings.Contains(info, "cluster_state:ok") {
-			return s
-		}
-		if time.Now().After(deadline) {
-			tb.Fatalf("redistest: cluster did not become ok: %v %q", err, info)
-		}
-		t := time.NewTimer(20 * time.Millisecond)
-		<-t.C
-	}
-}
-
 // Client returns a client of s, closed when tb's test ends.
 func (s *Server) Client(tb testing.TB) *redis.Client {
 	tb.Helper()
@@ -76,13 +48,110 @@ func (s *Server) Client(tb testing.TB) *redis.Client {
 	return c
 }
 
-// ClusterClient returns a cluster client of a server started with
-// StartCluster, closed when tb's test ends.
-func (s *Server) ClusterClient(tb testing.TB) *redis.ClusterClient {
+// Stop kills the server (SIGKILL, as a crash or a network cut looks to
+// clients). Restart brings it back on the same address.
+func (s *Server) Stop() { s.kill() }
+
+// Restart starts a stopped server again on the same address. Persistence
+// is off, so a standalone server comes back empty; a cluster node comes
+// back with its node id and slots (its nodes.conf) but no data.
+func (s *Server) Restart(tb testing.TB) {
 	tb.Helper()
-	c := redis.NewClusterClient(&redis.ClusterOptions{Addrs: []string{s.Addr}})
-	tb.Cleanup(func() { c.Close() })
-	return c
+	if s.cmd != nil {
+		tb.Fatal("redistest: Restart of a running server")
+	}
+	if err := s.launch(); err != nil {
+		tb.Fatalf("redistest: restart on %s: %v", s.Addr, err)
+	}
+}
+
+// Cluster is a running Redis Cluster of masters only (no replicas).
+type Cluster struct {
+	Addrs []string
+	nodes []*Server
+}
+
+// StartCluster runs a Redis Cluster of n masters, the 16384 slots split
+// evenly between them, and returns once every node reports the cluster ok
+// and knows all n nodes. The processes are killed when tb's test ends.
+func StartCluster(tb testing.TB, n int) *Cluster {
+	tb.Helper()
+	ctx := context.Background()
+	cl := &Cluster{}
+	var nodes []*redis.Client
+	for i := range n {
+		s := start(tb, true)
+		cl.Addrs = append(cl.Addrs, s.Addr)
+		cl.nodes = append(cl.nodes, s)
+		c := s.Client(tb)
+		nodes = append(nodes, c)
+		lo, hi := i*16384/n, (i+1)*16384/n-1
+		if err := c.Do(ctx, "CLUSTER", "ADDSLOTSRANGE", lo, hi).Err(); err != nil {
+			tb.Fatalf("redistest: CLUSTER ADDSLOTSRANGE %d %d: %v", lo, hi, err)
+		}
+	}
+	for _, addr := range cl.Addrs[1:] {
+		host, port, _ := net.SplitHostPort(addr)
+		if err := nodes[0].Do(ctx, "CLUSTER", "MEET", host, port).Err(); err != nil {
+			tb.Fatalf("redistest: CLUSTER MEET %s: %v", addr, err)
+		}
+	}
+	cl.awaitOK(tb, nodes)
+	return cl
+}
+
+// awaitOK waits until every node reports cluster_state:ok and knows all
+// the nodes. Gossip spreads the slot map; this is a bounded poll of the
+// servers (outside processes, not goroutines of ours).
+func (c *Cluster) awaitOK(tb testing.TB, nodes []*redis.Client) {
+	tb.Helper()
+	ctx := context.Background()
+	want := "cluster_known_nodes:" + strconv.Itoa(len(nodes))
+	deadline := time.Now().Add(30 * time.Second)
+	for i := 0; i < len(nodes); {
+		info, err := nodes[i].ClusterInfo(ctx).Result()
+		if err == nil && strings.Contains(info, "cluster_state:ok") && strings.Contains(info, want) {
+			i++
+			continue
+		}
+		if time.Now().After(deadline) {
+			tb.Fatalf("redistest: cluster node %s not ready: %v %q", c.Addrs[i], err, info)
+		}
+		t := time.NewTimer(20 * time.Millisecond)
+		<-t.C
+	}
+}
+
+// Client returns a cluster client of c, closed when tb's test ends.
+func (c *Cluster) Client(tb testing.TB) *redis.ClusterClient {
+	tb.Helper()
+	cc := redis.NewClusterClient(&redis.ClusterOptions{Addrs: c.Addrs})
+	tb.Cleanup(func() { cc.Close() })
+	return cc
+}
+
+// Stop kills every node of the cluster (SIGKILL).
+func (c *Cluster) Stop() {
+	for _, s := range c.nodes {
+		s.kill()
+	}
+}
+
+// Restart starts every stopped node again on its address with its cluster
+// config, and returns once the cluster is ok again. The nodes come back
+// empty.
+func (c *Cluster) Restart(tb testing.TB) {
+	tb.Helper()
+	var nodes []*redis.Client
+	for _, s := range c.nodes {
+		if s.cmd == nil {
+			s.Restart(tb)
+		}
+		cl := redis.NewClient(&redis.Options{Addr: s.Addr})
+		defer cl.Close()
+		nodes = append(nodes, cl)
+	}
+	c.awaitOK(tb, nodes)
 }
 
 func start(tb testing.TB, cluster bool) *Server {
@@ -169,22 +238,6 @@ func (s *Server) kill() {
 	_ = s.cmd.Process.Kill()
 	_ = s.cmd.Wait()
 	s.cmd = nil
-}
-
-// Stop kills the server (SIGKILL, as a crash or a network cut looks to
-// clients); Restart brings it back on the same address, empty.
-func (s *Server) Stop() { s.kill() }
-
-// Restart starts a stopped server again on the same address. Persistence
-// is off, so it comes back empty.
-func (s *Server) Restart(tb testing.TB) {
-	tb.Helper()
-	if s.cmd != nil {
-		tb.Fatal("redistest: Restart of a running server")
-	}
-	if err := s.launch(); err != nil {
-		tb.Fatalf("redistest: restart on %s: %v", s.Addr, err)
-	}
 }
 
 func freePort() (int, error) {

@@ -1,7 +1,8 @@
 // Package redistest starts real redis-server processes for the cache tree's
 // tests, each on a free loopback port with persistence off, killed when the
-// test ends. It is a small copy of budget's helper: cache must not import
-// budget.
+// test ends: standalone servers and multi-master Redis Clusters. It is a
+// copy of budget/redistest (cache must not import budget); the two differ
+// only in this comment, which budget/redistest's TestCopiesAgree checks.
 package redistest
 
 import (
