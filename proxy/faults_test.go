@@ -14,6 +14,7 @@ import (
 )
 
 func TestBadRequestsGetWireErrors(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t, func(o *proxy.Options) { o.MaxBodyBytes = 4096 })
 	tests := []struct {
 		name   string
@@ -74,6 +75,7 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 }
 
 func TestUnknownKeyIs401(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t, withTeams(teamWithKey("lab", "good-key")))
 	for _, key := range []string{"", "wrong-key"} {
 		r.key = key
@@ -88,6 +90,7 @@ func TestUnknownKeyIs401(t *testing.T) {
 }
 
 func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.up.Block()
 	const clients = 64
@@ -131,6 +134,7 @@ func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
 }
 
 func TestNothingIsCachedFromAFailedCall(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "7", Body: `{"error":{"message":"slow down","type":"rate_limit","code":"rate_limited"}}`})
 	got := r.complete(greedy("queen cell"))
@@ -144,6 +148,7 @@ func TestNothingIsCachedFromAFailedCall(t *testing.T) {
 }
 
 func TestUpstreamUnreachableOrSlow(t *testing.T) {
+	noLeaks(t)
 	t.Run("unreachable", func(t *testing.T) {
 		r := newRig(t)
 		r.up.Close()
@@ -166,6 +171,7 @@ func TestUpstreamUnreachableOrSlow(t *testing.T) {
 }
 
 func TestHealthReadyMetrics(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.complete(greedy("metrics please"))
 	r.complete(greedy("metrics please"))
@@ -194,6 +200,7 @@ func TestHealthReadyMetrics(t *testing.T) {
 }
 
 func TestCutShortAnswersAreNotCached(t *testing.T) {
+	noLeaks(t)
 	for _, tc := range []struct {
 		name   string
 		stream bool
