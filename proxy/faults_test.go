@@ -1,8 +1,12 @@
 package proxy_test
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
 	"net/http"
 	"strings"
 	"sync"
@@ -10,10 +14,12 @@ import (
 	"time"
 
 	"github.com/stintlab/stint/proxy"
+	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
 func TestBadRequestsGetWireErrors(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t, func(o *proxy.Options) { o.MaxBodyBytes = 4096 })
 	tests := []struct {
 		name   string
@@ -74,6 +80,7 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 }
 
 func TestUnknownKeyIs401(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t, withTeams(teamWithKey("lab", "good-key")))
 	for _, key := range []string{"", "wrong-key"} {
 		r.key = key
@@ -88,6 +95,7 @@ func TestUnknownKeyIs401(t *testing.T) {
 }
 
 func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.up.Block()
 	const clients = 64
@@ -131,6 +139,7 @@ func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
 }
 
 func TestNothingIsCachedFromAFailedCall(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "7", Body: `{"error":{"message":"slow down","type":"rate_limit","code":"rate_limited"}}`})
 	got := r.complete(greedy("queen cell"))
@@ -144,6 +153,7 @@ func TestNothingIsCachedFromAFailedCall(t *testing.T) {
 }
 
 func TestUpstreamUnreachableOrSlow(t *testing.T) {
+	noLeaks(t)
 	t.Run("unreachable", func(t *testing.T) {
 		r := newRig(t)
 		r.up.Close()
@@ -166,6 +176,7 @@ func TestUpstreamUnreachableOrSlow(t *testing.T) {
 }
 
 func TestHealthReadyMetrics(t *testing.T) {
+	noLeaks(t)
 	r := newRig(t)
 	r.complete(greedy("metrics please"))
 	r.complete(greedy("metrics please"))
@@ -194,6 +205,7 @@ func TestHealthReadyMetrics(t *testing.T) {
 }
 
 func TestCutShortAnswersAreNotCached(t *testing.T) {
+	noLeaks(t)
 	for _, tc := range []struct {
 		name   string
 		stream bool
@@ -212,4 +224,139 @@ func TestCutShortAnswersAreNotCached(t *testing.T) {
 			}
 		})
 	}
+}
+
+// TestNoRequestOutlivesItsDeadline puts the proxy under concurrent load in
+// front of an upstream that fails in every way the fake can (5xx at a
+// ratio, 429 with Retry-After, hangs, resets, slow answers), with retries
+// on the real clock and a concurrency cap, once with the breaker off (every
+// request meets the faults) and once with a breaker that trips and
+// recovers during the run. Every client request carries a deadline of the
+// upstream timeout plus a margin: each must get a whole HTTP answer from
+// the proxy before it; none may end in the client's own
+// context.DeadlineExceeded.
+func TestNoRequestOutlivesItsDeadline(t *testing.T) {
+	// The routed upstream's timeout bounds a request's whole upstream
+	// exchange: the slot wait, every attempt, the retry waits and reading
+	// the answer (README, "When the upstream fails"; proxy/resilience.go).
+	// The margin is shorter than the timeout itself, so an exchange that
+	// ran the timeout over twice (an attempt's own timeout escaping the
+	// exchange's bound, say: a hang held 3x the timeout failed this test)
+	// misses the client's deadline.
+	const (
+		timeout  = time.Second
+		margin   = 800 * time.Millisecond
+		workers  = 12
+		each     = 10
+		prompts  = 40 // fewer than requests: repeats coalesce or hit
+		slotsCap = 3
+	)
+	tests := []struct {
+		name    string
+		breaker breaker.Settings
+		// mustSee are statuses some client must get, so the load really
+		// ran through the faults the proxy does not retry.
+		mustSee []int
+	}{
+		{"breaker off", breaker.Settings{Off: true}, []int{200, 429, 500, 504}},
+		// Trips after 4 failures in a row; a short open time lets probes
+		// through, and closes it again, within the run.
+		{"breaker tripping", breaker.Settings{ConsecutiveFailures: 4, FailureRatio: -1, OpenFor: 200 * time.Millisecond}, []int{200}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			noLeaks(t)
+			r := newRig(t, func(o *proxy.Options) {
+				u := &o.Upstreams[0]
+				u.Timeout = timeout
+				u.MaxConcurrent = slotsCap
+				u.Breaker = tt.breaker
+				// Retries keep package retry's defaults: 3 calls, full
+				// jitter from 250 ms, on the real clock.
+			})
+			// Each call takes the first rule that picks it; a ratio counts
+			// the calls that reach its rule. About half the calls fail.
+			for _, rule := range []struct {
+				ratio float64
+				fault upstreamtest.Fault
+			}{
+				{0.2, upstreamtest.Fault{Status: http.StatusInternalServerError}},
+				// A Retry-After as long as the timeout cannot be waited
+				// for: passed through.
+				{0.2, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "1"}},
+				// Retried at once.
+				{0.2, upstreamtest.Fault{Status: http.StatusServiceUnavailable, RetryAfter: "0"}},
+				{0.15, upstreamtest.Fault{Hang: true}},
+				{0.2, upstreamtest.Fault{Reset: true}},
+				{0.2, upstreamtest.Fault{Delay: 100 * time.Millisecond}}, // slow, then a good answer
+			} {
+				r.up.FailRatio(rule.ratio, rule.fault)
+			}
+			tr := &http.Transport{MaxIdleConnsPerHost: workers}
+			t.Cleanup(tr.CloseIdleConnections)
+			client := &http.Client{Transport: tr}
+
+			type result struct {
+				status int
+				err    error
+			}
+			results := make([]result, workers*each)
+			var wg sync.WaitGroup
+			for w := range workers {
+				wg.Go(func() {
+					for i := range each {
+						n := w*each + i
+						body, _ := json.Marshal(greedy(fmt.Sprintf("deadline load %d", n%prompts), "stream", n%3 == 0))
+						results[n].status, results[n].err = postWithin(client, r.srv.URL+"/v1/completions", body, timeout+margin)
+					}
+				})
+			}
+			wg.Wait()
+
+			// What the proxy may answer here (README, "When the upstream
+			// fails" and "Errors"): the answer, the upstream's 500 or 429
+			// passed through, 502 for a reset, 503 (the upstream's,
+			// upstream_busy or upstream_circuit_open), 504 for a hang.
+			allowed := map[int]bool{200: true, 429: true, 500: true, 502: true, 503: true, 504: true}
+			seen := map[int]int{}
+			for n, res := range results {
+				switch {
+				case errors.Is(res.err, context.DeadlineExceeded):
+					t.Errorf("request %d outlived its deadline of the timeout %v + %v: %v", n, timeout, margin, res.err)
+				case res.err != nil:
+					t.Errorf("request %d got no whole answer: %v", n, res.err)
+				case !allowed[res.status]:
+					t.Errorf("request %d: status %d, want one of %v", n, res.status, allowed)
+				}
+				seen[res.status]++
+			}
+			for _, status := range tt.mustSee {
+				if seen[status] == 0 {
+					t.Errorf("no request answered %d (statuses seen: %v)", status, seen)
+				}
+			}
+			t.Logf("statuses %v over %d upstream calls", seen, r.upstreamGenerations())
+		})
+	}
+}
+
+// postWithin posts body to url under a deadline d from now and reads the
+// whole answer; err is the transport's or the body read's error.
+func postWithin(c *http.Client, url string, body []byte, d time.Duration) (status int, err error) {
+	ctx, cancel := context.WithTimeout(context.Background(), d)
+	defer cancel()
+	req, err := http.NewRequestWithContext(ctx, http.MethodPost, url, bytes.NewReader(body))
+	if err != nil {
+		return 0, err
+	}
+	req.Header.Set("Content-Type", "application/json")
+	resp, err := c.Do(req)
+	if err != nil {
+		return 0, err
+	}
+	defer resp.Body.Close()
+	if _, err := io.Copy(io.Discard, resp.Body); err != nil {
+		return resp.StatusCode, err
+	}
+	return resp.StatusCode, nil
 }

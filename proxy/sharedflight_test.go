@@ -69,6 +69,7 @@ func (sr *sharedRigs) waiting() float64 {
 }
 
 func TestSharedStoreHitOnAnotherReplica(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 2, 8<<20)
 	a, b := sr.rigs[0], sr.rigs[1]
 	first := a.complete(greedy("the ferry leaves at dawn"))
@@ -88,6 +89,7 @@ func TestSharedStoreHitOnAnotherReplica(t *testing.T) {
 // once while the upstream holds the first call: one upstream call answers
 // all of them, the others coalesced locally or across replicas.
 func TestSharedFlightsMakeOneCall(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 2, 8<<20)
 	sr.up.Block()
 	const clients = 20
@@ -122,6 +124,7 @@ func TestSharedFlightsMakeOneCall(t *testing.T) {
 // TestSharedFlightsHolderFailure: the replica holding the key gets an
 // upstream error; the waiting replica then fetches the answer itself.
 func TestSharedFlightsHolderFailure(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 2, 8<<20)
 	a, b := sr.rigs[0], sr.rigs[1]
 	sr.up.Block()
@@ -154,6 +157,7 @@ func TestSharedFlightsHolderFailure(t *testing.T) {
 // Stint-Cache-Store: unavailable and counted; after Redis is back the same
 // process caches and hits again.
 func TestSharedStoreDownDegrades(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
 	if got := r.complete(greedy("before the outage")); got.status != http.StatusOK || got.header.Get(proxy.HeaderCacheStore) != "" {
@@ -205,6 +209,7 @@ func completeWithin(t *testing.T, r *rig, d time.Duration, body map[string]any) 
 // upstream's answer to its client; the waiting replica serves the same
 // answer, assembled and stored by the holder, as JSON.
 func TestSharedFlightsAfterAStream(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 2, 8<<20)
 	a, b := sr.rigs[0], sr.rigs[1]
 	sr.up.Block()
@@ -240,6 +245,7 @@ func TestSharedFlightsAfterAStream(t *testing.T) {
 // waits for it no longer than the store's timeout, then is answered from
 // upstream, marked unavailable, well before its own deadline.
 func TestSharedStoreSlowIsBounded(t *testing.T) {
+	noLeaks(t)
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
 	admin := sr.redis.Client(t)

@@ -8,6 +8,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/redis/go-redis/v9"
 	"github.com/sony/gobreaker/v2"
 	"go.uber.org/goleak"
 
@@ -144,9 +145,29 @@ func TestHalfOpenProbe(t *testing.T) {
 }
 
 func TestSharedStateAcrossReplicas(t *testing.T) {
-	srv := redistest.Start(t)
+	// On a standalone Redis and on a real 3-master cluster, where the
+	// breaker's state, lock and record keys are routed by their one slot.
+	backends := []struct {
+		name   string
+		client func(t *testing.T) func(t *testing.T) redis.UniversalClient
+	}{
+		{"standalone", func(t *testing.T) func(t *testing.T) redis.UniversalClient {
+			s := redistest.Start(t)
+			return func(t *testing.T) redis.UniversalClient { return s.Client(t) }
+		}},
+		{"cluster", func(t *testing.T) func(t *testing.T) redis.UniversalClient {
+			c := redistest.StartCluster(t, 3)
+			return func(t *testing.T) redis.UniversalClient { return c.Client(t) }
+		}},
+	}
+	for _, be := range backends {
+		t.Run(be.name, func(t *testing.T) { testSharedStateAcrossReplicas(t, be.client(t)) })
+	}
+}
+
+func testSharedStateAcrossReplicas(t *testing.T, client func(t *testing.T) redis.UniversalClient) {
 	newReplica := func(c *atomic.Int32) *breaker.Breaker {
-		st, err := redisstate.New(srv.Client(t), redisstate.Options{Prefix: "t"})
+		st, err := redisstate.New(client(t), redisstate.Options{Prefix: "t"})
 		if err != nil {
 			t.Fatal(err)
 		}

@@ -21,8 +21,11 @@ func TestConformance(t *testing.T) {
 	})
 }
 
+// TestCluster runs the same suite on a real 3-master Redis Cluster, so
+// limiters' keys are spread over nodes and each script's keys must share
+// a slot.
 func TestCluster(t *testing.T) {
-	c := redistest.StartCluster(t).ClusterClient(t)
+	c := redistest.StartCluster(t, 3).Client(t)
 	ratelimittest.Run(t, func(t *testing.T) ratelimit.Limiter {
 		return redisrate.New(c, redisrate.Options{Prefix: "c" + t.Name()})
 	})

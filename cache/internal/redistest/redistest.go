@@ -1,7 +1,9 @@
 // Package redistest starts real redis-server processes for the cache tree's
 // tests, each on a free loopback port with persistence off, killed when the
-// test ends. It is a small copy of budget's helper: cache must not import
-// budget.
+// test ends: standalone servers, and multi-master Redis Clusters joined
+// with `redis-cli --cluster create`. It is a copy of budget/redistest
+// (cache must not import budget); the two differ only in this comment,
+// which budget/redistest's TestCopiesAgree checks.
 package redistest
 
 import (
@@ -21,6 +23,14 @@ import (
 
 // Binary is the redis-server executable the tests run.
 const Binary = "/usr/bin/redis-server"
+
+// CLI is the redis-cli executable that joins cluster nodes (installed with
+// redis-server).
+const CLI = "/usr/bin/redis-cli"
+
+// MinClusterSize is the fewest masters `redis-cli --cluster create`
+// accepts.
+const MinClusterSize = 3
 
 // Server is one running redis-server.
 type Server struct {
@@ -67,33 +77,46 @@ type Cluster struct {
 	nodes []*Server
 }
 
-// StartCluster runs a Redis Cluster of n masters, the 16384 slots split
-// evenly between them, and returns once every node reports the cluster ok
-// and knows all n nodes. The processes are killed when tb's test ends.
+// StartCluster runs n redis-servers with --cluster-enabled yes and joins
+// them with `redis-cli --cluster create ... --cluster-replicas 0`, which
+// splits the 16384 slots evenly between the n masters. It returns once
+// every node reports the cluster ok and knows all n nodes. n must be at
+// least MinClusterSize. The processes are killed when tb's test ends.
 func StartCluster(tb testing.TB, n int) *Cluster {
 	tb.Helper()
-	ctx := context.Background()
+	if n < MinClusterSize {
+		tb.Fatalf("redistest: a cluster of %d masters; redis-cli --cluster create needs at least %d", n, MinClusterSize)
+	}
 	cl := &Cluster{}
 	var nodes []*redis.Client
-	for i := range n {
+	for range n {
 		s := start(tb, true)
 		cl.Addrs = append(cl.Addrs, s.Addr)
 		cl.nodes = append(cl.nodes, s)
-		c := s.Client(tb)
-		nodes = append(nodes, c)
-		lo, hi := i*16384/n, (i+1)*16384/n-1
-		if err := c.Do(ctx, "CLUSTER", "ADDSLOTSRANGE", lo, hi).Err(); err != nil {
-			tb.Fatalf("redistest: CLUSTER ADDSLOTSRANGE %d %d: %v", lo, hi, err)
-		}
+		nodes = append(nodes, s.Client(tb))
 	}
-	for _, addr := range cl.Addrs[1:] {
-		host, port, _ := net.SplitHostPort(addr)
-		if err := nodes[0].Do(ctx, "CLUSTER", "MEET", host, port).Err(); err != nil {
-			tb.Fatalf("redistest: CLUSTER MEET %s: %v", addr, err)
-		}
+	if err := cl.create(); err != nil {
+		tb.Fatalf("redistest: %v", err)
 	}
 	cl.awaitOK(tb, nodes)
 	return cl
+}
+
+// create joins the nodes with redis-cli, bounded by a timeout so a stuck
+// join fails the test instead of hanging it.
+func (c *Cluster) create() error {
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	args := append([]string{"--cluster", "create"}, c.Addrs...)
+	args = append(args, "--cluster-replicas", "0", "--cluster-yes")
+	out, err := exec.CommandContext(ctx, CLI, args...).CombinedOutput()
+	// redis-cli prints this once every slot has a master; its exit status
+	// alone does not tell a partial join from a whole one.
+	const covered = "All 16384 slots covered"
+	if err != nil || !strings.Contains(string(out), covered) {
+		return fmt.Errorf("%s %s: %v (want %q in its output):\n%s", CLI, strings.Join(args, " "), err, covered, out)
+	}
+	return nil
 }
 
 // awaitOK waits until every node reports cluster_state:ok and knows all
@@ -154,7 +177,8 @@ func start(tb testing.TB, cluster bool) *Server {
 	tb.Helper()
 	var lastErr error
 	// A free port can be taken by someone else between our probe and
-	// redis-server's bind; try a few ports.
+	// redis-server's bind (or, for a cluster node, its bus port 10000
+	// above); try a few ports.
 	for range 5 {
 		s, err := tryStart(tb, cluster)
 		if err == nil {
@@ -167,7 +191,7 @@ func start(tb testing.TB, cluster bool) *Server {
 }
 
 func tryStart(tb testing.TB, cluster bool) (*Server, error) {
-	port, err := freePort()
+	port, err := freePort(cluster)
 	if err != nil {
 		return nil, err
 	}
@@ -236,11 +260,34 @@ func (s *Server) kill() {
 	s.cmd = nil
 }
 
-func freePort() (int, error) {
-	l, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		return 0, err
+// busOffset is how far above its port a cluster node listens for its
+// cluster bus (Redis's default cluster-port).
+const busOffset = 10000
+
+// freePort returns a loopback port free at the time of asking; for a
+// cluster node, one whose bus port is a valid port and free too.
+func freePort(cluster bool) (int, error) {
+	for range 20 {
+		l, err := net.Listen("tcp", "127.0.0.1:0")
+		if err != nil {
+			return 0, err
+		}
+		port := l.Addr().(*net.TCPAddr).Port
+		if !cluster {
+			l.Close()
+			return port, nil
+		}
+		if port+busOffset > 65535 {
+			l.Close()
+			continue
+		}
+		bus, err := net.Listen("tcp", net.JoinHostPort("127.0.0.1", strconv.Itoa(port+busOffset)))
+		l.Close()
+		if err != nil {
+			continue
+		}
+		bus.Close()
+		return port, nil
 	}
-	defer l.Close()
-	return l.Addr().(*net.TCPAddr).Port, nil
+	return 0, fmt.Errorf("no free port with a free cluster bus port %d above it", busOffset)
 }

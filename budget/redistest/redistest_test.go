@@ -1,0 +1,94 @@
+package redistest_test
+
+import (
+	"bytes"
+	"context"
+	"os"
+	"strings"
+	"testing"
+
+	"github.com/stintlab/stint/budget/redistest"
+)
+
+// TestCopiesAgree checks cache/internal/redistest is still this package's
+// copy: the files are the same past their package comments.
+func TestCopiesAgree(t *testing.T) {
+	code := func(path string) []byte {
+		b, err := os.ReadFile(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, after, ok := bytes.Cut(b, []byte("\npackage redistest\n"))
+		if !ok {
+			t.Fatalf("%s: no package clause", path)
+		}
+		return after
+	}
+	ours, theirs := code("redistest.go"), code("../../cache/internal/redistest/redistest.go")
+	if !bytes.Equal(ours, theirs) {
+		t.Errorf("budget/redistest and cache/internal/redistest differ past their package comments; change both")
+	}
+}
+
+// TestClusterSplitsTheSlotsOverEveryMaster checks StartCluster's cluster:
+// n masters, no replicas, every node owning a share of the slots and
+// agreeing on the map, and keys in different slots landing on different
+// nodes.
+func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
+	const n = 3
+	cl := redistest.StartCluster(t, n)
+	if len(cl.Addrs) != n {
+		t.Fatalf("%d addresses, want %d", len(cl.Addrs), n)
+	}
+	ctx := context.Background()
+	c := cl.Client(t)
+	slots, err := c.ClusterSlots(ctx).Result()
+	if err != nil {
+		t.Fatal(err)
+	}
+	owned := map[string]int{}
+	for _, s := range slots {
+		if len(s.Nodes) != 1 {
+			t.Errorf("slots %d-%d have %d nodes, want 1 master and no replica", s.Start, s.End, len(s.Nodes))
+		}
+		owned[s.Nodes[0].Addr] += s.End - s.Start + 1
+	}
+	total := 0
+	for _, addr := range cl.Addrs {
+		// The slots are split evenly: 5461 or 5462 for each of 3.
+		if got, want := owned[addr], 16384/n; got < want || got > want+1 {
+			t.Errorf("%s owns %d slots, want %d or %d", addr, got, want, want+1)
+		}
+		total += owned[addr]
+	}
+	if total != 16384 {
+		t.Errorf("%d slots covered, want 16384", total)
+	}
+	// Every node answers with the same map.
+	for _, addr := range cl.Addrs {
+		node := (&redistest.Server{Addr: addr}).Client(t)
+		info, err := node.ClusterInfo(ctx).Result()
+		if err != nil || !strings.Contains(info, "cluster_state:ok") || !strings.Contains(info, "cluster_known_nodes:3") {
+			t.Errorf("%s: %v %q, want ok with 3 known nodes", addr, err, info)
+		}
+	}
+	// {a}, {b} and {c} hash to slots 15495, 3300 and 7365 (CRC16 mod
+	// 16384, the cluster spec), one in each third of the slots.
+	seen := map[string]bool{}
+	for k, slot := range map[string]int64{"k:{a}": 15495, "k:{b}": 3300, "k:{c}": 7365} {
+		if got, err := c.ClusterKeySlot(ctx, k).Result(); err != nil || got != slot {
+			t.Fatalf("CLUSTER KEYSLOT %s = %d %v, want %d", k, got, err, slot)
+		}
+		if err := c.Set(ctx, k, "1", 0).Err(); err != nil {
+			t.Fatalf("SET %s: %v", k, err)
+		}
+		node, err := c.MasterForKey(ctx, k)
+		if err != nil {
+			t.Fatal(err)
+		}
+		seen[node.Options().Addr] = true
+	}
+	if len(seen) != n {
+		t.Errorf("three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
+	}
+}
