@@ -17,8 +17,14 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
+
+// Invented demo prices of the local model, USD per million tokens, not any
+// provider's: the demo's proxy charges them and its searches forecast at
+// them.
+const demoInputPrice, demoOutputPrice = 0.50, 1.50
 
 // demoFlags are the settings of `stint demo`.
 type demoFlags struct {
@@ -80,8 +86,7 @@ Get it one of these ways:
 	cfg := DefaultConfig()
 	cfg.Listen, cfg.Data = "127.0.0.1:0", f.data
 	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
-	// Invented demo prices, USD per million tokens, not any provider's.
-	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: 0.50, Set: true}, Output: Number{Value: 1.50, Set: true}}}
+	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: demoInputPrice, Set: true}, Output: Number{Value: demoOutputPrice, Set: true}}}
 	if err := cfg.Validate(nil); err != nil {
 		return err
 	}
@@ -103,7 +108,10 @@ Get it one of these ways:
 
 	start := time.Now()
 	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
-	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix())}
+	// The search forecasts at the prices the demo's proxy charges.
+	in, outPrice := demoInputPrice, demoOutputPrice
+	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
+		price: search.PriceOverride{InputPerMillion: &in, OutputPerMillion: &outPrice}}
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}
@@ -159,7 +167,7 @@ func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since tim
 		return err
 	}
 	t := st.Total
-	fmt.Fprintf(out, "\n== what the proxy did (demo prices: 0.50 / 1.50 USD per million input / output tokens, invented)\n")
+	fmt.Fprintf(out, "\n== what the proxy did (demo prices: %.2f / %.2f USD per million input / output tokens, invented)\n", demoInputPrice, demoOutputPrice)
 	fmt.Fprintf(out, "requests %d, upstream calls %d, served from the cache %.1f%%, calls saved %d\n",
 		t.Requests, t.UpstreamCalls, 100*t.CacheShare, t.Requests-t.UpstreamCalls)
 	fmt.Fprintf(out, "spent %s USD, saved %s USD (estimates from the demo prices)\n", t.SpentUSD, t.SavedUSD)

@@ -4,17 +4,19 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"math"
 	"net"
 	"net/http"
 	"os"
 	"path/filepath"
+	"strconv"
 	"time"
 
 	"github.com/spf13/cobra"
+	"github.com/spf13/pflag"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/searcher/jobs"
-	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
@@ -27,9 +29,10 @@ type searchFlags struct {
 	model  string
 	run    string
 	replay bool
-	// price prices the forecast (USD per million tokens); overCap starts
-	// a search whose forecast is over the task's spend cap.
-	price   scorer.Price
+	// price overrides the task's prices for the forecast (USD per million
+	// tokens); overCap starts a search whose forecast is over the task's
+	// spend cap, or that has a cap and no price.
+	price   search.PriceOverride
 	overCap bool
 	// checkpointEvery, stopAfter and resume control checkpoints in
 	// OUT/checkpoint.json.
@@ -73,9 +76,8 @@ curve as learning-curve.png and .svg.`,
 	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
 	fl.StringVar(&f.run, "run", "", "run id the calls are recorded under (default: TASKNAME-sSEED)")
 	fl.BoolVar(&f.replay, "replay", false, "answer every call from the run's journal; no upstream calls")
-	fl.Float64Var(&f.price.InputPerMillion, "input-price", 0, "USD per million input tokens, for the cost forecast")
-	fl.Float64Var(&f.price.OutputPerMillion, "output-price", 0, "USD per million output tokens, for the cost forecast")
-	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd")
+	priceFlags(fl, &f.price)
+	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd, or the task has a cap and no price")
 	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps (default: every tenth of the steps)")
 	fl.IntVar(&f.stopAfter, "stop-after", 0, "stop after step N with a checkpoint (resume later with --resume)")
 	fl.BoolVar(&f.resume, "resume", false, "continue from OUT/checkpoint.json exactly where it stopped")
@@ -92,9 +94,41 @@ curve as learning-curve.png and .svg.`,
 	return cmd
 }
 
+// priceFlags adds --input-price and --output-price, which override the
+// task's prices section; a flag not given keeps the task's price.
+func priceFlags(fl *pflag.FlagSet, o *search.PriceOverride) {
+	fl.Var(optionalFloat{&o.InputPerMillion}, "input-price", "USD per million input tokens, for the cost forecast (default: the task's prices.input_per_million)")
+	fl.Var(optionalFloat{&o.OutputPerMillion}, "output-price", "USD per million output tokens, for the cost forecast (default: the task's prices.output_per_million)")
+}
+
+// optionalFloat is a float flag that stays nil until it is given.
+type optionalFloat struct{ v **float64 }
+
+func (o optionalFloat) String() string {
+	if o.v == nil || *o.v == nil {
+		return ""
+	}
+	return strconv.FormatFloat(**o.v, 'g', -1, 64)
+}
+
+func (o optionalFloat) Set(s string) error {
+	x, err := strconv.ParseFloat(s, 64)
+	if err != nil {
+		return err
+	}
+	if !(x >= 0) || math.IsInf(x, 1) {
+		return fmt.Errorf("want a finite USD amount >= 0, got %s", s)
+	}
+	*o.v = &x
+	return nil
+}
+
+func (optionalFloat) Type() string { return "usd" }
+
 func newSearchServeCmd() *cobra.Command {
 	var listen, proxyURL, data, model, key string
 	var every int
+	var price search.PriceOverride
 	cmd := &cobra.Command{
 		Use:   "serve",
 		Short: "Run the search sidecar: an HTTP API to submit, watch and cancel searches",
@@ -107,10 +141,12 @@ func newSearchServeCmd() *cobra.Command {
 
 Jobs and their outputs are kept under --data; a job that was running when
 the sidecar stopped resumes from its last checkpoint when it starts again.
-The team key is --key or $STINT_KEY.`,
+The team key is --key or $STINT_KEY. --input-price and --output-price
+override every task's prices for its forecast, as for "stint search run"; a
+job whose task has a spend cap and no price is refused unless over_cap.`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every)
+			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every, price)
 		},
 	}
 	fl := cmd.Flags()
@@ -120,10 +156,11 @@ The team key is --key or $STINT_KEY.`,
 	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
 	fl.StringVar(&key, "key", "", "the team's client key (default: $STINT_KEY)")
 	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps (default: every tenth of the steps)")
+	priceFlags(fl, &price)
 	return cmd
 }
 
-func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int) error {
+func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int, price search.PriceOverride) error {
 	modelPath, err := localmodel.Locate(modelFlag, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
@@ -135,7 +172,7 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	if key == "" {
 		key = os.Getenv(teamKeyEnv)
 	}
-	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every})
+	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price})
 	if err != nil {
 		return err
 	}

@@ -129,19 +129,49 @@ func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
 	}
 }
 
-// TestSearchRefusesAForecastOverTheCap never reaches a proxy: the
-// forecast is over the task's cap, so the search does not start.
-func TestSearchRefusesAForecastOverTheCap(t *testing.T) {
+// TestSearchRefusesToStartOverOrWithoutAPrice never reaches a proxy: the
+// forecast is over the task's cap, or the task has a cap and no price, so
+// the search does not start and says what to set.
+func TestSearchRefusesToStartOverOrWithoutAPrice(t *testing.T) {
 	t.Setenv("STINT_MODEL", modeltest.Path(t))
-	out, err := runCLI(t, "search", "run", shortTask(t), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir(),
-		"--input-price", "1000000", "--output-price", "1000000")
-	if err == nil || !strings.Contains(err.Error(), "spend_cap_usd") || !strings.Contains(out, "forecast:") {
-		t.Errorf("search over its cap: %v\n%s, want a refusal naming spend_cap_usd after the forecast", err, out)
+	unpriced := shortTask(t)
+	raw, err := os.ReadFile(unpriced)
+	if err != nil {
+		t.Fatal(err)
+	}
+	noPrices := regexp.MustCompile(`(?m)^prices:\n(  .*\n)+`).ReplaceAll(raw, nil)
+	if bytes.Equal(noPrices, raw) {
+		t.Fatal("the example task has no prices section to remove")
+	}
+	if err := os.WriteFile(unpriced, noPrices, 0o600); err != nil {
+		t.Fatal(err)
+	}
+	tests := []struct {
+		name string
+		args []string
+		want []string // in the error
+	}{
+		{"forecast over the cap", []string{shortTask(t), "--input-price", "1000000", "--output-price", "1000000"}, []string{"spend_cap_usd", "--over-cap"}},
+		{"cap and no price", []string{unpriced}, []string{"prices.input_per_million", "--input-price", "prices.output_per_million", "--over-cap"}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			out, err := runCLI(t, append(append([]string{"search", "run"}, tt.args...), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir())...)
+			if err == nil || !strings.Contains(out, "forecast:") {
+				t.Fatalf("search: %v\n%s, want a refusal after the forecast", err, out)
+			}
+			for _, w := range tt.want {
+				if !strings.Contains(err.Error(), w) {
+					t.Errorf("refusal %q does not name %q", err, w)
+				}
+			}
+		})
 	}
 }
 
 // TestSearchStopsAtItsSpendCap runs against a proxy that prices the model:
-// the search stops once the spend the proxy reports reaches the task's cap.
+// started over its cap (--over-cap), the search stops once the spend the
+// proxy reports reaches the task's cap.
 func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	model := modeltest.Path(t)
 	t.Setenv("STINT_MODEL", model)
@@ -155,9 +185,9 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 2.50"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir())
-	if err == nil || !strings.Contains(err.Error(), "spend cap") {
-		t.Errorf("search with a tiny cap: %v\n%s, want it stopped at the cap", err, out)
+	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")
+	if err == nil || !strings.Contains(err.Error(), "spend cap is reached") || !strings.Contains(out, "starting over the cap") {
+		t.Errorf("search with a tiny cap: %v\n%s, want it started over the cap and stopped there", err, out)
 	}
 }
 
@@ -195,5 +225,33 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	}
 	if got := upstreamCalls(t, c); got != calls {
 		t.Errorf("upstream calls %d → %d during the replayed pieces", calls, got)
+	}
+}
+
+// TestSearchRunAndServeTakeTheSamePriceFlags: both commands override the
+// task's prices with --input-price and --output-price, which refuse what
+// is not a USD amount.
+func TestSearchRunAndServeTakeTheSamePriceFlags(t *testing.T) {
+	root := newRootCmd()
+	for _, path := range [][]string{{"search", "run"}, {"search", "serve"}} {
+		cmd, _, err := root.Find(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, name := range []string{"input-price", "output-price"} {
+			fl := cmd.Flags().Lookup(name)
+			if fl == nil {
+				t.Errorf("%s has no --%s", strings.Join(path, " "), name)
+				continue
+			}
+			for _, tt := range []struct {
+				value string
+				ok    bool
+			}{{"0.5", true}, {"0", true}, {"-1", false}, {"NaN", false}, {"+Inf", false}, {"cheap", false}} {
+				if err := fl.Value.Set(tt.value); (err == nil) != tt.ok {
+					t.Errorf("%s --%s %s: %v, want ok=%v", strings.Join(path, " "), name, tt.value, err, tt.ok)
+				}
+			}
+		}
 	}
 }

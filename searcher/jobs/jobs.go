@@ -70,6 +70,9 @@ type Options struct {
 	Proxy, Key string
 	// CheckpointEvery is passed to each search (0: its default).
 	CheckpointEvery int
+	// Price overrides each task's prices for its forecast (see
+	// search.Job.Price).
+	Price search.PriceOverride
 	// Now is the clock; nil means time.Now.
 	Now func() time.Time
 }
@@ -262,7 +265,7 @@ func (m *Manager) run(ctx context.Context, id string) {
 	_ = m.save(&snap)
 
 	job := search.Job{TaskPath: st.Spec.Task, Proxy: m.opts.Proxy, Key: m.opts.Key, Run: st.Spec.Run, Out: m.Out(id),
-		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery}
+		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery, Price: m.opts.Price}
 	if resume {
 		// Replaying the calls made before the checkpoint would be as
 		// exact, but they are in the cache too; the run goes on recording.
