@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"encoding/json"
 	"io"
 	"net/http"
 	"os"
@@ -12,6 +13,7 @@ import (
 	"testing"
 
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
 
@@ -56,12 +58,14 @@ func shortTask(t *testing.T) string {
 }
 
 // TestSearchReplaysToTheSameResults runs a short search through a real
-// stint serve on the real model, then replays it from the proxy's journal:
-// results.json comes out byte-for-byte the same and the replay makes no
-// upstream call.
+// stint serve on the real model, whose prices make every miss cost
+// something, then replays it from the proxy's journal: results.json, the
+// contenders' spend included, comes out byte-for-byte the same and the
+// replay makes no upstream call.
 func TestSearchReplaysToTheSameResults(t *testing.T) {
 	model := modeltest.Path(t)
-	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
+	cfg := writeConfig(t, configHead(t.TempDir(), "local:"+model)+"prices:\n  stories260K: {input: 0.50, output: 1.50}   # invented test prices\n")
+	c := startStint(t, nil, "serve", "--config", cfg)
 	t.Setenv("STINT_MODEL", model)
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
@@ -89,6 +93,18 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	}
 	if !bytes.Equal(a, b) {
 		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
+	}
+	var res search.Results
+	if err := json.Unmarshal(a, &res); err != nil {
+		t.Fatal(err)
+	}
+	for _, ct := range res.Ranking {
+		if ct.EvalCalls == 0 || ct.EvalSpendUSD <= 0 {
+			t.Errorf("%s: %d evaluation calls, %v USD; want the evaluation's calls and their cost", ct.Method, ct.EvalCalls, ct.EvalSpendUSD)
+		}
+		if searched := ct.Method == "rl" || ct.Method == "rl-best" || ct.Method == "random"; searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0) {
+			t.Errorf("%s: %d search calls, %v USD", ct.Method, ct.SearchCalls, ct.SearchSpendUSD)
+		}
 	}
 	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {
 		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {

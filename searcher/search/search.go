@@ -114,10 +114,28 @@ type Contender struct {
 	// Calls is how many prompt×example judgements the method spent
 	// finding its prompt (the evaluation on train/dev/test not counted).
 	Calls int `json:"search_judgements"`
+	// SearchCalls are the scoring calls the method made finding its prompt
+	// (rl and rl-best share one search, the dev evaluations along its
+	// curve included; none for the empty and manual prompts) and
+	// SearchSpendUSD what the proxy reported for them.
+	SearchCalls    int     `json:"search_calls"`
+	SearchSpendUSD float64 `json:"search_spend_usd"`
+	// EvalCalls and EvalSpendUSD are the same for scoring the prompt on
+	// the train, dev and test sets.
+	EvalCalls    int     `json:"eval_calls"`
+	EvalSpendUSD float64 `json:"eval_spend_usd"`
+}
+
+// Spend is what the proxy reported for all of the contender's calls,
+// finding and evaluating its prompt.
+func (c Contender) Spend() (calls int, usd float64) {
+	return c.SearchCalls + c.EvalCalls, c.SearchSpendUSD + c.EvalSpendUSD
 }
 
 // Results are a finished search. They hold nothing that differs between a
-// run and its replay (no times, no spend, no cache figures).
+// run and its replay: no times, no cache figures, and the contenders' spend
+// is each call's cost to the run (scorer.Call.RunCostUSD), which a replay
+// reads from the recording.
 type Results struct {
 	Task     string        `json:"task"`
 	Seed     int64         `json:"seed"`
@@ -238,40 +256,58 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		}
 	}
 	searchCalls := t.Steps * t.PromptsPerStep * t.ExamplesPerStep
-	contenders := []Contender{{Method: "rl", Prompt: greedyText, Calls: searchCalls}}
+	rlSpend := scorer.Sum(r.calls)
+	rl := Contender{Method: "rl", Prompt: greedyText, Calls: searchCalls, SearchCalls: rlSpend.Calls, SearchSpendUSD: rlSpend.RunCostUSD}
+	contenders := []Contender{rl}
 	if r.bestText != greedyText {
-		contenders = append(contenders, Contender{Method: "rl-best", Prompt: r.bestText, Calls: searchCalls})
+		best := rl
+		best.Method, best.Prompt = "rl-best", r.bestText
+		contenders = append(contenders, best)
 	}
 	contenders = append(contenders, Contender{Method: "empty", Prompt: ""})
 	for _, m := range t.ManualPrompts {
 		contenders = append(contenders, Contender{Method: "manual", Prompt: m})
 	}
+	mark := len(r.calls)
 	random, err := r.randomSearch(ctx, searchCalls)
 	if err != nil {
 		return res, err
 	}
+	randomSpend := scorer.Sum(r.calls[mark:])
+	random.SearchCalls, random.SearchSpendUSD = randomSpend.Calls, randomSpend.RunCostUSD
 	contenders = append(contenders, random)
 	for i := range contenders {
 		c := &contenders[i]
-		var err error
-		if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, t.Train); err != nil {
+		mark := len(r.calls)
+		if err := r.evaluate(ctx, c); err != nil {
 			return res, err
 		}
-		if c.DevAcc, err = r.accuracy(ctx, c.Prompt, t.Dev); err != nil {
-			return res, err
-		}
-		c.TestAcc = -1
-		if len(t.Test) > 0 {
-			if c.TestAcc, err = r.accuracy(ctx, c.Prompt, t.Test); err != nil {
-				return res, err
-			}
-		}
+		ev := scorer.Sum(r.calls[mark:])
+		c.EvalCalls, c.EvalSpendUSD = ev.Calls, ev.RunCostUSD
 	}
 	res.Ranking = contenders
 	res.Best = contenders[0]
 	res.Floored, res.Lookups = r.floored, r.lookups
 	res.Spending = scorer.Sum(r.calls)
 	return res, nil
+}
+
+// evaluate scores c's prompt on the train, dev and test sets.
+func (r *runner) evaluate(ctx context.Context, c *Contender) error {
+	var err error
+	if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, r.t.Train); err != nil {
+		return err
+	}
+	if c.DevAcc, err = r.accuracy(ctx, c.Prompt, r.t.Dev); err != nil {
+		return err
+	}
+	c.TestAcc = -1
+	if len(r.t.Test) > 0 {
+		if c.TestAcc, err = r.accuracy(ctx, c.Prompt, r.t.Test); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // runner is one search's state beyond the policy.

@@ -9,7 +9,7 @@ import (
 )
 
 // resultsFormat is the layout version of results.json.
-const resultsFormat = 2
+const resultsFormat = 3
 
 // configured is a policy that reports its settings with defaults filled
 // in; *policy.Trainer is one.
