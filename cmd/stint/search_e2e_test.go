@@ -12,6 +12,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
@@ -137,11 +138,70 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	}
 }
 
+// TestDemoWithoutModelSaysHowToGetIt runs the demo without its model
+// file, given by --model, by $STINT_MODEL or not at all (the cached
+// download), and follows the instructions as far as they go offline: the
+// download can't run here, so the real model file is put where the message
+// says the download writes it; then the command the message names must
+// run (its flags parse; with the file there it exits without serving or
+// downloading), and the model must be found where the demo looks.
 func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
-	t.Setenv("STINT_MODEL", filepath.Join(t.TempDir(), "absent.gguf"))
-	_, err := runCLI(t, "demo", "--data", t.TempDir())
-	if err == nil || !strings.Contains(err.Error(), "stint local --download") {
-		t.Errorf("demo without a model: %v, want instructions naming stint local --download", err)
+	model := modeltest.Path(t)
+	blob, err := os.ReadFile(model)
+	if err != nil {
+		t.Fatal(err)
+	}
+	tests := []struct {
+		name      string
+		flag, env string // --model and $STINT_MODEL given to the demo
+		cache     bool   // neither: the user cache dir
+		want      string // the command the message must name
+	}{
+		{"--model", filepath.Join(t.TempDir(), "flag", "stories260K.gguf"), "", false, "stint local --download-only --model "},
+		{"STINT_MODEL", "", filepath.Join(t.TempDir(), "env", "m.gguf"), false, "stint local --download-only"},
+		{"neither", "", "", true, "stint local --download-only"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cacheDir := t.TempDir()
+			t.Setenv("XDG_CACHE_HOME", cacheDir)
+			t.Setenv("STINT_MODEL", tt.env)
+			args := []string{"demo", "--data", t.TempDir()}
+			if tt.flag != "" {
+				args = append(args, "--model", tt.flag)
+			}
+			_, err := runCLI(t, args...)
+			if err == nil {
+				t.Fatal("the demo ran without its model")
+			}
+			msg := err.Error()
+			cmdLine := regexp.MustCompile(`(?m)^ +(stint local .*)$`).FindStringSubmatch(msg)
+			target := regexp.MustCompile(`it writes (\S+) `).FindStringSubmatch(msg)
+			if cmdLine == nil || target == nil || !strings.HasPrefix(cmdLine[1], tt.want) {
+				t.Fatalf("message names no %q command and target:\n%s", tt.want, msg)
+			}
+			want := tt.flag + tt.env
+			if tt.cache {
+				want = filepath.Join(cacheDir, "stint", "models", "stories260K.gguf")
+			}
+			if target[1] != want {
+				t.Errorf("the message says the download writes %s, want %s (where the demo looks)", target[1], want)
+			}
+			// Stand in for the download, then run the named command.
+			if err := os.MkdirAll(filepath.Dir(target[1]), 0o755); err != nil {
+				t.Fatal(err)
+			}
+			if err := os.WriteFile(target[1], blob, 0o600); err != nil {
+				t.Fatal(err)
+			}
+			out, err := runCLI(t, strings.Fields(cmdLine[1])[1:]...)
+			if err != nil || !strings.Contains(out, "already there") {
+				t.Errorf("%s: %v\n%s, want it to find the file and exit", cmdLine[1], err, out)
+			}
+			if got, err := localmodel.Locate(tt.flag, os.Getenv); err != nil || got != want {
+				t.Errorf("after the instructions the demo finds %q, %v; want %s", got, err, want)
+			}
+		})
 	}
 }
 
