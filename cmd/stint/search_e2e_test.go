@@ -272,7 +272,7 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 // after step 2 with a checkpoint, and resumed from it. A replay answers
 // only the calls the recording made, so a resumed search that strayed from
 // the recorded trajectory would fail; it finishes with the same
-// results.json, byte for byte.
+// results.json and history.csv, byte for byte.
 func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	model := modeltest.Path(t)
 	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
@@ -294,10 +294,17 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	if out, err := runCLI(t, append(replay, "--resume")...); err != nil || !strings.Contains(out, "resuming after step 2") {
 		t.Fatalf("resumed piece: %v\n%s", err, out)
 	}
-	a, _ := os.ReadFile(filepath.Join(whole, "results.json"))
-	b, err := os.ReadFile(filepath.Join(pieces, "results.json"))
-	if err != nil || !bytes.Equal(a, b) {
-		t.Errorf("resumed results differ (%v):\n%s\nvs\n%s", err, a, b)
+	// results.json has the end; history.csv every step's reward, loss,
+	// accuracies and greedy prompt, so the whole trajectory is compared.
+	for _, name := range []string{"results.json", "history.csv"} {
+		a, err := os.ReadFile(filepath.Join(whole, name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := os.ReadFile(filepath.Join(pieces, name))
+		if err != nil || !bytes.Equal(a, b) {
+			t.Errorf("resumed %s differs (%v):\n%s\nvs\n%s", name, err, a, b)
+		}
 	}
 	if got := upstreamCalls(t, c); got != calls {
 		t.Errorf("upstream calls %d → %d during the replayed pieces", calls, got)
