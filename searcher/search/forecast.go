@@ -25,13 +25,20 @@ func (p Plan) Cost(price scorer.Price) float64 {
 	return scorer.Forecast(p.Judgements(), p.TokensPerJudgement, price)
 }
 
+// examplesPerStep is how many training examples each prompt is judged on
+// in a step: the task's examples_per_step, at most the whole train set.
+func examplesPerStep(t *task.Task) int { return min(t.ExamplesPerStep, len(t.Train)) }
+
+// searchJudgements is how many judgements the RL search makes, and so the
+// budget of random search.
+func searchJudgements(t *task.Task) int { return t.Steps * t.PromptsPerStep * examplesPerStep(t) }
+
 // PlanFor forecasts a search of t with the given dev-evaluation interval
 // (0: the default, as Run uses).
 func PlanFor(t *task.Task, evalEvery int) Plan {
 	if evalEvery <= 0 {
 		evalEvery = max(1, t.Steps/10)
 	}
-	perStep := t.PromptsPerStep * min(t.ExamplesPerStep, len(t.Train))
 	evals := t.Steps / evalEvery
 	if t.Steps%evalEvery != 0 {
 		evals++
@@ -46,8 +53,8 @@ func PlanFor(t *task.Task, evalEvery int) Plan {
 	// A prompt token is at most a word piece; count it generously.
 	prompt := strings.Repeat("x", 12*t.PromptLength)
 	return Plan{
-		Search:             t.Steps * perStep,
-		Random:             t.Steps * perStep,
+		Search:             searchJudgements(t),
+		Random:             searchJudgements(t),
 		Evaluation:         evals*len(t.Dev) + contenders*(len(t.Train)+len(t.Dev)+len(t.Test)),
 		TokensPerJudgement: scorer.EstimateTokens(t.Fill(strings.Repeat("x", longest), prompt)),
 	}

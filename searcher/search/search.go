@@ -255,7 +255,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 				Prompt: greedyText, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
 		}
 	}
-	searchCalls := t.Steps * t.PromptsPerStep * t.ExamplesPerStep
+	searchCalls := searchJudgements(t)
 	rlSpend := scorer.Sum(r.calls)
 	rl := Contender{Method: "rl", Prompt: greedyText, Calls: searchCalls, SearchCalls: rlSpend.Calls, SearchSpendUSD: rlSpend.RunCostUSD}
 	contenders := []Contender{rl}
@@ -338,7 +338,7 @@ func (r *runner) noteBest(texts []string, raw [][]float64) {
 // trainBatch draws the step's training examples, without repeats when the
 // set is large enough.
 func (r *runner) trainBatch() []task.Example {
-	n := min(r.t.ExamplesPerStep, len(r.t.Train))
+	n := examplesPerStep(r.t)
 	idx := r.rng.Perm(len(r.t.Train))[:n]
 	slices.Sort(idx) // a stable order for the batched calls
 	out := make([]task.Example, n)
@@ -396,7 +396,7 @@ func (r *runner) accuracy(ctx context.Context, prompt string, examples []task.Ex
 // batch, spending the same number of judgements as the search.
 func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error) {
 	actions := r.o.Vocab.Actions()
-	perPrompt := min(r.t.ExamplesPerStep, len(r.t.Train))
+	perPrompt := examplesPerStep(r.t)
 	best := Contender{Method: "random"}
 	bestScore := 0.0
 	spent := 0
