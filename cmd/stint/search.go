@@ -165,14 +165,14 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
 	}
-	m, err := localmodel.Load(modelPath)
+	m, backbone, err := loadBackbone(modelPath)
 	if err != nil {
 		return err
 	}
 	if key == "" {
 		key = os.Getenv(teamKeyEnv)
 	}
-	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price})
+	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price, Backbone: backbone})
 	if err != nil {
 		return err
 	}
@@ -195,12 +195,23 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	}
 }
 
+// loadBackbone loads the policy's backbone model and names its file once
+// for results.json.
+func loadBackbone(path string) (*localmodel.Model, search.Backbone, error) {
+	m, err := localmodel.Load(path)
+	if err != nil {
+		return nil, search.Backbone{}, err
+	}
+	b, err := search.IdentifyBackbone(path)
+	return m, b, err
+}
+
 func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f searchFlags) error {
 	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
 	}
-	m, err := localmodel.Load(modelPath)
+	m, backbone, err := loadBackbone(modelPath)
 	if err != nil {
 		return err
 	}
@@ -211,7 +222,7 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	start := time.Now()
 	oc, err := search.RunJob(ctx, m, search.Job{
 		TaskPath: taskPath, Proxy: f.proxy, Key: key, Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
-		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter,
+		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter, Backbone: backbone,
 	}, out, func(p search.Progress) { printProgress(progress, p, start) })
 	fmt.Fprintln(progress)
 	if err != nil {

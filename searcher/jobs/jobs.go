@@ -73,6 +73,9 @@ type Options struct {
 	// Price overrides each task's prices for its forecast (see
 	// search.Job.Price).
 	Price search.PriceOverride
+	// Backbone identifies the model file in every job's results.json
+	// (search.IdentifyBackbone, once for the process).
+	Backbone search.Backbone
 	// Now is the clock; nil means time.Now.
 	Now func() time.Time
 }
@@ -265,7 +268,7 @@ func (m *Manager) run(ctx context.Context, id string) {
 	_ = m.save(&snap)
 
 	job := search.Job{TaskPath: st.Spec.Task, Proxy: m.opts.Proxy, Key: m.opts.Key, Run: st.Spec.Run, Out: m.Out(id),
-		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery, Price: m.opts.Price}
+		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery, Price: m.opts.Price, Backbone: m.opts.Backbone}
 	if resume {
 		// Replaying the calls made before the checkpoint would be as
 		// exact, but they are in the cache too; the run goes on recording.

@@ -33,6 +33,9 @@ type Job struct {
 	OverCap bool
 	// CheckpointEvery and StopAfter are as in Options.
 	CheckpointEvery, StopAfter int
+	// Backbone identifies the model file of the backbone in results.json
+	// (IdentifyBackbone, computed once by the caller).
+	Backbone Backbone
 }
 
 // Outcome is what a job did.
@@ -127,7 +130,7 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	}
 	start := time.Now()
 	res, err := Run(ctx, Options{
-		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
+		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD, Backbone: j.Backbone,
 		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress,
 		Checkpoint: func(st *State) error {
 			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return WriteState(w, st) })

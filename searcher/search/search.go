@@ -78,6 +78,9 @@ type Options struct {
 	// SpendCapUSD, when positive, stops the search once the proxy has
 	// reported that much spent on its calls (ErrSpendCap).
 	SpendCapUSD float64
+	// Backbone identifies the policy's backbone model file in
+	// results.json (see IdentifyBackbone).
+	Backbone Backbone
 }
 
 // ErrSpendCap stops a search whose calls reached its spend cap.
@@ -171,6 +174,10 @@ type Settings struct {
 type Versions struct {
 	Format int    `json:"results_format"`
 	Stint  string `json:"stint"` // the module version or VCS revision of the binary
+	Go     string `json:"go"`    // the Go release that built it (runtime.Version)
+	// Backbone is the policy's backbone model file; zero when not given
+	// (Options.Backbone).
+	Backbone Backbone `json:"backbone"`
 }
 
 // Run searches, then scores the baselines and every contender on the dev
@@ -189,7 +196,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	}
 	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
 	r.rng = rand.New(r.pcg)
-	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions()}
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions(o.Backbone)}
 	devAcc, greedyText := -1.0, ""
 	first := 1
 	if s := o.Resume; s != nil {
