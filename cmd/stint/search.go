@@ -136,7 +136,7 @@ func newSearchServeCmd() *cobra.Command {
 
   POST /jobs              {"task": "/path/task.yaml", "run": "ID", "over_cap": false}
   GET  /jobs              every job, newest first
-  GET  /jobs/{id}         state, step, best prompt so far, accuracies, calls, cache share, spend
+  GET  /jobs/{id}         state, step, best prompt so far (by dev accuracy), accuracies, calls, cache share, spend
   POST /jobs/{id}/cancel
 
 Jobs and their outputs are kept under --data; a job that was running when

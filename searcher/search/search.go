@@ -88,13 +88,44 @@ var ErrSpendCap = errors.New("search: the spend cap is reached")
 
 // Progress is the state of a search after a step.
 type Progress struct {
-	Step, Steps  int
+	Step, Steps int
+	// ResumedAfter is the checkpoint's step this run went on from; 0 for
+	// a search that started at step 1.
+	ResumedAfter int
 	MeanReward   float64
 	TrainAcc     float64 // mean accuracy of the step's sampled prompts
 	DevAcc       float64 // of the latest greedy prompt; -1 before the first evaluation
 	Prompt       string  // the latest greedy prompt
+	// Best is the best greedy prompt so far by dev accuracy (see BestByDev).
+	Best         DevBest
 	Calls        scorer.Totals
 	FlooredShare float64
+}
+
+// DevBest is the greedy prompt with the highest dev accuracy of those
+// evaluated so far (the earliest on ties), the step it was evaluated at and
+// that accuracy; Step 0 and DevAcc −1 before the first evaluation.
+type DevBest struct {
+	Prompt string
+	Step   int
+	DevAcc float64
+}
+
+// BestByDev finds the best greedy prompt by dev accuracy in a history.
+func BestByDev(h []Point) DevBest {
+	b := DevBest{DevAcc: -1}
+	for _, p := range h {
+		b = b.note(p)
+	}
+	return b
+}
+
+// note keeps p's greedy prompt if it was evaluated and beats b.
+func (b DevBest) note(p Point) DevBest {
+	if p.DevAcc >= 0 && p.DevAcc > b.DevAcc {
+		return DevBest{Prompt: p.Prompt, Step: p.Step, DevAcc: p.DevAcc}
+	}
+	return b
 }
 
 // Point is one line of the history.
@@ -205,6 +236,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		}
 		devAcc, greedyText, first = s.DevAcc, s.GreedyText, s.Step+1
 	}
+	best := BestByDev(res.History)
 	every := o.CheckpointEvery
 	if every <= 0 {
 		every = max(1, t.Steps/10)
@@ -241,6 +273,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			pt.DevAcc, pt.Prompt = devAcc, greedyText
 		}
 		res.History = append(res.History, pt)
+		best = best.note(pt)
 		stop := o.StopAfter > 0 && step == o.StopAfter && step < t.Steps
 		if o.Checkpoint != nil && (step%every == 0 || stop) {
 			st, err := r.snapshot(step, &res, devAcc, greedyText)
@@ -258,8 +291,8 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			return res, fmt.Errorf("%w: %.6f USD of %.6f after step %d (as the proxy reported)", ErrSpendCap, spent, o.SpendCapUSD, step)
 		}
 		if o.Progress != nil {
-			o.Progress(Progress{Step: step, Steps: t.Steps, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
-				Prompt: greedyText, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
+			o.Progress(Progress{Step: step, Steps: t.Steps, ResumedAfter: first - 1, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
+				Prompt: greedyText, Best: best, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
 		}
 	}
 	searchCalls := searchJudgements(t)
