@@ -92,6 +92,8 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	// Source: the record/replay contract (README "Record and replay a
+	// run"): a replay answers every call from the journal, byte for byte.
 	if !bytes.Equal(a, b) {
 		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
 	}
@@ -130,6 +132,8 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	}
 	upstream, _ := strconv.Atoi(m[1])
 	saved, _ := strconv.Atoi(m[2])
+	// Source: hand-reasoned from the demo: its second search repeats the
+	// first call for call, so every one of its calls is saved.
 	if upstream == 0 || saved < upstream {
 		t.Errorf("demo: %d upstream calls, %d saved; the repeated search should be served from the cache", upstream, saved)
 	}
@@ -184,6 +188,8 @@ func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
 			if tt.cache {
 				want = filepath.Join(cacheDir, "stint", "models", "stories260K.gguf")
 			}
+			// Source: localmodel.Locate's order (--model, STINT_MODEL,
+			// the cached download) is where the demo looks.
 			if target[1] != want {
 				t.Errorf("the message says the download writes %s, want %s (where the demo looks)", target[1], want)
 			}
@@ -227,6 +233,8 @@ func TestSearchRefusesToStartOverOrWithoutAPrice(t *testing.T) {
 		args []string
 		want []string // in the error
 	}{
+		// Source: the refusal rules of search.CheckCap (README "Prompt
+		// search"); 10⁶ USD per million tokens is absurdly over any cap.
 		{"forecast over the cap", []string{shortTask(t), "--input-price", "1000000", "--output-price", "1000000"}, []string{"spend_cap_usd", "--over-cap"}},
 		{"cap and no price", []string{unpriced}, []string{"prices.input_per_million", "--input-price", "prices.output_per_million", "--over-cap"}},
 	}
@@ -262,6 +270,8 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 		t.Fatal(err)
 	}
 	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")
+	// Source: the task's spend_cap_usd is held by the spend the proxy
+	// reports (Stint-Cost-Usd); one priced miss is over 10⁻⁶ USD.
 	if err == nil || !strings.Contains(err.Error(), "spend cap is reached") || !strings.Contains(out, "starting over the cap") {
 		t.Errorf("search with a tiny cap: %v\n%s, want it started over the cap and stopped there", err, out)
 	}
@@ -294,6 +304,8 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	if out, err := runCLI(t, append(replay, "--resume")...); err != nil || !strings.Contains(out, "resuming after step 2") {
 		t.Fatalf("resumed piece: %v\n%s", err, out)
 	}
+	// Source: the checkpoint contract (README "Prompt search"): a resumed
+	// run follows exactly the trajectory of an uninterrupted one.
 	// results.json has the end; history.csv every step's reward, loss,
 	// accuracies and greedy prompt, so the whole trajectory is compared.
 	for _, name := range []string{"results.json", "history.csv"} {

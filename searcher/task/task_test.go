@@ -106,6 +106,11 @@ func TestCSVData(t *testing.T) {
 func TestParseErrors(t *testing.T) {
 	tok := localTokenizer(t)
 	dir := writeFiles(t, minimalData)
+	// Source: the task-file schema is this project's own (ExampleFile);
+	// fields and lines are hand-counted on minimal (9 lines, so appended
+	// keys are on line 10), and the bad-file cases (missing labels,
+	// a verbalizer that is not one token, an empty dataset, a template
+	// without {prompt}) are among them.
 	tests := []struct {
 		name      string
 		edit      func(string) string
