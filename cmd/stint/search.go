@@ -240,17 +240,28 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 }
 
 // printProgress redraws one status line: step, reward, accuracies,
-// calls, cache share, spend and the time left at this pace.
+// calls, cache share, spend, the share of verbalizers floored and the time
+// left at this pace.
 func printProgress(w io.Writer, p search.Progress, start time.Time) {
-	el := time.Since(start)
-	eta := time.Duration(float64(el) / float64(p.Step) * float64(p.Steps-p.Step)).Round(time.Second)
 	dev := "  -  "
 	if p.DevAcc >= 0 {
 		dev = fmt.Sprintf("%4.1f%%", 100*p.DevAcc)
 	}
 	bar := progressBar(p.Step, p.Steps, 20)
-	fmt.Fprintf(w, "\r%s step %d/%d reward %+.2f train %4.1f%% dev %s calls %d cached %4.1f%% spent %.4f USD eta %s   ",
-		bar, p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD, eta)
+	fmt.Fprintf(w, "\r%s step %d/%d reward %+.2f train %4.1f%% dev %s calls %d cached %4.1f%% spent %.4f USD floored %4.1f%% eta %s   ",
+		bar, p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD,
+		100*p.FlooredShare, eta(time.Since(start), p))
+}
+
+// eta is the time the steps left take at the pace of the steps this
+// process ran in elapsed (on a resumed search, those since the
+// checkpoint, not all steps so far).
+func eta(elapsed time.Duration, p search.Progress) time.Duration {
+	done := p.Step - p.ResumedAfter
+	if done <= 0 {
+		return 0
+	}
+	return time.Duration(float64(elapsed) / float64(done) * float64(p.Steps-p.Step)).Round(time.Second)
 }
 
 func progressBar(done, total, width int) string {

@@ -11,6 +11,7 @@ import (
 	"strconv"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
@@ -348,5 +349,34 @@ func TestSearchRunAndServeTakeTheSamePriceFlags(t *testing.T) {
 				}
 			}
 		}
+	}
+}
+
+// TestProgressLine: the status line shows the floored-verbalizer share, and
+// its ETA is paced by the steps this process ran (those since the
+// checkpoint on a resumed search), not by all steps so far. Hand-worked:
+// 4 steps in 40 s leave 6 steps, 60 s.
+func TestProgressLine(t *testing.T) {
+	tests := []struct {
+		name         string
+		step, resume int
+		want         time.Duration
+	}{
+		{"fresh", 4, 0, 60 * time.Second},
+		{"resumed after step 2", 6, 2, 40 * time.Second}, // 4 steps in 40 s, 4 left
+		{"no step run yet", 2, 2, 0},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			p := search.Progress{Step: tt.step, Steps: 10, ResumedAfter: tt.resume}
+			if got := eta(40*time.Second, p); got != tt.want {
+				t.Errorf("eta = %v, want %v", got, tt.want)
+			}
+		})
+	}
+	var b strings.Builder
+	printProgress(&b, search.Progress{Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now())
+	if !strings.Contains(b.String(), "floored 12.5%") {
+		t.Errorf("progress line %q lacks the floored share", b.String())
 	}
 }

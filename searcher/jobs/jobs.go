@@ -69,6 +69,10 @@ type Status struct {
 	Calls      int     `json:"scoring_calls"`
 	CacheShare float64 `json:"cache_share"`
 	SpentUSD   float64 `json:"spent_usd"` // as the proxy reported it: an estimate
+	// FlooredShare is the share of verbalizer look-ups so far that found
+	// the verbalizer missing from the returned log-probabilities and gave
+	// it the floor.
+	FlooredShare float64 `json:"floored_share"`
 	// Resumed is the step of the checkpoint the job last resumed from.
 	Resumed int       `json:"resumed_after_step,omitempty"`
 	Error   string    `json:"error,omitempty"`
@@ -285,12 +289,12 @@ func (m *Manager) run(ctx context.Context, id string) {
 	// A resumed job replaying the calls made before the checkpoint would
 	// be as exact, but they are in the cache too; the run goes on
 	// recording.
-	_, err := search.RunJob(jctx, m.model, job, io.Discard, func(p search.Progress) {
+	oc, err := search.RunJob(jctx, m.model, job, io.Discard, func(p search.Progress) {
 		m.update(id, func(s *Status) {
 			s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
 			s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
 			s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
-			s.Calls, s.CacheShare, s.SpentUSD = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD
+			s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
 			if p.ResumedAfter > 0 {
 				s.Resumed = p.ResumedAfter
 			}
@@ -308,7 +312,13 @@ func (m *Manager) run(ctx context.Context, id string) {
 	case err != nil:
 		st.State, st.Error = Failed, err.Error()
 	default:
+		// The whole search's figures, the final evaluation included.
 		st.State = Done
+		res := oc.Results
+		st.Calls, st.CacheShare, st.SpentUSD = res.Spending.Calls, res.Spending.CacheShare(), res.Spending.CostUSD
+		if res.Lookups > 0 {
+			st.FlooredShare = float64(res.Floored) / float64(res.Lookups)
+		}
 	}
 	st.Updated = m.opts.Now().UTC()
 	m.mu.Unlock()

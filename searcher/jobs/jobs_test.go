@@ -108,8 +108,18 @@ func TestJobAPIRunsASearch(t *testing.T) {
 	if done.State != jobs.Done || done.Step != 3 || done.Calls == 0 {
 		t.Fatalf("finished job: %+v", done)
 	}
-	if _, err := os.Stat(filepath.Join(m.Out(st.ID), "results.json")); err != nil {
-		t.Errorf("no results: %v", err)
+	raw, err := os.ReadFile(filepath.Join(m.Out(st.ID), "results.json"))
+	if err != nil {
+		t.Fatalf("no results: %v", err)
+	}
+	var res search.Results
+	if err := json.Unmarshal(raw, &res); err != nil {
+		t.Fatal(err)
+	}
+	// The status's floored share is the search's own count, as results.json
+	// has it.
+	if res.Lookups == 0 || math.Abs(done.FlooredShare-float64(res.Floored)/float64(res.Lookups)) > 1e-12 {
+		t.Errorf("floored share %v, want %d of %d look-ups", done.FlooredShare, res.Floored, res.Lookups)
 	}
 	resp, err := http.Get(api.URL + "/jobs/" + st.ID)
 	if err != nil || resp.StatusCode != http.StatusOK {
