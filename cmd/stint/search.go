@@ -125,6 +125,11 @@ func (o optionalFloat) Set(s string) error {
 
 func (optionalFloat) Type() string { return "usd" }
 
+// defaultSearchListen is the sidecar's default address: its own port, next
+// to the proxy's 8787 and stint local's 8788, and the one the deployment
+// files give it (deploy/compose.yaml, deploy/k8s/search.yaml).
+const defaultSearchListen = "127.0.0.1:8789"
+
 func newSearchServeCmd() *cobra.Command {
 	var listen, proxyURL, data, model, key string
 	var every int
@@ -150,7 +155,7 @@ job whose task has a spend cap and no price is refused unless over_cap.`,
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&listen, "listen", "127.0.0.1:8788", "address of the job API")
+	fl.StringVar(&listen, "listen", defaultSearchListen, "address of the job API")
 	fl.StringVar(&proxyURL, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
 	fl.StringVar(&data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
 	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")

@@ -380,3 +380,23 @@ func TestProgressLine(t *testing.T) {
 		t.Errorf("progress line %q lacks the floored share", b.String())
 	}
 }
+
+// TestSidecarAndLocalListenApart: `stint search serve` and `stint local`
+// can run side by side with their defaults. Source: the deployment files
+// run the sidecar on 8789 (deploy/compose.yaml, deploy/k8s/search.yaml).
+func TestSidecarAndLocalListenApart(t *testing.T) {
+	root := newRootCmd()
+	listen := map[string]string{}
+	for _, path := range [][]string{{"search", "serve"}, {"local"}, {"serve"}} {
+		cmd, _, err := root.Find(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if fl := cmd.Flags().Lookup("listen"); fl != nil {
+			listen[strings.Join(path, " ")] = fl.DefValue
+		}
+	}
+	if got := listen["search serve"]; got != "127.0.0.1:8789" || got == listen["local"] {
+		t.Errorf("defaults: %v, want search serve on 127.0.0.1:8789, apart from local's", listen)
+	}
+}
