@@ -27,6 +27,10 @@ const (
 	// HeaderReplaySession separates concurrent replays of one run: each
 	// session hands out a run's recorded answers from the first again.
 	HeaderReplaySession = "Stint-Replay-Session"
+	// HeaderRecordedCost, on a replayed answer, is what the call was
+	// charged when the run recorded it (an estimate, like Stint-Cost-Usd;
+	// the replay itself costs nothing).
+	HeaderRecordedCost = "Stint-Recorded-Cost-Usd"
 )
 
 // OutcomeReplay marks an answer served from a run's journal.
@@ -126,6 +130,7 @@ func (p *Proxy) serveReplay(w http.ResponseWriter, r *http.Request, ll *logLine,
 	if p.spend != nil {
 		h.Set(HeaderCost, usd(0))
 	}
+	h.Set(HeaderRecordedCost, usd(budget.Nanos(e.CostNanos)))
 	if e.Stream {
 		h.Set("Cache-Control", "no-cache")
 	}

@@ -11,6 +11,7 @@ import (
 
 	"go.etcd.io/bbolt"
 
+	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 )
@@ -106,6 +107,47 @@ func TestRunReplaysBitForBitWithoutUpstream(t *testing.T) {
 	}
 	if r.up.Calls() != calls {
 		t.Errorf("upstream calls went from %+v to %+v during replay; want none", calls, r.up.Calls())
+	}
+}
+
+// TestReplayCarriesTheRecordedCost: a replayed answer costs nothing
+// (Stint-Cost-Usd 0) and says what the call was charged when it was
+// recorded, so a client that totals a run's spend gets the same figure
+// from the recording and its replay.
+func TestReplayCarriesTheRecordedCost(t *testing.T) {
+	db, err := bbolt.Open(filepath.Join(t.TempDir(), "runs.db"), 0o600, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { _ = db.Close() })
+	j, err := runs.NewBolt(db, runs.BoltOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	r := newSpendRigWith(t, guard.TeamPolicy{}, func(o *proxy.Options) { o.Runs = j })
+	calls := []map[string]any{greedy("the cost of a bushel"), greedy("the cost of a bushel"), greedy([]string{"crate one", "crate two"})}
+	var charged []int64
+	for i, body := range calls {
+		got := r.complete(body, proxy.HeaderRun, "ledger-1")
+		if got.status != http.StatusOK {
+			t.Fatalf("call %d: %d %s", i, got.status, got.body)
+		}
+		charged = append(charged, headerNanos(t, got.header, proxy.HeaderCost))
+	}
+	if charged[0] == 0 || charged[1] != 0 {
+		t.Fatalf("recorded charges %v: want a miss that costs and a hit that does not", charged)
+	}
+	for i, body := range calls {
+		got := r.complete(body, proxy.HeaderRun, "ledger-1", proxy.HeaderRunMode, "replay")
+		if got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay {
+			t.Fatalf("replay %d: %d %q", i, got.status, got.cache())
+		}
+		if c := headerNanos(t, got.header, proxy.HeaderCost); c != 0 {
+			t.Errorf("replay %d charged %d nanos, want 0", i, c)
+		}
+		if rec := headerNanos(t, got.header, proxy.HeaderRecordedCost); rec != charged[i] {
+			t.Errorf("replay %d: %s %d nanos, want the recorded charge %d", i, proxy.HeaderRecordedCost, rec, charged[i])
+		}
 	}
 }
 

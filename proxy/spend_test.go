@@ -38,6 +38,13 @@ type spendRig struct {
 
 func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Config)) *spendRig {
 	t.Helper()
+	return newSpendRigWith(t, policy, nil, extra...)
+}
+
+// newSpendRigWith is newSpendRig with more proxy options set by opt (nil:
+// none).
+func newSpendRigWith(t *testing.T, policy guard.TeamPolicy, opt func(*proxy.Options), extra ...func(*guard.Config)) *spendRig {
+	t.Helper()
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "ledger.db"), 0o600, nil)
 	if err != nil {
 		t.Fatal(err)
@@ -63,6 +70,9 @@ func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Con
 	r := newRig(t, withTeams(teamWithKey("lab", "lab-key"), teamWithKey("kiln", "kiln-key")), func(o *proxy.Options) {
 		o.Spend = g
 		o.AdminKeyHashes = [][sha256.Size]byte{sha256.Sum256([]byte(adminKey))}
+		if opt != nil {
+			opt(o)
+		}
 	})
 	r.key = "lab-key"
 	return &spendRig{rig: r, ledger: ledger}

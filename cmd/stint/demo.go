@@ -17,8 +17,14 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
+
+// Invented demo prices of the local model, USD per million tokens, not any
+// provider's: the demo's proxy charges them and its searches forecast at
+// them.
+const demoInputPrice, demoOutputPrice = 0.50, 1.50
 
 // demoFlags are the settings of `stint demo`.
 type demoFlags struct {
@@ -63,12 +69,7 @@ Run it from the repository root (the demo data is in testdata/search).`,
 func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if errors.Is(err, localmodel.ErrModelNotFound) {
-		cached, _ := localmodel.CachePath()
-		return fmt.Errorf(`the demo needs the model file stories260K.gguf (%w).
-Get it one of these ways:
-  - pass --model PATH, or set %s=PATH, to a copy you have;
-  - run "stint local --download" once: it fetches the file from its public source into %s and checks its SHA-256`,
-			err, localmodel.ModelEnv, cached)
+		return fmt.Errorf("%s", howToGetTheModel(err, f.model, os.Getenv))
 	}
 	if err != nil {
 		return err
@@ -80,8 +81,7 @@ Get it one of these ways:
 	cfg := DefaultConfig()
 	cfg.Listen, cfg.Data = "127.0.0.1:0", f.data
 	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
-	// Invented demo prices, USD per million tokens, not any provider's.
-	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: 0.50, Set: true}, Output: Number{Value: 1.50, Set: true}}}
+	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: demoInputPrice, Set: true}, Output: Number{Value: demoOutputPrice, Set: true}}}
 	if err := cfg.Validate(nil); err != nil {
 		return err
 	}
@@ -103,7 +103,10 @@ Get it one of these ways:
 
 	start := time.Now()
 	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
-	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix())}
+	// The search forecasts at the prices the demo's proxy charges.
+	in, outPrice := demoInputPrice, demoOutputPrice
+	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
+		price: search.PriceOverride{InputPerMillion: &in, OutputPerMillion: &outPrice}}
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}
@@ -159,9 +162,51 @@ func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since tim
 		return err
 	}
 	t := st.Total
-	fmt.Fprintf(out, "\n== what the proxy did (demo prices: 0.50 / 1.50 USD per million input / output tokens, invented)\n")
+	fmt.Fprintf(out, "\n== what the proxy did (demo prices: %.2f / %.2f USD per million input / output tokens, invented)\n", demoInputPrice, demoOutputPrice)
 	fmt.Fprintf(out, "requests %d, upstream calls %d, served from the cache %.1f%%, calls saved %d\n",
 		t.Requests, t.UpstreamCalls, 100*t.CacheShare, t.Requests-t.UpstreamCalls)
 	fmt.Fprintf(out, "spent %s USD, saved %s USD (estimates from the demo prices)\n", t.SpentUSD, t.SavedUSD)
 	return nil
+}
+
+// howToGetTheModel says how to get the model file the demo did not find
+// (notFound says why), for the way the demo was run: with --model, with
+// $STINT_MODEL, or with neither (the cached download).
+func howToGetTheModel(notFound error, flagPath string, getenv func(string) string) string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "the demo needs the model file %s (%v).\nGet it one of these ways:\n", localmodel.ModelFileName, notFound)
+	target, from, err := modelTarget(flagPath, getenv)
+	if err != nil {
+		fmt.Fprintf(&b, "  - there is nowhere to download it to (%v): pass --model PATH\n", err)
+	} else {
+		cmd, again := "stint local --download-only", "then run the demo again: it finds the file there"
+		switch from {
+		case "--model":
+			cmd += " --model " + shellQuote(target)
+			again = "then run the demo again with --model " + shellQuote(target)
+		case localmodel.ModelEnv:
+			again = fmt.Sprintf("then run the demo again with %s=%s still set", localmodel.ModelEnv, shellQuote(target))
+		}
+		fmt.Fprintf(&b, "  - download it once (about 1.2 MB, checked against its SHA-256), from the same shell:\n      %s\n"+
+			"    (\"go run ./cmd/stint local ...\" from the repository root works the same way)\n"+
+			"    it writes %s (the path from %s) and exits; %s;\n", cmd, target, from, again)
+	}
+	fmt.Fprintf(&b, "  - or pass --model PATH, or set %s=PATH, to a copy of %s you already have.", localmodel.ModelEnv, localmodel.ModelFileName)
+	return b.String()
+}
+
+// shellQuote quotes s for a POSIX shell when it holds more than plain path
+// characters.
+func shellQuote(s string) string {
+	plain := s != ""
+	for _, r := range s {
+		if !(r >= 'a' && r <= 'z' || r >= 'A' && r <= 'Z' || r >= '0' && r <= '9' || strings.ContainsRune("_./-+:=@%", r)) {
+			plain = false
+			break
+		}
+	}
+	if plain {
+		return s
+	}
+	return "'" + strings.ReplaceAll(s, "'", `'\''`) + "'"
 }

@@ -4,6 +4,8 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"io"
+	"io/fs"
 	"net"
 	"net/http"
 	"os"
@@ -20,7 +22,7 @@ func newLocalCmd() *cobra.Command {
 	var (
 		modelPath, listen, name string
 		workers                 int
-		download                bool
+		download, downloadOnly  bool
 	)
 	cmd := &cobra.Command{
 		Use:   "local",
@@ -29,22 +31,30 @@ func newLocalCmd() *cobra.Command {
 POST /v1/completions, POST /v1/chat/completions and GET /v1/models.
 
 The model file is --model PATH, else $STINT_MODEL, else a copy downloaded
-earlier into the user cache dir. With --download, a missing default model
-(stories260K.gguf) is fetched once from its public source and checked
-against its SHA-256.`,
+earlier into the user cache dir. With --download, when that file is missing,
+the default model (stories260K.gguf) is fetched there once from its public
+source and checked against its SHA-256; --download-only does the same and
+exits instead of serving.`,
+		Example: `  stint local --download-only                 # fetch the default model into the user cache dir
+  stint local --download-only --model ./stories260K.gguf
+  stint local --model ./stories260K.gguf --listen 127.0.0.1:8788`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			ctx := cmd.Context()
 			if ctx == nil {
 				ctx = context.Background()
 			}
-			path, err := localmodel.Locate(modelPath, os.Getenv)
-			if errors.Is(err, localmodel.ErrModelNotFound) && download && modelPath == "" && os.Getenv(localmodel.ModelEnv) == "" {
-				if path, err = localmodel.CachePath(); err == nil {
-					fmt.Fprintf(cmd.ErrOrStderr(), "stint local: downloading %s to %s\n", localmodel.ModelURL, path)
-					err = localmodel.Fetch(ctx, nil, localmodel.ModelURL, path, localmodel.ModelSHA256)
+			if download || downloadOnly {
+				path, err := downloadModel(ctx, cmd.ErrOrStderr(), modelPath, os.Getenv)
+				if err != nil {
+					return err
 				}
+				if downloadOnly {
+					return nil
+				}
+				modelPath = path
 			}
+			path, err := localmodel.Locate(modelPath, os.Getenv)
 			if err != nil {
 				return err
 			}
@@ -81,6 +91,46 @@ against its SHA-256.`,
 	f.StringVar(&listen, "listen", "127.0.0.1:8788", "address to listen on")
 	f.StringVar(&name, "name", "", "model id to report (default "+localmodel.DefaultName+")")
 	f.IntVar(&workers, "workers", 0, "requests computed at once (default: number of CPUs)")
-	f.BoolVar(&download, "download", false, "download the default model into the user cache dir if it is missing")
+	f.BoolVar(&download, "download", false, "download the default model to the model file's path (--model, $STINT_MODEL, else the user cache dir) if it is missing, then serve")
+	f.BoolVar(&downloadOnly, "download-only", false, "as --download, then exit without serving")
 	return cmd
+}
+
+// modelTarget is where the model file is expected: flagPath, else
+// getenv(ModelEnv), else the cached download's path, as localmodel.Locate
+// looks; from names which of the three it is, as the user would set it.
+func modelTarget(flagPath string, getenv func(string) string) (path, from string, err error) {
+	switch {
+	case flagPath != "":
+		return flagPath, "--model", nil
+	case getenv(localmodel.ModelEnv) != "":
+		return getenv(localmodel.ModelEnv), localmodel.ModelEnv, nil
+	}
+	path, err = localmodel.CachePath()
+	if err != nil {
+		return "", "", fmt.Errorf("no --model, %s unset, and no user cache dir to download into: %w", localmodel.ModelEnv, err)
+	}
+	return path, "the user cache dir", nil
+}
+
+// downloadModel fetches the default model to modelTarget's path unless a
+// file is there already, and returns the path.
+func downloadModel(ctx context.Context, log io.Writer, flagPath string, getenv func(string) string) (string, error) {
+	path, _, err := modelTarget(flagPath, getenv)
+	if err != nil {
+		return "", err
+	}
+	switch _, err := os.Stat(path); {
+	case err == nil:
+		fmt.Fprintf(log, "stint local: %s is already there; not downloaded again\n", path)
+		return path, nil
+	case !errors.Is(err, fs.ErrNotExist):
+		return "", err
+	}
+	fmt.Fprintf(log, "stint local: downloading %s to %s\n", localmodel.ModelURL, path)
+	if err := localmodel.Fetch(ctx, nil, localmodel.ModelURL, path, localmodel.ModelSHA256); err != nil {
+		return "", err
+	}
+	fmt.Fprintf(log, "stint local: %s downloaded, sha256 %s\n", path, localmodel.ModelSHA256)
+	return path, nil
 }

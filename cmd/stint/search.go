@@ -4,17 +4,19 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"math"
 	"net"
 	"net/http"
 	"os"
 	"path/filepath"
+	"strconv"
 	"time"
 
 	"github.com/spf13/cobra"
+	"github.com/spf13/pflag"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/searcher/jobs"
-	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
@@ -27,9 +29,10 @@ type searchFlags struct {
 	model  string
 	run    string
 	replay bool
-	// price prices the forecast (USD per million tokens); overCap starts
-	// a search whose forecast is over the task's spend cap.
-	price   scorer.Price
+	// price overrides the task's prices for the forecast (USD per million
+	// tokens); overCap starts a search whose forecast is over the task's
+	// spend cap, or that has a cap and no price.
+	price   search.PriceOverride
 	overCap bool
 	// checkpointEvery, stopAfter and resume control checkpoints in
 	// OUT/checkpoint.json.
@@ -73,9 +76,8 @@ curve as learning-curve.png and .svg.`,
 	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
 	fl.StringVar(&f.run, "run", "", "run id the calls are recorded under (default: TASKNAME-sSEED)")
 	fl.BoolVar(&f.replay, "replay", false, "answer every call from the run's journal; no upstream calls")
-	fl.Float64Var(&f.price.InputPerMillion, "input-price", 0, "USD per million input tokens, for the cost forecast")
-	fl.Float64Var(&f.price.OutputPerMillion, "output-price", 0, "USD per million output tokens, for the cost forecast")
-	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd")
+	priceFlags(fl, &f.price)
+	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd, or the task has a cap and no price")
 	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps (default: every tenth of the steps)")
 	fl.IntVar(&f.stopAfter, "stop-after", 0, "stop after step N with a checkpoint (resume later with --resume)")
 	fl.BoolVar(&f.resume, "resume", false, "continue from OUT/checkpoint.json exactly where it stopped")
@@ -92,9 +94,46 @@ curve as learning-curve.png and .svg.`,
 	return cmd
 }
 
+// priceFlags adds --input-price and --output-price, which override the
+// task's prices section; a flag not given keeps the task's price.
+func priceFlags(fl *pflag.FlagSet, o *search.PriceOverride) {
+	fl.Var(optionalFloat{&o.InputPerMillion}, "input-price", "USD per million input tokens, for the cost forecast (default: the task's prices.input_per_million)")
+	fl.Var(optionalFloat{&o.OutputPerMillion}, "output-price", "USD per million output tokens, for the cost forecast (default: the task's prices.output_per_million)")
+}
+
+// optionalFloat is a float flag that stays nil until it is given.
+type optionalFloat struct{ v **float64 }
+
+func (o optionalFloat) String() string {
+	if o.v == nil || *o.v == nil {
+		return ""
+	}
+	return strconv.FormatFloat(**o.v, 'g', -1, 64)
+}
+
+func (o optionalFloat) Set(s string) error {
+	x, err := strconv.ParseFloat(s, 64)
+	if err != nil {
+		return err
+	}
+	if !(x >= 0) || math.IsInf(x, 1) {
+		return fmt.Errorf("want a finite USD amount >= 0, got %s", s)
+	}
+	*o.v = &x
+	return nil
+}
+
+func (optionalFloat) Type() string { return "usd" }
+
+// defaultSearchListen is the sidecar's default address: its own port, next
+// to the proxy's 8787 and stint local's 8788, and the one the deployment
+// files give it (deploy/compose.yaml, deploy/k8s/search.yaml).
+const defaultSearchListen = "127.0.0.1:8789"
+
 func newSearchServeCmd() *cobra.Command {
 	var listen, proxyURL, data, model, key string
 	var every int
+	var price search.PriceOverride
 	cmd := &cobra.Command{
 		Use:   "serve",
 		Short: "Run the search sidecar: an HTTP API to submit, watch and cancel searches",
@@ -102,40 +141,43 @@ func newSearchServeCmd() *cobra.Command {
 
   POST /jobs              {"task": "/path/task.yaml", "run": "ID", "over_cap": false}
   GET  /jobs              every job, newest first
-  GET  /jobs/{id}         state, step, best prompt so far, accuracies, calls, cache share, spend
+  GET  /jobs/{id}         state, step, best prompt so far (by dev accuracy), accuracies, calls, cache share, spend
   POST /jobs/{id}/cancel
 
 Jobs and their outputs are kept under --data; a job that was running when
 the sidecar stopped resumes from its last checkpoint when it starts again.
-The team key is --key or $STINT_KEY.`,
+The team key is --key or $STINT_KEY. --input-price and --output-price
+override every task's prices for its forecast, as for "stint search run"; a
+job whose task has a spend cap and no price is refused unless over_cap.`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every)
+			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every, price)
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&listen, "listen", "127.0.0.1:8788", "address of the job API")
+	fl.StringVar(&listen, "listen", defaultSearchListen, "address of the job API")
 	fl.StringVar(&proxyURL, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
 	fl.StringVar(&data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
 	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
 	fl.StringVar(&key, "key", "", "the team's client key (default: $STINT_KEY)")
 	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps (default: every tenth of the steps)")
+	priceFlags(fl, &price)
 	return cmd
 }
 
-func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int) error {
+func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int, price search.PriceOverride) error {
 	modelPath, err := localmodel.Locate(modelFlag, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
 	}
-	m, err := localmodel.Load(modelPath)
+	m, backbone, err := loadBackbone(modelPath)
 	if err != nil {
 		return err
 	}
 	if key == "" {
 		key = os.Getenv(teamKeyEnv)
 	}
-	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every})
+	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price, Backbone: backbone})
 	if err != nil {
 		return err
 	}
@@ -158,12 +200,23 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	}
 }
 
+// loadBackbone loads the policy's backbone model and names its file once
+// for results.json.
+func loadBackbone(path string) (*localmodel.Model, search.Backbone, error) {
+	m, err := localmodel.Load(path)
+	if err != nil {
+		return nil, search.Backbone{}, err
+	}
+	b, err := search.IdentifyBackbone(path)
+	return m, b, err
+}
+
 func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f searchFlags) error {
 	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
 	}
-	m, err := localmodel.Load(modelPath)
+	m, backbone, err := loadBackbone(modelPath)
 	if err != nil {
 		return err
 	}
@@ -174,7 +227,7 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	start := time.Now()
 	oc, err := search.RunJob(ctx, m, search.Job{
 		TaskPath: taskPath, Proxy: f.proxy, Key: key, Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
-		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter,
+		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter, Backbone: backbone,
 	}, out, func(p search.Progress) { printProgress(progress, p, start) })
 	fmt.Fprintln(progress)
 	if err != nil {
@@ -192,17 +245,28 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 }
 
 // printProgress redraws one status line: step, reward, accuracies,
-// calls, cache share, spend and the time left at this pace.
+// calls, cache share, spend, the share of verbalizers floored and the time
+// left at this pace.
 func printProgress(w io.Writer, p search.Progress, start time.Time) {
-	el := time.Since(start)
-	eta := time.Duration(float64(el) / float64(p.Step) * float64(p.Steps-p.Step)).Round(time.Second)
 	dev := "  -  "
 	if p.DevAcc >= 0 {
 		dev = fmt.Sprintf("%4.1f%%", 100*p.DevAcc)
 	}
 	bar := progressBar(p.Step, p.Steps, 20)
-	fmt.Fprintf(w, "\r%s step %d/%d reward %+.2f train %4.1f%% dev %s calls %d cached %4.1f%% spent %.4f USD eta %s   ",
-		bar, p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD, eta)
+	fmt.Fprintf(w, "\r%s step %d/%d reward %+.2f train %4.1f%% dev %s calls %d cached %4.1f%% spent %.4f USD floored %4.1f%% eta %s   ",
+		bar, p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD,
+		100*p.FlooredShare, eta(time.Since(start), p))
+}
+
+// eta is the time the steps left take at the pace of the steps this
+// process ran in elapsed (on a resumed search, those since the
+// checkpoint, not all steps so far).
+func eta(elapsed time.Duration, p search.Progress) time.Duration {
+	done := p.Step - p.ResumedAfter
+	if done <= 0 {
+		return 0
+	}
+	return time.Duration(float64(elapsed) / float64(done) * float64(p.Steps-p.Step)).Round(time.Second)
 }
 
 func progressBar(done, total, width int) string {

@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"encoding/json"
 	"io"
 	"net/http"
 	"os"
@@ -10,8 +11,11 @@ import (
 	"strconv"
 	"strings"
 	"testing"
+	"time"
 
+	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
 
@@ -56,12 +60,14 @@ func shortTask(t *testing.T) string {
 }
 
 // TestSearchReplaysToTheSameResults runs a short search through a real
-// stint serve on the real model, then replays it from the proxy's journal:
-// results.json comes out byte-for-byte the same and the replay makes no
-// upstream call.
+// stint serve on the real model, whose prices make every miss cost
+// something, then replays it from the proxy's journal: results.json, the
+// contenders' spend included, comes out byte-for-byte the same and the
+// replay makes no upstream call.
 func TestSearchReplaysToTheSameResults(t *testing.T) {
 	model := modeltest.Path(t)
-	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
+	cfg := writeConfig(t, configHead(t.TempDir(), "local:"+model)+"prices:\n  stories260K: {input: 0.50, output: 1.50}   # invented test prices\n")
+	c := startStint(t, nil, "serve", "--config", cfg)
 	t.Setenv("STINT_MODEL", model)
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
@@ -87,8 +93,22 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	// Source: the record/replay contract (README "Record and replay a
+	// run"): a replay answers every call from the journal, byte for byte.
 	if !bytes.Equal(a, b) {
 		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
+	}
+	var res search.Results
+	if err := json.Unmarshal(a, &res); err != nil {
+		t.Fatal(err)
+	}
+	for _, ct := range res.Ranking {
+		if ct.EvalCalls == 0 || ct.EvalSpendUSD <= 0 {
+			t.Errorf("%s: %d evaluation calls, %v USD; want the evaluation's calls and their cost", ct.Method, ct.EvalCalls, ct.EvalSpendUSD)
+		}
+		if searched := ct.Method == "rl" || ct.Method == "rl-best" || ct.Method == "random"; searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0) {
+			t.Errorf("%s: %d search calls, %v USD", ct.Method, ct.SearchCalls, ct.SearchSpendUSD)
+		}
 	}
 	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {
 		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {
@@ -113,6 +133,8 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	}
 	upstream, _ := strconv.Atoi(m[1])
 	saved, _ := strconv.Atoi(m[2])
+	// Source: hand-reasoned from the demo: its second search repeats the
+	// first call for call, so every one of its calls is saved.
 	if upstream == 0 || saved < upstream {
 		t.Errorf("demo: %d upstream calls, %d saved; the repeated search should be served from the cache", upstream, saved)
 	}
@@ -121,27 +143,120 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	}
 }
 
+// TestDemoWithoutModelSaysHowToGetIt runs the demo without its model
+// file, given by --model, by $STINT_MODEL or not at all (the cached
+// download), and follows the instructions as far as they go offline: the
+// download can't run here, so the real model file is put where the message
+// says the download writes it; then the command the message names must
+// run (its flags parse; with the file there it exits without serving or
+// downloading), and the model must be found where the demo looks.
 func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
-	t.Setenv("STINT_MODEL", filepath.Join(t.TempDir(), "absent.gguf"))
-	_, err := runCLI(t, "demo", "--data", t.TempDir())
-	if err == nil || !strings.Contains(err.Error(), "stint local --download") {
-		t.Errorf("demo without a model: %v, want instructions naming stint local --download", err)
+	model := modeltest.Path(t)
+	blob, err := os.ReadFile(model)
+	if err != nil {
+		t.Fatal(err)
+	}
+	tests := []struct {
+		name      string
+		flag, env string // --model and $STINT_MODEL given to the demo
+		cache     bool   // neither: the user cache dir
+		want      string // the command the message must name
+	}{
+		{"--model", filepath.Join(t.TempDir(), "flag", "stories260K.gguf"), "", false, "stint local --download-only --model "},
+		{"STINT_MODEL", "", filepath.Join(t.TempDir(), "env", "m.gguf"), false, "stint local --download-only"},
+		{"neither", "", "", true, "stint local --download-only"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cacheDir := t.TempDir()
+			t.Setenv("XDG_CACHE_HOME", cacheDir)
+			t.Setenv("STINT_MODEL", tt.env)
+			args := []string{"demo", "--data", t.TempDir()}
+			if tt.flag != "" {
+				args = append(args, "--model", tt.flag)
+			}
+			_, err := runCLI(t, args...)
+			if err == nil {
+				t.Fatal("the demo ran without its model")
+			}
+			msg := err.Error()
+			cmdLine := regexp.MustCompile(`(?m)^ +(stint local .*)$`).FindStringSubmatch(msg)
+			target := regexp.MustCompile(`it writes (\S+) `).FindStringSubmatch(msg)
+			if cmdLine == nil || target == nil || !strings.HasPrefix(cmdLine[1], tt.want) {
+				t.Fatalf("message names no %q command and target:\n%s", tt.want, msg)
+			}
+			want := tt.flag + tt.env
+			if tt.cache {
+				want = filepath.Join(cacheDir, "stint", "models", "stories260K.gguf")
+			}
+			// Source: localmodel.Locate's order (--model, STINT_MODEL,
+			// the cached download) is where the demo looks.
+			if target[1] != want {
+				t.Errorf("the message says the download writes %s, want %s (where the demo looks)", target[1], want)
+			}
+			// Stand in for the download, then run the named command.
+			if err := os.MkdirAll(filepath.Dir(target[1]), 0o755); err != nil {
+				t.Fatal(err)
+			}
+			if err := os.WriteFile(target[1], blob, 0o600); err != nil {
+				t.Fatal(err)
+			}
+			out, err := runCLI(t, strings.Fields(cmdLine[1])[1:]...)
+			if err != nil || !strings.Contains(out, "already there") {
+				t.Errorf("%s: %v\n%s, want it to find the file and exit", cmdLine[1], err, out)
+			}
+			if got, err := localmodel.Locate(tt.flag, os.Getenv); err != nil || got != want {
+				t.Errorf("after the instructions the demo finds %q, %v; want %s", got, err, want)
+			}
+		})
 	}
 }
 
-// TestSearchRefusesAForecastOverTheCap never reaches a proxy: the
-// forecast is over the task's cap, so the search does not start.
-func TestSearchRefusesAForecastOverTheCap(t *testing.T) {
+// TestSearchRefusesToStartOverOrWithoutAPrice never reaches a proxy: the
+// forecast is over the task's cap, or the task has a cap and no price, so
+// the search does not start and says what to set.
+func TestSearchRefusesToStartOverOrWithoutAPrice(t *testing.T) {
 	t.Setenv("STINT_MODEL", modeltest.Path(t))
-	out, err := runCLI(t, "search", "run", shortTask(t), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir(),
-		"--input-price", "1000000", "--output-price", "1000000")
-	if err == nil || !strings.Contains(err.Error(), "spend_cap_usd") || !strings.Contains(out, "forecast:") {
-		t.Errorf("search over its cap: %v\n%s, want a refusal naming spend_cap_usd after the forecast", err, out)
+	unpriced := shortTask(t)
+	raw, err := os.ReadFile(unpriced)
+	if err != nil {
+		t.Fatal(err)
+	}
+	noPrices := regexp.MustCompile(`(?m)^prices:\n(  .*\n)+`).ReplaceAll(raw, nil)
+	if bytes.Equal(noPrices, raw) {
+		t.Fatal("the example task has no prices section to remove")
+	}
+	if err := os.WriteFile(unpriced, noPrices, 0o600); err != nil {
+		t.Fatal(err)
+	}
+	tests := []struct {
+		name string
+		args []string
+		want []string // in the error
+	}{
+		// Source: the refusal rules of search.CheckCap (README "Prompt
+		// search"); 10⁶ USD per million tokens is absurdly over any cap.
+		{"forecast over the cap", []string{shortTask(t), "--input-price", "1000000", "--output-price", "1000000"}, []string{"spend_cap_usd", "--over-cap"}},
+		{"cap and no price", []string{unpriced}, []string{"prices.input_per_million", "--input-price", "prices.output_per_million", "--over-cap"}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			out, err := runCLI(t, append(append([]string{"search", "run"}, tt.args...), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir())...)
+			if err == nil || !strings.Contains(out, "forecast:") {
+				t.Fatalf("search: %v\n%s, want a refusal after the forecast", err, out)
+			}
+			for _, w := range tt.want {
+				if !strings.Contains(err.Error(), w) {
+					t.Errorf("refusal %q does not name %q", err, w)
+				}
+			}
+		})
 	}
 }
 
 // TestSearchStopsAtItsSpendCap runs against a proxy that prices the model:
-// the search stops once the spend the proxy reports reaches the task's cap.
+// started over its cap (--over-cap), the search stops once the spend the
+// proxy reports reaches the task's cap.
 func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	model := modeltest.Path(t)
 	t.Setenv("STINT_MODEL", model)
@@ -155,9 +270,11 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 2.50"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir())
-	if err == nil || !strings.Contains(err.Error(), "spend cap") {
-		t.Errorf("search with a tiny cap: %v\n%s, want it stopped at the cap", err, out)
+	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")
+	// Source: the task's spend_cap_usd is held by the spend the proxy
+	// reports (Stint-Cost-Usd); one priced miss is over 10⁻⁶ USD.
+	if err == nil || !strings.Contains(err.Error(), "spend cap is reached") || !strings.Contains(out, "starting over the cap") {
+		t.Errorf("search with a tiny cap: %v\n%s, want it started over the cap and stopped there", err, out)
 	}
 }
 
@@ -166,7 +283,7 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 // after step 2 with a checkpoint, and resumed from it. A replay answers
 // only the calls the recording made, so a resumed search that strayed from
 // the recorded trajectory would fail; it finishes with the same
-// results.json, byte for byte.
+// results.json and history.csv, byte for byte.
 func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	model := modeltest.Path(t)
 	c := startStint(t, nil, "serve", "--listen", "127.0.0.1:0", "--upstream", "local:"+model, "--data", t.TempDir())
@@ -188,12 +305,98 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	if out, err := runCLI(t, append(replay, "--resume")...); err != nil || !strings.Contains(out, "resuming after step 2") {
 		t.Fatalf("resumed piece: %v\n%s", err, out)
 	}
-	a, _ := os.ReadFile(filepath.Join(whole, "results.json"))
-	b, err := os.ReadFile(filepath.Join(pieces, "results.json"))
-	if err != nil || !bytes.Equal(a, b) {
-		t.Errorf("resumed results differ (%v):\n%s\nvs\n%s", err, a, b)
+	// Source: the checkpoint contract (README "Prompt search"): a resumed
+	// run follows exactly the trajectory of an uninterrupted one.
+	// results.json has the end; history.csv every step's reward, loss,
+	// accuracies and greedy prompt, so the whole trajectory is compared.
+	for _, name := range []string{"results.json", "history.csv"} {
+		a, err := os.ReadFile(filepath.Join(whole, name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, err := os.ReadFile(filepath.Join(pieces, name))
+		if err != nil || !bytes.Equal(a, b) {
+			t.Errorf("resumed %s differs (%v):\n%s\nvs\n%s", name, err, a, b)
+		}
 	}
 	if got := upstreamCalls(t, c); got != calls {
 		t.Errorf("upstream calls %d → %d during the replayed pieces", calls, got)
+	}
+}
+
+// TestSearchRunAndServeTakeTheSamePriceFlags: both commands override the
+// task's prices with --input-price and --output-price, which refuse what
+// is not a USD amount.
+func TestSearchRunAndServeTakeTheSamePriceFlags(t *testing.T) {
+	root := newRootCmd()
+	for _, path := range [][]string{{"search", "run"}, {"search", "serve"}} {
+		cmd, _, err := root.Find(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, name := range []string{"input-price", "output-price"} {
+			fl := cmd.Flags().Lookup(name)
+			if fl == nil {
+				t.Errorf("%s has no --%s", strings.Join(path, " "), name)
+				continue
+			}
+			for _, tt := range []struct {
+				value string
+				ok    bool
+			}{{"0.5", true}, {"0", true}, {"-1", false}, {"NaN", false}, {"+Inf", false}, {"cheap", false}} {
+				if err := fl.Value.Set(tt.value); (err == nil) != tt.ok {
+					t.Errorf("%s --%s %s: %v, want ok=%v", strings.Join(path, " "), name, tt.value, err, tt.ok)
+				}
+			}
+		}
+	}
+}
+
+// TestProgressLine: the status line shows the floored-verbalizer share, and
+// its ETA is paced by the steps this process ran (those since the
+// checkpoint on a resumed search), not by all steps so far. Hand-worked:
+// 4 steps in 40 s leave 6 steps, 60 s.
+func TestProgressLine(t *testing.T) {
+	tests := []struct {
+		name         string
+		step, resume int
+		want         time.Duration
+	}{
+		{"fresh", 4, 0, 60 * time.Second},
+		{"resumed after step 2", 6, 2, 40 * time.Second}, // 4 steps in 40 s, 4 left
+		{"no step run yet", 2, 2, 0},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			p := search.Progress{Step: tt.step, Steps: 10, ResumedAfter: tt.resume}
+			if got := eta(40*time.Second, p); got != tt.want {
+				t.Errorf("eta = %v, want %v", got, tt.want)
+			}
+		})
+	}
+	var b strings.Builder
+	printProgress(&b, search.Progress{Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now())
+	if !strings.Contains(b.String(), "floored 12.5%") {
+		t.Errorf("progress line %q lacks the floored share", b.String())
+	}
+}
+
+// TestSidecarAndLocalListenApart: `stint search serve` and `stint local`
+// can run side by side with their defaults. Source: the deployment files
+// run the sidecar on 8789 (deploy/compose.yaml, deploy/k8s/search.yaml).
+func TestSidecarAndLocalListenApart(t *testing.T) {
+	root := newRootCmd()
+	listen := map[string]string{}
+	for _, path := range [][]string{{"search", "serve"}, {"local"}, {"serve"}} {
+		cmd, _, err := root.Find(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if fl := cmd.Flags().Lookup("listen"); fl != nil {
+			listen[strings.Join(path, " ")] = fl.DefValue
+		}
+	}
+	if got := listen["search serve"]; got != "127.0.0.1:8789" || got == listen["local"] {
+		t.Errorf("defaults: %v, want search serve on 127.0.0.1:8789, apart from local's", listen)
 	}
 }

@@ -12,7 +12,7 @@ import (
 // admin keys are configured.
 type UIConfig struct {
 	// SearchSidecar is the base URL of the search sidecar's job API
-	// (`stint search serve`), e.g. http://127.0.0.1:8788; empty shows no
+	// (`stint search serve`), e.g. http://127.0.0.1:8789; empty shows no
 	// searches.
 	SearchSidecar string `yaml:"search_sidecar"`
 	// SidecarTimeout bounds the page's calls to the sidecar (default 2s).

@@ -14,12 +14,12 @@ func TestUIConfigErrorsNameFieldAndLine(t *testing.T) {
 		wantLine int
 		wantText string
 	}{
-		{"sidecar not a URL", "ui:\n  search_sidecar: sidecar:8788\n", 2, "ui.search_sidecar"},
+		{"sidecar not a URL", "ui:\n  search_sidecar: sidecar:8789\n", 2, "ui.search_sidecar"},
 		{"sidecar without host", "ui:\n  search_sidecar: http://\n", 2, "ui.search_sidecar"},
-		{"sidecar other scheme", "ui:\n  search_sidecar: ftp://127.0.0.1:8788\n", 2, "http://"},
+		{"sidecar other scheme", "ui:\n  search_sidecar: ftp://127.0.0.1:8789\n", 2, "http://"},
 		{"negative timeout", "ui:\n  sidecar_timeout: -1s\n", 2, "ui.sidecar_timeout"},
 		{"negative refresh", "ui:\n\n  refresh: -5s\n", 3, "ui.refresh"},
-		{"unknown key", "ui:\n  sidecar: http://127.0.0.1:8788\n", 2, "sidecar"},
+		{"unknown key", "ui:\n  sidecar: http://127.0.0.1:8789\n", 2, "sidecar"},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -35,11 +35,11 @@ func TestUIConfigErrorsNameFieldAndLine(t *testing.T) {
 }
 
 func TestUIConfigValues(t *testing.T) {
-	cfg, err := ParseConfig(strings.NewReader("ui:\n  search_sidecar: http://10.0.0.7:8788\n  sidecar_timeout: 750ms\n  refresh: 10s\n"))
+	cfg, err := ParseConfig(strings.NewReader("ui:\n  search_sidecar: http://10.0.0.7:8789\n  sidecar_timeout: 750ms\n  refresh: 10s\n"))
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := UIConfig{SearchSidecar: "http://10.0.0.7:8788", SidecarTimeout: Duration(750 * time.Millisecond), Refresh: Duration(10 * time.Second)}
+	want := UIConfig{SearchSidecar: "http://10.0.0.7:8789", SidecarTimeout: Duration(750 * time.Millisecond), Refresh: Duration(10 * time.Second)}
 	if cfg.UI != want {
 		t.Errorf("ui: %+v, want %+v", cfg.UI, want)
 	}

@@ -13,7 +13,7 @@ const maxSpecBytes = 64 << 10
 //
 //	POST /jobs              submit {"task": PATH, "run": ID, "over_cap": false} → 201 and the job
 //	GET  /jobs              {"jobs": [...]}, newest first
-//	GET  /jobs/{id}         one job: state, step, best prompt so far, accuracies, calls, cache share, spend
+//	GET  /jobs/{id}         one job: state, step, best prompt so far (by dev accuracy), accuracies, calls, cache share, spend
 //	GET  /jobs/{id}/history the learning curve so far (see History)
 //	POST /jobs/{id}/cancel  stop a queued or running job
 //	GET  /healthz           ok

@@ -46,21 +46,38 @@ type Spec struct {
 
 // Status is a job as the API shows it.
 type Status struct {
-	ID         string    `json:"id"`
-	Spec       Spec      `json:"spec"`
-	State      string    `json:"state"`
-	Step       int       `json:"step"`
-	Steps      int       `json:"steps"`
-	BestPrompt string    `json:"best_prompt"`
-	TrainAcc   float64   `json:"train_accuracy"`
-	DevAcc     float64   `json:"dev_accuracy"` // -1 before the first evaluation
-	Calls      int       `json:"scoring_calls"`
-	CacheShare float64   `json:"cache_share"`
-	SpentUSD   float64   `json:"spent_usd"` // as the proxy reported it: an estimate
-	Resumed    int       `json:"resumed_after_step,omitempty"`
-	Error      string    `json:"error,omitempty"`
-	Created    time.Time `json:"created"`
-	Updated    time.Time `json:"updated"`
+	ID    string `json:"id"`
+	Spec  Spec   `json:"spec"`
+	State string `json:"state"`
+	Step  int    `json:"step"`
+	Steps int    `json:"steps"`
+	// BestPrompt is the best prompt so far: of the policy's greedy prompts
+	// scored on the dev set so far (every tenth of the steps and at the
+	// last), the one with the highest dev accuracy, the earliest on ties.
+	// DevAcc is that accuracy (-1 before the first evaluation) and BestStep
+	// the step it was scored at.
+	BestPrompt string  `json:"best_prompt"`
+	DevAcc     float64 `json:"dev_accuracy"`
+	BestStep   int     `json:"best_step,omitempty"`
+	// LatestPrompt is the greedy prompt at the latest evaluation and
+	// LatestDevAcc its dev accuracy (-1 before the first); at the end it
+	// is results.json's "rl" prompt.
+	LatestPrompt string  `json:"latest_prompt"`
+	LatestDevAcc float64 `json:"latest_dev_accuracy"`
+	// TrainAcc is the latest step's mean accuracy of its sampled prompts.
+	TrainAcc   float64 `json:"train_accuracy"`
+	Calls      int     `json:"scoring_calls"`
+	CacheShare float64 `json:"cache_share"`
+	SpentUSD   float64 `json:"spent_usd"` // as the proxy reported it: an estimate
+	// FlooredShare is the share of verbalizer look-ups so far that found
+	// the verbalizer missing from the returned log-probabilities and gave
+	// it the floor.
+	FlooredShare float64 `json:"floored_share"`
+	// Resumed is the step of the checkpoint the job last resumed from.
+	Resumed int       `json:"resumed_after_step,omitempty"`
+	Error   string    `json:"error,omitempty"`
+	Created time.Time `json:"created"`
+	Updated time.Time `json:"updated"`
 }
 
 // Options configure a Manager.
@@ -70,6 +87,12 @@ type Options struct {
 	Proxy, Key string
 	// CheckpointEvery is passed to each search (0: its default).
 	CheckpointEvery int
+	// Price overrides each task's prices for its forecast (see
+	// search.Job.Price).
+	Price search.PriceOverride
+	// Backbone identifies the model file in every job's results.json
+	// (search.IdentifyBackbone, once for the process).
+	Backbone search.Backbone
 	// Now is the clock; nil means time.Now.
 	Now func() time.Time
 }
@@ -151,7 +174,7 @@ func (m *Manager) Submit(spec Spec) (Status, error) {
 		return Status{}, err
 	}
 	now := m.opts.Now().UTC()
-	st := &Status{ID: "job-" + hex.EncodeToString(b[:]), Spec: spec, State: Queued, DevAcc: -1, Created: now, Updated: now}
+	st := &Status{ID: "job-" + hex.EncodeToString(b[:]), Spec: spec, State: Queued, DevAcc: -1, LatestDevAcc: -1, Created: now, Updated: now}
 	if st.Spec.Run == "" {
 		st.Spec.Run = st.ID
 	}
@@ -262,16 +285,19 @@ func (m *Manager) run(ctx context.Context, id string) {
 	_ = m.save(&snap)
 
 	job := search.Job{TaskPath: st.Spec.Task, Proxy: m.opts.Proxy, Key: m.opts.Key, Run: st.Spec.Run, Out: m.Out(id),
-		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery}
-	if resume {
-		// Replaying the calls made before the checkpoint would be as
-		// exact, but they are in the cache too; the run goes on recording.
-		m.update(id, func(s *Status) { s.Resumed = s.Step })
-	}
+		Resume: resume, OverCap: st.Spec.OverCap, CheckpointEvery: m.opts.CheckpointEvery, Price: m.opts.Price, Backbone: m.opts.Backbone}
+	// A resumed job replaying the calls made before the checkpoint would
+	// be as exact, but they are in the cache too; the run goes on
+	// recording.
 	oc, err := search.RunJob(jctx, m.model, job, io.Discard, func(p search.Progress) {
 		m.update(id, func(s *Status) {
-			s.Step, s.Steps, s.BestPrompt, s.TrainAcc, s.DevAcc = p.Step, p.Steps, p.Prompt, p.TrainAcc, p.DevAcc
-			s.Calls, s.CacheShare, s.SpentUSD = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD
+			s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
+			s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
+			s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
+			s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
+			if p.ResumedAfter > 0 {
+				s.Resumed = p.ResumedAfter
+			}
 		})
 		if p.Step%10 == 0 {
 			m.persist(id)
@@ -286,10 +312,12 @@ func (m *Manager) run(ctx context.Context, id string) {
 	case err != nil:
 		st.State, st.Error = Failed, err.Error()
 	default:
+		// The whole search's figures, the final evaluation included.
 		st.State = Done
-		if len(oc.Results.Ranking) > 0 {
-			st.BestPrompt = oc.Results.Best.Prompt
-			st.TrainAcc, st.DevAcc = oc.Results.Best.TrainAcc, oc.Results.Best.DevAcc
+		res := oc.Results
+		st.Calls, st.CacheShare, st.SpentUSD = res.Spending.Calls, res.Spending.CacheShare(), res.Spending.CostUSD
+		if res.Lookups > 0 {
+			st.FlooredShare = float64(res.Floored) / float64(res.Lookups)
 		}
 	}
 	st.Updated = m.opts.Now().UTC()

@@ -3,6 +3,7 @@ package jobs_test
 import (
 	"bytes"
 	"encoding/json"
+	"math"
 	"net/http"
 	"net/http/httptest"
 	"os"
@@ -15,6 +16,7 @@ import (
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/jobs"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
 
@@ -106,8 +108,18 @@ func TestJobAPIRunsASearch(t *testing.T) {
 	if done.State != jobs.Done || done.Step != 3 || done.Calls == 0 {
 		t.Fatalf("finished job: %+v", done)
 	}
-	if _, err := os.Stat(filepath.Join(m.Out(st.ID), "results.json")); err != nil {
-		t.Errorf("no results: %v", err)
+	raw, err := os.ReadFile(filepath.Join(m.Out(st.ID), "results.json"))
+	if err != nil {
+		t.Fatalf("no results: %v", err)
+	}
+	var res search.Results
+	if err := json.Unmarshal(raw, &res); err != nil {
+		t.Fatal(err)
+	}
+	// The status's floored share is the search's own count, as results.json
+	// has it.
+	if res.Lookups == 0 || math.Abs(done.FlooredShare-float64(res.Floored)/float64(res.Lookups)) > 1e-12 {
+		t.Errorf("floored share %v, want %d of %d look-ups", done.FlooredShare, res.Floored, res.Lookups)
 	}
 	resp, err := http.Get(api.URL + "/jobs/" + st.ID)
 	if err != nil || resp.StatusCode != http.StatusOK {
@@ -143,6 +155,17 @@ func TestJobResumesAfterRestart(t *testing.T) {
 	if got, _ := m.Get(st.ID); got.State != jobs.Running {
 		t.Fatalf("after close the job is %q, want it left running to resume", got.State)
 	}
+	// The step the job goes on from is its checkpoint's, whatever step
+	// the status last showed.
+	f, err := os.Open(filepath.Join(m.Out(st.ID), search.CheckpointFile))
+	if err != nil {
+		t.Fatal(err)
+	}
+	ckpt, err := search.ReadState(f, "reading-corner", 7) // the example task's name and seed
+	f.Close()
+	if err != nil {
+		t.Fatal(err)
+	}
 
 	m2, err := jobs.Open(dir, r.model, jobs.Options{Proxy: r.api, CheckpointEvery: 1})
 	if err != nil {
@@ -150,8 +173,21 @@ func TestJobResumesAfterRestart(t *testing.T) {
 	}
 	defer m2.Close()
 	done := waitFor(t, m2, st.ID, "finished", func(s jobs.Status) bool { return s.State != jobs.Queued && s.State != jobs.Running })
-	if done.State != jobs.Done || done.Step != 8 || done.Resumed < 1 {
-		t.Errorf("resumed job: %+v, want done at step 8, resumed after step ≥ 1", done)
+	if done.State != jobs.Done || done.Step != 8 || done.Resumed != ckpt.Step {
+		t.Errorf("resumed job: %+v, want done at step 8, resumed after step %d (the checkpoint's)", done, ckpt.Step)
+	}
+	// The best prompt so far is the greedy prompt with the highest dev
+	// accuracy in the whole curve, the part before the restart included.
+	h, err := m2.History(st.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := search.BestByDev(h.Points)
+	if want.Step == 0 || done.BestPrompt != want.Prompt || done.BestStep != want.Step || math.Abs(done.DevAcc-want.DevAcc) > 1e-6 {
+		t.Errorf("best so far: %q at step %d (dev %v), want %q at step %d (dev %v) from the history", done.BestPrompt, done.BestStep, done.DevAcc, want.Prompt, want.Step, want.DevAcc)
+	}
+	if last := h.Points[len(h.Points)-1]; done.LatestPrompt != last.Prompt || math.Abs(done.LatestDevAcc-last.DevAcc) > 1e-6 {
+		t.Errorf("latest: %q (dev %v), want the last step's %q (dev %v)", done.LatestPrompt, done.LatestDevAcc, last.Prompt, last.DevAcc)
 	}
 }
 

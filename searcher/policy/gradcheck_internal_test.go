@@ -97,6 +97,8 @@ func TestGradient(t *testing.T) {
 				size += grad[i]*grad[i] + fd*fd
 			}
 			rel := math.Sqrt(diff) / math.Sqrt(size)
+			// Common practice: a gradient check against central finite
+			// differences, the bound from the error estimate above.
 			if !(rel < 1e-7) {
 				t.Errorf("relative gradient error %.3g, want < 1e-7 (central differences)", rel)
 			}

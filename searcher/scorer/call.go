@@ -13,7 +13,13 @@ const (
 	HeaderCost          = "Stint-Cost-Usd"       // this answer's charge, an estimate
 	HeaderRun           = "Stint-Run"            // the run id a call is journaled under
 	HeaderRunMode       = "Stint-Run-Mode"       // "replay": answer from the run's journal only
+	// HeaderRecordedCost is, on a replayed answer, the call's charge when
+	// the run recorded it.
+	HeaderRecordedCost = "Stint-Recorded-Cost-Usd"
 )
+
+// cacheReplay is the Stint-Cache value of an answer from a run's journal.
+const cacheReplay = "replay"
 
 // Usage is the wire format's token count for one call.
 type Usage struct {
@@ -37,6 +43,19 @@ type Call struct {
 	// CostUSD is the Stint-Cost-Usd header, 0 when absent: the proxy's
 	// estimate from its price table, not the provider's bill.
 	CostUSD float64
+	// RecordedCostUSD is, on a replayed answer, the Stint-Recorded-Cost-Usd
+	// header: what the call was charged when the run recorded it.
+	RecordedCostUSD float64 `json:",omitempty"`
+}
+
+// RunCostUSD is what the call costs the run it belongs to: its charge, or
+// on a replay the charge the recording paid. Totals of it agree between a
+// run and its replay.
+func (c Call) RunCostUSD() float64 {
+	if c.Cache == cacheReplay {
+		return c.RecordedCostUSD
+	}
+	return c.CostUSD
 }
 
 // readCall fills a Call's cache and cost fields from an answer's headers.
@@ -56,12 +75,21 @@ func readCall(h http.Header, prompts int) Call {
 			}
 		}
 	}
-	if v := h.Get(HeaderCost); v != "" {
-		if f, err := strconv.ParseFloat(strings.TrimSpace(v), 64); err == nil && f >= 0 {
-			c.CostUSD = f
-		}
+	c.CostUSD = usdHeader(h, HeaderCost)
+	if c.Cache == cacheReplay {
+		c.RecordedCostUSD = usdHeader(h, HeaderRecordedCost)
 	}
 	return c
+}
+
+// usdHeader reads a non-negative USD amount from header name, 0 when it is
+// absent or malformed.
+func usdHeader(h http.Header, name string) float64 {
+	f, err := strconv.ParseFloat(strings.TrimSpace(h.Get(name)), 64)
+	if err != nil || !(f >= 0) {
+		return 0
+	}
+	return f
 }
 
 // Totals sums a list of calls.
@@ -75,6 +103,9 @@ type Totals struct {
 	Usage Usage
 	// CostUSD sums the proxy's cost estimates.
 	CostUSD float64
+	// RunCostUSD sums the calls' RunCostUSD: equal to CostUSD outside a
+	// replay, the recording's spend in one.
+	RunCostUSD float64
 }
 
 // Sum adds up calls.
@@ -88,6 +119,7 @@ func Sum(calls []Call) Totals {
 		t.Usage.CompletionTokens += c.Usage.CompletionTokens
 		t.Usage.TotalTokens += c.Usage.TotalTokens
 		t.CostUSD += c.CostUSD
+		t.RunCostUSD += c.RunCostUSD()
 	}
 	return t
 }

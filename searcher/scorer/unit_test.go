@@ -17,6 +17,9 @@ func TestReadCall(t *testing.T) {
 		{"hit", map[string]string{HeaderCache: "hit", HeaderCost: "0"}, 3, Call{Prompts: 3, Cache: "hit", CachedPrompts: 3}},
 		{"miss with cost", map[string]string{HeaderCache: "miss", HeaderCost: "0.000125"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.000125}},
 		{"partial batch", map[string]string{HeaderCache: "partial", HeaderCachedPrompts: "2/3"}, 3, Call{Prompts: 3, Cache: "partial", CachedPrompts: 2}},
+		// A replay is free; what the recording paid comes separately.
+		{"replay", map[string]string{HeaderCache: "replay", HeaderCost: "0", HeaderRecordedCost: "0.0002"}, 2, Call{Prompts: 2, Cache: "replay", CachedPrompts: 0, RecordedCostUSD: 0.0002}},
+		{"recorded cost only on a replay", map[string]string{HeaderCache: "miss", HeaderCost: "0.0001", HeaderRecordedCost: "0.0002"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.0001}},
 		{"bad counts ignored", map[string]string{HeaderCache: "partial", HeaderCachedPrompts: "9/3", HeaderCost: "-1"}, 3, Call{Prompts: 3, Cache: "partial"}},
 	}
 	for _, tt := range tests {
@@ -37,13 +40,15 @@ func TestSum(t *testing.T) {
 		{Prompts: 4, CachedPrompts: 4, Usage: Usage{PromptTokens: 40, CompletionTokens: 4, TotalTokens: 44}},
 		{Prompts: 4, CachedPrompts: 1, CostUSD: 0.5, Usage: Usage{PromptTokens: 30, CompletionTokens: 4, TotalTokens: 34}},
 		{Prompts: 2, CachedPrompts: -1, CostUSD: 0.25},
+		{Prompts: 1, Cache: "replay", RecordedCostUSD: 0.125},
 	})
-	// 5 of 10 prompts cached; 70 prompt tokens; $0.75.
-	if tot.Calls != 3 || tot.Prompts != 10 || tot.CachedPrompts != 5 || tot.Usage.PromptTokens != 70 || tot.Usage.TotalTokens != 78 || tot.CostUSD != 0.75 {
+	// 5 of 11 prompts cached; 70 prompt tokens; $0.75 charged, and the
+	// replayed call's recorded $0.125 on top for the run's cost.
+	if tot.Calls != 4 || tot.Prompts != 11 || tot.CachedPrompts != 5 || tot.Usage.PromptTokens != 70 || tot.Usage.TotalTokens != 78 || tot.CostUSD != 0.75 || tot.RunCostUSD != 0.875 {
 		t.Errorf("Sum = %+v", tot)
 	}
-	if got := tot.CacheShare(); got != 0.5 {
-		t.Errorf("CacheShare = %v, want 0.5", got)
+	if got := tot.CacheShare(); got != 5.0/11 {
+		t.Errorf("CacheShare = %v, want 5/11", got)
 	}
 	if got := (Totals{}).CacheShare(); got != 0 {
 		t.Errorf("empty CacheShare = %v, want 0", got)

@@ -58,3 +58,30 @@ func TestNoteBestKeepsTheFirstHighestMean(t *testing.T) {
 		})
 	}
 }
+
+// TestBestByDev: the best greedy prompt so far is the one with the highest
+// dev accuracy among the evaluated steps, the earliest on ties; steps not
+// evaluated (dev −1) never count. Hand-made histories.
+func TestBestByDev(t *testing.T) {
+	pt := func(step int, dev float64, prompt string) Point {
+		return Point{Step: step, DevAcc: dev, Prompt: prompt}
+	}
+	tests := []struct {
+		name string
+		h    []Point
+		want DevBest
+	}{
+		{"none evaluated", []Point{pt(1, -1, ""), pt(2, -1, "")}, DevBest{DevAcc: -1}},
+		{"a later one is better", []Point{pt(2, 0.5, "a"), pt(3, -1, ""), pt(4, 0.75, "b")}, DevBest{"b", 4, 0.75}},
+		{"the latest is worse", []Point{pt(2, 0.75, "a"), pt(4, 0.5, "b")}, DevBest{"a", 2, 0.75}},
+		{"ties keep the earliest", []Point{pt(2, 0.5, "a"), pt(4, 0.5, "b")}, DevBest{"a", 2, 0.5}},
+		{"zero accuracy counts", []Point{pt(1, 0, "a")}, DevBest{"a", 1, 0}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			if got := BestByDev(tt.h); got != tt.want {
+				t.Errorf("BestByDev = %+v, want %+v", got, tt.want)
+			}
+		})
+	}
+}

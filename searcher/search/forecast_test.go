@@ -1,7 +1,9 @@
 package search
 
 import (
+	"errors"
 	"path/filepath"
+	"strings"
 	"testing"
 
 	"github.com/stintlab/stint/searcher/scorer"
@@ -30,5 +32,70 @@ func TestPlanForTheExampleTask(t *testing.T) {
 	want := (52000*float64(p.TokensPerJudgement)*1 + 52000*2) / 1e6
 	if got := p.Cost(scorer.Price{InputPerMillion: 1, OutputPerMillion: 2}); got != want {
 		t.Errorf("cost %v, want %v", got, want)
+	}
+}
+
+// TestCheckCapRefusals: a search with a spend cap starts only when its
+// forecast is priced and under the cap, or when told to (--over-cap), and
+// a refusal names what to change. The cases are the decision table of the
+// issue that asked for the refusal (a cap with no price is refused, a
+// priced forecast under the cap runs, one over is refused, --over-cap
+// starts either); the amounts are made up to fall either side.
+func TestCheckCapRefusals(t *testing.T) {
+	tk, err := task.Parse([]byte(task.ExampleFile), filepath.Join("..", "..", "testdata", "search"), nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	plan := PlanFor(tk, 0)
+	f := func(x float64) *float64 { return &x }
+	atTask := plan.Cost(scorer.Price{InputPerMillion: 0.5, OutputPerMillion: 1.5}) // the example's prices
+	tests := []struct {
+		name       string
+		prices     *task.Prices
+		override   PriceOverride
+		capUSD     float64
+		overCap    bool
+		want       error    // nil: it starts
+		mention    []string // in the error or the note
+		notMention []string
+	}{
+		{"cap, no price", nil, PriceOverride{}, 2.5, false, ErrNoPrice,
+			[]string{"prices.input_per_million", "--input-price", "prices.output_per_million", "--output-price", "--over-cap"}, nil},
+		{"cap, only the input price", nil, PriceOverride{InputPerMillion: f(1)}, 2.5, false, ErrNoPrice,
+			[]string{"prices.output_per_million", "--output-price"}, []string{"prices.input_per_million"}},
+		{"cap, no price, over-cap", nil, PriceOverride{}, 2.5, true, nil, []string{"proxy reports"}, nil},
+		{"task price under the cap", tk.Prices, PriceOverride{}, 2 * atTask, false, nil, nil, nil},
+		{"task price over the cap", tk.Prices, PriceOverride{}, atTask / 2, false, ErrOverCap, []string{"spend_cap_usd", "--over-cap"}, nil},
+		{"flags over the task's prices push it over", tk.Prices, PriceOverride{InputPerMillion: f(100), OutputPerMillion: f(100)}, 2 * atTask, false, ErrOverCap, nil, nil},
+		{"flags alone under the cap", nil, PriceOverride{InputPerMillion: f(0.5), OutputPerMillion: f(1.5)}, 2 * atTask, false, nil, nil, nil},
+		{"over the cap, over-cap", tk.Prices, PriceOverride{}, atTask / 2, true, nil, []string{"proxy reports"}, nil},
+		{"no cap, no price", nil, PriceOverride{}, 0, false, nil, nil, nil},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			p := PricingFor(tt.prices, tt.override)
+			forecast := 0.0
+			if p.Known() {
+				forecast = plan.Cost(p.Price)
+			}
+			note, err := CheckCap(tt.capUSD, forecast, p, tt.overCap)
+			if !errors.Is(err, tt.want) || (tt.want == nil) != (err == nil) {
+				t.Fatalf("CheckCap: %v, want %v", err, tt.want)
+			}
+			text := note
+			if err != nil {
+				text = err.Error()
+			}
+			for _, m := range tt.mention {
+				if !strings.Contains(text, m) {
+					t.Errorf("%q does not name %q", text, m)
+				}
+			}
+			for _, m := range tt.notMention {
+				if strings.Contains(text, m) {
+					t.Errorf("%q names %q, which is set", text, m)
+				}
+			}
+		})
 	}
 }

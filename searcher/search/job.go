@@ -26,12 +26,16 @@ type Job struct {
 	Replay bool
 	// Resume continues from Out/checkpoint.json.
 	Resume bool
-	// Price prices the forecast; OverCap starts a search whose forecast
-	// is over the task's spend cap.
-	Price   scorer.Price
+	// Price overrides the task's prices for the forecast; OverCap starts
+	// a search whose forecast is over the task's spend cap, or that has a
+	// cap and no price (see CheckCap).
+	Price   PriceOverride
 	OverCap bool
 	// CheckpointEvery and StopAfter are as in Options.
 	CheckpointEvery, StopAfter int
+	// Backbone identifies the model file of the backbone in results.json
+	// (IdentifyBackbone, computed once by the caller).
+	Backbone Backbone
 }
 
 // Outcome is what a job did.
@@ -39,7 +43,8 @@ type Outcome struct {
 	Results  Results
 	Run      string
 	Plan     Plan
-	Forecast float64 // USD at Job.Price; 0 without prices
+	Pricing  Pricing // the task's prices with Job.Price over them
+	Forecast float64 // USD at Pricing; 0 when the price is not known
 	Wall     time.Duration
 	Stopped  bool // StopAfter ended it; its checkpoint resumes it
 }
@@ -100,22 +105,32 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 		return oc, err
 	}
 	oc.Plan = PlanFor(t, 0)
-	oc.Forecast = oc.Plan.Cost(j.Price)
+	oc.Pricing = PricingFor(t.Prices, j.Price)
 	fmt.Fprintf(log, "forecast: %d scorings (search %d, random baseline %d, evaluation %d) of at most %d prompt tokens each",
 		oc.Plan.Judgements(), oc.Plan.Search, oc.Plan.Random, oc.Plan.Evaluation, oc.Plan.TokensPerJudgement)
-	if j.Price != (scorer.Price{}) {
-		fmt.Fprintf(log, ": at most %.4f USD at the given prices, before the cache (an estimate; the provider's bill is the record)", oc.Forecast)
+	if oc.Pricing.Known() {
+		oc.Forecast = oc.Plan.Cost(oc.Pricing.Price)
+		fmt.Fprintf(log, ": at most %.4f USD at %g / %g USD per million input / output tokens, before the cache (an estimate; the provider's bill is the record)",
+			oc.Forecast, oc.Pricing.Price.InputPerMillion, oc.Pricing.Price.OutputPerMillion)
+	} else {
+		fmt.Fprint(log, "; no price, so no USD forecast")
 	}
 	fmt.Fprintln(log)
-	if t.SpendCapUSD > 0 && oc.Forecast > t.SpendCapUSD && !j.OverCap && !j.Replay {
-		return oc, fmt.Errorf("search: the forecast %.4f USD is over the task's spend_cap_usd %.4f: lower steps, prompts_per_step or examples_per_step, or start it over the cap (the cache usually makes the real spend lower; the search still stops at the cap)", oc.Forecast, t.SpendCapUSD)
+	if !j.Replay { // a replay makes no upstream call: it spends nothing
+		note, err := CheckCap(t.SpendCapUSD, oc.Forecast, oc.Pricing, j.OverCap)
+		if err != nil {
+			return oc, err
+		}
+		if note != "" {
+			fmt.Fprintln(log, note)
+		}
 	}
 	if err := os.MkdirAll(j.Out, 0o755); err != nil {
 		return oc, err
 	}
 	start := time.Now()
 	res, err := Run(ctx, Options{
-		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD,
+		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD, Backbone: j.Backbone,
 		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress,
 		Checkpoint: func(st *State) error {
 			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return WriteState(w, st) })

@@ -38,16 +38,19 @@ func WriteHistory(w io.Writer, h []Point) error {
 	return cw.Error()
 }
 
-// Table renders the contenders as a text table.
+// Table renders the contenders as a text table. CALLS and SPENT USD are
+// every scoring call of the method, finding its prompt and evaluating it,
+// and what the proxy reported for them.
 func Table(r Results) string {
 	var b strings.Builder
-	fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11s\n", "METHOD", "PROMPT", "TRAIN", "DEV", "TEST", "JUDGEMENTS")
+	fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11s %6s %10s\n", "METHOD", "PROMPT", "TRAIN", "DEV", "TEST", "JUDGEMENTS", "CALLS", "SPENT USD")
 	for _, c := range r.Ranking {
 		test := "-"
 		if c.TestAcc >= 0 {
 			test = pct(c.TestAcc)
 		}
-		fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11d\n", c.Method, strconv.Quote(c.Prompt), pct(c.TrainAcc), pct(c.DevAcc), test, c.Calls)
+		calls, usd := c.Spend()
+		fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11d %6d %10.6f\n", c.Method, strconv.Quote(c.Prompt), pct(c.TrainAcc), pct(c.DevAcc), test, c.Calls, calls, usd)
 	}
 	return b.String()
 }
@@ -65,6 +68,9 @@ Seed %d, %d steps. Judgements are prompt × example scorings; the RL search and
 the random baseline spend the same number. "rl" is the policy's greedy prompt
 at the end; "rl-best" (when it differs) the prompt the policy sampled with the
 best reward on its step's batch, picked the way random search picks its own.
+Calls and spent are all of a method's scoring calls (finding its prompt, then
+scoring it on train, dev and test) and what the proxy reported for them; rl
+and rl-best come from one search, so its calls are in both rows.
 
 %s
 ## Through the proxy

@@ -24,7 +24,8 @@ func TestPromptText(t *testing.T) {
 
 func TestHistoryAndResultsAreDeterministic(t *testing.T) {
 	r := Results{Task: "orchard", Seed: 3, Steps: 2,
-		Ranking: []Contender{{Method: "rl", Prompt: "the big", TrainAcc: 0.5, DevAcc: 0.25, TestAcc: -1, Calls: 8}},
+		Ranking: []Contender{{Method: "rl", Prompt: "the big", TrainAcc: 0.5, DevAcc: 0.25, TestAcc: -1, Calls: 8,
+			SearchCalls: 3, SearchSpendUSD: 0.0015, EvalCalls: 2, EvalSpendUSD: 0.00025}},
 		History: []Point{{Step: 1, MeanReward: 1.5, TrainAcc: 0.5, DevAcc: -1}, {Step: 2, MeanReward: -2, TrainAcc: 0.25, DevAcc: 0.75, Prompt: "the big"}}}
 	var h bytes.Buffer
 	if err := WriteHistory(&h, r.History); err != nil {
@@ -45,7 +46,17 @@ func TestHistoryAndResultsAreDeterministic(t *testing.T) {
 	if a.String() != b.String() || strings.Contains(a.String(), "99") {
 		t.Errorf("results depend on run figures:\n%s", b.String())
 	}
-	if tab := Table(r); !strings.Contains(tab, `"the big"`) || !strings.Contains(tab, "25.0%") {
-		t.Errorf("table:\n%s", tab)
+	// The row's calls and spend are its search's and its evaluation's
+	// added up: 3 + 2 calls, 0.0015 + 0.00025 USD (made-up amounts).
+	tab := Table(r)
+	for _, want := range []string{`"the big"`, "25.0%", "CALLS", "SPENT USD", " 5 ", "0.001750"} {
+		if !strings.Contains(tab, want) {
+			t.Errorf("table lacks %q:\n%s", want, tab)
+		}
+	}
+	for _, want := range []string{`"search_calls": 3`, `"search_spend_usd": 0.0015`, `"eval_calls": 2`, `"eval_spend_usd": 0.00025`} {
+		if !strings.Contains(a.String(), want) {
+			t.Errorf("results.json lacks %s:\n%s", want, a.String())
+		}
 	}
 }

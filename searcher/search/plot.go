@@ -35,7 +35,7 @@ const (
 
 // WritePlot draws the learning curve: the step's mean reward on top, the
 // greedy prompt's dev accuracy below, with the baselines' dev accuracies
-// as dashed lines.
+// as dashed lines; each panel has a title.
 func WritePlot(w io.Writer, r Results, f Format) error {
 	reward := plot.New()
 	reward.Title.Text = fmt.Sprintf("%s: prompt search (seed %d)", r.Task, r.Seed)
@@ -59,6 +59,7 @@ func WritePlot(w io.Writer, r Results, f Format) error {
 	reward.Add(line, plotter.NewGrid())
 
 	acc := plot.New()
+	acc.Title.Text = "dev accuracy: the search's greedy prompt and the baselines"
 	acc.Y.Label.Text = "dev accuracy (%)"
 	acc.X.Label.Text = "step"
 	acc.Y.Min, acc.Y.Max = 0, 100

@@ -78,6 +78,9 @@ type Options struct {
 	// SpendCapUSD, when positive, stops the search once the proxy has
 	// reported that much spent on its calls (ErrSpendCap).
 	SpendCapUSD float64
+	// Backbone identifies the policy's backbone model file in
+	// results.json (see IdentifyBackbone).
+	Backbone Backbone
 }
 
 // ErrSpendCap stops a search whose calls reached its spend cap.
@@ -85,13 +88,44 @@ var ErrSpendCap = errors.New("search: the spend cap is reached")
 
 // Progress is the state of a search after a step.
 type Progress struct {
-	Step, Steps  int
+	Step, Steps int
+	// ResumedAfter is the checkpoint's step this run went on from; 0 for
+	// a search that started at step 1.
+	ResumedAfter int
 	MeanReward   float64
 	TrainAcc     float64 // mean accuracy of the step's sampled prompts
 	DevAcc       float64 // of the latest greedy prompt; -1 before the first evaluation
 	Prompt       string  // the latest greedy prompt
+	// Best is the best greedy prompt so far by dev accuracy (see BestByDev).
+	Best         DevBest
 	Calls        scorer.Totals
 	FlooredShare float64
+}
+
+// DevBest is the greedy prompt with the highest dev accuracy of those
+// evaluated so far (the earliest on ties), the step it was evaluated at and
+// that accuracy; Step 0 and DevAcc −1 before the first evaluation.
+type DevBest struct {
+	Prompt string
+	Step   int
+	DevAcc float64
+}
+
+// BestByDev finds the best greedy prompt by dev accuracy in a history.
+func BestByDev(h []Point) DevBest {
+	b := DevBest{DevAcc: -1}
+	for _, p := range h {
+		b = b.note(p)
+	}
+	return b
+}
+
+// note keeps p's greedy prompt if it was evaluated and beats b.
+func (b DevBest) note(p Point) DevBest {
+	if p.DevAcc >= 0 && p.DevAcc > b.DevAcc {
+		return DevBest{Prompt: p.Prompt, Step: p.Step, DevAcc: p.DevAcc}
+	}
+	return b
 }
 
 // Point is one line of the history.
@@ -114,10 +148,28 @@ type Contender struct {
 	// Calls is how many prompt×example judgements the method spent
 	// finding its prompt (the evaluation on train/dev/test not counted).
 	Calls int `json:"search_judgements"`
+	// SearchCalls are the scoring calls the method made finding its prompt
+	// (rl and rl-best share one search, the dev evaluations along its
+	// curve included; none for the empty and manual prompts) and
+	// SearchSpendUSD what the proxy reported for them.
+	SearchCalls    int     `json:"search_calls"`
+	SearchSpendUSD float64 `json:"search_spend_usd"`
+	// EvalCalls and EvalSpendUSD are the same for scoring the prompt on
+	// the train, dev and test sets.
+	EvalCalls    int     `json:"eval_calls"`
+	EvalSpendUSD float64 `json:"eval_spend_usd"`
+}
+
+// Spend is what the proxy reported for all of the contender's calls,
+// finding and evaluating its prompt.
+func (c Contender) Spend() (calls int, usd float64) {
+	return c.SearchCalls + c.EvalCalls, c.SearchSpendUSD + c.EvalSpendUSD
 }
 
 // Results are a finished search. They hold nothing that differs between a
-// run and its replay (no times, no spend, no cache figures).
+// run and its replay: no times, no cache figures, and the contenders' spend
+// is each call's cost to the run (scorer.Call.RunCostUSD), which a replay
+// reads from the recording.
 type Results struct {
 	Task     string        `json:"task"`
 	Seed     int64         `json:"seed"`
@@ -153,6 +205,10 @@ type Settings struct {
 type Versions struct {
 	Format int    `json:"results_format"`
 	Stint  string `json:"stint"` // the module version or VCS revision of the binary
+	Go     string `json:"go"`    // the Go release that built it (runtime.Version)
+	// Backbone is the policy's backbone model file; zero when not given
+	// (Options.Backbone).
+	Backbone Backbone `json:"backbone"`
 }
 
 // Run searches, then scores the baselines and every contender on the dev
@@ -171,7 +227,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	}
 	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
 	r.rng = rand.New(r.pcg)
-	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions()}
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions(o.Backbone)}
 	devAcc, greedyText := -1.0, ""
 	first := 1
 	if s := o.Resume; s != nil {
@@ -180,6 +236,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		}
 		devAcc, greedyText, first = s.DevAcc, s.GreedyText, s.Step+1
 	}
+	best := BestByDev(res.History)
 	every := o.CheckpointEvery
 	if every <= 0 {
 		every = max(1, t.Steps/10)
@@ -216,6 +273,7 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			pt.DevAcc, pt.Prompt = devAcc, greedyText
 		}
 		res.History = append(res.History, pt)
+		best = best.note(pt)
 		stop := o.StopAfter > 0 && step == o.StopAfter && step < t.Steps
 		if o.Checkpoint != nil && (step%every == 0 || stop) {
 			st, err := r.snapshot(step, &res, devAcc, greedyText)
@@ -233,45 +291,63 @@ func Run(ctx context.Context, o Options) (Results, error) {
 			return res, fmt.Errorf("%w: %.6f USD of %.6f after step %d (as the proxy reported)", ErrSpendCap, spent, o.SpendCapUSD, step)
 		}
 		if o.Progress != nil {
-			o.Progress(Progress{Step: step, Steps: t.Steps, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
-				Prompt: greedyText, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
+			o.Progress(Progress{Step: step, Steps: t.Steps, ResumedAfter: first - 1, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
+				Prompt: greedyText, Best: best, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
 		}
 	}
-	searchCalls := t.Steps * t.PromptsPerStep * t.ExamplesPerStep
-	contenders := []Contender{{Method: "rl", Prompt: greedyText, Calls: searchCalls}}
+	searchCalls := searchJudgements(t)
+	rlSpend := scorer.Sum(r.calls)
+	rl := Contender{Method: "rl", Prompt: greedyText, Calls: searchCalls, SearchCalls: rlSpend.Calls, SearchSpendUSD: rlSpend.RunCostUSD}
+	contenders := []Contender{rl}
 	if r.bestText != greedyText {
-		contenders = append(contenders, Contender{Method: "rl-best", Prompt: r.bestText, Calls: searchCalls})
+		best := rl
+		best.Method, best.Prompt = "rl-best", r.bestText
+		contenders = append(contenders, best)
 	}
 	contenders = append(contenders, Contender{Method: "empty", Prompt: ""})
 	for _, m := range t.ManualPrompts {
 		contenders = append(contenders, Contender{Method: "manual", Prompt: m})
 	}
+	mark := len(r.calls)
 	random, err := r.randomSearch(ctx, searchCalls)
 	if err != nil {
 		return res, err
 	}
+	randomSpend := scorer.Sum(r.calls[mark:])
+	random.SearchCalls, random.SearchSpendUSD = randomSpend.Calls, randomSpend.RunCostUSD
 	contenders = append(contenders, random)
 	for i := range contenders {
 		c := &contenders[i]
-		var err error
-		if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, t.Train); err != nil {
+		mark := len(r.calls)
+		if err := r.evaluate(ctx, c); err != nil {
 			return res, err
 		}
-		if c.DevAcc, err = r.accuracy(ctx, c.Prompt, t.Dev); err != nil {
-			return res, err
-		}
-		c.TestAcc = -1
-		if len(t.Test) > 0 {
-			if c.TestAcc, err = r.accuracy(ctx, c.Prompt, t.Test); err != nil {
-				return res, err
-			}
-		}
+		ev := scorer.Sum(r.calls[mark:])
+		c.EvalCalls, c.EvalSpendUSD = ev.Calls, ev.RunCostUSD
 	}
 	res.Ranking = contenders
 	res.Best = contenders[0]
 	res.Floored, res.Lookups = r.floored, r.lookups
 	res.Spending = scorer.Sum(r.calls)
 	return res, nil
+}
+
+// evaluate scores c's prompt on the train, dev and test sets.
+func (r *runner) evaluate(ctx context.Context, c *Contender) error {
+	var err error
+	if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, r.t.Train); err != nil {
+		return err
+	}
+	if c.DevAcc, err = r.accuracy(ctx, c.Prompt, r.t.Dev); err != nil {
+		return err
+	}
+	c.TestAcc = -1
+	if len(r.t.Test) > 0 {
+		if c.TestAcc, err = r.accuracy(ctx, c.Prompt, r.t.Test); err != nil {
+			return err
+		}
+	}
+	return nil
 }
 
 // runner is one search's state beyond the policy.
@@ -302,7 +378,7 @@ func (r *runner) noteBest(texts []string, raw [][]float64) {
 // trainBatch draws the step's training examples, without repeats when the
 // set is large enough.
 func (r *runner) trainBatch() []task.Example {
-	n := min(r.t.ExamplesPerStep, len(r.t.Train))
+	n := examplesPerStep(r.t)
 	idx := r.rng.Perm(len(r.t.Train))[:n]
 	slices.Sort(idx) // a stable order for the batched calls
 	out := make([]task.Example, n)
@@ -360,7 +436,7 @@ func (r *runner) accuracy(ctx context.Context, prompt string, examples []task.Ex
 // batch, spending the same number of judgements as the search.
 func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error) {
 	actions := r.o.Vocab.Actions()
-	perPrompt := min(r.t.ExamplesPerStep, len(r.t.Train))
+	perPrompt := examplesPerStep(r.t)
 	best := Contender{Method: "random"}
 	bestScore := 0.0
 	spent := 0

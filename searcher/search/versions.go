@@ -2,6 +2,13 @@ package search
 
 import (
 	"cmp"
+	"crypto/sha256"
+	"encoding/hex"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"runtime"
 	"runtime/debug"
 
 	"github.com/stintlab/stint/searcher/policy"
@@ -9,7 +16,7 @@ import (
 )
 
 // resultsFormat is the layout version of results.json.
-const resultsFormat = 2
+const resultsFormat = 4
 
 // configured is a policy that reports its settings with defaults filled
 // in; *policy.Trainer is one.
@@ -39,10 +46,11 @@ func settingsOf(t *task.Task, actions int, pol Policy) Settings {
 	return s
 }
 
-// versions reads the binary's build information: its module version, or
-// its VCS revision for a development build.
-func versions() Versions {
-	v := Versions{Format: resultsFormat, Stint: "unknown"}
+// versions reads the binary's build information (its module version, or
+// its VCS revision for a development build, and the Go release) and
+// records the backbone.
+func versions(b Backbone) Versions {
+	v := Versions{Format: resultsFormat, Stint: "unknown", Go: runtime.Version(), Backbone: b}
 	info, ok := debug.ReadBuildInfo()
 	if !ok {
 		return v
@@ -54,4 +62,27 @@ func versions() Versions {
 		}
 	}
 	return v
+}
+
+// Backbone identifies a model file: its name, size and SHA-256.
+type Backbone struct {
+	File   string `json:"file"` // the file's base name
+	Bytes  int64  `json:"bytes"`
+	SHA256 string `json:"sha256"` // hex
+}
+
+// IdentifyBackbone reads the model file at path once to name it. Do it
+// once per process (or per loaded model), not per search step.
+func IdentifyBackbone(path string) (Backbone, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return Backbone{}, fmt.Errorf("search: identify the backbone: %w", err)
+	}
+	defer f.Close()
+	h := sha256.New()
+	n, err := io.Copy(h, f)
+	if err != nil {
+		return Backbone{}, fmt.Errorf("search: identify the backbone %s: %w", path, err)
+	}
+	return Backbone{File: filepath.Base(path), Bytes: n, SHA256: hex.EncodeToString(h.Sum(nil))}, nil
 }

@@ -1,9 +1,16 @@
 package search
 
 import (
+	"bytes"
 	"context"
 	"io"
+	"path/filepath"
+	"runtime"
+	"strings"
 	"testing"
+
+	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 
 	"github.com/stintlab/stint/searcher/policy"
 	"github.com/stintlab/stint/searcher/task"
@@ -49,4 +56,35 @@ func TestSettingsRecordTheLearnerInForce(t *testing.T) {
 		})
 	}
 	var _ configured = (*policy.Trainer)(nil) // the real learner reports its settings
+}
+
+// TestVersionsNameTheBuildAndTheBackbone: results.json says which Go
+// release built the binary and which model file the backbone was. The
+// file's size and SHA-256 are those recorded for stories260K.gguf in the
+// shared models folder's MODEL-SOURCE.md (and localmodel.ModelSHA256).
+func TestVersionsNameTheBuildAndTheBackbone(t *testing.T) {
+	b, err := IdentifyBackbone(modeltest.Path(t))
+	if err != nil {
+		t.Fatal(err)
+	}
+	want := Backbone{File: "stories260K.gguf", Bytes: 1185376, SHA256: localmodel.ModelSHA256}
+	if b != want {
+		t.Errorf("backbone %+v, want %+v", b, want)
+	}
+	v := versions(b)
+	if v.Go != runtime.Version() || v.Backbone != want || v.Format != resultsFormat || v.Stint == "" {
+		t.Errorf("versions %+v, want Go %s and the backbone", v, runtime.Version())
+	}
+	var out bytes.Buffer
+	if err := WriteResults(&out, Results{Versions: v}); err != nil {
+		t.Fatal(err)
+	}
+	for _, key := range []string{`"go": "` + runtime.Version() + `"`, `"sha256": "` + want.SHA256 + `"`, `"bytes": 1185376`, `"file": "stories260K.gguf"`} {
+		if !strings.Contains(out.String(), key) {
+			t.Errorf("results.json lacks %s:\n%s", key, out.String())
+		}
+	}
+	if _, err := IdentifyBackbone(filepath.Join(t.TempDir(), "absent.gguf")); err == nil {
+		t.Error("identified a missing file")
+	}
 }

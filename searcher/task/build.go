@@ -2,6 +2,7 @@ package task
 
 import (
 	"fmt"
+	"math"
 	"os"
 	"path/filepath"
 	"strings"
@@ -63,6 +64,7 @@ func (b *builder) build(r *rawTask) *Task {
 	if t.SpendCapUSD < 0 {
 		b.fail("spend_cap_usd", ErrInvalid, "must be >= 0 (0 for no cap of the search's own), got %v", t.SpendCapUSD)
 	}
+	t.Prices = b.prices(r.Prices)
 	for i, p := range t.ManualPrompts {
 		if strings.TrimSpace(p) == "" {
 			b.fail(fmt.Sprintf("manual_prompts[%d]", i), ErrInvalid, "a manual prompt must not be empty")
@@ -89,6 +91,32 @@ func (b *builder) build(r *rawTask) *Task {
 	t.Labels = b.labels(&r.Labels)
 	b.data(t, r.Data)
 	return t
+}
+
+// prices reads the prices section: absent is nil; present, it needs both
+// prices, each a finite number >= 0.
+func (b *builder) prices(r *rawPrices) *Prices {
+	if r == nil {
+		if _, present := b.ix.byPath["prices"]; present {
+			b.fail("prices", ErrMissing, "give input_per_million and output_per_million (USD per million tokens), or leave prices out")
+		}
+		return nil
+	}
+	price := func(field string, v *float64) float64 {
+		switch {
+		case v == nil:
+			b.fail(field, ErrMissing, "the USD price per million tokens is required with prices")
+			return 0
+		case !(*v >= 0) || math.IsInf(*v, 1):
+			b.fail(field, ErrInvalid, "must be a finite USD amount >= 0, got %v", *v)
+			return 0
+		}
+		return *v
+	}
+	return &Prices{
+		InputPerMillion:  price("prices.input_per_million", r.InputPerMillion),
+		OutputPerMillion: price("prices.output_per_million", r.OutputPerMillion),
+	}
 }
 
 func (b *builder) policy(r *rawPolicy) PolicySettings {

@@ -44,6 +44,17 @@ examples_per_step: 16             # training examples each prompt is scored on p
 seed: 7
 concurrency: 4                    # scoring calls in flight
 spend_cap_usd: 2.50               # stop once the proxy reports this much spent; 0 for no cap of the search's own
+# Prices for the cost forecast printed before the search starts, USD per
+# million tokens. Example prices, verify before use: these are invented for
+# the local demo model; put your provider's current prices for your model.
+# The forecast is an estimate (it ignores the cache); the spend the search
+# stops at is what the proxy reports, and the provider's bill is the record.
+# --input-price and --output-price override them. With a spend cap and no
+# prices the search refuses to start (unless --over-cap).
+prices:
+  input_per_million: 0.50
+  output_per_million: 1.50
+
 top_logprobs: 20                  # next-token log-probabilities asked for; hosted chat APIs cap this at about 20
 
 # Hand-written prompts the search is compared with.

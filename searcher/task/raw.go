@@ -18,6 +18,7 @@ type rawTask struct {
 	Seed            int64      `yaml:"seed"`
 	Concurrency     *int       `yaml:"concurrency"`
 	SpendCapUSD     float64    `yaml:"spend_cap_usd"`
+	Prices          *rawPrices `yaml:"prices"`
 	TopLogprobs     *int       `yaml:"top_logprobs"`
 	ManualPrompts   []string   `yaml:"manual_prompts"`
 	Reward          *rawReward `yaml:"reward"`
@@ -52,6 +53,11 @@ type rawAllow struct {
 	LettersOnly bool     `yaml:"letters_only"`
 	MinChars    *int     `yaml:"min_chars"`
 	Exclude     []string `yaml:"exclude"`
+}
+
+type rawPrices struct {
+	InputPerMillion  *float64 `yaml:"input_per_million"`
+	OutputPerMillion *float64 `yaml:"output_per_million"`
 }
 
 type rawPolicy struct {

@@ -72,6 +72,9 @@ type Task struct {
 	// reported by the proxy's Stint-Cost-Usd); 0 means no cap of the
 	// search's own (the proxy's budgets still apply).
 	SpendCapUSD float64
+	// Prices price the cost forecast; nil when the file has no prices
+	// section (a search's --input-price and --output-price override it).
+	Prices *Prices
 	// TopLogprobs is how many next-token log-probabilities to ask for.
 	TopLogprobs int
 	// ManualPrompts are hand-written prompts to compare the search against.
@@ -85,6 +88,14 @@ type Task struct {
 	// AutoFactor is set when the file leaves reward.scale.factor out: the
 	// search then scales rewards by AutoRewardFactor of its action count.
 	AutoFactor bool
+}
+
+// Prices are a model's prices in USD per million tokens. They only price
+// the forecast a search prints before it starts: an estimate. The spend a
+// search stops at is what the proxy reports, and the provider's bill is
+// the record.
+type Prices struct {
+	InputPerMillion, OutputPerMillion float64
 }
 
 // PolicySettings tune the soft Q-learning policy.

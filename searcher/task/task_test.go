@@ -29,6 +29,9 @@ func TestExampleFileParses(t *testing.T) {
 	if !task.AllowList.WordInitial || task.AllowList.MinChars != 2 || len(task.ManualPrompts) != 2 {
 		t.Errorf("allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
 	}
+	if task.Prices == nil || *task.Prices != (Prices{InputPerMillion: 0.5, OutputPerMillion: 1.5}) {
+		t.Errorf("prices = %+v, want the example's 0.50 / 1.50 USD per million", task.Prices)
+	}
 	if want := (PolicySettings{LearningRate: 0.003, TopK: 256, TargetRate: 0.001}); task.Policy != want {
 		t.Errorf("policy = %+v, want %+v", task.Policy, want)
 	}
@@ -75,6 +78,9 @@ func TestDefaults(t *testing.T) {
 			t.Errorf("default %d = %d, want %d", i, got[i], want[i])
 		}
 	}
+	if task.Prices != nil {
+		t.Errorf("prices = %+v, want nil when the file has none", task.Prices)
+	}
 	if task.Endpoint != Completions || task.Test != nil || len(task.Train) != 2 {
 		t.Errorf("endpoint %q, test %v, train %d", task.Endpoint, task.Test, len(task.Train))
 	}
@@ -100,6 +106,11 @@ func TestCSVData(t *testing.T) {
 func TestParseErrors(t *testing.T) {
 	tok := localTokenizer(t)
 	dir := writeFiles(t, minimalData)
+	// Source: the task-file schema is this project's own (ExampleFile);
+	// fields and lines are hand-counted on minimal (9 lines, so appended
+	// keys are on line 10), and the bad-file cases (missing labels,
+	// a verbalizer that is not one token, an empty dataset, a template
+	// without {prompt}) are among them.
 	tests := []struct {
 		name      string
 		edit      func(string) string
@@ -146,6 +157,15 @@ func TestParseErrors(t *testing.T) {
 		{"learning rate too big", func(s string) string { return s + "policy:\n  learning_rate: 2\n" }, false, ErrInvalid, "policy.learning_rate", 11},
 		{"zero top_k", func(s string) string { return s + "policy:\n  top_k: 0\n" }, false, ErrInvalid, "policy.top_k", 11},
 		{"zero target rate", func(s string) string { return s + "policy:\n  target_rate: 0\n" }, false, ErrInvalid, "policy.target_rate", 11},
+		{"prices without output", func(s string) string { return s + "prices:\n  input_per_million: 0.5\n" }, false, ErrMissing, "prices.output_per_million", 10},
+		{"negative price", func(s string) string {
+			return s + "prices:\n  input_per_million: -1\n  output_per_million: 1\n"
+		}, false, ErrInvalid, "prices.input_per_million", 11},
+		{"infinite price", func(s string) string {
+			return s + "prices:\n  input_per_million: 1\n  output_per_million: .inf\n"
+		}, false, ErrInvalid, "prices.output_per_million", 12},
+		{"empty prices", func(s string) string { return s + "prices:\n" }, false, ErrMissing, "prices", 10},
+		{"unknown prices key", func(s string) string { return s + "prices:\n  input: 1\n" }, false, ErrUnknownField, "prices.input", 11},
 		{"unknown policy key", func(s string) string { return s + "policy:\n  temperature: 1\n" }, false, ErrUnknownField, "policy.temperature", 11},
 		{"empty file", func(string) string { return "" }, false, ErrMissing, "(file)", 0},
 	}
