@@ -69,7 +69,7 @@ Run it from the repository root (the demo data is in testdata/search).`,
 func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if errors.Is(err, localmodel.ErrModelNotFound) {
-		return fmt.Errorf("%s", howToGetTheModel(err, f.model, os.Getenv))
+		return fmt.Errorf("the demo needs the model file %s (%w).\n%s", localmodel.ModelFileName, err, howToGetTheModel(f.model, os.Getenv))
 	}
 	if err != nil {
 		return err
@@ -169,12 +169,12 @@ func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since tim
 	return nil
 }
 
-// howToGetTheModel says how to get the model file the demo did not find
-// (notFound says why), for the way the demo was run: with --model, with
+// howToGetTheModel says how to get the model file the demo did not find,
+// for the way the demo was run: with --model, with
 // $STINT_MODEL, or with neither (the cached download).
-func howToGetTheModel(notFound error, flagPath string, getenv func(string) string) string {
+func howToGetTheModel(flagPath string, getenv func(string) string) string {
 	var b strings.Builder
-	fmt.Fprintf(&b, "the demo needs the model file %s (%v).\nGet it one of these ways:\n", localmodel.ModelFileName, notFound)
+	b.WriteString("Get it one of these ways:\n")
 	target, from, err := modelTarget(flagPath, getenv)
 	if err != nil {
 		fmt.Fprintf(&b, "  - there is nowhere to download it to (%v): pass --model PATH\n", err)
