@@ -16,7 +16,7 @@ import (
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/search"
-	"github.com/stintlab/stint/searcher/task"
+	"github.com/stintlab/stint/searcher/task/tasktest"
 )
 
 // upstreamCalls sums stint_upstream_calls_total from a proxy's /metrics.
@@ -40,23 +40,8 @@ func upstreamCalls(t *testing.T, c *child) int {
 // of its datasets.
 func shortTask(t *testing.T) string {
 	t.Helper()
-	dir := t.TempDir()
-	for _, name := range []string{"reading-corner-train.jsonl", "reading-corner-dev.jsonl", "reading-corner-test.jsonl"} {
-		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
-		if err != nil {
-			t.Fatal(err)
-		}
-		if err := os.WriteFile(filepath.Join(dir, name), b, 0o600); err != nil {
-			t.Fatal(err)
-		}
-	}
-	text := strings.NewReplacer("steps: 200", "steps: 4", "prompts_per_step: 8", "prompts_per_step: 4",
-		"examples_per_step: 16", "examples_per_step: 6").Replace(task.ExampleFile)
-	path := filepath.Join(dir, "task.yaml")
-	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	return path
+	return tasktest.WriteExample(t, "steps: 200", "steps: 4", "prompts_per_step: 8", "prompts_per_step: 4",
+		"examples_per_step: 16", "examples_per_step: 6")
 }
 
 // TestSearchReplaysToTheSameResults runs a short search through a real

@@ -17,7 +17,7 @@ import (
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/jobs"
 	"github.com/stintlab/stint/searcher/search"
-	"github.com/stintlab/stint/searcher/task"
+	"github.com/stintlab/stint/searcher/task/tasktest"
 )
 
 // rig is a model server on the completions wire format standing where the
@@ -36,22 +36,8 @@ func newRig(t *testing.T, steps int) rig {
 	}
 	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	t.Cleanup(srv.Close)
-	dir := t.TempDir()
-	for _, name := range []string{"reading-corner-train.jsonl", "reading-corner-dev.jsonl", "reading-corner-test.jsonl"} {
-		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
-		if err != nil {
-			t.Fatal(err)
-		}
-		if err := os.WriteFile(filepath.Join(dir, name), b, 0o600); err != nil {
-			t.Fatal(err)
-		}
-	}
-	text := strings.NewReplacer("steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 8", "prompts_per_step: 4",
-		"examples_per_step: 16", "examples_per_step: 4").Replace(task.ExampleFile)
-	path := filepath.Join(dir, "task.yaml")
-	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
-		t.Fatal(err)
-	}
+	path := tasktest.WriteExample(t, "steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 8", "prompts_per_step: 4",
+		"examples_per_step: 16", "examples_per_step: 4")
 	return rig{model: m, api: srv.URL + "/v1", task: path}
 }
 

@@ -4,15 +4,12 @@ import (
 	"context"
 	"io"
 	"net/http/httptest"
-	"os"
-	"path/filepath"
-	"strings"
 	"testing"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/search"
-	"github.com/stintlab/stint/searcher/task"
+	"github.com/stintlab/stint/searcher/task/tasktest"
 )
 
 // rig is the real model, loaded once per test, and a model server on the
@@ -34,34 +31,6 @@ func newRig(t *testing.T) rig {
 	return rig{model: m, api: srv.URL + "/v1"}
 }
 
-// writeTask writes the example task with edits (old → new pairs) next to
-// copies of its datasets.
-func writeTask(t *testing.T, edits ...string) string {
-	t.Helper()
-	dir := t.TempDir()
-	for _, name := range []string{"reading-corner-train.jsonl", "reading-corner-dev.jsonl", "reading-corner-test.jsonl"} {
-		b, err := os.ReadFile(filepath.Join("..", "..", "testdata", "search", name))
-		if err != nil {
-			t.Fatal(err)
-		}
-		if err := os.WriteFile(filepath.Join(dir, name), b, 0o600); err != nil {
-			t.Fatal(err)
-		}
-	}
-	text := task.ExampleFile
-	for i := 0; i+1 < len(edits); i += 2 {
-		if !strings.Contains(text, edits[i]) {
-			t.Fatalf("the example task has no %q", edits[i])
-		}
-		text = strings.Replace(text, edits[i], edits[i+1], 1)
-	}
-	path := filepath.Join(dir, "task.yaml")
-	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
-		t.Fatal(err)
-	}
-	return path
-}
-
 // TestRandomSearchGetsTheSearchsJudgementsWithASmallTrainSet: with
 // examples_per_step above the train set's size each prompt is judged on
 // the whole set, and random search is given exactly the judgements the RL
@@ -69,7 +38,7 @@ func writeTask(t *testing.T, edits ...string) string {
 // prompts × 40 training sentences (reading-corner-train.jsonl) = 160.
 func TestRandomSearchGetsTheSearchsJudgementsWithASmallTrainSet(t *testing.T) {
 	r := newRig(t)
-	path := writeTask(t, "steps: 200", "steps: 2", "prompts_per_step: 8", "prompts_per_step: 2", "examples_per_step: 16", "examples_per_step: 60")
+	path := tasktest.WriteExample(t, "steps: 200", "steps: 2", "prompts_per_step: 8", "prompts_per_step: 2", "examples_per_step: 16", "examples_per_step: 60")
 	oc, err := search.RunJob(context.Background(), r.model, search.Job{TaskPath: path, Proxy: r.api, Out: t.TempDir()}, io.Discard, nil)
 	if err != nil {
 		t.Fatal(err)
