@@ -24,7 +24,9 @@ func newRunRig(t *testing.T) *rig {
 	return r
 }
 
-func newRunRigDB(t *testing.T) (*rig, *bbolt.DB) {
+// newBoltJournal opens a run journal in a fresh bbolt file, closed when
+// the test ends.
+func newBoltJournal(t *testing.T) (*bbolt.DB, *runs.BoltJournal) {
 	t.Helper()
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "runs.db"), 0o600, nil)
 	if err != nil {
@@ -35,6 +37,13 @@ func newRunRigDB(t *testing.T) (*rig, *bbolt.DB) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	return db, j
+}
+
+// newRunRigDB is newRunRig that also returns the journal's bbolt file.
+func newRunRigDB(t *testing.T) (*rig, *bbolt.DB) {
+	t.Helper()
+	db, j := newBoltJournal(t)
 	r := newRig(t, withTeams(teamWithKey("lab", "lab-key"), teamWithKey("kiln", "kiln-key")), func(o *proxy.Options) { o.Runs = j })
 	r.key = "lab-key"
 	return r, db
@@ -115,15 +124,7 @@ func TestRunReplaysBitForBitWithoutUpstream(t *testing.T) {
 // recorded, so a client that totals a run's spend gets the same figure
 // from the recording and its replay.
 func TestReplayCarriesTheRecordedCost(t *testing.T) {
-	db, err := bbolt.Open(filepath.Join(t.TempDir(), "runs.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = db.Close() })
-	j, err := runs.NewBolt(db, runs.BoltOptions{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	_, j := newBoltJournal(t)
 	r := newSpendRigWith(t, guard.TeamPolicy{}, func(o *proxy.Options) { o.Runs = j })
 	calls := []map[string]any{greedy("the cost of a bushel"), greedy("the cost of a bushel"), greedy([]string{"crate one", "crate two"})}
 	var charged []int64
