@@ -316,9 +316,7 @@ func (m *Manager) run(ctx context.Context, id string) {
 		st.State = Done
 		res := oc.Results
 		st.Calls, st.CacheShare, st.SpentUSD = res.Spending.Calls, res.Spending.CacheShare(), res.Spending.CostUSD
-		if res.Lookups > 0 {
-			st.FlooredShare = float64(res.Floored) / float64(res.Lookups)
-		}
+		st.FlooredShare = res.FlooredShare()
 	}
 	st.Updated = m.opts.Now().UTC()
 	m.mu.Unlock()

@@ -184,6 +184,10 @@ type Results struct {
 	Spending scorer.Totals `json:"-"`
 }
 
+// FlooredShare is the share of verbalizer look-ups that gave the
+// verbalizer the floor (0 with no look-ups).
+func (r Results) FlooredShare() float64 { return share(r.Floored, r.Lookups) }
+
 // Settings are the task settings a result depends on.
 type Settings struct {
 	Model           string            `json:"model"`
