@@ -2,7 +2,8 @@
 // and as multi-master Redis Clusters, for the tests of packages outside the
 // cache tree (the proxy's, the command's) that run the cache on Redis. It
 // exposes the cache tree's internal helper; budget/redistest is the budget
-// tree's counterpart (standalone and one-node clusters).
+// tree's copy of it (the layout lets neither tree import the other), kept
+// identical by its TestCopiesAgree.
 package redisstoretest
 
 import (
