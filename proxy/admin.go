@@ -52,7 +52,7 @@ func (p *Proxy) admin(h func(http.ResponseWriter, *http.Request, SpendAdmin)) ht
 		}
 		key, ok := bearer(r.Header.Get("Authorization"))
 		if !ok {
-			writeError(w, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "missing_key", message: "missing bearer key: send Authorization: Bearer <admin key>"})
+			refuseConnection(w, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "missing_key", message: "missing bearer key: send Authorization: Bearer <admin key>"})
 			return
 		}
 		sum := sha256.Sum256([]byte(key))
@@ -61,7 +61,7 @@ func (p *Proxy) admin(h func(http.ResponseWriter, *http.Request, SpendAdmin)) ht
 			match |= subtle.ConstantTimeCompare(sum[:], h[:])
 		}
 		if match != 1 {
-			writeError(w, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "invalid_key", message: "not an admin key"})
+			refuseConnection(w, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "invalid_key", message: "not an admin key"})
 			return
 		}
 		sa, ok := p.spend.(SpendAdmin)

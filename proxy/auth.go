@@ -20,6 +20,9 @@ type Team struct {
 	Namespace string
 	// CacheOff forwards every call without looking up or storing.
 	CacheOff bool
+	// MaxInFlight caps the team's requests in flight on this proxy,
+	// replacing Options.MaxInFlight; -1 means no cap, 0 the proxy's.
+	MaxInFlight int
 }
 
 func (t *Team) namespace() string {

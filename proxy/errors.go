@@ -11,6 +11,7 @@ const (
 	errInvalidRequest = "invalid_request_error"
 	errAuthentication = "authentication_error"
 	errPermission     = "permission_error"
+	errRateLimit      = "rate_limit_error"
 	errUpstream       = "upstream_error"
 	errCache          = "cache_error"
 	errServer         = "server_error"

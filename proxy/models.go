@@ -27,10 +27,12 @@ const modelsTimeout = 30 * time.Second
 // serveModels answers GET /v1/models from the upstreams, merged when there
 // are several, and reuses the answer for ModelsTTL.
 func (p *Proxy) serveModels(w http.ResponseWriter, r *http.Request) {
-	if _, _, aerr := p.authenticate(r); aerr != nil {
-		writeError(w, aerr)
+	_, _, release, aerr := p.admit(w, r)
+	if aerr != nil {
 		return
 	}
+	defer release()
+	bodyDone(w) // a GET has no body: the wait for the upstreams is not a read
 	p.modelsMu.Lock()
 	body, code, missing, at := p.modelsBody, p.modelsCode, p.modelsMissing, p.modelsAt
 	p.modelsMu.Unlock()

@@ -61,6 +61,16 @@ type Options struct {
 	Teams []Team
 	// MaxBodyBytes bounds a request body; zero means DefaultMaxBodyBytes.
 	MaxBodyBytes int64
+	// MaxInFlight caps each team's requests in flight on this proxy
+	// (Team.MaxInFlight overrides it per team); a request over it gets 429
+	// with Retry-After before its body is read. Zero means no cap.
+	MaxInFlight int
+	// WriteTimeout, when set, is the server's write timeout (the
+	// http.Server's WriteTimeout should be the same): the connection's
+	// write deadline is moved this far ahead before every write, so it
+	// bounds each write rather than the whole answer. Zero leaves
+	// deadlines to the server.
+	WriteTimeout time.Duration
 	// CacheTTL is how long an answer stays cached; zero means until evicted.
 	CacheTTL time.Duration
 	// CacheSampled also caches sampled requests (temperature > 0 or n > 1),
@@ -135,6 +145,8 @@ type Proxy struct {
 	metrics        *metrics
 	now            func() time.Time
 	mux            *http.ServeMux
+	inFlight       map[string]*inFlight // per team
+	writeTimeout   time.Duration
 
 	flights   coalesce.Group[*flightResult]
 	writes    *writeBehind
@@ -205,6 +217,8 @@ func New(opts Options) (*Proxy, error) {
 	if p.maxBody <= 0 {
 		p.maxBody = DefaultMaxBodyBytes
 	}
+	p.inFlight = newInFlight(p.teams, p.open, opts.MaxInFlight)
+	p.writeTimeout = opts.WriteTimeout
 	switch {
 	case p.greedyBelow == 0:
 		p.greedyBelow = DefaultGreedyBelow
@@ -258,7 +272,9 @@ func New(opts Options) (*Proxy, error) {
 }
 
 // ServeHTTP implements http.Handler.
-func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) { p.mux.ServeHTTP(w, r) }
+func (p *Proxy) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	p.mux.ServeHTTP(withWriteTimeout(w, p.writeTimeout), r)
+}
 
 // Close waits until every answer already sent has been written to the store
 // (or ctx ends). It does not close the store, which the caller owns.
@@ -379,11 +395,12 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		writeError(w, e)
 	}
 
-	team, keyID, aerr := p.authenticate(r)
+	team, keyID, release, aerr := p.admit(w, r)
 	if aerr != nil {
-		fail(aerr)
+		ll.status, ll.outcome = aerr.status, "error"
 		return
 	}
+	defer release()
 	ll.team = team.Name
 	body, aerr := p.readBody(w, r)
 	if aerr != nil {
@@ -730,8 +747,13 @@ func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiEr
 		if errors.As(err, &mbe) {
 			return nil, &apiError{status: http.StatusRequestEntityTooLarge, typ: errInvalidRequest, code: "body_too_large", message: fmt.Sprintf("request body is larger than %d bytes", p.maxBody)}
 		}
+		if bodyTimedOut(err) {
+			w.Header().Set("Connection", "close")
+			return nil, &apiError{status: http.StatusRequestTimeout, typ: errInvalidRequest, code: "body_timeout", message: "the request body did not arrive within the server's read timeout"}
+		}
 		return nil, badRequest("", "cannot read request body: %v", err)
 	}
+	bodyDone(w)
 	return body, nil
 }
 

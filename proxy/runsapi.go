@@ -62,11 +62,11 @@ func (p *Proxy) routeRuns(mux *http.ServeMux) {
 // runsEndpoint authenticates the team and checks the journal is on.
 func (p *Proxy) runsEndpoint(h func(http.ResponseWriter, *http.Request, *Team)) http.HandlerFunc {
 	return func(w http.ResponseWriter, r *http.Request) {
-		team, _, aerr := p.authenticate(r)
+		team, _, release, aerr := p.admit(w, r)
 		if aerr != nil {
-			writeError(w, aerr)
 			return
 		}
+		defer release()
 		if p.runs == nil {
 			writeError(w, runsOff())
 			return

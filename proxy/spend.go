@@ -109,7 +109,7 @@ func spendError(err error) *apiError {
 		return &apiError{status: http.StatusPaymentRequired, typ: "budget_error", code: "budget_exhausted",
 			message: fmt.Sprintf("budget exhausted: %s; %s USD left this period, this call could cost up to %s USD (estimates from configured prices)", ex.Scope, ex.Remaining, ex.Requested)}
 	case errors.As(err, &lim):
-		return &apiError{status: http.StatusTooManyRequests, typ: "rate_limit_error", code: "rate_limited", retryAfter: lim.RetryAfter,
+		return &apiError{status: http.StatusTooManyRequests, typ: errRateLimit, code: "rate_limited", retryAfter: lim.RetryAfter,
 			message: fmt.Sprintf("rate limited: retry after %s", lim.RetryAfter.Round(time.Millisecond))}
 	case errors.Is(err, budget.ErrUnknownModel):
 		return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "unpriced_model", param: "model", message: err.Error()}

@@ -120,6 +120,9 @@ type TeamConfig struct {
 	// KeyBudgets caps single keys, by key id: the first 12 hex digits of
 	// the key's sha256 as listed under keys.
 	KeyBudgets map[string]CapConfig `yaml:"key_budgets"`
+	// MaxInFlight caps the team's requests in flight on one replica in
+	// place of server.max_in_flight_per_team; 0: that default, -1: no cap.
+	MaxInFlight int `yaml:"max_in_flight"`
 }
 
 // CacheConfig sets how answers are kept.
@@ -135,6 +138,20 @@ type CacheConfig struct {
 type ServerConfig struct {
 	MaxBodyBytes    ByteSize `yaml:"max_body_bytes"`
 	ShutdownTimeout Duration `yaml:"shutdown_timeout"`
+	// ReadHeaderTimeout bounds reading a request's headers.
+	ReadHeaderTimeout Duration `yaml:"read_header_timeout"`
+	// ReadTimeout bounds reading a whole request, body included (not the
+	// wait for its answer).
+	ReadTimeout Duration `yaml:"read_timeout"`
+	// WriteTimeout bounds each write of an answer: a client that stops
+	// reading is cut off after it; a stream that keeps flowing is not.
+	WriteTimeout Duration `yaml:"write_timeout"`
+	// IdleTimeout is how long a keep-alive connection may wait for its
+	// next request.
+	IdleTimeout Duration `yaml:"idle_timeout"`
+	// MaxInFlightPerTeam caps each team's requests in flight on one
+	// replica (a team's max_in_flight overrides it); 0: no cap.
+	MaxInFlightPerTeam int `yaml:"max_in_flight_per_team"`
 }
 
 // LogConfig sets request logging.
@@ -152,8 +169,16 @@ func DefaultConfig() Config {
 			MaxBytes: 2 << 30,
 			HotBytes: 128 << 20,
 		},
-		Server: ServerConfig{MaxBodyBytes: 4 << 20, ShutdownTimeout: Duration(30 * time.Second)},
-		Log:    LogConfig{Format: "text"},
+		Server: ServerConfig{
+			MaxBodyBytes:       4 << 20,
+			ShutdownTimeout:    Duration(30 * time.Second),
+			ReadHeaderTimeout:  Duration(10 * time.Second),
+			ReadTimeout:        Duration(time.Minute),
+			WriteTimeout:       Duration(time.Minute),
+			IdleTimeout:        Duration(2 * time.Minute),
+			MaxInFlightPerTeam: 256,
+		},
+		Log: LogConfig{Format: "text"},
 	}
 }
 
@@ -267,6 +292,9 @@ func (c *Config) Validate(root *yaml.Node) error {
 			return bad(fmt.Errorf("duplicate team %q", t.Name), "teams", i, "name")
 		}
 		teams[t.Name] = true
+		if t.MaxInFlight < -1 {
+			return bad(errors.New("max_in_flight must be positive, 0 (server.max_in_flight_per_team) or -1 (no cap)"), "teams", i, "max_in_flight")
+		}
 		if len(t.Keys) == 0 {
 			return bad(errors.New("a team needs at least one key (make one with `stint keys new --team NAME`)"), "teams", i, "keys")
 		}
@@ -291,8 +319,8 @@ func (c *Config) Validate(root *yaml.Node) error {
 	if c.Cache.HotBytes < 0 {
 		return bad(errors.New("hot_bytes must not be negative"), "cache", "hot_bytes")
 	}
-	if c.Server.MaxBodyBytes <= 0 {
-		return bad(errors.New("max_body_bytes must be positive"), "server", "max_body_bytes")
+	if err := c.Server.validate(root); err != nil {
+		return err
 	}
 	switch c.Log.Format {
 	case "json", "text":
@@ -315,6 +343,32 @@ func (c *Config) Validate(root *yaml.Node) error {
 		return err
 	}
 	return c.validateSpend(root)
+}
+
+// validate checks the server section; root (may be nil) supplies line
+// numbers.
+func (s ServerConfig) validate(root *yaml.Node) error {
+	bad := func(err error, field string) error {
+		return &ConfigError{Field: "server." + field, Line: lineOf(root, []any{"server", field}), Err: err}
+	}
+	if s.MaxBodyBytes <= 0 {
+		return bad(errors.New("max_body_bytes must be positive"), "max_body_bytes")
+	}
+	for _, d := range []struct {
+		name string
+		v    Duration
+	}{{"read_header_timeout", s.ReadHeaderTimeout}, {"read_timeout", s.ReadTimeout}, {"write_timeout", s.WriteTimeout}, {"idle_timeout", s.IdleTimeout}} {
+		if d.v <= 0 {
+			return bad(errors.New("must be positive: a connection without it can be held open by a client as long as it likes"), d.name)
+		}
+	}
+	if s.ReadHeaderTimeout > s.ReadTimeout {
+		return bad(errors.New("must not be longer than read_timeout, which bounds the whole request"), "read_header_timeout")
+	}
+	if s.MaxInFlightPerTeam < 0 {
+		return bad(errors.New("max_in_flight_per_team must be 0 (no cap) or more"), "max_in_flight_per_team")
+	}
+	return nil
 }
 
 // breakerSettings turns the breaker section into the proxy's settings.

@@ -12,6 +12,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"regexp"
+	"strconv"
 	"strings"
 	"sync"
 	"syscall"
@@ -32,10 +33,33 @@ func TestMain(m *testing.M) {
 			os.Exit(2)
 		}
 		os.Args = append([]string{"stint"}, argv...)
+		if n := os.Getenv("STINT_TEST_NOFILE"); n != "" {
+			limitOpenFiles(n)
+		}
 		main()
 		os.Exit(0)
 	}
 	os.Exit(m.Run())
+}
+
+// limitOpenFiles lowers the process's soft limit on open descriptors to n
+// (a test's way to make a held connection cost something countable).
+func limitOpenFiles(n string) {
+	v, err := strconv.ParseUint(n, 10, 64)
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "bad STINT_TEST_NOFILE:", err)
+		os.Exit(2)
+	}
+	var lim syscall.Rlimit
+	if err := syscall.Getrlimit(syscall.RLIMIT_NOFILE, &lim); err != nil {
+		fmt.Fprintln(os.Stderr, "getrlimit:", err)
+		os.Exit(2)
+	}
+	lim.Cur = min(v, lim.Max)
+	if err := syscall.Setrlimit(syscall.RLIMIT_NOFILE, &lim); err != nil {
+		fmt.Fprintln(os.Stderr, "setrlimit:", err)
+		os.Exit(2)
+	}
 }
 
 // child is a stint process started by a test.

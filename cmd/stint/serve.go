@@ -301,6 +301,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Upstreams:      ups,
 		Teams:          teams,
 		MaxBodyBytes:   int64(cfg.Server.MaxBodyBytes),
+		MaxInFlight:    cfg.Server.MaxInFlightPerTeam,
+		WriteTimeout:   time.Duration(cfg.Server.WriteTimeout),
 		CacheTTL:       time.Duration(cfg.Cache.TTL),
 		CacheSampled:   cfg.Cache.Sampled,
 		UncachedModels: cfg.Cache.UncachedModels,
@@ -444,7 +446,7 @@ func (s *server) buildBreakerStore(ctx context.Context, cfg Config) (gobreaker.S
 func buildTeams(cfgs []TeamConfig) ([]proxy.Team, error) {
 	teams := make([]proxy.Team, 0, len(cfgs))
 	for _, tc := range cfgs {
-		t := proxy.Team{Name: tc.Name, Namespace: tc.Namespace, CacheOff: tc.Cache != nil && !*tc.Cache}
+		t := proxy.Team{Name: tc.Name, Namespace: tc.Namespace, CacheOff: tc.Cache != nil && !*tc.Cache, MaxInFlight: tc.MaxInFlight}
 		for _, k := range tc.Keys {
 			h, err := parseKeyHash(k)
 			if err != nil {
@@ -506,9 +508,13 @@ func (s *server) run(ctx context.Context) error {
 }
 
 func (s *server) serve(ctx context.Context, ln net.Listener) error {
+	sc := s.cfg.Server
 	hs := &http.Server{
 		Handler:           s.proxy,
-		ReadHeaderTimeout: 30 * time.Second,
+		ReadHeaderTimeout: time.Duration(sc.ReadHeaderTimeout),
+		ReadTimeout:       time.Duration(sc.ReadTimeout),
+		WriteTimeout:      time.Duration(sc.WriteTimeout), // moved ahead on every write (proxy.Options.WriteTimeout)
+		IdleTimeout:       time.Duration(sc.IdleTimeout),
 		ErrorLog:          slog.NewLogLogger(s.log.Handler(), slog.LevelWarn),
 	}
 	errc := make(chan error, 1)

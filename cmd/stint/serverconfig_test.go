@@ -1,0 +1,70 @@
+package main
+
+import (
+	"errors"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+func TestServerSectionDefaultsAndValues(t *testing.T) {
+	def := DefaultConfig().Server
+	assert.Equal(t, 10*time.Second, time.Duration(def.ReadHeaderTimeout))
+	assert.Equal(t, time.Minute, time.Duration(def.ReadTimeout))
+	assert.Equal(t, time.Minute, time.Duration(def.WriteTimeout))
+	assert.Equal(t, 2*time.Minute, time.Duration(def.IdleTimeout))
+	assert.Equal(t, 256, def.MaxInFlightPerTeam)
+
+	cfg, err := ParseConfig(strings.NewReader(`server:
+  read_header_timeout: 2s
+  read_timeout: 20s
+  write_timeout: 45s
+  idle_timeout: 90s
+  max_in_flight_per_team: 32
+teams:
+  - name: lab
+    keys: ["sha256:` + strings.Repeat("a", 64) + `"]
+    max_in_flight: -1
+`))
+	require.NoError(t, err)
+	assert.Equal(t, 2*time.Second, time.Duration(cfg.Server.ReadHeaderTimeout))
+	assert.Equal(t, 20*time.Second, time.Duration(cfg.Server.ReadTimeout))
+	assert.Equal(t, 45*time.Second, time.Duration(cfg.Server.WriteTimeout))
+	assert.Equal(t, 90*time.Second, time.Duration(cfg.Server.IdleTimeout))
+	assert.Equal(t, 32, cfg.Server.MaxInFlightPerTeam)
+	assert.Equal(t, -1, cfg.Teams[0].MaxInFlight)
+	teams, err := buildTeams(cfg.Teams)
+	require.NoError(t, err)
+	assert.Equal(t, -1, teams[0].MaxInFlight)
+
+	ex, err := ParseConfig(strings.NewReader(exampleConfig))
+	require.NoError(t, err)
+	assert.Equal(t, def, ex.Server, "the example's server section is not the defaults")
+}
+
+func TestServerSectionRefusals(t *testing.T) {
+	tests := []struct {
+		name, yaml, field string
+		line              int
+	}{
+		{"no read timeout", "server:\n  read_timeout: 0s\n", "server.read_timeout", 2},
+		{"negative write timeout", "server:\n  write_timeout: -1s\n", "server.write_timeout", 2},
+		{"no idle timeout", "server:\n  idle_timeout: 0s\n", "server.idle_timeout", 2},
+		{"no header timeout", "server:\n  read_header_timeout: 0s\n", "server.read_header_timeout", 2},
+		{"header timeout past read timeout", "server:\n  read_timeout: 5s\n  read_header_timeout: 6s\n", "server.read_header_timeout", 3},
+		{"negative in-flight cap", "server:\n  max_in_flight_per_team: -3\n", "server.max_in_flight_per_team", 2},
+		{"team in-flight cap below -1", "teams:\n  - name: lab\n    keys: [\"sha256:" + strings.Repeat("a", 64) + "\"]\n    max_in_flight: -2\n", "teams[0].max_in_flight", 4},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig(strings.NewReader(tt.yaml))
+			var ce *ConfigError
+			require.True(t, errors.As(err, &ce), "got %v, want a ConfigError", err)
+			assert.Equal(t, tt.field, ce.Field)
+			assert.Equal(t, tt.line, ce.Line)
+		})
+	}
+}
