@@ -15,7 +15,8 @@ FUZZ_TARGETS := \
 	./proxy/localmodel/tokenizer:FuzzRoundTrip:90000 \
 	./budget/tokens:FuzzUpperBound:25000 \
 	./cache/runs:FuzzImport:60000 \
-	./proxy:FuzzRequestLine:60000
+	./proxy:FuzzRequestLine:60000 \
+	./proxy/scrub:FuzzReader:150000
 
 .PHONY: help build test vet unit fuzz-short bench bench-shared bench-budgets bench-local bench-go clean
 

@@ -104,6 +104,21 @@ func BenchmarkMiss(b *testing.B) {
 	}
 }
 
+// BenchmarkMissScrubbed is BenchmarkMiss with two upstream credentials to
+// mask in every answer (package scrub); compare the two in one run.
+func BenchmarkMissScrubbed(b *testing.B) {
+	h := benchProxy(b, func(o *proxy.Options) {
+		o.Secrets = []string{"bench-upstream-key-0123456789abcdef", "bench-other-key-fedcba9876543210"}
+	})
+	b.ReportAllocs()
+	i := 0
+	for b.Loop() {
+		i++
+		body := fmt.Appendf(nil, `{"model":"bench-model","prompt":"unique prompt %d","temperature":0,"max_tokens":16}`, i)
+		serveOnce(b, h, body)
+	}
+}
+
 // withBenchBudget turns spend control on: a guard on a batched bbolt
 // ledger in the store's own file, a budget too large to run out.
 func withBenchBudget(b *testing.B) rigOption {

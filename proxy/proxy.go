@@ -23,6 +23,7 @@ import (
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/coalesce"
 	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/proxy/scrub"
 )
 
 // Header names stint sets on answers.
@@ -56,6 +57,10 @@ type Options struct {
 	// Upstreams receive misses; a request goes to the first whose Models match.
 	// At least one is required.
 	Upstreams []Upstream
+	// Secrets are credentials to mask in upstream answers (headers and
+	// bodies, before a client, a log or a store sees them) besides the
+	// upstreams' own Keys, which always are: see package scrub.
+	Secrets []string
 	// Teams are the clients allowed in. Empty means open mode: every request
 	// belongs to one team named "default" and no key is needed.
 	Teams []Team
@@ -146,6 +151,7 @@ type Proxy struct {
 	now            func() time.Time
 	mux            *http.ServeMux
 	inFlight       map[string]*inFlight // per team
+	scrub          *scrub.Scrubber      // upstream credentials; nil: none
 	writeTimeout   time.Duration
 
 	flights   coalesce.Group[*flightResult]
@@ -239,6 +245,15 @@ func New(opts Options) (*Proxy, error) {
 	}
 	if p.now == nil {
 		p.now = time.Now
+	}
+	secrets := append([]string(nil), opts.Secrets...)
+	for _, u := range p.upstreams {
+		secrets = append(secrets, u.Key)
+	}
+	var short []string
+	p.scrub, short = scrub.New(secrets)
+	if len(short) > 0 {
+		p.log.Warn("an upstream credential is too short to be told apart from ordinary text, so answers are not scrubbed of it", "keys", len(short), "min_bytes", scrub.MinLen)
 	}
 	m, err := newMetrics(opts.Registerer,
 		func() float64 { return float64(p.flights.TotalWaiting()) },

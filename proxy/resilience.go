@@ -16,6 +16,7 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/retry"
+	"github.com/stintlab/stint/proxy/scrub"
 )
 
 // How a miss reaches an upstream (send):
@@ -55,6 +56,7 @@ import (
 
 // upstreamState is an upstream's run-time parts, made by New.
 type upstreamState struct {
+	scrub    *scrub.Scrubber // nil: no credentials to mask
 	breaker  *breaker.Breaker
 	slots    chan struct{} // nil: no concurrency cap
 	fallback []*Upstream
@@ -130,7 +132,7 @@ func (p *Proxy) initUpstreams(opts Options) error {
 		if err != nil {
 			return fmt.Errorf("proxy: upstream %s: %w", u.Name, err)
 		}
-		rt := &upstreamState{breaker: b}
+		rt := &upstreamState{breaker: b, scrub: p.scrub}
 		if u.MaxConcurrent > 0 {
 			rt.slots = make(chan struct{}, u.MaxConcurrent)
 		}

@@ -142,6 +142,7 @@ func (u *Upstream) post(ctx context.Context, ep endpoint, body []byte) (*http.Re
 	if err != nil {
 		return nil, &upstreamError{err: err}
 	}
+	u.scrub(resp)
 	if resp.StatusCode/100 != 2 {
 		defer resp.Body.Close()
 		b, rerr := io.ReadAll(io.LimitReader(resp.Body, 1<<20))
@@ -166,12 +167,23 @@ func (u *Upstream) get(ctx context.Context, path string) ([]byte, int, error) {
 	if err != nil {
 		return nil, 0, &upstreamError{err: err}
 	}
+	u.scrub(resp)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(io.LimitReader(resp.Body, 8<<20))
 	if err != nil {
 		return nil, 0, &upstreamError{err: err}
 	}
 	return b, resp.StatusCode, nil
+}
+
+// scrub masks every configured credential in resp's headers and body
+// before anything else reads them (see package scrub).
+func (u *Upstream) scrub(resp *http.Response) {
+	if u.rt == nil || u.rt.scrub == nil {
+		return
+	}
+	u.rt.scrub.Header(resp.Header)
+	resp.Body = u.rt.scrub.Reader(resp.Body)
 }
 
 func (u *Upstream) client() *http.Client {

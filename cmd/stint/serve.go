@@ -299,6 +299,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	p, err := proxy.New(proxy.Options{
 		Store:          store,
 		Upstreams:      ups,
+		Secrets:        upstreamSecrets(cfg.Upstreams, os.Getenv),
 		Teams:          teams,
 		MaxBodyBytes:   int64(cfg.Server.MaxBodyBytes),
 		MaxInFlight:    cfg.Server.MaxInFlightPerTeam,
@@ -482,6 +483,25 @@ func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstrea
 		ups = append(ups, u)
 	}
 	return ups, closers, nil
+}
+
+// upstreamSecrets are the upstream credentials in the environment that the
+// proxy masks in upstream answers: STINT_UPSTREAM_KEY and every upstream's
+// key_env, whether or not an upstream sends it.
+func upstreamSecrets(cfgs []UpstreamConfig, getenv func(string) string) []string {
+	names := []string{"STINT_UPSTREAM_KEY"}
+	for _, uc := range cfgs {
+		if uc.KeyEnv != "" {
+			names = append(names, uc.KeyEnv)
+		}
+	}
+	var out []string
+	for _, n := range names {
+		if v := getenv(n); v != "" {
+			out = append(out, v)
+		}
+	}
+	return out
 }
 
 func (s *server) close() error {

@@ -68,3 +68,14 @@ func TestServerSectionRefusals(t *testing.T) {
 		})
 	}
 }
+
+func TestUpstreamSecretsNameEveryKeyInTheEnvironment(t *testing.T) {
+	env := map[string]string{"STINT_UPSTREAM_KEY": "default-upstream-key", "BACKUP_KEY": "backup-upstream-key", "UNSET": ""}
+	got := upstreamSecrets([]UpstreamConfig{
+		{Name: "main", URL: "https://a.example/v1", KeyEnv: "STINT_UPSTREAM_KEY"},
+		{Name: "backup", URL: "https://b.example/v1", KeyEnv: "BACKUP_KEY"},
+		{Name: "empty", URL: "https://c.example/v1", KeyEnv: "UNSET"},
+		{Name: "open", URL: "https://d.example/v1"},
+	}, func(k string) string { return env[k] })
+	assert.ElementsMatch(t, []string{"default-upstream-key", "default-upstream-key", "backup-upstream-key"}, got)
+}

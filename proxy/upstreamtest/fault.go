@@ -1,12 +1,14 @@
 package upstreamtest
 
 import (
+	"encoding/base64"
 	"encoding/json"
 	"fmt"
 	"math"
 	"net"
 	"net/http"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/stintlab/stint/proxy/sse"
@@ -41,7 +43,22 @@ type Fault struct {
 	// a streamed answer after Cut events (without "data: [DONE]"), any
 	// other answer after Cut bytes of its body.
 	Cut int
+	// EchoAuth, with Status, makes the answer repeat the Authorization
+	// header the call carried, as some APIs do in their errors: in the
+	// header HeaderReceivedAuth, and in the body. With Body empty the body
+	// is a wire-format error whose message quotes the header as received,
+	// in standard and URL-safe base64, and as the base64 of a Basic
+	// credential "apikey:<token>"; with Body set, each "{{authorization}}"
+	// in Body is replaced by the header as received.
+	EchoAuth bool
 }
+
+// HeaderReceivedAuth carries the Authorization header an EchoAuth fault
+// received.
+const HeaderReceivedAuth = "X-Received-Authorization"
+
+// AuthPlaceholder is what an EchoAuth fault replaces in Fault.Body.
+const AuthPlaceholder = "{{authorization}}"
 
 // faultRule is a queued fault: for the next remaining calls, or for a
 // share ratio of the matching calls.
@@ -138,8 +155,17 @@ func (s *Server) applyFault(w http.ResponseWriter, r *http.Request, f *Fault) bo
 			w.Header().Set("Retry-After", f.RetryAfter)
 		}
 		body := []byte(f.Body)
+		auth := r.Header.Get("Authorization")
+		if f.EchoAuth {
+			w.Header().Set(HeaderReceivedAuth, auth)
+			body = []byte(strings.ReplaceAll(f.Body, AuthPlaceholder, auth))
+		}
 		if f.Body == "" {
-			body, _ = json.Marshal(map[string]errorBody{"error": faultError(f.Status)})
+			e := faultError(f.Status)
+			if f.EchoAuth {
+				e.Message = echoMessage(auth)
+			}
+			body, _ = json.Marshal(map[string]errorBody{"error": e})
 			w.Header().Set("Content-Type", "application/json")
 		}
 		out := responder{w: w, cut: f.Cut}
@@ -147,6 +173,15 @@ func (s *Server) applyFault(w http.ResponseWriter, r *http.Request, f *Fault) bo
 		return false
 	}
 	return true
+}
+
+// echoMessage is an error message that repeats the received Authorization
+// header in the forms APIs are seen to use.
+func echoMessage(auth string) string {
+	token := strings.TrimSpace(strings.TrimPrefix(auth, "Bearer "))
+	return fmt.Sprintf("Incorrect API key provided. Received Authorization %q (base64 %s, url-safe %s; as Basic: %s).",
+		auth, base64.StdEncoding.EncodeToString([]byte(auth)), base64.URLEncoding.EncodeToString([]byte(auth)),
+		base64.StdEncoding.EncodeToString([]byte("apikey:"+token)))
 }
 
 // faultError is the default error body of an injected status.

@@ -65,7 +65,8 @@
 //
 // FailNext and FailRatio inject faults (a status and body with an optional
 // Retry-After, a hang until the client gives up, a delay, a reset
-// connection, or an answer cut short), and Block and Release hold calls in
+// connection, an answer cut short, or one that echoes the caller's
+// Authorization header), and Block and Release hold calls in
 // flight so a test can line up concurrent callers deterministically.
 // MaxConcurrent reports the most calls served at once, for checking a
 // client's concurrency cap.

@@ -2,6 +2,7 @@ package upstreamtest_test
 
 import (
 	"context"
+	"encoding/base64"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -12,6 +13,8 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
 
 	"github.com/stintlab/stint/proxy/sse"
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -1034,5 +1037,39 @@ func TestMaxConcurrentCountsCallsServedAtOnce(t *testing.T) {
 	s.Reset()
 	if got := s.MaxConcurrent(); got != 0 {
 		t.Errorf("after Reset: MaxConcurrent = %d, want 0", got)
+	}
+}
+
+func TestFaultEchoAuth(t *testing.T) {
+	up := upstreamtest.New(upstreamtest.Options{})
+	defer up.Close()
+	const (
+		auth = "Bearer echo-me-key-123"
+		body = `{"model":"quill-small","prompt":"hi","max_tokens":1}`
+	)
+	hdr := http.Header{"Authorization": {auth}}
+	tests := []struct {
+		name  string
+		fault upstreamtest.Fault
+		want  []string // in the body
+	}{
+		{"error body", upstreamtest.Fault{Status: 401, EchoAuth: true}, []string{
+			auth,
+			base64.StdEncoding.EncodeToString([]byte(auth)),
+			base64.URLEncoding.EncodeToString([]byte(auth)),
+			base64.StdEncoding.EncodeToString([]byte("apikey:echo-me-key-123")),
+		}},
+		{"given body", upstreamtest.Fault{Status: 200, EchoAuth: true, Body: `{"seen":"` + upstreamtest.AuthPlaceholder + `"}`}, []string{`{"seen":"` + auth + `"}`}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			up.FailNext(1, tt.fault)
+			resp, b := post(t, up, "/completions", body, hdr)
+			assert.Equal(t, tt.fault.Status, resp.StatusCode)
+			assert.Equal(t, auth, resp.Header.Get(upstreamtest.HeaderReceivedAuth))
+			for _, w := range tt.want {
+				assert.Contains(t, string(b), w)
+			}
+		})
 	}
 }
