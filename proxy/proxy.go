@@ -44,6 +44,9 @@ const (
 // DefaultGreedyBelow is the default of Options.GreedyBelow.
 const DefaultGreedyBelow = 1e-6
 
+// DefaultMaxPrompts is the default of Options.MaxPrompts.
+const DefaultMaxPrompts = 2048
+
 // DefaultMaxBodyBytes bounds a request body unless Options says otherwise.
 const DefaultMaxBodyBytes = 4 << 20
 
@@ -66,6 +69,11 @@ type Options struct {
 	Teams []Team
 	// MaxBodyBytes bounds a request body; zero means DefaultMaxBodyBytes.
 	MaxBodyBytes int64
+	// MaxPrompts bounds the prompts of one completions request (an array
+	// prompt's items); a request with more gets 400 too_many_prompts
+	// before any of them is looked at. Zero means DefaultMaxPrompts, -1
+	// no cap.
+	MaxPrompts int
 	// MaxInFlight caps each team's requests in flight on this proxy
 	// (Team.MaxInFlight overrides it per team); a request over it gets 429
 	// with Retry-After before its body is read. Zero means no cap.
@@ -139,6 +147,7 @@ type Proxy struct {
 	teams          []Team
 	open           *Team
 	maxBody        int64
+	maxPrompts     int // < 1: no cap
 	ttl            time.Duration
 	cacheSampled   bool
 	greedyBelow    float64
@@ -224,6 +233,10 @@ func New(opts Options) (*Proxy, error) {
 		p.maxBody = DefaultMaxBodyBytes
 	}
 	p.inFlight = newInFlight(p.teams, p.open, opts.MaxInFlight)
+	p.maxPrompts = opts.MaxPrompts
+	if p.maxPrompts == 0 {
+		p.maxPrompts = DefaultMaxPrompts
+	}
 	p.writeTimeout = opts.WriteTimeout
 	switch {
 	case p.greedyBelow == 0:
@@ -455,7 +468,7 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 			return
 		}
 	}
-	req, aerr := parseRequest(ep, body)
+	req, aerr := parseRequest(ep, body, p.maxPrompts)
 	if aerr != nil {
 		fail(aerr)
 		return

@@ -63,8 +63,9 @@ func (r *request) maxTokensField() string {
 	return "max_tokens"
 }
 
-// parseRequest decodes and validates body for ep.
-func parseRequest(ep endpoint, body []byte) (*request, *apiError) {
+// parseRequest decodes and validates body for ep. A completions prompt
+// may have at most maxPrompts items (no cap when maxPrompts < 1).
+func parseRequest(ep endpoint, body []byte, maxPrompts int) (*request, *apiError) {
 	var fields map[string]json.RawMessage
 	dec := json.NewDecoder(bytes.NewReader(body))
 	if err := dec.Decode(&fields); err != nil {
@@ -114,7 +115,7 @@ func parseRequest(ep endpoint, body []byte) (*request, *apiError) {
 	}
 	switch ep {
 	case endpointCompletions:
-		if e := r.parseCompletions(); e != nil {
+		if e := r.parseCompletions(maxPrompts); e != nil {
 			return nil, e
 		}
 	case endpointChat:
@@ -125,7 +126,7 @@ func parseRequest(ep endpoint, body []byte) (*request, *apiError) {
 	return r, nil
 }
 
-func (r *request) parseCompletions() *apiError {
+func (r *request) parseCompletions(maxPrompts int) *apiError {
 	if m, ok, e := optInt(r.fields, "max_tokens", 0, maxMaxTokens); e != nil {
 		return e
 	} else if ok {
@@ -144,7 +145,7 @@ func (r *request) parseCompletions() *apiError {
 	if !ok || isNull(raw) {
 		return badRequest("prompt", "prompt is required")
 	}
-	r.prompts, r.promptsArray, e = splitPrompt(raw)
+	r.prompts, r.promptsArray, e = splitPrompt(raw, maxPrompts)
 	return e
 }
 
@@ -191,8 +192,10 @@ func (r *request) parseChat() *apiError {
 }
 
 // splitPrompt splits a completions prompt into items. A string or an array of
-// token ids is one prompt; an array of strings or of token arrays is several.
-func splitPrompt(raw json.RawMessage) ([]json.RawMessage, bool, *apiError) {
+// token ids is one prompt; an array of strings or of token arrays is several,
+// at most maxPrompts of them (no cap when maxPrompts < 1): the count is
+// checked before any item is.
+func splitPrompt(raw json.RawMessage, maxPrompts int) ([]json.RawMessage, bool, *apiError) {
 	raw = bytes.TrimSpace(raw)
 	switch raw[0] {
 	case '"':
@@ -217,6 +220,11 @@ func splitPrompt(raw json.RawMessage) ([]json.RawMessage, bool, *apiError) {
 			return nil, false, badRequest("prompt", "prompt token array: %v", err)
 		}
 		return []json.RawMessage{raw}, false, nil
+	}
+	if maxPrompts > 0 && len(items) > maxPrompts {
+		e := badRequest("prompt", "prompt has %d items; a request may have at most %d (server.max_prompts): send the batch in parts", len(items), maxPrompts)
+		e.code = "too_many_prompts"
+		return nil, false, e
 	}
 	for i, it := range items {
 		it = bytes.TrimSpace(it)

@@ -15,6 +15,7 @@ import (
 
 	"go.yaml.in/yaml/v3"
 
+	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/retry"
 )
@@ -152,6 +153,9 @@ type ServerConfig struct {
 	// MaxInFlightPerTeam caps each team's requests in flight on one
 	// replica (a team's max_in_flight overrides it); 0: no cap.
 	MaxInFlightPerTeam int `yaml:"max_in_flight_per_team"`
+	// MaxPrompts bounds the prompts of one completions request (the items
+	// of an array prompt); more get 400 too_many_prompts.
+	MaxPrompts int `yaml:"max_prompts"`
 }
 
 // LogConfig sets request logging.
@@ -177,6 +181,7 @@ func DefaultConfig() Config {
 			WriteTimeout:       Duration(time.Minute),
 			IdleTimeout:        Duration(2 * time.Minute),
 			MaxInFlightPerTeam: 256,
+			MaxPrompts:         proxy.DefaultMaxPrompts,
 		},
 		Log: LogConfig{Format: "text"},
 	}
@@ -364,6 +369,9 @@ func (s ServerConfig) validate(root *yaml.Node) error {
 	}
 	if s.ReadHeaderTimeout > s.ReadTimeout {
 		return bad(errors.New("must not be longer than read_timeout, which bounds the whole request"), "read_header_timeout")
+	}
+	if s.MaxPrompts < 1 {
+		return bad(errors.New("max_prompts must be at least 1"), "max_prompts")
 	}
 	if s.MaxInFlightPerTeam < 0 {
 		return bad(errors.New("max_in_flight_per_team must be 0 (no cap) or more"), "max_in_flight_per_team")

@@ -303,6 +303,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Teams:          teams,
 		MaxBodyBytes:   int64(cfg.Server.MaxBodyBytes),
 		MaxInFlight:    cfg.Server.MaxInFlightPerTeam,
+		MaxPrompts:     cfg.Server.MaxPrompts,
 		WriteTimeout:   time.Duration(cfg.Server.WriteTimeout),
 		CacheTTL:       time.Duration(cfg.Cache.TTL),
 		CacheSampled:   cfg.Cache.Sampled,

@@ -17,6 +17,7 @@ func TestServerSectionDefaultsAndValues(t *testing.T) {
 	assert.Equal(t, time.Minute, time.Duration(def.WriteTimeout))
 	assert.Equal(t, 2*time.Minute, time.Duration(def.IdleTimeout))
 	assert.Equal(t, 256, def.MaxInFlightPerTeam)
+	assert.Equal(t, 2048, def.MaxPrompts)
 
 	cfg, err := ParseConfig(strings.NewReader(`server:
   read_header_timeout: 2s
@@ -24,6 +25,7 @@ func TestServerSectionDefaultsAndValues(t *testing.T) {
   write_timeout: 45s
   idle_timeout: 90s
   max_in_flight_per_team: 32
+  max_prompts: 100
 teams:
   - name: lab
     keys: ["sha256:` + strings.Repeat("a", 64) + `"]
@@ -35,6 +37,7 @@ teams:
 	assert.Equal(t, 45*time.Second, time.Duration(cfg.Server.WriteTimeout))
 	assert.Equal(t, 90*time.Second, time.Duration(cfg.Server.IdleTimeout))
 	assert.Equal(t, 32, cfg.Server.MaxInFlightPerTeam)
+	assert.Equal(t, 100, cfg.Server.MaxPrompts)
 	assert.Equal(t, -1, cfg.Teams[0].MaxInFlight)
 	teams, err := buildTeams(cfg.Teams)
 	require.NoError(t, err)
@@ -55,6 +58,7 @@ func TestServerSectionRefusals(t *testing.T) {
 		{"no idle timeout", "server:\n  idle_timeout: 0s\n", "server.idle_timeout", 2},
 		{"no header timeout", "server:\n  read_header_timeout: 0s\n", "server.read_header_timeout", 2},
 		{"header timeout past read timeout", "server:\n  read_timeout: 5s\n  read_header_timeout: 6s\n", "server.read_header_timeout", 3},
+		{"no prompts", "server:\n  max_prompts: 0\n", "server.max_prompts", 2},
 		{"negative in-flight cap", "server:\n  max_in_flight_per_team: -3\n", "server.max_in_flight_per_team", 2},
 		{"team in-flight cap below -1", "teams:\n  - name: lab\n    keys: [\"sha256:" + strings.Repeat("a", 64) + "\"]\n    max_in_flight: -2\n", "teams[0].max_in_flight", 4},
 	}
