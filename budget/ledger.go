@@ -263,31 +263,58 @@ func (r Request) Validate() error {
 	return nil
 }
 
-// CapField is one cap of a request resolved to its stored field.
-type CapField struct {
-	Scope Scope // whose cap
-	Cap   Cap   // the cap
-	// Field is Scope.Field for the cap's period at the reservation time.
+// Periods are every budget period, in the order ledgers keep their sums.
+var Periods = []Period{Day, Week, Month, Total}
+
+// NoLimit is the Limit of a Hold no cap is checked on.
+const NoLimit Nanos = -1
+
+// Hold is one sum a reservation holds money against and is charged to: a
+// scope's spend in one period, with the limit of the cap checked on it, if
+// any.
+type Hold struct {
+	Scope  Scope
+	Period Period
+	// Field is Scope.Field for Period at the reservation time.
 	Field string
+	// Limit is the cap's limit, or NoLimit when no cap is on this sum.
+	Limit Nanos
 }
 
-// Fields resolves the team and key caps of a reservation made at now (in
-// loc) and, separately, its global cap, in the order backends check them:
-// key, then team. Backends use it so both lay out data alike.
-func (c Caps) Fields(team, key string, now time.Time, loc *time.Location) (local []CapField, global *CapField) {
-	if c.Key != nil {
-		s := Scope{Team: team, Key: key}
-		local = append(local, CapField{s, *c.Key, s.Field(c.Key.Period, now, loc)})
+// Capped reports whether a cap is checked on h.
+func (h Hold) Capped() bool { return h.Limit >= 0 }
+
+// Holds lists the sums a reservation made at now (in loc) for team and key
+// holds and is charged to: every period of the key scope (when key is
+// set), then every period of the team scope, and separately every period
+// of the global scope. The sums of c's caps carry their limits; the others
+// are counted only. Counting every charge in every period is what lets a
+// budget that changes (a new period, a cap where there was none) find what
+// was already spent in the period it covers. Backends use it so both lay
+// out data alike.
+func (c Caps) Holds(team, key string, now time.Time, loc *time.Location) (local, global []Hold) {
+	scoped := func(s Scope, capOf *Cap) []Hold {
+		out := make([]Hold, 0, len(Periods))
+		for _, p := range Periods {
+			h := Hold{Scope: s, Period: p, Field: s.Field(p, now, loc), Limit: NoLimit}
+			if capOf != nil && capOf.Period == p {
+				h.Limit = capOf.Limit
+			}
+			out = append(out, h)
+		}
+		return out
 	}
-	if c.Team != nil {
-		s := Scope{Team: team}
-		local = append(local, CapField{s, *c.Team, s.Field(c.Team.Period, now, loc)})
+	if key != "" {
+		local = scoped(Scope{Team: team, Key: key}, c.Key)
 	}
-	if c.Global != nil {
-		s := Scope{}
-		global = &CapField{s, *c.Global, s.Field(c.Global.Period, now, loc)}
-	}
-	return local, global
+	local = append(local, scoped(Scope{Team: team}, c.Team)...)
+	return local, scoped(Scope{}, c.Global)
+}
+
+// Exhausted is the refusal of h's cap for a reservation of requested with
+// left of the cap remaining.
+func (h Hold) Exhausted(left, requested Nanos) *ExhaustedError {
+	return &ExhaustedError{Scope: h.Scope, Period: h.Period, Limit: h.Limit, Remaining: max(left, 0), Requested: requested}
 }
 
 // CheckActual validates an actual cost passed to Settle.

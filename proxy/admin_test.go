@@ -8,6 +8,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy"
@@ -141,4 +144,33 @@ func TestAdminSetsBudgetAndReadsSpend(t *testing.T) {
 	if status, b := r.adminDo("PUT", "budgets/kiln", adminKey, `{"usd":2.5,"per":"week"}`); status != 200 || !strings.Contains(string(b), `"team":"kiln"`) {
 		t.Errorf("budget for kiln: %d %s", status, b)
 	}
+}
+
+// TestAdminPeriodChangeKeepsTheSpend is the reported case: after a team has
+// spent under its configured total budget, a budget per day set through the
+// admin endpoint shows today's spend and refuses what no longer fits.
+func TestAdminPeriodChangeKeepsTheSpend(t *testing.T) {
+	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
+	var spent int64
+	for i := range 3 {
+		got := r.complete(greedy(fmt.Sprintf("a line of the day %d", i), "max_tokens", 8))
+		require.Equal(t, http.StatusOK, got.status, "%s", got.body)
+		spent += headerNanos(t, got.header, proxy.HeaderCost)
+	}
+	// Room for less than one more call today.
+	limit := budget.Nanos(spent + spent/6)
+	status, b := r.adminDo("PUT", "budgets/lab", adminKey, fmt.Sprintf(`{"usd":%s,"per":"day"}`, limit))
+	require.Equal(t, http.StatusOK, status, "%s", b)
+	var answer struct {
+		Budgets []budget.Standing `json:"budgets"`
+	}
+	require.NoError(t, json.Unmarshal(b, &answer))
+	require.Len(t, answer.Budgets, 1)
+	assert.Equal(t, budget.Day, answer.Budgets[0].Period)
+	assert.Equal(t, budget.Nanos(spent).String(), answer.Budgets[0].SpentUSD, "today's spend under the new daily budget")
+
+	before := r.upstreamGenerations()
+	got := r.complete(greedy("one line too many", "max_tokens", 8))
+	assert.Equal(t, http.StatusPaymentRequired, got.status, "%s", got.body)
+	assert.Equal(t, before, r.upstreamGenerations(), "a refused call reached the upstream")
 }

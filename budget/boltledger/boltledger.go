@@ -2,6 +2,11 @@
 // budget.Journal kept in a bbolt file, normally the same file as the cache
 // store, so a single machine needs nothing else.
 //
+// Every charge is counted in every period (day, week, month, total) of its
+// key's, its team's and the global sums, whatever caps it was checked
+// against (budget.Caps.Holds), so a budget given another period, or set
+// where there was none, finds what was already spent in its period.
+//
 // The ledger uses only buckets whose names start with "budget." and never
 // closes the *bbolt.DB it is given. Every operation is one bbolt read-write
 // transaction; bbolt has a single writer, so each operation is atomic with
@@ -100,8 +105,8 @@ func (l *Ledger) update(fn func(*bbolt.Tx) error) error {
 // record is what the ledger keeps for one reservation.
 type record struct {
 	Res    budget.Reservation // as returned by Reserve
-	Fields []string           // sums fields held against
-	Limits []budget.Nanos     // the cap of each field
+	Fields []string           // sums fields held against (budget.Caps.Holds)
+	Limits []budget.Nanos     // the cap of each field; budget.NoLimit when uncapped
 }
 
 // Reserve implements budget.Ledger.
@@ -112,11 +117,8 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 	if err := ctx.Err(); err != nil {
 		return budget.Reservation{}, err
 	}
-	local, global := req.Caps.Fields(req.Team, req.Key, now, l.loc)
-	caps := local
-	if global != nil {
-		caps = append(caps, *global)
-	}
+	local, global := req.Caps.Holds(req.Team, req.Key, now, l.loc)
+	holds := append(local, global...)
 	rec := record{Res: budget.Reservation{
 		ID: rand.Text(), Team: req.Team, Key: req.Key, Amount: req.Amount, Caps: req.Caps,
 		Created: now, Deadline: now.Add(req.Lease).Truncate(time.Millisecond), Remaining: -1,
@@ -124,26 +126,26 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 	err := l.update(func(tx *bbolt.Tx) error {
 		rec.Fields, rec.Limits, rec.Res.Remaining = nil, nil, -1
 		sums := tx.Bucket(sumsBucket)
-		for _, c := range caps {
-			spent, held := getSums(sums, c.Field)
-			left := c.Cap.Limit - spent - held
-			if left < req.Amount {
-				return &budget.ExhaustedError{Scope: c.Scope, Period: c.Cap.Period, Limit: c.Cap.Limit,
-					Remaining: max(left, 0), Requested: req.Amount}
+		for _, h := range holds {
+			if !h.Capped() {
+				continue
+			}
+			spent, held := getSums(sums, h.Field)
+			if left := h.Limit - spent - held; left < req.Amount {
+				return h.Exhausted(left, req.Amount)
 			}
 		}
-		for _, c := range caps {
-			spent, held := getSums(sums, c.Field)
+		for _, h := range holds {
+			spent, held := getSums(sums, h.Field)
 			held += req.Amount
-			if err := putSums(sums, c.Field, spent, held); err != nil {
+			if err := putSums(sums, h.Field, spent, held); err != nil {
 				return err
 			}
-			left := c.Cap.Limit - spent - held
-			if rec.Res.Remaining < 0 || left < rec.Res.Remaining {
+			if left := h.Limit - spent - held; h.Capped() && (rec.Res.Remaining < 0 || left < rec.Res.Remaining) {
 				rec.Res.Remaining = left
 			}
-			rec.Fields = append(rec.Fields, c.Field)
-			rec.Limits = append(rec.Limits, c.Cap.Limit)
+			rec.Fields = append(rec.Fields, h.Field)
+			rec.Limits = append(rec.Limits, h.Limit)
 		}
 		return putRecord(tx, rec)
 	})
@@ -239,6 +241,9 @@ func (l *Ledger) chargeLocked(tx *bbolt.Tx, rec record, charged budget.Nanos) (b
 		held -= rec.Res.Amount
 		if err := putSums(sums, f, spent, held); err != nil {
 			return 0, err
+		}
+		if rec.Limits[i] < 0 {
+			continue // counted, not capped
 		}
 		left := max(rec.Limits[i]-spent-held, 0)
 		if remaining < 0 || left < remaining {

@@ -41,6 +41,88 @@ func Run(t *testing.T, open Open) {
 	t.Run("NoOverspendTeam", func(t *testing.T) { testNoOverspend(t, open, false) })
 	t.Run("NoOverspendGlobal", func(t *testing.T) { testNoOverspend(t, open, true) })
 	t.Run("Journal", func(t *testing.T) { testJournal(t, open) })
+	t.Run("EveryPeriodCounts", func(t *testing.T) { testEveryPeriodCounts(t, open) })
+	t.Run("LaterCapCountsSpend", func(t *testing.T) { testLaterCapCountsSpend(t, open) })
+}
+
+// testEveryPeriodCounts charges reservations checked against no cap, or
+// against a cap on one period only, and reads every period's sum of the
+// key, the team and the global scope: each holds all of it, so a budget
+// that later takes another period finds it.
+func testEveryPeriodCounts(t *testing.T, open Open) {
+	ctx := context.Background()
+	l := open(t, nil)()
+	for _, caps := range []budget.Caps{{}, {Team: dayCap(1000)}, {Key: &budget.Cap{Limit: 1000, Period: budget.Month}, Global: &budget.Cap{Limit: 1000, Period: budget.Week}}} {
+		res, err := l.Reserve(ctx, t0, req("lab", "k1", 100, caps))
+		if err != nil {
+			t.Fatalf("Reserve under %+v: %v", caps, err)
+		}
+		if _, err := l.Settle(ctx, t0, res, 60); err != nil {
+			t.Fatalf("Settle: %v", err)
+		}
+	}
+	held, err := l.Reserve(ctx, t0, req("lab", "k1", 25, budget.Caps{}))
+	if err != nil {
+		t.Fatalf("Reserve: %v", err)
+	}
+	for _, p := range budget.Periods {
+		for _, s := range []budget.Scope{{Team: "lab", Key: "k1"}, {Team: "lab"}} {
+			if got := balance(t, l, t0, s, p); got != (budget.Balance{Spent: 180, Held: 25}) {
+				t.Errorf("%v this %s = %+v, want spent 180, held 25", s, p, got)
+			}
+		}
+		if got := balance(t, l, t0, budget.Scope{}, p); got.Spent != 180 {
+			t.Errorf("global this %s = %+v, want spent 180", p, got)
+		}
+	}
+	if _, err := l.Settle(ctx, t0, held, 0); err != nil {
+		t.Fatalf("Settle: %v", err)
+	}
+}
+
+// testLaterCapCountsSpend spends without caps, then asks under a cap of
+// each scope: the cap refuses with only what the earlier spend left.
+func testLaterCapCountsSpend(t *testing.T, open Open) {
+	tests := []struct {
+		name  string
+		caps  budget.Caps
+		scope budget.Scope
+	}{
+		{"key", budget.Caps{Key: &budget.Cap{Limit: 1000, Period: budget.Week}}, budget.Scope{Team: "lab", Key: "k1"}},
+		{"team", budget.Caps{Team: &budget.Cap{Limit: 1000, Period: budget.Month}}, budget.Scope{Team: "lab"}},
+		{"global", budget.Caps{Global: &budget.Cap{Limit: 1000, Period: budget.Total}}, budget.Scope{}},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			ctx := context.Background()
+			l := open(t, nil)()
+			for _, team := range []string{"lab", "kiln"} { // the global cap counts both
+				res, err := l.Reserve(ctx, t0, req(team, "k1", 400, budget.Caps{}))
+				if err != nil {
+					t.Fatalf("Reserve: %v", err)
+				}
+				if _, err := l.Settle(ctx, t0, res, 350); err != nil {
+					t.Fatalf("Settle: %v", err)
+				}
+			}
+			want := budget.Nanos(650) // 1000 - 350
+			if tt.scope.Team == "" {
+				want = 300 // 1000 - 2×350
+			}
+			_, err := l.Reserve(ctx, t0.Add(time.Hour), req("lab", "k1", want+1, tt.caps))
+			var ex *budget.ExhaustedError
+			if !errors.As(err, &ex) || ex.Scope != tt.scope || ex.Remaining != want {
+				t.Fatalf("Reserve of %d under a new %s cap: %v, want the cap refusing with %d left", want+1, tt.name, err, want)
+			}
+			res, err := l.Reserve(ctx, t0.Add(time.Hour), req("lab", "k1", want, tt.caps))
+			if err != nil {
+				t.Fatalf("Reserve of exactly what is left: %v", err)
+			}
+			if res.Remaining != 0 {
+				t.Errorf("Remaining = %d, want 0", res.Remaining)
+			}
+		})
+	}
 }
 
 // t0 is a Wednesday noon in UTC.
@@ -300,8 +382,9 @@ func testPeriods(t *testing.T, open Open) {
 			if _, err := l.Reserve(ctx, tt.sameSpan, req("lab", "", 1, caps)); !errors.Is(err, budget.ErrExhausted) {
 				t.Errorf("Reserve later in the same %s: error = %v, want ErrExhausted", tt.period, err)
 			}
-			if got := balance(t, l, tt.before, team, budget.Total); got != (budget.Balance{}) {
-				t.Errorf("total scope = %+v, want empty (no total cap was used)", got)
+			// Every charge counts in every period, capped or not.
+			if got := balance(t, l, tt.before, team, budget.Total); got != (budget.Balance{Spent: 170}) {
+				t.Errorf("total sum = %+v, want spent 170 (every charge counts in every period)", got)
 			}
 		})
 	}

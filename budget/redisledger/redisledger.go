@@ -8,6 +8,11 @@
 // "stint:{lab}:journal", so every script touches one slot and works on a
 // cluster.
 //
+// Every charge is counted in every period (day, week, month, total) of its
+// key's and its team's sums, whatever caps it was checked against, so a
+// budget given another period, or set where there was none, finds what was
+// already spent in its period (budget.Caps.Holds).
+//
 // The global cap across teams cannot share a slot with every team, and a
 // cluster script cannot touch two slots. It therefore has its own trio of
 // keys in the slot "{#global}" ('#' is not allowed in team names, so no team
@@ -17,10 +22,15 @@
 // between the two, or the release fails, the global hold stays until its
 // lease expires and is then charged in full like any expired hold: the
 // global sum may count money that was never spent, but never less than was
-// spent. Settling runs the team script first and then settles the global
-// hold with the amount the team was charged; the same reasoning covers a
-// crash between those two steps. The set "stint:{#global}:teams" lists the
-// teams the ledger has seen, for Expire and for journal scans across teams.
+// spent. Settling, and expiry, charge the global hold first and the team's
+// second; the same reasoning covers a crash between those two steps. The
+// global sums are kept only while a global cap is set (holding there for
+// every call would put every team's calls through one slot); the first time
+// a process uses a global sum it raises it to at least what the teams' own
+// sums of that period add up to (seedGlobal), so a global cap added to the
+// config, or given another period, counts what was spent before it. The set
+// "stint:{#global}:teams" lists the teams the ledger has seen, for Expire,
+// for that sum and for journal scans across teams.
 //
 // Times go to Redis from the caller (milliseconds), so replicas should keep
 // their clocks in sync; lease deadlines are truncated to the millisecond.
@@ -35,6 +45,7 @@ import (
 	"errors"
 	"fmt"
 	"strconv"
+	"strings"
 	"sync"
 	"time"
 
@@ -63,10 +74,13 @@ type Ledger struct {
 	prefix string
 	loc    *time.Location
 
-	// guards teams
+	// guards teams and seeded
 	mu sync.Mutex
 	// teams this Ledger has already added to the teams set
 	teams map[string]bool
+	// seeded holds the global sums fields this Ledger has raised to the
+	// teams' total (seedGlobal), by field
+	seeded map[string]bool
 }
 
 var (
@@ -85,7 +99,7 @@ func New(c redis.UniversalClient, opts Options) *Ledger {
 	if loc == nil {
 		loc = time.UTC
 	}
-	return &Ledger{c: c, prefix: p, loc: loc, teams: map[string]bool{}}
+	return &Ledger{c: c, prefix: p, loc: loc, teams: map[string]bool{}, seeded: map[string]bool{}}
 }
 
 // trio returns the sums, holds and leases keys of a team ("" for global).
@@ -108,8 +122,8 @@ func (l *Ledger) teamsKey() string { return l.tag("") + ":teams" }
 type record struct {
 	A   int64              `json:"a"` // amount held
 	D   int64              `json:"d"` // lease deadline, Unix ms
-	F   []string           `json:"f"` // sums fields held against
-	L   []int64            `json:"l"` // the limit of each field
+	F   []string           `json:"f"` // sums fields held against (budget.Caps.Holds)
+	L   []int64            `json:"l"` // the limit of each field; below 0: uncapped
 	Res budget.Reservation `json:"r"` // as returned by Reserve
 }
 
@@ -138,13 +152,16 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 	if err := l.remember(ctx, req.Team); err != nil {
 		return budget.Reservation{}, fmt.Errorf("redisledger: reserve: %w", err)
 	}
-	local, global := req.Caps.Fields(req.Team, req.Key, now, l.loc)
+	local, global := req.Caps.Holds(req.Team, req.Key, now, l.loc)
 	res := budget.Reservation{
 		ID: rand.Text(), Team: req.Team, Key: req.Key, Amount: req.Amount, Caps: req.Caps,
 		Created: now, Deadline: now.Add(req.Lease).Truncate(time.Millisecond), Remaining: -1,
 	}
-	if global != nil {
-		rem, err := l.hold(ctx, "", res, []budget.CapField{*global})
+	if req.Caps.Global != nil {
+		if err := l.seedGlobal(ctx, global); err != nil {
+			return budget.Reservation{}, err
+		}
+		rem, err := l.hold(ctx, "", res, global)
 		if err != nil {
 			return budget.Reservation{}, err
 		}
@@ -152,7 +169,7 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 	}
 	rem, err := l.hold(ctx, req.Team, res, local)
 	if err != nil {
-		if global != nil {
+		if req.Caps.Global != nil {
 			// Compensate; if this fails too, the global hold expires and
 			// is charged in full (see the package doc).
 			cctx := context.WithoutCancel(ctx)
@@ -166,21 +183,93 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 	return res, nil
 }
 
+// seedGlobal raises the global sums of global (the global scope's holds of
+// a reservation, one per period) to at least what every team's own sums in
+// the same periods add up to, once per field and Ledger. The global sums
+// are kept only while a global cap is set (a team's sums always are, in
+// its own slot), so a global cap set in the config, or given another
+// period, then finds what was spent before it. Spend settled between the
+// read of the teams' sums and the raise may be counted twice, never not at
+// all.
+func (l *Ledger) seedGlobal(ctx context.Context, global []budget.Hold) error {
+	l.mu.Lock()
+	var todo []budget.Hold
+	for _, h := range global {
+		if !l.seeded[h.Field] {
+			todo = append(todo, h)
+		}
+	}
+	l.mu.Unlock()
+	if len(todo) == 0 {
+		return nil
+	}
+	teams, err := l.c.SMembers(ctx, l.teamsKey()).Result()
+	if err != nil {
+		return fmt.Errorf("redisledger: sum the teams for the global budget: %w", err)
+	}
+	sums := make([]int64, len(todo))
+	pipe := l.c.Pipeline()
+	var cmds []*redis.SliceCmd
+	for _, team := range teams {
+		if budget.ValidateName(team) != nil {
+			continue
+		}
+		fields := make([]string, len(todo))
+		for i, h := range todo {
+			// The team's field in the same period: the global field with
+			// the team scope's prefix ("g|bucket" -> "t:team|bucket").
+			_, bucket, _ := strings.Cut(h.Field, "|")
+			fields[i] = "s|t:" + team + "|" + bucket
+		}
+		cmds = append(cmds, pipe.HMGet(ctx, l.trio(team)[0], fields...))
+	}
+	if len(cmds) > 0 {
+		if _, err := pipe.Exec(ctx); err != nil {
+			return fmt.Errorf("redisledger: sum the teams for the global budget: %w", err)
+		}
+	}
+	for _, cmd := range cmds {
+		vals, err := ints(cmd.Result())
+		if err != nil {
+			return fmt.Errorf("redisledger: sum the teams for the global budget: %w", err)
+		}
+		for i, v := range vals {
+			sums[i] += v
+		}
+	}
+	args := []any{len(todo)}
+	for i, h := range todo {
+		args = append(args, h.Field, sums[i])
+	}
+	if err := seedScript.Run(ctx, l.c, l.trio(""), args...).Err(); err != nil {
+		return fmt.Errorf("redisledger: seed the global budget: %w", err)
+	}
+	l.mu.Lock()
+	if len(l.seeded) > 64 {
+		l.seeded = map[string]bool{} // old periods' fields are never asked for again
+	}
+	for _, h := range todo {
+		l.seeded[h.Field] = true
+	}
+	l.mu.Unlock()
+	return nil
+}
+
 // hold runs the reserve script for res on team's trio ("" for global) and
 // returns the least remaining budget, or an *budget.ExhaustedError.
-func (l *Ledger) hold(ctx context.Context, team string, res budget.Reservation, caps []budget.CapField) (budget.Nanos, error) {
+func (l *Ledger) hold(ctx context.Context, team string, res budget.Reservation, holds []budget.Hold) (budget.Nanos, error) {
 	rec := record{A: int64(res.Amount), D: res.Deadline.UnixMilli(), F: []string{}, L: []int64{}, Res: res}
-	for _, c := range caps {
-		rec.F = append(rec.F, c.Field)
-		rec.L = append(rec.L, int64(c.Cap.Limit))
+	for _, h := range holds {
+		rec.F = append(rec.F, h.Field)
+		rec.L = append(rec.L, int64(h.Limit))
 	}
 	raw, err := json.Marshal(rec)
 	if err != nil {
 		return 0, fmt.Errorf("redisledger: encode reservation: %w", err)
 	}
-	args := []any{res.ID, int64(res.Amount), rec.D, raw, len(caps)}
-	for _, c := range caps {
-		args = append(args, c.Field, int64(c.Cap.Limit))
+	args := []any{res.ID, int64(res.Amount), rec.D, raw, len(holds)}
+	for _, h := range holds {
+		args = append(args, h.Field, int64(h.Limit))
 	}
 	out, err := ints(reserveScript.Run(ctx, l.c, l.trio(team), args...).Slice())
 	if err != nil {
@@ -189,17 +278,18 @@ func (l *Ledger) hold(ctx context.Context, team string, res budget.Reservation, 
 	if out[0] == 1 && len(out) == 2 {
 		return budget.Nanos(out[1]), nil
 	}
-	if len(out) != 3 || out[1] < 0 || int(out[1]) >= len(caps) {
+	if len(out) != 3 || out[1] < 0 || int(out[1]) >= len(holds) {
 		return 0, fmt.Errorf("redisledger: reserve: unexpected script reply %v", out)
 	}
-	c := caps[out[1]]
-	return 0, &budget.ExhaustedError{Scope: c.Scope, Period: c.Cap.Period, Limit: c.Cap.Limit,
-		Remaining: max(budget.Nanos(out[2]), 0), Requested: res.Amount}
+	return 0, holds[out[1]].Exhausted(budget.Nanos(out[2]), res.Amount)
 }
 
-// Settle implements budget.Ledger. If the team's part succeeds but settling
-// the global hold fails, Settle returns the team's Settlement together with
-// the error; the global hold is then charged in full when its lease expires.
+// Settle implements budget.Ledger. A reservation under a global cap is
+// charged on the global sums first and then on the team's: at every moment
+// the teams' sums add up to no more than the global ones, which is what
+// makes seedGlobal exact. If the global part fails the team's is not
+// tried, and both holds are charged in full when their leases expire; if
+// the team's part fails after the global one, the team's hold is.
 func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservation, actual budget.Nanos) (budget.Settlement, error) {
 	if err := budget.CheckActual(actual); err != nil {
 		return budget.Settlement{}, err
@@ -207,7 +297,19 @@ func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservati
 	if err := budget.ValidateName(res.Team); err != nil {
 		return budget.Settlement{}, err
 	}
-	out, err := ints(settleScript.Run(ctx, l.c, l.trio(res.Team), res.ID, int64(actual), now.UnixMilli()).Slice())
+	globalLeft := budget.Nanos(-1)
+	if res.Caps.Global != nil {
+		// Both scripts charge the same amount: actual, or the reserved
+		// amount at least once the (same) deadline has passed.
+		g, err := ints(settleScript.Run(ctx, l.c, l.trio(""), res.ID, int64(actual), now.UnixMilli()).Slice())
+		if err != nil {
+			return budget.Settlement{}, fmt.Errorf("redisledger: settle the global hold (it and the team's are charged in full at lease expiry): %w", err)
+		}
+		if g[0] == 1 && len(g) == 4 {
+			globalLeft = budget.Nanos(g[3])
+		}
+	}
+	out, err := ints(settleScript.Run(context.WithoutCancel(ctx), l.c, l.trio(res.Team), res.ID, int64(actual), now.UnixMilli()).Slice())
 	if err != nil {
 		return budget.Settlement{}, fmt.Errorf("redisledger: settle: %w", err)
 	}
@@ -217,29 +319,23 @@ func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservati
 	if len(out) != 4 {
 		return budget.Settlement{}, fmt.Errorf("redisledger: settle: unexpected script reply %v", out)
 	}
-	s := budget.Settlement{Charged: budget.Nanos(out[1]), Expired: out[2] == 1, Remaining: budget.Nanos(out[3])}
-	s.Released = max(res.Amount-s.Charged, 0)
-	if res.Caps.Global == nil {
-		return s, nil
+	st := budget.Settlement{Charged: budget.Nanos(out[1]), Expired: out[2] == 1, Remaining: budget.Nanos(out[3])}
+	st.Released = max(res.Amount-st.Charged, 0)
+	if globalLeft >= 0 && (st.Remaining < 0 || globalLeft < st.Remaining) {
+		st.Remaining = globalLeft
 	}
-	g, err := ints(settleScript.Run(context.WithoutCancel(ctx), l.c, l.trio(""), res.ID, int64(s.Charged), now.UnixMilli()).Slice())
-	if err != nil {
-		return s, fmt.Errorf("redisledger: settle global hold (it will be charged in full at lease expiry): %w", err)
-	}
-	if g[0] == 1 && len(g) == 4 {
-		if rem := budget.Nanos(g[3]); rem >= 0 && (s.Remaining < 0 || rem < s.Remaining) {
-			s.Remaining = rem
-		}
-	}
-	return s, nil
+	return st, nil
 }
 
-// Expire implements budget.Ledger. It sweeps every team in the teams set,
-// then the global holds.
+// Expire implements budget.Ledger. It sweeps the global holds first, then
+// every team in the teams set (the order Settle charges in).
 func (l *Ledger) Expire(ctx context.Context, now time.Time) ([]budget.Reservation, error) {
 	teams, err := l.c.SMembers(ctx, l.teamsKey()).Result()
 	if err != nil {
 		return nil, fmt.Errorf("redisledger: expire: list teams: %w", err)
+	}
+	if _, err := l.sweep(ctx, "", now); err != nil {
+		return nil, err
 	}
 	var out []budget.Reservation
 	for _, team := range teams {
@@ -253,9 +349,6 @@ func (l *Ledger) Expire(ctx context.Context, now time.Time) ([]budget.Reservatio
 		for _, r := range recs {
 			out = append(out, r.Res)
 		}
-	}
-	if _, err := l.sweep(ctx, "", now); err != nil {
-		return out, err
 	}
 	return out, nil
 }
@@ -290,6 +383,12 @@ func (l *Ledger) Balance(ctx context.Context, now time.Time, scope budget.Scope,
 		return budget.Balance{}, fmt.Errorf("%w: %w", budget.ErrInvalid, err)
 	}
 	f := scope.Field(p, now, l.loc)
+	if scope.Team == "" {
+		// The global sums may predate the global cap (see seedGlobal).
+		if err := l.seedGlobal(ctx, []budget.Hold{{Scope: scope, Period: p, Field: f, Limit: budget.NoLimit}}); err != nil {
+			return budget.Balance{}, err
+		}
+	}
 	vals, err := l.c.HMGet(ctx, l.trio(scope.Team)[0], "s|"+f, "h|"+f).Result()
 	if err != nil {
 		return budget.Balance{}, fmt.Errorf("redisledger: balance: %w", err)

@@ -5,7 +5,8 @@ import "github.com/redis/go-redis/v9"
 // Each script works on one "trio" of keys in a single hash slot:
 //
 //	KEYS[1] sums   hash: "s|"..field -> spent, "h|"..field -> held (Nanos)
-//	KEYS[2] holds  hash: reservation id -> JSON record {a, d, f, l}
+//	KEYS[2] holds  hash: reservation id -> JSON record {a, d, f, l}; a
+//	               limit below 0 marks a sum that is counted, not capped
 //	KEYS[3] leases sorted set: reservation id scored by lease deadline (ms)
 //
 // Amounts are integers below 2^53, so Lua's doubles hold them exactly;
@@ -13,22 +14,25 @@ import "github.com/redis/go-redis/v9"
 // Lua number argument into a string with %.17g, which would print large
 // values in exponent form that HINCRBY rejects.
 
-// reserveScript checks every cap, then holds the amount against all of
-// them and records the reservation; it holds nothing if any cap refuses.
+// reserveScript checks every capped sum, then holds the amount against all
+// of them and records the reservation; it holds nothing if a cap refuses.
 //
-//	ARGV: id, amount, deadline_ms, record_json, ncaps, {field, limit}...
-//	returns {1, remaining} on success (remaining -1 when ncaps is 0), or
-//	        {0, index_of_refusing_cap (0-based), remaining_before}
+//	ARGV: id, amount, deadline_ms, record_json, nsums, {field, limit}...
+//	      (limit below 0: counted, not capped)
+//	returns {1, remaining} on success (remaining -1 when nothing is capped),
+//	        or {0, index_of_refusing_sum (0-based), remaining_before}
 var reserveScript = redis.NewScript(`
 local amount = tonumber(ARGV[2])
 local n = tonumber(ARGV[5])
 for i = 0, n - 1 do
   local f = ARGV[6 + 2 * i]
   local lim = tonumber(ARGV[7 + 2 * i])
-  local s = tonumber(redis.call('HGET', KEYS[1], 's|' .. f) or '0')
-  local h = tonumber(redis.call('HGET', KEYS[1], 'h|' .. f) or '0')
-  if lim - s - h < amount then
-    return {0, i, string.format('%d', lim - s - h)}
+  if lim >= 0 then
+    local s = tonumber(redis.call('HGET', KEYS[1], 's|' .. f) or '0')
+    local h = tonumber(redis.call('HGET', KEYS[1], 'h|' .. f) or '0')
+    if lim - s - h < amount then
+      return {0, i, string.format('%d', lim - s - h)}
+    end
   end
 end
 local rem = -1
@@ -36,9 +40,11 @@ for i = 0, n - 1 do
   local f = ARGV[6 + 2 * i]
   local lim = tonumber(ARGV[7 + 2 * i])
   local h = redis.call('HINCRBY', KEYS[1], 'h|' .. f, ARGV[2])
-  local s = tonumber(redis.call('HGET', KEYS[1], 's|' .. f) or '0')
-  local left = lim - s - h
-  if rem < 0 or left < rem then rem = left end
+  if lim >= 0 then
+    local s = tonumber(redis.call('HGET', KEYS[1], 's|' .. f) or '0')
+    local left = lim - s - h
+    if rem < 0 or left < rem then rem = left end
+  end
 end
 redis.call('HSET', KEYS[2], ARGV[1], ARGV[4])
 redis.call('ZADD', KEYS[3], ARGV[3], ARGV[1])
@@ -54,9 +60,11 @@ local function charge(id, r, charged)
   for i, f in ipairs(r.f) do
     local s = redis.call('HINCRBY', KEYS[1], 's|' .. f, string.format('%d', charged))
     local h = redis.call('HINCRBY', KEYS[1], 'h|' .. f, string.format('%d', -r.a))
-    local left = r.l[i] - s - h
-    if left < 0 then left = 0 end
-    if rem < 0 or left < rem then rem = left end
+    if r.l[i] >= 0 then
+      local left = r.l[i] - s - h
+      if left < 0 then left = 0 end
+      if rem < 0 or left < rem then rem = left end
+    end
   end
   redis.call('HDEL', KEYS[2], id)
   redis.call('ZREM', KEYS[3], id)
@@ -111,4 +119,21 @@ for _, id in ipairs(ids) do
   end
 end
 return out
+`)
+
+// seedScript raises spent sums of the global trio to at least the given
+// amounts (what the teams' own sums add up to), never lowering one.
+//
+//	ARGV: n, {field, amount}...
+var seedScript = redis.NewScript(`
+local n = tonumber(ARGV[1])
+for i = 0, n - 1 do
+  local f = 's|' .. ARGV[2 + 2 * i]
+  local want = tonumber(ARGV[3 + 2 * i])
+  local have = tonumber(redis.call('HGET', KEYS[1], f) or '0')
+  if have < want then
+    redis.call('HSET', KEYS[1], f, string.format('%d', want))
+  end
+end
+return 1
 `)
