@@ -46,8 +46,11 @@ import (
 //     deadline of the request's upstream exchange (the routed upstream's
 //     Timeout) or the client whose request made the call has gone (others
 //     coalesced onto the call then get its last failure), and never once
-//     an answer has started to reach the client. When no retry is left
-//     the client gets the last failure as it was.
+//     an answer has started to reach the client. A retry after a 429 is
+//     also paid from the answering upstream's retry budget (retry.Budget,
+//     fed by every first call to it), so a storm of 429s costs the
+//     upstream about 1 + BudgetShare calls per request, not Attempts. When
+//     no retry is left the client gets the last failure as it was.
 //
 // The breaker counts 5xx answers, timeouts, connection errors and answers
 // cut short as failures; any other answer, 4xx included, as a success;
@@ -57,6 +60,7 @@ import (
 // upstreamState is an upstream's run-time parts, made by New.
 type upstreamState struct {
 	scrub    *scrub.Scrubber // nil: no credentials to mask
+	retries  *retry.Budget   // pays for retries after a 429; nil: none needed
 	breaker  *breaker.Breaker
 	slots    chan struct{} // nil: no concurrency cap
 	fallback []*Upstream
@@ -132,7 +136,7 @@ func (p *Proxy) initUpstreams(opts Options) error {
 		if err != nil {
 			return fmt.Errorf("proxy: upstream %s: %w", u.Name, err)
 		}
-		rt := &upstreamState{breaker: b, scrub: p.scrub}
+		rt := &upstreamState{breaker: b, scrub: p.scrub, retries: u.Retry.Budget()}
 		if u.MaxConcurrent > 0 {
 			rt.slots = make(chan struct{}, u.MaxConcurrent)
 		}
@@ -240,6 +244,9 @@ func (p *Proxy) send(clientCtx, ctx context.Context, up *Upstream, model string,
 		if u != up {
 			p.resil.m.fallbacks.WithLabelValues(up.Name, u.Name).Inc()
 		}
+		if n == 0 {
+			u.rt.retries.Called()
+		}
 		var ticket *guard.Ticket
 		if admit != nil {
 			t, err := admit(ctx, u)
@@ -281,6 +288,10 @@ func (p *Proxy) send(clientCtx, ctx context.Context, up *Upstream, model string,
 		var h http.Header
 		if errors.As(err, &ue) {
 			h = ue.header
+			if ue.status == http.StatusTooManyRequests && !u.rt.retries.Retry() {
+				p.resil.m.denied.WithLabelValues(u.Name).Inc()
+				return nil, err
+			}
 		}
 		d, ok := p.resil.next(up.Retry, n-1, h, p.now())
 		if !ok {

@@ -10,6 +10,7 @@ type resilienceMetrics struct {
 	trips       *prometheus.CounterVec // upstream
 	storeErrors *prometheus.CounterVec // upstream
 	retries     *prometheus.CounterVec // upstream, reason
+	denied      *prometheus.CounterVec // upstream
 	fallbacks   *prometheus.CounterVec // from, to
 	modelErrors *prometheus.CounterVec // upstream
 	slotWaiting *prometheus.GaugeVec   // upstream
@@ -29,6 +30,9 @@ func newResilienceMetrics(reg prometheus.Registerer, ups []Upstream) (*resilienc
 		retries: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_upstream_retries_total", Help: "Upstream calls retried, by upstream and reason (the status, timeout or transport).",
 		}, []string{"upstream", "reason"}),
+		denied: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "stint_upstream_retries_denied_total", Help: "Retries after a 429 not made because the upstream's retry budget was spent; the client got the 429.",
+		}, []string{"upstream"}),
 		fallbacks: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_upstream_fallbacks_total", Help: "Calls sent to a fallback upstream because the routed one's breaker was open.",
 		}, []string{"from", "to"}),
@@ -42,7 +46,7 @@ func newResilienceMetrics(reg prometheus.Registerer, ups []Upstream) (*resilienc
 	if reg == nil {
 		return m, nil
 	}
-	for _, c := range []prometheus.Collector{m.state, m.trips, m.storeErrors, m.retries, m.fallbacks, m.modelErrors, m.slotWaiting} {
+	for _, c := range []prometheus.Collector{m.state, m.trips, m.storeErrors, m.retries, m.denied, m.fallbacks, m.modelErrors, m.slotWaiting} {
 		if err := reg.Register(c); err != nil {
 			return nil, err
 		}

@@ -106,6 +106,12 @@ type RetryConfig struct {
 	// MaxDelay caps the backoff and is the longest Retry-After waited for
 	// (default 5s).
 	MaxDelay Duration `yaml:"max_delay"`
+	// BudgetShare is the share of a retry each call adds to the budget
+	// that retries after a 429 are paid from (default 0.1).
+	BudgetShare float64 `yaml:"budget_share"`
+	// BudgetReserve is the most retries the budget holds; it starts full
+	// (default 10; -1: no budget, every 429 retried up to attempts).
+	BudgetReserve int `yaml:"budget_reserve"`
 }
 
 // TeamConfig is one client team.
@@ -402,7 +408,8 @@ func (u UpstreamConfig) retryPolicy() retry.Policy {
 	if r == nil {
 		return retry.Policy{}
 	}
-	p := retry.Policy{Attempts: r.Attempts, Base: time.Duration(r.BaseDelay), MaxDelay: time.Duration(r.MaxDelay)}
+	p := retry.Policy{Attempts: r.Attempts, Base: time.Duration(r.BaseDelay), MaxDelay: time.Duration(r.MaxDelay),
+		BudgetShare: r.BudgetShare, BudgetReserve: r.BudgetReserve}
 	if p.Attempts == 1 {
 		p.Attempts = -1
 	}
@@ -442,6 +449,10 @@ func validateResilience(u UpstreamConfig, bad func(err error, path ...any) error
 			return bad(errors.New("base_delay must not be negative"), at("retry", "base_delay")...)
 		case r.MaxDelay < 0:
 			return bad(errors.New("max_delay must not be negative"), at("retry", "max_delay")...)
+		case r.BudgetShare < 0 || r.BudgetShare > 1:
+			return bad(errors.New("budget_share must be between 0 (default 0.1) and 1"), at("retry", "budget_share")...)
+		case r.BudgetReserve < -1:
+			return bad(errors.New("budget_reserve must be positive, 0 (default 10) or -1 (no budget)"), at("retry", "budget_reserve")...)
 		}
 	}
 	return nil

@@ -32,6 +32,8 @@ func TestUpstreamResilienceErrorsNameFieldAndLine(t *testing.T) {
 		{"negative base_delay", head + "    retry:\n      base_delay: -1s\n", 5, "retry.base_delay"},
 		{"negative max_delay", head + "    retry:\n      max_delay: -1s\n", 5, "retry.max_delay"},
 		{"bad delay", head + "    retry:\n      max_delay: later\n", 5, "duration"},
+		{"budget share above one", head + "    retry:\n      budget_share: 2\n", 5, "retry.budget_share"},
+		{"budget reserve below -1", head + "    retry:\n      budget_reserve: -2\n", 5, "retry.budget_reserve"},
 		{"unknown fallback", head + "    fallback: [nowhere]\n", 4, `"nowhere"`},
 		{"own fallback", head + "    fallback: [main]\n", 4, "its own fallback"},
 		{"fallback twice", head + "    fallback: [b, b]\n  - name: b\n    url: http://127.0.0.1:2/v1\n", 4, "twice"},
@@ -114,7 +116,8 @@ func TestExampleUpstreamSpellsOutTheDefaults(t *testing.T) {
 	if got := u.breakerSettings(); got != want {
 		t.Errorf("example breaker %+v, want the defaults %+v", got, want)
 	}
-	if got := u.retryPolicy(); got != (retry.Policy{Attempts: retry.DefaultAttempts, Base: retry.DefaultBase, MaxDelay: retry.DefaultMaxDelay}) {
+	if got := u.retryPolicy(); got != (retry.Policy{Attempts: retry.DefaultAttempts, Base: retry.DefaultBase, MaxDelay: retry.DefaultMaxDelay,
+		BudgetShare: retry.DefaultBudgetShare, BudgetReserve: retry.DefaultBudgetReserve}) {
 		t.Errorf("example retry %+v, want the defaults", got)
 	}
 }

@@ -12,14 +12,17 @@ import (
 	"net/http"
 	"strconv"
 	"strings"
+	"sync"
 	"time"
 )
 
 // Defaults for the zero fields of Policy.
 const (
-	DefaultAttempts = 3
-	DefaultBase     = 250 * time.Millisecond
-	DefaultMaxDelay = 5 * time.Second
+	DefaultAttempts      = 3
+	DefaultBase          = 250 * time.Millisecond
+	DefaultMaxDelay      = 5 * time.Second
+	DefaultBudgetShare   = 0.1
+	DefaultBudgetReserve = 10
 )
 
 // Policy bounds the retries of one call. The zero value is the defaults;
@@ -37,6 +40,13 @@ type Policy struct {
 	// (with its Retry-After) back to its client. Zero means
 	// DefaultMaxDelay.
 	MaxDelay time.Duration
+	// BudgetShare and BudgetReserve size the Budget that retries after a
+	// 429 are paid from: each call adds BudgetShare of a retry, up to
+	// BudgetReserve retries. Zero means DefaultBudgetShare and
+	// DefaultBudgetReserve; -1 in BudgetReserve means no budget (every
+	// 429 may be retried, up to Attempts).
+	BudgetShare   float64
+	BudgetReserve int
 }
 
 // Validate reports the first bad field, by its name.
@@ -48,8 +58,73 @@ func (p Policy) Validate() error {
 		return errors.New("base_delay must not be negative")
 	case p.MaxDelay < 0:
 		return errors.New("max_delay must not be negative")
+	case p.BudgetShare < 0 || p.BudgetShare > 1 || p.BudgetShare != p.BudgetShare:
+		return errors.New("budget_share must be between 0 (default) and 1")
+	case p.BudgetReserve < -1:
+		return errors.New("budget_reserve must be positive, 0 (default) or -1 (no budget)")
 	}
 	return nil
+}
+
+// Budget is the policy's retry budget, or nil when it has none.
+func (p Policy) Budget() *Budget {
+	if p.BudgetReserve == -1 {
+		return nil
+	}
+	share, reserve := p.BudgetShare, p.BudgetReserve
+	if share == 0 {
+		share = DefaultBudgetShare
+	}
+	if reserve == 0 {
+		reserve = DefaultBudgetReserve
+	}
+	return NewBudget(share, reserve)
+}
+
+// Budget bounds the retries of the calls it is shared by, so that an
+// upstream answering every call with 429 is not sent every call again up
+// to Attempts times: each call adds share of a retry to the budget, up to
+// reserve whole retries (it starts full), and each retry takes one. In a
+// storm the upstream then gets at most 1 + share calls per request, plus
+// the reserve once. It is safe for concurrent use; a nil *Budget allows
+// every retry.
+type Budget struct {
+	mu      sync.Mutex // guards tokens
+	tokens  int64      // in thousandths of a retry
+	share   int64      // thousandths added per call
+	reserve int64      // most thousandths held
+}
+
+// NewBudget returns a full Budget: reserve retries, refilled by share of
+// a retry per call.
+func NewBudget(share float64, reserve int) *Budget {
+	r := int64(reserve) * 1000
+	return &Budget{tokens: r, share: int64(share*1000 + 0.5), reserve: r}
+}
+
+// Called adds one call's share to the budget.
+func (b *Budget) Called() {
+	if b == nil {
+		return
+	}
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	b.tokens = min(b.tokens+b.share, b.reserve)
+}
+
+// Retry takes one retry from the budget and reports whether there was one
+// to take.
+func (b *Budget) Retry() bool {
+	if b == nil {
+		return true
+	}
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	if b.tokens < 1000 {
+		return false
+	}
+	b.tokens -= 1000
+	return true
 }
 
 // MaxAttempts returns the most calls the policy allows, at least 1.

@@ -96,3 +96,51 @@ func TestMaxAttempts(t *testing.T) {
 		}
 	}
 }
+
+func TestBudgetPaysRetriesFromCalls(t *testing.T) {
+	tests := []struct {
+		name    string
+		share   float64
+		reserve int
+		calls   int // calls made first, each adding its share
+		want    int // retries then allowed
+	}{
+		{"full reserve, no calls", 0.1, 5, 0, 5},
+		{"calls do not overfill it", 0.1, 5, 100, 5},
+		{"a share of each call", 0.25, 1, 0, 1},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			b := retry.NewBudget(tt.share, tt.reserve)
+			for range tt.calls {
+				b.Called()
+			}
+			got := 0
+			for b.Retry() {
+				got++
+			}
+			if got != tt.want {
+				t.Errorf("retries allowed = %d, want %d", got, tt.want)
+			}
+		})
+	}
+	// Emptied, it refills by share per call: four calls at 0.25 pay one.
+	b := retry.NewBudget(0.25, 1)
+	b.Retry()
+	for i := range 4 {
+		if b.Retry() {
+			t.Fatalf("a retry after %d calls, want one only after 4", i)
+		}
+		b.Called()
+	}
+	if !b.Retry() {
+		t.Error("no retry after four calls at a share of 0.25")
+	}
+	var none *retry.Budget
+	if !none.Retry() {
+		t.Error("a nil Budget refused a retry")
+	}
+	if p := (retry.Policy{BudgetReserve: -1}); p.Budget() != nil {
+		t.Error("BudgetReserve -1 made a budget")
+	}
+}
