@@ -112,6 +112,8 @@ type Options struct {
 	Registerer prometheus.Registerer
 	// Gatherer serves /metrics; nil serves no metrics endpoint.
 	Gatherer prometheus.Gatherer
+	// Metrics says who may read /metrics; the zero value lets anyone.
+	Metrics MetricsAccess
 	// Now is the clock; nil means time.Now.
 	Now func() time.Time
 	// Spend admits and accounts upstream calls (budgets, rate limits,
@@ -289,8 +291,8 @@ func New(opts Options) (*Proxy, error) {
 	p.routeAdmin(mux)
 	p.routeRuns(mux)
 	p.routeUI(mux, opts)
-	if opts.Gatherer != nil {
-		mux.Handle("GET /metrics", promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}))
+	if opts.Gatherer != nil && !opts.Metrics.Off {
+		mux.HandleFunc("GET /metrics", p.metricsHandler(promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}), opts.Metrics))
 	}
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
 		writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "unknown_url", message: fmt.Sprintf("no route for %s %s", r.Method, r.URL.Path)})

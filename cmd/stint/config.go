@@ -40,7 +40,9 @@ type Config struct {
 	Store StoreConfig `yaml:"store"`
 	// Admin holds the keys of the admin endpoints (/stint/admin/).
 	Admin AdminConfig `yaml:"admin"`
-	UI    UIConfig    `yaml:"ui"` // the operator page (uiconfig.go)
+	// Metrics says who may read /metrics.
+	Metrics MetricsConfig `yaml:"metrics"`
+	UI      UIConfig      `yaml:"ui"` // the operator page (uiconfig.go)
 }
 
 // AdminConfig is the `admin:` section.
@@ -48,6 +50,35 @@ type AdminConfig struct {
 	// Keys may read spend and set budgets over HTTP, stored as
 	// "sha256:<hex>" like team keys. None: the admin endpoints are off.
 	Keys []string `yaml:"keys"`
+}
+
+// The values of metrics.auth.
+const (
+	MetricsOpen  = "open"  // anyone who reaches the port
+	MetricsToken = "token" // the bearer token in metrics.token_env
+	MetricsAdmin = "admin" // an admin key, or that token
+	MetricsOff   = "off"   // no /metrics
+)
+
+// MetricsConfig is the `metrics:` section.
+type MetricsConfig struct {
+	// Auth is open, token, admin or off; empty: admin when teams are
+	// configured (the metrics name them), open otherwise (loopback only).
+	Auth string `yaml:"auth"`
+	// TokenEnv names the environment variable holding a bearer token that
+	// may read /metrics (a scraper's); needed by auth: token.
+	TokenEnv string `yaml:"token_env"`
+}
+
+// auth is the access rule in force: Auth, or its default.
+func (m MetricsConfig) auth(teams int) string {
+	switch {
+	case m.Auth != "":
+		return m.Auth
+	case teams > 0:
+		return MetricsAdmin
+	}
+	return MetricsOpen
 }
 
 // UpstreamConfig is one inference API.
@@ -346,6 +377,18 @@ func (c *Config) Validate(root *yaml.Node) error {
 		if team, dup := keys[hex.EncodeToString(h[:])]; dup {
 			return bad(fmt.Errorf("an admin key must not also be a key of team %q", team), "admin", "keys", j)
 		}
+	}
+	switch c.Metrics.Auth {
+	case "", MetricsOpen, MetricsAdmin, MetricsOff:
+	case MetricsToken:
+		if c.Metrics.TokenEnv == "" {
+			return bad(errors.New("auth: token needs token_env, the environment variable holding the token"), "metrics", "auth")
+		}
+	default:
+		return bad(fmt.Errorf("auth %q must be open, token, admin or off", c.Metrics.Auth), "metrics", "auth")
+	}
+	if c.Metrics.TokenEnv != "" && (c.Metrics.Auth == MetricsOpen || c.Metrics.Auth == MetricsOff) {
+		return bad(fmt.Errorf("token_env is unused with auth: %s", c.Metrics.Auth), "metrics", "token_env")
 	}
 	if err := c.validateUI(root); err != nil {
 		return err

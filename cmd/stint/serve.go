@@ -194,6 +194,10 @@ func checkConfig(cfg Config, lookupEnv func(string) (string, bool)) (string, err
 	} else {
 		b.WriteString(", spend control off")
 	}
+	fmt.Fprintf(&b, ", metrics %s", cfg.Metrics.auth(len(cfg.Teams)))
+	if cfg.Metrics.TokenEnv != "" {
+		env = append(env, cfg.Metrics.TokenEnv)
+	}
 	if r := cfg.Store.Redis; r != nil {
 		mode := "standalone"
 		if len(r.Addrs) > 1 || r.Cluster {
@@ -294,6 +298,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
 	}
+	metrics, err := metricsAccess(cfg, os.LookupEnv)
+	if err != nil {
+		s.close()
+		return nil, err
+	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	p, err := proxy.New(proxy.Options{
@@ -313,6 +322,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		RequestLog:     requestLog,
 		Registerer:     reg,
 		Gatherer:       reg,
+		Metrics:        metrics,
 		Spend:          spend,
 		AdminKeyHashes: adminKeys,
 		Runs:           journal,
@@ -484,6 +494,29 @@ func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstrea
 		ups = append(ups, u)
 	}
 	return ups, closers, nil
+}
+
+// metricsAccess turns the metrics section into the proxy's access rule,
+// reading the token from the environment.
+func metricsAccess(cfg Config, lookupEnv func(string) (string, bool)) (proxy.MetricsAccess, error) {
+	auth := cfg.Metrics.auth(len(cfg.Teams))
+	var a proxy.MetricsAccess
+	switch auth {
+	case MetricsOpen:
+		return a, nil
+	case MetricsOff:
+		return proxy.MetricsAccess{Off: true}, nil
+	case MetricsAdmin:
+		a.Admin = true
+	}
+	if name := cfg.Metrics.TokenEnv; name != "" {
+		v, ok := lookupEnv(name)
+		if !ok || v == "" {
+			return a, fmt.Errorf("metrics.token_env: %s is not set", name)
+		}
+		a.TokenHashes = append(a.TokenHashes, sha256.Sum256([]byte(v)))
+	}
+	return a, nil
 }
 
 // upstreamSecrets are the upstream credentials in the environment that the

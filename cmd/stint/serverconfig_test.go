@@ -1,6 +1,7 @@
 package main
 
 import (
+	"crypto/sha256"
 	"errors"
 	"strings"
 	"testing"
@@ -8,6 +9,8 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"github.com/stintlab/stint/proxy"
 )
 
 func TestServerSectionDefaultsAndValues(t *testing.T) {
@@ -82,4 +85,58 @@ func TestUpstreamSecretsNameEveryKeyInTheEnvironment(t *testing.T) {
 		{Name: "open", URL: "https://d.example/v1"},
 	}, func(k string) string { return env[k] })
 	assert.ElementsMatch(t, []string{"default-upstream-key", "default-upstream-key", "backup-upstream-key"}, got)
+}
+
+func TestMetricsSection(t *testing.T) {
+	team := "teams:\n  - name: lab\n    keys: [\"sha256:" + strings.Repeat("a", 64) + "\"]\n"
+	env := func(k string) (string, bool) {
+		if k == "SCRAPE_TOKEN" {
+			return "scrape-token", true
+		}
+		return "", false
+	}
+	tokenHash := sha256.Sum256([]byte("scrape-token"))
+	tests := []struct {
+		name, yaml string
+		want       proxy.MetricsAccess
+		wantErr    string
+	}{
+		{"no config, no teams: open", "", proxy.MetricsAccess{}, ""},
+		{"teams: admin keys by default", team, proxy.MetricsAccess{Admin: true}, ""},
+		{"teams and a token", team + "metrics:\n  token_env: SCRAPE_TOKEN\n", proxy.MetricsAccess{Admin: true, TokenHashes: [][32]byte{tokenHash}}, ""},
+		{"token only", "metrics:\n  auth: token\n  token_env: SCRAPE_TOKEN\n", proxy.MetricsAccess{TokenHashes: [][32]byte{tokenHash}}, ""},
+		{"open with teams", team + "metrics:\n  auth: open\n", proxy.MetricsAccess{}, ""},
+		{"off", "metrics:\n  auth: off\n", proxy.MetricsAccess{Off: true}, ""},
+		{"token not set", "metrics:\n  auth: token\n  token_env: UNSET_TOKEN\n", proxy.MetricsAccess{}, "UNSET_TOKEN is not set"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cfg, err := ParseConfig(strings.NewReader(tt.yaml))
+			require.NoError(t, err)
+			got, err := metricsAccess(cfg, env)
+			if tt.wantErr != "" {
+				assert.ErrorContains(t, err, tt.wantErr)
+				return
+			}
+			require.NoError(t, err)
+			assert.Equal(t, tt.want, got)
+		})
+	}
+	refusals := []struct {
+		name, yaml, field string
+		line              int
+	}{
+		{"unknown auth", "metrics:\n  auth: maybe\n", "metrics.auth", 2},
+		{"token without its variable", "metrics:\n  auth: token\n", "metrics.auth", 2},
+		{"a token nobody reads", "metrics:\n  auth: open\n  token_env: SCRAPE_TOKEN\n", "metrics.token_env", 3},
+	}
+	for _, tt := range refusals {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig(strings.NewReader(tt.yaml))
+			var ce *ConfigError
+			require.True(t, errors.As(err, &ce), "got %v, want a ConfigError", err)
+			assert.Equal(t, tt.field, ce.Field)
+			assert.Equal(t, tt.line, ce.Line)
+		})
+	}
 }

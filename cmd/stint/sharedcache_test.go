@@ -70,10 +70,17 @@ func call(c *child, d time.Duration, body string, extra ...string) answer {
 	return answer{status: resp.StatusCode, header: resp.Header, body: b, err: err}
 }
 
-// scrape returns the sum of the samples of metric on c's /metrics.
+// scrape returns the sum of the samples of metric on c's /metrics, read
+// with the replica configs' admin key (metrics need one where teams are
+// configured).
 func scrape(t *testing.T, c *child, metric string) float64 {
 	t.Helper()
-	resp, err := http.Get("http://" + c.addr + "/metrics")
+	req, err := http.NewRequest(http.MethodGet, "http://"+c.addr+"/metrics", nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	req.Header.Set("Authorization", "Bearer "+replicaAdminKey)
+	resp, err := http.DefaultClient.Do(req)
 	if err != nil {
 		t.Fatalf("GET /metrics: %v", err)
 	}

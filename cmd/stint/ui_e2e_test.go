@@ -400,7 +400,12 @@ func getJSON(t *testing.T, url, auth string, dst any) {
 // scrape parses the proxy's /metrics with the Prometheus text parser.
 func (r *uiRig) scrape(t *testing.T) map[string]*dto.MetricFamily {
 	t.Helper()
-	resp, err := http.Get(r.url + "/metrics")
+	req, err := http.NewRequest(http.MethodGet, r.url+"/metrics", nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	req.Header.Set("Authorization", "Bearer "+uiAdminKey) // the config has teams: metrics need a key
+	resp, err := http.DefaultClient.Do(req)
 	if err != nil {
 		t.Fatal(err)
 	}
