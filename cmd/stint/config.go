@@ -124,7 +124,14 @@ type BreakerConfig struct {
 	// Probes is how many calls a half-open breaker lets through at once
 	// per replica, and the successes that close it (default 1).
 	Probes int `yaml:"probes"`
+	// ProbeEvery lets one call through while open, this often, as an
+	// early probe whose success closes the breaker (default a sixth of
+	// open_for; 0s: no early probes).
+	ProbeEvery *Duration `yaml:"probe_every"`
 }
+
+// probeShare is open_for over the default probe_every.
+const probeShare = 6
 
 // RetryConfig is an upstream's `retry:` section.
 type RetryConfig struct {
@@ -432,9 +439,9 @@ func (s ServerConfig) validate(root *yaml.Node) error {
 func (u UpstreamConfig) breakerSettings() breaker.Settings {
 	b := u.Breaker
 	if b == nil {
-		return breaker.Settings{}
+		b = &BreakerConfig{}
 	}
-	return breaker.Settings{
+	s := breaker.Settings{
 		Off:                 b.Enabled != nil && !*b.Enabled,
 		ConsecutiveFailures: b.ConsecutiveFailures,
 		FailureRatio:        b.FailureRatio,
@@ -443,6 +450,16 @@ func (u UpstreamConfig) breakerSettings() breaker.Settings {
 		OpenFor:             time.Duration(b.OpenFor),
 		Probes:              b.Probes,
 	}
+	if b.ProbeEvery != nil {
+		s.ProbeEvery = time.Duration(*b.ProbeEvery)
+	} else {
+		openFor := s.OpenFor
+		if openFor == 0 {
+			openFor = breaker.DefaultOpenFor
+		}
+		s.ProbeEvery = openFor / probeShare
+	}
+	return s
 }
 
 // retryPolicy turns the retry section into the proxy's policy.
@@ -480,6 +497,8 @@ func validateResilience(u UpstreamConfig, bad func(err error, path ...any) error
 			return bad(errors.New("open_for must not be negative"), at("breaker", "open_for")...)
 		case b.Probes < 0:
 			return bad(errors.New("probes must not be negative"), at("breaker", "probes")...)
+		case b.ProbeEvery != nil && *b.ProbeEvery < 0:
+			return bad(errors.New("probe_every must not be negative (0s: no early probes)"), at("breaker", "probe_every")...)
 		case b.ConsecutiveFailures == -1 && b.FailureRatio == -1 && (b.Enabled == nil || *b.Enabled):
 			return bad(errors.New("both trip rules are off; say enabled: false to turn the breaker off"), at("breaker")...)
 		}

@@ -140,3 +140,22 @@ func TestMetricsSection(t *testing.T) {
 		})
 	}
 }
+
+func TestBreakerProbeEvery(t *testing.T) {
+	tests := []struct {
+		name, breaker string
+		want          time.Duration
+	}{
+		{"default: a sixth of the default open_for", "", 5 * time.Second},
+		{"a sixth of open_for", "    breaker: {open_for: 1m}\n", 10 * time.Second},
+		{"given", "    breaker: {open_for: 1m, probe_every: 2s}\n", 2 * time.Second},
+		{"off", "    breaker: {probe_every: 0s}\n", 0},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cfg, err := ParseConfig(strings.NewReader("upstreams:\n  - name: main\n    url: http://127.0.0.1:1/v1\n" + tt.breaker))
+			require.NoError(t, err)
+			assert.Equal(t, tt.want, cfg.Upstreams[0].breakerSettings().ProbeEvery)
+		})
+	}
+}

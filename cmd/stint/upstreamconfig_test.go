@@ -25,6 +25,7 @@ func TestUpstreamResilienceErrorsNameFieldAndLine(t *testing.T) {
 		{"negative open_for", head + "    breaker:\n      open_for: -1s\n", 5, "breaker.open_for"},
 		{"negative window", head + "    breaker:\n      window: -1m\n", 5, "breaker.window"},
 		{"negative probes", head + "    breaker:\n      probes: -1\n", 5, "breaker.probes"},
+		{"negative probe_every", head + "    breaker:\n      probe_every: -1s\n", 5, "breaker.probe_every"},
 		{"negative min_requests", head + "    breaker:\n      min_requests: -1\n", 5, "breaker.min_requests"},
 		{"both rules off", head + "    breaker:\n      consecutive_failures: -1\n      failure_ratio: -1\n", 5, "enabled: false"},
 		{"unknown breaker key", head + "    breaker:\n      trip_after: 3\n", 5, "trip_after"},
@@ -83,7 +84,7 @@ upstreams:
 		t.Fatal(err)
 	}
 	main, spare, plain := ups[0], ups[1], ups[2]
-	if want := (breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1, OpenFor: 10 * time.Second, Probes: 2}); main.Breaker != want {
+	if want := (breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1, OpenFor: 10 * time.Second, Probes: 2, ProbeEvery: 10 * time.Second / 6}); main.Breaker != want {
 		t.Errorf("main breaker %+v, want %+v", main.Breaker, want)
 	}
 	if main.Retry.MaxAttempts() != 1 || main.MaxConcurrent != 8 || !slices.Equal(main.Fallback, []string{"spare"}) {
@@ -96,7 +97,7 @@ upstreams:
 		t.Errorf("spare retry %+v, want %+v", spare.Retry, want)
 	}
 	// Nothing said: breaker on and retries on, with the defaults.
-	if plain.Breaker != (breaker.Settings{}) || plain.Retry.MaxAttempts() != retry.DefaultAttempts || plain.MaxConcurrent != 0 {
+	if plain.Breaker != (breaker.Settings{ProbeEvery: breaker.DefaultOpenFor / 6}) || plain.Retry.MaxAttempts() != retry.DefaultAttempts || plain.MaxConcurrent != 0 {
 		t.Errorf("plain: %+v %+v %d, want the defaults", plain.Breaker, plain.Retry, plain.MaxConcurrent)
 	}
 }
@@ -112,6 +113,7 @@ func TestExampleUpstreamSpellsOutTheDefaults(t *testing.T) {
 	want := breaker.Settings{
 		ConsecutiveFailures: breaker.DefaultConsecutiveFailures, FailureRatio: breaker.DefaultFailureRatio,
 		MinRequests: breaker.DefaultMinRequests, Window: breaker.DefaultWindow, OpenFor: breaker.DefaultOpenFor, Probes: breaker.DefaultProbes,
+		ProbeEvery: breaker.DefaultOpenFor / 6,
 	}
 	if got := u.breakerSettings(); got != want {
 		t.Errorf("example breaker %+v, want the defaults %+v", got, want)

@@ -67,6 +67,12 @@ type Settings struct {
 	// Probes is how many calls a half-open breaker lets through at once
 	// (per replica), and how many successes in a row close it.
 	Probes int
+	// ProbeEvery, while the breaker is open, lets one call through as an
+	// early probe once this long has passed since it opened or since the
+	// last early probe (one at a time per replica); the probe's success
+	// closes the breaker, for every replica sharing it, without waiting
+	// out OpenFor. Zero: no early probes.
+	ProbeEvery time.Duration
 }
 
 // Validate reports the first bad field, by its name.
@@ -84,6 +90,8 @@ func (s Settings) Validate() error {
 		return errors.New("open_for must not be negative")
 	case s.Probes < 0:
 		return errors.New("probes must not be negative")
+	case s.ProbeEvery < 0:
+		return errors.New("probe_every must not be negative")
 	case s.ConsecutiveFailures == -1 && s.FailureRatio == -1 && !s.Off:
 		return errors.New("consecutive_failures and failure_ratio are both off; set off: true to turn the breaker off")
 	}
@@ -187,8 +195,8 @@ type Breaker struct {
 	set   Settings
 	hooks Hooks
 	now   func() time.Time
-	local *gobreaker.CircuitBreaker[struct{}]
-	store gobreaker.SharedDataStore // nil: local only
+	local atomic.Pointer[gobreaker.CircuitBreaker[struct{}]] // replaced when an early probe closes it
+	store gobreaker.SharedDataStore                          // nil: local only
 	gs    gobreaker.Settings
 
 	localOpened atomic.Int64 // unix nanoseconds the local breaker last opened
@@ -199,6 +207,8 @@ type Breaker struct {
 	shared    *gobreaker.DistributedCircuitBreaker[struct{}]
 	storeDown time.Time // local state is used until then
 	probes    int       // half-open calls in flight
+	earlyAt   time.Time // when the last early probe went out
+	earlyBusy bool      // an early probe is in flight
 }
 
 // New returns a Breaker named name (the shared state's key). store nil
@@ -217,6 +227,12 @@ func New(name string, s Settings, store gobreaker.SharedDataStore, hooks Hooks) 
 		Timeout:      b.set.OpenFor,
 		ReadyToTrip:  b.set.readyToTrip,
 	}
+	b.local.Store(b.newLocal())
+	return b, nil
+}
+
+// newLocal makes a closed local breaker.
+func (b *Breaker) newLocal() *gobreaker.CircuitBreaker[struct{}] {
 	ls := b.gs
 	ls.OnStateChange = func(_ string, _, to gobreaker.State) {
 		if to == gobreaker.StateOpen {
@@ -224,8 +240,7 @@ func New(name string, s Settings, store gobreaker.SharedDataStore, hooks Hooks) 
 			b.tripped()
 		}
 	}
-	b.local = gobreaker.NewCircuitBreaker[struct{}](ls)
-	return b, nil
+	return gobreaker.NewCircuitBreaker[struct{}](ls)
 }
 
 func (b *Breaker) tripped() {
@@ -251,7 +266,7 @@ func (b *Breaker) State() (gobreaker.State, time.Time) {
 		}
 		b.storeFailed(err)
 	}
-	st := b.local.State()
+	st := b.local.Load().State()
 	if st != gobreaker.StateOpen {
 		return st, time.Time{}
 	}
@@ -295,6 +310,9 @@ func (b *Breaker) Allow() (*Permit, error) {
 	st, until := b.State()
 	switch st {
 	case gobreaker.StateOpen:
+		if p := b.earlyProbe(until); p != nil {
+			return p, nil
+		}
 		return nil, &OpenError{Name: b.name, Until: until}
 	case gobreaker.StateHalfOpen:
 		b.mu.Lock()
@@ -308,10 +326,88 @@ func (b *Breaker) Allow() (*Permit, error) {
 	return &Permit{b: b}, nil
 }
 
+// earlyProbe returns a permit for an early probe of a breaker open until
+// until, when one is due (see Settings.ProbeEvery), else nil.
+func (b *Breaker) earlyProbe(until time.Time) *Permit {
+	if b.set.ProbeEvery <= 0 {
+		return nil
+	}
+	now := b.now()
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	opened := until.Add(-b.set.OpenFor)
+	due := opened
+	if b.earlyAt.After(due) {
+		due = b.earlyAt
+	}
+	if b.earlyBusy || now.Before(due.Add(b.set.ProbeEvery)) {
+		return nil
+	}
+	b.earlyBusy, b.earlyAt = true, now
+	return &Permit{b: b, early: true}
+}
+
+// closeEarly closes the breaker after a successful early probe: the shared
+// state is replaced by a fresh closed one (unless it has left the open
+// state meanwhile), or the local breaker by a new one.
+func (b *Breaker) closeEarly() {
+	if b.useStore() {
+		err := b.closeShared()
+		if err == nil {
+			return
+		}
+		b.storeFailed(err)
+	}
+	if b.local.Load().State() == gobreaker.StateOpen {
+		b.local.Store(b.newLocal())
+	}
+}
+
+// closeShared writes a fresh closed state, made by gobreaker itself, over
+// a shared state that is still open, under the record lock.
+func (b *Breaker) closeShared() error {
+	if err := b.store.Lock(recordLock(b.name)); err != nil {
+		return err
+	}
+	defer func() { _ = b.store.Unlock(recordLock(b.name)) }()
+	data, err := b.store.GetData(stateKey(b.name))
+	if err != nil {
+		return err
+	}
+	var cur gobreaker.SharedState
+	if len(data) == 0 || json.Unmarshal(data, &cur) != nil || cur.State != gobreaker.StateOpen {
+		return nil // gone, or moved on meanwhile: nothing to close
+	}
+	mem := &memoryStore{}
+	if _, err := gobreaker.NewDistributedCircuitBreaker[struct{}](mem, b.gs); err != nil {
+		return err
+	}
+	var fresh gobreaker.SharedState
+	if err := json.Unmarshal(mem.data, &fresh); err != nil {
+		return fmt.Errorf("breaker %s: fresh state: %w", b.name, err)
+	}
+	fresh.Generation = cur.Generation + 1
+	out, err := json.Marshal(fresh)
+	if err != nil {
+		return err
+	}
+	return b.store.SetData(stateKey(b.name), out)
+}
+
+// memoryStore is a one-state gobreaker.SharedDataStore in memory, used to
+// have gobreaker make a fresh state.
+type memoryStore struct{ data []byte }
+
+func (m *memoryStore) Lock(string) error                { return nil }
+func (m *memoryStore) Unlock(string) error              { return nil }
+func (m *memoryStore) GetData(string) ([]byte, error)   { return m.data, nil }
+func (m *memoryStore) SetData(_ string, d []byte) error { m.data = d; return nil }
+
 // Permit is one allowed call. Report its outcome with Done, once.
 type Permit struct {
 	b     *Breaker
 	probe bool
+	early bool // an early probe of an open breaker
 	done  atomic.Bool
 }
 
@@ -321,6 +417,15 @@ func (p *Permit) Done(o Outcome) {
 		return
 	}
 	b := p.b
+	if p.early {
+		b.mu.Lock()
+		b.earlyBusy = false
+		b.mu.Unlock()
+		if o == Success {
+			b.closeEarly()
+		}
+		return // a failure changes nothing: the breaker is open
+	}
 	if p.probe {
 		b.mu.Lock()
 		b.probes--
@@ -356,7 +461,7 @@ func (b *Breaker) record(success bool) {
 		}
 		b.storeFailed(err)
 	}
-	_, _ = b.local.Execute(req)
+	_, _ = b.local.Load().Execute(req)
 }
 
 // recordLock names the lock held around recording an outcome.
