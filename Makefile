@@ -16,6 +16,7 @@ FUZZ_TARGETS := \
 	./budget/tokens:FuzzUpperBound:25000 \
 	./cache/runs:FuzzImport:60000 \
 	./proxy:FuzzRequestLine:60000 \
+	./proxy:FuzzPipeline:10000 \
 	./proxy/scrub:FuzzReader:150000
 
 .PHONY: help build test vet unit fuzz-short bench bench-shared bench-budgets bench-local bench-go clean
