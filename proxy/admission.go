@@ -23,10 +23,9 @@ import (
 //     clients therefore hold at most its own slots, never another team's.
 //
 // Then the body is read under the server's read timeout; a body that does
-// not arrive in time is answered 408. Once it has been read the read
-// deadline is lifted, so the wait for the upstream is not cut by it (net/http
-// cancels a request's context when a read deadline passes while the
-// handler runs).
+// not arrive in time is answered 408. (Once a body has been read to its
+// end, net/http clears the read deadline itself, so the wait for the
+// upstream is not cut by it.)
 
 // inFlight counts one team's requests in flight on this proxy.
 type inFlight struct {
@@ -103,12 +102,6 @@ func refuseConnection(w http.ResponseWriter, e *apiError) {
 func bodyTimedOut(err error) bool {
 	var ne net.Error
 	return errors.As(err, &ne) && ne.Timeout()
-}
-
-// bodyDone lifts the read deadline once the request body has been read:
-// from then on the handler may wait as long as its own bounds allow.
-func bodyDone(w http.ResponseWriter) {
-	_ = http.NewResponseController(w).SetReadDeadline(time.Time{})
 }
 
 // deadlineWriter extends the connection's write deadline before every

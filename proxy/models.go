@@ -32,7 +32,6 @@ func (p *Proxy) serveModels(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	defer release()
-	bodyDone(w) // a GET has no body: the wait for the upstreams is not a read
 	p.modelsMu.Lock()
 	body, code, missing, at := p.modelsBody, p.modelsCode, p.modelsMissing, p.modelsAt
 	p.modelsMu.Unlock()

@@ -783,7 +783,6 @@ func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiEr
 		}
 		return nil, badRequest("", "cannot read request body: %v", err)
 	}
-	bodyDone(w)
 	return body, nil
 }
 
