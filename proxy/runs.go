@@ -76,10 +76,13 @@ func runHeaders(h http.Header) (runCall, *apiError) {
 }
 
 // runKey identifies a request within a run: its endpoint and the canonical
-// form of its whole body, stream flag included, so a replayed call gets the
-// very bytes its recorded twin received.
+// form of its whole body (integers a double cannot hold keep their digits),
+// stream flag included, so a replayed call gets the very bytes its recorded
+// twin received.
 func runKey(ep endpoint, body []byte) (string, error) {
-	c, err := canon.Transform(body)
+	cz := canonicalizers.Get().(*canon.Canonicalizer)
+	c, err := cz.Append(nil, body)
+	canonicalizers.Put(cz)
 	if err != nil {
 		return "", err
 	}
