@@ -623,8 +623,10 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 func (p *Proxy) lookup(ctx context.Context, ll *logLine, req *request, key string, greedy bool) (*served, []byte) {
 	b, ok, err := p.writes.get(ctx, key)
 	if err != nil {
+		// A store that failed may still have served a copy it held (see
+		// writeBehind.get): the answer is then served, and says the store
+		// is unavailable.
 		p.storeFailed(ll, "get", err)
-		return nil, nil
 	}
 	if !ok {
 		return nil, nil

@@ -327,9 +327,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 // buildStore opens the cache store: the embedded file, or with store.redis
 // (and its cache not turned off) Redis, shared by every replica, which then
 // also coalesces misses across replicas. The hot tier goes in front of
-// either; in front of Redis its entries live at most store.redis.hot_ttl, so
-// a replica serves an answer another has refreshed only that long. It
-// connects s.redis when the config has store.redis.
+// either; in front of Redis its entries are served without asking Redis for
+// at most store.redis.hot_ttl, so a replica serves an answer another has
+// refreshed only that long, and (store.redis.stale_if_error) stay to be
+// served while Redis cannot be read. It connects s.redis when the config has
+// store.redis.
 func (s *server) buildStore(ctx context.Context, cfg Config, disk *boltstore.Store) (cache.Store, proxy.SharedFlights, error) {
 	var (
 		store  cache.Store = disk
@@ -350,7 +352,7 @@ func (s *server) buildStore(ctx context.Context, cfg Config, disk *boltstore.Sto
 			}
 			s.closers = append(s.closers, rs.Close) // before the client's
 			store, shared = rs, rs
-			hot.MaxAge = rc.hotTTL()
+			hot.MaxAge, hot.StaleIfError = rc.hotTTL(), rc.staleIfError()
 		}
 	}
 	if cfg.Cache.HotBytes > 0 {
