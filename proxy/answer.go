@@ -227,7 +227,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if req.stream {
-		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass)
+		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass, false)
 		ll.status, ll.usage = http.StatusOK, u
 		if hasUsage {
 			res.items = []served{{usage: u}}

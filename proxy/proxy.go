@@ -115,6 +115,14 @@ type Options struct {
 	Sleep func(ctx context.Context, d time.Duration) error
 	// Rand is the source of retry jitter; nil seeds one at random.
 	Rand rand.Source
+	// StoreBeforeAnswer releases the answer of a cacheable miss only after its
+	// entry is stored: Store.Put has returned (on the embedded store, the
+	// commit is fsynced; concurrent misses share commits), and a streamed
+	// miss is relayed as it comes but its final "data: [DONE]" event waits
+	// for the store. A Put that fails still releases the answer, marked
+	// Stint-Cache-Store: unavailable. Off, answers are stored right after
+	// they are sent (see writeBehind), which a crash can lose.
+	StoreBeforeAnswer bool
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -136,16 +144,17 @@ type Proxy struct {
 	now            func() time.Time
 	mux            *http.ServeMux
 
-	flights   coalesce.Group[*flightResult]
-	writes    *writeBehind
-	memo      *requestMemo
-	spend     SpendControl
-	adminKeys [][sha256.Size]byte
-	runs      runs.Journal
-	resil     *resilience
-	cursor    runs.Cursor // replay positions
-	left      leftCache
-	tasks     *background // journal writes for savings
+	flights           coalesce.Group[*flightResult]
+	writes            *writeBehind
+	memo              *requestMemo
+	spend             SpendControl
+	adminKeys         [][sha256.Size]byte
+	runs              runs.Journal
+	resil             *resilience
+	cursor            runs.Cursor // replay positions
+	storeBeforeAnswer bool        // Options.StoreBeforeAnswer
+	left              leftCache
+	tasks             *background // journal writes for savings
 
 	draining atomic.Bool
 
@@ -189,6 +198,7 @@ func New(opts Options) (*Proxy, error) {
 	p.adminKeys = opts.AdminKeyHashes
 	p.runs = opts.Runs
 	p.shared = opts.SharedFlights
+	p.storeBeforeAnswer = opts.StoreBeforeAnswer
 	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
@@ -342,6 +352,7 @@ type flightResult struct {
 	full     []byte   // the upstream's whole answer, assembled when streamed
 	items    []served // one per prompt sent
 	streamed bool     // the leader already streamed the answer to its client
+	doneHeld bool     // ... all of it but its final event (missCall.holdDone)
 	// unstorable: the streamed answer was relayed but cannot be rebuilt for
 	// storing or for sharing with waiters.
 	unstorable bool
@@ -533,7 +544,8 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if req.stream && len(misses) == len(items) {
 			streamTo = w
 		}
-		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses}, streamTo)
+		storing := !d.noStore
+		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses, storing && p.storeBeforeAnswer}, streamTo)
 		if res != nil && res.streamed {
 			leaderStreamed = true
 		}
@@ -543,10 +555,14 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if err != nil {
 			return nil, err
 		}
-		if !d.noStore && !res.unstorable {
+		if storing && !res.unstorable {
 			// A lease holder stores before it releases, so the replicas
-			// waiting on it find the answer.
-			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding)
+			// waiting on it find the answer; with StoreBeforeAnswer every answer
+			// waits for its entry.
+			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding || p.storeBeforeAnswer)
+		}
+		if res.doneHeld {
+			writeDone(streamTo)
 		}
 		return res, nil
 	})

@@ -129,6 +129,19 @@ type CacheConfig struct {
 	HotBytes       ByteSize `yaml:"hot_bytes"`
 	Sampled        bool     `yaml:"sampled"`
 	UncachedModels []string `yaml:"uncached_models"`
+	// StoreBeforeAnswer releases a miss's answer only once its entry is
+	// stored (on the embedded store: fsynced). Default true on the
+	// embedded store, false when the cache is on Redis.
+	StoreBeforeAnswer *bool `yaml:"store_before_answer"`
+}
+
+// storeBeforeAnswer is cache.store_before_answer with its default: on for
+// the embedded store, off for the shared cache on Redis.
+func (c *Config) storeBeforeAnswer() bool {
+	if v := c.Cache.StoreBeforeAnswer; v != nil {
+		return *v
+	}
+	return c.Store.Redis == nil || !c.Store.Redis.sharedCache()
 }
 
 // ServerConfig sets HTTP limits.

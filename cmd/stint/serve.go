@@ -19,6 +19,7 @@ import (
 	"github.com/redis/go-redis/v9"
 	"github.com/sony/gobreaker/v2"
 	"github.com/spf13/cobra"
+	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/allowance"
@@ -28,7 +29,6 @@ import (
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache"
-	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/cache/redisstore"
 	"github.com/stintlab/stint/cache/runs"
@@ -226,8 +226,8 @@ type server struct {
 	log     *slog.Logger
 	proxy   *proxy.Proxy
 	store   cache.Store
-	commits *boltgroup.Committer // the embedded file's shared group commit
-	spend   proxy.SpendControl   // nil when the config prices nothing
+	commits func(func(*bbolt.Tx) error) error // the embedded file's shared group commit
+	spend   proxy.SpendControl                // nil when the config prices nothing
 	closers []func() error
 
 	// redis is the client of store.redis (nil without it), shared by the
@@ -247,8 +247,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		return nil, fmt.Errorf("open store: %w", err)
 	}
 	s.closers = append(s.closers, disk.Close)
-	// The ledger's and run journal's writes share commits.
-	s.commits = boltgroup.New(disk.DB())
+	// The cache's, the ledger's and the run journal's writes share commits.
+	s.commits = disk.Update
 	store, shared, err := s.buildStore(ctx, cfg, disk)
 	if err != nil {
 		s.close()
@@ -290,7 +290,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	var journal runs.Journal
 	if s.redis != nil {
 		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix()})
-	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update}); err != nil {
+	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits}); err != nil {
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
 	}
@@ -315,6 +315,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
 		SharedFlights:  shared,
 		BreakerStore:   breakerStore,
+
+		StoreBeforeAnswer: cfg.storeBeforeAnswer(),
 	})
 	if err != nil {
 		s.close()
@@ -398,7 +400,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 			ledger, journal, gc.Overrides = al, al, al
 		}
 	} else {
-		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Update: s.commits.Update})
+		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Update: s.commits})
 		if err != nil {
 			return nil, fmt.Errorf("open ledger: %w", err)
 		}
