@@ -97,6 +97,10 @@ type Options struct {
 	// Runs journals calls that carry a Stint-Run header and answers
 	// replays from it; nil turns record/replay off.
 	Runs runs.Journal
+	// RunImport holds the limits of POST /stint/runs/import (MaxBytes,
+	// MaxBodyBytes, MaxMembers, MaxEntries; zero: the runs package's
+	// defaults); As and Replace come from each request.
+	RunImport runs.ImportOptions
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
 	// admin endpoints (AdminPrefix); empty turns them off.
 	AdminKeyHashes [][sha256.Size]byte
@@ -150,6 +154,7 @@ type Proxy struct {
 	spend             SpendControl
 	adminKeys         [][sha256.Size]byte
 	runs              runs.Journal
+	runImport         runs.ImportOptions // limits of an import
 	resil             *resilience
 	cursor            runs.Cursor // replay positions
 	storeBeforeAnswer bool        // Options.StoreBeforeAnswer
@@ -197,6 +202,8 @@ func New(opts Options) (*Proxy, error) {
 	p.spend = opts.Spend
 	p.adminKeys = opts.AdminKeyHashes
 	p.runs = opts.Runs
+	p.runImport = runs.ImportOptions{MaxBytes: opts.RunImport.MaxBytes, MaxBodyBytes: opts.RunImport.MaxBodyBytes,
+		MaxMembers: opts.RunImport.MaxMembers, MaxEntries: opts.RunImport.MaxEntries}
 	p.shared = opts.SharedFlights
 	p.storeBeforeAnswer = opts.StoreBeforeAnswer
 	p.tasks = newBackground(maxPendingWrites)
@@ -415,6 +422,16 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 			if aerr := p.serveReplay(w, r, ll, team, rc, ep, body); aerr != nil {
 				fail(aerr)
 			}
+			return
+		}
+		// A team whose runs are at their quota cannot record: refused
+		// before anything is paid for. (A call that fits now but whose
+		// answer does not is refused when it is journaled.)
+		if u, err := p.runs.Usage(r.Context(), team.Name); err != nil {
+			fail(journalError(err))
+			return
+		} else if u.QuotaBytes > 0 && u.Bytes >= u.QuotaBytes {
+			fail(quotaError(&runs.QuotaError{Team: team.Name, Used: u.Bytes, Quota: u.QuotaBytes}))
 			return
 		}
 		r = r.WithContext(withRun(r.Context(), rc.id)) // spend entries name the run

@@ -128,6 +128,7 @@ func (p *Proxy) serveReplay(w http.ResponseWriter, r *http.Request, ll *logLine,
 	ll.outcome, ll.status = OutcomeReplay, a.Status
 	h := w.Header()
 	h.Set("Content-Type", a.ContentType)
+	h.Set("X-Content-Type-Options", "nosniff") // a browser takes the answer for what it says it is
 	h.Set(HeaderCache, OutcomeReplay)
 	h.Set(HeaderRun, rc.id)
 	if p.spend != nil {
@@ -224,6 +225,10 @@ func (rr *runRecorder) finish(record func(runs.Answer) error) {
 		h := rr.w.Header()
 		for _, k := range []string{HeaderCost, HeaderSaved, HeaderBudgetLeft, "Content-Length"} {
 			h.Del(k)
+		}
+		if errors.Is(err, runs.ErrQuota) {
+			writeError(rr.w, quotaError(err))
+			return
 		}
 		writeError(rr.w, journalError(err))
 	case err != nil:

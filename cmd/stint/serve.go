@@ -289,8 +289,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	}
 	var journal runs.Journal
 	if s.redis != nil {
-		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix()})
-	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits}); err != nil {
+		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix(), QuotaBytes: int64(cfg.Runs.QuotaBytes)})
+	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits, QuotaBytes: int64(cfg.Runs.QuotaBytes)}); err != nil {
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
 	}
@@ -312,6 +312,7 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Spend:          spend,
 		AdminKeyHashes: adminKeys,
 		Runs:           journal,
+		RunImport:      runs.ImportOptions{MaxBytes: int64(cfg.Runs.MaxArchiveBytes), MaxBodyBytes: int64(cfg.Runs.MaxBodyBytes)},
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
 		SharedFlights:  shared,
 		BreakerStore:   breakerStore,
