@@ -70,6 +70,11 @@ func TestHotConformance(t *testing.T) {
 			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxBytes: -1})
 		})
 	})
+	t.Run("stale if error", func(t *testing.T) {
+		storetest.Run(t, func(t *testing.T) cache.Store {
+			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxAge: 20 * time.Millisecond, StaleIfError: true})
+		})
+	})
 	t.Run("tiny tier", func(t *testing.T) {
 		storetest.Run(t, func(t *testing.T) cache.Store {
 			return cache.NewHot(newBolt(t, boltstore.Options{}), cache.HotOptions{MaxBytes: 4 << 10})

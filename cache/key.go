@@ -32,7 +32,9 @@ const keyDomain = "stint cache key v1\x00"
 // and ("a", "bc") hash differently.
 //
 // canonicalBody is the RFC 8785 canonical JSON (see package canon) of the
-// request fields that affect the answer.
+// request fields that affect the answer; the proxy writes it with
+// canon.Canonicalizer.ExactIntegers, so that integers a double cannot hold
+// keep their digits and do not share a key.
 func Key(parts KeyParts, canonicalBody []byte) string {
 	var sum [sha256.Size]byte
 	n := len(keyDomain) + 5*8 + len(parts.Namespace) + len(parts.Upstream) + len(parts.Endpoint) + len(parts.Model) + len(canonicalBody)

@@ -227,7 +227,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if req.stream {
-		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass)
+		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass, false)
 		ll.status, ll.usage = http.StatusOK, u
 		if hasUsage {
 			res.items = []served{{usage: u}}
@@ -334,7 +334,10 @@ func keyBody(req *request, prompt json.RawMessage) ([]byte, error) {
 }
 
 // canonicalizers reuses canonicalizers' scratch buffers across requests.
-var canonicalizers = sync.Pool{New: func() any { return new(canon.Canonicalizer) }}
+// They keep the digits of integers a double cannot hold
+// (canon.Canonicalizer.ExactIntegers): under RFC 8785 alone seed
+// 9007199254740993 would share 9007199254740992's key.
+var canonicalizers = sync.Pool{New: func() any { return &canon.Canonicalizer{ExactIntegers: true} }}
 
 // checkCanonical reports whether body is I-JSON as RFC 8785 §3.1 requires (no
 // duplicate member names, no lone surrogates, numbers a double can hold), so

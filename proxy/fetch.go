@@ -22,6 +22,9 @@ type missCall struct {
 	req    *request
 	items  []item
 	misses []int
+	// holdDone keeps a relayed stream's final "data: [DONE]" event back
+	// (flightResult.doneHeld) until the caller has stored the answer.
+	holdDone bool
 }
 
 // fetch makes the upstream call for the missing prompts of c.req (through
@@ -60,7 +63,8 @@ func (p *Proxy) fetch(clientCtx, ctx context.Context, c missCall, streamTo http.
 	res := &flightResult{}
 	if stream {
 		res.streamed = true
-		res.full, _, _, err = p.relay(streamTo, resp, req, OutcomeMiss)
+		res.full, _, _, err = p.relay(streamTo, resp, req, OutcomeMiss, c.holdDone)
+		res.doneHeld = c.holdDone
 	} else {
 		res.full, err = io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
 		if err != nil {
@@ -84,6 +88,11 @@ func (p *Proxy) fetch(clientCtx, ctx context.Context, c missCall, streamTo http.
 		return res, err
 	}
 	return res, nil
+}
+
+// writeDone sends a relayed stream's final event that relay held back.
+func writeDone(w http.ResponseWriter) {
+	_ = sse.NewWriter(w).WriteDone() // a client that has gone cannot take it
 }
 
 func itemPrompts(items []item, misses []int) []json.RawMessage {
@@ -150,8 +159,9 @@ func upstreamBody(req *request, prompts []json.RawMessage, stream bool) ([]byte,
 //
 // It returns the assembled answer (or errUnstorable) and the usage the
 // stream reported, if it did. Spend figures, known only at the end, are sent
-// as HTTP trailers.
-func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, outcome string) ([]byte, usage, bool, error) {
+// as HTTP trailers. With holdDone the final "data: [DONE]" event is left for
+// the caller to send (writeDone).
+func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, outcome string, holdDone bool) ([]byte, usage, bool, error) {
 	h := w.Header()
 	h.Set("Content-Type", "text/event-stream")
 	h.Set("Cache-Control", "no-cache")
@@ -173,7 +183,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 			return nil, usage{}, false, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
 		}
 		if ev.IsDone() {
-			if clientOK {
+			if clientOK && !holdDone {
 				_ = sw.WriteDone()
 			}
 			break

@@ -122,6 +122,10 @@ type Options struct {
 	// Runs journals calls that carry a Stint-Run header and answers
 	// replays from it; nil turns record/replay off.
 	Runs runs.Journal
+	// RunImport holds the limits of POST /stint/runs/import (MaxBytes,
+	// MaxBodyBytes, MaxMembers, MaxEntries; zero: the runs package's
+	// defaults); As and Replace come from each request.
+	RunImport runs.ImportOptions
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
 	// admin endpoints (AdminPrefix); empty turns them off.
 	AdminKeyHashes [][sha256.Size]byte
@@ -140,6 +144,14 @@ type Options struct {
 	Sleep func(ctx context.Context, d time.Duration) error
 	// Rand is the source of retry jitter; nil seeds one at random.
 	Rand rand.Source
+	// StoreBeforeAnswer releases the answer of a cacheable miss only after its
+	// entry is stored: Store.Put has returned (on the embedded store, the
+	// commit is fsynced; concurrent misses share commits), and a streamed
+	// miss is relayed as it comes but its final "data: [DONE]" event waits
+	// for the store. A Put that fails still releases the answer, marked
+	// Stint-Cache-Store: unavailable. Off, answers are stored right after
+	// they are sent (see writeBehind), which a crash can lose.
+	StoreBeforeAnswer bool
 }
 
 // Proxy is the caching proxy. It is an http.Handler; create it with New.
@@ -165,16 +177,18 @@ type Proxy struct {
 	scrub          *scrub.Scrubber      // upstream credentials; nil: none
 	writeTimeout   time.Duration
 
-	flights   coalesce.Group[*flightResult]
-	writes    *writeBehind
-	memo      *requestMemo
-	spend     SpendControl
-	adminKeys [][sha256.Size]byte
-	runs      runs.Journal
-	resil     *resilience
-	cursor    runs.Cursor // replay positions
-	left      leftCache
-	tasks     *background // journal writes for savings
+	flights           coalesce.Group[*flightResult]
+	writes            *writeBehind
+	memo              *requestMemo
+	spend             SpendControl
+	adminKeys         [][sha256.Size]byte
+	runs              runs.Journal
+	runImport         runs.ImportOptions // limits of an import
+	resil             *resilience
+	cursor            runs.Cursor // replay positions
+	storeBeforeAnswer bool        // Options.StoreBeforeAnswer
+	left              leftCache
+	tasks             *background // journal writes for savings
 
 	draining atomic.Bool
 
@@ -217,7 +231,10 @@ func New(opts Options) (*Proxy, error) {
 	p.spend = opts.Spend
 	p.adminKeys = opts.AdminKeyHashes
 	p.runs = opts.Runs
+	p.runImport = runs.ImportOptions{MaxBytes: opts.RunImport.MaxBytes, MaxBodyBytes: opts.RunImport.MaxBodyBytes,
+		MaxMembers: opts.RunImport.MaxMembers, MaxEntries: opts.RunImport.MaxEntries}
 	p.shared = opts.SharedFlights
+	p.storeBeforeAnswer = opts.StoreBeforeAnswer
 	p.tasks = newBackground(maxPendingWrites)
 	copy(p.upstreams, opts.Upstreams)
 	for i := range p.upstreams {
@@ -388,6 +405,7 @@ type flightResult struct {
 	full     []byte   // the upstream's whole answer, assembled when streamed
 	items    []served // one per prompt sent
 	streamed bool     // the leader already streamed the answer to its client
+	doneHeld bool     // ... all of it but its final event (missCall.holdDone)
 	// unstorable: the streamed answer was relayed but cannot be rebuilt for
 	// storing or for sharing with waiters.
 	unstorable bool
@@ -451,6 +469,16 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 			if aerr := p.serveReplay(w, r, ll, team, rc, ep, body); aerr != nil {
 				fail(aerr)
 			}
+			return
+		}
+		// A team whose runs are at their quota cannot record: refused
+		// before anything is paid for. (A call that fits now but whose
+		// answer does not is refused when it is journaled.)
+		if u, err := p.runs.Usage(r.Context(), team.Name); err != nil {
+			fail(journalError(err))
+			return
+		} else if u.QuotaBytes > 0 && u.Bytes >= u.QuotaBytes {
+			fail(quotaError(&runs.QuotaError{Team: team.Name, Used: u.Bytes, Quota: u.QuotaBytes}))
 			return
 		}
 		r = r.WithContext(withRun(r.Context(), rc.id)) // spend entries name the run
@@ -580,7 +608,8 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if req.stream && len(misses) == len(items) {
 			streamTo = w
 		}
-		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses}, streamTo)
+		storing := !d.noStore
+		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses, storing && p.storeBeforeAnswer}, streamTo)
 		if res != nil && res.streamed {
 			leaderStreamed = true
 		}
@@ -590,10 +619,14 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		if err != nil {
 			return nil, err
 		}
-		if !d.noStore && !res.unstorable {
+		if storing && !res.unstorable {
 			// A lease holder stores before it releases, so the replicas
-			// waiting on it find the answer.
-			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding)
+			// waiting on it find the answer; with StoreBeforeAnswer every answer
+			// waits for its entry.
+			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding || p.storeBeforeAnswer)
+		}
+		if res.doneHeld {
+			writeDone(streamTo)
 		}
 		return res, nil
 	})
@@ -670,8 +703,10 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 func (p *Proxy) lookup(ctx context.Context, ll *logLine, req *request, key string, greedy bool) (*served, []byte) {
 	b, ok, err := p.writes.get(ctx, key)
 	if err != nil {
+		// A store that failed may still have served a copy it held (see
+		// writeBehind.get): the answer is then served, and says the store
+		// is unavailable.
 		p.storeFailed(ll, "get", err)
-		return nil, nil
 	}
 	if !ok {
 		return nil, nil

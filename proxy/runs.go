@@ -76,10 +76,13 @@ func runHeaders(h http.Header) (runCall, *apiError) {
 }
 
 // runKey identifies a request within a run: its endpoint and the canonical
-// form of its whole body, stream flag included, so a replayed call gets the
-// very bytes its recorded twin received.
+// form of its whole body (integers a double cannot hold keep their digits),
+// stream flag included, so a replayed call gets the very bytes its recorded
+// twin received.
 func runKey(ep endpoint, body []byte) (string, error) {
-	c, err := canon.Transform(body)
+	cz := canonicalizers.Get().(*canon.Canonicalizer)
+	c, err := cz.Append(nil, body)
+	canonicalizers.Put(cz)
 	if err != nil {
 		return "", err
 	}
@@ -125,6 +128,7 @@ func (p *Proxy) serveReplay(w http.ResponseWriter, r *http.Request, ll *logLine,
 	ll.outcome, ll.status = OutcomeReplay, a.Status
 	h := w.Header()
 	h.Set("Content-Type", a.ContentType)
+	h.Set("X-Content-Type-Options", "nosniff") // a browser takes the answer for what it says it is
 	h.Set(HeaderCache, OutcomeReplay)
 	h.Set(HeaderRun, rc.id)
 	if p.spend != nil {
@@ -221,6 +225,10 @@ func (rr *runRecorder) finish(record func(runs.Answer) error) {
 		h := rr.w.Header()
 		for _, k := range []string{HeaderCost, HeaderSaved, HeaderBudgetLeft, "Content-Length"} {
 			h.Del(k)
+		}
+		if errors.Is(err, runs.ErrQuota) {
+			writeError(rr.w, quotaError(err))
+			return
 		}
 		writeError(rr.w, journalError(err))
 	case err != nil:

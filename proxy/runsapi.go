@@ -1,6 +1,7 @@
 package proxy
 
 import (
+	"cmp"
 	"errors"
 	"fmt"
 	"net/http"
@@ -14,9 +15,6 @@ import (
 // RunsPrefix starts the path of the run endpoints. They take a team key
 // and show only that team's runs.
 const RunsPrefix = "/stint/runs"
-
-// maxArchiveBytes bounds an imported archive's upload.
-const maxArchiveBytes = 4 << 30
 
 // RunView is a run's summary as the run endpoints return it.
 type RunView struct {
@@ -49,6 +47,10 @@ func ViewOf(s runs.Summary) RunView {
 // RunList is the body of GET /stint/runs.
 type RunList struct {
 	Runs []RunView `json:"runs"`
+	// StoredBytes is what the team's runs hold against its quota,
+	// QuotaBytes (0: none).
+	StoredBytes int64 `json:"stored_bytes"`
+	QuotaBytes  int64 `json:"quota_bytes"`
 }
 
 func (p *Proxy) routeRuns(mux *http.ServeMux) {
@@ -83,6 +85,13 @@ func runError(run string, err error) *apiError {
 		return &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "run_not_found", message: fmt.Sprintf("your team has no run %q", run)}
 	case errors.Is(err, runs.ErrExists):
 		return &apiError{status: http.StatusConflict, typ: errInvalidRequest, code: "run_exists", message: fmt.Sprintf("your team already has a run %q: import it under another id (as=) or replace it (replace=true)", run)}
+	case errors.Is(err, runs.ErrQuota):
+		return quotaError(err)
+	case errors.Is(err, runs.ErrTooLarge):
+		return &apiError{status: http.StatusRequestEntityTooLarge, typ: errInvalidRequest, code: "archive_too_large", message: err.Error()}
+	case errors.As(err, new(*http.MaxBytesError)):
+		return &apiError{status: http.StatusRequestEntityTooLarge, typ: errInvalidRequest, code: "archive_too_large",
+			message: "the upload is larger than an archive within the import limit can be"}
 	case errors.Is(err, runs.ErrCorruptArchive):
 		return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "corrupt_archive", message: err.Error()}
 	case errors.Is(err, runs.ErrInvalid):
@@ -91,13 +100,30 @@ func runError(run string, err error) *apiError {
 	return journalError(err)
 }
 
+// quotaError answers a call refused by the team's run storage quota: 403,
+// since the request is fine and only the team's storage is full.
+func quotaError(err error) *apiError {
+	msg := "your team's run journals are at their storage quota"
+	var qe *runs.QuotaError
+	if errors.As(err, &qe) {
+		msg = fmt.Sprintf("your team's runs hold %d bytes of its %d-byte storage quota, and this needs %d more: delete runs (stint runs delete) or ask for a larger quota (runs.quota_bytes)",
+			qe.Used, qe.Quota, qe.Need)
+	}
+	return &apiError{status: http.StatusForbidden, typ: errInvalidRequest, code: "run_storage_quota_exceeded", message: msg}
+}
+
 func (p *Proxy) serveRunList(w http.ResponseWriter, r *http.Request, team *Team) {
 	list, err := p.runs.List(r.Context(), team.Name)
 	if err != nil {
 		writeError(w, journalError(err))
 		return
 	}
-	out := RunList{Runs: make([]RunView, 0, len(list))}
+	u, err := p.runs.Usage(r.Context(), team.Name)
+	if err != nil {
+		writeError(w, journalError(err))
+		return
+	}
+	out := RunList{Runs: make([]RunView, 0, len(list)), StoredBytes: u.Bytes, QuotaBytes: u.QuotaBytes}
 	for _, s := range list {
 		out.Runs = append(out.Runs, ViewOf(s))
 	}
@@ -131,7 +157,8 @@ func (p *Proxy) serveRunExport(w http.ResponseWriter, r *http.Request, team *Tea
 
 func (p *Proxy) serveRunImport(w http.ResponseWriter, r *http.Request, team *Team) {
 	q := r.URL.Query()
-	opts := runs.ImportOptions{As: q.Get("as")}
+	opts := p.runImport
+	opts.As = q.Get("as")
 	if v := q.Get("replace"); v != "" {
 		b, err := strconv.ParseBool(v)
 		if err != nil {
@@ -146,7 +173,14 @@ func (p *Proxy) serveRunImport(w http.ResponseWriter, r *http.Request, team *Tea
 			return
 		}
 	}
-	s, err := p.runs.Import(r.Context(), team.Name, http.MaxBytesReader(w, r.Body, maxArchiveBytes), opts)
+	// The upload is bounded as Import bounds the compressed archive.
+	limit := cmp.Or(opts.MaxBytes, runs.DefaultMaxArchiveBytes)
+	limit += limit/64 + 4096
+	if r.ContentLength > limit {
+		writeError(w, runError(opts.As, &http.MaxBytesError{Limit: limit}))
+		return
+	}
+	s, err := p.runs.Import(r.Context(), team.Name, http.MaxBytesReader(w, r.Body, limit), opts)
 	if err != nil {
 		writeError(w, runError(opts.As, err))
 		return

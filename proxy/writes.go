@@ -32,13 +32,28 @@ func newWriteBehind(store cache.Store) *writeBehind {
 	return &writeBehind{store: store, bg: newBackground(maxPendingWrites), pending: map[string][]byte{}}
 }
 
-// get returns the record for key: one still being written, else the store's.
+// staleGetter is a store that can stand in for a failing store behind it
+// with a copy it holds (cache.Hot with StaleIfError).
+type staleGetter interface {
+	// GetStale is Get that, when it serves such a copy, returns it with
+	// found and stale set and the failure as err.
+	GetStale(ctx context.Context, key string) (value []byte, found, stale bool, err error)
+}
+
+// get returns the record for key: one still being written, else the
+// store's. When the store failed but served a copy it held, get returns
+// that copy, found, and the failure: the caller may use the record and
+// should report the failure.
 func (wb *writeBehind) get(ctx context.Context, key string) ([]byte, bool, error) {
 	wb.mu.Lock()
 	b, ok := wb.pending[key]
 	wb.mu.Unlock()
 	if ok {
 		return b, true, nil
+	}
+	if sg, ok := wb.store.(staleGetter); ok {
+		v, found, stale, err := sg.GetStale(ctx, key)
+		return v, found || stale, err
 	}
 	return wb.store.Get(ctx, key)
 }

@@ -37,6 +37,7 @@ import (
 	bberrors "go.etcd.io/bbolt/errors"
 
 	"github.com/stintlab/stint/cache"
+	"github.com/stintlab/stint/cache/boltgroup"
 )
 
 // Defaults for zero Options fields.
@@ -93,10 +94,18 @@ type Options struct {
 	// the file lock before it fails with ErrLocked. 0 means
 	// DefaultLockTimeout; -1 means try once. New ignores it.
 	LockTimeout time.Duration
-	// BatchDelay is how long a Put waits for concurrent Puts to share its
-	// commit and fsync (bbolt's MaxBatchDelay). 0 means DefaultBatchDelay.
-	// Open sets it on the file it owns; New leaves a shared handle as it is.
+	// BatchDelay is bbolt's MaxBatchDelay, which Open sets on the file it
+	// owns for the file's other users of DB.Batch (New leaves a shared
+	// handle as it is); Puts do not use DB.Batch. 0 means
+	// DefaultBatchDelay.
 	BatchDelay time.Duration
+	// Update, when set, runs Put's write transactions: a group committer
+	// (cache/boltgroup) shared with the file's other writers. Its
+	// functions may run more than once. nil means a boltgroup.Committer of
+	// the store's own, which Store.Update offers to the others. Either
+	// way concurrent Puts share one commit and one fsync, and a lone Put
+	// commits at once.
+	Update func(func(*bbolt.Tx) error) error
 	// Now is the clock for stored-at and expiry times. nil means time.Now.
 	Now func() time.Time
 	// Logger receives background sweep errors. nil means they are dropped.
@@ -160,8 +169,9 @@ var castagnoli = crc32.MakeTable(crc32.Castagnoli)
 type Store struct {
 	db          *bbolt.DB
 	ownsDB      bool
-	maxBytes    int64 // <= 0: no cap
-	compressMin int   // < 0: never
+	write       func(func(*bbolt.Tx) error) error // Put's group commit
+	maxBytes    int64                             // <= 0: no cap
+	compressMin int                               // < 0: never
 	codec       Codec
 	now         func() time.Time
 	logger      *slog.Logger
@@ -245,7 +255,10 @@ func New(db *bbolt.DB, opts Options) (*Store, error) {
 }
 
 func newStore(db *bbolt.DB, opts Options, owns bool) (*Store, error) {
-	s := &Store{db: db, ownsDB: owns, now: opts.Now, logger: opts.Logger}
+	s := &Store{db: db, ownsDB: owns, now: opts.Now, logger: opts.Logger, write: opts.Update}
+	if s.write == nil {
+		s.write = boltgroup.New(db).Update
+	}
 	switch {
 	case opts.MaxBytes == 0:
 		s.maxBytes = DefaultMaxBytes
@@ -417,9 +430,10 @@ func (s *Store) Put(ctx context.Context, key string, value []byte, ttl time.Dura
 		return fmt.Errorf("boltstore: put %.16s…: %d bytes stored, cap %d: %w", key, size, s.maxBytes, cache.ErrTooLarge)
 	}
 	k := []byte(key)
-	// Concurrent Puts share one transaction and one fsync (bbolt's Batch):
-	// the function reads all its state from tx, so a retry is safe.
-	err := s.batch(func(tx *bbolt.Tx) error {
+	// Concurrent Puts share one transaction and one fsync (the group
+	// commit): the function reads all its state from tx, so a retry is
+	// safe.
+	err := s.commit(func(tx *bbolt.Tx) error {
 		w, err := openWriter(tx)
 		if err != nil {
 			return err
@@ -563,10 +577,21 @@ func (s *Store) update(fn func(*bbolt.Tx) error) (err error) {
 	return s.db.Update(fn)
 }
 
-func (s *Store) batch(fn func(*bbolt.Tx) error) (err error) {
-	defer recoverCorrupt(&err)
-	return s.db.Batch(fn)
+// commit runs fn through the group commit. fn may run on the committer's
+// goroutine, so a panic is turned into ErrCorrupt inside it.
+func (s *Store) commit(fn func(*bbolt.Tx) error) error {
+	return s.write(func(tx *bbolt.Tx) (err error) {
+		defer recoverCorrupt(&err)
+		return fn(tx)
+	})
 }
+
+// Update runs fn in a write transaction through the group commit Puts use,
+// so that the file's other writers (a ledger, a run journal) share commits
+// and fsyncs with the cache. fn may run more than once and must start from
+// scratch each time; it must not touch the store's bucket. It returns fn's
+// error or the commit's.
+func (s *Store) Update(fn func(*bbolt.Tx) error) error { return s.write(fn) }
 
 func recoverCorrupt(err *error) {
 	if r := recover(); r != nil {

@@ -8,7 +8,9 @@
 // Transform canonicalizes raw JSON text. Marshal canonicalizes a value already
 // decoded by encoding/json (with Decoder.UseNumber, so numbers keep their
 // text). A Canonicalizer does the same while reusing its scratch space, for
-// callers that canonicalize on every request.
+// callers that canonicalize on every request; with its ExactIntegers option
+// it keeps the digits of integers a double cannot hold, which RFC 8785 alone
+// would merge (9007199254740992 and 9007199254740993 write the same).
 //
 // Input that is not I-JSON (RFC 7493, which RFC 8785 §3.1 requires) is
 // rejected with an error that wraps one of the sentinel errors below: invalid
@@ -70,6 +72,17 @@ func Transform(raw []byte) ([]byte, error) {
 // for the next. Its zero value is ready to use. It is not safe for concurrent
 // use; a server keeps one per goroutine or in a sync.Pool.
 type Canonicalizer struct {
+	// ExactIntegers, when set, writes an integer literal (no fraction, no
+	// exponent) outside [-(2^53)+1, 2^53-1], the range RFC 7493 §2.2 says
+	// a double holds exactly, with its own digits instead of as the
+	// nearest double (RFC 8785 §3.2.2.3). RFC 8785 alone gives
+	// 9007199254740992 and 9007199254740993 the same text; readers that
+	// keep integers exact (most JSON libraries outside JavaScript) take
+	// them as different values, so a cache key must not merge them. The
+	// output is then RFC 8785's for every document without such integers.
+	// Off (the zero value) means RFC 8785 exactly.
+	ExactIntegers bool
+
 	p parser
 	m marshaler
 }
@@ -80,6 +93,7 @@ type Canonicalizer struct {
 func (c *Canonicalizer) Append(dst, raw []byte) ([]byte, error) {
 	p := &c.p
 	p.reset(raw)
+	p.exact = c.ExactIntegers
 	root, err := p.parseDocument()
 	if err != nil {
 		p.release()
@@ -112,6 +126,9 @@ type node struct {
 	esc bool
 	// verbatim is set on a number whose input text is already canonical.
 	verbatim bool
+	// wide is set on an integer literal a double cannot hold exactly
+	// (see Canonicalizer.ExactIntegers); lo, hi hold its text.
+	wide bool
 	// lo, hi: the input span of a scalar (a string's span excludes its
 	// quotes), or the range of a container's children.
 	lo, hi int
@@ -133,6 +150,7 @@ type member struct {
 // each child list contiguous without allocating per container, and makes the
 // whole parse and write O(n) (plus sorting), whatever the nesting.
 type parser struct {
+	exact   bool // write wide integers with their digits
 	in      []byte
 	i       int
 	nodes   []node
@@ -521,7 +539,7 @@ func (p *parser) write(dst []byte, idx int) []byte {
 	case kindFalse:
 		return append(dst, "false"...)
 	case kindNumber:
-		if n.verbatim {
+		if n.verbatim || (n.wide && p.exact) {
 			return append(dst, p.in[n.lo:n.hi]...)
 		}
 		return appendNumber(dst, n.num)

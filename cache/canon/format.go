@@ -69,7 +69,20 @@ func (p *parser) number() (node, error) {
 		p.i = start
 		return node{}, p.errorf(ErrNumberRange, "number %s", quoteForError(text))
 	}
-	return node{kind: kindNumber, num: f}, nil
+	return node{kind: kindNumber, num: f, lo: start, hi: i, wide: plain && wideDigits(in[digitsStart:i])}, nil
+}
+
+// maxExact is 2^53-1, the largest integer of the range RFC 7493 §2.2 says a
+// double holds exactly.
+const maxExact = "9007199254740991"
+
+// wideDigits reports whether the digits of an integer (no sign, no leading
+// zeros) are beyond maxExact.
+func wideDigits(d []byte) bool {
+	if len(d) != len(maxExact) {
+		return len(d) > len(maxExact)
+	}
+	return string(d) > maxExact
 }
 
 // parseFloat parses grammar-checked number text. The text is viewed as a

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"slices"
+	"strconv"
 	"unicode/utf8"
 	"unsafe"
 )
@@ -13,7 +14,7 @@ import (
 // decodes JSON into an interface: nil, bool, string, json.Number (decode with
 // Decoder.UseNumber so numbers keep their text) or float64, []any and
 // map[string]any, nested freely. It also accepts int and int64 (taken as the
-// nearest double, as ECMAScript would), json.RawMessage (canonicalized with
+// nearest double, as ECMAScript would, unless Canonicalizer.ExactIntegers), json.RawMessage (canonicalized with
 // Transform), and map[string]json.RawMessage, the usual shape for a body whose
 // unknown fields are passed through untouched.
 //
@@ -63,16 +64,16 @@ func (m *marshaler) value(dst []byte, v any, depth int) ([]byte, error) {
 		}
 		return appendQuoted(dst, x), nil
 	case json.Number:
-		return appendNumberText(dst, string(x))
+		return appendNumberText(dst, string(x), m.c.ExactIntegers)
 	case float64:
 		if math.IsNaN(x) || math.IsInf(x, 0) {
 			return dst, fmt.Errorf("%w: %v", ErrNumberRange, x)
 		}
 		return appendNumber(dst, x), nil
 	case int:
-		return appendNumber(dst, float64(x)), nil
+		return m.appendInt(dst, int64(x)), nil
 	case int64:
-		return appendNumber(dst, float64(x)), nil
+		return m.appendInt(dst, x), nil
 	case json.RawMessage:
 		return m.raw(dst, x)
 	case []any:
@@ -104,6 +105,7 @@ func (m *marshaler) value(dst []byte, v any, depth int) ([]byte, error) {
 func (m *marshaler) raw(dst []byte, x json.RawMessage) ([]byte, error) {
 	p := &m.c.p
 	p.reset(x)
+	p.exact = m.c.ExactIntegers
 	root, err := p.parseDocument()
 	if err == nil {
 		dst = p.write(dst, root)
@@ -148,10 +150,20 @@ func appendMap[V any](m *marshaler, dst []byte, x map[string]V, depth int) ([]by
 	return append(dst, '}'), nil
 }
 
+// appendInt writes an integer as the nearest double, or with its own
+// digits when ExactIntegers is set and a double cannot hold it exactly.
+func (m *marshaler) appendInt(dst []byte, x int64) []byte {
+	if m.c.ExactIntegers && (x > 1<<53-1 || x < -(1<<53-1)) {
+		return strconv.AppendInt(dst, x, 10)
+	}
+	return appendNumber(dst, float64(x))
+}
+
 // appendNumberText canonicalizes the text of a json.Number, checking the
-// RFC 8259 grammar first (a json.Number can be built from any string). The
-// bytes are viewed without copying and only read.
-func appendNumberText(dst []byte, s string) ([]byte, error) {
+// RFC 8259 grammar first (a json.Number can be built from any string), with
+// a wide integer's own digits when exact is set. The bytes are viewed
+// without copying and only read.
+func appendNumberText(dst []byte, s string, exact bool) ([]byte, error) {
 	p := parser{in: unsafe.Slice(unsafe.StringData(s), len(s))}
 	if len(s) == 0 || !(s[0] == '-' || (s[0] >= '0' && s[0] <= '9')) {
 		return dst, fmt.Errorf("%w: json.Number %s is not a JSON number", ErrSyntax, quoteForError([]byte(s)))
@@ -163,7 +175,7 @@ func appendNumberText(dst []byte, s string) ([]byte, error) {
 	if p.i != len(s) {
 		return dst, fmt.Errorf("%w: json.Number %s is not a JSON number", ErrSyntax, quoteForError([]byte(s)))
 	}
-	if n.verbatim {
+	if n.verbatim || (n.wide && exact) {
 		return append(dst, s...), nil
 	}
 	return appendNumber(dst, n.num), nil

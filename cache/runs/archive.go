@@ -27,7 +27,8 @@ import (
 //	bodies/<sha256>   one member per distinct answer body, in order of
 //	                  first use, named by its SHA-256
 //
-// Import checks all of it (see readArchive) before it writes anything.
+// Import checks all of it (see archiveReader) before the run it writes
+// becomes visible.
 const (
 	archiveFormat  = "stint-run-archive"
 	archiveVersion = 1
@@ -131,13 +132,15 @@ type snapshot struct {
 type source interface {
 	// snapshot reads team's run, or fails with ErrNotFound.
 	snapshot(ctx context.Context, team, run string) (*snapshot, error)
-	// body reads one body of team's run.
-	body(ctx context.Context, team, run, ref string) ([]byte, error)
+	// body calls fn with one body of team's run, whole or in pieces in
+	// order; fn runs outside any backend transaction.
+	body(ctx context.Context, team, run, ref string, fn func([]byte) error) error
 }
 
 // export writes team's run from src to w as an archive created at now.
-// Bodies are read one at a time, so memory stays at the entries' size plus
-// the largest body.
+// Bodies are read one at a time, piece by piece for those imported in
+// chunks, so memory stays at the entries' size plus the largest body
+// recorded whole.
 func export(ctx context.Context, src source, team, run string, w io.Writer, now time.Time) error {
 	if err := validScope(team, run); err != nil {
 		return err
@@ -190,12 +193,14 @@ func export(ctx context.Context, src source, team, run string, w io.Writer, now 
 	}
 	defer zw.Close()
 	tw := tar.NewWriter(zw)
-	put := func(name string, data []byte) error {
-		hdr := &tar.Header{
-			Typeflag: tar.TypeReg, Name: name, Size: int64(len(data)), Mode: 0o644,
+	header := func(name string, size int64) error {
+		return tw.WriteHeader(&tar.Header{
+			Typeflag: tar.TypeReg, Name: name, Size: size, Mode: 0o644,
 			ModTime: m.Created.Truncate(time.Second), Format: tar.FormatUSTAR,
-		}
-		if err := tw.WriteHeader(hdr); err != nil {
+		})
+	}
+	put := func(name string, data []byte) error {
+		if err := header(name, int64(len(data))); err != nil {
 			return err
 		}
 		_, err := tw.Write(data)
@@ -211,17 +216,25 @@ func export(ctx context.Context, src source, team, run string, w io.Writer, now 
 		if err := ctx.Err(); err != nil {
 			return err
 		}
-		data, err := src.body(ctx, team, run, b.SHA256)
+		if err := header(b.Name, b.Size); err != nil {
+			return fmt.Errorf("runs: export %q: %w", run, err)
+		}
+		h, n := sha256.New(), int64(0)
+		err := src.body(ctx, team, run, b.SHA256, func(p []byte) error {
+			if n += int64(len(p)); n > b.Size {
+				return fmt.Errorf("body %.16s… changed size during export", b.SHA256)
+			}
+			h.Write(p)
+			_, err := tw.Write(p)
+			return err
+		})
+		if err == nil && n != b.Size {
+			err = fmt.Errorf("body %.16s… changed size during export", b.SHA256)
+		}
+		if err == nil && hex.EncodeToString(h.Sum(nil)) != b.SHA256 {
+			err = fmt.Errorf("%w: body %.16s… no longer matches its SHA-256", ErrCorrupt, b.SHA256)
+		}
 		if err != nil {
-			return fmt.Errorf("runs: export %q: %w", run, err)
-		}
-		if err := checkBody(b.SHA256, data); err != nil {
-			return fmt.Errorf("runs: export %q: %w", run, err)
-		}
-		if int64(len(data)) != b.Size {
-			return fmt.Errorf("runs: export %q: body %.16s… changed size during export", run, b.SHA256)
-		}
-		if err := put(b.Name, data); err != nil {
 			return fmt.Errorf("runs: export %q: %w", run, err)
 		}
 	}

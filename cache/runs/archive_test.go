@@ -140,6 +140,23 @@ func compress(t testing.TB, b []byte) []byte {
 	return withTrailer(zw.EncodeAll(b, nil))
 }
 
+// compressStream is compress through zstd's streaming writer.
+func compressStream(t testing.TB, b []byte, opts ...zstd.EOption) []byte {
+	t.Helper()
+	var out bytes.Buffer
+	zw, err := zstd.NewWriter(&out, opts...)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := zw.Write(b); err != nil {
+		t.Fatal(err)
+	}
+	if err := zw.Close(); err != nil {
+		t.Fatal(err)
+	}
+	return withTrailer(out.Bytes())
+}
+
 // withTrailer appends the archive trailer: a zstd skippable frame holding
 // the SHA-256 of the bytes before it.
 func withTrailer(b []byte) []byte {
@@ -248,7 +265,9 @@ func TestImportRefuses(t *testing.T) {
 		t.Fatalf("rebuilt archive refused: %v", err)
 	}
 	// A bomb: 64 MiB of zeros after the tar's end, a few KB compressed.
-	bomb := compress(t, append(writeTar(t, readMembers(t, good)), make([]byte, 64<<20)...))
+	// Written as a stream, as Export writes, so its frames declare an 8 MiB
+	// window rather than their whole size.
+	bomb := compressStream(t, append(writeTar(t, readMembers(t, good)), make([]byte, 64<<20)...))
 	tests := []struct {
 		name    string
 		archive []byte
@@ -289,6 +308,7 @@ func TestImportRefuses(t *testing.T) {
 		{"archive too large", good, runs.ImportOptions{MaxBytes: 2048}, "limit"},
 		{"bomb", bomb, runs.ImportOptions{MaxBytes: 1 << 20}, "limit"},
 		{"bomb within the limit", bomb, runs.ImportOptions{MaxBytes: 128 << 20}, "after the end of the tar"},
+		{"window past the limit", compressStream(t, append(writeTar(t, readMembers(t, good)), make([]byte, 16<<20)...), zstd.WithWindowSize(32<<20)), runs.ImportOptions{}, "limit"},
 		{"trailing garbage", append(slices.Clip(good), 0x28, 0xb5, 0x2f, 0xfd, 1, 2, 3), runs.ImportOptions{}, "corrupt"},
 		{"no trailer", good[:len(good)-40], runs.ImportOptions{}, "trailing SHA-256"},
 		{"skippable flood", withTrailer(append(append([]byte{0x50, 0x2a, 0x4d, 0x18, 0, 0, 0x20, 0}, make([]byte, 2<<20)...), good[:len(good)-40]...)),
@@ -300,8 +320,12 @@ func TestImportRefuses(t *testing.T) {
 			t.Parallel()
 			j := boltBackend().open(t)
 			_, err := j.Import(context.Background(), "lab", bytes.NewReader(tc.archive), tc.opts)
-			if !errors.Is(err, runs.ErrCorruptArchive) || !strings.Contains(err.Error(), tc.want) {
-				t.Fatalf("got %v, want ErrCorruptArchive mentioning %q", err, tc.want)
+			want := runs.ErrCorruptArchive
+			if tc.want == "limit" || tc.want == "compressed archive is larger" {
+				want = runs.ErrTooLarge
+			}
+			if !errors.Is(err, want) || !strings.Contains(err.Error(), tc.want) {
+				t.Fatalf("got %v, want %v mentioning %q", err, want, tc.want)
 			}
 			wantNoTrace(t, j, "lab", "small")
 		})

@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"sync"
 	"time"
 
 	"go.etcd.io/bbolt"
@@ -14,12 +15,22 @@ import (
 
 // Bucket layout, inside the top-level bucket "stint.runs.v1":
 //
-//	<team>/<run>/                  one bucket per team, one per run in it
-//	  tally      the run's summary figures (encodeTally)
-//	  e/         Seq (8 bytes, big-endian) -> record (encodeRecord)
-//	  o/         key -> occurrences recorded (8 bytes, big-endian)
-//	  x/         key + occurrence (8 bytes) -> Seq (8 bytes)
-//	  b/         ref (32 raw bytes) -> body
+//	<team>/                        one bucket per team
+//	  #usage     what the team's runs hold (8 bytes, big-endian; see Usage)
+//	  #import-<hex>/<run>/         a run being imported, moved into place
+//	                               when the import commits (none survive a
+//	                               restart: NewBolt removes them)
+//	  <run>/                       one bucket per run
+//	    tally    the run's summary figures (encodeTally)
+//	    e/       Seq (8 bytes, big-endian) -> record (encodeRecord)
+//	    o/       key -> occurrences recorded (8 bytes, big-endian)
+//	    x/       key + occurrence (8 bytes) -> Seq (8 bytes)
+//	    b/       ref (32 raw bytes) -> body, or for a body longer than
+//	             bodyChunk that Import wrote, ref + chunk number (4 bytes,
+//	             big-endian, from 0) -> that chunk
+//
+// Names that start with '#' are not run ids (ValidID), so they never meet
+// a run's.
 var (
 	topBucket     = []byte("stint.runs.v1")
 	tallyKey      = []byte("tally")
@@ -27,11 +38,19 @@ var (
 	occBucket     = []byte("o")
 	indexBucket   = []byte("x")
 	bodiesBucket  = []byte("b")
+	usageKey      = []byte("#usage")
+	stagePrefix   = []byte("#import-")
 )
+
+// bodyChunk is the size of the chunks Import writes a long body in, so that
+// no body is held whole while it is imported.
+const bodyChunk = 1 << 20
 
 // BoltJournal is a Journal in a bbolt database that it shares with others
 // (the proxy keeps its cache and ledger in the same file): it touches only
-// the top-level bucket "stint.runs.v1". It is safe for concurrent use.
+// the top-level bucket "stint.runs.v1". It is safe for concurrent use. The
+// quota of imports in progress is reserved in this process, which alone
+// holds the file.
 //
 // Record writes through BoltOptions.Update when set (a group committer
 // shared with the file's other writers: concurrent recorders share one
@@ -42,6 +61,10 @@ var (
 type BoltJournal struct {
 	db    *bbolt.DB
 	write func(func(*bbolt.Tx) error) error // Record's write transaction
+	quota int64                             // <= 0: none
+
+	mu    sync.Mutex       // guards holds
+	holds map[string]int64 // by team: bytes reserved by imports in progress
 }
 
 // BoltOptions configure a BoltJournal; the zero value is usable.
@@ -50,11 +73,16 @@ type BoltOptions struct {
 	// cache/boltgroup Committer shared with the file's other writers. Its
 	// functions may run more than once. Nil means db.Batch.
 	Update func(func(*bbolt.Tx) error) error
+	// QuotaBytes bounds what each team's runs may hold (see Usage). 0
+	// means DefaultQuotaBytes; -1 means no quota.
+	QuotaBytes int64
 }
 
 var _ Journal = (*BoltJournal)(nil)
 
-// NewBolt returns a BoltJournal on an open db, creating its bucket. The
+// NewBolt returns a BoltJournal on an open db, creating its bucket and
+// removing what imports that never committed left (a process that stopped
+// mid-import), so open one journal per file, before any Import on it. The
 // caller keeps ownership of db and closes it after the journal's last use.
 // A file opened with bbolt's NoSync loses Record's durability.
 func NewBolt(db *bbolt.DB, opts BoltOptions) (*BoltJournal, error) {
@@ -62,8 +90,11 @@ func NewBolt(db *bbolt.DB, opts BoltOptions) (*BoltJournal, error) {
 		return nil, errors.New("runs: NewBolt: nil *bbolt.DB")
 	}
 	err := db.Update(func(tx *bbolt.Tx) error {
-		_, err := tx.CreateBucketIfNotExists(topBucket)
-		return err
+		top, err := tx.CreateBucketIfNotExists(topBucket)
+		if err != nil {
+			return err
+		}
+		return dropStaging(top)
 	})
 	if err != nil {
 		return nil, fmt.Errorf("runs: create bucket %s: %w", topBucket, err)
@@ -72,7 +103,48 @@ func NewBolt(db *bbolt.DB, opts BoltOptions) (*BoltJournal, error) {
 	if write == nil {
 		write = db.Batch
 	}
-	return &BoltJournal{db: db, write: write}, nil
+	return &BoltJournal{db: db, write: write, quota: quotaOf(opts.QuotaBytes), holds: map[string]int64{}}, nil
+}
+
+// quotaOf resolves a QuotaBytes option: 0 is the default, negative none.
+func quotaOf(q int64) int64 {
+	switch {
+	case q == 0:
+		return DefaultQuotaBytes
+	case q < 0:
+		return 0
+	}
+	return q
+}
+
+// dropStaging removes the runs of imports that never committed (the
+// process stopped mid-import).
+func dropStaging(top *bbolt.Bucket) error {
+	var teams [][]byte
+	if err := top.ForEachBucket(func(name []byte) error {
+		teams = append(teams, bytes.Clone(name))
+		return nil
+	}); err != nil {
+		return err
+	}
+	for _, team := range teams {
+		tb := top.Bucket(team)
+		var stale [][]byte
+		if err := tb.ForEachBucket(func(name []byte) error {
+			if bytes.HasPrefix(name, stagePrefix) {
+				stale = append(stale, bytes.Clone(name))
+			}
+			return nil
+		}); err != nil {
+			return err
+		}
+		for _, name := range stale {
+			if err := tb.DeleteBucket(name); err != nil {
+				return err
+			}
+		}
+	}
+	return nil
 }
 
 // runBuckets are the buckets of one run.
@@ -145,20 +217,93 @@ func createRun(tx *bbolt.Tx, team, run string) (*runBuckets, error) {
 	return b, nil
 }
 
-// deleteRun removes team's run, and the team's bucket once it is empty.
+// deleteRun removes team's run, and the team's bucket once it holds no
+// run (nor an import in progress).
 func deleteRun(tx *bbolt.Tx, team, run string) error {
 	tb := tx.Bucket(topBucket).Bucket([]byte(team))
 	if err := tb.DeleteBucket([]byte(run)); err != nil {
 		return err
 	}
-	if k, _ := tb.Cursor().First(); k == nil {
+	empty := true
+	if err := tb.ForEachBucket(func([]byte) error { empty = false; return nil }); err != nil {
+		return err
+	}
+	if empty {
 		return tx.Bucket(topBucket).DeleteBucket([]byte(team))
 	}
 	return nil
 }
 
 func (b *runBuckets) tally() (tally, error) {
-	return decodeTally(b.run.Get(tallyKey))
+	return runTally(b.run)
+}
+
+// runTally reads the tally of the run bucket rb, counting Stored from its
+// entries when the run was written before Stored was kept.
+func runTally(rb *bbolt.Bucket) (tally, error) {
+	t, err := decodeTally(rb.Get(tallyKey))
+	if err != nil || t.Stored >= 0 {
+		return t, err
+	}
+	entries := rb.Bucket(entriesBucket)
+	if entries == nil {
+		return tally{}, fmt.Errorf("%w: a run lacks its entries", ErrCorrupt)
+	}
+	t.Stored = t.Bytes
+	err = entries.ForEach(func(_, v []byte) error {
+		r, err := decodeRecord(v)
+		if err == nil {
+			t.Stored += entryBytes(&r)
+		}
+		return err
+	})
+	return t, err
+}
+
+// teamUsage is what team's runs hold: its counter, or for a team recorded
+// before the counter was kept, the sum over its runs.
+func teamUsage(tx *bbolt.Tx, team string) (int64, error) {
+	tb := tx.Bucket(topBucket).Bucket([]byte(team))
+	if tb == nil {
+		return 0, nil
+	}
+	if v := tb.Get(usageKey); v != nil {
+		if len(v) != 8 {
+			return 0, fmt.Errorf("%w: usage counter of %d bytes", ErrCorrupt, len(v))
+		}
+		return int64(binary.BigEndian.Uint64(v)), nil
+	}
+	var sum int64
+	err := tb.ForEachBucket(func(name []byte) error {
+		if ValidID(string(name)) != nil {
+			return nil // an import in progress
+		}
+		t, err := runTally(tb.Bucket(name))
+		sum += t.Stored
+		return err
+	})
+	return sum, err
+}
+
+// setTeamUsage sets team's counter; the team's bucket must exist.
+func setTeamUsage(tx *bbolt.Tx, team string, v int64) error {
+	return tx.Bucket(topBucket).Bucket([]byte(team)).Put(usageKey, u64(max(v, 0)))
+}
+
+// held is what imports in progress reserve of team's quota.
+func (j *BoltJournal) held(team string) int64 {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	return j.holds[team]
+}
+
+// checkQuota fails with a *QuotaError if adding need bytes to used (the
+// team's runs) and held (imports in progress) passes the quota.
+func checkQuota(quota int64, team string, used, held, need int64) error {
+	if quota > 0 && need > 0 && used+held+need > quota {
+		return &QuotaError{Team: team, Used: used + held, Need: need, Quota: quota}
+	}
+	return nil
 }
 
 func (b *runBuckets) count(key string) (int64, error) {
@@ -191,11 +336,61 @@ func (b *runBuckets) body(ref string) ([]byte, error) {
 	if err != nil {
 		return nil, fmt.Errorf("%w: %w", ErrCorrupt, err)
 	}
-	v := b.bodies.Get(raw)
-	if v == nil {
-		return nil, fmt.Errorf("%w: body %.16s… is missing", ErrCorrupt, ref)
+	var body []byte
+	n, err := b.bodyPieces(raw, func(p []byte) error {
+		body = append(body, p...)
+		return nil
+	})
+	if err == nil && n == 0 {
+		err = fmt.Errorf("%w: body %.16s… is missing", ErrCorrupt, ref)
 	}
-	return append([]byte{}, v...), nil
+	if body == nil {
+		body = []byte{}
+	}
+	return body, err
+}
+
+// bodyPieces calls fn with the body of raw: whole, or chunk by chunk. It
+// returns how many pieces there were (0: no such body). The slices are
+// valid only inside the transaction.
+func (b *runBuckets) bodyPieces(raw []byte, fn func([]byte) error) (int, error) {
+	c := b.bodies.Cursor()
+	k, v := c.Seek(raw)
+	if bytes.Equal(k, raw) {
+		return 1, fn(v)
+	}
+	n := 0
+	for ; len(k) == len(raw)+4 && bytes.HasPrefix(k, raw); k, v = c.Next() {
+		if binary.BigEndian.Uint32(k[len(raw):]) != uint32(n) {
+			return n, fmt.Errorf("%w: body %x lacks chunk %d", ErrCorrupt, raw[:8], n)
+		}
+		if err := fn(v); err != nil {
+			return n, err
+		}
+		n++
+	}
+	return n, nil
+}
+
+// hasBody reports whether the run holds the body of raw, whole or chunked.
+func (b *runBuckets) hasBody(raw []byte) bool {
+	k, _ := b.bodies.Cursor().Seek(raw)
+	return bytes.HasPrefix(k, raw) && (len(k) == len(raw) || len(k) == len(raw)+4)
+}
+
+// bodySize is the length of the body of raw, or -1 if the run lacks it.
+func (b *runBuckets) bodySize(raw []byte) int64 {
+	var size int64
+	n, err := b.bodyPieces(raw, func(p []byte) error { size += int64(len(p)); return nil })
+	if err != nil || n == 0 {
+		return -1
+	}
+	return size
+}
+
+// chunkKey is the key of chunk i of the body of raw.
+func chunkKey(raw []byte, i uint32) []byte {
+	return binary.BigEndian.AppendUint32(bytes.Clone(raw), i)
 }
 
 func u64(v int64) []byte { return binary.BigEndian.AppendUint64(nil, uint64(v)) }
@@ -225,7 +420,15 @@ func (j *BoltJournal) Record(ctx context.Context, team, run string, e Entry, a A
 		if err != nil {
 			return err
 		}
+		used, err := teamUsage(tx, team)
+		if err != nil {
+			return err
+		}
 		var t tally
+		newBody := b == nil || !b.hasBody(raw)
+		if err := checkQuota(j.quota, team, used, j.held(team), r.stored(newBody, len(a.Body))); err != nil {
+			return err
+		}
 		if b == nil {
 			if b, err = createRun(tx, team, run); err != nil {
 				return err
@@ -239,7 +442,6 @@ func (j *BoltJournal) Record(ctx context.Context, team, run string, e Entry, a A
 		}
 		rec := r
 		rec.Seq, rec.Occurrence = t.Calls+1, n+1
-		newBody := b.bodies.Get(raw) == nil
 		if newBody {
 			if err := b.bodies.Put(raw, a.Body); err != nil {
 				return err
@@ -254,6 +456,9 @@ func (j *BoltJournal) Record(ctx context.Context, team, run string, e Entry, a A
 			return err
 		}
 		if err := b.run.Put(tallyKey, encodeTally(&t)); err != nil {
+			return err
+		}
+		if err := setTeamUsage(tx, team, used+rec.stored(newBody, len(a.Body))); err != nil {
 			return err
 		}
 		out = rec
@@ -354,4 +559,24 @@ func (j *BoltJournal) Export(ctx context.Context, team, run string, w io.Writer)
 // Import implements Journal.
 func (j *BoltJournal) Import(ctx context.Context, team string, r io.Reader, opts ImportOptions) (Summary, error) {
 	return importRun(ctx, j, team, r, opts)
+}
+
+// Usage implements Journal.
+func (j *BoltJournal) Usage(ctx context.Context, team string) (Usage, error) {
+	if err := validTeam(team); err != nil {
+		return Usage{}, err
+	}
+	if err := ctx.Err(); err != nil {
+		return Usage{}, err
+	}
+	u := Usage{QuotaBytes: j.quota}
+	err := j.db.View(func(tx *bbolt.Tx) error {
+		var err error
+		u.Bytes, err = teamUsage(tx, team)
+		return err
+	})
+	if err != nil {
+		return Usage{}, fmt.Errorf("runs: usage: %w", err)
+	}
+	return u, nil
 }

@@ -3,7 +3,9 @@ package runs
 import (
 	"bytes"
 	"context"
+	"crypto/rand"
 	"encoding/binary"
+	"encoding/hex"
 	"fmt"
 
 	"go.etcd.io/bbolt"
@@ -56,6 +58,9 @@ func (j *BoltJournal) List(ctx context.Context, team string) ([]Summary, error) 
 		return tb.ForEachBucket(func(name []byte) error {
 			if err := ctx.Err(); err != nil {
 				return err
+			}
+			if ValidID(string(name)) != nil {
+				return nil // an import in progress
 			}
 			t, err := decodeTally(tb.Bucket(name).Get(tallyKey))
 			if err != nil {
@@ -147,10 +152,25 @@ func (j *BoltJournal) Delete(ctx context.Context, team, run string) error {
 		return err
 	}
 	err := j.db.Update(func(tx *bbolt.Tx) error {
-		if _, err := existingRun(tx, team, run); err != nil {
+		b, err := existingRun(tx, team, run)
+		if err != nil {
 			return err
 		}
-		return deleteRun(tx, team, run)
+		t, err := b.tally()
+		if err != nil {
+			return err
+		}
+		used, err := teamUsage(tx, team)
+		if err != nil {
+			return err
+		}
+		if err := deleteRun(tx, team, run); err != nil {
+			return err
+		}
+		if tx.Bucket(topBucket).Bucket([]byte(team)) == nil {
+			return nil // the team's last run
+		}
+		return setTeamUsage(tx, team, used-t.Stored)
 	})
 	if err != nil {
 		return fmt.Errorf("runs: delete %q: %w", run, err)
@@ -186,8 +206,8 @@ func (j *BoltJournal) snapshot(ctx context.Context, team, run string) (*snapshot
 			s.recs = append(s.recs, r)
 			if _, ok := s.sizes[r.Ref]; !ok {
 				raw, _ := rawRef(r.Ref)
-				if v := b.bodies.Get(raw); v != nil {
-					s.sizes[r.Ref] = int64(len(v))
+				if n := b.bodySize(raw); n >= 0 {
+					s.sizes[r.Ref] = n
 				}
 			}
 		}
@@ -202,32 +222,69 @@ func (j *BoltJournal) snapshot(ctx context.Context, team, run string) (*snapshot
 	return s, nil
 }
 
-// body implements source.
-func (j *BoltJournal) body(ctx context.Context, team, run, ref string) ([]byte, error) {
-	if err := ctx.Err(); err != nil {
-		return nil, err
+// body implements source: a body recorded whole in one read transaction,
+// one imported in chunks a chunk per transaction.
+func (j *BoltJournal) body(ctx context.Context, team, run, ref string, fn func([]byte) error) error {
+	raw, err := rawRef(ref)
+	if err != nil {
+		return fmt.Errorf("%w: %w", ErrCorrupt, err)
 	}
-	var body []byte
-	err := j.db.View(func(tx *bbolt.Tx) error {
-		b, err := openRun(tx, team, run)
+	for i := 0; ; i++ {
+		if err := ctx.Err(); err != nil {
+			return err
+		}
+		var (
+			piece []byte
+			last  bool
+		)
+		err := j.db.View(func(tx *bbolt.Tx) error {
+			b, err := openRun(tx, team, run)
+			if err != nil {
+				return err
+			}
+			if b == nil {
+				return fmt.Errorf("%w: run %q was deleted during the export", ErrNotFound, run)
+			}
+			if i == 0 {
+				if v := b.bodies.Get(raw); v != nil {
+					piece, last = bytes.Clone(v), true
+					return nil
+				}
+			}
+			v := b.bodies.Get(chunkKey(raw, uint32(i)))
+			switch {
+			case v == nil && i == 0:
+				return fmt.Errorf("%w: body %.16s… is missing", ErrCorrupt, ref)
+			case v == nil:
+				last = true
+			default:
+				piece = bytes.Clone(v)
+			}
+			return nil
+		})
 		if err != nil {
 			return err
 		}
-		if b == nil {
-			return fmt.Errorf("%w: run %q was deleted during the export", ErrNotFound, run)
+		if piece != nil {
+			if err := fn(piece); err != nil {
+				return err
+			}
 		}
-		body, err = b.body(ref)
-		return err
-	})
-	return body, err
+		if last {
+			return nil
+		}
+	}
 }
 
-// store implements sink, in one write transaction.
-func (j *BoltJournal) store(ctx context.Context, team, run string, a *archive, replace bool) error {
+// stage implements sink: it checks the team may import run and reserves
+// need bytes of its quota for the import's duration (in this process,
+// which alone holds the file).
+func (j *BoltJournal) stage(ctx context.Context, team, run string, replace bool, need int64) (staging, error) {
 	if err := ctx.Err(); err != nil {
-		return err
+		return nil, err
 	}
-	err := j.db.Update(func(tx *bbolt.Tx) error {
+	var used, old int64
+	err := j.db.View(func(tx *bbolt.Tx) error {
 		b, err := openRun(tx, team, run)
 		if err != nil {
 			return err
@@ -236,34 +293,267 @@ func (j *BoltJournal) store(ctx context.Context, team, run string, a *archive, r
 			if !replace {
 				return fmt.Errorf("%w: team already has run %q", ErrExists, run)
 			}
-			if err := deleteRun(tx, team, run); err != nil {
-				return err
-			}
-		}
-		if b, err = createRun(tx, team, run); err != nil {
-			return err
-		}
-		b.entries.FillPercent = 1 // appended in key order
-		for _, ref := range a.order {
-			raw, _ := rawRef(ref)
-			if err := b.bodies.Put(raw, a.bodies[ref]); err != nil {
-				return err
-			}
-		}
-		for i := range a.recs {
-			r := &a.recs[i]
-			v, err := encodeRecord(r)
+			t, err := b.tally()
 			if err != nil {
 				return err
 			}
-			if err := b.putEntry(r, v); err != nil {
+			old = t.Stored
+		}
+		used, err = teamUsage(tx, team)
+		return err
+	})
+	if err != nil {
+		return nil, fmt.Errorf("runs: import %q: %w", run, err)
+	}
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	hold := max(need-old, 0)
+	if err := checkQuota(j.quota, team, used, j.holds[team], hold); err != nil {
+		return nil, fmt.Errorf("runs: import %q: %w", run, err)
+	}
+	j.holds[team] += hold
+	var nonce [8]byte
+	_, _ = rand.Read(nonce[:])
+	return &boltStage{j: j, team: team, run: run, replace: replace, hold: hold,
+		name: append(bytes.Clone(stagePrefix), hex.EncodeToString(nonce[:])...)}, nil
+}
+
+// boltPut is one write a boltStage has buffered.
+type boltPut struct {
+	bucket     int // index into stagedBuckets
+	key, value []byte
+}
+
+// boltStage is a run being imported, written into the bucket
+// <team>/#import-<nonce>/<run> in transactions of about stageBuffer bytes,
+// and moved to <team>/<run> by commit.
+type boltStage struct {
+	j            *BoltJournal
+	team, run    string
+	replace      bool
+	hold         int64
+	name         []byte // the staging bucket under the team's
+	staged       bool   // the staging bucket exists in the file
+	pend         []boltPut
+	pendBytes    int
+	holdReleased bool
+}
+
+const (
+	stagedEntries = iota
+	stagedOcc
+	stagedIndex
+	stagedBodies
+)
+
+func (s *boltStage) add(bucket int, key, value []byte) {
+	s.pend = append(s.pend, boltPut{bucket, key, value})
+	s.pendBytes += len(key) + len(value)
+}
+
+func (s *boltStage) entries(ctx context.Context, recs []record) error {
+	for i := range recs {
+		r := &recs[i]
+		v, err := encodeRecord(r)
+		if err != nil {
+			return err
+		}
+		s.add(stagedEntries, u64(r.Seq), v)
+		s.add(stagedOcc, []byte(r.Key), u64(r.Occurrence))
+		s.add(stagedIndex, indexKey(r.Key, r.Occurrence), u64(r.Seq))
+	}
+	return s.flushIfFull(ctx)
+}
+
+func (s *boltStage) body(ctx context.Context, raw []byte, chunk int, data []byte) error {
+	key := bytes.Clone(raw)
+	if chunk >= 0 {
+		key = chunkKey(raw, uint32(chunk))
+	}
+	s.add(stagedBodies, key, data)
+	return s.flushIfFull(ctx)
+}
+
+func (s *boltStage) flushIfFull(ctx context.Context) error {
+	if s.pendBytes < stageBuffer {
+		return nil
+	}
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	err := s.j.write(func(tx *bbolt.Tx) error {
+		_, b, err := s.open(tx)
+		if err != nil {
+			return err
+		}
+		return s.apply(b)
+	})
+	if err != nil {
+		return fmt.Errorf("runs: import %q: stage: %w", s.run, err)
+	}
+	s.staged, s.pend, s.pendBytes = true, nil, 0
+	return nil
+}
+
+// open returns the staging buckets, creating them as needed: the one under
+// the team's, and the run's in it.
+func (s *boltStage) open(tx *bbolt.Tx) (*bbolt.Bucket, *runBuckets, error) {
+	tb, err := tx.Bucket(topBucket).CreateBucketIfNotExists([]byte(s.team))
+	if err != nil {
+		return nil, nil, err
+	}
+	parent, err := tb.CreateBucketIfNotExists(s.name)
+	if err != nil {
+		return nil, nil, err
+	}
+	rb, err := parent.CreateBucketIfNotExists([]byte(s.run))
+	if err != nil {
+		return nil, nil, err
+	}
+	b := &runBuckets{run: rb}
+	for _, p := range [...]struct {
+		name []byte
+		b    **bbolt.Bucket
+	}{{entriesBucket, &b.entries}, {occBucket, &b.occ}, {indexBucket, &b.index}, {bodiesBucket, &b.bodies}} {
+		if *p.b, err = rb.CreateBucketIfNotExists(p.name); err != nil {
+			return nil, nil, err
+		}
+	}
+	b.entries.FillPercent = 1 // appended in key order
+	return parent, b, nil
+}
+
+// apply writes the buffered puts into b.
+func (s *boltStage) apply(b *runBuckets) error {
+	buckets := [...]*bbolt.Bucket{stagedEntries: b.entries, stagedOcc: b.occ, stagedIndex: b.index, stagedBodies: b.bodies}
+	for _, p := range s.pend {
+		if err := buckets[p.bucket].Put(p.key, p.value); err != nil {
+			return err
+		}
+	}
+	return nil
+}
+
+func (s *boltStage) commit(ctx context.Context, t *tally) error {
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	// bbolt's MoveBucket loses what the moving transaction wrote into the
+	// moved bucket, so a staged run is completed first, and moved alone.
+	if s.staged {
+		err := s.j.write(func(tx *bbolt.Tx) error {
+			_, b, err := s.open(tx)
+			if err == nil {
+				err = s.apply(b)
+			}
+			if err == nil {
+				err = b.run.Put(tallyKey, encodeTally(t))
+			}
+			return err
+		})
+		if err != nil {
+			s.release()
+			return fmt.Errorf("runs: import %q: stage: %w", s.run, err)
+		}
+		s.pend = nil
+	}
+	err := s.j.write(func(tx *bbolt.Tx) error {
+		tb, err := tx.Bucket(topBucket).CreateBucketIfNotExists([]byte(s.team))
+		if err != nil {
+			return err
+		}
+		old, err := openRun(tx, s.team, s.run)
+		if err != nil {
+			return err
+		}
+		var freed int64
+		if old != nil {
+			if !s.replace {
+				return fmt.Errorf("%w: team already has run %q", ErrExists, s.run)
+			}
+			ot, err := old.tally()
+			if err != nil {
+				return err
+			}
+			freed = ot.Stored
+		}
+		used, err := teamUsage(tx, s.team)
+		if err != nil {
+			return err
+		}
+		if err := checkQuota(s.j.quota, s.team, used-freed, s.j.held(s.team)-s.hold, t.Stored); err != nil {
+			return err
+		}
+		if old != nil {
+			if err := tb.DeleteBucket([]byte(s.run)); err != nil {
 				return err
 			}
 		}
-		return b.run.Put(tallyKey, encodeTally(&a.tally))
+		if s.staged {
+			if err := tx.MoveBucket([]byte(s.run), tb.Bucket(s.name), tb); err != nil {
+				return err
+			}
+			if err := tb.DeleteBucket(s.name); err != nil {
+				return err
+			}
+		} else {
+			// Nothing was staged: the whole run goes in this one write.
+			b, err := createRun(tx, s.team, s.run)
+			if err != nil {
+				return err
+			}
+			b.entries.FillPercent = 1 // appended in key order
+			if err := s.apply(b); err != nil {
+				return err
+			}
+			if err := b.run.Put(tallyKey, encodeTally(t)); err != nil {
+				return err
+			}
+		}
+		return setTeamUsage(tx, s.team, used-freed+t.Stored)
 	})
+	s.release()
 	if err != nil {
-		return fmt.Errorf("runs: import %q: %w", run, err)
+		return fmt.Errorf("runs: import %q: %w", s.run, err)
 	}
+	s.staged, s.pend = false, nil
 	return nil
+}
+
+func (s *boltStage) abort() {
+	s.release()
+	s.pend = nil
+	if !s.staged {
+		return
+	}
+	_ = s.j.write(func(tx *bbolt.Tx) error {
+		tb := tx.Bucket(topBucket).Bucket([]byte(s.team))
+		if tb == nil || tb.Bucket(s.name) == nil {
+			return nil
+		}
+		if err := tb.DeleteBucket(s.name); err != nil {
+			return err
+		}
+		empty := true
+		if err := tb.ForEachBucket(func([]byte) error { empty = false; return nil }); err != nil {
+			return err
+		}
+		if empty {
+			return tx.Bucket(topBucket).DeleteBucket([]byte(s.team))
+		}
+		return nil
+	})
+}
+
+// release gives back the quota the import reserved, once.
+func (s *boltStage) release() {
+	if s.holdReleased {
+		return
+	}
+	s.holdReleased = true
+	s.j.mu.Lock()
+	defer s.j.mu.Unlock()
+	if s.j.holds[s.team] -= s.hold; s.j.holds[s.team] <= 0 {
+		delete(s.j.holds, s.team)
+	}
 }

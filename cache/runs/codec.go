@@ -146,14 +146,16 @@ func (d *decoder) str() string {
 	return s
 }
 
-// The bolt backend stores a run's tally as version 1 followed by the ten
+// The bolt backend stores a run's tally as version 2 followed by the ten
 // figures as varints: next Seq - 1 (= Calls), Upstream, Cost, Saved, Keys,
-// Bodies, Bytes, First, Last.
-const tallyVersion = 1
+// Bodies, Bytes, First, Last, Stored. Version 1, written before Stored was
+// kept, has the first nine; it decodes with Stored -1, for the reader to
+// count (runBuckets.tally).
+const tallyVersion = 2
 
 func encodeTally(t *tally) []byte {
 	b := []byte{tallyVersion}
-	for _, v := range [...]int64{t.Calls, t.Upstream, t.Cost, t.Saved, t.Keys, t.Bodies, t.Bytes, t.First, t.Last} {
+	for _, v := range [...]int64{t.Calls, t.Upstream, t.Cost, t.Saved, t.Keys, t.Bodies, t.Bytes, t.First, t.Last, t.Stored} {
 		b = binary.AppendVarint(b, v)
 	}
 	return b
@@ -161,11 +163,15 @@ func encodeTally(t *tally) []byte {
 
 func decodeTally(b []byte) (tally, error) {
 	var t tally
-	if len(b) < 1 || b[0] != tallyVersion {
+	if len(b) < 1 || (b[0] != tallyVersion && b[0] != 1) {
 		return t, fmt.Errorf("%w: run summary has an unknown format", ErrCorrupt)
 	}
+	figures := []*int64{&t.Calls, &t.Upstream, &t.Cost, &t.Saved, &t.Keys, &t.Bodies, &t.Bytes, &t.First, &t.Last, &t.Stored}
+	if b[0] == 1 {
+		figures, t.Stored = figures[:9], -1
+	}
 	d := decoder{b: b[1:]}
-	for _, p := range [...]*int64{&t.Calls, &t.Upstream, &t.Cost, &t.Saved, &t.Keys, &t.Bodies, &t.Bytes, &t.First, &t.Last} {
+	for _, p := range figures {
 		*p = d.varint()
 	}
 	if d.err == nil && len(d.b) != 0 {

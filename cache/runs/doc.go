@@ -29,9 +29,23 @@
 // one entry a line, in Seq order), then bodies/<sha256> for each distinct
 // answer body. A zstd skippable frame at the end holds the SHA-256 of the
 // bytes before it, so any change to the file is detected. Import refuses
-// anything else with ErrCorruptArchive, within limits on sizes and member
-// counts (ImportOptions) so that a crafted archive cannot exhaust memory,
-// and writes nothing until the whole archive has been checked.
+// anything else with ErrCorruptArchive, and an archive past a limit on
+// sizes, members or entries (ImportOptions) with ErrTooLarge, checked
+// against the manifest's declared sizes before any body is inflated and
+// against the inflated bytes as they come. It streams: bodies are written
+// as they are read (a long one in chunks of 1 MiB), into a staging run no
+// reader sees, which becomes the run in one write once the whole archive
+// has checked, or is removed. An entry may only hold what a recording of
+// the wire format produces (see Answer), so a replay never answers with
+// anything else.
+//
+// # Quotas
+//
+// Each team's runs, recorded and imported, may hold at most a quota of
+// bytes (BoltOptions.QuotaBytes, RedisOptions.QuotaBytes): a Record or an
+// Import that would pass it fails with a *QuotaError (ErrQuota) and writes
+// nothing. An import reserves its declared size while it runs; Usage tells
+// what a team's runs hold.
 //
 // Two backends implement Journal with identical behaviour: BoltJournal in a
 // bbolt file the proxy shares with its cache and ledger, and RedisJournal on

@@ -4,8 +4,13 @@ import "time"
 
 // Answer is exactly what the client received for one call.
 type Answer struct {
-	Status      int    // HTTP status, 100-999
-	ContentType string // the Content-Type header
+	// Status is the HTTP status: 2xx (not 204, 205, 206), 4xx or 5xx; a
+	// streamed answer's is 200.
+	Status int
+	// ContentType is the Content-Type header: application/json, or
+	// text/event-stream for a streamed answer, with at most a
+	// charset=utf-8 parameter.
+	ContentType string
 	// Body is the exact bytes: a JSON body, or the full text/event-stream
 	// bytes of a streamed answer. At most MaxBodyBytes.
 	Body   []byte

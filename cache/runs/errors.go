@@ -20,10 +20,35 @@ var (
 	// no longer matches its SHA-256.
 	ErrCorrupt = errors.New("runs: stored value is corrupt")
 	// ErrCorruptArchive reports an archive that Import refuses: damaged,
-	// truncated, of an unknown format or version, inconsistent, or past an
-	// import limit.
+	// truncated, of an unknown format or version, inconsistent, or holding
+	// what no recording produces.
 	ErrCorruptArchive = errors.New("runs: corrupt archive")
+	// ErrTooLarge reports an archive past an import limit (ImportOptions):
+	// its size compressed or not, a body's size, its members or entries,
+	// its compression window. It also matches ErrCorruptArchive (every
+	// archive Import refuses does).
+	ErrTooLarge error = tooLargeError{}
+	// ErrQuota reports a Record or Import that would take a team's run
+	// journals past its storage quota; a *QuotaError says by how much.
+	ErrQuota = errors.New("runs: team storage quota exceeded")
 )
+
+// QuotaError is the error a Record or Import refused by the team's storage
+// quota returns. It unwraps to ErrQuota.
+type QuotaError struct {
+	Team  string
+	Used  int64 // bytes the team's runs hold (and imports in progress reserve)
+	Need  int64 // bytes the refused call would have added
+	Quota int64
+}
+
+func (e *QuotaError) Error() string {
+	return fmt.Sprintf("runs: team %q holds %d bytes of run journals of its %d-byte quota; this needs %d more",
+		e.Team, e.Used, e.Quota, e.Need)
+}
+
+// Unwrap returns ErrQuota.
+func (e *QuotaError) Unwrap() error { return ErrQuota }
 
 // MissError is the error Lookup returns when the run exists but has no
 // call with the key at the asked occurrence. It unwraps to ErrNotFound, and
@@ -47,3 +72,10 @@ func (e *MissError) Error() string {
 
 // Unwrap returns ErrNotFound.
 func (e *MissError) Unwrap() error { return ErrNotFound }
+
+// tooLargeError is ErrTooLarge: a refused archive, so errors.Is matches
+// ErrCorruptArchive too.
+type tooLargeError struct{}
+
+func (tooLargeError) Error() string        { return "runs: archive past an import limit" }
+func (tooLargeError) Is(target error) bool { return target == ErrCorruptArchive }

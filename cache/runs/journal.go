@@ -13,7 +13,8 @@ import (
 // or key, the Max* limits) fail with an error wrapping ErrInvalid.
 type Journal interface {
 	// Record appends one call to team's run, creating the run on its first
-	// call. It assigns e.Seq and e.Occurrence atomically, sets e.Ref to the
+	// call, unless that would take the team's runs past their quota
+	// (ErrQuota). It assigns e.Seq and e.Occurrence atomically, sets e.Ref to the
 	// body's SHA-256 and e.Stream to a.Stream (a zero e.Time becomes the
 	// current time), and returns the entry as stored. The entry is durable
 	// when Record returns: fsynced on bbolt, acknowledged by Redis.
@@ -45,10 +46,26 @@ type Journal interface {
 	Export(ctx context.Context, team, run string, w io.Writer) error
 	// Import reads an archive written by Export (by either backend) and
 	// stores its run under team, the importing team, whatever team the
-	// archive names, and under opts.As if set. The archive is validated in
-	// full before anything is written, and then written at once (one bbolt
-	// transaction, one Redis script), so a refused archive leaves no trace.
-	// A refused archive fails with ErrCorruptArchive, a run id the team
-	// already has with ErrExists unless opts.Replace.
+	// archive names, and under opts.As if set. The archive is checked as
+	// it is read into a staging run that readers do not see; the run
+	// appears at once (one bbolt transaction, one Redis script) once all
+	// of it checked, and a refused archive leaves no trace. A refused
+	// archive fails with ErrCorruptArchive, one past a limit with
+	// ErrTooLarge (before any body is inflated when the manifest declares
+	// it), one that does not fit the team's quota with ErrQuota (before
+	// anything is written), a run id the team already has with ErrExists
+	// unless opts.Replace.
 	Import(ctx context.Context, team string, r io.Reader, opts ImportOptions) (Summary, error)
+	// Usage reports how much team's runs hold against its storage quota.
+	Usage(ctx context.Context, team string) (Usage, error)
+}
+
+// Usage is a team's run storage against its quota.
+type Usage struct {
+	// Bytes is what the team's runs hold: every distinct body and every
+	// entry with its indexes (an estimate of the backend's own overhead
+	// aside).
+	Bytes int64
+	// QuotaBytes is the most they may hold; 0 means no quota.
+	QuotaBytes int64
 }

@@ -2,6 +2,7 @@ package runs
 
 import (
 	"crypto/sha256"
+	"encoding/binary"
 	"encoding/hex"
 	"fmt"
 	"time"
@@ -69,6 +70,10 @@ type tally struct {
 	Calls, Upstream, Cost, Saved int64
 	Keys, Bodies, Bytes          int64
 	First, Last                  int64 // Unix ns; meaningful when Calls > 0
+	// Stored is what the run holds against its team's quota: Bytes plus
+	// entryBytes of every entry. -1 in a tally read from a run written
+	// before it was kept (see decodeTally).
+	Stored int64
 }
 
 // add counts r; newKey and newBody say whether r is the run's first call
@@ -94,6 +99,37 @@ func (t *tally) add(r *record, newKey, newBody bool, bodyLen int) {
 		t.Bodies++
 		t.Bytes += int64(bodyLen)
 	}
+	t.Stored += r.stored(newBody, bodyLen)
+}
+
+// stored is what recording r adds to its run's Stored: its entry, and its
+// body of bodyLen bytes if that is new to the run.
+func (r *record) stored(newBody bool, bodyLen int) int64 {
+	n := entryBytes(r)
+	if newBody {
+		n += int64(bodyLen)
+	}
+	return n
+}
+
+// indexOverhead is what an entry's indexes hold besides its key: the Seq
+// it is stored under, the occurrence count, and the index's occurrence and
+// Seq.
+const indexOverhead = 32
+
+// entryBytes is what one entry holds in either backend, counted for the
+// quota: its stored record and its two indexes by key (an estimate of the
+// backend's own per-key overhead aside).
+func entryBytes(r *record) int64 {
+	var buf [binary.MaxVarintLen64]byte
+	n := fixedLen + len(binary.AppendUvarint(buf[:0], uint64(r.Status)))
+	for _, v := range [...]int64{r.CostNanos, r.SavedNanos, r.Time.UnixNano()} {
+		n += len(binary.AppendVarint(buf[:0], v))
+	}
+	for _, str := range [...]string{r.Key, r.Outcome, r.Model, r.ContentType} {
+		n += len(binary.AppendUvarint(buf[:0], uint64(len(str)))) + len(str)
+	}
+	return int64(n + 2*len(r.Key) + indexOverhead)
 }
 
 // summary is t as the Summary of team's run.

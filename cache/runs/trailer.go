@@ -22,7 +22,7 @@ import (
 const trailerLen = 40
 
 // errTooBig is what a trailerReader fails with past its limit.
-var errTooBig = fmt.Errorf("%w: compressed archive is larger than the import limit", ErrCorruptArchive)
+var errTooBig = fmt.Errorf("%w: compressed archive is larger than the import limit", ErrTooLarge)
 
 var trailerHead = []byte{0x5e, 0x2a, 0x4d, 0x18, 32, 0, 0, 0}
 

@@ -3,6 +3,8 @@ package runs
 import (
 	"fmt"
 	"math"
+	"mime"
+	"strings"
 	"time"
 	"unicode/utf8"
 )
@@ -23,6 +25,9 @@ const (
 	// default per-body limit of Import, so that every recorded run can be
 	// exported and imported again with the default limits.
 	MaxBodyBytes = 64 << 20
+	// DefaultQuotaBytes is the default of what one team's runs may hold
+	// (BoltOptions.QuotaBytes, RedisOptions.QuotaBytes).
+	DefaultQuotaBytes = 256 << 20
 )
 
 // ValidID reports whether id can name a run: 1 to 128 characters, each an
@@ -79,7 +84,8 @@ var (
 )
 
 // validRecord checks what Record and Import store besides the body: the
-// entry's key, labels and time, and the answer's header fields.
+// entry's key, labels and time, and the answer's header fields (see
+// validAnswer).
 func validRecord(r *record) error {
 	if err := validKey(r.Key); err != nil {
 		return err
@@ -92,11 +98,45 @@ func validRecord(r *record) error {
 			return fmt.Errorf("%w: %s %.32q is not UTF-8", ErrInvalid, l.name, l.v)
 		}
 	}
-	if r.Status < 100 || r.Status > 999 {
-		return fmt.Errorf("%w: status %d is not an HTTP status", ErrInvalid, r.Status)
+	if err := validAnswer(r.Status, r.ContentType, r.Stream); err != nil {
+		return err
 	}
 	if r.Time.Before(minTime) || r.Time.After(maxTime) {
 		return fmt.Errorf("%w: time %s is outside 1678-2262", ErrInvalid, r.Time)
+	}
+	return nil
+}
+
+// validAnswer checks an answer's status, content type and stream flag
+// against what a recording of the wire format produces, so that a replay
+// (which answers them as they are) never sends anything else: a status an
+// upstream answer can carry a body with (2xx but 204, 205 and 206; 4xx;
+// 5xx), and the content type application/json, or text/event-stream for a
+// streamed answer (status 200), with at most a charset=utf-8 parameter.
+func validAnswer(status int, contentType string, stream bool) error {
+	switch {
+	case status >= 200 && status <= 299 && status != 204 && status != 205 && status != 206:
+	case status >= 400 && status <= 599:
+	default:
+		return fmt.Errorf("%w: status %d is not one a recorded answer has (2xx with a body, 4xx, 5xx)", ErrInvalid, status)
+	}
+	mt, params, err := mime.ParseMediaType(contentType)
+	if err != nil {
+		return fmt.Errorf("%w: content type %.64q: %v", ErrInvalid, contentType, err)
+	}
+	for k, v := range params {
+		if k != "charset" || !strings.EqualFold(v, "utf-8") {
+			return fmt.Errorf("%w: content type %.64q: parameter %.32q (only charset=utf-8)", ErrInvalid, contentType, k)
+		}
+	}
+	switch {
+	case mt == "application/json" && !stream:
+	case mt == "text/event-stream" && stream && status == 200:
+	case mt == "application/json", mt == "text/event-stream":
+		return fmt.Errorf("%w: content type %s with stream=%v and status %d (a stream is text/event-stream with 200, anything else application/json)",
+			ErrInvalid, mt, stream, status)
+	default:
+		return fmt.Errorf("%w: content type %.64q is not the wire format's (application/json, text/event-stream)", ErrInvalid, contentType)
 	}
 	return nil
 }

@@ -15,6 +15,7 @@ import (
 
 	"go.yaml.in/yaml/v3"
 
+	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/retry"
@@ -28,6 +29,7 @@ type Config struct {
 	Upstreams []UpstreamConfig `yaml:"upstreams"`
 	Teams     []TeamConfig     `yaml:"teams"`
 	Cache     CacheConfig      `yaml:"cache"`
+	Runs      RunsConfig       `yaml:"runs"`
 	Server    ServerConfig     `yaml:"server"`
 	Log       LogConfig        `yaml:"log"`
 	// Spend control (budgetconfig.go): prices in USD per million tokens,
@@ -177,6 +179,33 @@ type CacheConfig struct {
 	HotBytes       ByteSize `yaml:"hot_bytes"`
 	Sampled        bool     `yaml:"sampled"`
 	UncachedModels []string `yaml:"uncached_models"`
+	// StoreBeforeAnswer releases a miss's answer only once its entry is
+	// stored (on the embedded store: fsynced). Default true on the
+	// embedded store, false when the cache is on Redis.
+	StoreBeforeAnswer *bool `yaml:"store_before_answer"`
+}
+
+// storeBeforeAnswer is cache.store_before_answer with its default: on for
+// the embedded store, off for the shared cache on Redis.
+func (c *Config) storeBeforeAnswer() bool {
+	if v := c.Cache.StoreBeforeAnswer; v != nil {
+		return *v
+	}
+	return c.Store.Redis == nil || !c.Store.Redis.sharedCache()
+}
+
+// RunsConfig is the `runs:` section: what recorded and imported runs may
+// hold.
+type RunsConfig struct {
+	// QuotaBytes bounds what each team's runs (recorded and imported)
+	// hold; a Record or import past it is refused with 403. -1: no quota.
+	QuotaBytes ByteSize `yaml:"quota_bytes"`
+	// MaxArchiveBytes bounds one imported archive, uncompressed (413
+	// past it).
+	MaxArchiveBytes ByteSize `yaml:"max_archive_bytes"`
+	// MaxBodyBytes bounds one answer body in an imported archive (413
+	// past it).
+	MaxBodyBytes ByteSize `yaml:"max_body_bytes"`
 }
 
 // ServerConfig sets HTTP limits.
@@ -216,6 +245,11 @@ func DefaultConfig() Config {
 		Cache: CacheConfig{
 			MaxBytes: 2 << 30,
 			HotBytes: 128 << 20,
+		},
+		Runs: RunsConfig{
+			QuotaBytes:      runs.DefaultQuotaBytes,
+			MaxArchiveBytes: runs.DefaultMaxArchiveBytes,
+			MaxBodyBytes:    runs.MaxBodyBytes,
 		},
 		Server: ServerConfig{
 			MaxBodyBytes:       4 << 20,
@@ -367,6 +401,14 @@ func (c *Config) Validate(root *yaml.Node) error {
 	}
 	if c.Cache.HotBytes < 0 {
 		return bad(errors.New("hot_bytes must not be negative"), "cache", "hot_bytes")
+	}
+	switch r := c.Runs; {
+	case r.QuotaBytes == 0 || r.QuotaBytes < -1:
+		return bad(errors.New("quota_bytes must be positive, or -1 for no quota"), "runs", "quota_bytes")
+	case r.MaxArchiveBytes <= 0:
+		return bad(errors.New("max_archive_bytes must be positive"), "runs", "max_archive_bytes")
+	case r.MaxBodyBytes <= 0 || r.MaxBodyBytes > r.MaxArchiveBytes:
+		return bad(errors.New("max_body_bytes must be positive and at most max_archive_bytes"), "runs", "max_body_bytes")
 	}
 	if err := c.Server.validate(root); err != nil {
 		return err

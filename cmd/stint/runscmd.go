@@ -45,7 +45,10 @@ configured prices; the provider's bill is the record.`,
 			if err := jsonCall(cmd.Context(), teamKeyEnv, http.MethodGet, proxyURL, proxy.RunsPrefix, nil, nil, &l); err != nil {
 				return err
 			}
-			return printRuns(cmd.OutOrStdout(), l.Runs)
+			if err := printRuns(cmd.OutOrStdout(), l.Runs); err != nil {
+				return err
+			}
+			return printStorage(cmd.OutOrStdout(), l)
 		},
 	}
 	show := &cobra.Command{
@@ -151,4 +154,16 @@ func printRuns(out io.Writer, vs []proxy.RunView) error {
 			v.First.Format(time.RFC3339), v.Last.Format(time.RFC3339))
 	}
 	return w.Flush()
+}
+
+// printStorage says what the team's runs hold against its quota.
+func printStorage(out io.Writer, l proxy.RunList) error {
+	mib := func(n int64) string { return strconv.FormatFloat(float64(n)/(1<<20), 'f', 1, 64) + " MiB" }
+	if l.QuotaBytes <= 0 {
+		_, err := fmt.Fprintf(out, "stored: %s (no quota)\n", mib(l.StoredBytes))
+		return err
+	}
+	_, err := fmt.Fprintf(out, "stored: %s of the team's %s quota (%s%%)\n", mib(l.StoredBytes), mib(l.QuotaBytes),
+		strconv.FormatFloat(100*float64(l.StoredBytes)/float64(l.QuotaBytes), 'f', 1, 64))
+	return err
 }

@@ -19,6 +19,7 @@ import (
 	"github.com/redis/go-redis/v9"
 	"github.com/sony/gobreaker/v2"
 	"github.com/spf13/cobra"
+	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/allowance"
@@ -28,7 +29,6 @@ import (
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/cache"
-	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/cache/redisstore"
 	"github.com/stintlab/stint/cache/runs"
@@ -230,8 +230,8 @@ type server struct {
 	log     *slog.Logger
 	proxy   *proxy.Proxy
 	store   cache.Store
-	commits *boltgroup.Committer // the embedded file's shared group commit
-	spend   proxy.SpendControl   // nil when the config prices nothing
+	commits func(func(*bbolt.Tx) error) error // the embedded file's shared group commit
+	spend   proxy.SpendControl                // nil when the config prices nothing
 	closers []func() error
 
 	// redis is the client of store.redis (nil without it), shared by the
@@ -251,8 +251,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		return nil, fmt.Errorf("open store: %w", err)
 	}
 	s.closers = append(s.closers, disk.Close)
-	// The ledger's and run journal's writes share commits.
-	s.commits = boltgroup.New(disk.DB())
+	// The cache's, the ledger's and the run journal's writes share commits.
+	s.commits = disk.Update
 	store, shared, err := s.buildStore(ctx, cfg, disk)
 	if err != nil {
 		s.close()
@@ -293,8 +293,8 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 	}
 	var journal runs.Journal
 	if s.redis != nil {
-		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix()})
-	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update}); err != nil {
+		journal = runs.NewRedis(s.redis, runs.RedisOptions{Prefix: cfg.Store.Redis.prefix(), QuotaBytes: int64(cfg.Runs.QuotaBytes)})
+	} else if journal, err = runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits, QuotaBytes: int64(cfg.Runs.QuotaBytes)}); err != nil {
 		s.close()
 		return nil, fmt.Errorf("open run journal: %w", err)
 	}
@@ -326,9 +326,12 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 		Spend:          spend,
 		AdminKeyHashes: adminKeys,
 		Runs:           journal,
+		RunImport:      runs.ImportOptions{MaxBytes: int64(cfg.Runs.MaxArchiveBytes), MaxBodyBytes: int64(cfg.Runs.MaxBodyBytes)},
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, SidecarTimeout: time.Duration(cfg.UI.SidecarTimeout), Refresh: time.Duration(cfg.UI.Refresh)},
 		SharedFlights:  shared,
 		BreakerStore:   breakerStore,
+
+		StoreBeforeAnswer: cfg.storeBeforeAnswer(),
 	})
 	if err != nil {
 		s.close()
@@ -341,9 +344,11 @@ func buildServer(ctx context.Context, cfg Config, log *slog.Logger, requestLog i
 // buildStore opens the cache store: the embedded file, or with store.redis
 // (and its cache not turned off) Redis, shared by every replica, which then
 // also coalesces misses across replicas. The hot tier goes in front of
-// either; in front of Redis its entries live at most store.redis.hot_ttl, so
-// a replica serves an answer another has refreshed only that long. It
-// connects s.redis when the config has store.redis.
+// either; in front of Redis its entries are served without asking Redis for
+// at most store.redis.hot_ttl, so a replica serves an answer another has
+// refreshed only that long, and (store.redis.stale_if_error) stay to be
+// served while Redis cannot be read. It connects s.redis when the config has
+// store.redis.
 func (s *server) buildStore(ctx context.Context, cfg Config, disk *boltstore.Store) (cache.Store, proxy.SharedFlights, error) {
 	var (
 		store  cache.Store = disk
@@ -364,7 +369,7 @@ func (s *server) buildStore(ctx context.Context, cfg Config, disk *boltstore.Sto
 			}
 			s.closers = append(s.closers, rs.Close) // before the client's
 			store, shared = rs, rs
-			hot.MaxAge = rc.hotTTL()
+			hot.MaxAge, hot.StaleIfError = rc.hotTTL(), rc.staleIfError()
 		}
 	}
 	if cfg.Cache.HotBytes > 0 {
@@ -410,7 +415,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 			ledger, journal, gc.Overrides = al, al, al
 		}
 	} else {
-		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Update: s.commits.Update})
+		l, err := boltledger.New(disk.DB(), boltledger.Options{Location: gc.Location, Update: s.commits})
 		if err != nil {
 			return nil, fmt.Errorf("open ledger: %w", err)
 		}

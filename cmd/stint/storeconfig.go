@@ -47,11 +47,15 @@ type RedisConfig struct {
 	// misses coalesced across replicas; false keeps them in each
 	// replica's embedded file. Default true.
 	Cache *bool `yaml:"cache"`
-	// HotTTL is the longest an answer read from Redis stays in this
-	// replica's in-memory tier (cache.hot_bytes): it bounds how long a
-	// replica keeps serving an answer that another one has since
-	// refreshed (Cache-Control: no-cache). Default 2s.
+	// HotTTL is the longest an answer from Redis is served from this
+	// replica's in-memory tier (cache.hot_bytes) without asking Redis: it
+	// bounds how long a replica keeps serving an answer that another one
+	// has since refreshed (Cache-Control: no-cache). Default 2s.
 	HotTTL Duration `yaml:"hot_ttl"`
+	// StaleIfError keeps answers in the in-memory tier past HotTTL (until
+	// their cache.ttl, within cache.hot_bytes) and serves them while Redis
+	// cannot be read. Default true.
+	StaleIfError *bool `yaml:"stale_if_error"`
 	// Lease is how long a replica fetching a miss holds the key for the
 	// others without renewing it (it renews every third of it while
 	// fetching): after a replica dies mid-call, the others wait this long
@@ -122,6 +126,10 @@ func (r *RedisConfig) prefix() string {
 
 // sharedCache reports whether cached answers live on Redis.
 func (r *RedisConfig) sharedCache() bool { return r.Cache == nil || *r.Cache }
+
+// staleIfError reports whether the hot tier stands in for an unreachable
+// Redis.
+func (r *RedisConfig) staleIfError() bool { return r.StaleIfError == nil || *r.StaleIfError }
 
 // timeout is the bound of one Redis command.
 func (r *RedisConfig) timeout() time.Duration {

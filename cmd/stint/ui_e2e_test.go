@@ -32,7 +32,6 @@ import (
 	"github.com/prometheus/common/expfmt"
 	"github.com/prometheus/common/model"
 
-	"github.com/stintlab/stint/cache/boltgroup"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
@@ -209,7 +208,7 @@ ui:
 		t.Fatal(err)
 	}
 	s.closers = append(s.closers, disk.Close)
-	s.commits = boltgroup.New(disk.DB())
+	s.commits = disk.Update
 	ups, closers, err := buildUpstreams(ctx, cfg.Upstreams)
 	if err != nil {
 		t.Fatal(err)
@@ -223,7 +222,7 @@ ui:
 	if err != nil {
 		t.Fatal(err)
 	}
-	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits.Update})
+	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits})
 	if err != nil {
 		t.Fatal(err)
 	}
