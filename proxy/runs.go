@@ -31,6 +31,10 @@ const (
 	// charged when the run recorded it (an estimate, like Stint-Cost-Usd;
 	// the replay itself costs nothing).
 	HeaderRecordedCost = "Stint-Recorded-Cost-Usd"
+	// HeaderRecordedSaved, on a replayed answer, is what the cache saved
+	// on the call when the run recorded it (an estimate, like
+	// Stint-Saved-Usd).
+	HeaderRecordedSaved = "Stint-Recorded-Saved-Usd"
 )
 
 // OutcomeReplay marks an answer served from a run's journal.
@@ -135,6 +139,7 @@ func (p *Proxy) serveReplay(w http.ResponseWriter, r *http.Request, ll *logLine,
 		h.Set(HeaderCost, usd(0))
 	}
 	h.Set(HeaderRecordedCost, usd(budget.Nanos(e.CostNanos)))
+	h.Set(HeaderRecordedSaved, usd(budget.Nanos(e.SavedNanos)))
 	if e.Stream {
 		h.Set("Cache-Control", "no-cache")
 	}

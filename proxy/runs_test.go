@@ -127,16 +127,17 @@ func TestReplayCarriesTheRecordedCost(t *testing.T) {
 	_, j := newBoltJournal(t)
 	r := newSpendRigWith(t, guard.TeamPolicy{}, func(o *proxy.Options) { o.Runs = j })
 	calls := []map[string]any{greedy("the cost of a bushel"), greedy("the cost of a bushel"), greedy([]string{"crate one", "crate two"})}
-	var charged []int64
+	var charged, saved []int64
 	for i, body := range calls {
 		got := r.complete(body, proxy.HeaderRun, "ledger-1")
 		if got.status != http.StatusOK {
 			t.Fatalf("call %d: %d %s", i, got.status, got.body)
 		}
 		charged = append(charged, headerNanos(t, got.header, proxy.HeaderCost))
+		saved = append(saved, headerNanos(t, got.header, proxy.HeaderSaved))
 	}
-	if charged[0] == 0 || charged[1] != 0 {
-		t.Fatalf("recorded charges %v: want a miss that costs and a hit that does not", charged)
+	if charged[0] == 0 || charged[1] != 0 || saved[1] == 0 {
+		t.Fatalf("recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
 	}
 	for i, body := range calls {
 		got := r.complete(body, proxy.HeaderRun, "ledger-1", proxy.HeaderRunMode, "replay")
@@ -148,6 +149,9 @@ func TestReplayCarriesTheRecordedCost(t *testing.T) {
 		}
 		if rec := headerNanos(t, got.header, proxy.HeaderRecordedCost); rec != charged[i] {
 			t.Errorf("replay %d: %s %d nanos, want the recorded charge %d", i, proxy.HeaderRecordedCost, rec, charged[i])
+		}
+		if rec := headerNanos(t, got.header, proxy.HeaderRecordedSaved); rec != saved[i] {
+			t.Errorf("replay %d: %s %d nanos, want the recorded saving %d", i, proxy.HeaderRecordedSaved, rec, saved[i])
 		}
 	}
 }

@@ -61,7 +61,7 @@ Run it from the repository root (the demo data is in testdata/search).`,
 	fl.StringVar(&f.data, "data", "./stint-demo-data", "data directory of the demo's proxy")
 	fl.StringVar(&f.out, "out", "./stint-demo-out", "where the search writes its results")
 	fl.StringVar(&f.dataset, "dataset", filepath.Join("testdata", "search"), "folder with the demo task's data")
-	fl.IntVar(&f.steps, "steps", 120, "search steps")
+	fl.IntVar(&f.steps, "steps", 90, "search steps")
 	fl.Int64Var(&f.seed, "seed", 7, "the search's seed")
 	return cmd
 }
@@ -136,7 +136,7 @@ func writeDemoTask(f demoFlags) (string, error) {
 		"train: reading-corner-train.jsonl", "train: "+filepath.Join(dir, "reading-corner-train.jsonl"),
 		"dev: reading-corner-dev.jsonl", "dev: "+filepath.Join(dir, "reading-corner-dev.jsonl"),
 		"test: reading-corner-test.jsonl", "test: "+filepath.Join(dir, "reading-corner-test.jsonl"),
-		"steps: 200", fmt.Sprintf("steps: %d", f.steps),
+		"steps: 90", fmt.Sprintf("steps: %d", f.steps),
 		"seed: 7", fmt.Sprintf("seed: %d", f.seed),
 	).Replace(task.ExampleFile)
 	if err := os.MkdirAll(f.data, 0o700); err != nil {

@@ -248,6 +248,11 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 // calls, cache share, spend, the share of verbalizers floored and the time
 // left at this pace.
 func printProgress(w io.Writer, p search.Progress, start time.Time) {
+	if p.Phase != search.PhaseSearch {
+		fmt.Fprintf(w, "\r%s %-10s %d/%d calls %d cached %4.1f%% spent %.4f USD floored %4.1f%%   ",
+			progressBar(p.Done, p.Total, 20), p.Phase, p.Done, p.Total, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD, 100*p.FlooredShare)
+		return
+	}
 	dev := "  -  "
 	if p.DevAcc >= 0 {
 		dev = fmt.Sprintf("%4.1f%%", 100*p.DevAcc)

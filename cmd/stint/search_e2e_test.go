@@ -40,8 +40,8 @@ func upstreamCalls(t *testing.T, c *child) int {
 // of its datasets.
 func shortTask(t *testing.T) string {
 	t.Helper()
-	return tasktest.WriteExample(t, "steps: 200", "steps: 4", "prompts_per_step: 8", "prompts_per_step: 4",
-		"examples_per_step: 16", "examples_per_step: 6")
+	return tasktest.WriteExample(t, "steps: 90", "steps: 4", "prompts_per_step: 16", "prompts_per_step: 4",
+		"examples_per_step: 8", "examples_per_step: 6")
 }
 
 // TestSearchReplaysToTheSameResults runs a short search through a real
@@ -91,8 +91,15 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 		if ct.EvalCalls == 0 || ct.EvalSpendUSD <= 0 {
 			t.Errorf("%s: %d evaluation calls, %v USD; want the evaluation's calls and their cost", ct.Method, ct.EvalCalls, ct.EvalSpendUSD)
 		}
-		if searched := ct.Method == "rl" || ct.Method == "rl-best" || ct.Method == "random"; searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0) {
+		searched := ct.Method != search.MethodEmpty && ct.Method != search.MethodManual
+		if searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0) {
 			t.Errorf("%s: %d search calls, %v USD", ct.Method, ct.SearchCalls, ct.SearchSpendUSD)
+		}
+		// On its own a contender pays for every text it had judged first,
+		// at the proxy's price before the cache: at least what it was
+		// charged here, where some came from others' calls.
+		if searched != (ct.SearchNewTexts > 0 && ct.SearchAloneUSD >= ct.SearchSpendUSD*(1-1e-9)) {
+			t.Errorf("%s: %d new texts, %v USD alone for %v charged", ct.Method, ct.SearchNewTexts, ct.SearchAloneUSD, ct.SearchSpendUSD)
 		}
 	}
 	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {

@@ -49,6 +49,9 @@ type Status struct {
 	ID    string `json:"id"`
 	Spec  Spec   `json:"spec"`
 	State string `json:"state"`
+	// Phase is what a running job is doing: the search's steps, its
+	// choice, a baseline, or the evaluation (search.Progress.Phase).
+	Phase string `json:"phase,omitempty"`
 	Step  int    `json:"step"`
 	Steps int    `json:"steps"`
 	// BestPrompt is the best prompt so far: of the policy's greedy prompts
@@ -61,7 +64,7 @@ type Status struct {
 	BestStep   int     `json:"best_step,omitempty"`
 	// LatestPrompt is the greedy prompt at the latest evaluation and
 	// LatestDevAcc its dev accuracy (-1 before the first); at the end it
-	// is results.json's "rl" prompt.
+	// is results.json's "rl-greedy" prompt.
 	LatestPrompt string  `json:"latest_prompt"`
 	LatestDevAcc float64 `json:"latest_dev_accuracy"`
 	// TrainAcc is the latest step's mean accuracy of its sampled prompts.
@@ -291,15 +294,19 @@ func (m *Manager) run(ctx context.Context, id string) {
 	// recording.
 	oc, err := search.RunJob(jctx, m.model, job, io.Discard, func(p search.Progress) {
 		m.update(id, func(s *Status) {
+			s.Phase = p.Phase
+			s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
+			if p.Phase != search.PhaseSearch {
+				return
+			}
 			s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
 			s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
 			s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
-			s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
 			if p.ResumedAfter > 0 {
 				s.Resumed = p.ResumedAfter
 			}
 		})
-		if p.Step%10 == 0 {
+		if p.Phase == search.PhaseSearch && p.Step%10 == 0 {
 			m.persist(id)
 		}
 	})
@@ -313,7 +320,7 @@ func (m *Manager) run(ctx context.Context, id string) {
 		st.State, st.Error = Failed, err.Error()
 	default:
 		// The whole search's figures, the final evaluation included.
-		st.State = Done
+		st.State, st.Phase = Done, ""
 		res := oc.Results
 		st.Calls, st.CacheShare, st.SpentUSD = res.Spending.Calls, res.Spending.CacheShare(), res.Spending.CostUSD
 		st.FlooredShare = res.FlooredShare()

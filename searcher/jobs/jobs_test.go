@@ -36,8 +36,8 @@ func newRig(t *testing.T, steps int) rig {
 	}
 	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	t.Cleanup(srv.Close)
-	path := tasktest.WriteExample(t, "steps: 200", "steps: "+strconv.Itoa(steps), "prompts_per_step: 8", "prompts_per_step: 4",
-		"examples_per_step: 16", "examples_per_step: 4")
+	path := tasktest.WriteExample(t, "steps: 90", "steps: "+strconv.Itoa(steps), "prompts_per_step: 16", "prompts_per_step: 4",
+		"examples_per_step: 8", "examples_per_step: 4")
 	return rig{model: m, api: srv.URL + "/v1", task: path}
 }
 

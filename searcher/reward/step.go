@@ -68,7 +68,8 @@ func (c Config) Score(top [][]map[string]float64, truth []int, verbalizers []str
 }
 
 // Normalize z-scores each input's column of raw[p][i] across the prompts p
-// (population standard deviation plus StdEpsilon), unless NoZScore, then
+// (population standard deviation plus StdEpsilon) for KindGap, or centres
+// it (subtracts its mean) for KindMargin, unless NoZScore; then it
 // multiplies by Factor and clips to ±Clip when Clip is set. raw is not
 // modified; rows must have equal lengths.
 func (c Config) Normalize(raw [][]float64) [][]float64 {
@@ -91,6 +92,9 @@ func (c Config) Normalize(raw [][]float64) [][]float64 {
 				ss += (v - m) * (v - m)
 			}
 			std := math.Sqrt(ss/float64(len(col))) + StdEpsilon
+			if c.Kind == KindMargin {
+				std = 1
+			}
 			for p := range out {
 				out[p][i] = (out[p][i] - m) / std
 			}

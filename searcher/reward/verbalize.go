@@ -87,9 +87,16 @@ func Judge(probs []float64, truth int) (Judgement, error) {
 	return j, nil
 }
 
-// Raw is the paper's unnormalised reward for one judgement: Correct·Gap
-// when right, Wrong·Gap when wrong.
+// Raw is the unnormalised reward for one judgement: for KindGap the
+// paper's Correct·Gap when right and Wrong·Gap when wrong; for KindMargin
+// ±1 plus Margin·Gap.
 func (c Config) Raw(j Judgement) float64 {
+	if c.Kind == KindMargin {
+		if j.Correct {
+			return 1 + c.margin()*j.Gap
+		}
+		return -1 + c.margin()*j.Gap
+	}
 	if j.Correct {
 		return c.correct() * j.Gap
 	}

@@ -16,6 +16,11 @@ const (
 	// HeaderRecordedCost is, on a replayed answer, the call's charge when
 	// the run recorded it.
 	HeaderRecordedCost = "Stint-Recorded-Cost-Usd"
+	// HeaderSaved is what the cache saved on this answer, an estimate.
+	HeaderSaved = "Stint-Saved-Usd"
+	// HeaderRecordedSaved is, on a replayed answer, what the cache saved
+	// when the run recorded it.
+	HeaderRecordedSaved = "Stint-Recorded-Saved-Usd"
 )
 
 // cacheReplay is the Stint-Cache value of an answer from a run's journal.
@@ -46,6 +51,23 @@ type Call struct {
 	// RecordedCostUSD is, on a replayed answer, the Stint-Recorded-Cost-Usd
 	// header: what the call was charged when the run recorded it.
 	RecordedCostUSD float64 `json:",omitempty"`
+	// SavedUSD is the Stint-Saved-Usd header, 0 when absent: what the
+	// cache saved on the call, priced like CostUSD.
+	SavedUSD float64 `json:",omitempty"`
+	// RecordedSavedUSD is, on a replayed answer, the
+	// Stint-Recorded-Saved-Usd header: what the cache saved when the run
+	// recorded the call.
+	RecordedSavedUSD float64 `json:",omitempty"`
+}
+
+// PriceUSD is the call's price before the cache: its charge plus what the
+// cache saved (the recording's figures on a replay), so a run and its
+// replay agree on it.
+func (c Call) PriceUSD() float64 {
+	if c.Cache == cacheReplay {
+		return c.RecordedCostUSD + c.RecordedSavedUSD
+	}
+	return c.CostUSD + c.SavedUSD
 }
 
 // RunCostUSD is what the call costs the run it belongs to: its charge, or
@@ -76,8 +98,10 @@ func readCall(h http.Header, prompts int) Call {
 		}
 	}
 	c.CostUSD = usdHeader(h, HeaderCost)
+	c.SavedUSD = usdHeader(h, HeaderSaved)
 	if c.Cache == cacheReplay {
 		c.RecordedCostUSD = usdHeader(h, HeaderRecordedCost)
+		c.RecordedSavedUSD = usdHeader(h, HeaderRecordedSaved)
 	}
 	return c
 }

@@ -8,11 +8,12 @@ import (
 	"io"
 	"math/rand/v2"
 
+	"github.com/stintlab/stint/searcher/judge"
 	"github.com/stintlab/stint/searcher/scorer"
 )
 
 // checkpointVersion is the layout of State; a reader refuses any other.
-const checkpointVersion = 2
+const checkpointVersion = 3
 
 // ErrStopped ends a search that stopped early on purpose (StopAfter); its
 // last checkpoint resumes it.
@@ -33,13 +34,13 @@ type State struct {
 	Random     []byte        `json:"random"` // the example sampler's PCG state
 	History    []Point       `json:"history"`
 	Calls      []scorer.Call `json:"calls"`
-	Floored    int           `json:"floored"`
-	Lookups    int           `json:"lookups"`
 	DevAcc     float64       `json:"dev_accuracy"`
 	GreedyText string        `json:"greedy_prompt"`
-	BestText   string        `json:"best_sampled_prompt"`
-	BestScore  float64       `json:"best_sampled_reward"`
-	Policy     []byte        `json:"policy"` // the policy's own checkpoint
+	// Sampled are the distinct prompts judged so far, in the order first
+	// seen, and Judged the search's verdicts and tally.
+	Sampled []string     `json:"sampled"`
+	Judged  judge.Memory `json:"judged"`
+	Policy  []byte       `json:"policy"` // the policy's own checkpoint
 }
 
 // WriteState writes s as JSON.
@@ -72,7 +73,7 @@ func ReadState(r io.Reader, name string, seed int64) (*State, error) {
 func (s *State) PolicyReader() io.Reader { return bytes.NewReader(s.Policy) }
 
 // snapshot captures the runner after step.
-func (r *runner) snapshot(step int, res *Results, devAcc float64, greedy string) (*State, error) {
+func (r *runner) snapshot(step int, res *Results) (*State, error) {
 	rnd, err := r.pcg.MarshalBinary()
 	if err != nil {
 		return nil, err
@@ -84,8 +85,8 @@ func (r *runner) snapshot(step int, res *Results, devAcc float64, greedy string)
 	return &State{
 		Version: checkpointVersion, Task: r.t.Name, Seed: r.t.Seed, Step: step, Random: rnd,
 		History: append([]Point(nil), res.History...), Calls: append([]scorer.Call(nil), r.calls...),
-		Floored: r.floored, Lookups: r.lookups, DevAcc: devAcc, GreedyText: greedy, Policy: pol.Bytes(),
-		BestText: r.bestText, BestScore: r.bestScore,
+		DevAcc: r.devAcc, GreedyText: r.greedyText, Policy: pol.Bytes(),
+		Sampled: append([]string(nil), r.sampled...), Judged: r.rl.Save(),
 	}, nil
 }
 
@@ -97,7 +98,12 @@ func (r *runner) restore(s *State, res *Results) error {
 	r.rng = rand.New(r.pcg)
 	res.History = append([]Point(nil), s.History...)
 	r.calls = append([]scorer.Call(nil), s.Calls...)
-	r.floored, r.lookups = s.Floored, s.Lookups
-	r.bestText, r.bestScore, r.seenBest = s.BestText, s.BestScore, s.Step > 0
+	if err := r.rl.Restore(s.Judged); err != nil {
+		return fmt.Errorf("%w: %w", ErrCheckpoint, err)
+	}
+	for _, p := range s.Sampled {
+		r.note(p)
+	}
+	r.devAcc, r.greedyText = s.DevAcc, s.GreedyText
 	return nil
 }

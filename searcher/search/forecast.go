@@ -3,6 +3,7 @@ package search
 import (
 	"errors"
 	"fmt"
+	"math"
 	"strings"
 
 	"github.com/stintlab/stint/searcher/scorer"
@@ -12,12 +13,18 @@ import (
 // Plan is how many judgements (prompt × example scorings) a search will
 // make and about how many prompt tokens they hold.
 type Plan struct {
-	Search, Random, Evaluation int // judgements of each part
-	TokensPerJudgement         int // an upper bound (see scorer.EstimateTokens)
+	// Search is the RL search's budget: its steps, its curve's dev
+	// evaluations and its choice.
+	Search int
+	// Baselines is what the task's baselines make: Search each.
+	Baselines int
+	// Evaluation scores every contender on train, dev and test.
+	Evaluation         int
+	TokensPerJudgement int // an upper bound (see scorer.EstimateTokens)
 }
 
 // Judgements is the total.
-func (p Plan) Judgements() int { return p.Search + p.Random + p.Evaluation }
+func (p Plan) Judgements() int { return p.Search + p.Baselines + p.Evaluation }
 
 // Cost is the plan's forecast at price: an estimate that ignores the
 // cache (hits cost nothing), so a search that repeats itself pays less.
@@ -29,13 +36,25 @@ func (p Plan) Cost(price scorer.Price) float64 {
 // in a step: the task's examples_per_step, at most the whole train set.
 func examplesPerStep(t *task.Task) int { return min(t.ExamplesPerStep, len(t.Train)) }
 
-// searchJudgements is how many judgements the RL search makes, and so the
-// budget of random search.
-func searchJudgements(t *task.Task) int { return t.Steps * t.PromptsPerStep * examplesPerStep(t) }
+// Budget is how the RL search's judgements divide.
+type Budget struct {
+	// Steps is the training steps' judgements: steps × prompts per step ×
+	// examples per step.
+	Steps int
+	// Curve is at most the judgements of scoring the greedy prompt on the
+	// dev set every EvalEvery steps (repeats of a prompt are free).
+	Curve, EvalEvery int
+	// Choice is kept for choosing the final prompt: the task's
+	// choose.share of the whole budget.
+	Choice int
+}
 
-// PlanFor forecasts a search of t with the given dev-evaluation interval
-// (0: the default, as Run uses).
-func PlanFor(t *task.Task, evalEvery int) Plan {
+// Total is the whole budget, and what each baseline is given.
+func (b Budget) Total() int { return b.Steps + b.Curve + b.Choice }
+
+// BudgetFor divides t's search with the given dev-evaluation interval (0:
+// every tenth of the steps, as Run uses).
+func BudgetFor(t *task.Task, evalEvery int) Budget {
 	if evalEvery <= 0 {
 		evalEvery = max(1, t.Steps/10)
 	}
@@ -43,7 +62,17 @@ func PlanFor(t *task.Task, evalEvery int) Plan {
 	if t.Steps%evalEvery != 0 {
 		evals++
 	}
-	contenders := 4 + len(t.ManualPrompts) // rl, rl-best, empty, random and the manual prompts
+	b := Budget{Steps: t.Steps * t.PromptsPerStep * examplesPerStep(t), Curve: evals * len(t.Dev), EvalEvery: evalEvery}
+	if s := t.Choose.Share; s > 0 && s < 1 {
+		b.Choice = int(math.Round(s / (1 - s) * float64(b.Steps+b.Curve)))
+	}
+	return b
+}
+
+// PlanFor forecasts a search of t with the given dev-evaluation interval
+// (0: the default, as Run uses).
+func PlanFor(t *task.Task, evalEvery int) Plan {
+	contenders := 3 + len(t.ManualPrompts) + len(t.Baselines.Run) // rl, rl-greedy, empty, the manual prompts, the baselines
 	longest := 0
 	for _, set := range [][]task.Example{t.Train, t.Dev, t.Test} {
 		for _, e := range set {
@@ -52,10 +81,11 @@ func PlanFor(t *task.Task, evalEvery int) Plan {
 	}
 	// A prompt token is at most a word piece; count it generously.
 	prompt := strings.Repeat("x", 12*t.PromptLength)
+	total := BudgetFor(t, evalEvery).Total()
 	return Plan{
-		Search:             searchJudgements(t),
-		Random:             searchJudgements(t),
-		Evaluation:         evals*len(t.Dev) + contenders*(len(t.Train)+len(t.Dev)+len(t.Test)),
+		Search:             total,
+		Baselines:          len(t.Baselines.Run) * total,
+		Evaluation:         contenders * (len(t.Train) + len(t.Dev) + len(t.Test)),
 		TokensPerJudgement: scorer.EstimateTokens(t.Fill(strings.Repeat("x", longest), prompt)),
 	}
 }

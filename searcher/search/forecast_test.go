@@ -6,6 +6,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+
 	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/task"
 )
@@ -16,20 +18,23 @@ func TestPlanForTheExampleTask(t *testing.T) {
 		t.Fatal(err)
 	}
 	p := PlanFor(tk, 0)
-	// Hand-worked from the example: 200 steps × 8 prompts × 16 examples =
-	// 25,600 scorings for the search and as many for random search; dev
-	// (20 sentences) every 20 steps is 10 × 20 = 200, and the 6 contenders
-	// (rl, rl-best, empty, 2 manual, random) on 40 + 20 + 40 sentences are
-	// 600.
-	if p.Search != 25600 || p.Random != 25600 || p.Evaluation != 800 || p.Judgements() != 52000 {
-		t.Errorf("plan %+v, want 25600 + 25600 + 800", p)
-	}
+	// Hand-worked from the example: 90 steps × 16 prompts × 8 examples =
+	// 11,520 judgements; dev (20 sentences) every 9 steps is 10 × 20 = 200;
+	// the choice keeps a quarter of the whole, a third of the rest:
+	// round(11,720 / 3) = 3,907; so 15,627 for the search and as many for
+	// each of the two baselines (best-of-n, halving); the 7 contenders (rl,
+	// rl-greedy, empty, 2 manual, 2 baselines) on 40 + 20 + 40 sentences
+	// are 700.
+	b := BudgetFor(tk, 0)
+	assert.Equal(t, Budget{Steps: 11520, Curve: 200, EvalEvery: 9, Choice: 3907}, b)
+	assert.Equal(t, Plan{Search: 15627, Baselines: 31254, Evaluation: 700, TokensPerJudgement: p.TokensPerJudgement}, p)
+	assert.Equal(t, 47581, p.Judgements())
 	if p.TokensPerJudgement <= 0 {
 		t.Errorf("tokens per judgement %d", p.TokensPerJudgement)
 	}
-	// 52,000 scorings × T tokens at 1 USD per million in, plus one output
+	// 47,581 scorings × T tokens at 1 USD per million in, plus one output
 	// token each at 2 USD per million.
-	want := (52000*float64(p.TokensPerJudgement)*1 + 52000*2) / 1e6
+	want := (47581*float64(p.TokensPerJudgement)*1 + 47581*2) / 1e6
 	if got := p.Cost(scorer.Price{InputPerMillion: 1, OutputPerMillion: 2}); got != want {
 		t.Errorf("cost %v, want %v", got, want)
 	}

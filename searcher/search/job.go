@@ -68,7 +68,7 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 		return oc, errors.New("search: the task's allow_list admits no token of the model")
 	}
 	if t.AutoFactor {
-		t.Reward.Factor = task.AutoRewardFactor(t.PromptLength, len(vocab.Actions()))
+		t.Reward.Factor = task.AutoRewardFactor(t.Reward.Kind, t.PromptLength, len(vocab.Actions()))
 	}
 	backbone, err := policy.NewLocal(m, policy.LocalOptions{})
 	if err != nil {
@@ -106,8 +106,8 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	}
 	oc.Plan = PlanFor(t, 0)
 	oc.Pricing = PricingFor(t.Prices, j.Price)
-	fmt.Fprintf(log, "forecast: %d scorings (search %d, random baseline %d, evaluation %d) of at most %d prompt tokens each",
-		oc.Plan.Judgements(), oc.Plan.Search, oc.Plan.Random, oc.Plan.Evaluation, oc.Plan.TokensPerJudgement)
+	fmt.Fprintf(log, "forecast: %d scorings (search %d, baselines %d, evaluation %d) of at most %d prompt tokens each",
+		oc.Plan.Judgements(), oc.Plan.Search, oc.Plan.Baselines, oc.Plan.Evaluation, oc.Plan.TokensPerJudgement)
 	if oc.Pricing.Known() {
 		oc.Forecast = oc.Plan.Cost(oc.Pricing.Price)
 		fmt.Fprintf(log, ": at most %.4f USD at %g / %g USD per million input / output tokens, before the cache (an estimate; the provider's bill is the record)",

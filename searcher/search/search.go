@@ -1,9 +1,12 @@
 // Package search runs one prompt search: the soft Q-learning policy
 // proposes prompts, the scorer has them judged through the proxy, the
-// reward turns the judgements into the policy's training signal. Baselines
-// (no prompt, the task's manual prompts, random search at the same number
-// of scoring calls) are scored in the same run, so the results compare
-// like with like.
+// reward turns the judgements into the policy's training signal, and at
+// the end the search chooses its prompt among its best candidates by the
+// rule every contender uses (package pick, on the train and dev lines).
+// Baselines (no prompt, the task's manual prompts, best-of-N and
+// successive halving over random prompts, each at the search's
+// judgements) run in the same search, so the results compare like with
+// like.
 //
 // Everything a search decides comes from the task's seed and the answers
 // it gets, so a search replayed from the proxy's run journal produces the
@@ -19,7 +22,8 @@ import (
 	"slices"
 	"strings"
 
-	"github.com/stintlab/stint/searcher/reward"
+	"github.com/stintlab/stint/searcher/baseline"
+	"github.com/stintlab/stint/searcher/judge"
 	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/task"
 )
@@ -62,7 +66,8 @@ type Options struct {
 	// EvalEvery is how often (in steps) the greedy prompt is scored on the
 	// dev set; 0 means every tenth of the steps.
 	EvalEvery int
-	// Progress, when set, is called after every step.
+	// Progress, when set, is called after every step and as the later
+	// phases go.
 	Progress func(Progress)
 	// Checkpoint, when set, receives the search's state every
 	// CheckpointEvery steps (0: every tenth of the steps) and at StopAfter;
@@ -81,13 +86,29 @@ type Options struct {
 	// Backbone identifies the policy's backbone model file in
 	// results.json (see IdentifyBackbone).
 	Backbone Backbone
+	// ZeroRewards trains the policy on zero rewards: a broken learner
+	// whose proposals stay random, for proving that the search's
+	// learning test can fail. Never set outside such a test.
+	ZeroRewards bool
 }
 
 // ErrSpendCap stops a search whose calls reached its spend cap.
 var ErrSpendCap = errors.New("search: the spend cap is reached")
 
-// Progress is the state of a search after a step.
+// The phases a search goes through, as Progress names them.
+const (
+	PhaseSearch   = "search"
+	PhaseChoice   = "choice"
+	PhaseEvaluate = "evaluation"
+)
+
+// Progress is the state of a search after a step, or in a later phase.
 type Progress struct {
+	// Phase is PhaseSearch, PhaseChoice, a baseline's name or
+	// PhaseEvaluate; Done of Total says how far the phase is (steps in
+	// the search, contenders in the evaluation).
+	Phase       string
+	Done, Total int
 	Step, Steps int
 	// ResumedAfter is the checkpoint's step this run went on from; 0 for
 	// a search that started at step 1.
@@ -138,9 +159,19 @@ type Point struct {
 	Prompt     string  `json:"greedy_prompt,omitempty"`
 }
 
+// The contenders' methods.
+const (
+	MethodRL       = "rl"        // the search's choice among its candidates
+	MethodRLGreedy = "rl-greedy" // the policy's greedy prompt at the end when it is not rl's, for reference
+	MethodEmpty    = "empty"
+	MethodManual   = "manual"
+)
+
 // Contender is a prompt and how it did.
 type Contender struct {
-	Method   string  `json:"method"` // "rl", "rl-best", "empty", "manual", "random"
+	// Method is one of the Method constants or a baseline's name
+	// (task.Baselines).
+	Method   string  `json:"method"`
 	Prompt   string  `json:"prompt"`
 	TrainAcc float64 `json:"train_accuracy"`
 	DevAcc   float64 `json:"dev_accuracy"`
@@ -149,11 +180,17 @@ type Contender struct {
 	// finding its prompt (the evaluation on train/dev/test not counted).
 	Calls int `json:"search_judgements"`
 	// SearchCalls are the scoring calls the method made finding its prompt
-	// (rl and rl-best share one search, the dev evaluations along its
-	// curve included; none for the empty and manual prompts) and
+	// (rl and rl-greedy share one search, its curve's dev evaluations and
+	// its choice included; none for the empty and manual prompts) and
 	// SearchSpendUSD what the proxy reported for them.
 	SearchCalls    int     `json:"search_calls"`
 	SearchSpendUSD float64 `json:"search_spend_usd"`
+	// SearchNewTexts counts the texts among its judgements the method had
+	// not had judged before, and SearchAloneUSD their price before the
+	// cache: what the method would pay running alone on an empty cache
+	// (see judge.Tally.AloneUSD), the yardstick of equal-spend comparisons.
+	SearchNewTexts int     `json:"search_new_texts"`
+	SearchAloneUSD float64 `json:"search_alone_usd"`
 	// EvalCalls and EvalSpendUSD are the same for scoring the prompt on
 	// the train, dev and test sets.
 	EvalCalls    int     `json:"eval_calls"`
@@ -166,27 +203,62 @@ func (c Contender) Spend() (calls int, usd float64) {
 	return c.SearchCalls + c.EvalCalls, c.SearchSpendUSD + c.EvalSpendUSD
 }
 
+// searched fills c's search figures from a tally.
+func (c *Contender) searched(t judge.Tally) {
+	c.Calls, c.SearchCalls, c.SearchSpendUSD = t.Judgements, t.Calls, t.RunCostUSD
+	c.SearchNewTexts, c.SearchAloneUSD = t.New, t.AloneUSD
+}
+
 // Results are a finished search. They hold nothing that differs between a
 // run and its replay: no times, no cache figures, and the contenders' spend
 // is each call's cost to the run (scorer.Call.RunCostUSD), which a replay
 // reads from the recording.
 type Results struct {
-	Task     string        `json:"task"`
-	Seed     int64         `json:"seed"`
-	Steps    int           `json:"steps"`
-	Best     Contender     `json:"best"`
-	Ranking  []Contender   `json:"contenders"`
+	Task  string `json:"task"`
+	Seed  int64  `json:"seed"`
+	Steps int    `json:"steps"`
+	// Budget is the judgements the RL search may make, its choice
+	// included, and so what each baseline is given.
+	Budget int `json:"judgement_budget"`
+	// Best is the RL search's choice (the contender "rl").
+	Best    Contender   `json:"best"`
+	Ranking []Contender `json:"contenders"`
+	// Choice says how the RL search chose among its candidates.
+	Choice   ChoiceReport  `json:"choice"`
 	History  []Point       `json:"-"`
 	Floored  int           `json:"floored_verbalizers"`
 	Lookups  int           `json:"verbalizer_lookups"`
 	Config   Settings      `json:"config"`
 	Versions Versions      `json:"versions"`
 	Spending scorer.Totals `json:"-"`
+	// Extras carries what a baseline keeps for reading it again at a
+	// smaller spend (best-of-N's judged candidates), for comparisons.
+	Extras Extras `json:"-"`
+}
+
+// Extras are details of a search that comparisons read and results.json
+// leaves out.
+type Extras struct {
+	// BestOfN are best-of-N's candidates in the order drawn, with their
+	// accuracy and spend.
+	BestOfN []baseline.Candidate
+	// Pool is the number of lines best-of-N judged each candidate on.
+	Pool int
 }
 
 // FlooredShare is the share of verbalizer look-ups that gave the
 // verbalizer the floor (0 with no look-ups).
 func (r Results) FlooredShare() float64 { return share(r.Floored, r.Lookups) }
+
+// Contender returns the first contender of method, and whether there is one.
+func (r Results) Contender(method string) (Contender, bool) {
+	for _, c := range r.Ranking {
+		if c.Method == method {
+			return c, true
+		}
+	}
+	return Contender{}, false
+}
 
 // Settings are the task settings a result depends on.
 type Settings struct {
@@ -199,10 +271,14 @@ type Settings struct {
 	ExamplesPerStep int               `json:"examples_per_step"`
 	TopLogprobs     int               `json:"top_logprobs"`
 	Actions         int               `json:"action_vocabulary"`
+	RewardKind      string            `json:"reward_kind"`
 	RewardFactor    float64           `json:"reward_factor"`
 	LearningRate    float64           `json:"learning_rate"`
 	TopK            int               `json:"top_k"`
 	TargetRate      float64           `json:"target_rate"`
+	ChoiceShare     float64           `json:"choice_share"`
+	Candidates      int               `json:"candidates"`
+	HalvingFirst    int               `json:"halving_first_lines"`
 }
 
 // Versions say what produced a result.
@@ -215,8 +291,8 @@ type Versions struct {
 	Backbone Backbone `json:"backbone"`
 }
 
-// Run searches, then scores the baselines and every contender on the dev
-// and test sets.
+// Run searches, chooses the search's prompt, runs the baselines and
+// scores every contender on the train, dev and test sets.
 func Run(ctx context.Context, o Options) (Results, error) {
 	t := o.Task
 	if t == nil || o.Scorer == nil || o.Policy == nil || o.Vocab == nil {
@@ -225,158 +301,224 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	if len(t.Train) == 0 || len(t.Dev) == 0 {
 		return Results{}, errors.New("search: the task needs train and dev examples")
 	}
-	evalEvery := o.EvalEvery
-	if evalEvery <= 0 {
-		evalEvery = max(1, t.Steps/10)
+	r := newRunner(o)
+	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Budget: r.budget.Total(),
+		Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions(o.Backbone)}
+	if err := r.train(ctx, &res); err != nil {
+		return res, err
 	}
-	r := &runner{o: o, t: t, pcg: rand.NewPCG(uint64(t.Seed), 0x5eed)}
-	r.rng = rand.New(r.pcg)
-	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions(o.Backbone)}
-	devAcc, greedyText := -1.0, ""
-	first := 1
-	if s := o.Resume; s != nil {
-		if err := r.restore(s, &res); err != nil {
+	choice, err := r.choose(ctx)
+	if err != nil {
+		return res, err
+	}
+	res.Choice = choice
+	rl := Contender{Method: MethodRL, Prompt: choice.Prompt}
+	rl.searched(r.rl.Tally())
+	contenders := []Contender{rl}
+	if r.greedyText != rl.Prompt {
+		greedy := rl
+		greedy.Method, greedy.Prompt = MethodRLGreedy, r.greedyText
+		contenders = append(contenders, greedy)
+	}
+	contenders = append(contenders, Contender{Method: MethodEmpty})
+	for _, m := range t.ManualPrompts {
+		contenders = append(contenders, Contender{Method: MethodManual, Prompt: m})
+	}
+	for _, name := range t.Baselines.Run {
+		c, err := r.baseline(ctx, name, &res)
+		if err != nil {
 			return res, err
 		}
-		devAcc, greedyText, first = s.DevAcc, s.GreedyText, s.Step+1
+		contenders = append(contenders, c)
+	}
+	for i := range contenders {
+		r.progress(Progress{Phase: PhaseEvaluate, Done: i, Total: len(contenders)})
+		if err := r.evaluate(ctx, &contenders[i]); err != nil {
+			return res, err
+		}
+	}
+	res.Ranking = contenders
+	res.Best = contenders[0]
+	all := r.tally()
+	res.Floored, res.Lookups = all.Floored, all.Lookups
+	res.Spending = scorer.Sum(r.calls)
+	return res, nil
+}
+
+// runner is one search's state beyond the policy.
+type runner struct {
+	o      Options
+	t      *task.Task
+	budget Budget
+	pcg    *rand.PCG // rng's source, kept for checkpoints
+	rng    *rand.Rand
+	// calls are every scoring call of the search, in order.
+	calls []scorer.Call
+	// rl judges the search's prompts, eval the contenders' final
+	// evaluation; done holds the tallies of finished baselines' panels.
+	rl, eval *judge.Panel
+	done     judge.Tally
+	// sampled lists the distinct prompts the policy sampled or chose
+	// greedily, in the order first seen: the candidates of the choice.
+	sampled    []string
+	seen       map[string]bool
+	devAcc     float64
+	greedyText string
+}
+
+func newRunner(o Options) *runner {
+	r := &runner{o: o, t: o.Task, budget: BudgetFor(o.Task, o.EvalEvery), pcg: rand.NewPCG(uint64(o.Task.Seed), 0x5eed), seen: map[string]bool{}, devAcc: -1}
+	r.rng = rand.New(r.pcg)
+	sc := recordingScorer{sc: o.Scorer, calls: &r.calls}
+	r.rl = judge.New(o.Task, sc)
+	r.eval = judge.New(o.Task, sc)
+	return r
+}
+
+// recordingScorer notes every call its scorer makes.
+type recordingScorer struct {
+	sc    Scorer
+	calls *[]scorer.Call
+}
+
+func (s recordingScorer) Score(ctx context.Context, texts []string) (scorer.Result, error) {
+	res, err := s.sc.Score(ctx, texts)
+	if err == nil {
+		*s.calls = append(*s.calls, res.Calls...)
+	}
+	return res, err
+}
+
+// tally sums every panel's tally.
+func (r *runner) tally() judge.Tally { return r.rl.Tally().Add(r.eval.Tally()).Add(r.done) }
+
+func (r *runner) progress(p Progress) {
+	if r.o.Progress == nil {
+		return
+	}
+	p.Calls = scorer.Sum(r.calls)
+	all := r.tally()
+	p.FlooredShare = share(all.Floored, all.Lookups)
+	r.o.Progress(p)
+}
+
+// note adds a prompt to the candidates if it is new.
+func (r *runner) note(prompt string) {
+	if !r.seen[prompt] {
+		r.seen[prompt] = true
+		r.sampled = append(r.sampled, prompt)
+	}
+}
+
+// train runs the search's steps, from a checkpoint when Options.Resume.
+func (r *runner) train(ctx context.Context, res *Results) error {
+	t, o := r.t, r.o
+	first := 1
+	if s := o.Resume; s != nil {
+		if err := r.restore(s, res); err != nil {
+			return err
+		}
+		first = s.Step + 1
 	}
 	best := BestByDev(res.History)
 	every := o.CheckpointEvery
 	if every <= 0 {
 		every = max(1, t.Steps/10)
 	}
+	cfg := t.Reward
+	if t.PromptsPerStep < 2 {
+		cfg.NoZScore = true // one prompt has nothing to be compared with
+	}
 	for step := first; step <= t.Steps; step++ {
 		prompts, err := o.Policy.Sample(ctx, t.PromptsPerStep)
 		if err != nil {
-			return res, fmt.Errorf("search: step %d: sample: %w", step, err)
+			return fmt.Errorf("search: step %d: sample: %w", step, err)
 		}
 		texts := make([]string, len(prompts))
 		for i, p := range prompts {
 			texts[i] = o.Vocab.Text(p)
+			r.note(texts[i])
 		}
-		batch := r.trainBatch()
-		st, err := r.judge(ctx, texts, batch)
+		vs, err := r.rl.Judge(ctx, texts, r.trainBatch())
 		if err != nil {
-			return res, fmt.Errorf("search: step %d: %w", step, err)
+			return fmt.Errorf("search: step %d: %w", step, err)
 		}
-		r.noteBest(texts, st.Raw)
-		ps, err := o.Policy.Update(ctx, prompts, st.PerPrompt)
+		raw := rawOf(vs)
+		rewards := perPrompt(cfg.Normalize(raw))
+		if o.ZeroRewards {
+			clear(rewards)
+		}
+		ps, err := o.Policy.Update(ctx, prompts, rewards)
 		if err != nil {
-			return res, fmt.Errorf("search: step %d: update: %w", step, err)
+			return fmt.Errorf("search: step %d: update: %w", step, err)
 		}
-		pt := Point{Step: step, MeanReward: meanOf(st.Raw), TrainAcc: mean(st.Accuracy), DevAcc: -1, Loss: ps.Loss}
-		if step%evalEvery == 0 || step == t.Steps {
+		pt := Point{Step: step, MeanReward: meanOf(raw), TrainAcc: meanAccuracy(vs), DevAcc: -1, Loss: ps.Loss}
+		if step%r.budget.EvalEvery == 0 || step == t.Steps {
 			g, err := o.Policy.Greedy(ctx)
 			if err != nil {
-				return res, fmt.Errorf("search: step %d: greedy: %w", step, err)
+				return fmt.Errorf("search: step %d: greedy: %w", step, err)
 			}
-			greedyText = o.Vocab.Text(g)
-			if devAcc, err = r.accuracy(ctx, greedyText, t.Dev); err != nil {
-				return res, fmt.Errorf("search: step %d: dev: %w", step, err)
+			r.greedyText = o.Vocab.Text(g)
+			r.note(r.greedyText)
+			dv, err := r.rl.Complete(ctx, []string{r.greedyText}, t.Dev)
+			if err != nil {
+				return fmt.Errorf("search: step %d: dev: %w", step, err)
 			}
-			pt.DevAcc, pt.Prompt = devAcc, greedyText
+			r.devAcc = judge.Accuracy(dv[0])
+			pt.DevAcc, pt.Prompt = r.devAcc, r.greedyText
 		}
 		res.History = append(res.History, pt)
 		best = best.note(pt)
 		stop := o.StopAfter > 0 && step == o.StopAfter && step < t.Steps
 		if o.Checkpoint != nil && (step%every == 0 || stop) {
-			st, err := r.snapshot(step, &res, devAcc, greedyText)
+			st, err := r.snapshot(step, res)
 			if err != nil {
-				return res, err
+				return err
 			}
 			if err := o.Checkpoint(st); err != nil {
-				return res, fmt.Errorf("search: checkpoint after step %d: %w", step, err)
+				return fmt.Errorf("search: checkpoint after step %d: %w", step, err)
 			}
 		}
 		if stop {
-			return res, fmt.Errorf("%w (after step %d)", ErrStopped, step)
+			return fmt.Errorf("%w (after step %d)", ErrStopped, step)
 		}
-		if spent := scorer.Sum(r.calls).CostUSD; o.SpendCapUSD > 0 && spent >= o.SpendCapUSD {
-			return res, fmt.Errorf("%w: %.6f USD of %.6f after step %d (as the proxy reported)", ErrSpendCap, spent, o.SpendCapUSD, step)
-		}
-		if o.Progress != nil {
-			o.Progress(Progress{Step: step, Steps: t.Steps, ResumedAfter: first - 1, MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: devAcc,
-				Prompt: greedyText, Best: best, Calls: scorer.Sum(r.calls), FlooredShare: share(r.floored, r.lookups)})
-		}
-	}
-	searchCalls := searchJudgements(t)
-	rlSpend := scorer.Sum(r.calls)
-	rl := Contender{Method: "rl", Prompt: greedyText, Calls: searchCalls, SearchCalls: rlSpend.Calls, SearchSpendUSD: rlSpend.RunCostUSD}
-	contenders := []Contender{rl}
-	if r.bestText != greedyText {
-		best := rl
-		best.Method, best.Prompt = "rl-best", r.bestText
-		contenders = append(contenders, best)
-	}
-	contenders = append(contenders, Contender{Method: "empty", Prompt: ""})
-	for _, m := range t.ManualPrompts {
-		contenders = append(contenders, Contender{Method: "manual", Prompt: m})
-	}
-	mark := len(r.calls)
-	random, err := r.randomSearch(ctx, searchCalls)
-	if err != nil {
-		return res, err
-	}
-	randomSpend := scorer.Sum(r.calls[mark:])
-	random.SearchCalls, random.SearchSpendUSD = randomSpend.Calls, randomSpend.RunCostUSD
-	contenders = append(contenders, random)
-	for i := range contenders {
-		c := &contenders[i]
-		mark := len(r.calls)
-		if err := r.evaluate(ctx, c); err != nil {
-			return res, err
-		}
-		ev := scorer.Sum(r.calls[mark:])
-		c.EvalCalls, c.EvalSpendUSD = ev.Calls, ev.RunCostUSD
-	}
-	res.Ranking = contenders
-	res.Best = contenders[0]
-	res.Floored, res.Lookups = r.floored, r.lookups
-	res.Spending = scorer.Sum(r.calls)
-	return res, nil
-}
-
-// evaluate scores c's prompt on the train, dev and test sets.
-func (r *runner) evaluate(ctx context.Context, c *Contender) error {
-	var err error
-	if c.TrainAcc, err = r.accuracy(ctx, c.Prompt, r.t.Train); err != nil {
-		return err
-	}
-	if c.DevAcc, err = r.accuracy(ctx, c.Prompt, r.t.Dev); err != nil {
-		return err
-	}
-	c.TestAcc = -1
-	if len(r.t.Test) > 0 {
-		if c.TestAcc, err = r.accuracy(ctx, c.Prompt, r.t.Test); err != nil {
+		if err := r.checkCap(fmt.Sprintf("after step %d", step)); err != nil {
 			return err
 		}
+		r.progress(Progress{Phase: PhaseSearch, Done: step, Total: t.Steps, Step: step, Steps: t.Steps, ResumedAfter: first - 1,
+			MeanReward: pt.MeanReward, TrainAcc: pt.TrainAcc, DevAcc: r.devAcc, Prompt: r.greedyText, Best: best})
 	}
 	return nil
 }
 
-// runner is one search's state beyond the policy.
-type runner struct {
-	o       Options
-	t       *task.Task
-	pcg     *rand.PCG // rng's source, kept for checkpoints
-	rng     *rand.Rand
-	calls   []scorer.Call
-	floored int
-	lookups int
-	// bestText is the sampled prompt with the highest mean raw reward on
-	// its step's batch so far (the first one on ties), bestScore that mean.
-	bestText  string
-	bestScore float64
-	seenBest  bool
+// checkCap stops the search once the proxy has reported its spend cap
+// spent.
+func (r *runner) checkCap(when string) error {
+	if spent := scorer.Sum(r.calls).CostUSD; r.o.SpendCapUSD > 0 && spent >= r.o.SpendCapUSD {
+		return fmt.Errorf("%w: %.6f USD of %.6f %s (as the proxy reported)", ErrSpendCap, spent, r.o.SpendCapUSD, when)
+	}
+	return nil
 }
 
-// noteBest keeps the step's best sampled prompt if it beats the best so far.
-func (r *runner) noteBest(texts []string, raw [][]float64) {
-	for i, row := range raw {
-		if s := mean(row); !r.seenBest || s > r.bestScore {
-			r.bestText, r.bestScore, r.seenBest = texts[i], s, true
+// evaluate scores c's prompt on the train, dev and test sets.
+func (r *runner) evaluate(ctx context.Context, c *Contender) error {
+	before := r.eval.Tally()
+	sets := [][]task.Example{r.t.Train, r.t.Dev, r.t.Test}
+	accs := []*float64{&c.TrainAcc, &c.DevAcc, &c.TestAcc}
+	for i, set := range sets {
+		if len(set) == 0 {
+			*accs[i] = -1
+			continue
 		}
+		vs, err := r.eval.Complete(ctx, []string{c.Prompt}, set)
+		if err != nil {
+			return fmt.Errorf("search: evaluating %s: %w", c.Method, err)
+		}
+		*accs[i] = judge.Accuracy(vs[0])
 	}
+	ev := r.eval.Tally().Sub(before)
+	c.EvalCalls, c.EvalSpendUSD = ev.Calls, ev.RunCostUSD
+	return nil
 }
 
 // trainBatch draws the step's training examples, without repeats when the
@@ -392,84 +534,31 @@ func (r *runner) trainBatch() []task.Example {
 	return out
 }
 
-// judge scores every prompt on every example and computes the rewards.
-func (r *runner) judge(ctx context.Context, prompts []string, examples []task.Example) (reward.Step, error) {
-	texts := make([]string, 0, len(prompts)*len(examples))
-	for _, p := range prompts {
-		for _, e := range examples {
-			texts = append(texts, r.t.Fill(e.Text, p))
+func rawOf(vs [][]judge.Verdict) [][]float64 {
+	out := make([][]float64, len(vs))
+	for i, row := range vs {
+		out[i] = make([]float64, len(row))
+		for j, v := range row {
+			out[i][j] = v.Raw
 		}
 	}
-	got, err := r.o.Scorer.Score(ctx, texts)
-	if err != nil {
-		return reward.Step{}, err
-	}
-	r.calls = append(r.calls, got.Calls...)
-	top := make([][]map[string]float64, len(prompts))
-	for p := range prompts {
-		top[p] = got.Top[p*len(examples) : (p+1)*len(examples)]
-	}
-	truth := make([]int, len(examples))
-	for i, e := range examples {
-		truth[i] = r.t.LabelIndex(e.Label)
-	}
-	cfg := r.t.Reward
-	if len(prompts) < 2 {
-		cfg.NoZScore = true // one prompt has nothing to be compared with
-	}
-	st, err := cfg.Score(top, truth, r.t.Verbalizers())
-	if err != nil {
-		return reward.Step{}, err
-	}
-	r.floored += st.Floored
-	r.lookups += st.Lookups
-	return st, nil
+	return out
 }
 
-// accuracy is the share of examples prompt classifies correctly.
-func (r *runner) accuracy(ctx context.Context, prompt string, examples []task.Example) (float64, error) {
-	st, err := r.judge(ctx, []string{prompt}, examples)
-	if err != nil {
-		return 0, err
+func perPrompt(rows [][]float64) []float64 {
+	out := make([]float64, len(rows))
+	for i, row := range rows {
+		out[i] = mean(row)
 	}
-	return st.Accuracy[0], nil
+	return out
 }
 
-// randomSearch draws uniformly random prompts of the task's length from
-// the same actions and keeps the one with the best raw reward on one train
-// batch, spending the same number of judgements as the search.
-func (r *runner) randomSearch(ctx context.Context, budget int) (Contender, error) {
-	actions := r.o.Vocab.Actions()
-	perPrompt := examplesPerStep(r.t)
-	best := Contender{Method: "random"}
-	bestScore := 0.0
-	spent := 0
-	// Every random prompt is judged on the same batch, so their rewards
-	// compare like with like and the best one is picked on one yardstick.
-	batch := r.trainBatch()
-	for spent+perPrompt <= budget {
-		n := min(r.t.PromptsPerStep, (budget-spent)/perPrompt)
-		texts := make([]string, n)
-		for i := range texts {
-			ids := make([]int, r.t.PromptLength)
-			for j := range ids {
-				ids[j] = actions[r.rng.IntN(len(actions))]
-			}
-			texts[i] = r.o.Vocab.Text(ids)
-		}
-		st, err := r.judge(ctx, texts, batch)
-		if err != nil {
-			return best, fmt.Errorf("search: random baseline: %w", err)
-		}
-		for i, row := range st.Raw {
-			if s := mean(row); spent == 0 && i == 0 || s > bestScore {
-				best.Prompt, bestScore = texts[i], s
-			}
-		}
-		spent += n * perPrompt
+func meanAccuracy(vs [][]judge.Verdict) float64 {
+	var s float64
+	for _, row := range vs {
+		s += judge.Accuracy(row)
 	}
-	best.Calls = spent
-	return best, nil
+	return s / float64(max(len(vs), 1))
 }
 
 func mean(xs []float64) float64 {

@@ -12,11 +12,12 @@ import (
 	"runtime/debug"
 
 	"github.com/stintlab/stint/searcher/policy"
+	"github.com/stintlab/stint/searcher/reward"
 	"github.com/stintlab/stint/searcher/task"
 )
 
 // resultsFormat is the layout version of results.json.
-const resultsFormat = 4
+const resultsFormat = 5
 
 // configured is a policy that reports its settings with defaults filled
 // in; *policy.Trainer is one.
@@ -36,8 +37,9 @@ func settingsOf(t *task.Task, actions int, pol Policy) Settings {
 	s := Settings{
 		Model: t.Model, Endpoint: string(t.Endpoint), Template: t.Template, Labels: labels,
 		PromptLength: t.PromptLength, PromptsPerStep: t.PromptsPerStep, ExamplesPerStep: t.ExamplesPerStep,
-		TopLogprobs: t.TopLogprobs, Actions: actions, RewardFactor: cmp.Or(t.Reward.Factor, 1),
+		TopLogprobs: t.TopLogprobs, Actions: actions, RewardKind: string(cmp.Or(t.Reward.Kind, reward.KindGap)), RewardFactor: cmp.Or(t.Reward.Factor, 1),
 		LearningRate: t.Policy.LearningRate, TopK: t.Policy.TopK, TargetRate: t.Policy.TargetRate,
+		ChoiceShare: t.Choose.Share, Candidates: t.Choose.Candidates, HalvingFirst: t.Baselines.HalvingFirst,
 	}
 	if c, ok := pol.(configured); ok {
 		cfg := c.Config()

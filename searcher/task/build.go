@@ -5,6 +5,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 
 	"go.yaml.in/yaml/v3"
@@ -88,6 +89,8 @@ func (b *builder) build(r *rawTask) *Task {
 	}
 	t.AutoFactor = r.Reward == nil || r.Reward.Scale == nil || r.Reward.Scale.Factor == nil
 	t.Policy = b.policy(r.Policy)
+	t.Choose = b.choose(r.Choose)
+	t.Baselines = b.baselines(r.Baselines)
 	t.Labels = b.labels(&r.Labels)
 	b.data(t, r.Data)
 	return t
@@ -138,6 +141,44 @@ func (b *builder) policy(r *rawPolicy) PolicySettings {
 	return p
 }
 
+func (b *builder) choose(r *rawChoose) ChooseSettings {
+	c := ChooseSettings{Share: DefaultChoiceShare, Candidates: DefaultCandidates}
+	if r == nil {
+		return c
+	}
+	if r.Share != nil {
+		if c.Share = *r.Share; !(c.Share >= 0 && c.Share < 1) {
+			b.fail("choose.share", ErrInvalid, "must be in [0, 1), got %v", c.Share)
+		}
+	}
+	c.Candidates = b.count("choose.candidates", r.Candidates, DefaultCandidates, 1)
+	return c
+}
+
+func (b *builder) baselines(r *rawBase) BaselineSettings {
+	c := BaselineSettings{Run: slices.Clone(DefaultBaselines), HalvingFirst: DefaultHalvingFirst}
+	if r == nil {
+		return c
+	}
+	if r.Run != nil {
+		c.Run = nil
+		seen := map[string]bool{}
+		for i, name := range r.Run {
+			switch {
+			case !slices.Contains(Baselines, name):
+				b.fail(fmt.Sprintf("baselines.run[%d]", i), ErrInvalid, "%q is not one of %s", name, strings.Join(Baselines, ", "))
+			case seen[name]:
+				b.fail(fmt.Sprintf("baselines.run[%d]", i), ErrInvalid, "%q is listed twice", name)
+			default:
+				c.Run = append(c.Run, name)
+			}
+			seen[name] = true
+		}
+	}
+	c.HalvingFirst = b.count("baselines.halving_first_lines", r.HalvingFirst, DefaultHalvingFirst, 1)
+	return c
+}
+
 // count returns *v, or def when absent, refusing values below least.
 func (b *builder) count(field string, v *int, def, least int) int {
 	if v == nil {
@@ -150,9 +191,17 @@ func (b *builder) count(field string, v *int, def, least int) int {
 }
 
 func (b *builder) reward(r *rawReward) reward.Config {
-	var c reward.Config
+	c := reward.Config{Kind: DefaultRewardKind}
 	if r == nil {
 		return c
+	}
+	if r.Kind != nil {
+		switch k := reward.Kind(*r.Kind); k {
+		case reward.KindMargin, reward.KindGap:
+			c.Kind = k
+		default:
+			b.fail("reward.kind", ErrInvalid, "%q is not %q or %q", *r.Kind, reward.KindMargin, reward.KindGap)
+		}
 	}
 	positive := func(field string, v *float64) float64 {
 		if v == nil {
@@ -163,8 +212,18 @@ func (b *builder) reward(r *rawReward) reward.Config {
 		}
 		return *v
 	}
+	c.Margin = positive("reward.margin", r.Margin)
 	c.Correct = positive("reward.correct", r.Correct)
 	c.Wrong = positive("reward.wrong", r.Wrong)
+	if c.Kind == reward.KindMargin {
+		for field, v := range map[string]*float64{"reward.correct": r.Correct, "reward.wrong": r.Wrong} {
+			if v != nil {
+				b.fail(field, ErrInvalid, "is a constant of the %q reward; this task's reward.kind is %q", reward.KindGap, reward.KindMargin)
+			}
+		}
+	} else if r.Margin != nil {
+		b.fail("reward.margin", ErrInvalid, "is a constant of the %q reward; this task's reward.kind is %q", reward.KindMargin, c.Kind)
+	}
 	c.NoZScore = r.ZScore != nil && !*r.ZScore
 	if r.Scale != nil {
 		c.Factor = positive("reward.scale.factor", r.Scale.Factor)

@@ -38,9 +38,9 @@ endpoint: completions             # completions (batched prompt arrays) or chat
 model: stories260K
 
 prompt_length: 5                  # tokens in a searched prompt
-steps: 200
-prompts_per_step: 8               # prompts sampled per step (at least 2: rewards are z-scored across them)
-examples_per_step: 16             # training examples each prompt is scored on per step
+steps: 90
+prompts_per_step: 16              # prompts sampled per step (at least 2: rewards are compared across them)
+examples_per_step: 8              # training examples each prompt is scored on per step
 seed: 7
 concurrency: 4                    # scoring calls in flight
 spend_cap_usd: 2.50               # stop once the proxy reports this much spent; 0 for no cap of the search's own
@@ -62,16 +62,38 @@ manual_prompts:
   - "Lily is a girl. Tim is a boy."
   - "A story"
 
-# The classification reward (Deng et al. 2022, RLPrompt): 200·Gap when the
-# true label wins, 180·Gap when it does not, z-scored per input across the
-# step's prompts, then multiplied by factor and clipped to ±clip (0: none).
+# The reward for one prompt on one line. margin (the default): +1 when the
+# true label wins, -1 when it does not, plus margin x Gap (Gap: the true
+# label's probability minus the largest other one, over the verbalizers),
+# centred per line across the step's prompts. gap: the published reward
+# (Deng et al. 2022, RLPrompt): 200 x Gap when right, 180 x Gap when wrong,
+# z-scored per line (set correct and wrong to change 200 and 180). Either is
+# then multiplied by factor and clipped to +-clip (0: none).
 reward:
-  correct: 200
-  wrong: 180
-  zscore: true
-  # scale: {factor: 100, clip: 0}  # unset factor: 5 × prompt_length × ln(allowed tokens)
+  kind: margin
+  margin: 0.5
+  # scale: {factor: 50, clip: 0}  # unset factor: 2.5 x prompt_length x ln(allowed tokens)
+                                  # for margin, 5 x ... for gap
   # missing_logprob: -20          # log-probability of a verbalizer absent from the top-k list;
                                   # unset: the lowest one returned minus ln 2
+
+# How the search picks its final prompt: it keeps share of its judgements
+# and chooses among its candidates best prompts (by their accuracy so far)
+# by successive halving on the train and dev lines: judged on a few lines,
+# the better half kept and judged on twice as many, until one is left. The
+# baselines choose by the same rule.
+choose:
+  share: 0.25
+  candidates: 64
+
+# Baselines run beside the search, each given the search's judgements:
+# best-of-n (random prompts, each judged on all train and dev lines, the
+# best kept), halving (successive halving over random prompts, from
+# halving_first_lines lines each) and random (random prompts judged on one
+# training batch, the best kept). [] runs none.
+baselines:
+  run: [best-of-n, halving]
+  halving_first_lines: 4
 
 # Which tokens the search may build prompts from.
 allow_list:

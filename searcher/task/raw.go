@@ -24,6 +24,18 @@ type rawTask struct {
 	Reward          *rawReward `yaml:"reward"`
 	AllowList       *rawAllow  `yaml:"allow_list"`
 	Policy          *rawPolicy `yaml:"policy"`
+	Choose          *rawChoose `yaml:"choose"`
+	Baselines       *rawBase   `yaml:"baselines"`
+}
+
+type rawChoose struct {
+	Share      *float64 `yaml:"share"`
+	Candidates *int     `yaml:"candidates"`
+}
+
+type rawBase struct {
+	Run          []string `yaml:"run"`
+	HalvingFirst *int     `yaml:"halving_first_lines"`
 }
 
 type rawData struct {
@@ -36,6 +48,8 @@ type rawData struct {
 }
 
 type rawReward struct {
+	Kind           *string   `yaml:"kind"`
+	Margin         *float64  `yaml:"margin"`
 	Correct        *float64  `yaml:"correct"`
 	Wrong          *float64  `yaml:"wrong"`
 	ZScore         *bool     `yaml:"zscore"`

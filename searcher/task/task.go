@@ -41,7 +41,39 @@ const (
 	// sets none: a value that learned on the demo task, not a tuned one
 	// (the policy package's own default, for any caller, is 1e-3).
 	DefaultLearningRate = 0.003
+	// DefaultRewardKind is the reward a task file gets when it sets no
+	// reward.kind (see reward.KindMargin for why not the paper's).
+	DefaultRewardKind = reward.KindMargin
+	// DefaultChoiceShare is the share of the RL search's judgements kept
+	// for choosing its final prompt among its candidates.
+	DefaultChoiceShare = 0.25
+	// DefaultCandidates is how many of its best candidates the RL search
+	// chooses among.
+	DefaultCandidates = 64
+	// DefaultHalvingFirst is the lines each prompt is first judged on in
+	// the successive-halving baseline.
+	DefaultHalvingFirst = 4
 )
+
+// The baselines a task may run beside the search (baselines.run), each at
+// the search's judgements.
+const (
+	// BestOfN: random prompts, each judged on all of train and dev, the
+	// best kept.
+	BestOfN = "best-of-n"
+	// Halving: successive halving over random prompts.
+	Halving = "halving"
+	// OneBatch: random prompts judged on one training batch, the best
+	// kept (the weakest of the three; kept for comparison with earlier
+	// results).
+	OneBatch = "random"
+)
+
+// Baselines lists every baseline name, in the order results show them.
+var Baselines = []string{BestOfN, Halving, OneBatch}
+
+// DefaultBaselines are the baselines a task runs when it names none.
+var DefaultBaselines = []string{BestOfN, Halving}
 
 // Task is a validated task file. Every field is filled (defaults applied);
 // Test is nil when the file names no test set.
@@ -88,6 +120,25 @@ type Task struct {
 	// AutoFactor is set when the file leaves reward.scale.factor out: the
 	// search then scales rewards by AutoRewardFactor of its action count.
 	AutoFactor bool
+	// Choose sets how the RL search picks its final prompt.
+	Choose ChooseSettings
+	// Baselines sets the baselines run beside the search.
+	Baselines BaselineSettings
+}
+
+// ChooseSettings set the RL search's final choice: it keeps Share of its
+// judgements for choosing, by successive halving on the train and dev
+// lines, among its Candidates best prompts.
+type ChooseSettings struct {
+	Share      float64
+	Candidates int
+}
+
+// BaselineSettings name the baselines a search runs (Run, names from
+// Baselines) and the first depth of the halving baseline.
+type BaselineSettings struct {
+	Run          []string
+	HalvingFirst int
 }
 
 // Prices are a model's prices in USD per million tokens. They only price
@@ -110,18 +161,28 @@ type PolicySettings struct {
 	TargetRate float64
 }
 
-// AutoRewardFactor is the reward scale used when a task sets none:
-// 5·L·ln|A| for prompts of length L over |A| actions. A z-scored reward is
-// about 1 in size, while a near-uniform policy's soft value over a whole
-// prompt is about L·ln|A|; rewards on that scale move the policy within a
-// few hundred steps instead of being drowned by the entropy term. The
-// constant 5 is an engineering choice measured on the demo task.
-func AutoRewardFactor(promptLength, actions int) float64 {
+// AutoRewardFactor is the reward scale used when a task sets none, for
+// prompts of length L over |A| actions: c·L·ln|A|, with c = 5 for the
+// gap reward and MarginFactorScale for the margin reward. A
+// near-uniform policy's soft value over a whole prompt is about L·ln|A|,
+// so rewards on that scale move the policy within the search's steps
+// instead of being drowned by the entropy term; c sets how sharply it
+// then prefers the prompts that did well. The gap reward's 5 was measured
+// on the demo task; the margin reward's constant was chosen on the task
+// suite's train and dev lines (see the README).
+func AutoRewardFactor(kind reward.Kind, promptLength, actions int) float64 {
 	if promptLength < 1 || actions < 2 {
 		return 1
 	}
-	return 5 * float64(promptLength) * math.Log(float64(actions))
+	c := 5.0
+	if kind == reward.KindMargin {
+		c = MarginFactorScale
+	}
+	return c * float64(promptLength) * math.Log(float64(actions))
 }
+
+// MarginFactorScale is c of AutoRewardFactor for the margin reward.
+const MarginFactorScale = 2.5
 
 // Label is one class and the single token that stands for it.
 type Label struct {

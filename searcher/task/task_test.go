@@ -5,6 +5,10 @@ import (
 	"math"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+
+	"github.com/stintlab/stint/searcher/reward"
 )
 
 func TestExampleFileParses(t *testing.T) {
@@ -23,9 +27,10 @@ func TestExampleFileParses(t *testing.T) {
 	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 2.5 {
 		t.Errorf("endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
 	}
-	if task.Reward.Correct != 200 || task.Reward.Wrong != 180 || task.Reward.NoZScore || task.Reward.Factor != 0 || !task.AutoFactor {
-		t.Errorf("reward = %+v, auto factor %v", task.Reward, task.AutoFactor)
-	}
+	assert.Equal(t, reward.Config{Kind: reward.KindMargin, Margin: 0.5}, task.Reward, "reward")
+	assert.True(t, task.AutoFactor, "auto factor")
+	assert.Equal(t, ChooseSettings{Share: 0.25, Candidates: 64}, task.Choose, "choose")
+	assert.Equal(t, BaselineSettings{Run: []string{BestOfN, Halving}, HalvingFirst: 4}, task.Baselines, "baselines")
 	if !task.AllowList.WordInitial || task.AllowList.MinChars != 2 || len(task.ManualPrompts) != 2 {
 		t.Errorf("allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
 	}
@@ -150,7 +155,16 @@ func TestParseErrors(t *testing.T) {
 		{"one prompt per step with z-score", func(s string) string { return s + "prompts_per_step: 1\n" }, false, ErrInvalid, "prompts_per_step", 10},
 		{"negative cap", func(s string) string { return s + "spend_cap_usd: -1\n" }, false, ErrInvalid, "spend_cap_usd", 10},
 		{"empty manual prompt", func(s string) string { return s + "manual_prompts: [\"ok\", \"\"]\n" }, false, ErrInvalid, "manual_prompts[1]", 10},
-		{"zero correct", func(s string) string { return s + "reward:\n  correct: 0\n" }, false, ErrInvalid, "reward.correct", 11},
+		{"zero correct", func(s string) string { return s + "reward:\n  kind: gap\n  correct: 0\n" }, false, ErrInvalid, "reward.correct", 12},
+		{"unknown reward kind", func(s string) string { return s + "reward:\n  kind: hinge\n" }, false, ErrInvalid, "reward.kind", 11},
+		{"gap constant with the margin reward", func(s string) string { return s + "reward:\n  wrong: 180\n" }, false, ErrInvalid, "reward.wrong", 11},
+		{"margin with the gap reward", func(s string) string { return s + "reward:\n  kind: gap\n  margin: 1\n" }, false, ErrInvalid, "reward.margin", 12},
+		{"zero margin", func(s string) string { return s + "reward:\n  margin: 0\n" }, false, ErrInvalid, "reward.margin", 11},
+		{"choice share of one", func(s string) string { return s + "choose:\n  share: 1\n" }, false, ErrInvalid, "choose.share", 11},
+		{"no candidates", func(s string) string { return s + "choose:\n  candidates: 0\n" }, false, ErrInvalid, "choose.candidates", 11},
+		{"unknown baseline", func(s string) string { return s + "baselines:\n  run: [best-of-n, grid]\n" }, false, ErrInvalid, "baselines.run[1]", 11},
+		{"baseline twice", func(s string) string { return s + "baselines:\n  run: [halving, halving]\n" }, false, ErrInvalid, "baselines.run[1]", 11},
+		{"zero halving depth", func(s string) string { return s + "baselines:\n  halving_first_lines: 0\n" }, false, ErrInvalid, "baselines.halving_first_lines", 11},
 		{"positive floor", func(s string) string { return s + "reward:\n  missing_logprob: 1\n" }, false, ErrInvalid, "reward.missing_logprob", 11},
 		{"negative clip", func(s string) string { return s + "reward:\n  scale: {clip: -1}\n" }, false, ErrInvalid, "reward.scale.clip", 11},
 		{"negative min_chars", func(s string) string { return s + "allow_list:\n  min_chars: -1\n" }, false, ErrInvalid, "allow_list.min_chars", 11},
@@ -205,17 +219,17 @@ func TestSeveralErrorsJoined(t *testing.T) {
 
 func TestAutoRewardFactor(t *testing.T) {
 	tests := []struct {
+		kind            reward.Kind
 		length, actions int
 		want            float64
 	}{
-		{5, 100, 5 * 5 * math.Log(100)}, // 115.13: 5·L·ln|A|
-		{1, 2, 5 * math.Ln2},
-		{0, 100, 1}, // no prompt: no scale to match
-		{5, 1, 1},   // one action: the policy has no entropy
+		{reward.KindGap, 5, 100, 5 * 5 * math.Log(100)}, // 115.13: 5·L·ln|A|
+		{"", 1, 2, 5 * math.Ln2},                         // the zero kind is the gap reward
+		{reward.KindMargin, 5, 100, MarginFactorScale * 5 * math.Log(100)},
+		{reward.KindMargin, 0, 100, 1}, // no prompt: no scale to match
+		{reward.KindGap, 5, 1, 1},      // one action: the policy has no entropy
 	}
 	for _, tt := range tests {
-		if got := AutoRewardFactor(tt.length, tt.actions); math.Abs(got-tt.want) > 1e-12 {
-			t.Errorf("AutoRewardFactor(%d, %d) = %v, want %v", tt.length, tt.actions, got, tt.want)
-		}
+		assert.InDelta(t, tt.want, AutoRewardFactor(tt.kind, tt.length, tt.actions), 1e-12, "AutoRewardFactor(%q, %d, %d)", tt.kind, tt.length, tt.actions)
 	}
 }
