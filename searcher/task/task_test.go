@@ -224,7 +224,7 @@ func TestAutoRewardFactor(t *testing.T) {
 		want            float64
 	}{
 		{reward.KindGap, 5, 100, 5 * 5 * math.Log(100)}, // 115.13: 5·L·ln|A|
-		{"", 1, 2, 5 * math.Ln2},                         // the zero kind is the gap reward
+		{"", 1, 2, 5 * math.Ln2},                        // the zero kind is the gap reward
 		{reward.KindMargin, 5, 100, MarginFactorScale * 5 * math.Log(100)},
 		{reward.KindMargin, 0, 100, 1}, // no prompt: no scale to match
 		{reward.KindGap, 5, 1, 1},      // one action: the policy has no entropy
