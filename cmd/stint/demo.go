@@ -5,8 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"log/slog"
-	"net"
 	"os"
 	"path/filepath"
 	"strings"
@@ -17,14 +15,8 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/localmodel"
-	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
-
-// Invented demo prices of the local model, USD per million tokens, not any
-// provider's: the demo's proxy charges them and its searches forecast at
-// them.
-const demoInputPrice, demoOutputPrice = 0.50, 1.50
 
 // demoFlags are the settings of `stint demo`.
 type demoFlags struct {
@@ -78,35 +70,19 @@ func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	if err != nil {
 		return err
 	}
-	cfg := DefaultConfig()
-	cfg.Listen, cfg.Data = "127.0.0.1:0", f.data
-	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
-	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: demoInputPrice, Set: true}, Output: Number{Value: demoOutputPrice, Set: true}}}
-	if err := cfg.Validate(nil); err != nil {
-		return err
-	}
-	srv, err := buildServer(ctx, cfg, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
+	lp, err := startLocalProxy(ctx, modelPath, f.data)
 	if err != nil {
 		return err
 	}
-	ln, err := net.Listen("tcp", cfg.Listen)
-	if err != nil {
-		srv.close()
-		return err
-	}
-	sctx, stop := context.WithCancel(ctx)
-	served := make(chan error, 1)
-	go func() { served <- srv.serve(sctx, ln) }()
-	defer func() { stop(); <-served }()
-	proxyURL := "http://" + ln.Addr().String() + "/v1"
+	defer lp.Close()
+	srv, proxyURL := lp.srv, lp.url
 	fmt.Fprintf(out, "stint demo: proxy on %s, local model %s in-process as its upstream\n\n", proxyURL, filepath.Base(modelPath))
 
 	start := time.Now()
 	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
 	// The search forecasts at the prices the demo's proxy charges.
-	in, outPrice := demoInputPrice, demoOutputPrice
 	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
-		price: search.PriceOverride{InputPerMillion: &in, OutputPerMillion: &outPrice}}
+		price: demoPriceOverride()}
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}

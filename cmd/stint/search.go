@@ -90,7 +90,7 @@ curve as learning-curve.png and .svg.`,
 			return err
 		},
 	}
-	cmd.AddCommand(run, example, newSearchServeCmd())
+	cmd.AddCommand(run, example, newSearchServeCmd(), newHeadroomCmd(), newCompareCmd())
 	return cmd
 }
 

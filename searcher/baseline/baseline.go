@@ -40,8 +40,15 @@ type Candidate struct {
 	Prompt   string  `json:"prompt"`
 	Accuracy float64 `json:"accuracy"`
 	MeanRaw  float64 `json:"mean_raw_reward"`
-	// Spend is its judgements' spend on their own (judge.Tally.Spend).
-	Spend float64 `json:"spend"`
+	// AloneUSD and New are what judging it cost on its own (see
+	// judge.Tally).
+	AloneUSD float64 `json:"alone_usd"`
+	New      int     `json:"new_texts"`
+}
+
+// Spend is the candidate's spend as judge.Tally.Spend reads it.
+func (c Candidate) Spend(priced bool) float64 {
+	return judge.Tally{AloneUSD: c.AloneUSD, New: c.New}.Spend(priced)
 }
 
 // Result is a baseline's chosen prompt.
@@ -51,14 +58,13 @@ type Result struct {
 	Candidates int `json:"candidates"`
 	// Judged lists best-of-N's candidates in the order drawn (empty for
 	// halving), so the same run can be read at a smaller spend
-	// (BestWithin).
+	// (Affordable).
 	Judged []Candidate `json:"judged,omitempty"`
 }
 
 // BestOfN draws budget/len(pool) random prompts, judges each on the whole
-// pool and keeps the best (pick's ranking). priced says whether the
-// proxy prices calls (see judge.Tally.Spend).
-func BestOfN(ctx context.Context, p *judge.Panel, draw func() string, pool []task.Example, budget int, priced bool) (Result, error) {
+// pool and keeps the best (pick's ranking).
+func BestOfN(ctx context.Context, p *judge.Panel, draw func() string, pool []task.Example, budget int) (Result, error) {
 	if len(pool) == 0 {
 		return Result{}, fmt.Errorf("baseline: best-of-N on an empty pool")
 	}
@@ -74,25 +80,31 @@ func BestOfN(ctx context.Context, p *judge.Panel, draw func() string, pool []tas
 		if err != nil {
 			return res, fmt.Errorf("baseline: best-of-N: %w", err)
 		}
-		spent := p.Tally().Sub(before).Spend(priced)
-		res.Judged = append(res.Judged, Candidate{Prompt: prompt, Accuracy: judge.Accuracy(vs[0]), MeanRaw: judge.MeanRaw(vs[0]), Spend: spent})
+		cost := p.Tally().Sub(before)
+		res.Judged = append(res.Judged, Candidate{Prompt: prompt, Accuracy: judge.Accuracy(vs[0]), MeanRaw: judge.MeanRaw(vs[0]), AloneUSD: cost.AloneUSD, New: cost.New})
 	}
-	res.Choice = BestWithin(res.Judged, -1, len(pool))
+	res.Choice = BestOf(res.Judged, len(pool))
 	return res, nil
 }
 
-// BestWithin is best-of-N read at a smaller spend: the best of the longest
-// prefix of judged whose spend adds up to at most limit (all of them when
-// limit < 0), ranked as pick ranks. lines is the pool size they were
-// judged on.
-func BestWithin(judged []Candidate, limit float64, lines int) pick.Choice {
-	var ch pick.Choice
-	spent := 0.0
-	for i, c := range judged {
-		spent += c.Spend
-		if limit >= 0 && spent > limit {
+// Affordable is how many of judged, taken in order, a spend of limit pays
+// for (priced as judge.Tally.Spend), and what they cost.
+func Affordable(judged []Candidate, limit float64, priced bool) (n int, spent float64) {
+	for _, c := range judged {
+		if spent+c.Spend(priced) > limit {
 			break
 		}
+		spent += c.Spend(priced)
+		n++
+	}
+	return n, spent
+}
+
+// BestOf is the best of judged by pick's ranking (accuracy, then mean raw
+// reward, then the earlier); lines is the pool size they were judged on.
+func BestOf(judged []Candidate, lines int) pick.Choice {
+	var ch pick.Choice
+	for i, c := range judged {
 		if i == 0 || c.Accuracy > ch.Accuracy || c.Accuracy == ch.Accuracy && c.MeanRaw > ch.MeanRaw {
 			ch = pick.Choice{Prompt: c.Prompt, Accuracy: c.Accuracy, MeanRaw: c.MeanRaw, Lines: lines}
 		}

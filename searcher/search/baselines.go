@@ -22,9 +22,12 @@ func Drawer(t *task.Task, v Vocabulary, seed int64, stream uint64) func() string
 	return func() string { return baseline.Draw(rng, v, t.PromptLength) }
 }
 
-// StreamBestOfN is the stream best-of-N draws its prompts from (see
-// Drawer).
-const StreamBestOfN = streamBestOfN
+// The streams best-of-N and halving draw their prompts and pools from
+// (see Drawer and Pool).
+const (
+	StreamBestOfN = streamBestOfN
+	StreamHalving = streamHalving
+)
 
 // baseline runs the named baseline at the search's budget with a panel
 // of its own, so its tally is its own.
@@ -38,7 +41,7 @@ func (r *runner) baseline(ctx context.Context, name string, res *Results) (Conte
 	case task.BestOfN:
 		pool := Pool(r.t, r.t.Seed, streamBestOfN)
 		var b baseline.Result
-		b, err = baseline.BestOfN(ctx, p, Drawer(r.t, r.o.Vocab, r.t.Seed, streamBestOfN), pool, budget, false)
+		b, err = baseline.BestOfN(ctx, p, Drawer(r.t, r.o.Vocab, r.t.Seed, streamBestOfN), pool, budget)
 		c.Prompt = b.Choice.Prompt
 		res.Extras.BestOfN, res.Extras.Pool = b.Judged, len(pool)
 	case task.Halving:

@@ -36,6 +36,28 @@ type Job struct {
 	// Backbone identifies the model file of the backbone in results.json
 	// (IdentifyBackbone, computed once by the caller).
 	Backbone Backbone
+	// Seed and Steps, when set, replace the task file's seed and steps.
+	Seed  *int64
+	Steps int
+}
+
+// LoadTask loads j's task with the model's tokenizer and j's overrides
+// applied.
+func (j Job) LoadTask(m *localmodel.Model) (*task.Task, error) {
+	t, err := task.Load(j.TaskPath, task.NewLocalTokenizer(m.Tokenizer()))
+	if err != nil {
+		return nil, err
+	}
+	if j.Seed != nil {
+		t.Seed = *j.Seed
+	}
+	if j.Steps < 0 {
+		return nil, fmt.Errorf("search: steps must be positive, got %d", j.Steps)
+	}
+	if j.Steps > 0 {
+		t.Steps = j.Steps
+	}
+	return t, nil
 }
 
 // Outcome is what a job did.
@@ -59,7 +81,7 @@ const CheckpointFile = "checkpoint.json"
 // people (forecast, resume); progress, when set, every step.
 func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, progress func(Progress)) (Outcome, error) {
 	var oc Outcome
-	t, err := task.Load(j.TaskPath, task.NewLocalTokenizer(m.Tokenizer()))
+	t, err := j.LoadTask(m)
 	if err != nil {
 		return oc, err
 	}

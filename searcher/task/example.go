@@ -43,7 +43,7 @@ prompts_per_step: 16              # prompts sampled per step (at least 2: reward
 examples_per_step: 8              # training examples each prompt is scored on per step
 seed: 7
 concurrency: 4                    # scoring calls in flight
-spend_cap_usd: 2.50               # stop once the proxy reports this much spent; 0 for no cap of the search's own
+spend_cap_usd: 5.00               # stop once the proxy reports this much spent; 0 for no cap of the search's own
 # Prices for the cost forecast printed before the search starts, USD per
 # million tokens. Example prices, verify before use: these are invented for
 # the local demo model; put your provider's current prices for your model.

@@ -24,7 +24,7 @@ func TestExampleFileParses(t *testing.T) {
 	if len(task.Labels) != 2 || task.Labels[0] != want[0] || task.Labels[1] != want[1] {
 		t.Errorf("labels = %q, want %q (file order)", task.Labels, want)
 	}
-	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 2.5 {
+	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 5 {
 		t.Errorf("endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
 	}
 	assert.Equal(t, reward.Config{Kind: reward.KindMargin, Margin: 0.5}, task.Reward, "reward")
