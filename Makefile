@@ -19,7 +19,7 @@ FUZZ_TARGETS := \
 	./proxy:FuzzPipeline:10000 \
 	./proxy/scrub:FuzzReader:150000
 
-.PHONY: help build test vet unit fuzz-short bench bench-shared bench-budgets bench-local bench-go clean
+.PHONY: help build test vet unit fuzz-short bench bench-shared bench-budgets bench-local bench-go compare clean
 
 help:
 	@echo "make build        build ./stint"
@@ -29,6 +29,7 @@ help:
 	@echo "make bench-go     Go benchmarks: keys, stores, hot tier, proxy paths, upstream round trip"
 	@echo "make bench-budgets hit and miss throughput with spend control on vs off"
 	@echo "make bench-local  local model benchmarks (tokens/s, FLOP ceiling)"
+	@echo "make compare      the RL search against its baselines on the task suite, 5 seeds, offline (the README's table)"
 
 build:
 	$(GO) build -o stint ./cmd/stint
@@ -63,6 +64,9 @@ bench-go:
 
 bench-local:
 	$(GO) test -run '^$$' -bench . -benchtime 3x -timeout 30m ./proxy/localmodel/...
+
+compare:
+	$(GO) run ./cmd/stint search compare --local --out ./stint-compare
 
 clean:
 	rm -f stint

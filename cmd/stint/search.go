@@ -39,6 +39,9 @@ type searchFlags struct {
 	checkpointEvery int
 	stopAfter       int
 	resume          bool
+	// seed and steps, when set, replace the task file's.
+	seed  *int64
+	steps int
 }
 
 func newSearchCmd() *cobra.Command {
@@ -81,6 +84,14 @@ curve as learning-curve.png and .svg.`,
 	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps (default: every tenth of the steps)")
 	fl.IntVar(&f.stopAfter, "stop-after", 0, "stop after step N with a checkpoint (resume later with --resume)")
 	fl.BoolVar(&f.resume, "resume", false, "continue from OUT/checkpoint.json exactly where it stopped")
+	var seed int64
+	fl.Int64Var(&seed, "seed", 0, "the search's seed (default: the task's seed)")
+	fl.IntVar(&f.steps, "steps", 0, "search steps (default: the task's steps)")
+	run.PreRun = func(cmd *cobra.Command, _ []string) {
+		if cmd.Flags().Changed("seed") {
+			f.seed = &seed
+		}
+	}
 	example := &cobra.Command{
 		Use:   "example",
 		Short: "Print a complete, commented task file",
@@ -228,6 +239,7 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	oc, err := search.RunJob(ctx, m, search.Job{
 		TaskPath: taskPath, Proxy: f.proxy, Key: key, Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
 		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter, Backbone: backbone,
+		Seed: f.seed, Steps: f.steps,
 	}, out, func(p search.Progress) { printProgress(progress, p, start) })
 	fmt.Fprintln(progress)
 	if err != nil {

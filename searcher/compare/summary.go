@@ -20,19 +20,8 @@ type Stat struct {
 }
 
 func statOf(xs []float64) Stat {
-	if len(xs) == 0 {
-		return Stat{}
-	}
-	var s float64
-	for _, x := range xs {
-		s += x
-	}
-	m := s / float64(len(xs))
-	var ss float64
-	for _, x := range xs {
-		ss += (x - m) * (x - m)
-	}
-	return Stat{Mean: m, SD: math.Sqrt(ss / float64(len(xs))), N: len(xs)}
+	m, sd := survey.MeanSD(xs)
+	return Stat{Mean: m, SD: sd, N: len(xs)}
 }
 
 // TaskSummary is one task over its seeds. Accuracies are test accuracies.

@@ -43,14 +43,14 @@ func WriteHistory(w io.Writer, h []Point) error {
 // and what the proxy reported for them.
 func Table(r Results) string {
 	var b strings.Builder
-	fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11s %6s %10s\n", "METHOD", "PROMPT", "TRAIN", "DEV", "TEST", "JUDGEMENTS", "CALLS", "SPENT USD")
+	fmt.Fprintf(&b, "%-9s %-36s %7s %7s %7s %11s %6s %10s\n", "METHOD", "PROMPT", "TRAIN", "DEV", "TEST", "JUDGEMENTS", "CALLS", "SPENT USD")
 	for _, c := range r.Ranking {
 		test := "-"
 		if c.TestAcc >= 0 {
 			test = pct(c.TestAcc)
 		}
 		calls, usd := c.Spend()
-		fmt.Fprintf(&b, "%-8s %-36s %7s %7s %7s %11d %6d %10.6f\n", c.Method, strconv.Quote(c.Prompt), pct(c.TrainAcc), pct(c.DevAcc), test, c.Calls, calls, usd)
+		fmt.Fprintf(&b, "%-9s %-36s %7s %7s %7s %11d %6d %10.6f\n", c.Method, strconv.Quote(c.Prompt), pct(c.TrainAcc), pct(c.DevAcc), test, c.Calls, calls, usd)
 	}
 	return b.String()
 }
@@ -64,13 +64,16 @@ func WriteReport(w io.Writer, r Results, wall string) error {
 	s := r.Spending
 	_, err := fmt.Fprintf(w, `# Prompt search: %s
 
-Seed %d, %d steps. Judgements are prompt × example scorings; the RL search and
-the random baseline spend the same number. "rl" is the policy's greedy prompt
-at the end; "rl-best" (when it differs) the prompt the policy sampled with the
-best reward on its step's batch, picked the way random search picks its own.
-Calls and spent are all of a method's scoring calls (finding its prompt, then
-scoring it on train, dev and test) and what the proxy reported for them; rl
-and rl-best come from one search, so its calls are in both rows.
+Seed %d, %d steps, a budget of %d judgements (prompt × example scorings).
+"rl" is the search's choice: it keeps a share of its judgements and chooses
+among its best candidates by successive halving on the train and dev lines;
+"rl-greedy" (when it differs) is the policy's greedy prompt at the end. Each
+baseline is given the search's whole budget and chooses by the same rule:
+best-of-n judges random prompts on all train and dev lines and keeps the
+best, halving judges many on a few lines and keeps the better half on twice
+as many. Calls and spent are all of a method's scoring calls (finding its
+prompt, then scoring it on train, dev and test) and what the proxy reported
+for them; rl and rl-greedy come from one search, so its calls are in both.
 
 %s
 ## Through the proxy
@@ -81,6 +84,6 @@ and rl-best come from one search, so its calls are in both rows.
 - wall time: %s
 
 ![learning curve](learning-curve.svg)
-`, r.Task, r.Seed, r.Steps, "```\n"+Table(r)+"```\n", s.Calls, s.Prompts, 100*s.CacheShare(), s.CostUSD, r.Floored, r.Lookups, wall)
+`, r.Task, r.Seed, r.Steps, r.Budget, "```\n"+Table(r)+"```\n", s.Calls, s.Prompts, 100*s.CacheShare(), s.CostUSD, r.Floored, r.Lookups, wall)
 	return err
 }

@@ -22,6 +22,7 @@ var (
 		"manual":    {R: 0xb5, G: 0x6a, B: 0x1d, A: 0xff},
 		"random":    {R: 0x6b, G: 0x4c, B: 0x9a, A: 0xff},
 		"best-of-n": {R: 0x00, G: 0x72, B: 0xb2, A: 0xff},
+		MethodRL:    {R: 0x00, G: 0x9e, B: 0x73, A: 0xff},
 		"halving":   {R: 0xcc, G: 0x79, B: 0xa7, A: 0xff},
 	}
 )
@@ -87,8 +88,13 @@ func WritePlot(w io.Writer, r Results, f Format) error {
 		}
 		bl.Color = col
 		bl.Dashes = []vg.Length{vg.Points(4), vg.Points(3)}
+		label := c.Method
+		if c.Method == MethodRL {
+			label = "rl (chosen)"
+			bl.Width = vg.Points(2)
+		}
 		acc.Add(bl)
-		acc.Legend.Add(fmt.Sprintf("%s %q", c.Method, c.Prompt), bl)
+		acc.Legend.Add(fmt.Sprintf("%s %q", label, c.Prompt), bl)
 	}
 	acc.Legend.Top = false
 	acc.Legend.Left = true

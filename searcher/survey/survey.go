@@ -98,7 +98,7 @@ func Run(ctx context.Context, t *task.Task, vocab search.Vocabulary, p *judge.Pa
 			o.Progress(i+1, o.Prompts)
 		}
 	}
-	rep.Mean, rep.SD = meanSD(accs)
+	rep.Mean, rep.SD = MeanSD(accs)
 	rep.Quantiles = quantiles(accs)
 	if len(t.Test) > 0 {
 		for _, x := range []struct {
@@ -116,7 +116,12 @@ func Run(ctx context.Context, t *task.Task, vocab search.Vocabulary, p *judge.Pa
 	return rep, nil
 }
 
-func meanSD(xs []float64) (float64, float64) {
+// MeanSD is the mean of xs and their population standard deviation (0, 0
+// for none).
+func MeanSD(xs []float64) (mean, sd float64) {
+	if len(xs) == 0 {
+		return 0, 0
+	}
 	var s float64
 	for _, x := range xs {
 		s += x
