@@ -15,7 +15,9 @@ import (
 const demoInputPrice, demoOutputPrice = 0.50, 1.50
 
 // localProxy is an in-process proxy on the embedded store in front of the
-// local model, at the demo prices.
+// local model, at the demo prices. It serves one user, so its runs have no
+// storage quota: a comparison records every one of its searches (tens of
+// MB each), far past the default quota a shared proxy keeps per team.
 type localProxy struct {
 	srv    *server
 	url    string // base URL, version path included
@@ -28,6 +30,7 @@ func startLocalProxy(ctx context.Context, modelPath, data string) (*localProxy, 
 	cfg := DefaultConfig()
 	cfg.Listen, cfg.Data = "127.0.0.1:0", data
 	cfg.Upstreams = []UpstreamConfig{{Name: "local", URL: "local:" + modelPath}}
+	cfg.Runs.QuotaBytes = -1
 	cfg.Prices = map[string]PriceConfig{"stories260K": {Input: Number{Value: demoInputPrice, Set: true}, Output: Number{Value: demoOutputPrice, Set: true}}}
 	if err := cfg.Validate(nil); err != nil {
 		return nil, err
