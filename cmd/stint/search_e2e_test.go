@@ -259,7 +259,10 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 2.50"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
+	if !bytes.Contains(raw, []byte("spend_cap_usd: 5.00")) {
+		t.Fatal("the example task has no spend_cap_usd: 5.00 to lower")
+	}
+	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 5.00"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
 		t.Fatal(err)
 	}
 	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")
