@@ -42,7 +42,7 @@ func runPost(t *testing.T, c *child, key, body string, headers ...string) (int, 
 	defer resp.Body.Close()
 	var b bytes.Buffer
 	_, _ = b.ReadFrom(resp.Body)
-	return resp.StatusCode, resp.Header.Get("Stint-Cache"), b.Bytes()
+	return resp.StatusCode, cacheOutcome(resp.Header), b.Bytes()
 }
 
 // TestRunSurvivesRestartAndExportImport records a run, restarts the proxy

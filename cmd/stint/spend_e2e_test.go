@@ -104,8 +104,8 @@ func TestServeChargesBudgetAndReportsSpend(t *testing.T) {
 	body := `{"model":"quill-small","prompt":"the co-op pays for its crates","temperature":0,"max_tokens":6}`
 	miss, _ := post(t, c, key, body)
 	hit, _ := post(t, c, key, body)
-	if miss.StatusCode != 200 || hit.Header.Get("Stint-Cache") != "hit" {
-		t.Fatalf("miss %d, then %q", miss.StatusCode, hit.Header.Get("Stint-Cache"))
+	if miss.StatusCode != 200 || cacheOutcome(hit.Header) != "hit" {
+		t.Fatalf("miss %d, then %q", miss.StatusCode, cacheOutcome(hit.Header))
 	}
 	cost := miss.Header.Get("Stint-Cost-Usd")
 	if zero, _ := strconv.ParseFloat(hit.Header.Get("Stint-Cost-Usd"), 64); cost == "" || cost == "0.00" || zero != 0 || hit.Header.Get("Stint-Saved-Usd") != cost {

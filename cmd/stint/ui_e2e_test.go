@@ -278,7 +278,7 @@ func (r *uiRig) post(t *testing.T, key, body string, header ...string) (int, []b
 	}
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	return resp.StatusCode, b, resp.Header.Get(proxy.HeaderCache)
+	return resp.StatusCode, b, cacheOutcome(resp.Header)
 }
 
 func quillBody(prompt string) string {
