@@ -35,7 +35,7 @@ type BudgetChange struct {
 const maxAdminBody = 64 << 10
 
 func (p *Proxy) routeAdmin(mux *http.ServeMux) {
-	mux.HandleFunc("GET "+AdminPrefix+"spend", p.admin(p.serveAdminSpend))
+	mux.HandleFunc("GET "+AdminPrefix+"statement", p.admin(p.serveAdminStatement))
 	mux.HandleFunc("GET "+AdminPrefix+"budgets", p.admin(p.serveAdminBudgets))
 	mux.HandleFunc("PUT "+AdminPrefix+"budgets/{team}", p.admin(p.serveSetBudget))
 	mux.HandleFunc("DELETE "+AdminPrefix+"budgets/{team}", p.admin(p.serveSetBudget))
@@ -74,7 +74,7 @@ func (p *Proxy) admin(h func(http.ResponseWriter, *http.Request, SpendAdmin)) ht
 	}
 }
 
-func (p *Proxy) serveAdminSpend(w http.ResponseWriter, r *http.Request, sa SpendAdmin) {
+func (p *Proxy) serveAdminStatement(w http.ResponseWriter, r *http.Request, sa SpendAdmin) {
 	q := r.URL.Query()
 	since := q.Get("since")
 	if since == "" {

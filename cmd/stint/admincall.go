@@ -16,7 +16,7 @@ import (
 // Environment variables holding the keys the --proxy commands send; keys
 // never go on the command line.
 const (
-	adminKeyEnv = "STINT_ADMIN_KEY" // an admin key: stint spend/budget --proxy
+	adminKeyEnv = "STINT_ADMIN_KEY" // an admin key: stint statement and stint budget
 	teamKeyEnv  = "STINT_KEY"       // a team's client key: stint runs
 )
 

@@ -55,7 +55,7 @@ hand the key itself to the team and keep it out of files.`,
 			}
 			out := cmd.OutOrStdout()
 			if admin {
-				fmt.Fprintf(out, "admin key (set it as STINT_ADMIN_KEY where you run stint spend/budget --proxy; it is not stored anywhere):\n  %s\n", key)
+				fmt.Fprintf(out, "admin key (set it as STINT_ADMIN_KEY where you run stint statement and stint budget; it is not stored anywhere):\n  %s\n", key)
 				fmt.Fprintf(out, "add to admin.keys in the config:\n  - \"%s\"\n", hash)
 				return nil
 			}

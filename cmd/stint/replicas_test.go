@@ -217,7 +217,7 @@ func runCLI(t *testing.T, args ...string) (string, error) {
 
 // TestBudgetSetThroughOneReplicaHoldsOnAll lowers the team's budget with
 // `stint budget set` on one replica; the other replica, sharing the Redis,
-// refuses the team's next miss, and `stint spend --proxy` reports the
+// refuses the team's next miss, and `stint statement --proxy` reports the
 // spend both replicas made.
 func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 	rs := redistest.Start(t)
@@ -236,11 +236,11 @@ func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 		cost += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
 	}
 	t.Setenv(adminKeyEnv, replicaAdminKey)
-	out, err := runCLI(t, "spend", "--proxy", "http://"+b.addr, "--json")
+	out, err := runCLI(t, "statement", "--proxy", "http://"+b.addr, "--json")
 	if err != nil {
-		t.Fatalf("stint spend --proxy: %v\n%s", err, out)
+		t.Fatalf("stint statement --proxy: %v\n%s", err, out)
 	}
-	var rep spendReport
+	var rep statement
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatalf("spend JSON %s: %v", out, err)
 	}

@@ -18,7 +18,7 @@ func newRootCmd() *cobra.Command {
 		newLocalCmd(),
 		newConfigCmd(),
 		newKeysCmd(),
-		newSpendCmd(),
+		newStatementCmd(),
 		newBudgetCmd(),
 		newRunsCmd(),
 		newSearchCmd(),

@@ -97,8 +97,8 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 
 	// The spend journal names the run of each call it recorded.
 	t.Setenv(adminKeyEnv, replicaAdminKey)
-	out, err := runCLI(t, "spend", "--proxy", proxyAt, "--by", "run", "--json")
-	var rep spendReport
+	out, err := runCLI(t, "statement", "--proxy", proxyAt, "--by", "run", "--json")
+	var rep statement
 	if err != nil || json.Unmarshal([]byte(out), &rep) != nil {
 		t.Fatalf("spend by run: %v\n%s", err, out)
 	}

@@ -25,8 +25,8 @@ import (
 	"github.com/stintlab/stint/proxy"
 )
 
-// spendFlags are the command-line settings of `stint spend`.
-type spendFlags struct {
+// statementFlags are the command-line settings of `stint statement`.
+type statementFlags struct {
 	data   string
 	config string
 	team   string
@@ -36,31 +36,30 @@ type spendFlags struct {
 	proxy  string
 }
 
-// spendLockTimeout bounds the wait for the store's file lock.
-const spendLockTimeout = time.Second
+// storeLockTimeout bounds the wait for the store's file lock.
+const storeLockTimeout = time.Second
 
-func newSpendCmd() *cobra.Command {
-	var f spendFlags
+func newStatementCmd() *cobra.Command {
+	var f statementFlags
 	cmd := &cobra.Command{
-		Use:   "spend",
-		Short: "Report what was spent and what the cache saved",
-		Long: `Print spend from the journal in the embedded store (DATA/stint.db), or on
-Redis when the config has store.redis: per
-group, the requests, upstream calls, share served from the cache, tokens,
-USD spent and USD saved. With --config, each team's budget left this period
-is shown too.
+		Use:   "statement",
+		Short: "Print a statement of what was spent and what the cache saved",
+		Long: `Print a statement from the journal in the embedded store (DATA/stint.db),
+or on Redis when the config has store.redis: per group, the requests,
+upstream calls, share served from the cache, tokens, USD spent and USD
+saved. With --config, each team's budget left this period is shown too.
 
 Costs are estimates from the configured prices and the upstream's usage
 counts; the provider's bill is the record.
 
 The store file is locked while stint serve runs: stop it first, or ask the
 running proxy with --proxy (admin key in STINT_ADMIN_KEY).`,
-		Example: `  stint spend --data ./stint-data --since 7d
-  stint spend --config stint.yaml --team lab --by model
-  stint spend --by day --since 30d --json`,
+		Example: `  stint statement --data ./stint-data --since 7d
+  stint statement --config stint.yaml --team lab --by model
+  stint statement --by day --since 30d --json`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			return runSpend(cmd.Context(), cmd.OutOrStdout(), f, time.Now())
+			return runStatement(cmd.Context(), cmd.OutOrStdout(), f, time.Now())
 		},
 	}
 	fl := cmd.Flags()
@@ -83,15 +82,15 @@ func parseSince(s string, now time.Time) (time.Time, error) {
 	return t, nil
 }
 
-// spendReport is the JSON form of the output.
-type spendReport = budget.Statement
+// statement is the JSON form of the output.
+type statement = budget.Statement
 
-// spendRow is one line of it.
-type spendRow = budget.StatementRow
+// statementRow is one line of it.
+type statementRow = budget.StatementRow
 
-func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) error {
+func runStatement(ctx context.Context, out io.Writer, f statementFlags, now time.Time) error {
 	if f.proxy != "" {
-		return runSpendRemote(ctx, out, f)
+		return runStatementRemote(ctx, out, f)
 	}
 	var cfg *Config
 	if f.config != "" {
@@ -148,10 +147,10 @@ func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) e
 	if err != nil {
 		return err
 	}
-	return writeSpend(out, rep, f.json)
+	return writeStatement(out, rep, f.json)
 }
 
-func printSpend(out io.Writer, rep spendReport) error {
+func printStatement(out io.Writer, rep statement) error {
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
 	fmt.Fprintf(w, "%s\tREQUESTS\tUPSTREAM\tCACHED\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(string(rep.By)))
 	for _, r := range append(rep.Rows, rep.Total) {
@@ -176,9 +175,9 @@ func printSpend(out io.Writer, rep spendReport) error {
 }
 
 // openStoreForReport opens an existing store file, waiting at most
-// spendLockTimeout for its lock. It opens it read-write because the
+// storeLockTimeout for its lock. It opens it read-write because the
 // journal's buckets are created on first use; it writes nothing else.
-// reportLedger is what a spend report reads: the journal and the balances.
+// reportLedger is what a statement reads: the journal and the balances.
 type reportLedger interface {
 	budget.Journal
 	Balance(ctx context.Context, now time.Time, scope budget.Scope, p budget.Period) (budget.Balance, error)
@@ -212,9 +211,9 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 	if _, err := os.Stat(path); err != nil {
 		return nil, fmt.Errorf("no store at %s (give --data DIR, or --config with its data directory): %w", path, err)
 	}
-	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: spendLockTimeout})
+	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: storeLockTimeout})
 	if errors.Is(err, bbolt.ErrTimeout) {
-		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running `stint serve`; stop it to read spend from the file, or query the proxy's admin endpoint", path)
+		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running `stint serve`; stop it to read the statement from the file, or give --proxy to ask the running proxy", path)
 	}
 	if err != nil {
 		return nil, fmt.Errorf("open store %s: %w", path, err)
@@ -222,8 +221,8 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 	return db, nil
 }
 
-// runSpendRemote asks a running proxy for the statement.
-func runSpendRemote(ctx context.Context, out io.Writer, f spendFlags) error {
+// runStatementRemote asks a running proxy for the statement.
+func runStatementRemote(ctx context.Context, out io.Writer, f statementFlags) error {
 	if f.data != "" || f.config != "" {
 		return errors.New("--proxy asks the running proxy; leave out --data and --config")
 	}
@@ -231,18 +230,18 @@ func runSpendRemote(ctx context.Context, out io.Writer, f spendFlags) error {
 	if f.team != "" {
 		q.Set("team", f.team)
 	}
-	var rep spendReport
-	if err := adminCall(ctx, http.MethodGet, f.proxy, proxy.AdminPrefix+"spend", q, nil, &rep); err != nil {
+	var rep statement
+	if err := adminCall(ctx, http.MethodGet, f.proxy, proxy.AdminPrefix+"statement", q, nil, &rep); err != nil {
 		return err
 	}
-	return writeSpend(out, rep, f.json)
+	return writeStatement(out, rep, f.json)
 }
 
-func writeSpend(out io.Writer, rep spendReport, asJSON bool) error {
+func writeStatement(out io.Writer, rep statement, asJSON bool) error {
 	if asJSON {
 		enc := json.NewEncoder(out)
 		enc.SetIndent("", "  ")
 		return enc.Encode(rep)
 	}
-	return printSpend(out, rep)
+	return printStatement(out, rep)
 }
