@@ -11,6 +11,7 @@ import (
 	"log/slog"
 	"math/rand/v2"
 	"net/http"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -311,6 +312,12 @@ func New(opts Options) (*Proxy, error) {
 		mux.HandleFunc("GET /metrics", p.metricsHandler(promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}), opts.Metrics))
 	}
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		if allow := allowedMethods(mux, r); len(allow) > 0 {
+			w.Header().Set("Allow", strings.Join(allow, ", "))
+			writeError(w, &apiError{status: http.StatusMethodNotAllowed, typ: errInvalidRequest, code: "method_not_allowed",
+				message: fmt.Sprintf("%s is not allowed on %s; use %s", r.Method, r.URL.Path, strings.Join(allow, " or "))})
+			return
+		}
 		writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "unknown_url", message: fmt.Sprintf("no route for %s %s", r.Method, r.URL.Path)})
 	})
 	p.mux = mux
@@ -375,6 +382,38 @@ func (p *Proxy) route(model string) *Upstream {
 		}
 	}
 	return nil
+}
+
+// probedMethods are the methods allowedMethods tries, in the order Allow
+// lists them.
+var probedMethods = [...]string{http.MethodGet, http.MethodHead, http.MethodPost, http.MethodPut, http.MethodPatch, http.MethodDelete}
+
+// allowedMethods lists the methods other than r's that mux routes r's path
+// for, other than to its catch-all "/": a known path asked with the wrong
+// method gets 405 with them as Allow (RFC 9110 §15.5.6), not 404.
+func allowedMethods(mux *http.ServeMux, r *http.Request) []string {
+	var allow []string
+	for _, m := range probedMethods {
+		if m == r.Method {
+			continue
+		}
+		probe := &http.Request{Method: m, URL: r.URL, Host: r.Host, Header: http.Header{}}
+		if _, pattern := mux.Handler(probe); pattern != "" && pattern != "/" {
+			allow = append(allow, m)
+		}
+	}
+	return allow
+}
+
+// notRouted is the error of a model no upstream serves: it names the
+// models that are served (every upstream then has a Models list).
+func (p *Proxy) notRouted(model string) *apiError {
+	var served []string
+	for _, u := range p.upstreams {
+		served = append(served, u.Models...)
+	}
+	return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model",
+		message: fmt.Sprintf("no upstream serves model %q; this proxy serves %s", model, strings.Join(served, ", "))}
 }
 
 // cacheable reports whether req may be answered from and stored in the cache.
@@ -518,7 +557,11 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 	}
 	up := p.route(req.model)
 	if up == nil {
-		fail(&apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model", message: fmt.Sprintf("no upstream serves model %q", req.model)})
+		fail(p.notRouted(req.model))
+		return
+	}
+	if e := req.checkLogprobs(up.maxLogprobs(), up.Name); e != nil {
+		fail(e)
 		return
 	}
 	if !p.cacheable(team, req) {

@@ -34,6 +34,7 @@ import (
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker/redisstate"
+	"github.com/stintlab/stint/proxy/localmodel"
 )
 
 // serveFlags are the command-line settings of `stint serve`.
@@ -481,17 +482,26 @@ func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstrea
 	var closers []func() error
 	for i, uc := range cfgs {
 		u := proxy.Upstream{Name: uc.Name, BaseURL: uc.URL, Timeout: time.Duration(uc.Timeout), Models: uc.Models,
-			Breaker: uc.breakerSettings(), Retry: uc.retryPolicy(), Fallback: uc.Fallback, MaxConcurrent: uc.MaxConcurrent}
+			Breaker: uc.breakerSettings(), Retry: uc.retryPolicy(), Fallback: uc.Fallback, MaxConcurrent: uc.MaxConcurrent,
+			MaxLogprobs: uc.MaxLogprobs}
 		if u.Name == "" {
 			u.Name = fmt.Sprintf("upstream-%d", i)
 		}
 		if path, ok := strings.CutPrefix(uc.URL, "local:"); ok {
-			client, closeFn, err := localUpstreamClient(ctx, path)
+			client, m, closeFn, err := localUpstreamClient(ctx, path)
 			if err != nil {
 				return nil, closers, fmt.Errorf("upstream %s: %w", u.Name, err)
 			}
 			u.BaseURL = "http://local.stint.invalid/v1"
 			u.Client = client
+			// The local model answers any name as itself: route it only
+			// the name it serves, so another is refused, not answered by it.
+			if len(u.Models) == 0 {
+				u.Models = []string{localmodel.DefaultName}
+			}
+			if u.MaxLogprobs == 0 {
+				u.MaxLogprobs = m.VocabSize()
+			}
 			closers = append(closers, closeFn)
 		} else if uc.KeyEnv != "" {
 			u.Key = os.Getenv(uc.KeyEnv)
