@@ -84,10 +84,21 @@ func TestAdminRefusals(t *testing.T) {
 }
 
 func TestAdminOffWithoutKeys(t *testing.T) {
-	r := newRig(t)
+	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")))
 	status, b := r.adminDo("GET", "statement", "anything", "")
 	if status != http.StatusForbidden || errorCode(t, b) != "admin_off" {
 		t.Errorf("admin without keys: %d %s, want 403 admin_off", status, b)
+	}
+}
+
+// TestAdminOpenInOpenMode: a proxy without teams (open mode: no key needed
+// anywhere, loopback only) answers its admin endpoints without a key too;
+// without prices there is no spend control, and it says so.
+func TestAdminOpenInOpenMode(t *testing.T) {
+	r := newRig(t)
+	status, b := r.adminDo("GET", "statement", "", "")
+	if status != http.StatusNotFound || errorCode(t, b) != "spend_off" || !strings.Contains(string(b), "nothing is recorded") {
+		t.Errorf("open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
 	}
 }
 

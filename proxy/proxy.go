@@ -127,7 +127,8 @@ type Options struct {
 	// defaults); As and Replace come from each request.
 	RunImport runs.ImportOptions
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
-	// admin endpoints (AdminPrefix); empty turns them off.
+	// admin endpoints (AdminPrefix); empty turns them off, except in open
+	// mode (no Teams), where they answer anyone like every endpoint.
 	AdminKeyHashes [][sha256.Size]byte
 	UI             UIOptions // the operator page at /ui (ui.go); on with admin keys
 	// SharedFlights, when set, coalesces misses across replicas sharing

@@ -87,7 +87,12 @@ func TestKeysNewPrintsAKeyThatMatchesItsHash(t *testing.T) {
 	}
 	lines := strings.Split(out.String(), "\n")
 	key := strings.TrimSpace(lines[1])
-	stored := strings.Trim(strings.TrimSpace(strings.TrimPrefix(strings.TrimSpace(lines[3]), "- ")), `"`)
+	var stored string
+	for _, l := range lines {
+		if v, ok := strings.CutPrefix(strings.TrimSpace(l), "keys: ["); ok {
+			stored = strings.Trim(strings.TrimSuffix(v, "]"), `"`)
+		}
+	}
 	sum := sha256.Sum256([]byte(key))
 	if stored != "sha256:"+hex.EncodeToString(sum[:]) {
 		t.Errorf("stored form %q does not hash key %q", stored, key)

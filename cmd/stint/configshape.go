@@ -24,8 +24,8 @@ func checkShape(n *yaml.Node, t reflect.Type, path []any) error {
 	for n != nil && n.Kind == yaml.AliasNode {
 		n = n.Alias
 	}
-	if n == nil {
-		return nil
+	if n == nil || n.Kind == 0 {
+		return nil // an empty file
 	}
 	if n.Kind == yaml.DocumentNode {
 		if len(n.Content) == 0 {

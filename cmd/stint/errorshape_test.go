@@ -31,7 +31,7 @@ var (
 		"rate_limit_error": true, "upstream_error": true, "cache_error": true, "server_error": true}
 	errorCodes = map[string]bool{"unknown_url": true, "method_not_allowed": true, "invalid_json": true, "invalid_value": true,
 		"body_too_large": true, "model_not_routed": true, "run_not_found": true, "job_not_found": true,
-		"context_length_exceeded": true, "internal_error": true, "missing_key": true, "invalid_key": true, "admin_off": true}
+		"context_length_exceeded": true, "internal_error": true, "missing_key": true, "invalid_key": true, "admin_off": true, "spend_off": true}
 )
 
 // wireError is the one error body: {"error":{"message","type","param","code"}}.
@@ -115,7 +115,7 @@ func TestErrorsShareOneShape(t *testing.T) {
 		{"proxy: bad value", proxySrv.URL, "POST", "/v1/completions", `{"model":"m","prompt":"p","temperature":-1}`, 400, "invalid_value"},
 		{"proxy: body too large", proxySrv.URL, "POST", "/v1/completions", big, 413, "body_too_large"},
 		{"proxy: unknown run", proxySrv.URL, "GET", "/stint/runs/nothing-here", "", 404, "run_not_found"},
-		{"proxy: admin off", proxySrv.URL, "GET", "/stint/admin/budgets", "", 403, "admin_off"},
+		{"proxy: no spend control", proxySrv.URL, "GET", "/stint/admin/budgets", "", 404, "spend_off"},
 		{"sidecar: unknown path", sidecar.URL, "GET", "/nothing", "", 404, "unknown_url"},
 		{"sidecar: wrong method", sidecar.URL, "DELETE", "/jobs", "", 405, "method_not_allowed"},
 		{"sidecar: wrong method on a job", sidecar.URL, "DELETE", "/jobs/abc", "", 405, "method_not_allowed"},

@@ -259,7 +259,11 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if err := os.WriteFile(path, bytes.Replace(raw, []byte("spend_cap_usd: 2.50"), []byte("spend_cap_usd: 0.000001"), 1), 0o600); err != nil {
+	tiny := regexp.MustCompile(`(?m)^spend_cap_usd: [0-9.]+`).ReplaceAll(raw, []byte("spend_cap_usd: 0.000001"))
+	if bytes.Equal(tiny, raw) {
+		t.Fatal("the example task has no spend_cap_usd line to change")
+	}
+	if err := os.WriteFile(path, tiny, 0o600); err != nil {
 		t.Fatal(err)
 	}
 	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")

@@ -71,13 +71,18 @@ that is allowed only on a loopback address.`,
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.listen, "listen", "", "address to listen on (default 127.0.0.1:8787)")
+	fl.StringVar(&f.listen, "listen", "", "address to listen on")
 	fl.StringVar(&f.upstream, "upstream", "", "upstream base URL including its version path (https://host/v1), or local:MODEL.gguf to run the local model in-process")
-	fl.StringVar(&f.data, "data", "", "data directory for the embedded store (default ./stint-data)")
-	fl.StringVar(&f.config, "config", "", "YAML config file (see `stint config example`)")
-	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text (default text)")
+	fl.StringVar(&f.data, "data", "", "data directory for the embedded store")
+	fl.StringVar(&f.config, "config", "", "YAML config file (see \"stint config example\")")
+	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text")
 	fl.BoolVar(&f.logPrompts, "log-prompts", false, "include prompt text in request logs (debugging only)")
 	fl.BoolVar(&f.checkConfig, "check-config", false, "validate the configuration, print a one-line summary and exit, opening nothing (no store, Redis, model or listener)")
+	describeFlag(fl, "listen", "ADDR", "the config's listen, else "+DefaultConfig().Listen)
+	describeFlag(fl, "upstream", "URL", "")
+	describeFlag(fl, "data", "DIR", "the config's data, else "+DefaultConfig().Data)
+	describeFlag(fl, "config", "FILE", "")
+	describeFlag(fl, "log-format", "FORMAT", "the config's log.format, else text")
 	return cmd
 }
 

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -33,43 +32,58 @@ type statementFlags struct {
 	since  string
 	by     string
 	json   bool
-	proxy  string
+	remote proxyFlags
 }
 
 // storeLockTimeout bounds the wait for the store's file lock.
 const storeLockTimeout = time.Second
 
 func newStatementCmd() *cobra.Command {
-	var f statementFlags
+	f := statementFlags{remote: proxyFlags{admin: true}}
 	cmd := &cobra.Command{
 		Use:   "statement",
 		Short: "Print a statement of what was spent and what the cache saved",
-		Long: `Print a statement from the journal in the embedded store (DATA/stint.db),
-or on Redis when the config has store.redis: per group, the requests,
-upstream calls, share served from the cache, tokens, USD spent and USD
-saved. With --config, each team's budget left this period is shown too.
+		Long: `Print a statement: per group (team, model, run or day), the requests,
+upstream calls, share served from the cache, tokens, USD spent and USD saved,
+and each capped team's budget standing.
+
+By default it asks the running proxy (--proxy, its admin endpoint
+GET /stint/admin/statement; the admin key is --key or $STINT_ADMIN_KEY, and
+a proxy run without a config needs none). With --data or --config it reads
+the store instead: the embedded file DATA/stint.db (locked while stint serve
+runs on it, so stop it first), or Redis when the config has store.redis;
+--config also adds each team's budget left this period.
+
+Only calls made while the proxy's config prices models are recorded: without
+prices (spend control off) there is nothing to report.
 
 Costs are estimates from the configured prices and the upstream's usage
-counts; the provider's bill is the record.
-
-The store file is locked while stint serve runs: stop it first, or ask the
-running proxy with --proxy (admin key in STINT_ADMIN_KEY).`,
-		Example: `  stint statement --data ./stint-data --since 7d
-  stint statement --config stint.yaml --team lab --by model
-  stint statement --by day --since 30d --json`,
+counts; the provider's bill is the record.`,
+		Example: `  stint statement --since 7d --by model
+  STINT_ADMIN_KEY=... stint statement --proxy http://10.0.0.5:8787 --by team --json
+  stint statement --data ./stint-data --by run
+  stint statement --config stint.yaml --team lab --by day --since 30d`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
+			if (f.data != "" || f.config != "") && cmd.Flags().Changed("proxy") {
+				return errors.New("--proxy asks the running proxy, --data and --config read the store: give one or the other")
+			}
 			return runStatement(cmd.Context(), cmd.OutOrStdout(), f, time.Now())
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.data, "data", "", "data directory holding stint.db (default: the config's data, else ./stint-data)")
-	fl.StringVar(&f.config, "config", "", "YAML config file; adds each team's budget left")
+	fl.StringVar(&f.data, "data", "", "read the store in this data directory (its stint.db) instead of asking the proxy")
+	fl.StringVar(&f.config, "config", "", "read the store the config names (its data, or store.redis) instead of asking the proxy, and add each team's budget left")
 	fl.StringVar(&f.team, "team", "", "only this team")
 	fl.StringVar(&f.since, "since", "7d", "how far back: 30m, 12h, 7d, or a date 2026-12-01 (UTC)")
 	fl.StringVar(&f.by, "by", "team", "group by model, team, run or day")
 	fl.BoolVar(&f.json, "json", false, "print JSON instead of a table")
-	fl.StringVar(&f.proxy, "proxy", "", "ask a running proxy's admin endpoint (http://host:port) instead of reading the store; the admin key comes from STINT_ADMIN_KEY")
+	f.remote.register(fl)
+	describeFlag(fl, "data", "DIR", "")
+	describeFlag(fl, "config", "FILE", "")
+	describeFlag(fl, "team", "NAME", "")
+	describeFlag(fl, "since", "WHEN", "")
+	describeFlag(fl, "by", "GROUP", "")
 	return cmd
 }
 
@@ -89,7 +103,7 @@ type statement = budget.Statement
 type statementRow = budget.StatementRow
 
 func runStatement(ctx context.Context, out io.Writer, f statementFlags, now time.Time) error {
-	if f.proxy != "" {
+	if f.data == "" && f.config == "" {
 		return runStatementRemote(ctx, out, f)
 	}
 	var cfg *Config
@@ -164,6 +178,9 @@ func printStatement(out io.Writer, rep statement) error {
 	if err := w.Flush(); err != nil {
 		return err
 	}
+	if len(rep.Rows) == 0 {
+		fmt.Fprintln(out, "\nnothing recorded in this window: calls are recorded only while the proxy's config prices models (prices: in stint config example)")
+	}
 	if len(rep.Budgets) > 0 {
 		fmt.Fprintln(out)
 		if err := printStandings(out, rep.Budgets); err != nil {
@@ -213,7 +230,7 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 	}
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: storeLockTimeout})
 	if errors.Is(err, bbolt.ErrTimeout) {
-		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running `stint serve`; stop it to read the statement from the file, or give --proxy to ask the running proxy", path)
+		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running stint serve: stop it to read the statement from the file, or leave out --data and --config to ask the running proxy", path)
 	}
 	if err != nil {
 		return nil, fmt.Errorf("open store %s: %w", path, err)
@@ -223,15 +240,22 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 
 // runStatementRemote asks a running proxy for the statement.
 func runStatementRemote(ctx context.Context, out io.Writer, f statementFlags) error {
-	if f.data != "" || f.config != "" {
-		return errors.New("--proxy asks the running proxy; leave out --data and --config")
+	c, err := f.remote.client()
+	if err != nil {
+		return err
 	}
 	q := url.Values{"since": {f.since}, "by": {f.by}}
 	if f.team != "" {
 		q.Set("team", f.team)
 	}
 	var rep statement
-	if err := adminCall(ctx, http.MethodGet, f.proxy, proxy.AdminPrefix+"statement", q, nil, &rep); err != nil {
+	if err := c.json(ctx, http.MethodGet, proxy.AdminPrefix+"statement", q, nil, &rep); err != nil {
+		var pe *proxyError
+		if errors.As(err, &pe) && pe.Code == "invalid_value" {
+			// The proxy's message names its query parameters (since=, by=);
+			// these are the flags of the same names.
+			return fmt.Errorf("--since or --by: %s", pe.Message)
+		}
 		return err
 	}
 	return writeStatement(out, rep, f.json)
@@ -239,9 +263,7 @@ func runStatementRemote(ctx context.Context, out io.Writer, f statementFlags) er
 
 func writeStatement(out io.Writer, rep statement, asJSON bool) error {
 	if asJSON {
-		enc := json.NewEncoder(out)
-		enc.SetIndent("", "  ")
-		return enc.Encode(rep)
+		return printJSON(out, rep)
 	}
 	return printStatement(out, rep)
 }
