@@ -253,7 +253,7 @@ func (p *Proxy) cacheStatusOf(ll *logLine, outcome string, fwdStatus int) CacheS
 		return c
 	case OutcomeHit:
 		c.Hit = true
-		if p.ttl > 0 {
+		if p.ttl > 0 && ll.storedAt > 0 {
 			age := time.Duration(max(0, nowUnix(p.now())-ll.storedAt)) * time.Second
 			c.TTL, c.HasTTL = p.ttl-age, true
 		}
