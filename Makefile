@@ -7,6 +7,11 @@ PKGS    := ./...
 # development machine; FUZZSCALE multiplies them all.
 FUZZSCALE ?= 1
 
+# The revision stint version reports when Go's VCS stamping is off
+# (-buildvcs=false, or a tree it cannot read as a checkout).
+REVISION ?= $(shell git rev-parse HEAD 2>/dev/null)
+LDFLAGS  := -X main.buildRevision=$(REVISION)
+
 # Fuzz targets run briefly by `make test` (package:target:executions).
 FUZZ_TARGETS := \
 	./cache/canon:FuzzCanonical:150000 \
@@ -32,7 +37,7 @@ help:
 	@echo "make compare      the RL search against its baselines on the task suite, 5 seeds, offline (the README's table)"
 
 build:
-	$(GO) build -o stint ./cmd/stint
+	$(GO) build -ldflags "$(LDFLAGS)" -o stint ./cmd/stint
 
 test: vet unit fuzz-short
 
@@ -66,7 +71,7 @@ bench-local:
 	$(GO) test -run '^$$' -bench . -benchtime 3x -timeout 30m ./proxy/localmodel/...
 
 compare:
-	$(GO) run ./cmd/stint search compare --local --out ./stint-compare
+	$(GO) run -ldflags "$(LDFLAGS)" ./cmd/stint search compare --local --out ./stint-compare
 
 clean:
 	rm -f stint

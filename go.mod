@@ -4,6 +4,7 @@ go 1.26.8
 
 require (
 	github.com/chromedp/chromedp v0.23.0
+	github.com/dunglas/httpsfv v1.1.2
 	github.com/gowebpki/jcs v1.0.2
 	github.com/klauspost/compress v1.20.4
 	github.com/maypok86/otter/v2 v2.4.0
@@ -48,7 +49,6 @@ require (
 	github.com/prometheus/client_model v0.6.3 // indirect
 	github.com/prometheus/common v0.72.0 // indirect
 	github.com/prometheus/procfs v0.22.0 // indirect
-	github.com/stretchr/testify v1.12.1 // indirect
 	github.com/x448/float16 v0.8.4 // indirect
 	go.uber.org/atomic v1.12.0 // indirect
 	go.yaml.in/yaml/v2 v2.4.4 // indirect

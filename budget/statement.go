@@ -28,7 +28,7 @@ func ParseSince(s string, now time.Time) (time.Time, error) {
 }
 
 // Statement is a spend report with its total and each capped team's
-// standing: what `stint spend --json` prints and the admin endpoint
+// standing: what `stint statement --json` prints and the admin endpoint
 // returns. Amounts are exact decimal USD strings. They are estimates from
 // configured prices and the upstream's usage; the provider's bill is the
 // record.

@@ -35,16 +35,21 @@ type BudgetChange struct {
 const maxAdminBody = 64 << 10
 
 func (p *Proxy) routeAdmin(mux *http.ServeMux) {
-	mux.HandleFunc("GET "+AdminPrefix+"spend", p.admin(p.serveAdminSpend))
+	mux.HandleFunc("GET "+AdminPrefix+"statement", p.admin(p.serveAdminStatement))
 	mux.HandleFunc("GET "+AdminPrefix+"budgets", p.admin(p.serveAdminBudgets))
 	mux.HandleFunc("PUT "+AdminPrefix+"budgets/{team}", p.admin(p.serveSetBudget))
 	mux.HandleFunc("DELETE "+AdminPrefix+"budgets/{team}", p.admin(p.serveSetBudget))
 }
 
 // admin wraps an admin handler with the admin key check. Without admin keys
-// configured the endpoints are off.
+// configured the endpoints are off, except in open mode (no teams), where
+// they answer anyone, like every other endpoint.
 func (p *Proxy) admin(h func(http.ResponseWriter, *http.Request, SpendAdmin)) http.HandlerFunc {
 	return func(w http.ResponseWriter, r *http.Request) {
+		if len(p.adminKeys) == 0 && p.open != nil {
+			p.adminServe(w, r, h)
+			return
+		}
 		if len(p.adminKeys) == 0 {
 			writeError(w, &apiError{status: http.StatusForbidden, typ: errPermission, code: "admin_off",
 				message: "admin endpoints are off: configure admin.keys"})
@@ -64,17 +69,22 @@ func (p *Proxy) admin(h func(http.ResponseWriter, *http.Request, SpendAdmin)) ht
 			refuseConnection(w, &apiError{status: http.StatusUnauthorized, typ: errAuthentication, code: "invalid_key", message: "not an admin key"})
 			return
 		}
-		sa, ok := p.spend.(SpendAdmin)
-		if !ok {
-			writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "spend_off",
-				message: "spend control is off: the config prices no model"})
-			return
-		}
-		h(w, r, sa)
+		p.adminServe(w, r, h)
 	}
 }
 
-func (p *Proxy) serveAdminSpend(w http.ResponseWriter, r *http.Request, sa SpendAdmin) {
+// adminServe runs an admin handler once the caller is admitted.
+func (p *Proxy) adminServe(w http.ResponseWriter, r *http.Request, h func(http.ResponseWriter, *http.Request, SpendAdmin)) {
+	sa, ok := p.spend.(SpendAdmin)
+	if !ok {
+		writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "spend_off",
+			message: "spend control is off: the config prices no model, so nothing is recorded"})
+		return
+	}
+	h(w, r, sa)
+}
+
+func (p *Proxy) serveAdminStatement(w http.ResponseWriter, r *http.Request, sa SpendAdmin) {
 	q := r.URL.Query()
 	since := q.Get("since")
 	if since == "" {

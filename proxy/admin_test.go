@@ -55,10 +55,10 @@ func TestAdminRefusals(t *testing.T) {
 		status                        int
 		code                          string
 	}{
-		{"no key", "GET", "spend", "", "", 401, "missing_key"},
-		{"a team's key", "GET", "spend", "lab-key", "", 401, "invalid_key"},
-		{"bad since", "GET", "spend?since=yesterday", adminKey, "", 400, "invalid_value"},
-		{"bad grouping", "GET", "spend?by=colour", adminKey, "", 400, "invalid_value"},
+		{"no key", "GET", "statement", "", "", 401, "missing_key"},
+		{"a team's key", "GET", "statement", "lab-key", "", 401, "invalid_key"},
+		{"bad since", "GET", "statement?since=yesterday", adminKey, "", 400, "invalid_value"},
+		{"bad grouping", "GET", "statement?by=colour", adminKey, "", 400, "invalid_value"},
 		{"unknown team", "PUT", "budgets/ghost", adminKey, `{"usd":1,"per":"day"}`, 404, "unknown_team"},
 		{"unknown field", "PUT", "budgets/lab", adminKey, `{"usd":1,"per":"day","color":"red"}`, 400, "invalid_value"},
 		{"malformed JSON", "PUT", "budgets/lab", adminKey, `{"usd":`, 400, "invalid_value"},
@@ -84,17 +84,28 @@ func TestAdminRefusals(t *testing.T) {
 }
 
 func TestAdminOffWithoutKeys(t *testing.T) {
-	r := newRig(t)
-	status, b := r.adminDo("GET", "spend", "anything", "")
+	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")))
+	status, b := r.adminDo("GET", "statement", "anything", "")
 	if status != http.StatusForbidden || errorCode(t, b) != "admin_off" {
 		t.Errorf("admin without keys: %d %s, want 403 admin_off", status, b)
 	}
 }
 
-// TestAdminSetsBudgetAndReadsSpend lowers a team's budget at run time (the
+// TestAdminOpenInOpenMode: a proxy without teams (open mode: no key needed
+// anywhere, loopback only) answers its admin endpoints without a key too;
+// without prices there is no spend control, and it says so.
+func TestAdminOpenInOpenMode(t *testing.T) {
+	r := newRig(t)
+	status, b := r.adminDo("GET", "statement", "", "")
+	if status != http.StatusNotFound || errorCode(t, b) != "spend_off" || !strings.Contains(string(b), "nothing is recorded") {
+		t.Errorf("open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	}
+}
+
+// TestAdminSetsBudgetAndReadsStatement lowers a team's budget at run time (the
 // next call is refused), reads spend that matches the answers' headers,
 // and clears the override (calls are admitted again).
-func TestAdminSetsBudgetAndReadsSpend(t *testing.T) {
+func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
 	var spent int64
 	for i := range 3 {
@@ -109,9 +120,9 @@ func TestAdminSetsBudgetAndReadsSpend(t *testing.T) {
 	var st budget.Statement
 	// The hit's saving is journaled in the background; wait until it is.
 	waitFor(t, "the hit in the journal", func() bool {
-		status, b := r.adminDo("GET", "spend?by=team", adminKey, "")
+		status, b := r.adminDo("GET", "statement?by=team", adminKey, "")
 		if status != 200 || json.Unmarshal(b, &st) != nil {
-			t.Fatalf("spend: %d %s", status, b)
+			t.Fatalf("statement: %d %s", status, b)
 		}
 		return st.Total.Requests == 4
 	})

@@ -42,7 +42,7 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 	}
 	p.spendHeaders(context.Background(), w.Header(), fig.team, fig.cost, fig.saved)
 	if req.stream {
-		if err := writeStream(w, req.endpoint, body, req.includeUsage, outcome); err != nil {
+		if err := writeStream(w, req.endpoint, body, req.includeUsage, p.cacheStatusOf(ll, outcome, http.StatusOK).String()); err != nil {
 			p.log.Warn("cannot stream answer", "err", err)
 		}
 		return
@@ -52,7 +52,7 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 	h := w.Header()
 	h["Content-Type"] = []string{"application/json"}
 	h["Content-Length"] = []string{strconv.Itoa(len(body))}
-	h[HeaderCache] = []string{outcome}
+	p.setCacheStatus(h, ll, outcome, http.StatusOK)
 	w.WriteHeader(http.StatusOK)
 	_, _ = w.Write(body)
 }
@@ -119,7 +119,7 @@ func (p *Proxy) writeUpstreamError(w http.ResponseWriter, ll *logLine, ue *upstr
 			h.Set(name, v)
 		}
 	}
-	h.Set(HeaderCache, ll.outcome)
+	p.setCacheStatus(h, ll, ll.outcome, ue.status)
 	h.Set("Content-Length", strconv.Itoa(len(ue.body)))
 	w.WriteHeader(ue.status)
 	_, _ = w.Write(ue.body)
@@ -151,7 +151,7 @@ func (p *Proxy) forward(w http.ResponseWriter, r *http.Request, ll *logLine, tea
 			h.Set(name, v)
 		}
 	}
-	h.Set(HeaderCache, OutcomeBypass)
+	p.setCacheStatus(h, ll, OutcomeBypass, resp.StatusCode)
 	w.WriteHeader(resp.StatusCode)
 	ll.status = resp.StatusCode
 	buf := make([]byte, 32<<10)
@@ -227,7 +227,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	defer resp.Body.Close()
 	res := &flightResult{}
 	if req.stream {
-		_, u, hasUsage, rerr := p.relay(w, resp, req, OutcomeBypass, false)
+		_, u, hasUsage, rerr := p.relay(w, resp, req, p.cacheStatusOf(ll, OutcomeBypass, http.StatusOK).String(), false)
 		ll.status, ll.usage = http.StatusOK, u
 		if hasUsage {
 			res.items = []served{{usage: u}}
@@ -262,7 +262,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 	h := w.Header()
 	h.Set("Content-Type", "application/json")
 	h.Set("Content-Length", strconv.Itoa(len(full)))
-	h.Set(HeaderCache, OutcomeBypass)
+	p.setCacheStatus(h, ll, OutcomeBypass, http.StatusOK)
 	p.spendHeaders(ctx, h, team.Name, res.cost, 0)
 	ll.status = http.StatusOK
 	w.WriteHeader(http.StatusOK)

@@ -7,7 +7,7 @@
 // the body, derive a canonical cache key per prompt, look up (serving smaller
 // requests from larger stored answers when that is exact), and on a miss
 // coalesce, call the upstream, store and answer. Response headers say what
-// happened (Stint-Cache), and Prometheus metrics count it.
+// happened (Cache-Status, RFC 9211), and Prometheus metrics count it.
 //
 // Upstream calls go through each upstream's circuit breaker
 // (proxy/breaker), its fallbacks and concurrency cap, with bounded retries

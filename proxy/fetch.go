@@ -25,6 +25,8 @@ type missCall struct {
 	// holdDone keeps a relayed stream's final "data: [DONE]" event back
 	// (flightResult.doneHeld) until the caller has stored the answer.
 	holdDone bool
+	// status is the Cache-Status of a relayed stream.
+	status string
 }
 
 // fetch makes the upstream call for the missing prompts of c.req (through
@@ -63,7 +65,7 @@ func (p *Proxy) fetch(clientCtx, ctx context.Context, c missCall, streamTo http.
 	res := &flightResult{}
 	if stream {
 		res.streamed = true
-		res.full, _, _, err = p.relay(streamTo, resp, req, OutcomeMiss, c.holdDone)
+		res.full, _, _, err = p.relay(streamTo, resp, req, c.status, c.holdDone)
 		res.doneHeld = c.holdDone
 	} else {
 		res.full, err = io.ReadAll(io.LimitReader(resp.Body, maxUpstreamBody))
@@ -161,11 +163,11 @@ func upstreamBody(req *request, prompts []json.RawMessage, stream bool) ([]byte,
 // stream reported, if it did. Spend figures, known only at the end, are sent
 // as HTTP trailers. With holdDone the final "data: [DONE]" event is left for
 // the caller to send (writeDone).
-func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, outcome string, holdDone bool) ([]byte, usage, bool, error) {
+func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, cacheStatus string, holdDone bool) ([]byte, usage, bool, error) {
 	h := w.Header()
 	h.Set("Content-Type", "text/event-stream")
 	h.Set("Cache-Control", "no-cache")
-	h.Set(HeaderCache, outcome)
+	h.Set(HeaderCacheStatus, cacheStatus)
 	if p.spend != nil {
 		h.Set("Trailer", HeaderCost+", "+HeaderSaved+", "+HeaderBudgetLeft)
 	}

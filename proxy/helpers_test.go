@@ -90,7 +90,13 @@ type response struct {
 	readErr error // the answer broke off while being read
 }
 
-func (r response) cache() string { return r.header.Get(proxy.HeaderCache) }
+func (r response) cache() string { return proxy.CacheOutcome(r.header) }
+
+// detail is the detail parameter of the answer's Cache-Status.
+func (r response) detail() string {
+	cs, _ := proxy.ParseCacheStatus(r.header)
+	return cs.Detail
+}
 
 // post sends body to path with optional extra headers (name, value pairs).
 func (r *rig) post(path string, body any, headers ...string) response {

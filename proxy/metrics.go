@@ -62,7 +62,7 @@ func (m *metrics) series(team, endpoint, outcome string) *outcomeSeries {
 func newMetrics(reg prometheus.Registerer, waiting, pending, remote func() float64) (*metrics, error) {
 	m := &metrics{
 		requests: prometheus.NewCounterVec(prometheus.CounterOpts{
-			Name: "stint_requests_total", Help: "Generation requests answered, by team, endpoint and cache outcome.",
+			Name: "stint_requests_total", Help: "Generation requests answered, by team, endpoint and cache outcome (hit, shared, partial, miss, bypass, replay: the Cache-Status header's hit, collapsed, fwd=partial, fwd=miss or request, fwd=bypass, detail=replay).",
 		}, []string{"team", "endpoint", "cache"}),
 		prompts: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_prompts_total", Help: "Prompt items looked up in the cache (a batched request counts each prompt), by outcome.",
@@ -91,7 +91,7 @@ func newMetrics(reg prometheus.Registerer, waiting, pending, remote func() float
 			Name: "stint_coalesced_remote_waiting", Help: "Requests waiting on an identical upstream call another replica is making (shared store).",
 		}, remote),
 		degraded: prometheus.NewCounter(prometheus.CounterOpts{
-			Name: "stint_store_degraded_requests_total", Help: "Requests answered without the cache store because it failed (their answers carry Stint-Cache-Store: unavailable).",
+			Name: "stint_store_degraded_requests_total", Help: "Requests answered without the cache store because it failed (their answers carry Cache-Status detail=store-unavailable).",
 		}),
 		tokens: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "stint_tokens_total", Help: "Tokens in answers, by team, kind and source (upstream or cache).",

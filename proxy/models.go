@@ -59,7 +59,11 @@ func (p *Proxy) serveModels(w http.ResponseWriter, r *http.Request) {
 	h := w.Header()
 	h.Set("Content-Type", "application/json")
 	h.Set("Content-Length", strconv.Itoa(len(body)))
-	h.Set(HeaderCache, outcome)
+	cs := CacheStatus{Hit: true}
+	if outcome == OutcomeMiss {
+		cs = CacheStatus{Fwd: FwdMiss, FwdStatus: code, Stored: code == http.StatusOK && p.modelsTTL >= 0}
+	}
+	h.Set(HeaderCacheStatus, cs.String())
 	if len(missing) > 0 {
 		h.Set(HeaderModelsMissing, strings.Join(missing, ", "))
 	}

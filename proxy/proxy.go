@@ -11,6 +11,7 @@ import (
 	"log/slog"
 	"math/rand/v2"
 	"net/http"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -26,13 +27,12 @@ import (
 	"github.com/stintlab/stint/proxy/scrub"
 )
 
-// Header names stint sets on answers.
-const (
-	HeaderCache        = "Stint-Cache"
-	HeaderCachedPrompt = "Stint-Cached-Prompts"
-)
+// HeaderCachedPrompt, on the answer to a completions prompt array, is
+// "hits/prompts": how many of its prompts came from the cache.
+const HeaderCachedPrompt = "Stint-Cached-Prompts"
 
-// Cache outcomes reported in the Stint-Cache header and metrics.
+// Cache outcomes as the metrics, request logs and run journals name them;
+// answers carry them as Cache-Status (see CacheStatus.Outcome).
 const (
 	OutcomeHit     = "hit"     // answered from the cache
 	OutcomeMiss    = "miss"    // answered by an upstream call this request made
@@ -127,13 +127,14 @@ type Options struct {
 	// defaults); As and Replace come from each request.
 	RunImport runs.ImportOptions
 	// AdminKeyHashes are SHA-256 digests of the keys that may use the
-	// admin endpoints (AdminPrefix); empty turns them off.
+	// admin endpoints (AdminPrefix); empty turns them off, except in open
+	// mode (no Teams), where they answer anyone like every endpoint.
 	AdminKeyHashes [][sha256.Size]byte
 	UI             UIOptions // the operator page at /ui (ui.go); on with admin keys
 	// SharedFlights, when set, coalesces misses across replicas sharing
 	// Store: a cacheable miss of one prompt first claims the key, the
 	// holder fetches and stores the answer before it releases, and the
-	// other replicas then answer from the store (Stint-Cache: shared).
+	// other replicas then answer from the store (Cache-Status: collapsed).
 	// nil coalesces only within this process.
 	SharedFlights SharedFlights
 	// BreakerStore shares the upstreams' circuit breaker state between
@@ -149,7 +150,7 @@ type Options struct {
 	// commit is fsynced; concurrent misses share commits), and a streamed
 	// miss is relayed as it comes but its final "data: [DONE]" event waits
 	// for the store. A Put that fails still releases the answer, marked
-	// Stint-Cache-Store: unavailable. Off, answers are stored right after
+	// Cache-Status detail=store-unavailable. Off, answers are stored right after
 	// they are sent (see writeBehind), which a crash can lose.
 	StoreBeforeAnswer bool
 }
@@ -312,6 +313,12 @@ func New(opts Options) (*Proxy, error) {
 		mux.HandleFunc("GET /metrics", p.metricsHandler(promhttp.HandlerFor(opts.Gatherer, promhttp.HandlerOpts{}), opts.Metrics))
 	}
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		if allow := allowedMethods(mux, r); len(allow) > 0 {
+			w.Header().Set("Allow", strings.Join(allow, ", "))
+			writeError(w, &apiError{status: http.StatusMethodNotAllowed, typ: errInvalidRequest, code: "method_not_allowed",
+				message: fmt.Sprintf("%s is not allowed on %s; use %s", r.Method, r.URL.Path, strings.Join(allow, " or "))})
+			return
+		}
 		writeError(w, &apiError{status: http.StatusNotFound, typ: errInvalidRequest, code: "unknown_url", message: fmt.Sprintf("no route for %s %s", r.Method, r.URL.Path)})
 	})
 	p.mux = mux
@@ -378,6 +385,38 @@ func (p *Proxy) route(model string) *Upstream {
 	return nil
 }
 
+// probedMethods are the methods allowedMethods tries, in the order Allow
+// lists them.
+var probedMethods = [...]string{http.MethodGet, http.MethodHead, http.MethodPost, http.MethodPut, http.MethodPatch, http.MethodDelete}
+
+// allowedMethods lists the methods other than r's that mux routes r's path
+// for, other than to its catch-all "/": a known path asked with the wrong
+// method gets 405 with them as Allow (RFC 9110 §15.5.6), not 404.
+func allowedMethods(mux *http.ServeMux, r *http.Request) []string {
+	var allow []string
+	for _, m := range probedMethods {
+		if m == r.Method {
+			continue
+		}
+		probe := &http.Request{Method: m, URL: r.URL, Host: r.Host, Header: http.Header{}}
+		if _, pattern := mux.Handler(probe); pattern != "" && pattern != "/" {
+			allow = append(allow, m)
+		}
+	}
+	return allow
+}
+
+// notRouted is the error of a model no upstream serves: it names the
+// models that are served (every upstream then has a Models list).
+func (p *Proxy) notRouted(model string) *apiError {
+	var served []string
+	for _, u := range p.upstreams {
+		served = append(served, u.Models...)
+	}
+	return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model",
+		message: fmt.Sprintf("no upstream serves model %q; this proxy serves %s", model, strings.Join(served, ", "))}
+}
+
 // cacheable reports whether req may be answered from and stored in the cache.
 func (p *Proxy) cacheable(t *Team, req *request) bool {
 	if t.CacheOff || p.uncachedModels[req.model] {
@@ -398,6 +437,8 @@ type served struct {
 	usage usage
 	// facts, when set, are tokenFacts of body, found while decoding it.
 	facts *answerFacts
+	// storedAt is when a cached answer was stored (Unix seconds).
+	storedAt int64
 }
 
 // flightResult is what one upstream call yields, shared by coalesced waiters.
@@ -425,15 +466,21 @@ type logLine struct {
 	usage                usage
 	prompts, hits        int
 	promptText           string
-	// header is the answer's header map; storeDown notes that the cache
-	// store failed during the request (see storeFailed).
-	header    http.Header
+	// storeDown notes that the cache store failed during the request (see
+	// storeFailed).
 	storeDown bool
+	// For Cache-Status: the key of a single-prompt request, when the oldest
+	// answer served from the cache was stored (Unix seconds), whether the
+	// request said no-cache, and whether the upstream's answer is stored.
+	key      string
+	storedAt int64
+	noCache  bool
+	stored   bool
 }
 
 func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoint) {
 	start := p.now()
-	ll := &logLine{endpoint: ep, header: w.Header()}
+	ll := &logLine{endpoint: ep}
 	defer func() { p.finish(ll, start) }()
 	fail := func(e *apiError) {
 		ll.status = e.status
@@ -487,11 +534,13 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 		defer rr.finish(func(a runs.Answer) error { return p.recordCall(r.Context(), team, rc, ep, body, rr.Header(), a) })
 	}
 	d := parseDirectives(r.Header)
+	ll.noCache = d.noCache
 	mk := memoKey(team, ep, body)
 	if m, ok := p.memo.get(mk); ok && !d.noCache && !p.logPrompts {
 		// Seen these exact bytes before: go straight to the cache.
 		if hit, _ := p.lookup(r.Context(), ll, &m.req, m.key, p.greedy(&m.req)); hit != nil {
 			ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
+			ll.key, ll.storedAt = m.key, hit.storedAt
 			p.metrics.series(team.Name, string(ep), OutcomeHit).hitPrompts.Inc()
 			fig := spendFigures{team: team.Name, saved: p.noteSaved(r.Context(), team, keyID, &m.req, hit.usage)}
 			p.answer(w, ll, &m.req, []item{{key: m.key, hit: hit}}, nil, OutcomeHit, fig)
@@ -509,7 +558,11 @@ func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoin
 	}
 	up := p.route(req.model)
 	if up == nil {
-		fail(&apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "model_not_routed", param: "model", message: fmt.Sprintf("no upstream serves model %q", req.model)})
+		fail(p.notRouted(req.model))
+		return
+	}
+	if e := req.checkLogprobs(up.maxLogprobs(), up.Name); e != nil {
+		fail(e)
 		return
 	}
 	if !p.cacheable(team, req) {
@@ -569,6 +622,10 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 		}
 	}
 	ll.prompts, ll.hits = len(items), len(items)-len(misses)
+	if len(items) == 1 {
+		ll.key = items[0].key
+	}
+	ll.storedAt = oldestStored(items)
 	p.metrics.prompts.WithLabelValues(team.Name, "hit").Add(float64(ll.hits))
 	p.metrics.prompts.WithLabelValues(team.Name, "miss").Add(float64(len(misses)))
 
@@ -609,7 +666,10 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			streamTo = w
 		}
 		storing := !d.noStore
-		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses, storing && p.storeBeforeAnswer}, streamTo)
+		// A relayed stream's headers go out before it is known whether
+		// its answer can be stored: they do not say stored.
+		streamStatus := p.cacheStatusOf(ll, OutcomeMiss, http.StatusOK).String()
+		res, err := p.fetch(ctx, cctx, missCall{team, keyID, up, req, items, misses, storing && p.storeBeforeAnswer, streamStatus}, streamTo)
 		if res != nil && res.streamed {
 			leaderStreamed = true
 		}
@@ -623,7 +683,7 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 			// A lease holder stores before it releases, so the replicas
 			// waiting on it find the answer; with StoreBeforeAnswer every answer
 			// waits for its entry.
-			p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding || p.storeBeforeAnswer)
+			ll.stored = p.storeItems(cctx, ll, req, items, misses, res.items, greedy, holding || p.storeBeforeAnswer)
 		}
 		if res.doneHeld {
 			writeDone(streamTo)
@@ -659,6 +719,9 @@ func (p *Proxy) serveCached(w http.ResponseWriter, r *http.Request, ll *logLine,
 	}
 	if res.fromStore {
 		shared = true // another replica's call answered it
+	}
+	if shared {
+		ll.stored = false // the call and its store were another request's
 	}
 	ll.upstream = res.latency
 	if res.unstorable && !(leaderStreamed && !shared) {
@@ -729,13 +792,15 @@ func (p *Proxy) fromRecord(req *request, b []byte, greedy bool) (*served, []byte
 	if err != nil {
 		return nil, b
 	}
-	return &served{body: body, usage: u}, b
+	return &served{body: body, usage: u, storedAt: v.StoredAt}, b
 }
 
 // storeItems records each fetched prompt's answer under its key. The writes
 // land behind the answer (see writeBehind), or before storeItems returns
-// when sync is set.
-func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items []item, misses []int, got []served, greedy, sync bool) {
+// when sync is set. It reports whether every answer was stored (or queued
+// to be).
+func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items []item, misses []int, got []served, greedy, sync bool) bool {
+	stored := true
 	for j, i := range misses {
 		key := items[i].key
 		var rec record
@@ -764,11 +829,15 @@ func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items
 		b, err := rec.with(v, greedy, req.stop).encode()
 		if err != nil {
 			p.metrics.storeErrors.WithLabelValues("encode").Inc()
+			stored = false
 			continue
 		}
 		if sync {
-			if err := p.store.Put(ctx, key, b, p.ttl); err != nil && !errors.Is(err, cache.ErrTooLarge) {
-				p.storeFailed(ll, "put", err)
+			if err := p.store.Put(ctx, key, b, p.ttl); err != nil {
+				stored = false
+				if !errors.Is(err, cache.ErrTooLarge) {
+					p.storeFailed(ll, "put", err)
+				}
 			}
 			continue
 		}
@@ -777,6 +846,19 @@ func (p *Proxy) storeItems(ctx context.Context, ll *logLine, req *request, items
 			p.log.Warn("cache put failed; answer served but not stored", "err", err)
 		})
 	}
+	return stored
+}
+
+// oldestStored is when the oldest of items' cached answers was stored
+// (Unix seconds); 0 when none is cached.
+func oldestStored(items []item) int64 {
+	var at int64
+	for _, it := range items {
+		if it.hit != nil && (at == 0 || it.hit.storedAt < at) {
+			at = it.hit.storedAt
+		}
+	}
+	return at
 }
 
 // itemKey derives the cache key of one prompt of req (prompt is nil for chat).

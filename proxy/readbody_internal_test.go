@@ -50,7 +50,7 @@ func TestReadAllSized(t *testing.T) {
 // TestHeaderNamesCanonical: the proxy writes and reads these names in the
 // header map directly, which is right only for canonical names.
 func TestHeaderNamesCanonical(t *testing.T) {
-	for _, name := range []string{HeaderCache, HeaderCachedPrompt, HeaderCacheStore, HeaderRun, HeaderRunMode, HeaderReplaySession, HeaderRecordedCost, HeaderRecordedSaved, HeaderCost, HeaderSaved, HeaderBudgetLeft, HeaderModelsMissing, "Content-Type", "Content-Length", "Cache-Control"} {
+	for _, name := range []string{HeaderCacheStatus, HeaderCachedPrompt, HeaderRun, HeaderRunMode, HeaderReplaySession, HeaderRecordedCost, HeaderRecordedSaved, HeaderCost, HeaderSaved, HeaderBudgetLeft, HeaderModelsMissing, "Content-Type", "Content-Length", "Cache-Control"} {
 		if c := textproto.CanonicalMIMEHeaderKey(name); c != name {
 			t.Errorf("%q is not canonical (%q)", name, c)
 		}

@@ -3,7 +3,8 @@ package proxy
 import (
 	"bytes"
 	"encoding/json"
-	"fmt"
+	"errors"
+	"io"
 	"math"
 	"strconv"
 )
@@ -46,6 +47,11 @@ type request struct {
 	logprobs int
 	echo     bool
 	stop     bool // a stop sequence is set
+	// logprobsAsked is the depth the request sent in logprobsField
+	// (completions logprobs, chat top_logprobs; "" when neither), possibly
+	// out of range: checkLogprobs holds it to the routed upstream's range.
+	logprobsAsked int
+	logprobsField string
 
 	// prompts holds the completions prompt split into items: one entry for a
 	// string or a token array, one per element for an array of those.
@@ -69,16 +75,16 @@ func parseRequest(ep endpoint, body []byte, maxPrompts int) (*request, *apiError
 	var fields map[string]json.RawMessage
 	dec := json.NewDecoder(bytes.NewReader(body))
 	if err := dec.Decode(&fields); err != nil {
-		return nil, badRequest("", "request body is not a JSON object: %v", err)
+		return nil, invalidJSON("request body %s", describeJSONError(err, "a JSON object"))
 	}
 	if dec.More() {
-		return nil, badRequest("", "request body has data after the JSON object")
+		return nil, invalidJSON("request body has data after the JSON object")
 	}
 	if fields == nil {
-		return nil, badRequest("", "request body must be a JSON object, not null")
+		return nil, invalidJSON("request body must be a JSON object, not null")
 	}
 	if err := checkCanonical(body); err != nil {
-		return nil, badRequest("", "request body is not I-JSON (RFC 8785 §3.1): %v", err)
+		return nil, invalidJSON("request body is not I-JSON (RFC 8785 §3.1): %v", err)
 	}
 	r := &request{endpoint: ep, raw: body, fields: fields, n: 1, temperature: 1, maxTokens: noLevel, logprobs: noLevel}
 	var e *apiError
@@ -93,7 +99,7 @@ func parseRequest(ep endpoint, body []byte, maxPrompts int) (*request, *apiError
 			IncludeUsage *bool `json:"include_usage"`
 		}
 		if err := json.Unmarshal(raw, &so); err != nil {
-			return nil, badRequest("stream_options", "stream_options must be an object: %v", err)
+			return nil, badRequest("stream_options", "stream_options must be an object, not %s", jsonKind(raw))
 		}
 		r.includeUsage = so.IncludeUsage != nil && *so.IncludeUsage
 	}
@@ -102,7 +108,7 @@ func parseRequest(ep endpoint, body []byte, maxPrompts int) (*request, *apiError
 	} else if ok {
 		r.n = n
 	}
-	if t, ok, e := optNumber(fields, "temperature", 0, math.MaxFloat64); e != nil {
+	if t, ok, e := optNumber(fields, "temperature", 0, math.Inf(1)); e != nil {
 		return nil, e
 	} else if ok {
 		r.temperature = t
@@ -132,10 +138,13 @@ func (r *request) parseCompletions(maxPrompts int) *apiError {
 	} else if ok {
 		r.maxTokens = m
 	}
-	if lp, ok, e := optInt(r.fields, "logprobs", 0, maxLogprobs); e != nil {
+	if lp, ok, e := optInt(r.fields, "logprobs", -maxLogprobs, maxLogprobs); e != nil {
 		return e
 	} else if ok {
-		r.logprobs = lp
+		r.logprobsAsked, r.logprobsField = lp, "logprobs"
+		if lp >= 0 {
+			r.logprobs = lp
+		}
 	}
 	var e *apiError
 	if r.echo, e = optBool(r.fields, "echo"); e != nil {
@@ -156,7 +165,7 @@ func (r *request) parseChat() *apiError {
 	}
 	var msgs []json.RawMessage
 	if err := json.Unmarshal(raw, &msgs); err != nil {
-		return badRequest("messages", "messages must be an array: %v", err)
+		return badRequest("messages", "messages must be an array, not %s", jsonKind(raw))
 	}
 	if len(msgs) == 0 {
 		return badRequest("messages", "messages must not be empty")
@@ -178,15 +187,18 @@ func (r *request) parseChat() *apiError {
 	if e != nil {
 		return e
 	}
-	top, hasTop, e := optInt(r.fields, "top_logprobs", 0, maxLogprobs)
+	top, hasTop, e := optInt(r.fields, "top_logprobs", -maxLogprobs, maxLogprobs)
 	if e != nil {
 		return e
 	}
 	if hasTop && !want {
 		return badRequest("top_logprobs", "top_logprobs requires logprobs to be true")
 	}
+	if hasTop {
+		r.logprobsAsked, r.logprobsField = top, "top_logprobs"
+	}
 	if want {
-		r.logprobs = top
+		r.logprobs = max(top, 0)
 	}
 	return nil
 }
@@ -201,7 +213,7 @@ func splitPrompt(raw json.RawMessage, maxPrompts int) ([]json.RawMessage, bool, 
 	case '"':
 		var s string
 		if err := json.Unmarshal(raw, &s); err != nil {
-			return nil, false, badRequest("prompt", "prompt is not a valid string: %v", err)
+			return nil, false, badRequest("prompt", "prompt is not a valid JSON string")
 		}
 		return []json.RawMessage{raw}, false, nil
 	case '[':
@@ -210,7 +222,7 @@ func splitPrompt(raw json.RawMessage, maxPrompts int) ([]json.RawMessage, bool, 
 	}
 	var items []json.RawMessage
 	if err := json.Unmarshal(raw, &items); err != nil {
-		return nil, false, badRequest("prompt", "prompt is not a valid array: %v", err)
+		return nil, false, badRequest("prompt", "prompt is not a valid JSON array")
 	}
 	if len(items) == 0 {
 		return nil, false, badRequest("prompt", "prompt must not be an empty array")
@@ -232,7 +244,7 @@ func splitPrompt(raw json.RawMessage, maxPrompts int) ([]json.RawMessage, bool, 
 		case len(it) > 0 && it[0] == '"':
 			var s string
 			if err := json.Unmarshal(it, &s); err != nil {
-				return nil, false, badRequest("prompt", "prompt[%d] is not a valid string: %v", i, err)
+				return nil, false, badRequest("prompt", "prompt[%d] is not a valid JSON string", i)
 			}
 		case len(it) > 0 && it[0] == '[':
 			if err := checkTokenIDs(it); err != nil {
@@ -249,11 +261,11 @@ func splitPrompt(raw json.RawMessage, maxPrompts int) ([]json.RawMessage, bool, 
 func checkTokenIDs(raw json.RawMessage) error {
 	var ids []int64
 	if err := json.Unmarshal(raw, &ids); err != nil {
-		return fmt.Errorf("token ids must be integers: %w", err)
+		return errors.New("token ids must be whole numbers of at most 64 bits")
 	}
 	for _, id := range ids {
 		if id < 0 {
-			return fmt.Errorf("token id %d is negative", id)
+			return errors.New("token id " + strconv.FormatInt(id, 10) + " is negative")
 		}
 	}
 	return nil
@@ -270,7 +282,7 @@ func requiredString(fields map[string]json.RawMessage, name string) (string, *ap
 	}
 	var s string
 	if err := json.Unmarshal(raw, &s); err != nil {
-		return "", badRequest(name, "%s must be a string", name)
+		return "", badRequest(name, "%s must be a string, not %s", name, jsonKind(raw))
 	}
 	if s == "" {
 		return "", badRequest(name, "%s must not be empty", name)
@@ -285,7 +297,7 @@ func optBool(fields map[string]json.RawMessage, name string) (bool, *apiError) {
 	}
 	var b bool
 	if err := json.Unmarshal(raw, &b); err != nil {
-		return false, badRequest(name, "%s must be a boolean", name)
+		return false, badRequest(name, "%s must be true or false, not %s", name, jsonKind(raw))
 	}
 	return b, nil
 }
@@ -298,7 +310,7 @@ func optInt(fields map[string]json.RawMessage, name string, lo, hi int) (int, bo
 	}
 	f, err := strconv.ParseFloat(string(bytes.TrimSpace(raw)), 64)
 	if err != nil || f != math.Trunc(f) {
-		return 0, false, badRequest(name, "%s must be an integer", name)
+		return 0, false, badRequest(name, "%s must be a whole number, not %s", name, bytes.TrimSpace(raw))
 	}
 	if f < float64(lo) || f > float64(hi) {
 		return 0, false, badRequest(name, "%s must be between %d and %d, got %s", name, lo, hi, bytes.TrimSpace(raw))
@@ -314,10 +326,82 @@ func optNumber(fields map[string]json.RawMessage, name string, lo, hi float64) (
 	}
 	f, err := strconv.ParseFloat(string(bytes.TrimSpace(raw)), 64)
 	if err != nil || math.IsNaN(f) || math.IsInf(f, 0) {
-		return 0, false, badRequest(name, "%s must be a number", name)
+		return 0, false, badRequest(name, "%s must be a number, not %s", name, bytes.TrimSpace(raw))
+	}
+	if math.IsInf(hi, 1) && f < lo {
+		return 0, false, badRequest(name, "%s must be at least %g, got %s", name, lo, bytes.TrimSpace(raw))
 	}
 	if f < lo || f > hi {
 		return 0, false, badRequest(name, "%s must be between %g and %g, got %s", name, lo, hi, bytes.TrimSpace(raw))
 	}
 	return f, true, nil
+}
+
+// checkLogprobs refuses a log-probability depth outside [0, limit], the
+// routed upstream's range, before anything is sent.
+func (r *request) checkLogprobs(limit int, upstream string) *apiError {
+	if r.logprobsField == "" || (r.logprobsAsked >= 0 && r.logprobsAsked <= limit) {
+		return nil
+	}
+	return badRequest(r.logprobsField, "%s must be between 0 and %d for upstream %q (its max_logprobs), got %d", r.logprobsField, limit, upstream, r.logprobsAsked)
+}
+
+// invalidJSON is the error of a body that is not the JSON object asked for.
+func invalidJSON(format string, args ...any) *apiError {
+	e := badRequest("", format, args...)
+	e.code = "invalid_json"
+	return e
+}
+
+// describeJSONError says, in the wire format's words, why a JSON value
+// could not be read as want ("a JSON object"): it is not JSON at all, it
+// ends early, or it is another kind of value. It never shows Go's types.
+func describeJSONError(err error, want string) string {
+	var se *json.SyntaxError
+	var te *json.UnmarshalTypeError
+	switch {
+	case errors.As(err, &se):
+		return sprintf("is not valid JSON: %s (at byte %d)", se.Error(), se.Offset)
+	case errors.As(err, &te):
+		return sprintf("must be %s, not %s", want, article(te.Value))
+	case errors.Is(err, io.ErrUnexpectedEOF), errors.Is(err, io.EOF):
+		return "is not valid JSON: it ends before the value does"
+	}
+	return "is not valid JSON"
+}
+
+// jsonKind names the kind of a JSON value as the wire format's docs do:
+// "an array", "an object", "a string", "a number", "a boolean", "null".
+func jsonKind(raw json.RawMessage) string {
+	raw = bytes.TrimSpace(raw)
+	if len(raw) == 0 {
+		return "empty"
+	}
+	switch c := raw[0]; {
+	case c == '[':
+		return "an array"
+	case c == '{':
+		return "an object"
+	case c == '"':
+		return "a string"
+	case c == 't' || c == 'f':
+		return "a boolean"
+	case c == 'n':
+		return "null"
+	}
+	return "a number"
+}
+
+// article puts "a" or "an" before the kind names encoding/json reports
+// ("array", "object", "string", "number", "bool").
+func article(kind string) string {
+	switch kind {
+	case "array", "object":
+		return "an " + kind
+	case "bool":
+		return "a boolean"
+	case "":
+		return "another kind of value"
+	}
+	return "a " + kind
 }

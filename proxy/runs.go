@@ -133,7 +133,7 @@ func (p *Proxy) serveReplay(w http.ResponseWriter, r *http.Request, ll *logLine,
 	h := w.Header()
 	h.Set("Content-Type", a.ContentType)
 	h.Set("X-Content-Type-Options", "nosniff") // a browser takes the answer for what it says it is
-	h.Set(HeaderCache, OutcomeReplay)
+	h.Set(HeaderCacheStatus, CacheStatus{Hit: true, Detail: DetailReplay}.String())
 	h.Set(HeaderRun, rc.id)
 	if p.spend != nil {
 		h.Set(HeaderCost, usd(0))
@@ -253,7 +253,7 @@ func (p *Proxy) recordCall(ctx context.Context, team *Team, rc runCall, ep endpo
 	if err != nil {
 		return err
 	}
-	outcome := h.Get(HeaderCache)
+	outcome := CacheOutcome(h)
 	e := runs.Entry{
 		Key: key, Outcome: outcome, Model: modelOf(body), Time: p.now(),
 		Upstream:  outcome == OutcomeMiss || outcome == OutcomeBypass || outcome == OutcomePartial,

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"net/http"
+	"slices"
 	"strconv"
 	"time"
 
@@ -42,6 +43,77 @@ func ViewOf(s runs.Summary) RunView {
 		v.CacheShare = float64(s.Calls-s.Upstream) / float64(s.Calls)
 	}
 	return v
+}
+
+// RunDetail is one run as GET /stint/runs/{id} returns it: its summary,
+// its calls by model and by cache outcome, and the replays of it this
+// proxy process has served.
+type RunDetail struct {
+	RunView
+	ByModel   []RunGroup `json:"by_model"`
+	ByOutcome []RunGroup `json:"by_outcome"` // hit, miss, shared, partial, bypass
+	// Replays are the replay sessions (Stint-Replay-Session; "" for calls
+	// that named none) this process has answered since it started, with
+	// the calls each got.
+	Replays []ReplaySession `json:"replay_sessions"`
+}
+
+// RunGroup is a run's calls of one model or one cache outcome.
+type RunGroup struct {
+	Name          string `json:"name"`
+	Calls         int64  `json:"calls"`
+	UpstreamCalls int64  `json:"upstream_calls"`
+	SpentUSD      string `json:"spent_usd"`
+	SavedUSD      string `json:"saved_usd"`
+}
+
+// ReplaySession is one replay session of a run and the calls it was
+// answered.
+type ReplaySession struct {
+	Session string `json:"session"`
+	Calls   int64  `json:"calls"`
+}
+
+// detailOf reads a run's entries into its detail.
+func (p *Proxy) detailOf(r *http.Request, team *Team, s runs.Summary) (RunDetail, error) {
+	type sums struct{ calls, upstream, cost, saved int64 }
+	byModel, byOutcome := map[string]*sums{}, map[string]*sums{}
+	add := func(m map[string]*sums, name string, e runs.Entry) {
+		g := m[name]
+		if g == nil {
+			g = &sums{}
+			m[name] = g
+		}
+		g.calls++
+		g.cost += e.CostNanos
+		g.saved += e.SavedNanos
+		if e.Upstream {
+			g.upstream++
+		}
+	}
+	err := p.runs.Entries(r.Context(), team.Name, s.Run, func(e runs.Entry) error {
+		add(byModel, cmp.Or(e.Model, "(none)"), e)
+		add(byOutcome, cmp.Or(e.Outcome, "error"), e)
+		return nil
+	})
+	if err != nil {
+		return RunDetail{}, err
+	}
+	groups := func(m map[string]*sums) []RunGroup {
+		out := make([]RunGroup, 0, len(m))
+		for name, g := range m {
+			out = append(out, RunGroup{Name: name, Calls: g.calls, UpstreamCalls: g.upstream,
+				SpentUSD: budget.Nanos(g.cost).String(), SavedUSD: budget.Nanos(g.saved).String()})
+		}
+		slices.SortFunc(out, func(a, b RunGroup) int { return cmp.Or(cmp.Compare(b.Calls, a.Calls), cmp.Compare(a.Name, b.Name)) })
+		return out
+	}
+	d := RunDetail{RunView: ViewOf(s), ByModel: groups(byModel), ByOutcome: groups(byOutcome), Replays: []ReplaySession{}}
+	for session, n := range p.cursor.Sessions(team.Name, s.Run) {
+		d.Replays = append(d.Replays, ReplaySession{Session: session, Calls: n})
+	}
+	slices.SortFunc(d.Replays, func(a, b ReplaySession) int { return cmp.Compare(a.Session, b.Session) })
+	return d, nil
 }
 
 // RunList is the body of GET /stint/runs.
@@ -137,7 +209,12 @@ func (p *Proxy) serveRunShow(w http.ResponseWriter, r *http.Request, team *Team)
 		writeError(w, runError(id, err))
 		return
 	}
-	writeJSON(w, http.StatusOK, ViewOf(s))
+	d, err := p.detailOf(r, team, s)
+	if err != nil {
+		writeError(w, runError(id, err))
+		return
+	}
+	writeJSON(w, http.StatusOK, d)
 }
 
 func (p *Proxy) serveRunExport(w http.ResponseWriter, r *http.Request, team *Team) {

@@ -107,9 +107,9 @@ func TestRealClientLibrary(t *testing.T) {
 		if resp.Choices[0].Message.Content != a.Choices[0].Message.Content || len(resp.Choices[0].LogProbs.Content) == 0 {
 			t.Errorf("chat answers differ or lack logprobs: %+v", resp.Choices[0])
 		}
-		hdr := resp.Header().Get(proxy.HeaderCache)
-		if hdr != proxy.OutcomeHit {
-			t.Errorf("second chat call: Stint-Cache %q, want hit", hdr)
+		hdr := resp.Header().Get(proxy.HeaderCacheStatus)
+		if cs, ok := proxy.ParseCacheStatus(resp.Header()); !ok || !cs.Hit || cs.Fwd != "" {
+			t.Errorf("second chat call: Cache-Status %q, want stint's member with hit (RFC 9211 §2.1)", hdr)
 		}
 		s, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{Model: req.Model, MaxTokens: 7, Temperature: req.Temperature, Messages: req.Messages, Stream: true})
 		if err != nil {

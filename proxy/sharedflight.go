@@ -2,16 +2,6 @@ package proxy
 
 import "context"
 
-// HeaderCacheStore is set to "unavailable" on an answer given without the
-// cache store because it failed during the request (Redis down or too
-// slow): the request was answered as a miss, from upstream, and its answer
-// may not have been stored. The stint_store_degraded_requests_total metric
-// counts such requests.
-const HeaderCacheStore = "Stint-Cache-Store"
-
-// storeUnavailable is HeaderCacheStore's value.
-const storeUnavailable = "unavailable"
-
 // maxSharedRounds bounds how often one miss waits on another replica's call
 // before it makes its own: each round ends when that replica released its
 // lease without leaving a fitting answer (its call failed, it died, or it
@@ -74,8 +64,11 @@ func (p *Proxy) claimShared(ctx context.Context, ll *logLine, req *request, it *
 	return nil, nil
 }
 
-// storeFailed notes that the cache store failed during the request: the
-// request goes on as a miss without it, and its answer says so.
+// storeFailed notes that the cache store failed during the request (Redis
+// down or too slow): the request goes on without it, as a miss unless the
+// in-process tier held the answer, and its answer says so in Cache-Status
+// (DetailStoreUnavailable). The stint_store_degraded_requests_total metric
+// counts such requests.
 func (p *Proxy) storeFailed(ll *logLine, op string, err error) {
 	p.metrics.storeErrors.WithLabelValues(op).Inc()
 	p.log.Warn("cache store failed; going on without it", "op", op, "err", err)
@@ -84,7 +77,4 @@ func (p *Proxy) storeFailed(ll *logLine, op string, err error) {
 	}
 	ll.storeDown = true
 	p.metrics.degraded.Inc()
-	if ll.header != nil {
-		ll.header.Set(HeaderCacheStore, storeUnavailable)
-	}
 }

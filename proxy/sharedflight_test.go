@@ -154,14 +154,14 @@ func TestSharedFlightsHolderFailure(t *testing.T) {
 
 // TestSharedStoreDownDegrades stops Redis under a replica (hot tier off, so
 // every lookup needs Redis): requests are answered from upstream, marked
-// Stint-Cache-Store: unavailable and counted; after Redis is back the same
+// Cache-Status detail=store-unavailable and counted; after Redis is back the same
 // process caches and hits again.
 func TestSharedStoreDownDegrades(t *testing.T) {
 	noLeaks(t)
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
-	if got := r.complete(greedy("before the outage")); got.status != http.StatusOK || got.header.Get(proxy.HeaderCacheStore) != "" {
-		t.Fatalf("with Redis up: %d %q", got.status, got.header.Get(proxy.HeaderCacheStore))
+	if got := r.complete(greedy("before the outage")); got.status != http.StatusOK || got.detail() != "" {
+		t.Fatalf("with Redis up: %d %q", got.status, got.detail())
 	}
 	// A write still landing is served from memory, so the first answer's
 	// write must be in Redis before it stops, and each call during the
@@ -170,8 +170,8 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	sr.redis.Stop()
 	for i, body := range []map[string]any{greedy("before the outage"), greedy("during the outage"), greedy("streamed during the outage", "stream", true)} {
 		got := completeWithin(t, r, 10*time.Second, body)
-		if got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss || got.header.Get(proxy.HeaderCacheStore) != "unavailable" {
-			t.Errorf("call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.header.Get(proxy.HeaderCacheStore), got.body)
+		if got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss || got.detail() != proxy.DetailStoreUnavailable {
+			t.Errorf("call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
 		}
 	}
 	if resp, err := http.Get(r.srv.URL + "/readyz"); err != nil || resp.StatusCode != http.StatusOK {
@@ -184,7 +184,7 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	}
 	sr.redis.Restart(t)
 	waitFor(t, "a call with the store back", func() bool {
-		return r.complete(greedy("after the outage")).header.Get(proxy.HeaderCacheStore) == ""
+		return r.complete(greedy("after the outage")).detail() == ""
 	})
 	if got := r.complete(greedy("after the outage")); got.cache() != proxy.OutcomeHit {
 		t.Errorf("repeat after Redis came back: %q, want a hit without a restart", got.cache())
@@ -254,7 +254,7 @@ func TestSharedStoreSlowIsBounded(t *testing.T) {
 	}
 	defer admin.Do(context.Background(), "CLIENT", "UNPAUSE")
 	got := completeWithin(t, r, 2500*time.Millisecond, greedy("while the lock is jammed"))
-	if got.status != http.StatusOK || got.header.Get(proxy.HeaderCacheStore) != "unavailable" {
-		t.Errorf("with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.header.Get(proxy.HeaderCacheStore), got.body)
+	if got.status != http.StatusOK || got.detail() != proxy.DetailStoreUnavailable {
+		t.Errorf("with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
 	}
 }

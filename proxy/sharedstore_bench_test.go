@@ -50,7 +50,7 @@ func BenchmarkHitByStore(b *testing.B) {
 		b.Run(st.name, func(b *testing.B) {
 			b.ReportAllocs()
 			for b.Loop() {
-				if rec := serveOnce(b, h, body); rec.Header().Get(proxy.HeaderCache) != proxy.OutcomeHit {
+				if rec := serveOnce(b, h, body); !benchHit(rec.Header()) {
 					b.Fatal("not a hit")
 				}
 			}
@@ -59,7 +59,7 @@ func BenchmarkHitByStore(b *testing.B) {
 			b.ReportAllocs()
 			b.RunParallel(func(pb *testing.PB) {
 				for pb.Next() {
-					if rec := serveOnce(b, h, body); rec.Header().Get(proxy.HeaderCache) != proxy.OutcomeHit {
+					if rec := serveOnce(b, h, body); !benchHit(rec.Header()) {
 						b.Error("not a hit")
 						return
 					}

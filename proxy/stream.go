@@ -248,7 +248,7 @@ func orEmpty(v []json.RawMessage) []json.RawMessage {
 // choice, one chunk per token when token data allow it (else one chunk with
 // the whole text), then a finishing chunk; a usage chunk when the client
 // asked for one; then [DONE].
-func writeStream(w http.ResponseWriter, ep endpoint, body []byte, includeUsage bool, outcome string) error {
+func writeStream(w http.ResponseWriter, ep endpoint, body []byte, includeUsage bool, cacheStatus string) error {
 	var env map[string]json.RawMessage
 	if err := json.Unmarshal(body, &env); err != nil {
 		return fmt.Errorf("stored answer: %w", err)
@@ -271,7 +271,7 @@ func writeStream(w http.ResponseWriter, ep endpoint, body []byte, includeUsage b
 	h := w.Header()
 	h.Set("Content-Type", "text/event-stream")
 	h.Set("Cache-Control", "no-cache")
-	h.Set(HeaderCache, outcome)
+	h.Set(HeaderCacheStatus, cacheStatus)
 	w.WriteHeader(http.StatusOK)
 	sw := sse.NewWriter(w)
 	emit := func(chs []any, usage json.RawMessage) error {

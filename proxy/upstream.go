@@ -8,6 +8,7 @@ import (
 	"io"
 	"net"
 	"net/http"
+	"net/url"
 	"strings"
 	"time"
 
@@ -48,8 +49,24 @@ type Upstream struct {
 	// MaxConcurrent caps this proxy's calls in flight to the upstream;
 	// zero means no cap.
 	MaxConcurrent int
+	// MaxLogprobs is the most top log-probabilities per token the upstream
+	// serves (completions logprobs, chat top_logprobs); a request for more
+	// is refused with 400 before it is sent. Zero means
+	// DefaultMaxLogprobs.
+	MaxLogprobs int
 
 	rt *upstreamState // set by New
+}
+
+// DefaultMaxLogprobs is the default of Upstream.MaxLogprobs: what hosted
+// chat APIs serve as top_logprobs.
+const DefaultMaxLogprobs = 20
+
+func (u *Upstream) maxLogprobs() int {
+	if u.MaxLogprobs > 0 {
+		return u.MaxLogprobs
+	}
+	return DefaultMaxLogprobs
 }
 
 func (u *Upstream) timeout() time.Duration {
@@ -94,6 +111,8 @@ type upstreamError struct {
 	header http.Header
 	body   []byte
 	err    error
+	// upstream names the upstream called, when known.
+	upstream string
 }
 
 func (e *upstreamError) Error() string {
@@ -123,7 +142,27 @@ func (e *upstreamError) apiError() *apiError {
 	if errors.Is(e.err, context.DeadlineExceeded) || (errors.As(e.err, &ne) && ne.Timeout()) {
 		return &apiError{status: http.StatusGatewayTimeout, typ: errUpstream, code: "upstream_timeout", message: "the upstream did not answer in time"}
 	}
-	return &apiError{status: http.StatusBadGateway, typ: errUpstream, code: "upstream_unreachable", message: "the upstream could not be reached: " + e.err.Error()}
+	name := "the upstream"
+	if e.upstream != "" {
+		name = fmt.Sprintf("upstream %q", e.upstream)
+	}
+	return &apiError{status: http.StatusBadGateway, typ: errUpstream, code: "upstream_unreachable", message: name + " could not be reached: " + transportCause(e.err)}
+}
+
+// transportCause is the innermost useful text of a transport failure:
+// without the layers that each repeat the URL (url.Error, plainhttp's),
+// it names the address once ("dial tcp 127.0.0.1:9: connect: connection
+// refused").
+func transportCause(err error) string {
+	var oe *net.OpError
+	if errors.As(err, &oe) {
+		return oe.Error()
+	}
+	var ue *url.Error
+	if errors.As(err, &ue) {
+		return ue.Err.Error()
+	}
+	return err.Error()
 }
 
 // post sends body to the upstream endpoint and returns the response when its
@@ -131,7 +170,7 @@ func (e *upstreamError) apiError() *apiError {
 func (u *Upstream) post(ctx context.Context, ep endpoint, body []byte) (*http.Response, error) {
 	req, err := http.NewRequestWithContext(ctx, http.MethodPost, strings.TrimSuffix(u.BaseURL, "/")+"/"+string(ep), bytes.NewReader(body))
 	if err != nil {
-		return nil, &upstreamError{err: err}
+		return nil, &upstreamError{err: err, upstream: u.Name}
 	}
 	req.Header.Set("Content-Type", "application/json")
 	req.Header.Set("Accept", "application/json, text/event-stream")
@@ -140,16 +179,16 @@ func (u *Upstream) post(ctx context.Context, ep endpoint, body []byte) (*http.Re
 	}
 	resp, err := u.client().Do(req)
 	if err != nil {
-		return nil, &upstreamError{err: err}
+		return nil, &upstreamError{err: err, upstream: u.Name}
 	}
 	u.scrub(resp)
 	if resp.StatusCode/100 != 2 {
 		defer resp.Body.Close()
 		b, rerr := io.ReadAll(io.LimitReader(resp.Body, 1<<20))
 		if rerr != nil {
-			return nil, &upstreamError{err: rerr}
+			return nil, &upstreamError{err: rerr, upstream: u.Name}
 		}
-		return nil, &upstreamError{status: resp.StatusCode, header: resp.Header, body: b}
+		return nil, &upstreamError{status: resp.StatusCode, header: resp.Header, body: b, upstream: u.Name}
 	}
 	return resp, nil
 }

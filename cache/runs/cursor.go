@@ -55,3 +55,16 @@ func (c *Cursor) Reset(team, run string) {
 	defer c.mu.Unlock()
 	delete(c.runs, runID{team, run})
 }
+
+// Sessions returns, for each replay session of team's run that this
+// cursor has served since it was made (or last Reset), how many calls it
+// answered; "" is the session of calls that named none.
+func (c *Cursor) Sessions(team, run string) map[string]int64 {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	out := map[string]int64{}
+	for k, n := range c.runs[runID{team, run}] {
+		out[k.session] += n
+	}
+	return out
+}

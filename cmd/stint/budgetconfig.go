@@ -143,8 +143,8 @@ func (c *Config) validateSpend(root *yaml.Node) error {
 		}
 	}
 	for i, t := range c.Teams {
-		if err := budget.ValidateName(t.Name); err != nil {
-			return bad(errors.New("team names are 1 to 128 letters, digits, '.', '_' or '-'"), "teams", i, "name")
+		if err := checkTeamName(t.Name); err != nil {
+			return bad(err, "teams", i, "name")
 		}
 		if t.Budget != nil {
 			if _, err := capOf(*t.Budget, bad, "teams", i, "budget"); err != nil {

@@ -18,7 +18,7 @@ import (
 // teamKey is a team with one key whose id is "aaaaaaaaaaaa".
 const teamKey = "teams:\n  - name: lab\n    keys: [\"sha256:" + "aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa" + "\"]\n"
 
-func TestSpendConfigErrorsNameFieldAndLine(t *testing.T) {
+func TestStatementConfigErrorsNameFieldAndLine(t *testing.T) {
 	tests := []struct {
 		name      string
 		yaml      string

@@ -77,7 +77,7 @@ store:
 		{"good, secrets absent", good, []string{"STINT_TEST_UPSTREAM_KEY=", "STINT_TEST_REDIS_PASSWORD="}, true,
 			[]string{"config ok: ", "STINT_TEST_UPSTREAM_KEY not set", "STINT_TEST_REDIS_PASSWORD not set"}},
 		{"typo'd key", strings.Replace(good, "teams:", "tems:", 1), nil, false,
-			[]string{"line 5", `field tems not found`}},
+			[]string{"line 5", `tems: unknown key; did you mean "teams"?`}},
 		{"bad value", good + "log: {format: xml}\n", nil, false,
 			[]string{"config line 11: log.format", `"xml"`}},
 		{"redis address without port", strings.Replace(good, redisAddr, "redis.internal", 1), nil, false,

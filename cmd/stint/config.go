@@ -9,6 +9,7 @@ import (
 	"io"
 	"net"
 	"os"
+	"reflect"
 	"strconv"
 	"strings"
 	"time"
@@ -103,6 +104,10 @@ type UpstreamConfig struct {
 	// MaxConcurrent caps this replica's calls in flight to the upstream;
 	// 0: no cap.
 	MaxConcurrent int `yaml:"max_concurrent"`
+	// MaxLogprobs is the most top log-probabilities per token the upstream
+	// serves; a request for more is refused before it is sent. 0: 20 (a
+	// local: model's vocabulary size).
+	MaxLogprobs int `yaml:"max_logprobs"`
 }
 
 // BreakerConfig is an upstream's `breaker:` section. Absent or 0 fields
@@ -291,12 +296,15 @@ func ParseConfig(r io.Reader) (Config, error) {
 	cfg := DefaultConfig()
 	var root yaml.Node
 	if err := yaml.Unmarshal(src, &root); err != nil {
-		return Config{}, fmt.Errorf("config is not valid YAML: %w", err)
+		return Config{}, fmt.Errorf("config is not valid YAML: %s", yamlErrorText(err))
+	}
+	if err := checkShape(&root, reflect.TypeOf(cfg), nil); err != nil {
+		return Config{}, err
 	}
 	dec := yaml.NewDecoder(bytes.NewReader(src))
 	dec.KnownFields(true)
 	if err := dec.Decode(&cfg); err != nil && !errors.Is(err, io.EOF) {
-		return Config{}, fmt.Errorf("config: %w", err)
+		return Config{}, fmt.Errorf("config: %s", yamlErrorText(err))
 	}
 	if err := cfg.Validate(&root); err != nil {
 		return Config{}, err
@@ -524,6 +532,9 @@ func validateResilience(u UpstreamConfig, bad func(err error, path ...any) error
 	at := func(p ...any) []any { return append(append([]any{}, path...), p...) }
 	if u.MaxConcurrent < 0 {
 		return bad(errors.New("max_concurrent must be 0 (no cap) or more"), at("max_concurrent")...)
+	}
+	if u.MaxLogprobs < 0 {
+		return bad(errors.New("max_logprobs must be 0 (the default, 20) or more"), at("max_logprobs")...)
 	}
 	if b := u.Breaker; b != nil {
 		switch {

@@ -87,12 +87,61 @@ func TestKeysNewPrintsAKeyThatMatchesItsHash(t *testing.T) {
 	}
 	lines := strings.Split(out.String(), "\n")
 	key := strings.TrimSpace(lines[1])
-	stored := strings.Trim(strings.TrimSpace(strings.TrimPrefix(strings.TrimSpace(lines[3]), "- ")), `"`)
+	var stored string
+	for _, l := range lines {
+		if v, ok := strings.CutPrefix(strings.TrimSpace(l), "keys: ["); ok {
+			stored = strings.Trim(strings.TrimSuffix(v, "]"), `"`)
+		}
+	}
 	sum := sha256.Sum256([]byte(key))
 	if stored != "sha256:"+hex.EncodeToString(sum[:]) {
 		t.Errorf("stored form %q does not hash key %q", stored, key)
 	}
 	if _, err := parseKeyHash(stored); err != nil {
 		t.Errorf("printed line does not parse: %v", err)
+	}
+}
+
+// TestConfigErrorsNameThePathAndSuggest: a misspelt key or a value of the
+// wrong kind is named by its YAML path, with the nearest known key
+// suggested, in words a person acts on (no Go type names).
+func TestConfigErrorsNameThePathAndSuggest(t *testing.T) {
+	const key = `["sha256:aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa"]`
+	cases := []struct {
+		name, yaml, want string
+		line             int
+	}{
+		{"misspelt upstream key", "upstreams:\n  - urll: http://x\n", `upstreams[0].urll: unknown key; did you mean "url"?`, 2},
+		{"misspelt nested key", "upstreams:\n  - url: http://x\n    breaker: {open_fro: 5s}\n", `upstreams[0].breaker.open_fro: unknown key; did you mean "open_for"?`, 3},
+		{"misspelt top-level key", "chache:\n  ttl: 5m\n", `chache: unknown key; did you mean "cache"?`, 1},
+		{"misspelt price key", "prices:\n  m: {inptu: 1, output: 1}\n", `prices.m.inptu: unknown key; did you mean "input"?`, 2},
+		{"misspelt redis key", "store:\n  redis: {adrs: [x]}\n", `store.redis.adrs: unknown key; did you mean "addrs"?`, 2},
+		{"nothing near", "cache:\n  zebra: 1\n", `cache.zebra: unknown key; known keys: ttl, max_bytes, hot_bytes`, 2},
+		{"a map for a list", "upstreams: {url: x}\n", "upstreams: want a list (- item lines or [a, b]), got a mapping", 1},
+		{"a string for a list", "teams:\n  - name: lab\n    keys: \"sha256:x\"\n", `teams[0].keys: want a list (- item lines or [a, b]), got a string`, 3},
+		{"text for a number", "server:\n  max_prompts: many\n", `server.max_prompts: want a whole number, got "many"`, 2},
+		{"bad duration", "budget:\n  max_wait: 5\n", `budget.max_wait: "5" is not a duration like 90s or 12h`, 2},
+		{"bad size", "cache:\n  max_bytes: lots\n", `cache.max_bytes: "lots" is not a size`, 2},
+		{"text for a bool", "cache:\n  sampled: sometimes\n", `cache.sampled: want true or false, got "sometimes"`, 2},
+		{"bad key_budgets entry", "teams:\n  - name: lab\n    keys: " + key + "\n    key_budgets: {abc: {usd: 1, pre: day}}\n", `teams[0].key_budgets.abc.pre: unknown key; did you mean "per"?`, 4},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			_, err := ParseConfig(strings.NewReader(c.yaml))
+			if err == nil {
+				t.Fatal("got no error")
+			}
+			if !strings.Contains(err.Error(), c.want) {
+				t.Errorf("error %q\n  does not say %q", err, c.want)
+			}
+			if !strings.Contains(err.Error(), "line "+strconv.Itoa(c.line)) {
+				t.Errorf("error %q does not name line %d", err, c.line)
+			}
+			for _, internal := range []string{"main.", "!!", "unmarshal", "[]string", "yaml:"} {
+				if strings.Contains(err.Error(), internal) {
+					t.Errorf("error %q shows %q", err, internal)
+				}
+			}
+		})
 	}
 }

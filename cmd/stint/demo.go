@@ -26,6 +26,9 @@ type demoFlags struct {
 	dataset string
 	steps   int
 	seed    int64
+	// keepData reuses the cache an earlier demo left in data instead of
+	// starting afresh.
+	keepData bool
 }
 
 func newDemoCmd() *cobra.Command {
@@ -40,21 +43,34 @@ or " Tim"), then run the same search again to show the cache at work.
 Prints the results table and what the proxy saved, at invented demo
 prices; writes the report, history and learning curve to --out.
 
+Each demo starts on a fresh cache: a stint.db an earlier demo left in --data
+is removed first (so the first search's figures are its own), unless
+--keep-data reuses it, which the demo then says. A --data holding a store
+that is not a demo's is refused rather than removed.
+
 Run it from the repository root (the demo data is in testdata/search).`,
 		Example: `  go run ./cmd/stint demo
-  stint demo --model ../shared/models/stories260K.gguf --steps 60 --seed 3`,
+  stint demo --model ../shared/models/stories260K.gguf --steps 60 --seed 3
+  stint demo --keep-data`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			return runDemo(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), f)
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.model, "model", "", "GGUF model file (default: $STINT_MODEL, else the downloaded copy)")
+	fl.StringVar(&f.model, "model", "", "GGUF model file")
 	fl.StringVar(&f.data, "data", "./stint-demo-data", "data directory of the demo's proxy")
+	fl.BoolVar(&f.keepData, "keep-data", false, "reuse the cache an earlier demo left in --data instead of starting afresh")
 	fl.StringVar(&f.out, "out", "./stint-demo-out", "where the search writes its results")
 	fl.StringVar(&f.dataset, "dataset", filepath.Join("testdata", "search"), "folder with the demo task's data")
 	fl.IntVar(&f.steps, "steps", 90, "search steps")
 	fl.Int64Var(&f.seed, "seed", 7, "the search's seed")
+	describeFlag(fl, "model", "FILE", "$STINT_MODEL, else the downloaded copy")
+	describeFlag(fl, "data", "DIR", "")
+	describeFlag(fl, "out", "DIR", "")
+	describeFlag(fl, "dataset", "DIR", "")
+	describeFlag(fl, "steps", "N", "")
+	describeFlag(fl, "seed", "N", "")
 	return cmd
 }
 
@@ -63,6 +79,10 @@ func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	if errors.Is(err, localmodel.ErrModelNotFound) {
 		return fmt.Errorf("the demo needs the model file %s (%w).\n%s", localmodel.ModelFileName, err, howToGetTheModel(f.model, os.Getenv))
 	}
+	if err != nil {
+		return err
+	}
+	reused, err := prepareDemoData(f.data, f.keepData)
 	if err != nil {
 		return err
 	}
@@ -76,12 +96,17 @@ func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	}
 	defer lp.Close()
 	srv, proxyURL := lp.srv, lp.url
-	fmt.Fprintf(out, "stint demo: proxy on %s, local model %s in-process as its upstream\n\n", proxyURL, filepath.Base(modelPath))
+	fmt.Fprintf(out, "stint demo: proxy on %s, local model %s in-process as its upstream\n", proxyURL, filepath.Base(modelPath))
+	if reused {
+		fmt.Fprintf(out, "stint demo: reusing the cache an earlier demo left in %s (--keep-data): the first search is answered from it, so its figures are not what a first search costs\n\n", f.data)
+	} else {
+		fmt.Fprintf(out, "stint demo: a fresh cache in %s\n\n", f.data)
+	}
 
 	start := time.Now()
 	fmt.Fprintln(out, "== search (every prompt scored through the proxy)")
 	// The search forecasts at the prices the demo's proxy charges.
-	sf := searchFlags{proxy: proxyURL, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
+	sf := searchFlags{remote: proxyFlags{proxy: proxyURL}, trusted: true, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
 		price: demoPriceOverride()}
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
@@ -93,6 +118,33 @@ func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 		return err
 	}
 	return printDemoSavings(ctx, out, srv, start)
+}
+
+// demoTaskFile is the task the demo writes into its data directory; its
+// presence marks the directory as a demo's.
+const demoTaskFile = "demo-task.yaml"
+
+// prepareDemoData readies the demo's data directory: a store an earlier
+// demo left there is removed (the demo starts on a fresh cache), or kept
+// with keep, when reused reports it. A store in a directory the demo did
+// not make is refused, never removed.
+func prepareDemoData(dir string, keep bool) (reused bool, err error) {
+	db := filepath.Join(dir, "stint.db")
+	if _, err := os.Stat(db); errors.Is(err, os.ErrNotExist) {
+		return false, nil
+	} else if err != nil {
+		return false, err
+	}
+	if keep {
+		return true, nil
+	}
+	if _, err := os.Stat(filepath.Join(dir, demoTaskFile)); err != nil {
+		return false, fmt.Errorf("%s holds a store an earlier demo did not leave (no %s beside it): give another --data, or --keep-data to run the demo on it as it is", dir, demoTaskFile)
+	}
+	if err := os.Remove(db); err != nil {
+		return false, fmt.Errorf("start the demo on a fresh cache: %w", err)
+	}
+	return false, nil
 }
 
 // writeDemoTask writes the example task with the demo's step count and
@@ -118,7 +170,7 @@ func writeDemoTask(f demoFlags) (string, error) {
 	if err := os.MkdirAll(f.data, 0o700); err != nil {
 		return "", err
 	}
-	path := filepath.Join(f.data, "demo-task.yaml")
+	path := filepath.Join(f.data, demoTaskFile)
 	return path, os.WriteFile(path, []byte(text), 0o600)
 }
 

@@ -28,7 +28,9 @@ func newLocalCmd() *cobra.Command {
 		Use:   "local",
 		Short: "Serve a small local GGUF model on the completions wire format",
 		Long: `Serve a small Llama-architecture GGUF model, run on the CPU in pure Go, on
-POST /v1/completions, POST /v1/chat/completions and GET /v1/models.
+POST /v1/completions, POST /v1/chat/completions and GET /v1/models (and
+GET /healthz, as the proxy answers it). Errors have the proxy's body,
+{"error":{"message","type","param","code"}}.
 
 The model file is --model PATH, else $STINT_MODEL, else a copy downloaded
 earlier into the user cache dir. With --download, when that file is missing,
@@ -87,12 +89,16 @@ exits instead of serving.`,
 		},
 	}
 	f := cmd.Flags()
-	f.StringVar(&modelPath, "model", "", "GGUF model file (default $STINT_MODEL, else the cached download)")
+	f.StringVar(&modelPath, "model", "", "GGUF model file")
 	f.StringVar(&listen, "listen", "127.0.0.1:8788", "address to listen on")
-	f.StringVar(&name, "name", "", "model id to report (default "+localmodel.DefaultName+")")
-	f.IntVar(&workers, "workers", 0, "requests computed at once (default: number of CPUs)")
+	f.StringVar(&name, "name", "", "model id to report")
+	f.IntVar(&workers, "workers", 0, "requests computed at once")
 	f.BoolVar(&download, "download", false, "download the default model to the model file's path (--model, $STINT_MODEL, else the user cache dir) if it is missing, then serve")
 	f.BoolVar(&downloadOnly, "download-only", false, "as --download, then exit without serving")
+	describeFlag(f, "model", "FILE", "$STINT_MODEL, else the downloaded copy in the user cache dir")
+	describeFlag(f, "listen", "ADDR", "")
+	describeFlag(f, "name", "NAME", localmodel.DefaultName)
+	describeFlag(f, "workers", "N", "the number of CPUs")
 	return cmd
 }
 

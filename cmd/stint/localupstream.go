@@ -10,16 +10,16 @@ import (
 )
 
 // localUpstreamClient loads the local model and returns an HTTP client whose
-// transport runs it in-process (no network hop).
-func localUpstreamClient(_ context.Context, path string) (*http.Client, func() error, error) {
+// transport runs it in-process (no network hop), and the model.
+func localUpstreamClient(_ context.Context, path string) (*http.Client, *localmodel.Model, func() error, error) {
 	resolved, err := localmodel.Locate(path, os.Getenv)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, nil, err
 	}
 	m, err := localmodel.Load(resolved)
 	if err != nil {
-		return nil, nil, err
+		return nil, nil, nil, err
 	}
 	h := localmodel.NewHandler(m, localmodel.HandlerOptions{})
-	return &http.Client{Transport: proxy.HandlerTransport(h)}, func() error { return nil }, nil
+	return &http.Client{Transport: proxy.HandlerTransport(h)}, m, func() error { return nil }, nil
 }

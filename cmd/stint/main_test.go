@@ -19,9 +19,20 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
+
+// cacheOutcome is the cache outcome an answer's Cache-Status reports.
+func cacheOutcome(h http.Header) string { return proxy.CacheOutcome(h) }
+
+// storeDown reports whether an answer's Cache-Status says the cache store
+// was unavailable.
+func storeDown(h http.Header) bool {
+	cs, _ := proxy.ParseCacheStatus(h)
+	return cs.Detail == proxy.DetailStoreUnavailable
+}
 
 // TestMain lets a test run the stint command itself in a child process:
 // with STINT_TEST_MAIN set, the test binary is stint.
@@ -136,7 +147,7 @@ func (c *child) complete(t *testing.T, body string) (int, string, []byte) {
 	}
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	return resp.StatusCode, resp.Header.Get("Stint-Cache"), b
+	return resp.StatusCode, cacheOutcome(resp.Header), b
 }
 
 func greedyBody(i int) string {

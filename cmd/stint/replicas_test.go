@@ -189,8 +189,8 @@ func TestDeadRedisFailsClosedAndRecovers(t *testing.T) {
 	if resp.StatusCode != http.StatusServiceUnavailable || json.Unmarshal(b, &e) != nil || e.Error.Code != "spend_control_unavailable" {
 		t.Errorf("miss with Redis down: %d %s, want 503 spend_control_unavailable", resp.StatusCode, b)
 	}
-	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK || resp.Header.Get("Stint-Cache") != "hit" {
-		t.Errorf("hit with Redis down: %d %q %s, want 200 hit", resp.StatusCode, resp.Header.Get("Stint-Cache"), b)
+	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK || cacheOutcome(resp.Header) != "hit" {
+		t.Errorf("hit with Redis down: %d %q %s, want 200 hit", resp.StatusCode, cacheOutcome(resp.Header), b)
 	}
 	if got := up.Calls().Completions; got != before {
 		t.Errorf("upstream calls went from %d to %d with the budget store down: nothing may be forwarded unbudgeted", before, got)
@@ -217,7 +217,7 @@ func runCLI(t *testing.T, args ...string) (string, error) {
 
 // TestBudgetSetThroughOneReplicaHoldsOnAll lowers the team's budget with
 // `stint budget set` on one replica; the other replica, sharing the Redis,
-// refuses the team's next miss, and `stint spend --proxy` reports the
+// refuses the team's next miss, and `stint statement --proxy` reports the
 // spend both replicas made.
 func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 	rs := redistest.Start(t)
@@ -236,11 +236,11 @@ func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 		cost += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
 	}
 	t.Setenv(adminKeyEnv, replicaAdminKey)
-	out, err := runCLI(t, "spend", "--proxy", "http://"+b.addr, "--json")
+	out, err := runCLI(t, "statement", "--proxy", "http://"+b.addr, "--json")
 	if err != nil {
-		t.Fatalf("stint spend --proxy: %v\n%s", err, out)
+		t.Fatalf("stint statement --proxy: %v\n%s", err, out)
 	}
-	var rep spendReport
+	var rep statement
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatalf("spend JSON %s: %v", out, err)
 	}

@@ -10,6 +10,7 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -42,7 +43,7 @@ func runPost(t *testing.T, c *child, key, body string, headers ...string) (int, 
 	defer resp.Body.Close()
 	var b bytes.Buffer
 	_, _ = b.ReadFrom(resp.Body)
-	return resp.StatusCode, resp.Header.Get("Stint-Cache"), b.Bytes()
+	return resp.StatusCode, cacheOutcome(resp.Header), b.Bytes()
 }
 
 // TestRunSurvivesRestartAndExportImport records a run, restarts the proxy
@@ -87,8 +88,30 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 
 	proxyAt := "http://" + c.addr
 	t.Setenv(teamKeyEnv, "lab-run-key")
-	if out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt); err != nil || !strings.Contains(out, "quince-1") {
+	out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt)
+	if err != nil || !strings.Contains(out, "quince-1") {
 		t.Fatalf("runs show: %v\n%s", err, out)
+	}
+	// The detail: calls by model and by cache outcome, and the replay
+	// session this process answered (the sampled calls are bypass, the
+	// greedy one a miss).
+	for _, want := range []string{"MODEL", "quill-small", "CACHE", "bypass", "miss", "REPLAY SESSION", "after-restart"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("runs show does not show %q:\n%s", want, out)
+		}
+	}
+	out, err = runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt+"/v1", "--json")
+	var d proxy.RunDetail
+	if err != nil || json.Unmarshal([]byte(out), &d) != nil {
+		t.Fatalf("runs show --json: %v\n%s", err, out)
+	}
+	outcomes := map[string]int64{}
+	for _, g := range d.ByOutcome {
+		outcomes[g.Name] = g.Calls
+	}
+	if d.Calls != 4 || len(d.ByModel) != 1 || d.ByModel[0].Name != "quill-small" || d.ByModel[0].Calls != 4 ||
+		outcomes["bypass"] != 3 || outcomes["miss"] != 1 || len(d.Replays) != 1 || d.Replays[0] != (proxy.ReplaySession{Session: "after-restart", Calls: 4}) {
+		t.Errorf("runs show --json: %+v", d)
 	}
 	archive := filepath.Join(t.TempDir(), "quince-1.stintrun")
 	if out, err := runCLI(t, "runs", "export", "quince-1", "-o", archive, "--proxy", proxyAt); err != nil {
@@ -97,8 +120,8 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 
 	// The spend journal names the run of each call it recorded.
 	t.Setenv(adminKeyEnv, replicaAdminKey)
-	out, err := runCLI(t, "spend", "--proxy", proxyAt, "--by", "run", "--json")
-	var rep spendReport
+	out, err = runCLI(t, "statement", "--proxy", proxyAt, "--by", "run", "--json")
+	var rep statement
 	if err != nil || json.Unmarshal([]byte(out), &rep) != nil {
 		t.Fatalf("spend by run: %v\n%s", err, out)
 	}
@@ -138,4 +161,12 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 		t.Fatalf("runs import: %v\n%s", err, out)
 	}
 	replayAll(fresh, "after-import")
+	// Importing it again says what to do in the command's own flags.
+	_, err = runCLI(t, "runs", "import", archive, "--proxy", "http://"+fresh.addr)
+	if err == nil || !strings.Contains(err.Error(), "--as NEW-ID") || !strings.Contains(err.Error(), "--replace") || strings.Contains(err.Error(), "as=") || strings.Contains(err.Error(), "replace=") {
+		t.Errorf("a second import: %v, want a refusal naming --as and --replace, not the API's query names", err)
+	}
+	if out, err := runCLI(t, "runs", "import", archive, "--replace", "--json", "--proxy", "http://"+fresh.addr); err != nil || !strings.Contains(out, `"run": "quince-1"`) {
+		t.Errorf("runs import --replace --json: %v\n%s", err, out)
+	}
 }

@@ -8,6 +8,7 @@ import (
 	"net/url"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strconv"
 	"text/tabwriter"
 	"time"
@@ -18,7 +19,8 @@ import (
 )
 
 func newRunsCmd() *cobra.Command {
-	var proxyURL string
+	var remote proxyFlags
+	var asJSON bool
 	cmd := &cobra.Command{
 		Use:   "runs",
 		Short: "List, show, export, import and delete recorded runs",
@@ -27,23 +29,43 @@ journaled, and a later call with the same Stint-Run and
 "Stint-Run-Mode: replay" is answered from the journal, byte for byte, with
 no upstream call.
 
-These commands talk to a running proxy with a team's client key, read from
-STINT_KEY; a team sees only its own runs. Costs shown are estimates from
-configured prices; the provider's bill is the record.`,
+These commands talk to a running proxy (--proxy) with a team's client key
+(--key, else $STINT_KEY; a proxy run without a config needs none); a team
+sees only its own runs. Costs shown are estimates from configured prices;
+the provider's bill is the record.`,
 		Example: `  STINT_KEY=... stint runs list
   stint runs show orchard-7
   stint runs export orchard-7 -o orchard-7.stintrun
   stint runs import orchard-7.stintrun --as orchard-7-copy
   stint runs delete orchard-7`,
 	}
-	cmd.PersistentFlags().StringVar(&proxyURL, "proxy", "http://127.0.0.1:8787", "address of the running proxy")
+	pf := cmd.PersistentFlags()
+	remote.register(pf)
+	pf.BoolVar(&asJSON, "json", false, "print JSON instead of a table")
 
 	list := &cobra.Command{
-		Use: "list", Short: "List your team's runs, most recent first", Args: cobra.NoArgs,
+		Use:   "list",
+		Short: "List your team's runs, most recent first",
+		Long: `List your team's runs, most recent first: calls, upstream calls, the share
+answered without the upstream, spend, savings, first and last call; then
+what the team's runs hold against its storage quota.`,
+		Example: `  stint runs list
+  stint runs list --json`,
+		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			var l proxy.RunList
-			if err := jsonCall(cmd.Context(), teamKeyEnv, http.MethodGet, proxyURL, proxy.RunsPrefix, nil, nil, &l); err != nil {
+			c, err := remote.client()
+			if err != nil {
 				return err
+			}
+			var l proxy.RunList
+			if err := c.json(cmd.Context(), http.MethodGet, proxy.RunsPrefix, nil, nil, &l); err != nil {
+				return err
+			}
+			if asJSON {
+				if l.Runs == nil {
+					l.Runs = []proxy.RunView{}
+				}
+				return printJSON(cmd.OutOrStdout(), l)
 			}
 			if err := printRuns(cmd.OutOrStdout(), l.Runs); err != nil {
 				return err
@@ -52,23 +74,47 @@ configured prices; the provider's bill is the record.`,
 		},
 	}
 	show := &cobra.Command{
-		Use: "show ID", Short: "Show one run: calls, upstream calls, cache share, spend, saved, times", Args: cobra.ExactArgs(1),
+		Use:   "show ID",
+		Short: "Show one run in detail: calls by model and by cache outcome, spend, replays",
+		Long: `Show one run: its calls, upstream calls, spend and savings, first and last
+call; the same by model and by cache outcome; and the replay sessions the
+proxy process has answered from it since it started.`,
+		Example: `  stint runs show orchard-7
+  stint runs show orchard-7 --json`,
+		Args: cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
-			var v proxy.RunView
-			if err := jsonCall(cmd.Context(), teamKeyEnv, http.MethodGet, proxyURL, proxy.RunsPrefix+"/"+url.PathEscape(args[0]), nil, nil, &v); err != nil {
+			c, err := remote.client()
+			if err != nil {
 				return err
 			}
-			return printRuns(cmd.OutOrStdout(), []proxy.RunView{v})
+			var d proxy.RunDetail
+			if err := c.json(cmd.Context(), http.MethodGet, proxy.RunsPrefix+"/"+url.PathEscape(args[0]), nil, nil, &d); err != nil {
+				return err
+			}
+			if asJSON {
+				return printJSON(cmd.OutOrStdout(), d)
+			}
+			return printRunDetail(cmd.OutOrStdout(), d)
 		},
 	}
 	var output string
 	export := &cobra.Command{
-		Use: "export ID -o FILE", Short: "Write a run to one self-contained archive", Args: cobra.ExactArgs(1),
+		Use:   "export ID -o FILE",
+		Short: "Write a run to one self-contained archive",
+		Long: `Write a run to one file: a zstd-compressed tar with a manifest (format,
+version, figures, every member's size and SHA-256), the entries and each
+distinct answer once. The file appears only once it is complete.`,
+		Example: `  stint runs export orchard-7 -o orchard-7.stintrun`,
+		Args:    cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			if output == "" {
 				return errors.New("-o FILE is required")
 			}
-			resp, err := proxyRequest(cmd.Context(), teamKeyEnv, http.MethodGet, proxyURL, proxy.RunsPrefix+"/"+url.PathEscape(args[0])+"/archive", nil, nil, "")
+			c, err := remote.client()
+			if err != nil {
+				return err
+			}
+			resp, err := c.do(cmd.Context(), http.MethodGet, proxy.RunsPrefix+"/"+url.PathEscape(args[0])+"/archive", nil, nil, "")
 			if err != nil {
 				return err
 			}
@@ -95,16 +141,28 @@ configured prices; the provider's bill is the record.`,
 		},
 	}
 	export.Flags().StringVarP(&output, "output", "o", "", "archive file to write (required)")
+	describeFlag(export.Flags(), "output", "FILE", "")
 	var as string
 	var replace bool
 	imp := &cobra.Command{
-		Use: "import FILE", Short: "Load a run archive into your team's runs", Args: cobra.ExactArgs(1),
+		Use:   "import FILE",
+		Short: "Load a run archive into your team's runs",
+		Long: `Load an archive written by "stint runs export" into your team's runs. A
+corrupt or cut archive is refused whole; nothing is half-imported.`,
+		Example: `  stint runs import orchard-7.stintrun
+  stint runs import orchard-7.stintrun --as orchard-7-copy
+  stint runs import orchard-7.stintrun --replace`,
+		Args: cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			f, err := os.Open(args[0])
 			if err != nil {
 				return err
 			}
 			defer f.Close()
+			c, err := remote.client()
+			if err != nil {
+				return err
+			}
 			q := url.Values{}
 			if as != "" {
 				q.Set("as", as)
@@ -112,26 +170,41 @@ configured prices; the provider's bill is the record.`,
 			if replace {
 				q.Set("replace", "true")
 			}
-			resp, err := proxyRequest(cmd.Context(), teamKeyEnv, http.MethodPost, proxyURL, proxy.RunsPrefix+"/import", q, f, "application/octet-stream")
+			resp, err := c.do(cmd.Context(), http.MethodPost, proxy.RunsPrefix+"/import", q, f, "application/octet-stream")
 			if err != nil {
-				return err
+				return importError(err, as)
 			}
 			defer resp.Body.Close()
 			var v proxy.RunView
 			if err := decodeJSON(resp.Body, &v); err != nil {
 				return err
 			}
+			if asJSON {
+				return printJSON(cmd.OutOrStdout(), v)
+			}
 			return printRuns(cmd.OutOrStdout(), []proxy.RunView{v})
 		},
 	}
 	imp.Flags().StringVar(&as, "as", "", "store the run under this id instead of the archive's")
 	imp.Flags().BoolVar(&replace, "replace", false, "replace a run your team already has under that id")
+	describeFlag(imp.Flags(), "as", "ID", "")
 	del := &cobra.Command{
-		Use: "delete ID", Short: "Delete a run and its recorded answers", Args: cobra.ExactArgs(1),
+		Use:     "delete ID",
+		Short:   "Delete a run and its recorded answers",
+		Long:    `Delete a run and its recorded answers, freeing their space in the team's quota.`,
+		Example: `  stint runs delete orchard-7`,
+		Args:    cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
-			var out map[string]string
-			if err := jsonCall(cmd.Context(), teamKeyEnv, http.MethodDelete, proxyURL, proxy.RunsPrefix+"/"+url.PathEscape(args[0]), nil, nil, &out); err != nil {
+			c, err := remote.client()
+			if err != nil {
 				return err
+			}
+			var out map[string]string
+			if err := c.json(cmd.Context(), http.MethodDelete, proxy.RunsPrefix+"/"+url.PathEscape(args[0]), nil, nil, &out); err != nil {
+				return err
+			}
+			if asJSON {
+				return printJSON(cmd.OutOrStdout(), map[string]string{"deleted": args[0]})
 			}
 			fmt.Fprintf(cmd.OutOrStdout(), "deleted run %s\n", args[0])
 			return nil
@@ -139,6 +212,29 @@ configured prices; the provider's bill is the record.`,
 	}
 	cmd.AddCommand(list, show, export, imp, del)
 	return cmd
+}
+
+// quotedRun finds `run "ID"` in a proxy's message.
+var quotedRun = regexp.MustCompile(`run "[^"]*"`)
+
+// importError says an import's refusal in the command's terms: its flags,
+// not the API's query parameters (as=, replace=true).
+func importError(err error, as string) error {
+	var pe *proxyError
+	if !errors.As(err, &pe) {
+		return err
+	}
+	switch {
+	case pe.Code == "run_exists":
+		id := "under this archive's id"
+		if m := quotedRun.FindStringSubmatch(pe.Message); m != nil {
+			id = m[0]
+		}
+		return fmt.Errorf("your team already has %s: import it under another id with --as NEW-ID, or replace it with --replace", id)
+	case pe.Code == "invalid_value" && as != "":
+		return fmt.Errorf("--as %q is not a run id: 1-128 of A-Z a-z 0-9 . _ -", as)
+	}
+	return err
 }
 
 func printRuns(out io.Writer, vs []proxy.RunView) error {
@@ -152,6 +248,45 @@ func printRuns(out io.Writer, vs []proxy.RunView) error {
 		fmt.Fprintf(w, "%s\t%d\t%d\t%s%%\t%s\t%s\t%s\t%s\t\n", v.Run, v.Calls, v.UpstreamCalls,
 			strconv.FormatFloat(100*v.CacheShare, 'f', 1, 64), v.SpentUSD, v.SavedUSD,
 			v.First.Format(time.RFC3339), v.Last.Format(time.RFC3339))
+	}
+	return w.Flush()
+}
+
+// printRunDetail prints one run: its summary, its calls by model and by
+// cache outcome, and its replay sessions.
+func printRunDetail(out io.Writer, d proxy.RunDetail) error {
+	v := d.RunView
+	fmt.Fprintf(out, "run %s: %d calls, %d upstream, %s%% without the upstream, spent %s USD, saved %s USD\n",
+		v.Run, v.Calls, v.UpstreamCalls, strconv.FormatFloat(100*v.CacheShare, 'f', 1, 64), v.SpentUSD, v.SavedUSD)
+	fmt.Fprintf(out, "first %s, last %s; %d distinct requests, %d distinct answers, %d bytes\n",
+		v.First.Format(time.RFC3339), v.Last.Format(time.RFC3339), v.Keys, v.Bodies, v.Bytes)
+	for _, g := range []struct {
+		title  string
+		groups []proxy.RunGroup
+	}{{"MODEL", d.ByModel}, {"CACHE", d.ByOutcome}} {
+		fmt.Fprintln(out)
+		w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
+		fmt.Fprintf(w, "%s\tCALLS\tUPSTREAM\tSPENT USD\tSAVED USD\t\n", g.title)
+		for _, r := range g.groups {
+			fmt.Fprintf(w, "%s\t%d\t%d\t%s\t%s\t\n", r.Name, r.Calls, r.UpstreamCalls, r.SpentUSD, r.SavedUSD)
+		}
+		if err := w.Flush(); err != nil {
+			return err
+		}
+	}
+	fmt.Fprintln(out)
+	if len(d.Replays) == 0 {
+		_, err := fmt.Fprintln(out, "no replays of it answered by this proxy process")
+		return err
+	}
+	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(w, "REPLAY SESSION\tCALLS\t")
+	for _, r := range d.Replays {
+		name := r.Session
+		if name == "" {
+			name = "(none named)"
+		}
+		fmt.Fprintf(w, "%s\t%d\t\n", name, r.Calls)
 	}
 	return w.Flush()
 }

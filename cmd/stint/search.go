@@ -23,8 +23,7 @@ import (
 
 // searchFlags are the settings of `stint search run`.
 type searchFlags struct {
-	proxy  string
-	key    string
+	remote proxyFlags
 	out    string
 	model  string
 	run    string
@@ -42,12 +41,30 @@ type searchFlags struct {
 	// seed and steps, when set, replace the task file's.
 	seed  *int64
 	steps int
+	// json prints results.json instead of the results table; trusted
+	// skips the check that --proxy reaches a proxy (the demo's own).
+	json    bool
+	trusted bool
 }
 
 func newSearchCmd() *cobra.Command {
 	cmd := &cobra.Command{
 		Use:   "search",
 		Short: "Search for a classification prompt with RL, through the proxy",
+		Long: `Search for a classification prompt: an RL search (soft Q-learning over
+prompt tokens, on the local model as its frozen backbone) whose every
+scoring call goes through the proxy, so repeats are cached, spend is
+budgeted and the whole search is recorded for replay. "search run" runs one
+in the foreground, "search serve" is the sidecar that runs submitted ones,
+"search headroom" surveys a task first and "search compare" runs the search
+against its baselines over tasks and seeds.
+
+Every one takes --proxy (the proxy's base URL, with or without /v1;
+http://127.0.0.1:8787 unless given) and --key (else $STINT_KEY; a proxy run
+without a config needs none).`,
+		Example: `  stint search example > task.yaml
+  stint search run task.yaml --out ./task-out
+  stint search compare --local`,
 	}
 	var f searchFlags
 	run := &cobra.Command{
@@ -65,28 +82,36 @@ upstream call and writes the same results.json.
 
 Outputs in --out: results.json, history.csv, report.md and the learning
 curve as learning-curve.png and .svg.`,
-		Example: `  stint search run orchard.yaml --proxy http://127.0.0.1:8787/v1 --out ./orchard-out
-  STINT_KEY=... stint search run task.yaml --run orchard-7 --replay`,
+		Example: `  stint search run orchard.yaml --out ./orchard-out
+  STINT_KEY=... stint search run task.yaml --proxy http://10.0.0.5:8787 --run orchard-7 --replay
+  stint search run task.yaml --seed 3 --steps 60 --json > results.json`,
 		Args: cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runSearch(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), args[0], f)
 		},
 	}
 	fl := run.Flags()
-	fl.StringVar(&f.proxy, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
-	fl.StringVar(&f.key, "key", "", "the team's client key (default: $STINT_KEY)")
+	f.remote.register(fl)
 	fl.StringVar(&f.out, "out", "./search-out", "directory for results.json, history.csv and report.md")
-	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
-	fl.StringVar(&f.run, "run", "", "run id the calls are recorded under (default: TASKNAME-sSEED)")
+	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone")
+	fl.StringVar(&f.run, "run", "", "run id the calls are recorded under")
 	fl.BoolVar(&f.replay, "replay", false, "answer every call from the run's journal; no upstream calls")
 	priceFlags(fl, &f.price)
 	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over the task's spend_cap_usd, or the task has a cap and no price")
-	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps (default: every tenth of the steps)")
+	fl.IntVar(&f.checkpointEvery, "checkpoint-every", 0, "write OUT/checkpoint.json every N steps")
 	fl.IntVar(&f.stopAfter, "stop-after", 0, "stop after step N with a checkpoint (resume later with --resume)")
 	fl.BoolVar(&f.resume, "resume", false, "continue from OUT/checkpoint.json exactly where it stopped")
 	var seed int64
-	fl.Int64Var(&seed, "seed", 0, "the search's seed (default: the task's seed)")
-	fl.IntVar(&f.steps, "steps", 0, "search steps (default: the task's steps)")
+	fl.Int64Var(&seed, "seed", 0, "the search's seed")
+	fl.IntVar(&f.steps, "steps", 0, "search steps")
+	fl.BoolVar(&f.json, "json", false, "print results.json instead of the results table (the rest goes to stderr)")
+	describeFlag(fl, "out", "DIR", "")
+	describeFlag(fl, "model", "FILE", "$STINT_MODEL, else the downloaded copy")
+	describeFlag(fl, "run", "ID", "TASKNAME-sSEED")
+	describeFlag(fl, "checkpoint-every", "N", "every tenth of the steps")
+	describeFlag(fl, "stop-after", "STEP", "")
+	describeFlag(fl, "seed", "N", "the task's seed")
+	describeFlag(fl, "steps", "N", "the task's steps")
 	run.PreRun = func(cmd *cobra.Command, _ []string) {
 		if cmd.Flags().Changed("seed") {
 			f.seed = &seed
@@ -95,7 +120,12 @@ curve as learning-curve.png and .svg.`,
 	example := &cobra.Command{
 		Use:   "example",
 		Short: "Print a complete, commented task file",
-		Args:  cobra.NoArgs,
+		Long: `Print a complete task file with every setting commented: the model and
+endpoint, the template and labels, the data files, the prompt's length and
+allowed tokens, the learner, the reward, the choice, the baselines, prices
+and the spend cap. It is the demo's task.`,
+		Example: `  stint search example > task.yaml`,
+		Args:    cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
 			_, err := io.WriteString(cmd.OutOrStdout(), task.ExampleFile)
 			return err
@@ -108,8 +138,10 @@ curve as learning-curve.png and .svg.`,
 // priceFlags adds --input-price and --output-price, which override the
 // task's prices section; a flag not given keeps the task's price.
 func priceFlags(fl *pflag.FlagSet, o *search.PriceOverride) {
-	fl.Var(optionalFloat{&o.InputPerMillion}, "input-price", "USD per million input tokens, for the cost forecast (default: the task's prices.input_per_million)")
-	fl.Var(optionalFloat{&o.OutputPerMillion}, "output-price", "USD per million output tokens, for the cost forecast (default: the task's prices.output_per_million)")
+	fl.Var(optionalFloat{&o.InputPerMillion}, "input-price", "USD per million input tokens, for the cost forecast")
+	fl.Var(optionalFloat{&o.OutputPerMillion}, "output-price", "USD per million output tokens, for the cost forecast")
+	describeFlag(fl, "input-price", "USD", "the task's prices.input_per_million")
+	describeFlag(fl, "output-price", "USD", "the task's prices.output_per_million")
 }
 
 // optionalFloat is a float flag that stays nil until it is given.
@@ -142,7 +174,8 @@ func (optionalFloat) Type() string { return "usd" }
 const defaultSearchListen = "127.0.0.1:8789"
 
 func newSearchServeCmd() *cobra.Command {
-	var listen, proxyURL, data, model, key string
+	var listen, data, model string
+	var remote proxyFlags
 	var every int
 	var price search.PriceOverride
 	cmd := &cobra.Command{
@@ -159,20 +192,31 @@ Jobs and their outputs are kept under --data; a job that was running when
 the sidecar stopped resumes from its last checkpoint when it starts again.
 The team key is --key or $STINT_KEY. --input-price and --output-price
 override every task's prices for its forecast, as for "stint search run"; a
-job whose task has a spend cap and no price is refused unless over_cap.`,
+job whose task has a spend cap and no price is refused unless over_cap.
+Errors have the proxy's body, {"error":{"message","type","param","code"}}.`,
+		Example: `  stint search serve
+  STINT_KEY=... stint search serve --listen 0.0.0.0:8789 --proxy http://stint:8787 --data /var/lib/stint-search
+  curl -s localhost:8789/jobs -d '{"task": "/srv/tasks/feelings.yaml"}'`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, proxyURL, data, model, key, every, price)
+			api, err := remote.apiBase()
+			if err != nil {
+				return err
+			}
+			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, api, data, model, remote.keyOf(os.Getenv), every, price)
 		},
 	}
 	fl := cmd.Flags()
 	fl.StringVar(&listen, "listen", defaultSearchListen, "address of the job API")
-	fl.StringVar(&proxyURL, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
+	remote.register(fl)
 	fl.StringVar(&data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
-	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone (default: $STINT_MODEL)")
-	fl.StringVar(&key, "key", "", "the team's client key (default: $STINT_KEY)")
-	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps (default: every tenth of the steps)")
+	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone")
+	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps")
 	priceFlags(fl, &price)
+	describeFlag(fl, "listen", "ADDR", "")
+	describeFlag(fl, "data", "DIR", "")
+	describeFlag(fl, "model", "FILE", "$STINT_MODEL, else the downloaded copy")
+	describeFlag(fl, "checkpoint-every", "N", "every tenth of the steps")
 	return cmd
 }
 
@@ -184,9 +228,6 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	m, backbone, err := loadBackbone(modelPath)
 	if err != nil {
 		return err
-	}
-	if key == "" {
-		key = os.Getenv(teamKeyEnv)
 	}
 	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price, Backbone: backbone})
 	if err != nil {
@@ -223,6 +264,19 @@ func loadBackbone(path string) (*localmodel.Model, search.Backbone, error) {
 }
 
 func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f searchFlags) error {
+	api, err := f.remote.apiBase()
+	if err != nil {
+		return err
+	}
+	if !f.trusted {
+		c, err := f.remote.client()
+		if err != nil {
+			return err
+		}
+		if err := c.check(ctx); err != nil {
+			return err
+		}
+	}
 	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
@@ -231,13 +285,13 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if err != nil {
 		return err
 	}
-	key := f.key
-	if key == "" {
-		key = os.Getenv(teamKeyEnv)
+	results := out
+	if f.json {
+		out = progress // the JSON alone goes to stdout
 	}
 	start := time.Now()
 	oc, err := search.RunJob(ctx, m, search.Job{
-		TaskPath: taskPath, Proxy: f.proxy, Key: key, Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
+		TaskPath: taskPath, Proxy: api, Key: f.remote.keyOf(os.Getenv), Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
 		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter, Backbone: backbone,
 		Seed: f.seed, Steps: f.steps,
 	}, out, func(p search.Progress) { printProgress(progress, p, start) })
@@ -248,6 +302,9 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if oc.Stopped {
 		fmt.Fprintf(out, "stopped early after step %d; resume with --resume from %s\n", len(oc.Results.History), filepath.Join(f.out, search.CheckpointFile))
 		return nil
+	}
+	if f.json {
+		return search.WriteResults(results, oc.Results)
 	}
 	fmt.Fprint(out, search.Table(oc.Results))
 	s := oc.Results.Spending

@@ -27,21 +27,26 @@ var suiteGlob = filepath.Join("testdata", "search", "*.yaml")
 
 // toolFlags are what the headroom and compare commands share.
 type toolFlags struct {
-	proxy, key, model, out, data string
-	local, overCap               bool
-	price                        search.PriceOverride
+	remote                 proxyFlags
+	model, out, data       string
+	local, overCap, asJSON bool
+	price                  search.PriceOverride
+	api, key               string // the proxy's /v1 base URL and the key to send, set by setup
 }
 
 func (f *toolFlags) register(cmd *cobra.Command, out string) {
 	fl := cmd.Flags()
-	fl.StringVar(&f.proxy, "proxy", "http://127.0.0.1:8787/v1", "the proxy's base URL, version path included")
-	fl.StringVar(&f.key, "key", "", "the team's client key (default: $STINT_KEY)")
-	fl.StringVar(&f.model, "model", "", "GGUF model of the local backbone (default: $STINT_MODEL)")
+	f.remote.register(fl)
+	fl.StringVar(&f.model, "model", "", "GGUF model of the local backbone")
 	fl.StringVar(&f.out, "out", out, "output directory")
 	fl.BoolVar(&f.local, "local", false, "start the local model and a proxy on the embedded store in-process (at the demo's invented prices) instead of using --proxy")
-	fl.StringVar(&f.data, "data", "", "the --local proxy's data directory (default: OUT/proxy)")
+	fl.StringVar(&f.data, "data", "", "the --local proxy's data directory")
 	fl.BoolVar(&f.overCap, "over-cap", false, "start even when the forecast is over a task's spend_cap_usd, or a task has a cap and no price")
+	fl.BoolVar(&f.asJSON, "json", false, "print the JSON the command writes to OUT instead of its tables (the rest goes to stderr)")
 	priceFlags(fl, &f.price)
+	describeFlag(fl, "model", "FILE", "$STINT_MODEL, else the downloaded copy")
+	describeFlag(fl, "out", "DIR", "")
+	describeFlag(fl, "data", "DIR", "OUT/proxy")
 }
 
 // setup loads the model and, with --local, starts the local proxy; stop
@@ -54,9 +59,7 @@ func (f *toolFlags) setup(ctx context.Context) (m *localmodel.Model, backbone se
 	if m, backbone, err = loadBackbone(modelPath); err != nil {
 		return nil, backbone, nil, err
 	}
-	if f.key == "" {
-		f.key = os.Getenv(teamKeyEnv)
-	}
+	f.key = f.remote.keyOf(os.Getenv)
 	stop = func() {}
 	if f.local {
 		data := f.data
@@ -67,11 +70,22 @@ func (f *toolFlags) setup(ctx context.Context) (m *localmodel.Model, backbone se
 		if err != nil {
 			return nil, backbone, nil, err
 		}
-		f.proxy = lp.url
+		f.api = lp.url
 		if f.price == (search.PriceOverride{}) {
 			f.price = demoPriceOverride()
 		}
 		stop = func() { _ = lp.Close() }
+		return m, backbone, stop, nil
+	}
+	if f.api, err = f.remote.apiBase(); err != nil {
+		return nil, backbone, nil, err
+	}
+	c, err := f.remote.client()
+	if err != nil {
+		return nil, backbone, nil, err
+	}
+	if err := c.check(ctx); err != nil {
+		return nil, backbone, nil, err
 	}
 	return m, backbone, stop, nil
 }
@@ -92,7 +106,7 @@ with the same seed, so a later search of the task finds them in the cache.
 The task's spend cap applies to the survey's forecast. Writes
 OUT/headroom.json.`,
 		Example: `  stint search headroom testdata/search/feelings.yaml --local
-  stint search headroom task.yaml --proxy http://127.0.0.1:8787/v1 --prompts 500`,
+  stint search headroom task.yaml --proxy http://10.0.0.5:8787 --prompts 500 --json`,
 		Args: cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runHeadroom(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), args[0], prompts, seed, cmd.Flags().Changed("seed"), f)
@@ -100,7 +114,9 @@ OUT/headroom.json.`,
 	}
 	f.register(cmd, "./stint-headroom")
 	cmd.Flags().IntVar(&prompts, "prompts", 256, "random prompts to judge")
-	cmd.Flags().Int64Var(&seed, "seed", 0, "seed of the draws (default: the task's seed)")
+	cmd.Flags().Int64Var(&seed, "seed", 0, "seed of the draws")
+	describeFlag(cmd.Flags(), "prompts", "N", "")
+	describeFlag(cmd.Flags(), "seed", "N", "the task's seed")
 	return cmd
 }
 
@@ -113,6 +129,10 @@ func runHeadroom(ctx context.Context, out, progress io.Writer, path string, prom
 		return err
 	}
 	defer stop()
+	results := out
+	if f.asJSON {
+		out = progress // the JSON alone goes to stdout
+	}
 	t, err := search.Job{TaskPath: path}.LoadTask(m)
 	if err != nil {
 		return err
@@ -136,7 +156,7 @@ func runHeadroom(ctx context.Context, out, progress io.Writer, path string, prom
 	if note != "" {
 		fmt.Fprintln(out, note)
 	}
-	sc, err := scorer.New(scorer.Options{BaseURL: f.proxy, Key: f.key, Run: fmt.Sprintf("%s-headroom-s%d", t.Name, seed), Model: t.Model,
+	sc, err := scorer.New(scorer.Options{BaseURL: f.api, Key: f.key, Run: fmt.Sprintf("%s-headroom-s%d", t.Name, seed), Model: t.Model,
 		Endpoint: scorer.Endpoint(t.Endpoint), TopLogprobs: t.TopLogprobs, Concurrency: t.Concurrency})
 	if err != nil {
 		return err
@@ -151,12 +171,18 @@ func runHeadroom(ctx context.Context, out, progress io.Writer, path string, prom
 	if err != nil {
 		return err
 	}
-	fmt.Fprint(out, headroomTable(rep))
-	if err := os.MkdirAll(f.out, 0o755); err != nil {
-		return err
-	}
 	b, err := json.MarshalIndent(rep, "", "  ")
 	if err != nil {
+		return err
+	}
+	if f.asJSON {
+		if _, err := results.Write(append(b, '\n')); err != nil {
+			return err
+		}
+	} else {
+		fmt.Fprint(out, headroomTable(rep))
+	}
+	if err := os.MkdirAll(f.out, 0o755); err != nil {
 		return err
 	}
 	file := filepath.Join(f.out, "headroom.json")
@@ -207,7 +233,7 @@ from the repository root). Spend is in USD when the proxy prices the calls,
 else in texts paid for; either way an estimate: the provider's bill is the
 record.`,
 		Example: `  stint search compare --local
-  stint search compare testdata/search/feelings.yaml --seeds 1,2,3 --proxy http://127.0.0.1:8787/v1`,
+  stint search compare testdata/search/feelings.yaml --seeds 1,2,3 --proxy http://10.0.0.5:8787`,
 		RunE: func(cmd *cobra.Command, args []string) error {
 			return runCompare(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), args, seeds, surveyPrompts, f)
 		},
@@ -215,6 +241,8 @@ record.`,
 	f.register(cmd, "./stint-compare")
 	cmd.Flags().StringVar(&seeds, "seeds", "1,2,3,4,5", "comma-separated seeds")
 	cmd.Flags().IntVar(&surveyPrompts, "headroom", 256, "random prompts in each task's headroom survey (0: none)")
+	describeFlag(cmd.Flags(), "seeds", "LIST", "")
+	describeFlag(cmd.Flags(), "headroom", "N", "")
 	return cmd
 }
 
@@ -234,8 +262,12 @@ func runCompare(ctx context.Context, out, progress io.Writer, tasks []string, se
 		return err
 	}
 	defer stop()
+	results := out
+	if f.asJSON {
+		out = progress // the JSON alone goes to stdout
+	}
 	pl := newProgressLine(progress)
-	res, err := compare.Run(ctx, m, compare.Options{Tasks: tasks, Seeds: seeds, Out: f.out, Proxy: f.proxy, Key: f.key, Price: f.price, OverCap: f.overCap,
+	res, err := compare.Run(ctx, m, compare.Options{Tasks: tasks, Seeds: seeds, Out: f.out, Proxy: f.api, Key: f.key, Price: f.price, OverCap: f.overCap,
 		Survey: surveyPrompts, Backbone: backbone, Log: lineBreaker{pl, out},
 		Progress: func(p compare.Progress) {
 			sp := p.Search
@@ -249,6 +281,9 @@ func runCompare(ctx context.Context, out, progress io.Writer, tasks []string, se
 	pl.end()
 	if err != nil {
 		return fmt.Errorf("%w (run the same command again to resume)", err)
+	}
+	if f.asJSON {
+		return printJSON(results, res)
 	}
 	priced := len(res.Cells) > 0 && res.Cells[0].Priced
 	fmt.Fprint(out, "\n"+compare.Report(res.Summary, priced))

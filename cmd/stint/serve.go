@@ -34,6 +34,7 @@ import (
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker/redisstate"
+	"github.com/stintlab/stint/proxy/localmodel"
 )
 
 // serveFlags are the command-line settings of `stint serve`.
@@ -70,13 +71,18 @@ that is allowed only on a loopback address.`,
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.listen, "listen", "", "address to listen on (default 127.0.0.1:8787)")
+	fl.StringVar(&f.listen, "listen", "", "address to listen on")
 	fl.StringVar(&f.upstream, "upstream", "", "upstream base URL including its version path (https://host/v1), or local:MODEL.gguf to run the local model in-process")
-	fl.StringVar(&f.data, "data", "", "data directory for the embedded store (default ./stint-data)")
-	fl.StringVar(&f.config, "config", "", "YAML config file (see `stint config example`)")
-	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text (default text)")
+	fl.StringVar(&f.data, "data", "", "data directory for the embedded store")
+	fl.StringVar(&f.config, "config", "", "YAML config file (see \"stint config example\")")
+	fl.StringVar(&f.logFormat, "log-format", "", "request log format: json or text")
 	fl.BoolVar(&f.logPrompts, "log-prompts", false, "include prompt text in request logs (debugging only)")
 	fl.BoolVar(&f.checkConfig, "check-config", false, "validate the configuration, print a one-line summary and exit, opening nothing (no store, Redis, model or listener)")
+	describeFlag(fl, "listen", "ADDR", "the config's listen, else "+DefaultConfig().Listen)
+	describeFlag(fl, "upstream", "URL", "")
+	describeFlag(fl, "data", "DIR", "the config's data, else "+DefaultConfig().Data)
+	describeFlag(fl, "config", "FILE", "")
+	describeFlag(fl, "log-format", "FORMAT", "the config's log.format, else text")
 	return cmd
 }
 
@@ -481,17 +487,26 @@ func buildUpstreams(ctx context.Context, cfgs []UpstreamConfig) ([]proxy.Upstrea
 	var closers []func() error
 	for i, uc := range cfgs {
 		u := proxy.Upstream{Name: uc.Name, BaseURL: uc.URL, Timeout: time.Duration(uc.Timeout), Models: uc.Models,
-			Breaker: uc.breakerSettings(), Retry: uc.retryPolicy(), Fallback: uc.Fallback, MaxConcurrent: uc.MaxConcurrent}
+			Breaker: uc.breakerSettings(), Retry: uc.retryPolicy(), Fallback: uc.Fallback, MaxConcurrent: uc.MaxConcurrent,
+			MaxLogprobs: uc.MaxLogprobs}
 		if u.Name == "" {
 			u.Name = fmt.Sprintf("upstream-%d", i)
 		}
 		if path, ok := strings.CutPrefix(uc.URL, "local:"); ok {
-			client, closeFn, err := localUpstreamClient(ctx, path)
+			client, m, closeFn, err := localUpstreamClient(ctx, path)
 			if err != nil {
 				return nil, closers, fmt.Errorf("upstream %s: %w", u.Name, err)
 			}
 			u.BaseURL = "http://local.stint.invalid/v1"
 			u.Client = client
+			// The local model answers any name as itself: route it only
+			// the name it serves, so another is refused, not answered by it.
+			if len(u.Models) == 0 {
+				u.Models = []string{localmodel.DefaultName}
+			}
+			if u.MaxLogprobs == 0 {
+				u.MaxLogprobs = m.VocabSize()
+			}
 			closers = append(closers, closeFn)
 		} else if uc.KeyEnv != "" {
 			u.Key = os.Getenv(uc.KeyEnv)

@@ -136,12 +136,12 @@ func TestClusterReplicasShareCacheAndRuns(t *testing.T) {
 	for i := range 5 { // several keys, on different nodes
 		body := greedyBody(300 + i)
 		first := call(a, 10*time.Second, body)
-		if first.err != nil || first.status != http.StatusOK || first.header.Get("Stint-Cache") != "miss" {
-			t.Fatalf("call %d on a: %v %d %q %s", i, first.err, first.status, first.header.Get("Stint-Cache"), first.body)
+		if first.err != nil || first.status != http.StatusOK || cacheOutcome(first.header) != "miss" {
+			t.Fatalf("call %d on a: %v %d %q %s", i, first.err, first.status, cacheOutcome(first.header), first.body)
 		}
 		got := call(b, 10*time.Second, body)
-		if got.err != nil || got.status != http.StatusOK || got.header.Get("Stint-Cache") != "hit" || string(got.body) != string(first.body) {
-			t.Errorf("call %d on b: %v %d %q; want a hit with a's answer", i, got.err, got.status, got.header.Get("Stint-Cache"))
+		if got.err != nil || got.status != http.StatusOK || cacheOutcome(got.header) != "hit" || string(got.body) != string(first.body) {
+			t.Errorf("call %d on b: %v %d %q; want a hit with a's answer", i, got.err, got.status, cacheOutcome(got.header))
 		}
 	}
 	if calls := up.Calls().Completions; calls != 5 {
@@ -196,7 +196,7 @@ func TestClusterFiftyMissesOneCall(t *testing.T) {
 		if g.err != nil || g.status != http.StatusOK || string(g.body) != string(got[0].body) {
 			t.Fatalf("client %d: %v %d %s; want 200 with the one answer", i, g.err, g.status, g.body)
 		}
-		count[g.header.Get("Stint-Cache")]++
+		count[cacheOutcome(g.header)]++
 	}
 	if count["miss"] != 1 || count["shared"] != clients-1 {
 		t.Errorf("outcomes %v, want 1 miss and %d shared", count, clients-1)
@@ -232,8 +232,8 @@ func TestClusterLeaseHolderKilled(t *testing.T) {
 	}
 	up.Release()
 	g := <-gotB
-	if g.err != nil || g.status != http.StatusOK || g.header.Get("Stint-Cache") != "miss" {
-		t.Fatalf("b after a died: %v %d %q %s; want 200 from b's own call", g.err, g.status, g.header.Get("Stint-Cache"), g.body)
+	if g.err != nil || g.status != http.StatusOK || cacheOutcome(g.header) != "miss" {
+		t.Fatalf("b after a died: %v %d %q %s; want 200 from b's own call", g.err, g.status, cacheOutcome(g.header), g.body)
 	}
 	if calls := up.Calls().Completions; calls != 2 {
 		t.Errorf("upstream calls = %d, want 2 (a's lost one, b's)", calls)
@@ -243,7 +243,7 @@ func TestClusterLeaseHolderKilled(t *testing.T) {
 // TestClusterDownDegradesAndRecovers stops every node of the cluster while
 // two replicas are under load: every request is still answered from
 // upstream before its deadline, those after the stop say
-// Stint-Cache-Store: unavailable; after the cluster is back the same
+// Cache-Status detail=store-unavailable; after the cluster is back the same
 // processes cache and hit again.
 func TestClusterDownDegradesAndRecovers(t *testing.T) {
 	cl := redisstoretest.StartCluster(t, 3)
@@ -298,7 +298,7 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 		if g.err != nil || g.status != http.StatusOK {
 			t.Fatalf("request %d under load: %v %d %s; want every one answered before its deadline", i, g.err, g.status, g.body)
 		}
-		if g.header.Get("Stint-Cache-Store") == "unavailable" {
+		if storeDown(g.header) {
 			degraded++
 		}
 	}
@@ -316,21 +316,21 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 		probe := greedyBody(5001 + i) // a body of each replica's own, so no hot tier holds the checked one
 		for {
 			g := call(r, deadline, probe)
-			if g.err == nil && g.status == http.StatusOK && g.header.Get("Stint-Cache-Store") == "" {
+			if g.err == nil && g.status == http.StatusOK && !storeDown(g.header) {
 				break
 			}
 			if time.Now().After(wait) {
-				t.Fatalf("replica %d after the cluster came back: %v %d %q", i, g.err, g.status, g.header.Get("Stint-Cache-Store"))
+				t.Fatalf("replica %d after the cluster came back: %v %d %q", i, g.err, g.status, g.header.Get("Cache-Status"))
 			}
 			time.Sleep(50 * time.Millisecond) // polling interval
 		}
 	}
 	body := greedyBody(5000)
-	if g := call(rs[0], deadline, body); g.err != nil || g.status != http.StatusOK || g.header.Get("Stint-Cache-Store") != "" {
-		t.Fatalf("store through replica 0 after recovery: %v %d %q", g.err, g.status, g.header.Get("Stint-Cache-Store"))
+	if g := call(rs[0], deadline, body); g.err != nil || g.status != http.StatusOK || storeDown(g.header) {
+		t.Fatalf("store through replica 0 after recovery: %v %d %q", g.err, g.status, g.header.Get("Cache-Status"))
 	}
-	if g := call(rs[1], deadline, body); g.err != nil || g.header.Get("Stint-Cache") != "hit" {
-		t.Errorf("repeat on the other replica after recovery: %v %q, want a hit", g.err, g.header.Get("Stint-Cache"))
+	if g := call(rs[1], deadline, body); g.err != nil || cacheOutcome(g.header) != "hit" {
+		t.Errorf("repeat on the other replica after recovery: %v %q, want a hit", g.err, cacheOutcome(g.header))
 	}
 }
 

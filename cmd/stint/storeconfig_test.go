@@ -19,7 +19,7 @@ func TestStoreConfigErrorsNameField(t *testing.T) {
 		{"negative hot_ttl", head + "    hot_ttl: -1s\n", 4, "store.redis.hot_ttl"},
 		{"tiny lease", head + "    lease: 10ms\n", 4, "store.redis.lease"},
 		{"negative lease", head + "    lease: -3s\n", 4, "store.redis.lease"},
-		{"cache not a bool", head + "    cache: sometimes\n", 4, "bool"},
+		{"cache not a bool", head + "    cache: sometimes\n", 4, "want true or false"},
 		{"brace in prefix", head + "    prefix: \"a{b}\"\n", 4, "store.redis.prefix"},
 	}
 	for _, tt := range tests {

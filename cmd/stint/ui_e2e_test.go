@@ -278,7 +278,7 @@ func (r *uiRig) post(t *testing.T, key, body string, header ...string) (int, []b
 	}
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	return resp.StatusCode, b, resp.Header.Get(proxy.HeaderCache)
+	return resp.StatusCode, b, cacheOutcome(resp.Header)
 }
 
 func quillBody(prompt string) string {
@@ -440,7 +440,7 @@ const readFigures = `Object.fromEntries(Array.from(document.querySelectorAll("[d
 // whose breaker has tripped and a real search running on the sidecar. The
 // page updates itself while the test watches (a new request, and the
 // search's curve growing while the gate holds the search between steps),
-// and the figures it finally shows match /metrics, what `stint spend`
+// and the figures it finally shows match /metrics, what `stint statement`
 // prints, the run API and the sidecar. Screenshots in light and dark go to
 // $STINT_ARTIFACTS (or a temporary directory).
 func TestOperatorPageInABrowser(t *testing.T) {
@@ -707,31 +707,31 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		}
 	})
 
-	t.Run("spend matches stint spend", func(t *testing.T) {
+	t.Run("spend matches stint statement", func(t *testing.T) {
 		t.Setenv(adminKeyEnv, uiAdminKey)
-		out, err := runCLI(t, "spend", "--proxy", r.url, "--json")
+		out, err := runCLI(t, "statement", "--proxy", r.url, "--json")
 		if err != nil {
-			t.Fatalf("stint spend: %v\n%s", err, out)
+			t.Fatalf("stint statement: %v\n%s", err, out)
 		}
-		var rep spendReport
+		var rep statement
 		if err := json.Unmarshal([]byte(out), &rep); err != nil {
 			t.Fatal(err)
 		}
 		if got := fig("saved-usd"); got.Value != rep.Total.SavedUSD || got.Text != "$"+rep.Total.SavedUSD || rep.Total.SavedUSD == "0.00" {
-			t.Errorf("saved: page %+v, stint spend %s", got, rep.Total.SavedUSD)
+			t.Errorf("saved: page %+v, stint statement %s", got, rep.Total.SavedUSD)
 		}
 		if got := fig("spent-usd"); got.Value != rep.Total.SpentUSD || rep.Total.SpentUSD == "0.00" {
-			t.Errorf("spent: page %+v, stint spend %s", got, rep.Total.SpentUSD)
+			t.Errorf("spent: page %+v, stint statement %s", got, rep.Total.SpentUSD)
 		}
 		for _, row := range rep.Rows {
 			if got := fig("team-spent-" + row.Group); got.Value != row.SpentUSD {
-				t.Errorf("team %s spent: page %+v, stint spend %s", row.Group, got, row.SpentUSD)
+				t.Errorf("team %s spent: page %+v, stint statement %s", row.Group, got, row.SpentUSD)
 			}
 			if got := fig("team-saved-" + row.Group); got.Value != row.SavedUSD {
-				t.Errorf("team %s saved: page %+v, stint spend %s", row.Group, got, row.SavedUSD)
+				t.Errorf("team %s saved: page %+v, stint statement %s", row.Group, got, row.SavedUSD)
 			}
 			if got := fig("team-requests-" + row.Group); got.Value != strconv.FormatInt(row.Requests, 10) {
-				t.Errorf("team %s requests: page %+v, stint spend %d", row.Group, got, row.Requests)
+				t.Errorf("team %s requests: page %+v, stint statement %d", row.Group, got, row.Requests)
 			}
 		}
 		if len(rep.Budgets) != 2 {
@@ -740,7 +740,7 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		for _, b := range rep.Budgets {
 			for name, want := range map[string]string{"spent": b.SpentUSD, "limit": b.LimitUSD, "left": b.LeftUSD} {
 				if got := fig("budget-" + name + "-" + b.Team); got.Value != want || got.Text != "$"+want {
-					t.Errorf("%s budget %s: page %+v, stint spend %s", b.Team, name, got, want)
+					t.Errorf("%s budget %s: page %+v, stint statement %s", b.Team, name, got, want)
 				}
 			}
 		}

@@ -7,6 +7,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"net/http"
 	"runtime"
 	"strings"
@@ -73,6 +74,7 @@ type handler struct {
 //     context), temperature, top_p, seed, stop, n, logprobs, top_logprobs,
 //     stream, stream_options.include_usage.
 //   - GET /v1/models.
+//   - GET /healthz: "ok", as the proxy answers it.
 //
 // BOS precedes every prompt; prompt_tokens in usage counts it. Generation
 // ends at EOS (or BOS, which this model uses between stories), a stop
@@ -84,7 +86,8 @@ type handler struct {
 // "Assistant:"; one leading space of the reply is dropped.
 //
 // Unknown request fields are ignored; malformed ones get 400 with the body
-// {"error":{"message","type","code"}}. Streams are server-sent events,
+// {"error":{"message","type","param","code"}}. GET /healthz answers "ok"
+// as the proxy does. Streams are server-sent events,
 // "data: {json}\n\n" each flushed, ending with "data: [DONE]\n\n". A request
 // whose context ends stops generating at the next token.
 func NewHandler(m *Model, opts HandlerOptions) http.Handler {
@@ -123,17 +126,29 @@ func (h *handler) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		method, serve = http.MethodPost, h.serveChat
 	case "/v1/models":
 		method, serve = http.MethodGet, h.serveModels
+	case "/healthz":
+		method, serve = http.MethodGet, serveHealth
 	default:
-		writeError(w, http.StatusNotFound, "invalid_request_error", "not_found", fmt.Sprintf("no route for %s", r.URL.Path))
+		writeError(w, http.StatusNotFound, "invalid_request_error", "unknown_url", fmt.Sprintf("no route for %s %s", r.Method, r.URL.Path))
 		return
 	}
-	if r.Method != method {
-		w.Header().Set("Allow", method)
+	allow := method
+	if method == http.MethodGet {
+		allow = "GET, HEAD" // a GET route answers HEAD too, as net/http's mux does
+	}
+	if r.Method != method && !(method == http.MethodGet && r.Method == http.MethodHead) {
+		w.Header().Set("Allow", allow)
 		writeError(w, http.StatusMethodNotAllowed, "invalid_request_error", "method_not_allowed",
-			fmt.Sprintf("%s %s is not allowed; use %s", r.Method, r.URL.Path, method))
+			fmt.Sprintf("%s is not allowed on %s; use %s", r.Method, r.URL.Path, strings.ReplaceAll(allow, ", ", " or ")))
 		return
 	}
 	serve(w, r)
+}
+
+// serveHealth answers GET /healthz as the proxy does: the process is up.
+func serveHealth(w http.ResponseWriter, _ *http.Request) {
+	w.Header().Set("Content-Type", "text/plain; charset=utf-8")
+	_, _ = io.WriteString(w, "ok\n")
 }
 
 func (h *handler) serveModels(w http.ResponseWriter, r *http.Request) {
@@ -150,7 +165,12 @@ func (h *handler) decode(w http.ResponseWriter, r *http.Request, v any) bool {
 				fmt.Sprintf("request body exceeds %d bytes", h.maxBody))
 			return false
 		}
-		writeError(w, http.StatusBadRequest, "invalid_request_error", "invalid_json", "cannot decode request body: "+err.Error())
+		msg, param := describeJSONError(err)
+		code := "invalid_json"
+		if param != "" {
+			code = "invalid_value"
+		}
+		writeParamError(w, http.StatusBadRequest, "invalid_request_error", code, param, msg)
 		return false
 	}
 	return true
@@ -192,25 +212,25 @@ func (h *handler) validate(maxTokens *int, defMax int, temperature, topP *float6
 	c := common{n: 1, gp: genParams{maxTokens: defMax, temperature: 1, topP: 1, logprobs: -1}}
 	if maxTokens != nil {
 		if *maxTokens < 0 {
-			return c, badRequest("max_tokens must be >= 0, got %d", *maxTokens)
+			return c, badParam("max_tokens", "max_tokens must be at least 0, got %d", *maxTokens)
 		}
 		c.gp.maxTokens = *maxTokens
 	}
 	if temperature != nil {
 		if *temperature < 0 || *temperature > 2 {
-			return c, badRequest("temperature must be in [0, 2], got %v", *temperature)
+			return c, badParam("temperature", "temperature must be between 0 and 2, got %v", *temperature)
 		}
 		c.gp.temperature = *temperature
 	}
 	if topP != nil {
 		if *topP <= 0 || *topP > 1 {
-			return c, badRequest("top_p must be in (0, 1], got %v", *topP)
+			return c, badParam("top_p", "top_p must be above 0 and at most 1, got %v", *topP)
 		}
 		c.gp.topP = *topP
 	}
 	if n != nil {
 		if *n < 1 || *n > maxChoices {
-			return c, badRequest("n must be in [1, %d], got %d", maxChoices, *n)
+			return c, badParam("n", "n must be between 1 and %d, got %d", maxChoices, *n)
 		}
 		c.n = *n
 	}
@@ -236,7 +256,7 @@ func (h *handler) withBOS(texts []string, ids [][]int) ([][]int, error) {
 	for i, p := range ids {
 		for _, id := range p {
 			if id < 0 || id >= h.m.cfg.VocabSize {
-				return nil, badRequest("prompt %d has token id %d outside [0, %d)", i, id, h.m.cfg.VocabSize)
+				return nil, badParam("prompt", "prompt %d has token id %d; ids are 0 to %d", i, id, h.m.cfg.VocabSize-1)
 			}
 		}
 		out = append(out, append([]int{bos}, p...))
@@ -251,7 +271,10 @@ func (h *handler) withBOS(texts []string, ids [][]int) ([][]int, error) {
 }
 
 func (h *handler) fail(w http.ResponseWriter, err error) {
+	var re *requestError
 	switch {
+	case errors.As(err, &re):
+		writeParamError(w, http.StatusBadRequest, "invalid_request_error", "invalid_value", re.param, re.msg)
 	case errors.Is(err, errBadRequest):
 		writeError(w, http.StatusBadRequest, "invalid_request_error", "invalid_value", err.Error())
 	case errors.Is(err, ErrContextFull):
@@ -275,7 +298,7 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 	}
 	if req.Logprobs != nil {
 		if *req.Logprobs < 0 || *req.Logprobs > h.m.cfg.VocabSize {
-			h.fail(w, badRequest("logprobs must be in [0, %d], got %d", h.m.cfg.VocabSize, *req.Logprobs))
+			h.fail(w, badParam("logprobs", "logprobs must be between 0 and %d (the vocabulary size), got %d", h.m.cfg.VocabSize, *req.Logprobs))
 			return
 		}
 		c.gp.logprobs = *req.Logprobs
@@ -472,11 +495,11 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 	c.gp.stripLead = true
 	if req.TopLogprobs != nil {
 		if !req.Logprobs {
-			h.fail(w, badRequest("top_logprobs requires logprobs: true"))
+			h.fail(w, badParam("top_logprobs", "top_logprobs requires logprobs: true"))
 			return
 		}
 		if *req.TopLogprobs < 0 || *req.TopLogprobs > h.m.cfg.VocabSize {
-			h.fail(w, badRequest("top_logprobs must be in [0, %d], got %d", h.m.cfg.VocabSize, *req.TopLogprobs))
+			h.fail(w, badParam("top_logprobs", "top_logprobs must be between 0 and %d (the vocabulary size), got %d", h.m.cfg.VocabSize, *req.TopLogprobs))
 			return
 		}
 	}
@@ -606,8 +629,20 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 	_, _ = w.Write(append(b, '\n'))
 }
 
+// writeError writes the wire format's error body
+// {"error":{"message","type","param","code"}}, param null.
 func writeError(w http.ResponseWriter, status int, typ, code, msg string) {
-	writeJSON(w, status, errorBody{Error: errorDetail{Message: msg, Type: typ, Code: code}})
+	writeParamError(w, status, typ, code, "", msg)
+}
+
+// writeParamError is writeError naming the field at fault (param; "" for
+// null).
+func writeParamError(w http.ResponseWriter, status int, typ, code, param, msg string) {
+	d := errorDetail{Message: msg, Type: typ, Code: code}
+	if param != "" {
+		d.Param = &param
+	}
+	writeJSON(w, status, errorBody{Error: d})
 }
 
 // sseWriter writes server-sent events, flushing each one. A failed write

@@ -525,3 +525,28 @@ func TestOpenAIClient(t *testing.T) {
 		t.Errorf("chat stream: text %q usage %+v", text, u)
 	}
 }
+
+// TestHealthzLikeTheProxy: stint local answers GET /healthz as the proxy
+// does (200, "ok\n", plain text), so the same probes check both.
+func TestHealthzLikeTheProxy(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	resp, err := http.Get(srv.URL + "/healthz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, _ := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusOK || string(b) != "ok\n" || resp.Header.Get("Content-Type") != "text/plain; charset=utf-8" {
+		t.Errorf("GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	}
+	resp, err = http.Post(srv.URL+"/healthz", "text/plain", nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, _ = io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "GET, HEAD" {
+		t.Errorf("POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
+	}
+	checkErrorBody(t, b, resp.Header)
+}

@@ -4,6 +4,8 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
+	"reflect"
 )
 
 // Wire structs of the completions format, local to this package so it stays
@@ -146,8 +148,72 @@ type errorDetail struct {
 // errBadRequest marks request errors (400).
 var errBadRequest = errors.New("invalid request")
 
+// requestError is a request error naming the field at fault (param, ""
+// for none); it matches errBadRequest.
+type requestError struct {
+	param, msg string
+}
+
+func (e *requestError) Error() string { return e.msg }
+
+func (e *requestError) Is(target error) bool { return target == errBadRequest }
+
 func badRequest(format string, args ...any) error {
-	return fmt.Errorf("%w: %s", errBadRequest, fmt.Sprintf(format, args...))
+	return &requestError{msg: fmt.Sprintf(format, args...)}
+}
+
+// badParam is badRequest for the field param.
+func badParam(param, format string, args ...any) error {
+	return &requestError{param: param, msg: fmt.Sprintf(format, args...)}
+}
+
+// describeJSONError says why a request body could not be decoded, in the
+// wire format's words (the field and the kind of value it wants), never
+// with Go's types; param is the field at fault, "" for the body.
+func describeJSONError(err error) (msg, param string) {
+	var se *json.SyntaxError
+	var te *json.UnmarshalTypeError
+	switch {
+	case errors.As(err, &se):
+		return fmt.Sprintf("request body is not valid JSON: %s (at byte %d)", se.Error(), se.Offset), ""
+	case errors.As(err, &te) && te.Field != "":
+		return fmt.Sprintf("%s must be %s, not %s", te.Field, kindName(te.Type.Kind()), withArticle(te.Value)), te.Field
+	case errors.As(err, &te):
+		return fmt.Sprintf("request body must be a JSON object, not %s", withArticle(te.Value)), ""
+	case errors.Is(err, io.ErrUnexpectedEOF), errors.Is(err, io.EOF):
+		return "request body is not valid JSON: it ends before the value does", ""
+	}
+	return "request body is not valid JSON", ""
+}
+
+// kindName names what a Go kind holds, in JSON's terms.
+func kindName(k reflect.Kind) string {
+	switch k {
+	case reflect.String:
+		return "a string"
+	case reflect.Bool:
+		return "true or false"
+	case reflect.Int, reflect.Int8, reflect.Int16, reflect.Int32, reflect.Int64, reflect.Uint, reflect.Uint8, reflect.Uint16, reflect.Uint32, reflect.Uint64:
+		return "a whole number"
+	case reflect.Float32, reflect.Float64:
+		return "a number"
+	case reflect.Slice, reflect.Array:
+		return "an array"
+	case reflect.Map, reflect.Struct:
+		return "an object"
+	}
+	return "another kind of value"
+}
+
+// withArticle puts "a" or "an" before a kind encoding/json reports.
+func withArticle(kind string) string {
+	switch kind {
+	case "array", "object":
+		return "an " + kind
+	case "bool":
+		return "a boolean"
+	}
+	return "a " + kind
 }
 
 // parseStop reads stop as null, a string or an array of strings.

@@ -247,7 +247,7 @@ func (v *View) serveAsset(w http.ResponseWriter, r *http.Request) {
 }
 
 // snapshotFor takes a snapshot for the window the request asks for
-// (?since=, as stint spend takes it; 7d by default).
+// (?since=, as stint statement takes it; 7d by default).
 func (v *View) snapshotFor(r *http.Request) (Snapshot, error) {
 	since := r.URL.Query().Get("since")
 	if since == "" {

@@ -53,19 +53,20 @@ func funcMap() template.FuncMap {
 	}
 }
 
-// explainOutcome says in a few words what a cache outcome means.
+// explainOutcome says in a few words what a cache outcome means, and how
+// the answers' Cache-Status header (RFC 9211) says it.
 func explainOutcome(o string) string {
 	switch o {
 	case "hit":
-		return "answered from the cache"
+		return "answered from the cache (Cache-Status: hit)"
 	case "shared":
-		return "rode on an identical call in flight"
+		return "rode on an identical call in flight (collapsed)"
 	case "partial":
-		return "a batch, part cached, the rest fetched"
+		return "a batch, part cached, the rest fetched (fwd=partial)"
 	case "miss":
-		return "fetched upstream and stored"
+		return "fetched upstream and stored (fwd=miss, or fwd=request for a no-cache refresh)"
 	case "bypass":
-		return "not cacheable (sampled, or caching off), forwarded"
+		return "not cacheable (sampled, or caching off), forwarded (fwd=bypass)"
 	}
 	return ""
 }

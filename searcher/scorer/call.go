@@ -4,11 +4,15 @@ import (
 	"net/http"
 	"strconv"
 	"strings"
+
+	"github.com/dunglas/httpsfv"
 )
 
 // Headers the proxy sets on its answers (see the stint README).
 const (
-	HeaderCache         = "Stint-Cache"          // hit | miss | shared | partial | bypass
+	// HeaderCacheStatus is RFC 9211's Cache-Status: the proxy's member,
+	// named cacheName, says how its cache handled the call.
+	HeaderCacheStatus   = "Cache-Status"
 	HeaderCachedPrompts = "Stint-Cached-Prompts" // "2/3": prompts of a batch answered from the cache
 	HeaderCost          = "Stint-Cost-Usd"       // this answer's charge, an estimate
 	HeaderRun           = "Stint-Run"            // the run id a call is journaled under
@@ -23,8 +27,19 @@ const (
 	HeaderRecordedSaved = "Stint-Recorded-Saved-Usd"
 )
 
-// cacheReplay is the Stint-Cache value of an answer from a run's journal.
-const cacheReplay = "replay"
+// cacheName identifies the proxy's member of Cache-Status.
+const cacheName = "stint"
+
+// The cache outcomes Call.Cache carries, read from the proxy's
+// Cache-Status member (RFC 9211 §2.1–§2.8).
+const (
+	cacheHit     = "hit"     // hit
+	cacheMiss    = "miss"    // fwd=miss, or fwd=request (a no-cache refresh)
+	cacheShared  = "shared"  // collapsed: answered by an identical call's upstream call
+	cachePartial = "partial" // fwd=partial: a batch partly answered from the cache
+	cacheBypass  = "bypass"  // fwd=bypass: not cacheable
+	cacheReplay  = "replay"  // hit with detail=replay: from a run's journal
+)
 
 // Usage is the wire format's token count for one call.
 type Usage struct {
@@ -39,7 +54,9 @@ type Call struct {
 	Prompts int
 	// Usage is the answer's usage (zero when it had none).
 	Usage Usage
-	// Cache is the Stint-Cache header ("" when not behind the proxy).
+	// Cache is the proxy's cache outcome, from its Cache-Status member:
+	// hit, miss, shared, partial, bypass or replay ("" when not behind the
+	// proxy).
 	Cache string
 	// CachedPrompts is how many of Prompts came from the cache: from
 	// Stint-Cached-Prompts, else Prompts for a hit and 0 otherwise; −1 when
@@ -82,10 +99,10 @@ func (c Call) RunCostUSD() float64 {
 
 // readCall fills a Call's cache and cost fields from an answer's headers.
 func readCall(h http.Header, prompts int) Call {
-	c := Call{Prompts: prompts, Cache: h.Get(HeaderCache), CachedPrompts: -1}
+	c := Call{Prompts: prompts, Cache: cacheOutcome(h), CachedPrompts: -1}
 	switch c.Cache {
 	case "":
-	case "hit":
+	case cacheHit:
 		c.CachedPrompts = prompts
 	default:
 		c.CachedPrompts = 0
@@ -104,6 +121,53 @@ func readCall(h http.Header, prompts int) Call {
 		c.RecordedSavedUSD = usdHeader(h, HeaderRecordedSaved)
 	}
 	return c
+}
+
+// cacheOutcome reads the proxy's member of h's Cache-Status (the last one
+// named cacheName: RFC 9211 §2 has the cache nearest the client add its
+// member last) as one of the outcome words; "" when there is none.
+func cacheOutcome(h http.Header) string {
+	list, err := httpsfv.UnmarshalList(h.Values(HeaderCacheStatus))
+	if err != nil {
+		return ""
+	}
+	for i := len(list) - 1; i >= 0; i-- {
+		it, ok := list[i].(httpsfv.Item)
+		if !ok {
+			continue
+		}
+		if name, _ := it.Value.(httpsfv.Token); string(name) != cacheName {
+			if s, _ := it.Value.(string); s != cacheName {
+				continue
+			}
+		}
+		flag := func(name string) bool { v, _ := it.Params.Get(name); b, _ := v.(bool); return b }
+		word := func(name string) string {
+			switch v, _ := it.Params.Get(name); x := v.(type) {
+			case httpsfv.Token:
+				return string(x)
+			case string:
+				return x
+			}
+			return ""
+		}
+		switch fwd := word("fwd"); {
+		case flag("hit") && word("detail") == cacheReplay:
+			return cacheReplay
+		case flag("hit"):
+			return cacheHit
+		case fwd == "partial":
+			return cachePartial
+		case flag("collapsed"):
+			return cacheShared
+		case fwd == "bypass":
+			return cacheBypass
+		case fwd != "":
+			return cacheMiss
+		}
+		return ""
+	}
+	return ""
 }
 
 // usdHeader reads a non-negative USD amount from header name, 0 when it is

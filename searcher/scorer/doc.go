@@ -11,7 +11,7 @@
 // choices[0].logprobs.content[0].top_logprobs. Greedy single-token calls are
 // what the proxy caches, so repeated (prompt, example) pairs cost nothing.
 //
-// Each call reports its usage and the proxy's Stint-Cache,
+// Each call reports its usage and the proxy's Cache-Status,
 // Stint-Cached-Prompts and Stint-Cost-Usd headers, so the caller can show
 // the cache share and the spend. Non-200 answers become *APIError values;
 // 402 (budget exhausted), 429 (rate limited) and 503 (unavailable) unwrap to

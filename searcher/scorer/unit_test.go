@@ -14,13 +14,19 @@ func TestReadCall(t *testing.T) {
 		want    Call
 	}{
 		{"no proxy", nil, 3, Call{Prompts: 3, CachedPrompts: -1}},
-		{"hit", map[string]string{HeaderCache: "hit", HeaderCost: "0"}, 3, Call{Prompts: 3, Cache: "hit", CachedPrompts: 3}},
-		{"miss with cost", map[string]string{HeaderCache: "miss", HeaderCost: "0.000125"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.000125}},
-		{"partial batch", map[string]string{HeaderCache: "partial", HeaderCachedPrompts: "2/3"}, 3, Call{Prompts: 3, Cache: "partial", CachedPrompts: 2}},
+		{"hit", map[string]string{HeaderCacheStatus: `stint;hit;key="ab"`, HeaderCost: "0"}, 3, Call{Prompts: 3, Cache: "hit", CachedPrompts: 3}},
+		{"miss with cost", map[string]string{HeaderCacheStatus: "stint;fwd=miss;fwd-status=200;stored", HeaderCost: "0.000125"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.000125}},
+		{"no-cache refresh", map[string]string{HeaderCacheStatus: "stint;fwd=request;fwd-status=200;stored"}, 1, Call{Prompts: 1, Cache: "miss"}},
+		{"collapsed", map[string]string{HeaderCacheStatus: "stint;fwd=miss;fwd-status=200;collapsed"}, 1, Call{Prompts: 1, Cache: "shared"}},
+		{"bypass", map[string]string{HeaderCacheStatus: "stint;fwd=bypass;fwd-status=200"}, 1, Call{Prompts: 1, Cache: "bypass"}},
+		{"partial batch", map[string]string{HeaderCacheStatus: "stint;fwd=partial;fwd-status=200;stored", HeaderCachedPrompts: "2/3"}, 3, Call{Prompts: 3, Cache: "partial", CachedPrompts: 2}},
+		{"hit behind another cache", map[string]string{HeaderCacheStatus: `stint;hit, "edge";fwd=uri-miss`}, 2, Call{Prompts: 2, Cache: "hit", CachedPrompts: 2}},
+		{"another cache only", map[string]string{HeaderCacheStatus: `edge;hit`}, 2, Call{Prompts: 2, CachedPrompts: -1}},
+		{"malformed", map[string]string{HeaderCacheStatus: `stint;hit=?2`}, 2, Call{Prompts: 2, CachedPrompts: -1}},
 		// A replay is free; what the recording paid comes separately.
-		{"replay", map[string]string{HeaderCache: "replay", HeaderCost: "0", HeaderRecordedCost: "0.0002"}, 2, Call{Prompts: 2, Cache: "replay", CachedPrompts: 0, RecordedCostUSD: 0.0002}},
-		{"recorded cost only on a replay", map[string]string{HeaderCache: "miss", HeaderCost: "0.0001", HeaderRecordedCost: "0.0002"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.0001}},
-		{"bad counts ignored", map[string]string{HeaderCache: "partial", HeaderCachedPrompts: "9/3", HeaderCost: "-1"}, 3, Call{Prompts: 3, Cache: "partial"}},
+		{"replay", map[string]string{HeaderCacheStatus: "stint;hit;detail=replay", HeaderCost: "0", HeaderRecordedCost: "0.0002"}, 2, Call{Prompts: 2, Cache: "replay", CachedPrompts: 0, RecordedCostUSD: 0.0002}},
+		{"recorded cost only on a replay", map[string]string{HeaderCacheStatus: "stint;fwd=miss;fwd-status=200", HeaderCost: "0.0001", HeaderRecordedCost: "0.0002"}, 1, Call{Prompts: 1, Cache: "miss", CostUSD: 0.0001}},
+		{"bad counts ignored", map[string]string{HeaderCacheStatus: "stint;fwd=partial;fwd-status=200", HeaderCachedPrompts: "9/3", HeaderCost: "-1"}, 3, Call{Prompts: 3, Cache: "partial"}},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {

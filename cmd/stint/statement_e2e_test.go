@@ -70,17 +70,17 @@ func post(t *testing.T, c *child, key, body string) (*http.Response, []byte) {
 	return resp, b.Bytes()
 }
 
-// spendJSON runs `stint spend --json` on data.
-func spendJSON(t *testing.T, data string) spendReport {
+// statementJSON runs `stint statement --json` on data.
+func statementJSON(t *testing.T, data string) statement {
 	t.Helper()
 	cmd := newRootCmd()
 	var out bytes.Buffer
 	cmd.SetOut(&out)
-	cmd.SetArgs([]string{"spend", "--data", data, "--json"})
+	cmd.SetArgs([]string{"statement", "--data", data, "--json"})
 	if err := cmd.Execute(); err != nil {
-		t.Fatalf("stint spend: %v", err)
+		t.Fatalf("stint statement: %v", err)
 	}
-	var rep spendReport
+	var rep statement
 	if err := json.Unmarshal(out.Bytes(), &rep); err != nil {
 		t.Fatalf("spend JSON %s: %v", out.Bytes(), err)
 	}
@@ -104,8 +104,8 @@ func TestServeChargesBudgetAndReportsSpend(t *testing.T) {
 	body := `{"model":"quill-small","prompt":"the co-op pays for its crates","temperature":0,"max_tokens":6}`
 	miss, _ := post(t, c, key, body)
 	hit, _ := post(t, c, key, body)
-	if miss.StatusCode != 200 || hit.Header.Get("Stint-Cache") != "hit" {
-		t.Fatalf("miss %d, then %q", miss.StatusCode, hit.Header.Get("Stint-Cache"))
+	if miss.StatusCode != 200 || cacheOutcome(hit.Header) != "hit" {
+		t.Fatalf("miss %d, then %q", miss.StatusCode, cacheOutcome(hit.Header))
 	}
 	cost := miss.Header.Get("Stint-Cost-Usd")
 	if zero, _ := strconv.ParseFloat(hit.Header.Get("Stint-Cost-Usd"), 64); cost == "" || cost == "0.00" || zero != 0 || hit.Header.Get("Stint-Saved-Usd") != cost {
@@ -113,7 +113,7 @@ func TestServeChargesBudgetAndReportsSpend(t *testing.T) {
 			cost, hit.Header.Get("Stint-Cost-Usd"), hit.Header.Get("Stint-Saved-Usd"))
 	}
 	stop(t, c)
-	rep := spendJSON(t, data)
+	rep := statementJSON(t, data)
 	if rep.Total.Requests != 2 || rep.Total.UpstreamCalls != 1 || rep.Total.SpentUSD != cost || rep.Total.SavedUSD != cost {
 		t.Errorf("spend report %+v, want 2 requests, 1 upstream call, spent = saved = %s", rep.Total, cost)
 	}
@@ -154,7 +154,7 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	second := startStint(t, nil, "serve", "--config", cfgPath)
 	waitForLogQuiet(t, 3*time.Second) // the 1 s lease runs out and the sweep (every 1 s) charges it
 	stop(t, second)
-	rep := spendJSON(t, data)
+	rep := statementJSON(t, data)
 	// Each held call reserved at least its worst-case output, 50 tokens at
 	// 6 USD per million (hand-worked: 3 × 50 × 6e-6 = 0.0009 USD); expiry
 	// charges the whole reservation, so the spend is at least that.

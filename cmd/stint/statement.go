@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -25,52 +24,66 @@ import (
 	"github.com/stintlab/stint/proxy"
 )
 
-// spendFlags are the command-line settings of `stint spend`.
-type spendFlags struct {
+// statementFlags are the command-line settings of `stint statement`.
+type statementFlags struct {
 	data   string
 	config string
 	team   string
 	since  string
 	by     string
 	json   bool
-	proxy  string
+	remote proxyFlags
 }
 
-// spendLockTimeout bounds the wait for the store's file lock.
-const spendLockTimeout = time.Second
+// storeLockTimeout bounds the wait for the store's file lock.
+const storeLockTimeout = time.Second
 
-func newSpendCmd() *cobra.Command {
-	var f spendFlags
+func newStatementCmd() *cobra.Command {
+	f := statementFlags{remote: proxyFlags{admin: true}}
 	cmd := &cobra.Command{
-		Use:   "spend",
-		Short: "Report what was spent and what the cache saved",
-		Long: `Print spend from the journal in the embedded store (DATA/stint.db), or on
-Redis when the config has store.redis: per
-group, the requests, upstream calls, share served from the cache, tokens,
-USD spent and USD saved. With --config, each team's budget left this period
-is shown too.
+		Use:   "statement",
+		Short: "Print a statement of what was spent and what the cache saved",
+		Long: `Print a statement: per group (team, model, run or day), the requests,
+upstream calls, share served from the cache, tokens, USD spent and USD saved,
+and each capped team's budget standing.
+
+By default it asks the running proxy (--proxy, its admin endpoint
+GET /stint/admin/statement; the admin key is --key or $STINT_ADMIN_KEY, and
+a proxy run without a config needs none). With --data or --config it reads
+the store instead: the embedded file DATA/stint.db (locked while stint serve
+runs on it, so stop it first), or Redis when the config has store.redis;
+--config also adds each team's budget left this period.
+
+Only calls made while the proxy's config prices models are recorded: without
+prices (spend control off) there is nothing to report.
 
 Costs are estimates from the configured prices and the upstream's usage
-counts; the provider's bill is the record.
-
-The store file is locked while stint serve runs: stop it first, or ask the
-running proxy with --proxy (admin key in STINT_ADMIN_KEY).`,
-		Example: `  stint spend --data ./stint-data --since 7d
-  stint spend --config stint.yaml --team lab --by model
-  stint spend --by day --since 30d --json`,
+counts; the provider's bill is the record.`,
+		Example: `  stint statement --since 7d --by model
+  STINT_ADMIN_KEY=... stint statement --proxy http://10.0.0.5:8787 --by team --json
+  stint statement --data ./stint-data --by run
+  stint statement --config stint.yaml --team lab --by day --since 30d`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			return runSpend(cmd.Context(), cmd.OutOrStdout(), f, time.Now())
+			if (f.data != "" || f.config != "") && cmd.Flags().Changed("proxy") {
+				return errors.New("--proxy asks the running proxy, --data and --config read the store: give one or the other")
+			}
+			return runStatement(cmd.Context(), cmd.OutOrStdout(), f, time.Now())
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&f.data, "data", "", "data directory holding stint.db (default: the config's data, else ./stint-data)")
-	fl.StringVar(&f.config, "config", "", "YAML config file; adds each team's budget left")
+	fl.StringVar(&f.data, "data", "", "read the store in this data directory (its stint.db) instead of asking the proxy")
+	fl.StringVar(&f.config, "config", "", "read the store the config names (its data, or store.redis) instead of asking the proxy, and add each team's budget left")
 	fl.StringVar(&f.team, "team", "", "only this team")
 	fl.StringVar(&f.since, "since", "7d", "how far back: 30m, 12h, 7d, or a date 2026-12-01 (UTC)")
 	fl.StringVar(&f.by, "by", "team", "group by model, team, run or day")
 	fl.BoolVar(&f.json, "json", false, "print JSON instead of a table")
-	fl.StringVar(&f.proxy, "proxy", "", "ask a running proxy's admin endpoint (http://host:port) instead of reading the store; the admin key comes from STINT_ADMIN_KEY")
+	f.remote.register(fl)
+	describeFlag(fl, "data", "DIR", "")
+	describeFlag(fl, "config", "FILE", "")
+	describeFlag(fl, "team", "NAME", "")
+	describeFlag(fl, "since", "WHEN", "")
+	describeFlag(fl, "by", "GROUP", "")
 	return cmd
 }
 
@@ -83,15 +96,15 @@ func parseSince(s string, now time.Time) (time.Time, error) {
 	return t, nil
 }
 
-// spendReport is the JSON form of the output.
-type spendReport = budget.Statement
+// statement is the JSON form of the output.
+type statement = budget.Statement
 
-// spendRow is one line of it.
-type spendRow = budget.StatementRow
+// statementRow is one line of it.
+type statementRow = budget.StatementRow
 
-func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) error {
-	if f.proxy != "" {
-		return runSpendRemote(ctx, out, f)
+func runStatement(ctx context.Context, out io.Writer, f statementFlags, now time.Time) error {
+	if f.data == "" && f.config == "" {
+		return runStatementRemote(ctx, out, f)
 	}
 	var cfg *Config
 	if f.config != "" {
@@ -148,10 +161,10 @@ func runSpend(ctx context.Context, out io.Writer, f spendFlags, now time.Time) e
 	if err != nil {
 		return err
 	}
-	return writeSpend(out, rep, f.json)
+	return writeStatement(out, rep, f.json)
 }
 
-func printSpend(out io.Writer, rep spendReport) error {
+func printStatement(out io.Writer, rep statement) error {
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
 	fmt.Fprintf(w, "%s\tREQUESTS\tUPSTREAM\tCACHED\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(string(rep.By)))
 	for _, r := range append(rep.Rows, rep.Total) {
@@ -165,6 +178,9 @@ func printSpend(out io.Writer, rep spendReport) error {
 	if err := w.Flush(); err != nil {
 		return err
 	}
+	if len(rep.Rows) == 0 {
+		fmt.Fprintln(out, "\nnothing recorded in this window: calls are recorded only while the proxy's config prices models (prices: in stint config example)")
+	}
 	if len(rep.Budgets) > 0 {
 		fmt.Fprintln(out)
 		if err := printStandings(out, rep.Budgets); err != nil {
@@ -176,9 +192,9 @@ func printSpend(out io.Writer, rep spendReport) error {
 }
 
 // openStoreForReport opens an existing store file, waiting at most
-// spendLockTimeout for its lock. It opens it read-write because the
+// storeLockTimeout for its lock. It opens it read-write because the
 // journal's buckets are created on first use; it writes nothing else.
-// reportLedger is what a spend report reads: the journal and the balances.
+// reportLedger is what a statement reads: the journal and the balances.
 type reportLedger interface {
 	budget.Journal
 	Balance(ctx context.Context, now time.Time, scope budget.Scope, p budget.Period) (budget.Balance, error)
@@ -212,9 +228,9 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 	if _, err := os.Stat(path); err != nil {
 		return nil, fmt.Errorf("no store at %s (give --data DIR, or --config with its data directory): %w", path, err)
 	}
-	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: spendLockTimeout})
+	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: storeLockTimeout})
 	if errors.Is(err, bbolt.ErrTimeout) {
-		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running `stint serve`; stop it to read spend from the file, or query the proxy's admin endpoint", path)
+		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running stint serve: stop it to read the statement from the file, or leave out --data and --config to ask the running proxy", path)
 	}
 	if err != nil {
 		return nil, fmt.Errorf("open store %s: %w", path, err)
@@ -222,27 +238,32 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 	return db, nil
 }
 
-// runSpendRemote asks a running proxy for the statement.
-func runSpendRemote(ctx context.Context, out io.Writer, f spendFlags) error {
-	if f.data != "" || f.config != "" {
-		return errors.New("--proxy asks the running proxy; leave out --data and --config")
+// runStatementRemote asks a running proxy for the statement.
+func runStatementRemote(ctx context.Context, out io.Writer, f statementFlags) error {
+	c, err := f.remote.client()
+	if err != nil {
+		return err
 	}
 	q := url.Values{"since": {f.since}, "by": {f.by}}
 	if f.team != "" {
 		q.Set("team", f.team)
 	}
-	var rep spendReport
-	if err := adminCall(ctx, http.MethodGet, f.proxy, proxy.AdminPrefix+"spend", q, nil, &rep); err != nil {
+	var rep statement
+	if err := c.json(ctx, http.MethodGet, proxy.AdminPrefix+"statement", q, nil, &rep); err != nil {
+		var pe *proxyError
+		if errors.As(err, &pe) && pe.Code == "invalid_value" {
+			// The proxy's message names its query parameters (since=, by=);
+			// these are the flags of the same names.
+			return fmt.Errorf("--since or --by: %s", pe.Message)
+		}
 		return err
 	}
-	return writeSpend(out, rep, f.json)
+	return writeStatement(out, rep, f.json)
 }
 
-func writeSpend(out io.Writer, rep spendReport, asJSON bool) error {
+func writeStatement(out io.Writer, rep statement, asJSON bool) error {
 	if asJSON {
-		enc := json.NewEncoder(out)
-		enc.SetIndent("", "  ")
-		return enc.Encode(rep)
+		return printJSON(out, rep)
 	}
-	return printSpend(out, rep)
+	return printStatement(out, rep)
 }

@@ -64,9 +64,9 @@ func fillStore(t *testing.T, now time.Time) string {
 	return dir
 }
 
-func runSpendCmd(t *testing.T, args ...string) (string, error) {
+func runStatementCmd(t *testing.T, args ...string) (string, error) {
 	t.Helper()
-	cmd := newSpendCmd()
+	cmd := newStatementCmd()
 	var out bytes.Buffer
 	cmd.SetOut(&out)
 	cmd.SetErr(&out)
@@ -75,35 +75,35 @@ func runSpendCmd(t *testing.T, args ...string) (string, error) {
 	return out.String(), err
 }
 
-func TestSpendJSON(t *testing.T) {
+func TestStatementJSON(t *testing.T) {
 	dir := fillStore(t, time.Now())
 	tests := []struct {
 		name      string
 		args      []string
-		wantRows  map[string]spendRow
+		wantRows  map[string]statementRow
 		wantTotal string
 	}{
-		{"by model, 7d", []string{"--by", "model"}, map[string]spendRow{
+		{"by model, 7d", []string{"--by", "model"}, map[string]statementRow{
 			// hand-summed from fillStore: the 20-day-old entry is left out
 			"quill-small": {Requests: 3, UpstreamCalls: 2, CacheShare: 1.0 / 3, InputTokens: 207, OutputTokens: 100, SpentUSD: "0.0001285", SavedUSD: "0.000125"},
 			"quill-large": {Requests: 1, UpstreamCalls: 1, InputTokens: 10, OutputTokens: 5, SpentUSD: "0.00009", SavedUSD: "0.00"},
 		}, "0.0002185"},
-		{"team lab by run", []string{"--team", "lab", "--by", "run"}, map[string]spendRow{
+		{"team lab by run", []string{"--team", "lab", "--by", "run"}, map[string]statementRow{
 			"r1": {Requests: 2, UpstreamCalls: 1, CacheShare: 0.5, InputTokens: 200, OutputTokens: 100, SpentUSD: "0.000125", SavedUSD: "0.000125"},
 			"":   {Requests: 1, UpstreamCalls: 1, InputTokens: 10, OutputTokens: 5, SpentUSD: "0.00009", SavedUSD: "0.00"},
 		}, "0.000215"},
-		{"since 30d", []string{"--since", "30d", "--by", "team"}, map[string]spendRow{
+		{"since 30d", []string{"--since", "30d", "--by", "team"}, map[string]statementRow{
 			"lab":      {Requests: 4, UpstreamCalls: 3, CacheShare: 0.25, InputTokens: 211, OutputTokens: 105, SpentUSD: "1.000215", SavedUSD: "0.000125"},
 			"glossary": {Requests: 1, UpstreamCalls: 1, InputTokens: 7, SpentUSD: "0.0000035", SavedUSD: "0.00"},
 		}, "1.0002185"},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			out, err := runSpendCmd(t, append([]string{"--data", dir, "--json"}, tt.args...)...)
+			out, err := runStatementCmd(t, append([]string{"--data", dir, "--json"}, tt.args...)...)
 			if err != nil {
 				t.Fatalf("%v\n%s", err, out)
 			}
-			var rep spendReport
+			var rep statement
 			if err := json.Unmarshal([]byte(out), &rep); err != nil {
 				t.Fatalf("%v\n%s", err, out)
 			}
@@ -124,14 +124,14 @@ func TestSpendJSON(t *testing.T) {
 	}
 }
 
-func TestSpendTableWithBudgetLeft(t *testing.T) {
+func TestStatementTableWithBudgetLeft(t *testing.T) {
 	dir := fillStore(t, time.Now())
 	cfgPath := filepath.Join(t.TempDir(), "stint.yaml")
 	cfg := "data: " + dir + "\n" + teamKey + "    budget: {usd: 25.00, per: month}\n"
 	if err := os.WriteFile(cfgPath, []byte(cfg), 0o600); err != nil {
 		t.Fatal(err)
 	}
-	out, err := runSpendCmd(t, "--config", cfgPath, "--by", "team")
+	out, err := runStatementCmd(t, "--config", cfgPath, "--by", "team")
 	if err != nil {
 		t.Fatalf("%v\n%s", err, out)
 	}
@@ -143,7 +143,7 @@ func TestSpendTableWithBudgetLeft(t *testing.T) {
 	}
 }
 
-func TestSpendRefusesLockedStore(t *testing.T) {
+func TestStatementRefusesLockedStore(t *testing.T) {
 	dir := fillStore(t, time.Now())
 	// Hold the file lock as a running proxy does (bbolt's flock is per
 	// open file, so this conflicts within one process too).
@@ -152,13 +152,13 @@ func TestSpendRefusesLockedStore(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer db.Close()
-	_, err = runSpendCmd(t, "--data", dir)
+	_, err = runStatementCmd(t, "--data", dir)
 	if err == nil || !strings.Contains(err.Error(), "locked") || !strings.Contains(err.Error(), "stint serve") {
 		t.Errorf("got %v, want an error saying the store is locked by stint serve", err)
 	}
 }
 
-func TestSpendErrors(t *testing.T) {
+func TestStatementErrors(t *testing.T) {
 	dir := fillStore(t, time.Now())
 	tests := []struct {
 		args []string
@@ -169,7 +169,7 @@ func TestSpendErrors(t *testing.T) {
 		{[]string{"--data", dir, "--since", "soon"}, "--since"},
 	}
 	for _, tt := range tests {
-		if _, err := runSpendCmd(t, tt.args...); err == nil || !strings.Contains(err.Error(), tt.want) {
+		if _, err := runStatementCmd(t, tt.args...); err == nil || !strings.Contains(err.Error(), tt.want) {
 			t.Errorf("%v: got %v, want an error mentioning %q", tt.args, err, tt.want)
 		}
 	}
