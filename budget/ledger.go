@@ -60,6 +60,41 @@ var ErrNotHeld = errors.New("budget: reservation is not held (already settled, o
 // caps or leases. The error text says which.
 var ErrInvalid = errors.New("budget: invalid request")
 
+// InDoubtError is Reserve's error when the ledger's store stopped answering
+// while the reservation was on its way (a connection cut, a timeout, a
+// write the store took but could not confirm as durable): the amount may
+// be held. Nothing was admitted, so the caller should release Reservation
+// (Settle it at 0, which is a no-op if it was never held) once the store
+// answers; a reservation nobody releases is charged in full when its lease
+// expires, like any other.
+type InDoubtError struct {
+	Reservation Reservation // what may be held
+	Err         error       // the store's error
+}
+
+// Error says the reservation is in doubt and why.
+func (e *InDoubtError) Error() string {
+	return "budget: reservation in doubt (release it when the store answers): " + e.Err.Error()
+}
+
+// Unwrap returns the store's error.
+func (e *InDoubtError) Unwrap() error { return e.Err }
+
+// Holds describes a team's reservations that are not settled yet.
+type Holds struct {
+	Count int // reservations held
+	// Until is the latest lease deadline among them: by then each is
+	// settled by its call or charged in full by Expire. Zero when Count
+	// is 0.
+	Until time.Time
+}
+
+// HoldReporter reports a team's unsettled reservations, for budget
+// standings; the embedded and Redis ledgers implement it.
+type HoldReporter interface {
+	TeamHolds(ctx context.Context, team string) (Holds, error)
+}
+
 // ExhaustedError says which cap refused a reservation and how much of it
 // was left.
 type ExhaustedError struct {

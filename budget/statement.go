@@ -60,6 +60,12 @@ type Standing struct {
 	SpentUSD string `json:"spent_usd"`
 	HeldUSD  string `json:"held_usd"`
 	LeftUSD  string `json:"left_usd"`
+	// Holds is how many of the team's reservations are not settled yet
+	// (when the ledger reports it: a HoldReporter), and HeldUntil the
+	// latest of their lease deadlines: by then each is settled by its
+	// call, or charged in full.
+	Holds     int        `json:"holds"`
+	HeldUntil *time.Time `json:"held_until,omitempty"`
 }
 
 // Balancer reads a scope's balance; every Ledger is one.
@@ -101,10 +107,22 @@ func NewStatement(ctx context.Context, j Journal, b Balancer, q Query, caps map[
 		if err != nil {
 			return Statement{}, err
 		}
-		st.Budgets = append(st.Budgets, Standing{
+		s := Standing{
 			Team: team, Period: c.Period, LimitUSD: c.Limit.String(), SpentUSD: bal.Spent.String(),
 			HeldUSD: bal.Held.String(), LeftUSD: max(c.Limit-bal.Spent-bal.Held, 0).String(),
-		})
+		}
+		if hr, ok := b.(HoldReporter); ok {
+			h, err := hr.TeamHolds(ctx, team)
+			if err != nil {
+				return Statement{}, err
+			}
+			s.Holds = h.Count
+			if !h.Until.IsZero() {
+				until := h.Until.UTC()
+				s.HeldUntil = &until
+			}
+		}
+		st.Budgets = append(st.Budgets, s)
 	}
 	return st, nil
 }

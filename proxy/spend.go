@@ -116,7 +116,9 @@ func spendError(err error) *apiError {
 	case errors.Is(err, guard.ErrBadCall), errors.Is(err, guard.ErrTooLarge):
 		return &apiError{status: http.StatusBadRequest, typ: errInvalidRequest, code: "over_limit", message: err.Error()}
 	default:
-		return &apiError{status: http.StatusServiceUnavailable, typ: errServer, code: "spend_control_unavailable",
+		// The ledger's store is away (an outage, a failover under way):
+		// worth a retry in a moment.
+		return &apiError{status: http.StatusServiceUnavailable, typ: errServer, code: "spend_control_unavailable", retryAfter: time.Second,
 			message: "spend control is unavailable, so nothing was forwarded (budgets fail closed): " + err.Error()}
 	}
 }

@@ -83,6 +83,12 @@ type Ledger struct {
 	downUntil time.Time
 }
 
+var (
+	_ budget.Ledger       = (*Ledger)(nil)
+	_ budget.Journal      = (*Ledger)(nil)
+	_ budget.HoldReporter = (*Ledger)(nil)
+)
+
 // New wraps shared with an allowance on the local embedded file db (which
 // the caller owns; the ledger uses buckets named "budget.*").
 func New(shared Shared, db *bbolt.DB, opts Options) (*Ledger, error) {
@@ -142,6 +148,12 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 			return res, err
 		}
 		l.markDown(now)
+		var doubt *budget.InDoubtError
+		if errors.As(err, &doubt) {
+			// The shared ledger may hold it: the caller releases it there,
+			// and this call is not admitted on the allowance as well.
+			return budget.Reservation{}, err
+		}
 		sharedErr = err
 	}
 	local := req
@@ -258,6 +270,26 @@ func (l *Ledger) Scan(ctx context.Context, since time.Time, team string, fn func
 // Balance implements budget.Ledger on the shared ledger.
 func (l *Ledger) Balance(ctx context.Context, now time.Time, scope budget.Scope, p budget.Period) (budget.Balance, error) {
 	return l.shared.Balance(ctx, now, scope, p)
+}
+
+// TeamHolds implements budget.HoldReporter: the team's holds on the shared
+// ledger (when it reports them) and on the local allowance together.
+func (l *Ledger) TeamHolds(ctx context.Context, team string) (budget.Holds, error) {
+	h, err := l.local.TeamHolds(ctx, team)
+	if err != nil {
+		return budget.Holds{}, err
+	}
+	if hr, ok := l.shared.(budget.HoldReporter); ok {
+		sh, err := hr.TeamHolds(ctx, team)
+		if err != nil {
+			return budget.Holds{}, err
+		}
+		h.Count += sh.Count
+		if sh.Until.After(h.Until) {
+			h.Until = sh.Until
+		}
+	}
+	return h, nil
 }
 
 // Expire implements budget.Ledger: it expires leases on both ledgers

@@ -8,6 +8,8 @@ import (
 	"time"
 
 	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -105,4 +107,58 @@ func TestOutageSpendsAllowanceThenCarriesOver(t *testing.T) {
 	if entries != 3 || cost != 3*(unit-1000) {
 		t.Errorf("shared journal after carry-over: %d entries costing %d, want 3 costing %d", entries, cost, 3*(unit-1000))
 	}
+}
+
+// TestReservationInDoubtIsNotDoubled stops (SIGSTOP) the shared Redis while
+// a reservation is on its way, so it may be held there: the ledger returns
+// the *budget.InDoubtError for the caller to release, instead of also
+// admitting the call on the local allowance; the next call, with the store
+// known to be away, goes to the allowance. Once the server goes on, its
+// hold is there to release, and holds are reported across both ledgers.
+func TestReservationInDoubtIsNotDoubled(t *testing.T) {
+	ctx := context.Background()
+	rs := redistest.Start(t)
+	client := redis.NewClient(&redis.Options{Addr: rs.Addr, ReadTimeout: 200 * time.Millisecond, WriteTimeout: 200 * time.Millisecond, MaxRetries: -1})
+	defer client.Close()
+	shared := redisledger.New(client, redisledger.Options{})
+	db, err := bbolt.Open(filepath.Join(t.TempDir(), "local.db"), 0o600, nil)
+	require.NoError(t, err)
+	defer db.Close()
+	now := time.Date(2026, 12, 2, 10, 0, 0, 0, time.UTC)
+	l, err := allowance.New(shared, db, allowance.Options{Allowance: budget.Cap{Limit: nanos(t, 0.010), Period: budget.Day}, Retry: time.Minute})
+	require.NoError(t, err)
+	req := budget.Request{Team: "lab", Amount: nanos(t, 0.001), Caps: budget.Caps{Team: &budget.Cap{Limit: nanos(t, 1), Period: budget.Total}}, Lease: time.Minute}
+	res, err := l.Reserve(ctx, now, req) // the team is known to the shared ledger from here on
+	require.NoError(t, err)
+	_, err = l.Settle(ctx, now, res, 0)
+	require.NoError(t, err)
+
+	rs.Pause(t)
+	_, err = l.Reserve(ctx, now, req)
+	var doubt *budget.InDoubtError
+	require.ErrorAs(t, err, &doubt, "a reservation cut off on its way")
+	local, err := l.Reserve(ctx, now, req)
+	require.NoError(t, err, "the next one, on the allowance")
+	rs.Resume(t)
+
+	deadline := time.Now().Add(5 * time.Second)
+	for {
+		b, err := shared.Balance(ctx, now, budget.Scope{Team: "lab"}, budget.Total)
+		require.NoError(t, err)
+		if b.Held == req.Amount {
+			break
+		}
+		require.True(t, time.Now().Before(deadline), "the server never ran the reservation in doubt")
+		time.Sleep(20 * time.Millisecond) // polling interval
+	}
+	h, err := l.TeamHolds(ctx, "lab")
+	require.NoError(t, err)
+	assert.Equal(t, 2, h.Count, "the shared hold in doubt and the local one")
+	_, err = l.Settle(ctx, now, doubt.Reservation, 0)
+	require.NoError(t, err, "the release of the hold in doubt")
+	_, err = l.Settle(ctx, now, local, 0)
+	require.NoError(t, err)
+	h, err = l.TeamHolds(ctx, "lab")
+	require.NoError(t, err)
+	assert.Equal(t, budget.Holds{}, h)
 }

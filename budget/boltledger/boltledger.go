@@ -63,8 +63,9 @@ type Ledger struct {
 }
 
 var (
-	_ budget.Ledger  = (*Ledger)(nil)
-	_ budget.Journal = (*Ledger)(nil)
+	_ budget.Ledger       = (*Ledger)(nil)
+	_ budget.Journal      = (*Ledger)(nil)
+	_ budget.HoldReporter = (*Ledger)(nil)
 )
 
 // New returns a Ledger on db, creating its buckets if needed. The caller
@@ -319,6 +320,37 @@ func (l *Ledger) Balance(ctx context.Context, now time.Time, scope budget.Scope,
 		return budget.Balance{}, fmt.Errorf("boltledger: balance: %w", err)
 	}
 	return b, nil
+}
+
+// TeamHolds implements budget.HoldReporter: the team's reservations not
+// settled yet and the latest of their lease deadlines.
+func (l *Ledger) TeamHolds(ctx context.Context, team string) (budget.Holds, error) {
+	if err := budget.ValidateName(team); err != nil {
+		return budget.Holds{}, err
+	}
+	if err := ctx.Err(); err != nil {
+		return budget.Holds{}, err
+	}
+	var h budget.Holds
+	err := l.db.View(func(tx *bbolt.Tx) error {
+		return tx.Bucket(holdsBucket).ForEach(func(_, raw []byte) error {
+			var rec record
+			if err := json.Unmarshal(raw, &rec); err != nil {
+				return err
+			}
+			if rec.Res.Team == team {
+				h.Count++
+				if rec.Res.Deadline.After(h.Until) {
+					h.Until = rec.Res.Deadline
+				}
+			}
+			return nil
+		})
+	})
+	if err != nil {
+		return budget.Holds{}, fmt.Errorf("boltledger: holds of team %q: %w", team, err)
+	}
+	return h, nil
 }
 
 // Append implements budget.Journal.

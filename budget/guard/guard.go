@@ -24,9 +24,23 @@
 //     ended): 503. Budgets fail closed: no call is forwarded without a
 //     reservation.
 //
+// # When the ledger cannot be reached
+//
+// A call that ends while its ledger is unreachable (a Redis failover, an
+// outage) still has its charge or release made: the Ticket queues it and
+// answers with the Charge it will make (Charge.Deferred), and Run retries
+// the queue every Config.SettleRetry until each lands, at the time the
+// call ended, so it charges what the call cost and not the reserved
+// amount. A reservation whose outcome Reserve could not tell
+// (*budget.InDoubtError) is queued for release the same way. Only what is
+// still queued when its lease runs out is left to the sweep, which
+// charges it in full; so a team is refused only for money its calls spent
+// or may still spend, not for holds of calls that ended while the ledger
+// was away.
+//
 // All times come from the clock given to New, so tests control time
 // without sleeping; only the queue wait under a rate limit and the sweep
-// ticker of Run use real timers.
+// and retry tickers of Run use real timers.
 package guard
 
 import (
@@ -37,6 +51,7 @@ import (
 	"fmt"
 	"sort"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/stintlab/stint/budget"
@@ -46,10 +61,15 @@ import (
 
 // Defaults for the zero values of Config.
 const (
-	DefaultLease     = 10 * time.Minute // Config.Lease
-	DefaultMaxWait   = 5 * time.Second  // Config.MaxWait
-	DefaultOutputCap = 4096             // Config.DefaultOutputCap
+	DefaultLease       = 10 * time.Minute       // Config.Lease
+	DefaultMaxWait     = 5 * time.Second        // Config.MaxWait
+	DefaultOutputCap   = 4096                   // Config.DefaultOutputCap
+	DefaultSettleRetry = 250 * time.Millisecond // Config.SettleRetry
 )
+
+// maxUnsettled bounds the settlements a Guard keeps for retry; past it a
+// call's hold is left to its lease.
+const maxUnsettled = 10000
 
 // ErrBadCall reports a Call that cannot be priced: a bad team name or key
 // id, a negative n or max_tokens other than -1, no prompt at all. The
@@ -65,6 +85,11 @@ var ErrTooLarge = errors.New("guard: call exceeds a tokens-per-minute limit")
 // ErrSettled is returned by a Ticket's Settle, Fail or Cancel after the
 // first of them has been called.
 var ErrSettled = errors.New("guard: ticket already settled")
+
+// ErrLeaseRanOut is wrapped by RetryUnsettled's error when queued
+// settlements could not be made before their leases ran out: the sweep
+// charges those reservations in full.
+var ErrLeaseRanOut = errors.New("guard: lease ran out before the settlement landed")
 
 // ErrJournal wraps a failure to append to the journal after the ledger
 // settled: the ledger's sums are right, only the report line is missing.
@@ -127,6 +152,10 @@ type Config struct {
 	// SweepEvery is how often Run expires leases. 0 means a tenth of the
 	// lease, at least 1 s and at most 1 minute.
 	SweepEvery time.Duration
+	// SettleRetry is how often Run retries the settlements and releases
+	// the ledger could not take when their calls ended (see the package
+	// doc). 0 means DefaultSettleRetry.
+	SettleRetry time.Duration
 	// Overrides, when not nil, holds team budgets set at run time (see
 	// SetBudget); they replace the configured Budget of their team.
 	Overrides Overrides
@@ -154,6 +183,25 @@ type Guard struct {
 	// settleJournal is the ledger when it is also the journal and can
 	// settle and journal in one step; else nil.
 	settleJournal SettleJournaler
+
+	// mu guards unsettled.
+	mu sync.Mutex
+	// unsettled are the settlements and releases waiting for the ledger,
+	// oldest first; Run retries them.
+	unsettled []*unsettled
+}
+
+// unsettled is a settlement the ledger could not take when its call ended.
+type unsettled struct {
+	res  budget.Reservation
+	cost budget.Nanos
+	at   time.Time // when the call ended: the time it is settled at
+	// entry is the call's journal entry (its Cost set when it is
+	// settled); nil for a release, which is not journaled.
+	entry *budget.Entry
+	// settled is set once the ledger took it and only the journal entry
+	// is left to append.
+	settled bool
 }
 
 // New validates cfg and returns a Guard on the given backends. now is the
@@ -192,6 +240,11 @@ func New(cfg Config, ledger budget.Ledger, journal budget.Journal, limiter ratel
 		return nil, fmt.Errorf("guard: sweep interval %v must not be negative", cfg.SweepEvery)
 	} else if cfg.SweepEvery == 0 {
 		cfg.SweepEvery = min(max(cfg.Lease/10, time.Second), time.Minute)
+	}
+	if cfg.SettleRetry < 0 {
+		return nil, fmt.Errorf("guard: settle retry interval %v must not be negative", cfg.SettleRetry)
+	} else if cfg.SettleRetry == 0 {
+		cfg.SettleRetry = DefaultSettleRetry
 	}
 	if cfg.Location == nil {
 		cfg.Location = time.UTC
@@ -331,6 +384,10 @@ type Charge struct {
 	// Resets is when the team's budget period ends (zero for a total
 	// budget or no budget).
 	Resets time.Time
+	// Deferred reports that the ledger could not be reached when the call
+	// ended: Cost is queued and Run retries it until it lands (see the
+	// package doc); Remaining is then the figure from the reservation.
+	Deferred bool
 }
 
 // Admit prices c's worst case, reserves it on the ledger under the team's,
@@ -358,6 +415,11 @@ func (g *Guard) Admit(ctx context.Context, c Call) (*Ticket, error) {
 		Team: c.Team, Key: c.KeyID, Amount: est.Cost, Caps: caps, Lease: g.cfg.Lease,
 	})
 	if err != nil {
+		var doubt *budget.InDoubtError
+		if errors.As(err, &doubt) {
+			// It may be held: release it once the ledger answers.
+			g.addUnsettled(&unsettled{res: doubt.Reservation, at: now})
+		}
 		var ex *budget.ExhaustedError
 		if errors.As(err, &ex) {
 			return nil, ex
@@ -367,7 +429,7 @@ func (g *Guard) Admit(ctx context.Context, c Call) (*Ticket, error) {
 	t := &Ticket{g: g, call: c, rate: rate, est: est, res: res, token: make(chan struct{}, 1)}
 	t.token <- struct{}{}
 	if err := g.queue(ctx, now, c, est.PromptTokens+est.OutputTokens); err != nil {
-		if _, cerr := t.settle(context.WithoutCancel(ctx), 0); cerr != nil {
+		if _, cerr := t.release(context.WithoutCancel(ctx)); cerr != nil {
 			err = errors.Join(err, fmt.Errorf("guard: release after refusal: %w", cerr))
 		}
 		return nil, err
@@ -553,15 +615,141 @@ func (t *Ticket) Fail(ctx context.Context, billed bool) (Charge, error) {
 
 // Cancel releases the reservation of a call that was never sent upstream
 // (the breaker was open, the client left first). Nothing is charged or
-// journaled.
+// journaled. A release the ledger cannot take now is queued (see the
+// package doc).
 func (t *Ticket) Cancel(ctx context.Context) error {
 	select {
 	case <-t.token:
 	default:
 		return ErrSettled
 	}
-	_, err := t.settle(context.WithoutCancel(ctx), 0)
+	_, err := t.release(context.WithoutCancel(ctx))
 	return err
+}
+
+// release settles the reservation at 0, or queues that if the ledger
+// cannot take it now.
+func (t *Ticket) release(ctx context.Context) (settled, error) {
+	at := t.g.now()
+	ch, err := t.settleAt(ctx, at, 0)
+	if retryable(err) {
+		return settled{Charge: t.postpone(at, 0, nil)}, nil
+	}
+	return ch, err
+}
+
+// retryable reports whether a failed settlement should be retried: the
+// ledger did not refuse it (a bad request, or a reservation not held),
+// it did not answer.
+func retryable(err error) bool {
+	return err != nil && !errors.Is(err, budget.ErrInvalid) && !errors.Is(err, budget.ErrNotHeld)
+}
+
+// postpone queues the settlement of the ticket at cost, made at time at, with
+// its journal entry e (nil for a release), and returns the Charge it will
+// make.
+func (t *Ticket) postpone(at time.Time, cost budget.Nanos, e *budget.Entry) Charge {
+	ch := Charge{Cost: cost, Remaining: t.res.Remaining, HasBudget: t.res.Remaining >= 0, Resets: t.resets(at), Deferred: true}
+	if !at.Before(t.res.Deadline) {
+		ch.Cost, ch.Expired = max(cost, t.res.Amount), true
+	}
+	t.g.addUnsettled(&unsettled{res: t.res, cost: cost, at: at, entry: e})
+	return ch
+}
+
+// addUnsettled queues u for Run to retry; past maxUnsettled it is left to
+// its lease.
+func (g *Guard) addUnsettled(u *unsettled) {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	if len(g.unsettled) < maxUnsettled {
+		g.unsettled = append(g.unsettled, u)
+	}
+}
+
+// Unsettled returns how many settlements and releases wait for the ledger.
+func (g *Guard) Unsettled() int {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	return len(g.unsettled)
+}
+
+// RetryUnsettled tries every queued settlement and release once, at the
+// time its call ended, and keeps those the ledger still does not take. One
+// whose lease has run out is dropped: the sweep charges it in full. It
+// returns how many are left and, joined, why some could not be made.
+func (g *Guard) RetryUnsettled(ctx context.Context) (int, error) {
+	g.mu.Lock()
+	todo := g.unsettled
+	g.unsettled = nil
+	g.mu.Unlock()
+	var keep []*unsettled
+	var failed, dropped int
+	var firstErr error
+	now := g.now()
+	for i, u := range todo {
+		if ctx.Err() != nil {
+			keep = append(keep, todo[i:]...)
+			break
+		}
+		if !u.settled && !now.Before(u.res.Deadline) {
+			dropped++
+			continue
+		}
+		if err := g.settleQueued(ctx, u); err != nil {
+			keep = append(keep, u)
+			failed++
+			if firstErr == nil {
+				firstErr = err
+			}
+		}
+	}
+	g.mu.Lock()
+	g.unsettled = append(keep, g.unsettled...)
+	left := len(g.unsettled)
+	g.mu.Unlock()
+	var errs []error
+	if dropped > 0 {
+		errs = append(errs, fmt.Errorf("%w: %d reservations; the sweep charges them in full", ErrLeaseRanOut, dropped))
+	}
+	if failed > 0 {
+		errs = append(errs, fmt.Errorf("guard: %d settlements still wait for the ledger: %w", failed, firstErr))
+	}
+	return left, errors.Join(errs...)
+}
+
+// settleQueued makes one queued settlement and appends its journal entry.
+// It settles and journals in two steps even on a SettleJournaler: an
+// earlier try may have landed with its answer lost, and the entry then
+// needs the call's cost, not the 0 such a ledger journals for a
+// reservation it no longer holds.
+func (g *Guard) settleQueued(ctx context.Context, u *unsettled) error {
+	if !u.settled {
+		st, err := g.ledger.Settle(ctx, u.at, u.res, u.cost)
+		if retryable(err) {
+			return err
+		}
+		u.settled = true
+		if u.entry != nil {
+			u.entry.Cost = st.Charged
+			if errors.Is(err, budget.ErrNotHeld) {
+				// Run drops what is queued past its lease, and the sweep
+				// charges nothing before it: an earlier try of this
+				// settlement landed and its answer was lost.
+				u.entry.Cost = u.cost
+				if !u.at.Before(u.res.Deadline) {
+					u.entry.Cost = max(u.cost, u.res.Amount)
+				}
+			}
+		}
+	}
+	if u.entry == nil {
+		return nil
+	}
+	if err := g.journal.Append(ctx, *u.entry); err != nil {
+		return fmt.Errorf("%w: %w", ErrJournal, err)
+	}
+	return nil
 }
 
 // finish takes the settle token, settles cost and journals the call.
@@ -582,9 +770,17 @@ func (t *Ticket) finish(ctx context.Context, cost budget.Nanos, u budget.Usage, 
 		ch, err := t.settleWith(e.Time, func(now time.Time) (budget.Settlement, error) {
 			return sj.SettleAndAppend(ctx, now, t.res, cost, e)
 		})
+		if retryable(err) {
+			return t.postpone(e.Time, cost, &e), nil
+		}
 		return ch.Charge, err
 	}
-	ch, err := t.settle(ctx, cost)
+	at := t.g.now()
+	ch, err := t.settleAt(ctx, at, cost)
+	if retryable(err) {
+		e.Time = at
+		return t.postpone(at, cost, &e), nil
+	}
 	if err != nil {
 		return Charge{}, err
 	}
@@ -615,9 +811,9 @@ type settled struct {
 	notHeld bool // the sweep had already charged the reservation
 }
 
-// settle settles the reservation at cost on the ledger.
-func (t *Ticket) settle(ctx context.Context, cost budget.Nanos) (settled, error) {
-	return t.settleWith(t.g.now(), func(now time.Time) (budget.Settlement, error) {
+// settleAt settles the reservation at cost on the ledger at time at.
+func (t *Ticket) settleAt(ctx context.Context, at time.Time, cost budget.Nanos) (settled, error) {
+	return t.settleWith(at, func(now time.Time) (budget.Settlement, error) {
 		return t.g.ledger.Settle(ctx, now, t.res, cost)
 	})
 }
@@ -719,10 +915,13 @@ func (g *Guard) Expire(ctx context.Context) (int, error) {
 	return len(expired), errors.Join(errs...)
 }
 
-// Run expires leases every SweepEvery until ctx ends, passing errors to
-// onError (which may be nil), and returns ctx's error. Run it in one
-// goroutine per process; several processes may sweep one store, each
-// expired reservation reaches one of them.
+// Run expires leases every SweepEvery and retries the queued settlements
+// (RetryUnsettled) every SettleRetry, until ctx ends, passing errors to
+// onError (which may be nil; settlements still waiting are reported at most
+// once per SweepEvery, ErrLeaseRanOut at once),
+// and returns ctx's error. Run it in one goroutine per process; several
+// processes may sweep one store, each expired reservation reaches one of
+// them. Settlements still queued when ctx ends are left to their leases.
 //
 // It is budget.Sweep's loop written out because budget.Sweep hands the
 // ledger the ticker's wall time, while every time a Guard gives its ledger
@@ -730,13 +929,31 @@ func (g *Guard) Expire(ctx context.Context) (int, error) {
 func (g *Guard) Run(ctx context.Context, onError func(error)) error {
 	tick := time.NewTicker(g.cfg.SweepEvery)
 	defer tick.Stop()
+	retry := time.NewTicker(g.cfg.SettleRetry)
+	defer retry.Stop()
+	var retryErr error
+	report := func(err error) {
+		if err != nil && onError != nil && ctx.Err() == nil {
+			onError(err)
+		}
+	}
 	for {
 		select {
 		case <-ctx.Done():
 			return ctx.Err()
 		case <-tick.C:
-			if _, err := g.Expire(ctx); err != nil && onError != nil && ctx.Err() == nil {
-				onError(err)
+			_, err := g.Expire(ctx)
+			report(err)
+			report(retryErr)
+			retryErr = nil
+		case <-retry.C:
+			if g.Unsettled() > 0 {
+				_, err := g.RetryUnsettled(ctx)
+				if errors.Is(err, ErrLeaseRanOut) {
+					report(err)
+					err = nil
+				}
+				retryErr = err
 			}
 		}
 	}

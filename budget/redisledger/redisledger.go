@@ -36,6 +36,27 @@
 // their clocks in sync; lease deadlines are truncated to the millisecond.
 // Durability is Redis's: run it with appendonly for a ledger that survives a
 // Redis restart.
+//
+// # Failover
+//
+// Redis replicates asynchronously, so a primary that dies can take its
+// last acknowledged writes with it, and the replica that takes over never
+// had them. A lost reservation would let a call spend money no hold
+// covers, and other calls be admitted into its room: an overspend. With
+// Options.Replicas on a Redis Cluster, every reservation, settlement and
+// release therefore runs its script and then WAIT on the same connection
+// to the slot's primary (the node client go-redis's slot map names, see
+// run), and counts only once a replica has confirmed it. A reservation
+// that no replica confirms in time is refused with a *budget.InDoubtError,
+// so the caller releases it and never sends the call; a settlement that no
+// replica confirms fails with ErrNotReplicated, and the caller retries it
+// (a retry of a settled reservation finds it not held, and writes a marker
+// so that its own WAIT confirms the settlement before it). The wait is
+// made only while the slot map lists a replica for the slot: a primary
+// without one has no replica to lose a write to. What a failover can
+// still lose is harmless to budgets: a journal entry (a report line), a
+// run-time budget override, a lease sweep (it runs again), a seeded global
+// sum (raised again).
 package redisledger
 
 import (
@@ -44,6 +65,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"net"
 	"strconv"
 	"strings"
 	"sync"
@@ -58,21 +80,40 @@ import (
 // long backlog never blocks Redis for long.
 const expireBatch = 100
 
+// DefaultReplicaWait is Options.ReplicaWait's default.
+const DefaultReplicaWait = 250 * time.Millisecond
+
+// ErrNotReplicated reports a ledger write that the primary made but no
+// replica confirmed within Options.ReplicaWait, so a failover could lose
+// it. Retry a settlement that fails with it.
+var ErrNotReplicated = errors.New("redisledger: write not confirmed by a replica")
+
 // Options configure a Ledger. The zero value is usable.
 type Options struct {
 	// Prefix starts every key. Empty means "stint".
 	Prefix string
 	// Location is the time zone budget periods follow. Nil means UTC.
 	Location *time.Location
+	// Replicas is how many replicas must confirm a reservation, a
+	// settlement or a release (Redis WAIT) before it counts, on a Redis
+	// Cluster whose slot map lists a replica for the team's slot (see the
+	// package doc). 0 means none: writes count once the primary has them.
+	// Set it to at most the replicas each primary has.
+	Replicas int
+	// ReplicaWait bounds the wait for the replicas; keep it below the
+	// client's read timeout. 0 means DefaultReplicaWait.
+	ReplicaWait time.Duration
 }
 
 // Ledger is a budget.Ledger and budget.Journal on Redis. It is safe for
 // concurrent use, and any number of Ledgers in any number of processes may
 // share one Redis (or cluster) with the same Prefix.
 type Ledger struct {
-	c      redis.UniversalClient
-	prefix string
-	loc    *time.Location
+	c           redis.UniversalClient
+	prefix      string
+	loc         *time.Location
+	replicas    int
+	replicaWait time.Duration
 
 	// guards teams and seeded
 	mu sync.Mutex
@@ -84,8 +125,9 @@ type Ledger struct {
 }
 
 var (
-	_ budget.Ledger  = (*Ledger)(nil)
-	_ budget.Journal = (*Ledger)(nil)
+	_ budget.Ledger       = (*Ledger)(nil)
+	_ budget.Journal      = (*Ledger)(nil)
+	_ budget.HoldReporter = (*Ledger)(nil)
 )
 
 // New returns a Ledger on c. The caller keeps ownership of c and closes it
@@ -99,7 +141,82 @@ func New(c redis.UniversalClient, opts Options) *Ledger {
 	if loc == nil {
 		loc = time.UTC
 	}
-	return &Ledger{c: c, prefix: p, loc: loc, teams: map[string]bool{}, seeded: map[string]bool{}}
+	wait := opts.ReplicaWait
+	if wait <= 0 {
+		wait = DefaultReplicaWait
+	}
+	return &Ledger{
+		c: c, prefix: p, loc: loc, replicas: max(opts.Replicas, 0), replicaWait: wait,
+		teams: map[string]bool{}, seeded: map[string]bool{},
+	}
+}
+
+// run runs script on keys (one trio, one slot). When the ledger waits for
+// replicas and the client is a cluster client whose slot map lists a
+// replica for the slot, it sends the script and WAIT in one pipeline over
+// one connection of the node client go-redis names as the slot's primary
+// (MasterForKey; WAIT confirms the writes of its own connection only, and
+// a keyless WAIT in a cluster pipeline would go to a random node). The
+// returned error is nil when no wait was due or the replicas confirmed;
+// else it wraps ErrNotReplicated, or is the pipeline's error when the
+// script's reply is missing. A redirect or an unreachable node asks
+// go-redis to reload its slot map (ReloadState) so the next call follows
+// the new primary; the error is in the returned command, as with
+// Script.Run.
+func (l *Ledger) run(ctx context.Context, script *redis.Script, keys []string, args ...any) (*redis.Cmd, error) {
+	cc, ok := l.c.(*redis.ClusterClient)
+	if !ok || l.replicas == 0 {
+		return script.Run(ctx, l.c, keys, args...), nil
+	}
+	primary, err := cc.MasterForKey(ctx, keys[0])
+	if err != nil {
+		return script.Run(ctx, l.c, keys, args...), nil
+	}
+	if replica, err := cc.SlaveForKey(ctx, keys[0]); err != nil || replica.Options().Addr == primary.Options().Addr {
+		// No replica in the slot map: nothing a failover could lose the
+		// write to.
+		return script.Run(ctx, l.c, keys, args...), nil
+	}
+	send := func(eval func(context.Context, redis.Scripter, []string, ...any) *redis.Cmd) (cmd, wait *redis.Cmd) {
+		_, _ = primary.Pipelined(ctx, func(p redis.Pipeliner) error {
+			cmd = eval(ctx, p, keys, args...)
+			wait = p.Do(ctx, "wait", l.replicas, l.replicaWait.Milliseconds())
+			return nil
+		})
+		return cmd, wait
+	}
+	cmd, wait := send(script.EvalSha)
+	if redis.HasErrorPrefix(cmd.Err(), "NOSCRIPT") {
+		// A promoted replica has no script cache of its own.
+		cmd, wait = send(script.Eval)
+	}
+	if err := cmd.Err(); err != nil {
+		if !errors.Is(err, redis.Nil) {
+			cc.ReloadState(ctx)
+			return cmd, nil
+		}
+	}
+	n, err := wait.Int64()
+	if err != nil || n < int64(l.replicas) {
+		cc.ReloadState(ctx) // a replica may be gone from the map
+		return cmd, fmt.Errorf("%w (%d of %d confirmed within %v on %s: %v)", ErrNotReplicated, n, l.replicas, l.replicaWait, primary.Options().Addr, err)
+	}
+	return cmd, nil
+}
+
+// inDoubt reports whether a failed write may still have been made: true
+// unless Redis answered with an error (the script failed or never ran) or
+// the connection was never opened.
+func inDoubt(err error) bool {
+	var re redis.Error
+	if errors.As(err, &re) && !errors.Is(err, ErrNotReplicated) {
+		return false
+	}
+	var op *net.OpError
+	if errors.As(err, &op) && op.Op == "dial" {
+		return false
+	}
+	return !errors.Is(err, redis.ErrPoolTimeout)
 }
 
 // trio returns the sums, holds and leases keys of a team ("" for global).
@@ -163,24 +280,38 @@ func (l *Ledger) Reserve(ctx context.Context, now time.Time, req budget.Request)
 		}
 		rem, err := l.hold(ctx, "", res, global)
 		if err != nil {
-			return budget.Reservation{}, err
+			return budget.Reservation{}, doubt(res, err)
 		}
 		res.Remaining = rem
 	}
 	rem, err := l.hold(ctx, req.Team, res, local)
 	if err != nil {
 		if req.Caps.Global != nil {
-			// Compensate; if this fails too, the global hold expires and
-			// is charged in full (see the package doc).
+			// Compensate; if this fails too, the global hold is in doubt
+			// like an unconfirmed one: released by the caller, or charged
+			// in full when it expires (see the package doc).
 			cctx := context.WithoutCancel(ctx)
-			_ = releaseScript.Run(cctx, l.c, l.trio(""), res.ID, now.UnixMilli()).Err()
+			cmd, rerr := l.run(cctx, releaseScript, l.trio(""), res.ID, now.UnixMilli())
+			if rerr = errors.Join(cmd.Err(), rerr); rerr != nil {
+				return budget.Reservation{}, &budget.InDoubtError{Reservation: res, Err: errors.Join(err, fmt.Errorf("redisledger: release the global hold: %w", rerr))}
+			}
 		}
-		return budget.Reservation{}, err
+		return budget.Reservation{}, doubt(res, err)
 	}
 	if rem >= 0 && (res.Remaining < 0 || rem < res.Remaining) {
 		res.Remaining = rem
 	}
 	return res, nil
+}
+
+// doubt wraps err in a *budget.InDoubtError for res when the hold may have
+// been made.
+func doubt(res budget.Reservation, err error) error {
+	var ex *budget.ExhaustedError
+	if errors.As(err, &ex) || !inDoubt(err) {
+		return err
+	}
+	return &budget.InDoubtError{Reservation: res, Err: err}
 }
 
 // seedGlobal raises the global sums of global (the global scope's holds of
@@ -271,11 +402,15 @@ func (l *Ledger) hold(ctx context.Context, team string, res budget.Reservation, 
 	for _, h := range holds {
 		args = append(args, h.Field, int64(h.Limit))
 	}
-	out, err := ints(reserveScript.Run(ctx, l.c, l.trio(team), args...).Slice())
+	cmd, replicated := l.run(ctx, reserveScript, l.trio(team), args...)
+	out, err := ints(cmd.Slice())
 	if err != nil {
 		return 0, fmt.Errorf("redisledger: reserve: %w", err)
 	}
 	if out[0] == 1 && len(out) == 2 {
+		if replicated != nil {
+			return 0, fmt.Errorf("redisledger: reserve: %w", replicated)
+		}
 		return budget.Nanos(out[1]), nil
 	}
 	if len(out) != 3 || out[1] < 0 || int(out[1]) >= len(holds) {
@@ -301,16 +436,18 @@ func (l *Ledger) Settle(ctx context.Context, now time.Time, res budget.Reservati
 	if res.Caps.Global != nil {
 		// Both scripts charge the same amount: actual, or the reserved
 		// amount at least once the (same) deadline has passed.
-		g, err := ints(settleScript.Run(ctx, l.c, l.trio(""), res.ID, int64(actual), now.UnixMilli()).Slice())
-		if err != nil {
-			return budget.Settlement{}, fmt.Errorf("redisledger: settle the global hold (it and the team's are charged in full at lease expiry): %w", err)
+		cmd, replicated := l.run(ctx, settleScript, l.trio(""), res.ID, int64(actual), now.UnixMilli())
+		g, err := ints(cmd.Slice())
+		if err = errors.Join(err, replicated); err != nil {
+			return budget.Settlement{}, fmt.Errorf("redisledger: settle the global hold (retry, or it and the team's are charged in full at lease expiry): %w", err)
 		}
 		if g[0] == 1 && len(g) == 4 {
 			globalLeft = budget.Nanos(g[3])
 		}
 	}
-	out, err := ints(settleScript.Run(context.WithoutCancel(ctx), l.c, l.trio(res.Team), res.ID, int64(actual), now.UnixMilli()).Slice())
-	if err != nil {
+	cmd, replicated := l.run(context.WithoutCancel(ctx), settleScript, l.trio(res.Team), res.ID, int64(actual), now.UnixMilli())
+	out, err := ints(cmd.Slice())
+	if err = errors.Join(err, replicated); err != nil {
 		return budget.Settlement{}, fmt.Errorf("redisledger: settle: %w", err)
 	}
 	if out[0] == 0 {
@@ -398,6 +535,26 @@ func (l *Ledger) Balance(ctx context.Context, now time.Time, scope budget.Scope,
 		return budget.Balance{}, fmt.Errorf("redisledger: balance: %w", err)
 	}
 	return budget.Balance{Spent: budget.Nanos(out[0]), Held: budget.Nanos(out[1])}, nil
+}
+
+// TeamHolds implements budget.HoldReporter: the team's reservations not
+// settled yet and the latest of their lease deadlines.
+func (l *Ledger) TeamHolds(ctx context.Context, team string) (budget.Holds, error) {
+	if err := budget.ValidateName(team); err != nil {
+		return budget.Holds{}, err
+	}
+	leases := l.trio(team)[2]
+	pipe := l.c.Pipeline()
+	count := pipe.ZCard(ctx, leases)
+	last := pipe.ZRangeWithScores(ctx, leases, -1, -1)
+	if _, err := pipe.Exec(ctx); err != nil {
+		return budget.Holds{}, fmt.Errorf("redisledger: holds of team %q: %w", team, err)
+	}
+	h := budget.Holds{Count: int(count.Val())}
+	if z := last.Val(); len(z) == 1 {
+		h.Until = time.UnixMilli(int64(z[0].Score))
+	}
+	return h, nil
 }
 
 // journalItem makes each sorted-set member unique.

@@ -72,13 +72,18 @@ local function charge(id, r, charged)
 end
 `
 
-// settleScript charges a held reservation.
+// settleScript charges a held reservation. Not held, it writes the time to
+// the sums' "w" field: a write of its own, so that a WAIT after it
+// confirms whatever settled the reservation before (see run).
 //
 //	ARGV: id, actual, now_ms
 //	returns {0} if not held, else {1, charged, expired (0|1), remaining}
 var settleScript = redis.NewScript(chargeLua + `
 local raw = redis.call('HGET', KEYS[2], ARGV[1])
-if not raw then return {0} end
+if not raw then
+  redis.call('HSET', KEYS[1], 'w', ARGV[3])
+  return {0}
+end
 local r = cjson.decode(raw)
 local charged = tonumber(ARGV[2])
 local expired = 0

@@ -1,7 +1,8 @@
 // Package redistest starts real redis-server processes for tests, each on a
 // free loopback port with persistence off, killed when the test ends:
 // standalone servers, and multi-master Redis Clusters joined with
-// `redis-cli --cluster create`.
+// `redis-cli --cluster create`, with or without replicas (so a test can
+// SIGKILL a primary and watch its replica take over).
 //
 // It is exported (not internal) so that the proxy's and the command's
 // tests can run their replicas on a real Redis too. The cache tree keeps a
@@ -18,6 +19,7 @@ import (
 	"os/exec"
 	"strconv"
 	"strings"
+	"syscall"
 	"testing"
 	"time"
 
@@ -46,7 +48,7 @@ type Server struct {
 // connections. The process is killed when tb's test ends.
 func Start(tb testing.TB) *Server {
 	tb.Helper()
-	return start(tb, false)
+	return start(tb, nil)
 }
 
 // Client returns a client of s, closed when tb's test ends.
@@ -61,6 +63,35 @@ func (s *Server) Client(tb testing.TB) *redis.Client {
 // clients). Restart brings it back on the same address.
 func (s *Server) Stop() { s.kill() }
 
+// Pause stops the server's process (SIGSTOP) without killing it: its
+// sockets stay open and the kernel still takes in what clients send, but
+// it answers nothing, as a hung or overloaded server does. Resume
+// continues it; a paused server is still killed when the test ends.
+func (s *Server) Pause(tb testing.TB) {
+	tb.Helper()
+	if s.cmd == nil {
+		tb.Fatal("redistest: Pause of a stopped server")
+	}
+	if err := s.cmd.Process.Signal(syscall.SIGSTOP); err != nil {
+		tb.Fatalf("redistest: pause %s: %v", s.Addr, err)
+	}
+}
+
+// Resume continues a paused server (SIGCONT).
+func (s *Server) Resume(tb testing.TB) {
+	tb.Helper()
+	if s.cmd == nil {
+		tb.Fatal("redistest: Resume of a stopped server")
+	}
+	if err := s.cmd.Process.Signal(syscall.SIGCONT); err != nil {
+		tb.Fatalf("redistest: resume %s: %v", s.Addr, err)
+	}
+}
+
+// Running reports whether the server has a process: started and not
+// stopped (a paused one counts).
+func (s *Server) Running() bool { return s.cmd != nil }
+
 // Restart starts a stopped server again on the same address. Persistence
 // is off, so a standalone server comes back empty; a cluster node comes
 // back with its node id and slots (its nodes.conf) but no data.
@@ -74,10 +105,26 @@ func (s *Server) Restart(tb testing.TB) {
 	}
 }
 
-// Cluster is a running Redis Cluster of masters only (no replicas).
+// Cluster is a running Redis Cluster.
 type Cluster struct {
-	Addrs []string
-	nodes []*Server
+	// Addrs are every node's address, masters and replicas, in the order
+	// they were started (the seeds a client needs).
+	Addrs    []string
+	nodes    []*Server
+	replicas int // replicas per master
+}
+
+// ClusterOptions shape a cluster for StartClusterWith.
+type ClusterOptions struct {
+	// Masters is the number of masters, at least MinClusterSize.
+	Masters int
+	// Replicas is the number of replicas of each master; 0 means none.
+	Replicas int
+	// NodeTimeout is the nodes' cluster-node-timeout: how long a node may
+	// be unreachable before the others count it as failed and, when it
+	// is a master with a replica, fail it over. 0 means Redis's default
+	// (15 s). Whole milliseconds.
+	NodeTimeout time.Duration
 }
 
 // StartCluster runs n redis-servers with --cluster-enabled yes and joins
@@ -87,21 +134,51 @@ type Cluster struct {
 // least MinClusterSize. The processes are killed when tb's test ends.
 func StartCluster(tb testing.TB, n int) *Cluster {
 	tb.Helper()
-	if n < MinClusterSize {
-		tb.Fatalf("redistest: a cluster of %d masters; redis-cli --cluster create needs at least %d", n, MinClusterSize)
+	return StartClusterWith(tb, ClusterOptions{Masters: n})
+}
+
+// StartClusterWith runs o.Masters × (1 + o.Replicas) redis-servers with
+// --cluster-enabled yes and joins them with `redis-cli --cluster create
+// ... --cluster-replicas o.Replicas`, which makes the first o.Masters
+// nodes masters with the slots split evenly and gives each o.Replicas of
+// the others as replicas. It returns once every node reports the cluster
+// ok and knows every node, and every replica has finished its first sync
+// and is listed for its master's slots (CLUSTER SLOTS), so a client sees
+// the replicas from its first slot map. A replica takes over when its
+// master has been unreachable for NodeTimeout (replica validity checks
+// off, so it always may). The processes are killed when tb's test ends.
+func StartClusterWith(tb testing.TB, o ClusterOptions) *Cluster {
+	tb.Helper()
+	if o.Masters < MinClusterSize {
+		tb.Fatalf("redistest: a cluster of %d masters; redis-cli --cluster create needs at least %d", o.Masters, MinClusterSize)
 	}
-	cl := &Cluster{}
-	var nodes []*redis.Client
-	for range n {
-		s := start(tb, true)
+	if o.Replicas < 0 || o.NodeTimeout < 0 {
+		tb.Fatalf("redistest: %d replicas per master and node timeout %v must not be negative", o.Replicas, o.NodeTimeout)
+	}
+	extra := []string{
+		// A replica's first sync starts at once (Redis waits 5 s by
+		// default for more replicas to share it); the master pings its
+		// replicas every second (default 10 s), which moves the
+		// replication offset on: CLUSTER SLOTS lists a replica only once
+		// its offset is not 0. And a replica fails over however long it
+		// has been apart from its master.
+		"--repl-diskless-sync-delay", "0",
+		"--repl-ping-replica-period", "1",
+		"--cluster-replica-validity-factor", "0",
+	}
+	if o.NodeTimeout > 0 {
+		extra = append(extra, "--cluster-node-timeout", strconv.FormatInt(o.NodeTimeout.Milliseconds(), 10))
+	}
+	cl := &Cluster{replicas: o.Replicas}
+	for range o.Masters * (1 + o.Replicas) {
+		s := start(tb, extra)
 		cl.Addrs = append(cl.Addrs, s.Addr)
 		cl.nodes = append(cl.nodes, s)
-		nodes = append(nodes, s.Client(tb))
 	}
 	if err := cl.create(); err != nil {
 		tb.Fatalf("redistest: %v", err)
 	}
-	cl.awaitOK(tb, nodes)
+	cl.awaitOK(tb)
 	return cl
 }
 
@@ -111,7 +188,7 @@ func (c *Cluster) create() error {
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
 	args := append([]string{"--cluster", "create"}, c.Addrs...)
-	args = append(args, "--cluster-replicas", "0", "--cluster-yes")
+	args = append(args, "--cluster-replicas", strconv.Itoa(c.replicas), "--cluster-yes")
 	out, err := exec.CommandContext(ctx, CLI, args...).CombinedOutput()
 	// redis-cli prints this once every slot has a master; its exit status
 	// alone does not tell a partial join from a whole one.
@@ -122,26 +199,165 @@ func (c *Cluster) create() error {
 	return nil
 }
 
-// awaitOK waits until every node reports cluster_state:ok and knows all
-// the nodes. Gossip spreads the slot map; this is a bounded poll of the
-// servers (outside processes, not goroutines of ours).
-func (c *Cluster) awaitOK(tb testing.TB, nodes []*redis.Client) {
+// awaitOK waits until every running node reports cluster_state:ok and
+// knows all the nodes, and every slot range has a running master and (in a
+// cluster with replicas) as many available replicas in every running
+// node's CLUSTER SLOTS as the cluster has running replicas for it. Gossip
+// spreads the slot map; this is a bounded poll of the servers (outside
+// processes, not goroutines of ours).
+func (c *Cluster) awaitOK(tb testing.TB) {
 	tb.Helper()
-	ctx := context.Background()
-	want := "cluster_known_nodes:" + strconv.Itoa(len(nodes))
 	deadline := time.Now().Add(30 * time.Second)
-	for i := 0; i < len(nodes); {
-		info, err := nodes[i].ClusterInfo(ctx).Result()
-		if err == nil && strings.Contains(info, "cluster_state:ok") && strings.Contains(info, want) {
-			i++
-			continue
+	for {
+		err := c.healthy(tb)
+		if err == nil {
+			return
 		}
 		if time.Now().After(deadline) {
-			tb.Fatalf("redistest: cluster node %s not ready: %v %q", c.Addrs[i], err, info)
+			tb.Fatalf("redistest: cluster not ready: %v", err)
 		}
 		t := time.NewTimer(20 * time.Millisecond)
 		<-t.C
 	}
+}
+
+// healthy checks the conditions awaitOK waits for, once.
+func (c *Cluster) healthy(tb testing.TB) error {
+	tb.Helper()
+	ctx := context.Background()
+	want := "cluster_known_nodes:" + strconv.Itoa(len(c.nodes))
+	// Each running node's own view of its role: a replica with a live
+	// link to its master counts as serving that master's slots.
+	running := map[string]bool{}
+	serving := map[string]int{} // master address -> running nodes serving its slots
+	for _, s := range c.nodes {
+		if s.cmd == nil {
+			continue
+		}
+		running[s.Addr] = true
+		master, err := s.masterOf(ctx)
+		if err != nil {
+			return err
+		}
+		if master != "" {
+			serving[master]++
+		}
+	}
+	for _, s := range c.nodes {
+		if s.cmd == nil {
+			continue
+		}
+		cl := redis.NewClient(&redis.Options{Addr: s.Addr, MaxRetries: -1})
+		info, err := cl.ClusterInfo(ctx).Result()
+		if err != nil || !strings.Contains(info, "cluster_state:ok") || !strings.Contains(info, want) {
+			cl.Close()
+			return fmt.Errorf("node %s: %v %q", s.Addr, err, info)
+		}
+		slots, err := cl.ClusterSlots(ctx).Result()
+		cl.Close()
+		if err != nil {
+			return fmt.Errorf("node %s: CLUSTER SLOTS: %w", s.Addr, err)
+		}
+		for _, r := range slots {
+			if len(r.Nodes) == 0 || !running[r.Nodes[0].Addr] {
+				return fmt.Errorf("node %s: slots %d-%d have no running master: %v", s.Addr, r.Start, r.End, r.Nodes)
+			}
+			if got, want := len(r.Nodes), serving[r.Nodes[0].Addr]; got != want {
+				return fmt.Errorf("node %s: slots %d-%d list %d nodes, want the master and its %d synced replicas", s.Addr, r.Start, r.End, got, want-1)
+			}
+		}
+	}
+	return nil
+}
+
+// masterOf returns, by the server's INFO replication, the address of the
+// master whose slots it serves: its own if it is a master, its master's if
+// it is a replica with a live link, "" if it is a replica without one.
+func (s *Server) masterOf(ctx context.Context) (string, error) {
+	cl := redis.NewClient(&redis.Options{Addr: s.Addr, MaxRetries: -1})
+	defer cl.Close()
+	info, err := cl.Info(ctx, "replication").Result()
+	if err != nil {
+		return "", fmt.Errorf("node %s: INFO replication: %w", s.Addr, err)
+	}
+	fields := map[string]string{}
+	for _, line := range strings.Split(info, "\r\n") {
+		if k, v, ok := strings.Cut(line, ":"); ok {
+			fields[k] = v
+		}
+	}
+	switch {
+	case fields["role"] == "master":
+		return s.Addr, nil
+	case fields["master_link_status"] == "up" && fields["master_sync_in_progress"] == "0":
+		return net.JoinHostPort(fields["master_host"], fields["master_port"]), nil
+	}
+	return "", nil
+}
+
+// MasterOf returns the node that is now the master of key's slot, by the
+// slot map of the first running node.
+func (c *Cluster) MasterOf(tb testing.TB, key string) *Server {
+	tb.Helper()
+	return c.slotNodes(tb, key)[0]
+}
+
+// ReplicasOf returns the replicas of key's slot that the first running
+// node lists for it (synced and not failed).
+func (c *Cluster) ReplicasOf(tb testing.TB, key string) []*Server {
+	tb.Helper()
+	return c.slotNodes(tb, key)[1:]
+}
+
+// slotNodes returns the master and the replicas of key's slot, by the slot
+// map of the first running node.
+func (c *Cluster) slotNodes(tb testing.TB, key string) []*Server {
+	tb.Helper()
+	ctx := context.Background()
+	for _, s := range c.nodes {
+		if s.cmd == nil {
+			continue
+		}
+		cl := redis.NewClient(&redis.Options{Addr: s.Addr, MaxRetries: -1})
+		defer cl.Close()
+		slot, err := cl.ClusterKeySlot(ctx, key).Result()
+		if err != nil {
+			tb.Fatalf("redistest: CLUSTER KEYSLOT %s on %s: %v", key, s.Addr, err)
+		}
+		slots, err := cl.ClusterSlots(ctx).Result()
+		if err != nil {
+			tb.Fatalf("redistest: CLUSTER SLOTS on %s: %v", s.Addr, err)
+		}
+		for _, r := range slots {
+			if int64(r.Start) > slot || slot > int64(r.End) || len(r.Nodes) == 0 {
+				continue
+			}
+			var out []*Server
+			for _, n := range r.Nodes {
+				for _, node := range c.nodes {
+					if node.Addr == n.Addr {
+						out = append(out, node)
+					}
+				}
+			}
+			if len(out) != len(r.Nodes) {
+				tb.Fatalf("redistest: slot %d lists nodes %v not in this cluster", slot, r.Nodes)
+			}
+			return out
+		}
+		tb.Fatalf("redistest: no master of slot %d in %s's map", slot, s.Addr)
+	}
+	tb.Fatal("redistest: no running node")
+	return nil
+}
+
+// AwaitHealthy waits until the running nodes have settled into a whole
+// cluster again: after a master was stopped, until one of its replicas has
+// taken over its slots and every running node agrees (the conditions of
+// StartClusterWith's return, over the running nodes). It fails tb after 30 s.
+func (c *Cluster) AwaitHealthy(tb testing.TB) {
+	tb.Helper()
+	c.awaitOK(tb)
 }
 
 // Client returns a cluster client of c, closed when tb's test ends.
@@ -160,30 +376,29 @@ func (c *Cluster) Stop() {
 }
 
 // Restart starts every stopped node again on its address with its cluster
-// config, and returns once the cluster is ok again. The nodes come back
-// empty.
+// config, and returns once the cluster is ok again (see AwaitHealthy). The
+// nodes come back empty; a master that was failed over comes back as a
+// replica of the node that took over.
 func (c *Cluster) Restart(tb testing.TB) {
 	tb.Helper()
-	var nodes []*redis.Client
 	for _, s := range c.nodes {
 		if s.cmd == nil {
 			s.Restart(tb)
 		}
-		cl := redis.NewClient(&redis.Options{Addr: s.Addr})
-		defer cl.Close()
-		nodes = append(nodes, cl)
 	}
-	c.awaitOK(tb, nodes)
+	c.awaitOK(tb)
 }
 
-func start(tb testing.TB, cluster bool) *Server {
+// start runs a redis-server; extra non-nil makes it a cluster node with
+// those arguments added.
+func start(tb testing.TB, extra []string) *Server {
 	tb.Helper()
 	var lastErr error
 	// A free port can be taken by someone else between our probe and
 	// redis-server's bind (or, for a cluster node, its bus port 10000
 	// above); try a few ports.
 	for range 5 {
-		s, err := tryStart(tb, cluster)
+		s, err := tryStart(tb, extra)
 		if err == nil {
 			return s
 		}
@@ -193,7 +408,8 @@ func start(tb testing.TB, cluster bool) *Server {
 	return nil
 }
 
-func tryStart(tb testing.TB, cluster bool) (*Server, error) {
+func tryStart(tb testing.TB, extra []string) (*Server, error) {
+	cluster := extra != nil
 	port, err := freePort(cluster)
 	if err != nil {
 		return nil, err
@@ -206,6 +422,7 @@ func tryStart(tb testing.TB, cluster bool) (*Server, error) {
 	}
 	if cluster {
 		args = append(args, "--cluster-enabled", "yes", "--cluster-config-file", dir+"/nodes.conf")
+		args = append(args, extra...)
 	}
 	s := &Server{Addr: net.JoinHostPort("127.0.0.1", strconv.Itoa(port)), args: args}
 	if err := s.launch(); err != nil {

@@ -6,6 +6,11 @@ import (
 	"os"
 	"strings"
 	"testing"
+	"time"
+
+	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/budget/redistest"
 )
@@ -91,4 +96,53 @@ func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
 	if len(seen) != n {
 		t.Errorf("three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
 	}
+}
+
+// TestClusterWithReplicasFailsOver checks StartClusterWith's replicas and
+// the failover helpers: each slot range has a master and a replica of its
+// own, a write to a master reaches its replica, and after the master is
+// SIGKILLed (Stop) its replica takes the slots over (AwaitHealthy, MasterOf)
+// with the write. Pause stops a server answering until Resume.
+func TestClusterWithReplicasFailsOver(t *testing.T) {
+	cl := redistest.StartClusterWith(t, redistest.ClusterOptions{Masters: 3, Replicas: 1, NodeTimeout: time.Second})
+	require.Len(t, cl.Addrs, 6)
+	ctx := context.Background()
+	slots, err := cl.Client(t).ClusterSlots(ctx).Result()
+	require.NoError(t, err)
+	seen := map[string]bool{}
+	for _, s := range slots {
+		require.Len(t, s.Nodes, 2, "slots %d-%d: a master and its replica", s.Start, s.End)
+		for _, n := range s.Nodes {
+			assert.False(t, seen[n.Addr], "%s serves two slot ranges", n.Addr)
+			seen[n.Addr] = true
+		}
+	}
+	assert.Len(t, seen, 6)
+
+	const key = "k:{a}"
+	master := cl.MasterOf(t, key)
+	replicas := cl.ReplicasOf(t, key)
+	require.Len(t, replicas, 1)
+	mc := master.Client(t)
+	require.NoError(t, mc.Set(ctx, key, "kept", 0).Err())
+	acked, err := mc.Do(ctx, "WAIT", 1, 5000).Int()
+	require.NoError(t, err)
+	require.Equal(t, 1, acked, "replicas that confirmed the write")
+
+	replicas[0].Pause(t)
+	rc := redis.NewClient(&redis.Options{Addr: replicas[0].Addr, ReadTimeout: 200 * time.Millisecond, MaxRetries: -1})
+	defer rc.Close()
+	assert.Error(t, rc.Ping(ctx).Err(), "a paused server answered")
+	replicas[0].Resume(t)
+	assert.NoError(t, rc.Ping(ctx).Err(), "after Resume")
+
+	master.Stop()
+	assert.False(t, master.Running())
+	cl.AwaitHealthy(t)
+	promoted := cl.MasterOf(t, key)
+	assert.Equal(t, replicas[0].Addr, promoted.Addr, "the replica took over")
+	assert.Empty(t, cl.ReplicasOf(t, key), "a failed master is no replica")
+	got, err := promoted.Client(t).Get(ctx, key).Result()
+	require.NoError(t, err)
+	assert.Equal(t, "kept", got)
 }

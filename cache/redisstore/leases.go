@@ -69,7 +69,7 @@ func (s *Store) Claim(ctx context.Context, key string) (release func(context.Con
 	if err != nil {
 		return nil, s.fail(ctx, "claim", key, err)
 	}
-	s.ok()
+	s.ok(ctx, key)
 	if took {
 		return s.hold(key, token), nil
 	}

@@ -42,9 +42,18 @@
 // client with ContextTimeoutEnabled, or its ReadTimeout and WriteTimeout
 // bound the commands instead). A call that fails because Redis could not be
 // reached or did not answer in time fails with an error wrapping
-// ErrUnavailable, and for Options.Cooldown afterwards calls fail at once the
-// same way instead of waiting on a dead server again; then they go to Redis
-// again, so the store recovers by itself when Redis is back.
+// ErrUnavailable, and for Options.Cooldown afterwards calls to the same node
+// fail at once the same way instead of waiting on a dead server again,
+// except for one probe call per tenth of the cooldown. A call that reaches
+// the node ends its cooldown, so the store recovers by itself within a
+// tenth of the cooldown of Redis answering again.
+//
+// On a Redis Cluster the node is the primary of the key's slot in the
+// client's slot map (go-redis's MasterForKey): a dead primary cools down
+// only the keys of its slots, and the other primaries' keys are served as
+// usual. Once go-redis has reloaded its slot map after a failover
+// (ClusterOptions.ClusterStateReloadInterval, or ReloadState), the keys go
+// to the promoted replica, which has no cooldown of its own.
 //
 // # Ownership
 //
@@ -107,8 +116,10 @@ type Options struct {
 	// Timeout bounds each call (each Redis round trip of it). 0 means
 	// DefaultTimeout; -1 means only the caller's context bounds it.
 	Timeout time.Duration
-	// Cooldown is how long, after a call found Redis unavailable, calls
-	// fail at once with ErrUnavailable instead of trying. 0 means
+	// Cooldown is how long, after a call found its node unavailable
+	// (on a cluster: the primary of its key's slot, see the package doc),
+	// calls to that node fail at once with ErrUnavailable instead of
+	// trying, but for one probe call per tenth of it. 0 means
 	// DefaultCooldown; -1 means always try.
 	Cooldown time.Duration
 	// CompressMin is the smallest value length that is S2-compressed;
@@ -146,10 +157,16 @@ type Store struct {
 	leaseTTL    time.Duration
 	leasePoll   time.Duration
 	now         func() time.Time
-	downUntil   atomic.Int64 // Unix ns until which calls fail fast
 	closed      atomic.Bool
 	closeCtx    context.Context // ends at Close; lease renewals run under it
 	cancel      context.CancelFunc
+	// cooling counts the nodes in downUntil, so that calls skip the
+	// lookup while none cools down.
+	cooling atomic.Int64
+	// downMu guards downUntil.
+	downMu sync.Mutex
+	// downUntil holds the cooldown of each node (see node) that has one.
+	downUntil map[string]*cooldown
 	// mu orders starting a renewal (renewals.Add) with Close, which sets
 	// closed under it and then waits for the renewals.
 	mu            sync.Mutex
@@ -181,6 +198,7 @@ func New(c redis.UniversalClient, opts Options) (*Store, error) {
 		now:           opts.Now,
 		releaseScript: redis.NewScript(releaseLua),
 		renewScript:   redis.NewScript(renewLua),
+		downUntil:     map[string]*cooldown{},
 	}
 	if s.prefix == "" {
 		s.prefix = DefaultPrefix
@@ -236,8 +254,10 @@ func (s *Store) enter(ctx context.Context, key string) (context.Context, context
 	if key == "" {
 		return nil, nil, errors.New("redisstore: empty key")
 	}
-	if until := s.downUntil.Load(); until != 0 && s.now().UnixNano() < until {
-		return nil, nil, fmt.Errorf("%w (cooling down after a failure)", ErrUnavailable)
+	if s.cooling.Load() > 0 {
+		if node, cool := s.coolingDown(ctx, key); cool {
+			return nil, nil, fmt.Errorf("%w (%s cooling down after a failure)", ErrUnavailable, nodeName(node))
+		}
 	}
 	if s.timeout > 0 {
 		c, cancel := context.WithTimeout(ctx, s.timeout)
@@ -248,25 +268,95 @@ func (s *Store) enter(ctx context.Context, key string) (context.Context, context
 
 // fail classifies err from a Redis call made under a context derived from
 // ctx: the caller's own cancellation stays as it is, and a failure to reach
-// Redis in time becomes ErrUnavailable and starts the cooldown.
+// Redis in time becomes ErrUnavailable and starts (or extends) the cooldown
+// of key's node.
 func (s *Store) fail(ctx context.Context, op, key string, err error) error {
 	if ctxErr := ctx.Err(); ctxErr != nil && errors.Is(err, ctxErr) {
 		return fmt.Errorf("redisstore: %s %.16s…: %w", op, key, err)
 	}
 	if unavailable(err) {
 		if s.cooldown > 0 {
-			s.downUntil.Store(s.now().Add(s.cooldown).UnixNano())
+			node := s.node(ctx, key)
+			now := s.now().UnixNano()
+			s.downMu.Lock()
+			c, ok := s.downUntil[node]
+			if !ok {
+				c = &cooldown{}
+				s.downUntil[node] = c
+				s.cooling.Add(1)
+			}
+			c.until = now + int64(s.cooldown)
+			c.probe = now + int64(s.cooldown/probesPerCooldown)
+			s.downMu.Unlock()
 		}
 		return fmt.Errorf("redisstore: %s %.16s…: %w: %w", op, key, ErrUnavailable, err)
 	}
 	return fmt.Errorf("redisstore: %s %.16s…: %w", op, key, err)
 }
 
-// ok notes a call that reached Redis, ending any cooldown early.
-func (s *Store) ok() {
-	if s.downUntil.Load() != 0 {
-		s.downUntil.Store(0)
+// ok notes a call for key that reached Redis, ending its node's cooldown
+// early.
+func (s *Store) ok(ctx context.Context, key string) {
+	if s.cooling.Load() == 0 {
+		return
 	}
+	node := s.node(ctx, key)
+	s.downMu.Lock()
+	if _, ok := s.downUntil[node]; ok {
+		delete(s.downUntil, node)
+		s.cooling.Add(-1)
+	}
+	s.downMu.Unlock()
+}
+
+// node names the node a call for key goes to: on a cluster client the
+// address of the primary of key's slot in go-redis's current slot map,
+// else "" (one server).
+func (s *Store) node(ctx context.Context, key string) string {
+	if cc, ok := s.c.(*redis.ClusterClient); ok {
+		if c, err := cc.MasterForKey(ctx, s.valueKey(key)); err == nil {
+			return c.Options().Addr
+		}
+	}
+	return ""
+}
+
+// probesPerCooldown is how many calls per Cooldown go to a cooling node
+// anyway, one at a time, so that the store finds out within a tenth of
+// the cooldown that the node (or the cluster) answers again.
+const probesPerCooldown = 10
+
+// cooldown is one node's: calls fail fast until until, except one probe
+// whenever probe has passed. Guarded by Store.downMu.
+type cooldown struct {
+	until, probe int64 // Unix ns
+}
+
+// coolingDown reports whether a call for key must fail fast because its node
+// cools down, and names the node. A call let through as the node's probe
+// moves the next probe on.
+func (s *Store) coolingDown(ctx context.Context, key string) (string, bool) {
+	node := s.node(ctx, key)
+	now := s.now().UnixNano()
+	s.downMu.Lock()
+	defer s.downMu.Unlock()
+	c, ok := s.downUntil[node]
+	switch {
+	case !ok || now >= c.until:
+		return node, false
+	case now >= c.probe:
+		c.probe = now + int64(s.cooldown/probesPerCooldown)
+		return node, false
+	}
+	return node, true
+}
+
+// nodeName renders a node for an error message.
+func nodeName(node string) string {
+	if node == "" {
+		return "redis"
+	}
+	return node
 }
 
 // unavailable reports whether err means Redis was not reached or did not
@@ -305,13 +395,13 @@ func (s *Store) GetWithExpiry(ctx context.Context, key string) (value []byte, ex
 	defer cancel()
 	raw, err := s.c.Get(cctx, s.valueKey(key)).Bytes()
 	if errors.Is(err, redis.Nil) {
-		s.ok()
+		s.ok(ctx, key)
 		return nil, time.Time{}, false, nil
 	}
 	if err != nil {
 		return nil, time.Time{}, false, s.fail(ctx, "get", key, err)
 	}
-	s.ok()
+	s.ok(ctx, key)
 	value, exp, err := s.decode(raw)
 	if err != nil {
 		return nil, time.Time{}, false, fmt.Errorf("redisstore: get %.16s…: %w", key, err)
@@ -345,7 +435,7 @@ func (s *Store) Put(ctx context.Context, key string, value []byte, ttl time.Dura
 	if err := s.c.Set(cctx, s.valueKey(key), rec, ttl).Err(); err != nil {
 		return s.fail(ctx, "put", key, err)
 	}
-	s.ok()
+	s.ok(ctx, key)
 	return nil
 }
 
@@ -359,7 +449,7 @@ func (s *Store) Delete(ctx context.Context, key string) error {
 	if err := s.c.Del(cctx, s.valueKey(key)).Err(); err != nil {
 		return s.fail(ctx, "delete", key, err)
 	}
-	s.ok()
+	s.ok(ctx, key)
 	return nil
 }
 

@@ -8,6 +8,7 @@ import (
 	"net/http"
 	"net/url"
 	"text/tabwriter"
+	"time"
 
 	"github.com/spf13/cobra"
 
@@ -143,9 +144,23 @@ func printStandings(out io.Writer, ss []budget.Standing) error {
 		return nil
 	}
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(w, "TEAM\tPERIOD\tBUDGET USD\tSPENT USD\tHELD USD\tLEFT USD\t")
+	fmt.Fprintln(w, "TEAM\tPERIOD\tBUDGET USD\tSPENT USD\tHELD USD\tLEFT USD\tHOLDS\tHELD UNTIL\t")
+	holds := false
 	for _, b := range ss {
-		fmt.Fprintf(w, "%s\t%s\t%s\t%s\t%s\t%s\t\n", b.Team, b.Period, b.LimitUSD, b.SpentUSD, b.HeldUSD, b.LeftUSD)
+		until := "-"
+		if b.HeldUntil != nil {
+			until = b.HeldUntil.UTC().Format(time.RFC3339)
+		}
+		holds = holds || b.Holds > 0
+		fmt.Fprintf(w, "%s\t%s\t%s\t%s\t%s\t%s\t%d\t%s\t\n", b.Team, b.Period, b.LimitUSD, b.SpentUSD, b.HeldUSD, b.LeftUSD, b.Holds, until)
 	}
-	return w.Flush()
+	if err := w.Flush(); err != nil {
+		return err
+	}
+	if holds {
+		_, err := fmt.Fprintln(out, "HELD is reserved for calls not settled yet: each is settled by its call (retried while the store\n"+
+			"is unreachable), or, if its proxy died, charged in full at its lease's end, by HELD UNTIL at the latest.")
+		return err
+	}
+	return nil
 }

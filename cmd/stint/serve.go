@@ -406,7 +406,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 	)
 	if rc := cfg.Store.Redis; rc != nil {
 		client := s.redis
-		l := redisledger.New(client, redisledger.Options{Prefix: rc.prefix(), Location: gc.Location})
+		l := redisledger.New(client, rc.ledgerOptions(gc.Location))
 		ledger, journal, gc.Overrides = l, l, l
 		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix()})
 		if oa := cfg.Budget.OutageAllowance; oa != nil {

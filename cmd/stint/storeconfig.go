@@ -11,6 +11,8 @@ import (
 
 	"github.com/redis/go-redis/v9"
 	"go.yaml.in/yaml/v3"
+
+	"github.com/stintlab/stint/budget/redisledger"
 )
 
 // StoreConfig is the `store:` section: where state shared between replicas
@@ -61,6 +63,19 @@ type RedisConfig struct {
 	// fetching): after a replica dies mid-call, the others wait this long
 	// at most before one of them fetches. Default 10s.
 	Lease Duration `yaml:"lease"`
+	// SlotRefresh is how often a replica rereads a cluster's slot map
+	// while nothing fails; a call that finds its node unreachable, or the
+	// cluster changing, has it reread at once. It bounds how long a
+	// replica keeps sending a failed-over slot to its dead primary.
+	// Default 1s.
+	SlotRefresh Duration `yaml:"slot_refresh"`
+	// LedgerReplicas is how many replicas of a cluster primary must
+	// confirm a budget reservation or settlement (Redis WAIT, for at most
+	// half of timeout) before it counts, so that a failover cannot lose
+	// one; a reservation no replica confirms is not admitted (503). Only
+	// slots whose primary has a replica wait. 0 turns the wait off.
+	// Default 1.
+	LedgerReplicas *int `yaml:"ledger_replicas"`
 }
 
 // Defaults of the store.redis settings.
@@ -71,6 +86,10 @@ const (
 	defaultHotTTL = 2 * time.Second
 	// defaultLease is store.redis.lease's default.
 	defaultLease = 10 * time.Second
+	// defaultSlotRefresh is store.redis.slot_refresh's default.
+	defaultSlotRefresh = time.Second
+	// defaultLedgerReplicas is store.redis.ledger_replicas's default.
+	defaultLedgerReplicas = 1
 )
 
 // validateStore checks the store section; Validate calls it.
@@ -101,6 +120,12 @@ func (c *Config) validateStore(root *yaml.Node) error {
 	}
 	if r.Lease < 0 || (r.Lease > 0 && time.Duration(r.Lease) < 100*time.Millisecond) {
 		return bad(errors.New("lease must be at least 100ms"), "store", "redis", "lease")
+	}
+	if r.SlotRefresh < 0 || (r.SlotRefresh > 0 && time.Duration(r.SlotRefresh) < 100*time.Millisecond) {
+		return bad(errors.New("slot_refresh must be at least 100ms"), "store", "redis", "slot_refresh")
+	}
+	if r.LedgerReplicas != nil && *r.LedgerReplicas < 0 {
+		return bad(errors.New("ledger_replicas must be 0 or more"), "store", "redis", "ledger_replicas")
 	}
 	if strings.ContainsAny(r.Prefix, "{}") {
 		return bad(errors.New("prefix must not hold '{' or '}' (they pick the cluster slot)"), "store", "redis", "prefix")
@@ -155,9 +180,45 @@ func (r *RedisConfig) lease() time.Duration {
 	return time.Duration(r.Lease)
 }
 
+// slotRefresh is the interval of a cluster client's periodic slot map
+// reload.
+func (r *RedisConfig) slotRefresh() time.Duration {
+	if r.SlotRefresh == 0 {
+		return defaultSlotRefresh
+	}
+	return time.Duration(r.SlotRefresh)
+}
+
+// ledgerReplicas is how many replicas confirm a ledger write.
+func (r *RedisConfig) ledgerReplicas() int {
+	if r.LedgerReplicas == nil {
+		return defaultLedgerReplicas
+	}
+	return *r.LedgerReplicas
+}
+
+// ledgerOptions are the shared ledger's options.
+func (r *RedisConfig) ledgerOptions(loc *time.Location) redisledger.Options {
+	return redisledger.Options{Prefix: r.prefix(), Location: loc, Replicas: r.ledgerReplicas(), ReplicaWait: r.timeout() / 2}
+}
+
+// cluster reports whether the config names a cluster.
+func (r *RedisConfig) cluster() bool { return r.Cluster || len(r.Addrs) > 1 }
+
 // client opens a UniversalClient (standalone or cluster) and checks that it
 // answers. Every command is bounded by the configured timeout, so a dead
 // Redis turns into a quick error rather than a hung request.
+//
+// A cluster client follows a failover with go-redis's own machinery: it
+// rereads the slot map every slot_refresh (ClusterStateReloadInterval) and,
+// through followFailover, at once after a call finds its node unreachable
+// or the cluster changing; MOVED and ASK replies it follows itself. A dial
+// is tried once (DialerRetries 1), so a dead primary fails a call at once
+// instead of after go-redis's five attempts, and the cluster client's own
+// retries take over. ReadOnly stays off: every command goes to the slot's
+// primary, since an answer one replica stores must be a hit on the next
+// (a replica read can lag behind the write) and the ledger's and leases'
+// scripts write.
 func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error) {
 	timeout := r.timeout()
 	opts := &redis.UniversalOptions{
@@ -170,6 +231,7 @@ func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error)
 		WriteTimeout:  timeout,
 		PoolTimeout:   timeout,
 		MaxRetries:    1,
+		DialerRetries: 1,
 		// Callers' deadlines (the cache store's per-call timeout, a
 		// request's own) end a command, not only the socket timeouts.
 		ContextTimeoutEnabled: true,
@@ -180,7 +242,16 @@ func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error)
 	if r.TLS {
 		opts.TLSConfig = &tls.Config{MinVersion: tls.VersionTLS12}
 	}
-	c := redis.NewUniversalClient(opts)
+	var c redis.UniversalClient
+	if r.cluster() {
+		co := opts.Cluster()
+		co.ClusterStateReloadInterval = r.slotRefresh()
+		cc := redis.NewClusterClient(co)
+		cc.AddHook(followFailover{cc})
+		c = cc
+	} else {
+		c = redis.NewClient(opts.Simple())
+	}
 	pctx, cancel := context.WithTimeout(ctx, 4*timeout)
 	defer cancel()
 	if err := c.Ping(pctx).Err(); err != nil {
@@ -188,4 +259,62 @@ func (r *RedisConfig) client(ctx context.Context) (redis.UniversalClient, error)
 		return nil, fmt.Errorf("redis at %s: %w", strings.Join(r.Addrs, ","), err)
 	}
 	return c, nil
+}
+
+// followFailover is a go-redis hook on a cluster client: after a command or
+// pipeline fails because its node could not be reached or answered that
+// the cluster is changing, it asks the client to reload its slot map
+// (ReloadState, which go-redis runs in the background, one reload at a
+// time), so that the client follows a promoted replica as soon as the
+// cluster has one rather than at its next periodic reload.
+type followFailover struct{ c *redis.ClusterClient }
+
+// DialHook passes dials through.
+func (f followFailover) DialHook(next redis.DialHook) redis.DialHook { return next }
+
+// ProcessHook reloads the slot map after a command's topology failure.
+func (f followFailover) ProcessHook(next redis.ProcessHook) redis.ProcessHook {
+	return func(ctx context.Context, cmd redis.Cmder) error {
+		err := next(ctx, cmd)
+		if topologyFailure(err) {
+			f.c.ReloadState(ctx)
+		}
+		return err
+	}
+}
+
+// ProcessPipelineHook reloads the slot map after a pipeline's topology
+// failure.
+func (f followFailover) ProcessPipelineHook(next redis.ProcessPipelineHook) redis.ProcessPipelineHook {
+	return func(ctx context.Context, cmds []redis.Cmder) error {
+		err := next(ctx, cmds)
+		failed := topologyFailure(err)
+		for _, cmd := range cmds {
+			failed = failed || topologyFailure(cmd.Err())
+		}
+		if failed {
+			f.c.ReloadState(ctx)
+		}
+		return err
+	}
+}
+
+// topologyFailure reports whether err says a node was not reached (a
+// network error, a dead connection, a timeout) or the cluster's slots are
+// moving (CLUSTERDOWN, TRYAGAIN, MASTERDOWN, READONLY, LOADING, MOVED, ASK),
+// as opposed to an answer about the command itself.
+func topologyFailure(err error) bool {
+	if err == nil || errors.Is(err, redis.Nil) || errors.Is(err, context.Canceled) {
+		return false
+	}
+	var re redis.Error
+	if errors.As(err, &re) {
+		for _, p := range []string{"CLUSTERDOWN", "TRYAGAIN", "MASTERDOWN", "READONLY", "LOADING", "MOVED", "ASK"} {
+			if redis.HasErrorPrefix(err, p) {
+				return true
+			}
+		}
+		return false
+	}
+	return true
 }

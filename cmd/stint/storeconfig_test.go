@@ -21,6 +21,9 @@ func TestStoreConfigErrorsNameField(t *testing.T) {
 		{"negative lease", head + "    lease: -3s\n", 4, "store.redis.lease"},
 		{"cache not a bool", head + "    cache: sometimes\n", 4, "want true or false"},
 		{"brace in prefix", head + "    prefix: \"a{b}\"\n", 4, "store.redis.prefix"},
+		{"tiny slot_refresh", head + "    slot_refresh: 5ms\n", 4, "store.redis.slot_refresh"},
+		{"negative slot_refresh", head + "    slot_refresh: -1s\n", 4, "store.redis.slot_refresh"},
+		{"negative ledger_replicas", head + "    ledger_replicas: -1\n", 4, "store.redis.ledger_replicas"},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -40,15 +43,17 @@ func TestStoreConfigErrorsNameField(t *testing.T) {
 
 func TestStoreConfigValues(t *testing.T) {
 	tests := []struct {
-		name   string
-		extra  string
-		shared bool
-		hotTTL time.Duration
-		lease  time.Duration
+		name        string
+		extra       string
+		shared      bool
+		hotTTL      time.Duration
+		lease       time.Duration
+		slotRefresh time.Duration
+		replicas    int
 	}{
-		{"defaults", "", true, defaultHotTTL, defaultLease},
-		{"set", "    cache: true\n    hot_ttl: 500ms\n    lease: 3s\n", true, 500 * time.Millisecond, 3 * time.Second},
-		{"cache off", "    cache: false\n", false, defaultHotTTL, defaultLease},
+		{"defaults", "", true, defaultHotTTL, defaultLease, defaultSlotRefresh, defaultLedgerReplicas},
+		{"set", "    cache: true\n    hot_ttl: 500ms\n    lease: 3s\n    slot_refresh: 250ms\n    ledger_replicas: 2\n", true, 500 * time.Millisecond, 3 * time.Second, 250 * time.Millisecond, 2},
+		{"cache off, no replica wait", "    cache: false\n    ledger_replicas: 0\n", false, defaultHotTTL, defaultLease, defaultSlotRefresh, 0},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
@@ -59,6 +64,12 @@ func TestStoreConfigValues(t *testing.T) {
 			r := cfg.Store.Redis
 			if r.sharedCache() != tt.shared || r.hotTTL() != tt.hotTTL || r.lease() != tt.lease {
 				t.Errorf("shared %v, hot_ttl %v, lease %v; want %v, %v, %v", r.sharedCache(), r.hotTTL(), r.lease(), tt.shared, tt.hotTTL, tt.lease)
+			}
+			if r.slotRefresh() != tt.slotRefresh || r.ledgerReplicas() != tt.replicas {
+				t.Errorf("slot_refresh %v, ledger_replicas %d; want %v, %d", r.slotRefresh(), r.ledgerReplicas(), tt.slotRefresh, tt.replicas)
+			}
+			if got := r.ledgerOptions(nil); got.Replicas != tt.replicas || got.ReplicaWait != r.timeout()/2 {
+				t.Errorf("ledger options %+v, want %d replicas waited for up to %v", got, tt.replicas, r.timeout()/2)
 			}
 		})
 	}

@@ -16,6 +16,14 @@
 // upstream's name for the shared ceiling) lives in one cluster slot. Times
 // are the caller's, in microseconds; replicas should keep their clocks in
 // sync.
+//
+// A Redis Cluster failover can lose a key's last TAT updates (replication
+// is asynchronous): the promoted replica then admits the units those
+// requests took once more, so a window may let through up to that many
+// extra units. That bends a rate ceiling for a moment but costs no money
+// no budget covers (budgets are redisledger's, which waits for replicas),
+// so the limiter does not wait for replicas; while a key's primary cannot
+// be reached, Reserve fails and the caller refuses the call.
 package redisrate
 
 import (

@@ -15,9 +15,13 @@ import (
 // Server is one running redis-server, with Stop and Restart.
 type Server = redistest.Server
 
-// Cluster is a running Redis Cluster of masters only, with Stop and
-// Restart of all its nodes.
+// Cluster is a running Redis Cluster, with Stop and Restart of all its
+// nodes, and MasterOf, ReplicasOf and AwaitHealthy for failovers.
 type Cluster = redistest.Cluster
+
+// ClusterOptions shape a cluster for StartClusterWith: masters, replicas
+// per master, cluster-node-timeout.
+type ClusterOptions = redistest.ClusterOptions
 
 // Start runs a standalone redis-server on a free loopback port, killed
 // when tb's test ends.
@@ -31,4 +35,11 @@ func Start(tb testing.TB) *Server {
 func StartCluster(tb testing.TB, n int) *Cluster {
 	tb.Helper()
 	return redistest.StartCluster(tb, n)
+}
+
+// StartClusterWith runs a Redis Cluster shaped by o on free loopback
+// ports, and returns once it is ok and every replica is synced.
+func StartClusterWith(tb testing.TB, o ClusterOptions) *Cluster {
+	tb.Helper()
+	return redistest.StartClusterWith(tb, o)
 }

@@ -15,6 +15,13 @@
 // gobreaker retries a failed Lock every 500 ms for up to 5 s, so a Redis
 // that dies in the middle of a record can hold that one record up to 5 s;
 // the breaker then keeps to local state for a while (breaker.StoreRetry).
+//
+// A Redis Cluster failover can lose a breaker's last state change
+// (replication is asynchronous): the shared state is then an older one (say,
+// closed again, or still open) until the next outcome is recorded, which
+// costs at most a few calls to an upstream that is down or a few refusals
+// of one that is up; no budget depends on it. The lock's key may be lost
+// too, which lets a second holder in at most once, as an expired lock does.
 package redisstate
 
 import (
