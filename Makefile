@@ -10,7 +10,7 @@ FUZZSCALE ?= 1
 # The revision stint version reports when Go's VCS stamping is off
 # (-buildvcs=false, or a tree it cannot read as a checkout).
 REVISION ?= $(shell git rev-parse HEAD 2>/dev/null)
-LDFLAGS  := -X main.buildRevision=$(REVISION)
+LDFLAGS  := -X github.com/stintlab/stint/internal/buildinfo.linkedRevision=$(REVISION)
 
 # Fuzz targets run briefly by `make test` (package:target:executions).
 FUZZ_TARGETS := \

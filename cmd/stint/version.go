@@ -2,55 +2,21 @@ package main
 
 import (
 	"fmt"
-	"runtime"
 	"runtime/debug"
 	"strings"
 
 	"github.com/spf13/cobra"
-)
 
-// buildRevision and buildVersion may be set at link time (make build
-// does: -ldflags "-X main.buildRevision=$(git rev-parse HEAD)"), for
-// builds without Go's VCS stamping (-buildvcs=false, or a copy of the tree
-// without .git). They are never written at run time.
-var (
-	buildRevision string
-	buildVersion  string
+	"github.com/stintlab/stint/internal/buildinfo"
 )
 
 // buildFacts is what a binary knows of its build.
-type buildFacts struct {
-	Version  string // the module version, "(devel)" for a build from a checkout
-	Revision string // the VCS revision, "" when unknown
-	Modified bool   // the tree had uncommitted changes
-	Go       string
-}
+type buildFacts struct{ buildinfo.Facts }
 
 // readBuild reads the binary's build facts from Go's build information
-// (info, when ok), falling back to what the linker set (linkedRevision,
-// linkedVersion).
+// (info, when ok), falling back to what the linker set.
 func readBuild(info *debug.BuildInfo, ok bool, linkedRevision, linkedVersion string) buildFacts {
-	f := buildFacts{Version: "(devel)", Go: runtime.Version()}
-	if ok {
-		if info.Main.Version != "" {
-			f.Version = info.Main.Version
-		}
-		for _, s := range info.Settings {
-			switch s.Key {
-			case "vcs.revision":
-				f.Revision = s.Value
-			case "vcs.modified":
-				f.Modified = s.Value == "true"
-			}
-		}
-	}
-	if f.Revision == "" {
-		f.Revision = linkedRevision
-	}
-	if linkedVersion != "" && f.Version == "(devel)" {
-		f.Version = linkedVersion
-	}
-	return f
+	return buildFacts{buildinfo.Read(info, ok, linkedRevision, linkedVersion)}
 }
 
 // String is the text of stint version and stint --version.
@@ -70,10 +36,7 @@ func (f buildFacts) String() string {
 }
 
 // currentBuild is this binary's build facts.
-func currentBuild() buildFacts {
-	info, ok := debug.ReadBuildInfo()
-	return readBuild(info, ok, buildRevision, buildVersion)
-}
+func currentBuild() buildFacts { return buildFacts{buildinfo.Current()} }
 
 func newVersionCmd() *cobra.Command {
 	return &cobra.Command{

@@ -8,9 +8,8 @@ import (
 	"io"
 	"os"
 	"path/filepath"
-	"runtime"
-	"runtime/debug"
 
+	"github.com/stintlab/stint/internal/buildinfo"
 	"github.com/stintlab/stint/searcher/policy"
 	"github.com/stintlab/stint/searcher/reward"
 	"github.com/stintlab/stint/searcher/task"
@@ -48,22 +47,12 @@ func settingsOf(t *task.Task, actions int, pol Policy) Settings {
 	return s
 }
 
-// versions reads the binary's build information (its module version, or
-// its VCS revision for a development build, and the Go release) and
-// records the backbone.
+// versions names the build (buildinfo.Facts.Label: the module version,
+// else the VCS revision Go stamped or the linker was given, else
+// "unknown") and the Go release, and records the backbone.
 func versions(b Backbone) Versions {
-	v := Versions{Format: resultsFormat, Stint: "unknown", Go: runtime.Version(), Backbone: b}
-	info, ok := debug.ReadBuildInfo()
-	if !ok {
-		return v
-	}
-	v.Stint = info.Main.Version
-	for _, s := range info.Settings {
-		if s.Key == "vcs.revision" && (v.Stint == "" || v.Stint == "(devel)") {
-			v.Stint = s.Value
-		}
-	}
-	return v
+	f := buildinfo.Current()
+	return Versions{Format: resultsFormat, Stint: f.Label(), Go: f.Go, Backbone: b}
 }
 
 // Backbone identifies a model file: its name, size and SHA-256.
