@@ -161,12 +161,9 @@ func writeDemoTask(f demoFlags) (string, error) {
 		return "", errors.New("--steps must be positive")
 	}
 	text := strings.NewReplacer(
-		"train: reading-corner-train.jsonl", "train: "+filepath.Join(dir, "reading-corner-train.jsonl"),
-		"dev: reading-corner-dev.jsonl", "dev: "+filepath.Join(dir, "reading-corner-dev.jsonl"),
-		"test: reading-corner-test.jsonl", "test: "+filepath.Join(dir, "reading-corner-test.jsonl"),
 		"steps: 90", fmt.Sprintf("steps: %d", f.steps),
 		"seed: 7", fmt.Sprintf("seed: %d", f.seed),
-	).Replace(task.ExampleFile)
+	).Replace(task.ExampleAt(dir))
 	if err := os.MkdirAll(f.data, 0o700); err != nil {
 		return "", err
 	}

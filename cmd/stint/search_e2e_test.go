@@ -370,10 +370,9 @@ func TestProgressLine(t *testing.T) {
 			}
 		})
 	}
-	var b strings.Builder
-	printProgress(&b, search.Progress{Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now())
-	if !strings.Contains(b.String(), "floored 12.5%") {
-		t.Errorf("progress line %q lacks the floored share", b.String())
+	line := progressText(search.Progress{Phase: search.PhaseSearch, Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now(), time.Now())
+	if !strings.Contains(line, "floored 12.5%") {
+		t.Errorf("progress line %q lacks the floored share", line)
 	}
 }
 
