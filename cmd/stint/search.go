@@ -51,6 +51,8 @@ type searchFlags struct {
 	// resumeCommand is the command line that resumes this search, said
 	// when it stops part way; "" says to add --resume.
 	resumeCommand string
+	// totals, when set, receives the search's call totals.
+	totals *scorer.Totals
 }
 
 func newSearchCmd() *cobra.Command {
@@ -317,6 +319,9 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if oc.Stopped {
 		fmt.Fprintf(out, "stopped early after step %d; resume with --resume from %s\n", len(oc.Results.History), filepath.Join(f.out, search.CheckpointFile))
 		return nil
+	}
+	if f.totals != nil {
+		*f.totals = oc.Results.Spending
 	}
 	if f.json {
 		return search.WriteResults(results, oc.Results)

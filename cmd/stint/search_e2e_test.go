@@ -119,7 +119,7 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	if err != nil {
 		t.Fatalf("stint demo: %v\n%s", err, out)
 	}
-	m := regexp.MustCompile(`upstream calls (\d+), served from the cache [0-9.]+%, calls saved (\d+)`).FindStringSubmatch(out)
+	m := regexp.MustCompile(`upstream calls (\d+), [0-9.]+% of calls from the cache, calls saved (\d+)`).FindStringSubmatch(out)
 	if m == nil {
 		t.Fatalf("no savings line in:\n%s", out)
 	}
