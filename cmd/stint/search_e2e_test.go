@@ -57,9 +57,11 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
 	first, second := t.TempDir(), t.TempDir()
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e"); err != nil {
+	out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e")
+	if err != nil {
 		t.Fatalf("search run: %v\n%s", err, out)
 	}
+	assertProgressInEveryPhase(t, out)
 	recorded := upstreamCalls(t, c)
 	if recorded == 0 {
 		t.Fatal("the search made no upstream call")
@@ -105,6 +107,28 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {
 		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {
 			t.Errorf("%s missing or empty: %v", name, err)
+		}
+	}
+}
+
+// assertProgressInEveryPhase: a search whose output is not a terminal
+// prints a plain progress line (no carriage return) with a time left in
+// every phase: the steps, the choice, each baseline of the example task and
+// the evaluation.
+func assertProgressInEveryPhase(t *testing.T, out string) {
+	t.Helper()
+	if strings.Contains(out, "\r") {
+		t.Errorf("progress redrawn with carriage returns on a non-terminal:\n%q", out)
+	}
+	for _, phase := range []*regexp.Regexp{
+		regexp.MustCompile(`(?m)^\[[#.]+\] step \d+/\d+ .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] choice +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] best-of-n +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] halving +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] evaluation +\d+/\d+ contenders .* eta \S+$`),
+	} {
+		if !phase.MatchString(out) {
+			t.Errorf("no progress line like %s in:\n%s", phase, out)
 		}
 	}
 }
