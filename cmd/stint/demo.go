@@ -202,7 +202,7 @@ func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since tim
 	}
 	fmt.Fprintf(out, "both: scoring calls %d, upstream calls %d, %.1f%% of calls from the cache, calls saved %d; %.1f%% of texts from the cache\n",
 		all.Calls, all.Upstream, 100*all.CallShare(), all.Calls-all.Upstream, 100*all.CacheShare())
-	fmt.Fprintf(out, "spend journal: %d entries (a call answered partly from the cache is two: its charge and its saving), %.1f%% of entries from the cache (stint statement's CACHED)\n",
+	fmt.Fprintf(out, "spend journal: %d entries (a call answered partly from the cache is two: its charge and its saving), %.1f%% of entries from the cache (stint statement's ENTRIES FROM CACHE)\n",
 		t.Requests, 100*t.CacheShare)
 	fmt.Fprintf(out, "spent %s USD, saved %s USD (estimates from the demo prices)\n", t.SpentUSD, t.SavedUSD)
 	return nil

@@ -89,7 +89,13 @@ With --replay the run is answered from the proxy's journal only: it makes no
 upstream call and writes the same results.json.
 
 Outputs in --out: results.json, history.csv, report.md and the learning
-curve as learning-curve.png and .svg.`,
+curve as learning-curve.png and .svg.
+
+A search that stops part way (a 402 when the team's budget runs out, the
+task's spend cap) keeps results.json with the contenders found so far and a
+checkpoint, and prints the command that goes on: the same one with
+--resume, which takes the answers it already had instead of buying them
+again. Progress goes to stderr, one line per phase with the time left.`,
 		Example: `  stint search run orchard.yaml --out ./orchard-out
   STINT_KEY=... stint search run task.yaml --proxy http://10.0.0.5:8787 --run orchard-7 --replay
   stint search run task.yaml --seed 3 --steps 60 --json > results.json`,

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strconv"
 	"strings"
 	"testing"
@@ -108,13 +109,17 @@ func TestBudgetRefusalMidBaselineResumesAndReplays(t *testing.T) {
 	require.NoError(t, err, out)
 	out, err = runCLI(t, append(args, "--resume")...)
 	require.NoError(t, err, out)
+	spent := regexp.MustCompile(`texts from the cache\), ([0-9.]+) USD reported by the proxy`).FindStringSubmatch(out)
+	require.NotNil(t, spent, "no summary line in:\n%s", out)
 	resumed, res := readResults(t, dir)
 	assert.Empty(t, res.Stopped)
 
 	again := t.TempDir()
 	out, err = runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--key", key, "--out", again, "--run", "reading-402", "--replay")
 	require.NoError(t, err, out)
-	assert.Contains(t, out, "the recording was charged", "the replay's summary names the recorded spend")
+	charged := regexp.MustCompile(`the recording was charged ([0-9.]+) USD`).FindStringSubmatch(out)
+	require.NotNil(t, charged, "the replay's summary names the recorded spend:\n%s", out)
+	assert.Equal(t, spent[1], charged[1], "the replay's summary says what the resumed search reported")
 	replayed, _ := readResults(t, again)
 	// Source: the record/replay contract (README "Record and replay a
 	// run"): a replay answers every call as recorded, so its results are
