@@ -333,12 +333,16 @@ func Run(ctx context.Context, o Options) (Results, error) {
 		return r.fail(res, nil, 0, err)
 	}
 	choice, err := r.choose(ctx)
-	if err != nil {
-		return r.fail(res, nil, 0, err)
-	}
 	res.Choice = choice
 	rl := Contender{Method: MethodRL, Prompt: choice.Prompt}
 	rl.searched(r.rl.Tally())
+	if err != nil {
+		var found []Contender
+		if errors.Is(err, ErrSpendCap) {
+			found = append(found, rl) // chosen, then the cap was reached
+		}
+		return r.fail(res, found, 0, err)
+	}
 	contenders := []Contender{rl}
 	if r.greedyText != rl.Prompt {
 		greedy := rl
