@@ -41,21 +41,21 @@ func readResults(t *testing.T, dir string) ([]byte, search.Results) {
 	return b, r
 }
 
-// TestBudgetRefusalMidBaselineResumesAndReplays: a search whose team budget
-// runs out in the best-of-n baseline (402) keeps what it finished
-// (results.json with the contenders found so far, a checkpoint) and prints
-// the exact command that goes on. Its budget raised, that command finishes
-// the search; replayed from the proxy's journal, the search writes the
-// same results.json byte for byte, spend included, and both equal an
-// uninterrupted search's on a fresh proxy.
-func TestBudgetRefusalMidBaselineResumesAndReplays(t *testing.T) {
+// TestBudgetRefusalResumesAndReplays: a search whose team budget runs out
+// part way (402), in the best-of-n baseline or in the search's steps before
+// its first checkpoint, keeps what it finished (results.json with the
+// contenders found so far, a checkpoint) and prints the exact command that
+// goes on. Its budget raised, that command finishes the search; replayed
+// from the proxy's journal, the search writes the same results.json byte
+// for byte, spend included, and both equal an uninterrupted search's on a
+// fresh proxy.
+func TestBudgetRefusalResumesAndReplays(t *testing.T) {
 	model := modeltest.Path(t)
 	t.Setenv("STINT_MODEL", model)
 	taskPath := shortTask(t)
 
-	// The uninterrupted search, on a proxy of its own, says where the
-	// budget runs out: past the RL search and its choice, half way
-	// through best-of-n.
+	// The uninterrupted search, on a proxy of its own, says where a
+	// budget runs out.
 	cfg, _, _ := pricedConfig(t, model, t.TempDir(), "")
 	free := startStint(t, nil, "serve", "--config", cfg)
 	whole := t.TempDir()
@@ -64,71 +64,87 @@ func TestBudgetRefusalMidBaselineResumesAndReplays(t *testing.T) {
 	wholeJSON, wholeRes := readResults(t, whole)
 	bon, ok := wholeRes.Contender(task.BestOfN)
 	require.True(t, ok, "the example runs best-of-n")
-	budget := wholeRes.Best.SearchSpendUSD + bon.SearchSpendUSD/2
 
-	cfg, key, admin := pricedConfig(t, model, t.TempDir(), strconv.FormatFloat(budget, 'f', 9, 64))
-	c := startStint(t, nil, "serve", "--config", cfg)
-	proxyURL := "http://" + c.addr + "/v1"
-	dir := t.TempDir()
-	args := []string{"search", "run", taskPath, "--proxy", proxyURL, "--key", key, "--out", dir, "--run", "reading-402"}
-	out, err = runCLI(t, args...)
-	require.Error(t, err, "the budget should run out:\n%s", out)
-	assert.Contains(t, err.Error(), "budget exhausted")
-	assert.Contains(t, err.Error(), "best-of-n baseline")
-
-	// What was finished is kept: the RL search's contenders, not yet
-	// evaluated, and a checkpoint.
-	_, partial := readResults(t, dir)
-	assert.NotEmpty(t, partial.Stopped)
-	var methods []string
-	for _, ct := range partial.Ranking {
-		methods = append(methods, ct.Method)
-		assert.Equal(t, -1.0, ct.DevAcc, "%s is not evaluated yet", ct.Method)
+	tests := []struct {
+		name   string
+		budget float64
+		extra  []string
+		where  string   // in the error
+		found  []string // contenders kept
+	}{
+		// Past the RL search and its choice, half way through best-of-n.
+		{"in a baseline", wholeRes.Best.SearchSpendUSD + bon.SearchSpendUSD/2, nil, "best-of-n baseline", []string{search.MethodRL, search.MethodEmpty, search.MethodManual}},
+		// A third of the way through the steps, with no checkpoint
+		// written yet: it goes on from the start.
+		{"in the steps", wholeRes.Best.SearchSpendUSD / 3, []string{"--checkpoint-every", "100"}, "step", nil},
 	}
-	assert.Contains(t, methods, search.MethodRL)
-	assert.NotContains(t, methods, task.BestOfN)
-	assert.FileExists(t, filepath.Join(dir, search.CheckpointFile))
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cfg, key, admin := pricedConfig(t, model, t.TempDir(), strconv.FormatFloat(tt.budget, 'f', 9, 64))
+			c := startStint(t, nil, "serve", "--config", cfg)
+			proxyURL := "http://" + c.addr + "/v1"
+			dir := t.TempDir()
+			args := append([]string{"search", "run", taskPath, "--proxy", proxyURL, "--key", key, "--out", dir, "--run", "reading-402"}, tt.extra...)
+			out, err := runCLI(t, args...)
+			require.Error(t, err, "the budget should run out:\n%s", out)
+			assert.Contains(t, err.Error(), "budget exhausted")
+			assert.Contains(t, err.Error(), tt.where)
 
-	// The hint names the command that goes on, which is this one with
-	// --resume.
-	want := "stint search run " + strings.Join(quoteAll(args[3:]), " ")
-	line := ""
-	for _, l := range strings.Split(out, "\n") {
-		if strings.Contains(l, "--resume") {
-			line = strings.TrimSpace(l)
-		}
+			// What was finished is kept: the contenders found, not yet
+			// evaluated, and a checkpoint.
+			_, partial := readResults(t, dir)
+			assert.NotEmpty(t, partial.Stopped)
+			var methods []string
+			for _, ct := range partial.Ranking {
+				methods = append(methods, ct.Method)
+				assert.Equal(t, -1.0, ct.DevAcc, "%s is not evaluated yet", ct.Method)
+			}
+			for _, m := range tt.found {
+				assert.Contains(t, methods, m)
+			}
+			assert.NotContains(t, methods, task.BestOfN)
+			assert.FileExists(t, filepath.Join(dir, search.CheckpointFile))
+
+			// The hint names the command that goes on: this one with
+			// --resume.
+			line := ""
+			for _, l := range strings.Split(out, "\n") {
+				if strings.Contains(l, "--resume") {
+					line = strings.TrimSpace(l)
+				}
+			}
+			require.NotEmpty(t, line, "no --resume command in:\n%s", out)
+			for _, want := range []string{"stint search run " + taskPath + " ", "--proxy " + proxyURL, "--key " + key, "--out " + dir, "--run reading-402", strings.Join(tt.extra, " ")} {
+				assert.Contains(t, line, want)
+			}
+			assert.Contains(t, out, "stint budget set")
+
+			out, err = runCLI(t, "budget", "set", "--team", "lab", "--usd", "100", "--per", "total", "--proxy", proxyURL, "--key", admin)
+			require.NoError(t, err, out)
+			out, err = runCLI(t, append(args, "--resume")...)
+			require.NoError(t, err, out)
+			spent := regexp.MustCompile(`texts from the cache\), ([0-9.]+) USD reported by the proxy`).FindStringSubmatch(out)
+			require.NotNil(t, spent, "no summary line in:\n%s", out)
+			resumed, res := readResults(t, dir)
+			assert.Empty(t, res.Stopped)
+
+			again := t.TempDir()
+			out, err = runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--key", key, "--out", again, "--run", "reading-402", "--replay")
+			require.NoError(t, err, out)
+			charged := regexp.MustCompile(`the recording was charged ([0-9.]+) USD`).FindStringSubmatch(out)
+			require.NotNil(t, charged, "the replay's summary names the recorded spend:\n%s", out)
+			assert.Equal(t, spent[1], charged[1], "the replay's summary says what the resumed search reported")
+			replayed, _ := readResults(t, again)
+			// Source: the record/replay contract (README "Record and
+			// replay a run"): a replay answers every call as recorded, so
+			// its results are the recorded run's, byte for byte.
+			assert.True(t, string(resumed) == string(replayed), "the replay of the resumed search differs:\n%s\nvs\n%s", resumed, replayed)
+			// Source: hand-reasoned: the resumed search asked no call
+			// twice and the refused calls were not charged, so it made
+			// the uninterrupted search's calls at its charges.
+			assert.True(t, string(wholeJSON) == string(resumed), "the resumed search differs from the uninterrupted one:\n%s\nvs\n%s", wholeJSON, resumed)
+		})
 	}
-	require.NotEmpty(t, line, "no --resume command in:\n%s", out)
-	assert.Contains(t, line, "--proxy "+proxyURL)
-	assert.Contains(t, line, "--out "+dir)
-	assert.Contains(t, line, "--run reading-402")
-	assert.True(t, strings.HasPrefix(line, "stint search run "+taskPath), "resume line %q, want it to start like %q", line, want)
-	assert.Contains(t, out, "stint budget set")
-
-	out, err = runCLI(t, "budget", "set", "--team", "lab", "--usd", "100", "--per", "total", "--proxy", proxyURL, "--key", admin)
-	require.NoError(t, err, out)
-	out, err = runCLI(t, append(args, "--resume")...)
-	require.NoError(t, err, out)
-	spent := regexp.MustCompile(`texts from the cache\), ([0-9.]+) USD reported by the proxy`).FindStringSubmatch(out)
-	require.NotNil(t, spent, "no summary line in:\n%s", out)
-	resumed, res := readResults(t, dir)
-	assert.Empty(t, res.Stopped)
-
-	again := t.TempDir()
-	out, err = runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--key", key, "--out", again, "--run", "reading-402", "--replay")
-	require.NoError(t, err, out)
-	charged := regexp.MustCompile(`the recording was charged ([0-9.]+) USD`).FindStringSubmatch(out)
-	require.NotNil(t, charged, "the replay's summary names the recorded spend:\n%s", out)
-	assert.Equal(t, spent[1], charged[1], "the replay's summary says what the resumed search reported")
-	replayed, _ := readResults(t, again)
-	// Source: the record/replay contract (README "Record and replay a
-	// run"): a replay answers every call as recorded, so its results are
-	// the recorded run's, byte for byte.
-	assert.Equal(t, string(resumed), string(replayed), "the replay of the resumed search differs")
-	// Source: hand-reasoned: the resumed search asked no call twice and
-	// the refused calls were not charged, so it made the uninterrupted
-	// search's calls at its charges.
-	assert.Equal(t, string(wholeJSON), string(resumed), "the resumed search differs from the uninterrupted one")
 }
 
 func quoteAll(args []string) []string {
