@@ -286,7 +286,7 @@ func TestKeysNewPastesIntoTheExampleConfig(t *testing.T) {
 func TestDemoStartsOnAFreshCache(t *testing.T) {
 	t.Setenv("STINT_MODEL", modeltest.Path(t))
 	data := t.TempDir()
-	firstShare := regexp.MustCompile(`(?m)^run \S+: \d+ scoring calls, ([0-9.]+)% of texts from the cache`)
+	firstShare := regexp.MustCompile(`(?m)^run \S+: \d+ scoring calls, .*, \d+ texts \(([0-9.]+)% of texts from the cache\)`)
 	demo := func(extra ...string) string {
 		args := append([]string{"demo", "--steps", "2", "--data", data, "--out", t.TempDir(), "--dataset", filepath.Join("..", "..", "testdata", "search")}, extra...)
 		out, err := runCLI(t, args...)

@@ -15,6 +15,8 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/localmodel"
+	"github.com/stintlab/stint/searcher/scorer"
+	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
 
@@ -108,16 +110,19 @@ func runDemo(ctx context.Context, out, progress io.Writer, f demoFlags) error {
 	// The search forecasts at the prices the demo's proxy charges.
 	sf := searchFlags{remote: proxyFlags{proxy: proxyURL}, trusted: true, out: f.out, model: modelPath, run: fmt.Sprintf("reading-corner-demo-%d", start.Unix()),
 		price: demoPriceOverride()}
+	var first, again scorer.Totals
+	sf.totals = &first
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}
 	fmt.Fprintln(out, "\n== the same search again: same seed, same prompts, answered from the cache")
 	sf.run += "-again"
 	sf.out = filepath.Join(f.out, "again")
+	sf.totals = &again
 	if err := runSearch(ctx, out, progress, taskPath, sf); err != nil {
 		return err
 	}
-	return printDemoSavings(ctx, out, srv, start)
+	return printDemoSavings(ctx, out, srv, start, []scorer.Totals{first, again})
 }
 
 // demoTaskFile is the task the demo writes into its data directory; its
@@ -161,12 +166,9 @@ func writeDemoTask(f demoFlags) (string, error) {
 		return "", errors.New("--steps must be positive")
 	}
 	text := strings.NewReplacer(
-		"train: reading-corner-train.jsonl", "train: "+filepath.Join(dir, "reading-corner-train.jsonl"),
-		"dev: reading-corner-dev.jsonl", "dev: "+filepath.Join(dir, "reading-corner-dev.jsonl"),
-		"test: reading-corner-test.jsonl", "test: "+filepath.Join(dir, "reading-corner-test.jsonl"),
 		"steps: 90", fmt.Sprintf("steps: %d", f.steps),
 		"seed: 7", fmt.Sprintf("seed: %d", f.seed),
-	).Replace(task.ExampleFile)
+	).Replace(task.ExampleAt(dir))
 	if err := os.MkdirAll(f.data, 0o700); err != nil {
 		return "", err
 	}
@@ -174,9 +176,11 @@ func writeDemoTask(f demoFlags) (string, error) {
 	return path, os.WriteFile(path, []byte(text), 0o600)
 }
 
-// printDemoSavings reports, from the proxy's spend journal, what the two
-// searches cost and what the cache saved, at the demo prices.
-func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since time.Time) error {
+// printDemoSavings reports what the two searches' calls did (calls and
+// texts from the cache, each share named for what it counts) and, from the
+// proxy's spend journal, what they cost and what the cache saved, at the
+// demo prices.
+func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since time.Time, searches []scorer.Totals) error {
 	g, ok := srv.spend.(*guard.Guard)
 	if !ok {
 		return errors.New("demo: spend control is off")
@@ -191,8 +195,15 @@ func printDemoSavings(ctx context.Context, out io.Writer, srv *server, since tim
 	}
 	t := st.Total
 	fmt.Fprintf(out, "\n== what the proxy did (demo prices: %.2f / %.2f USD per million input / output tokens, invented)\n", demoInputPrice, demoOutputPrice)
-	fmt.Fprintf(out, "requests %d, upstream calls %d, served from the cache %.1f%%, calls saved %d\n",
-		t.Requests, t.UpstreamCalls, 100*t.CacheShare, t.Requests-t.UpstreamCalls)
+	var all scorer.Totals
+	for i, s := range searches {
+		fmt.Fprintf(out, "search %d: %s\n", i+1, search.SpendLine(s, false))
+		all.Calls, all.Upstream, all.Prompts, all.CachedPrompts = all.Calls+s.Calls, all.Upstream+s.Upstream, all.Prompts+s.Prompts, all.CachedPrompts+s.CachedPrompts
+	}
+	fmt.Fprintf(out, "both: scoring calls %d, upstream calls %d, %.1f%% of calls from the cache, calls saved %d; %.1f%% of texts from the cache\n",
+		all.Calls, all.Upstream, 100*all.CallShare(), all.Calls-all.Upstream, 100*all.CacheShare())
+	fmt.Fprintf(out, "spend journal: %d entries (a call answered partly from the cache is two: its charge and its saving), %.1f%% of entries from the cache (stint statement's ENTRIES FROM CACHE)\n",
+		t.Requests, 100*t.CacheShare)
 	fmt.Fprintf(out, "spent %s USD, saved %s USD (estimates from the demo prices)\n", t.SpentUSD, t.SavedUSD)
 	return nil
 }

@@ -243,7 +243,7 @@ func printRuns(out io.Writer, vs []proxy.RunView) error {
 		return nil
 	}
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(w, "RUN\tCALLS\tUPSTREAM\tCACHED\tSPENT USD\tSAVED USD\tFIRST\tLAST\t")
+	fmt.Fprintln(w, "RUN\tCALLS\tUPSTREAM\tCALLS FROM CACHE\tSPENT USD\tSAVED USD\tFIRST\tLAST\t")
 	for _, v := range vs {
 		fmt.Fprintf(w, "%s\t%d\t%d\t%s%%\t%s\t%s\t%s\t%s\t\n", v.Run, v.Calls, v.UpstreamCalls,
 			strconv.FormatFloat(100*v.CacheShare, 'f', 1, 64), v.SpentUSD, v.SavedUSD,
@@ -256,7 +256,7 @@ func printRuns(out io.Writer, vs []proxy.RunView) error {
 // cache outcome, and its replay sessions.
 func printRunDetail(out io.Writer, d proxy.RunDetail) error {
 	v := d.RunView
-	fmt.Fprintf(out, "run %s: %d calls, %d upstream, %s%% without the upstream, spent %s USD, saved %s USD\n",
+	fmt.Fprintf(out, "run %s: %d calls, %d upstream, %s%% of calls from the cache, spent %s USD, saved %s USD\n",
 		v.Run, v.Calls, v.UpstreamCalls, strconv.FormatFloat(100*v.CacheShare, 'f', 1, 64), v.SpentUSD, v.SavedUSD)
 	fmt.Fprintf(out, "first %s, last %s; %d distinct requests, %d distinct answers, %d bytes\n",
 		v.First.Format(time.RFC3339), v.Last.Format(time.RFC3339), v.Keys, v.Bodies, v.Bytes)

@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"io"
 	"math"
@@ -10,6 +11,7 @@ import (
 	"os"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/spf13/cobra"
@@ -17,6 +19,7 @@ import (
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/searcher/jobs"
+	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
 )
@@ -45,6 +48,11 @@ type searchFlags struct {
 	// skips the check that --proxy reaches a proxy (the demo's own).
 	json    bool
 	trusted bool
+	// resumeCommand is the command line that resumes this search, said
+	// when it stops part way; "" says to add --resume.
+	resumeCommand string
+	// totals, when set, receives the search's call totals.
+	totals *scorer.Totals
 }
 
 func newSearchCmd() *cobra.Command {
@@ -81,12 +89,19 @@ With --replay the run is answered from the proxy's journal only: it makes no
 upstream call and writes the same results.json.
 
 Outputs in --out: results.json, history.csv, report.md and the learning
-curve as learning-curve.png and .svg.`,
+curve as learning-curve.png and .svg.
+
+A search that stops part way (a 402 when the team's budget runs out, the
+task's spend cap) keeps results.json with the contenders found so far and a
+checkpoint, and prints the command that goes on: the same one with
+--resume, which takes the answers it already had instead of buying them
+again. Progress goes to stderr, one line per phase with the time left.`,
 		Example: `  stint search run orchard.yaml --out ./orchard-out
   STINT_KEY=... stint search run task.yaml --proxy http://10.0.0.5:8787 --run orchard-7 --replay
   stint search run task.yaml --seed 3 --steps 60 --json > results.json`,
 		Args: cobra.ExactArgs(1),
 		RunE: func(cmd *cobra.Command, args []string) error {
+			f.resumeCommand = resumeCommand(cmd, args)
 			return runSearch(cmd.Context(), cmd.OutOrStdout(), cmd.ErrOrStderr(), args[0], f)
 		},
 	}
@@ -123,11 +138,16 @@ curve as learning-curve.png and .svg.`,
 		Long: `Print a complete task file with every setting commented: the model and
 endpoint, the template and labels, the data files, the prompt's length and
 allowed tokens, the learner, the reward, the choice, the baselines, prices
-and the spend cap. It is the demo's task.`,
-		Example: `  stint search example > task.yaml`,
-		Args:    cobra.NoArgs,
+and the spend cap. It is the demo's task, with its data files named from the
+repository root (testdata/search/...): saved there as below, it runs as is.`,
+		Example: `  stint search example > task.yaml
+  stint search run task.yaml --out ./task-out`,
+		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			_, err := io.WriteString(cmd.OutOrStdout(), task.ExampleFile)
+			_, err := io.WriteString(cmd.OutOrStdout(), task.ExampleAt(task.ExampleDataDir))
+			if _, serr := os.Stat(filepath.Join(filepath.FromSlash(task.ExampleDataDir), "reading-corner-train.jsonl")); serr != nil {
+				fmt.Fprintf(cmd.ErrOrStderr(), "note: its data files are in %s of the repository; save the task file in the repository root, or change its data paths\n", task.ExampleDataDir)
+			}
 			return err
 		},
 	}
@@ -289,47 +309,138 @@ func runSearch(ctx context.Context, out, progress io.Writer, taskPath string, f 
 	if f.json {
 		out = progress // the JSON alone goes to stdout
 	}
-	start := time.Now()
+	sp := newSearchProgress(progress)
 	oc, err := search.RunJob(ctx, m, search.Job{
 		TaskPath: taskPath, Proxy: api, Key: f.remote.keyOf(os.Getenv), Run: f.run, Out: f.out, Replay: f.replay, Resume: f.resume,
 		Price: f.price, OverCap: f.overCap, CheckpointEvery: f.checkpointEvery, StopAfter: f.stopAfter, Backbone: backbone,
 		Seed: f.seed, Steps: f.steps,
-	}, out, func(p search.Progress) { printProgress(progress, p, start) })
-	fmt.Fprintln(progress)
+	}, out, sp.show)
+	sp.pl.end()
 	if err != nil {
+		if oc.Partial {
+			fmt.Fprint(out, howToGoOn(oc, err, f))
+		}
 		return err
 	}
 	if oc.Stopped {
 		fmt.Fprintf(out, "stopped early after step %d; resume with --resume from %s\n", len(oc.Results.History), filepath.Join(f.out, search.CheckpointFile))
 		return nil
 	}
+	if f.totals != nil {
+		*f.totals = oc.Results.Spending
+	}
 	if f.json {
 		return search.WriteResults(results, oc.Results)
 	}
 	fmt.Fprint(out, search.Table(oc.Results))
-	s := oc.Results.Spending
-	fmt.Fprintf(out, "\nrun %s: %d scoring calls, %.1f%% of texts from the cache, %.6f USD reported by the proxy (an estimate), %s\nwrote %s\n",
-		oc.Run, s.Calls, 100*s.CacheShare(), s.CostUSD, oc.Wall.Round(time.Second), f.out)
+	fmt.Fprintf(out, "\nrun %s: %s, %s\nwrote %s\n", oc.Run, search.SpendLine(oc.Results.Spending, f.replay), oc.Wall.Round(time.Second), f.out)
 	return nil
 }
 
-// printProgress redraws one status line: step, reward, accuracies,
-// calls, cache share, spend, the share of verbalizers floored and the time
-// left at this pace.
-func printProgress(w io.Writer, p search.Progress, start time.Time) {
+// howToGoOn says what a search that failed part way kept and the command
+// line that goes on from it.
+func howToGoOn(oc search.Outcome, err error, f searchFlags) string {
+	var b strings.Builder
+	var found []string
+	for _, c := range oc.Results.Ranking {
+		found = append(found, c.Method)
+	}
+	kept := filepath.Join(f.out, "results.json")
+	if len(found) > 0 {
+		kept += " (the contenders found so far: " + strings.Join(found, ", ") + ")"
+	} else {
+		kept += " (no contender finished yet)"
+	}
+	if oc.Results.Resumable {
+		kept += " and " + filepath.Join(f.out, search.CheckpointFile)
+	}
+	fmt.Fprintf(&b, "\nthe search stopped part way; kept %s\n", kept)
+	if !oc.Results.Resumable {
+		return b.String()
+	}
+	switch {
+	case errors.Is(err, scorer.ErrBudget):
+		b.WriteString("the proxy refused a call for the team's budget (402): raise it (stint budget set --team NAME --usd USD, as the proxy's admin) or wait for its next period, then go on with:\n")
+	case errors.Is(err, search.ErrSpendCap):
+		b.WriteString("the task's spend_cap_usd is reached: raise it in the task file, then go on with:\n")
+	default:
+		b.WriteString("go on with:\n")
+	}
+	if f.resumeCommand != "" {
+		fmt.Fprintf(&b, "  %s\n", f.resumeCommand)
+	} else {
+		b.WriteString("  the same stint search run command with --resume\n")
+	}
+	b.WriteString("(it goes on from the checkpoint; the answers had since are taken again, not bought again)\n")
+	return b.String()
+}
+
+// resumeCommand is the command line that resumes the search cmd runs: its
+// arguments and the flags given, without --stop-after, with --resume.
+func resumeCommand(cmd *cobra.Command, args []string) string {
+	parts := []string{cmd.CommandPath()}
+	for _, a := range args {
+		parts = append(parts, shellQuote(a))
+	}
+	cmd.Flags().Visit(func(fl *pflag.Flag) {
+		switch fl.Name {
+		case "resume", "stop-after":
+			return
+		}
+		if fl.Value.Type() == "bool" {
+			if fl.Value.String() == "true" {
+				parts = append(parts, "--"+fl.Name)
+			}
+			return
+		}
+		parts = append(parts, "--"+fl.Name, shellQuote(fl.Value.String()))
+	})
+	return strings.Join(append(parts, "--resume"), " ")
+}
+
+// searchProgress shows a search's progress on one status line (see
+// progressLine), with the time left in each phase at its pace so far.
+type searchProgress struct {
+	pl         *progressLine
+	start      time.Time // of the search phase
+	phase      string
+	phaseStart time.Time
+}
+
+func newSearchProgress(w io.Writer) *searchProgress {
+	now := time.Now()
+	return &searchProgress{pl: newProgressLine(w), start: now, phase: search.PhaseSearch, phaseStart: now}
+}
+
+func (sp *searchProgress) show(p search.Progress) {
+	if p.Phase != sp.phase {
+		sp.pl.next() // each phase on a line of its own, its first shown at once
+		sp.phase, sp.phaseStart = p.Phase, time.Now()
+	}
+	sp.pl.show(progressText(p, sp.start, sp.phaseStart))
+}
+
+// progressText is one status line: in the search, step, reward,
+// accuracies, calls, cache share, spend, the share of verbalizers floored
+// and the time left at this pace; in a later phase how far it is, the
+// calls so far and its time left.
+func progressText(p search.Progress, start, phaseStart time.Time) string {
+	texts := fmt.Sprintf("calls %d texts from the cache %4.1f%% spent %.4f USD floored %4.1f%%",
+		p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.RunCostUSD, 100*p.FlooredShare)
 	if p.Phase != search.PhaseSearch {
-		fmt.Fprintf(w, "\r%s %-10s %d/%d calls %d cached %4.1f%% spent %.4f USD floored %4.1f%%   ",
-			progressBar(p.Done, p.Total, 20), p.Phase, p.Done, p.Total, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD, 100*p.FlooredShare)
-		return
+		unit := "judgements"
+		if p.Phase == search.PhaseEvaluate {
+			unit = "contenders"
+		}
+		return fmt.Sprintf("%s %-10s %d/%d %s %s eta %s",
+			progressBar(p.Done, p.Total, 20), p.Phase, p.Done, p.Total, unit, texts, paceETA(time.Since(phaseStart), p.Done, p.Total))
 	}
 	dev := "  -  "
 	if p.DevAcc >= 0 {
 		dev = fmt.Sprintf("%4.1f%%", 100*p.DevAcc)
 	}
-	bar := progressBar(p.Step, p.Steps, 20)
-	fmt.Fprintf(w, "\r%s step %d/%d reward %+.2f train %4.1f%% dev %s calls %d cached %4.1f%% spent %.4f USD floored %4.1f%% eta %s   ",
-		bar, p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, p.Calls.Calls, 100*p.Calls.CacheShare(), p.Calls.CostUSD,
-		100*p.FlooredShare, eta(time.Since(start), p))
+	return fmt.Sprintf("%s step %d/%d reward %+.2f train %4.1f%% dev %s %s eta %s",
+		progressBar(p.Step, p.Steps, 20), p.Step, p.Steps, p.MeanReward, 100*p.TrainAcc, dev, texts, eta(time.Since(start), p))
 }
 
 // eta is the time the steps left take at the pace of the steps this

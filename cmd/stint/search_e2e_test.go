@@ -57,9 +57,11 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
 	first, second := t.TempDir(), t.TempDir()
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e"); err != nil {
+	out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e")
+	if err != nil {
 		t.Fatalf("search run: %v\n%s", err, out)
 	}
+	assertProgressInEveryPhase(t, out)
 	recorded := upstreamCalls(t, c)
 	if recorded == 0 {
 		t.Fatal("the search made no upstream call")
@@ -109,6 +111,28 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	}
 }
 
+// assertProgressInEveryPhase: a search whose output is not a terminal
+// prints a plain progress line (no carriage return) with a time left in
+// every phase: the steps, the choice, each baseline of the example task and
+// the evaluation.
+func assertProgressInEveryPhase(t *testing.T, out string) {
+	t.Helper()
+	if strings.Contains(out, "\r") {
+		t.Errorf("progress redrawn with carriage returns on a non-terminal:\n%q", out)
+	}
+	for _, phase := range []*regexp.Regexp{
+		regexp.MustCompile(`(?m)^\[[#.]+\] step \d+/\d+ .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] choice +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] best-of-n +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] halving +\d+/\d+ judgements .* eta \S+$`),
+		regexp.MustCompile(`(?m)^\[[#.]+\] evaluation +\d+/\d+ contenders .* eta \S+$`),
+	} {
+		if !phase.MatchString(out) {
+			t.Errorf("no progress line like %s in:\n%s", phase, out)
+		}
+	}
+}
+
 // TestDemoRunsOfflineAndSaves runs a short `stint demo`: the local model,
 // the proxy and two searches; the second is answered from the cache and
 // the printed savings say so.
@@ -119,7 +143,7 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	if err != nil {
 		t.Fatalf("stint demo: %v\n%s", err, out)
 	}
-	m := regexp.MustCompile(`upstream calls (\d+), served from the cache [0-9.]+%, calls saved (\d+)`).FindStringSubmatch(out)
+	m := regexp.MustCompile(`upstream calls (\d+), [0-9.]+% of calls from the cache, calls saved (\d+)`).FindStringSubmatch(out)
 	if m == nil {
 		t.Fatalf("no savings line in:\n%s", out)
 	}
@@ -370,10 +394,9 @@ func TestProgressLine(t *testing.T) {
 			}
 		})
 	}
-	var b strings.Builder
-	printProgress(&b, search.Progress{Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now())
-	if !strings.Contains(b.String(), "floored 12.5%") {
-		t.Errorf("progress line %q lacks the floored share", b.String())
+	line := progressText(search.Progress{Phase: search.PhaseSearch, Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now(), time.Now())
+	if !strings.Contains(line, "floored 12.5%") {
+		t.Errorf("progress line %q lacks the floored share", line)
 	}
 }
 

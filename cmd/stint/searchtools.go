@@ -345,6 +345,13 @@ func (pl *progressLine) show(s string) {
 	}
 }
 
+// next ends the line and shows the next one at once, also when output is
+// not a terminal.
+func (pl *progressLine) next() {
+	pl.end()
+	pl.last = time.Time{}
+}
+
 // end finishes a drawn line.
 func (pl *progressLine) end() {
 	if pl.drawn {

@@ -166,7 +166,7 @@ func runStatement(ctx context.Context, out io.Writer, f statementFlags, now time
 
 func printStatement(out io.Writer, rep statement) error {
 	w := tabwriter.NewWriter(out, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintf(w, "%s\tREQUESTS\tUPSTREAM\tCACHED\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(string(rep.By)))
+	fmt.Fprintf(w, "%s\tENTRIES\tUPSTREAM\tENTRIES FROM CACHE\tTOKENS IN\tTOKENS OUT\tSPENT USD\tSAVED USD\t\n", strings.ToUpper(string(rep.By)))
 	for _, r := range append(rep.Rows, rep.Total) {
 		g := r.Group
 		if g == "" {

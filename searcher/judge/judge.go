@@ -52,6 +52,11 @@ type Tally struct {
 	// figures on a replay): the contender's spend had it run alone on an
 	// empty cache, where only its own repeats are hits.
 	AloneUSD float64 `json:"alone_usd"`
+	// Upstream counts the calls that reached the upstream
+	// (scorer.Call.ReachedUpstream) and PriceUSD sums all calls' price
+	// before the cache: the same calls sent straight to the upstream.
+	Upstream int     `json:"upstream_calls,omitempty"`
+	PriceUSD float64 `json:"price_usd,omitempty"`
 	// Floored and Lookups count verbalizer look-ups that fell back to the
 	// floor, and all look-ups (see reward.Step).
 	Floored int `json:"floored"`
@@ -63,6 +68,7 @@ func (t Tally) Add(o Tally) Tally {
 	return Tally{
 		Judgements: t.Judgements + o.Judgements, New: t.New + o.New, Calls: t.Calls + o.Calls,
 		CostUSD: t.CostUSD + o.CostUSD, RunCostUSD: t.RunCostUSD + o.RunCostUSD, AloneUSD: t.AloneUSD + o.AloneUSD,
+		Upstream: t.Upstream + o.Upstream, PriceUSD: t.PriceUSD + o.PriceUSD,
 		Floored: t.Floored + o.Floored, Lookups: t.Lookups + o.Lookups,
 	}
 }
@@ -72,6 +78,7 @@ func (t Tally) Sub(o Tally) Tally {
 	return Tally{
 		Judgements: t.Judgements - o.Judgements, New: t.New - o.New, Calls: t.Calls - o.Calls,
 		CostUSD: t.CostUSD - o.CostUSD, RunCostUSD: t.RunCostUSD - o.RunCostUSD, AloneUSD: t.AloneUSD - o.AloneUSD,
+		Upstream: t.Upstream - o.Upstream, PriceUSD: t.PriceUSD - o.PriceUSD,
 		Floored: t.Floored - o.Floored, Lookups: t.Lookups - o.Lookups,
 	}
 }
@@ -212,6 +219,8 @@ func (p *Panel) ask(ctx context.Context, texts []string, truth, idx []int, fresh
 	p.tally.Calls += sum.Calls
 	p.tally.CostUSD += sum.CostUSD
 	p.tally.RunCostUSD += sum.RunCostUSD
+	p.tally.Upstream += sum.Upstream
+	p.tally.PriceUSD += sum.PriceUSD
 	if fresh {
 		p.tally.New += len(batch)
 		for _, c := range res.Calls {

@@ -187,6 +187,14 @@ type Totals struct {
 	// CachedPrompts counts texts answered from the cache (calls that said
 	// nothing about the cache count as not cached).
 	CachedPrompts int
+	// Upstream counts the calls that reached the upstream (a miss, a batch
+	// partly answered from the cache, a bypass, or an answer that said
+	// nothing about the cache); the others were answered by the proxy
+	// alone (a hit, a replay, or an identical call's upstream call).
+	Upstream int
+	// PriceUSD sums the calls' price before the cache (Call.PriceUSD):
+	// what the same calls cost sent straight to the upstream.
+	PriceUSD float64
 	// Usage sums the calls' usage.
 	Usage Usage
 	// CostUSD sums the proxy's cost estimates.
@@ -203,6 +211,10 @@ func Sum(calls []Call) Totals {
 		t.Calls++
 		t.Prompts += c.Prompts
 		t.CachedPrompts += max(c.CachedPrompts, 0)
+		if c.ReachedUpstream() {
+			t.Upstream++
+		}
+		t.PriceUSD += c.PriceUSD()
 		t.Usage.PromptTokens += c.Usage.PromptTokens
 		t.Usage.CompletionTokens += c.Usage.CompletionTokens
 		t.Usage.TotalTokens += c.Usage.TotalTokens
@@ -212,7 +224,28 @@ func Sum(calls []Call) Totals {
 	return t
 }
 
-// CacheShare is the share of prompts answered from the cache, 0 with none.
+// ReachedUpstream says whether the call went to the upstream: not a hit,
+// a replay (answered from the run's journal) or a call answered by an
+// identical one's upstream call.
+func (c Call) ReachedUpstream() bool {
+	switch c.Cache {
+	case cacheHit, cacheShared, cacheReplay:
+		return false
+	}
+	return true
+}
+
+// CallShare is the share of calls answered without an upstream call, 0
+// with none: "calls from the cache".
+func (t Totals) CallShare() float64 {
+	if t.Calls == 0 {
+		return 0
+	}
+	return float64(t.Calls-t.Upstream) / float64(t.Calls)
+}
+
+// CacheShare is the share of texts (prompts) answered from the cache, 0
+// with none: "texts from the cache".
 func (t Totals) CacheShare() float64 {
 	if t.Prompts == 0 {
 		return 0

@@ -54,6 +54,9 @@ type Options struct {
 	HTTPClient *http.Client
 	// Now reads the clock for an HTTP-date Retry-After; nil means time.Now.
 	Now func() time.Time
+	// Memo, when set, keeps every answered call and answers a call it was
+	// given an answer for (Memo.Give) without sending it.
+	Memo *Memo
 }
 
 // Client scores texts. It is safe for concurrent use.
@@ -122,8 +125,10 @@ type Result struct {
 
 // Score asks for the next-token log-probabilities after each text, in
 // batches (completions) or one call per text (chat), with at most
-// Options.Concurrency calls in flight. The first failing call cancels the
-// others and its error is returned; so does ctx ending.
+// Options.Concurrency calls in flight. After the first failing call no
+// more are sent, the calls in flight finish (so an answer already being paid
+// for reaches Options.Memo) and the first error is returned; ctx ending
+// cancels them all.
 func (c *Client) Score(ctx context.Context, texts []string) (Result, error) {
 	n := c.opts.BatchSize
 	var batches [][]string
@@ -133,38 +138,71 @@ func (c *Client) Score(ctx context.Context, texts []string) (Result, error) {
 	res := Result{Top: make([]map[string]float64, 0, len(texts)), Calls: make([]Call, len(batches))}
 	tops := make([][]map[string]float64, len(batches))
 
-	ctx, cancel := context.WithCancelCause(ctx)
-	defer cancel(nil)
+	// failed is closed by the first failing call; first is its error.
+	failed := make(chan struct{})
+	var once sync.Once
+	var first error
+	fail := func(err error) {
+		once.Do(func() { first = err; close(failed) })
+	}
 	slots := make(chan struct{}, c.opts.Concurrency)
 	var wg sync.WaitGroup
+launch:
 	for i, b := range batches {
 		select {
 		case slots <- struct{}{}:
 		case <-ctx.Done():
+			break launch
+		case <-failed:
+			break launch
 		}
-		if ctx.Err() != nil {
-			break
+		select {
+		case <-failed:
+			<-slots
+			break launch
+		default:
 		}
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
 			defer func() { <-slots }()
-			top, call, err := c.call(ctx, b)
+			top, call, err := c.answer(ctx, b)
 			if err != nil {
-				cancel(fmt.Errorf("texts %d to %d: %w", i*n, i*n+len(b)-1, err))
+				fail(fmt.Errorf("texts %d to %d: %w", i*n, i*n+len(b)-1, err))
 				return
 			}
 			tops[i], res.Calls[i] = top, call
 		}()
 	}
 	wg.Wait()
-	if err := context.Cause(ctx); err != nil {
+	if first != nil {
+		return Result{}, first
+	}
+	if err := ctx.Err(); err != nil {
 		return Result{}, err
 	}
 	for _, t := range tops {
 		res.Top = append(res.Top, t...)
 	}
 	return res, nil
+}
+
+// answer answers texts from the memo when it was given an answer for them,
+// else by a call, which the memo keeps.
+func (c *Client) answer(ctx context.Context, texts []string) ([]map[string]float64, Call, error) {
+	m := c.opts.Memo
+	if m == nil {
+		return c.call(ctx, texts)
+	}
+	key := AnswerKey(texts)
+	if a, ok := m.take(key); ok {
+		return a.Top, a.Call, nil
+	}
+	top, call, err := c.call(ctx, texts)
+	if err == nil {
+		m.keep(Answer{Key: key, Top: top, Call: call})
+	}
+	return top, call, err
 }
 
 // call makes one HTTP call for texts.

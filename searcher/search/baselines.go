@@ -33,9 +33,10 @@ const (
 // of its own, so its tally is its own.
 func (r *runner) baseline(ctx context.Context, name string, res *Results) (Contender, error) {
 	c := Contender{Method: name}
-	p := judge.New(r.t, recordingScorer{sc: r.o.Scorer, calls: &r.calls})
+	p := judge.New(r.t, recordingScorer{sc: r.o.Scorer, calls: &r.calls, sent: r.sent})
 	budget := r.budget.Total()
-	r.progress(Progress{Phase: name, Done: 0, Total: 1})
+	r.counting(name, budget)
+	defer func() { r.phase = nil }()
 	var err error
 	switch name {
 	case task.BestOfN:
@@ -59,7 +60,7 @@ func (r *runner) baseline(ctx context.Context, name string, res *Results) (Conte
 	}
 	c.searched(p.Tally())
 	r.done = r.done.Add(p.Tally())
-	r.progress(Progress{Phase: name, Done: 1, Total: 1})
+	r.progress(Progress{Phase: name, Done: budget, Total: budget})
 	return c, r.checkCap("in the " + name + " baseline")
 }
 

@@ -41,6 +41,10 @@ type State struct {
 	Sampled []string     `json:"sampled"`
 	Judged  judge.Memory `json:"judged"`
 	Policy  []byte       `json:"policy"` // the policy's own checkpoint
+	// Answered are the calls answered after Step that a resumed search
+	// takes again instead of asking (see scorer.Memo): those of a search
+	// that failed part way.
+	Answered []scorer.Answer `json:"answered,omitempty"`
 }
 
 // WriteState writes s as JSON.
@@ -63,7 +67,7 @@ func ReadState(r io.Reader, name string, seed int64) (*State, error) {
 		return nil, fmt.Errorf("%w: version %d, want %d", ErrCheckpoint, s.Version, checkpointVersion)
 	case s.Task != name || s.Seed != seed:
 		return nil, fmt.Errorf("%w: it is of task %q seed %d, not %q seed %d", ErrCheckpoint, s.Task, s.Seed, name, seed)
-	case s.Step <= 0 || len(s.Policy) == 0 || len(s.Random) == 0:
+	case s.Step < 0 || len(s.Policy) == 0 || len(s.Random) == 0:
 		return nil, fmt.Errorf("%w: incomplete", ErrCheckpoint)
 	}
 	return &s, nil

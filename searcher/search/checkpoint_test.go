@@ -17,7 +17,7 @@ func TestReadStateRefuses(t *testing.T) {
 		{"another task", strings.Replace(good, `"orchard"`, `"pantry"`, 1)},
 		{"another seed", strings.Replace(good, `"seed":7`, `"seed":8`, 1)},
 		{"no policy", strings.Replace(good, `,"policy":"AAAA"`, ``, 1)},
-		{"step zero", strings.Replace(good, `"step":3`, `"step":0`, 1)},
+		{"negative step", strings.Replace(good, `"step":3`, `"step":-1`, 1)},
 		{"unknown field", strings.Replace(good, `{`, `{"colour":"red",`, 1)},
 		{"not JSON", "checkpoint"},
 	}

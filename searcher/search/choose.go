@@ -52,11 +52,12 @@ func Pool(t *task.Task, seed int64, stream uint64) []task.Example {
 // blended with the average over CandidatePrior lines), chosen among by
 // successive halving on the pool with the judgements the search has left.
 func (r *runner) choose(ctx context.Context) (ChoiceReport, error) {
-	r.progress(Progress{Phase: PhaseChoice, Done: 0, Total: 1})
 	pool := Pool(r.t, r.t.Seed, streamChoice)
 	arms := r.rank(pool)
 	rep := ChoiceReport{Sampled: len(r.sampled)}
 	left := r.budget.Total() - r.rl.Tally().Judgements
+	r.counting(PhaseChoice, max(left, 1))
+	defer func() { r.phase = nil }()
 	arms = arms[:min(len(arms), r.t.Choose.Candidates)]
 	first := pick.FirstWithin(r.rl, arms, pool, left)
 	for first == 0 && len(arms) > 1 {
@@ -77,7 +78,7 @@ func (r *runner) choose(ctx context.Context) (ChoiceReport, error) {
 		return rep, fmt.Errorf("search: choosing the prompt: %w", err)
 	}
 	rep.Prompt, rep.Accuracy, rep.Lines, rep.Rounds = ch.Prompt, ch.Accuracy, ch.Lines, ch.Rounds
-	r.progress(Progress{Phase: PhaseChoice, Done: 1, Total: 1})
+	r.progress(Progress{Phase: PhaseChoice, Done: max(left, 1), Total: max(left, 1)})
 	return rep, r.checkCap("choosing the prompt")
 }
 

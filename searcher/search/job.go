@@ -69,6 +69,11 @@ type Outcome struct {
 	Forecast float64 // USD at Pricing; 0 when the price is not known
 	Wall     time.Duration
 	Stopped  bool // StopAfter ended it; its checkpoint resumes it
+	// Partial is set when the search failed part way and kept what it had
+	// finished: results.json with the contenders found so far
+	// (Results.Stopped says why) and, when Results.Resumable, a
+	// checkpoint that --resume goes on from.
+	Partial bool
 }
 
 // CheckpointFile is the checkpoint's name in a job's output directory.
@@ -117,8 +122,9 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	if oc.Run == "" {
 		oc.Run = fmt.Sprintf("%s-s%d", t.Name, t.Seed)
 	}
+	memo := scorer.NewMemo()
 	so := scorer.Options{BaseURL: j.Proxy, Key: j.Key, Run: oc.Run, Model: t.Model, Endpoint: scorer.Endpoint(t.Endpoint),
-		TopLogprobs: t.TopLogprobs, Concurrency: t.Concurrency}
+		TopLogprobs: t.TopLogprobs, Concurrency: t.Concurrency, Memo: memo}
 	if j.Replay {
 		so.RunMode = "replay"
 	}
@@ -153,7 +159,7 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	start := time.Now()
 	res, err := Run(ctx, Options{
 		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD, Backbone: j.Backbone,
-		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress,
+		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress, Memo: memo,
 		Checkpoint: func(st *State) error {
 			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return WriteState(w, st) })
 		},
@@ -164,6 +170,12 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 		return oc, nil
 	}
 	if err != nil {
+		if res.Stopped != "" {
+			if werr := policy.WriteFileAtomic(filepath.Join(j.Out, "results.json"), func(w io.Writer) error { return WriteResults(w, res) }); werr != nil {
+				return oc, fmt.Errorf("%w (and results.json could not be written: %w)", err, werr)
+			}
+			oc.Partial = true
+		}
 		return oc, err
 	}
 	return oc, writeOutputs(j.Out, res, oc.Wall.Round(time.Second).String())

@@ -86,6 +86,12 @@ type Options struct {
 	// Backbone identifies the policy's backbone model file in
 	// results.json (see IdentifyBackbone).
 	Backbone Backbone
+	// Memo, when set, is the Scorer's memo of answered calls
+	// (scorer.Options.Memo): a checkpoint then carries the answers since
+	// the one before, and a search that fails part way (a budget refusal,
+	// a cancel) writes a checkpoint from which its resumption makes no call
+	// twice (see scorer.Memo).
+	Memo *scorer.Memo
 	// ZeroRewards trains the policy on zero rewards: a broken learner
 	// whose proposals stay random, for proving that the search's
 	// learning test can fail. Never set outside such a test.
@@ -106,7 +112,8 @@ const (
 type Progress struct {
 	// Phase is PhaseSearch, PhaseChoice, a baseline's name or
 	// PhaseEvaluate; Done of Total says how far the phase is (steps in
-	// the search, contenders in the evaluation).
+	// the search, judgements sent in the choice and the baselines, of the
+	// judgements they may make; contenders in the evaluation).
 	Phase       string
 	Done, Total int
 	Step, Steps int
@@ -191,6 +198,13 @@ type Contender struct {
 	// (see judge.Tally.AloneUSD), the yardstick of equal-spend comparisons.
 	SearchNewTexts int     `json:"search_new_texts"`
 	SearchAloneUSD float64 `json:"search_alone_usd"`
+	// SearchUpstream counts the search calls that reached the upstream
+	// and SearchPriceUSD is their price before the cache: what the same
+	// search sent straight to the upstream, with no proxy, would pay. Both
+	// are of this process's calls (a replay makes no upstream call), so
+	// results.json leaves them out; the report has them.
+	SearchUpstream int     `json:"-"`
+	SearchPriceUSD float64 `json:"-"`
 	// EvalCalls and EvalSpendUSD are the same for scoring the prompt on
 	// the train, dev and test sets.
 	EvalCalls    int     `json:"eval_calls"`
@@ -207,6 +221,7 @@ func (c Contender) Spend() (calls int, usd float64) {
 func (c *Contender) searched(t judge.Tally) {
 	c.Calls, c.SearchCalls, c.SearchSpendUSD = t.Judgements, t.Calls, t.RunCostUSD
 	c.SearchNewTexts, c.SearchAloneUSD = t.New, t.AloneUSD
+	c.SearchUpstream, c.SearchPriceUSD = t.Upstream, t.PriceUSD
 }
 
 // Results are a finished search. They hold nothing that differs between a
@@ -234,6 +249,13 @@ type Results struct {
 	// Extras carries what a baseline keeps for reading it again at a
 	// smaller spend (best-of-N's judged candidates), for comparisons.
 	Extras Extras `json:"-"`
+	// Resumable says a failed search wrote a checkpoint that resumes it.
+	Resumable bool `json:"-"`
+	// Stopped, when set, says why the search ended before its end: the
+	// results are partial, holding the contenders that had found their
+	// prompts (accuracies −1 where they were not evaluated yet), and its
+	// checkpoint resumes it.
+	Stopped string `json:"stopped,omitempty"`
 }
 
 // Extras are details of a search that comparisons read and results.json
@@ -304,16 +326,23 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	r := newRunner(o)
 	res := Results{Task: t.Name, Seed: t.Seed, Steps: t.Steps, Budget: r.budget.Total(),
 		Config: settingsOf(t, len(o.Vocab.Actions()), o.Policy), Versions: versions(o.Backbone)}
+	if o.Resume != nil && o.Memo != nil {
+		o.Memo.Give(o.Resume.Answered)
+	}
 	if err := r.train(ctx, &res); err != nil {
-		return res, err
+		return r.fail(res, nil, 0, err)
 	}
 	choice, err := r.choose(ctx)
-	if err != nil {
-		return res, err
-	}
 	res.Choice = choice
 	rl := Contender{Method: MethodRL, Prompt: choice.Prompt}
 	rl.searched(r.rl.Tally())
+	if err != nil {
+		var found []Contender
+		if errors.Is(err, ErrSpendCap) {
+			found = append(found, rl) // chosen, then the cap was reached
+		}
+		return r.fail(res, found, 0, err)
+	}
 	contenders := []Contender{rl}
 	if r.greedyText != rl.Prompt {
 		greedy := rl
@@ -327,22 +356,60 @@ func Run(ctx context.Context, o Options) (Results, error) {
 	for _, name := range t.Baselines.Run {
 		c, err := r.baseline(ctx, name, &res)
 		if err != nil {
-			return res, err
+			if c.Prompt != "" || errors.Is(err, ErrSpendCap) {
+				contenders = append(contenders, c) // found, then the cap was reached
+			}
+			return r.fail(res, contenders, 0, err)
 		}
 		contenders = append(contenders, c)
 	}
 	for i := range contenders {
 		r.progress(Progress{Phase: PhaseEvaluate, Done: i, Total: len(contenders)})
 		if err := r.evaluate(ctx, &contenders[i]); err != nil {
-			return res, err
+			return r.fail(res, contenders, i, err)
 		}
 	}
+	r.progress(Progress{Phase: PhaseEvaluate, Done: len(contenders), Total: len(contenders)})
 	res.Ranking = contenders
 	res.Best = contenders[0]
 	all := r.tally()
 	res.Floored, res.Lookups = all.Floored, all.Lookups
 	res.Spending = scorer.Sum(r.calls)
 	return res, nil
+}
+
+// fail ends a search that failed part way: res gets the contenders found so
+// far (the first evaluated of them with their accuracies, the others' −1)
+// and the reason, and, with checkpoints on, a checkpoint is written that
+// resumes the search from its last one with every answer it got since (see
+// Options.Memo). A stop on purpose (ErrStopped) has its checkpoint already.
+func (r *runner) fail(res Results, found []Contender, evaluated int, err error) (Results, error) {
+	if errors.Is(err, ErrStopped) {
+		return res, err
+	}
+	res.Ranking = slices.Clone(found)
+	for i := evaluated; i < len(res.Ranking); i++ {
+		c := &res.Ranking[i]
+		c.TrainAcc, c.DevAcc, c.TestAcc, c.EvalCalls, c.EvalSpendUSD = -1, -1, -1, 0, 0
+	}
+	if len(res.Ranking) > 0 {
+		res.Best = res.Ranking[0]
+	}
+	all := r.tally()
+	res.Floored, res.Lookups = all.Floored, all.Lookups
+	res.Spending = scorer.Sum(r.calls)
+	res.Stopped = err.Error()
+	if r.o.Checkpoint != nil && r.last != nil {
+		st := *r.last
+		if r.o.Memo != nil {
+			st.Answered = r.o.Memo.Answers()
+		}
+		if cerr := r.o.Checkpoint(&st); cerr != nil {
+			return res, fmt.Errorf("%w (and its checkpoint could not be written: %w)", err, cerr)
+		}
+		res.Resumable = true
+	}
+	return res, err
 }
 
 // runner is one search's state beyond the policy.
@@ -364,29 +431,60 @@ type runner struct {
 	seen       map[string]bool
 	devAcc     float64
 	greedyText string
+	// last is the latest checkpoint (or the start), the point a failed
+	// search resumes from; phase counts the texts sent in the current
+	// phase for its progress.
+	last  *State
+	phase *phaseCount
+}
+
+// phaseCount reports a phase's progress as its texts are sent.
+type phaseCount struct {
+	name        string
+	done, total int
 }
 
 func newRunner(o Options) *runner {
 	r := &runner{o: o, t: o.Task, budget: BudgetFor(o.Task, o.EvalEvery), pcg: rand.NewPCG(uint64(o.Task.Seed), 0x5eed), seen: map[string]bool{}, devAcc: -1}
 	r.rng = rand.New(r.pcg)
-	sc := recordingScorer{sc: o.Scorer, calls: &r.calls}
+	sc := recordingScorer{sc: o.Scorer, calls: &r.calls, sent: r.sent}
 	r.rl = judge.New(o.Task, sc)
 	r.eval = judge.New(o.Task, sc)
 	return r
 }
 
-// recordingScorer notes every call its scorer makes.
+// recordingScorer notes every call its scorer makes, and tells sent how
+// many texts each Score judged.
 type recordingScorer struct {
 	sc    Scorer
 	calls *[]scorer.Call
+	sent  func(n int)
 }
 
 func (s recordingScorer) Score(ctx context.Context, texts []string) (scorer.Result, error) {
 	res, err := s.sc.Score(ctx, texts)
 	if err == nil {
 		*s.calls = append(*s.calls, res.Calls...)
+		if s.sent != nil {
+			s.sent(len(texts))
+		}
 	}
 	return res, err
+}
+
+// sent counts texts judged in a phase counted by judgements and reports
+// the phase's progress.
+func (r *runner) sent(n int) {
+	if ph := r.phase; ph != nil {
+		ph.done += n
+		r.progress(Progress{Phase: ph.name, Done: min(ph.done, ph.total), Total: ph.total})
+	}
+}
+
+// counting starts a phase whose progress is its judgements, of total.
+func (r *runner) counting(name string, total int) {
+	r.phase = &phaseCount{name: name, total: total}
+	r.progress(Progress{Phase: name, Done: 0, Total: total})
 }
 
 // tally sums every panel's tally.
@@ -419,6 +517,15 @@ func (r *runner) train(ctx context.Context, res *Results) error {
 			return err
 		}
 		first = s.Step + 1
+		resumed := *s
+		resumed.Answered = nil // given to the memo; a later checkpoint has what is left
+		r.last = &resumed
+	} else if o.Checkpoint != nil {
+		st, err := r.snapshot(0, res)
+		if err != nil {
+			return err
+		}
+		r.last = st
 	}
 	best := BestByDev(res.History)
 	every := o.CheckpointEvery
@@ -475,9 +582,14 @@ func (r *runner) train(ctx context.Context, res *Results) error {
 			if err != nil {
 				return err
 			}
+			if o.Memo != nil {
+				o.Memo.Mark()
+				st.Answered = o.Memo.Answers()
+			}
 			if err := o.Checkpoint(st); err != nil {
 				return fmt.Errorf("search: checkpoint after step %d: %w", step, err)
 			}
+			r.last = st
 		}
 		if stop {
 			return fmt.Errorf("%w (after step %d)", ErrStopped, step)

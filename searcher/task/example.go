@@ -1,5 +1,11 @@
 package task
 
+import (
+	"path"
+	"path/filepath"
+	"strings"
+)
+
 // ExampleFile is a complete, commented task file in an invented scenario:
 // the reading corner of the Larkspur Hill co-op sorts short sentences by
 // who they are about, naming them after the two children of its picture
@@ -7,7 +13,26 @@ package task
 // testdata/search folder (reading-corner-train.jsonl, -dev.jsonl and
 // -test.jsonl); parse it with that folder as dir. The verbalizers are single
 // tokens of the stories260K model, so the offline demo can score it.
-const ExampleFile = `# A prompt-search task: the Larkspur Hill co-op's reading corner names who a
+const ExampleFile = exampleFile
+
+// ExampleDataDir is the folder of the example's datasets, from the
+// repository root.
+const ExampleDataDir = "testdata/search"
+
+// ExampleAt returns ExampleFile with its data paths in dir (slash-separated
+// or the system's), for a task file written where dir is reachable from:
+// ExampleAt(ExampleDataDir) is the example to save in the repository root,
+// as "stint search example > task.yaml" does.
+func ExampleAt(dir string) string {
+	r := strings.NewReplacer(
+		"train: reading-corner-train.jsonl", "train: "+path.Join(filepath.ToSlash(dir), "reading-corner-train.jsonl"),
+		"dev: reading-corner-dev.jsonl", "dev: "+path.Join(filepath.ToSlash(dir), "reading-corner-dev.jsonl"),
+		"test: reading-corner-test.jsonl", "test: "+path.Join(filepath.ToSlash(dir), "reading-corner-test.jsonl"),
+	)
+	return r.Replace(ExampleFile)
+}
+
+const exampleFile = `# A prompt-search task: the Larkspur Hill co-op's reading corner names who a
 # short sentence is about, after its picture books' two children. The
 # sentences carry only pronouns ("she", "his", "the girl"), so a prompt that
 # ties them to the names helps the model.
