@@ -11,6 +11,8 @@ import (
 	"testing"
 
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // modelPath finds the real model file (see modeltest). The
@@ -66,13 +68,13 @@ func post(tb testing.TB, url string, body any) (int, []byte, http.Header) {
 }
 
 // complete posts a completions request that must succeed.
-func complete(tb testing.TB, srv *httptest.Server, body any) completionResponse {
+func complete(tb testing.TB, srv *httptest.Server, body any) wire.CompletionResponse {
 	tb.Helper()
 	status, out, _ := post(tb, srv.URL+"/v1/completions", body)
 	if status != http.StatusOK {
 		tb.Fatalf("status %d: %s", status, out)
 	}
-	var r completionResponse
+	var r wire.CompletionResponse
 	if err := json.Unmarshal(out, &r); err != nil {
 		tb.Fatalf("decode %s: %v", out, err)
 	}

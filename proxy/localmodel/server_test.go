@@ -7,6 +7,7 @@ import (
 	"errors"
 	"io"
 	"math"
+	"mime"
 	"net/http"
 	"net/http/httptest"
 	"strings"
@@ -14,6 +15,8 @@ import (
 	"testing"
 
 	openai "github.com/sashabaranov/go-openai"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 func TestArrayPromptsAndN(t *testing.T) {
@@ -84,8 +87,8 @@ func TestEchoLogprobs(t *testing.T) {
 		if got := *lp.TokenLogprobs[i]; math.Abs(got-want) > 1e-9 {
 			t.Errorf("prompt token %d: logprob %v, want %v", i, got, want)
 		}
-		if len(lp.TopLogprobs[i]) != 2 {
-			t.Errorf("prompt token %d: %d alternatives, want 2", i, len(lp.TopLogprobs[i]))
+		if lp.TopLogprobs[i].Len() != 2 {
+			t.Errorf("prompt token %d: %d alternatives, want 2", i, lp.TopLogprobs[i].Len())
 		}
 	}
 	for i := range lp.Tokens {
@@ -132,7 +135,7 @@ func joinCompletionStream(tb testing.TB, events []string) string {
 	}
 	var b strings.Builder
 	for _, e := range events[:len(events)-1] {
-		var c completionResponse
+		var c wire.CompletionResponse
 		if err := json.Unmarshal([]byte(e), &c); err != nil {
 			tb.Fatalf("event %q: %v", e, err)
 		}
@@ -176,15 +179,15 @@ func TestStreamMatchesNonStream(t *testing.T) {
 	body["stream"] = true
 	body["stream_options"] = map[string]any{"include_usage": true}
 	events, hdr := stream(t, srv.URL+"/v1/completions", body)
-	if ct := hdr.Get("Content-Type"); ct != "text/event-stream" {
-		t.Errorf("Content-Type %q", ct)
+	if mt, _, err := mime.ParseMediaType(hdr.Get("Content-Type")); err != nil || mt != "text/event-stream" {
+		t.Errorf("Content-Type %q, want text/event-stream", hdr.Get("Content-Type"))
 	}
 	texts := map[int]string{}
 	toks := map[int][]string{}
 	finish := map[int]string{}
-	var u *usage
+	var u *wire.Usage
 	for _, e := range events[:len(events)-1] {
-		var c completionResponse
+		var c wire.CompletionResponse
 		if err := json.Unmarshal([]byte(e), &c); err != nil {
 			t.Fatal(err)
 		}
@@ -223,7 +226,7 @@ func TestChat(t *testing.T) {
 	if status != http.StatusOK {
 		t.Fatalf("status %d: %s", status, out)
 	}
-	var r chatResponse
+	var r wire.ChatResponse
 	if err := json.Unmarshal(out, &r); err != nil {
 		t.Fatal(err)
 	}
@@ -244,15 +247,15 @@ func TestChat(t *testing.T) {
 			t.Errorf("token %d %q: top %+v; want 3 with the greedy token first", i, e.Token, e.TopLogprobs)
 		}
 	}
-	if got := strings.TrimPrefix(string(joined), " "); got != *c.Message.Content {
-		t.Errorf("logprob bytes %q, content %q", got, *c.Message.Content)
+	if got := strings.TrimPrefix(string(joined), " "); got != c.Message.Content {
+		t.Errorf("logprob bytes %q, content %q", got, c.Message.Content)
 	}
 	body["stream"] = true
 	events, _ := stream(t, srv.URL+"/v1/chat/completions", body)
 	var content strings.Builder
 	var role string
 	for _, e := range events[:len(events)-1] {
-		var ch chatResponse
+		var ch wire.ChatResponse
 		if err := json.Unmarshal([]byte(e), &ch); err != nil {
 			t.Fatal(err)
 		}
@@ -268,8 +271,8 @@ func TestChat(t *testing.T) {
 			}
 		}
 	}
-	if role != "assistant" || content.String() != *c.Message.Content {
-		t.Errorf("stream role %q content %q; want assistant %q", role, content.String(), *c.Message.Content)
+	if role != "assistant" || content.String() != c.Message.Content {
+		t.Errorf("stream role %q content %q; want assistant %q", role, content.String(), c.Message.Content)
 	}
 }
 
@@ -335,7 +338,7 @@ func TestContextTooLong(t *testing.T) {
 
 func checkErrorBody(tb testing.TB, out []byte, hdr http.Header) {
 	tb.Helper()
-	var e errorBody
+	var e wire.ErrorBody
 	if err := json.Unmarshal(out, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" || e.Error.Code == "" {
 		tb.Errorf("error body %s (%v)", out, err)
 	}
@@ -355,7 +358,7 @@ func TestUnknownFieldsAndModels(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer resp.Body.Close()
-	var l modelList
+	var l wire.ModelList
 	if err := json.NewDecoder(resp.Body).Decode(&l); err != nil || len(l.Data) != 1 || l.Data[0].ID != "story-box" || l.Object != "list" {
 		t.Errorf("models: %+v %v", l, err)
 	}
