@@ -4,6 +4,8 @@ import (
 	"encoding/json"
 	"reflect"
 	"testing"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 func TestRecordRoundTrip(t *testing.T) {
@@ -11,8 +13,8 @@ func TestRecordRoundTrip(t *testing.T) {
 		{},
 		{Variants: []variant{{Logprobs: noLevel, MaxTokens: noLevel, Tokens: noLevel, Body: json.RawMessage(`{}`)}}},
 		{Variants: []variant{
-			{Logprobs: 5, MaxTokens: 24, Finish: "length", Tokens: 24, Usage: usage{3, 24, 27}, Estimated: true, StoredAt: 1780000000, Body: json.RawMessage(`{"choices":[]}`)},
-			{Logprobs: 0, MaxTokens: 0, Finish: "stop", Tokens: 0, Usage: usage{1, 0, 1}, StoredAt: -1, Body: json.RawMessage(`{"a":"ü"}`)},
+			{Logprobs: 5, MaxTokens: 24, Finish: "length", Tokens: 24, Usage: wire.NewUsage(3, 24), Estimated: true, StoredAt: 1780000000, Body: json.RawMessage(`{"choices":[]}`)},
+			{Logprobs: 0, MaxTokens: 0, Finish: "stop", Tokens: 0, Usage: wire.NewUsage(1, 0), StoredAt: -1, Body: json.RawMessage(`{"a":"ü"}`)},
 		}},
 	}
 	for i, rec := range recs {

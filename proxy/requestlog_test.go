@@ -6,6 +6,8 @@ import (
 	"log/slog"
 	"testing"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // slogLine is the line slog's JSON handler writes for ll: the reference the
@@ -37,8 +39,8 @@ func TestRequestLineMatchesSlog(t *testing.T) {
 		ll   logLine
 		d    time.Duration
 	}{
-		{"hit", logLine{team: "lab", model: "quill-small", outcome: OutcomeHit, endpoint: endpointCompletions, status: 200, prompts: 1, hits: 1, usage: usage{PromptTokens: 9, CompletionTokens: 8}}, 41 * time.Microsecond},
-		{"miss with upstream time", logLine{team: "default", model: "m", outcome: OutcomeMiss, endpoint: endpointChat, status: 200, prompts: 1, upstream: 1234567 * time.Microsecond, usage: usage{PromptTokens: 100, CompletionTokens: 20}}, 2 * time.Second},
+		{"hit", logLine{team: "lab", model: "quill-small", outcome: OutcomeHit, endpoint: endpointCompletions, status: 200, prompts: 1, hits: 1, usage: wire.Usage{PromptTokens: 9, CompletionTokens: 8}}, 41 * time.Microsecond},
+		{"miss with upstream time", logLine{team: "default", model: "m", outcome: OutcomeMiss, endpoint: endpointChat, status: 200, prompts: 1, upstream: 1234567 * time.Microsecond, usage: wire.Usage{PromptTokens: 100, CompletionTokens: 20}}, 2 * time.Second},
 		{"error without outcome", logLine{team: "", model: "", endpoint: endpointCompletions, status: 400}, 0},
 		{"quotes and controls", logLine{team: `a"b\c`, model: "tab\there\nnew\x01\x1f", outcome: OutcomeBypass, status: 200}, time.Millisecond},
 		{"unicode and html", logLine{team: "équipe", model: "<m&o>", promptText: "Lily 🌼 line\u2028sep\u2029", status: 200}, time.Millisecond},
