@@ -32,7 +32,7 @@ import (
 // A request's state is its flow; the log line and metrics are written when
 // it ends.
 func (p *Proxy) serveGenerate(w http.ResponseWriter, r *http.Request, ep endpoint) {
-	x := &flow{p: p, w: w, r: r, ep: ep, ll: &logLine{endpoint: ep}, start: p.now()}
+	x := &flow{p: p, w: w, r: r, ep: ep, ll: logLine{endpoint: ep}, start: p.now()}
 	defer x.end()
 	if !x.authenticate() || !x.readBody() || !x.replayOrRecord() || !x.answerRemembered() ||
 		!x.decode() || !x.bypass() || !x.lookUp() || !x.answerHits() || !x.coalesce() {
@@ -49,7 +49,7 @@ type flow struct {
 	w     http.ResponseWriter // the recorder's, once recording (replayOrRecord)
 	r     *http.Request
 	ep    endpoint
-	ll    *logLine
+	ll    logLine
 	start time.Time
 	// release gives back the in-flight slot (authenticate); journal
 	// journals a recorded call's answer (replayOrRecord). Both run when the
@@ -88,7 +88,7 @@ func (x *flow) end() {
 	if x.release != nil {
 		x.release()
 	}
-	x.p.finish(x.ll, x.start)
+	x.p.finish(&x.ll, x.start)
 }
 
 // fail answers e as the request's outcome.
@@ -144,7 +144,7 @@ func (x *flow) replayOrRecord() bool {
 		return false
 	}
 	if rc.replay {
-		if aerr := p.serveReplay(x.w, x.r, x.ll, x.team, rc, x.ep, x.body); aerr != nil {
+		if aerr := p.serveReplay(x.w, x.r, &x.ll, x.team, rc, x.ep, x.body); aerr != nil {
 			x.fail(aerr)
 		}
 		return false
@@ -177,11 +177,11 @@ func (x *flow) answerRemembered() bool {
 	if !ok || x.d.noCache || p.logPrompts {
 		return true
 	}
-	hit, _ := p.lookup(x.r.Context(), x.ll, &m.req, m.key, p.greedy(&m.req))
+	hit, _ := p.lookup(x.r.Context(), &x.ll, &m.req, m.key, p.greedy(&m.req))
 	if hit == nil {
 		return true
 	}
-	ll := x.ll
+	ll := &x.ll
 	ll.model, ll.prompts, ll.hits, ll.outcome = m.req.model, 1, 1, OutcomeHit
 	ll.key, ll.storedAt = m.key, hit.storedAt
 	p.metrics.series(x.team.Name, string(x.ep), OutcomeHit).hitPrompts.Inc()
@@ -228,14 +228,14 @@ func (x *flow) bypass() bool {
 		return false
 	}
 	x.ll.outcome = OutcomeBypass
-	x.p.forward(x.w, x.r, x.ll, x.team, x.keyID, x.up, x.req)
+	x.p.forward(x.w, x.r, &x.ll, x.team, x.keyID, x.up, x.req)
 	return false
 }
 
 // lookUp derives each prompt's cache key and looks it up (unless the
 // request said no-cache), noting the misses.
 func (x *flow) lookUp() bool {
-	p, req, ll := x.p, x.req, x.ll
+	p, req, ll := x.p, x.req, &x.ll
 	x.items = make([]item, 1)
 	if req.endpoint == endpointCompletions {
 		x.items = make([]item, len(req.prompts))
@@ -278,7 +278,7 @@ func (x *flow) answerHits() bool {
 	if len(x.misses) == 0 {
 		x.ll.outcome = OutcomeHit
 		fig := spendFigures{team: x.team.Name, saved: x.p.noteSaved(x.r.Context(), x.team, x.keyID, x.req, itemsUsage(x.items, nil))}
-		x.p.answer(x.w, x.ll, x.req, x.items, nil, OutcomeHit, fig)
+		x.p.answer(x.w, &x.ll, x.req, x.items, nil, OutcomeHit, fig)
 		return false
 	}
 	if x.d.onlyIfCached {
@@ -337,7 +337,7 @@ func (x *flow) claimAcrossReplicas(ctx context.Context) (*flightResult, func(con
 	if x.p.shared == nil || len(x.misses) != 1 || x.d.noCache || x.d.noStore {
 		return nil, nil
 	}
-	return x.p.claimShared(ctx, x.ll, x.req, &x.items[x.misses[0]], x.greedy)
+	return x.p.claimShared(ctx, &x.ll, x.req, &x.items[x.misses[0]], x.greedy)
 }
 
 // fetch calls the upstream for the misses (Proxy.fetch: admission to the
@@ -351,7 +351,7 @@ func (x *flow) fetch(ctx context.Context) (res *flightResult, streamTo http.Resp
 	}
 	// A relayed stream's headers go out before it is known whether its
 	// answer can be stored: they do not say stored.
-	streamStatus := p.cacheStatusOf(x.ll, OutcomeMiss, http.StatusOK).String()
+	streamStatus := p.cacheStatusOf(&x.ll, OutcomeMiss, http.StatusOK).String()
 	holdDone := !x.d.noStore && p.storeBeforeAnswer
 	res, err = p.fetch(x.r.Context(), ctx, missCall{x.team, x.keyID, x.up, x.req, x.items, x.misses, holdDone, streamStatus}, streamTo)
 	if res != nil && res.streamed {
@@ -368,7 +368,7 @@ func (x *flow) fetch(ctx context.Context) (res *flightResult, streamTo http.Resp
 // StoreBeforeAnswer every answer waits for its entry.
 func (x *flow) store(ctx context.Context, res *flightResult) {
 	sync := x.holding || x.p.storeBeforeAnswer
-	x.ll.stored = x.p.storeItems(ctx, x.ll, x.req, x.items, x.misses, res.items, x.greedy, sync)
+	x.ll.stored = x.p.storeItems(ctx, &x.ll, x.req, x.items, x.misses, res.items, x.greedy, sync)
 }
 
 // flightFailed answers a failed upstream call in the terms of its failure.
@@ -389,7 +389,7 @@ func (x *flow) flightFailed(err error) {
 		if x.shared {
 			x.ll.outcome = OutcomeShared
 		}
-		x.p.writeUpstreamError(x.w, x.ll, ue)
+		x.p.writeUpstreamError(x.w, &x.ll, ue)
 		return
 	}
 	if errors.Is(err, context.Canceled) || errors.Is(err, context.DeadlineExceeded) {
@@ -403,7 +403,7 @@ func (x *flow) flightFailed(err error) {
 // stream this request's leader relayed is already answered), with the
 // request's cost, or what it saved when another request's call answered it.
 func (x *flow) answerFetched() {
-	p, ll, res := x.p, x.ll, x.res
+	p, ll, res := x.p, &x.ll, x.res
 	if res.fromStore {
 		x.shared = true // another replica's call answered it
 	}
