@@ -6,6 +6,8 @@ import (
 	"fmt"
 	"io"
 	"reflect"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // errBadRequest marks request errors (400).
@@ -79,26 +81,17 @@ func withArticle(kind string) string {
 	return "a " + kind
 }
 
-// parseStop reads stop as null, a string or an array of strings.
+// parseStop reads stop as null, a string or an array of up to 16 strings,
+// leaving out empty ones.
 func parseStop(raw json.RawMessage) ([]string, error) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return nil, nil
-	}
-	var one string
-	if err := json.Unmarshal(raw, &one); err == nil {
-		if one == "" {
-			return nil, nil
-		}
-		return []string{one}, nil
-	}
-	var many []string
-	if err := json.Unmarshal(raw, &many); err != nil {
+	many, ok := wire.ParseStop(raw)
+	if !ok {
 		return nil, badRequest("stop must be a string or an array of strings")
 	}
 	if len(many) > 16 {
 		return nil, badRequest("stop has %d entries (at most 16)", len(many))
 	}
-	out := many[:0]
+	var out []string
 	for _, s := range many {
 		if s != "" {
 			out = append(out, s)
@@ -139,26 +132,14 @@ func parsePrompt(raw json.RawMessage) (texts []string, ids [][]int, err error) {
 
 // parseContent reads a message's content: a string, or an array of parts
 // of which only {"type":"text","text":…} are accepted.
-func parseContent(raw json.RawMessage) (string, error) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return "", nil
-	}
-	var s string
-	if json.Unmarshal(raw, &s) == nil {
-		return s, nil
-	}
-	var parts []struct {
-		Type string `json:"type"`
-		Text string `json:"text"`
-	}
-	if err := json.Unmarshal(raw, &parts); err != nil {
+func parseContent(m wire.ChatMessage) (string, error) {
+	s, err := m.Text()
+	var ce *wire.ContentError
+	switch {
+	case errors.As(err, &ce) && ce.Part < 0:
 		return "", badRequest("message content must be a string or an array of text parts")
+	case errors.As(err, &ce):
+		return "", badRequest("message content part type %q is not supported (only text)", ce.Type)
 	}
-	for _, p := range parts {
-		if p.Type != "text" {
-			return "", badRequest("message content part type %q is not supported (only text)", p.Type)
-		}
-		s += p.Text
-	}
-	return s, nil
+	return s, err
 }

@@ -472,7 +472,7 @@ func chatPrompt(msgs []wire.ChatMessage) (string, error) {
 		if role == "developer" {
 			role = "system"
 		}
-		content, err := parseContent(m.Content)
+		content, err := parseContent(m)
 		if err != nil {
 			return "", fmt.Errorf("messages[%d]: %w", i, err)
 		}

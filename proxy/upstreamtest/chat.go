@@ -1,7 +1,7 @@
 package upstreamtest
 
 import (
-	"encoding/json"
+	"errors"
 	"fmt"
 	"net/http"
 	"strings"
@@ -43,7 +43,7 @@ func renderChat(msgs []wire.ChatMessage) (string, *apiError) {
 		if !chatRole(msg.Role) {
 			return "", invalid(fmt.Sprintf("messages[%d].role", i), "Invalid value for 'messages[%d].role': %q.", i, msg.Role)
 		}
-		text, err := messageText(msg.Content, i)
+		text, err := messageText(msg, i)
 		if err != nil {
 			return "", err
 		}
@@ -53,45 +53,25 @@ func renderChat(msgs []wire.ChatMessage) (string, *apiError) {
 	return b.String(), nil
 }
 
-// messageText returns a message's content: a string, null, or an array of
+// messageText returns message i's content: a string, null, or an array of
 // {"type":"text","text":...} parts.
-func messageText(raw json.RawMessage, i int) (string, *apiError) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return "", nil
-	}
-	var s string
-	if json.Unmarshal(raw, &s) == nil {
-		return s, nil
-	}
-	var parts []struct {
-		Type string `json:"type"`
-		Text string `json:"text"`
-	}
-	if err := json.Unmarshal(raw, &parts); err != nil {
+func messageText(m wire.ChatMessage, i int) (string, *apiError) {
+	s, err := m.Text()
+	var ce *wire.ContentError
+	switch {
+	case errors.As(err, &ce) && ce.Part < 0:
 		return "", invalid(fmt.Sprintf("messages[%d].content", i), "Invalid type for 'messages[%d].content': expected a string or an array of content parts.", i)
+	case errors.As(err, &ce):
+		return "", invalid(fmt.Sprintf("messages[%d].content[%d].type", i, ce.Part), "Content parts of type %q are not supported.", ce.Type)
 	}
-	var b strings.Builder
-	for j, p := range parts {
-		if p.Type != "text" {
-			return "", invalid(fmt.Sprintf("messages[%d].content[%d].type", i, j), "Content parts of type %q are not supported.", p.Type)
-		}
-		b.WriteString(p.Text)
-	}
-	return b.String(), nil
+	return s, nil
 }
 
 func (s *Server) chat(out responder, body []byte) {
 	var req wire.ChatRequest
-	if err := decodeBody(body, &req); err != nil {
-		out.error(err)
-		return
-	}
-	st, err := commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions).validate()
-	if err != nil {
-		out.error(err)
-		return
-	}
-	m, err := s.modelFor(st.model)
+	st, m, err := s.decode(body, &req, func() *common {
+		return commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions)
+	})
 	if err != nil {
 		out.error(err)
 		return

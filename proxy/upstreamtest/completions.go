@@ -92,16 +92,9 @@ type completionChoiceData struct {
 
 func (s *Server) completions(out responder, body []byte) {
 	var req wire.CompletionRequest
-	if err := decodeBody(body, &req); err != nil {
-		out.error(err)
-		return
-	}
-	st, err := commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions).validate()
-	if err != nil {
-		out.error(err)
-		return
-	}
-	m, err := s.modelFor(st.model)
+	st, m, err := s.decode(body, &req, func() *common {
+		return commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions)
+	})
 	if err != nil {
 		out.error(err)
 		return

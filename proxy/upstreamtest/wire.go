@@ -84,6 +84,20 @@ type settings struct {
 	usage       bool // stream_options.include_usage
 }
 
+// decode decodes body into req, validates the fields both endpoints share
+// (which shared reads from req once decoded) and finds the model they name.
+func (s *Server) decode(body []byte, req any, shared func() *common) (settings, *model, *apiError) {
+	if err := decodeBody(body, req); err != nil {
+		return settings{}, nil, err
+	}
+	st, err := shared().validate()
+	if err != nil {
+		return st, nil, err
+	}
+	m, err := s.modelFor(st.model)
+	return st, m, err
+}
+
 // Limits the fake enforces, like a real API.
 const (
 	maxN          = 128
@@ -133,15 +147,8 @@ func (c *common) validate() (settings, *apiError) {
 // parseStop parses "stop": null, a string, or an array of up to four
 // strings.
 func parseStop(raw json.RawMessage) ([]string, *apiError) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return nil, nil
-	}
-	var one string
-	if json.Unmarshal(raw, &one) == nil {
-		return []string{one}, nil
-	}
-	var many []string
-	if err := json.Unmarshal(raw, &many); err != nil {
+	many, ok := wire.ParseStop(raw)
+	if !ok {
 		return nil, invalid("stop", "Invalid type for 'stop': expected a string or an array of strings.")
 	}
 	if len(many) > maxStops {

@@ -14,6 +14,8 @@ import (
 	"bytes"
 	"encoding/json"
 	"errors"
+	"fmt"
+	"strings"
 )
 
 // Usage is an answer's token accounting.
@@ -334,4 +336,66 @@ func (c *ErrorCode) UnmarshalJSON(b []byte) error {
 	}
 	*c = ErrorCode(n.String())
 	return nil
+}
+
+// ParseStop reads a request's stop field: null or absent (no stops), a
+// string or an array of strings. ok is false for anything else. Limits on
+// the count and on empty strings are the reader's.
+func ParseStop(raw json.RawMessage) (stops []string, ok bool) {
+	if len(raw) == 0 || string(raw) == "null" {
+		return nil, true
+	}
+	var one string
+	if json.Unmarshal(raw, &one) == nil {
+		return []string{one}, true
+	}
+	if err := json.Unmarshal(raw, &stops); err != nil {
+		return nil, false
+	}
+	return stops, true
+}
+
+// ContentError says why a message's content is not text.
+type ContentError struct {
+	// Part is the index of the content part that is not text, or -1 when
+	// the content is neither a string, null nor an array of parts.
+	Part int
+	// Type is that part's type.
+	Type string
+}
+
+func (e *ContentError) Error() string {
+	if e.Part < 0 {
+		return "wire: message content is not a string or an array of content parts"
+	}
+	return fmt.Sprintf("wire: message content part %d has type %q, not text", e.Part, e.Type)
+}
+
+// Text is the message's content as text: a string, "" for null, or the
+// texts of an array of {"type":"text","text":…} parts joined. Other
+// content is a *ContentError.
+func (m ChatMessage) Text() (string, error) {
+	raw := m.Content
+	if len(raw) == 0 || string(raw) == "null" {
+		return "", nil
+	}
+	var s string
+	if json.Unmarshal(raw, &s) == nil {
+		return s, nil
+	}
+	var parts []struct {
+		Type string `json:"type"`
+		Text string `json:"text"`
+	}
+	if err := json.Unmarshal(raw, &parts); err != nil {
+		return "", &ContentError{Part: -1}
+	}
+	var b strings.Builder
+	for i, p := range parts {
+		if p.Type != "text" {
+			return "", &ContentError{Part: i, Type: p.Type}
+		}
+		b.WriteString(p.Text)
+	}
+	return b.String(), nil
 }

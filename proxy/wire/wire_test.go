@@ -81,3 +81,59 @@ func TestRequestLeavesOutUnset(t *testing.T) {
 	require.NoError(t, err)
 	assert.JSONEq(t, `{"model":"m","messages":[{"role":"user","content":"hi"}],"logprobs":true}`, string(b))
 }
+
+// TestParseStop checks the forms a stop field takes.
+func TestParseStop(t *testing.T) {
+	tests := []struct {
+		raw    string
+		want   []string
+		wantOK bool
+	}{
+		{``, nil, true},
+		{`null`, nil, true},
+		{`"\n"`, []string{"\n"}, true},
+		{`""`, []string{""}, true},
+		{`["a","b"]`, []string{"a", "b"}, true},
+		{`3`, nil, false},
+		{`["a",1]`, nil, false},
+	}
+	for _, tt := range tests {
+		got, ok := wire.ParseStop(json.RawMessage(tt.raw))
+		assert.Equal(t, tt.wantOK, ok, "%s", tt.raw)
+		if tt.wantOK {
+			assert.Equal(t, tt.want, got, "%s", tt.raw)
+		}
+	}
+}
+
+// TestMessageText checks a message's content read as text, and the
+// ContentError of content that is not.
+func TestMessageText(t *testing.T) {
+	tests := []struct {
+		content string
+		want    string
+		part    int // of the ContentError; 0 for none
+		typ     string
+	}{
+		{`"hi"`, "hi", 0, ""},
+		{`null`, "", 0, ""},
+		{`[{"type":"text","text":"a "},{"type":"text","text":"b"}]`, "a b", 0, ""},
+		{`[{"type":"text","text":"a"},{"type":"image_url"}]`, "", 1, "image_url"},
+		{`7`, "", -1, ""},
+	}
+	for _, tt := range tests {
+		got, err := wire.ChatMessage{Role: "user", Content: json.RawMessage(tt.content)}.Text()
+		if tt.part == 0 {
+			require.NoError(t, err, tt.content)
+			assert.Equal(t, tt.want, got, tt.content)
+			continue
+		}
+		var ce *wire.ContentError
+		require.ErrorAs(t, err, &ce, tt.content)
+		assert.Equal(t, tt.part, ce.Part, tt.content)
+		assert.Equal(t, tt.typ, ce.Type, tt.content)
+	}
+	got, err := wire.TextMessage("user", "<x>").Text()
+	require.NoError(t, err)
+	assert.Equal(t, "<x>", got, "TextMessage round trip")
+}
