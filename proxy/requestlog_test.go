@@ -7,6 +7,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/wire"
 )
 
@@ -26,9 +29,7 @@ func slogLine(t testing.TB, now time.Time, ll *logLine, d time.Duration) []byte 
 	if ll.promptText != "" {
 		r.AddAttrs(slog.String("prompt", ll.promptText))
 	}
-	if err := h.Handle(context.Background(), r); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Handle(context.Background(), r))
 	return buf.Bytes()
 }
 
@@ -50,9 +51,7 @@ func TestRequestLineMatchesSlog(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			want := slogLine(t, now, &tc.ll, tc.d)
 			got := appendRequestLine(nil, now, &tc.ll, tc.d)
-			if !bytes.Equal(got, want) {
-				t.Errorf("line differs from slog's JSON handler\n got: %s\nwant: %s", got, want)
-			}
+			assert.Equal(t, string(want), string(got), "line differs from slog's JSON handler")
 		})
 	}
 }
