@@ -179,6 +179,33 @@ func (h *handler) decode(w http.ResponseWriter, r *http.Request, v any) bool {
 	return true
 }
 
+// begin takes a worker slot for a generation under a context of its own,
+// whose cancel stops it (a stream's failed write calls it), and notes in c
+// whether the answer streams and ends with a usage chunk. When ok is false
+// it has answered the failure; otherwise the caller defers end.
+func (h *handler) begin(w http.ResponseWriter, r *http.Request, c *common, stream bool, so *wire.StreamOptions) (ctx context.Context, cancel context.CancelFunc, end func(), ok bool) {
+	c.stream = stream
+	c.usage = so != nil && so.IncludeUsage
+	ctx, cancel = context.WithCancel(r.Context())
+	release, err := h.acquire(ctx)
+	if err != nil {
+		cancel()
+		h.fail(w, err)
+		return nil, nil, nil, false
+	}
+	return ctx, cancel, func() { release(); cancel() }, true
+}
+
+// failRun answers a generation's error: on its stream once that has
+// started, else as an error answer.
+func (h *handler) failRun(w http.ResponseWriter, es *eventStream, err error) {
+	if es != nil && es.started {
+		es.fail(err)
+		return
+	}
+	h.fail(w, err)
+}
+
 // acquire waits for a worker slot; the returned func gives it back.
 func (h *handler) acquire(ctx context.Context) (func(), error) {
 	select {
@@ -321,16 +348,11 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 		h.fail(w, badRequest("%d prompts × n=%d exceeds %d choices", len(prompts), c.n, maxChoices))
 		return
 	}
-	c.stream = req.Stream
-	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
-	ctx, cancel := context.WithCancel(r.Context())
-	defer cancel()
-	release, err := h.acquire(ctx)
-	if err != nil {
-		h.fail(w, err)
+	ctx, cancel, end, ok := h.begin(w, r, &c, req.Stream, req.StreamOptions)
+	if !ok {
 		return
 	}
-	defer release()
+	defer end()
 
 	id, created := "cmpl-"+newID(), h.now().Unix()
 	resp := wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name}
@@ -376,19 +398,12 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 	}
 	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
 	if err != nil {
-		if es != nil && es.started {
-			es.fail(err)
-			return
-		}
-		h.fail(w, err)
+		h.failRun(w, es, err)
 		return
 	}
 	u := h.usage(states, choices)
 	if c.stream {
-		if c.usage {
-			es.send(wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []wire.CompletionChoice{}, Usage: &u})
-		}
-		es.done()
+		es.end(c.usage, wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []wire.CompletionChoice{}, Usage: &u})
 		return
 	}
 	for _, ch := range choices {
@@ -523,16 +538,11 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 		h.fail(w, err)
 		return
 	}
-	c.stream = req.Stream
-	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
-	ctx, cancel := context.WithCancel(r.Context())
-	defer cancel()
-	release, err := h.acquire(ctx)
-	if err != nil {
-		h.fail(w, err)
+	ctx, cancel, end, ok := h.begin(w, r, &c, req.Stream, req.StreamOptions)
+	if !ok {
 		return
 	}
-	defer release()
+	defer end()
 
 	id, created := "chatcmpl-"+newID(), h.now().Unix()
 	chunk := func(choices []wire.ChatChoice, u *wire.Usage) wire.ChatResponse {
@@ -569,19 +579,12 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 	}
 	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
 	if err != nil {
-		if es != nil && es.started {
-			es.fail(err)
-			return
-		}
-		h.fail(w, err)
+		h.failRun(w, es, err)
 		return
 	}
 	u := h.usage(states, choices)
 	if c.stream {
-		if c.usage {
-			es.send(chunk([]wire.ChatChoice{}, &u))
-		}
-		es.done()
+		es.end(c.usage, chunk([]wire.ChatChoice{}, &u))
 		return
 	}
 	resp := wire.ChatResponse{ID: id, Object: "chat.completion", Created: created, Model: h.name, Usage: &u}
@@ -684,3 +687,11 @@ func (s *eventStream) fail(err error) {
 }
 
 func (s *eventStream) done() { s.write([]byte(sse.Done)) }
+
+// end ends the stream: the usage chunk when withUsage, then [DONE].
+func (s *eventStream) end(withUsage bool, usageChunk any) {
+	if withUsage {
+		s.send(usageChunk)
+	}
+	s.done()
+}
