@@ -13,7 +13,6 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache/canon"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

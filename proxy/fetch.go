@@ -12,7 +12,6 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/sse"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

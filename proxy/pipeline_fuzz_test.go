@@ -14,7 +14,6 @@ import (
 	"testing"
 
 	"github.com/stintlab/stint/proxy/sse"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

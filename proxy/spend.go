@@ -16,7 +16,6 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/tokens"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

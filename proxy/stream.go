@@ -9,7 +9,6 @@ import (
 	"unicode/utf8"
 
 	"github.com/stintlab/stint/proxy/sse"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

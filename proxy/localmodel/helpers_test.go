@@ -11,7 +11,6 @@ import (
 	"testing"
 
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 

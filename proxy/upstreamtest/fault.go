@@ -12,7 +12,6 @@ import (
 	"time"
 
 	"github.com/stintlab/stint/proxy/sse"
-
 	"github.com/stintlab/stint/proxy/wire"
 )
 
