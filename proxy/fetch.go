@@ -8,6 +8,7 @@ import (
 	"io"
 	"net/http"
 	"strconv"
+	"time"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
@@ -28,6 +29,22 @@ type missCall struct {
 	holdDone bool
 	// status is the Cache-Status of a relayed stream.
 	status string
+}
+
+// flightResult is what one upstream call yields, shared by coalesced waiters.
+type flightResult struct {
+	full     []byte   // the upstream's whole answer, assembled when streamed
+	items    []served // one per prompt sent
+	streamed bool     // the leader already streamed the answer to its client
+	doneHeld bool     // ... all of it but its final event (missCall.holdDone)
+	// unstorable: the streamed answer was relayed but cannot be rebuilt for
+	// storing or for sharing with waiters.
+	unstorable bool
+	// fromStore: answered from the shared store after another replica's
+	// call (see SharedFlights), not by a call of this process.
+	fromStore bool
+	latency   time.Duration
+	cost      budget.Nanos // what the call was charged (spend control on)
 }
 
 // fetch makes the upstream call for the missing prompts of c.req (through

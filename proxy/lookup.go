@@ -7,9 +7,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
-	"time"
 
-	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/proxy/wire"
 )
@@ -22,22 +20,6 @@ type served struct {
 	facts *answerFacts
 	// storedAt is when a cached answer was stored (Unix seconds).
 	storedAt int64
-}
-
-// flightResult is what one upstream call yields, shared by coalesced waiters.
-type flightResult struct {
-	full     []byte   // the upstream's whole answer, assembled when streamed
-	items    []served // one per prompt sent
-	streamed bool     // the leader already streamed the answer to its client
-	doneHeld bool     // ... all of it but its final event (missCall.holdDone)
-	// unstorable: the streamed answer was relayed but cannot be rebuilt for
-	// storing or for sharing with waiters.
-	unstorable bool
-	// fromStore: answered from the shared store after another replica's
-	// call (see SharedFlights), not by a call of this process.
-	fromStore bool
-	latency   time.Duration
-	cost      budget.Nanos // what the call was charged (spend control on)
 }
 
 // item is one prompt of a request and its cache state.
