@@ -8,6 +8,8 @@ import (
 	"net/http"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/sse"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 	"github.com/stintlab/stint/proxy/wire"
@@ -24,22 +26,16 @@ type errorEnvelope struct {
 func post(tb testing.TB, up *upstreamtest.Server, path, body string, header http.Header) (*http.Response, []byte) {
 	tb.Helper()
 	req, err := http.NewRequest(http.MethodPost, up.URL()+path, bytes.NewReader([]byte(body)))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	req.Header.Set("Content-Type", "application/json")
 	for k, v := range header {
 		req.Header[k] = v
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
-	if err != nil {
-		tb.Fatalf("reading %s answer: %v", path, err)
-	}
+	require.NoError(tb, err, "reading %s answer", path)
 	return resp, b
 }
 
@@ -47,12 +43,8 @@ func post(tb testing.TB, up *upstreamtest.Server, path, body string, header http
 func postOK(tb testing.TB, up *upstreamtest.Server, path, body string, v any) {
 	tb.Helper()
 	resp, b := post(tb, up, path, body, nil)
-	if resp.StatusCode != http.StatusOK {
-		tb.Fatalf("POST %s %s: status %d, body %s", path, body, resp.StatusCode, b)
-	}
-	if err := json.Unmarshal(b, v); err != nil {
-		tb.Fatalf("decoding %s: %v", b, err)
-	}
+	require.Equal(tb, http.StatusOK, resp.StatusCode, "POST %s %s: body %s", path, body, b)
+	require.NoError(tb, json.Unmarshal(b, v), "decoding %s", b)
 }
 
 // streamEvents parses an event-stream answer into its data payloads,
@@ -63,16 +55,14 @@ func streamEvents(tb testing.TB, body []byte) [][]byte {
 	var out [][]byte
 	for {
 		ev, err := r.Next()
-		if err != nil {
-			tb.Fatalf("stream ended without [DONE]: %v", err)
-		}
+		require.NoError(tb, err, "stream ended without [DONE]")
 		if ev.IsDone() {
 			break
 		}
 		out = append(out, []byte(ev.Data))
 	}
 	if _, err := r.Next(); err != io.EOF {
-		tb.Fatalf("after [DONE]: %v; want io.EOF", err)
+		require.Failf(tb, "events after [DONE]", "after [DONE]: %v; want io.EOF", err)
 	}
 	return out
 }
