@@ -9,8 +9,8 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/redisstore"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // TestHotStaleIfErrorStandsInForRedis runs two tiers on one real

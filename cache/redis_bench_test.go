@@ -10,8 +10,8 @@ import (
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/redisstore"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // storeBackends are the stores the Get/Put benchmarks compare in one run:

@@ -70,11 +70,11 @@ func newInFlight(teams []Team, open *Team, def int) map[string]*inFlight {
 	return m
 }
 
-// admit authenticates r from its headers and takes a slot of the team's
+// enter authenticates r from its headers and takes a slot of the team's
 // in-flight cap. On refusal it has answered and returns a nil team; the
 // error is what was answered. Otherwise the caller calls release once the
 // request is done.
-func (p *Proxy) admit(w http.ResponseWriter, r *http.Request) (team *Team, keyID string, release func(), refused *apiError) {
+func (p *Proxy) enter(w http.ResponseWriter, r *http.Request) (team *Team, keyID string, release func(), refused *apiError) {
 	team, keyID, aerr := p.authenticate(r)
 	if aerr != nil {
 		refuseConnection(w, aerr)

@@ -13,6 +13,7 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/cache/canon"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // answer writes the reply to a request whose every prompt now has an answer.
@@ -23,7 +24,7 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 	for i := range items {
 		parts[i] = *items[i].hit
 	}
-	body, u := full, usage{}
+	body, u := full, wire.Usage{}
 	if body == nil {
 		var err error
 		body, u, err = mergeAnswers(req, parts)
@@ -57,10 +58,10 @@ func (p *Proxy) answer(w http.ResponseWriter, ll *logLine, req *request, items [
 	_, _ = w.Write(body)
 }
 
-func mergeUsage(parts []served) (int, usage) {
-	var u usage
+func mergeUsage(parts []served) (int, wire.Usage) {
+	var u wire.Usage
 	for _, s := range parts {
-		u = u.add(s.usage)
+		u = u.Add(s.usage)
 	}
 	return len(parts), u
 }
@@ -68,34 +69,34 @@ func mergeUsage(parts []served) (int, usage) {
 // mergeAnswers joins single-prompt answers into the answer for the whole
 // request: choices renumbered prompt*n + j in prompt order, usage summed,
 // the other top-level fields taken from the first answer.
-func mergeAnswers(req *request, parts []served) ([]byte, usage, error) {
+func mergeAnswers(req *request, parts []served) ([]byte, wire.Usage, error) {
 	if len(parts) == 1 {
 		return parts[0].body, parts[0].usage, nil
 	}
 	var env map[string]json.RawMessage
 	var all []json.RawMessage
-	var total usage
+	var total wire.Usage
 	for i, s := range parts {
 		var e map[string]json.RawMessage
 		if err := json.Unmarshal(s.body, &e); err != nil {
-			return nil, usage{}, fmt.Errorf("stored answer %d: %w", i, err)
+			return nil, wire.Usage{}, fmt.Errorf("stored answer %d: %w", i, err)
 		}
 		if env == nil {
 			env = e
 		}
 		var choices []map[string]json.RawMessage
 		if err := json.Unmarshal(e["choices"], &choices); err != nil {
-			return nil, usage{}, fmt.Errorf("stored answer %d choices: %w", i, err)
+			return nil, wire.Usage{}, fmt.Errorf("stored answer %d choices: %w", i, err)
 		}
 		for _, ch := range choices {
 			var j int
 			if err := json.Unmarshal(ch["index"], &j); err != nil {
-				return nil, usage{}, fmt.Errorf("stored answer %d: bad choice index", i)
+				return nil, wire.Usage{}, fmt.Errorf("stored answer %d: bad choice index", i)
 			}
 			ch["index"] = json.RawMessage(strconv.Itoa(i*req.n + j))
 			all = append(all, mustMarshal(ch))
 		}
-		total = total.add(s.usage)
+		total = total.Add(s.usage)
 	}
 	env["choices"] = mustMarshal(all)
 	env["usage"] = mustMarshal(total)
@@ -248,7 +249,7 @@ func (p *Proxy) forwardAccounted(w http.ResponseWriter, r *http.Request, ll *log
 		return
 	}
 	var a struct {
-		Usage *usage `json:"usage"`
+		Usage *wire.Usage `json:"usage"`
 	}
 	if json.Unmarshal(full, &a) != nil || a.Usage == nil {
 		p.settle(ctx, ticket, team.Name, &flightResult{unstorable: true}, nil, budget.Bypass)

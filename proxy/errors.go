@@ -4,6 +4,8 @@ import (
 	"encoding/json"
 	"net/http"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Error types used in the wire format's error body.
@@ -16,18 +18,6 @@ const (
 	errCache          = "cache_error"
 	errServer         = "server_error"
 )
-
-// wireError is the wire format's error body: {"error":{"message","type","code"}}.
-type wireError struct {
-	Error wireErrorBody `json:"error"`
-}
-
-type wireErrorBody struct {
-	Message string  `json:"message"`
-	Type    string  `json:"type"`
-	Param   *string `json:"param"`
-	Code    *string `json:"code"`
-}
 
 // apiError is an error that knows its HTTP status and wire error fields.
 type apiError struct {
@@ -49,14 +39,7 @@ func badRequest(param, format string, args ...any) *apiError {
 // writeError writes err in the wire format's error shape. Errors that are not
 // *apiError become a 500 without their text (it may hold internals).
 func writeError(w http.ResponseWriter, e *apiError) {
-	body := wireError{Error: wireErrorBody{Message: e.message, Type: e.typ}}
-	if e.code != "" {
-		body.Error.Code = &e.code
-	}
-	if e.param != "" {
-		body.Error.Param = &e.param
-	}
-	b, _ := json.Marshal(body)
+	b, _ := json.Marshal(wire.NewError(e.typ, e.code, e.param, e.message))
 	w.Header().Set("Content-Type", "application/json")
 	w.Header().Set("Content-Length", itoa(len(b)))
 	if e.retryAfter > 0 {

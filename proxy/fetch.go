@@ -8,10 +8,12 @@ import (
 	"io"
 	"net/http"
 	"strconv"
+	"time"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // missCall is the upstream call for the missing prompts of a request.
@@ -27,6 +29,22 @@ type missCall struct {
 	holdDone bool
 	// status is the Cache-Status of a relayed stream.
 	status string
+}
+
+// flightResult is what one upstream call yields, shared by coalesced waiters.
+type flightResult struct {
+	full     []byte   // the upstream's whole answer, assembled when streamed
+	items    []served // one per prompt sent
+	streamed bool     // the leader already streamed the answer to its client
+	doneHeld bool     // ... all of it but its final event (missCall.holdDone)
+	// unstorable: the streamed answer was relayed but cannot be rebuilt for
+	// storing or for sharing with waiters.
+	unstorable bool
+	// fromStore: answered from the shared store after another replica's
+	// call (see SharedFlights), not by a call of this process.
+	fromStore bool
+	latency   time.Duration
+	cost      budget.Nanos // what the call was charged (spend control on)
 }
 
 // fetch makes the upstream call for the missing prompts of c.req (through
@@ -163,7 +181,7 @@ func upstreamBody(req *request, prompts []json.RawMessage, stream bool) ([]byte,
 // stream reported, if it did. Spend figures, known only at the end, are sent
 // as HTTP trailers. With holdDone the final "data: [DONE]" event is left for
 // the caller to send (writeDone).
-func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, cacheStatus string, holdDone bool) ([]byte, usage, bool, error) {
+func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, cacheStatus string, holdDone bool) ([]byte, wire.Usage, bool, error) {
 	h := w.Header()
 	h.Set("Content-Type", "text/event-stream")
 	h.Set("Cache-Control", "no-cache")
@@ -182,7 +200,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 			if errors.Is(err, io.EOF) {
 				err = io.ErrUnexpectedEOF
 			}
-			return nil, usage{}, false, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
+			return nil, wire.Usage{}, false, &upstreamError{err: fmt.Errorf("upstream stream ended early: %w", err)}
 		}
 		if ev.IsDone() {
 			if clientOK && !holdDone {
@@ -192,7 +210,7 @@ func (p *Proxy) relay(w http.ResponseWriter, resp *http.Response, req *request, 
 		}
 		usageOnly, err := asm.add([]byte(ev.Data))
 		if err != nil {
-			return nil, usage{}, false, &upstreamError{err: err}
+			return nil, wire.Usage{}, false, &upstreamError{err: err}
 		}
 		if clientOK && (!usageOnly || req.includeUsage) {
 			if err := sw.WriteData([]byte(ev.Data)); err != nil {
@@ -218,7 +236,7 @@ func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMess
 	if err := json.Unmarshal(full, &env); err != nil {
 		return nil, fmt.Errorf("upstream answer is not a JSON object: %w", err)
 	}
-	var u usage
+	var u wire.Usage
 	if raw, ok := env["usage"]; ok && !isNull(raw) {
 		if err := json.Unmarshal(raw, &u); err != nil {
 			return nil, fmt.Errorf("upstream usage: %w", err)
@@ -273,12 +291,12 @@ func splitAnswer(req *request, full []byte, nPrompts int, prompts []json.RawMess
 func splitOne(req *request, full []byte) ([]served, error) {
 	var (
 		choices int
-		u       *usage
+		u       *wire.Usage
 		facts   = &answerFacts{tokens: noLevel}
 	)
 	var typed struct {
 		Choices []factChoice `json:"choices"`
-		Usage   *usage       `json:"usage"`
+		Usage   *wire.Usage  `json:"usage"`
 	}
 	if err := json.Unmarshal(full, &typed); err == nil {
 		choices, u = len(typed.Choices), typed.Usage
@@ -286,7 +304,7 @@ func splitOne(req *request, full []byte) ([]served, error) {
 	} else {
 		var loose struct {
 			Choices []json.RawMessage `json:"choices"`
-			Usage   *usage            `json:"usage"`
+			Usage   *wire.Usage       `json:"usage"`
 		}
 		if err := json.Unmarshal(full, &loose); err != nil {
 			return nil, fmt.Errorf("upstream answer is not a completions object: %w", err)
@@ -296,7 +314,7 @@ func splitOne(req *request, full []byte) ([]served, error) {
 	if choices != req.n {
 		return nil, fmt.Errorf("upstream answered %d choices for 1 prompt × n=%d", choices, req.n)
 	}
-	var total usage
+	var total wire.Usage
 	if u != nil {
 		total = *u
 	}
@@ -306,7 +324,7 @@ func splitOne(req *request, full []byte) ([]served, error) {
 // apportion splits a batched call's usage among its prompts so the shares add
 // up exactly: completion tokens by each prompt's token count when logprobs
 // list the tokens, else by text length; prompt tokens by prompt length.
-func apportion(total usage, groups [][]map[string]json.RawMessage, prompts []json.RawMessage) []usage {
+func apportion(total wire.Usage, groups [][]map[string]json.RawMessage, prompts []json.RawMessage) []wire.Usage {
 	pw := make([]int, len(groups))
 	cw := make([]int, len(groups))
 	for j, g := range groups {
@@ -328,9 +346,9 @@ func apportion(total usage, groups [][]map[string]json.RawMessage, prompts []jso
 	}
 	ps := splitInt(total.PromptTokens, pw)
 	cs := splitInt(total.CompletionTokens, cw)
-	out := make([]usage, len(groups))
+	out := make([]wire.Usage, len(groups))
 	for j := range out {
-		out[j] = usage{PromptTokens: ps[j], CompletionTokens: cs[j], TotalTokens: ps[j] + cs[j]}
+		out[j] = wire.Usage{PromptTokens: ps[j], CompletionTokens: cs[j], TotalTokens: ps[j] + cs[j]}
 	}
 	return out
 }

@@ -27,7 +27,7 @@ const modelsTimeout = 30 * time.Second
 // serveModels answers GET /v1/models from the upstreams, merged when there
 // are several, and reuses the answer for ModelsTTL.
 func (p *Proxy) serveModels(w http.ResponseWriter, r *http.Request) {
-	_, _, release, aerr := p.admit(w, r)
+	_, _, release, aerr := p.enter(w, r)
 	if aerr != nil {
 		return
 	}

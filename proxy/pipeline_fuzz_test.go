@@ -14,6 +14,7 @@ import (
 	"testing"
 
 	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // fuzzMaxPrompts is the prompt cap the fuzz target parses under.
@@ -71,7 +72,7 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 		}
 		rec := httptest.NewRecorder()
 		writeError(rec, aerr)
-		var e wireError
+		var e wire.ErrorBody
 		if err := json.Unmarshal(rec.Body.Bytes(), &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
 			t.Fatalf("refusal body %s is not the wire error shape (%v)", rec.Body.Bytes(), err)
 		}
@@ -191,7 +192,7 @@ func checkSplitMerge(t *testing.T, m *material) {
 		j := m.intn(i + 1)
 		choices[i], choices[j] = choices[j], choices[i]
 	}
-	total := usage{PromptTokens: m.intn(200), CompletionTokens: m.intn(200)}
+	total := wire.Usage{PromptTokens: m.intn(200), CompletionTokens: m.intn(200)}
 	total.TotalTokens = total.PromptTokens + total.CompletionTokens
 	full, _ := json.Marshal(map[string]any{"id": "cmpl-f", "object": "text_completion", "model": "m", "choices": choices, "usage": total})
 
@@ -202,7 +203,7 @@ func checkSplitMerge(t *testing.T, m *material) {
 	if len(parts) != k {
 		t.Fatalf("split into %d answers, want %d", len(parts), k)
 	}
-	var sum usage
+	var sum wire.Usage
 	for j, p := range parts {
 		var a struct {
 			Choices []struct {
@@ -218,7 +219,7 @@ func checkSplitMerge(t *testing.T, m *material) {
 				t.Fatalf("answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
 			}
 		}
-		sum = sum.add(p.usage)
+		sum = sum.Add(p.usage)
 	}
 	if sum.PromptTokens != total.PromptTokens || sum.CompletionTokens != total.CompletionTokens {
 		t.Fatalf("split usage adds up to %+v, want %+v", sum, total)
@@ -285,7 +286,7 @@ func mapsEqual(a, b map[int]string) bool {
 
 // checkStream writes body as an event stream, assembles it again and
 // compares texts and usage.
-func checkStream(t *testing.T, ep endpoint, body []byte, want map[int]string, u usage) {
+func checkStream(t *testing.T, ep endpoint, body []byte, want map[int]string, u wire.Usage) {
 	t.Helper()
 	rec := httptest.NewRecorder()
 	if err := writeStream(rec, ep, body, true, OutcomeHit); err != nil {
@@ -355,7 +356,7 @@ func checkShape(t *testing.T, m *material) {
 	}
 	lp := map[string]any{"tokens": tokens, "token_logprobs": lps, "top_logprobs": tops, "text_offset": offsets}
 	text := strings.Join(tokens, "")
-	u := usage{PromptTokens: 3, CompletionTokens: ntok, TotalTokens: 3 + ntok}
+	u := wire.Usage{PromptTokens: 3, CompletionTokens: ntok, TotalTokens: 3 + ntok}
 	stored, _ := json.Marshal(map[string]any{"id": "cmpl-s", "object": "text_completion", "model": "m",
 		"choices": []any{map[string]any{"index": 0, "text": text, "logprobs": lp, "finish_reason": "length"}}, "usage": u})
 	v := variant{Logprobs: k, MaxTokens: ntok, Tokens: ntok, Usage: u, Body: stored}

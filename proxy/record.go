@@ -7,6 +7,8 @@ import (
 	"fmt"
 	"math"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // maxVariants bounds how many answers of one key a record keeps.
@@ -26,21 +28,10 @@ type variant struct {
 	MaxTokens int             `json:"mt"`
 	Finish    string          `json:"fr,omitempty"`
 	Tokens    int             `json:"tk"` // completion tokens with token-level data; -1 when not known
-	Usage     usage           `json:"u"`
+	Usage     wire.Usage      `json:"u"`
 	Estimated bool            `json:"est,omitempty"` // usage apportioned from a batched call
 	StoredAt  int64           `json:"at"`
 	Body      json.RawMessage `json:"b"`
-}
-
-// usage is the wire format's token accounting.
-type usage struct {
-	PromptTokens     int `json:"prompt_tokens"`
-	CompletionTokens int `json:"completion_tokens"`
-	TotalTokens      int `json:"total_tokens"`
-}
-
-func (u usage) add(o usage) usage {
-	return usage{u.PromptTokens + o.PromptTokens, u.CompletionTokens + o.CompletionTokens, u.TotalTokens + o.TotalTokens}
 }
 
 // Records are stored in a small binary form so a cache hit decodes by
@@ -67,7 +58,7 @@ func decodeRecord(b []byte) (record, error) {
 			Logprobs:  int(int32(binary.BigEndian.Uint32(b[0:]))),
 			MaxTokens: int(int32(binary.BigEndian.Uint32(b[4:]))),
 			Tokens:    int(int32(binary.BigEndian.Uint32(b[8:]))),
-			Usage: usage{
+			Usage: wire.Usage{
 				PromptTokens:     int(int32(binary.BigEndian.Uint32(b[12:]))),
 				CompletionTokens: int(int32(binary.BigEndian.Uint32(b[16:]))),
 				TotalTokens:      int(int32(binary.BigEndian.Uint32(b[20:]))),

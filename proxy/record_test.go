@@ -2,8 +2,12 @@ package proxy
 
 import (
 	"encoding/json"
-	"reflect"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 func TestRecordRoundTrip(t *testing.T) {
@@ -11,30 +15,23 @@ func TestRecordRoundTrip(t *testing.T) {
 		{},
 		{Variants: []variant{{Logprobs: noLevel, MaxTokens: noLevel, Tokens: noLevel, Body: json.RawMessage(`{}`)}}},
 		{Variants: []variant{
-			{Logprobs: 5, MaxTokens: 24, Finish: "length", Tokens: 24, Usage: usage{3, 24, 27}, Estimated: true, StoredAt: 1780000000, Body: json.RawMessage(`{"choices":[]}`)},
-			{Logprobs: 0, MaxTokens: 0, Finish: "stop", Tokens: 0, Usage: usage{1, 0, 1}, StoredAt: -1, Body: json.RawMessage(`{"a":"ü"}`)},
+			{Logprobs: 5, MaxTokens: 24, Finish: "length", Tokens: 24, Usage: wire.NewUsage(3, 24), Estimated: true, StoredAt: 1780000000, Body: json.RawMessage(`{"choices":[]}`)},
+			{Logprobs: 0, MaxTokens: 0, Finish: "stop", Tokens: 0, Usage: wire.NewUsage(1, 0), StoredAt: -1, Body: json.RawMessage(`{"a":"ü"}`)},
 		}},
 	}
 	for i, rec := range recs {
 		b, err := rec.encode()
-		if err != nil {
-			t.Fatalf("record %d: encode: %v", i, err)
-		}
+		require.NoError(t, err, "record %d: encode", i)
 		got, err := decodeRecord(b)
-		if err != nil {
-			t.Fatalf("record %d: decode: %v", i, err)
-		}
+		require.NoError(t, err, "record %d: decode", i)
 		if len(rec.Variants) == 0 && len(got.Variants) == 0 {
 			continue
 		}
-		if !reflect.DeepEqual(got, rec) {
-			t.Errorf("record %d: got %+v, want %+v", i, got, rec)
-		}
+		assert.Equal(t, rec, got, "record %d", i)
 		// Every truncation is refused, never a panic.
 		for n := range len(b) {
-			if _, err := decodeRecord(b[:n]); err == nil {
-				t.Errorf("record %d truncated to %d bytes decoded without error", i, n)
-			}
+			_, err := decodeRecord(b[:n])
+			assert.Error(t, err, "record %d truncated to %d bytes decoded", i, n)
 		}
 	}
 }
@@ -44,13 +41,11 @@ func TestRecordWithDropsCoveredVariants(t *testing.T) {
 	big := variant{Logprobs: 5, MaxTokens: 24, Tokens: 24, Finish: "length"}
 	other := variant{Logprobs: noLevel, MaxTokens: noLevel, Tokens: noLevel}
 	rec := record{}.with(small, true, false).with(other, true, false).with(big, true, false)
-	if len(rec.Variants) != 2 || rec.Variants[0].Logprobs != 5 {
-		t.Fatalf("got %+v, want big and the variant it cannot cover", rec.Variants)
-	}
-	if v, ok := rec.pick(2, 8, true, false); !ok || v.Logprobs != 5 {
-		t.Errorf("pick(2, 8) = %+v, %v; want the big variant", v, ok)
-	}
-	if _, ok := rec.pick(8, 8, true, false); ok {
-		t.Error("pick(8, 8) found a variant; none has 8 log-probabilities")
-	}
+	require.Len(t, rec.Variants, 2, "big and the variant it cannot cover")
+	require.Equal(t, 5, rec.Variants[0].Logprobs, "big first")
+	v, ok := rec.pick(2, 8, true, false)
+	assert.True(t, ok, "pick(2, 8)")
+	assert.Equal(t, 5, v.Logprobs, "pick(2, 8): the big variant")
+	_, ok = rec.pick(8, 8, true, false)
+	assert.False(t, ok, "pick(8, 8) found a variant; none has 8 log-probabilities")
 }

@@ -4,8 +4,10 @@ import (
 	"bytes"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
 	"math"
+	"net/http"
 	"strconv"
 )
 
@@ -404,4 +406,46 @@ func article(kind string) string {
 		return "another kind of value"
 	}
 	return "a " + kind
+}
+
+// readBody reads the request body, refusing one larger than MaxBodyBytes
+// (413) or one that does not arrive within the read timeout (408).
+func (p *Proxy) readBody(w http.ResponseWriter, r *http.Request) ([]byte, *apiError) {
+	body, err := readAllSized(http.MaxBytesReader(w, r.Body, p.maxBody), r.ContentLength, p.maxBody)
+	if err != nil {
+		var mbe *http.MaxBytesError
+		if errors.As(err, &mbe) {
+			return nil, &apiError{status: http.StatusRequestEntityTooLarge, typ: errInvalidRequest, code: "body_too_large", message: fmt.Sprintf("request body is larger than %d bytes", p.maxBody)}
+		}
+		if bodyTimedOut(err) {
+			w.Header().Set("Connection", "close")
+			return nil, &apiError{status: http.StatusRequestTimeout, typ: errInvalidRequest, code: "body_timeout", message: "the request body did not arrive within the server's read timeout"}
+		}
+		return nil, badRequest("", "cannot read request body: %v", err)
+	}
+	return body, nil
+}
+
+// readAllSized reads r to its end like io.ReadAll, starting from a buffer
+// of the announced length (when it is known and within limit) so a body
+// is read into one allocation of its own size.
+func readAllSized(r io.Reader, announced, limit int64) ([]byte, error) {
+	if announced <= 0 || announced > limit {
+		return io.ReadAll(r)
+	}
+	// One byte more than announced, so reaching the end needs no growth.
+	b := make([]byte, 0, announced+1)
+	for {
+		n, err := r.Read(b[len(b):cap(b)])
+		b = b[:len(b)+n]
+		if err == io.EOF {
+			return b, nil
+		}
+		if err != nil {
+			return b, err
+		}
+		if len(b) == cap(b) {
+			b = append(b, 0)[:len(b)] // grow: the body is longer than announced
+		}
+	}
 }

@@ -6,6 +6,11 @@ import (
 	"log/slog"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // slogLine is the line slog's JSON handler writes for ll: the reference the
@@ -24,9 +29,7 @@ func slogLine(t testing.TB, now time.Time, ll *logLine, d time.Duration) []byte 
 	if ll.promptText != "" {
 		r.AddAttrs(slog.String("prompt", ll.promptText))
 	}
-	if err := h.Handle(context.Background(), r); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Handle(context.Background(), r))
 	return buf.Bytes()
 }
 
@@ -37,8 +40,8 @@ func TestRequestLineMatchesSlog(t *testing.T) {
 		ll   logLine
 		d    time.Duration
 	}{
-		{"hit", logLine{team: "lab", model: "quill-small", outcome: OutcomeHit, endpoint: endpointCompletions, status: 200, prompts: 1, hits: 1, usage: usage{PromptTokens: 9, CompletionTokens: 8}}, 41 * time.Microsecond},
-		{"miss with upstream time", logLine{team: "default", model: "m", outcome: OutcomeMiss, endpoint: endpointChat, status: 200, prompts: 1, upstream: 1234567 * time.Microsecond, usage: usage{PromptTokens: 100, CompletionTokens: 20}}, 2 * time.Second},
+		{"hit", logLine{team: "lab", model: "quill-small", outcome: OutcomeHit, endpoint: endpointCompletions, status: 200, prompts: 1, hits: 1, usage: wire.Usage{PromptTokens: 9, CompletionTokens: 8}}, 41 * time.Microsecond},
+		{"miss with upstream time", logLine{team: "default", model: "m", outcome: OutcomeMiss, endpoint: endpointChat, status: 200, prompts: 1, upstream: 1234567 * time.Microsecond, usage: wire.Usage{PromptTokens: 100, CompletionTokens: 20}}, 2 * time.Second},
 		{"error without outcome", logLine{team: "", model: "", endpoint: endpointCompletions, status: 400}, 0},
 		{"quotes and controls", logLine{team: `a"b\c`, model: "tab\there\nnew\x01\x1f", outcome: OutcomeBypass, status: 200}, time.Millisecond},
 		{"unicode and html", logLine{team: "équipe", model: "<m&o>", promptText: "Lily 🌼 line\u2028sep\u2029", status: 200}, time.Millisecond},
@@ -48,9 +51,7 @@ func TestRequestLineMatchesSlog(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			want := slogLine(t, now, &tc.ll, tc.d)
 			got := appendRequestLine(nil, now, &tc.ll, tc.d)
-			if !bytes.Equal(got, want) {
-				t.Errorf("line differs from slog's JSON handler\n got: %s\nwant: %s", got, want)
-			}
+			assert.Equal(t, string(want), string(got), "line differs from slog's JSON handler")
 		})
 	}
 }

@@ -20,7 +20,7 @@ import (
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/guard"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/breaker/redisstate"

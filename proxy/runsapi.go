@@ -136,7 +136,7 @@ func (p *Proxy) routeRuns(mux *http.ServeMux) {
 // runsEndpoint authenticates the team and checks the journal is on.
 func (p *Proxy) runsEndpoint(h func(http.ResponseWriter, *http.Request, *Team)) http.HandlerFunc {
 	return func(w http.ResponseWriter, r *http.Request) {
-		team, _, release, aerr := p.admit(w, r)
+		team, _, release, aerr := p.enter(w, r)
 		if aerr != nil {
 			return
 		}

@@ -7,6 +7,8 @@ import (
 	"fmt"
 	"sort"
 	"unicode/utf8"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // errNotExact means a stored answer cannot be cut down to the request
@@ -15,7 +17,7 @@ var errNotExact = errors.New("stored answer cannot be shaped exactly")
 
 // shape derives the answer to a request for (wantLP, wantMax) from a stored
 // variant that covers it. An exact variant is returned as stored.
-func shape(ep endpoint, v variant, wantLP, wantMax int) ([]byte, usage, error) {
+func shape(ep endpoint, v variant, wantLP, wantMax int) ([]byte, wire.Usage, error) {
 	if v.Logprobs == wantLP && v.MaxTokens == wantMax {
 		return v.Body, v.Usage, nil
 	}
@@ -25,11 +27,11 @@ func shape(ep endpoint, v variant, wantLP, wantMax int) ([]byte, usage, error) {
 	}
 	var env map[string]json.RawMessage
 	if err := json.Unmarshal(v.Body, &env); err != nil {
-		return nil, usage{}, fmt.Errorf("decode stored answer: %w", err)
+		return nil, wire.Usage{}, fmt.Errorf("decode stored answer: %w", err)
 	}
 	var choices []map[string]json.RawMessage
 	if err := json.Unmarshal(env["choices"], &choices); err != nil {
-		return nil, usage{}, fmt.Errorf("decode stored choices: %w", err)
+		return nil, wire.Usage{}, fmt.Errorf("decode stored choices: %w", err)
 	}
 	u := v.Usage
 	for _, ch := range choices {
@@ -40,7 +42,7 @@ func shape(ep endpoint, v variant, wantLP, wantMax int) ([]byte, usage, error) {
 			err = shapeCompletionChoice(ch, wantLP, cut)
 		}
 		if err != nil {
-			return nil, usage{}, err
+			return nil, wire.Usage{}, err
 		}
 	}
 	if cut != noLevel {
@@ -51,12 +53,12 @@ func shape(ep endpoint, v variant, wantLP, wantMax int) ([]byte, usage, error) {
 	}
 	cb, err := json.Marshal(choices)
 	if err != nil {
-		return nil, usage{}, err
+		return nil, wire.Usage{}, err
 	}
 	env["choices"] = cb
 	out, err := json.Marshal(env)
 	if err != nil {
-		return nil, usage{}, err
+		return nil, wire.Usage{}, err
 	}
 	return out, u, nil
 }

@@ -12,9 +12,9 @@ import (
 
 	"github.com/redis/go-redis/v9"
 
-	"github.com/stintlab/stint/budget/redistest"
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/redisstore"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )

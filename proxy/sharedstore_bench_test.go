@@ -9,7 +9,7 @@ import (
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/redisstore"
-	"github.com/stintlab/stint/cache/redisstore/redisstoretest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy"
 )
 
@@ -19,8 +19,8 @@ import (
 // the benchmark, on loopback) with no hot tier, so every hit reads Redis,
 // and with the short-lived hot tier stint serve puts in front of them.
 func BenchmarkHitByStore(b *testing.B) {
-	standalone := redisstoretest.Start(b).Client(b)
-	cluster := redisstoretest.StartCluster(b, 3).Client(b)
+	standalone := redistest.Start(b).Client(b)
+	cluster := redistest.StartCluster(b, 3).Client(b)
 	prefixes := 0
 	onRedis := func(c redis.UniversalClient, hotBytes int64) rigOption {
 		return func(o *proxy.Options) {

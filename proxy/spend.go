@@ -16,6 +16,7 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/tokens"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Header names for spend figures. They are estimates from configured prices;
@@ -96,7 +97,7 @@ func chatMessages(raw json.RawMessage) []tokens.Message {
 	return out
 }
 
-func guardUsage(u usage) guard.Usage {
+func guardUsage(u wire.Usage) guard.Usage {
 	return guard.Usage{PromptTokens: int64(u.PromptTokens), CompletionTokens: int64(u.CompletionTokens)}
 }
 
@@ -251,7 +252,7 @@ func (p *Proxy) settle(ctx context.Context, ticket *guard.Ticket, team string, r
 // noteSaved prices what a cache-served answer would have cost now and
 // journals it behind the answer. It returns the amount (0 without spend
 // control or for a model without a price).
-func (p *Proxy) noteSaved(ctx context.Context, t *Team, keyID string, req *request, u usage) budget.Nanos {
+func (p *Proxy) noteSaved(ctx context.Context, t *Team, keyID string, req *request, u wire.Usage) budget.Nanos {
 	if p.spend == nil {
 		return 0
 	}
@@ -272,19 +273,19 @@ func (p *Proxy) noteSaved(ctx context.Context, t *Team, keyID string, req *reque
 }
 
 // itemsUsage sums the usage of the answered items at idx (nil: all).
-func itemsUsage(items []item, idx []int) usage {
-	var u usage
+func itemsUsage(items []item, idx []int) wire.Usage {
+	var u wire.Usage
 	if idx == nil {
 		for _, it := range items {
 			if it.hit != nil {
-				u = u.add(it.hit.usage)
+				u = u.Add(it.hit.usage)
 			}
 		}
 		return u
 	}
 	for _, i := range idx {
 		if items[i].hit != nil {
-			u = u.add(items[i].hit.usage)
+			u = u.Add(items[i].hit.usage)
 		}
 	}
 	return u

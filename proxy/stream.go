@@ -9,6 +9,7 @@ import (
 	"unicode/utf8"
 
 	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // assembler rebuilds a whole answer from a stream's chunks, so a streamed
@@ -156,10 +157,10 @@ func (a *assembler) addChat(c *assembledChoice, ch map[string]json.RawMessage) e
 }
 
 // reportedUsage is the usage the stream's usage chunk reported.
-func (a *assembler) reportedUsage() (usage, bool) {
-	var u usage
+func (a *assembler) reportedUsage() (wire.Usage, bool) {
+	var u wire.Usage
 	if a.usage == nil || json.Unmarshal(a.usage, &u) != nil {
-		return usage{}, false
+		return wire.Usage{}, false
 	}
 	return u, true
 }

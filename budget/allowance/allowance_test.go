@@ -15,7 +15,7 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/allowance"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 func nanos(t *testing.T, usd float64) budget.Nanos {

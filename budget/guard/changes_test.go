@@ -14,7 +14,7 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // store is a ledger that also keeps run-time budgets, as both backends do.

@@ -14,7 +14,7 @@ import (
 	"github.com/stintlab/stint/budget/guard"
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // retryUntilSettled runs RetryUnsettled until nothing is left (bounded).

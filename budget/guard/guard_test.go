@@ -18,8 +18,8 @@ import (
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
 	"github.com/stintlab/stint/budget/tokens"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // The invented scenario: a glossary team tunes prompts against

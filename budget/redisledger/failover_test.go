@@ -14,7 +14,7 @@ import (
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/ledgertest"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // replicatedCluster starts a real cluster of three primaries with a

@@ -9,8 +9,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/redisstore"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // fakeClock is a settable clock for the store's cooldown.

@@ -10,8 +10,8 @@ import (
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/cache"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/redisstore"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // backends are the Redis deployments the lease tests run on.

@@ -13,9 +13,9 @@ import (
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/cache"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/redisstore"
 	"github.com/stintlab/stint/cache/storetest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // freshPrefix gives each store of a test its own key prefix on a shared

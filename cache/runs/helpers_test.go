@@ -16,8 +16,8 @@ import (
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/boltgroup"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // backend makes fresh, empty journals of one kind.

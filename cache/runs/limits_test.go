@@ -25,8 +25,8 @@ import (
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/boltgroup"
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // craftedBody is one body of a crafted archive: size bytes, the first of

@@ -5,8 +5,8 @@ import (
 	"errors"
 	"testing"
 
-	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/runs"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // TestRedisCorruptValues damages a run's hashes in Redis: reads fail with

@@ -7,7 +7,7 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 

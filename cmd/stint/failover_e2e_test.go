@@ -18,7 +18,7 @@ import (
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 

@@ -15,8 +15,7 @@ import (
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/budget/redistest"
-	"github.com/stintlab/stint/cache/redisstore/redisstoretest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -100,7 +99,7 @@ func TestReplicasOnRedisNeverOverspend(t *testing.T) {
 // Redis Cluster, where the cache's keys and the ledgers spread over the
 // nodes.
 func TestReplicasOnClusterNeverOverspend(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	testNeverOverspend(t, strings.Join(cl.Addrs, ","), cl.Client(t))
 }
 

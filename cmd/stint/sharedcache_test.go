@@ -14,7 +14,7 @@ import (
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/redisledger"
-	"github.com/stintlab/stint/cache/redisstore/redisstoretest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -35,7 +35,7 @@ func clusterConfig(t *testing.T, upURL string, addrs []string, redisExtra string
 }
 
 // startReplicas runs n stint serve processes on the cluster.
-func startReplicas(t *testing.T, n int, upURL string, cl *redisstoretest.Cluster, redisExtra string) []*child {
+func startReplicas(t *testing.T, n int, upURL string, cl *redistest.Cluster, redisExtra string) []*child {
 	t.Helper()
 	var out []*child
 	for range n {
@@ -128,7 +128,7 @@ func awaitMetric(t *testing.T, cs []*child, want float64, metrics ...string) {
 // other, and a run recorded through one replays through the other with no
 // upstream call.
 func TestClusterReplicasShareCacheAndRuns(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	rs := startReplicas(t, 2, up.URL(), cl, "")
@@ -166,7 +166,7 @@ func TestClusterReplicasShareCacheAndRuns(t *testing.T) {
 // over three replicas on the cluster, while the upstream holds the first
 // call: one upstream call answers all 50.
 func TestClusterFiftyMissesOneCall(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	rs := startReplicas(t, 3, up.URL(), cl, "")
@@ -207,7 +207,7 @@ func TestClusterFiftyMissesOneCall(t *testing.T) {
 // key's lease while its upstream call is held: the other replica, waiting
 // on that lease, fetches the answer itself once the lease expires.
 func TestClusterLeaseHolderKilled(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	rs := startReplicas(t, 2, up.URL(), cl, "    lease: 3s\n")
@@ -246,7 +246,7 @@ func TestClusterLeaseHolderKilled(t *testing.T) {
 // Cache-Status detail=store-unavailable; after the cluster is back the same
 // processes cache and hit again.
 func TestClusterDownDegradesAndRecovers(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	// No in-memory tier: every lookup needs Redis.
@@ -339,7 +339,7 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 // the answers shared across replicas cost nothing, and the shared ledger
 // holds exactly what the upstream billed.
 func TestClusterCoalescedMissesChargeOnce(t *testing.T) {
-	cl := redisstoretest.StartCluster(t, 3)
+	cl := redistest.StartCluster(t, 3)
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	var rs []*child

@@ -3,7 +3,7 @@ package breaker_test
 import (
 	"testing"
 
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/breaker/redisstate"
 )

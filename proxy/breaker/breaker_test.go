@@ -12,7 +12,7 @@ import (
 	"github.com/sony/gobreaker/v2"
 	"go.uber.org/goleak"
 
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/breaker/redisstate"
 )

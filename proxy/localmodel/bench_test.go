@@ -14,6 +14,8 @@ import (
 
 	"gonum.org/v1/gonum/blas"
 	"gonum.org/v1/gonum/blas/blas32"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // matmulShapes are this model's matmuls: (rows, in, out).
@@ -227,7 +229,7 @@ func BenchmarkServe(b *testing.B) {
 					body := fmt.Sprintf(`{"prompt": %q, "max_tokens": 16, "temperature": 0}`, template+fmt.Sprintf("Story %d:", i))
 					rec := httptest.NewRecorder()
 					h.ServeHTTP(rec, httptest.NewRequest(http.MethodPost, "/v1/completions", strings.NewReader(body)))
-					var r completionResponse
+					var r wire.CompletionResponse
 					if rec.Code != 200 || jsonUnmarshal(rec.Body.Bytes(), &r) != nil {
 						b.Errorf("status %d", rec.Code)
 						return

@@ -52,12 +52,12 @@ func TestLogprobsAreADistribution(t *testing.T) {
 		t.Fatalf("got %d tokens, want 6", len(lp.Tokens))
 	}
 	for i, top := range lp.TopLogprobs {
-		if len(top) != m.VocabSize() {
-			t.Fatalf("token %d: %d alternatives, want %d", i, len(top), m.VocabSize())
+		if top.Len() != m.VocabSize() {
+			t.Fatalf("token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
 		}
 		var sum float64
 		best, bestLP := "", math.Inf(-1)
-		for tok, v := range top {
+		for tok, v := range top.Map() {
 			sum += math.Exp(v)
 			if v > bestLP {
 				best, bestLP = tok, v

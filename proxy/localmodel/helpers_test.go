@@ -1,16 +1,20 @@
 package localmodel
 
 import (
-	"bufio"
 	"bytes"
 	"encoding/json"
+	"errors"
 	"io"
 	"net/http"
 	"net/http/httptest"
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // modelPath finds the real model file (see modeltest). The
@@ -24,9 +28,7 @@ func modelPath(tb testing.TB) string {
 func loadModel(tb testing.TB) *Model {
 	tb.Helper()
 	m, err := Load(modelPath(tb))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return m
 }
 
@@ -48,71 +50,54 @@ func post(tb testing.TB, url string, body any) (int, []byte, http.Header) {
 		rd = strings.NewReader(b)
 	default:
 		j, err := json.Marshal(b)
-		if err != nil {
-			tb.Fatal(err)
-		}
+		require.NoError(tb, err)
 		rd = bytes.NewReader(j)
 	}
 	resp, err := http.Post(url, "application/json", rd)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	defer resp.Body.Close()
 	out, err := io.ReadAll(resp.Body)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return resp.StatusCode, out, resp.Header
 }
 
 // complete posts a completions request that must succeed.
-func complete(tb testing.TB, srv *httptest.Server, body any) completionResponse {
+func complete(tb testing.TB, srv *httptest.Server, body any) wire.CompletionResponse {
 	tb.Helper()
 	status, out, _ := post(tb, srv.URL+"/v1/completions", body)
-	if status != http.StatusOK {
-		tb.Fatalf("status %d: %s", status, out)
-	}
-	var r completionResponse
-	if err := json.Unmarshal(out, &r); err != nil {
-		tb.Fatalf("decode %s: %v", out, err)
-	}
+	require.Equal(tb, http.StatusOK, status, "%s", out)
+	var r wire.CompletionResponse
+	require.NoError(tb, json.Unmarshal(out, &r), "decode %s", out)
 	return r
 }
 
-// sseEvents reads a server-sent-event stream into its data payloads.
+// sseEvents reads a server-sent-event stream (with proxy/sse's reader)
+// into its data payloads; every event must be data only.
 func sseEvents(tb testing.TB, r io.Reader) []string {
 	tb.Helper()
 	var events []string
-	sc := bufio.NewScanner(r)
-	sc.Buffer(make([]byte, 1<<20), 1<<24)
-	for sc.Scan() {
-		line := sc.Text()
-		if line == "" {
-			continue
+	rd := sse.NewReader(r)
+	for {
+		e, err := rd.Next()
+		if errors.Is(err, io.EOF) {
+			return events
 		}
-		data, ok := strings.CutPrefix(line, "data: ")
-		if !ok {
-			tb.Fatalf("unexpected SSE line %q", line)
-		}
-		events = append(events, data)
+		require.NoError(tb, err)
+		require.Empty(tb, e.Name, "event with a name: %+v", e)
+		events = append(events, e.Data)
 	}
-	if err := sc.Err(); err != nil {
-		tb.Fatal(err)
-	}
-	return events
 }
 
 func stream(tb testing.TB, url string, body any) ([]string, http.Header) {
 	tb.Helper()
-	j, _ := json.Marshal(body)
+	j, err := json.Marshal(body)
+	require.NoError(tb, err)
 	resp, err := http.Post(url, "application/json", bytes.NewReader(j))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	defer resp.Body.Close()
 	if resp.StatusCode != http.StatusOK {
 		b, _ := io.ReadAll(resp.Body)
-		tb.Fatalf("status %d: %s", resp.StatusCode, b)
+		require.Failf(tb, "stream refused", "status %d: %s", resp.StatusCode, b)
 	}
 	return sseEvents(tb, resp.Body), resp.Header
 }

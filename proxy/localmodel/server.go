@@ -13,6 +13,9 @@ import (
 	"strings"
 	"sync/atomic"
 	"time"
+
+	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // HandlerOptions configures NewHandler. The zero value of every field
@@ -152,7 +155,7 @@ func serveHealth(w http.ResponseWriter, _ *http.Request) {
 }
 
 func (h *handler) serveModels(w http.ResponseWriter, r *http.Request) {
-	writeJSON(w, http.StatusOK, modelList{Object: "list", Data: []modelInfo{{ID: h.name, Object: "model", Created: 0, OwnedBy: "stint"}}})
+	writeJSON(w, http.StatusOK, wire.ModelList{Object: "list", Data: []wire.Model{{ID: h.name, Object: "model", Created: 0, OwnedBy: "stint"}}})
 }
 
 // decode reads the JSON body into v, mapping failures to request errors.
@@ -174,6 +177,33 @@ func (h *handler) decode(w http.ResponseWriter, r *http.Request, v any) bool {
 		return false
 	}
 	return true
+}
+
+// begin takes a worker slot for a generation under a context of its own,
+// whose cancel stops it (a stream's failed write calls it), and notes in c
+// whether the answer streams and ends with a usage chunk. When ok is false
+// it has answered the failure; otherwise the caller defers end.
+func (h *handler) begin(w http.ResponseWriter, r *http.Request, c *common, stream bool, so *wire.StreamOptions) (ctx context.Context, cancel context.CancelFunc, end func(), ok bool) {
+	c.stream = stream
+	c.usage = so != nil && so.IncludeUsage
+	ctx, cancel = context.WithCancel(r.Context())
+	release, err := h.acquire(ctx)
+	if err != nil {
+		cancel()
+		h.fail(w, err)
+		return nil, nil, nil, false
+	}
+	return ctx, cancel, func() { release(); cancel() }, true
+}
+
+// failRun answers a generation's error: on its stream once that has
+// started, else as an error answer.
+func (h *handler) failRun(w http.ResponseWriter, es *eventStream, err error) {
+	if es != nil && es.started {
+		es.fail(err)
+		return
+	}
+	h.fail(w, err)
 }
 
 // acquire waits for a worker slot; the returned func gives it back.
@@ -287,7 +317,7 @@ func (h *handler) fail(w http.ResponseWriter, err error) {
 }
 
 func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
-	var req completionRequest
+	var req wire.CompletionRequest
 	if !h.decode(w, r, &req) {
 		return
 	}
@@ -318,35 +348,30 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 		h.fail(w, badRequest("%d prompts × n=%d exceeds %d choices", len(prompts), c.n, maxChoices))
 		return
 	}
-	c.stream = req.Stream
-	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
-	ctx, cancel := context.WithCancel(r.Context())
-	defer cancel()
-	release, err := h.acquire(ctx)
-	if err != nil {
-		h.fail(w, err)
+	ctx, cancel, end, ok := h.begin(w, r, &c, req.Stream, req.StreamOptions)
+	if !ok {
 		return
 	}
-	defer release()
+	defer end()
 
 	id, created := "cmpl-"+newID(), h.now().Unix()
-	resp := completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name}
-	var sse *sseWriter
+	resp := wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name}
+	var es *eventStream
 	var emitPrompt func(*promptState, int)
 	var emit func(*choice, delta)
 	if c.stream {
-		sse = newSSE(w, cancel)
+		es = newEventStream(w, cancel)
 		emitPrompt = func(ps *promptState, pi int) {
 			if !req.Echo {
 				return
 			}
 			text, starts := promptText(h.m, ps.tokens[1:])
 			for j := 0; j < c.n; j++ {
-				ch := completionChoice{Text: text, Index: pi*c.n + j}
+				ch := wire.CompletionChoice{Text: text, Index: pi*c.n + j}
 				if c.gp.logprobs >= 0 {
 					ch.Logprobs = h.completionLogprobs(ps.lps, starts, 0)
 				}
-				sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{ch}})
+				es.send(wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []wire.CompletionChoice{ch}})
 			}
 		}
 		bases := make([]int, len(prompts)) // echoed prompt bytes before each reply
@@ -361,37 +386,30 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 				return
 			}
 			base := bases[ch.prompt]
-			out := completionChoice{Text: d.text, Index: ch.index}
+			out := wire.CompletionChoice{Text: d.text, Index: ch.index}
 			if c.gp.logprobs >= 0 {
 				out.Logprobs = h.completionLogprobs(d.toks, d.starts, base)
 			}
 			if d.finish != "" {
 				out.FinishReason = &d.finish
 			}
-			sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{out}})
+			es.send(wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []wire.CompletionChoice{out}})
 		}
 	}
 	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
 	if err != nil {
-		if sse != nil && sse.started {
-			sse.fail(err)
-			return
-		}
-		h.fail(w, err)
+		h.failRun(w, es, err)
 		return
 	}
 	u := h.usage(states, choices)
 	if c.stream {
-		if c.usage {
-			sse.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []completionChoice{}, Usage: &u})
-		}
-		sse.done()
+		es.end(c.usage, wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: h.name, Choices: []wire.CompletionChoice{}, Usage: &u})
 		return
 	}
 	for _, ch := range choices {
 		ps := states[ch.prompt]
 		var prefix string
-		var lp *completionLogprobs
+		var lp *wire.CompletionLogprobs
 		if req.Echo {
 			var starts []int
 			prefix, starts = promptText(h.m, ps.tokens[1:])
@@ -411,14 +429,14 @@ func (h *handler) serveCompletions(w http.ResponseWriter, r *http.Request) {
 			}
 		}
 		finish := ch.finish
-		resp.Choices = append(resp.Choices, completionChoice{Text: prefix + string(ch.text), Index: ch.index, Logprobs: lp, FinishReason: &finish})
+		resp.Choices = append(resp.Choices, wire.CompletionChoice{Text: prefix + string(ch.text), Index: ch.index, Logprobs: lp, FinishReason: &finish})
 	}
 	resp.Usage = &u
 	writeJSON(w, http.StatusOK, resp)
 }
 
-func (h *handler) usage(states []*promptState, choices []*choice) usage {
-	var u usage
+func (h *handler) usage(states []*promptState, choices []*choice) wire.Usage {
+	var u wire.Usage
 	for _, ps := range states {
 		u.PromptTokens += len(ps.tokens)
 	}
@@ -431,8 +449,8 @@ func (h *handler) usage(states []*promptState, choices []*choice) usage {
 
 // completionLogprobs renders tokens in the completions format, offsets
 // shifted by base.
-func (h *handler) completionLogprobs(toks []tokenLogprob, starts []int, base int) *completionLogprobs {
-	lp := &completionLogprobs{Tokens: []string{}, TokenLogprobs: []*float64{}, TopLogprobs: []map[string]float64{}, TextOffset: []int{}}
+func (h *handler) completionLogprobs(toks []tokenLogprob, starts []int, base int) *wire.CompletionLogprobs {
+	lp := &wire.CompletionLogprobs{Tokens: []string{}, TokenLogprobs: []*float64{}, TopLogprobs: []*wire.TopLogprobs{}, TextOffset: []int{}}
 	for i, t := range toks {
 		lp.Tokens = append(lp.Tokens, h.m.tok.Display(t.id))
 		lp.TextOffset = append(lp.TextOffset, base+starts[i])
@@ -443,9 +461,10 @@ func (h *handler) completionLogprobs(toks []tokenLogprob, starts []int, base int
 		}
 		v := t.lp
 		lp.TokenLogprobs = append(lp.TokenLogprobs, &v)
-		top := make(map[string]float64, len(t.top))
+		top := &wire.TopLogprobs{Tokens: make([]string, 0, len(t.top)), Logprobs: make([]float64, 0, len(t.top))}
 		for _, a := range t.top {
-			top[h.m.tok.Display(a.id)] = a.lp
+			top.Tokens = append(top.Tokens, h.m.tok.Display(a.id))
+			top.Logprobs = append(top.Logprobs, a.lp)
 		}
 		lp.TopLogprobs = append(lp.TopLogprobs, top)
 	}
@@ -453,7 +472,7 @@ func (h *handler) completionLogprobs(toks []tokenLogprob, starts []int, base int
 }
 
 // chatPrompt renders messages with the documented template.
-func chatPrompt(msgs []chatMessage) (string, error) {
+func chatPrompt(msgs []wire.ChatMessage) (string, error) {
 	if len(msgs) == 0 {
 		return "", badRequest("messages must not be empty")
 	}
@@ -468,7 +487,7 @@ func chatPrompt(msgs []chatMessage) (string, error) {
 		if role == "developer" {
 			role = "system"
 		}
-		content, err := parseContent(m.Content)
+		content, err := parseContent(m)
 		if err != nil {
 			return "", fmt.Errorf("messages[%d]: %w", i, err)
 		}
@@ -479,7 +498,7 @@ func chatPrompt(msgs []chatMessage) (string, error) {
 }
 
 func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
-	var req chatRequest
+	var req wire.ChatRequest
 	if !h.decode(w, r, &req) {
 		return
 	}
@@ -519,37 +538,32 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 		h.fail(w, err)
 		return
 	}
-	c.stream = req.Stream
-	c.usage = req.StreamOptions != nil && req.StreamOptions.IncludeUsage
-	ctx, cancel := context.WithCancel(r.Context())
-	defer cancel()
-	release, err := h.acquire(ctx)
-	if err != nil {
-		h.fail(w, err)
+	ctx, cancel, end, ok := h.begin(w, r, &c, req.Stream, req.StreamOptions)
+	if !ok {
 		return
 	}
-	defer release()
+	defer end()
 
 	id, created := "chatcmpl-"+newID(), h.now().Unix()
-	chunk := func(choices []chatChoice, u *usage) chatResponse {
-		return chatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: h.name, Choices: choices, Usage: u}
+	chunk := func(choices []wire.ChatChoice, u *wire.Usage) wire.ChatResponse {
+		return wire.ChatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: h.name, Choices: choices, Usage: u}
 	}
-	var sse *sseWriter
+	var es *eventStream
 	var emitPrompt func(*promptState, int)
 	var emit func(*choice, delta)
 	if c.stream {
-		sse = newSSE(w, cancel)
+		es = newEventStream(w, cancel)
 		emitPrompt = func(_ *promptState, _ int) {
 			empty := ""
 			for j := 0; j < c.n; j++ {
-				sse.send(chunk([]chatChoice{{Index: j, Delta: &chatOutMessage{Role: "assistant", Content: &empty}}}, nil))
+				es.send(chunk([]wire.ChatChoice{{Index: j, Delta: &wire.ChatDelta{Role: "assistant", Content: &empty}}}, nil))
 			}
 		}
 		emit = func(ch *choice, d delta) {
 			if d.text == "" && len(d.toks) == 0 && d.finish == "" {
 				return
 			}
-			out := chatChoice{Index: ch.index, Delta: &chatOutMessage{}}
+			out := wire.ChatChoice{Index: ch.index, Delta: &wire.ChatDelta{}}
 			if d.text != "" {
 				t := d.text
 				out.Delta.Content = &t
@@ -560,30 +574,23 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 			if d.finish != "" {
 				out.FinishReason = &d.finish
 			}
-			sse.send(chunk([]chatChoice{out}, nil))
+			es.send(chunk([]wire.ChatChoice{out}, nil))
 		}
 	}
 	states, choices, err := h.eng.run(ctx, prompts, c.n, &c.gp, emitPrompt, emit)
 	if err != nil {
-		if sse != nil && sse.started {
-			sse.fail(err)
-			return
-		}
-		h.fail(w, err)
+		h.failRun(w, es, err)
 		return
 	}
 	u := h.usage(states, choices)
 	if c.stream {
-		if c.usage {
-			sse.send(chunk([]chatChoice{}, &u))
-		}
-		sse.done()
+		es.end(c.usage, chunk([]wire.ChatChoice{}, &u))
 		return
 	}
-	resp := chatResponse{ID: id, Object: "chat.completion", Created: created, Model: h.name, Usage: &u}
+	resp := wire.ChatResponse{ID: id, Object: "chat.completion", Created: created, Model: h.name, Usage: &u}
 	for _, ch := range choices {
-		content, finish := string(ch.text), ch.finish
-		out := chatChoice{Index: ch.index, Message: &chatOutMessage{Role: "assistant", Content: &content}, FinishReason: &finish}
+		finish := ch.finish
+		out := wire.ChatChoice{Index: ch.index, Message: &wire.ChatAnswer{Role: "assistant", Content: string(ch.text)}, FinishReason: &finish}
 		if c.gp.logprobs >= 0 {
 			out.Logprobs = h.chatLogprobs(ch.toks)
 		}
@@ -592,22 +599,14 @@ func (h *handler) serveChat(w http.ResponseWriter, r *http.Request) {
 	writeJSON(w, http.StatusOK, resp)
 }
 
-func (h *handler) chatLogprobs(toks []tokenLogprob) *chatLogprobs {
-	out := &chatLogprobs{Content: []chatTokenLogprob{}}
+func (h *handler) chatLogprobs(toks []tokenLogprob) *wire.ChatLogprobs {
+	out := &wire.ChatLogprobs{Content: []wire.ChatTokenLogprob{}}
 	for _, t := range toks {
-		e := chatTokenLogprob{Token: h.m.tok.Display(t.id), Logprob: t.lp, Bytes: byteInts(h.m.tok.Bytes(t.id)), TopLogprobs: []chatTopLogprob{}}
+		e := wire.ChatTokenLogprob{Token: h.m.tok.Display(t.id), Logprob: t.lp, Bytes: wire.TokenBytes(string(h.m.tok.Bytes(t.id))), TopLogprobs: []wire.ChatTopLogprob{}}
 		for _, a := range t.top {
-			e.TopLogprobs = append(e.TopLogprobs, chatTopLogprob{Token: h.m.tok.Display(a.id), Logprob: a.lp, Bytes: byteInts(h.m.tok.Bytes(a.id))})
+			e.TopLogprobs = append(e.TopLogprobs, wire.ChatTopLogprob{Token: h.m.tok.Display(a.id), Logprob: a.lp, Bytes: wire.TokenBytes(string(h.m.tok.Bytes(a.id)))})
 		}
 		out.Content = append(out.Content, e)
-	}
-	return out
-}
-
-func byteInts(b []byte) []int {
-	out := make([]int, len(b))
-	for i, x := range b {
-		out[i] = int(x)
 	}
 	return out
 }
@@ -622,7 +621,7 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 	b, err := json.Marshal(v)
 	if err != nil {
 		status = http.StatusInternalServerError
-		b, _ = json.Marshal(errorBody{Error: errorDetail{Message: err.Error(), Type: "server_error", Code: "internal_error"}})
+		b, _ = json.Marshal(wire.NewError("server_error", "internal_error", "", err.Error()))
 	}
 	w.Header().Set("Content-Type", "application/json")
 	w.WriteHeader(status)
@@ -638,67 +637,61 @@ func writeError(w http.ResponseWriter, status int, typ, code, msg string) {
 // writeParamError is writeError naming the field at fault (param; "" for
 // null).
 func writeParamError(w http.ResponseWriter, status int, typ, code, param, msg string) {
-	d := errorDetail{Message: msg, Type: typ, Code: code}
-	if param != "" {
-		d.Param = &param
-	}
-	writeJSON(w, status, errorBody{Error: d})
+	writeJSON(w, status, wire.NewError(typ, code, param, msg))
 }
 
-// sseWriter writes server-sent events, flushing each one. A failed write
-// cancels the request so generation stops.
-type sseWriter struct {
+// eventStream is a streamed answer: its events go out through an
+// sse.Writer, each flushed at once. A failed write cancels the request so
+// generation stops.
+type eventStream struct {
 	w       http.ResponseWriter
-	flusher http.Flusher
+	sw      *sse.Writer
 	cancel  context.CancelFunc
 	started bool
 	failed  bool
 }
 
-func newSSE(w http.ResponseWriter, cancel context.CancelFunc) *sseWriter {
-	f, _ := w.(http.Flusher)
-	return &sseWriter{w: w, flusher: f, cancel: cancel}
+func newEventStream(w http.ResponseWriter, cancel context.CancelFunc) *eventStream {
+	return &eventStream{w: w, sw: sse.NewWriter(w), cancel: cancel}
 }
 
-func (s *sseWriter) start() {
-	if s.started {
-		return
-	}
-	s.started = true
-	h := s.w.Header()
-	h.Set("Content-Type", "text/event-stream")
-	h.Set("Cache-Control", "no-cache")
-	s.w.WriteHeader(http.StatusOK)
-}
-
-func (s *sseWriter) write(data []byte) {
+// write sends one event of data, setting the stream's headers first.
+func (s *eventStream) write(data []byte) {
 	if s.failed {
 		return
 	}
-	s.start()
-	if _, err := s.w.Write(data); err != nil {
+	if !s.started {
+		s.started = true
+		sse.SetHeaders(s.w.Header())
+		s.w.WriteHeader(http.StatusOK)
+	}
+	if err := s.sw.WriteData(data); err != nil {
 		s.failed = true
 		s.cancel()
-		return
-	}
-	if s.flusher != nil {
-		s.flusher.Flush()
 	}
 }
 
-func (s *sseWriter) send(v any) {
+func (s *eventStream) send(v any) {
 	b, err := json.Marshal(v)
 	if err != nil {
 		s.fail(err)
 		return
 	}
-	s.write([]byte("data: " + string(b) + "\n\n"))
+	s.write(b)
 }
 
 // fail reports an error after the stream has started (no [DONE] follows).
-func (s *sseWriter) fail(err error) {
-	b, _ := json.Marshal(errorBody{Error: errorDetail{Message: err.Error(), Type: "server_error", Code: "stream_error"}})
-	s.write([]byte("data: " + string(b) + "\n\n"))
+func (s *eventStream) fail(err error) {
+	b, _ := json.Marshal(wire.NewError("server_error", "stream_error", "", err.Error()))
+	s.write(b)
 }
 
-func (s *sseWriter) done() { s.write([]byte("data: [DONE]\n\n")) }
+func (s *eventStream) done() { s.write([]byte(sse.Done)) }
+
+// end ends the stream: the usage chunk when withUsage, then [DONE].
+func (s *eventStream) end(withUsage bool, usageChunk any) {
+	if withUsage {
+		s.send(usageChunk)
+	}
+	s.done()
+}

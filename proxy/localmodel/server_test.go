@@ -7,6 +7,7 @@ import (
 	"errors"
 	"io"
 	"math"
+	"mime"
 	"net/http"
 	"net/http/httptest"
 	"strings"
@@ -14,6 +15,10 @@ import (
 	"testing"
 
 	openai "github.com/sashabaranov/go-openai"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 func TestArrayPromptsAndN(t *testing.T) {
@@ -84,8 +89,8 @@ func TestEchoLogprobs(t *testing.T) {
 		if got := *lp.TokenLogprobs[i]; math.Abs(got-want) > 1e-9 {
 			t.Errorf("prompt token %d: logprob %v, want %v", i, got, want)
 		}
-		if len(lp.TopLogprobs[i]) != 2 {
-			t.Errorf("prompt token %d: %d alternatives, want 2", i, len(lp.TopLogprobs[i]))
+		if lp.TopLogprobs[i].Len() != 2 {
+			t.Errorf("prompt token %d: %d alternatives, want 2", i, lp.TopLogprobs[i].Len())
 		}
 	}
 	for i := range lp.Tokens {
@@ -132,7 +137,7 @@ func joinCompletionStream(tb testing.TB, events []string) string {
 	}
 	var b strings.Builder
 	for _, e := range events[:len(events)-1] {
-		var c completionResponse
+		var c wire.CompletionResponse
 		if err := json.Unmarshal([]byte(e), &c); err != nil {
 			tb.Fatalf("event %q: %v", e, err)
 		}
@@ -176,22 +181,20 @@ func TestStreamMatchesNonStream(t *testing.T) {
 	body["stream"] = true
 	body["stream_options"] = map[string]any{"include_usage": true}
 	events, hdr := stream(t, srv.URL+"/v1/completions", body)
-	if ct := hdr.Get("Content-Type"); ct != "text/event-stream" {
-		t.Errorf("Content-Type %q", ct)
-	}
+	mt, _, err := mime.ParseMediaType(hdr.Get("Content-Type"))
+	require.NoError(t, err)
+	assert.Equal(t, "text/event-stream", mt)
+	require.NotEmpty(t, events)
+	assert.Equal(t, "[DONE]", events[len(events)-1], "the last event")
 	texts := map[int]string{}
 	toks := map[int][]string{}
 	finish := map[int]string{}
-	var u *usage
+	var u *wire.Usage
 	for _, e := range events[:len(events)-1] {
-		var c completionResponse
-		if err := json.Unmarshal([]byte(e), &c); err != nil {
-			t.Fatal(err)
-		}
+		var c wire.CompletionResponse
+		require.NoError(t, json.Unmarshal([]byte(e), &c))
 		if c.Usage != nil {
-			if len(c.Choices) != 0 {
-				t.Errorf("usage chunk has choices")
-			}
+			assert.Empty(t, c.Choices, "the usage chunk's choices")
 			u = c.Usage
 		}
 		for _, ch := range c.Choices {
@@ -203,13 +206,12 @@ func TestStreamMatchesNonStream(t *testing.T) {
 		}
 	}
 	for _, c := range plain.Choices {
-		if texts[c.Index] != c.Text || strings.Join(toks[c.Index], "") != strings.Join(c.Logprobs.Tokens, "") || finish[c.Index] != *c.FinishReason {
-			t.Errorf("choice %d: stream %q %q %s, plain %q %q %s", c.Index, texts[c.Index], toks[c.Index], finish[c.Index], c.Text, c.Logprobs.Tokens, *c.FinishReason)
-		}
+		assert.Equal(t, c.Text, texts[c.Index], "choice %d text", c.Index)
+		assert.Equal(t, c.Logprobs.Tokens, toks[c.Index], "choice %d tokens", c.Index)
+		assert.Equal(t, *c.FinishReason, finish[c.Index], "choice %d finish_reason", c.Index)
 	}
-	if u == nil || *u != *plain.Usage {
-		t.Errorf("stream usage %v, want %+v", u, *plain.Usage)
-	}
+	require.NotNil(t, u, "a usage chunk")
+	assert.Equal(t, *plain.Usage, *u, "stream usage")
 }
 
 func TestChat(t *testing.T) {
@@ -220,45 +222,39 @@ func TestChat(t *testing.T) {
 		"temperature": 0, "max_tokens": 8, "logprobs": true, "top_logprobs": 3,
 	}
 	status, out, _ := post(t, srv.URL+"/v1/chat/completions", body)
-	if status != http.StatusOK {
-		t.Fatalf("status %d: %s", status, out)
-	}
-	var r chatResponse
-	if err := json.Unmarshal(out, &r); err != nil {
-		t.Fatal(err)
-	}
+	require.Equal(t, http.StatusOK, status, "%s", out)
+	var r wire.ChatResponse
+	require.NoError(t, json.Unmarshal(out, &r))
+	require.Len(t, r.Choices, 1)
 	c := r.Choices[0]
-	if r.Object != "chat.completion" || r.Model != "tiny" || c.Message.Role != "assistant" || *c.FinishReason != "length" {
-		t.Errorf("envelope %s %s %+v", r.Object, r.Model, c)
-	}
+	require.NotNil(t, c.Message)
+	assert.Equal(t, "chat.completion", r.Object)
+	assert.Equal(t, "tiny", r.Model)
+	assert.Equal(t, "assistant", c.Message.Role)
+	assert.Equal(t, "length", *c.FinishReason)
 	prompt := "System: Tell short stories.\nUser: A story about a cat\nAssistant:"
-	if want := 1 + len(m.tok.Encode(prompt)); r.Usage.PromptTokens != want || r.Usage.CompletionTokens != 8 {
-		t.Errorf("usage %+v; want prompt %d (template + BOS), completion 8", *r.Usage, want)
-	}
+	require.NotNil(t, r.Usage)
+	assert.Equal(t, 1+len(m.tok.Encode(prompt)), r.Usage.PromptTokens, "prompt tokens: template + BOS")
+	assert.Equal(t, 8, r.Usage.CompletionTokens)
 	var joined []byte
 	for i, e := range c.Logprobs.Content {
 		for _, b := range e.Bytes {
 			joined = append(joined, byte(b))
 		}
-		if len(e.TopLogprobs) != 3 || e.TopLogprobs[0].Token != e.Token || e.TopLogprobs[0].Logprob != e.Logprob {
-			t.Errorf("token %d %q: top %+v; want 3 with the greedy token first", i, e.Token, e.TopLogprobs)
+		if assert.Len(t, e.TopLogprobs, 3, "token %d %q", i, e.Token) {
+			assert.Equal(t, e.Token, e.TopLogprobs[0].Token, "token %d: the greedy token first", i)
+			assert.Equal(t, e.Logprob, e.TopLogprobs[0].Logprob, "token %d", i)
 		}
 	}
-	if got := strings.TrimPrefix(string(joined), " "); got != *c.Message.Content {
-		t.Errorf("logprob bytes %q, content %q", got, *c.Message.Content)
-	}
+	assert.Equal(t, c.Message.Content, strings.TrimPrefix(string(joined), " "), "logprob bytes")
 	body["stream"] = true
 	events, _ := stream(t, srv.URL+"/v1/chat/completions", body)
 	var content strings.Builder
 	var role string
 	for _, e := range events[:len(events)-1] {
-		var ch chatResponse
-		if err := json.Unmarshal([]byte(e), &ch); err != nil {
-			t.Fatal(err)
-		}
-		if ch.Object != "chat.completion.chunk" {
-			t.Errorf("object %q", ch.Object)
-		}
+		var ch wire.ChatResponse
+		require.NoError(t, json.Unmarshal([]byte(e), &ch))
+		assert.Equal(t, "chat.completion.chunk", ch.Object)
 		for _, x := range ch.Choices {
 			if x.Delta.Role != "" {
 				role = x.Delta.Role
@@ -268,9 +264,8 @@ func TestChat(t *testing.T) {
 			}
 		}
 	}
-	if role != "assistant" || content.String() != *c.Message.Content {
-		t.Errorf("stream role %q content %q; want assistant %q", role, content.String(), *c.Message.Content)
-	}
+	assert.Equal(t, "assistant", role, "streamed role")
+	assert.Equal(t, c.Message.Content, content.String(), "streamed content")
 }
 
 func TestBadRequests(t *testing.T) {
@@ -302,21 +297,17 @@ func TestBadRequests(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			status, out, hdr := post(t, srv.URL+tc.path, tc.body)
-			if status != tc.status {
-				t.Fatalf("status %d, want %d: %s", status, tc.status, out)
-			}
+			require.Equal(t, tc.status, status, "%s", out)
 			checkErrorBody(t, out, hdr)
 		})
 	}
 	resp, err := http.Get(srv.URL + "/v1/completions")
-	if err != nil {
-		t.Fatal(err)
-	}
-	b, _ := io.ReadAll(resp.Body)
+	require.NoError(t, err)
+	b, err := io.ReadAll(resp.Body)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "POST" {
-		t.Errorf("GET completions: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
-	}
+	require.NoError(t, err)
+	assert.Equal(t, http.StatusMethodNotAllowed, resp.StatusCode, "GET completions")
+	assert.Equal(t, "POST", resp.Header.Get("Allow"), "GET completions")
 	checkErrorBody(t, b, resp.Header)
 }
 
@@ -335,13 +326,13 @@ func TestContextTooLong(t *testing.T) {
 
 func checkErrorBody(tb testing.TB, out []byte, hdr http.Header) {
 	tb.Helper()
-	var e errorBody
-	if err := json.Unmarshal(out, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" || e.Error.Code == "" {
-		tb.Errorf("error body %s (%v)", out, err)
+	var e wire.ErrorBody
+	if assert.NoError(tb, json.Unmarshal(out, &e), "error body %s", out) {
+		assert.NotEmpty(tb, e.Error.Message, "error body %s: message", out)
+		assert.NotEmpty(tb, e.Error.Type, "error body %s: type", out)
+		assert.NotEmpty(tb, e.Error.Code, "error body %s: code", out)
 	}
-	if ct := hdr.Get("Content-Type"); ct != "application/json" {
-		tb.Errorf("Content-Type %q", ct)
-	}
+	assert.Equal(tb, "application/json", hdr.Get("Content-Type"))
 }
 
 func TestUnknownFieldsAndModels(t *testing.T) {
@@ -355,7 +346,7 @@ func TestUnknownFieldsAndModels(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer resp.Body.Close()
-	var l modelList
+	var l wire.ModelList
 	if err := json.NewDecoder(resp.Body).Decode(&l); err != nil || len(l.Data) != 1 || l.Data[0].ID != "story-box" || l.Object != "list" {
 		t.Errorf("models: %+v %v", l, err)
 	}
@@ -549,4 +540,23 @@ func TestHealthzLikeTheProxy(t *testing.T) {
 		t.Errorf("POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
 	}
 	checkErrorBody(t, b, resp.Header)
+}
+
+// TestTopLogprobsMostLikelyFirst checks each top_logprobs object lists its
+// entries most likely first, as the wire format does (and the proxy's
+// shaping of smaller answers relies on), with the greedy token first.
+func TestTopLogprobsMostLikelyFirst(t *testing.T) {
+	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
+	r := complete(t, srv, map[string]any{"prompt": "Once upon a time", "temperature": 0, "max_tokens": 5, "logprobs": 6})
+	require.Len(t, r.Choices, 1)
+	lp := r.Choices[0].Logprobs
+	require.NotNil(t, lp)
+	require.Len(t, lp.TopLogprobs, 5)
+	for i, top := range lp.TopLogprobs {
+		require.Equal(t, 6, top.Len(), "token %d", i)
+		assert.Equal(t, lp.Tokens[i], top.Tokens[0], "token %d: the greedy token first", i)
+		for j := 1; j < top.Len(); j++ {
+			assert.GreaterOrEqual(t, top.Logprobs[j-1], top.Logprobs[j], "token %d: entries %d and %d out of order in %v", i, j-1, j, top.Tokens)
+		}
+	}
 }

@@ -1,72 +1,20 @@
 package upstreamtest
 
 import (
-	"encoding/json"
+	"errors"
 	"fmt"
 	"net/http"
 	"strings"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
-// chatRequest is a POST /v1/chat/completions body.
-type chatRequest struct {
-	common
-	Messages            json.RawMessage `json:"messages"`
-	MaxTokens           *int            `json:"max_tokens"`
-	MaxCompletionTokens *int            `json:"max_completion_tokens"`
-	Logprobs            *bool           `json:"logprobs"`
-	TopLogprobs         *int            `json:"top_logprobs"`
-}
-
-type chatMessage struct {
-	Role    string          `json:"role"`
-	Content json.RawMessage `json:"content"`
-}
-
-type chatResponse struct {
-	ID                string       `json:"id"`
-	Object            string       `json:"object"`
-	Created           int64        `json:"created"`
-	Model             string       `json:"model"`
-	SystemFingerprint string       `json:"system_fingerprint"`
-	Choices           []chatChoice `json:"choices"`
-	Usage             any          `json:"usage,omitempty"`
-}
-
-type chatChoice struct {
-	Index        int           `json:"index"`
-	Message      *chatAnswer   `json:"message,omitempty"`
-	Delta        *chatDelta    `json:"delta,omitempty"`
-	Logprobs     *chatLogprobs `json:"logprobs"`
-	FinishReason *string       `json:"finish_reason"`
-}
-
-type chatAnswer struct {
-	Role    string  `json:"role"`
-	Content string  `json:"content"`
-	Refusal *string `json:"refusal"`
-}
-
-type chatDelta struct {
-	Role    string  `json:"role,omitempty"`
-	Content *string `json:"content,omitempty"`
-}
-
-type chatLogprobs struct {
-	Content []chatTokenLogprob `json:"content"`
-}
-
-type chatTokenLogprob struct {
-	Token       string           `json:"token"`
-	Logprob     float64          `json:"logprob"`
-	Bytes       []int            `json:"bytes"`
-	TopLogprobs []chatTopLogprob `json:"top_logprobs"`
-}
-
-type chatTopLogprob struct {
-	Token   string  `json:"token"`
-	Logprob float64 `json:"logprob"`
-	Bytes   []int   `json:"bytes"`
+// chatChunk is a streamed chunk that says "usage": null (see
+// completionChunk).
+type chatChunk struct {
+	wire.ChatResponse
+	Usage *wire.Usage `json:"usage"`
 }
 
 // defaultChatMaxTokens is the chat endpoint's default answer length.
@@ -83,13 +31,9 @@ func chatRole(r string) bool {
 
 // renderChat turns messages into the prompt text the toy model continues:
 // one "role: content" line per message, then "assistant:".
-func renderChat(raw json.RawMessage) (string, *apiError) {
-	if len(raw) == 0 || string(raw) == "null" {
+func renderChat(msgs []wire.ChatMessage) (string, *apiError) {
+	if msgs == nil {
 		return "", invalid("messages", "Missing required parameter: 'messages'.")
-	}
-	var msgs []chatMessage
-	if err := json.Unmarshal(raw, &msgs); err != nil {
-		return "", invalid("messages", "Invalid type for 'messages': expected an array of message objects.")
 	}
 	if len(msgs) == 0 {
 		return "", invalid("messages", "'messages' must not be empty.")
@@ -99,7 +43,7 @@ func renderChat(raw json.RawMessage) (string, *apiError) {
 		if !chatRole(msg.Role) {
 			return "", invalid(fmt.Sprintf("messages[%d].role", i), "Invalid value for 'messages[%d].role': %q.", i, msg.Role)
 		}
-		text, err := messageText(msg.Content, i)
+		text, err := messageText(msg, i)
 		if err != nil {
 			return "", err
 		}
@@ -109,45 +53,25 @@ func renderChat(raw json.RawMessage) (string, *apiError) {
 	return b.String(), nil
 }
 
-// messageText returns a message's content: a string, null, or an array of
+// messageText returns message i's content: a string, null, or an array of
 // {"type":"text","text":...} parts.
-func messageText(raw json.RawMessage, i int) (string, *apiError) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return "", nil
-	}
-	var s string
-	if json.Unmarshal(raw, &s) == nil {
-		return s, nil
-	}
-	var parts []struct {
-		Type string `json:"type"`
-		Text string `json:"text"`
-	}
-	if err := json.Unmarshal(raw, &parts); err != nil {
+func messageText(m wire.ChatMessage, i int) (string, *apiError) {
+	s, err := m.Text()
+	var ce *wire.ContentError
+	switch {
+	case errors.As(err, &ce) && ce.Part < 0:
 		return "", invalid(fmt.Sprintf("messages[%d].content", i), "Invalid type for 'messages[%d].content': expected a string or an array of content parts.", i)
+	case errors.As(err, &ce):
+		return "", invalid(fmt.Sprintf("messages[%d].content[%d].type", i, ce.Part), "Content parts of type %q are not supported.", ce.Type)
 	}
-	var b strings.Builder
-	for j, p := range parts {
-		if p.Type != "text" {
-			return "", invalid(fmt.Sprintf("messages[%d].content[%d].type", i, j), "Content parts of type %q are not supported.", p.Type)
-		}
-		b.WriteString(p.Text)
-	}
-	return b.String(), nil
+	return s, nil
 }
 
 func (s *Server) chat(out responder, body []byte) {
-	var req chatRequest
-	if err := decodeBody(body, &req); err != nil {
-		out.error(err)
-		return
-	}
-	st, err := req.validate()
-	if err != nil {
-		out.error(err)
-		return
-	}
-	m, err := s.modelFor(st.model)
+	var req wire.ChatRequest
+	st, m, err := s.decode(body, &req, func() *common {
+		return commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions)
+	})
 	if err != nil {
 		out.error(err)
 		return
@@ -164,7 +88,7 @@ func (s *Server) chat(out responder, body []byte) {
 		return
 	}
 	k := -1
-	if req.Logprobs != nil && *req.Logprobs {
+	if req.Logprobs {
 		k = 0
 	}
 	if req.TopLogprobs != nil {
@@ -202,13 +126,13 @@ func (s *Server) chat(out responder, body []byte) {
 
 	id, created := s.newID("chatcmpl-"), time.Now().Unix()
 	fp := fmt.Sprintf("fp_%08x", uint32(hashString(st.model)))
-	u := newUsage(len(toks), genTokens)
+	u := wire.NewUsage(len(toks), genTokens)
 	if !st.stream {
-		resp := chatResponse{ID: id, Object: "chat.completion", Created: created, Model: st.model, SystemFingerprint: fp, Usage: u}
+		resp := wire.ChatResponse{ID: id, Object: "chat.completion", Created: created, Model: st.model, SystemFingerprint: fp, Usage: &u}
 		for j := range st.n {
-			resp.Choices = append(resp.Choices, chatChoice{
+			resp.Choices = append(resp.Choices, wire.ChatChoice{
 				Index:        j,
-				Message:      &chatAnswer{Role: "assistant", Content: joinTokens(gens[j])},
+				Message:      &wire.ChatAnswer{Role: "assistant", Content: joinTokens(gens[j])},
 				Logprobs:     chatLogprobsOf(gens[j], k),
 				FinishReason: &finishes[j],
 			})
@@ -218,16 +142,17 @@ func (s *Server) chat(out responder, body []byte) {
 	}
 
 	es := out.stream()
-	var chunkUsage any
-	if st.usage {
-		chunkUsage = json.RawMessage("null")
-	}
-	chunk := func(c chatChoice) {
-		es.send(chatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: st.model, SystemFingerprint: fp, Choices: []chatChoice{c}, Usage: chunkUsage})
+	chunk := func(c wire.ChatChoice) {
+		r := wire.ChatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: st.model, SystemFingerprint: fp, Choices: []wire.ChatChoice{c}}
+		if st.usage {
+			es.send(chatChunk{ChatResponse: r})
+			return
+		}
+		es.send(r)
 	}
 	for j := range st.n {
 		empty := ""
-		chunk(chatChoice{Index: j, Delta: &chatDelta{Role: "assistant", Content: &empty}})
+		chunk(wire.ChatChoice{Index: j, Delta: &wire.ChatDelta{Role: "assistant", Content: &empty}})
 	}
 	for pos := 0; ; pos++ {
 		more := false
@@ -237,34 +162,34 @@ func (s *Server) chat(out responder, body []byte) {
 			}
 			more = true
 			t := gens[j][pos : pos+1]
-			chunk(chatChoice{Index: j, Delta: &chatDelta{Content: &t[0].text}, Logprobs: chatLogprobsOf(t, k)})
+			chunk(wire.ChatChoice{Index: j, Delta: &wire.ChatDelta{Content: &t[0].text}, Logprobs: chatLogprobsOf(t, k)})
 		}
 		if !more {
 			break
 		}
 	}
 	for j := range st.n {
-		chunk(chatChoice{Index: j, Delta: &chatDelta{}, FinishReason: &finishes[j]})
+		chunk(wire.ChatChoice{Index: j, Delta: &wire.ChatDelta{}, FinishReason: &finishes[j]})
 	}
 	if st.usage {
-		es.send(chatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: st.model, SystemFingerprint: fp, Choices: []chatChoice{}, Usage: u})
+		es.send(wire.ChatResponse{ID: id, Object: "chat.completion.chunk", Created: created, Model: st.model, SystemFingerprint: fp, Choices: []wire.ChatChoice{}, Usage: &u})
 	}
 	es.done()
 }
 
 // chatLogprobsOf returns the chat logprobs object for toks with k top
 // entries each; nil when k < 0 (not requested).
-func chatLogprobsOf(toks []token, k int) *chatLogprobs {
+func chatLogprobsOf(toks []token, k int) *wire.ChatLogprobs {
 	if k < 0 {
 		return nil
 	}
-	lp := &chatLogprobs{Content: make([]chatTokenLogprob, 0, len(toks))}
+	lp := &wire.ChatLogprobs{Content: make([]wire.ChatTokenLogprob, 0, len(toks))}
 	for _, t := range toks {
-		top := make([]chatTopLogprob, k)
+		top := make([]wire.ChatTopLogprob, k)
 		for i := range k {
-			top[i] = chatTopLogprob{Token: t.cand.toks[i], Logprob: t.cand.lps[i], Bytes: tokenBytes(t.cand.toks[i])}
+			top[i] = wire.ChatTopLogprob{Token: t.cand.toks[i], Logprob: t.cand.lps[i], Bytes: wire.TokenBytes(t.cand.toks[i])}
 		}
-		lp.Content = append(lp.Content, chatTokenLogprob{Token: t.text, Logprob: t.logprob, Bytes: tokenBytes(t.text), TopLogprobs: top})
+		lp.Content = append(lp.Content, wire.ChatTokenLogprob{Token: t.text, Logprob: t.logprob, Bytes: wire.TokenBytes(t.text), TopLogprobs: top})
 	}
 	return lp
 }

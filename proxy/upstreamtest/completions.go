@@ -5,65 +5,16 @@ import (
 	"net/http"
 	"strings"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
-// completionRequest is a POST /v1/completions body.
-type completionRequest struct {
-	common
-	Prompt    json.RawMessage `json:"prompt"`
-	MaxTokens *int            `json:"max_tokens"`
-	Logprobs  *int            `json:"logprobs"`
-	Echo      *bool           `json:"echo"`
-}
-
-type completionResponse struct {
-	ID      string             `json:"id"`
-	Object  string             `json:"object"`
-	Created int64              `json:"created"`
-	Model   string             `json:"model"`
-	Choices []completionChoice `json:"choices"`
-	Usage   any                `json:"usage,omitempty"`
-}
-
-type completionChoice struct {
-	Text         string              `json:"text"`
-	Index        int                 `json:"index"`
-	Logprobs     *completionLogprobs `json:"logprobs"`
-	FinishReason *string             `json:"finish_reason"`
-}
-
-type completionLogprobs struct {
-	Tokens        []string      `json:"tokens"`
-	TokenLogprobs []*float64    `json:"token_logprobs"`
-	TopLogprobs   []*topEntries `json:"top_logprobs"`
-	TextOffset    []int         `json:"text_offset"`
-}
-
-// topEntries is one position's top_logprobs object. Like the real API, it
-// lists the entries most likely first (a Go map would sort them by token).
-type topEntries struct {
-	tokens []string
-	lps    []float64
-}
-
-// MarshalJSON writes the entries as a JSON object in their order.
-func (t *topEntries) MarshalJSON() ([]byte, error) {
-	b := []byte{'{'}
-	for i, tok := range t.tokens {
-		if i > 0 {
-			b = append(b, ',')
-		}
-		k, err := json.Marshal(tok)
-		if err != nil {
-			return nil, err
-		}
-		v, err := json.Marshal(t.lps[i])
-		if err != nil {
-			return nil, err
-		}
-		b = append(append(append(b, k...), ':'), v...)
-	}
-	return append(b, '}'), nil
+// completionChunk is a streamed chunk that says "usage": null, as the
+// API writes every chunk but the last when stream_options.include_usage is
+// set.
+type completionChunk struct {
+	wire.CompletionResponse
+	Usage *wire.Usage `json:"usage"`
 }
 
 // defaultMaxTokens is the completions endpoint's max_tokens default.
@@ -140,17 +91,10 @@ type completionChoiceData struct {
 }
 
 func (s *Server) completions(out responder, body []byte) {
-	var req completionRequest
-	if err := decodeBody(body, &req); err != nil {
-		out.error(err)
-		return
-	}
-	st, err := req.validate()
-	if err != nil {
-		out.error(err)
-		return
-	}
-	m, err := s.modelFor(st.model)
+	var req wire.CompletionRequest
+	st, m, err := s.decode(body, &req, func() *common {
+		return commonOf(req.Model, req.Temperature, req.TopP, req.N, req.Seed, req.Stop, req.Stream, req.StreamOptions)
+	})
 	if err != nil {
 		out.error(err)
 		return
@@ -171,7 +115,7 @@ func (s *Server) completions(out responder, body []byte) {
 			return
 		}
 	}
-	echo := req.Echo != nil && *req.Echo
+	echo := req.Echo
 	prompts, err := m.parsePrompts(req.Prompt)
 	if err != nil {
 		out.error(err)
@@ -205,12 +149,12 @@ func (s *Server) completions(out responder, body []byte) {
 	s.countPrompts(len(prompts), promptTokens, genTokens)
 
 	id, created := s.newID("cmpl-"), time.Now().Unix()
-	u := newUsage(promptTokens, genTokens)
+	u := wire.NewUsage(promptTokens, genTokens)
 	if !st.stream {
-		resp := completionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Usage: u}
+		resp := wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Usage: &u}
 		for _, c := range choices {
 			all := append(append([]token(nil), c.echo...), c.gen...)
-			resp.Choices = append(resp.Choices, completionChoice{
+			resp.Choices = append(resp.Choices, wire.CompletionChoice{
 				Text:         joinTokens(all),
 				Index:        c.index,
 				Logprobs:     completionLogprobsOf(all, k, 0),
@@ -225,17 +169,18 @@ func (s *Server) completions(out responder, body []byte) {
 	// then one token per chunk, the choices interleaved, then each
 	// choice's finish reason.
 	es := out.stream()
-	var chunkUsage any
-	if st.usage {
-		chunkUsage = json.RawMessage("null")
-	}
-	chunk := func(c completionChoice) {
-		es.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Choices: []completionChoice{c}, Usage: chunkUsage})
+	chunk := func(c wire.CompletionChoice) {
+		r := wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Choices: []wire.CompletionChoice{c}}
+		if st.usage {
+			es.send(completionChunk{CompletionResponse: r})
+			return
+		}
+		es.send(r)
 	}
 	offsets := make([]int, len(choices))
 	if echo {
 		for i, c := range choices {
-			chunk(completionChoice{Text: joinTokens(c.echo), Index: c.index, Logprobs: completionLogprobsOf(c.echo, k, 0)})
+			chunk(wire.CompletionChoice{Text: joinTokens(c.echo), Index: c.index, Logprobs: completionLogprobsOf(c.echo, k, 0)})
 			offsets[i] = len(joinTokens(c.echo))
 		}
 	}
@@ -247,7 +192,7 @@ func (s *Server) completions(out responder, body []byte) {
 			}
 			more = true
 			t := c.gen[pos : pos+1]
-			chunk(completionChoice{Text: t[0].text, Index: c.index, Logprobs: completionLogprobsOf(t, k, offsets[i])})
+			chunk(wire.CompletionChoice{Text: t[0].text, Index: c.index, Logprobs: completionLogprobsOf(t, k, offsets[i])})
 			offsets[i] += len(t[0].text)
 		}
 		if !more {
@@ -256,24 +201,24 @@ func (s *Server) completions(out responder, body []byte) {
 	}
 	for _, c := range choices {
 		finish := c.finish
-		chunk(completionChoice{Text: "", Index: c.index, Logprobs: completionLogprobsOf(nil, k, 0), FinishReason: &finish})
+		chunk(wire.CompletionChoice{Text: "", Index: c.index, Logprobs: completionLogprobsOf(nil, k, 0), FinishReason: &finish})
 	}
 	if st.usage {
-		es.send(completionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Choices: []completionChoice{}, Usage: u})
+		es.send(wire.CompletionResponse{ID: id, Object: "text_completion", Created: created, Model: st.model, Choices: []wire.CompletionChoice{}, Usage: &u})
 	}
 	es.done()
 }
 
 // completionLogprobsOf returns the logprobs object for toks with k top
 // entries, offsets counted from base; nil when k < 0 (not requested).
-func completionLogprobsOf(toks []token, k, base int) *completionLogprobs {
+func completionLogprobsOf(toks []token, k, base int) *wire.CompletionLogprobs {
 	if k < 0 {
 		return nil
 	}
-	lp := &completionLogprobs{
+	lp := &wire.CompletionLogprobs{
 		Tokens:        make([]string, 0, len(toks)),
 		TokenLogprobs: make([]*float64, 0, len(toks)),
-		TopLogprobs:   make([]*topEntries, 0, len(toks)),
+		TopLogprobs:   make([]*wire.TopLogprobs, 0, len(toks)),
 		TextOffset:    make([]int, 0, len(toks)),
 	}
 	off := base
@@ -288,7 +233,7 @@ func completionLogprobsOf(toks []token, k, base int) *completionLogprobs {
 		}
 		v := t.logprob
 		lp.TokenLogprobs = append(lp.TokenLogprobs, &v)
-		lp.TopLogprobs = append(lp.TopLogprobs, &topEntries{tokens: t.cand.toks[:k:k], lps: t.cand.lps[:k:k]})
+		lp.TopLogprobs = append(lp.TopLogprobs, &wire.TopLogprobs{Tokens: t.cand.toks[:k:k], Logprobs: t.cand.lps[:k:k]})
 	}
 	return lp
 }

@@ -12,6 +12,7 @@ import (
 	"time"
 
 	"github.com/stintlab/stint/proxy/sse"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Fault is what an injected failure does to one call. Its parts apply in
@@ -165,7 +166,7 @@ func (s *Server) applyFault(w http.ResponseWriter, r *http.Request, f *Fault) bo
 			if f.EchoAuth {
 				e.Message = echoMessage(auth)
 			}
-			body, _ = json.Marshal(map[string]errorBody{"error": e})
+			body, _ = json.Marshal(wire.ErrorBody{Error: e})
 			w.Header().Set("Content-Type", "application/json")
 		}
 		out := responder{w: w, cut: f.Cut}
@@ -185,18 +186,17 @@ func echoMessage(auth string) string {
 }
 
 // faultError is the default error body of an injected status.
-func faultError(status int) errorBody {
+func faultError(status int) wire.ErrorDetail {
 	typ := "invalid_request_error"
-	var code *string
+	var code wire.ErrorCode
 	switch {
 	case status == http.StatusTooManyRequests:
 		typ = "rate_limit_error"
-		c := "rate_limit_exceeded"
-		code = &c
+		code = "rate_limit_exceeded"
 	case status >= 500:
 		typ = "server_error"
 	}
-	return errorBody{
+	return wire.ErrorDetail{
 		Message: fmt.Sprintf("injected fault: %d %s", status, http.StatusText(status)),
 		Type:    typ,
 		Code:    code,
@@ -233,7 +233,7 @@ func (o responder) json(status int, v any) {
 }
 
 func (o responder) error(e *apiError) {
-	o.json(e.status, map[string]errorBody{"error": e.body})
+	o.json(e.status, wire.ErrorBody{Error: e.body})
 }
 
 func (o responder) raw(status int, body []byte) {

@@ -8,83 +8,17 @@ import (
 	"net/http"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/sse"
 	"github.com/stintlab/stint/proxy/upstreamtest"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
-// Wire types as a client decodes them, with pointers where the wire format
-// has nulls.
-type completion struct {
-	ID      string             `json:"id"`
-	Object  string             `json:"object"`
-	Created int64              `json:"created"`
-	Model   string             `json:"model"`
-	Choices []completionChoice `json:"choices"`
-	Usage   *usage             `json:"usage"`
-}
-
-type completionChoice struct {
-	Text         string    `json:"text"`
-	Index        int       `json:"index"`
-	Logprobs     *logprobs `json:"logprobs"`
-	FinishReason *string   `json:"finish_reason"`
-}
-
-type logprobs struct {
-	Tokens        []string             `json:"tokens"`
-	TokenLogprobs []*float64           `json:"token_logprobs"`
-	TopLogprobs   []map[string]float64 `json:"top_logprobs"`
-	TextOffset    []int                `json:"text_offset"`
-}
-
-type usage struct {
-	PromptTokens     int `json:"prompt_tokens"`
-	CompletionTokens int `json:"completion_tokens"`
-	TotalTokens      int `json:"total_tokens"`
-}
-
-type chatCompletion struct {
-	ID      string       `json:"id"`
-	Object  string       `json:"object"`
-	Model   string       `json:"model"`
-	Choices []chatChoice `json:"choices"`
-	Usage   *usage       `json:"usage"`
-}
-
-type chatChoice struct {
-	Index   int `json:"index"`
-	Message *struct {
-		Role    string `json:"role"`
-		Content string `json:"content"`
-	} `json:"message"`
-	Delta *struct {
-		Role    string  `json:"role"`
-		Content *string `json:"content"`
-	} `json:"delta"`
-	Logprobs *struct {
-		Content []chatTokenLogprob `json:"content"`
-	} `json:"logprobs"`
-	FinishReason *string `json:"finish_reason"`
-}
-
-type chatTokenLogprob struct {
-	Token       string  `json:"token"`
-	Logprob     float64 `json:"logprob"`
-	Bytes       []int   `json:"bytes"`
-	TopLogprobs []struct {
-		Token   string  `json:"token"`
-		Logprob float64 `json:"logprob"`
-		Bytes   []int   `json:"bytes"`
-	} `json:"top_logprobs"`
-}
-
+// errorEnvelope is an error answer as a client reads it: Error is nil
+// when the answer has no error object.
 type errorEnvelope struct {
-	Error *struct {
-		Message string  `json:"message"`
-		Type    string  `json:"type"`
-		Param   *string `json:"param"`
-		Code    *string `json:"code"`
-	} `json:"error"`
+	Error *wire.ErrorDetail `json:"error"`
 }
 
 // post sends body to path (below the /v1 base) and returns the response
@@ -92,22 +26,16 @@ type errorEnvelope struct {
 func post(tb testing.TB, up *upstreamtest.Server, path, body string, header http.Header) (*http.Response, []byte) {
 	tb.Helper()
 	req, err := http.NewRequest(http.MethodPost, up.URL()+path, bytes.NewReader([]byte(body)))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	req.Header.Set("Content-Type", "application/json")
 	for k, v := range header {
 		req.Header[k] = v
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
-	if err != nil {
-		tb.Fatalf("reading %s answer: %v", path, err)
-	}
+	require.NoError(tb, err, "reading %s answer", path)
 	return resp, b
 }
 
@@ -115,12 +43,8 @@ func post(tb testing.TB, up *upstreamtest.Server, path, body string, header http
 func postOK(tb testing.TB, up *upstreamtest.Server, path, body string, v any) {
 	tb.Helper()
 	resp, b := post(tb, up, path, body, nil)
-	if resp.StatusCode != http.StatusOK {
-		tb.Fatalf("POST %s %s: status %d, body %s", path, body, resp.StatusCode, b)
-	}
-	if err := json.Unmarshal(b, v); err != nil {
-		tb.Fatalf("decoding %s: %v", b, err)
-	}
+	require.Equal(tb, http.StatusOK, resp.StatusCode, "POST %s %s: body %s", path, body, b)
+	require.NoError(tb, json.Unmarshal(b, v), "decoding %s", b)
 }
 
 // streamEvents parses an event-stream answer into its data payloads,
@@ -131,16 +55,14 @@ func streamEvents(tb testing.TB, body []byte) [][]byte {
 	var out [][]byte
 	for {
 		ev, err := r.Next()
-		if err != nil {
-			tb.Fatalf("stream ended without [DONE]: %v", err)
-		}
+		require.NoError(tb, err, "stream ended without [DONE]")
 		if ev.IsDone() {
 			break
 		}
 		out = append(out, []byte(ev.Data))
 	}
 	if _, err := r.Next(); err != io.EOF {
-		tb.Fatalf("after [DONE]: %v; want io.EOF", err)
+		require.Failf(tb, "events after [DONE]", "after [DONE]: %v; want io.EOF", err)
 	}
 	return out
 }
@@ -149,7 +71,7 @@ func streamEvents(tb testing.TB, body []byte) [][]byte {
 // against its choice text: tokens concatenate to text, offsets count from
 // the start of the text, exactly k top entries with probabilities summing
 // to at most one, and (greedy) the chosen token is the most likely.
-func checkLogprobs(tb testing.TB, text string, lp *logprobs, k int, greedy bool, base int) {
+func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k int, greedy bool, base int) {
 	tb.Helper()
 	if lp == nil {
 		tb.Fatal("logprobs = null; want an object")
@@ -174,7 +96,7 @@ func checkLogprobs(tb testing.TB, text string, lp *logprobs, k int, greedy bool,
 		if *lp.TokenLogprobs[i] >= 0 {
 			tb.Errorf("token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
 		}
-		top := lp.TopLogprobs[i]
+		top := lp.TopLogprobs[i].Map()
 		if len(top) != k {
 			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		}

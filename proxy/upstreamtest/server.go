@@ -83,6 +83,8 @@ import (
 	"strings"
 	"sync"
 	"sync/atomic"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Names of the fake's default models.
@@ -368,7 +370,7 @@ func (s *Server) serveHTTP(w http.ResponseWriter, r *http.Request) {
 	}
 
 	if s.key != "" && r.Header.Get("Authorization") != "Bearer "+s.key {
-		writeError(w, (&apiError{status: http.StatusUnauthorized, body: errorBody{
+		writeError(w, (&apiError{status: http.StatusUnauthorized, body: wire.ErrorDetail{
 			Message: "Incorrect API key provided.", Type: "invalid_request_error",
 		}}).withCode("invalid_api_key"))
 		return
@@ -388,11 +390,11 @@ func (s *Server) serveHTTP(w http.ResponseWriter, r *http.Request) {
 			allow = http.MethodGet
 		}
 		w.Header().Set("Allow", allow)
-		writeError(w, &apiError{status: http.StatusMethodNotAllowed, body: errorBody{
+		writeError(w, &apiError{status: http.StatusMethodNotAllowed, body: wire.ErrorDetail{
 			Message: fmt.Sprintf("Method %s is not allowed for %s.", r.Method, r.URL.Path), Type: "invalid_request_error",
 		}})
 	default:
-		writeError(w, &apiError{status: http.StatusNotFound, body: errorBody{
+		writeError(w, &apiError{status: http.StatusNotFound, body: wire.ErrorDetail{
 			Message: fmt.Sprintf("Invalid URL (%s %s)", r.Method, r.URL.Path), Type: "invalid_request_error",
 		}})
 	}
@@ -402,7 +404,7 @@ func (s *Server) serveHTTP(w http.ResponseWriter, r *http.Request) {
 func (s *Server) modelFor(name string) (*model, *apiError) {
 	m, ok := s.models[name]
 	if !ok {
-		return nil, (&apiError{status: http.StatusNotFound, body: errorBody{
+		return nil, (&apiError{status: http.StatusNotFound, body: wire.ErrorDetail{
 			Message: fmt.Sprintf("The model '%s' does not exist or you do not have access to it.", name),
 			Type:    "invalid_request_error",
 		}}).withCode("model_not_found")
@@ -438,23 +440,16 @@ func (s *Server) Billed() Tokens {
 	return s.billed
 }
 
-type modelObject struct {
-	ID      string `json:"id"`
-	Object  string `json:"object"`
-	Created int64  `json:"created"`
-	OwnedBy string `json:"owned_by"`
-}
-
 // modelsCreated is the fixed creation time the fake reports for its
 // models: 2026-03-01T00:00:00Z in Unix seconds.
 const modelsCreated = 1772323200
 
 func (s *Server) listModels(out responder) {
-	data := make([]modelObject, 0, len(s.order))
+	data := make([]wire.Model, 0, len(s.order))
 	for _, n := range s.order {
-		data = append(data, modelObject{ID: n, Object: "model", Created: modelsCreated, OwnedBy: "river-apiary"})
+		data = append(data, wire.Model{ID: n, Object: "model", Created: modelsCreated, OwnedBy: "river-apiary"})
 	}
-	out.json(http.StatusOK, map[string]any{"object": "list", "data": data})
+	out.json(http.StatusOK, wire.ModelList{Object: "list", Data: data})
 }
 
 func (s *Server) getModel(out responder, id string) {
@@ -462,7 +457,7 @@ func (s *Server) getModel(out responder, id string) {
 		writeError(out.w, err)
 		return
 	}
-	out.json(http.StatusOK, modelObject{ID: id, Object: "model", Created: modelsCreated, OwnedBy: "river-apiary"})
+	out.json(http.StatusOK, wire.Model{ID: id, Object: "model", Created: modelsCreated, OwnedBy: "river-apiary"})
 }
 
 // samplingFor returns the sampler for one choice, or nil for greedy.

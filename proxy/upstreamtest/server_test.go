@@ -18,6 +18,7 @@ import (
 
 	"github.com/stintlab/stint/proxy/sse"
 	"github.com/stintlab/stint/proxy/upstreamtest"
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 func TestValidation(t *testing.T) {
@@ -95,7 +96,7 @@ func TestValidation(t *testing.T) {
 			if got := deref(e.Param); got != tt.param {
 				t.Errorf("param = %q; want %q", got, tt.param)
 			}
-			if got := deref(e.Code); got != tt.code {
+			if got := string(e.Code); got != tt.code {
 				t.Errorf("code = %q; want %q", got, tt.code)
 			}
 		})
@@ -205,7 +206,7 @@ func TestAuth(t *testing.T) {
 		}
 		if tt.status == 401 {
 			var env errorEnvelope
-			if json.Unmarshal(b, &env) != nil || env.Error == nil || deref(env.Error.Code) != "invalid_api_key" {
+			if json.Unmarshal(b, &env) != nil || env.Error == nil || string(env.Error.Code) != "invalid_api_key" {
 				t.Errorf("401 body %s; want code invalid_api_key", b)
 			}
 		}
@@ -221,11 +222,11 @@ func TestAuth(t *testing.T) {
 func TestCountersRequestsReset(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
-	var out completion
+	var out wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":["a","b","c"],"max_tokens":1,"n":2}`, &out)
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[1,2],[3]],"max_tokens":1}`, &out)
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[1,2,3],"max_tokens":1}`, &out)
-	var chat chatCompletion
+	var chat wire.ChatResponse
 	h := http.Header{"Authorization": {"Bearer team-key"}, "X-Trace": {"t1"}}
 	resp, _ := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"max_tokens":1}`, h)
 	if resp.StatusCode != 200 {
@@ -276,19 +277,19 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	req := func(maxTokens, k int, echo bool) string {
 		return fmt.Sprintf(`{"model":"quill-large","prompt":%q,"max_tokens":%d,"temperature":0,"logprobs":%d,"echo":%v}`, prompt, maxTokens, k, echo)
 	}
-	var long completion
+	var long wire.CompletionResponse
 	postOK(t, up, "/completions", req(40, 5, false), &long)
 	if long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0 {
 		t.Errorf("envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
 	}
 	lc := long.Choices[0]
 	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
-	if got, want := *long.Usage, (usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)}); got != want {
+	if got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)}); got != want {
 		t.Errorf("usage = %+v; want %+v", got, want)
 	}
 	// Same prompt, same answer; fewer tokens give a prefix.
 	for _, n := range []int{0, 1, 5, 16} {
-		var short completion
+		var short wire.CompletionResponse
 		postOK(t, up, "/completions", req(n, 3, false), &short)
 		sc := short.Choices[0]
 		checkLogprobs(t, sc.Text, sc.Logprobs, 3, true, 0)
@@ -302,7 +303,7 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	}
 	// Echo: the prompt's tokens first, the first without a log-probability,
 	// offsets counted from the start of the prompt.
-	var echoed completion
+	var echoed wire.CompletionResponse
 	postOK(t, up, "/completions", req(4, 2, true), &echoed)
 	ec := echoed.Choices[0]
 	checkLogprobs(t, ec.Text, ec.Logprobs, 2, false, 0)
@@ -316,7 +317,7 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 		t.Errorf("echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
 	}
 	// Without logprobs the field is null.
-	var plain completion
+	var plain wire.CompletionResponse
 	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
 	if resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`) {
 		t.Errorf("answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
@@ -330,7 +331,7 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 func TestModelsDiffer(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
-	var a, b completion
+	var a, b wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":"hive","max_tokens":30,"temperature":0}`, &a)
 	postOK(t, up, "/completions", `{"model":"quill-large","prompt":"hive","max_tokens":30,"temperature":0}`, &b)
 	if a.Choices[0].Text == b.Choices[0].Text {
@@ -345,13 +346,13 @@ func TestArrayPromptsAndIndexes(t *testing.T) {
 	single := make([]string, len(prompts))
 	promptTokens := 0
 	for i, p := range prompts {
-		var c completion
+		var c wire.CompletionResponse
 		postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%q,"max_tokens":6,"temperature":0}`, p), &c)
 		single[i] = c.Choices[0].Text
 		promptTokens += c.Usage.PromptTokens
 	}
 	pj, _ := json.Marshal(prompts)
-	var batch completion
+	var batch wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%s,"max_tokens":6,"temperature":0,"n":2,"logprobs":1}`, pj), &batch)
 	if len(batch.Choices) != 6 {
 		t.Fatalf("%d choices; want 3 prompts x n=2", len(batch.Choices))
@@ -366,7 +367,7 @@ func TestArrayPromptsAndIndexes(t *testing.T) {
 		}
 		completionTokens += len(c.Logprobs.Tokens)
 	}
-	if got, want := *batch.Usage, (usage{promptTokens, completionTokens, promptTokens + completionTokens}); got != want {
+	if got, want := *batch.Usage, wire.NewUsage(promptTokens, completionTokens); got != want {
 		t.Errorf("usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
 	}
 }
@@ -376,7 +377,7 @@ func TestTokenIDPrompts(t *testing.T) {
 	defer up.Close()
 	// Read the tokens back from an echo to learn ids' text: ids 24 and 56
 	// are " barge" and " hive" in the vocabulary.
-	var ids, text completion
+	var ids, text wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[24,56],"max_tokens":5,"temperature":0,"echo":true}`, &ids)
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":" barge hive","max_tokens":5,"temperature":0,"echo":true}`, &text)
 	if ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive") {
@@ -385,7 +386,7 @@ func TestTokenIDPrompts(t *testing.T) {
 	if ids.Usage.PromptTokens != 2 {
 		t.Errorf("prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	}
-	var lists completion
+	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
 	if len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3 {
 		t.Errorf("array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
@@ -396,7 +397,7 @@ func TestStopSequences(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	const body = `{"model":"quill-small","prompt":"Before dawn the crew","max_tokens":20,"temperature":0,"logprobs":0%s}`
-	var full completion
+	var full wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, ""), &full)
 	toks := full.Choices[0].Logprobs.Tokens
 	if len(toks) < 6 {
@@ -413,7 +414,7 @@ func TestStopSequences(t *testing.T) {
 	}
 	for _, tt := range tests {
 		stop, _ := json.Marshal([]string{"zzz", tt.stop})
-		var got completion
+		var got wire.CompletionResponse
 		postOK(t, up, "/completions", fmt.Sprintf(body, `,"stop":`+string(stop)), &got)
 		c := got.Choices[0]
 		want := strings.Join(toks[:tt.keep], "")
@@ -425,7 +426,7 @@ func TestStopSequences(t *testing.T) {
 		}
 		checkLogprobs(t, c.Text, c.Logprobs, 0, true, 0)
 	}
-	var one completion
+	var one wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, fmt.Sprintf(`,"stop":%q`, toks[1])), &one)
 	if strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop" {
 		t.Errorf("stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
@@ -437,7 +438,7 @@ func TestEndsOnItsOwn(t *testing.T) {
 	defer up.Close()
 	stops := 0
 	for i := range 40 {
-		var c completion
+		var c wire.CompletionResponse
 		postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":"jar %d","max_tokens":16,"temperature":0,"logprobs":0}`, i), &c)
 		ch := c.Choices[0]
 		switch *ch.FinishReason {
@@ -464,7 +465,7 @@ func TestSampling(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	text := func(extra string) []string {
-		var c completion
+		var c wire.CompletionResponse
 		postOK(t, up, "/completions", `{"model":"quill-small","prompt":"The swarm","max_tokens":32,"n":3`+extra+`}`, &c)
 		var out []string
 		for _, ch := range c.Choices {
@@ -495,7 +496,7 @@ func TestSampling(t *testing.T) {
 // assembled is a streamed choice put back together.
 type assembled struct {
 	text   string
-	lp     logprobs
+	lp     wire.CompletionLogprobs
 	finish string
 }
 
@@ -503,7 +504,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	const base = `{"model":"quill-small","prompt":["The ferry","Dusk over the weir"],"max_tokens":7,"temperature":0,"n":2,"logprobs":3,"echo":true`
-	var whole completion
+	var whole wire.CompletionResponse
 	postOK(t, up, "/completions", base+`}`, &whole)
 
 	resp, body := post(t, up, "/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
@@ -512,9 +513,9 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	}
 	events := streamEvents(t, body)
 	got := map[int]*assembled{}
-	var streamUsage *usage
+	var streamUsage *wire.Usage
 	for i, data := range events {
-		var c completion
+		var c wire.CompletionResponse
 		if err := json.Unmarshal(data, &c); err != nil {
 			t.Fatalf("event %d %s: %v", i, data, err)
 		}
@@ -578,7 +579,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	// Without include_usage there is no usage chunk.
 	_, body = post(t, up, "/completions", base+`,"stream":true}`, nil)
 	for _, data := range streamEvents(t, body) {
-		var c completion
+		var c wire.CompletionResponse
 		json.Unmarshal(data, &c)
 		if c.Usage != nil || len(c.Choices) != 1 {
 			t.Errorf("event %s without include_usage; want one choice and no usage", data)
@@ -590,7 +591,7 @@ func TestChat(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	const base = `{"model":"quill-large","messages":[{"role":"system","content":"You keep bees."},{"role":"user","content":"Where is the barge?"}],"temperature":0,"logprobs":true,"top_logprobs":4`
-	var long, short chatCompletion
+	var long, short wire.ChatResponse
 	postOK(t, up, "/chat/completions", base+`,"max_completion_tokens":12}`, &long)
 	postOK(t, up, "/chat/completions", base+`,"max_tokens":5}`, &short)
 	if long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-") {
@@ -637,7 +638,7 @@ func TestChat(t *testing.T) {
 		t.Errorf("usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
 	}
 	// logprobs without top_logprobs: the content list with empty tops.
-	var bare chatCompletion
+	var bare wire.ChatResponse
 	postOK(t, up, "/chat/completions", `{"model":"quill-large","messages":[{"role":"user","content":"hi"}],"max_tokens":3,"logprobs":true}`, &bare)
 	for _, tl := range bare.Choices[0].Logprobs.Content {
 		if len(tl.TopLogprobs) != 0 {
@@ -658,20 +659,20 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	const base = `{"model":"quill-small","messages":[{"role":"user","content":"Count the hives."}],"temperature":0,"n":2,"max_tokens":6,"logprobs":true,"top_logprobs":2`
-	var whole chatCompletion
+	var whole wire.ChatResponse
 	postOK(t, up, "/chat/completions", base+`}`, &whole)
 	_, body := post(t, up, "/chat/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
 	events := streamEvents(t, body)
 	type acc struct {
 		role, content string
-		tokens        []chatTokenLogprob
+		tokens        []wire.ChatTokenLogprob
 		finish        string
 		chunks        int
 	}
 	got := map[int]*acc{}
-	var streamUsage *usage
+	var streamUsage *wire.Usage
 	for i, data := range events {
-		var c chatCompletion
+		var c wire.ChatResponse
 		if err := json.Unmarshal(data, &c); err != nil {
 			t.Fatal(err)
 		}

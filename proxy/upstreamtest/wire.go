@@ -6,26 +6,21 @@ import (
 	"fmt"
 	"net/http"
 	"strings"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // apiError is an error answer in the wire format's shape.
 type apiError struct {
 	status int
-	body   errorBody
-}
-
-type errorBody struct {
-	Message string  `json:"message"`
-	Type    string  `json:"type"`
-	Param   *string `json:"param"`
-	Code    *string `json:"code"`
+	body   wire.ErrorDetail
 }
 
 func (e *apiError) Error() string { return e.body.Message }
 
 // invalid returns a 400 invalid_request_error naming param ("" for none).
 func invalid(param, format string, args ...any) *apiError {
-	e := &apiError{status: http.StatusBadRequest, body: errorBody{Message: fmt.Sprintf(format, args...), Type: "invalid_request_error"}}
+	e := &apiError{status: http.StatusBadRequest, body: wire.ErrorDetail{Message: fmt.Sprintf(format, args...), Type: "invalid_request_error"}}
 	if param != "" {
 		e.body.Param = &param
 	}
@@ -34,7 +29,7 @@ func invalid(param, format string, args ...any) *apiError {
 
 // withCode sets the error's code.
 func (e *apiError) withCode(code string) *apiError {
-	e.body.Code = &code
+	e.body.Code = wire.ErrorCode(code)
 	return e
 }
 
@@ -51,38 +46,30 @@ func decodeBody(body []byte, v any) *apiError {
 		if typeErr.Field == "" {
 			return invalid("", "The request body must be a JSON object.")
 		}
-		field := strings.TrimPrefix(typeErr.Field, "common.") // the embedded struct
+		field := typeErr.Field
+		if field == "messages" || strings.HasPrefix(field, "messages.") {
+			return invalid("messages", "Invalid type for 'messages': expected an array of message objects.")
+		}
 		return invalid(field, "Invalid type for '%s': expected %s, but got %s.", field, typeErr.Type, typeErr.Value)
 	}
 	return invalid("", "We could not parse the JSON body of your request: %v", err)
 }
 
-// usage is the token accounting of an answer.
-type usage struct {
-	PromptTokens     int `json:"prompt_tokens"`
-	CompletionTokens int `json:"completion_tokens"`
-	TotalTokens      int `json:"total_tokens"`
-}
-
-func newUsage(prompt, completion int) *usage {
-	return &usage{PromptTokens: prompt, CompletionTokens: completion, TotalTokens: prompt + completion}
-}
-
-// streamOptions is the request's stream_options object.
-type streamOptions struct {
-	IncludeUsage bool `json:"include_usage"`
-}
-
 // common holds the request fields both generation endpoints share.
 type common struct {
-	Model         *string         `json:"model"`
-	Temperature   *float64        `json:"temperature"`
-	TopP          *float64        `json:"top_p"`
-	N             *int            `json:"n"`
-	Seed          *int64          `json:"seed"`
-	Stop          json.RawMessage `json:"stop"`
-	Stream        *bool           `json:"stream"`
-	StreamOptions *streamOptions  `json:"stream_options"`
+	Model         string
+	Temperature   *float64
+	TopP          *float64
+	N             *int
+	Seed          *int64
+	Stop          json.RawMessage
+	Stream        bool
+	StreamOptions *wire.StreamOptions
+}
+
+// commonOf gathers the shared fields of a completions or chat request.
+func commonOf(model string, temperature, topP *float64, n *int, seed *int64, stop json.RawMessage, stream bool, so *wire.StreamOptions) *common {
+	return &common{Model: model, Temperature: temperature, TopP: topP, N: n, Seed: seed, Stop: stop, Stream: stream, StreamOptions: so}
 }
 
 // settings are validated generation settings.
@@ -97,6 +84,20 @@ type settings struct {
 	usage       bool // stream_options.include_usage
 }
 
+// decode decodes body into req, validates the fields both endpoints share
+// (which shared reads from req once decoded) and finds the model they name.
+func (s *Server) decode(body []byte, req any, shared func() *common) (settings, *model, *apiError) {
+	if err := decodeBody(body, req); err != nil {
+		return settings{}, nil, err
+	}
+	st, err := shared().validate()
+	if err != nil {
+		return st, nil, err
+	}
+	m, err := s.modelFor(st.model)
+	return st, m, err
+}
+
 // Limits the fake enforces, like a real API.
 const (
 	maxN          = 128
@@ -106,10 +107,10 @@ const (
 
 func (c *common) validate() (settings, *apiError) {
 	s := settings{temperature: 1, topP: 1, n: 1, seed: c.Seed}
-	if c.Model == nil || *c.Model == "" {
+	if c.Model == "" {
 		return s, invalid("model", "you must provide a model parameter")
 	}
-	s.model = *c.Model
+	s.model = c.Model
 	if c.Temperature != nil {
 		if *c.Temperature < 0 || *c.Temperature > 2 {
 			return s, invalid("temperature", "%g is not valid for 'temperature': expected a value between 0 and 2.", *c.Temperature).withCode("invalid_value")
@@ -133,7 +134,7 @@ func (c *common) validate() (settings, *apiError) {
 		return s, err
 	}
 	s.stops = stops
-	s.stream = c.Stream != nil && *c.Stream
+	s.stream = c.Stream
 	if c.StreamOptions != nil {
 		if !s.stream {
 			return s, invalid("stream_options", "The 'stream_options' parameter is only allowed when 'stream' is enabled.")
@@ -146,29 +147,12 @@ func (c *common) validate() (settings, *apiError) {
 // parseStop parses "stop": null, a string, or an array of up to four
 // strings.
 func parseStop(raw json.RawMessage) ([]string, *apiError) {
-	if len(raw) == 0 || string(raw) == "null" {
-		return nil, nil
-	}
-	var one string
-	if json.Unmarshal(raw, &one) == nil {
-		return []string{one}, nil
-	}
-	var many []string
-	if err := json.Unmarshal(raw, &many); err != nil {
+	many, ok := wire.ParseStop(raw)
+	if !ok {
 		return nil, invalid("stop", "Invalid type for 'stop': expected a string or an array of strings.")
 	}
 	if len(many) > maxStops {
 		return nil, invalid("stop", "'stop' may hold at most %d sequences; got %d.", maxStops, len(many))
 	}
 	return many, nil
-}
-
-// tokenBytes returns the UTF-8 bytes of t as the numbers the wire format
-// uses for "bytes".
-func tokenBytes(t string) []int {
-	out := make([]int, len(t))
-	for i := range len(t) {
-		out[i] = int(t[i])
-	}
-	return out
 }

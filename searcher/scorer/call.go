@@ -6,6 +6,8 @@ import (
 	"strings"
 
 	"github.com/dunglas/httpsfv"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Headers the proxy sets on its answers (see the stint README).
@@ -42,11 +44,7 @@ const (
 )
 
 // Usage is the wire format's token count for one call.
-type Usage struct {
-	PromptTokens     int `json:"prompt_tokens"`
-	CompletionTokens int `json:"completion_tokens"`
-	TotalTokens      int `json:"total_tokens"`
-}
+type Usage = wire.Usage
 
 // Call describes one HTTP call a Score made.
 type Call struct {

@@ -11,6 +11,8 @@ import (
 	"strings"
 	"sync"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // Endpoint selects the wire-format endpoint a Client scores through.
@@ -205,18 +207,26 @@ func (c *Client) answer(ctx context.Context, texts []string) ([]map[string]float
 	return top, call, err
 }
 
+// requestBody is the body of one call for texts: one token, greedy, with
+// the top log-probabilities of its place.
+func (c *Client) requestBody(texts []string) ([]byte, error) {
+	one, greedy, top := 1, 0.0, c.opts.TopLogprobs
+	if c.opts.Endpoint == Chat {
+		return json.Marshal(wire.ChatRequest{Model: c.opts.Model, Messages: []wire.ChatMessage{wire.TextMessage("user", texts[0])},
+			MaxTokens: &one, Temperature: &greedy, Logprobs: true, TopLogprobs: &top})
+	}
+	prompt, err := json.Marshal(texts)
+	if err != nil {
+		return nil, err
+	}
+	return json.Marshal(wire.CompletionRequest{Model: c.opts.Model, Prompt: prompt, MaxTokens: &one, Temperature: &greedy, Logprobs: &top})
+}
+
 // call makes one HTTP call for texts.
 func (c *Client) call(ctx context.Context, texts []string) ([]map[string]float64, Call, error) {
 	c.enter()
 	defer c.leave()
-	var body any
-	if c.opts.Endpoint == Chat {
-		body = chatRequest{Model: c.opts.Model, Messages: []chatMessage{{Role: "user", Content: texts[0]}},
-			MaxTokens: 1, Temperature: 0, Logprobs: true, TopLogprobs: c.opts.TopLogprobs}
-	} else {
-		body = completionRequest{Model: c.opts.Model, Prompt: texts, MaxTokens: 1, Temperature: 0, Logprobs: c.opts.TopLogprobs}
-	}
-	raw, err := json.Marshal(body)
+	raw, err := c.requestBody(texts)
 	if err != nil {
 		return nil, Call{}, fmt.Errorf("scorer: encoding request: %w", err)
 	}

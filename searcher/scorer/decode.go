@@ -6,12 +6,14 @@ import (
 	"net/http"
 	"strconv"
 	"time"
+
+	"github.com/stintlab/stint/proxy/wire"
 )
 
 // decodeCompletions reads the first generated token's top log-probabilities
 // of each of n choices, placed by choice index (prompt order, since n is 1).
 func decodeCompletions(data []byte, n int) ([]map[string]float64, *Usage, error) {
-	var r completionResponse
+	var r wire.CompletionResponse
 	if err := json.Unmarshal(data, &r); err != nil {
 		return nil, nil, fmt.Errorf("%w: %w", ErrAnswer, err)
 	}
@@ -23,10 +25,10 @@ func decodeCompletions(data []byte, n int) ([]map[string]float64, *Usage, error)
 		if ch.Index < 0 || ch.Index >= n || out[ch.Index] != nil {
 			return nil, nil, fmt.Errorf("%w: choice index %d out of range or repeated", ErrAnswer, ch.Index)
 		}
-		if ch.Logprobs == nil || len(ch.Logprobs.TopLogprobs) == 0 || len(ch.Logprobs.TopLogprobs[0]) == 0 {
+		if ch.Logprobs == nil || len(ch.Logprobs.TopLogprobs) == 0 || ch.Logprobs.TopLogprobs[0].Len() == 0 {
 			return nil, nil, fmt.Errorf("%w: choice %d has no top_logprobs", ErrAnswer, ch.Index)
 		}
-		out[ch.Index] = ch.Logprobs.TopLogprobs[0]
+		out[ch.Index] = ch.Logprobs.TopLogprobs[0].Map()
 	}
 	return out, r.Usage, nil
 }
@@ -34,7 +36,7 @@ func decodeCompletions(data []byte, n int) ([]map[string]float64, *Usage, error)
 // decodeChat reads choices[0].logprobs.content[0].top_logprobs. A token
 // listed twice (two byte sequences shown alike) keeps its larger value.
 func decodeChat(data []byte) ([]map[string]float64, *Usage, error) {
-	var r chatResponse
+	var r wire.ChatResponse
 	if err := json.Unmarshal(data, &r); err != nil {
 		return nil, nil, fmt.Errorf("%w: %w", ErrAnswer, err)
 	}
@@ -54,15 +56,11 @@ func decodeChat(data []byte) ([]map[string]float64, *Usage, error) {
 // apiError builds the error for a non-200 answer.
 func (c *Client) apiError(resp *http.Response, data []byte) error {
 	e := &APIError{Status: resp.StatusCode, RetryAfter: retryAfter(resp.Header.Get("Retry-After"), c.opts.Now())}
-	var body errorBody
+	var body struct {
+		Error *wire.ErrorDetail `json:"error"`
+	}
 	if json.Unmarshal(data, &body) == nil && body.Error != nil {
-		e.Message, e.Type = body.Error.Message, body.Error.Type
-		switch v := body.Error.Code.(type) {
-		case string:
-			e.Code = v
-		case float64:
-			e.Code = strconv.FormatFloat(v, 'f', -1, 64)
-		}
+		e.Message, e.Type, e.Code = body.Error.Message, body.Error.Type, string(body.Error.Code)
 		return e
 	}
 	const keep = 512

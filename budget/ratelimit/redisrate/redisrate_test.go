@@ -8,7 +8,7 @@ import (
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/ratelimit/ratelimittest"
 	"github.com/stintlab/stint/budget/ratelimit/redisrate"
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
 
 // TestConformance runs the shared limiter suite, whose WindowBound test

@@ -1,9 +1,7 @@
 package redistest_test
 
 import (
-	"bytes"
 	"context"
-	"os"
 	"strings"
 	"testing"
 	"time"
@@ -12,28 +10,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/internal/redistest"
 )
-
-// TestCopiesAgree checks cache/internal/redistest is still this package's
-// copy: the files are the same past their package comments.
-func TestCopiesAgree(t *testing.T) {
-	code := func(path string) []byte {
-		b, err := os.ReadFile(path)
-		if err != nil {
-			t.Fatal(err)
-		}
-		_, after, ok := bytes.Cut(b, []byte("\npackage redistest\n"))
-		if !ok {
-			t.Fatalf("%s: no package clause", path)
-		}
-		return after
-	}
-	ours, theirs := code("redistest.go"), code("../../cache/internal/redistest/redistest.go")
-	if !bytes.Equal(ours, theirs) {
-		t.Errorf("budget/redistest and cache/internal/redistest differ past their package comments; change both")
-	}
-}
 
 // TestClusterSplitsTheSlotsOverEveryMaster checks StartCluster's cluster:
 // n masters, no replicas, every node owning a share of the slots and

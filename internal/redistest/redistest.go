@@ -1,9 +1,11 @@
-// Package redistest starts real redis-server processes for the cache tree's
-// tests, each on a free loopback port with persistence off, killed when the
-// test ends: standalone servers, and multi-master Redis Clusters joined
-// with `redis-cli --cluster create`. It is a copy of budget/redistest
-// (cache must not import budget); the two differ only in this comment,
-// which budget/redistest's TestCopiesAgree checks.
+// Package redistest starts real redis-server processes for tests, each on a
+// free loopback port with persistence off, killed when the test ends:
+// standalone servers, and multi-master Redis Clusters joined with
+// `redis-cli --cluster create`, with or without replicas (so a test can
+// SIGKILL a primary and watch its replica take over).
+//
+// It sits at the module's root, outside the cache, budget and proxy trees,
+// and imports nothing of stint, so every package's tests can use it.
 package redistest
 
 import (
