@@ -138,8 +138,9 @@ func TestWorstCaseHandWorked(t *testing.T) {
 		wantExact  bool
 	}{
 		{
-			// "hello world" is 2 cl100k tokens, [15339, 1917] (tiktoken
-			// README example, from memory). hand-worked: out 100×2×1 =
+			// "hello world" is 2 cl100k tokens, [15339, 1917] (the ids of
+			// tiktoken-go/tokenizer's own test, which budget/tokens
+			// TestCheckValues holds the codec to). hand-worked: out 100×2×1 =
 			// 200; 2×500 + 200×1500 = 301,000.
 			name: "cl100k prompt", call: helloCall(),
 			wantPrompt: 2, wantOut: 200, wantCost: 301_000, wantExact: true,

@@ -28,7 +28,8 @@ var t0 = time.Date(2026, 6, 1, 9, 0, 0, 0, time.UTC)
 // window of injected time against the bound derived from GCRA's
 // definition. GCRA is the Generic Cell Rate Algorithm of the ATM Forum
 // Traffic Management Specification 4.0 and ITU-T Recommendation I.371
-// (from memory). A unit is admitted at time t only if TAT − τ ≤ t, where
+// (neither text is at hand here: the rule below is the virtual-scheduling
+// form as recalled, and the bound is derived from it, not quoted). A unit is admitted at time t only if TAT − τ ≤ t, where
 // every admission raises TAT by T and τ = Burst·T. Starting idle at t0,
 // after k admissions TAT ≥ t0 + k·T, so the k-th admission at t ≤ t0+W
 // needs t0 + k·T − Burst·T ≤ t0 + W: at most Burst + floor(W/T) units.
