@@ -109,7 +109,7 @@ func TestBoltCorruptValues(t *testing.T) {
 				type kv struct{ k, v []byte }
 				var all []kv
 				_ = b.ForEach(func(k, v []byte) error {
-					if v != nil && len(v) > 0 {
+					if len(v) > 0 {
 						all = append(all, kv{append([]byte{}, k...), append([]byte{}, v...)})
 					}
 					return nil
