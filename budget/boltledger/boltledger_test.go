@@ -7,6 +7,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -67,12 +68,9 @@ func TestSharesFile(t *testing.T) {
 	}
 	l := newLedger(t, db, nil)
 	res, err := l.Reserve(context.Background(), time.Now(), budget.Request{Team: "lab", Amount: 5, Lease: time.Minute})
-	if err != nil {
-		t.Fatalf("Reserve: %v", err)
-	}
-	if _, err := l.Settle(context.Background(), time.Now(), res, 5); err != nil {
-		t.Fatalf("Settle: %v", err)
-	}
+	require.NoError(t, err, "Reserve")
+	_, err = l.Settle(context.Background(), time.Now(), res, 5)
+	require.NoError(t, err, "Settle")
 	err = db.View(func(tx *bbolt.Tx) error {
 		return tx.ForEach(func(name []byte, b *bbolt.Bucket) error {
 			n := string(name)
@@ -88,9 +86,7 @@ func TestSharesFile(t *testing.T) {
 			return nil
 		})
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 }
 
 // BenchmarkReserveSettle measures one reserve and one settle, each a

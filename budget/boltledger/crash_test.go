@@ -13,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -67,12 +68,8 @@ func TestCrashSettlesLeases(t *testing.T) {
 	cmd := exec.Command(os.Args[0], "-test.run=^TestCrashHolder$", "-test.count=1")
 	cmd.Env = append(os.Environ(), crashEnv+"="+path)
 	out, err := cmd.StdoutPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, cmd.Start())
 	held := map[string]budget.Nanos{}
 	var sum budget.Nanos
 	sc := bufio.NewScanner(out)
@@ -95,17 +92,13 @@ func TestCrashSettlesLeases(t *testing.T) {
 		_ = cmd.Process.Kill()
 		t.Fatalf("child reported %d reservations, want 5", len(held))
 	}
-	if err := cmd.Process.Signal(syscall.SIGKILL); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, cmd.Process.Signal(syscall.SIGKILL))
 	if err := cmd.Wait(); err == nil {
 		t.Fatal("child exited cleanly, want killed")
 	}
 
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: 5 * time.Second})
-	if err != nil {
-		t.Fatalf("reopen after kill: %v", err)
-	}
+	require.NoError(t, err, "reopen after kill")
 	defer db.Close()
 	l := newLedger(t, db, nil)
 	ctx := context.Background()
@@ -118,9 +111,7 @@ func TestCrashSettlesLeases(t *testing.T) {
 		t.Fatalf("Expire before the deadline = %v, %v; want none", got, err)
 	}
 	got, err := l.Expire(ctx, crashT0.Add(crashLease))
-	if err != nil {
-		t.Fatalf("Expire: %v", err)
-	}
+	require.NoError(t, err, "Expire")
 	for _, r := range got {
 		if held[r.ID] != r.Amount {
 			t.Errorf("expired %s for %d, child held %d", r.ID, r.Amount, held[r.ID])
