@@ -12,6 +12,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
 	"github.com/stintlab/stint/cache/storetest"
@@ -88,9 +90,7 @@ func TestHotAnswersFromMemory(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{})}
 	h := cache.NewHot(w, cache.HotOptions{})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("from the store"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("from the store"), 0))
 	for range 5 {
 		v, found, err := h.Get(ctx, hotKey(1))
 		if err != nil || !found || string(v) != "from the store" {
@@ -101,9 +101,7 @@ func TestHotAnswersFromMemory(t *testing.T) {
 		t.Errorf("backing Gets for 5 hot Gets = %d, want 1 (the fill)", got)
 	}
 	// A Put is answered from memory without a store read.
-	if err := h.Put(ctx, hotKey(2), []byte("put"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(2), []byte("put"), 0))
 	if v, _, _ := h.Get(ctx, hotKey(2)); string(v) != "put" {
 		t.Errorf("Get after Put = %q", v)
 	}
@@ -114,9 +112,7 @@ func TestHotAnswersFromMemory(t *testing.T) {
 	if _, found, _ := h.Get(ctx, hotKey(3)); found {
 		t.Fatal("found a key never stored")
 	}
-	if err := w.Store.Put(ctx, hotKey(3), []byte("late"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(3), []byte("late"), 0))
 	if v, found, _ := h.Get(ctx, hotKey(3)); !found || string(v) != "late" {
 		t.Errorf("Get after the store gained the key = %q, %v", v, found)
 	}
@@ -148,16 +144,10 @@ func TestHotTTL(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
 	h := cache.NewHot(w, cache.HotOptions{Now: clock.Now})
 	ctx := t.Context()
-	if err := h.Put(ctx, hotKey(1), []byte("a"), time.Minute); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("a"), time.Minute))
 	// Filled from the store: the memory copy keeps the store's expiry.
-	if err := w.Store.Put(ctx, hotKey(2), []byte("b"), 2*time.Minute); err != nil {
-		t.Fatal(err)
-	}
-	if err := h.Put(ctx, hotKey(3), []byte("c"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(2), []byte("b"), 2*time.Minute))
+	require.NoError(t, h.Put(ctx, hotKey(3), []byte("c"), 0))
 	if _, found, _ := h.Get(ctx, hotKey(2)); !found {
 		t.Fatal("fill of key 2 missed")
 	}
@@ -197,9 +187,7 @@ func TestHotFillPastExpiry(t *testing.T) {
 	store := newBolt(t, boltstore.Options{Now: storeClock.Now}) // an ExpiryGetter, so fills keep its expiry
 	h := cache.NewHot(store, cache.HotOptions{Now: hotClock.Now})
 	ctx := t.Context()
-	if err := store.Put(ctx, hotKey(1), []byte("late"), 10*time.Second); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, store.Put(ctx, hotKey(1), []byte("late"), 10*time.Second))
 	if _, found, _ := h.Get(ctx, hotKey(1)); !found {
 		t.Fatal("the store still holds the entry by its own clock, so the fill should find it")
 	}
@@ -215,9 +203,7 @@ func TestHotFillTTLWithoutExpiryGetter(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
 	h := cache.NewHot(plainStore{w}, cache.HotOptions{Now: clock.Now, FillTTL: 10 * time.Second})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("v"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("v"), 0))
 	for range 3 {
 		if _, found, _ := h.Get(ctx, hotKey(1)); !found {
 			t.Fatal("miss")
@@ -241,9 +227,7 @@ func TestHotFillDoesNotResurrect(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{}), paused: make(chan struct{}), release: make(chan struct{})}
 	h := cache.NewHot(plainStore{w}, cache.HotOptions{})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("old"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("old"), 0))
 	w.pause.Store(true)
 	done := make(chan []byte)
 	go func() {
@@ -252,9 +236,7 @@ func TestHotFillDoesNotResurrect(t *testing.T) {
 	}()
 	<-w.paused // the Get has read "old" from the store
 	w.pause.Store(false)
-	if err := h.Delete(ctx, hotKey(1)); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Delete(ctx, hotKey(1)))
 	close(w.release)
 	if v := <-done; string(v) != "old" {
 		t.Errorf("the racing Get returned %q, want old (it read before the Delete)", v)
@@ -270,9 +252,7 @@ func TestHotBoundedBytes(t *testing.T) {
 	ctx := t.Context()
 	value := bytes.Repeat([]byte("x"), 1000)
 	for i := range 300 {
-		if err := h.Put(ctx, hotKey(i), value, 0); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, h.Put(ctx, hotKey(i), value, 0))
 	}
 	// Eviction runs in otter's maintenance; force it before measuring.
 	for i := range 300 {
@@ -294,9 +274,7 @@ func TestHotLargeValuesSkipMemory(t *testing.T) {
 	h := cache.NewHot(w, cache.HotOptions{MaxBytes: 1 << 20, MaxEntryBytes: 1000})
 	ctx := t.Context()
 	big := bytes.Repeat([]byte("y"), 1001)
-	if err := h.Put(ctx, hotKey(1), []byte("small"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("small"), 0))
 	if err := h.Put(ctx, hotKey(1), big, 0); err != nil { // replaces the small one in memory too
 		t.Fatal(err)
 	}
@@ -313,9 +291,7 @@ func TestHotLargeValuesSkipMemory(t *testing.T) {
 func TestHotFailedPutLeavesMemory(t *testing.T) {
 	h := cache.NewHot(newBolt(t, boltstore.Options{MaxBytes: 2000}), cache.HotOptions{})
 	ctx := t.Context()
-	if err := h.Put(ctx, hotKey(1), []byte("kept"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("kept"), 0))
 	noise := make([]byte, 5000) // random, so it does not compress below the cap
 	r := rand.New(rand.NewPCG(1, 2))
 	for i := range noise {
@@ -333,9 +309,7 @@ func TestHotFailedPutLeavesMemory(t *testing.T) {
 func TestHotCloseClosesBacking(t *testing.T) {
 	b := newBolt(t, boltstore.Options{})
 	h := cache.NewHot(b, cache.HotOptions{})
-	if err := h.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Close())
 	if _, _, err := b.Get(t.Context(), hotKey(1)); !errors.Is(err, cache.ErrClosed) {
 		t.Errorf("backing Get after Hot.Close: err = %v, want cache.ErrClosed", err)
 	}
@@ -359,17 +333,13 @@ func TestHotMaxAge(t *testing.T) {
 		setup func(k string)
 	}{
 		{"filled by b", func(k string) {
-			if err := a.Put(ctx, k, []byte("old"), time.Hour); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, a.Put(ctx, k, []byte("old"), time.Hour))
 			if v, _, _ := b.Get(ctx, k); string(v) != "old" {
 				t.Fatalf("b's first read = %q", v)
 			}
 		}},
 		{"stored by b without a TTL", func(k string) {
-			if err := b.Put(ctx, k, []byte("old"), 0); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, b.Put(ctx, k, []byte("old"), 0))
 		}},
 	}
 	for i, tc := range tests {
