@@ -6,6 +6,8 @@ import (
 	"testing"
 
 	"github.com/gowebpki/jcs"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // Check values from outside the project. TestReferenceTestdata reads the
@@ -59,37 +61,27 @@ func TestRFC8785AppendixBNumbers(t *testing.T) {
 	for _, tc := range appendixB {
 		t.Run(tc.bits, func(t *testing.T) {
 			u, err := strconv.ParseUint(tc.bits, 16, 64)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			f := math.Float64frombits(u)
 			got, err := Marshal(f)
 			if tc.want == "" {
-				if err == nil {
-					t.Fatalf("Marshal(%v) = %s, want an error (RFC 8785 Appendix B: no JSON form)", f, got)
-				}
+				require.Error(t, err, "Marshal(%v) = %s (RFC 8785 Appendix B: no JSON form)", f, got)
 				return
 			}
-			if err != nil {
-				t.Fatalf("Marshal(%v): %v", f, err)
-			}
-			if string(got) != tc.want {
-				t.Errorf("Marshal(%#x) = %s, want %s (RFC 8785 Appendix B)", u, got, tc.want)
-			}
-			if ref, err := jcs.Transform([]byte(strconv.FormatFloat(f, 'g', -1, 64))); err != nil || string(ref) != tc.want {
-				t.Errorf("gowebpki/jcs writes %#x as %s (%v); the table says %s", u, ref, err, tc.want)
-			}
+			require.NoError(t, err, "Marshal(%v)", f)
+			assert.Equal(t, tc.want, string(got), "Marshal(%#x) (RFC 8785 Appendix B)", u)
+			ref, err := jcs.Transform([]byte(strconv.FormatFloat(f, 'g', -1, 64)))
+			assert.NoError(t, err, "gowebpki/jcs on %#x", u)
+			assert.Equal(t, tc.want, string(ref), "gowebpki/jcs writes %#x otherwise than the table", u)
 			// The canonical text is a fixed point of Transform.
 			again, err := Transform([]byte(tc.want))
-			if err != nil || string(again) != tc.want {
-				t.Errorf("Transform(%s) = %s, %v; want it unchanged", tc.want, again, err)
-			}
+			assert.NoError(t, err, "Transform(%s)", tc.want)
+			assert.Equal(t, tc.want, string(again), "Transform(%s) leaves it unchanged", tc.want)
 			// And the shortest round-trip text of f, as strconv writes it,
 			// canonicalizes to the same text.
 			viaText, err := Transform([]byte(strconv.FormatFloat(f, 'g', -1, 64)))
-			if err != nil || string(viaText) != tc.want {
-				t.Errorf("Transform(%s) = %s, %v; want %s", strconv.FormatFloat(f, 'g', -1, 64), viaText, err, tc.want)
-			}
+			assert.NoError(t, err, "Transform(%s)", strconv.FormatFloat(f, 'g', -1, 64))
+			assert.Equal(t, tc.want, string(viaText), "Transform(%s)", strconv.FormatFloat(f, 'g', -1, 64))
 		})
 	}
 }
@@ -121,12 +113,8 @@ func TestRFC8785StringEscaping(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Transform([]byte(tc.in))
-		if err != nil {
-			t.Errorf("Transform(%s): %v", tc.in, err)
-			continue
-		}
-		if string(got) != tc.want {
-			t.Errorf("Transform(%s) = %s, want %s", tc.in, got, tc.want)
+		if assert.NoError(t, err, "Transform(%s)", tc.in) {
+			assert.Equal(t, tc.want, string(got), "Transform(%s)", tc.in)
 		}
 	}
 }
