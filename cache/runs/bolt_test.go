@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/runs"
@@ -22,15 +23,10 @@ func TestBoltReopen(t *testing.T) {
 	j, db := openBolt(t, path)
 	recordAll(t, j, "lab", "r", calls)
 	var archive bytes.Buffer
-	if err := j.Export(context.Background(), "lab", "r", &archive); err != nil {
-		t.Fatal(err)
-	}
-	if _, err := j.Import(context.Background(), "other", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "imported"}); err != nil {
-		t.Fatal(err)
-	}
-	if err := db.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Export(context.Background(), "lab", "r", &archive))
+	_, err := j.Import(context.Background(), "other", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "imported"})
+	require.NoError(t, err)
+	require.NoError(t, db.Close())
 	j, _ = openBolt(t, path)
 	checkReplay(t, j, "lab", "r", calls)
 	checkReplay(t, j, "other", "imported", calls)
@@ -55,13 +51,9 @@ func TestBoltSharedFile(t *testing.T) {
 		}
 		return b.Put([]byte("k"), []byte("v"))
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	recordAll(t, j, "lab", "r", mixedCalls(4))
-	if err := j.Delete(context.Background(), "lab", "r"); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Delete(context.Background(), "lab", "r"))
 	var names []string
 	_ = db.View(func(tx *bbolt.Tx) error {
 		return tx.ForEach(func(name []byte, _ *bbolt.Bucket) error {
@@ -121,9 +113,7 @@ func TestBoltCorruptValues(t *testing.T) {
 				}
 				return nil
 			})
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			ctx := context.Background()
 			failed := false
 			for _, c := range calls {

@@ -10,6 +10,9 @@ import (
 	"testing"
 	"testing/iotest"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestRecordRoundTrip(t *testing.T) {
@@ -22,13 +25,9 @@ func TestRecordRoundTrip(t *testing.T) {
 	}
 	for i, want := range tests {
 		b, err := encodeRecord(&want)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		got, err := decodeRecord(b)
-		if err != nil {
-			t.Fatalf("case %d: %v", i, err)
-		}
+		require.NoError(t, err, "case %d", i)
 		if got.Time != want.Time {
 			t.Errorf("case %d: time got %v, want %v", i, got.Time, want.Time)
 		}
@@ -56,13 +55,9 @@ func TestDecodeDamaged(t *testing.T) {
 		{"tally", tb, func(b []byte) error { _, err := decodeTally(b); return err }},
 	}
 	for _, d := range decoders {
-		if err := d.decode(d.b); err != nil {
-			t.Fatalf("%s: undamaged: %v", d.name, err)
-		}
+		require.NoError(t, d.decode(d.b), "%s: undamaged", d.name)
 		for n := range len(d.b) {
-			if err := d.decode(d.b[:n]); !errors.Is(err, ErrCorrupt) {
-				t.Errorf("%s truncated to %d: got %v, want ErrCorrupt", d.name, n, err)
-			}
+			assert.ErrorIs(t, d.decode(d.b[:n]), ErrCorrupt, "%s truncated to %d: got", d.name, n)
 		}
 		for i := range len(d.b) * 8 {
 			b := bytes.Clone(d.b)

@@ -7,6 +7,7 @@ import (
 	"testing"
 
 	"github.com/klauspost/compress/zstd"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/runs"
 )
@@ -63,8 +64,6 @@ func FuzzImport(f *testing.F) {
 				t.Fatalf("Lookup of imported entry %d: %+v, %v", e.Seq, got, err)
 			}
 		}
-		if err := j.Delete(ctx, "fuzz", "target"); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, j.Delete(ctx, "fuzz", "target"))
 	})
 }

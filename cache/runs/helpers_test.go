@@ -13,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/boltgroup"
@@ -38,16 +39,12 @@ func boltBackend() backend {
 func openBolt(t testing.TB, path string) (*runs.BoltJournal, *bbolt.DB) {
 	t.Helper()
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: time.Second, NoFreelistSync: true, FreelistType: bbolt.FreelistMapType})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	db.MaxBatchDelay = 2 * time.Millisecond // what boltstore.Open sets on the shared file
 	t.Cleanup(func() { _ = db.Close() })
 	// Writes go through a group committer, as stint serve's do.
 	j, err := runs.NewBolt(db, runs.BoltOptions{Update: boltgroup.New(db).Update})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return j, db
 }
 
@@ -150,9 +147,7 @@ func recordAll(t testing.TB, j runs.Journal, team, run string, calls []call) []r
 	var out []runs.Entry
 	for i, c := range calls {
 		e, err := j.Record(context.Background(), team, run, c.entry, c.answer)
-		if err != nil {
-			t.Fatalf("Record call %d: %v", i, err)
-		}
+		require.NoError(t, err, "Record call %d", i)
 		out = append(out, e)
 	}
 	return out
@@ -194,9 +189,7 @@ func checkReplay(t testing.TB, j runs.Journal, team, run string, calls []call) {
 	for i, c := range calls {
 		occ[c.key]++
 		e, a, err := j.Lookup(context.Background(), team, run, c.key, occ[c.key])
-		if err != nil {
-			t.Fatalf("Lookup call %d (occurrence %d): %v", i, occ[c.key], err)
-		}
+		require.NoError(t, err, "Lookup call %d (occurrence %d)", i, occ[c.key])
 		if !bytes.Equal(a.Body, c.answer.Body) {
 			t.Fatalf("call %d: body differs: got %d bytes %.60q, want %d bytes %.60q", i, len(a.Body), a.Body, len(c.answer.Body), c.answer.Body)
 		}

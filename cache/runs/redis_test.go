@@ -5,6 +5,9 @@ import (
 	"errors"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/cache/internal/redistest"
 	"github.com/stintlab/stint/cache/runs"
 )
@@ -38,9 +41,7 @@ func TestRedisCorruptValues(t *testing.T) {
 				t.Fatalf("HGETALL %s: %d fields, %v", key, len(all), err)
 			}
 			for f, v := range all {
-				if err := c.HSet(ctx, key, f, tc.damage(v)).Err(); err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, c.HSet(ctx, key, f, tc.damage(v)).Err())
 			}
 			for _, call := range calls {
 				_, a, err := j.Lookup(ctx, "lab", "r", call.key, 1)
@@ -52,24 +53,18 @@ func TestRedisCorruptValues(t *testing.T) {
 				}
 			}
 			if tc.suffix != "x" { // Export does not read the index
-				if err := j.Export(ctx, "lab", "r", discard{}); !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("Export: got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, j.Export(ctx, "lab", "r", discard{}), runs.ErrCorrupt, "Export: got")
 			}
 		})
 	}
 	// A damaged summary.
 	j := runs.NewRedis(c, runs.RedisOptions{Prefix: "cs"})
 	recordAll(t, j, "lab", "r", calls)
-	if err := c.HSet(ctx, "cs:run:{lab/r}:m", "cost", "lots").Err(); err != nil {
-		t.Fatal(err)
-	}
-	if _, err := j.Summary(ctx, "lab", "r"); !errors.Is(err, runs.ErrCorrupt) {
-		t.Errorf("Summary: got %v, want ErrCorrupt", err)
-	}
-	if _, err := j.List(ctx, "lab"); !errors.Is(err, runs.ErrCorrupt) {
-		t.Errorf("List: got %v, want ErrCorrupt", err)
-	}
+	require.NoError(t, c.HSet(ctx, "cs:run:{lab/r}:m", "cost", "lots").Err())
+	_, err := j.Summary(ctx, "lab", "r")
+	assert.ErrorIs(t, err, runs.ErrCorrupt, "Summary: got")
+	_, err = j.List(ctx, "lab")
+	assert.ErrorIs(t, err, runs.ErrCorrupt, "List: got")
 }
 
 type discard struct{}
