@@ -17,6 +17,7 @@ import (
 	"testing/iotest"
 
 	"github.com/klauspost/compress/zstd"
+	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/runs"
@@ -41,23 +42,18 @@ func TestArchiveAcrossBackends(t *testing.T) {
 				require.NoError(t, err)
 				want, _ := src.Summary(context.Background(), "lab", "sweep-7")
 				want.Team = "other-team"
-				if !sameSummary(s, want) {
-					t.Errorf("Import returned\n %+v\nwant %+v", s, want)
-				}
-				if got, err := dst.Summary(context.Background(), "other-team", "sweep-7"); err != nil || !sameSummary(got, want) {
-					t.Errorf("Summary after Import: got %+v, %v", got, err)
-				}
+				assert.True(t, sameSummary(s, want), "Import returned\n %+v\nwant %+v", s, want)
+				got, err := dst.Summary(context.Background(), "other-team", "sweep-7")
+				require.NoError(t, err, "Summary after Import")
+				assert.True(t, sameSummary(got, want), "Summary after Import: %+v", got)
 				checkReplay(t, dst, "other-team", "sweep-7", calls)
 				var again bytes.Buffer
 				require.NoError(t, dst.Export(context.Background(), "other-team", "sweep-7", &again))
 				a, b := readMembers(t, archive.Bytes()), readMembers(t, again.Bytes())
-				if len(a) != len(b) {
-					t.Fatalf("re-export has %d members, want %d", len(b), len(a))
-				}
+				require.Len(t, b, len(a), "re-export's members")
 				for i := 1; i < len(a); i++ { // the manifest differs in team and created time
-					if a[i].name != b[i].name || !bytes.Equal(a[i].data, b[i].data) {
-						t.Errorf("re-exported member %d %s differs", i, b[i].name)
-					}
+					assert.Equal(t, a[i].name, b[i].name, "re-exported member %d", i)
+					assert.True(t, bytes.Equal(a[i].data, b[i].data), "re-exported member %d %s differs", i, b[i].name)
 				}
 			})
 		}
@@ -290,9 +286,8 @@ func TestImportRefuses(t *testing.T) {
 			if tc.want == "limit" || tc.want == "compressed archive is larger" {
 				want = runs.ErrTooLarge
 			}
-			if !errors.Is(err, want) || !strings.Contains(err.Error(), tc.want) {
-				t.Fatalf("got %v, want %v mentioning %q", err, want, tc.want)
-			}
+			require.ErrorIs(t, err, want)
+			require.Contains(t, err.Error(), tc.want)
 			wantNoTrace(t, j, "lab", "small")
 		})
 	}
@@ -345,8 +340,7 @@ func TestImportSourceError(t *testing.T) {
 	j := boltBackend().open(t)
 	r := io.MultiReader(bytes.NewReader(good[:len(good)/2]), iotest.ErrReader(cut))
 	_, err := j.Import(context.Background(), "lab", r, runs.ImportOptions{})
-	if !errors.Is(err, cut) || errors.Is(err, runs.ErrCorruptArchive) {
-		t.Errorf("got %v, want the reader's error and not ErrCorruptArchive", err)
-	}
+	assert.ErrorIs(t, err, cut, "the reader's error")
+	assert.NotErrorIs(t, err, runs.ErrCorruptArchive, "a reader's error is not a corrupt archive")
 	wantNoTrace(t, j, "lab", "small")
 }

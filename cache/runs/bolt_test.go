@@ -3,10 +3,10 @@ package runs_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"path/filepath"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
@@ -30,13 +30,12 @@ func TestBoltReopen(t *testing.T) {
 	j, _ = openBolt(t, path)
 	checkReplay(t, j, "lab", "r", calls)
 	checkReplay(t, j, "other", "imported", calls)
-	if s, err := j.Summary(context.Background(), "lab", "r"); err != nil || !sameSummary(s, wantSummary("lab", "r", calls)) {
-		t.Errorf("Summary after reopen: got %+v, %v", s, err)
-	}
+	s, err := j.Summary(context.Background(), "lab", "r")
+	require.NoError(t, err, "Summary after reopen")
+	assert.True(t, sameSummary(s, wantSummary("lab", "r", calls)), "Summary after reopen: %+v", s)
 	e, err := j.Record(context.Background(), "lab", "r", calls[0].entry, calls[0].answer)
-	if err != nil || e.Seq != int64(len(calls)+1) {
-		t.Errorf("Record after reopen: got seq %d, %v; want %d", e.Seq, err, len(calls)+1)
-	}
+	require.NoError(t, err, "Record after reopen")
+	assert.Equal(t, int64(len(calls)+1), e.Seq, "Record after reopen: seq")
 }
 
 // TestBoltSharedFile checks that the journal keeps to its own bucket of a
@@ -61,12 +60,9 @@ func TestBoltSharedFile(t *testing.T) {
 			return nil
 		})
 	})
-	if len(names) != 2 || names[0] != "stint.cache.v1" || names[1] != "stint.runs.v1" {
-		t.Errorf("top-level buckets: got %q, want the cache's and stint.runs.v1", names)
-	}
-	if _, err := runs.NewBolt(nil, runs.BoltOptions{}); err == nil {
-		t.Error("NewBolt(nil, runs.BoltOptions{}): got no error")
-	}
+	assert.Equal(t, []string{"stint.cache.v1", "stint.runs.v1"}, names, "top-level buckets: the cache's and stint.runs.v1")
+	_, err = runs.NewBolt(nil, runs.BoltOptions{})
+	assert.Error(t, err, "NewBolt(nil, runs.BoltOptions{})")
 }
 
 // TestBoltCorruptValues damages stored values in place: reads fail with
@@ -118,13 +114,11 @@ func TestBoltCorruptValues(t *testing.T) {
 			failed := false
 			for _, c := range calls {
 				_, a, err := j.Lookup(ctx, "lab", "r", c.key, 1)
-				if err == nil && string(a.Body) != string(c.answer.Body) {
-					t.Fatalf("Lookup returned wrong bytes after damage")
+				if err == nil {
+					require.Equal(t, string(c.answer.Body), string(a.Body), "Lookup returned wrong bytes after damage")
 				}
 				if err != nil {
-					if !errors.Is(err, runs.ErrCorrupt) {
-						t.Errorf("Lookup: got %v, want ErrCorrupt", err)
-					}
+					assert.ErrorIs(t, err, runs.ErrCorrupt, "Lookup")
 					failed = true
 				}
 			}
@@ -140,12 +134,10 @@ func TestBoltCorruptValues(t *testing.T) {
 				errs = append(errs, err)
 			}
 			for _, err := range errs {
-				if !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, err, runs.ErrCorrupt)
 			}
-			if !failed && tc.bucket != "" && tc.bucket != "o" {
-				t.Error("no Lookup noticed the damage")
+			if tc.bucket != "" && tc.bucket != "o" {
+				assert.True(t, failed, "no Lookup noticed the damage")
 			}
 		})
 	}

@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"context"
 	"crypto/sha256"
-	"errors"
 	"io"
 	"strings"
 	"testing"
@@ -28,13 +27,9 @@ func TestRecordRoundTrip(t *testing.T) {
 		require.NoError(t, err)
 		got, err := decodeRecord(b)
 		require.NoError(t, err, "case %d", i)
-		if got.Time != want.Time {
-			t.Errorf("case %d: time got %v, want %v", i, got.Time, want.Time)
-		}
+		assert.Equal(t, want.Time, got.Time, "case %d: time", i)
 		got.Time, want.Time = time.Time{}, time.Time{}
-		if got != want {
-			t.Errorf("case %d:\n got %+v\nwant %+v", i, got, want)
-		}
+		assert.Equal(t, want, got, "case %d", i)
 	}
 }
 
@@ -62,8 +57,8 @@ func TestDecodeDamaged(t *testing.T) {
 		for i := range len(d.b) * 8 {
 			b := bytes.Clone(d.b)
 			b[i/8] ^= 1 << (i % 8)
-			if err := d.decode(b); err != nil && !errors.Is(err, ErrCorrupt) {
-				t.Errorf("%s bit %d: got %v, want nil or ErrCorrupt", d.name, i, err)
+			if err := d.decode(b); err != nil {
+				assert.ErrorIs(t, err, ErrCorrupt, "%s bit %d: nil or ErrCorrupt", d.name, i)
 			}
 		}
 	}
@@ -87,8 +82,10 @@ func TestValidID(t *testing.T) {
 	}
 	for _, tc := range tests {
 		err := ValidID(tc.id)
-		if (err == nil) != tc.ok || err != nil && (!errors.Is(err, ErrInvalid) || !strings.Contains(err.Error(), tc.want)) {
-			t.Errorf("ValidID(%.20q): got %v, want ok=%v mentioning %q", tc.id, err, tc.ok, tc.want)
+		if tc.ok {
+			assert.NoError(t, err, "ValidID(%.20q)", tc.id)
+		} else if assert.ErrorIs(t, err, ErrInvalid, "ValidID(%.20q)", tc.id) {
+			assert.Contains(t, err.Error(), tc.want, "ValidID(%.20q)", tc.id)
 		}
 	}
 }
@@ -118,12 +115,9 @@ func TestTrailerReader(t *testing.T) {
 		}{{"good", good, true}, {"bad sum", bad, false}, {"no trailer", body, false}, {"short", good[:30], false}} {
 			tr := newTrailerReader(context.Background(), rd.wrap(bytes.NewReader(tc.in)), 1<<20)
 			got, err := io.ReadAll(tr)
-			if err != nil || !bytes.Equal(got, tc.in) {
-				t.Fatalf("%s/%s: passed %d bytes, %v", rd.name, tc.name, len(got), err)
-			}
-			if ok := tr.check(); ok != tc.want {
-				t.Errorf("%s/%s: check got %v, want %v", rd.name, tc.name, ok, tc.want)
-			}
+			require.NoError(t, err, "%s/%s", rd.name, tc.name)
+			require.True(t, bytes.Equal(got, tc.in), "%s/%s: passed %d bytes, not the input", rd.name, tc.name, len(got))
+			assert.Equal(t, tc.want, tr.check(), "%s/%s: check", rd.name, tc.name)
 		}
 	}
 }

@@ -5,7 +5,6 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
-	"errors"
 	"fmt"
 	"path/filepath"
 	"strconv"
@@ -13,6 +12,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
@@ -190,18 +190,13 @@ func checkReplay(t testing.TB, j runs.Journal, team, run string, calls []call) {
 		occ[c.key]++
 		e, a, err := j.Lookup(context.Background(), team, run, c.key, occ[c.key])
 		require.NoError(t, err, "Lookup call %d (occurrence %d)", i, occ[c.key])
-		if !bytes.Equal(a.Body, c.answer.Body) {
-			t.Fatalf("call %d: body differs: got %d bytes %.60q, want %d bytes %.60q", i, len(a.Body), a.Body, len(c.answer.Body), c.answer.Body)
-		}
-		if a.Status != c.answer.Status || a.ContentType != c.answer.ContentType || a.Stream != c.answer.Stream {
-			t.Fatalf("call %d: answer header got %d %q stream=%v, want %d %q stream=%v",
-				i, a.Status, a.ContentType, a.Stream, c.answer.Status, c.answer.ContentType, c.answer.Stream)
-		}
+		require.True(t, bytes.Equal(a.Body, c.answer.Body), "call %d: body differs: got %d bytes %.60q, want %d bytes %.60q", i, len(a.Body), a.Body, len(c.answer.Body), c.answer.Body)
+		require.Equal(t, c.answer.Status, a.Status, "call %d: status", i)
+		require.Equal(t, c.answer.ContentType, a.ContentType, "call %d: content type", i)
+		require.Equal(t, c.answer.Stream, a.Stream, "call %d: stream", i)
 		want := c.entry
 		want.Seq, want.Occurrence, want.Ref, want.Stream = int64(i+1), occ[c.key], refOf(c.answer.Body), c.answer.Stream
-		if !sameEntry(e, want) {
-			t.Fatalf("call %d: entry\n got %+v\nwant %+v", i, e, want)
-		}
+		require.True(t, sameEntry(e, want), "call %d: entry\n got %+v\nwant %+v", i, e, want)
 	}
 }
 
@@ -227,19 +222,16 @@ func sameSummary(a, b runs.Summary) bool {
 // wantNotFound fails t unless err wraps runs.ErrNotFound.
 func wantNotFound(t testing.TB, what string, err error) {
 	t.Helper()
-	if !errors.Is(err, runs.ErrNotFound) {
-		t.Errorf("%s: got error %v, want one wrapping ErrNotFound", what, err)
-	}
+	assert.ErrorIs(t, err, runs.ErrNotFound, "%s", what)
 }
 
 // wantNoTrace fails t unless team has no run id and no runs at all.
 func wantNoTrace(t testing.TB, j runs.Journal, team, run string) {
 	t.Helper()
 	ctx := context.Background()
-	if s, err := j.Summary(ctx, team, run); !errors.Is(err, runs.ErrNotFound) {
-		t.Errorf("Summary of %q: got %+v, %v; want ErrNotFound", run, s, err)
-	}
-	if list, err := j.List(ctx, team); err != nil || len(list) != 0 {
-		t.Errorf("List: got %d runs, %v; want none", len(list), err)
-	}
+	s, err := j.Summary(ctx, team, run)
+	assert.ErrorIs(t, err, runs.ErrNotFound, "Summary of %q = %+v", run, s)
+	list, err := j.List(ctx, team)
+	assert.NoError(t, err, "List")
+	assert.Empty(t, list, "List")
 }

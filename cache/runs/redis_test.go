@@ -2,7 +2,6 @@ package runs_test
 
 import (
 	"context"
-	"errors"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
@@ -37,20 +36,17 @@ func TestRedisCorruptValues(t *testing.T) {
 			recordAll(t, j, "lab", "r", calls)
 			key := prefix + ":run:{lab/r}:" + tc.suffix
 			all, err := c.HGetAll(ctx, key).Result()
-			if err != nil || len(all) == 0 {
-				t.Fatalf("HGETALL %s: %d fields, %v", key, len(all), err)
-			}
+			require.NoError(t, err, "HGETALL %s", key)
+			require.NotEmpty(t, all, "HGETALL %s", key)
 			for f, v := range all {
 				require.NoError(t, c.HSet(ctx, key, f, tc.damage(v)).Err())
 			}
 			for _, call := range calls {
 				_, a, err := j.Lookup(ctx, "lab", "r", call.key, 1)
-				if err == nil && string(a.Body) != string(call.answer.Body) {
-					t.Fatal("Lookup returned wrong bytes after damage")
+				if err == nil {
+					require.Equal(t, string(call.answer.Body), string(a.Body), "Lookup returned wrong bytes after damage")
 				}
-				if !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("Lookup: got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, err, runs.ErrCorrupt, "Lookup")
 			}
 			if tc.suffix != "x" { // Export does not read the index
 				assert.ErrorIs(t, j.Export(ctx, "lab", "r", discard{}), runs.ErrCorrupt, "Export: got")
