@@ -43,7 +43,8 @@
 // call's cost) or settled up to d late at its actual cost. Keep d well
 // under budget.lease (NTP keeps it to milliseconds); unlike rate limits
 // (redisrate's ServerClock), budgets keep the caller's time so that a
-// journal entry's time is the call's.
+// journal entry's time is the call's. TestClockSkewKeepsCaps runs two
+// ledgers an hour apart.
 // Durability is Redis's: run it with appendonly for a ledger that survives a
 // Redis restart.
 //
