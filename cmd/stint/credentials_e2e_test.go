@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/base64"
+	"encoding/hex"
 	"encoding/json"
 	"fmt"
 	"io"
@@ -44,7 +45,7 @@ const (
 
 // secretForms are the ways a secret could be written out: as is,
 // JSON-escaped (with and without HTML escaping, and with "\/"), URL-encoded
-// (query and path), and base64 (standard, URL-safe, with and without
+// (query and path), hex, and base64 (standard, URL-safe, with and without
 // padding) of the secret at each of the three byte alignments, of
 // "Bearer <secret>" and of the Basic credential "apikey:<secret>".
 func secretForms(secret string) map[string]string {
@@ -60,6 +61,8 @@ func secretForms(secret string) map[string]string {
 	forms["JSON-escaped with \\/"] = strings.ReplaceAll(forms["JSON-escaped"], "/", `\/`)
 	forms["URL query-encoded"] = url.QueryEscape(secret)
 	forms["URL path-encoded"] = url.PathEscape(secret)
+	forms["hex"] = hex.EncodeToString([]byte(secret))
+	forms["hex, upper case"] = strings.ToUpper(hex.EncodeToString([]byte(secret)))
 	for name, e := range map[string]*base64.Encoding{"base64": base64.StdEncoding, "base64url": base64.URLEncoding} {
 		for _, wrapped := range []string{secret, "Bearer " + secret, "apikey:" + secret} {
 			forms[name+" of "+strings.TrimSuffix(wrapped, secret)+"<key>"] = strings.TrimRight(e.EncodeToString([]byte(wrapped)), "=")
