@@ -3,8 +3,8 @@ GO      ?= go
 PKGS    := ./...
 # Fuzz runs are bounded by executions, not time: a time bound trips a race
 # in Go 1.26's fuzz coordinator (go.dev/issue/75804) that fails a clean run
-# with "context deadline exceeded". Each count is about 8 s on the 2-core
-# development machine; FUZZSCALE multiplies them all.
+# with "context deadline exceeded". Each count is about 8 s on a 2-core
+# machine; FUZZSCALE multiplies them all.
 FUZZSCALE ?= 1
 
 # The revision stint version reports when Go's VCS stamping is off

@@ -1,9 +1,10 @@
 package budget_test
 
 import (
-	"errors"
 	"math"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
 
 	"github.com/stintlab/stint/budget"
 )
@@ -25,12 +26,12 @@ func TestFromUSD(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got, err := budget.FromUSD(tt.usd)
-		if (err != nil) != tt.wantErr || got != tt.want {
-			t.Errorf("FromUSD(%v) = %d, %v; want %d, error %v", tt.usd, got, err, tt.want, tt.wantErr)
+		if tt.wantErr {
+			assert.ErrorIs(t, err, budget.ErrBadAmount, "FromUSD(%v)", tt.usd)
+		} else {
+			assert.NoError(t, err, "FromUSD(%v)", tt.usd)
 		}
-		if err != nil && !errors.Is(err, budget.ErrBadAmount) {
-			t.Errorf("FromUSD(%v) error %v does not wrap ErrBadAmount", tt.usd, err)
-		}
+		assert.Equal(t, tt.want, got, "FromUSD(%v)", tt.usd)
 	}
 }
 
@@ -47,8 +48,6 @@ func TestNanosString(t *testing.T) {
 		{budget.MaxNanos, "9007199.254740991"},
 	}
 	for _, tt := range tests {
-		if got := tt.n.String(); got != tt.want {
-			t.Errorf("Nanos(%d).String() = %q, want %q", int64(tt.n), got, tt.want)
-		}
+		assert.Equal(t, tt.want, tt.n.String(), "Nanos(%d).String()", int64(tt.n))
 	}
 }

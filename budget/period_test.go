@@ -1,9 +1,12 @@
 package budget_test
 
 import (
-	"errors"
 	"testing"
 	"time"
+	_ "time/tzdata" // Europe/Berlin without a system time zone database
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/budget"
 )
@@ -41,45 +44,29 @@ func TestPeriodBuckets(t *testing.T) {
 		{budget.Total, time.Date(2026, 12, 31, 23, 0, 0, 0, utc), utc, "total", time.Time{}, time.Time{}},
 	}
 	for _, tt := range tests {
-		if got := tt.p.Bucket(tt.t, tt.loc); got != tt.want {
-			t.Errorf("%s.Bucket(%v, %v) = %q, want %q", tt.p, tt.t, tt.loc, got, tt.want)
-		}
-		if got := tt.p.Start(tt.t, tt.loc); !got.Equal(tt.wantStart) {
-			t.Errorf("%s.Start(%v) = %v, want %v", tt.p, tt.t, got, tt.wantStart)
-		}
-		if got := tt.p.End(tt.t, tt.loc); !got.Equal(tt.wantEnd) {
-			t.Errorf("%s.End(%v) = %v, want %v", tt.p, tt.t, got, tt.wantEnd)
-		}
+		assert.Equal(t, tt.want, tt.p.Bucket(tt.t, tt.loc), "%s.Bucket(%v, %v)", tt.p, tt.t, tt.loc)
+		assert.WithinDuration(t, tt.wantStart, tt.p.Start(tt.t, tt.loc), 0, "%s.Start(%v)", tt.p, tt.t)
+		assert.WithinDuration(t, tt.wantEnd, tt.p.End(tt.t, tt.loc), 0, "%s.End(%v)", tt.p, tt.t)
 	}
 }
 
 // TestPeriodDST checks day and week boundaries fall on local midnight
 // across a daylight-saving change (Europe/Berlin, 2026-03-29, from the
-// system's time zone database).
+// system's time zone database, else the one time/tzdata embeds).
 func TestPeriodDST(t *testing.T) {
 	berlin, err := time.LoadLocation("Europe/Berlin")
-	if err != nil {
-		t.Skipf("no time zone database: %v", err)
-	}
+	require.NoError(t, err, "no time zone database")
 	at := time.Date(2026, 3, 29, 12, 0, 0, 0, berlin)
 	start, end := budget.Day.Start(at, berlin), budget.Day.End(at, berlin)
-	if end.Sub(start) != 23*time.Hour {
-		t.Errorf("the DST day runs %v, want 23h", end.Sub(start))
-	}
-	if got := budget.Week.End(at, berlin); !got.Equal(time.Date(2026, 3, 30, 0, 0, 0, 0, berlin)) {
-		t.Errorf("week end = %v, want Monday 2026-03-30 00:00 local", got)
-	}
+	assert.Equal(t, 23*time.Hour, end.Sub(start), "the DST day's length")
+	assert.WithinDuration(t, time.Date(2026, 3, 30, 0, 0, 0, 0, berlin), budget.Week.End(at, berlin), 0, "week end: Monday 2026-03-30 00:00 local")
 }
 
 func TestPeriodValidate(t *testing.T) {
 	for _, p := range []budget.Period{budget.Day, budget.Week, budget.Month, budget.Total} {
-		if err := p.Validate(); err != nil {
-			t.Errorf("%s.Validate() = %v", p, err)
-		}
+		assert.NoError(t, p.Validate(), "%s.Validate() =", p)
 	}
 	for _, p := range []budget.Period{"", "year", "Day"} {
-		if err := p.Validate(); !errors.Is(err, budget.ErrBadPeriod) {
-			t.Errorf("%q.Validate() = %v, want ErrBadPeriod", p, err)
-		}
+		assert.ErrorIs(t, p.Validate(), budget.ErrBadPeriod, "%q.Validate() =", p)
 	}
 }

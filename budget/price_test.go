@@ -1,10 +1,11 @@
 package budget_test
 
 import (
-	"errors"
 	"math"
-	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/budget"
 )
@@ -31,14 +32,11 @@ func TestPriceTableValidate(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			err := tt.table.Validate()
 			if tt.want == "" {
-				if err != nil {
-					t.Errorf("Validate() = %v, want nil", err)
-				}
+				assert.NoError(t, err, "Validate()")
 				return
 			}
-			if err == nil || !strings.Contains(err.Error(), tt.want) || !errors.Is(err, budget.ErrBadPrice) {
-				t.Errorf("Validate() = %v, want an ErrBadPrice containing %q", err, tt.want)
-			}
+			require.ErrorIs(t, err, budget.ErrBadPrice, "Validate()")
+			assert.Contains(t, err.Error(), tt.want, "Validate()")
 		})
 	}
 }
@@ -46,17 +44,15 @@ func TestPriceTableValidate(t *testing.T) {
 func TestRateLookup(t *testing.T) {
 	table := budget.PriceTable{Models: map[string]budget.Price{"demo-model": {Input: 0.5, Output: 1.5}}}
 	r, err := table.Rate("demo-model")
-	if want := (budget.Rate{Input: 500_000_000, CachedInput: 500_000_000, Output: 1_500_000_000}); err != nil || r != want {
-		t.Errorf("Rate(demo-model) = %+v, %v; want %+v (cached input at the input price)", r, err, want)
-	}
+	require.NoError(t, err, "Rate(demo-model)")
+	assert.Equal(t, budget.Rate{Input: 500_000_000, CachedInput: 500_000_000, Output: 1_500_000_000}, r, "Rate(demo-model): cached input at the input price")
 	_, err = table.Rate("other-model")
-	if !errors.Is(err, budget.ErrUnknownModel) || !strings.Contains(err.Error(), `"other-model"`) {
-		t.Errorf("Rate(other-model) error = %v, want ErrUnknownModel naming the model", err)
-	}
+	require.ErrorIs(t, err, budget.ErrUnknownModel, "Rate(other-model)")
+	assert.Contains(t, err.Error(), `"other-model"`, "the error names the model")
 	table.Default = &budget.Price{Input: 2, Output: 8}
-	if r, err := table.Rate("other-model"); err != nil || r.Output != 8*budget.NanosPerUSD {
-		t.Errorf("Rate with a default = %+v, %v; want the default price", r, err)
-	}
+	r, err = table.Rate("other-model")
+	require.NoError(t, err, "Rate with a default")
+	assert.Equal(t, 8*budget.NanosPerUSD, r.Output, "Rate with a default: the default price")
 }
 
 func TestCost(t *testing.T) {
@@ -87,12 +83,12 @@ func TestCost(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			got, err := tt.rate.Cost(tt.usage)
-			if (err != nil) != tt.wantErr || got != tt.want {
-				t.Errorf("Cost(%+v) = %d, %v; want %d, error %v", tt.usage, got, err, tt.want, tt.wantErr)
+			if tt.wantErr {
+				assert.ErrorIs(t, err, budget.ErrBadAmount, "Cost(%+v)", tt.usage)
+			} else {
+				assert.NoError(t, err, "Cost(%+v)", tt.usage)
 			}
-			if err != nil && !errors.Is(err, budget.ErrBadAmount) {
-				t.Errorf("error %v does not wrap ErrBadAmount", err)
-			}
+			assert.Equal(t, tt.want, got, "Cost(%+v)", tt.usage)
 		})
 	}
 }
@@ -105,14 +101,10 @@ func TestCostExactSum(t *testing.T) {
 	var fsum float64
 	for range 1_000_000 {
 		c, err := r.Cost(budget.Usage{InputTokens: 1000}) // 0.001 USD
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		sum += c
 		fsum += c.USD()
 	}
-	if sum != 1000*budget.NanosPerUSD {
-		t.Errorf("sum = %s, want exactly 1000.00", sum)
-	}
+	assert.Equal(t, 1000*budget.NanosPerUSD, sum, "sum: exactly 1000.00")
 	t.Logf("the same sum in float64 dollars: %.12f", fsum)
 }

@@ -6,6 +6,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -16,21 +18,16 @@ import (
 func journal(t *testing.T) budget.Journal {
 	t.Helper()
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "stint.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	t.Cleanup(func() { db.Close() })
 	l, err := boltledger.New(db, boltledger.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return l
 }
 
 func TestReportBadGrouping(t *testing.T) {
-	if _, err := budget.Report(context.Background(), journal(t), budget.Query{By: "week"}); err == nil {
-		t.Error("Report by week: want an error")
-	}
+	_, err := budget.Report(context.Background(), journal(t), budget.Query{By: "week"})
+	assert.Error(t, err, "Report by week")
 }
 
 func TestRowCacheShare(t *testing.T) {
@@ -42,20 +39,16 @@ func TestRowCacheShare(t *testing.T) {
 		{budget.Row{Requests: 4, CacheHits: 1}, 0.25},
 	}
 	for _, tt := range tests {
-		if got := tt.row.CacheShare(); got != tt.want {
-			t.Errorf("%+v.CacheShare() = %v, want %v", tt.row, got, tt.want)
-		}
+		assert.Equal(t, tt.want, tt.row.CacheShare(), "%+v.CacheShare()", tt.row)
 	}
 }
 
 func TestReportDayInZone(t *testing.T) {
 	j := journal(t)
 	at := time.Date(2026, 12, 1, 20, 0, 0, 0, time.UTC)
-	if err := j.Append(context.Background(), budget.Entry{Time: at, Team: "lab", Cost: 5, Outcome: budget.Miss, Upstream: true}); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Append(context.Background(), budget.Entry{Time: at, Team: "lab", Cost: 5, Outcome: budget.Miss, Upstream: true}))
 	rows, err := budget.Report(context.Background(), j, budget.Query{By: budget.ByDay, Location: time.FixedZone("east", 9*3600)})
-	if err != nil || len(rows) != 1 || rows[0].Group != "2026-12-02" {
-		t.Errorf("Report by day in UTC+9 = %+v, %v; want one row for 2026-12-02", rows, err)
-	}
+	require.NoError(t, err, "Report by day in UTC+9")
+	require.Len(t, rows, 1, "Report by day in UTC+9")
+	assert.Equal(t, "2026-12-02", rows[0].Group, "Report by day in UTC+9")
 }

@@ -2,11 +2,12 @@ package budget_test
 
 import (
 	"context"
-	"errors"
 	"path/filepath"
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -18,36 +19,26 @@ import (
 // a reservation whose holder never settles.
 func TestSweep(t *testing.T) {
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "stint.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer db.Close()
 	l, err := boltledger.New(db, boltledger.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	start := time.Now()
 	res, err := l.Reserve(context.Background(), start, budget.Request{Team: "lab", Amount: 42, Lease: time.Millisecond,
 		Caps: budget.Caps{Team: &budget.Cap{Limit: 100, Period: budget.Total}}})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ctx, cancel := context.WithCancel(context.Background())
 	got := make(chan []budget.Reservation, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- budget.Sweep(ctx, l, 2*time.Millisecond, func(r []budget.Reservation) { got <- r }, func(err error) { t.Error(err) })
+		done <- budget.Sweep(ctx, l, 2*time.Millisecond, func(r []budget.Reservation) { got <- r }, func(err error) { assert.NoError(t, err, "Sweep") })
 	}()
 	expired := <-got
 	cancel()
-	if err := <-done; !errors.Is(err, context.Canceled) {
-		t.Errorf("Sweep returned %v, want context.Canceled", err)
-	}
-	if len(expired) != 1 || expired[0].ID != res.ID {
-		t.Fatalf("swept %+v, want reservation %s", expired, res.ID)
-	}
+	assert.ErrorIs(t, <-done, context.Canceled, "Sweep returned")
+	require.Len(t, expired, 1, "swept")
+	require.Equal(t, res.ID, expired[0].ID, "swept")
 	b, err := l.Balance(context.Background(), start, budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil || b != (budget.Balance{Spent: 42}) {
-		t.Errorf("balance after sweep = %+v, %v; want 42 spent", b, err)
-	}
+	require.NoError(t, err, "balance after sweep")
+	assert.Equal(t, budget.Balance{Spent: 42}, b, "balance after sweep")
 }

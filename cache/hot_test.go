@@ -3,7 +3,6 @@ package cache_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"math/rand/v2"
 	"path/filepath"
@@ -11,6 +10,9 @@ import (
 	"sync/atomic"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/boltstore"
@@ -88,42 +90,30 @@ func TestHotAnswersFromMemory(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{})}
 	h := cache.NewHot(w, cache.HotOptions{})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("from the store"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("from the store"), 0))
 	for range 5 {
 		v, found, err := h.Get(ctx, hotKey(1))
-		if err != nil || !found || string(v) != "from the store" {
-			t.Fatalf("Get = %q, %v, %v", v, found, err)
-		}
+		require.NoError(t, err, "Get")
+		require.True(t, found, "Get")
+		require.Equal(t, "from the store", string(v), "Get")
 	}
-	if got := w.gets.Load(); got != 1 {
-		t.Errorf("backing Gets for 5 hot Gets = %d, want 1 (the fill)", got)
-	}
+	assert.EqualValues(t, 1, w.gets.Load(), "backing Gets for 5 hot Gets: the fill")
 	// A Put is answered from memory without a store read.
-	if err := h.Put(ctx, hotKey(2), []byte("put"), 0); err != nil {
-		t.Fatal(err)
-	}
-	if v, _, _ := h.Get(ctx, hotKey(2)); string(v) != "put" {
-		t.Errorf("Get after Put = %q", v)
-	}
-	if got := w.gets.Load(); got != 1 {
-		t.Errorf("backing Gets = %d, want still 1", got)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(2), []byte("put"), 0))
+	v, _, _ := h.Get(ctx, hotKey(2))
+	assert.Equal(t, "put", string(v), "Get after Put")
+	assert.EqualValues(t, 1, w.gets.Load(), "backing Gets, still the fill's")
 	// Misses are not remembered: a value that appears in the store later is found.
-	if _, found, _ := h.Get(ctx, hotKey(3)); found {
-		t.Fatal("found a key never stored")
-	}
-	if err := w.Store.Put(ctx, hotKey(3), []byte("late"), 0); err != nil {
-		t.Fatal(err)
-	}
-	if v, found, _ := h.Get(ctx, hotKey(3)); !found || string(v) != "late" {
-		t.Errorf("Get after the store gained the key = %q, %v", v, found)
-	}
+	_, found, _ := h.Get(ctx, hotKey(3))
+	require.False(t, found, "found a key never stored")
+	require.NoError(t, w.Store.Put(ctx, hotKey(3), []byte("late"), 0))
+	v, found, _ = h.Get(ctx, hotKey(3))
+	assert.True(t, found, "Get after the store gained the key")
+	assert.Equal(t, "late", string(v), "Get after the store gained the key")
 	st := h.Stats()
-	if st.Hits != 5 || st.Misses != 3 || st.Entries != 3 {
-		t.Errorf("Stats = %+v, want 5 hits, 3 misses, 3 entries", st)
-	}
+	assert.EqualValues(t, 5, st.Hits, "Stats: hits")
+	assert.EqualValues(t, 3, st.Misses, "Stats: misses")
+	assert.EqualValues(t, 3, st.Entries, "Stats: entries")
 }
 
 type fakeClock struct {
@@ -148,42 +138,30 @@ func TestHotTTL(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
 	h := cache.NewHot(w, cache.HotOptions{Now: clock.Now})
 	ctx := t.Context()
-	if err := h.Put(ctx, hotKey(1), []byte("a"), time.Minute); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("a"), time.Minute))
 	// Filled from the store: the memory copy keeps the store's expiry.
-	if err := w.Store.Put(ctx, hotKey(2), []byte("b"), 2*time.Minute); err != nil {
-		t.Fatal(err)
-	}
-	if err := h.Put(ctx, hotKey(3), []byte("c"), 0); err != nil {
-		t.Fatal(err)
-	}
-	if _, found, _ := h.Get(ctx, hotKey(2)); !found {
-		t.Fatal("fill of key 2 missed")
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(2), []byte("b"), 2*time.Minute))
+	require.NoError(t, h.Put(ctx, hotKey(3), []byte("c"), 0))
+	_, found, _ := h.Get(ctx, hotKey(2))
+	require.True(t, found, "fill of key 2")
 	clock.Advance(61 * time.Second)
 	gets := w.gets.Load()
-	if _, found, err := h.Get(ctx, hotKey(1)); found || err != nil {
-		t.Errorf("Get of an entry past its TTL = found %v, err %v; want a miss", found, err)
-	}
-	if w.gets.Load() != gets+1 {
-		t.Error("an expired memory entry was not checked against the store")
-	}
-	if v, found, _ := h.Get(ctx, hotKey(2)); !found || string(v) != "b" {
-		t.Errorf("Get of key 2 at +61s = %q, %v; want b", v, found)
-	}
+	_, found, err := h.Get(ctx, hotKey(1))
+	assert.NoError(t, err, "Get of an entry past its TTL")
+	assert.False(t, found, "Get of an entry past its TTL: want a miss")
+	assert.Equal(t, gets+1, w.gets.Load(), "an expired memory entry is checked against the store")
+	v, found, _ := h.Get(ctx, hotKey(2))
+	assert.True(t, found, "Get of key 2 at +61s")
+	assert.Equal(t, "b", string(v), "Get of key 2 at +61s")
 	clock.Advance(time.Minute)
 	gets = w.gets.Load()
-	if _, found, _ := h.Get(ctx, hotKey(2)); found {
-		t.Error("filled entry outlived the store's expiry")
-	}
-	if w.gets.Load() != gets+1 {
-		t.Error("filled entry was still answered from memory after its store expiry")
-	}
+	_, found, _ = h.Get(ctx, hotKey(2))
+	assert.False(t, found, "filled entry outlived the store's expiry")
+	assert.Equal(t, gets+1, w.gets.Load(), "filled entry was still answered from memory after its store expiry")
 	clock.Advance(1000 * time.Hour)
-	if v, found, _ := h.Get(ctx, hotKey(3)); !found || string(v) != "c" {
-		t.Errorf("entry without TTL = %q, %v after 1000h", v, found)
-	}
+	v, found, _ = h.Get(ctx, hotKey(3))
+	assert.True(t, found, "entry without TTL after 1000h")
+	assert.Equal(t, "c", string(v), "entry without TTL after 1000h")
 }
 
 // TestHotFillPastExpiry: a fill that reads an entry whose expiry has
@@ -197,17 +175,13 @@ func TestHotFillPastExpiry(t *testing.T) {
 	store := newBolt(t, boltstore.Options{Now: storeClock.Now}) // an ExpiryGetter, so fills keep its expiry
 	h := cache.NewHot(store, cache.HotOptions{Now: hotClock.Now})
 	ctx := t.Context()
-	if err := store.Put(ctx, hotKey(1), []byte("late"), 10*time.Second); err != nil {
-		t.Fatal(err)
-	}
-	if _, found, _ := h.Get(ctx, hotKey(1)); !found {
-		t.Fatal("the store still holds the entry by its own clock, so the fill should find it")
-	}
+	require.NoError(t, store.Put(ctx, hotKey(1), []byte("late"), 10*time.Second))
+	_, found, _ := h.Get(ctx, hotKey(1))
+	require.True(t, found, "the store still holds the entry by its own clock, so the fill should find it")
 	storeClock.Advance(time.Minute)
 	hotClock.Advance(time.Second)
-	if _, found, _ := h.Get(ctx, hotKey(1)); found {
-		t.Error("an entry filled past its expiry was answered from memory after the store dropped it")
-	}
+	_, found, _ = h.Get(ctx, hotKey(1))
+	assert.False(t, found, "an entry filled past its expiry was answered from memory after the store dropped it")
 }
 
 func TestHotFillTTLWithoutExpiryGetter(t *testing.T) {
@@ -215,24 +189,16 @@ func TestHotFillTTLWithoutExpiryGetter(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{Now: clock.Now})}
 	h := cache.NewHot(plainStore{w}, cache.HotOptions{Now: clock.Now, FillTTL: 10 * time.Second})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("v"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("v"), 0))
 	for range 3 {
-		if _, found, _ := h.Get(ctx, hotKey(1)); !found {
-			t.Fatal("miss")
-		}
+		_, found, _ := h.Get(ctx, hotKey(1))
+		require.True(t, found, "Get")
 	}
-	if got := w.gets.Load(); got != 1 {
-		t.Fatalf("backing Gets = %d, want 1", got)
-	}
+	require.EqualValues(t, 1, w.gets.Load(), "backing Gets")
 	clock.Advance(11 * time.Second)
-	if _, found, _ := h.Get(ctx, hotKey(1)); !found {
-		t.Fatal("miss after FillTTL")
-	}
-	if got := w.gets.Load(); got != 2 {
-		t.Errorf("backing Gets after FillTTL = %d, want 2 (a refill)", got)
-	}
+	_, found, _ := h.Get(ctx, hotKey(1))
+	require.True(t, found, "Get after FillTTL")
+	assert.EqualValues(t, 2, w.gets.Load(), "backing Gets after FillTTL: a refill")
 }
 
 // TestHotFillDoesNotResurrect: a Get that read the store before a Delete
@@ -241,9 +207,7 @@ func TestHotFillDoesNotResurrect(t *testing.T) {
 	w := &watchedStore{Store: newBolt(t, boltstore.Options{}), paused: make(chan struct{}), release: make(chan struct{})}
 	h := cache.NewHot(plainStore{w}, cache.HotOptions{})
 	ctx := t.Context()
-	if err := w.Store.Put(ctx, hotKey(1), []byte("old"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, w.Store.Put(ctx, hotKey(1), []byte("old"), 0))
 	w.pause.Store(true)
 	done := make(chan []byte)
 	go func() {
@@ -252,16 +216,11 @@ func TestHotFillDoesNotResurrect(t *testing.T) {
 	}()
 	<-w.paused // the Get has read "old" from the store
 	w.pause.Store(false)
-	if err := h.Delete(ctx, hotKey(1)); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Delete(ctx, hotKey(1)))
 	close(w.release)
-	if v := <-done; string(v) != "old" {
-		t.Errorf("the racing Get returned %q, want old (it read before the Delete)", v)
-	}
-	if v, found, _ := h.Get(ctx, hotKey(1)); found {
-		t.Errorf("Get after Delete = %q; the fill resurrected a deleted entry", v)
-	}
+	assert.Equal(t, "old", string(<-done), "the racing Get (it read before the Delete)")
+	v, found, _ := h.Get(ctx, hotKey(1))
+	assert.False(t, found, "Get after Delete = %q; the fill resurrected a deleted entry", v)
 }
 
 func TestHotBoundedBytes(t *testing.T) {
@@ -270,23 +229,17 @@ func TestHotBoundedBytes(t *testing.T) {
 	ctx := t.Context()
 	value := bytes.Repeat([]byte("x"), 1000)
 	for i := range 300 {
-		if err := h.Put(ctx, hotKey(i), value, 0); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, h.Put(ctx, hotKey(i), value, 0))
 	}
 	// Eviction runs in otter's maintenance; force it before measuring.
 	for i := range 300 {
-		if v, found, err := h.Get(ctx, hotKey(i)); err != nil || !found || !bytes.Equal(v, value) {
-			t.Fatalf("Get(%d) = found %v, err %v: the store must still have it", i, found, err)
-		}
+		v, found, err := h.Get(ctx, hotKey(i))
+		require.NoError(t, err, "Get(%d)", i)
+		require.True(t, found && bytes.Equal(v, value), "Get(%d): the store must still have it", i)
 	}
 	st := h.Stats()
-	if st.Bytes > maxBytes {
-		t.Errorf("memory holds %d bytes, over the %d-byte bound", st.Bytes, maxBytes)
-	}
-	if st.Evictions == 0 {
-		t.Errorf("no evictions after 300 kB of Puts into a 64 kB tier: %+v", st)
-	}
+	assert.LessOrEqual(t, st.Bytes, uint64(maxBytes), "memory held, against its bound")
+	assert.NotZero(t, st.Evictions, "evictions after 300 kB of Puts into a 64 kB tier: %+v", st)
 }
 
 func TestHotLargeValuesSkipMemory(t *testing.T) {
@@ -294,54 +247,37 @@ func TestHotLargeValuesSkipMemory(t *testing.T) {
 	h := cache.NewHot(w, cache.HotOptions{MaxBytes: 1 << 20, MaxEntryBytes: 1000})
 	ctx := t.Context()
 	big := bytes.Repeat([]byte("y"), 1001)
-	if err := h.Put(ctx, hotKey(1), []byte("small"), 0); err != nil {
-		t.Fatal(err)
-	}
-	if err := h.Put(ctx, hotKey(1), big, 0); err != nil { // replaces the small one in memory too
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("small"), 0))
+	require.NoError(t, h.Put(ctx, hotKey(1), big, 0)) // replaces the small one in memory too
 	for range 2 {
-		if v, found, _ := h.Get(ctx, hotKey(1)); !found || !bytes.Equal(v, big) {
-			t.Fatalf("Get = %d bytes, %v; want the big value", len(v), found)
-		}
+		v, found, _ := h.Get(ctx, hotKey(1))
+		require.True(t, found && bytes.Equal(v, big), "Get = %d bytes, %v; want the big value", len(v), found)
 	}
-	if got := w.gets.Load(); got != 2 {
-		t.Errorf("backing Gets = %d, want 2: values over MaxEntryBytes stay out of memory", got)
-	}
+	assert.EqualValues(t, 2, w.gets.Load(), "backing Gets: values over MaxEntryBytes stay out of memory")
 }
 
 func TestHotFailedPutLeavesMemory(t *testing.T) {
 	h := cache.NewHot(newBolt(t, boltstore.Options{MaxBytes: 2000}), cache.HotOptions{})
 	ctx := t.Context()
-	if err := h.Put(ctx, hotKey(1), []byte("kept"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Put(ctx, hotKey(1), []byte("kept"), 0))
 	noise := make([]byte, 5000) // random, so it does not compress below the cap
 	r := rand.New(rand.NewPCG(1, 2))
 	for i := range noise {
 		noise[i] = byte(r.Uint32())
 	}
 	err := h.Put(ctx, hotKey(1), noise, 0)
-	if !errors.Is(err, cache.ErrTooLarge) {
-		t.Fatalf("Put over the store's cap: err = %v, want cache.ErrTooLarge", err)
-	}
-	if v, _, _ := h.Get(ctx, hotKey(1)); string(v) != "kept" {
-		t.Errorf("Get after a failed Put = %q, want kept", v)
-	}
+	require.ErrorIs(t, err, cache.ErrTooLarge, "Put over the store's cap")
+	v, _, _ := h.Get(ctx, hotKey(1))
+	assert.Equal(t, "kept", string(v), "Get after a failed Put")
 }
 
 func TestHotCloseClosesBacking(t *testing.T) {
 	b := newBolt(t, boltstore.Options{})
 	h := cache.NewHot(b, cache.HotOptions{})
-	if err := h.Close(); err != nil {
-		t.Fatal(err)
-	}
-	if _, _, err := b.Get(t.Context(), hotKey(1)); !errors.Is(err, cache.ErrClosed) {
-		t.Errorf("backing Get after Hot.Close: err = %v, want cache.ErrClosed", err)
-	}
-	if err := h.Close(); err != nil {
-		t.Errorf("second Close = %v, want nil", err)
-	}
+	require.NoError(t, h.Close())
+	_, _, err := b.Get(t.Context(), hotKey(1))
+	assert.ErrorIs(t, err, cache.ErrClosed, "backing Get after Hot.Close")
+	assert.NoError(t, h.Close(), "second Close")
 }
 
 // TestHotMaxAge runs two tiers on one backing store, as two replicas on one
@@ -359,31 +295,22 @@ func TestHotMaxAge(t *testing.T) {
 		setup func(k string)
 	}{
 		{"filled by b", func(k string) {
-			if err := a.Put(ctx, k, []byte("old"), time.Hour); err != nil {
-				t.Fatal(err)
-			}
-			if v, _, _ := b.Get(ctx, k); string(v) != "old" {
-				t.Fatalf("b's first read = %q", v)
-			}
+			require.NoError(t, a.Put(ctx, k, []byte("old"), time.Hour))
+			v, _, _ := b.Get(ctx, k)
+			require.Equal(t, "old", string(v), "b's first read")
 		}},
 		{"stored by b without a TTL", func(k string) {
-			if err := b.Put(ctx, k, []byte("old"), 0); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, b.Put(ctx, k, []byte("old"), 0))
 		}},
 	}
 	for i, tc := range tests {
 		k := hotKey(100 + i)
 		tc.setup(k)
-		if err := a.Put(ctx, k, []byte("new"), time.Hour); err != nil { // a refresh on a
-			t.Fatal(err)
-		}
-		if v, _, _ := b.Get(ctx, k); string(v) != "old" {
-			t.Errorf("%s: b right after a's refresh = %q, want its memory copy old (within MaxAge)", tc.name, v)
-		}
+		require.NoError(t, a.Put(ctx, k, []byte("new"), time.Hour)) // a refresh on a
+		v, _, _ := b.Get(ctx, k)
+		assert.Equal(t, "old", string(v), "%s: b right after a's refresh: its memory copy (within MaxAge)", tc.name)
 		clock.Advance(2*time.Second + time.Millisecond)
-		if v, _, _ := b.Get(ctx, k); string(v) != "new" {
-			t.Errorf("%s: b after MaxAge = %q, want new", tc.name, v)
-		}
+		v, _, _ = b.Get(ctx, k)
+		assert.Equal(t, "new", string(v), "%s: b after MaxAge", tc.name)
 	}
 }

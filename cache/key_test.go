@@ -4,8 +4,10 @@ import (
 	"crypto/sha256"
 	"encoding/binary"
 	"encoding/hex"
-	"regexp"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/canon"
@@ -35,17 +37,11 @@ func TestKeyEachPartMatters(t *testing.T) {
 	seen := map[string]string{baseKey: "base"}
 	for _, tc := range tests {
 		got := cache.Key(tc.parts, []byte(tc.body))
-		if prev, dup := seen[got]; dup {
-			t.Errorf("%s: key %s equals the key of %s", tc.name, got, prev)
-		}
+		assert.NotContains(t, seen, got, "%s: key equals the key of %s", tc.name, seen[got])
 		seen[got] = tc.name
 	}
-	if again := cache.Key(base, body); again != baseKey {
-		t.Errorf("Key is not deterministic: %s then %s", baseKey, again)
-	}
-	if !regexp.MustCompile(`^[0-9a-f]{64}$`).MatchString(baseKey) {
-		t.Errorf("Key = %q, want 64 lowercase hex digits", baseKey)
-	}
+	assert.Equal(t, baseKey, cache.Key(base, body), "Key is deterministic")
+	assert.Regexp(t, `^[0-9a-f]{64}$`, baseKey, "Key: 64 lowercase hex digits")
 }
 
 // TestKeyEncoding recomputes a key from the documented encoding with a
@@ -60,9 +56,7 @@ func TestKeyEncoding(t *testing.T) {
 		in = append(in, f...)
 	}
 	sum := sha256.Sum256(in)
-	if got, want := cache.Key(parts, body), hex.EncodeToString(sum[:]); got != want {
-		t.Errorf("Key = %s, want %s", got, want)
-	}
+	assert.Equal(t, hex.EncodeToString(sum[:]), cache.Key(parts, body), "Key")
 }
 
 // TestKeyOfEquivalentBodies: bodies that differ only in member order, number
@@ -70,16 +64,10 @@ func TestKeyEncoding(t *testing.T) {
 func TestKeyOfEquivalentBodies(t *testing.T) {
 	parts := cache.KeyParts{Namespace: "team-heron", Upstream: "u", Endpoint: "/v1/completions", Model: "tern-7"}
 	a, err := canon.Transform([]byte(`{"temperature": 0.0, "prompt": "hi", "max_tokens": 1E1}`))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	b, err := canon.Transform([]byte(`{"max_tokens":10,"prompt":"h\u0069","temperature":-0}`))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if ka, kb := cache.Key(parts, a), cache.Key(parts, b); ka != kb {
-		t.Errorf("keys differ for equivalent bodies: %s (%s) vs %s (%s)", ka, a, kb, b)
-	}
+	require.NoError(t, err)
+	assert.Equal(t, cache.Key(parts, a), cache.Key(parts, b), "keys of equivalent bodies %s and %s", a, b)
 }
 
 // TestKeyLargeInput covers the streaming path for inputs past the stack
@@ -98,8 +86,6 @@ func TestKeyLargeInput(t *testing.T) {
 			in = append(in, f...)
 		}
 		sum := sha256.Sum256(in)
-		if got, want := cache.Key(parts, body), hex.EncodeToString(sum[:]); got != want {
-			t.Errorf("body of %d bytes: Key = %s, want %s", n, got, want)
-		}
+		assert.Equal(t, hex.EncodeToString(sum[:]), cache.Key(parts, body), "Key of a body of %d bytes", n)
 	}
 }

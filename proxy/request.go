@@ -61,16 +61,6 @@ type request struct {
 	promptsArray bool
 }
 
-// chatMaxTokensField reports which field carries the chat token cap.
-func (r *request) maxTokensField() string {
-	if r.endpoint == endpointChat {
-		if _, ok := r.fields["max_completion_tokens"]; ok {
-			return "max_completion_tokens"
-		}
-	}
-	return "max_tokens"
-}
-
 // parseRequest decodes and validates body for ep. A completions prompt
 // may have at most maxPrompts items (no cap when maxPrompts < 1).
 func parseRequest(ep endpoint, body []byte, maxPrompts int) (*request, *apiError) {

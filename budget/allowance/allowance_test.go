@@ -2,7 +2,6 @@ package allowance_test
 
 import (
 	"context"
-	"errors"
 	"path/filepath"
 	"testing"
 	"time"
@@ -21,9 +20,7 @@ import (
 func nanos(t *testing.T, usd float64) budget.Nanos {
 	t.Helper()
 	n, err := budget.FromUSD(usd)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return n
 }
 
@@ -39,16 +36,12 @@ func TestOutageSpendsAllowanceThenCarriesOver(t *testing.T) {
 	defer client.Close()
 	shared := redisledger.New(client, redisledger.Options{})
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "local.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer db.Close()
 	// A fake clock: the ledger's retry window and leases follow it.
 	now := time.Date(2026, 12, 2, 10, 0, 0, 0, time.UTC)
 	l, err := allowance.New(shared, db, allowance.Options{Allowance: budget.Cap{Limit: nanos(t, 0.010), Period: budget.Day}, Retry: time.Second})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	teamCap := &budget.Cap{Limit: nanos(t, 1), Period: budget.Total}
 	call := func(amount, actual budget.Nanos) error {
 		res, err := l.Reserve(ctx, now, budget.Request{Team: "lab", Key: "k1", Amount: amount, Caps: budget.Caps{Team: teamCap}, Lease: time.Minute})
@@ -59,9 +52,7 @@ func TestOutageSpendsAllowanceThenCarriesOver(t *testing.T) {
 		return err
 	}
 	unit := nanos(t, 0.003)
-	if err := call(unit, unit); err != nil {
-		t.Fatalf("call with Redis up: %v", err)
-	}
+	require.NoError(t, call(unit, unit), "call with Redis up")
 
 	rs.Stop()
 	var admitted int
@@ -72,41 +63,27 @@ func TestOutageSpendsAllowanceThenCarriesOver(t *testing.T) {
 			admitted++
 			continue
 		}
-		if errors.Is(err, budget.ErrExhausted) {
-			t.Fatalf("an exhausted allowance must read as a store failure, not a spent budget: %v", err)
-		}
+		require.NotErrorIs(t, err, budget.ErrExhausted, "an exhausted allowance must read as a store failure, not a spent budget")
 	}
 	// 0.010 USD of allowance holds three 0.003 reservations (hand-worked).
-	if admitted != 3 {
-		t.Fatalf("%d calls admitted on the allowance, want 3", admitted)
-	}
-	if n, _ := l.Pending(); n != 3 {
-		t.Errorf("%d carries pending, want 3", n)
-	}
+	require.Equal(t, 3, admitted, "calls admitted on the allowance")
+	n, _ := l.Pending()
+	assert.Equal(t, 3, n, "carries pending")
 
 	rs.Restart(t)                  // comes back empty: only the carried charges will be there
 	now = now.Add(2 * time.Second) // past the retry window
-	if _, err := l.Expire(ctx, now); err != nil {
-		t.Fatalf("expire and carry over: %v", err)
-	}
-	if n, _ := l.Pending(); n != 0 {
-		t.Errorf("%d carries still pending after Redis came back", n)
-	}
+	_, err = l.Expire(ctx, now)
+	require.NoError(t, err, "expire and carry over")
+	n, _ = l.Pending()
+	assert.Zero(t, n, "carries still pending after Redis came back")
 	b, err := l.Balance(ctx, now, budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if want := 3 * (unit - 1000); b.Spent != want || b.Held != 0 {
-		t.Errorf("shared ledger after carry-over: spent %d held %d, want %d held 0", b.Spent, b.Held, want)
-	}
+	require.NoError(t, err)
+	assert.Equal(t, budget.Balance{Spent: 3 * (unit - 1000)}, b, "shared ledger after carry-over")
 	var entries int
 	var cost budget.Nanos
-	if err := l.Scan(ctx, time.Time{}, "lab", func(e budget.Entry) error { entries++; cost += e.Cost; return nil }); err != nil {
-		t.Fatal(err)
-	}
-	if entries != 3 || cost != 3*(unit-1000) {
-		t.Errorf("shared journal after carry-over: %d entries costing %d, want 3 costing %d", entries, cost, 3*(unit-1000))
-	}
+	require.NoError(t, l.Scan(ctx, time.Time{}, "lab", func(e budget.Entry) error { entries++; cost += e.Cost; return nil }))
+	assert.Equal(t, 3, entries, "shared journal entries after carry-over")
+	assert.Equal(t, 3*(unit-1000), cost, "shared journal cost after carry-over")
 }
 
 // TestReservationInDoubtIsNotDoubled stops (SIGSTOP) the shared Redis while

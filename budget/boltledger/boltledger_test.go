@@ -4,9 +4,12 @@ import (
 	"context"
 	"fmt"
 	"path/filepath"
+	"strings"
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -56,41 +59,30 @@ func TestConformance(t *testing.T) {
 // leaves other buckets of the shared file alone.
 func TestSharesFile(t *testing.T) {
 	db := openDB(t)
-	if err := db.Update(func(tx *bbolt.Tx) error {
+	require.NoError(t, db.Update(func(tx *bbolt.Tx) error {
 		b, err := tx.CreateBucket([]byte("cache.entries"))
 		if err != nil {
 			return err
 		}
 		return b.Put([]byte("k"), []byte("v"))
-	}); err != nil {
-		t.Fatal(err)
-	}
+	}))
 	l := newLedger(t, db, nil)
 	res, err := l.Reserve(context.Background(), time.Now(), budget.Request{Team: "lab", Amount: 5, Lease: time.Minute})
-	if err != nil {
-		t.Fatalf("Reserve: %v", err)
-	}
-	if _, err := l.Settle(context.Background(), time.Now(), res, 5); err != nil {
-		t.Fatalf("Settle: %v", err)
-	}
+	require.NoError(t, err, "Reserve")
+	_, err = l.Settle(context.Background(), time.Now(), res, 5)
+	require.NoError(t, err, "Settle")
 	err = db.View(func(tx *bbolt.Tx) error {
 		return tx.ForEach(func(name []byte, b *bbolt.Bucket) error {
 			n := string(name)
 			if n == "cache.entries" {
-				if got := string(b.Get([]byte("k"))); got != "v" {
-					t.Errorf("cache bucket value = %q, want v", got)
-				}
+				assert.Equal(t, "v", string(b.Get([]byte("k"))), "cache bucket value")
 				return nil
 			}
-			if len(n) < 7 || n[:7] != "budget." {
-				t.Errorf("bucket %q lacks the budget. prefix", n)
-			}
+			assert.True(t, strings.HasPrefix(n, "budget."), "bucket %q lacks the budget. prefix", n)
 			return nil
 		})
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 }
 
 // BenchmarkReserveSettle measures one reserve and one settle, each a

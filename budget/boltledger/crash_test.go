@@ -13,6 +13,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -67,12 +69,8 @@ func TestCrashSettlesLeases(t *testing.T) {
 	cmd := exec.Command(os.Args[0], "-test.run=^TestCrashHolder$", "-test.count=1")
 	cmd.Env = append(os.Environ(), crashEnv+"="+path)
 	out, err := cmd.StdoutPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, cmd.Start())
 	held := map[string]budget.Nanos{}
 	var sum budget.Nanos
 	sc := bufio.NewScanner(out)
@@ -87,50 +85,35 @@ func TestCrashSettlesLeases(t *testing.T) {
 			sum += budget.Nanos(n)
 			continue
 		}
-		if strings.HasPrefix(sc.Text(), "error") {
-			t.Fatalf("child: %s", sc.Text())
-		}
+		require.False(t, strings.HasPrefix(sc.Text(), "error"), "child: %s", sc.Text())
 	}
 	if len(held) != 5 {
 		_ = cmd.Process.Kill()
-		t.Fatalf("child reported %d reservations, want 5", len(held))
+		require.Len(t, held, 5, "reservations the child reported")
 	}
-	if err := cmd.Process.Signal(syscall.SIGKILL); err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Wait(); err == nil {
-		t.Fatal("child exited cleanly, want killed")
-	}
+	require.NoError(t, cmd.Process.Signal(syscall.SIGKILL))
+	require.Error(t, cmd.Wait(), "the child exited cleanly, want killed")
 
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: 5 * time.Second})
-	if err != nil {
-		t.Fatalf("reopen after kill: %v", err)
-	}
+	require.NoError(t, err, "reopen after kill")
 	defer db.Close()
 	l := newLedger(t, db, nil)
 	ctx := context.Background()
 	team := budget.Scope{Team: "lab"}
 	b, err := l.Balance(ctx, crashT0, team, budget.Month)
-	if err != nil || b != (budget.Balance{Held: sum}) {
-		t.Fatalf("after kill: balance %+v, %v; want %d held", b, err, sum)
-	}
-	if got, err := l.Expire(ctx, crashT0.Add(crashLease-time.Millisecond)); err != nil || len(got) != 0 {
-		t.Fatalf("Expire before the deadline = %v, %v; want none", got, err)
-	}
+	require.NoError(t, err, "balance after kill")
+	require.Equal(t, budget.Balance{Held: sum}, b, "balance after kill")
+	none, err := l.Expire(ctx, crashT0.Add(crashLease-time.Millisecond))
+	require.NoError(t, err, "Expire before the deadline")
+	require.Empty(t, none, "Expire before the deadline")
 	got, err := l.Expire(ctx, crashT0.Add(crashLease))
-	if err != nil {
-		t.Fatalf("Expire: %v", err)
-	}
+	require.NoError(t, err, "Expire")
 	for _, r := range got {
-		if held[r.ID] != r.Amount {
-			t.Errorf("expired %s for %d, child held %d", r.ID, r.Amount, held[r.ID])
-		}
+		assert.Equal(t, held[r.ID], r.Amount, "expired %s for what the child held", r.ID)
 		delete(held, r.ID)
 	}
-	if len(held) != 0 {
-		t.Errorf("reservations not expired: %v", held)
-	}
-	if b, err := l.Balance(ctx, crashT0, team, budget.Month); err != nil || b != (budget.Balance{Spent: sum}) {
-		t.Errorf("after expiry: balance %+v, %v; want spent %d (the reserved amounts), nothing held", b, err, sum)
-	}
+	assert.Empty(t, held, "reservations not expired")
+	b, err = l.Balance(ctx, crashT0, team, budget.Month)
+	require.NoError(t, err, "balance after expiry")
+	assert.Equal(t, budget.Balance{Spent: sum}, b, "after expiry: the reserved amounts spent, nothing held")
 }

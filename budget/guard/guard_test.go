@@ -10,6 +10,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -138,8 +140,9 @@ func TestWorstCaseHandWorked(t *testing.T) {
 		wantExact  bool
 	}{
 		{
-			// "hello world" is 2 cl100k tokens, [15339, 1917] (tiktoken
-			// README example, from memory). hand-worked: out 100×2×1 =
+			// "hello world" is 2 cl100k tokens, [15339, 1917] (the ids of
+			// tiktoken-go/tokenizer's own test, which budget/tokens
+			// TestCheckValues holds the codec to). hand-worked: out 100×2×1 =
 			// 200; 2×500 + 200×1500 = 301,000.
 			name: "cl100k prompt", call: helloCall(),
 			wantPrompt: 2, wantOut: 200, wantCost: 301_000, wantExact: true,
@@ -183,16 +186,13 @@ func TestWorstCaseHandWorked(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			g, _ := newGuard(t, baseConfig(), newClock())
 			tk, err := g.Admit(context.Background(), tt.call)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			est := tk.Estimate()
-			if est.PromptTokens != tt.wantPrompt || est.OutputTokens != tt.wantOut || est.Cost != tt.wantCost || est.Exact != tt.wantExact {
-				t.Errorf("estimate = %+v, want prompt %d, output %d, cost %d, exact %v", est, tt.wantPrompt, tt.wantOut, tt.wantCost, tt.wantExact)
-			}
-			if tk.Reserved() != tt.wantCost {
-				t.Errorf("reserved %d, want %d", tk.Reserved(), tt.wantCost)
-			}
+			assert.Equal(t, tt.wantPrompt, est.PromptTokens, "estimate: prompt tokens")
+			assert.Equal(t, tt.wantOut, est.OutputTokens, "estimate: output tokens")
+			assert.Equal(t, tt.wantCost, est.Cost, "estimate: cost")
+			assert.Equal(t, tt.wantExact, est.Exact, "estimate: exact")
+			assert.Equal(t, tt.wantCost, tk.Reserved(), "reserved")
 		})
 	}
 }
@@ -216,12 +216,9 @@ func TestBadCalls(t *testing.T) {
 			c := newClock()
 			g, l := newGuard(t, cfg, c)
 			_, err := g.Admit(context.Background(), tt.call)
-			if !errors.Is(err, tt.want) {
-				t.Fatalf("Admit: got %v, want %v", err, tt.want)
-			}
-			if n, _ := l.Expire(context.Background(), c.Now().Add(24*time.Hour)); len(n) != 0 {
-				t.Errorf("a refused call left %d reservations", len(n))
-			}
+			require.ErrorIs(t, err, tt.want, "Admit")
+			n, _ := l.Expire(context.Background(), c.Now().Add(24*time.Hour))
+			assert.Empty(t, n, "reservations a refused call left")
 		})
 	}
 }
@@ -235,27 +232,21 @@ func TestExhaustedReservesNothing(t *testing.T) {
 	ctx := context.Background()
 	for i := range 3 {
 		tk, err := g.Admit(ctx, helloCall())
-		if err != nil {
-			t.Fatalf("call %d: %v", i, err)
-		}
-		if left, ok := tk.Left(); !ok || left != limit-budget.Nanos(i+1)*301_000 {
-			t.Errorf("call %d: left %d %v, want %d", i, left, ok, limit-budget.Nanos(i+1)*301_000)
-		}
+		require.NoError(t, err, "call %d", i)
+		left, ok := tk.Left()
+		assert.True(t, ok, "call %d: a budget to be left", i)
+		assert.Equal(t, limit-budget.Nanos(i+1)*301_000, left, "call %d: left", i)
 	}
 	_, err := g.Admit(ctx, helloCall())
 	var ex *budget.ExhaustedError
-	if !errors.As(err, &ex) {
-		t.Fatalf("4th Admit: got %v, want *budget.ExhaustedError", err)
-	}
-	if ex.Remaining != 97_000 || ex.Requested != 301_000 {
-		t.Errorf("exhausted %+v, want remaining 97000 (1,000,000 − 3×301,000), requested 301000", ex)
-	}
-	if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Held != 903_000 || b.Spent != 0 {
-		t.Errorf("balance %+v, want held 903000 spent 0: the refused call must hold nothing", b)
-	}
-	if left, has, err := g.Left(ctx, "glossary"); err != nil || !has || left != 97_000 {
-		t.Errorf("Left = %d %v %v, want 97000 true", left, has, err)
-	}
+	require.ErrorAs(t, err, &ex, "4th Admit")
+	assert.Equal(t, budget.Nanos(97_000), ex.Remaining, "exhausted: remaining 1,000,000 − 3×301,000")
+	assert.Equal(t, budget.Nanos(301_000), ex.Requested, "exhausted: requested")
+	assert.Equal(t, budget.Balance{Held: 903_000}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "balance: the refused call must hold nothing")
+	left, has, err := g.Left(ctx, "glossary")
+	require.NoError(t, err, "Left")
+	assert.True(t, has, "Left: a budget")
+	assert.Equal(t, budget.Nanos(97_000), left, "Left")
 }
 
 func TestSettleReleasesDifference(t *testing.T) {
@@ -279,29 +270,24 @@ func TestSettleReleasesDifference(t *testing.T) {
 			g, l := newGuard(t, cfg, c)
 			ctx := context.Background()
 			tk, err := g.Admit(ctx, helloCall())
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			c.Add(time.Second)
 			ch, err := tk.Settle(ctx, tt.u, budget.Miss)
-			if err != nil {
-				t.Fatal(err)
-			}
-			if ch.Cost != tt.want || !ch.HasBudget || ch.Remaining != limit-tt.want || ch.Expired {
-				t.Errorf("charge %+v, want cost %d remaining %d", ch, tt.want, limit-tt.want)
-			}
-			if want := time.Date(2027, 1, 1, 0, 0, 0, 0, time.UTC); !ch.Resets.Equal(want) {
-				t.Errorf("resets %v, want %v", ch.Resets, want)
-			}
-			if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Spent != tt.want || b.Held != 0 {
-				t.Errorf("balance %+v, want spent %d held 0", b, tt.want)
-			}
-			if _, err := tk.Settle(ctx, tt.u, budget.Miss); !errors.Is(err, guard.ErrSettled) {
-				t.Errorf("second Settle: got %v, want ErrSettled", err)
-			}
+			require.NoError(t, err)
+			assert.Equal(t, tt.want, ch.Cost, "charge: cost")
+			assert.True(t, ch.HasBudget, "charge: has a budget")
+			assert.Equal(t, limit-tt.want, ch.Remaining, "charge: remaining")
+			assert.False(t, ch.Expired, "charge: expired")
+			assert.WithinDuration(t, time.Date(2027, 1, 1, 0, 0, 0, 0, time.UTC), ch.Resets, 0, "charge: resets")
+			assert.Equal(t, budget.Balance{Spent: tt.want}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "balance")
+			_, err = tk.Settle(ctx, tt.u, budget.Miss)
+			assert.ErrorIs(t, err, guard.ErrSettled, "second Settle: got")
 			rows := report(t, l, budget.ByModel)
-			if len(rows) != 1 || rows[0].Spent != tt.want || rows[0].UpstreamCalls != 1 || rows[0].InputTokens != 2 || rows[0].OutputTokens != tt.u.CompletionTokens {
-				t.Errorf("report %+v, want one upstream call costing %d", rows, tt.want)
+			if assert.Len(t, rows, 1, "report") {
+				assert.Equal(t, tt.want, rows[0].Spent, "report: spent")
+				assert.EqualValues(t, 1, rows[0].UpstreamCalls, "report: upstream calls")
+				assert.EqualValues(t, 2, rows[0].InputTokens, "report: input tokens")
+				assert.EqualValues(t, tt.u.CompletionTokens, rows[0].OutputTokens, "report: output tokens")
 			}
 		})
 	}
@@ -331,18 +317,15 @@ func TestFail(t *testing.T) {
 		g, l := newGuard(t, cfg, c)
 		ctx := context.Background()
 		tk, err := g.Admit(ctx, helloCall())
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		ch, err := tk.Fail(ctx, tt.billed)
-		if err != nil || ch.Cost != tt.want {
-			t.Errorf("Fail(billed=%v) = %+v, %v; want cost %d", tt.billed, ch, err, tt.want)
-		}
-		if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Spent != tt.want || b.Held != 0 {
-			t.Errorf("billed=%v: balance %+v, want spent %d held 0", tt.billed, b, tt.want)
-		}
-		if rows := report(t, l, budget.ByTeam); len(rows) != 1 || rows[0].UpstreamCalls != 1 || rows[0].Spent != tt.want {
-			t.Errorf("billed=%v: report %+v, want one upstream call costing %d", tt.billed, rows, tt.want)
+		require.NoError(t, err, "Fail(billed=%v)", tt.billed)
+		assert.Equal(t, tt.want, ch.Cost, "Fail(billed=%v): cost", tt.billed)
+		assert.Equal(t, budget.Balance{Spent: tt.want}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "billed=%v: balance", tt.billed)
+		rows := report(t, l, budget.ByTeam)
+		if assert.Len(t, rows, 1, "billed=%v: report", tt.billed) {
+			assert.EqualValues(t, 1, rows[0].UpstreamCalls, "billed=%v: report's upstream calls", tt.billed)
+			assert.Equal(t, tt.want, rows[0].Spent, "billed=%v: report's spend", tt.billed)
 		}
 	}
 }
@@ -353,21 +336,12 @@ func TestCancelReleasesWithoutJournal(t *testing.T) {
 	cfg.Teams = map[string]guard.TeamPolicy{"glossary": {Budget: &budget.Cap{Limit: usd(t, 1), Period: budget.Month}}}
 	g, l := newGuard(t, cfg, c)
 	tk, err := g.Admit(context.Background(), helloCall())
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := tk.Cancel(context.Background()); err != nil {
-		t.Fatal(err)
-	}
-	if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b != (budget.Balance{}) {
-		t.Errorf("balance %+v after Cancel, want zero", b)
-	}
-	if rows := report(t, l, budget.ByTeam); len(rows) != 0 {
-		t.Errorf("report %+v after Cancel, want nothing journaled", rows)
-	}
-	if _, err := tk.Fail(context.Background(), true); !errors.Is(err, guard.ErrSettled) {
-		t.Errorf("Fail after Cancel: got %v, want ErrSettled", err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, tk.Cancel(context.Background()))
+	assert.Equal(t, budget.Balance{}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "balance after Cancel")
+	assert.Empty(t, report(t, l, budget.ByTeam), "report after Cancel: nothing journaled")
+	_, err = tk.Fail(context.Background(), true)
+	assert.ErrorIs(t, err, guard.ErrSettled, "Fail after Cancel: got")
 }
 
 func TestSavedDoesNotSpend(t *testing.T) {
@@ -378,20 +352,19 @@ func TestSavedDoesNotSpend(t *testing.T) {
 	ctx := context.Background()
 	for range 3 { // more hits than the rate limit allows calls: hits are not limited
 		saved, err := g.Saved(ctx, helloCall(), guard.Usage{PromptTokens: 2, CompletionTokens: 37})
-		if want := budget.Nanos(56_500); err != nil || saved != want { // hand-worked: 2×500 + 37×1500
-			t.Fatalf("Saved = %d, %v; want %d", saved, err, want)
-		}
+		require.NoError(t, err, "Saved")
+		require.Equal(t, budget.Nanos(56_500), saved, "Saved") // hand-worked: 2×500 + 37×1500
 	}
-	if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b != (budget.Balance{}) {
-		t.Errorf("balance %+v after hits, want zero", b)
-	}
+	assert.Equal(t, budget.Balance{}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "balance after hits")
 	rows := report(t, l, budget.ByTeam)
-	if len(rows) != 1 || rows[0].CacheHits != 3 || rows[0].UpstreamCalls != 0 || rows[0].Saved != 3*56_500 || rows[0].Spent != 0 {
-		t.Errorf("report %+v, want 3 hits saving 169500, nothing spent", rows)
+	if assert.Len(t, rows, 1, "report") {
+		assert.EqualValues(t, 3, rows[0].CacheHits, "report: hits")
+		assert.Zero(t, rows[0].UpstreamCalls, "report: upstream calls")
+		assert.Equal(t, budget.Nanos(3*56_500), rows[0].Saved, "report: saved")
+		assert.Zero(t, rows[0].Spent, "report: spent")
 	}
-	if _, err := g.Admit(ctx, helloCall()); err != nil {
-		t.Errorf("first real call after hits: %v (hits must not use the rate limit)", err)
-	}
+	_, err := g.Admit(ctx, helloCall())
+	assert.NoError(t, err, "first real call after hits (hits must not use the rate limit)")
 }
 
 func TestRateLimits(t *testing.T) {
@@ -421,28 +394,20 @@ func TestRateLimits(t *testing.T) {
 			g, l := newGuard(t, cfg, c)
 			ctx := context.Background()
 			for i := range tt.admitted {
-				if _, err := g.Admit(ctx, helloCall()); err != nil {
-					t.Fatalf("call %d: %v", i, err)
-				}
+				_, err := g.Admit(ctx, helloCall())
+				require.NoError(t, err, "call %d", i)
 			}
 			_, err := g.Admit(ctx, helloCall())
 			var le *ratelimit.LimitedError
-			if !errors.As(err, &le) {
-				t.Fatalf("call %d: got %v, want *ratelimit.LimitedError", tt.admitted, err)
-			}
+			require.ErrorAs(t, err, &le, "call %d", tt.admitted)
 			// x/time/rate computes the delay in float seconds; allow a
 			// microsecond of rounding.
-			if d := le.RetryAfter - tt.wantRetry; d < -time.Microsecond || d > time.Microsecond {
-				t.Errorf("retry after %v, want %v", le.RetryAfter, tt.wantRetry)
-			}
+			assert.InDelta(t, tt.wantRetry, le.RetryAfter, float64(time.Microsecond), "retry after")
 			want := budget.Nanos(tt.admitted) * 301_000
-			if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Held != want {
-				t.Errorf("held %d, want %d: the refused call's reservation must be released", b.Held, want)
-			}
+			assert.Equal(t, want, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}).Held, "held: the refused call's reservation must be released")
 			c.Add(tt.wantRetry)
-			if _, err := g.Admit(ctx, helloCall()); err != nil {
-				t.Errorf("after waiting the retry-after: %v", err)
-			}
+			_, err = g.Admit(ctx, helloCall())
+			assert.NoError(t, err, "after waiting the retry-after")
 		})
 	}
 }
@@ -457,19 +422,16 @@ func TestQueueWaitsWithinMaxWait(t *testing.T) {
 	cfg.Teams = map[string]guard.TeamPolicy{"glossary": {Limits: guard.Limits{TokensPerMinute: 202}}}
 	g, _ := newGuard(t, cfg, c)
 	ctx := context.Background()
-	if _, err := g.Admit(ctx, helloCall()); err != nil {
-		t.Fatal(err)
-	}
+	_, err := g.Admit(ctx, helloCall())
+	require.NoError(t, err)
 	call := helloCall()
 	call.MaxTokens = 0 // 2 prompt tokens, no output
-	if _, err := g.Admit(ctx, call); err != nil {
-		t.Errorf("queued call: %v, want admitted after waiting", err)
-	}
+	_, err = g.Admit(ctx, call)
+	assert.NoError(t, err, "queued call: admitted after waiting")
 	big := helloCall()
 	big.MaxTokens = 200
-	if _, err := g.Admit(ctx, big); !errors.Is(err, guard.ErrTooLarge) {
-		t.Errorf("call of 402 tokens under a 202-token limit: got %v, want ErrTooLarge", err)
-	}
+	_, err = g.Admit(ctx, big)
+	assert.ErrorIs(t, err, guard.ErrTooLarge, "call of 402 tokens under a 202-token limit: got")
 }
 
 func TestExpireChargesInFull(t *testing.T) {
@@ -480,28 +442,23 @@ func TestExpireChargesInFull(t *testing.T) {
 	g, l := newGuard(t, cfg, c)
 	ctx := context.Background()
 	tk, err := g.Admit(ctx, helloCall())
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	c.Add(time.Minute)
-	if n, err := g.Expire(ctx); err != nil || n != 1 {
-		t.Fatalf("Expire = %d, %v; want 1", n, err)
-	}
-	if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Spent != 301_000 || b.Held != 0 {
-		t.Errorf("balance %+v, want the reservation charged in full (301000)", b)
-	}
+	n, err := g.Expire(ctx)
+	require.NoError(t, err, "Expire")
+	require.Equal(t, 1, n, "Expire")
+	assert.Equal(t, budget.Balance{Spent: 301_000}, balance(t, l, c.Now(), budget.Scope{Team: "glossary"}), "balance: the reservation charged in full")
 	// The holder comes back late: charged the reserved amount, not
 	// twice, and the journal still sums to the ledger.
 	ch, err := tk.Settle(ctx, guard.Usage{PromptTokens: 2, CompletionTokens: 5}, budget.Miss)
-	if err != nil || !ch.Expired || ch.Cost != 301_000 {
-		t.Errorf("late Settle = %+v, %v; want expired, cost 301000", ch, err)
-	}
-	if b := balance(t, l, c.Now(), budget.Scope{Team: "glossary"}); b.Spent != 301_000 {
-		t.Errorf("spent %d after late settle, want 301000", b.Spent)
-	}
+	require.NoError(t, err, "late Settle")
+	assert.True(t, ch.Expired, "late Settle: expired")
+	assert.Equal(t, budget.Nanos(301_000), ch.Cost, "late Settle: cost")
+	assert.Equal(t, budget.Nanos(301_000), balance(t, l, c.Now(), budget.Scope{Team: "glossary"}).Spent, "spent after late settle")
 	rows := report(t, l, budget.ByTeam)
-	if len(rows) != 1 || rows[0].Spent != 301_000 || rows[0].Requests != 1 {
-		t.Errorf("report %+v, want one request and 301000 spent", rows)
+	if assert.Len(t, rows, 1, "report") {
+		assert.Equal(t, budget.Nanos(301_000), rows[0].Spent, "report: spent")
+		assert.EqualValues(t, 1, rows[0].Requests, "report: requests")
 	}
 }
 
@@ -516,23 +473,20 @@ func TestRunSweeps(t *testing.T) {
 	// expired reservation.
 	j := notifyJournal{Journal: l, appended: expired}
 	g, err := guard.New(cfg, l, j, &ratelimit.Local{}, c.Now)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ctx, cancel := context.WithCancel(context.Background())
-	if _, err := g.Admit(ctx, helloCall()); err != nil {
-		t.Fatal(err)
-	}
+	_, err = g.Admit(ctx, helloCall())
+	require.NoError(t, err)
 	c.Add(time.Hour)
 	done := make(chan error, 1)
-	go func() { done <- g.Run(ctx, func(err error) { t.Error(err) }) }()
+	go func() { done <- g.Run(ctx, func(err error) { assert.NoError(t, err, "Run") }) }()
 	<-expired
 	cancel()
-	if err := <-done; !errors.Is(err, context.Canceled) {
-		t.Errorf("Run returned %v, want context.Canceled", err)
-	}
-	if rows := report(t, l, budget.ByTeam); len(rows) != 1 || rows[0].Spent != 301_000 || rows[0].Requests != 0 {
-		t.Errorf("report %+v, want one expired entry of 301000", rows)
+	assert.ErrorIs(t, <-done, context.Canceled, "Run returned")
+	rows := report(t, l, budget.ByTeam)
+	if assert.Len(t, rows, 1, "report: one expired entry") {
+		assert.Equal(t, budget.Nanos(301_000), rows[0].Spent, "report: spent")
+		assert.Zero(t, rows[0].Requests, "report: requests")
 	}
 }
 
@@ -577,13 +531,11 @@ func TestNewRejectsBadConfig(t *testing.T) {
 	for _, tt := range tests {
 		cfg := baseConfig()
 		tt.edit(&cfg)
-		if _, err := guard.New(cfg, l, l, &ratelimit.Local{}, nil); err == nil {
-			t.Errorf("%s: New accepted it", tt.name)
-		}
+		_, err := guard.New(cfg, l, l, &ratelimit.Local{}, nil)
+		assert.Error(t, err, "%s: New", tt.name)
 	}
-	if _, err := guard.New(baseConfig(), l, l, &ratelimit.Local{}, nil); err != nil {
-		t.Errorf("good config: %v", err)
-	}
+	_, err := guard.New(baseConfig(), l, l, &ratelimit.Local{}, nil)
+	assert.NoError(t, err, "good config")
 }
 
 func TestKeyID(t *testing.T) {
@@ -591,9 +543,7 @@ func TestKeyID(t *testing.T) {
 	for i := range sum {
 		sum[i] = byte(i)
 	}
-	if got, want := guard.KeyID(sum), "000102030405"; got != want {
-		t.Errorf("KeyID = %q, want %q", got, want)
-	}
+	assert.Equal(t, "000102030405", guard.KeyID(sum), "KeyID")
 }
 
 func TestKeyBudget(t *testing.T) {
@@ -605,19 +555,18 @@ func TestKeyBudget(t *testing.T) {
 	}}
 	g, _ := newGuard(t, cfg, c)
 	ctx := context.Background()
-	if _, err := g.Admit(ctx, helloCall()); err != nil {
-		t.Fatal(err)
-	}
 	_, err := g.Admit(ctx, helloCall())
+	require.NoError(t, err)
+	_, err = g.Admit(ctx, helloCall())
 	var ex *budget.ExhaustedError
-	if !errors.As(err, &ex) || ex.Scope.Key != "0123456789ab" || ex.Remaining != 99_000 {
-		t.Errorf("second call of the key: got %v, want the key's cap refusing with 99000 left", err)
+	if assert.ErrorAs(t, err, &ex, "second call of the key") {
+		assert.Equal(t, "0123456789ab", ex.Scope.Key, "second call of the key: the key's cap refuses")
+		assert.Equal(t, budget.Nanos(99_000), ex.Remaining, "second call of the key: left")
 	}
 	other := helloCall()
 	other.KeyID = "ba9876543210"
-	if _, err := g.Admit(ctx, other); err != nil {
-		t.Errorf("another key of the team: %v", err)
-	}
+	_, err = g.Admit(ctx, other)
+	assert.NoError(t, err, "another key of the team")
 }
 
 // noOverspend runs 64 clients calling until the budget runs out and
@@ -669,25 +618,17 @@ func noOverspend(t *testing.T, newGuards func(cfg guard.Config) ([]*guard.Guard,
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Fatal(err)
+		require.NoError(t, err)
 	}
-	if refused.Load() == 0 {
-		t.Fatalf("the budget never ran out; the test proves nothing")
-	}
+	require.NotZero(t, refused.Load(), "the budget never ran out; the test proves nothing")
 	total := budget.Nanos(charged.Load())
-	if total > limit {
-		t.Errorf("charged %d, above the budget %d", total, limit)
-	}
+	assert.LessOrEqual(t, total, limit, "charged above the budget")
 	b, err := l.Balance(ctx, time.Now(), budget.Scope{Team: "glossary"}, budget.Month)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if b.Spent != total || b.Held != 0 {
-		t.Errorf("ledger %+v, want spent = sum of charges %d, held 0", b, total)
-	}
+	require.NoError(t, err)
+	assert.Equal(t, budget.Balance{Spent: total}, b, "ledger: spent = sum of charges, nothing held")
 	rows := report(t, l, budget.ByTeam)
-	if len(rows) != 1 || rows[0].Spent != total {
-		t.Errorf("journal report %+v, want spent %d", rows, total)
+	if assert.Len(t, rows, 1, "journal report") {
+		assert.Equal(t, total, rows[0].Spent, "journal report: spent")
 	}
 }
 
@@ -695,9 +636,7 @@ func TestNoOverspendEmbedded(t *testing.T) {
 	noOverspend(t, func(cfg guard.Config) ([]*guard.Guard, backend) {
 		l := openBolt(t)
 		g, err := guard.New(cfg, l, l, &ratelimit.Local{}, nil)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		return []*guard.Guard{g}, l
 	})
 }
@@ -714,9 +653,7 @@ func TestNoOverspendRedis(t *testing.T) {
 			c := srv.Client(t)
 			l = redisledger.New(c, redisledger.Options{})
 			g, err := guard.New(cfg, l, l, redisrate.New(c, redisrate.Options{}), nil)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			guards = append(guards, g)
 		}
 		return guards, l

@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/budget"
 )
 
@@ -54,30 +57,20 @@ func testEveryPeriodCounts(t *testing.T, open Open) {
 	l := open(t, nil)()
 	for _, caps := range []budget.Caps{{}, {Team: dayCap(1000)}, {Key: &budget.Cap{Limit: 1000, Period: budget.Month}, Global: &budget.Cap{Limit: 1000, Period: budget.Week}}} {
 		res, err := l.Reserve(ctx, t0, req("lab", "k1", 100, caps))
-		if err != nil {
-			t.Fatalf("Reserve under %+v: %v", caps, err)
-		}
-		if _, err := l.Settle(ctx, t0, res, 60); err != nil {
-			t.Fatalf("Settle: %v", err)
-		}
+		require.NoError(t, err, "Reserve under %+v", caps)
+		_, err = l.Settle(ctx, t0, res, 60)
+		require.NoError(t, err, "Settle")
 	}
 	held, err := l.Reserve(ctx, t0, req("lab", "k1", 25, budget.Caps{}))
-	if err != nil {
-		t.Fatalf("Reserve: %v", err)
-	}
+	require.NoError(t, err, "Reserve")
 	for _, p := range budget.Periods {
 		for _, s := range []budget.Scope{{Team: "lab", Key: "k1"}, {Team: "lab"}} {
-			if got := balance(t, l, t0, s, p); got != (budget.Balance{Spent: 180, Held: 25}) {
-				t.Errorf("%v this %s = %+v, want spent 180, held 25", s, p, got)
-			}
+			assert.Equal(t, budget.Balance{Spent: 180, Held: 25}, balance(t, l, t0, s, p), "%v this %s", s, p)
 		}
-		if got := balance(t, l, t0, budget.Scope{}, p); got.Spent != 180 {
-			t.Errorf("global this %s = %+v, want spent 180", p, got)
-		}
+		assert.Equal(t, budget.Nanos(180), balance(t, l, t0, budget.Scope{}, p).Spent, "global spend this %s", p)
 	}
-	if _, err := l.Settle(ctx, t0, held, 0); err != nil {
-		t.Fatalf("Settle: %v", err)
-	}
+	_, err = l.Settle(ctx, t0, held, 0)
+	require.NoError(t, err, "Settle")
 }
 
 // testLaterCapCountsSpend spends without caps, then asks under a cap of
@@ -98,12 +91,9 @@ func testLaterCapCountsSpend(t *testing.T, open Open) {
 			l := open(t, nil)()
 			for _, team := range []string{"lab", "kiln"} { // the global cap counts both
 				res, err := l.Reserve(ctx, t0, req(team, "k1", 400, budget.Caps{}))
-				if err != nil {
-					t.Fatalf("Reserve: %v", err)
-				}
-				if _, err := l.Settle(ctx, t0, res, 350); err != nil {
-					t.Fatalf("Settle: %v", err)
-				}
+				require.NoError(t, err, "Reserve")
+				_, err = l.Settle(ctx, t0, res, 350)
+				require.NoError(t, err, "Settle")
 			}
 			want := budget.Nanos(650) // 1000 - 350
 			if tt.scope.Team == "" {
@@ -111,16 +101,12 @@ func testLaterCapCountsSpend(t *testing.T, open Open) {
 			}
 			_, err := l.Reserve(ctx, t0.Add(time.Hour), req("lab", "k1", want+1, tt.caps))
 			var ex *budget.ExhaustedError
-			if !errors.As(err, &ex) || ex.Scope != tt.scope || ex.Remaining != want {
-				t.Fatalf("Reserve of %d under a new %s cap: %v, want the cap refusing with %d left", want+1, tt.name, err, want)
-			}
+			require.ErrorAs(t, err, &ex, "Reserve of %d under a new %s cap", want+1, tt.name)
+			require.Equal(t, tt.scope, ex.Scope, "the refusing cap's scope")
+			require.Equal(t, want, ex.Remaining, "what the new %s cap leaves", tt.name)
 			res, err := l.Reserve(ctx, t0.Add(time.Hour), req("lab", "k1", want, tt.caps))
-			if err != nil {
-				t.Fatalf("Reserve of exactly what is left: %v", err)
-			}
-			if res.Remaining != 0 {
-				t.Errorf("Remaining = %d, want 0", res.Remaining)
-			}
+			require.NoError(t, err, "Reserve of exactly what is left")
+			assert.Zero(t, res.Remaining, "Remaining")
 		})
 	}
 }
@@ -140,9 +126,7 @@ func req(team, key string, amount budget.Nanos, caps budget.Caps) budget.Request
 func balance(t *testing.T, l budget.Ledger, now time.Time, s budget.Scope, p budget.Period) budget.Balance {
 	t.Helper()
 	b, err := l.Balance(context.Background(), now, s, p)
-	if err != nil {
-		t.Fatalf("Balance(%v, %s): %v", s, p, err)
-	}
+	require.NoError(t, err, "Balance(%v, %s)", s, p)
 	return b
 }
 
@@ -165,51 +149,34 @@ func testReserveSettle(t *testing.T, open Open) {
 			l := open(t, nil)()
 			caps := budget.Caps{Team: dayCap(1000), Key: dayCap(500)}
 			res, err := l.Reserve(ctx, t0, req("lab", "k1", tt.amount, caps))
-			if err != nil {
-				t.Fatalf("Reserve: %v", err)
-			}
-			if res.ID == "" || res.Amount != tt.amount || res.Team != "lab" || res.Key != "k1" {
-				t.Errorf("Reserve = %+v, want an id, amount %d, team lab, key k1", res, tt.amount)
-			}
-			if got, want := res.Deadline, t0.Add(time.Minute); !got.Equal(want) {
-				t.Errorf("Deadline = %v, want %v", got, want)
-			}
-			if got, want := res.Remaining, 500-tt.amount; got != want {
-				t.Errorf("Reservation.Remaining = %d, want %d (key cap is tighter)", got, want)
-			}
+			require.NoError(t, err, "Reserve")
+			assert.NotEmpty(t, res.ID, "Reserve: an id")
+			assert.Equal(t, tt.amount, res.Amount, "Reserve: amount")
+			assert.Equal(t, "lab", res.Team, "Reserve: team")
+			assert.Equal(t, "k1", res.Key, "Reserve: key")
+			assert.True(t, res.Deadline.Equal(t0.Add(time.Minute)), "Deadline = %v, want %v", res.Deadline, t0.Add(time.Minute))
+			assert.Equal(t, 500-tt.amount, res.Remaining, "Reservation.Remaining (key cap is tighter)")
 			for _, s := range []budget.Scope{{Team: "lab"}, {Team: "lab", Key: "k1"}} {
-				if got := balance(t, l, t0, s, budget.Day); got != (budget.Balance{Held: tt.amount}) {
-					t.Errorf("%v after Reserve = %+v, want held %d", s, got, tt.amount)
-				}
+				assert.Equal(t, budget.Balance{Held: tt.amount}, balance(t, l, t0, s, budget.Day), "%v after Reserve", s)
 			}
 			st, err := l.Settle(ctx, t0.Add(time.Second), res, tt.actual)
-			if err != nil {
-				t.Fatalf("Settle: %v", err)
-			}
+			require.NoError(t, err, "Settle")
 			want := budget.Settlement{Charged: tt.wantCharged, Released: tt.wantReleased, Remaining: max(500-tt.wantCharged, 0)}
-			if st != want {
-				t.Errorf("Settle = %+v, want %+v", st, want)
-			}
+			assert.Equal(t, want, st, "Settle")
 			for _, s := range []budget.Scope{{Team: "lab"}, {Team: "lab", Key: "k1"}} {
-				if got := balance(t, l, t0, s, budget.Day); got != (budget.Balance{Spent: tt.wantCharged}) {
-					t.Errorf("%v after Settle = %+v, want spent %d", s, got, tt.wantCharged)
-				}
+				assert.Equal(t, budget.Balance{Spent: tt.wantCharged}, balance(t, l, t0, s, budget.Day), "%v after Settle", s)
 			}
 		})
 	}
 	t.Run("uncapped", func(t *testing.T) {
 		l := open(t, nil)()
 		res, err := l.Reserve(context.Background(), t0, req("lab", "", 7, budget.Caps{}))
-		if err != nil {
-			t.Fatalf("Reserve: %v", err)
-		}
-		if res.Remaining != -1 {
-			t.Errorf("Remaining = %d, want -1 without caps", res.Remaining)
-		}
+		require.NoError(t, err, "Reserve")
+		assert.Equal(t, budget.Nanos(-1), res.Remaining, "Remaining without caps")
 		st, err := l.Settle(context.Background(), t0, res, 5)
-		if err != nil || st.Charged != 5 || st.Remaining != -1 {
-			t.Errorf("Settle = %+v, %v; want charged 5, remaining -1", st, err)
-		}
+		require.NoError(t, err, "Settle")
+		assert.Equal(t, budget.Nanos(5), st.Charged, "Settle: charged")
+		assert.Equal(t, budget.Nanos(-1), st.Remaining, "Settle: remaining without caps")
 	})
 }
 
@@ -232,21 +199,15 @@ func testExhausted(t *testing.T, open Open) {
 			ctx := context.Background()
 			l := open(t, nil)()
 			first, err := l.Reserve(ctx, t0, req("lab", "k1", 600, tt.caps))
-			if err != nil {
-				t.Fatalf("first Reserve: %v", err)
-			}
-			if _, err := l.Settle(ctx, t0, first, 600); err != nil {
-				t.Fatalf("Settle: %v", err)
-			}
+			require.NoError(t, err, "first Reserve")
+			_, err = l.Settle(ctx, t0, first, 600)
+			require.NoError(t, err, "Settle")
 			_, err = l.Reserve(ctx, t0, req("lab", "k1", 500, tt.caps))
 			var ex *budget.ExhaustedError
-			if !errors.As(err, &ex) || !errors.Is(err, budget.ErrExhausted) {
-				t.Fatalf("second Reserve error = %v, want an *ExhaustedError", err)
-			}
+			require.ErrorAs(t, err, &ex, "second Reserve")
+			require.ErrorIs(t, err, budget.ErrExhausted, "second Reserve")
 			want := budget.ExhaustedError{Scope: tt.wantScope, Period: budget.Day, Limit: tt.wantLimit, Remaining: tt.wantLeft, Requested: 500}
-			if *ex != want {
-				t.Errorf("ExhaustedError = %+v, want %+v", *ex, want)
-			}
+			assert.Equal(t, want, *ex, "ExhaustedError")
 			scopes := []budget.Scope{{Team: "lab"}}
 			if tt.caps.Key != nil {
 				scopes = append(scopes, budget.Scope{Team: "lab", Key: "k1"})
@@ -255,14 +216,11 @@ func testExhausted(t *testing.T, open Open) {
 				scopes = append(scopes, budget.Scope{})
 			}
 			for _, s := range scopes {
-				if got := balance(t, l, t0, s, budget.Day); got != (budget.Balance{Spent: 600}) {
-					t.Errorf("%v after refusal = %+v, want spent 600 and nothing held", s, got)
-				}
+				assert.Equal(t, budget.Balance{Spent: 600}, balance(t, l, t0, s, budget.Day), "%v after refusal", s)
 			}
 			// What is left still fits.
-			if _, err := l.Reserve(ctx, t0, req("lab", "k1", tt.wantLeft, tt.caps)); err != nil {
-				t.Errorf("Reserve of the remaining %d: %v", tt.wantLeft, err)
-			}
+			_, err = l.Reserve(ctx, t0, req("lab", "k1", tt.wantLeft, tt.caps))
+			assert.NoError(t, err, "Reserve of the remaining %d", tt.wantLeft)
 		})
 	}
 }
@@ -271,24 +229,17 @@ func testNotHeld(t *testing.T, open Open) {
 	ctx := context.Background()
 	l := open(t, nil)()
 	res, err := l.Reserve(ctx, t0, req("lab", "", 100, budget.Caps{Team: dayCap(1000), Global: dayCap(1000)}))
-	if err != nil {
-		t.Fatalf("Reserve: %v", err)
-	}
-	if _, err := l.Settle(ctx, t0, res, 10); err != nil {
-		t.Fatalf("Settle: %v", err)
-	}
-	if _, err := l.Settle(ctx, t0, res, 10); !errors.Is(err, budget.ErrNotHeld) {
-		t.Errorf("second Settle error = %v, want ErrNotHeld", err)
-	}
+	require.NoError(t, err, "Reserve")
+	_, err = l.Settle(ctx, t0, res, 10)
+	require.NoError(t, err, "Settle")
+	_, err = l.Settle(ctx, t0, res, 10)
+	assert.ErrorIs(t, err, budget.ErrNotHeld, "second Settle")
 	bogus := res
 	bogus.ID = "no-such-reservation"
-	if _, err := l.Settle(ctx, t0, bogus, 10); !errors.Is(err, budget.ErrNotHeld) {
-		t.Errorf("Settle of an unknown id: error = %v, want ErrNotHeld", err)
-	}
+	_, err = l.Settle(ctx, t0, bogus, 10)
+	assert.ErrorIs(t, err, budget.ErrNotHeld, "Settle of an unknown id")
 	for _, s := range []budget.Scope{{}, {Team: "lab"}} {
-		if got := balance(t, l, t0, s, budget.Day); got != (budget.Balance{Spent: 10}) {
-			t.Errorf("%v = %+v, want spent 10 once", s, got)
-		}
+		assert.Equal(t, budget.Balance{Spent: 10}, balance(t, l, t0, s, budget.Day), "%v: the charge counts once", s)
 	}
 }
 
@@ -315,24 +266,18 @@ func testInvalid(t *testing.T, open Open) {
 		t.Run(tt.name, func(t *testing.T) {
 			r := good
 			tt.edit(&r)
-			if _, err := l.Reserve(ctx, t0, r); !errors.Is(err, budget.ErrInvalid) {
-				t.Errorf("Reserve(%+v) error = %v, want ErrInvalid", r, err)
-			}
+			_, err := l.Reserve(ctx, t0, r)
+			assert.ErrorIs(t, err, budget.ErrInvalid, "Reserve(%+v)", r)
 		})
 	}
 	res, err := l.Reserve(ctx, t0, good)
-	if err != nil {
-		t.Fatalf("Reserve(good): %v", err)
-	}
-	if _, err := l.Settle(ctx, t0, res, -1); !errors.Is(err, budget.ErrInvalid) {
-		t.Errorf("Settle(-1) error = %v, want ErrInvalid", err)
-	}
-	if _, err := l.Balance(ctx, t0, budget.Scope{Key: "k1"}, budget.Day); !errors.Is(err, budget.ErrInvalid) {
-		t.Errorf("Balance of a key without team: error = %v, want ErrInvalid", err)
-	}
-	if _, err := l.Balance(ctx, t0, budget.Scope{Team: "lab"}, "year"); !errors.Is(err, budget.ErrInvalid) {
-		t.Errorf("Balance with period year: error = %v, want ErrInvalid", err)
-	}
+	require.NoError(t, err, "Reserve(good)")
+	_, err = l.Settle(ctx, t0, res, -1)
+	assert.ErrorIs(t, err, budget.ErrInvalid, "Settle(-1)")
+	_, err = l.Balance(ctx, t0, budget.Scope{Key: "k1"}, budget.Day)
+	assert.ErrorIs(t, err, budget.ErrInvalid, "Balance of a key without team")
+	_, err = l.Balance(ctx, t0, budget.Scope{Team: "lab"}, "year")
+	assert.ErrorIs(t, err, budget.ErrInvalid, "Balance with period year")
 }
 
 func testPeriods(t *testing.T, open Open) {
@@ -357,35 +302,22 @@ func testPeriods(t *testing.T, open Open) {
 			r := req("lab", "", 100, caps)
 			r.Lease = time.Hour // settled before its deadline
 			res, err := l.Reserve(ctx, tt.before, r)
-			if err != nil {
-				t.Fatalf("Reserve before the boundary: %v", err)
-			}
+			require.NoError(t, err, "Reserve before the boundary")
 			// Settled after the boundary, the charge still belongs to the
 			// period the reservation was made in.
-			if _, err := l.Settle(ctx, tt.after, res, 70); err != nil {
-				t.Fatalf("Settle: %v", err)
-			}
-			if got := balance(t, l, tt.before, team, tt.period); got.Spent != 70 {
-				t.Errorf("old period spent = %d, want 70", got.Spent)
-			}
-			if got := balance(t, l, tt.after, team, tt.period); got != (budget.Balance{}) {
-				t.Errorf("new period = %+v, want empty", got)
-			}
+			_, err = l.Settle(ctx, tt.after, res, 70)
+			require.NoError(t, err, "Settle")
+			assert.Equal(t, budget.Nanos(70), balance(t, l, tt.before, team, tt.period).Spent, "old period spent")
+			assert.Equal(t, budget.Balance{}, balance(t, l, tt.after, team, tt.period), "new period")
 			// The whole limit is available again after the boundary.
 			res2, err := l.Reserve(ctx, tt.after, req("lab", "", 100, caps))
-			if err != nil {
-				t.Fatalf("Reserve of the full limit after the boundary: %v", err)
-			}
-			if _, err := l.Settle(ctx, tt.after, res2, 100); err != nil {
-				t.Fatalf("Settle: %v", err)
-			}
-			if _, err := l.Reserve(ctx, tt.sameSpan, req("lab", "", 1, caps)); !errors.Is(err, budget.ErrExhausted) {
-				t.Errorf("Reserve later in the same %s: error = %v, want ErrExhausted", tt.period, err)
-			}
+			require.NoError(t, err, "Reserve of the full limit after the boundary")
+			_, err = l.Settle(ctx, tt.after, res2, 100)
+			require.NoError(t, err, "Settle")
+			_, err = l.Reserve(ctx, tt.sameSpan, req("lab", "", 1, caps))
+			assert.ErrorIs(t, err, budget.ErrExhausted, "Reserve later in the same %s", tt.period)
 			// Every charge counts in every period, capped or not.
-			if got := balance(t, l, tt.before, team, budget.Total); got != (budget.Balance{Spent: 170}) {
-				t.Errorf("total sum = %+v, want spent 170 (every charge counts in every period)", got)
-			}
+			assert.Equal(t, budget.Balance{Spent: 170}, balance(t, l, tt.before, team, budget.Total), "total sum")
 		})
 	}
 }
@@ -399,51 +331,38 @@ func testExpire(t *testing.T, open Open) {
 		r := req("lab", "", budget.Nanos(100*(i+1)), caps)
 		r.Lease = lease
 		res, err := l.Reserve(ctx, t0, r)
-		if err != nil {
-			t.Fatalf("Reserve: %v", err)
-		}
+		require.NoError(t, err, "Reserve")
 		held = append(held, res)
 	}
-	if got, err := l.Expire(ctx, t0.Add(999*time.Millisecond)); err != nil || len(got) != 0 {
-		t.Fatalf("Expire before any deadline = %v, %v; want none", got, err)
-	}
+	none, err := l.Expire(ctx, t0.Add(999*time.Millisecond))
+	require.NoError(t, err, "Expire before any deadline")
+	require.Empty(t, none, "Expire before any deadline")
 	got, err := l.Expire(ctx, t0.Add(time.Second)) // exactly the first deadline
-	if err != nil {
-		t.Fatalf("Expire: %v", err)
-	}
-	if len(got) != 1 || got[0].ID != held[0].ID || got[0].Amount != 100 {
-		t.Fatalf("Expire at the first deadline = %+v, want reservation %s of 100", got, held[0].ID)
-	}
+	require.NoError(t, err, "Expire")
+	require.Len(t, got, 1, "Expire at the first deadline")
+	require.Equal(t, held[0].ID, got[0].ID, "Expire at the first deadline")
+	require.Equal(t, budget.Nanos(100), got[0].Amount, "Expire at the first deadline")
 	for _, s := range []budget.Scope{{}, {Team: "lab"}} {
-		if b := balance(t, l, t0, s, budget.Day); b != (budget.Balance{Spent: 100, Held: 500}) {
-			t.Errorf("%v after first expiry = %+v, want spent 100 held 500", s, b)
-		}
+		assert.Equal(t, budget.Balance{Spent: 100, Held: 500}, balance(t, l, t0, s, budget.Day), "%v after first expiry", s)
 	}
 	// The expired holder comes back: it is not refunded.
-	if _, err := l.Settle(ctx, t0.Add(time.Second), held[0], 1); !errors.Is(err, budget.ErrNotHeld) {
-		t.Errorf("Settle after expiry: error = %v, want ErrNotHeld", err)
-	}
+	_, err = l.Settle(ctx, t0.Add(time.Second), held[0], 1)
+	assert.ErrorIs(t, err, budget.ErrNotHeld, "Settle after expiry")
 	// Settling past the deadline before any sweep charges at least the
 	// reserved amount.
 	st, err := l.Settle(ctx, t0.Add(2*time.Second), held[1], 50)
-	if err != nil {
-		t.Fatalf("late Settle: %v", err)
-	}
-	if want := (budget.Settlement{Charged: 200, Expired: true, Remaining: 10*usd - 300 - 300}); st != want {
-		t.Errorf("late Settle = %+v, want %+v", st, want)
-	}
+	require.NoError(t, err, "late Settle")
+	assert.Equal(t, budget.Settlement{Charged: 200, Expired: true, Remaining: 10*usd - 300 - 300}, st, "late Settle")
 	// A late overrun is charged in full.
 	st, err = l.Settle(ctx, t0.Add(time.Hour), held[2], 450)
-	if err != nil || st.Charged != 450 || !st.Expired {
-		t.Errorf("late overrun Settle = %+v, %v; want charged 450, expired", st, err)
-	}
-	if got, err := l.Expire(ctx, t0.Add(time.Hour)); err != nil || len(got) != 0 {
-		t.Errorf("Expire after all settled = %v, %v; want none", got, err)
-	}
+	require.NoError(t, err, "late overrun Settle")
+	assert.Equal(t, budget.Nanos(450), st.Charged, "late overrun Settle: charged")
+	assert.True(t, st.Expired, "late overrun Settle: expired")
+	none, err = l.Expire(ctx, t0.Add(time.Hour))
+	assert.NoError(t, err, "Expire after all settled")
+	assert.Empty(t, none, "Expire after all settled")
 	for _, s := range []budget.Scope{{}, {Team: "lab"}} {
-		if b := balance(t, l, t0, s, budget.Day); b != (budget.Balance{Spent: 750}) {
-			t.Errorf("%v at the end = %+v, want spent 750, nothing held", s, b)
-		}
+		assert.Equal(t, budget.Balance{Spent: 750}, balance(t, l, t0, s, budget.Day), "%v at the end: nothing held", s)
 	}
 }
 
@@ -460,9 +379,7 @@ func testExpireOnce(t *testing.T, open Open) {
 	for i := range n {
 		team := []string{"lab", "ops"}[i%2]
 		res, err := ls[i%3].Reserve(ctx, t0, req(team, "", budget.Nanos(1000+i), caps))
-		if err != nil {
-			t.Fatalf("Reserve %d: %v", i, err)
-		}
+		require.NoError(t, err, "Reserve %d", i)
 		want += res.Amount
 		ids[res.ID] = true
 	}
@@ -489,25 +406,20 @@ func testExpireOnce(t *testing.T, open Open) {
 	}
 	close(start)
 	wg.Wait()
-	if len(bad) > 0 {
-		t.Fatalf("Expire errors: %v", bad)
-	}
+	require.Empty(t, bad, "Expire errors")
 	seen := map[string]bool{}
 	for _, r := range got {
-		if seen[r.ID] || !ids[r.ID] {
-			t.Errorf("reservation %s returned twice or unknown", r.ID)
-		}
+		assert.False(t, seen[r.ID], "reservation %s returned twice", r.ID)
+		assert.True(t, ids[r.ID], "reservation %s unknown", r.ID)
 		seen[r.ID] = true
 	}
-	if len(seen) != n {
-		t.Errorf("Expire returned %d reservations, want %d", len(seen), n)
-	}
+	assert.Len(t, seen, n, "reservations Expire returned")
 	g := balance(t, ls[0], t0, budget.Scope{}, budget.Day)
 	lab := balance(t, ls[1], t0, budget.Scope{Team: "lab"}, budget.Day)
 	ops := balance(t, ls[2], t0, budget.Scope{Team: "ops"}, budget.Day)
-	if g != (budget.Balance{Spent: want}) || lab.Spent+ops.Spent != want || lab.Held+ops.Held != 0 {
-		t.Errorf("after expiry global %+v, lab %+v, ops %+v; want all %d spent, nothing held", g, lab, ops, want)
-	}
+	assert.Equal(t, budget.Balance{Spent: want}, g, "global after expiry")
+	assert.Equal(t, want, lab.Spent+ops.Spent, "teams' spend after expiry (lab %+v, ops %+v)", lab, ops)
+	assert.Zero(t, lab.Held+ops.Held, "held after expiry")
 }
 
 // testNoOverspend runs 64 clients on 3 ledger instances against a budget
@@ -577,31 +489,19 @@ func testNoOverspend(t *testing.T, open Open, globalBinding bool) {
 	}
 	close(start)
 	wg.Wait()
-	if len(errs) > 0 {
-		t.Fatalf("%d errors, first: %v", len(errs), errs[0])
-	}
-	if refusals == 0 || successes == 0 {
-		t.Fatalf("%d successes, %d refusals: the budget must run out part-way", successes, refusals)
-	}
+	require.Empty(t, errs, "errors")
+	require.True(t, refusals > 0 && successes > 0, "%d successes, %d refusals: the budget must run out part-way", successes, refusals)
 	var total budget.Nanos
 	for _, team := range teams {
 		total += charged[team]
 		b := balance(t, ls[0], t0, budget.Scope{Team: team}, budget.Day)
-		if b != (budget.Balance{Spent: charged[team]}) {
-			t.Errorf("team %s ledger = %+v, want spent %d (the sum charged), nothing held", team, b, charged[team])
-		}
-		if charged[team] > limit {
-			t.Errorf("team %s charged %s USD, above its limit %s", team, charged[team], budget.Nanos(limit))
-		}
+		assert.Equal(t, budget.Balance{Spent: charged[team]}, b, "team %s ledger: the sum charged, nothing held", team)
+		assert.LessOrEqual(t, charged[team], budget.Nanos(limit), "team %s charged above its limit", team)
 	}
 	if globalBinding {
-		if g := balance(t, ls[1], t0, budget.Scope{}, budget.Day); g != (budget.Balance{Spent: total}) {
-			t.Errorf("global ledger = %+v, want spent %d, nothing held", g, total)
-		}
+		assert.Equal(t, budget.Balance{Spent: total}, balance(t, ls[1], t0, budget.Scope{}, budget.Day), "global ledger: spent in all, nothing held")
 	}
-	if total > limit {
-		t.Errorf("charged %s USD in all, above the limit %s", total, budget.Nanos(limit))
-	}
+	assert.LessOrEqual(t, total, budget.Nanos(limit), "charged in all above the limit")
 	t.Logf("%d reservations, %d refusals, %s USD charged of %s", successes, refusals, total, budget.Nanos(limit))
 }
 
@@ -619,22 +519,15 @@ func testJournal(t *testing.T, open Open) {
 		{Time: day2.Add(time.Second), Team: "ops", Model: "m2", Outcome: budget.Expired, Cost: 80},
 	}
 	for i, e := range entries {
-		if err := []Store{a, b}[i%2].Append(ctx, e); err != nil {
-			t.Fatalf("Append %d: %v", i, err)
-		}
+		require.NoError(t, []Store{a, b}[i%2].Append(ctx, e), "Append %d", i)
 	}
 	var scanned []budget.Entry
-	if err := a.Scan(ctx, day1, "lab", func(e budget.Entry) error { scanned = append(scanned, e); return nil }); err != nil {
-		t.Fatalf("Scan: %v", err)
-	}
-	if len(scanned) != 2 || !scanned[0].Time.Equal(entries[1].Time) || scanned[1].Outcome != budget.Hit ||
-		scanned[0].Run != "r1" || scanned[0].KeyID != "k1" || scanned[0].Cost != 300 {
-		t.Errorf("Scan(lab since day1) = %+v, want entries 1 and 2 in order", scanned)
-	}
+	require.NoError(t, a.Scan(ctx, day1, "lab", func(e budget.Entry) error { scanned = append(scanned, e); return nil }), "Scan")
+	ok := len(scanned) == 2 && scanned[0].Time.Equal(entries[1].Time) && scanned[1].Outcome == budget.Hit &&
+		scanned[0].Run == "r1" && scanned[0].KeyID == "k1" && scanned[0].Cost == 300
+	assert.True(t, ok, "Scan(lab since day1) = %+v, want entries 1 and 2 in order", scanned)
 	stop := errors.New("stop")
-	if err := a.Scan(ctx, day1, "", func(budget.Entry) error { return stop }); !errors.Is(err, stop) {
-		t.Errorf("Scan with a failing fn: error = %v, want that error", err)
-	}
+	assert.ErrorIs(t, a.Scan(ctx, day1, "", func(budget.Entry) error { return stop }), stop, "Scan with a failing fn")
 	tests := []struct {
 		by   budget.GroupBy
 		want []budget.Row
@@ -659,16 +552,13 @@ func testJournal(t *testing.T, open Open) {
 	for _, tt := range tests {
 		t.Run(string(tt.by), func(t *testing.T) {
 			got, err := budget.Report(ctx, b, budget.Query{Since: day1, By: tt.by})
-			if err != nil {
-				t.Fatalf("Report: %v", err)
-			}
-			if fmt.Sprint(got) != fmt.Sprint(tt.want) {
-				t.Errorf("Report by %s =\n%+v\nwant\n%+v", tt.by, got, tt.want)
-			}
+			require.NoError(t, err, "Report")
+			assert.Equal(t, fmt.Sprint(tt.want), fmt.Sprint(got), "Report by %s", tt.by)
 		})
 	}
 	got, err := budget.Report(ctx, a, budget.Query{Since: day1, Team: "ops", By: budget.ByTeam})
-	if err != nil || len(got) != 1 || got[0].Group != "ops" || got[0].Spent != 200 {
-		t.Errorf("Report for team ops = %+v, %v; want one ops row spending 200", got, err)
-	}
+	require.NoError(t, err, "Report for team ops")
+	require.Len(t, got, 1, "Report for team ops")
+	assert.Equal(t, "ops", got[0].Group, "Report for team ops")
+	assert.Equal(t, budget.Nanos(200), got[0].Spent, "Report for team ops")
 }

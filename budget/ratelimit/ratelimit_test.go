@@ -2,9 +2,11 @@ package ratelimit_test
 
 import (
 	"context"
-	"errors"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/budget/ratelimit"
 	"github.com/stintlab/stint/budget/ratelimit/ratelimittest"
@@ -25,17 +27,13 @@ func TestInterval(t *testing.T) {
 		{ratelimit.Limit{Rate: 1e9, Per: time.Second}, time.Microsecond},         // floor of 1µs
 	}
 	for _, tt := range tests {
-		if got := tt.lim.Interval(); got != tt.want {
-			t.Errorf("%+v.Interval() = %v, want %v", tt.lim, got, tt.want)
-		}
+		assert.Equal(t, tt.want, tt.lim.Interval(), "%+v.Interval()", tt.lim)
 	}
 }
 
 func TestValidate(t *testing.T) {
 	for _, lim := range []ratelimit.Limit{{Rate: 0, Per: time.Minute}, {Rate: 5, Per: 0}, {Rate: 5, Per: time.Minute, Burst: -1}} {
-		if err := lim.Validate(); !errors.Is(err, ratelimit.ErrBadLimit) {
-			t.Errorf("%+v.Validate() = %v, want ErrBadLimit", lim, err)
-		}
+		assert.ErrorIs(t, lim.Validate(), ratelimit.ErrBadLimit, "%+v.Validate()", lim)
 	}
 }
 
@@ -44,38 +42,25 @@ func TestWait(t *testing.T) {
 	lim := ratelimit.Limit{Rate: 1, Per: time.Hour, Burst: 1}
 	l := &ratelimit.Local{}
 	ctx := context.Background()
-	if err := ratelimit.Wait(ctx, l, "lab", lim, 1, 0); err != nil {
-		t.Fatalf("first Wait: %v", err)
-	}
+	require.NoError(t, ratelimit.Wait(ctx, l, "lab", lim, 1, 0), "first Wait")
 	// The next unit is an hour away: refused at once with maxWait 0 ...
 	var le *ratelimit.LimitedError
-	err := ratelimit.Wait(ctx, l, "lab", lim, 1, 0)
-	if !errors.As(err, &le) || le.RetryAfter <= 59*time.Minute || le.RetryAfter > time.Hour {
-		t.Fatalf("Wait over the limit = %v, want a LimitedError retrying after about an hour", err)
-	}
+	require.ErrorAs(t, ratelimit.Wait(ctx, l, "lab", lim, 1, 0), &le, "Wait over the limit")
+	assert.Greater(t, le.RetryAfter, 59*time.Minute, "retry after about an hour")
+	assert.LessOrEqual(t, le.RetryAfter, time.Hour, "retry after about an hour")
 	// ... and refused when the wait would pass the context's deadline,
 	// although maxWait would allow it.
 	dctx, cancel := context.WithTimeout(ctx, time.Minute)
 	defer cancel()
-	if err := ratelimit.Wait(dctx, l, "lab", lim, 1, 2*time.Hour); !errors.Is(err, ratelimit.ErrLimited) {
-		t.Fatalf("Wait past the deadline = %v, want ErrLimited", err)
-	}
+	assert.ErrorIs(t, ratelimit.Wait(dctx, l, "lab", lim, 1, 2*time.Hour), ratelimit.ErrLimited, "Wait past the deadline")
 	// A short queue is waited out.
 	fast := ratelimit.Limit{Rate: 1000, Per: time.Second, Burst: 1}
-	if err := ratelimit.Wait(ctx, l, "fast", fast, 1, time.Second); err != nil {
-		t.Fatal(err)
-	}
-	if err := ratelimit.Wait(ctx, l, "fast", fast, 1, time.Second); err != nil {
-		t.Fatalf("queued Wait = %v, want nil after a millisecond's wait", err)
-	}
+	require.NoError(t, ratelimit.Wait(ctx, l, "fast", fast, 1, time.Second))
+	assert.NoError(t, ratelimit.Wait(ctx, l, "fast", fast, 1, time.Second), "queued Wait, after a millisecond's wait")
 	// A cancelled context ends the wait.
 	cctx, cancel2 := context.WithCancel(ctx)
 	slow := ratelimit.Limit{Rate: 1, Per: time.Minute, Burst: 1}
-	if err := ratelimit.Wait(ctx, l, "slow", slow, 1, 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, ratelimit.Wait(ctx, l, "slow", slow, 1, 0))
 	cancel2()
-	if err := ratelimit.Wait(cctx, l, "slow", slow, 1, 2*time.Minute); !errors.Is(err, context.Canceled) {
-		t.Fatalf("Wait with a cancelled context = %v, want context.Canceled", err)
-	}
+	assert.ErrorIs(t, ratelimit.Wait(cctx, l, "slow", slow, 1, 2*time.Minute), context.Canceled, "Wait with a cancelled context")
 }

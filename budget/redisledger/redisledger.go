@@ -32,8 +32,19 @@
 // "stint:{#global}:teams" lists the teams the ledger has seen, for Expire,
 // for that sum and for journal scans across teams.
 //
-// Times go to Redis from the caller (milliseconds), so replicas should keep
-// their clocks in sync; lease deadlines are truncated to the millisecond.
+// Times go to Redis from the caller (milliseconds); lease deadlines are
+// truncated to the millisecond. Replicas' clocks may disagree by some skew
+// d without letting a cap be exceeded: every reservation is checked
+// against the sums it holds in one script, whatever the time, so what d
+// moves is only when things happen, never how much is admitted. A call
+// reserved within d of a period's end may count in the neighbouring
+// period; a hold may be expired up to d early by a sweeping replica whose
+// clock is ahead (charged its whole reservation, never less than the
+// call's cost) or settled up to d late at its actual cost. Keep d well
+// under budget.lease (NTP keeps it to milliseconds); unlike rate limits
+// (redisrate's ServerClock), budgets keep the caller's time so that a
+// journal entry's time is the call's. TestClockSkewKeepsCaps runs two
+// ledgers an hour apart.
 // Durability is Redis's: run it with appendonly for a ledger that survives a
 // Redis restart.
 //

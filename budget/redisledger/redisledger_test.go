@@ -4,12 +4,12 @@ import (
 	"context"
 	"errors"
 	"fmt"
-	"strings"
 	"sync/atomic"
 	"testing"
 	"time"
 
 	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/ledgertest"
@@ -41,9 +41,8 @@ func TestConformanceCluster(t *testing.T) {
 	// The cluster must refuse a script over two slots, or this test proves
 	// nothing about the layout.
 	err := c.Eval(context.Background(), "return 1", []string{"x:{a}", "x:{b}"}).Err()
-	if err == nil || !strings.Contains(err.Error(), "CROSSSLOT") {
-		t.Fatalf("EVAL over two slots: error = %v, want CROSSSLOT", err)
-	}
+	require.Error(t, err, "EVAL over two slots")
+	require.Contains(t, err.Error(), "CROSSSLOT", "EVAL over two slots")
 	suite(t, c)
 }
 
@@ -68,16 +67,14 @@ func TestUnreachable(t *testing.T) {
 	defer c.Close()
 	l := redisledger.New(c, redisledger.Options{})
 	ctx := context.Background()
-	if _, err := l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute}); err != nil {
-		t.Fatalf("Reserve while up: %v", err)
-	}
+	_, err := l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute})
+	require.NoError(t, err, "Reserve while up")
 	if err := c.Do(ctx, "SHUTDOWN", "NOSAVE").Err(); err != nil && !errors.Is(err, redis.ErrClosed) && err.Error() != "EOF" {
 		t.Logf("SHUTDOWN: %v", err)
 	}
-	_, err := l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute})
-	if err == nil || errors.Is(err, budget.ErrExhausted) {
-		t.Fatalf("Reserve with Redis down: error = %v, want a connection error", err)
-	}
+	_, err = l.Reserve(ctx, time.Now(), budget.Request{Team: "lab", Amount: 1, Lease: time.Minute})
+	require.Error(t, err, "Reserve with Redis down: want a connection error")
+	require.NotErrorIs(t, err, budget.ErrExhausted, "Reserve with Redis down: want a connection error")
 }
 
 func BenchmarkReserveSettle(b *testing.B) {

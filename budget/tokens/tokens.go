@@ -32,11 +32,15 @@ const (
 
 // Per-message overheads added by Chat. They are the largest values in the
 // message-counting recipe of OpenAI's cookbook notebook "How to count
-// tokens with tiktoken" (from memory): each message is wrapped as
-// <|start|>{role or name}\n{content}<|end|>\n, which costs 3 tokens
-// (4 in older chat models, so 4 is used), a name costs 1 more, and every
-// reply is primed with <|start|>assistant<|message|>, 3 tokens. Using the
-// maxima makes the count conservative for every variant of the recipe.
+// tokens with tiktoken" (openai/openai-cookbook,
+// examples/How_to_count_tokens_with_tiktoken.ipynb): each message costs 3
+// tokens besides its text in gpt-3.5-turbo-0613 and gpt-4 (4 in
+// gpt-3.5-turbo-0301, so 4 is used), a name costs 1 more, and every reply
+// is primed with <|start|>assistant<|message|>, 3 tokens. Using the maxima
+// makes the count conservative for every variant of the recipe: on the
+// notebook's example conversation, whose prompt tokens the API counted as
+// 129 (127 for gpt-3.5-turbo-0301), Chat counts at least that and at most
+// one token per message more (TestChatCookbookExample).
 const (
 	MessageOverhead = 4 // tokens per message besides its text
 	NameOverhead    = 1 // extra tokens for a message with a name

@@ -1,12 +1,11 @@
 package tokens_test
 
 import (
-	"errors"
 	"fmt"
-	"slices"
-	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"github.com/tiktoken-go/tokenizer"
 
 	"github.com/stintlab/stint/budget/tokens"
@@ -17,11 +16,15 @@ func newCounter(tb testing.TB) *tokens.Counter {
 	c, err := tokens.New(map[string]tokens.Encoding{
 		"m-cl": tokens.Cl100kBase, "m-o2": tokens.O200kBase, "m-r5": tokens.R50kBase,
 	})
-	if err != nil {
-		tb.Fatalf("New: %v", err)
-	}
+	require.NoError(tb, err, "New")
 	return c
 }
+
+// cookbook is OpenAI's notebook "How to count tokens with tiktoken"
+// (openai/openai-cookbook, examples/How_to_count_tokens_with_tiktoken.ipynb,
+// as of commit 06d9feb5e21e6fdc85f3ddce7731e05892758cd7), the source of the
+// check values marked with it: the outputs of its cells.
+const cookbook = "OpenAI cookbook, How to count tokens with tiktoken"
 
 // TestCheckValues compares with token ids published outside this project.
 func TestCheckValues(t *testing.T) {
@@ -32,32 +35,30 @@ func TestCheckValues(t *testing.T) {
 		want   []uint
 		source string
 	}{
-		// From memory; the same ids appear in tiktoken-go/tokenizer
-		// v0.10.0's tokenizer_test.go.
-		{"m-cl", tokens.Cl100kBase, "hello world", []uint{15339, 1917}, "cl100k_base 'hello world' (from memory)"},
-		// From memory: OpenAI Cookbook, "How to count tokens with tiktoken".
-		{"m-cl", tokens.Cl100kBase, "tiktoken is great!", []uint{83, 1609, 5963, 374, 2294, 0}, "OpenAI Cookbook example (from memory)"},
-		// From memory: GPT-2's vocabulary, "hello" = 31373, " world" = 995.
-		{"m-r5", tokens.R50kBase, "hello world", []uint{31373, 995}, "GPT-2 vocabulary (from memory)"},
+		{"m-cl", tokens.Cl100kBase, "tiktoken is great!", []uint{83, 1609, 5963, 374, 2294, 0}, cookbook + ", section 3"},
+		{"m-cl", tokens.Cl100kBase, "antidisestablishmentarianism", []uint{519, 85342, 34500, 479, 8997, 2191}, cookbook + ", section 5"},
+		{"m-cl", tokens.Cl100kBase, "2 + 2 = 4", []uint{17, 489, 220, 17, 284, 220, 19}, cookbook + ", section 5"},
+		{"m-cl", tokens.Cl100kBase, "お誕生日おめでとう", []uint{33334, 45918, 243, 21990, 9080, 33334, 62004, 16556, 78699}, cookbook + ", section 5"},
+		// r50k_base is the notebook's "gpt2".
+		{"m-r5", tokens.R50kBase, "antidisestablishmentarianism", []uint{415, 29207, 44390, 3699, 1042}, cookbook + ", section 5 (gpt2)"},
+		{"m-r5", tokens.R50kBase, "2 + 2 = 4", []uint{17, 1343, 362, 796, 604}, cookbook + ", section 5 (gpt2)"},
 		// tiktoken-go/tokenizer v0.10.0 tokenizer_test.go (the library's own
-		// test, so not independent of it).
+		// test, so not independent of it; no outside o200k_base ids are at
+		// hand here).
+		{"m-cl", tokens.Cl100kBase, "hello world", []uint{15339, 1917}, "tiktoken-go/tokenizer test"},
 		{"m-o2", tokens.O200kBase, "hello world", []uint{24912, 2375}, "tiktoken-go/tokenizer test"},
 	}
 	c := newCounter(t)
 	for _, tt := range tests {
 		t.Run(fmt.Sprintf("%s/%s", tt.enc, tt.text), func(t *testing.T) {
 			codec, err := tokenizer.Get(tokenizer.Encoding(tt.enc))
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			ids, _, err := codec.Encode(tt.text)
-			if err != nil || !slices.Equal(ids, tt.want) {
-				t.Errorf("%s: Encode(%q) = %v, %v; want %v", tt.source, tt.text, ids, err, tt.want)
-			}
+			require.NoError(t, err)
+			assert.Equal(t, tt.want, ids, "%s: Encode(%q)", tt.source, tt.text)
 			got, err := c.Text(tt.model, tt.text)
-			if want := (tokens.Count{Tokens: int64(len(tt.want)), Encoding: tt.enc}); err != nil || got != want {
-				t.Errorf("Text(%s, %q) = %+v, %v; want %+v", tt.model, tt.text, got, err, want)
-			}
+			require.NoError(t, err)
+			assert.Equal(t, tokens.Count{Tokens: int64(len(tt.want)), Encoding: tt.enc}, got, "Text(%s, %q)", tt.model, tt.text)
 		})
 	}
 }
@@ -78,9 +79,8 @@ func TestPrompt(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got, err := c.Prompt(tt.model, tt.prompts...)
-		if err != nil || got != tt.want {
-			t.Errorf("Prompt(%s, %q) = %+v, %v; want %+v", tt.model, tt.prompts, got, err, tt.want)
-		}
+		require.NoError(t, err, "Prompt(%s, %q)", tt.model, tt.prompts)
+		assert.Equal(t, tt.want, got, "Prompt(%s, %q)", tt.model, tt.prompts)
 	}
 }
 
@@ -92,16 +92,12 @@ func TestChat(t *testing.T) {
 	}
 	text := func(model, s string) int64 {
 		n, err := c.Text(model, s)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		return n.Tokens
 	}
 	for _, model := range []string{"m-cl", "m-o2", "mystery"} {
 		got, err := c.Chat(model, msgs)
-		if err != nil {
-			t.Fatalf("Chat(%s): %v", model, err)
-		}
+		require.NoError(t, err, "Chat(%s)", model)
 		var body int64
 		for _, m := range msgs {
 			body += text(model, m.Role) + text(model, m.Content)
@@ -110,36 +106,49 @@ func TestChat(t *testing.T) {
 			}
 		}
 		want := body + 2*tokens.MessageOverhead + tokens.NameOverhead + tokens.ReplyOverhead
-		if got.Tokens != want {
-			t.Errorf("Chat(%s) = %d tokens, want %d", model, got.Tokens, want)
-		}
-		// The cookbook recipe (from memory: 3 per message, 1 per name,
-		// 3 for the reply, role and content counted) gives no more.
-		if cookbook := body + 2*3 + 1 + 3; got.Tokens < cookbook {
-			t.Errorf("Chat(%s) = %d, below the cookbook recipe's %d", model, got.Tokens, cookbook)
-		}
+		assert.Equal(t, want, got.Tokens, "Chat(%s)", model)
 	}
 	// Pin the whole cl100k figure with counts taken from the codec itself.
-	codec, _ := tokenizer.Get(tokenizer.Cl100kBase)
+	codec, err := tokenizer.Get(tokenizer.Cl100kBase)
+	require.NoError(t, err)
 	var body int
 	for _, s := range []string{"system", "You answer in one line.", "user", "quill", "hello world"} {
-		n, _ := codec.Count(s)
+		n, err := codec.Count(s)
+		require.NoError(t, err)
 		body += n
 	}
-	got, _ := c.Chat("m-cl", msgs)
-	if want := int64(body + 4 + 4 + 1 + 3); got.Tokens != want {
-		t.Errorf("Chat(m-cl) = %d, want %d", got.Tokens, want)
+	got, err := c.Chat("m-cl", msgs)
+	require.NoError(t, err)
+	assert.Equal(t, int64(body+4+4+1+3), got.Tokens, "Chat(m-cl)")
+}
+
+// TestChatCookbookExample counts the notebook's example conversation (its
+// section 6), whose prompt tokens the API itself counted: 129 for
+// gpt-3.5-turbo-0613, gpt-4-0314 and gpt-4-0613, 127 for
+// gpt-3.5-turbo-0301, all cl100k_base. Chat never counts fewer, and counts
+// at most one token per message more (MessageOverhead is 4 where those
+// models use 3).
+func TestChatCookbookExample(t *testing.T) {
+	msgs := []tokens.Message{
+		{Role: "system", Content: "You are a helpful, pattern-following assistant that translates corporate jargon into plain English."},
+		{Role: "system", Name: "example_user", Content: "New synergies will help drive top-line growth."},
+		{Role: "system", Name: "example_assistant", Content: "Things working well together will increase revenue."},
+		{Role: "system", Name: "example_user", Content: "Let's circle back when we have more bandwidth to touch base on opportunities for increased leverage."},
+		{Role: "system", Name: "example_assistant", Content: "Let's talk later when we're less busy about how to do better."},
+		{Role: "user", Content: "This late pivot means we don't have time to boil the ocean for the client deliverable."},
 	}
+	const apiMost, apiLeast = 129, 127 // cookbook, section 6: "prompt tokens counted by the OpenAI API"
+	got, err := newCounter(t).Chat("m-cl", msgs)
+	require.NoError(t, err)
+	assert.GreaterOrEqual(t, got.Tokens, int64(apiMost), "Chat undercounts the API's count (%s)", cookbook)
+	assert.GreaterOrEqual(t, got.Tokens, int64(apiLeast), "Chat undercounts the API's count (%s)", cookbook)
+	assert.LessOrEqual(t, got.Tokens, int64(apiMost+len(msgs)), "Chat counts more than one token per message above the API's count")
 }
 
 func TestNewRejectsUnknownEncoding(t *testing.T) {
 	_, err := tokens.New(map[string]tokens.Encoding{"good": tokens.Cl100kBase, "bad-model": "p51k_base"})
-	if !errors.Is(err, tokens.ErrUnknownEncoding) {
-		t.Fatalf("New error = %v, want ErrUnknownEncoding", err)
-	}
-	if want := `model "bad-model"`; !strings.Contains(err.Error(), want) {
-		t.Errorf("error %q does not name %s", err, want)
-	}
+	require.ErrorIs(t, err, tokens.ErrUnknownEncoding)
+	assert.Contains(t, err.Error(), `model "bad-model"`, "the error names the model")
 }
 
 // FuzzUpperBound checks the argument in UpperBound's doc on real
@@ -154,20 +163,14 @@ func FuzzUpperBound(f *testing.F) {
 	codecs := map[tokens.Encoding]tokenizer.Codec{}
 	for _, e := range []tokens.Encoding{tokens.Cl100kBase, tokens.O200kBase, tokens.R50kBase} {
 		c, err := tokenizer.Get(tokenizer.Encoding(e))
-		if err != nil {
-			f.Fatal(err)
-		}
+		require.NoError(f, err)
 		codecs[e] = c
 	}
 	f.Fuzz(func(t *testing.T, s string) {
 		for e, c := range codecs {
 			n, err := c.Count(s)
-			if err != nil {
-				t.Fatalf("%s Count(%q): %v", e, s, err)
-			}
-			if int64(n) > tokens.UpperBound(s) {
-				t.Errorf("%s: %q has %d tokens, above its %d bytes", e, s, n, tokens.UpperBound(s))
-			}
+			require.NoError(t, err, "%s Count(%q)", e, s)
+			assert.LessOrEqual(t, int64(n), tokens.UpperBound(s), "%s: %q has more tokens than bytes", e, s)
 		}
 	})
 }

@@ -7,6 +7,8 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 )
 
@@ -15,14 +17,10 @@ import (
 // every other write lands.
 func TestGroupCommitIsolatesFailures(t *testing.T) {
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "g.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer db.Close()
 	bucket := []byte("g")
-	if err := db.Update(func(tx *bbolt.Tx) error { _, err := tx.CreateBucket(bucket); return err }); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, db.Update(func(tx *bbolt.Tx) error { _, err := tx.CreateBucket(bucket); return err }))
 	g := New(db)
 	const writers = 64
 	errBad := errors.New("refused write")
@@ -46,13 +44,14 @@ func TestGroupCommitIsolatesFailures(t *testing.T) {
 		for i := range writers {
 			landed := tx.Bucket(bucket).Get(fmt.Appendf(nil, "k%02d", i)) != nil
 			wantFail := i%7 == 0
-			if wantFail != errors.Is(errs[i], errBad) || landed == wantFail {
-				t.Errorf("write %d: err %v, landed %v; want failed=%v", i, errs[i], landed, wantFail)
+			if wantFail {
+				assert.ErrorIs(t, errs[i], errBad, "write %d reports its own error", i)
+			} else {
+				assert.NoError(t, errs[i], "write %d", i)
 			}
+			assert.Equal(t, !wantFail, landed, "write %d landed", i)
 		}
 		return nil
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 }

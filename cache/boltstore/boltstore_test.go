@@ -3,7 +3,6 @@ package boltstore_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -12,6 +11,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache"
@@ -29,9 +30,7 @@ func TestConformanceSharedDB(t *testing.T) {
 	storetest.Run(t, func(t *testing.T) cache.Store {
 		db := openBolt(t, filepath.Join(t.TempDir(), "shared.db"))
 		s, err := boltstore.New(db, boltstore.Options{CompressMin: -1})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		return s
 	})
 }
@@ -88,39 +87,28 @@ func checkStore(tb testing.TB, s *boltstore.Store) {
 func TestSurvivesReopen(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "cache.db")
 	s, err := boltstore.Open(path, boltstore.Options{SweepInterval: -1})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ctx := t.Context()
 	want := map[string][]byte{}
 	for i := range 50 {
 		v := bytes.Repeat([]byte(fmt.Sprintf(`{"n":%d}`, i)), i*10)
 		want[k(i)] = v
-		if err := s.Put(ctx, k(i), v, time.Hour); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), v, time.Hour))
 	}
-	if err := s.Delete(ctx, k(7)); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Delete(ctx, k(7)))
 	delete(want, k(7))
-	if err := s.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Close())
 	s = openStore(t, path, boltstore.Options{SweepInterval: -1})
 	for key, v := range want {
 		got, found, err := s.Get(ctx, key)
-		if err != nil || !found || !bytes.Equal(got, v) {
-			t.Errorf("after reopen Get(%s) = found %v, err %v, equal %v", key[56:], found, err, bytes.Equal(got, v))
-		}
+		assert.NoError(t, err, "after reopen Get(%s)", key[56:])
+		assert.True(t, found && bytes.Equal(got, v), "after reopen Get(%s) = found %v, equal %v", key[56:], found, bytes.Equal(got, v))
 	}
-	if _, found, _ := s.Get(ctx, k(7)); found {
-		t.Error("deleted entry is back after reopen")
-	}
+	_, found, _ := s.Get(ctx, k(7))
+	assert.False(t, found, "deleted entry is back after reopen")
 	st, err := s.Stats(ctx)
-	if err != nil || st.Entries != int64(len(want)) {
-		t.Errorf("Stats = %+v, %v; want %d entries", st, err, len(want))
-	}
+	require.NoError(t, err, "Stats")
+	assert.Equal(t, int64(len(want)), st.Entries, "Stats: entries")
 	checkStore(t, s)
 }
 
@@ -130,46 +118,37 @@ func TestExpiryWithFakeClock(t *testing.T) {
 	ctx := t.Context()
 	for i := range 10 {
 		ttl := time.Duration(i+1) * time.Minute // entry i expires after i+1 minutes
-		if err := s.Put(ctx, k(i), []byte("v"), ttl); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), []byte("v"), ttl))
 	}
-	if err := s.Put(ctx, k(100), []byte("forever"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, k(100), []byte("forever"), 0))
 	v, exp, found, err := s.GetWithExpiry(ctx, k(2))
-	if err != nil || !found || string(v) != "v" || !exp.Equal(clock.Now().Add(3*time.Minute)) {
-		t.Fatalf("GetWithExpiry = %q, %v, %v, %v; want expiry %v", v, exp, found, err, clock.Now().Add(3*time.Minute))
-	}
-	if _, exp, _, _ := s.GetWithExpiry(ctx, k(100)); !exp.IsZero() {
-		t.Errorf("expiry of an entry without TTL = %v, want zero", exp)
-	}
+	require.NoError(t, err, "GetWithExpiry")
+	require.True(t, found, "GetWithExpiry")
+	require.Equal(t, "v", string(v), "GetWithExpiry")
+	require.WithinDuration(t, clock.Now().Add(3*time.Minute), exp, 0, "GetWithExpiry: the expiry")
+	_, exp, _, _ = s.GetWithExpiry(ctx, k(100))
+	assert.True(t, exp.IsZero(), "expiry of an entry without TTL = %v, want zero", exp)
 
 	clock.Advance(3*time.Minute + time.Second) // entries 0, 1, 2 expired
 	for i := range 10 {
 		_, found, err := s.Get(ctx, k(i))
-		if err != nil || found != (i >= 3) {
-			t.Errorf("Get(entry %d) at +3m1s = found %v, err %v; want found %v", i, found, err, i >= 3)
-		}
+		assert.NoError(t, err, "Get(entry %d) at +3m1s", i)
+		assert.Equal(t, i >= 3, found, "Get(entry %d) at +3m1s: found", i)
 	}
 	// Expired entries are invisible but still stored until swept.
-	if st, _ := s.Stats(ctx); st.Entries != 11 {
-		t.Errorf("Entries before sweep = %d, want 11", st.Entries)
-	}
+	st, _ := s.Stats(ctx)
+	assert.EqualValues(t, 11, st.Entries, "Entries before sweep")
 	n, err := s.Sweep(ctx)
-	if err != nil || n != 3 {
-		t.Errorf("Sweep = %d, %v; want 3 removed", n, err)
-	}
-	if st, _ := s.Stats(ctx); st.Entries != 8 {
-		t.Errorf("Entries after sweep = %d, want 8", st.Entries)
-	}
+	assert.NoError(t, err, "Sweep")
+	assert.EqualValues(t, 3, n, "Sweep: removed")
+	st, _ = s.Stats(ctx)
+	assert.EqualValues(t, 8, st.Entries, "Entries after sweep")
 	clock.Advance(time.Hour)
-	if n, err := s.Sweep(ctx); err != nil || n != 7 {
-		t.Errorf("second Sweep = %d, %v; want 7 removed", n, err)
-	}
-	if _, found, _ := s.Get(ctx, k(100)); !found {
-		t.Error("entry without TTL was swept")
-	}
+	n, err = s.Sweep(ctx)
+	assert.NoError(t, err, "second Sweep")
+	assert.EqualValues(t, 7, n, "second Sweep: removed")
+	_, found, _ = s.Get(ctx, k(100))
+	assert.True(t, found, "entry without TTL was swept")
 	checkStore(t, s)
 }
 
@@ -182,17 +161,15 @@ func TestSweepManyBatches(t *testing.T) {
 	// possible for entries, so Put them, but keep the count modest.
 	const n = 1200
 	for i := range n {
-		if err := s.Put(ctx, k(i), []byte("x"), time.Minute); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), []byte("x"), time.Minute))
 	}
 	clock.Advance(2 * time.Minute)
-	if got, err := s.Sweep(ctx); err != nil || got != n {
-		t.Fatalf("Sweep = %d, %v; want %d", got, err, n)
-	}
-	if st, _ := s.Stats(ctx); st.Entries != 0 || st.Bytes != 0 {
-		t.Errorf("Stats after sweeping everything = %+v, want zero", st)
-	}
+	got, err := s.Sweep(ctx)
+	require.NoError(t, err, "Sweep")
+	require.EqualValues(t, n, got, "Sweep: removed")
+	st, _ := s.Stats(ctx)
+	assert.Zero(t, st.Entries, "Stats after sweeping everything: entries")
+	assert.Zero(t, st.Bytes, "Stats after sweeping everything: bytes")
 	checkStore(t, s)
 }
 
@@ -203,28 +180,20 @@ func TestBackgroundSweeper(t *testing.T) {
 	s := openStore(t, filepath.Join(t.TempDir(), "c.db"), boltstore.Options{SweepInterval: 5 * time.Millisecond, Now: clock.Now})
 	ctx := t.Context()
 	for i := range 5 {
-		if err := s.Put(ctx, k(i), []byte("v"), time.Second); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), []byte("v"), time.Second))
 	}
 	clock.Advance(time.Minute)
 	deadline := time.Now().Add(10 * time.Second)
 	for {
 		st, err := s.Stats(ctx)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if st.Entries == 0 {
 			break
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("sweeper left %d expired entries after 10s", st.Entries)
-		}
+		require.False(t, time.Now().After(deadline), "sweeper left %d expired entries after 10s", st.Entries)
 		time.Sleep(5 * time.Millisecond) // polling interval
 	}
-	if err := s.Close(); err != nil { // stops the sweeper
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Close()) // stops the sweeper
 }
 
 func TestEvictionOldestFirst(t *testing.T) {
@@ -235,51 +204,37 @@ func TestEvictionOldestFirst(t *testing.T) {
 	value := bytes.Repeat([]byte("v"), 1000-64-22) // 1000 stored bytes with key and header
 	for i := range 10 {
 		clock.Advance(time.Second)
-		if err := s.Put(ctx, k(i), value, 0); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), value, 0))
 	}
-	if st, _ := s.Stats(ctx); st.Bytes != capBytes || st.Entries != 10 {
-		t.Fatalf("Stats at the cap = %+v, want %d bytes in 10 entries", st, capBytes)
-	}
+	st, _ := s.Stats(ctx)
+	require.EqualValues(t, capBytes, st.Bytes, "Stats at the cap: bytes")
+	require.EqualValues(t, 10, st.Entries, "Stats at the cap: entries")
 	// Overwriting entry 0 makes it the newest; entry 1 is now the oldest.
 	clock.Advance(time.Second)
-	if err := s.Put(ctx, k(0), value, 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, k(0), value, 0))
 	for i := 10; i < 13; i++ {
 		clock.Advance(time.Second)
-		if err := s.Put(ctx, k(i), value, 0); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, k(i), value, 0))
 	}
 	evicted := map[int]bool{1: true, 2: true, 3: true}
 	for i := range 13 {
 		_, found, err := s.Get(ctx, k(i))
-		if err != nil || found == evicted[i] {
-			t.Errorf("entry %d: found %v, err %v; want found %v", i, found, err, !evicted[i])
-		}
+		assert.NoError(t, err, "entry %d", i)
+		assert.Equal(t, !evicted[i], found, "entry %d: found", i)
 	}
-	if st, _ := s.Stats(ctx); st.Bytes > capBytes {
-		t.Errorf("Bytes = %d, over the cap %d", st.Bytes, capBytes)
-	}
+	st, _ = s.Stats(ctx)
+	assert.LessOrEqual(t, st.Bytes, int64(capBytes), "Bytes, against the cap")
 	// One bigger entry evicts as many old ones as it needs.
 	clock.Advance(time.Second)
-	if err := s.Put(ctx, k(50), bytes.Repeat([]byte("w"), 3500), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, k(50), bytes.Repeat([]byte("w"), 3500), 0))
 	for _, i := range []int{4, 5, 6, 7} {
-		if _, found, _ := s.Get(ctx, k(i)); found {
-			t.Errorf("entry %d survived a 3.5 kB Put at the cap", i)
-		}
+		_, found, _ := s.Get(ctx, k(i))
+		assert.False(t, found, "entry %d survived a 3.5 kB Put at the cap", i)
 	}
-	if _, found, _ := s.Get(ctx, k(8)); !found {
-		t.Error("entry 8 evicted although the cap was met without it")
-	}
+	_, found, _ := s.Get(ctx, k(8))
+	assert.True(t, found, "entry 8 evicted although the cap was met without it")
 	err := s.Put(ctx, k(99), make([]byte, capBytes), 0)
-	if !errors.Is(err, cache.ErrTooLarge) {
-		t.Errorf("Put of an entry over the cap: err = %v, want cache.ErrTooLarge", err)
-	}
+	assert.ErrorIs(t, err, cache.ErrTooLarge, "Put of an entry over the cap")
 	checkStore(t, s)
 }
 
@@ -306,21 +261,17 @@ func TestCompression(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			tc.opts.SweepInterval = -1
 			s := openStore(t, filepath.Join(t.TempDir(), "c.db"), tc.opts)
-			if err := s.Put(ctx, k(1), tc.value, 0); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, s.Put(ctx, k(1), tc.value, 0))
 			st, _ := s.Stats(ctx)
 			stored := int(st.Bytes) - 64 - 22
-			if tc.wantShrunk && stored > tc.wantAtMost {
-				t.Errorf("stored %d bytes for a %d-byte value, want at most %d", stored, len(tc.value), tc.wantAtMost)
-			}
-			if !tc.wantShrunk && stored != len(tc.value) {
-				t.Errorf("stored %d bytes for a %d-byte value, want it stored as is", stored, len(tc.value))
+			if tc.wantShrunk {
+				assert.LessOrEqual(t, stored, tc.wantAtMost, "bytes stored for a %d-byte value", len(tc.value))
+			} else {
+				assert.Equal(t, len(tc.value), stored, "bytes stored for a %d-byte value: stored as is", len(tc.value))
 			}
 			got, found, err := s.Get(ctx, k(1))
-			if err != nil || !found || !bytes.Equal(got, tc.value) {
-				t.Errorf("Get = found %v, err %v, equal %v", found, err, bytes.Equal(got, tc.value))
-			}
+			require.NoError(t, err, "Get")
+			assert.True(t, found && bytes.Equal(got, tc.value), "Get = found %v, equal %v", found, bytes.Equal(got, tc.value))
 		})
 	}
 }
@@ -344,23 +295,16 @@ func TestCodecsReadEachOther(t *testing.T) {
 				values[k(i)] = bytes.Repeat(fmt.Appendf(nil, `{"choice":%d,"text":"the reading corner's lantern"},`, i), 10+i*7)
 			}
 			s, err := boltstore.Open(path, boltstore.Options{SweepInterval: -1, Codec: tc.write})
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			for key, v := range values {
-				if err := s.Put(ctx, key, v, 0); err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, s.Put(ctx, key, v, 0))
 			}
-			if err := s.Close(); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, s.Close())
 			r := openStore(t, path, boltstore.Options{SweepInterval: -1, Codec: tc.reopen})
 			for key, v := range values {
 				got, found, err := r.Get(ctx, key)
-				if err != nil || !found || !bytes.Equal(got, v) {
-					t.Errorf("%s: found %v, err %v, equal %v", key, found, err, bytes.Equal(got, v))
-				}
+				assert.NoError(t, err, "%s", key)
+				assert.True(t, found && bytes.Equal(got, v), "%s: found %v, equal %v", key, found, bytes.Equal(got, v))
 			}
 			checkStore(t, r)
 		})
@@ -380,19 +324,11 @@ func TestSharedFile(t *testing.T) {
 		}
 		return b.Put([]byte("team-heron"), []byte("12.50"))
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	second, err := boltstore.New(db, boltstore.Options{SweepInterval: -1})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := second.Put(t.Context(), k(1), []byte("v"), 0); err != nil {
-		t.Fatal(err)
-	}
-	if err := second.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, second.Put(t.Context(), k(1), []byte("v"), 0))
+	require.NoError(t, second.Close())
 	// The shared handle is still open, and both components' data are there.
 	err = db.View(func(tx *bbolt.Tx) error {
 		if got := tx.Bucket([]byte("budget.v1")).Get([]byte("team-heron")); string(got) != "12.50" {
@@ -408,15 +344,12 @@ func TestSharedFile(t *testing.T) {
 		}
 		return nil
 	})
-	if err != nil {
-		t.Fatalf("after closing the New store: %v", err)
-	}
-	if _, found, err := owner.Get(t.Context(), k(1)); err != nil || !found {
-		t.Errorf("owner Get = found %v, err %v", found, err)
-	}
-	if _, err := boltstore.New(nil, boltstore.Options{}); err == nil {
-		t.Error("New(nil) succeeded")
-	}
+	require.NoError(t, err, "after closing the New store")
+	_, found, err := owner.Get(t.Context(), k(1))
+	assert.NoError(t, err, "owner Get")
+	assert.True(t, found, "owner Get")
+	_, err = boltstore.New(nil, boltstore.Options{})
+	assert.Error(t, err, "New(nil)")
 }
 
 func TestCorruptFile(t *testing.T) {
@@ -436,17 +369,13 @@ func TestCorruptFile(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			path := filepath.Join(dir, tc.name+".db")
-			if err := os.WriteFile(path, tc.content, 0o600); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, os.WriteFile(path, tc.content, 0o600))
 			s, err := boltstore.Open(path, boltstore.Options{LockTimeout: -1})
 			if err == nil {
 				_ = s.Close()
-				t.Fatal("Open of a corrupt file succeeded")
 			}
-			if !errors.Is(err, boltstore.ErrCorrupt) || !strings.Contains(err.Error(), path) {
-				t.Errorf("Open error = %v; want ErrCorrupt naming %s", err, path)
-			}
+			require.ErrorIs(t, err, boltstore.ErrCorrupt, "Open of a corrupt file")
+			assert.Contains(t, err.Error(), path, "Open's error names the file")
 		})
 	}
 }
@@ -460,28 +389,19 @@ func TestDamagedEntry(t *testing.T) {
 			opts.SweepInterval = -1
 			s := openStore(t, path, opts)
 			value := bytes.Repeat([]byte(`{"answer":"forty-two"}`), 40)
-			if err := s.Put(t.Context(), k(1), value, 0); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, s.Put(t.Context(), k(1), value, 0))
 			err := s.DB().Update(func(tx *bbolt.Tx) error {
 				b := tx.Bucket([]byte("stint.cache.v1")).Bucket([]byte("entries"))
 				rec := bytes.Clone(b.Get([]byte(k(1))))
 				rec[len(rec)-3] ^= 0x40
 				return b.Put([]byte(k(1)), rec)
 			})
-			if err != nil {
-				t.Fatal(err)
-			}
-			if got, _, err := s.Get(t.Context(), k(1)); !errors.Is(err, boltstore.ErrCorrupt) {
-				t.Errorf("Get of a damaged entry = %.20q, %v; want ErrCorrupt", got, err)
-			}
-			if err := s.Check(t.Context()); !errors.Is(err, boltstore.ErrCorrupt) {
-				t.Errorf("Check = %v, want ErrCorrupt", err)
-			}
+			require.NoError(t, err)
+			got, _, err := s.Get(t.Context(), k(1))
+			assert.ErrorIs(t, err, boltstore.ErrCorrupt, "Get of a damaged entry = %.20q", got)
+			assert.ErrorIs(t, s.Check(t.Context()), boltstore.ErrCorrupt, "Check =")
 			// Overwriting repairs it.
-			if err := s.Put(t.Context(), k(1), value, 0); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, s.Put(t.Context(), k(1), value, 0))
 			checkStore(t, s)
 		})
 	}
@@ -490,8 +410,6 @@ func TestDamagedEntry(t *testing.T) {
 func TestPutRejectsBadKeys(t *testing.T) {
 	s := openStore(t, filepath.Join(t.TempDir(), "c.db"), boltstore.Options{SweepInterval: -1})
 	for _, key := range []string{"", strings.Repeat("k", bbolt.MaxKeySize)} {
-		if err := s.Put(t.Context(), key, []byte("v"), 0); err == nil {
-			t.Errorf("Put with a %d-byte key succeeded", len(key))
-		}
+		assert.Error(t, s.Put(t.Context(), key, []byte("v"), 0), "Put with a %d-byte key", len(key))
 	}
 }

@@ -4,7 +4,6 @@ import (
 	"bufio"
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"io"
 	"os"
@@ -16,6 +15,9 @@ import (
 	"syscall"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/boltstore"
 )
@@ -127,12 +129,8 @@ func TestSIGKILLKeepsAcknowledgedEntries(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "cache.db")
 	cmd := helper(t, "writer", path)
 	stdout, err := cmd.StdoutPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, cmd.Start())
 	const killAfter = 60
 	var acked []int
 	sc := bufio.NewScanner(stdout)
@@ -148,32 +146,27 @@ func TestSIGKILLKeepsAcknowledgedEntries(t *testing.T) {
 		if len(acked) == killAfter && !killed {
 			// The writer keeps going while the signal is on its way, so the
 			// kill lands in the middle of Puts.
-			if err := cmd.Process.Signal(syscall.SIGKILL); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, cmd.Process.Signal(syscall.SIGKILL))
 			killed = true
 		}
 	}
 	err = cmd.Wait()
 	var exit *exec.ExitError
-	if !killed || !errors.As(err, &exit) || exit.Sys().(syscall.WaitStatus).Signal() != syscall.SIGKILL {
-		t.Fatalf("writer ended with %v after %d acks (killed: %v); want death by SIGKILL", err, len(acked), killed)
-	}
+	require.True(t, killed, "the writer was killed")
+	require.ErrorAs(t, err, &exit, "the writer's end after %d acks", len(acked))
+	require.Equal(t, syscall.SIGKILL, exit.Sys().(syscall.WaitStatus).Signal(), "the writer died by SIGKILL")
 	t.Logf("writer acknowledged %d entries before it died", len(acked))
 
 	s := openStore(t, path, boltstore.Options{SweepInterval: -1, MaxBytes: -1})
 	ctx := t.Context()
 	for _, i := range acked {
 		got, found, err := s.Get(ctx, k(i))
-		if err != nil || !found || !bytes.Equal(got, crashValue(i)) {
-			t.Errorf("acknowledged entry %d: found %v, err %v, intact %v", i, found, err, bytes.Equal(got, crashValue(i)))
-		}
+		assert.NoError(t, err, "acknowledged entry %d", i)
+		assert.True(t, found && bytes.Equal(got, crashValue(i)), "acknowledged entry %d: found %v, intact %v", i, found, bytes.Equal(got, crashValue(i)))
 	}
 	checkStore(t, s)
 	// The store takes writes again.
-	if err := s.Put(ctx, k(1<<30), []byte("after the crash"), 0); err != nil {
-		t.Fatalf("Put after reopening: %v", err)
-	}
+	require.NoError(t, s.Put(ctx, k(1<<30), []byte("after the crash"), 0), "Put after reopening")
 	checkStore(t, s)
 }
 
@@ -184,37 +177,24 @@ func TestOpenLockedFile(t *testing.T) {
 	path := filepath.Join(t.TempDir(), "cache.db")
 	cmd := helper(t, "holder", path)
 	stdin, err := cmd.StdinPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	stdout, err := cmd.StdoutPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, cmd.Start())
 	t.Cleanup(func() { _ = cmd.Process.Kill(); _ = cmd.Wait() })
 	line, err := bufio.NewReader(stdout).ReadString('\n')
-	if err != nil || line != "ready\n" {
-		t.Fatalf("holder said %q, %v; want ready", line, err)
-	}
+	require.NoError(t, err, "the holder's first line")
+	require.Equal(t, "ready\n", line, "the holder's first line")
 	for _, timeout := range []time.Duration{-1, 100 * time.Millisecond} {
 		s, err := boltstore.Open(path, boltstore.Options{LockTimeout: timeout})
 		if err == nil {
 			_ = s.Close()
-			t.Fatalf("LockTimeout %v: Open of a file another process holds succeeded", timeout)
 		}
-		if !errors.Is(err, boltstore.ErrLocked) || !strings.Contains(err.Error(), path) {
-			t.Errorf("LockTimeout %v: Open error = %v; want ErrLocked naming the file", timeout, err)
-		}
+		require.ErrorIs(t, err, boltstore.ErrLocked, "LockTimeout %v: Open of a file another process holds", timeout)
+		assert.Contains(t, err.Error(), path, "LockTimeout %v: Open's error names the file", timeout)
 	}
-	if err := stdin.Close(); err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Wait(); err != nil {
-		t.Fatalf("holder: %v", err)
-	}
+	require.NoError(t, stdin.Close())
+	require.NoError(t, cmd.Wait(), "holder")
 	s := openStore(t, path, boltstore.Options{LockTimeout: -1})
 	checkStore(t, s)
 }

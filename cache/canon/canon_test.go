@@ -1,14 +1,14 @@
 package canon
 
 import (
-	"bytes"
 	"encoding/json"
-	"errors"
 	"math"
 	"strings"
 	"testing"
 
 	"github.com/gowebpki/jcs"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // corpus is JSON the cross-checks run on: request-shaped bodies, every value
@@ -84,18 +84,14 @@ var invalid = []struct {
 func TestTransformMatchesJCS(t *testing.T) {
 	for _, in := range corpus {
 		got, err := Transform([]byte(in))
-		if err != nil {
-			t.Errorf("Transform(%s): %v", in, err)
+		if !assert.NoError(t, err, "Transform(%s)", in) {
 			continue
 		}
 		want, err := jcs.Transform([]byte(in))
-		if err != nil {
-			t.Errorf("jcs.Transform(%s): %v", in, err)
+		if !assert.NoError(t, err, "jcs.Transform(%s)", in) {
 			continue
 		}
-		if !bytes.Equal(got, want) {
-			t.Errorf("Transform(%s)\n got %s\nwant %s (gowebpki/jcs)", in, got, want)
-		}
+		assert.Equal(t, string(want), string(got), "Transform(%s), against gowebpki/jcs", in)
 	}
 }
 
@@ -117,20 +113,18 @@ func TestTransformExamples(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Transform([]byte(tc.in))
-		if err != nil || string(got) != tc.want {
-			t.Errorf("Transform(%s) = %s, %v; want %s", tc.in, got, err, tc.want)
-		}
+		assert.NoError(t, err, "Transform(%s)", tc.in)
+		assert.Equal(t, tc.want, string(got), "Transform(%s)", tc.in)
 	}
 }
 
 func TestTransformRejects(t *testing.T) {
 	for _, tc := range invalid {
 		got, err := Transform([]byte(tc.in))
-		if !errors.Is(err, tc.want) {
-			t.Errorf("Transform(%.40q) = %.40q, %v; want error %v", tc.in, got, err, tc.want)
-		}
-		if _, jerr := jcs.Transform([]byte(tc.in)); jerr == nil && tc.want != ErrTooDeep {
-			t.Errorf("jcs.Transform(%.40q) accepted input the test calls invalid", tc.in)
+		assert.ErrorIs(t, err, tc.want, "Transform(%.40q) = %.40q", tc.in, got)
+		if tc.want != ErrTooDeep {
+			_, jerr := jcs.Transform([]byte(tc.in))
+			assert.Error(t, jerr, "jcs.Transform(%.40q) accepted input the test calls invalid", tc.in)
 		}
 	}
 }
@@ -138,12 +132,8 @@ func TestTransformRejects(t *testing.T) {
 func TestErrorDoesNotEchoLongInput(t *testing.T) {
 	long := `{"` + strings.Repeat("k", 10000) + `":1,"` + strings.Repeat("k", 10000) + `":2}`
 	_, err := Transform([]byte(long))
-	if !errors.Is(err, ErrDuplicateKey) {
-		t.Fatalf("err = %v, want ErrDuplicateKey", err)
-	}
-	if len(err.Error()) > 200 {
-		t.Errorf("error message is %d bytes long, want it truncated", len(err.Error()))
-	}
+	require.ErrorIs(t, err, ErrDuplicateKey)
+	assert.LessOrEqual(t, len(err.Error()), 200, "the error message is truncated")
 }
 
 // decode decodes JSON as the proxy does: UseNumber, into any.
@@ -152,22 +142,17 @@ func decode(t testing.TB, in string) any {
 	d := json.NewDecoder(strings.NewReader(in))
 	d.UseNumber()
 	var v any
-	if err := d.Decode(&v); err != nil {
-		t.Fatalf("decode %s: %v", in, err)
-	}
+	require.NoError(t, d.Decode(&v), "decode %s", in)
 	return v
 }
 
 func TestMarshalMatchesTransform(t *testing.T) {
 	for _, in := range corpus {
 		want, err := Transform([]byte(in))
-		if err != nil {
-			t.Fatalf("Transform(%s): %v", in, err)
-		}
+		require.NoError(t, err, "Transform(%s)", in)
 		got, err := Marshal(decode(t, in))
-		if err != nil || !bytes.Equal(got, want) {
-			t.Errorf("Marshal(decode(%s)) = %s, %v; want %s", in, got, err, want)
-		}
+		assert.NoError(t, err, "Marshal(decode(%s))", in)
+		assert.Equal(t, string(want), string(got), "Marshal(decode(%s))", in)
 	}
 }
 
@@ -187,9 +172,8 @@ func TestMarshalTypes(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Marshal(tc.v)
-		if err != nil || string(got) != tc.want {
-			t.Errorf("%s: Marshal = %s, %v; want %s", tc.name, got, err, tc.want)
-		}
+		assert.NoError(t, err, "%s: Marshal", tc.name)
+		assert.Equal(t, tc.want, string(got), "%s: Marshal", tc.name)
 	}
 }
 
@@ -214,9 +198,7 @@ func TestMarshalRejects(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Marshal(tc.v)
-		if !errors.Is(err, tc.want) {
-			t.Errorf("%s: Marshal = %s, %v; want error %v", tc.name, got, err, tc.want)
-		}
+		assert.ErrorIs(t, err, tc.want, "%s: Marshal = %s", tc.name, got)
 	}
 }
 
@@ -231,17 +213,14 @@ func TestCanonicalizerReuse(t *testing.T) {
 			start := len(buf)
 			var err error
 			buf, err = c.Append(buf, []byte(in))
-			if err != nil || !bytes.Equal(buf[start:], want) {
-				t.Fatalf("round %d: Append(%s) = %s, %v; want %s", round, in, buf[start:], err, want)
-			}
-			if _, err := c.Append(buf, []byte(`{"a":1,"a":2}`)); err == nil {
-				t.Fatal("Append of a duplicate key succeeded")
-			}
+			require.NoError(t, err, "round %d: Append(%s)", round, in)
+			require.Equal(t, string(want), string(buf[start:]), "round %d: Append(%s)", round, in)
+			_, err = c.Append(buf, []byte(`{"a":1,"a":2}`))
+			require.Error(t, err, "Append of a duplicate key")
 			start = len(buf)
 			buf, err = c.AppendValue(buf, decode(t, in))
-			if err != nil || !bytes.Equal(buf[start:], want) {
-				t.Fatalf("round %d: AppendValue(%s) = %s, %v; want %s", round, in, buf[start:], err, want)
-			}
+			require.NoError(t, err, "round %d: AppendValue(%s)", round, in)
+			require.Equal(t, string(want), string(buf[start:]), "round %d: AppendValue(%s)", round, in)
 		}
 	}
 }
@@ -250,7 +229,6 @@ func TestDeepNestingWithinLimit(t *testing.T) {
 	n := MaxDepth
 	in := strings.Repeat(`{"a":[`, n/2) + strings.Repeat(`]}`, n/2)
 	got, err := Transform([]byte(in))
-	if err != nil || string(got) != in {
-		t.Fatalf("Transform of %d-deep nesting: %v (output equal: %v)", n, err, string(got) == in)
-	}
+	require.NoError(t, err, "Transform of %d-deep nesting", n)
+	require.True(t, string(got) == in, "Transform of %d-deep nesting changed it", n)
 }

@@ -6,6 +6,7 @@ import (
 	"testing"
 
 	"github.com/gowebpki/jcs"
+	"github.com/stretchr/testify/require"
 )
 
 // FuzzCanonical checks, for any input: Transform never panics; its output is
@@ -27,28 +28,20 @@ func FuzzCanonical(f *testing.F) {
 	f.Fuzz(func(t *testing.T, in []byte) {
 		got, err := Transform(in)
 		want, jerr := jcs.Transform(in)
-		if (err == nil) != (jerr == nil) {
-			t.Fatalf("Transform(%q): err = %v, gowebpki/jcs err = %v", in, err, jerr)
-		}
+		require.Equal(t, jerr == nil, err == nil, "Transform(%q): err = %v, gowebpki/jcs err = %v", in, err, jerr)
 		if err != nil {
 			return
 		}
-		if !bytes.Equal(got, want) {
-			t.Fatalf("Transform(%q)\n got %q\nwant %q (gowebpki/jcs)", in, got, want)
-		}
+		require.Equal(t, string(want), string(got), "Transform(%q), against gowebpki/jcs", in)
 		again, err := Transform(got)
-		if err != nil || !bytes.Equal(again, got) {
-			t.Fatalf("Transform(Transform(%q)) = %q, %v; want %q", in, again, err, got)
-		}
+		require.NoError(t, err, "Transform(Transform(%q))", in)
+		require.Equal(t, string(got), string(again), "Transform(Transform(%q)): a fixed point", in)
 		d := json.NewDecoder(bytes.NewReader(in))
 		d.UseNumber()
 		var v any
-		if err := d.Decode(&v); err != nil {
-			t.Fatalf("encoding/json rejects %q, which Transform accepted: %v", in, err)
-		}
+		require.NoError(t, d.Decode(&v), "encoding/json rejects %q, which Transform accepted", in)
 		viaValue, err := Marshal(v)
-		if err != nil || !bytes.Equal(viaValue, got) {
-			t.Fatalf("Marshal(decode(%q)) = %q, %v; want %q", in, viaValue, err, got)
-		}
+		require.NoError(t, err, "Marshal(decode(%q))", in)
+		require.Equal(t, string(got), string(viaValue), "Marshal(decode(%q))", in)
 	})
 }

@@ -2,10 +2,12 @@ package coalesce
 
 import (
 	"context"
-	"errors"
 	"sync"
 	"sync/atomic"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestDoMergesConcurrentCalls(t *testing.T) {
@@ -26,9 +28,8 @@ func TestDoMergesConcurrentCalls(t *testing.T) {
 			<-release
 			return 42, nil
 		})
-		if err != nil || shared {
-			t.Errorf("leader: got shared=%v err=%v, want false, nil", shared, err)
-		}
+		assert.NoError(t, err, "leader")
+		assert.False(t, shared, "leader: shared")
 		results <- v
 	}()
 	<-leaderIn
@@ -40,9 +41,8 @@ func TestDoMergesConcurrentCalls(t *testing.T) {
 				calls.Add(1)
 				return -1, nil
 			})
-			if err != nil || !shared {
-				t.Errorf("waiter: got shared=%v err=%v, want true, nil", shared, err)
-			}
+			assert.NoError(t, err, "waiter")
+			assert.True(t, shared, "waiter: shared")
 			results <- v
 		}()
 	}
@@ -53,16 +53,10 @@ func TestDoMergesConcurrentCalls(t *testing.T) {
 	wg.Wait()
 	close(results)
 	for v := range results {
-		if v != 42 {
-			t.Errorf("got %d, want 42", v)
-		}
+		assert.Equal(t, 42, v)
 	}
-	if got := calls.Load(); got != 1 {
-		t.Errorf("fn ran %d times, want 1", got)
-	}
-	if g.InFlight() != 0 {
-		t.Errorf("InFlight = %d after all calls, want 0", g.InFlight())
-	}
+	assert.Equal(t, int32(1), calls.Load(), "fn runs")
+	assert.Zero(t, g.InFlight(), "InFlight after all calls")
 }
 
 func TestWaiterHonoursItsContext(t *testing.T) {
@@ -82,13 +76,10 @@ func TestWaiterHonoursItsContext(t *testing.T) {
 	ctx, cancel := context.WithCancel(context.Background())
 	cancel()
 	_, shared, err := g.Do(ctx, "k", func() (string, error) { return "", nil })
-	if !shared || !errors.Is(err, context.Canceled) {
-		t.Fatalf("got shared=%v err=%v, want true, context.Canceled", shared, err)
-	}
+	require.ErrorIs(t, err, context.Canceled)
+	require.True(t, shared, "shared")
 	close(release)
-	if got := <-leaderDone; got != "answer" {
-		t.Fatalf("leader got %q, want %q", got, "answer")
-	}
+	assert.Equal(t, "answer", <-leaderDone, "the leader's answer")
 }
 
 func TestPanicReachesWaitersAsError(t *testing.T) {
@@ -113,17 +104,15 @@ func TestPanicReachesWaitersAsError(t *testing.T) {
 		waitABit()
 	}
 	close(release)
-	if err := <-waiterErr; err == nil {
-		t.Fatal("waiter got nil error after the leader panicked")
-	}
+	assert.Error(t, <-waiterErr, "the waiter's error after the leader panicked")
 }
 
 func TestDistinctKeysRunSeparately(t *testing.T) {
 	var g Group[string]
 	for _, key := range []string{"a", "b", "c"} {
 		v, shared, err := g.Do(context.Background(), key, func() (string, error) { return key, nil })
-		if v != key || shared || err != nil {
-			t.Errorf("Do(%q) = %q, %v, %v; want %q, false, nil", key, v, shared, err, key)
-		}
+		require.NoError(t, err, "Do(%q)", key)
+		assert.Equal(t, key, v, "Do(%q)", key)
+		assert.False(t, shared, "Do(%q): shared", key)
 	}
 }

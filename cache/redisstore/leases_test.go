@@ -2,12 +2,13 @@ package redisstore_test
 
 import (
 	"context"
-	"errors"
 	"sync"
 	"testing"
 	"time"
 
 	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/redisstore"
@@ -59,34 +60,26 @@ func TestClaimWaitsForRelease(t *testing.T) {
 			defer cancel()
 			k := key(7)
 			release, err := a.Claim(ctx, k)
-			if err != nil || release == nil {
-				t.Fatalf("first Claim: held %v, err %v", release != nil, err)
-			}
+			require.NoError(t, err, "first Claim")
+			require.NotNil(t, release, "first Claim: held")
 			waiter := claimAsync(ctx, other, k)
 			// The waiter is subscribed once the channel has a subscriber.
 			awaitSubscribers(t, ctx, b.client, "cache:{"+k+"}:n", 1)
-			if err := a.Put(ctx, k, []byte("the answer"), 0); err != nil {
-				t.Fatal(err)
-			}
-			if err := release(ctx); err != nil {
-				t.Fatalf("release: %v", err)
-			}
-			if err := release(ctx); err != nil {
-				t.Errorf("second release: %v, want nil", err)
-			}
+			require.NoError(t, a.Put(ctx, k, []byte("the answer"), 0))
+			require.NoError(t, release(ctx), "release")
+			assert.NoError(t, release(ctx), "second release")
 			r := <-waiter
-			if r.err != nil || r.release != nil {
-				t.Fatalf("waiter: held %v, err %v; want released (nil, nil) before the deadline", r.release != nil, r.err)
-			}
-			if v, found, err := other.Get(ctx, k); err != nil || !found || string(v) != "the answer" {
-				t.Errorf("waiter's read after the release = %q, %v, %v", v, found, err)
-			}
+			require.NoError(t, r.err, "waiter: released before the deadline")
+			require.Nil(t, r.release, "waiter: released, not holding")
+			v, found, err := other.Get(ctx, k)
+			assert.NoError(t, err, "waiter's read after the release")
+			assert.True(t, found, "waiter's read after the release")
+			assert.Equal(t, "the answer", string(v), "waiter's read after the release")
 			// Free again: the next Claim holds.
-			if rel, err := other.Claim(ctx, k); err != nil || rel == nil {
-				t.Errorf("Claim after the release: held %v, err %v", rel != nil, err)
-			} else {
-				_ = rel(ctx)
-			}
+			rel, err := other.Claim(ctx, k)
+			require.NoError(t, err, "Claim after the release")
+			require.NotNil(t, rel, "Claim after the release: held")
+			_ = rel(ctx)
 		})
 	}
 }
@@ -112,7 +105,7 @@ func awaitSubscribers(t *testing.T, ctx context.Context, c redis.UniversalClient
 		}
 		select {
 		case <-ctx.Done():
-			t.Fatalf("channel *%s has %d subscribers, want %d", suffix, got, n)
+			require.Failf(t, "subscribers never came", "channel *%s has %d subscribers, want %d", suffix, got, n)
 		case <-time.After(10 * time.Millisecond): // polling interval
 		}
 	}
@@ -147,21 +140,16 @@ func TestClaimAfterHolderDies(t *testing.T) {
 			defer cancel()
 			k := key(8)
 			release, err := a.Claim(ctx, k)
-			if err != nil || release == nil {
-				t.Fatalf("first Claim: held %v, err %v", release != nil, err)
-			}
+			require.NoError(t, err, "first Claim")
+			require.NotNil(t, release, "first Claim: held")
 			_ = a.Close() // stops the renewals, releases nothing
 			r := <-claimAsync(ctx, other, k)
-			if r.err != nil || r.release != nil {
-				t.Fatalf("waiter: held %v, err %v; want (nil, nil) once the lease expired", r.release != nil, r.err)
-			}
+			require.NoError(t, r.err, "waiter once the lease expired")
+			require.Nil(t, r.release, "waiter once the lease expired: not holding")
 			rel, err := other.Claim(ctx, k)
-			if err != nil || rel == nil {
-				t.Fatalf("Claim after the holder died: held %v, err %v", rel != nil, err)
-			}
-			if err := release(ctx); !errors.Is(err, cache.ErrClosed) {
-				t.Errorf("release on a closed store: %v, want cache.ErrClosed", err)
-			}
+			require.NoError(t, err, "Claim after the holder died")
+			require.NotNil(t, rel, "Claim after the holder died: held")
+			assert.ErrorIs(t, release(ctx), cache.ErrClosed, "release on a closed store")
 			_ = rel(ctx)
 		})
 	}
@@ -175,15 +163,14 @@ func TestLeaseIsRenewed(t *testing.T) {
 	a, other := replicas(t, c, redisstore.Options{LeaseTTL: 600 * time.Millisecond})
 	ctx := t.Context()
 	release, err := a.Claim(ctx, key(9))
-	if err != nil || release == nil {
-		t.Fatalf("Claim: held %v, err %v", release != nil, err)
-	}
+	require.NoError(t, err, "Claim")
+	require.NotNil(t, release, "Claim: held")
 	defer release(ctx)
 	wctx, cancel := context.WithTimeout(ctx, 3*time.Second) // five lease lifetimes
 	defer cancel()
-	if rel, err := other.Claim(wctx, key(9)); !errors.Is(err, context.DeadlineExceeded) || rel != nil {
-		t.Errorf("waiter past five lease lifetimes: held %v, err %v; want its deadline (the holder renews)", rel != nil, err)
-	}
+	rel, err := other.Claim(wctx, key(9))
+	assert.ErrorIs(t, err, context.DeadlineExceeded, "waiter past five lease lifetimes: its deadline (the holder renews)")
+	assert.Nil(t, rel, "waiter past five lease lifetimes: not holding")
 }
 
 // TestReleaseIsCompareAndDelete: a holder whose lease was lost (expired and
@@ -194,27 +181,19 @@ func TestReleaseIsCompareAndDelete(t *testing.T) {
 	ctx := t.Context()
 	k := key(10)
 	stale, err := a.Claim(ctx, k)
-	if err != nil || stale == nil {
-		t.Fatalf("Claim: held %v, err %v", stale != nil, err)
-	}
+	require.NoError(t, err, "Claim")
+	require.NotNil(t, stale, "Claim: held")
 	// The lease runs out (deleted here, as expiry would).
 	keys, _ := c.Keys(ctx, "*:cache:{"+k+"}:l").Result()
-	if len(keys) != 1 {
-		t.Fatalf("lease keys %v", keys)
-	}
+	require.Len(t, keys, 1, "lease keys %v", keys)
 	c.Del(ctx, keys[0])
 	fresh, err := other.Claim(ctx, k)
-	if err != nil || fresh == nil {
-		t.Fatalf("Claim after expiry: held %v, err %v", fresh != nil, err)
-	}
-	if err := stale(ctx); err != nil {
-		t.Fatalf("stale release: %v", err)
-	}
-	if n, _ := c.Exists(ctx, keys[0]).Result(); n != 1 {
-		t.Error("a stale holder's release deleted the new holder's lease")
-	}
+	require.NoError(t, err, "Claim after expiry")
+	require.NotNil(t, fresh, "Claim after expiry: held")
+	require.NoError(t, stale(ctx), "stale release")
+	n, _ := c.Exists(ctx, keys[0]).Result()
+	assert.EqualValues(t, 1, n, "a stale holder's release deleted the new holder's lease")
 	_ = fresh(ctx)
-	if n, _ := c.Exists(ctx, keys[0]).Result(); n != 0 {
-		t.Error("the holder's release left its lease")
-	}
+	n, _ = c.Exists(ctx, keys[0]).Result()
+	assert.Zero(t, n, "the holder's release left its lease")
 }

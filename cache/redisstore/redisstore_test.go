@@ -3,7 +3,6 @@ package redisstore_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"strconv"
 	"sync/atomic"
@@ -11,6 +10,8 @@ import (
 	"time"
 
 	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
 	"github.com/stintlab/stint/cache/redisstore"
@@ -68,27 +69,24 @@ func TestKeysShareASlot(t *testing.T) {
 	s := newStore(t, c, redisstore.Options{Prefix: "slots"})
 	ctx := t.Context()
 	k := key(42)
-	if err := s.Put(ctx, k, []byte("answer"), time.Hour); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, k, []byte("answer"), time.Hour))
 	release, err := s.Claim(ctx, k)
-	if err != nil || release == nil {
-		t.Fatalf("Claim of a free key: release %v, err %v", release != nil, err)
-	}
+	require.NoError(t, err, "Claim of a free key")
+	require.NotNil(t, release, "Claim of a free key: held")
 	defer release(ctx)
 	vk, lk := "slots:cache:{"+k+"}:v", "slots:cache:{"+k+"}:l"
 	vs, err1 := c.ClusterKeySlot(ctx, vk).Result()
 	ls, err2 := c.ClusterKeySlot(ctx, lk).Result()
-	if err1 != nil || err2 != nil || vs != ls {
-		t.Errorf("slots of %s and %s: %d, %d (%v %v), want one slot", vk, lk, vs, ls, err1, err2)
-	}
+	require.NoError(t, err1)
+	require.NoError(t, err2)
+	assert.Equal(t, vs, ls, "slots of %s and %s: want one slot", vk, lk)
 	ttl, err := c.PTTL(ctx, vk).Result()
-	if err != nil || ttl <= 59*time.Minute || ttl > time.Hour {
-		t.Errorf("PTTL of the entry = %v, %v; want about an hour", ttl, err)
-	}
-	if n, err := c.Exists(ctx, lk).Result(); err != nil || n != 1 {
-		t.Errorf("lease key %s exists = %d, %v", lk, n, err)
-	}
+	require.NoError(t, err, "PTTL of the entry")
+	assert.Greater(t, ttl, 59*time.Minute, "PTTL of the entry: about an hour")
+	assert.LessOrEqual(t, ttl, time.Hour, "PTTL of the entry: about an hour")
+	n, err := c.Exists(ctx, lk).Result()
+	require.NoError(t, err)
+	assert.EqualValues(t, 1, n, "lease key %s exists", lk)
 }
 
 // TestValuesAreCompressed checks that a large repetitive value is stored
@@ -107,13 +105,10 @@ func TestValuesAreCompressed(t *testing.T) {
 		{"small", []byte(`{"text":"ok"}`), len(`{"text":"ok"}`) + 14},
 	}
 	for i, tc := range tests {
-		if err := s.Put(ctx, key(i), tc.value, 0); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, s.Put(ctx, key(i), tc.value, 0))
 		n, err := c.StrLen(ctx, "packed:cache:{"+key(i)+"}:v").Result()
-		if err != nil || int(n) > tc.maxStored {
-			t.Errorf("%s: %d bytes stored (%v), want at most %d", tc.name, n, err, tc.maxStored)
-		}
+		require.NoError(t, err, "%s: STRLEN", tc.name)
+		assert.LessOrEqual(t, int(n), tc.maxStored, "%s: bytes stored", tc.name)
 	}
 }
 
@@ -123,9 +118,7 @@ func TestCorruptValueIsAnError(t *testing.T) {
 	c := redistest.Start(t).Client(t)
 	s := newStore(t, c, redisstore.Options{Prefix: "bad"})
 	ctx := t.Context()
-	if err := s.Put(ctx, key(1), []byte("a fine answer"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, key(1), []byte("a fine answer"), 0))
 	raw, _ := c.Get(ctx, "bad:cache:{"+key(1)+"}:v").Bytes()
 	tests := []struct {
 		name  string
@@ -136,18 +129,15 @@ func TestCorruptValueIsAnError(t *testing.T) {
 	}
 	for _, tc := range tests {
 		c.Set(ctx, "bad:cache:{"+key(1)+"}:v", tc.value, 0)
-		if _, _, err := s.Get(ctx, key(1)); !errors.Is(err, redisstore.ErrCorrupt) {
-			t.Errorf("%s: Get err = %v, want ErrCorrupt", tc.name, err)
-		}
+		_, _, err := s.Get(ctx, key(1))
+		assert.ErrorIs(t, err, redisstore.ErrCorrupt, "%s: Get", tc.name)
 	}
 }
 
 func TestTooLarge(t *testing.T) {
 	c := redistest.Start(t).Client(t)
 	s := newStore(t, c, redisstore.Options{MaxEntryBytes: 1000, CompressMin: -1})
-	if err := s.Put(t.Context(), key(1), make([]byte, 2000), 0); !errors.Is(err, cache.ErrTooLarge) {
-		t.Errorf("Put of 2000 bytes with a 1000-byte limit: %v, want cache.ErrTooLarge", err)
-	}
+	assert.ErrorIs(t, s.Put(t.Context(), key(1), make([]byte, 2000), 0), cache.ErrTooLarge, "Put of 2000 bytes with a 1000-byte limit")
 }
 
 func TestBadOptions(t *testing.T) {
@@ -162,25 +152,21 @@ func TestBadOptions(t *testing.T) {
 		{"tiny lease", redisstore.Options{LeaseTTL: time.Millisecond}, "LeaseTTL"},
 	}
 	for _, tc := range tests {
-		if _, err := redisstore.New(c, tc.opts); err == nil || !bytes.Contains([]byte(err.Error()), []byte(tc.want)) {
-			t.Errorf("%s: New err = %v, want one naming %s", tc.name, err, tc.want)
+		_, err := redisstore.New(c, tc.opts)
+		if assert.Error(t, err, "%s: New", tc.name) {
+			assert.Contains(t, err.Error(), tc.want, "%s: New's error names the option", tc.name)
 		}
 	}
-	if _, err := redisstore.New(nil, redisstore.Options{}); err == nil {
-		t.Error("New(nil client) succeeded")
-	}
+	_, err := redisstore.New(nil, redisstore.Options{})
+	assert.Error(t, err, "New(nil client)")
 }
 
 // TestCloseLeavesClientOpen: the store does not own the client.
 func TestCloseLeavesClientOpen(t *testing.T) {
 	c := redistest.Start(t).Client(t)
 	s := newStore(t, c, redisstore.Options{})
-	if err := s.Close(); err != nil {
-		t.Fatal(err)
-	}
-	if err := c.Ping(t.Context()).Err(); err != nil {
-		t.Errorf("client after the store's Close: %v, want it still open", err)
-	}
+	require.NoError(t, s.Close())
+	assert.NoError(t, c.Ping(t.Context()).Err(), "client after the store's Close: still open")
 }
 
 // TestDeadRedisFailsFastAndRecovers stops the server: calls fail with
@@ -192,9 +178,7 @@ func TestDeadRedisFailsFastAndRecovers(t *testing.T) {
 	defer c.Close()
 	s := newStore(t, c, redisstore.Options{Timeout: 200 * time.Millisecond, Cooldown: 100 * time.Millisecond})
 	ctx := t.Context()
-	if err := s.Put(ctx, key(1), []byte("kept"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, key(1), []byte("kept"), 0))
 	srv.Stop()
 	dctx, cancel := context.WithTimeout(ctx, 5*time.Second)
 	defer cancel()
@@ -208,9 +192,8 @@ func TestDeadRedisFailsFastAndRecovers(t *testing.T) {
 		{"Claim", func() error { _, err := s.Claim(dctx, key(3)); return err }},
 	}
 	for _, op := range ops {
-		if err := op.do(); !errors.Is(err, redisstore.ErrUnavailable) || dctx.Err() != nil {
-			t.Errorf("%s with Redis down: %v (deadline passed: %v), want ErrUnavailable first", op.name, err, dctx.Err())
-		}
+		assert.ErrorIs(t, op.do(), redisstore.ErrUnavailable, "%s with Redis down", op.name)
+		assert.NoError(t, dctx.Err(), "%s with Redis down: ErrUnavailable before the deadline", op.name)
 	}
 	srv.Restart(t)
 	deadline := time.Now().Add(10 * time.Second)
@@ -219,15 +202,13 @@ func TestDeadRedisFailsFastAndRecovers(t *testing.T) {
 		if err == nil {
 			break
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("Put after Redis came back: %v", err)
-		}
+		require.False(t, time.Now().After(deadline), "Put after Redis came back: %v", err)
 		time.Sleep(20 * time.Millisecond) // polling interval while the cooldown ends
 	}
 	v, found, err := s.Get(ctx, key(1))
-	if err != nil || !found || string(v) != "back" {
-		t.Errorf("Get after recovery = %q, %v, %v", v, found, err)
-	}
+	require.NoError(t, err, "Get after recovery")
+	assert.True(t, found, "Get after recovery")
+	assert.Equal(t, "back", string(v), "Get after recovery")
 }
 
 // TestSlowRedisIsBounded pauses the server (CLIENT PAUSE, as an overloaded
@@ -239,17 +220,13 @@ func TestSlowRedisIsBounded(t *testing.T) {
 	defer c.Close()
 	s := newStore(t, c, redisstore.Options{Timeout: 100 * time.Millisecond})
 	ctx := t.Context()
-	if err := s.Put(ctx, key(1), []byte("v"), 0); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.Put(ctx, key(1), []byte("v"), 0))
 	admin := srv.Client(t)
-	if err := admin.Do(ctx, "CLIENT", "PAUSE", 5000, "ALL").Err(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, admin.Do(ctx, "CLIENT", "PAUSE", 5000, "ALL").Err())
 	defer admin.Do(context.Background(), "CLIENT", "UNPAUSE")
 	dctx, cancel := context.WithTimeout(ctx, 4*time.Second)
 	defer cancel()
-	if _, _, err := s.Get(dctx, key(1)); !errors.Is(err, redisstore.ErrUnavailable) || dctx.Err() != nil {
-		t.Errorf("Get on a paused Redis: %v (caller deadline passed: %v), want ErrUnavailable before the deadline", err, dctx.Err())
-	}
+	_, _, err := s.Get(dctx, key(1))
+	assert.ErrorIs(t, err, redisstore.ErrUnavailable, "Get on a paused Redis")
+	assert.NoError(t, dctx.Err(), "Get on a paused Redis: ErrUnavailable before the caller's deadline")
 }

@@ -17,6 +17,8 @@ import (
 	"testing/iotest"
 
 	"github.com/klauspost/compress/zstd"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/runs"
 )
@@ -32,37 +34,26 @@ func TestArchiveAcrossBackends(t *testing.T) {
 		src := from.open(t)
 		recordAll(t, src, "lab", "sweep-7", calls)
 		var archive bytes.Buffer
-		if err := src.Export(context.Background(), "lab", "sweep-7", &archive); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, src.Export(context.Background(), "lab", "sweep-7", &archive))
 		for _, to := range backends {
 			t.Run(from.name+"-to-"+to.name, func(t *testing.T) {
 				dst := to.open(t)
 				s, err := dst.Import(context.Background(), "other-team", bytes.NewReader(archive.Bytes()), runs.ImportOptions{})
-				if err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, err)
 				want, _ := src.Summary(context.Background(), "lab", "sweep-7")
 				want.Team = "other-team"
-				if !sameSummary(s, want) {
-					t.Errorf("Import returned\n %+v\nwant %+v", s, want)
-				}
-				if got, err := dst.Summary(context.Background(), "other-team", "sweep-7"); err != nil || !sameSummary(got, want) {
-					t.Errorf("Summary after Import: got %+v, %v", got, err)
-				}
+				assert.True(t, sameSummary(s, want), "Import returned\n %+v\nwant %+v", s, want)
+				got, err := dst.Summary(context.Background(), "other-team", "sweep-7")
+				require.NoError(t, err, "Summary after Import")
+				assert.True(t, sameSummary(got, want), "Summary after Import: %+v", got)
 				checkReplay(t, dst, "other-team", "sweep-7", calls)
 				var again bytes.Buffer
-				if err := dst.Export(context.Background(), "other-team", "sweep-7", &again); err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, dst.Export(context.Background(), "other-team", "sweep-7", &again))
 				a, b := readMembers(t, archive.Bytes()), readMembers(t, again.Bytes())
-				if len(a) != len(b) {
-					t.Fatalf("re-export has %d members, want %d", len(b), len(a))
-				}
+				require.Len(t, b, len(a), "re-export's members")
 				for i := 1; i < len(a); i++ { // the manifest differs in team and created time
-					if a[i].name != b[i].name || !bytes.Equal(a[i].data, b[i].data) {
-						t.Errorf("re-exported member %d %s differs", i, b[i].name)
-					}
+					assert.Equal(t, a[i].name, b[i].name, "re-exported member %d", i)
+					assert.True(t, bytes.Equal(a[i].data, b[i].data), "re-exported member %d %s differs", i, b[i].name)
 				}
 			})
 		}
@@ -79,9 +70,7 @@ type tarMember struct {
 func readMembers(t testing.TB, archive []byte) []tarMember {
 	t.Helper()
 	zr, err := zstd.NewReader(bytes.NewReader(archive))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer zr.Close()
 	tr := tar.NewReader(zr)
 	var ms []tarMember
@@ -90,13 +79,9 @@ func readMembers(t testing.TB, archive []byte) []tarMember {
 		if err == io.EOF {
 			return ms
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		data, err := io.ReadAll(tr)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		ms = append(ms, tarMember{name: h.Name, data: data, typ: h.Typeflag})
 	}
 }
@@ -116,16 +101,11 @@ func writeTar(t testing.TB, ms []tarMember) []byte {
 		if typ == 0 {
 			typ = tar.TypeReg
 		}
-		if err := tw.WriteHeader(&tar.Header{Name: m.name, Typeflag: typ, Size: int64(len(m.data)), Mode: 0o644}); err != nil {
-			t.Fatal(err)
-		}
-		if _, err := tw.Write(m.data); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, tw.WriteHeader(&tar.Header{Name: m.name, Typeflag: typ, Size: int64(len(m.data)), Mode: 0o644}))
+		_, err := tw.Write(m.data)
+		require.NoError(t, err)
 	}
-	if err := tw.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, tw.Close())
 	return buf.Bytes()
 }
 
@@ -133,9 +113,7 @@ func writeTar(t testing.TB, ms []tarMember) []byte {
 func compress(t testing.TB, b []byte) []byte {
 	t.Helper()
 	zw, err := zstd.NewWriter(nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer zw.Close()
 	return withTrailer(zw.EncodeAll(b, nil))
 }
@@ -145,15 +123,10 @@ func compressStream(t testing.TB, b []byte, opts ...zstd.EOption) []byte {
 	t.Helper()
 	var out bytes.Buffer
 	zw, err := zstd.NewWriter(&out, opts...)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := zw.Write(b); err != nil {
-		t.Fatal(err)
-	}
-	if err := zw.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	_, err = zw.Write(b)
+	require.NoError(t, err)
+	require.NoError(t, zw.Close())
 	return withTrailer(out.Bytes())
 }
 
@@ -180,16 +153,12 @@ func explode(t testing.TB, archive []byte) *parts {
 	p := &parts{members: readMembers(t, archive)}
 	d := json.NewDecoder(bytes.NewReader(p.members[0].data))
 	d.UseNumber()
-	if err := d.Decode(&p.manifest); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, d.Decode(&p.manifest))
 	d = json.NewDecoder(bytes.NewReader(p.members[1].data))
 	d.UseNumber()
 	for d.More() {
 		var e map[string]any
-		if err := d.Decode(&e); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, d.Decode(&e))
 		p.entries = append(p.entries, e)
 	}
 	p.original = encodeEntries(t, p.entries)
@@ -200,9 +169,7 @@ func encodeEntries(t testing.TB, entries []map[string]any) []byte {
 	t.Helper()
 	var b bytes.Buffer
 	for _, e := range entries {
-		if err := json.NewEncoder(&b).Encode(e); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, json.NewEncoder(&b).Encode(e))
 	}
 	return b.Bytes()
 }
@@ -224,9 +191,7 @@ func (p *parts) build(t testing.TB, fixSums bool) []byte {
 		p.manifest["members"] = list
 	}
 	mj, err := json.Marshal(p.manifest)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	p.members[0].data = mj
 	return writeMembers(t, p.members)
 }
@@ -237,9 +202,7 @@ func exampleArchive(t testing.TB, calls []call) []byte {
 	j := boltBackend().open(t)
 	recordAll(t, j, "lab", "small", calls)
 	var buf bytes.Buffer
-	if err := j.Export(context.Background(), "lab", "small", &buf); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Export(context.Background(), "lab", "small", &buf))
 	return buf.Bytes()
 }
 
@@ -261,9 +224,8 @@ func TestImportRefuses(t *testing.T) {
 	}
 	// Sanity: taking the archive apart and back together is accepted, so
 	// each case below fails for its own change only.
-	if _, err := boltBackend().open(t).Import(context.Background(), "lab", bytes.NewReader(rebuilt(true, func(*parts) {})), runs.ImportOptions{}); err != nil {
-		t.Fatalf("rebuilt archive refused: %v", err)
-	}
+	_, err := boltBackend().open(t).Import(context.Background(), "lab", bytes.NewReader(rebuilt(true, func(*parts) {})), runs.ImportOptions{})
+	require.NoError(t, err, "rebuilt archive refused")
 	// A bomb: 64 MiB of zeros after the tar's end, a few KB compressed.
 	// Written as a stream, as Export writes, so its frames declare an 8 MiB
 	// window rather than their whole size.
@@ -324,9 +286,8 @@ func TestImportRefuses(t *testing.T) {
 			if tc.want == "limit" || tc.want == "compressed archive is larger" {
 				want = runs.ErrTooLarge
 			}
-			if !errors.Is(err, want) || !strings.Contains(err.Error(), tc.want) {
-				t.Fatalf("got %v, want %v mentioning %q", err, want, tc.want)
-			}
+			require.ErrorIs(t, err, want)
+			require.Contains(t, err.Error(), tc.want)
 			wantNoTrace(t, j, "lab", "small")
 		})
 	}
@@ -347,9 +308,8 @@ func TestImportDamaged(t *testing.T) {
 			if i > 0 && offset%5 != 0 {
 				continue
 			}
-			if _, err := j.Import(ctx, "lab", bytes.NewReader(data), runs.ImportOptions{}); !errors.Is(err, runs.ErrCorruptArchive) {
-				t.Fatalf("%s: got %v, want ErrCorruptArchive", what, err)
-			}
+			_, err := j.Import(ctx, "lab", bytes.NewReader(data), runs.ImportOptions{})
+			require.ErrorIs(t, err, runs.ErrCorruptArchive, "%s: got", what)
 		}
 	}
 	for n := range len(good) {
@@ -367,9 +327,8 @@ func TestImportDamaged(t *testing.T) {
 	}
 	// The undamaged archive still imports, so the refusals were the damage's.
 	for _, j := range backends {
-		if _, err := j.Import(ctx, "lab", bytes.NewReader(good), runs.ImportOptions{}); err != nil {
-			t.Fatal(err)
-		}
+		_, err := j.Import(ctx, "lab", bytes.NewReader(good), runs.ImportOptions{})
+		require.NoError(t, err)
 	}
 }
 
@@ -381,8 +340,7 @@ func TestImportSourceError(t *testing.T) {
 	j := boltBackend().open(t)
 	r := io.MultiReader(bytes.NewReader(good[:len(good)/2]), iotest.ErrReader(cut))
 	_, err := j.Import(context.Background(), "lab", r, runs.ImportOptions{})
-	if !errors.Is(err, cut) || errors.Is(err, runs.ErrCorruptArchive) {
-		t.Errorf("got %v, want the reader's error and not ErrCorruptArchive", err)
-	}
+	assert.ErrorIs(t, err, cut, "the reader's error")
+	assert.NotErrorIs(t, err, runs.ErrCorruptArchive, "a reader's error is not a corrupt archive")
 	wantNoTrace(t, j, "lab", "small")
 }

@@ -3,10 +3,11 @@ package runs_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"path/filepath"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/runs"
@@ -22,25 +23,19 @@ func TestBoltReopen(t *testing.T) {
 	j, db := openBolt(t, path)
 	recordAll(t, j, "lab", "r", calls)
 	var archive bytes.Buffer
-	if err := j.Export(context.Background(), "lab", "r", &archive); err != nil {
-		t.Fatal(err)
-	}
-	if _, err := j.Import(context.Background(), "other", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "imported"}); err != nil {
-		t.Fatal(err)
-	}
-	if err := db.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Export(context.Background(), "lab", "r", &archive))
+	_, err := j.Import(context.Background(), "other", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "imported"})
+	require.NoError(t, err)
+	require.NoError(t, db.Close())
 	j, _ = openBolt(t, path)
 	checkReplay(t, j, "lab", "r", calls)
 	checkReplay(t, j, "other", "imported", calls)
-	if s, err := j.Summary(context.Background(), "lab", "r"); err != nil || !sameSummary(s, wantSummary("lab", "r", calls)) {
-		t.Errorf("Summary after reopen: got %+v, %v", s, err)
-	}
+	s, err := j.Summary(context.Background(), "lab", "r")
+	require.NoError(t, err, "Summary after reopen")
+	assert.True(t, sameSummary(s, wantSummary("lab", "r", calls)), "Summary after reopen: %+v", s)
 	e, err := j.Record(context.Background(), "lab", "r", calls[0].entry, calls[0].answer)
-	if err != nil || e.Seq != int64(len(calls)+1) {
-		t.Errorf("Record after reopen: got seq %d, %v; want %d", e.Seq, err, len(calls)+1)
-	}
+	require.NoError(t, err, "Record after reopen")
+	assert.Equal(t, int64(len(calls)+1), e.Seq, "Record after reopen: seq")
 }
 
 // TestBoltSharedFile checks that the journal keeps to its own bucket of a
@@ -55,13 +50,9 @@ func TestBoltSharedFile(t *testing.T) {
 		}
 		return b.Put([]byte("k"), []byte("v"))
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	recordAll(t, j, "lab", "r", mixedCalls(4))
-	if err := j.Delete(context.Background(), "lab", "r"); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Delete(context.Background(), "lab", "r"))
 	var names []string
 	_ = db.View(func(tx *bbolt.Tx) error {
 		return tx.ForEach(func(name []byte, _ *bbolt.Bucket) error {
@@ -69,12 +60,9 @@ func TestBoltSharedFile(t *testing.T) {
 			return nil
 		})
 	})
-	if len(names) != 2 || names[0] != "stint.cache.v1" || names[1] != "stint.runs.v1" {
-		t.Errorf("top-level buckets: got %q, want the cache's and stint.runs.v1", names)
-	}
-	if _, err := runs.NewBolt(nil, runs.BoltOptions{}); err == nil {
-		t.Error("NewBolt(nil, runs.BoltOptions{}): got no error")
-	}
+	assert.Equal(t, []string{"stint.cache.v1", "stint.runs.v1"}, names, "top-level buckets: the cache's and stint.runs.v1")
+	_, err = runs.NewBolt(nil, runs.BoltOptions{})
+	assert.Error(t, err, "NewBolt(nil, runs.BoltOptions{})")
 }
 
 // TestBoltCorruptValues damages stored values in place: reads fail with
@@ -109,7 +97,7 @@ func TestBoltCorruptValues(t *testing.T) {
 				type kv struct{ k, v []byte }
 				var all []kv
 				_ = b.ForEach(func(k, v []byte) error {
-					if v != nil && len(v) > 0 {
+					if len(v) > 0 {
 						all = append(all, kv{append([]byte{}, k...), append([]byte{}, v...)})
 					}
 					return nil
@@ -121,20 +109,16 @@ func TestBoltCorruptValues(t *testing.T) {
 				}
 				return nil
 			})
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			ctx := context.Background()
 			failed := false
 			for _, c := range calls {
 				_, a, err := j.Lookup(ctx, "lab", "r", c.key, 1)
-				if err == nil && string(a.Body) != string(c.answer.Body) {
-					t.Fatalf("Lookup returned wrong bytes after damage")
+				if err == nil {
+					require.Equal(t, string(c.answer.Body), string(a.Body), "Lookup returned wrong bytes after damage")
 				}
 				if err != nil {
-					if !errors.Is(err, runs.ErrCorrupt) {
-						t.Errorf("Lookup: got %v, want ErrCorrupt", err)
-					}
+					assert.ErrorIs(t, err, runs.ErrCorrupt, "Lookup")
 					failed = true
 				}
 			}
@@ -150,12 +134,10 @@ func TestBoltCorruptValues(t *testing.T) {
 				errs = append(errs, err)
 			}
 			for _, err := range errs {
-				if !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, err, runs.ErrCorrupt)
 			}
-			if !failed && tc.bucket != "" && tc.bucket != "o" {
-				t.Error("no Lookup noticed the damage")
+			if tc.bucket != "" && tc.bucket != "o" {
+				assert.True(t, failed, "no Lookup noticed the damage")
 			}
 		})
 	}

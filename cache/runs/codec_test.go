@@ -4,12 +4,14 @@ import (
 	"bytes"
 	"context"
 	"crypto/sha256"
-	"errors"
 	"io"
 	"strings"
 	"testing"
 	"testing/iotest"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestRecordRoundTrip(t *testing.T) {
@@ -22,20 +24,12 @@ func TestRecordRoundTrip(t *testing.T) {
 	}
 	for i, want := range tests {
 		b, err := encodeRecord(&want)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		got, err := decodeRecord(b)
-		if err != nil {
-			t.Fatalf("case %d: %v", i, err)
-		}
-		if got.Time != want.Time {
-			t.Errorf("case %d: time got %v, want %v", i, got.Time, want.Time)
-		}
+		require.NoError(t, err, "case %d", i)
+		assert.Equal(t, want.Time, got.Time, "case %d: time", i)
 		got.Time, want.Time = time.Time{}, time.Time{}
-		if got != want {
-			t.Errorf("case %d:\n got %+v\nwant %+v", i, got, want)
-		}
+		assert.Equal(t, want, got, "case %d", i)
 	}
 }
 
@@ -56,19 +50,15 @@ func TestDecodeDamaged(t *testing.T) {
 		{"tally", tb, func(b []byte) error { _, err := decodeTally(b); return err }},
 	}
 	for _, d := range decoders {
-		if err := d.decode(d.b); err != nil {
-			t.Fatalf("%s: undamaged: %v", d.name, err)
-		}
+		require.NoError(t, d.decode(d.b), "%s: undamaged", d.name)
 		for n := range len(d.b) {
-			if err := d.decode(d.b[:n]); !errors.Is(err, ErrCorrupt) {
-				t.Errorf("%s truncated to %d: got %v, want ErrCorrupt", d.name, n, err)
-			}
+			assert.ErrorIs(t, d.decode(d.b[:n]), ErrCorrupt, "%s truncated to %d: got", d.name, n)
 		}
 		for i := range len(d.b) * 8 {
 			b := bytes.Clone(d.b)
 			b[i/8] ^= 1 << (i % 8)
-			if err := d.decode(b); err != nil && !errors.Is(err, ErrCorrupt) {
-				t.Errorf("%s bit %d: got %v, want nil or ErrCorrupt", d.name, i, err)
+			if err := d.decode(b); err != nil {
+				assert.ErrorIs(t, err, ErrCorrupt, "%s bit %d: nil or ErrCorrupt", d.name, i)
 			}
 		}
 	}
@@ -92,8 +82,10 @@ func TestValidID(t *testing.T) {
 	}
 	for _, tc := range tests {
 		err := ValidID(tc.id)
-		if (err == nil) != tc.ok || err != nil && (!errors.Is(err, ErrInvalid) || !strings.Contains(err.Error(), tc.want)) {
-			t.Errorf("ValidID(%.20q): got %v, want ok=%v mentioning %q", tc.id, err, tc.ok, tc.want)
+		if tc.ok {
+			assert.NoError(t, err, "ValidID(%.20q)", tc.id)
+		} else if assert.ErrorIs(t, err, ErrInvalid, "ValidID(%.20q)", tc.id) {
+			assert.Contains(t, err.Error(), tc.want, "ValidID(%.20q)", tc.id)
 		}
 	}
 }
@@ -123,12 +115,9 @@ func TestTrailerReader(t *testing.T) {
 		}{{"good", good, true}, {"bad sum", bad, false}, {"no trailer", body, false}, {"short", good[:30], false}} {
 			tr := newTrailerReader(context.Background(), rd.wrap(bytes.NewReader(tc.in)), 1<<20)
 			got, err := io.ReadAll(tr)
-			if err != nil || !bytes.Equal(got, tc.in) {
-				t.Fatalf("%s/%s: passed %d bytes, %v", rd.name, tc.name, len(got), err)
-			}
-			if ok := tr.check(); ok != tc.want {
-				t.Errorf("%s/%s: check got %v, want %v", rd.name, tc.name, ok, tc.want)
-			}
+			require.NoError(t, err, "%s/%s", rd.name, tc.name)
+			require.True(t, bytes.Equal(got, tc.in), "%s/%s: passed %d bytes, not the input", rd.name, tc.name, len(got))
+			assert.Equal(t, tc.want, tr.check(), "%s/%s: check", rd.name, tc.name)
 		}
 	}
 }

@@ -11,6 +11,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/cache/runs"
 )
 
@@ -59,25 +62,21 @@ func testRecordLookup(t *testing.T, j runs.Journal) {
 	occ := map[string]int64{}
 	for i, e := range got {
 		occ[calls[i].key]++
-		if e.Seq != int64(i+1) || e.Occurrence != occ[calls[i].key] || e.Ref != refOf(calls[i].answer.Body) {
-			t.Errorf("Record call %d: got seq %d occurrence %d ref %.8s, want %d %d %.8s",
-				i, e.Seq, e.Occurrence, e.Ref, i+1, occ[calls[i].key], refOf(calls[i].answer.Body))
-		}
+		assert.Equal(t, int64(i+1), e.Seq, "Record call %d: seq", i)
+		assert.Equal(t, occ[calls[i].key], e.Occurrence, "Record call %d: occurrence", i)
+		assert.Equal(t, refOf(calls[i].answer.Body), e.Ref, "Record call %d: ref", i)
 	}
 	checkReplay(t, j, "lab", "sweep-1", calls)
 	for key, n := range occ {
-		if c, err := j.Count(context.Background(), "lab", "sweep-1", key); err != nil || c != n {
-			t.Errorf("Count(%.8s): got %d, %v; want %d", key, c, err, n)
-		}
+		c, err := j.Count(context.Background(), "lab", "sweep-1", key)
+		assert.NoError(t, err, "Count(%.8s)", key)
+		assert.Equal(t, n, c, "Count(%.8s)", key)
 	}
 	// A zero Time is filled in; Stream follows the answer.
 	e, err := j.Record(context.Background(), "lab", "sweep-1", runs.Entry{Key: keyOf("zero-time"), Stream: true}, jsonAnswer("x"))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if e.Time.IsZero() || e.Stream {
-		t.Errorf("Record with zero Time and Stream on a plain answer: got Time %v Stream %v, want a set Time and Stream false", e.Time, e.Stream)
-	}
+	require.NoError(t, err)
+	assert.False(t, e.Time.IsZero(), "Record with zero Time: a set Time")
+	assert.False(t, e.Stream, "Record with Stream on a plain answer: Stream false")
 }
 
 func testMisses(t *testing.T, j runs.Journal) {
@@ -101,17 +100,16 @@ func testMisses(t *testing.T, j runs.Journal) {
 		_, _, err := j.Lookup(ctx, "lab", tc.run, tc.key, tc.occ)
 		wantNotFound(t, tc.name, err)
 		var miss *runs.MissError
-		if got := errors.As(err, &miss); got != tc.wantMiss {
-			t.Errorf("%s: errors.As MissError = %v, want %v (err %v)", tc.name, got, tc.wantMiss, err)
+		if !assert.Equal(t, tc.wantMiss, errors.As(err, &miss), "%s: errors.As MissError (err %v)", tc.name, err) {
 			continue
 		}
-		if tc.wantMiss && (miss.Have != tc.wantHave || miss.Key != tc.key || miss.Run != tc.run || miss.Occurrence != tc.occ) {
-			t.Errorf("%s: got %+v, want Have %d", tc.name, miss, tc.wantHave)
+		if tc.wantMiss {
+			assert.Equal(t, runs.MissError{Run: tc.run, Key: tc.key, Occurrence: tc.occ, Have: tc.wantHave}, *miss, "%s", tc.name)
 		}
 	}
-	if n, err := j.Count(ctx, "lab", "r2", keyOf("greedy")); err != nil || n != 0 {
-		t.Errorf("Count on an unknown run: got %d, %v; want 0, nil", n, err)
-	}
+	n, err := j.Count(ctx, "lab", "r2", keyOf("greedy"))
+	assert.NoError(t, err, "Count on an unknown run")
+	assert.Zero(t, n, "Count on an unknown run")
 }
 
 func testTeamIsolation(t *testing.T, j runs.Journal) {
@@ -121,21 +119,18 @@ func testTeamIsolation(t *testing.T, j runs.Journal) {
 	key := calls[0].key
 	// Team names that a careless key scheme could confuse with team-a's.
 	for _, other := range []string{"team-b", "team-a/shared-name", "team-", "team-a}", "{team-a}"} {
-		if _, _, err := j.Lookup(ctx, other, "shared-name", key, 1); !errors.Is(err, runs.ErrNotFound) {
-			t.Errorf("team %q Lookup: got %v, want ErrNotFound", other, err)
-		}
+		_, _, err := j.Lookup(ctx, other, "shared-name", key, 1)
+		assert.ErrorIs(t, err, runs.ErrNotFound, "team %q Lookup", other)
 		var miss *runs.MissError
-		if _, _, err := j.Lookup(ctx, other, "shared-name", key, 1); errors.As(err, &miss) {
-			t.Errorf("team %q Lookup: got %v, which tells that the run exists", other, err)
-		}
-		if n, err := j.Count(ctx, other, "shared-name", key); n != 0 || err != nil {
-			t.Errorf("team %q Count: got %d, %v", other, n, err)
-		}
-		_, err := j.Summary(ctx, other, "shared-name")
+		assert.False(t, errors.As(err, &miss), "team %q Lookup: %v tells that the run exists", other, err)
+		n, err := j.Count(ctx, other, "shared-name", key)
+		assert.NoError(t, err, "team %q Count", other)
+		assert.Zero(t, n, "team %q Count", other)
+		_, err = j.Summary(ctx, other, "shared-name")
 		wantNotFound(t, "team "+other+" Summary", err)
-		if list, err := j.List(ctx, other); err != nil || len(list) != 0 {
-			t.Errorf("team %q List: got %v, %v; want nothing", other, list, err)
-		}
+		list, err := j.List(ctx, other)
+		assert.NoError(t, err, "team %q List", other)
+		assert.Empty(t, list, "team %q List", other)
 		wantNotFound(t, "team "+other+" Delete", j.Delete(ctx, other, "shared-name"))
 		wantNotFound(t, "team "+other+" Export", j.Export(ctx, other, "shared-name", &bytes.Buffer{}))
 		wantNotFound(t, "team "+other+" Entries", j.Entries(ctx, other, "shared-name", func(runs.Entry) error { return nil }))
@@ -144,9 +139,9 @@ func testTeamIsolation(t *testing.T, j runs.Journal) {
 	recordAll(t, j, "team-b", "shared-name", calls[:3])
 	checkReplay(t, j, "team-a", "shared-name", calls)
 	checkReplay(t, j, "team-b", "shared-name", calls[:3])
-	if s, err := j.Summary(ctx, "team-a", "shared-name"); err != nil || !sameSummary(s, wantSummary("team-a", "shared-name", calls)) {
-		t.Errorf("team-a Summary after team-b's attempts: got %+v, %v", s, err)
-	}
+	s, err := j.Summary(ctx, "team-a", "shared-name")
+	require.NoError(t, err, "team-a Summary after team-b's attempts")
+	assert.True(t, sameSummary(s, wantSummary("team-a", "shared-name", calls)), "team-a Summary after team-b's attempts: %+v", s)
 }
 
 func testSummaryList(t *testing.T, j runs.Journal) {
@@ -169,25 +164,20 @@ func testSummaryList(t *testing.T, j runs.Journal) {
 	}
 	for _, s := range sets {
 		got, err := j.Summary(ctx, "lab", s.run)
-		if want := wantSummary("lab", s.run, s.calls); err != nil || !sameSummary(got, want) {
-			t.Errorf("Summary(%s):\n got %+v, %v\nwant %+v", s.run, got, err, want)
-		}
+		require.NoError(t, err, "Summary(%s)", s.run)
+		want := wantSummary("lab", s.run, s.calls)
+		assert.True(t, sameSummary(got, want), "Summary(%s):\n got %+v\nwant %+v", s.run, got, want)
 	}
 	list, err := j.List(ctx, "lab")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	var ids []string
 	for _, s := range list {
 		ids = append(ids, s.Run)
 	}
-	if want := []string{"newest", "middle.a", "middle.b", "oldest"}; !slices.Equal(ids, want) {
-		t.Errorf("List order: got %v, want %v", ids, want)
-	}
+	assert.Equal(t, []string{"newest", "middle.a", "middle.b", "oldest"}, ids, "List order")
 	for _, s := range list {
-		if s.Team != "lab" || s.Calls == 0 {
-			t.Errorf("List entry %+v", s)
-		}
+		assert.Equal(t, "lab", s.Team, "List entry %+v", s)
+		assert.NotZero(t, s.Calls, "List entry %+v", s)
 	}
 }
 
@@ -206,16 +196,10 @@ func testEntries(t *testing.T, j runs.Journal) {
 		}
 		return nil
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(got) != len(want) {
-		t.Fatalf("Entries: got %d, want %d", len(got), len(want))
-	}
+	require.NoError(t, err)
+	require.Len(t, got, len(want), "Entries")
 	for i := range want {
-		if !sameEntry(got[i], want[i]) {
-			t.Errorf("entry %d:\n got %+v\nwant %+v", i, got[i], want[i])
-		}
+		assert.True(t, sameEntry(got[i], want[i]), "entry %d:\n got %+v\nwant %+v", i, got[i], want[i])
 	}
 	stop := errors.New("stop")
 	n := 0
@@ -226,9 +210,8 @@ func testEntries(t *testing.T, j runs.Journal) {
 		}
 		return nil
 	})
-	if !errors.Is(err, stop) || n != 5 {
-		t.Errorf("Entries with fn failing at 5: got %v after %d calls, want stop after 5", err, n)
-	}
+	assert.ErrorIs(t, err, stop, "Entries with fn failing at 5")
+	assert.Equal(t, 5, n, "Entries with fn failing at 5: calls")
 }
 
 func testDelete(t *testing.T, j runs.Journal) {
@@ -236,31 +219,30 @@ func testDelete(t *testing.T, j runs.Journal) {
 	calls := mixedCalls(18)
 	recordAll(t, j, "lab", "gone", calls)
 	recordAll(t, j, "lab", "kept", calls[:4])
-	if err := j.Delete(ctx, "lab", "gone"); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Delete(ctx, "lab", "gone"))
 	for _, c := range calls {
 		_, _, err := j.Lookup(ctx, "lab", "gone", c.key, 1)
 		wantNotFound(t, "Lookup after Delete", err)
-		if n, err := j.Count(ctx, "lab", "gone", c.key); n != 0 || err != nil {
-			t.Errorf("Count after Delete: got %d, %v", n, err)
-		}
+		n, err := j.Count(ctx, "lab", "gone", c.key)
+		assert.NoError(t, err, "Count after Delete")
+		assert.Zero(t, n, "Count after Delete")
 	}
 	_, err := j.Summary(ctx, "lab", "gone")
 	wantNotFound(t, "Summary after Delete", err)
 	wantNotFound(t, "second Delete", j.Delete(ctx, "lab", "gone"))
 	wantNotFound(t, "Export after Delete", j.Export(ctx, "lab", "gone", &bytes.Buffer{}))
 	list, err := j.List(ctx, "lab")
-	if err != nil || len(list) != 1 || list[0].Run != "kept" {
-		t.Errorf("List after Delete: got %+v, %v; want only kept", list, err)
+	require.NoError(t, err, "List after Delete")
+	if assert.Len(t, list, 1, "List after Delete: only kept") {
+		assert.Equal(t, "kept", list[0].Run, "List after Delete")
 	}
 	checkReplay(t, j, "lab", "kept", calls[:4])
 	// The id can be used again, from scratch.
 	recordAll(t, j, "lab", "gone", calls[5:7])
 	checkReplay(t, j, "lab", "gone", calls[5:7])
-	if s, err := j.Summary(ctx, "lab", "gone"); err != nil || !sameSummary(s, wantSummary("lab", "gone", calls[5:7])) {
-		t.Errorf("Summary of the re-recorded run: got %+v, %v", s, err)
-	}
+	s, err := j.Summary(ctx, "lab", "gone")
+	require.NoError(t, err, "Summary of the re-recorded run")
+	assert.True(t, sameSummary(s, wantSummary("lab", "gone", calls[5:7])), "Summary of the re-recorded run: %+v", s)
 }
 
 func testConcurrent(t *testing.T, j runs.Journal) {
@@ -278,8 +260,7 @@ func testConcurrent(t *testing.T, j runs.Journal) {
 				body := fmt.Sprintf(`{"worker":%d,"call":%d}`, w, i)
 				e, err := j.Record(ctx, "lab", "busy", runs.Entry{Key: keyOf(fmt.Sprint((w + i) % keys)), Time: base},
 					runs.Answer{Status: 200, ContentType: "application/json", Body: []byte(body)})
-				if err != nil {
-					t.Error(err)
+				if !assert.NoError(t, err) {
 					return
 				}
 				results[w] = append(results[w], result{e, body})
@@ -296,28 +277,25 @@ func testConcurrent(t *testing.T, j runs.Journal) {
 			// Each (key, occurrence) leads to the body that was recorded
 			// with it, not to another worker's.
 			_, a, err := j.Lookup(ctx, "lab", "busy", r.e.Key, r.e.Occurrence)
-			if err != nil || string(a.Body) != r.body {
-				t.Errorf("Lookup(%.8s, %d): got %q, %v; want %q", r.e.Key, r.e.Occurrence, a.Body, err, r.body)
-			}
+			assert.NoError(t, err, "Lookup(%.8s, %d)", r.e.Key, r.e.Occurrence)
+			assert.Equal(t, r.body, string(a.Body), "Lookup(%.8s, %d)", r.e.Key, r.e.Occurrence)
 		}
 	}
 	slices.Sort(seqs)
 	for i, s := range seqs {
-		if s != int64(i+1) {
-			t.Fatalf("Seqs are not a permutation of 1..%d: sorted %v", workers*each, seqs)
-		}
+		require.Equal(t, int64(i+1), s, "Seqs are not a permutation of 1..%d: sorted %v", workers*each, seqs)
 	}
 	for key, os := range occ {
 		slices.Sort(os)
 		for i, o := range os {
-			if o != int64(i+1) {
-				t.Fatalf("occurrences of %.8s are not 1..%d: %v", key, len(os), os)
-			}
+			require.Equal(t, int64(i+1), o, "occurrences of %.8s are not 1..%d: %v", key, len(os), os)
 		}
 	}
-	if s, err := j.Summary(ctx, "lab", "busy"); err != nil || s.Calls != workers*each || s.Keys != keys || s.Bodies != workers*each {
-		t.Errorf("Summary: got %+v, %v", s, err)
-	}
+	s, err := j.Summary(ctx, "lab", "busy")
+	require.NoError(t, err, "Summary")
+	assert.EqualValues(t, workers*each, s.Calls, "Summary: calls")
+	assert.EqualValues(t, keys, s.Keys, "Summary: keys")
+	assert.EqualValues(t, workers*each, s.Bodies, "Summary: bodies")
 }
 
 func testInvalid(t *testing.T, j runs.Journal) {
@@ -346,16 +324,14 @@ func testInvalid(t *testing.T, j runs.Journal) {
 		{"body too large", "lab", "r", ok, runs.Answer{Status: 200, Body: make([]byte, runs.MaxBodyBytes+1)}},
 	}
 	for _, tc := range tests {
-		if _, err := j.Record(ctx, tc.team, tc.run, tc.entry, tc.ans); !errors.Is(err, runs.ErrInvalid) {
-			t.Errorf("Record with %s: got %v, want ErrInvalid", tc.name, err)
-		}
+		_, err := j.Record(ctx, tc.team, tc.run, tc.entry, tc.ans)
+		assert.ErrorIs(t, err, runs.ErrInvalid, "Record with %s: got", tc.name)
 	}
-	if list, err := j.List(ctx, "lab"); err != nil || len(list) != 0 {
-		t.Errorf("refused Records left runs behind: %+v, %v", list, err)
-	}
-	if _, _, err := j.Lookup(ctx, "lab", "bad id!", "k", 1); !errors.Is(err, runs.ErrInvalid) {
-		t.Errorf("Lookup with a bad id: got %v, want ErrInvalid", err)
-	}
+	list, err := j.List(ctx, "lab")
+	require.NoError(t, err, "List")
+	assert.Empty(t, list, "refused Records left runs behind")
+	_, _, err = j.Lookup(ctx, "lab", "bad id!", "k", 1)
+	assert.ErrorIs(t, err, runs.ErrInvalid, "Lookup with a bad id")
 }
 
 func testExportImport(t *testing.T, j runs.Journal) {
@@ -363,9 +339,7 @@ func testExportImport(t *testing.T, j runs.Journal) {
 	calls := mixedCalls(24)
 	recordAll(t, j, "lab", "orig", calls)
 	var archive bytes.Buffer
-	if err := j.Export(ctx, "lab", "orig", &archive); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, j.Export(ctx, "lab", "orig", &archive))
 	// Import under another team keeps the id; As renames; an existing id
 	// is refused unless Replace.
 	tests := []struct {
@@ -384,36 +358,32 @@ func testExportImport(t *testing.T, j runs.Journal) {
 	}
 	for _, tc := range tests {
 		s, err := j.Import(ctx, tc.team, bytes.NewReader(archive.Bytes()), tc.opts)
-		if !errors.Is(err, tc.wantErr) {
-			t.Errorf("%s: got %v, want %v", tc.name, err, tc.wantErr)
+		if !assert.ErrorIs(t, err, tc.wantErr, "%s", tc.name) {
 			continue
 		}
 		if err != nil {
 			continue
 		}
-		if want := wantSummary(tc.team, tc.wantRun, calls); !sameSummary(s, want) {
-			t.Errorf("%s: Import returned %+v, want %+v", tc.name, s, want)
-		}
+		want := wantSummary(tc.team, tc.wantRun, calls)
+		assert.True(t, sameSummary(s, want), "%s: Import returned %+v, want %+v", tc.name, s, want)
 		checkReplay(t, j, tc.team, tc.wantRun, calls)
 	}
 	// Replace swaps the whole run: a longer run replaced by a shorter one
 	// keeps nothing of the longer.
 	recordAll(t, j, "lab", "long", mixedCalls(40))
-	if _, err := j.Import(ctx, "lab", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "long", Replace: true}); err != nil {
-		t.Fatal(err)
-	}
+	_, err := j.Import(ctx, "lab", bytes.NewReader(archive.Bytes()), runs.ImportOptions{As: "long", Replace: true})
+	require.NoError(t, err)
 	checkReplay(t, j, "lab", "long", calls)
-	if _, _, err := j.Lookup(ctx, "lab", "long", keyOf("unique-35"), 1); !errors.Is(err, runs.ErrNotFound) {
-		t.Errorf("Lookup of a call only the replaced run had: got %v, want ErrNotFound", err)
-	}
-	if s, err := j.Summary(ctx, "lab", "long"); err != nil || !sameSummary(s, wantSummary("lab", "long", calls)) {
-		t.Errorf("Summary after Replace: got %+v, %v", s, err)
-	}
+	_, _, err = j.Lookup(ctx, "lab", "long", keyOf("unique-35"), 1)
+	assert.ErrorIs(t, err, runs.ErrNotFound, "Lookup of a call only the replaced run had")
+	sum, err := j.Summary(ctx, "lab", "long")
+	require.NoError(t, err, "Summary after Replace")
+	assert.True(t, sameSummary(sum, wantSummary("lab", "long", calls)), "Summary after Replace: %+v", sum)
 	// The imported run records on from where the archive ended.
 	e, err := j.Record(ctx, "lab2", "orig", calls[0].entry, calls[0].answer)
-	if err != nil || e.Seq != int64(len(calls)+1) || e.Occurrence != 5 {
-		t.Errorf("Record after Import: got seq %d occurrence %d, %v; want %d, 5", e.Seq, e.Occurrence, err, len(calls)+1)
-	}
+	require.NoError(t, err, "Record after Import")
+	assert.Equal(t, int64(len(calls)+1), e.Seq, "Record after Import: seq")
+	assert.EqualValues(t, 5, e.Occurrence, "Record after Import: occurrence")
 }
 
 func testContextDone(t *testing.T, j runs.Journal) {
@@ -440,12 +410,10 @@ func testContextDone(t *testing.T, j runs.Journal) {
 		}()},
 	}
 	for _, ch := range checks {
-		if !errors.Is(ch.err, context.Canceled) {
-			t.Errorf("%s with a cancelled context: got %v, want context.Canceled", ch.name, ch.err)
-		}
+		assert.ErrorIs(t, ch.err, context.Canceled, "%s with a cancelled context", ch.name)
 	}
-	if s, err := j.Summary(context.Background(), "lab", "r"); err != nil || s.Calls != 3 {
-		t.Errorf("Summary: got %+v, %v; want the 3 calls recorded before", s, err)
-	}
+	s, err := j.Summary(context.Background(), "lab", "r")
+	require.NoError(t, err, "Summary")
+	assert.EqualValues(t, 3, s.Calls, "Summary: the 3 calls recorded before")
 	wantNotFound(t, "Summary of the cancelled Import", func() error { _, err := j.Summary(context.Background(), "lab", "copy"); return err }())
 }

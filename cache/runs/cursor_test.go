@@ -5,6 +5,9 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/cache/runs"
 )
 
@@ -23,17 +26,11 @@ func TestCursor(t *testing.T) {
 		{"lab", "r", "s1", "k1", 3},
 	}
 	for i, s := range steps {
-		if got := c.Next(s.team, s.run, s.session, s.key); got != s.want {
-			t.Errorf("step %d Next(%s %s %s %s): got %d, want %d", i, s.team, s.run, s.session, s.key, got, s.want)
-		}
+		assert.Equal(t, s.want, c.Next(s.team, s.run, s.session, s.key), "step %d Next(%s %s %s %s)", i, s.team, s.run, s.session, s.key)
 	}
 	c.Reset("lab", "r")
-	if got := c.Next("lab", "r", "s1", "k1"); got != 1 {
-		t.Errorf("after Reset: got %d, want 1", got)
-	}
-	if got := c.Next("lab", "r2", "s1", "k1"); got != 2 {
-		t.Errorf("Reset of r touched r2: got %d, want 2", got)
-	}
+	assert.EqualValues(t, 1, c.Next("lab", "r", "s1", "k1"), "after Reset")
+	assert.EqualValues(t, 2, c.Next("lab", "r2", "s1", "k1"), "Reset of r touched r2")
 }
 
 // TestCursorConcurrent hands out occurrences of one key to many goroutines:
@@ -54,8 +51,6 @@ func TestCursorConcurrent(t *testing.T) {
 	all := slices.Concat(got...)
 	slices.Sort(all)
 	for i, o := range all {
-		if o != int64(i+1) {
-			t.Fatalf("occurrences are not 1..%d: %v", workers*each, all)
-		}
+		require.Equal(t, int64(i+1), o, "occurrences are not 1..%d: %v", workers*each, all)
 	}
 }

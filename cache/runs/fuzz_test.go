@@ -3,10 +3,10 @@ package runs_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"testing"
 
 	"github.com/klauspost/compress/zstd"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/runs"
 )
@@ -41,30 +41,26 @@ func FuzzImport(f *testing.F) {
 		}
 		s, err := j.Import(ctx, "fuzz", bytes.NewReader(data), runs.ImportOptions{As: "target", MaxBytes: 8 << 20})
 		if err != nil {
-			if !errors.Is(err, runs.ErrCorruptArchive) {
-				t.Fatalf("got %v, want ErrCorruptArchive", err)
-			}
+			require.ErrorIs(t, err, runs.ErrCorruptArchive)
 			wantNoTrace(t, j, "fuzz", "target")
 			return
 		}
-		if s.Run != "target" || s.Team != "fuzz" || s.Calls < 1 {
-			t.Fatalf("Import returned %+v", s)
-		}
+		require.Equal(t, "target", s.Run, "Import returned %+v", s)
+		require.Equal(t, "fuzz", s.Team, "Import returned %+v", s)
+		require.GreaterOrEqual(t, s.Calls, int64(1), "Import returned %+v", s)
 		var entries []runs.Entry
 		if err := j.Entries(ctx, "fuzz", "target", func(e runs.Entry) error {
 			entries = append(entries, e)
 			return nil
 		}); err != nil {
-			t.Fatal(err)
+			require.NoError(t, err)
 		}
 		for _, e := range entries {
 			got, a, err := j.Lookup(ctx, "fuzz", "target", e.Key, e.Occurrence)
-			if err != nil || got.Seq != e.Seq || refOf(a.Body) != e.Ref {
-				t.Fatalf("Lookup of imported entry %d: %+v, %v", e.Seq, got, err)
-			}
+			require.NoError(t, err, "Lookup of imported entry %d", e.Seq)
+			require.Equal(t, e.Seq, got.Seq, "Lookup of imported entry %d", e.Seq)
+			require.Equal(t, e.Ref, refOf(a.Body), "Lookup of imported entry %d", e.Seq)
 		}
-		if err := j.Delete(ctx, "fuzz", "target"); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, j.Delete(ctx, "fuzz", "target"))
 	})
 }

@@ -5,7 +5,6 @@ import (
 	"context"
 	"crypto/sha256"
 	"encoding/hex"
-	"errors"
 	"fmt"
 	"path/filepath"
 	"strconv"
@@ -13,6 +12,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/cache/boltgroup"
@@ -38,16 +39,12 @@ func boltBackend() backend {
 func openBolt(t testing.TB, path string) (*runs.BoltJournal, *bbolt.DB) {
 	t.Helper()
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: time.Second, NoFreelistSync: true, FreelistType: bbolt.FreelistMapType})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	db.MaxBatchDelay = 2 * time.Millisecond // what boltstore.Open sets on the shared file
 	t.Cleanup(func() { _ = db.Close() })
 	// Writes go through a group committer, as stint serve's do.
 	j, err := runs.NewBolt(db, runs.BoltOptions{Update: boltgroup.New(db).Update})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return j, db
 }
 
@@ -150,9 +147,7 @@ func recordAll(t testing.TB, j runs.Journal, team, run string, calls []call) []r
 	var out []runs.Entry
 	for i, c := range calls {
 		e, err := j.Record(context.Background(), team, run, c.entry, c.answer)
-		if err != nil {
-			t.Fatalf("Record call %d: %v", i, err)
-		}
+		require.NoError(t, err, "Record call %d", i)
 		out = append(out, e)
 	}
 	return out
@@ -194,21 +189,14 @@ func checkReplay(t testing.TB, j runs.Journal, team, run string, calls []call) {
 	for i, c := range calls {
 		occ[c.key]++
 		e, a, err := j.Lookup(context.Background(), team, run, c.key, occ[c.key])
-		if err != nil {
-			t.Fatalf("Lookup call %d (occurrence %d): %v", i, occ[c.key], err)
-		}
-		if !bytes.Equal(a.Body, c.answer.Body) {
-			t.Fatalf("call %d: body differs: got %d bytes %.60q, want %d bytes %.60q", i, len(a.Body), a.Body, len(c.answer.Body), c.answer.Body)
-		}
-		if a.Status != c.answer.Status || a.ContentType != c.answer.ContentType || a.Stream != c.answer.Stream {
-			t.Fatalf("call %d: answer header got %d %q stream=%v, want %d %q stream=%v",
-				i, a.Status, a.ContentType, a.Stream, c.answer.Status, c.answer.ContentType, c.answer.Stream)
-		}
+		require.NoError(t, err, "Lookup call %d (occurrence %d)", i, occ[c.key])
+		require.True(t, bytes.Equal(a.Body, c.answer.Body), "call %d: body differs: got %d bytes %.60q, want %d bytes %.60q", i, len(a.Body), a.Body, len(c.answer.Body), c.answer.Body)
+		require.Equal(t, c.answer.Status, a.Status, "call %d: status", i)
+		require.Equal(t, c.answer.ContentType, a.ContentType, "call %d: content type", i)
+		require.Equal(t, c.answer.Stream, a.Stream, "call %d: stream", i)
 		want := c.entry
 		want.Seq, want.Occurrence, want.Ref, want.Stream = int64(i+1), occ[c.key], refOf(c.answer.Body), c.answer.Stream
-		if !sameEntry(e, want) {
-			t.Fatalf("call %d: entry\n got %+v\nwant %+v", i, e, want)
-		}
+		require.True(t, sameEntry(e, want), "call %d: entry\n got %+v\nwant %+v", i, e, want)
 	}
 }
 
@@ -234,19 +222,16 @@ func sameSummary(a, b runs.Summary) bool {
 // wantNotFound fails t unless err wraps runs.ErrNotFound.
 func wantNotFound(t testing.TB, what string, err error) {
 	t.Helper()
-	if !errors.Is(err, runs.ErrNotFound) {
-		t.Errorf("%s: got error %v, want one wrapping ErrNotFound", what, err)
-	}
+	assert.ErrorIs(t, err, runs.ErrNotFound, "%s", what)
 }
 
 // wantNoTrace fails t unless team has no run id and no runs at all.
 func wantNoTrace(t testing.TB, j runs.Journal, team, run string) {
 	t.Helper()
 	ctx := context.Background()
-	if s, err := j.Summary(ctx, team, run); !errors.Is(err, runs.ErrNotFound) {
-		t.Errorf("Summary of %q: got %+v, %v; want ErrNotFound", run, s, err)
-	}
-	if list, err := j.List(ctx, team); err != nil || len(list) != 0 {
-		t.Errorf("List: got %d runs, %v; want none", len(list), err)
-	}
+	s, err := j.Summary(ctx, team, run)
+	assert.ErrorIs(t, err, runs.ErrNotFound, "Summary of %q = %+v", run, s)
+	list, err := j.List(ctx, team)
+	assert.NoError(t, err, "List")
+	assert.Empty(t, list, "List")
 }

@@ -63,9 +63,8 @@ func craftArchive(t testing.TB, bodies []craftedBody) []byte {
 	)
 	for i, b := range bodies {
 		h := sha256.New()
-		if _, err := io.Copy(h, b.reader()); err != nil {
-			t.Fatal(err)
-		}
+		_, err := io.Copy(h, b.reader())
+		require.NoError(t, err)
 		ref := hex.EncodeToString(h.Sum(nil))
 		members = append(members, member{Name: "bodies/" + ref, Size: b.size, SHA256: ref})
 		total += b.size

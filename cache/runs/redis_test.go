@@ -2,8 +2,10 @@ package runs_test
 
 import (
 	"context"
-	"errors"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache/runs"
 	"github.com/stintlab/stint/internal/redistest"
@@ -34,42 +36,31 @@ func TestRedisCorruptValues(t *testing.T) {
 			recordAll(t, j, "lab", "r", calls)
 			key := prefix + ":run:{lab/r}:" + tc.suffix
 			all, err := c.HGetAll(ctx, key).Result()
-			if err != nil || len(all) == 0 {
-				t.Fatalf("HGETALL %s: %d fields, %v", key, len(all), err)
-			}
+			require.NoError(t, err, "HGETALL %s", key)
+			require.NotEmpty(t, all, "HGETALL %s", key)
 			for f, v := range all {
-				if err := c.HSet(ctx, key, f, tc.damage(v)).Err(); err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, c.HSet(ctx, key, f, tc.damage(v)).Err())
 			}
 			for _, call := range calls {
 				_, a, err := j.Lookup(ctx, "lab", "r", call.key, 1)
-				if err == nil && string(a.Body) != string(call.answer.Body) {
-					t.Fatal("Lookup returned wrong bytes after damage")
+				if err == nil {
+					require.Equal(t, string(call.answer.Body), string(a.Body), "Lookup returned wrong bytes after damage")
 				}
-				if !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("Lookup: got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, err, runs.ErrCorrupt, "Lookup")
 			}
 			if tc.suffix != "x" { // Export does not read the index
-				if err := j.Export(ctx, "lab", "r", discard{}); !errors.Is(err, runs.ErrCorrupt) {
-					t.Errorf("Export: got %v, want ErrCorrupt", err)
-				}
+				assert.ErrorIs(t, j.Export(ctx, "lab", "r", discard{}), runs.ErrCorrupt, "Export: got")
 			}
 		})
 	}
 	// A damaged summary.
 	j := runs.NewRedis(c, runs.RedisOptions{Prefix: "cs"})
 	recordAll(t, j, "lab", "r", calls)
-	if err := c.HSet(ctx, "cs:run:{lab/r}:m", "cost", "lots").Err(); err != nil {
-		t.Fatal(err)
-	}
-	if _, err := j.Summary(ctx, "lab", "r"); !errors.Is(err, runs.ErrCorrupt) {
-		t.Errorf("Summary: got %v, want ErrCorrupt", err)
-	}
-	if _, err := j.List(ctx, "lab"); !errors.Is(err, runs.ErrCorrupt) {
-		t.Errorf("List: got %v, want ErrCorrupt", err)
-	}
+	require.NoError(t, c.HSet(ctx, "cs:run:{lab/r}:m", "cost", "lots").Err())
+	_, err := j.Summary(ctx, "lab", "r")
+	assert.ErrorIs(t, err, runs.ErrCorrupt, "Summary: got")
+	_, err = j.List(ctx, "lab")
+	assert.ErrorIs(t, err, runs.ErrCorrupt, "List: got")
 }
 
 type discard struct{}

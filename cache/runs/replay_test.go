@@ -7,6 +7,8 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+
 	"github.com/stintlab/stint/cache/runs"
 )
 
@@ -33,8 +35,7 @@ func TestReplayWithCursor(t *testing.T) {
 		wg.Go(func() {
 			key := calls[i].key
 			_, a, err := j.Lookup(context.Background(), "lab", "r", key, c.Next("lab", "r", "replay-1", key))
-			if err != nil {
-				t.Error(err)
+			if !assert.NoError(t, err) {
 				return
 			}
 			mu.Lock()
@@ -47,13 +48,10 @@ func TestReplayWithCursor(t *testing.T) {
 		g := got[key]
 		slices.Sort(g)
 		slices.Sort(w)
-		if !slices.Equal(g, w) {
-			t.Errorf("key %.8s: replay handed out %d answers that differ from the %d recorded", key, len(g), len(w))
-		}
+		assert.Equal(t, w, g, "key %.8s: the answers replay handed out, against those recorded", key)
 	}
 	// One more request than recorded is a replay miss.
 	key := calls[0].key
-	if _, _, err := j.Lookup(context.Background(), "lab", "r", key, c.Next("lab", "r", "replay-1", key)); err == nil {
-		t.Error("Lookup past the recorded occurrences: got no error")
-	}
+	_, _, err := j.Lookup(context.Background(), "lab", "r", key, c.Next("lab", "r", "replay-1", key))
+	assert.Error(t, err, "Lookup past the recorded occurrences")
 }

@@ -9,12 +9,14 @@ package storetest
 import (
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"math/rand/v2"
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/cache"
 )
@@ -31,6 +33,10 @@ import (
 // cache.ErrClosed; a done context makes every method fail with its error.
 // TTL expiry is observed by polling with a deadline, never by sleeping a
 // fixed time, so it works with any backend's timer resolution.
+//
+// The suite is a table of parallel subtests, each on a fresh store, rather
+// than a testify suite: testify's suites share one value across their
+// tests and do not run them in parallel.
 func Run(t *testing.T, newStore func(t *testing.T) cache.Store) {
 	t.Helper()
 	tests := []struct {
@@ -54,11 +60,7 @@ func Run(t *testing.T, newStore func(t *testing.T) cache.Store) {
 		t.Run(tc.name, func(t *testing.T) {
 			t.Parallel() // each subtest has its own store; durable stores mostly wait on fsync
 			s := newStore(t)
-			defer func() {
-				if err := s.Close(); err != nil {
-					t.Errorf("Close: %v", err)
-				}
-			}()
+			defer func() { assert.NoError(t, s.Close(), "Close") }()
 			tc.fn(t, s)
 		})
 	}
@@ -86,27 +88,22 @@ func completion(seed uint64, n int) []byte {
 func mustGet(t *testing.T, s cache.Store, k string, want []byte) {
 	t.Helper()
 	got, found, err := s.Get(t.Context(), k)
-	if err != nil || !found {
-		t.Fatalf("Get(%.12s…) = found %v, err %v; want the stored value", k, found, err)
-	}
-	if !bytes.Equal(got, want) {
-		t.Fatalf("Get(%.12s…) = %d bytes %.40q; want %d bytes %.40q", k, len(got), got, len(want), want)
-	}
+	require.NoError(t, err, "Get(%.12s…)", k)
+	require.True(t, found, "Get(%.12s…): want the stored value", k)
+	require.True(t, bytes.Equal(got, want), "Get(%.12s…) = %d bytes %.40q; want %d bytes %.40q", k, len(got), got, len(want), want)
 }
 
 func mustMiss(t *testing.T, s cache.Store, k string) {
 	t.Helper()
 	got, found, err := s.Get(t.Context(), k)
-	if err != nil || found || got != nil {
-		t.Fatalf("Get(%.12s…) = %q, found %v, err %v; want a miss", k, got, found, err)
-	}
+	require.NoError(t, err, "Get(%.12s…)", k)
+	require.False(t, found, "Get(%.12s…) = %q: want a miss", k, got)
+	require.Nil(t, got, "Get(%.12s…) of a miss", k)
 }
 
 func mustPut(t *testing.T, s cache.Store, k string, v []byte, ttl time.Duration) {
 	t.Helper()
-	if err := s.Put(t.Context(), k, v, ttl); err != nil {
-		t.Fatalf("Put(%.12s…, %d bytes, %v): %v", k, len(v), ttl, err)
-	}
+	require.NoError(t, s.Put(t.Context(), k, v, ttl), "Put(%.12s…, %d bytes, %v)", k, len(v), ttl)
 }
 
 func testMissingKey(t *testing.T, s cache.Store) {
@@ -147,14 +144,10 @@ func testDelete(t *testing.T, s cache.Store) {
 	k, other := key("deleted"), key("kept")
 	mustPut(t, s, k, []byte("v"), time.Hour)
 	mustPut(t, s, other, []byte("w"), time.Hour)
-	if err := s.Delete(t.Context(), k); err != nil {
-		t.Fatalf("Delete: %v", err)
-	}
+	require.NoError(t, s.Delete(t.Context(), k), "Delete")
 	mustMiss(t, s, k)
 	mustGet(t, s, other, []byte("w"))
-	if err := s.Delete(t.Context(), key("never stored")); err != nil {
-		t.Errorf("Delete of a missing key: %v, want nil", err)
-	}
+	assert.NoError(t, s.Delete(t.Context(), key("never stored")), "Delete of a missing key")
 	mustPut(t, s, k, []byte("again"), 0)
 	mustGet(t, s, k, []byte("again"))
 }
@@ -175,15 +168,11 @@ func testTTLExpiry(t *testing.T, s cache.Store) {
 	deadline := time.Now().Add(10 * time.Second)
 	for {
 		_, found, err := s.Get(t.Context(), short)
-		if err != nil {
-			t.Fatalf("Get: %v", err)
-		}
+		require.NoError(t, err, "Get")
 		if !found {
 			break
 		}
-		if time.Now().After(deadline) {
-			t.Fatal("entry with a 50ms TTL still found after 10s")
-		}
+		require.False(t, time.Now().After(deadline), "entry with a 50ms TTL still found after 10s")
 		time.Sleep(5 * time.Millisecond) // polling interval, not ordering
 	}
 	mustGet(t, s, long, []byte("long"))
@@ -268,12 +257,11 @@ func testConcurrent(t *testing.T, s cache.Store) {
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Error(err)
+		assert.NoError(t, err)
 	}
 	got, found, err := s.Get(ctx, shared)
-	if err != nil || !found || !valid[string(got)] {
-		t.Errorf("shared key after the writers: found %v, err %v", found, err)
-	}
+	require.NoError(t, err, "shared key after the writers")
+	assert.True(t, found && valid[string(got)], "shared key after the writers: found %v, a written value %v", found, valid[string(got)])
 }
 
 func testContextCancelled(t *testing.T, s cache.Store) {
@@ -281,20 +269,14 @@ func testContextCancelled(t *testing.T, s cache.Store) {
 	mustPut(t, s, k, []byte("v"), 0)
 	ctx, cancel := context.WithCancel(t.Context())
 	cancel()
-	if _, _, err := s.Get(ctx, k); !errors.Is(err, context.Canceled) {
-		t.Errorf("Get with a cancelled context: err = %v, want context.Canceled", err)
-	}
-	if err := s.Put(ctx, key("ctx put"), []byte("v"), 0); !errors.Is(err, context.Canceled) {
-		t.Errorf("Put with a cancelled context: err = %v, want context.Canceled", err)
-	}
-	if err := s.Delete(ctx, k); !errors.Is(err, context.Canceled) {
-		t.Errorf("Delete with a cancelled context: err = %v, want context.Canceled", err)
-	}
+	_, _, err := s.Get(ctx, k)
+	assert.ErrorIs(t, err, context.Canceled, "Get with a cancelled context")
+	assert.ErrorIs(t, s.Put(ctx, key("ctx put"), []byte("v"), 0), context.Canceled, "Put with a cancelled context")
+	assert.ErrorIs(t, s.Delete(ctx, k), context.Canceled, "Delete with a cancelled context")
 	dctx, dcancel := context.WithDeadline(t.Context(), time.Now().Add(-time.Second))
 	defer dcancel()
-	if _, _, err := s.Get(dctx, k); !errors.Is(err, context.DeadlineExceeded) {
-		t.Errorf("Get past the deadline: err = %v, want context.DeadlineExceeded", err)
-	}
+	_, _, err = s.Get(dctx, k)
+	assert.ErrorIs(t, err, context.DeadlineExceeded, "Get past the deadline")
 	// The failed calls changed nothing.
 	mustGet(t, s, k, []byte("v"))
 	mustMiss(t, s, key("ctx put"))
@@ -303,17 +285,10 @@ func testContextCancelled(t *testing.T, s cache.Store) {
 func testCloseThenUse(t *testing.T, s cache.Store) {
 	k := key("closed")
 	mustPut(t, s, k, []byte("v"), 0)
-	if err := s.Close(); err != nil {
-		t.Fatalf("Close: %v", err)
-	}
+	require.NoError(t, s.Close(), "Close")
 	ctx := t.Context()
-	if _, _, err := s.Get(ctx, k); !errors.Is(err, cache.ErrClosed) {
-		t.Errorf("Get after Close: err = %v, want cache.ErrClosed", err)
-	}
-	if err := s.Put(ctx, k, []byte("w"), 0); !errors.Is(err, cache.ErrClosed) {
-		t.Errorf("Put after Close: err = %v, want cache.ErrClosed", err)
-	}
-	if err := s.Delete(ctx, k); !errors.Is(err, cache.ErrClosed) {
-		t.Errorf("Delete after Close: err = %v, want cache.ErrClosed", err)
-	}
+	_, _, err := s.Get(ctx, k)
+	assert.ErrorIs(t, err, cache.ErrClosed, "Get after Close")
+	assert.ErrorIs(t, s.Put(ctx, k, []byte("w"), 0), cache.ErrClosed, "Put after Close")
+	assert.ErrorIs(t, s.Delete(ctx, k), cache.ErrClosed, "Delete after Close")
 }

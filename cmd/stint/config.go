@@ -338,7 +338,7 @@ func (c *Config) Validate(root *yaml.Node) error {
 			return bad(errors.New("url is required"), "upstreams", i, "url")
 		}
 		if !strings.HasPrefix(u.URL, "http://") && !strings.HasPrefix(u.URL, "https://") && !strings.HasPrefix(u.URL, "local:") {
-			return bad(fmt.Errorf("url %q must start with http://, https:// or local:", u.URL), "upstreams", i, "url")
+			return bad(fmt.Errorf("url %q must start with http://, https:// or local: followed by a model file", u.URL), "upstreams", i, "url")
 		}
 		if u.Timeout < 0 {
 			return bad(errors.New("timeout must not be negative"), "upstreams", i, "timeout")

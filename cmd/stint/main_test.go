@@ -97,10 +97,11 @@ func startStint(t *testing.T, env []string, args ...string) *child {
 	if err != nil {
 		t.Fatal(err)
 	}
+	c := &child{cmd: cmd, exited: make(chan struct{})}
+	cmd.Stdout = childStdout{c} // what it prints on stdout joins its log
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
 	}
-	c := &child{cmd: cmd, exited: make(chan struct{})}
 	addrc := make(chan string, 1)
 	go func() {
 		sc := bufio.NewScanner(stderr)
@@ -131,6 +132,15 @@ func startStint(t *testing.T, env []string, args ...string) *child {
 		t.Fatalf("stint did not start listening:\n%s", c.output())
 	}
 	return c
+}
+
+// childStdout adds a child's standard output to its log.
+type childStdout struct{ c *child }
+
+func (w childStdout) Write(p []byte) (int, error) {
+	w.c.mu.Lock()
+	defer w.c.mu.Unlock()
+	return w.c.logs.Write(p)
 }
 
 func (c *child) output() string {

@@ -408,7 +408,7 @@ func (s *server) buildSpend(ctx context.Context, cfg Config, disk *boltstore.Sto
 		client := s.redis
 		l := redisledger.New(client, rc.ledgerOptions(gc.Location))
 		ledger, journal, gc.Overrides = l, l, l
-		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix()})
+		limiter = redisrate.New(client, redisrate.Options{Prefix: rc.prefix(), ServerClock: true})
 		if oa := cfg.Budget.OutageAllowance; oa != nil {
 			c, err := capOf(*oa, nil, "budget", "outage_allowance")
 			if err != nil {

@@ -16,6 +16,7 @@ import (
 
 	"github.com/spf13/cobra"
 	"go.etcd.io/bbolt"
+	bberrors "go.etcd.io/bbolt/errors"
 
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/boltledger"
@@ -229,7 +230,7 @@ func openStoreForReport(path string) (*bbolt.DB, error) {
 		return nil, fmt.Errorf("no store at %s (give --data DIR, or --config with its data directory): %w", path, err)
 	}
 	db, err := bbolt.Open(path, 0o600, &bbolt.Options{Timeout: storeLockTimeout})
-	if errors.Is(err, bbolt.ErrTimeout) {
+	if errors.Is(err, bberrors.ErrTimeout) {
 		return nil, fmt.Errorf("the store %s is locked by another process, most likely a running stint serve: stop it to read the statement from the file, or leave out --data and --config to ask the running proxy", path)
 	}
 	if err != nil {

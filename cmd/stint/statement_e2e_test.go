@@ -127,6 +127,15 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	defer up.Close()
 	data := t.TempDir()
 	cfgPath, key := spendConfig(t, up.URL(), data, "1s")
+	// An admin key, so the test can watch the statement while it waits.
+	f, err := os.OpenFile(cfgPath, os.O_APPEND|os.O_WRONLY, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := fmt.Fprintf(f, "admin:\n  keys: [\"sha256:%s\"]\n", keyHash(replicaAdminKey)); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
 	first := startStint(t, nil, "serve", "--config", cfgPath)
 	up.Block()
 	const held = 3
@@ -152,7 +161,8 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	up.Release()
 
 	second := startStint(t, nil, "serve", "--config", cfgPath)
-	waitForLogQuiet(t, 3*time.Second) // the 1 s lease runs out and the sweep (every 1 s) charges it
+	// The 1 s lease runs out and the sweep (every 1 s) charges the holds.
+	awaitSpend(t, second, 0.0009)
 	stop(t, second)
 	rep := statementJSON(t, data)
 	// Each held call reserved at least its worst-case output, 50 tokens at
@@ -167,9 +177,25 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	}
 }
 
-// waitForLogQuiet waits d of wall time: lease expiry is defined in wall
-// time, so this test must let it pass (it asserts nothing about durations).
-func waitForLogQuiet(t *testing.T, d time.Duration) {
+// awaitSpend polls c's admin statement (with replicaAdminKey) until its
+// total spend reaches usd (bounded).
+func awaitSpend(t *testing.T, c *child, usd float64) {
 	t.Helper()
-	time.Sleep(d)
+	deadline := time.Now().Add(30 * time.Second)
+	for {
+		req, _ := http.NewRequest(http.MethodGet, "http://"+c.addr+"/stint/admin/statement", nil)
+		req.Header.Set("Authorization", "Bearer "+replicaAdminKey)
+		var st statement
+		if resp, err := http.DefaultClient.Do(req); err == nil {
+			err = json.NewDecoder(resp.Body).Decode(&st)
+			resp.Body.Close()
+			if spent, _ := strconv.ParseFloat(st.Total.SpentUSD, 64); err == nil && spent >= usd {
+				return
+			}
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("the statement's spend never reached %v USD: %+v", usd, st.Total)
+		}
+		time.Sleep(20 * time.Millisecond) // polling interval
+	}
 }

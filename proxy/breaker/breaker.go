@@ -236,7 +236,7 @@ func (b *Breaker) newLocal() *gobreaker.CircuitBreaker[struct{}] {
 	ls := b.gs
 	ls.OnStateChange = func(_ string, _, to gobreaker.State) {
 		if to == gobreaker.StateOpen {
-			b.localOpened.Store(time.Now().UnixNano())
+			b.localOpened.Store(b.now().UnixNano())
 			b.tripped()
 		}
 	}

@@ -88,14 +88,32 @@ func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	t0 := time.Date(2026, 6, 1, 9, 0, 0, 0, time.UTC)
+	b.SetClock(func() time.Time { return t0 })
 	run(t, b, breaker.Failure)
 	_, err = b.Allow()
 	var oe *breaker.OpenError
 	if !errors.As(err, &oe) {
 		t.Fatalf("Allow after a trip: %v", err)
 	}
-	if ra := oe.RetryAfter(time.Now()); ra < 25*time.Second || ra > 30*time.Second {
-		t.Errorf("RetryAfter = %v, want 30s rounded up from the time left", ra)
+	if want := t0.Add(30 * time.Second); !oe.Until.Equal(want) {
+		t.Errorf("Until = %v, want the trip's time plus OpenFor, %v", oe.Until, want)
+	}
+	// RFC 9110 section 10.2.3: Retry-After in whole seconds, so the time
+	// left rounds up, and never below one second.
+	for _, tc := range []struct {
+		at   time.Duration
+		want time.Duration
+	}{
+		{0, 30 * time.Second},
+		{10*time.Second + 500*time.Millisecond, 20 * time.Second},
+		{29*time.Second + time.Millisecond, time.Second},
+		{30 * time.Second, time.Second},
+		{time.Minute, time.Second},
+	} {
+		if got := oe.RetryAfter(t0.Add(tc.at)); got != tc.want {
+			t.Errorf("RetryAfter(trip + %v) = %v, want %v", tc.at, got, tc.want)
+		}
 	}
 }
 

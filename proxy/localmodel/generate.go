@@ -82,10 +82,8 @@ type delta struct {
 type promptState struct {
 	tokens []int // with BOS
 	seq    *sequence
-	text   string
 	lps    []tokenLogprob // prompt-token log-probabilities, when asked
-	starts []int
-	reused int // positions copied from the prefix cache
+	reused int            // positions copied from the prefix cache
 }
 
 // engine runs requests on a model with an optional prefix cache.

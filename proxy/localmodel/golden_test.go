@@ -30,7 +30,7 @@ func TestGoldenGreedy256(t *testing.T) {
 	}
 }
 
-// TestFirstSentence is the check that the first sentence comes out
+// TestFirstSentence checks that the model's published first sentence comes out
 // of POST /v1/completions with prompt "" at temperature 0 (source above).
 func TestFirstSentence(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
@@ -41,7 +41,7 @@ func TestFirstSentence(t *testing.T) {
 }
 
 // TestLogprobsAreADistribution: over the full vocabulary the returned
-// log-probabilities exponentiate to 1 (within 1e-4, the bound) and
+// log-probabilities exponentiate to 1 (within 1e-4) and
 // the greedy token is the top-1 alternative.
 func TestLogprobsAreADistribution(t *testing.T) {
 	m := loadModel(t)

@@ -664,10 +664,10 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	_, body := post(t, up, "/chat/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
 	events := streamEvents(t, body)
 	type acc struct {
-		role, content string
-		tokens        []wire.ChatTokenLogprob
-		finish        string
-		chunks        int
+		content string
+		tokens  []wire.ChatTokenLogprob
+		finish  string
+		chunks  int
 	}
 	got := map[int]*acc{}
 	var streamUsage *wire.Usage

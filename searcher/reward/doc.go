@@ -22,8 +22,7 @@
 // What comes from where: the piecewise form λ1^(1−Correct)·λ2^Correct·Gap,
 // the constants λ1 = 180 and λ2 = 200, and the input-specific z-score are the
 // paper's, as recalled from memory (the paper's text was not available while
-// this was written; the brief this package was built from states the same
-// constants with λ1 for wrong and λ2 for correct). Renormalising over the
+// this was written), with λ1 for wrong and λ2 for correct. Renormalising over the
 // verbalizers, the 1e-4 added to the standard deviation, the floor for
 // verbalizers missing from a top-k answer, the factor and the clip are this
 // package's own choices.

@@ -16,7 +16,7 @@ import (
 // baseline (empty, each manual prompt, random, best-of-n, halving) and the
 // search's chosen prompt, each naming its prompt; rl-greedy is in the
 // table, not on the plot. Source: WritePlot's own
-// description (the issue asks for baselines drawn as lines), made-up
+// description (baselines are drawn as lines), made-up
 // results.
 func TestPlotShowsTheBaselinesAndBothPanels(t *testing.T) {
 	r := Results{Task: "orchard", Seed: 3,

@@ -113,7 +113,7 @@ func TestParseErrors(t *testing.T) {
 	dir := writeFiles(t, minimalData)
 	// Source: the task-file schema is this project's own (ExampleFile);
 	// fields and lines are hand-counted on minimal (9 lines, so appended
-	// keys are on line 10), and the bad-file cases (missing labels,
+	// keys are on line 10), and the bad files a user is most likely to write (missing labels,
 	// a verbalizer that is not one token, an empty dataset, a template
 	// without {prompt}) are among them.
 	tests := []struct {

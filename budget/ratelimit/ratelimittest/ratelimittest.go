@@ -8,6 +8,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/budget/ratelimit"
 )
 
@@ -28,7 +31,8 @@ var t0 = time.Date(2026, 6, 1, 9, 0, 0, 0, time.UTC)
 // window of injected time against the bound derived from GCRA's
 // definition. GCRA is the Generic Cell Rate Algorithm of the ATM Forum
 // Traffic Management Specification 4.0 and ITU-T Recommendation I.371
-// (from memory). A unit is admitted at time t only if TAT − τ ≤ t, where
+// (neither text is at hand here: the rule below is the virtual-scheduling
+// form as recalled, and the bound is derived from it, not quoted). A unit is admitted at time t only if TAT − τ ≤ t, where
 // every admission raises TAT by T and τ = Burst·T. Starting idle at t0,
 // after k admissions TAT ≥ t0 + k·T, so the k-th admission at t ≤ t0+W
 // needs t0 + k·T − Burst·T ≤ t0 + W: at most Burst + floor(W/T) units.
@@ -58,9 +62,8 @@ func testWindowBound(t *testing.T, newLimiter New) {
 					if errors.Is(err, ratelimit.ErrLimited) {
 						break
 					}
-					if err != nil || d != 0 {
-						t.Fatalf("Reserve at %v = %v, %v; want admitted at once or ErrLimited", now.Sub(t0), d, err)
-					}
+					require.NoError(t, err, "Reserve at %v: want admitted at once or ErrLimited", now.Sub(t0))
+					require.Zero(t, d, "Reserve at %v: want admitted at once", now.Sub(t0))
 					admitted += tt.n
 				}
 			}
@@ -70,10 +73,8 @@ func testWindowBound(t *testing.T, newLimiter New) {
 			hi := bound - bound%tt.n
 			lo := hi - tt.n
 			t.Logf("admitted %d, bound [%d, %d]", admitted, lo, hi)
-			if admitted > hi || admitted < lo {
-				t.Errorf("admitted %d units in %v, want within [%d, %d] (burst %d + floor(%v / %v))",
-					admitted, tt.win, lo, hi, tt.lim.BurstSize(), tt.win, T)
-			}
+			assert.True(t, lo <= admitted && admitted <= hi, "admitted %d units in %v, want within [%d, %d] (burst %d + floor(%v / %v))",
+				admitted, tt.win, lo, hi, tt.lim.BurstSize(), tt.win, T)
 		})
 	}
 }
@@ -87,43 +88,36 @@ func testQueue(t *testing.T, newLimiter New) {
 	wants := []time.Duration{0, 0, time.Second, 2 * time.Second, 3 * time.Second}
 	for i, want := range wants {
 		d, err := l.Reserve(ctx, t0, "lab", lim, 1, 3*time.Second)
-		if err != nil || d != want {
-			t.Fatalf("request %d: Reserve = %v, %v; want wait %v", i, d, err, want)
-		}
+		require.NoError(t, err, "request %d", i)
+		require.Equal(t, want, d, "request %d: the wait", i)
 	}
 	_, err := l.Reserve(ctx, t0, "lab", lim, 1, 3*time.Second)
 	var le *ratelimit.LimitedError
-	if !errors.As(err, &le) || le.RetryAfter != 4*time.Second {
-		t.Fatalf("sixth Reserve error = %v, want LimitedError retry after 4s", err)
-	}
+	require.ErrorAs(t, err, &le, "sixth Reserve")
+	require.Equal(t, 4*time.Second, le.RetryAfter, "sixth Reserve's retry-after")
 	// The refusal took nothing: four seconds on, the next unit is free.
-	if d, err := l.Reserve(ctx, t0.Add(4*time.Second), "lab", lim, 1, 0); err != nil || d != 0 {
-		t.Errorf("Reserve after the retry-after = %v, %v; want admitted at once", d, err)
-	}
+	d, err := l.Reserve(ctx, t0.Add(4*time.Second), "lab", lim, 1, 0)
+	require.NoError(t, err, "Reserve after the retry-after")
+	assert.Zero(t, d, "Reserve after the retry-after: want admitted at once")
 }
 
 func testTooLarge(t *testing.T, newLimiter New) {
 	l := newLimiter(t)
 	lim := ratelimit.Limit{Rate: 100, Per: time.Minute}
-	if _, err := l.Reserve(context.Background(), t0, "lab", lim, 101, time.Hour); !errors.Is(err, ratelimit.ErrTooLarge) {
-		t.Errorf("Reserve above the burst: error = %v, want ErrTooLarge", err)
-	}
-	if _, err := l.Reserve(context.Background(), t0, "lab", ratelimit.Limit{}, 1, 0); !errors.Is(err, ratelimit.ErrBadLimit) {
-		t.Errorf("Reserve with a zero Limit: error = %v, want ErrBadLimit", err)
-	}
+	_, err := l.Reserve(context.Background(), t0, "lab", lim, 101, time.Hour)
+	assert.ErrorIs(t, err, ratelimit.ErrTooLarge, "Reserve above the burst")
+	_, err = l.Reserve(context.Background(), t0, "lab", ratelimit.Limit{}, 1, 0)
+	assert.ErrorIs(t, err, ratelimit.ErrBadLimit, "Reserve with a zero Limit")
 }
 
 func testKeysApart(t *testing.T, newLimiter New) {
 	l := newLimiter(t)
 	ctx := context.Background()
 	lim := ratelimit.Limit{Rate: 1, Per: time.Minute, Burst: 1}
-	if _, err := l.Reserve(ctx, t0, "lab", lim, 1, 0); err != nil {
-		t.Fatal(err)
-	}
-	if _, err := l.Reserve(ctx, t0, "ops", lim, 1, 0); err != nil {
-		t.Errorf("another key's first unit: %v, want admitted", err)
-	}
-	if _, err := l.Reserve(ctx, t0, "lab", lim, 1, 0); !errors.Is(err, ratelimit.ErrLimited) {
-		t.Errorf("same key's second unit: %v, want ErrLimited", err)
-	}
+	_, err := l.Reserve(ctx, t0, "lab", lim, 1, 0)
+	require.NoError(t, err, "first unit")
+	_, err = l.Reserve(ctx, t0, "ops", lim, 1, 0)
+	assert.NoError(t, err, "another key's first unit")
+	_, err = l.Reserve(ctx, t0, "lab", lim, 1, 0)
+	assert.ErrorIs(t, err, ratelimit.ErrLimited, "same key's second unit")
 }

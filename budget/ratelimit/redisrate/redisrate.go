@@ -14,8 +14,11 @@
 //
 // Keys are "stint:{KEY}:gcra" so a key (normally a team name, or an
 // upstream's name for the shared ceiling) lives in one cluster slot. Times
-// are the caller's, in microseconds; replicas should keep their clocks in
-// sync.
+// are microseconds. With Options.ServerClock they are Redis's own (the
+// script reads TIME), so replicas whose clocks disagree share one clock:
+// a replica whose clock ran ahead by d would otherwise see every TAT up to
+// d in its past and admit up to d/T units more than the bound. Without
+// it they are the caller's now, which tests inject.
 //
 // A Redis Cluster failover can lose a key's last TAT updates (replication
 // is asynchronous): the promoted replica then admits the units those
@@ -39,7 +42,8 @@ import (
 // gcraScript runs one GCRA decision.
 //
 //	KEYS[1] the TAT (microseconds, as a decimal integer)
-//	ARGV: now_us, interval_us, burst, n, max_wait_us
+//	ARGV: now_us, interval_us, burst, n, max_wait_us, server_clock
+//	("1": now is Redis's TIME instead of now_us)
 //	returns {1, wait_us} if admitted (TAT updated), {0, wait_us} if the
 //	wait would exceed max_wait_us (nothing changed).
 //
@@ -49,10 +53,15 @@ import (
 // no longer needed (an absent key means TAT = now).
 var gcraScript = redis.NewScript(`
 local now = tonumber(ARGV[1])
+if ARGV[6] == '1' then
+  if redis.replicate_commands then redis.replicate_commands() end
+  local t = redis.call('TIME')
+  now = tonumber(t[1]) * 1000000 + tonumber(t[2])
+end
 local T = tonumber(ARGV[2])
 local tau = tonumber(ARGV[3]) * T
 local n = tonumber(ARGV[4])
-local tat = tonumber(redis.call('GET', KEYS[1]) or ARGV[1])
+local tat = tonumber(redis.call('GET', KEYS[1])) or now
 if tat < now then tat = now end
 local newtat = tat + n * T
 local wait = newtat - tau - now
@@ -68,13 +77,18 @@ return {1, wait}
 type Options struct {
 	// Prefix starts every key. Empty means "stint".
 	Prefix string
+	// ServerClock makes every decision on Redis's clock (TIME) instead of
+	// the now passed to Reserve: the setting for several replicas, whose
+	// clocks may disagree. False uses the caller's now.
+	ServerClock bool
 }
 
 // Limiter is a GCRA ratelimit.Limiter on Redis. It is safe for concurrent
 // use by any number of processes sharing the Redis.
 type Limiter struct {
-	c      redis.UniversalClient
-	prefix string
+	c           redis.UniversalClient
+	prefix      string
+	serverClock string // "1" with Options.ServerClock, else "0"
 }
 
 var _ ratelimit.Limiter = (*Limiter)(nil)
@@ -85,10 +99,15 @@ func New(c redis.UniversalClient, opts Options) *Limiter {
 	if p == "" {
 		p = "stint"
 	}
-	return &Limiter{c: c, prefix: p}
+	l := &Limiter{c: c, prefix: p, serverClock: "0"}
+	if opts.ServerClock {
+		l.serverClock = "1"
+	}
+	return l
 }
 
-// Reserve implements ratelimit.Limiter. Key must not contain '{' or '}'.
+// Reserve implements ratelimit.Limiter; with Options.ServerClock it
+// ignores now. Key must not contain '{' or '}'.
 // Each key keeps one TAT, so give each dimension its own key: for example
 // "lab:rpm" for a team's requests and "lab:tpm" for its tokens.
 func (l *Limiter) Reserve(ctx context.Context, now time.Time, key string, lim ratelimit.Limit, n int64, maxWait time.Duration) (time.Duration, error) {
@@ -108,7 +127,7 @@ func (l *Limiter) Reserve(ctx context.Context, now time.Time, key string, lim ra
 	}
 	iv := lim.Interval().Microseconds()
 	out, err := gcraScript.Run(ctx, l.c, []string{l.prefix + ":{" + key + "}:gcra"},
-		now.UnixMicro(), iv, lim.BurstSize(), n, max(maxWait, 0).Microseconds()).Int64Slice()
+		now.UnixMicro(), iv, lim.BurstSize(), n, max(maxWait, 0).Microseconds(), l.serverClock).Int64Slice()
 	if err != nil {
 		return 0, fmt.Errorf("redisrate: %w", err)
 	}
