@@ -12,6 +12,9 @@ import (
 // local serves a Manager's jobs as a Service.
 type local struct{ m *Manager }
 
+// ManagerService serves m's jobs as a Service.
+func ManagerService(m *Manager) Service { return local{m} }
+
 var _ Service = local{}
 
 func (l local) Submit(_ context.Context, spec Spec) (Status, error) { return l.m.Submit(spec) }
