@@ -3,10 +3,12 @@ package main
 import (
 	"bytes"
 	"context"
+	"crypto/sha256"
 	"encoding/json"
 	"fmt"
 	"io"
 	"net/http"
+	"net/http/httptest"
 	"os"
 	"strconv"
 	"strings"
@@ -20,6 +22,7 @@ import (
 
 	"github.com/stintlab/stint/budget/redistest"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
+	"github.com/stintlab/stint/proxy/opsview"
 	"github.com/stintlab/stint/searcher/jobs"
 	"github.com/stintlab/stint/searcher/task/tasktest"
 )
@@ -264,7 +267,30 @@ func TestFleetResumesAKilledSidecarsSearch(t *testing.T) {
 				}
 			}
 			f.checkExactlyOnce(l)
+			f.checkOperatorPage(l)
 		})
+	}
+}
+
+// checkOperatorPage renders the operator page on one sidecar's job API:
+// it lists every job of the fleet with the sidecar that ran it.
+func (f *fleet) checkOperatorPage(l []jobs.Status) {
+	f.t.Helper()
+	const admin = "fleet-admin-key"
+	mux := http.NewServeMux()
+	opsview.New(opsview.Options{AdminKeyHashes: [][sha256.Size]byte{sha256.Sum256([]byte(admin))}, Sidecar: f.api(), MaxSearches: 20}).Route(mux)
+	srv := httptest.NewServer(mux)
+	defer srv.Close()
+	req, _ := http.NewRequest(http.MethodGet, srv.URL+opsview.Prefix, nil)
+	req.Header.Set("Authorization", "Bearer "+admin)
+	resp, err := srv.Client().Do(req)
+	require.NoError(f.t, err)
+	defer resp.Body.Close()
+	page, _ := io.ReadAll(resp.Body)
+	require.Equal(f.t, http.StatusOK, resp.StatusCode, "%s", page)
+	for _, s := range l {
+		require.NotEmpty(f.t, s.Sidecar)
+		assert.Contains(f.t, string(page), fmt.Sprintf(`data-figure="search-sidecar-%s" data-value="%s"`, s.ID, s.Sidecar))
 	}
 }
 
