@@ -1,0 +1,126 @@
+package redisjobs
+
+import (
+	"context"
+	"os"
+	"path/filepath"
+	"testing"
+	"time"
+
+	"github.com/redis/go-redis/v9"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"github.com/stintlab/stint/budget/redistest"
+	"github.com/stintlab/stint/searcher/jobs"
+	"github.com/stintlab/stint/searcher/search"
+)
+
+// apiOnly opens a queue on rdb that runs no job itself, named name, so
+// the test drives its claims.
+func apiOnly(t *testing.T, rdb redis.UniversalClient, name string, lease time.Duration) *Queue {
+	t.Helper()
+	q, err := Open(context.Background(), rdb, nil, Options{Name: name, Jobs: -1, Lease: lease, Prefix: "fence"})
+	require.NoError(t, err)
+	t.Cleanup(q.Close)
+	return q
+}
+
+// TestWritesOfALostClaimAreRefused: sidecar a takes a job, its claim runs
+// past the lease, b takes it; every write of a's (checkpoint, end,
+// heartbeat, hand-back) is then refused and b's land. On a standalone
+// server and on a 3-master Cluster (the scripts' keys share one slot).
+func TestWritesOfALostClaimAreRefused(t *testing.T) {
+	tests := []struct {
+		name  string
+		redis func(t *testing.T) redis.UniversalClient
+	}{
+		{"redis", func(t *testing.T) redis.UniversalClient { return redistest.Start(t).Client(t) }},
+		{"cluster", func(t *testing.T) redis.UniversalClient { return redistest.StartCluster(t, 3).Client(t) }},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			ctx := context.Background()
+			rdb := tt.redis(t)
+			const lease = 300 * time.Millisecond
+			a, b := apiOnly(t, rdb, "a", lease), apiOnly(t, rdb, "b", lease)
+			taskFile := filepath.Join(t.TempDir(), "task.yaml")
+			require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
+			st, err := a.Submit(ctx, jobs.Spec{Task: taskFile})
+			require.NoError(t, err)
+
+			ca, err := a.claim(ctx)
+			require.NoError(t, err)
+			require.NotNil(t, ca)
+			assert.EqualValues(t, 1, ca.epoch)
+			assert.False(t, ca.resume)
+			ka := checkpoints{q: a, ctx: ctx, c: ca}
+			require.NoError(t, ka.Save(&search.State{Step: 1}))
+
+			// Within the lease b finds nothing to take.
+			cb, err := b.claim(ctx)
+			require.NoError(t, err)
+			assert.Nil(t, cb)
+			time.Sleep(lease + 100*time.Millisecond)
+			cb, err = b.claim(ctx)
+			require.NoError(t, err)
+			require.NotNil(t, cb, "b took nothing past a's lease")
+			assert.EqualValues(t, 2, cb.epoch)
+			assert.True(t, cb.resume, "b does not resume from a's checkpoint")
+
+			assert.ErrorIs(t, ka.Save(&search.State{Step: 2}), ErrFenced, "a's checkpoint after losing the claim")
+			res, err := a.beat(ctx, ca, []byte(`{}`))
+			require.NoError(t, err)
+			assert.Equal(t, "lost", res)
+			r := &running{status: cb.status}
+			a.finish(ctx, ca, r, jobs.Done, "")
+			a.release(ctx, ca, r)
+			got, err := a.Get(ctx, st.ID)
+			require.NoError(t, err)
+			assert.Equal(t, jobs.Running, got.State, "a's end or hand-back landed")
+			assert.Equal(t, "b", got.Sidecar)
+
+			kb := checkpoints{q: b, ctx: ctx, c: cb}
+			require.NoError(t, kb.Save(&search.State{Step: 3}))
+			epoch, err := rdb.HGet(ctx, b.k.ckpt(st.ID), "epoch").Int()
+			require.NoError(t, err)
+			assert.Equal(t, 2, epoch, "the checkpoint is not the new owner's")
+			res, err = b.beat(ctx, cb, nil)
+			require.NoError(t, err)
+			assert.Equal(t, "ok", res)
+			b.finish(ctx, cb, r, jobs.Done, "")
+			got, err = b.Get(ctx, st.ID)
+			require.NoError(t, err)
+			assert.Equal(t, jobs.Done, got.State)
+			n, err := rdb.HGet(ctx, b.k.job(st.ID), "finished").Int()
+			require.NoError(t, err)
+			assert.Equal(t, 1, n)
+			left, err := rdb.XLen(ctx, b.k.queue()).Result()
+			require.NoError(t, err)
+			assert.Zero(t, left)
+		})
+	}
+}
+
+// TestCanceledJobIsNeverTaken: a job canceled while queued is dropped
+// from the queue by the next claim, not run.
+func TestCanceledJobIsNeverTaken(t *testing.T) {
+	ctx := context.Background()
+	rdb := redistest.Start(t).Client(t)
+	q := apiOnly(t, rdb, "a", time.Second)
+	taskFile := filepath.Join(t.TempDir(), "task.yaml")
+	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
+	st, err := q.Submit(ctx, jobs.Spec{Task: taskFile})
+	require.NoError(t, err)
+	got, err := q.Cancel(ctx, st.ID)
+	require.NoError(t, err)
+	assert.Equal(t, jobs.Canceled, got.State)
+	c, err := q.claim(ctx)
+	require.NoError(t, err)
+	assert.Nil(t, c)
+	left, err := rdb.XLen(ctx, q.k.queue()).Result()
+	require.NoError(t, err)
+	assert.Zero(t, left)
+	_, err = q.Cancel(ctx, "job-unknown")
+	assert.ErrorIs(t, err, jobs.ErrNotFound)
+}
