@@ -41,6 +41,8 @@ type fleet struct {
 	rdb      redis.UniversalClient
 	sidecars map[string]*child
 	client   *http.Client // bounded: a stopped sidecar never answers
+	// proxyChild is the proxy's process.
+	proxyChild *child
 }
 
 // fleetTask is the demo task cut to a few small steps, so a search runs
@@ -61,7 +63,7 @@ func newFleet(t *testing.T, addrs []string, rdb redis.UniversalClient, steps int
 	}
 	cfg := writeConfig(t, fmt.Sprintf("store:\n  redis:\n    addrs: [%s]\n    timeout: 300ms\n    prefix: fleettest\n", strings.Join(quoted, ", ")))
 	return &fleet{t: t, proxy: "http://" + p.addr + "/v1", config: cfg, task: fleetTask(t, steps), rdb: rdb, sidecars: map[string]*child{},
-		client: &http.Client{Timeout: 5 * time.Second}}
+		client: &http.Client{Timeout: 5 * time.Second}, proxyChild: p}
 }
 
 // start runs sidecar name.
@@ -107,6 +109,20 @@ func readProcStat(pid int) (byte, error) {
 		return 0, fmt.Errorf("unreadable /proc/%d/stat", pid)
 	}
 	return b[i+2], nil
+}
+
+// cpuTime is the user and system time a process has used so far
+// (/proc/PID/stat utime and stime, in clock ticks of 1/100 s).
+func cpuTime(t *testing.T, pid int) time.Duration {
+	t.Helper()
+	b, err := os.ReadFile("/proc/" + strconv.Itoa(pid) + "/stat")
+	require.NoError(t, err)
+	fields := strings.Fields(string(b[bytes.LastIndexByte(b, ')')+2:]))
+	utime, err := strconv.Atoi(fields[11])
+	require.NoError(t, err)
+	stime, err := strconv.Atoi(fields[12])
+	require.NoError(t, err)
+	return time.Duration(utime+stime) * 10 * time.Millisecond
 }
 
 func (f *fleet) submit() jobs.Status {
@@ -393,4 +409,66 @@ func TestFleetRidesOutARedisRestart(t *testing.T) {
 	rs.Restart(t)
 	l := f.await("every job ended", func(l []jobs.Status) bool { return len(l) == 3 && allEnded(l) })
 	f.checkExactlyOnce(l)
+}
+
+// TestFleetFigures measures what README "Several search sidecars" quotes:
+// jobs per minute with 1, 2 and 3 sidecars on one proxy (its cache shared
+// by all), and the time from a sidecar's SIGKILL to its job's resumption
+// on an idle sidecar. It runs only with STINT_FLEET_FIGURES=1 (a minute
+// or more of both cores); it checks every job ended once.
+func TestFleetFigures(t *testing.T) {
+	if os.Getenv("STINT_FLEET_FIGURES") == "" {
+		t.Skip("set STINT_FLEET_FIGURES=1 to measure the fleet's figures")
+	}
+	const jobsPerRun = 6
+	for _, n := range []int{1, 2, 3} {
+		t.Run(fmt.Sprintf("sidecars=%d", n), func(t *testing.T) {
+			rs := redistest.Start(t)
+			f := newFleet(t, []string{rs.Addr}, rs.Client(t), 40)
+			for i := range n {
+				f.start("sidecar-" + strconv.Itoa(i))
+			}
+			start := time.Now()
+			for range jobsPerRun {
+				f.submit()
+			}
+			l := f.await("every job ended", func(l []jobs.Status) bool { return len(l) == jobsPerRun && allEnded(l) })
+			took := time.Since(start)
+			var cpu time.Duration
+			for _, c := range f.sidecars {
+				cpu += cpuTime(t, c.cmd.Process.Pid)
+			}
+			f.checkExactlyOnce(l)
+			t.Logf("%d sidecars: %d jobs in %s: %.1f jobs per minute; the sidecars used %s of CPU, the proxy %s",
+				n, jobsPerRun, took.Round(100*time.Millisecond), jobsPerRun/took.Minutes(), cpu.Round(100*time.Millisecond),
+				cpuTime(t, f.proxyChild.cmd.Process.Pid).Round(100*time.Millisecond))
+		})
+	}
+	t.Run("resumption", func(t *testing.T) {
+		rs := redistest.Start(t)
+		f := newFleet(t, []string{rs.Addr}, rs.Client(t), 20)
+		f.start("sidecar-a")
+		f.start("sidecar-b")
+		var total time.Duration
+		const kills = 3
+		for i := range kills {
+			job := f.submit()
+			var owner jobs.Status
+			f.await("the job in the middle", func(l []jobs.Status) bool {
+				owner = l[0]
+				return owner.ID == job.ID && owner.State == jobs.Running && owner.Step >= 2
+			})
+			victim := f.sidecars[owner.Sidecar]
+			require.NoError(t, victim.cmd.Process.Signal(syscall.SIGKILL))
+			<-victim.exited
+			died := time.Now()
+			f.await("the job taken over", func(l []jobs.Status) bool { return l[0].Attempts > owner.Attempts })
+			took := time.Since(died)
+			total += took
+			t.Logf("kill %d: job resumed %s after the SIGKILL (lease %s, poll 100ms)", i+1, took.Round(10*time.Millisecond), fleetLease)
+			f.start(owner.Sidecar + "-again")
+			f.await("the job ended", allEnded)
+		}
+		t.Logf("mean time to resumption: %s", (total / kills).Round(10*time.Millisecond))
+	})
 }
