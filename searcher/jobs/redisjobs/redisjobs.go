@@ -8,7 +8,7 @@
 // it resets the entry's idle time (XCLAIM to itself), and an entry idle
 // for longer than the lease is taken by another sidecar (XAUTOCLAIM),
 // which resumes the search from its last checkpoint. Job state, status,
-// checkpoints (S2-compressed) and outputs live in Redis too, so every
+// checkpoints (zstd-compressed) and outputs live in Redis too, so every
 // sidecar answers the job API for every job.
 //
 // Fencing: each take of a job raises its epoch, and every write of the
@@ -36,7 +36,7 @@ import (
 	"sync"
 	"time"
 
-	"github.com/klauspost/compress/s2"
+	"github.com/klauspost/compress/zstd"
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/proxy/localmodel"
@@ -100,6 +100,11 @@ type Queue struct {
 	o     Options
 	k     keys
 
+	// enc and dec compress checkpoints and outputs (zstd; EncodeAll and
+	// DecodeAll are safe for concurrent use).
+	enc *zstd.Encoder
+	dec *zstd.Decoder
+
 	logMu sync.Mutex // serializes lines to o.Log
 
 	stop context.CancelFunc
@@ -144,8 +149,17 @@ func Open(ctx context.Context, rdb redis.UniversalClient, model *localmodel.Mode
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	q := &Queue{rdb: rdb, model: model, o: o, k: keys{tag: "{" + o.Prefix + ":search}"}}
+	enc, err := zstd.NewWriter(nil)
+	if err != nil {
+		return nil, err
+	}
+	dec, err := zstd.NewReader(nil)
+	if err != nil {
+		return nil, err
+	}
+	q := &Queue{rdb: rdb, model: model, o: o, k: keys{tag: "{" + o.Prefix + ":search}"}, enc: enc, dec: dec}
 	if err := q.ensureGroup(ctx); err != nil {
+		dec.Close()
 		return nil, err
 	}
 	wctx, stop := context.WithCancel(context.Background())
@@ -165,6 +179,7 @@ func (q *Queue) Name() string { return q.o.Name }
 func (q *Queue) Close() {
 	q.stop()
 	q.wg.Wait()
+	q.dec.Close()
 }
 
 func (q *Queue) ensureGroup(ctx context.Context) error {
@@ -306,7 +321,7 @@ func (q *Queue) Output(ctx context.Context, id, name string) ([]byte, error) {
 	if err != nil {
 		return nil, unavailable(err)
 	}
-	return s2.Decode(nil, b)
+	return q.dec.DecodeAll(b, nil)
 }
 
 // History reads the job's curve: its history.csv once finished, else the
@@ -332,7 +347,7 @@ func (q *Queue) History(ctx context.Context, id string) (jobs.History, error) {
 	if err != nil {
 		return jobs.History{}, unavailable(err)
 	}
-	raw, err := s2.Decode(nil, c)
+	raw, err := q.dec.DecodeAll(c, nil)
 	if err != nil {
 		return jobs.History{}, fmt.Errorf("redisjobs: job %s's checkpoint: %w", id, err)
 	}
@@ -608,7 +623,7 @@ func (q *Queue) finish(ctx context.Context, c *claim, r *running, state, dir str
 				q.logf("job=%s: %v", c.id, err)
 				continue
 			}
-			args = append(args, name, s2.Encode(nil, b))
+			args = append(args, name, q.enc.EncodeAll(b, nil))
 		}
 	}
 	err := q.retry(ctx, "job="+c.id+" store the end", func(ctx context.Context) error {
@@ -656,7 +671,7 @@ func (k checkpoints) Save(st *search.State) error {
 	if err := search.WriteState(&b, st); err != nil {
 		return err
 	}
-	data := s2.Encode(nil, b.Bytes())
+	data := k.q.enc.EncodeAll(b.Bytes(), nil)
 	return k.q.retry(k.ctx, "job="+k.c.id+" checkpoint", func(ctx context.Context) error {
 		n, err := checkpointScript.Run(ctx, k.q.rdb, []string{k.q.k.job(k.c.id), k.q.k.ckpt(k.c.id)}, k.c.epoch, data, st.Step).Int()
 		if err == nil && n == 0 {
@@ -681,7 +696,7 @@ func (k checkpoints) Load() (io.Reader, error) {
 	if err != nil {
 		return nil, fmt.Errorf("redisjobs: job %s's checkpoint: %w", k.c.id, err)
 	}
-	raw, err := s2.Decode(nil, b)
+	raw, err := k.q.dec.DecodeAll(b, nil)
 	if err != nil {
 		return nil, fmt.Errorf("redisjobs: job %s's checkpoint: %w", k.c.id, err)
 	}
