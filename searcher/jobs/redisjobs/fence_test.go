@@ -124,3 +124,72 @@ func TestCanceledJobIsNeverTaken(t *testing.T) {
 	_, err = q.Cancel(ctx, "job-unknown")
 	assert.ErrorIs(t, err, jobs.ErrNotFound)
 }
+
+// TestStaleClaimFoundBehindLiveOnes: a job whose claim ran out is taken
+// even when more than ten live claims come before it in the pending list
+// (XAUTOCLAIM scans ten entries per call).
+func TestStaleClaimFoundBehindLiveOnes(t *testing.T) {
+	ctx := context.Background()
+	rdb := redistest.Start(t).Client(t)
+	const lease = 400 * time.Millisecond
+	a, b := apiOnly(t, rdb, "a", lease), apiOnly(t, rdb, "b", lease)
+	taskFile := filepath.Join(t.TempDir(), "task.yaml")
+	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
+	const n = 12
+	for range n {
+		_, err := a.Submit(ctx, jobs.Spec{Task: taskFile})
+		require.NoError(t, err)
+	}
+	var claims []*claim
+	for range n {
+		c, err := a.claim(ctx)
+		require.NoError(t, err)
+		require.NotNil(t, c)
+		claims = append(claims, c)
+	}
+	live, stale := claims[:n-1], claims[n-1]
+	for range 2 {
+		time.Sleep(lease * 6 / 10)
+		for _, c := range live {
+			res, err := a.beat(ctx, c, nil)
+			require.NoError(t, err)
+			require.Equal(t, "ok", res)
+		}
+	}
+	got, err := b.claim(ctx)
+	require.NoError(t, err)
+	require.NotNil(t, got, "the stale claim behind %d live ones was not found", len(live))
+	assert.Equal(t, stale.id, got.id)
+}
+
+// TestRetriedEndCountsOnce: storing a job's end again (a retry after a
+// lost reply) succeeds and the job still finished once.
+func TestRetriedEndCountsOnce(t *testing.T) {
+	ctx := context.Background()
+	rdb := redistest.Start(t).Client(t)
+	q := apiOnly(t, rdb, "a", time.Second)
+	taskFile := filepath.Join(t.TempDir(), "task.yaml")
+	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
+	st, err := q.Submit(ctx, jobs.Spec{Task: taskFile})
+	require.NoError(t, err)
+	c, err := q.claim(ctx)
+	require.NoError(t, err)
+	require.NotNil(t, c)
+	r := &running{status: c.status}
+	r.update(func(s *jobs.Status) { s.State = jobs.Done })
+	args := []any{group, c.entry, c.epoch, jobs.Done, r.snapshot(), q.nowMS()}
+	keys := []string{q.k.queue(), q.k.job(c.id), q.k.out(c.id), q.k.ckpt(c.id)}
+	for i := range 2 {
+		n, err := finishScript.Run(ctx, rdb, keys, args...).Int()
+		require.NoError(t, err)
+		assert.Equal(t, 1, n, "try %d", i+1)
+	}
+	finished, err := rdb.HGet(ctx, q.k.job(st.ID), "finished").Int()
+	require.NoError(t, err)
+	assert.Equal(t, 1, finished)
+	// Another end (another status) of the same run is refused.
+	args[4] = []byte(`{"state":"failed"}`)
+	n, err := finishScript.Run(ctx, rdb, keys, args...).Int()
+	require.NoError(t, err)
+	assert.Zero(t, n)
+}

@@ -411,13 +411,22 @@ type claim struct {
 // claim takes a job: first one whose claim ran past its lease, then a new
 // one. It returns nil when there is none.
 func (q *Queue) claim(ctx context.Context) (*claim, error) {
-	msgs, _, err := q.rdb.XAutoClaim(ctx, &redis.XAutoClaimArgs{Stream: q.k.queue(), Group: group, Consumer: q.o.Name,
-		MinIdle: q.o.Lease, Start: "0-0", Count: 1}).Result()
-	if err != nil && strings.HasPrefix(err.Error(), "NOGROUP") {
-		return nil, q.ensureGroup(ctx)
-	}
-	if err != nil {
-		return nil, err
+	// XAUTOCLAIM looks at ten pending entries per count asked for: go on
+	// from its cursor until it has scanned them all.
+	var msgs []redis.XMessage
+	for cursor := "0-0"; ; {
+		var err error
+		msgs, cursor, err = q.rdb.XAutoClaim(ctx, &redis.XAutoClaimArgs{Stream: q.k.queue(), Group: group, Consumer: q.o.Name,
+			MinIdle: q.o.Lease, Start: cursor, Count: 1}).Result()
+		if err != nil && strings.HasPrefix(err.Error(), "NOGROUP") {
+			return nil, q.ensureGroup(ctx)
+		}
+		if err != nil {
+			return nil, err
+		}
+		if len(msgs) > 0 || cursor == "0-0" {
+			break
+		}
 	}
 	if len(msgs) == 0 {
 		streams, err := q.rdb.XReadGroup(ctx, &redis.XReadGroupArgs{Group: group, Consumer: q.o.Name,
@@ -516,6 +525,8 @@ func (q *Queue) run(ctx context.Context, c *claim) {
 	beatMu.Lock()
 	lost := outcome
 	beatMu.Unlock()
+	// The end is retried for a while, past the queue's closing; a hand-back
+	// only briefly (the lease hands the job on anyway).
 	bg, stop := context.WithTimeout(context.WithoutCancel(ctx), 4*q.o.Lease)
 	defer stop()
 	if lost == "" && errors.Is(err, ErrFenced) {
@@ -532,7 +543,9 @@ func (q *Queue) run(ctx context.Context, c *claim) {
 	case lost != "":
 		q.logf("job=%s lost its claim: another sidecar runs it", c.id)
 	case ctx.Err() != nil:
-		q.release(bg, c, r)
+		rctx, cancel := context.WithTimeout(bg, min(q.o.Lease, 5*time.Second))
+		defer cancel()
+		q.release(rctx, c, r)
 	case err != nil:
 		r.update(func(s *jobs.Status) { s.State, s.Error = jobs.Failed, err.Error() })
 		q.finish(bg, c, r, jobs.Failed, "")

@@ -72,13 +72,15 @@ return 1
 
 // finishScript ends the job's run at epoch: its state (done or failed),
 // status and outputs, its entry acknowledged, its checkpoint dropped; 0
-// when the run lost its claim.
+// when the run lost its claim. A retry after a reply that was lost finds
+// the end stored and answers 1 again.
 // KEYS: queue, job, outputs, checkpoint. ARGV: group, entry, epoch, state,
 // status, now, then name and content of each output.
 var finishScript = redis.NewScript(`
-if redis.call('HGET', KEYS[2], 'epoch') ~= ARGV[3] or redis.call('HGET', KEYS[2], 'state') ~= 'running' then
-  return 0
-end
+if redis.call('HGET', KEYS[2], 'epoch') ~= ARGV[3] then return 0 end
+local state = redis.call('HGET', KEYS[2], 'state')
+if state == ARGV[4] and redis.call('HGET', KEYS[2], 'status') == ARGV[5] then return 1 end
+if state ~= 'running' then return 0 end
 redis.call('HSET', KEYS[2], 'state', ARGV[4], 'status', ARGV[5], 'updated', ARGV[6])
 redis.call('HINCRBY', KEYS[2], 'finished', 1)
 for i = 7, #ARGV, 2 do
