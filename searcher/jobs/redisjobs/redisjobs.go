@@ -4,8 +4,9 @@
 //
 // Submissions go into one Redis Stream read by a consumer group: a sidecar
 // claims an entry (XREADGROUP), runs its search, and acknowledges it
-// (XACK) when the search has ended. While it runs, the sidecar heart-beats:
-// it resets the entry's idle time (XCLAIM to itself), and an entry idle
+// (XACK) when the search has ended. While it runs, the sidecar heart-beats
+// every second: it resets the entry's idle time (XCLAIM to itself) and
+// stores the job's status. An entry idle
 // for longer than the lease is taken by another sidecar (XAUTOCLAIM),
 // which resumes the search from its last checkpoint. Job state, status,
 // checkpoints (zstd-compressed) and outputs live in Redis too, so every
@@ -67,9 +68,9 @@ type Options struct {
 	// Jobs is how many searches this sidecar runs at once; 0 means 1.
 	// -1 runs none: the sidecar only answers the API.
 	Jobs int
-	// Lease is how long a job's claim holds without a heartbeat (one
-	// every third of it) before another sidecar may take the job;
-	// 0 means DefaultLease.
+	// Lease is how long a job's claim holds without a heartbeat (one a
+	// second, or every third of the lease when shorter) before another
+	// sidecar may take the job; 0 means DefaultLease.
 	Lease time.Duration
 	// Poll is how often an idle worker asks the queue for a job; 0 means
 	// DefaultPoll.
@@ -575,13 +576,13 @@ func progress(s *jobs.Status, p search.Progress) {
 	}
 }
 
-// heartbeat extends the job's claim and stores its status every third of
-// the lease until ctx ends, and calls end with "canceled" or "lost" when
+// heartbeat extends the job's claim and stores its status every second
+// (every third of the lease when that is shorter) until ctx ends, and calls end with "canceled" or "lost" when
 // the job was canceled or taken by another sidecar. While Redis cannot be
 // reached the search goes on; its claim holds as long as its entry's idle
 // time is under the lease when Redis answers again.
 func (q *Queue) heartbeat(ctx context.Context, c *claim, r *running, end func(string)) {
-	every := q.o.Lease / 3
+	every := min(q.o.Lease/3, time.Second)
 	t := time.NewTicker(every)
 	defer t.Stop()
 	for {
