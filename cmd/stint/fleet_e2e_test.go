@@ -224,21 +224,24 @@ func (f *fleet) checkExactlyOnce(l []jobs.Status) {
 	}
 }
 
+// fleetBackends are the Redis setups the fleet's tests run on: a
+// standalone server and a 3-master Cluster.
+var fleetBackends = []struct {
+	name  string
+	redis func(t *testing.T) ([]string, redis.UniversalClient)
+}{
+	{"redis", func(t *testing.T) ([]string, redis.UniversalClient) {
+		rs := redistest.Start(t)
+		return []string{rs.Addr}, rs.Client(t)
+	}},
+	{"cluster", func(t *testing.T) ([]string, redis.UniversalClient) {
+		cl := redistest.StartCluster(t, 3)
+		return cl.Addrs, cl.Client(t)
+	}},
+}
+
 func TestFleetResumesAKilledSidecarsSearch(t *testing.T) {
-	tests := []struct {
-		name  string
-		redis func(t *testing.T) ([]string, redis.UniversalClient)
-	}{
-		{"redis", func(t *testing.T) ([]string, redis.UniversalClient) {
-			rs := redistest.Start(t)
-			return []string{rs.Addr}, rs.Client(t)
-		}},
-		{"cluster", func(t *testing.T) ([]string, redis.UniversalClient) {
-			cl := redistest.StartCluster(t, 3)
-			return cl.Addrs, cl.Client(t)
-		}},
-	}
-	for _, tt := range tests {
+	for _, tt := range fleetBackends {
 		t.Run(tt.name, func(t *testing.T) {
 			addrs, rdb := tt.redis(t)
 			f := newFleet(t, addrs, rdb, 8)
@@ -315,8 +318,15 @@ func (f *fleet) checkOperatorPage(l []jobs.Status) {
 // refused and stops, and the job finishes once, with the results of an
 // uninterrupted run.
 func TestFleetFencesAPausedSidecar(t *testing.T) {
-	rs := redistest.Start(t)
-	f := newFleet(t, []string{rs.Addr}, rs.Client(t), 10)
+	for _, tt := range fleetBackends {
+		t.Run(tt.name, func(t *testing.T) {
+			addrs, rdb := tt.redis(t)
+			testFencesAPausedSidecar(t, newFleet(t, addrs, rdb, 10))
+		})
+	}
+}
+
+func testFencesAPausedSidecar(t *testing.T, f *fleet) {
 	f.start("sidecar-a")
 	f.start("sidecar-b")
 	job := f.submit()

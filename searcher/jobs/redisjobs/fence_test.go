@@ -2,6 +2,9 @@ package redisjobs
 
 import (
 	"context"
+	"io"
+	"net/http"
+	"net/http/httptest"
 	"os"
 	"path/filepath"
 	"testing"
@@ -192,4 +195,32 @@ func TestRetriedEndCountsOnce(t *testing.T) {
 	n, err := finishScript.Run(ctx, rdb, keys, args...).Int()
 	require.NoError(t, err)
 	assert.Zero(t, n)
+}
+
+// TestAPIAnswers503WhileRedisIsDown: with the queue's Redis gone the job
+// API says so (503 store_unavailable, Retry-After), and answers again once
+// it is back.
+func TestAPIAnswers503WhileRedisIsDown(t *testing.T) {
+	rs := redistest.Start(t)
+	rdb := redis.NewClient(&redis.Options{Addr: rs.Addr, MaxRetries: -1, DialTimeout: 200 * time.Millisecond})
+	t.Cleanup(func() { rdb.Close() })
+	q := apiOnly(t, rdb, "a", time.Second)
+	api := httptest.NewServer(jobs.NewHandler(q))
+	t.Cleanup(api.Close)
+	get := func() (int, string, string) {
+		resp, err := http.Get(api.URL + "/jobs")
+		require.NoError(t, err)
+		defer resp.Body.Close()
+		b, _ := io.ReadAll(resp.Body)
+		return resp.StatusCode, resp.Header.Get("Retry-After"), string(b)
+	}
+	status, _, body := get()
+	require.Equal(t, http.StatusOK, status, body)
+	rs.Stop()
+	status, retry, body := get()
+	assert.Equal(t, http.StatusServiceUnavailable, status, body)
+	assert.Equal(t, "1", retry)
+	assert.Contains(t, body, `"code":"store_unavailable"`)
+	rs.Restart(t)
+	require.Eventually(t, func() bool { s, _, _ := get(); return s == http.StatusOK }, 10*time.Second, 50*time.Millisecond)
 }
