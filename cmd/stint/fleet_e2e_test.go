@@ -482,3 +482,25 @@ func TestFleetFigures(t *testing.T) {
 		t.Logf("mean time to resumption: %s", (total / kills).Round(10*time.Millisecond))
 	})
 }
+
+// TestQueueFlagsNeedASharedQueue: the flags of a sidecar's part in a
+// shared queue are refused without one, and bad values with one.
+func TestQueueFlagsNeedASharedQueue(t *testing.T) {
+	cfg := writeConfig(t, "store:\n  redis:\n    addrs: [\"127.0.0.1:1\"]\n")
+	tests := []struct {
+		args []string
+		want string
+	}{
+		{[]string{"--jobs", "2"}, "--jobs: only for sidecars sharing a queue"},
+		{[]string{"--lease", "5s", "--name", "a"}, "--lease, --name: only for sidecars sharing a queue"},
+		{[]string{"--config", cfg, "--jobs", "0"}, "--jobs must be at least 1"},
+		{[]string{"--config", cfg, "--lease", "10ms"}, "--lease at least 300ms"},
+	}
+	for _, tt := range tests {
+		t.Run(strings.Join(tt.args, " "), func(t *testing.T) {
+			out, err := runCLI(t, append([]string{"search", "serve", "--listen", "127.0.0.1:0", "--data", t.TempDir()}, tt.args...)...)
+			require.Error(t, err, out)
+			assert.Contains(t, err.Error(), tt.want)
+		})
+	}
+}

@@ -189,6 +189,9 @@ type serveSearchFlags struct {
 	lease  time.Duration
 	poll   time.Duration
 	name   string
+	// queueFlags are those of jobs, lease, poll and name given on the
+	// command line, which need a shared queue.
+	queueFlags []string
 }
 
 func newSearchServeCmd() *cobra.Command {
@@ -228,6 +231,11 @@ Errors have the proxy's body, {"error":{"message","type","param","code"}}.`,
   curl -s localhost:8789/jobs -d '{"task": "/srv/tasks/feelings.yaml"}'`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
+			for _, name := range []string{"jobs", "lease", "poll", "name"} {
+				if cmd.Flags().Changed(name) {
+					f.queueFlags = append(f.queueFlags, "--"+name)
+				}
+			}
 			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), f)
 		},
 	}
@@ -268,6 +276,9 @@ func runSearchServe(ctx context.Context, log io.Writer, f serveSearchFlags) erro
 			return err
 		}
 		shared = cfg.Store.Redis
+	}
+	if shared == nil && len(f.queueFlags) > 0 {
+		return fmt.Errorf("%s: only for sidecars sharing a queue; give --config FILE with a store.redis section", strings.Join(f.queueFlags, ", "))
 	}
 	if shared != nil && (f.jobs < 1 || f.lease < 300*time.Millisecond || f.poll <= 0) {
 		return fmt.Errorf("--jobs must be at least 1, --lease at least 300ms and --poll positive; got %d, %s, %s", f.jobs, f.lease, f.poll)
