@@ -66,11 +66,12 @@ func newFleet(t *testing.T, addrs []string, rdb redis.UniversalClient, steps int
 		client: &http.Client{Timeout: 5 * time.Second}, proxyChild: p}
 }
 
-// start runs sidecar name.
-func (f *fleet) start(name string) *child {
+// start runs sidecar name; extra flags override the test's.
+func (f *fleet) start(name string, extra ...string) *child {
 	f.t.Helper()
-	c := startStint(f.t, []string{"STINT_MODEL=" + modeltest.Path(f.t)}, "search", "serve", "--listen", "127.0.0.1:0", "--config", f.config,
-		"--proxy", f.proxy, "--data", f.t.TempDir(), "--checkpoint-every", "1", "--lease", fleetLease, "--poll", "100ms", "--name", name)
+	args := []string{"search", "serve", "--listen", "127.0.0.1:0", "--config", f.config,
+		"--proxy", f.proxy, "--data", f.t.TempDir(), "--checkpoint-every", "1", "--lease", fleetLease, "--poll", "100ms", "--name", name}
+	c := startStint(f.t, []string{"STINT_MODEL=" + modeltest.Path(f.t)}, append(args, extra...)...)
 	f.sidecars[name] = c
 	return c
 }
@@ -503,4 +504,32 @@ func TestQueueFlagsNeedASharedQueue(t *testing.T) {
 			assert.Contains(t, err.Error(), tt.want)
 		})
 	}
+}
+
+// TestFleetHandsBackOnShutdown: a sidecar stopped with SIGTERM hands its
+// running job back; another sidecar takes it at once (long before the
+// lease, here a minute) and finishes it from its checkpoint.
+func TestFleetHandsBackOnShutdown(t *testing.T) {
+	rs := redistest.Start(t)
+	// Statuses come every second with a long lease: a longer search, so
+	// one is seen in the middle.
+	f := newFleet(t, []string{rs.Addr}, rs.Client(t), 40)
+	f.start("sidecar-a", "--lease", "1m")
+	f.start("sidecar-b", "--lease", "1m")
+	job := f.submit()
+	var owner jobs.Status
+	f.await("the job in the middle", func(l []jobs.Status) bool {
+		owner = l[0]
+		return owner.State == jobs.Running && owner.Step >= 2 && owner.Step < owner.Steps-15
+	})
+	stopped := f.sidecars[owner.Sidecar]
+	require.NoError(t, stopped.cmd.Process.Signal(syscall.SIGTERM))
+	<-stopped.exited
+	assert.Contains(t, stopped.output(), "job="+job.ID+" handed back to the queue")
+	l := f.await("the job ended", allEnded)
+	assert.NotEqual(t, owner.Sidecar, l[0].Sidecar)
+	assert.Positive(t, l[0].Resumed)
+	f.submit() // the uninterrupted run to compare with
+	l = f.await("the second job ended", func(l []jobs.Status) bool { return len(l) == 2 && allEnded(l) })
+	f.checkExactlyOnce(l)
 }
