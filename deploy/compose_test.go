@@ -42,6 +42,12 @@ type composeService struct {
 	CapDrop         []string                 `yaml:"cap_drop"`
 	SecurityOpt     []string                 `yaml:"security_opt"`
 	StopGracePeriod string                   `yaml:"stop_grace_period"`
+	Deploy          *composeDeploy           `yaml:"deploy"`
+}
+
+// composeDeploy is a service's deploy section: how many replicas run.
+type composeDeploy struct {
+	Replicas int `yaml:"replicas"`
 }
 
 type composeBuild struct {
@@ -269,6 +275,13 @@ func TestCompose(t *testing.T) {
 				t.Errorf("service %s publishes %s on every interface; bind 127.0.0.1 and put TLS in front for more", name, p)
 			}
 		}
+	}
+	// The search sidecars: replicas sharing one queue on the Redis of the
+	// config they are given.
+	if s := c.Services["search"]; s.Deploy == nil || s.Deploy.Replicas < 2 {
+		t.Error("service search should run several replicas sharing the job queue")
+	} else if cfg := parseStintConfig(t, readFile(t, mustSource(t, "search", s, flagValue(s.Command, "--config")))); cfg.Store.Redis == nil {
+		t.Error("service search's --config has no store.redis: its replicas would not share a queue")
 	}
 	stint := stintServices(c)
 	if len(stint) != 4 {

@@ -454,12 +454,24 @@ func TestKubernetesManifests(t *testing.T) {
 		t.Error("the Kubernetes config should name several Redis Cluster seeds under store.redis.addrs")
 	}
 
-	// The sidecar: one replica that owns its volume, reaching the proxies
-	// through their Service.
-	if search.Spec.Replicas == nil || *search.Spec.Replicas != 1 || search.Spec.Strategy.Type != appsv1.RecreateDeploymentStrategyType {
-		t.Error("stint-search must run one replica with the Recreate strategy (one process owns the job store)")
+	// The sidecars: several replicas sharing one job queue on the proxies'
+	// Redis (their config's store.redis), reaching the proxies through
+	// their Service.
+	if search.Spec.Replicas == nil || *search.Spec.Replicas < 2 || search.Spec.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType {
+		t.Error("stint-search should run several replicas sharing the queue, replaced in a rolling update")
 	}
 	sc := search.Spec.Template.Spec.Containers[0]
+	if got := flagValue(sc.Args, "--config"); got != mountPath(sc, "config")+"/stint.yaml" {
+		t.Errorf("stint-search --config %q, want the proxies' config mounted from ConfigMap stint-config", got)
+	}
+	if !slices.ContainsFunc(sc.Env, func(e corev1.EnvVar) bool { return e.Name == "STINT_REDIS_PASSWORD" }) {
+		t.Error("stint-search needs STINT_REDIS_PASSWORD, the password_env of store.redis")
+	}
+	for _, v := range search.Spec.Template.Spec.Volumes {
+		if v.Name == "data" && v.EmptyDir == nil {
+			t.Error("stint-search's data volume should be an emptyDir: its state is in Redis, and replicas cannot share one ReadWriteOnce claim")
+		}
+	}
 	if got, want := flagValue(sc.Args, "--proxy"), fmt.Sprintf("http://%s:%d/v1", svc.Name, svc.Spec.Ports[0].Port); got != want {
 		t.Errorf("stint-search --proxy %q, want the proxies' Service %q", got, want)
 	}

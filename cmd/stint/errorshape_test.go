@@ -30,7 +30,7 @@ var (
 	errorTypes = map[string]bool{"invalid_request_error": true, "authentication_error": true, "permission_error": true,
 		"rate_limit_error": true, "upstream_error": true, "cache_error": true, "server_error": true}
 	errorCodes = map[string]bool{"unknown_url": true, "method_not_allowed": true, "invalid_json": true, "invalid_value": true,
-		"body_too_large": true, "model_not_routed": true, "run_not_found": true, "job_not_found": true,
+		"body_too_large": true, "model_not_routed": true, "run_not_found": true, "job_not_found": true, "output_not_found": true, "store_unavailable": true,
 		"context_length_exceeded": true, "internal_error": true, "missing_key": true, "invalid_key": true, "admin_off": true, "spend_off": true}
 )
 
@@ -123,6 +123,8 @@ func TestErrorsShareOneShape(t *testing.T) {
 		{"sidecar: unknown field", sidecar.URL, "POST", "/jobs", `{"taks":"x.yaml"}`, 400, "invalid_value"},
 		{"sidecar: no task", sidecar.URL, "POST", "/jobs", `{}`, 400, "invalid_value"},
 		{"sidecar: unknown job", sidecar.URL, "GET", "/jobs/nothing-here", "", 404, "job_not_found"},
+		{"sidecar: unknown output", sidecar.URL, "GET", "/jobs/nothing-here/out/secrets.txt", "", 404, "output_not_found"},
+		{"sidecar: output of an unknown job", sidecar.URL, "GET", "/jobs/nothing-here/out/results.json", "", 404, "job_not_found"},
 		{"local: unknown path", local.URL, "GET", "/v2/nothing", "", 404, "unknown_url"},
 		{"local: wrong method", local.URL, "GET", "/v1/completions", "", 405, "method_not_allowed"},
 		{"local: not JSON", local.URL, "POST", "/v1/completions", "{not json", 400, "invalid_json"},

@@ -19,6 +19,7 @@ import (
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/searcher/jobs"
+	"github.com/stintlab/stint/searcher/jobs/redisjobs"
 	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/search"
 	"github.com/stintlab/stint/searcher/task"
@@ -193,55 +194,115 @@ func (optionalFloat) Type() string { return "usd" }
 // files give it (deploy/compose.yaml, deploy/k8s/search.yaml).
 const defaultSearchListen = "127.0.0.1:8789"
 
+// serveSearchFlags are the settings of `stint search serve`.
+type serveSearchFlags struct {
+	listen, data, model string
+	remote              proxyFlags
+	every               int
+	price               search.PriceOverride
+	// config, when its store.redis is set, puts the jobs on Redis, shared
+	// by every sidecar given the same; jobs, lease, poll and name are
+	// this sidecar's part in that queue.
+	config string
+	jobs   int
+	lease  time.Duration
+	poll   time.Duration
+	name   string
+	// queueFlags are those of jobs, lease, poll and name given on the
+	// command line, which need a shared queue.
+	queueFlags []string
+}
+
 func newSearchServeCmd() *cobra.Command {
-	var listen, data, model string
-	var remote proxyFlags
-	var every int
-	var price search.PriceOverride
+	var f serveSearchFlags
 	cmd := &cobra.Command{
 		Use:   "serve",
 		Short: "Run the search sidecar: an HTTP API to submit, watch and cancel searches",
-		Long: `Run searches submitted over HTTP, one at a time, through the proxy:
+		Long: `Run searches submitted over HTTP through the proxy:
 
   POST /jobs              {"task": "/path/task.yaml", "run": "ID", "over_cap": false}
   GET  /jobs              every job, newest first
-  GET  /jobs/{id}         state, step, best prompt so far (by dev accuracy), accuracies, calls, cache share, spend
+  GET  /jobs/{id}         state, step, best prompt so far (by dev accuracy), accuracies, calls, cache share, spend, sidecar
+  GET  /jobs/{id}/history the learning curve so far
+  GET  /jobs/{id}/out/results.json   (also history.csv, report.md) once it is done
   POST /jobs/{id}/cancel
 
-Jobs and their outputs are kept under --data; a job that was running when
-the sidecar stopped resumes from its last checkpoint when it starts again.
+Without --config (or with a config that has no store.redis), jobs and their
+outputs are kept under --data, run one at a time, and a job that was
+running when the sidecar stopped resumes from its last checkpoint when it
+starts again.
+
+With --config FILE whose store.redis names a Redis or Redis Cluster (the
+proxy's section, same shape), every sidecar given it shares one job queue:
+each runs up to --jobs searches at once, every one answers the API for
+every job, and a sidecar that dies loses its jobs' claims after --lease;
+another sidecar resumes them from their last checkpoint (kept in Redis,
+compressed) and their results are those of an uninterrupted run. Task
+paths must be readable at the same path on every sidecar.
+
 The team key is --key or $STINT_KEY. --input-price and --output-price
 override every task's prices for its forecast, as for "stint search run"; a
 job whose task has a spend cap and no price is refused unless over_cap.
 Errors have the proxy's body, {"error":{"message","type","param","code"}}.`,
 		Example: `  stint search serve
   STINT_KEY=... stint search serve --listen 0.0.0.0:8789 --proxy http://stint:8787 --data /var/lib/stint-search
+  STINT_KEY=... stint search serve --config /etc/stint/stint.yaml --jobs 2 --listen 0.0.0.0:8789 --proxy http://stint:8787
   curl -s localhost:8789/jobs -d '{"task": "/srv/tasks/feelings.yaml"}'`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			api, err := remote.apiBase()
-			if err != nil {
-				return err
+			for _, name := range []string{"jobs", "lease", "poll", "name"} {
+				if cmd.Flags().Changed(name) {
+					f.queueFlags = append(f.queueFlags, "--"+name)
+				}
 			}
-			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), listen, api, data, model, remote.keyOf(os.Getenv), every, price)
+			return runSearchServe(cmd.Context(), cmd.ErrOrStderr(), f)
 		},
 	}
 	fl := cmd.Flags()
-	fl.StringVar(&listen, "listen", defaultSearchListen, "address of the job API")
-	remote.register(fl)
-	fl.StringVar(&data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
-	fl.StringVar(&model, "model", "", "GGUF model for the policy's backbone")
-	fl.IntVar(&every, "checkpoint-every", 0, "checkpoint every N steps")
-	priceFlags(fl, &price)
+	fl.StringVar(&f.listen, "listen", defaultSearchListen, "address of the job API")
+	f.remote.register(fl)
+	fl.StringVar(&f.data, "data", "./stint-search-data", "directory for jobs, checkpoints and outputs")
+	fl.StringVar(&f.model, "model", "", "GGUF model for the policy's backbone")
+	fl.IntVar(&f.every, "checkpoint-every", 0, "checkpoint every N steps")
+	priceFlags(fl, &f.price)
+	fl.StringVar(&f.config, "config", "", "config file whose store.redis holds a job queue shared by several sidecars")
+	fl.IntVar(&f.jobs, "jobs", 1, "searches this sidecar runs at once from the shared queue")
+	fl.DurationVar(&f.lease, "lease", redisjobs.DefaultLease, "how long a job's claim holds without a heartbeat before another sidecar takes it")
+	fl.DurationVar(&f.poll, "poll", redisjobs.DefaultPoll, "how often an idle sidecar asks the shared queue for a job")
+	fl.StringVar(&f.name, "name", "", "this sidecar's name in the shared queue and on the operator page")
 	describeFlag(fl, "listen", "ADDR", "")
 	describeFlag(fl, "data", "DIR", "")
 	describeFlag(fl, "model", "FILE", "$STINT_MODEL, else the downloaded copy")
 	describeFlag(fl, "checkpoint-every", "N", "every tenth of the steps")
+	describeFlag(fl, "config", "FILE", "none: jobs kept under --data")
+	describeFlag(fl, "jobs", "N", "")
+	describeFlag(fl, "lease", "DURATION", "")
+	describeFlag(fl, "poll", "DURATION", "")
+	describeFlag(fl, "name", "NAME", "HOST-PID-RANDOM")
 	return cmd
 }
 
-func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, modelFlag, key string, every int, price search.PriceOverride) error {
-	modelPath, err := localmodel.Locate(modelFlag, os.Getenv)
+func runSearchServe(ctx context.Context, log io.Writer, f serveSearchFlags) error {
+	proxyURL, err := f.remote.apiBase()
+	if err != nil {
+		return err
+	}
+	key := f.remote.keyOf(os.Getenv)
+	var shared *RedisConfig
+	if f.config != "" {
+		cfg, err := LoadConfig(f.config)
+		if err != nil {
+			return err
+		}
+		shared = cfg.Store.Redis
+	}
+	if shared == nil && len(f.queueFlags) > 0 {
+		return fmt.Errorf("%s: only for sidecars sharing a queue; give --config FILE with a store.redis section", strings.Join(f.queueFlags, ", "))
+	}
+	if shared != nil && (f.jobs < 1 || f.lease < 300*time.Millisecond || f.poll <= 0) {
+		return fmt.Errorf("--jobs must be at least 1, --lease at least 300ms and --poll positive; got %d, %s, %s", f.jobs, f.lease, f.poll)
+	}
+	modelPath, err := localmodel.Locate(f.model, os.Getenv)
 	if err != nil {
 		return fmt.Errorf("the policy needs the local model as its backbone: %w", err)
 	}
@@ -249,19 +310,38 @@ func runSearchServe(ctx context.Context, log io.Writer, listen, proxyURL, data, 
 	if err != nil {
 		return err
 	}
-	mgr, err := jobs.Open(data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: every, Price: price, Backbone: backbone})
+	var svc jobs.Service
+	where := "data=" + f.data
+	if shared == nil {
+		mgr, err := jobs.Open(f.data, m, jobs.Options{Proxy: proxyURL, Key: key, CheckpointEvery: f.every, Price: f.price, Backbone: backbone})
+		if err != nil {
+			return err
+		}
+		defer mgr.Close()
+		svc = jobs.ManagerService(mgr)
+	} else {
+		rdb, err := shared.client(ctx)
+		if err != nil {
+			return err
+		}
+		defer rdb.Close()
+		q, err := redisjobs.Open(ctx, rdb, m, redisjobs.Options{Prefix: shared.prefix(), Name: f.name, Jobs: f.jobs, Lease: f.lease, Poll: f.poll,
+			Dir: f.data, Proxy: proxyURL, Key: key, CheckpointEvery: f.every, Price: f.price, Backbone: backbone, Log: log})
+		if err != nil {
+			return err
+		}
+		defer q.Close()
+		svc = q
+		where = fmt.Sprintf("queue=redis:%s name=%s jobs=%d", strings.Join(shared.Addrs, ","), q.Name(), f.jobs)
+	}
+	ln, err := net.Listen("tcp", f.listen)
 	if err != nil {
 		return err
 	}
-	defer mgr.Close()
-	ln, err := net.Listen("tcp", listen)
-	if err != nil {
-		return err
-	}
-	hs := &http.Server{Handler: mgr.Handler(), ReadHeaderTimeout: 30 * time.Second}
+	hs := &http.Server{Handler: jobs.NewHandler(svc), ReadHeaderTimeout: 30 * time.Second}
 	errc := make(chan error, 1)
 	go func() { errc <- hs.Serve(ln) }()
-	fmt.Fprintf(log, "stint search serve listening addr=%s data=%s proxy=%s\n", ln.Addr(), data, proxyURL)
+	fmt.Fprintf(log, "stint search serve listening addr=%s %s proxy=%s\n", ln.Addr(), where, proxyURL)
 	select {
 	case err := <-errc:
 		return err

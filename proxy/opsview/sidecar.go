@@ -32,6 +32,8 @@ type sidecarJob struct {
 	CacheShare float64 `json:"cache_share"`
 	SpentUSD   float64 `json:"spent_usd"`
 	Error      string  `json:"error"`
+	Sidecar    string  `json:"sidecar"`
+	Attempts   int     `json:"attempts"`
 }
 
 // errUnreachable marks a sidecar that did not answer.
@@ -58,7 +60,7 @@ func (v *View) searches(ctx context.Context) SearchView {
 	for _, j := range list.Jobs[:min(len(list.Jobs), v.o.MaxSearches)] {
 		l := SearchLine{ID: j.ID, Task: path.Base(j.Spec.Task), Run: j.Spec.Run, State: j.State, Step: j.Step, Steps: j.Steps,
 			BestPrompt: j.BestPrompt, TrainAcc: j.TrainAcc, DevAcc: j.DevAcc, Calls: j.Calls, CacheShare: j.CacheShare,
-			SpentUSD: j.SpentUSD, Error: j.Error}
+			SpentUSD: j.SpentUSD, Error: j.Error, Runner: j.Sidecar, Attempts: j.Attempts}
 		var h struct {
 			Points []CurvePoint `json:"points"`
 		}

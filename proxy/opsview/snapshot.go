@@ -161,6 +161,11 @@ type SearchLine struct {
 	CacheShare float64 `json:"cache_share"`
 	SpentUSD   float64 `json:"spent_usd"`
 	Error      string  `json:"error,omitempty"`
+	// Runner is the sidecar running the search (or that ran it last) when
+	// sidecars share one queue, and Attempts how many times a sidecar took
+	// it; "" and 0 on a single sidecar.
+	Runner   string `json:"runner,omitempty"`
+	Attempts int    `json:"attempts,omitempty"`
 	// Curve is the per-step history; CurveError says why it is missing.
 	Curve      []CurvePoint `json:"curve"`
 	CurveError string       `json:"curve_error,omitempty"`

@@ -6,7 +6,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"net/http"
 	"os"
 	"path/filepath"
 	"strconv"
@@ -52,11 +51,6 @@ func (m *Manager) History(id string) (History, error) {
 	return h, nil
 }
 
-func (m *Manager) serveHistory(w http.ResponseWriter, r *http.Request) {
-	h, err := m.History(r.PathValue("id"))
-	answer(w, http.StatusOK, h, err)
-}
-
 // readHistoryCSV reads a history.csv as search.WriteHistory writes it.
 func readHistoryCSV(path string) ([]search.Point, error) {
 	f, err := os.Open(path)
@@ -64,7 +58,13 @@ func readHistoryCSV(path string) ([]search.Point, error) {
 		return nil, err
 	}
 	defer f.Close()
-	cr := csv.NewReader(f)
+	return ParseHistoryCSV(f, path)
+}
+
+// ParseHistoryCSV reads a history.csv as search.WriteHistory writes it;
+// path names it in errors.
+func ParseHistoryCSV(r io.Reader, path string) ([]search.Point, error) {
+	cr := csv.NewReader(r)
 	cr.FieldsPerRecord = 6
 	head, err := cr.Read()
 	if err != nil {
@@ -122,10 +122,16 @@ func readCheckpointHistory(path string) ([]search.Point, error) {
 		return nil, err
 	}
 	defer f.Close()
+	return ParseCheckpointHistory(f, path)
+}
+
+// ParseCheckpointHistory reads only the history of a checkpoint
+// (search.WriteState's); path names it in errors.
+func ParseCheckpointHistory(r io.Reader, path string) ([]search.Point, error) {
 	var st struct {
 		History []search.Point `json:"history"`
 	}
-	if err := json.NewDecoder(f).Decode(&st); err != nil {
+	if err := json.NewDecoder(r).Decode(&st); err != nil {
 		return nil, fmt.Errorf("jobs: %s: %w", path, err)
 	}
 	if st.History == nil {

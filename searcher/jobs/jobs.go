@@ -77,10 +77,17 @@ type Status struct {
 	// it the floor.
 	FlooredShare float64 `json:"floored_share"`
 	// Resumed is the step of the checkpoint the job last resumed from.
-	Resumed int       `json:"resumed_after_step,omitempty"`
-	Error   string    `json:"error,omitempty"`
-	Created time.Time `json:"created"`
-	Updated time.Time `json:"updated"`
+	Resumed int `json:"resumed_after_step,omitempty"`
+	// Sidecar names the sidecar that runs the job, or ran it last, when
+	// sidecars share one queue (redisjobs); "" on a single sidecar.
+	Sidecar string `json:"sidecar,omitempty"`
+	// Attempts counts the times a sidecar took the job from the shared
+	// queue: 1 for a job that ran in one go, more for one resumed by
+	// another sidecar; 0 on a single sidecar.
+	Attempts int       `json:"attempts,omitempty"`
+	Error    string    `json:"error,omitempty"`
+	Created  time.Time `json:"created"`
+	Updated  time.Time `json:"updated"`
 }
 
 // Options configure a Manager.

@@ -24,8 +24,13 @@ type Job struct {
 	Out      string // the output directory
 	// Replay answers every call from the run's journal.
 	Replay bool
-	// Resume continues from Out/checkpoint.json.
+	// Resume continues from the last checkpoint (Out/checkpoint.json, or
+	// Checkpoints' when set).
 	Resume bool
+	// Checkpoints, when set, keeps the checkpoints instead of
+	// Out/checkpoint.json (a shared store, so another process can resume
+	// the search); nil means the file.
+	Checkpoints Checkpoints
 	// Price overrides the task's prices for the forecast; OverCap starts
 	// a search whose forecast is over the task's spend cap, or that has a
 	// cap and no price (see CheckCap).
@@ -76,6 +81,15 @@ type Outcome struct {
 	Partial bool
 }
 
+// Checkpoints keep a search's checkpoint where another process can read
+// it. Save replaces the last checkpoint with st (written by WriteState);
+// its error ends the search. Load returns the last one saved, or an error
+// wrapping fs.ErrNotExist when there is none.
+type Checkpoints interface {
+	Save(st *State) error
+	Load() (io.Reader, error)
+}
+
 // CheckpointFile is the checkpoint's name in a job's output directory.
 const CheckpointFile = "checkpoint.json"
 
@@ -105,7 +119,13 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 	var resume *State
 	var trainer *policy.Trainer
 	if j.Resume {
-		if resume, err = readCheckpoint(ckptPath, t); err != nil {
+		if j.Checkpoints != nil {
+			ckptPath = "the shared checkpoint"
+			resume, err = loadCheckpoint(j.Checkpoints, t)
+		} else {
+			resume, err = readCheckpoint(ckptPath, t)
+		}
+		if err != nil {
 			return oc, err
 		}
 		if trainer, err = policy.Load(resume.PolicyReader(), backbone); err != nil {
@@ -161,6 +181,9 @@ func RunJob(ctx context.Context, m *localmodel.Model, j Job, log io.Writer, prog
 		Task: t, Scorer: sc, Policy: Trainer{Trainer: trainer}, Vocab: vocab, SpendCapUSD: t.SpendCapUSD, Backbone: j.Backbone,
 		Resume: resume, StopAfter: j.StopAfter, CheckpointEvery: j.CheckpointEvery, Progress: progress, Memo: memo,
 		Checkpoint: func(st *State) error {
+			if j.Checkpoints != nil {
+				return j.Checkpoints.Save(st)
+			}
 			return policy.WriteFileAtomic(ckptPath, func(w io.Writer) error { return WriteState(w, st) })
 		},
 	})
@@ -209,6 +232,18 @@ func readCheckpoint(path string, t *task.Task) (*State, error) {
 	st, err := ReadState(f, t.Name, t.Seed)
 	if err != nil {
 		return nil, fmt.Errorf("search: resume %s: %w", path, err)
+	}
+	return st, nil
+}
+
+func loadCheckpoint(c Checkpoints, t *task.Task) (*State, error) {
+	r, err := c.Load()
+	if err != nil {
+		return nil, fmt.Errorf("search: resume: %w", err)
+	}
+	st, err := ReadState(r, t.Name, t.Seed)
+	if err != nil {
+		return nil, fmt.Errorf("search: resume from the shared checkpoint: %w", err)
 	}
 	return st, nil
 }
