@@ -94,6 +94,7 @@ func TestRealClientLibrary(t *testing.T) {
 		}
 	})
 	t.Run("chat", func(t *testing.T) {
+		//lint:ignore SA1019 max_tokens is the field of the wire format stint serves; the SDK sends it through MaxTokens
 		req := openai.ChatCompletionRequest{Model: upstreamtest.ModelSmall, MaxTokens: 7, Temperature: math.SmallestNonzeroFloat32, LogProbs: true, TopLogProbs: 3,
 			Messages: []openai.ChatCompletionMessage{{Role: openai.ChatMessageRoleUser, Content: "Which barge carries the queen?"}}}
 		a, err := client.CreateChatCompletion(ctx, req)
@@ -111,6 +112,7 @@ func TestRealClientLibrary(t *testing.T) {
 		if cs, ok := proxy.ParseCacheStatus(resp.Header()); !ok || !cs.Hit || cs.Fwd != "" {
 			t.Errorf("second chat call: Cache-Status %q, want stint's member with hit (RFC 9211 §2.1)", hdr)
 		}
+		//lint:ignore SA1019 max_tokens is the field of the wire format stint serves; the SDK sends it through MaxTokens
 		s, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{Model: req.Model, MaxTokens: 7, Temperature: req.Temperature, Messages: req.Messages, Stream: true})
 		if err != nil {
 			t.Fatal(err)

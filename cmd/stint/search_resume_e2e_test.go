@@ -147,14 +147,6 @@ func TestBudgetRefusalResumesAndReplays(t *testing.T) {
 	}
 }
 
-func quoteAll(args []string) []string {
-	out := make([]string, len(args))
-	for i, a := range args {
-		out[i] = shellQuote(a)
-	}
-	return out
-}
-
 // TestPrintedExampleRunsAsPrinted follows the help: in a directory laid out
 // as the repository root (the demo data in testdata/search), `stint search
 // example > task.yaml` and `stint search run task.yaml --out ./task-out`

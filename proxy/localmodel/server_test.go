@@ -487,6 +487,7 @@ func TestOpenAIClient(t *testing.T) {
 		t.Errorf("completion: %+v", cr)
 	}
 	st, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{
+		//lint:ignore SA1019 max_tokens is the field of the wire format stint serves; the SDK sends it through MaxTokens
 		Model: DefaultName, MaxTokens: 6, Seed: &seed,
 		Messages:      []openai.ChatCompletionMessage{{Role: openai.ChatMessageRoleUser, Content: "Hello"}},
 		StreamOptions: &openai.StreamOptions{IncludeUsage: true},
