@@ -300,19 +300,7 @@ func (m *Manager) run(ctx context.Context, id string) {
 	// be as exact, but they are in the cache too; the run goes on
 	// recording.
 	oc, err := search.RunJob(jctx, m.model, job, io.Discard, func(p search.Progress) {
-		m.update(id, func(s *Status) {
-			s.Phase = p.Phase
-			s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
-			if p.Phase != search.PhaseSearch {
-				return
-			}
-			s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
-			s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
-			s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
-			if p.ResumedAfter > 0 {
-				s.Resumed = p.ResumedAfter
-			}
-		})
+		m.update(id, func(s *Status) { s.Track(p) })
 		if p.Phase == search.PhaseSearch && p.Step%10 == 0 {
 			m.persist(id)
 		}
@@ -373,4 +361,21 @@ func (m *Manager) load(id string) (*Status, error) {
 		return nil, fmt.Errorf("jobs: %s: %w", id, err)
 	}
 	return &st, nil
+}
+
+// Track copies a running search's progress into its status: phase, calls,
+// cache share and spend always; step, accuracies and prompts in the
+// search's own phase.
+func (s *Status) Track(p search.Progress) {
+	s.Phase = p.Phase
+	s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
+	if p.Phase != search.PhaseSearch {
+		return
+	}
+	s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
+	s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
+	s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
+	if p.ResumedAfter > 0 {
+		s.Resumed = p.ResumedAfter
+	}
 }

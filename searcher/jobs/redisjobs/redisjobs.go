@@ -519,7 +519,7 @@ func (q *Queue) run(ctx context.Context, c *claim) {
 		Resume: c.resume, OverCap: st.Spec.OverCap, CheckpointEvery: q.o.CheckpointEvery, Price: q.o.Price, Backbone: q.o.Backbone,
 		Checkpoints: checkpoints{q: q, ctx: jctx, c: c}}
 	oc, err := search.RunJob(jctx, q.model, job, io.Discard, func(p search.Progress) {
-		r.update(func(s *jobs.Status) { progress(s, p) })
+		r.update(func(s *jobs.Status) { s.Track(p) })
 	})
 	cancel()
 	<-beatDone
@@ -558,21 +558,6 @@ func (q *Queue) run(ctx context.Context, c *claim) {
 			s.FlooredShare = res.FlooredShare()
 		})
 		q.finish(bg, c, r, jobs.Done, out)
-	}
-}
-
-// progress copies a search's progress into a status, as jobs.Manager does.
-func progress(s *jobs.Status, p search.Progress) {
-	s.Phase = p.Phase
-	s.Calls, s.CacheShare, s.SpentUSD, s.FlooredShare = p.Calls.Calls, p.Calls.CacheShare(), p.Calls.CostUSD, p.FlooredShare
-	if p.Phase != search.PhaseSearch {
-		return
-	}
-	s.Step, s.Steps, s.TrainAcc = p.Step, p.Steps, p.TrainAcc
-	s.BestPrompt, s.DevAcc, s.BestStep = p.Best.Prompt, p.Best.DevAcc, p.Best.Step
-	s.LatestPrompt, s.LatestDevAcc = p.Prompt, p.DevAcc
-	if p.ResumedAfter > 0 {
-		s.Resumed = p.ResumedAfter
 	}
 }
 
