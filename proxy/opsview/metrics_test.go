@@ -4,6 +4,9 @@ import (
 	"math"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 	dto "github.com/prometheus/client_model/go"
 )
@@ -17,9 +20,7 @@ func histogramOf(t *testing.T, buckets []float64, xs ...float64) *dto.Histogram 
 		h.Observe(x)
 	}
 	var m dto.Metric
-	if err := h.Write(&m); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Write(&m))
 	return m.GetHistogram()
 }
 
@@ -70,7 +71,6 @@ func TestHistogramsAddAcrossEndpoints(t *testing.T) {
 		t.Fatalf("count %d sum %v, want 4 and 0.7", h.count, h.sum)
 	}
 	// Rank 2 of 4 is the last of the first bucket.
-	if got := h.quantile(0.5); got == nil || math.Abs(*got-0.1) > 1e-12 {
-		t.Errorf("median %v, want 0.1", got)
-	}
+	got := h.quantile(0.5)
+	assert.False(t, got == nil || math.Abs(*got-0.1) > 1e-12, "median %v, want 0.1", got)
 }

@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/stintlab/stint/proxy/opsview"
@@ -40,9 +43,7 @@ func get(t *testing.T, srv *httptest.Server, path, auth string) (*http.Response,
 		req.Header.Set("Authorization", auth)
 	}
 	resp, err := srv.Client().Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return resp, string(b)
@@ -81,16 +82,10 @@ func TestPageNeedsAnAdminKey(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			resp, body := get(t, tt.srv, tt.path, tt.auth)
-			if resp.StatusCode != tt.want {
-				t.Fatalf("status %d (%s), want %d", resp.StatusCode, body, tt.want)
-			}
+			require.Equal(t, tt.want, resp.StatusCode, "status %d (%s), want %d", resp.StatusCode, body, tt.want)
 			ch := resp.Header.Get("WWW-Authenticate")
-			if tt.challenge != strings.HasPrefix(ch, `Basic realm="stint operator page"`) {
-				t.Errorf("WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
-			}
-			if tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys") {
-				t.Errorf("403 body %q does not say how to turn the page on", body)
-			}
+			assert.Equal(t, strings.HasPrefix(ch, `Basic realm="stint operator page"`), tt.challenge, "WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
+			assert.False(t, tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys"), "403 body %q does not say how to turn the page on", body)
 			if resp.Header.Get("Cache-Control") != "no-store" || !strings.Contains(resp.Header.Get("Content-Security-Policy"), "default-src 'none'") {
 				t.Errorf("headers %v: want no-store and a strict content security policy", resp.Header)
 			}
@@ -124,13 +119,9 @@ func TestAssetsAndTypes(t *testing.T) {
 func snapshot(t *testing.T, srv *httptest.Server) (opsview.Snapshot, string) {
 	t.Helper()
 	resp, body := get(t, srv, "/ui/snapshot.json", "Bearer "+adminKey)
-	if resp.StatusCode != http.StatusOK {
-		t.Fatalf("snapshot: %d %s", resp.StatusCode, body)
-	}
+	require.Equal(t, http.StatusOK, resp.StatusCode, "snapshot: %d %s", resp.StatusCode, body)
 	var s opsview.Snapshot
-	if err := json.Unmarshal([]byte(body), &s); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal([]byte(body), &s))
 	return s, body
 }
 
@@ -153,18 +144,14 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 		t.Fatalf("upstreams %+v, want %d", s.Upstreams, len(want))
 	}
 	for _, u := range s.Upstreams {
-		if u.Breaker != want[u.Name] {
-			t.Errorf("%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
-		}
+		assert.Equal(t, want[u.Name], u.Breaker, "%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
 		if (u.Name == "east") != (u.Trips != nil && *u.Trips == 3) {
 			t.Errorf("%s: trips %v", u.Name, u.Trips)
 		}
 	}
 	_, page := get(t, srv, "/ui", "Bearer "+adminKey)
 	for _, frag := range []string{`data-figure="breaker-east" data-value="open">open<`, `data-figure="breaker-west" data-value="none">no breaker<`, `data-figure="breaker-south" data-value="half-open"`} {
-		if !strings.Contains(page, frag) {
-			t.Errorf("page lacks %s", frag)
-		}
+		assert.Contains(t, page, frag, "page lacks %s", frag)
 	}
 }
 
@@ -172,9 +159,7 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 // in its address never shown.
 func TestSidecarStates(t *testing.T) {
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	down := "http://ops:sk-sidecar-secret@" + ln.Addr().String()
 	ln.Close() // nothing listens there now
 	tests := []struct {
@@ -195,9 +180,7 @@ func TestSidecarStates(t *testing.T) {
 				t.Errorf("page lacks %q / %q", tt.wantFigure, tt.wantText)
 			}
 			for _, secret := range []string{"sk-sidecar-secret", adminKey} {
-				if strings.Contains(page, secret) || strings.Contains(raw, secret) {
-					t.Errorf("%q leaked onto the page or snapshot", secret)
-				}
+				assert.False(t, strings.Contains(page, secret) || strings.Contains(raw, secret), "%q leaked onto the page or snapshot", secret)
 			}
 		})
 	}
