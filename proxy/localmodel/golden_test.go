@@ -4,6 +4,9 @@ import (
 	"math"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // The model's published greedy output: llama2.c doc/stories260K.md, for
@@ -35,9 +38,8 @@ func TestGoldenGreedy256(t *testing.T) {
 func TestFirstSentence(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "", "temperature": 0, "max_tokens": 20, "stop": "."})
-	if got, want := r.Choices[0].Text+".", "Once upon a time, there was a little girl named Lily."; got != want {
-		t.Errorf("got %q, want %q", got, want)
-	}
+	got, want := r.Choices[0].Text+".", "Once upon a time, there was a little girl named Lily."
+	assert.Equal(t, want, got, "got %q, want %q", got, want)
 }
 
 // TestLogprobsAreADistribution: over the full vocabulary the returned
@@ -52,9 +54,7 @@ func TestLogprobsAreADistribution(t *testing.T) {
 		t.Fatalf("got %d tokens, want 6", len(lp.Tokens))
 	}
 	for i, top := range lp.TopLogprobs {
-		if top.Len() != m.VocabSize() {
-			t.Fatalf("token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
-		}
+		require.Equal(t, m.VocabSize(), top.Len(), "token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
 		var sum float64
 		best, bestLP := "", math.Inf(-1)
 		for tok, v := range top.Map() {
@@ -63,9 +63,7 @@ func TestLogprobsAreADistribution(t *testing.T) {
 				best, bestLP = tok, v
 			}
 		}
-		if math.Abs(sum-1) > 1e-4 {
-			t.Errorf("token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
-		}
+		assert.LessOrEqual(t, math.Abs(sum-1), 1e-4, "token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
 		if best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i] {
 			t.Errorf("token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
 		}
