@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	openai "github.com/sashabaranov/go-openai"
 
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -37,9 +40,7 @@ func TestSDKCompletion(t *testing.T) {
 	long, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 30, Temperature: greedy, LogProbs: 5,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	if long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "" {
 		t.Errorf("object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	}
@@ -53,13 +54,10 @@ func TestSDKCompletion(t *testing.T) {
 	short, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 10, Temperature: greedy, LogProbs: 1,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	n := min(10, len(lc.LogProbs.Tokens))
-	if got, want := short.Choices[0].Text, strings.Join(lc.LogProbs.Tokens[:n], ""); got != want {
-		t.Errorf("10-token answer %q; want the first 10 tokens of the 30-token answer, %q", got, want)
-	}
+	got, want := short.Choices[0].Text, strings.Join(lc.LogProbs.Tokens[:n], "")
+	assert.Equal(t, want, got, "10-token answer %q; want the first 10 tokens of the 30-token answer, %q", got, want)
 
 	// Array prompt with n=2: index = prompt*n + j, and each prompt's
 	// choices match its single answer.
@@ -67,18 +65,14 @@ func TestSDKCompletion(t *testing.T) {
 	batch, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: prompts, MaxTokens: 8, Temperature: greedy, N: 2, LogProbs: 2,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	if len(batch.Choices) != 6 {
 		t.Fatalf("%d choices; want 6", len(batch.Choices))
 	}
 	promptTokens, completionTokens := 0, 0
 	for i, p := range prompts {
 		one, err := c.CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: p, MaxTokens: 8, Temperature: greedy})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		promptTokens += one.Usage.PromptTokens
 		for j := range 2 {
 			ch := batch.Choices[i*2+j]
@@ -99,30 +93,21 @@ func TestSDKCompletion(t *testing.T) {
 	// Errors decode as the SDK's APIError.
 	_, err = c.CreateCompletion(ctx, openai.CompletionRequest{Model: "quill-huge", Prompt: "x"})
 	var apiErr *openai.APIError
-	if !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusNotFound || apiErr.Code != "model_not_found" {
-		t.Errorf("unknown model: %v; want an APIError 404 model_not_found", err)
-	}
+	assert.False(t, !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusNotFound || apiErr.Code != "model_not_found", "unknown model: %v; want an APIError 404 model_not_found", err)
 	_, err = sdkClient(t, up, "wrong").CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: "x"})
-	if !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusUnauthorized {
-		t.Errorf("wrong key: %v; want an APIError 401", err)
-	}
+	assert.False(t, !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusUnauthorized, "wrong key: %v; want an APIError 401", err)
 	for _, r := range up.Requests() {
-		if got := r.Header.Get("Authorization"); got != "Bearer up-key" && got != "Bearer wrong" {
-			t.Errorf("request carried Authorization %q", got)
-		}
+		got := r.Header.Get("Authorization")
+		assert.False(t, got != "Bearer up-key" && got != "Bearer wrong", "request carried Authorization %q", got)
 	}
 }
 
 func checkSDKLogprobs(tb testing.TB, text string, lp openai.LogprobResult, k int) {
 	tb.Helper()
-	if strings.Join(lp.Tokens, "") != text {
-		tb.Errorf("tokens %q do not join to %q", lp.Tokens, text)
-	}
+	assert.Equal(tb, text, strings.Join(lp.Tokens, ""), "tokens %q do not join to %q", lp.Tokens, text)
 	off := 0
 	for i, tok := range lp.Tokens {
-		if lp.TextOffset[i] != off {
-			tb.Errorf("text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
-		}
+		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
 		off += len(tok)
 		top := lp.TopLogprobs[i]
 		if len(top) != k {
@@ -150,14 +135,10 @@ func TestSDKCompletionStream(t *testing.T) {
 		Temperature: greedy, N: 2, LogProbs: 3,
 	}
 	whole, err := c.CreateCompletion(ctx, req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	req.StreamOptions = &openai.StreamOptions{IncludeUsage: true}
 	stream, err := c.CreateCompletionStream(ctx, req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer stream.Close()
 	texts := map[int]string{}
 	tokens := map[int][]string{}
@@ -168,9 +149,7 @@ func TestSDKCompletionStream(t *testing.T) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if chunk.Usage != nil {
 			gotUsage = chunk.Usage
 			continue
@@ -204,9 +183,7 @@ func TestSDKChat(t *testing.T) {
 	resp, err := c.CreateChatCompletion(context.Background(), openai.ChatCompletionRequest{
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3, N: 2,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	if resp.Object != "chat.completion" || len(resp.Choices) != 2 {
 		t.Fatalf("object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
 	}
@@ -218,21 +195,15 @@ func TestSDKChat(t *testing.T) {
 		joined := ""
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
-			if string(tl.Bytes) != tl.Token {
-				t.Errorf("bytes %v do not spell %q", tl.Bytes, tl.Token)
-			}
+			assert.Equal(t, tl.Token, string(tl.Bytes), "bytes %v do not spell %q", tl.Bytes, tl.Token)
 			if len(tl.TopLogProbs) != 3 || tl.TopLogProbs[0].Token != tl.Token || tl.TopLogProbs[0].LogProb != tl.LogProb {
 				t.Errorf("token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
 			}
 		}
-		if joined != ch.Message.Content {
-			t.Errorf("tokens join to %q; content %q", joined, ch.Message.Content)
-		}
+		assert.Equal(t, ch.Message.Content, joined, "tokens join to %q; content %q", joined, ch.Message.Content)
 		total += len(ch.LogProbs.Content)
 	}
-	if resp.Choices[0].Message.Content != resp.Choices[1].Message.Content {
-		t.Errorf("greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
-	}
+	assert.Equal(t, resp.Choices[1].Message.Content, resp.Choices[0].Message.Content, "greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
 	if resp.Usage.CompletionTokens != total || resp.Usage.TotalTokens != resp.Usage.PromptTokens+total {
 		t.Errorf("usage %+v; want %d completion tokens", resp.Usage, total)
 	}
@@ -241,9 +212,7 @@ func TestSDKChat(t *testing.T) {
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3,
 		StreamOptions: &openai.StreamOptions{IncludeUsage: true},
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer stream.Close()
 	var content, role string
 	var toks []string
@@ -254,9 +223,7 @@ func TestSDKChat(t *testing.T) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if chunk.Usage != nil {
 			streamUsage = chunk.Usage
 		}
@@ -285,7 +252,6 @@ func TestSDKChat(t *testing.T) {
 	if streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content) {
 		t.Errorf("stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
 	}
-	if got := up.Calls().Chat; got != 2 {
-		t.Errorf("Calls().Chat = %d; want 2", got)
-	}
+	got := up.Calls().Chat
+	assert.Equal(t, 2, got, "Calls().Chat = %d; want 2", got)
 }

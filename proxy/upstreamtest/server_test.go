@@ -14,6 +14,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stretchr/testify/assert"
 
 	"github.com/stintlab/stint/proxy/sse"
@@ -73,37 +75,28 @@ func TestValidation(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			resp, body := post(t, up, tt.path, tt.body, nil)
-			if resp.StatusCode != tt.status {
-				t.Fatalf("status = %d; want %d (body %s)", resp.StatusCode, tt.status, body)
-			}
-			if ct := resp.Header.Get("Content-Type"); ct != "application/json" {
-				t.Errorf("Content-Type = %q; want application/json", ct)
-			}
-			if resp.Header.Get("x-request-id") == "" {
-				t.Error("no x-request-id header")
-			}
+			require.Equal(t, tt.status, resp.StatusCode, "status = %d; want %d (body %s)", resp.StatusCode, tt.status, body)
+			ct := resp.Header.Get("Content-Type")
+			assert.Equal(t, "application/json", ct, "Content-Type = %q; want application/json", ct)
+			assert.NotEqual(t, "", resp.Header.Get("x-request-id"), "no x-request-id header")
 			if tt.status == 200 {
 				return
 			}
 			var env errorEnvelope
-			if err := json.Unmarshal(body, &env); err != nil || env.Error == nil {
-				t.Fatalf("error body %s does not have the error shape (%v)", body, err)
-			}
+			err := json.Unmarshal(body, &env)
+			require.False(t, err != nil || env.Error == nil, "error body %s does not have the error shape (%v)", body, err)
 			e := env.Error
 			if e.Message == "" || e.Type != "invalid_request_error" {
 				t.Errorf("error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
 			}
-			if got := deref(e.Param); got != tt.param {
-				t.Errorf("param = %q; want %q", got, tt.param)
-			}
-			if got := string(e.Code); got != tt.code {
-				t.Errorf("code = %q; want %q", got, tt.code)
-			}
+			got := deref(e.Param)
+			assert.Equal(t, tt.param, got, "param = %q; want %q", got, tt.param)
+			got = string(e.Code)
+			assert.Equal(t, tt.code, got, "code = %q; want %q", got, tt.code)
 		})
 	}
-	if got := up.Prompts(); got != 4 {
-		t.Errorf("Prompts() = %d after four accepted requests; want 4 (refused ones count none)", got)
-	}
+	got := up.Prompts()
+	assert.Equal(t, 4, got, "Prompts() = %d after four accepted requests; want 4 (refused ones count none)", got)
 }
 
 func deref(s *string) string {
@@ -130,17 +123,12 @@ func TestRoutes(t *testing.T) {
 	for _, tt := range tests {
 		req, _ := http.NewRequest(tt.method, up.URL()+tt.path, nil)
 		resp, err := http.DefaultClient.Do(req)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		resp.Body.Close()
-		if resp.StatusCode != tt.status {
-			t.Errorf("%s %s: status %d; want %d", tt.method, tt.path, resp.StatusCode, tt.status)
-		}
+		assert.Equal(t, tt.status, resp.StatusCode, "%s %s: status %d; want %d", tt.method, tt.path, resp.StatusCode, tt.status)
 	}
-	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 1, Chat: 1, Models: 3, Other: 1}); got != want {
-		t.Errorf("Calls() = %+v; want %+v", got, want)
-	}
+	got, want := up.Calls(), (upstreamtest.Calls{Completions: 1, Chat: 1, Models: 3, Other: 1})
+	assert.True(t, got == want, "Calls() = %+v; want %+v", got, want)
 }
 
 func TestModelsList(t *testing.T) {
@@ -153,9 +141,7 @@ func TestModelsList(t *testing.T) {
 	} {
 		up := upstreamtest.New(tt.opts)
 		resp, err := http.Get(up.URL() + "/models")
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var list struct {
 			Object string `json:"object"`
 			Data   []struct {
@@ -166,15 +152,11 @@ func TestModelsList(t *testing.T) {
 		err = json.NewDecoder(resp.Body).Decode(&list)
 		resp.Body.Close()
 		up.Close()
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var got []string
 		for _, m := range list.Data {
 			got = append(got, m.ID)
-			if m.Object != "model" {
-				t.Errorf("model object = %q; want model", m.Object)
-			}
+			assert.Equal(t, "model", m.Object, "model object = %q; want model", m.Object)
 		}
 		if list.Object != "list" || !slices.Equal(got, tt.want) {
 			t.Errorf("models = %q (%s); want %q (list)", got, list.Object, tt.want)
@@ -201,22 +183,16 @@ func TestAuth(t *testing.T) {
 			h.Set("Authorization", tt.auth)
 		}
 		resp, b := post(t, up, "/completions", body, h)
-		if resp.StatusCode != tt.status {
-			t.Errorf("Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
-		}
+		assert.Equal(t, tt.status, resp.StatusCode, "Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
 		if tt.status == 401 {
 			var env errorEnvelope
-			if json.Unmarshal(b, &env) != nil || env.Error == nil || string(env.Error.Code) != "invalid_api_key" {
-				t.Errorf("401 body %s; want code invalid_api_key", b)
-			}
+			assert.False(t, json.Unmarshal(b, &env) != nil || env.Error == nil || string(env.Error.Code) != "invalid_api_key", "401 body %s; want code invalid_api_key", b)
 		}
 	}
-	if got := up.Calls().Completions; got != 4 {
-		t.Errorf("Calls().Completions = %d; want 4 (refused calls reached it too)", got)
-	}
-	if got := up.Prompts(); got != 1 {
-		t.Errorf("Prompts() = %d; want 1", got)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, 4, got, "Calls().Completions = %d; want 4 (refused calls reached it too)", got)
+	got = up.Prompts()
+	assert.Equal(t, 1, got, "Prompts() = %d; want 1", got)
 }
 
 func TestCountersRequestsReset(t *testing.T) {
@@ -229,13 +205,10 @@ func TestCountersRequestsReset(t *testing.T) {
 	var chat wire.ChatResponse
 	h := http.Header{"Authorization": {"Bearer team-key"}, "X-Trace": {"t1"}}
 	resp, _ := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"max_tokens":1}`, h)
-	if resp.StatusCode != 200 {
-		t.Fatalf("chat status %d", resp.StatusCode)
-	}
+	require.Equal(t, 200, resp.StatusCode, "chat status %d", resp.StatusCode)
 	_ = chat
-	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1}); got != want {
-		t.Errorf("Calls() = %+v; want %+v", got, want)
-	}
+	got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1})
+	assert.True(t, got == want, "Calls() = %+v; want %+v", got, want)
 	if got, want := up.Calls().Total(), 4; got != want {
 		t.Errorf("Calls().Total() = %d; want %d", got, want)
 	}
@@ -258,13 +231,10 @@ func TestCountersRequestsReset(t *testing.T) {
 	last.Body[0] = 'X'
 	last.Header.Set("Authorization", "changed")
 	again := up.Requests()[3]
-	if again.Body[0] != '{' || again.Header.Get("Authorization") != "Bearer team-key" {
-		t.Error("Requests() returned the server's own slices or headers, not copies")
-	}
+	assert.False(t, again.Body[0] != '{' || again.Header.Get("Authorization") != "Bearer team-key", "Requests() returned the server's own slices or headers, not copies")
 	up.Reset()
-	if got := up.Calls(); got != (upstreamtest.Calls{}) {
-		t.Errorf("after Reset, Calls() = %+v; want zero", got)
-	}
+	got = up.Calls()
+	assert.True(t, got == (upstreamtest.Calls{}), "after Reset, Calls() = %+v; want zero", got)
 	if up.Prompts() != 0 || len(up.Requests()) != 0 {
 		t.Errorf("after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
 	}
@@ -284,9 +254,8 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	}
 	lc := long.Choices[0]
 	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
-	if got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)}); got != want {
-		t.Errorf("usage = %+v; want %+v", got, want)
-	}
+	got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)})
+	assert.True(t, got == want, "usage = %+v; want %+v", got, want)
 	// Same prompt, same answer; fewer tokens give a prefix.
 	for _, n := range []int{0, 1, 5, 16} {
 		var short wire.CompletionResponse
@@ -334,9 +303,7 @@ func TestModelsDiffer(t *testing.T) {
 	var a, b wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":"hive","max_tokens":30,"temperature":0}`, &a)
 	postOK(t, up, "/completions", `{"model":"quill-large","prompt":"hive","max_tokens":30,"temperature":0}`, &b)
-	if a.Choices[0].Text == b.Choices[0].Text {
-		t.Errorf("both models answered %q; want different answers", a.Choices[0].Text)
-	}
+	assert.NotEqual(t, b.Choices[0].Text, a.Choices[0].Text, "both models answered %q; want different answers", a.Choices[0].Text)
 }
 
 func TestArrayPromptsAndIndexes(t *testing.T) {
@@ -359,17 +326,13 @@ func TestArrayPromptsAndIndexes(t *testing.T) {
 	}
 	completionTokens := 0
 	for i, c := range batch.Choices {
-		if c.Index != i {
-			t.Errorf("choice %d has index %d", i, c.Index)
-		}
-		if want := single[c.Index/2]; c.Text != want {
-			t.Errorf("choice %d (prompt %d) = %q; want %q", c.Index, c.Index/2, c.Text, want)
-		}
+		assert.Equal(t, i, c.Index, "choice %d has index %d", i, c.Index)
+		want := single[c.Index/2]
+		assert.Equal(t, want, c.Text, "choice %d (prompt %d) = %q; want %q", c.Index, c.Index/2, c.Text, want)
 		completionTokens += len(c.Logprobs.Tokens)
 	}
-	if got, want := *batch.Usage, wire.NewUsage(promptTokens, completionTokens); got != want {
-		t.Errorf("usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
-	}
+	got, want := *batch.Usage, wire.NewUsage(promptTokens, completionTokens)
+	assert.True(t, got == want, "usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
 }
 
 func TestTokenIDPrompts(t *testing.T) {
@@ -383,9 +346,7 @@ func TestTokenIDPrompts(t *testing.T) {
 	if ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive") {
 		t.Errorf("token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
 	}
-	if ids.Usage.PromptTokens != 2 {
-		t.Errorf("prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
-	}
+	assert.Equal(t, 2, ids.Usage.PromptTokens, "prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
 	if len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3 {
@@ -400,9 +361,7 @@ func TestStopSequences(t *testing.T) {
 	var full wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, ""), &full)
 	toks := full.Choices[0].Logprobs.Tokens
-	if len(toks) < 6 {
-		t.Fatalf("answer %q too short for the test", toks)
-	}
+	require.GreaterOrEqual(t, len(toks), 6, "answer %q too short for the test", toks)
 	tests := []struct {
 		name string
 		stop string
@@ -456,9 +415,7 @@ func TestEndsOnItsOwn(t *testing.T) {
 			t.Errorf("finish_reason %q", *ch.FinishReason)
 		}
 	}
-	if stops == 0 || stops == 40 {
-		t.Errorf("%d of 40 answers ended on their own; want some but not all", stops)
-	}
+	assert.False(t, stops == 0 || stops == 40, "%d of 40 answers ended on their own; want some but not all", stops)
 }
 
 func TestSampling(t *testing.T) {
@@ -474,23 +431,15 @@ func TestSampling(t *testing.T) {
 		return out
 	}
 	a, b := text(`,"temperature":1`), text("") // the default temperature is 1
-	if slices.Equal(a, b) {
-		t.Errorf("two unseeded sampled calls both answered %q; want them to differ", a)
-	}
+	assert.False(t, slices.Equal(a, b), "two unseeded sampled calls both answered %q; want them to differ", a)
 	if a[0] == a[1] && a[1] == a[2] {
 		t.Errorf("n=3 sampled choices are all %q; want them to differ", a[0])
 	}
 	s1, s2, s3 := text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":8`)
-	if !slices.Equal(s1, s2) {
-		t.Errorf("seed 7 answered %q, then %q; want the same", s1, s2)
-	}
-	if slices.Equal(s1, s3) {
-		t.Errorf("seeds 7 and 8 both answered %q; want them to differ", s1)
-	}
+	assert.True(t, slices.Equal(s1, s2), "seed 7 answered %q, then %q; want the same", s1, s2)
+	assert.False(t, slices.Equal(s1, s3), "seeds 7 and 8 both answered %q; want them to differ", s1)
 	g1, g2 := text(`,"temperature":0`), text(`,"temperature":0,"seed":99`)
-	if !slices.Equal(g1, g2) || g1[0] != g1[1] {
-		t.Errorf("greedy answers %q and %q; want all equal", g1, g2)
-	}
+	assert.False(t, !slices.Equal(g1, g2) || g1[0] != g1[1], "greedy answers %q and %q; want all equal", g1, g2)
 }
 
 // assembled is a streamed choice put back together.
@@ -508,20 +457,15 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	postOK(t, up, "/completions", base+`}`, &whole)
 
 	resp, body := post(t, up, "/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
-	if ct := resp.Header.Get("Content-Type"); !strings.HasPrefix(ct, "text/event-stream") {
-		t.Fatalf("Content-Type = %q; want text/event-stream", ct)
-	}
+	ct := resp.Header.Get("Content-Type")
+	require.True(t, strings.HasPrefix(ct, "text/event-stream"), "Content-Type = %q; want text/event-stream", ct)
 	events := streamEvents(t, body)
 	got := map[int]*assembled{}
 	var streamUsage *wire.Usage
 	for i, data := range events {
 		var c wire.CompletionResponse
-		if err := json.Unmarshal(data, &c); err != nil {
-			t.Fatalf("event %d %s: %v", i, data, err)
-		}
-		if c.Object != "text_completion" {
-			t.Errorf("event %d object %q", i, c.Object)
-		}
+		require.NoError(t, json.Unmarshal(data, &c), "event %d %s", i, data)
+		assert.Equal(t, "text_completion", c.Object, "event %d object %q", i, c.Object)
 		if c.Usage != nil {
 			if i != len(events)-1 || len(c.Choices) != 0 {
 				t.Errorf("usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
@@ -538,12 +482,8 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 			a = &assembled{}
 			got[ch.Index] = a
 		}
-		if a.finish != "" {
-			t.Errorf("choice %d has a chunk after its finish_reason", ch.Index)
-		}
-		if ch.Logprobs == nil {
-			t.Fatalf("event %d: logprobs null", i)
-		}
+		assert.Equal(t, "", a.finish, "choice %d has a chunk after its finish_reason", ch.Index)
+		require.NotNil(t, ch.Logprobs, "event %d: logprobs null", i)
 		for j, off := range ch.Logprobs.TextOffset {
 			if off != len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")) {
 				t.Errorf("choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
@@ -568,9 +508,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 		}
 		wl, _ := json.Marshal(w.Logprobs)
 		al, _ := json.Marshal(a.lp)
-		if string(wl) != string(al) {
-			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
-		}
+		assert.Equal(t, string(al), string(wl), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
 	if streamUsage == nil || *streamUsage != *whole.Usage {
 		t.Errorf("stream usage %+v; want %+v", streamUsage, *whole.Usage)
@@ -581,9 +519,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	for _, data := range streamEvents(t, body) {
 		var c wire.CompletionResponse
 		json.Unmarshal(data, &c)
-		if c.Usage != nil || len(c.Choices) != 1 {
-			t.Errorf("event %s without include_usage; want one choice and no usage", data)
-		}
+		assert.False(t, c.Usage != nil || len(c.Choices) != 1, "event %s without include_usage; want one choice and no usage", data)
 	}
 }
 
@@ -604,9 +540,7 @@ func TestChat(t *testing.T) {
 	var joined string
 	for i, tl := range lc.Logprobs.Content {
 		joined += tl.Token
-		if string(bytesOf(tl.Bytes)) != tl.Token {
-			t.Errorf("token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
-		}
+		assert.Equal(t, tl.Token, string(bytesOf(tl.Bytes)), "token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
 		if len(tl.TopLogprobs) != 4 {
 			t.Fatalf("token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
 		}
@@ -616,20 +550,12 @@ func TestChat(t *testing.T) {
 		var mass float64
 		for j, top := range tl.TopLogprobs {
 			mass += exp(top.Logprob)
-			if j > 0 && top.Logprob >= tl.TopLogprobs[j-1].Logprob {
-				t.Errorf("token %d: top_logprobs not in decreasing order", i)
-			}
-			if string(bytesOf(top.Bytes)) != top.Token {
-				t.Errorf("top entry bytes %v; want the bytes of %q", top.Bytes, top.Token)
-			}
+			assert.False(t, j > 0 && top.Logprob >= tl.TopLogprobs[j-1].Logprob, "token %d: top_logprobs not in decreasing order", i)
+			assert.Equal(t, top.Token, string(bytesOf(top.Bytes)), "top entry bytes %v; want the bytes of %q", top.Bytes, top.Token)
 		}
-		if mass > 1 {
-			t.Errorf("token %d: top probabilities sum to %v", i, mass)
-		}
+		assert.LessOrEqual(t, mass, float64(1), "token %d: top probabilities sum to %v", i, mass)
 	}
-	if joined != lc.Message.Content {
-		t.Errorf("logprob tokens join to %q; content %q", joined, lc.Message.Content)
-	}
+	assert.Equal(t, lc.Message.Content, joined, "logprob tokens join to %q; content %q", joined, lc.Message.Content)
 	n := len(short.Choices[0].Logprobs.Content)
 	if !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop") {
 		t.Errorf("5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
@@ -673,12 +599,8 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	var streamUsage *wire.Usage
 	for i, data := range events {
 		var c wire.ChatResponse
-		if err := json.Unmarshal(data, &c); err != nil {
-			t.Fatal(err)
-		}
-		if c.Object != "chat.completion.chunk" {
-			t.Errorf("object %q", c.Object)
-		}
+		require.NoError(t, json.Unmarshal(data, &c))
+		assert.Equal(t, "chat.completion.chunk", c.Object, "object %q", c.Object)
 		if c.Usage != nil {
 			if i != len(events)-1 || len(c.Choices) != 0 {
 				t.Errorf("usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
@@ -693,9 +615,7 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 			got[ch.Index] = a
 		}
 		a.chunks++
-		if ch.Delta == nil {
-			t.Fatalf("chunk %s has no delta", data)
-		}
+		require.NotNil(t, ch.Delta, "chunk %s has no delta", data)
 		if a.chunks == 1 && ch.Delta.Role != "assistant" {
 			t.Errorf("choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
 		}
@@ -719,9 +639,7 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 		}
 		al, _ := json.Marshal(a.tokens)
 		wl, _ := json.Marshal(w.Logprobs.Content)
-		if string(al) != string(wl) {
-			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
-		}
+		assert.Equal(t, string(wl), string(al), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
 	if streamUsage == nil || *streamUsage != *whole.Usage {
 		t.Errorf("stream usage %+v; want %+v", streamUsage, whole.Usage)
@@ -759,9 +677,8 @@ func TestFaultStatus(t *testing.T) {
 
 	up.FailNext(5, upstreamtest.Fault{Status: 500})
 	up.ClearFaults()
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("after ClearFaults: %d; want 200", resp.StatusCode)
-	}
+	resp, _ = post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, resp.StatusCode, "after ClearFaults: %d; want 200", resp.StatusCode)
 }
 
 func TestFaultRatio(t *testing.T) {
@@ -773,13 +690,11 @@ func TestFaultRatio(t *testing.T) {
 		resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil)
 		got = append(got, resp.StatusCode)
 	}
-	if want := []int{200, 502, 200, 502, 200, 502}; !slices.Equal(got, want) {
-		t.Errorf("statuses %v; want %v", got, want)
-	}
+	want := []int{200, 502, 200, 502, 200, 502}
+	assert.True(t, slices.Equal(got, want), "statuses %v; want %v", got, want)
 	up.Reset()
-	if resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil); resp.StatusCode != 200 {
-		t.Errorf("after Reset: %d; want 200", resp.StatusCode)
-	}
+	resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil)
+	assert.Equal(t, 200, resp.StatusCode, "after Reset: %d; want 200", resp.StatusCode)
 }
 
 // do sends a completions request under ctx and returns the response with
@@ -807,17 +722,13 @@ func TestFaultHangAndDelay(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 50*time.Millisecond)
 		_, _, err := do(ctx, up, body)
 		cancel()
-		if !errors.Is(err, context.DeadlineExceeded) {
-			t.Errorf("fault %+v: error %v; want the client's deadline", f, err)
-		}
+		assert.ErrorIs(t, err, context.DeadlineExceeded, "fault %+v: error %v; want the client's deadline", f, err)
 	}
 	up.FailNext(1, upstreamtest.Fault{Delay: time.Millisecond})
-	if resp, _, err := do(context.Background(), up, body); err != nil || resp.StatusCode != 200 {
-		t.Errorf("short delay: %v; want a normal answer", err)
-	}
-	if got := up.Calls().Completions; got != 3 {
-		t.Errorf("Calls().Completions = %d; want 3", got)
-	}
+	resp, _, err := do(context.Background(), up, body)
+	assert.False(t, err != nil || resp.StatusCode != 200, "short delay: %v; want a normal answer", err)
+	got := up.Calls().Completions
+	assert.Equal(t, 3, got, "Calls().Completions = %d; want 3", got)
 }
 
 func TestFaultHangReleasedByClose(t *testing.T) {
@@ -829,9 +740,7 @@ func TestFaultHangReleasedByClose(t *testing.T) {
 		_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
 		errc <- err
 	}()
-	if err := up.AwaitHeld(context.Background(), 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(context.Background(), 1))
 	up.Release() // now it hangs in the fault
 	up.Close()   // must not wait for the hanging call forever
 	<-errc
@@ -841,12 +750,10 @@ func TestFaultReset(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	up.FailNext(1, upstreamtest.Fault{Reset: true})
-	if _, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err == nil {
-		t.Error("reset connection: no error; want the client to see the connection drop")
-	}
-	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
-		t.Errorf("next call: %v; want a normal answer", err)
-	}
+	_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.Error(t, err, "reset connection: no error; want the client to see the connection drop")
+	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.False(t, err != nil || resp.StatusCode != 200, "next call: %v; want a normal answer", err)
 }
 
 func TestFaultCut(t *testing.T) {
@@ -859,28 +766,20 @@ func TestFaultCut(t *testing.T) {
 	up.FailNext(1, upstreamtest.Fault{Cut: 3})
 	req, _ := http.NewRequest(http.MethodPost, up.URL()+"/completions", strings.NewReader(`{"model":"quill-small","prompt":"hi","stream":true,"max_tokens":10}`))
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	r := sse.NewReader(resp.Body)
 	n := 0
 	for {
 		ev, err := r.Next()
 		if err != nil {
-			if !errors.Is(err, io.ErrUnexpectedEOF) {
-				t.Errorf("cut stream ended with %v; want an unexpected EOF", err)
-			}
+			assert.ErrorIs(t, err, io.ErrUnexpectedEOF, "cut stream ended with %v; want an unexpected EOF", err)
 			break
 		}
-		if ev.IsDone() {
-			t.Fatal("cut stream sent [DONE]")
-		}
+		require.False(t, ev.IsDone(), "cut stream sent [DONE]")
 		n++
 	}
-	if n != 3 {
-		t.Errorf("cut stream gave %d events; want 3", n)
-	}
+	assert.Equal(t, 3, n, "cut stream gave %d events; want 3", n)
 }
 
 func TestBlockRelease(t *testing.T) {
@@ -903,38 +802,29 @@ func TestBlockRelease(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, callers); err != nil {
-		t.Fatal(err)
-	}
-	if got := up.Held(); got != callers {
-		t.Errorf("Held() = %d; want %d", got, callers)
-	}
-	if got := up.Calls().Completions; got != callers {
-		t.Errorf("held calls counted %d; want %d (counted on arrival)", got, callers)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, callers))
+	got := up.Held()
+	assert.Equal(t, callers, got, "Held() = %d; want %d", got, callers)
+	got = up.Calls().Completions
+	assert.Equal(t, callers, got, "held calls counted %d; want %d (counted on arrival)", got, callers)
 	select {
 	case s := <-results:
 		t.Fatalf("a held call answered (%d) before Release", s)
 	default:
 	}
-	if up.Prompts() != 0 {
-		t.Errorf("Prompts() = %d while held; want 0", up.Prompts())
-	}
+	assert.Equal(t, 0, up.Prompts(), "Prompts() = %d while held; want 0", up.Prompts())
 	up.Release()
 	wg.Wait()
 	close(results)
 	for s := range results {
-		if s != 200 {
-			t.Errorf("released call: status %d", s)
-		}
+		assert.Equal(t, 200, s, "released call: status %d", s)
 	}
 	if up.Held() != 0 || up.Prompts() != callers {
 		t.Errorf("after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
 	}
 	// Not blocked any more.
-	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
-		t.Errorf("call after Release: %v", err)
-	}
+	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.False(t, err != nil || resp.StatusCode != 200, "call after Release: %v", err)
 }
 
 func TestHeldCallGivesUp(t *testing.T) {
@@ -948,24 +838,18 @@ func TestHeldCallGivesUp(t *testing.T) {
 		_, _, err := do(ctx, up, `{"model":"quill-small","prompt":"hi"}`)
 		errc <- err
 	}()
-	if err := up.AwaitHeld(context.Background(), 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(context.Background(), 1))
 	cancel()
-	if err := <-errc; !errors.Is(err, context.Canceled) {
-		t.Errorf("error %v; want context.Canceled", err)
-	}
+	err := <-errc
+	assert.ErrorIs(t, err, context.Canceled, "error %v; want context.Canceled", err)
 	// The server notices the client leaving and stops holding the call.
 	waitCtx, stop := context.WithTimeout(context.Background(), 10*time.Second)
 	defer stop()
-	if err := up.AwaitHeld(waitCtx, 0); err != nil {
-		t.Fatalf("held call not released after the client left: %v", err)
-	}
+	require.NoError(t, up.AwaitHeld(waitCtx, 0), "held call not released after the client left")
 	short, stop2 := context.WithCancel(context.Background())
 	stop2()
-	if err := up.AwaitHeld(short, 1); !errors.Is(err, context.Canceled) {
-		t.Errorf("AwaitHeld with a done context: %v; want context.Canceled", err)
-	}
+	err = up.AwaitHeld(short, 1)
+	assert.ErrorIs(t, err, context.Canceled, "AwaitHeld with a done context: %v; want context.Canceled", err)
 }
 
 // TestTopLogprobsOrder checks that each top_logprobs object lists its
@@ -982,13 +866,9 @@ func TestTopLogprobsOrder(t *testing.T) {
 			} `json:"logprobs"`
 		} `json:"choices"`
 	}
-	if err := json.Unmarshal(body, &raw); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal(body, &raw))
 	tops := raw.Choices[0].Logprobs.TopLogprobs
-	if len(tops) == 0 {
-		t.Fatalf("no top_logprobs in %s", body)
-	}
+	require.NotEqual(t, 0, len(tops), "no top_logprobs in %s", body)
 	for i, obj := range tops {
 		dec := json.NewDecoder(strings.NewReader(string(obj)))
 		dec.Token() // {
@@ -996,18 +876,12 @@ func TestTopLogprobsOrder(t *testing.T) {
 		for dec.More() {
 			dec.Token() // key
 			var v float64
-			if err := dec.Decode(&v); err != nil {
-				t.Fatal(err)
-			}
-			if n > 0 && v >= prev {
-				t.Errorf("position %d: entry %d (%v) not below the one before (%v) in %s", i, n, v, prev, obj)
-			}
+			require.NoError(t, dec.Decode(&v))
+			assert.False(t, n > 0 && v >= prev, "position %d: entry %d (%v) not below the one before (%v) in %s", i, n, v, prev, obj)
 			prev = v
 			n++
 		}
-		if n != 8 {
-			t.Errorf("position %d: %d entries; want 8", i, n)
-		}
+		assert.Equal(t, 8, n, "position %d: %d entries; want 8", i, n)
 	}
 }
 
@@ -1027,18 +901,14 @@ func TestMaxConcurrentCountsCallsServedAtOnce(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
-	if err := s.AwaitHeld(ctx, n); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.AwaitHeld(ctx, n))
 	s.Release()
 	wg.Wait()
-	if got := s.MaxConcurrent(); got != n {
-		t.Errorf("MaxConcurrent = %d, want %d", got, n)
-	}
+	got := s.MaxConcurrent()
+	assert.Equal(t, n, got, "MaxConcurrent = %d, want %d", got, n)
 	s.Reset()
-	if got := s.MaxConcurrent(); got != 0 {
-		t.Errorf("after Reset: MaxConcurrent = %d, want 0", got)
-	}
+	got = s.MaxConcurrent()
+	assert.Equal(t, 0, got, "after Reset: MaxConcurrent = %d, want 0", got)
 }
 
 func TestFaultEchoAuth(t *testing.T) {
