@@ -48,9 +48,7 @@ func TestQuantileFollowsHistogramQuantile(t *testing.T) {
 			var h histogram
 			h.add(histogramOf(t, buckets, tt.xs...))
 			got := h.quantile(tt.q)
-			if got == nil || math.Abs(*got-tt.want) > 1e-12 {
-				t.Errorf("quantile(%v) = %v, want %v", tt.q, got, tt.want)
-			}
+			assert.False(t, got == nil || math.Abs(*got-tt.want) > 1e-12, "quantile(%v) = %v, want %v", tt.q, got, tt.want)
 		})
 	}
 	var empty histogram
@@ -67,9 +65,7 @@ func TestHistogramsAddAcrossEndpoints(t *testing.T) {
 	var h histogram
 	h.add(histogramOf(t, buckets, 0.05, 0.05))
 	h.add(histogramOf(t, buckets, 0.3, 0.3))
-	if h.count != 4 || math.Abs(h.sum-0.7) > 1e-12 {
-		t.Fatalf("count %d sum %v, want 4 and 0.7", h.count, h.sum)
-	}
+	require.False(t, h.count != 4 || math.Abs(h.sum-0.7) > 1e-12, "count %d sum %v, want 4 and 0.7", h.count, h.sum)
 	// Rank 2 of 4 is the last of the first bucket.
 	got := h.quantile(0.5)
 	assert.False(t, got == nil || math.Abs(*got-0.1) > 1e-12, "median %v, want 0.1", got)

@@ -86,9 +86,7 @@ func TestPageNeedsAnAdminKey(t *testing.T) {
 			ch := resp.Header.Get("WWW-Authenticate")
 			assert.Equal(t, strings.HasPrefix(ch, `Basic realm="stint operator page"`), tt.challenge, "WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
 			assert.False(t, tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys"), "403 body %q does not say how to turn the page on", body)
-			if resp.Header.Get("Cache-Control") != "no-store" || !strings.Contains(resp.Header.Get("Content-Security-Policy"), "default-src 'none'") {
-				t.Errorf("headers %v: want no-store and a strict content security policy", resp.Header)
-			}
+			assert.False(t, resp.Header.Get("Cache-Control") != "no-store" || !strings.Contains(resp.Header.Get("Content-Security-Policy"), "default-src 'none'"), "headers %v: want no-store and a strict content security policy", resp.Header)
 		})
 	}
 }
@@ -99,9 +97,7 @@ func TestAssetsAndTypes(t *testing.T) {
 	for path, want := range map[string]string{"/ui": "text/html", "/ui/snapshot.json": "application/json",
 		"/ui/static/stint.css": "text/css", "/ui/static/live.js": "javascript"} {
 		resp, body := get(t, srv, path, auth)
-		if resp.StatusCode != http.StatusOK || !strings.Contains(resp.Header.Get("Content-Type"), want) || body == "" {
-			t.Errorf("%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
-		}
+		assert.False(t, resp.StatusCode != http.StatusOK || !strings.Contains(resp.Header.Get("Content-Type"), want) || body == "", "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
 	}
 	srv.Client().CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
 	if resp, _ := get(t, srv, "/ui/", ""); resp.StatusCode != http.StatusMovedPermanently || resp.Header.Get("Location") != "/ui" {
@@ -111,9 +107,7 @@ func TestAssetsAndTypes(t *testing.T) {
 		t.Errorf("the template is served as an asset: %d", resp.StatusCode)
 	}
 	resp, body := get(t, srv, "/ui/snapshot.json?since=fortnight", auth)
-	if resp.StatusCode != http.StatusBadRequest || !strings.Contains(body, "since") {
-		t.Errorf("bad since: %d %q, want 400 naming since", resp.StatusCode, body)
-	}
+	assert.False(t, resp.StatusCode != http.StatusBadRequest || !strings.Contains(body, "since"), "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
 }
 
 func snapshot(t *testing.T, srv *httptest.Server) (opsview.Snapshot, string) {
@@ -172,13 +166,9 @@ func TestSidecarStates(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			srv := serve(t, withKey(opsview.Options{Sidecar: tt.sidecar}))
 			s, raw := snapshot(t, srv)
-			if s.Search.Reachable || (tt.sidecar != "" && s.Search.Error != "sidecar unreachable") {
-				t.Errorf("search %+v", s.Search)
-			}
+			assert.False(t, s.Search.Reachable || (tt.sidecar != "" && s.Search.Error != "sidecar unreachable"), "search %+v", s.Search)
 			_, page := get(t, srv, "/ui", "Bearer "+adminKey)
-			if !strings.Contains(page, tt.wantFigure) || !strings.Contains(page, tt.wantText) {
-				t.Errorf("page lacks %q / %q", tt.wantFigure, tt.wantText)
-			}
+			assert.False(t, !strings.Contains(page, tt.wantFigure) || !strings.Contains(page, tt.wantText), "page lacks %q / %q", tt.wantFigure, tt.wantText)
 			for _, secret := range []string{"sk-sidecar-secret", adminKey} {
 				assert.False(t, strings.Contains(page, secret) || strings.Contains(raw, secret), "%q leaked onto the page or snapshot", secret)
 			}
