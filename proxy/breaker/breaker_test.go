@@ -88,9 +88,8 @@ func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
 	_, err = b.Allow()
 	var oe *breaker.OpenError
 	require.True(t, errors.As(err, &oe), "Allow after a trip: %v", err)
-	if want := t0.Add(30 * time.Second); !oe.Until.Equal(want) {
-		t.Errorf("Until = %v, want the trip's time plus OpenFor, %v", oe.Until, want)
-	}
+	want := t0.Add(30 * time.Second)
+	assert.True(t, oe.Until.Equal(want), "Until = %v, want the trip's time plus OpenFor, %v", oe.Until, want)
 	// RFC 9110 section 10.2.3: Retry-After in whole seconds, so the time
 	// left rounds up, and never below one second.
 	for _, tc := range []struct {
