@@ -218,9 +218,7 @@ func TestCancellation(t *testing.T) {
 			ctx, cancel := tc.ctx()
 			defer cancel()
 			_, _, err := call(ctx, tr, srv.URL+"/hang", "x")
-			if !errors.Is(err, tc.want) {
-				t.Fatalf("err = %v, want %v", err, tc.want)
-			}
+			require.ErrorIs(t, err, tc.want, "err = %v, want %v", err, tc.want)
 			n := tr.idleCount()
 			assert.Equal(t, 0, n, "%d idle connections after a cancelled call, want 0", n)
 		})
@@ -249,15 +247,11 @@ func TestStreamArrivesAsSent(t *testing.T) {
 	defer resp.Body.Close()
 	sc := bufio.NewScanner(resp.Body)
 	for i := range 3 {
-		if !sc.Scan() || sc.Text() != fmt.Sprintf("data: %d", i) {
-			t.Fatalf("event %d: %q %v", i, sc.Text(), sc.Err())
-		}
+		require.False(t, !sc.Scan() || sc.Text() != fmt.Sprintf("data: %d", i), "event %d: %q %v", i, sc.Text(), sc.Err())
 		sc.Scan() // the blank line ending the event
 		next <- struct{}{}
 	}
-	if !sc.Scan() || sc.Text() != "data: [DONE]" {
-		t.Fatalf("last event: %q %v", sc.Text(), sc.Err())
-	}
+	require.False(t, !sc.Scan() || sc.Text() != "data: [DONE]", "last event: %q %v", sc.Text(), sc.Err())
 }
 
 // recordingTransport answers every request itself and remembers it.
@@ -290,9 +284,8 @@ func TestFallback(t *testing.T) {
 			defer tr.CloseIdleConnections()
 			status, _, err := call(t.Context(), tr, tc.url, "x")
 			require.NoError(t, err)
-			if got := fb.got.Load() == 1; got != tc.wantFallback || (status == http.StatusTeapot) != tc.wantFallback {
-				t.Errorf("fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
-			}
+			got := fb.got.Load() == 1
+			assert.False(t, got != tc.wantFallback || (status == http.StatusTeapot) != tc.wantFallback, "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
 		})
 	}
 }
