@@ -3,7 +3,6 @@ package gguf
 import (
 	"bytes"
 	"encoding/binary"
-	"errors"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -54,41 +53,36 @@ func TestParseSmallFile(t *testing.T) {
 	require.NoError(t, err)
 	got, want := len(f.Keys), 15
 	assert.Equal(t, want, got, "keys: got %d, want %d", got, want)
-	if s, err := f.String("general.architecture"); err != nil || s != "llama" {
-		t.Errorf("architecture: got %q, %v; want llama", s, err)
-	}
+	arch, archErr := f.String("general.architecture")
+	assert.NoError(t, archErr, "architecture")
+	assert.Equal(t, "llama", arch, "architecture")
 	for _, tc := range []struct {
 		key  string
 		want uint64
 	}{{"u8", 7}, {"u16", 700}, {"u32", 70000}, {"u64", 1 << 40}} {
-		if got, err := f.Uint(tc.key); err != nil || got != tc.want {
-			t.Errorf("Uint(%q): got %d, %v; want %d", tc.key, got, err, tc.want)
-		}
+		got, err := f.Uint(tc.key)
+		assert.NoError(t, err, "Uint(%q)", tc.key)
+		assert.Equal(t, tc.want, got, "Uint(%q)", tc.key)
 	}
-	if _, err := f.Uint("i8"); !errors.Is(err, ErrWrongType) {
-		t.Errorf("Uint of negative: got %v, want ErrWrongType", err)
-	}
-	if _, err := f.String("u8"); !errors.Is(err, ErrWrongType) {
-		t.Errorf("String of uint8: got %v, want ErrWrongType", err)
-	}
-	if _, err := f.Value("missing"); !errors.Is(err, ErrNotFound) {
-		t.Errorf("missing key: got %v, want ErrNotFound", err)
-	}
-	if got, err := f.Float("f64"); err != nil || got != 2.25 {
-		t.Errorf("Float(f64): got %v, %v", got, err)
-	}
+	_, uintErr := f.Uint("i8")
+	assert.ErrorIs(t, uintErr, ErrWrongType, "Uint of negative")
+	_, strErr := f.String("u8")
+	assert.ErrorIs(t, strErr, ErrWrongType, "String of uint8")
+	_, missErr := f.Value("missing")
+	assert.ErrorIs(t, missErr, ErrNotFound, "missing key")
+	f64, f64Err := f.Float("f64")
+	assert.NoError(t, f64Err, "Float(f64)")
+	assert.Equal(t, 2.25, f64, "Float(f64)")
 	v, _ := f.Value("strs")
-	if s, ok := v.V.([]string); !ok || len(s) != 3 || s[1] != "bc" {
-		t.Errorf("strs: got %#v", v.V)
+	strs, ok := v.V.([]string)
+	if assert.True(t, ok, "strs: got %#v", v.V) && assert.Len(t, strs, 3, "strs") {
+		assert.Equal(t, "bc", strs[1], "strs")
 	}
 	a, err := f.Float32s("a")
 	require.NoError(t, err)
-	if want := []float32{1, 2, 3, 4, 5, 6}; !equalF32(a, want) {
-		t.Errorf("tensor a: got %v, want %v", a, want)
-	}
-	if ti, _ := f.Tensor("b"); ti.Offset%DefaultAlignment != 0 || ti.Offset == 0 {
-		t.Errorf("tensor b offset %d not aligned", ti.Offset)
-	}
+	assert.True(t, equalF32(a, []float32{1, 2, 3, 4, 5, 6}), "tensor a: got %v, want 1..6", a)
+	ti, _ := f.Tensor("b")
+	assert.False(t, ti.Offset%DefaultAlignment != 0 || ti.Offset == 0, "tensor b offset %d not aligned", ti.Offset)
 	_, err = f.Float32s("zz")
 	assert.ErrorIs(t, err, ErrNotFound, "missing tensor: got %v", err)
 }
@@ -158,9 +152,7 @@ func TestParseErrors(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			_, err := Parse(tc.in)
-			if !errors.Is(err, tc.want) {
-				t.Errorf("got %v, want %v", err, tc.want)
-			}
+			assert.ErrorIs(t, err, tc.want, "got %v, want %v", err, tc.want)
 		})
 	}
 }
@@ -194,9 +186,8 @@ func mustEncodeMeta(tb testing.TB) []byte {
 func TestTruncatedEveryOffset(t *testing.T) {
 	good := smallFile(t)
 	for n := 0; n < len(good); n++ {
-		if _, err := Parse(good[:n]); err == nil {
-			t.Fatalf("prefix of %d/%d bytes parsed without error", n, len(good))
-		}
+		_, err := Parse(good[:n])
+		require.Error(t, err, "prefix of %d/%d bytes parsed without error", n, len(good))
 	}
 }
 
