@@ -1,7 +1,6 @@
 package tokenizer
 
 import (
-	"errors"
 	"fmt"
 	"math/rand/v2"
 	"strings"
@@ -110,9 +109,7 @@ func TestEncodeRealVocab(t *testing.T) {
 	// doc/stories260K.md, via MODEL-SOURCE.md) are whole pieces of this
 	// vocabulary, so BPE must reach them.
 	ids := tok.Encode("Once upon a time")
-	if got, want := strings.Join(pieces(tok, ids), "|"), "▁Once|▁upon|▁a|▁time"; got != want {
-		t.Errorf("got %s, want %s", got, want)
-	}
+	assert.Equal(t, "▁Once|▁upon|▁a|▁time", strings.Join(pieces(tok, ids), "|"))
 }
 
 // TestByteTokensCoverEveryByte checks each byte value has a token that
@@ -124,9 +121,7 @@ func TestByteTokensCoverEveryByte(t *testing.T) {
 		got := tok.Bytes(id)
 		assert.False(t, len(got) != 1 || got[0] != byte(b), "byte 0x%02X: token %d gives %q", b, id, got)
 		s := string([]byte{'x', byte(b)})
-		if got := tok.Decode(tok.Encode(s)); got != s {
-			t.Errorf("round trip of %q: got %q", s, got)
-		}
+		assert.Equal(t, s, tok.Decode(tok.Encode(s)), "round trip of %q", s)
 	}
 }
 
@@ -207,8 +202,7 @@ func TestNewErrors(t *testing.T) {
 		{"bos out of range", Vocab{Pieces: []string{"a"}, Scores: []float32{0}, Types: []int32{1}, BOS: 5}},
 	}
 	for _, tc := range tests {
-		if _, err := New(tc.v); !errors.Is(err, ErrInvalid) {
-			t.Errorf("%s: got %v, want ErrInvalid", tc.name, err)
-		}
+		_, err := New(tc.v)
+		assert.ErrorIs(t, err, ErrInvalid, "%s: got %v, want ErrInvalid", tc.name, err)
 	}
 }
