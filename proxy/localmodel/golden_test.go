@@ -22,15 +22,9 @@ func TestGoldenGreedy256(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "", "temperature": 0, "max_tokens": 256})
 	got := r.Choices[0].Text
-	if !strings.HasPrefix(got, goldenStart) {
-		t.Errorf("text starts %q, want %q", got[:min(len(got), len(goldenStart))], goldenStart)
-	}
-	if !strings.HasSuffix(got, goldenEnd) {
-		t.Errorf("text ends %q, want %q", got[max(0, len(got)-len(goldenEnd)):], goldenEnd)
-	}
-	if r.Usage.CompletionTokens != 256 || r.Usage.PromptTokens != 1 || *r.Choices[0].FinishReason != "length" {
-		t.Errorf("usage %+v finish %s; want 1 prompt (BOS), 256 completion, length", r.Usage, *r.Choices[0].FinishReason)
-	}
+	assert.True(t, strings.HasPrefix(got, goldenStart), "text starts %q, want %q", got[:min(len(got), len(goldenStart))], goldenStart)
+	assert.True(t, strings.HasSuffix(got, goldenEnd), "text ends %q, want %q", got[max(0, len(got)-len(goldenEnd)):], goldenEnd)
+	assert.False(t, r.Usage.CompletionTokens != 256 || r.Usage.PromptTokens != 1 || *r.Choices[0].FinishReason != "length", "usage %+v finish %s; want 1 prompt (BOS), 256 completion, length", r.Usage, *r.Choices[0].FinishReason)
 }
 
 // TestFirstSentence checks that the model's published first sentence comes out
@@ -64,8 +58,6 @@ func TestLogprobsAreADistribution(t *testing.T) {
 			}
 		}
 		assert.LessOrEqual(t, math.Abs(sum-1), 1e-4, "token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
-		if best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i] {
-			t.Errorf("token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
-		}
+		assert.False(t, best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i], "token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
 	}
 }

@@ -69,8 +69,6 @@ func TestLocate(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Locate(tc.flag, env(tc.env))
-		if got != tc.want || !errors.Is(err, tc.err) {
-			t.Errorf("%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
-		}
+		assert.False(t, got != tc.want || !errors.Is(err, tc.err), "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
 	}
 }

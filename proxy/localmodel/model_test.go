@@ -2,7 +2,6 @@ package localmodel
 
 import (
 	"context"
-	"errors"
 	"math"
 	"os"
 	"path/filepath"
@@ -59,9 +58,8 @@ func TestLoadErrors(t *testing.T) {
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
-			if _, err := Load(tc.path); !errors.Is(err, tc.want) {
-				t.Errorf("got %v, want %v", err, tc.want)
-			}
+			_, err := Load(tc.path)
+			assert.ErrorIs(t, err, tc.want, "got %v, want %v", err, tc.want)
 		})
 	}
 }
@@ -103,9 +101,7 @@ func TestForwardOutputs(t *testing.T) {
 	out, err := m.Forward(context.Background(), []int{m.tok.BOS(), 300, 400})
 	require.NoError(t, err)
 	head := m.OutputHead()
-	if head.Rows != m.VocabSize() || head.Cols != m.EmbeddingSize() || out.Hidden.Cols != m.EmbeddingSize() || out.Logits.Cols != m.VocabSize() {
-		t.Fatalf("shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
-	}
+	require.False(t, head.Rows != m.VocabSize() || head.Cols != m.EmbeddingSize() || out.Hidden.Cols != m.EmbeddingSize() || out.Logits.Cols != m.VocabSize(), "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
 	for i := 0; i < out.Hidden.Rows; i++ {
 		for v := 0; v < head.Rows; v += 37 {
 			var s float64
@@ -152,9 +148,7 @@ func TestPrefixCacheExact(t *testing.T) {
 		if i == 1 && (a.reused < want-1 || a.reused >= len(toks)) {
 			t.Errorf("request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
 		}
-		if i != 1 && a.reused != want {
-			t.Errorf("request %d: reused %d positions, want %d", i, a.reused, want)
-		}
+		assert.False(t, i != 1 && a.reused != want, "request %d: reused %d positions, want %d", i, a.reused, want)
 	}
 }
 
@@ -188,7 +182,5 @@ func TestExpf(t *testing.T) {
 		rel := math.Abs(got-want) / want
 		require.LessOrEqual(t, rel, 4e-7, "expf(%v) = %v, want %v (relative error %.2g)", x, got, want, rel)
 	}
-	if expf(0) != 1 || expf(-100) != 0 || !math.IsInf(float64(expf(100)), 1) || !math.IsNaN(float64(expf(float32(math.NaN())))) {
-		t.Errorf("special values: %v %v %v", expf(0), expf(-100), expf(100))
-	}
+	assert.False(t, expf(0) != 1 || expf(-100) != 0 || !math.IsInf(float64(expf(100)), 1) || !math.IsNaN(float64(expf(float32(math.NaN())))), "special values: %v %v %v", expf(0), expf(-100), expf(100))
 }

@@ -35,15 +35,11 @@ func TestArrayPromptsAndN(t *testing.T) {
 		single := complete(t, srv, map[string]any{"prompt": p, "temperature": 0, "max_tokens": 6})
 		for j := 0; j < 2; j++ {
 			c := r.Choices[pi*2+j]
-			if c.Index != pi*2+j || c.Text != single.Choices[0].Text {
-				t.Errorf("choice %d: index %d text %q; want index %d text %q", pi*2+j, c.Index, c.Text, pi*2+j, single.Choices[0].Text)
-			}
+			assert.False(t, c.Index != pi*2+j || c.Text != single.Choices[0].Text, "choice %d: index %d text %q; want index %d text %q", pi*2+j, c.Index, c.Text, pi*2+j, single.Choices[0].Text)
 		}
 		wantPrompt += 1 + len(m.tok.Encode(p))
 	}
-	if r.Usage.PromptTokens != wantPrompt || r.Usage.CompletionTokens != 24 || r.Usage.TotalTokens != wantPrompt+24 {
-		t.Errorf("usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
-	}
+	assert.False(t, r.Usage.PromptTokens != wantPrompt || r.Usage.CompletionTokens != 24 || r.Usage.TotalTokens != wantPrompt+24, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
 	assert.False(t, r.Object != "text_completion" || r.Model != DefaultName || !strings.HasPrefix(r.ID, "cmpl-"), "envelope: %+v", r)
 }
 
@@ -53,9 +49,7 @@ func TestTokenPrompt(t *testing.T) {
 	text := complete(t, srv, map[string]any{"prompt": "Once upon", "temperature": 0, "max_tokens": 4})
 	ids := complete(t, srv, map[string]any{"prompt": m.tok.Encode("Once upon"), "temperature": 0, "max_tokens": 4})
 	nested := complete(t, srv, map[string]any{"prompt": [][]int{m.tok.Encode("Once upon")}, "temperature": 0, "max_tokens": 4})
-	if ids.Choices[0].Text != text.Choices[0].Text || nested.Choices[0].Text != text.Choices[0].Text {
-		t.Errorf("token prompt gave %q / %q, text prompt %q", ids.Choices[0].Text, nested.Choices[0].Text, text.Choices[0].Text)
-	}
+	assert.False(t, ids.Choices[0].Text != text.Choices[0].Text || nested.Choices[0].Text != text.Choices[0].Text, "token prompt gave %q / %q, text prompt %q", ids.Choices[0].Text, nested.Choices[0].Text, text.Choices[0].Text)
 }
 
 // TestEchoLogprobs: echo puts the prompt first with its token logprobs (the
@@ -91,9 +85,7 @@ func TestEchoLogprobs(t *testing.T) {
 		if i == 0 {
 			tok = strings.TrimPrefix(tok, " ")
 		}
-		if !strings.HasPrefix(c.Text[off:], tok) {
-			t.Errorf("token %d %q not at offset %d of %q", i, tok, off, c.Text)
-		}
+		assert.True(t, strings.HasPrefix(c.Text[off:], tok), "token %d %q not at offset %d of %q", i, tok, off, c.Text)
 	}
 	// max_tokens 0 with echo scores the prompt without generating.
 	r = complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 0, "max_tokens": 0})
@@ -107,9 +99,8 @@ func TestStop(t *testing.T) {
 	body := map[string]any{"prompt": "", "temperature": 0, "max_tokens": 40, "stop": []string{"girl", "zebra"}, "logprobs": 0}
 	r := complete(t, srv, body)
 	c := r.Choices[0]
-	if want := "Once upon a time, there was a little "; c.Text != want || *c.FinishReason != "stop" {
-		t.Errorf("got %q (%s), want %q (stop)", c.Text, *c.FinishReason, want)
-	}
+	want := "Once upon a time, there was a little "
+	assert.False(t, c.Text != want || *c.FinishReason != "stop", "got %q (%s), want %q (stop)", c.Text, *c.FinishReason, want)
 	// Logprobs cover the tokens whose text starts before the cut (the
 	// last one, " g", straddles it).
 	lp := c.Logprobs
@@ -401,12 +392,8 @@ func TestWorkerPoolBound(t *testing.T) {
 	close(a.release)
 	<-doneA
 	<-doneB
-	if recB.Code != http.StatusOK || h.maxActive.Load() != 1 {
-		t.Errorf("B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
-	}
-	if !strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n") {
-		t.Errorf("A's stream did not finish: %q", a.buf.String())
-	}
+	assert.False(t, recB.Code != http.StatusOK || h.maxActive.Load() != 1, "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	assert.True(t, strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n"), "A's stream did not finish: %q", a.buf.String())
 	// A waiting request whose context ends gives up.
 	h.waitHook = nil
 	ctx, cancel := context.WithCancel(context.Background())
@@ -485,16 +472,12 @@ func TestHealthzLikeTheProxy(t *testing.T) {
 	require.NoError(t, err)
 	b, _ := io.ReadAll(resp.Body)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusOK || string(b) != "ok\n" || resp.Header.Get("Content-Type") != "text/plain; charset=utf-8" {
-		t.Errorf("GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
-	}
+	assert.False(t, resp.StatusCode != http.StatusOK || string(b) != "ok\n" || resp.Header.Get("Content-Type") != "text/plain; charset=utf-8", "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
 	resp, err = http.Post(srv.URL+"/healthz", "text/plain", nil)
 	require.NoError(t, err)
 	b, _ = io.ReadAll(resp.Body)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "GET, HEAD" {
-		t.Errorf("POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
-	}
+	assert.False(t, resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "GET, HEAD", "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
 	checkErrorBody(t, b, resp.Header)
 }
 
