@@ -103,9 +103,7 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 			}
 		}
 		assert.LessOrEqual(tb, mass, float64(1), "top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
-		if greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]) {
-			tb.Errorf("greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
-		}
+		assert.False(tb, greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]), "greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
 	}
 	assert.Equal(tb, text, joined, "tokens join to %q; want the text %q", joined, text)
 }

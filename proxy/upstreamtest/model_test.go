@@ -40,9 +40,7 @@ func TestTokenizeConcatenates(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got := m.tokenize(tt.in)
-		if !slices.Equal(got, tt.want) {
-			t.Errorf("tokenize(%q) = %q; want %q", tt.in, got, tt.want)
-		}
+		assert.True(t, slices.Equal(got, tt.want), "tokenize(%q) = %q; want %q", tt.in, got, tt.want)
 		j := strings.Join(got, "")
 		assert.Equal(t, tt.in, j, "tokens of %q join to %q", tt.in, j)
 	}
@@ -61,9 +59,7 @@ func TestRankInvariants(t *testing.T) {
 			require.False(t, seen[c.toks[i]], "state %x: candidate %q twice", h, c.toks[i])
 			seen[c.toks[i]] = true
 			require.Equal(t, m.vocab[c.ids[i]], c.toks[i], "state %x: toks[%d] = %q; want %q", h, i, c.toks[i], m.vocab[c.ids[i]])
-			if c.lps[i] >= 0 || math.IsNaN(c.lps[i]) {
-				t.Fatalf("state %x: logprob %v not negative", h, c.lps[i])
-			}
+			require.False(t, c.lps[i] >= 0 || math.IsNaN(c.lps[i]), "state %x: logprob %v not negative", h, c.lps[i])
 			require.False(t, i > 0 && c.lps[i] >= c.lps[i-1], "state %x: logprobs not strictly decreasing at %d", h, i)
 			mass += math.Exp(c.lps[i])
 		}

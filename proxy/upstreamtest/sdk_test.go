@@ -41,9 +41,7 @@ func TestSDKCompletion(t *testing.T) {
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 30, Temperature: greedy, LogProbs: 5,
 	})
 	require.NoError(t, err)
-	if long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "" {
-		t.Errorf("object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
-	}
+	assert.False(t, long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "", "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	lc := long.Choices[0]
 	checkSDKLogprobs(t, lc.Text, lc.LogProbs, 5)
 	if long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens) {
@@ -76,16 +74,12 @@ func TestSDKCompletion(t *testing.T) {
 		promptTokens += one.Usage.PromptTokens
 		for j := range 2 {
 			ch := batch.Choices[i*2+j]
-			if ch.Index != i*2+j || ch.Text != one.Choices[0].Text {
-				t.Errorf("choice %d (index %d) = %q; want prompt %d's answer %q", i*2+j, ch.Index, ch.Text, i, one.Choices[0].Text)
-			}
+			assert.False(t, ch.Index != i*2+j || ch.Text != one.Choices[0].Text, "choice %d (index %d) = %q; want prompt %d's answer %q", i*2+j, ch.Index, ch.Text, i, one.Choices[0].Text)
 			checkSDKLogprobs(t, ch.Text, ch.LogProbs, 2)
 			completionTokens += len(ch.LogProbs.Tokens)
 		}
 	}
-	if batch.Usage.PromptTokens != promptTokens || batch.Usage.CompletionTokens != completionTokens {
-		t.Errorf("batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
-	}
+	assert.False(t, batch.Usage.PromptTokens != promptTokens || batch.Usage.CompletionTokens != completionTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
 	if got := up.Prompts(); got != 2+3+3 {
 		t.Errorf("Prompts() = %d; want 8", got)
 	}
@@ -119,9 +113,7 @@ func checkSDKLogprobs(tb testing.TB, text string, lp openai.LogprobResult, k int
 				best = t
 			}
 		}
-		if lp.TokenLogprobs[i] >= 0 || best != tok || top[tok] != lp.TokenLogprobs[i] {
-			tb.Errorf("token %d %q (%v): most likely top entry %q", i, tok, lp.TokenLogprobs[i], best)
-		}
+		assert.False(tb, lp.TokenLogprobs[i] >= 0 || best != tok || top[tok] != lp.TokenLogprobs[i], "token %d %q (%v): most likely top entry %q", i, tok, lp.TokenLogprobs[i], best)
 	}
 }
 
@@ -163,13 +155,9 @@ func TestSDKCompletionStream(t *testing.T) {
 		}
 	}
 	for _, w := range whole.Choices {
-		if texts[w.Index] != w.Text || finish[w.Index] != w.FinishReason || !slices.Equal(tokens[w.Index], w.LogProbs.Tokens) {
-			t.Errorf("choice %d streamed %q %q (%s); answered %q %q (%s)", w.Index, texts[w.Index], tokens[w.Index], finish[w.Index], w.Text, w.LogProbs.Tokens, w.FinishReason)
-		}
+		assert.False(t, texts[w.Index] != w.Text || finish[w.Index] != w.FinishReason || !slices.Equal(tokens[w.Index], w.LogProbs.Tokens), "choice %d streamed %q %q (%s); answered %q %q (%s)", w.Index, texts[w.Index], tokens[w.Index], finish[w.Index], w.Text, w.LogProbs.Tokens, w.FinishReason)
 	}
-	if gotUsage == nil || *gotUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", gotUsage, whole.Usage)
-	}
+	assert.False(t, gotUsage == nil || *gotUsage != *whole.Usage, "stream usage %+v; want %+v", gotUsage, whole.Usage)
 }
 
 func TestSDKChat(t *testing.T) {
@@ -189,9 +177,7 @@ func TestSDKChat(t *testing.T) {
 	}
 	total := 0
 	for j, ch := range resp.Choices {
-		if ch.Index != j || ch.Message.Role != openai.ChatMessageRoleAssistant || ch.LogProbs == nil {
-			t.Fatalf("choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
-		}
+		require.False(t, ch.Index != j || ch.Message.Role != openai.ChatMessageRoleAssistant || ch.LogProbs == nil, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
 		joined := ""
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
@@ -204,9 +190,7 @@ func TestSDKChat(t *testing.T) {
 		total += len(ch.LogProbs.Content)
 	}
 	assert.Equal(t, resp.Choices[1].Message.Content, resp.Choices[0].Message.Content, "greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
-	if resp.Usage.CompletionTokens != total || resp.Usage.TotalTokens != resp.Usage.PromptTokens+total {
-		t.Errorf("usage %+v; want %d completion tokens", resp.Usage, total)
-	}
+	assert.False(t, resp.Usage.CompletionTokens != total || resp.Usage.TotalTokens != resp.Usage.PromptTokens+total, "usage %+v; want %d completion tokens", resp.Usage, total)
 
 	stream, err := c.CreateChatCompletionStream(context.Background(), openai.ChatCompletionRequest{
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3,
@@ -246,9 +230,7 @@ func TestSDKChat(t *testing.T) {
 		}
 	}
 	want := resp.Choices[0]
-	if role != "assistant" || content != want.Message.Content || strings.Join(toks, "") != content || fin != want.FinishReason {
-		t.Errorf("stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
-	}
+	assert.False(t, role != "assistant" || content != want.Message.Content || strings.Join(toks, "") != content || fin != want.FinishReason, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
 	if streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content) {
 		t.Errorf("stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
 	}

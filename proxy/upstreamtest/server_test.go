@@ -86,9 +86,7 @@ func TestValidation(t *testing.T) {
 			err := json.Unmarshal(body, &env)
 			require.False(t, err != nil || env.Error == nil, "error body %s does not have the error shape (%v)", body, err)
 			e := env.Error
-			if e.Message == "" || e.Type != "invalid_request_error" {
-				t.Errorf("error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
-			}
+			assert.False(t, e.Message == "" || e.Type != "invalid_request_error", "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
 			got := deref(e.Param)
 			assert.Equal(t, tt.param, got, "param = %q; want %q", got, tt.param)
 			got = string(e.Code)
@@ -158,9 +156,7 @@ func TestModelsList(t *testing.T) {
 			got = append(got, m.ID)
 			assert.Equal(t, "model", m.Object, "model object = %q; want model", m.Object)
 		}
-		if list.Object != "list" || !slices.Equal(got, tt.want) {
-			t.Errorf("models = %q (%s); want %q (list)", got, list.Object, tt.want)
-		}
+		assert.False(t, list.Object != "list" || !slices.Equal(got, tt.want), "models = %q (%s); want %q (list)", got, list.Object, tt.want)
 	}
 }
 
@@ -221,12 +217,8 @@ func TestCountersRequestsReset(t *testing.T) {
 		t.Fatalf("Requests() has %d entries; want 4", len(reqs))
 	}
 	last := reqs[3]
-	if last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1" {
-		t.Errorf("last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
-	}
-	if !strings.Contains(string(last.Body), `"messages"`) {
-		t.Errorf("last body = %s; want the chat body", last.Body)
-	}
+	assert.False(t, last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1", "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Contains(t, string(last.Body), `"messages"`, "last body = %s; want the chat body", last.Body)
 	// Copies: changing them does not change what the server holds.
 	last.Body[0] = 'X'
 	last.Header.Set("Authorization", "changed")
@@ -249,9 +241,7 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	}
 	var long wire.CompletionResponse
 	postOK(t, up, "/completions", req(40, 5, false), &long)
-	if long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0 {
-		t.Errorf("envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
-	}
+	assert.False(t, long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
 	lc := long.Choices[0]
 	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
 	got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)})
@@ -263,9 +253,7 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 		sc := short.Choices[0]
 		checkLogprobs(t, sc.Text, sc.Logprobs, 3, true, 0)
 		wantToks := lc.Logprobs.Tokens[:min(n, len(lc.Logprobs.Tokens))]
-		if !slices.Equal(sc.Logprobs.Tokens, wantToks) {
-			t.Errorf("max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
-		}
+		assert.True(t, slices.Equal(sc.Logprobs.Tokens, wantToks), "max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
 		if n < len(lc.Logprobs.Tokens) && *sc.FinishReason != "length" {
 			t.Errorf("max_tokens %d: finish_reason %q; want length", n, *sc.FinishReason)
 		}
@@ -282,15 +270,11 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	if ec.Logprobs.TokenLogprobs[0] != nil || len(ec.Logprobs.Tokens) != 7+4 {
 		t.Errorf("echo tokens %q, first logprob %v; want 11 tokens, the first null", ec.Logprobs.Tokens, ec.Logprobs.TokenLogprobs[0])
 	}
-	if echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7 {
-		t.Errorf("echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
-	}
+	assert.False(t, echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
 	// Without logprobs the field is null.
 	var plain wire.CompletionResponse
 	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
-	if resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`) {
-		t.Errorf("answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
-	}
+	assert.False(t, resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`), "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
 	json.Unmarshal(b, &plain)
 	if got := strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""); plain.Choices[0].Text != got {
 		t.Errorf("default max_tokens answer %q; want the first 16 tokens %q", plain.Choices[0].Text, got)
@@ -343,9 +327,7 @@ func TestTokenIDPrompts(t *testing.T) {
 	var ids, text wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[24,56],"max_tokens":5,"temperature":0,"echo":true}`, &ids)
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":" barge hive","max_tokens":5,"temperature":0,"echo":true}`, &text)
-	if ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive") {
-		t.Errorf("token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
-	}
+	assert.False(t, ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive"), "token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
 	assert.Equal(t, 2, ids.Usage.PromptTokens, "prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
@@ -380,16 +362,12 @@ func TestStopSequences(t *testing.T) {
 		if strings.Index(strings.Join(toks, ""), tt.stop) < len(want) {
 			t.Fatalf("%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
 		}
-		if c.Text != want || *c.FinishReason != "stop" {
-			t.Errorf("%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
-		}
+		assert.False(t, c.Text != want || *c.FinishReason != "stop", "%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
 		checkLogprobs(t, c.Text, c.Logprobs, 0, true, 0)
 	}
 	var one wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, fmt.Sprintf(`,"stop":%q`, toks[1])), &one)
-	if strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop" {
-		t.Errorf("stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
-	}
+	assert.False(t, strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop", "stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
 }
 
 func TestEndsOnItsOwn(t *testing.T) {
@@ -432,9 +410,7 @@ func TestSampling(t *testing.T) {
 	}
 	a, b := text(`,"temperature":1`), text("") // the default temperature is 1
 	assert.False(t, slices.Equal(a, b), "two unseeded sampled calls both answered %q; want them to differ", a)
-	if a[0] == a[1] && a[1] == a[2] {
-		t.Errorf("n=3 sampled choices are all %q; want them to differ", a[0])
-	}
+	assert.False(t, a[0] == a[1] && a[1] == a[2], "n=3 sampled choices are all %q; want them to differ", a[0])
 	s1, s2, s3 := text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":8`)
 	assert.True(t, slices.Equal(s1, s2), "seed 7 answered %q, then %q; want the same", s1, s2)
 	assert.False(t, slices.Equal(s1, s3), "seeds 7 and 8 both answered %q; want them to differ", s1)
@@ -503,16 +479,12 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	}
 	for _, w := range whole.Choices {
 		a := got[w.Index]
-		if a.text != w.Text || a.finish != *w.FinishReason {
-			t.Errorf("choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
-		}
+		assert.False(t, a.text != w.Text || a.finish != *w.FinishReason, "choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
 		wl, _ := json.Marshal(w.Logprobs)
 		al, _ := json.Marshal(a.lp)
 		assert.Equal(t, string(al), string(wl), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	if streamUsage == nil || *streamUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", streamUsage, *whole.Usage)
-	}
+	assert.False(t, streamUsage == nil || *streamUsage != *whole.Usage, "stream usage %+v; want %+v", streamUsage, *whole.Usage)
 
 	// Without include_usage there is no usage chunk.
 	_, body = post(t, up, "/completions", base+`,"stream":true}`, nil)
@@ -530,13 +502,9 @@ func TestChat(t *testing.T) {
 	var long, short wire.ChatResponse
 	postOK(t, up, "/chat/completions", base+`,"max_completion_tokens":12}`, &long)
 	postOK(t, up, "/chat/completions", base+`,"max_tokens":5}`, &short)
-	if long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-") {
-		t.Errorf("envelope %q %q", long.Object, long.ID)
-	}
+	assert.False(t, long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-"), "envelope %q %q", long.Object, long.ID)
 	lc := long.Choices[0]
-	if lc.Message == nil || lc.Message.Role != "assistant" {
-		t.Fatalf("message = %+v; want an assistant message", lc.Message)
-	}
+	require.False(t, lc.Message == nil || lc.Message.Role != "assistant", "message = %+v; want an assistant message", lc.Message)
 	var joined string
 	for i, tl := range lc.Logprobs.Content {
 		joined += tl.Token
@@ -544,9 +512,7 @@ func TestChat(t *testing.T) {
 		if len(tl.TopLogprobs) != 4 {
 			t.Fatalf("token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
 		}
-		if tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0 {
-			t.Errorf("greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
-		}
+		assert.False(t, tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0, "greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
 		var mass float64
 		for j, top := range tl.TopLogprobs {
 			mass += exp(top.Logprob)
@@ -557,9 +523,7 @@ func TestChat(t *testing.T) {
 	}
 	assert.Equal(t, lc.Message.Content, joined, "logprob tokens join to %q; content %q", joined, lc.Message.Content)
 	n := len(short.Choices[0].Logprobs.Content)
-	if !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop") {
-		t.Errorf("5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
-	}
+	assert.False(t, !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop"), "5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
 	if long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens {
 		t.Errorf("usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
 	}
@@ -616,12 +580,8 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 		}
 		a.chunks++
 		require.NotNil(t, ch.Delta, "chunk %s has no delta", data)
-		if a.chunks == 1 && ch.Delta.Role != "assistant" {
-			t.Errorf("choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
-		}
-		if a.chunks > 1 && ch.Delta.Role != "" {
-			t.Errorf("choice %d role repeated in chunk %d", ch.Index, a.chunks)
-		}
+		assert.False(t, a.chunks == 1 && ch.Delta.Role != "assistant", "choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
+		assert.False(t, a.chunks > 1 && ch.Delta.Role != "", "choice %d role repeated in chunk %d", ch.Index, a.chunks)
 		if ch.Delta.Content != nil {
 			a.content += *ch.Delta.Content
 		}
@@ -634,16 +594,12 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	}
 	for _, w := range whole.Choices {
 		a := got[w.Index]
-		if a == nil || a.content != w.Message.Content || a.finish != *w.FinishReason {
-			t.Fatalf("choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
-		}
+		require.False(t, a == nil || a.content != w.Message.Content || a.finish != *w.FinishReason, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
 		al, _ := json.Marshal(a.tokens)
 		wl, _ := json.Marshal(w.Logprobs.Content)
 		assert.Equal(t, string(wl), string(al), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	if streamUsage == nil || *streamUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", streamUsage, whole.Usage)
-	}
+	assert.False(t, streamUsage == nil || *streamUsage != *whole.Usage, "stream usage %+v; want %+v", streamUsage, whole.Usage)
 }
 
 func TestFaultStatus(t *testing.T) {
@@ -655,25 +611,19 @@ func TestFaultStatus(t *testing.T) {
 		resp, b := post(t, up, "/completions", body, nil)
 		var env errorEnvelope
 		json.Unmarshal(b, &env)
-		if resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error" {
-			t.Errorf("call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
-		}
+		assert.False(t, resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error", "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
 	}
 	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
 		t.Errorf("third call: %d; want 200 once the two faults are used", resp.StatusCode)
 	}
-	if up.Calls().Completions != 3 || up.Prompts() != 1 {
-		t.Errorf("Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
-	}
+	assert.False(t, up.Calls().Completions != 3 || up.Prompts() != 1, "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
 
 	up.FailNext(1, upstreamtest.Fault{Path: upstreamtest.PathChat, Status: 503, Body: "upstream busy"})
 	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
 		t.Errorf("completions call under a chat-only fault: %d; want 200", resp.StatusCode)
 	}
 	resp, b := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}]}`, nil)
-	if resp.StatusCode != 503 || string(b) != "upstream busy" {
-		t.Errorf("chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
-	}
+	assert.False(t, resp.StatusCode != 503 || string(b) != "upstream busy", "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
 
 	up.FailNext(5, upstreamtest.Fault{Status: 500})
 	up.ClearFaults()
@@ -819,9 +769,7 @@ func TestBlockRelease(t *testing.T) {
 	for s := range results {
 		assert.Equal(t, 200, s, "released call: status %d", s)
 	}
-	if up.Held() != 0 || up.Prompts() != callers {
-		t.Errorf("after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
-	}
+	assert.False(t, up.Held() != 0 || up.Prompts() != callers, "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
 	// Not blocked any more.
 	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
 	assert.False(t, err != nil || resp.StatusCode != 200, "call after Release: %v", err)
