@@ -134,9 +134,7 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 	srv := serve(t, withKey(opsview.Options{Gatherer: reg, Upstreams: []string{"north", "south", "east", "west"}}))
 	s, _ := snapshot(t, srv)
 	want := map[string]string{"north": "closed", "south": "half-open", "east": "open", "west": "none"}
-	if len(s.Upstreams) != len(want) {
-		t.Fatalf("upstreams %+v, want %d", s.Upstreams, len(want))
-	}
+	require.Len(t, s.Upstreams, len(want), "upstreams %+v, want %d", s.Upstreams, len(want))
 	for _, u := range s.Upstreams {
 		assert.Equal(t, want[u.Name], u.Breaker, "%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
 		if (u.Name == "east") != (u.Trips != nil && *u.Trips == 3) {
