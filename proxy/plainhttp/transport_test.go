@@ -178,9 +178,7 @@ func TestBodyDroppedEarly(t *testing.T) {
 	n := tr.idleCount()
 	assert.Equal(t, 0, n, "%d idle connections after an early close, want 0", n)
 	status, got, err := call(t.Context(), tr, srv.URL, "")
-	if err != nil || status != http.StatusOK || len(got) != 64<<10 {
-		t.Fatalf("next call: %d, %d bytes, %v", status, len(got), err)
-	}
+	require.False(t, err != nil || status != http.StatusOK || len(got) != 64<<10, "next call: %d, %d bytes, %v", status, len(got), err)
 	n = tr.idleCount()
 	assert.Equal(t, 1, n, "%d idle connections after a whole answer, want 1", n)
 }
