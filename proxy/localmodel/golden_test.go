@@ -44,9 +44,7 @@ func TestLogprobsAreADistribution(t *testing.T) {
 	srv, _ := testServer(t, m, HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "Lily and Tim", "temperature": 0, "max_tokens": 6, "logprobs": m.VocabSize()})
 	lp := r.Choices[0].Logprobs
-	if len(lp.Tokens) != 6 {
-		t.Fatalf("got %d tokens, want 6", len(lp.Tokens))
-	}
+	require.Len(t, lp.Tokens, 6, "got %d tokens, want 6", len(lp.Tokens))
 	for i, top := range lp.TopLogprobs {
 		require.Equal(t, m.VocabSize(), top.Len(), "token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
 		var sum float64

@@ -158,9 +158,7 @@ func TestPrefixCacheEviction(t *testing.T) {
 	mk := func(toks ...int) *sequence { s := m.newSequence(); s.tokens = toks; return s }
 	c.add(mk(1, 2, 3, 4))
 	c.add(mk(1, 2, 3, 4, 5, 6)) // extends and replaces the first
-	if len(c.entries) != 1 || c.size != 6 {
-		t.Fatalf("after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
-	}
+	require.False(t, len(c.entries) != 1 || c.size != 6, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
 	c.add(mk(1, 2)) // covered
 	require.Len(t, c.entries, 1, "covered prefix was added")
 	c.add(mk(7, 8, 9, 10, 11)) // evicts the oldest

@@ -26,9 +26,7 @@ func TestArrayPromptsAndN(t *testing.T) {
 	srv, _ := testServer(t, m, HandlerOptions{})
 	prompts := []string{"Lily saw", "Tim had a big"}
 	r := complete(t, srv, map[string]any{"prompt": prompts, "n": 2, "temperature": 0, "max_tokens": 6})
-	if len(r.Choices) != 4 {
-		t.Fatalf("got %d choices, want 4", len(r.Choices))
-	}
+	require.Len(t, r.Choices, 4, "got %d choices, want 4", len(r.Choices))
 	wantPrompt := 0
 	for pi, p := range prompts {
 		// Greedy output is the same whatever batch it ran in.
@@ -60,14 +58,10 @@ func TestEchoLogprobs(t *testing.T) {
 	prompt := "Once upon a time"
 	r := complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 2, "max_tokens": 3, "temperature": 0})
 	c := r.Choices[0]
-	if !strings.HasPrefix(c.Text, prompt) || len(c.Text) <= len(prompt) {
-		t.Fatalf("text %q does not start with the prompt", c.Text)
-	}
+	require.False(t, !strings.HasPrefix(c.Text, prompt) || len(c.Text) <= len(prompt), "text %q does not start with the prompt", c.Text)
 	ptoks := m.tok.Encode(prompt)
 	lp := c.Logprobs
-	if len(lp.Tokens) != len(ptoks)+3 {
-		t.Fatalf("got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
-	}
+	require.Len(t, lp.Tokens, len(ptoks)+3, "got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
 	if lp.TokenLogprobs[0] != nil || lp.TopLogprobs[0] != nil || lp.TextOffset[0] != 0 {
 		t.Errorf("first prompt token: logprob %v top %v offset %d; want null, null, 0", lp.TokenLogprobs[0], lp.TopLogprobs[0], lp.TextOffset[0])
 	}
@@ -89,9 +83,8 @@ func TestEchoLogprobs(t *testing.T) {
 	}
 	// max_tokens 0 with echo scores the prompt without generating.
 	r = complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 0, "max_tokens": 0})
-	if c := r.Choices[0]; c.Text != prompt || len(c.Logprobs.Tokens) != len(ptoks) || r.Usage.CompletionTokens != 0 || *c.FinishReason != "length" {
-		t.Errorf("scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
-	}
+	c = r.Choices[0]
+	assert.False(t, c.Text != prompt || len(c.Logprobs.Tokens) != len(ptoks) || r.Usage.CompletionTokens != 0 || *c.FinishReason != "length", "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
 }
 
 func TestStop(t *testing.T) {
