@@ -77,9 +77,7 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 	tb.Helper()
 	require.NotNil(tb, lp, "logprobs = null; want an object")
 	n := len(lp.Tokens)
-	if len(lp.TokenLogprobs) != n || len(lp.TopLogprobs) != n || len(lp.TextOffset) != n {
-		tb.Fatalf("logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
-	}
+	require.False(tb, len(lp.TokenLogprobs) != n || len(lp.TopLogprobs) != n || len(lp.TextOffset) != n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
 	joined, off := "", base
 	for i, tok := range lp.Tokens {
 		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
@@ -91,9 +89,7 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 		}
 		assert.Less(tb, *lp.TokenLogprobs[i], float64(0), "token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
 		top := lp.TopLogprobs[i].Map()
-		if len(top) != k {
-			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
-		}
+		assert.Len(tb, top, k, "top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		var mass float64
 		best, bestLP := "", -1e300
 		for t, v := range top {

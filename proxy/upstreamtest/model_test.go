@@ -21,9 +21,7 @@ func TestVocabulary(t *testing.T) {
 		assert.False(t, word && (!strings.HasPrefix(tok, " ") || strings.TrimSpace(tok) != tok[1:] || tok == " "), "word token %d = %q; want one space then a word", i, tok)
 		assert.False(t, !word && len(tok) != 1, "punctuation token %d = %q; want one mark", i, tok)
 	}
-	if len(v) < 200 {
-		t.Errorf("vocabulary has %d tokens; want a few hundred", len(v))
-	}
+	assert.GreaterOrEqual(t, len(v), 200, "vocabulary has %d tokens; want a few hundred", len(v))
 }
 
 func TestTokenizeConcatenates(t *testing.T) {
@@ -93,9 +91,7 @@ func TestGenerateEndsOnItsOwn(t *testing.T) {
 			assert.Contains(t, ".!?", last, "ended on its own after %q; want a sentence end", last)
 		case "length":
 			lengths++
-			if len(toks) != 16 {
-				t.Errorf("finish length with %d tokens; want 16", len(toks))
-			}
+			assert.Len(t, toks, 16, "finish length with %d tokens; want 16", len(toks))
 		}
 	}
 	assert.False(t, stops == 0 || lengths == 0, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
@@ -145,7 +141,5 @@ func TestSamplingTopP(t *testing.T) {
 	for range 500 {
 		picked[s.pick(&c)] = true
 	}
-	if len(picked) < 3 {
-		t.Errorf("temperature 1 picked %d distinct candidates in 500 draws; want several", len(picked))
-	}
+	assert.GreaterOrEqual(t, len(picked), 3, "temperature 1 picked %d distinct candidates in 500 draws; want several", len(picked))
 }

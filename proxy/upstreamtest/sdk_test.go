@@ -44,9 +44,7 @@ func TestSDKCompletion(t *testing.T) {
 	assert.False(t, long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "", "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	lc := long.Choices[0]
 	checkSDKLogprobs(t, lc.Text, lc.LogProbs, 5)
-	if long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens) {
-		t.Errorf("usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
-	}
+	assert.False(t, long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens), "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
 
 	// Greedy prefix property through the SDK.
 	short, err := c.CreateCompletion(ctx, openai.CompletionRequest{
@@ -64,9 +62,7 @@ func TestSDKCompletion(t *testing.T) {
 		Model: upstreamtest.ModelSmall, Prompt: prompts, MaxTokens: 8, Temperature: greedy, N: 2, LogProbs: 2,
 	})
 	require.NoError(t, err)
-	if len(batch.Choices) != 6 {
-		t.Fatalf("%d choices; want 6", len(batch.Choices))
-	}
+	require.Len(t, batch.Choices, 6, "%d choices; want 6", len(batch.Choices))
 	promptTokens, completionTokens := 0, 0
 	for i, p := range prompts {
 		one, err := c.CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: p, MaxTokens: 8, Temperature: greedy})
@@ -104,9 +100,7 @@ func checkSDKLogprobs(tb testing.TB, text string, lp openai.LogprobResult, k int
 		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
 		off += len(tok)
 		top := lp.TopLogprobs[i]
-		if len(top) != k {
-			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
-		}
+		assert.Len(tb, top, k, "top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		best := ""
 		for t, v := range top {
 			if best == "" || v > top[best] {
@@ -172,9 +166,7 @@ func TestSDKChat(t *testing.T) {
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3, N: 2,
 	})
 	require.NoError(t, err)
-	if resp.Object != "chat.completion" || len(resp.Choices) != 2 {
-		t.Fatalf("object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
-	}
+	require.False(t, resp.Object != "chat.completion" || len(resp.Choices) != 2, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
 	total := 0
 	for j, ch := range resp.Choices {
 		require.False(t, ch.Index != j || ch.Message.Role != openai.ChatMessageRoleAssistant || ch.LogProbs == nil, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
@@ -182,9 +174,7 @@ func TestSDKChat(t *testing.T) {
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
 			assert.Equal(t, tl.Token, string(tl.Bytes), "bytes %v do not spell %q", tl.Bytes, tl.Token)
-			if len(tl.TopLogProbs) != 3 || tl.TopLogProbs[0].Token != tl.Token || tl.TopLogProbs[0].LogProb != tl.LogProb {
-				t.Errorf("token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
-			}
+			assert.False(t, len(tl.TopLogProbs) != 3 || tl.TopLogProbs[0].Token != tl.Token || tl.TopLogProbs[0].LogProb != tl.LogProb, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
 		}
 		assert.Equal(t, ch.Message.Content, joined, "tokens join to %q; content %q", joined, ch.Message.Content)
 		total += len(ch.LogProbs.Content)
@@ -219,9 +209,7 @@ func TestSDKChat(t *testing.T) {
 			if ch.Logprobs != nil {
 				for _, tl := range ch.Logprobs.Content {
 					toks = append(toks, tl.Token)
-					if len(tl.TopLogprobs) != 3 {
-						t.Errorf("streamed token %q has %d top entries; want 3", tl.Token, len(tl.TopLogprobs))
-					}
+					assert.Len(t, tl.TopLogprobs, 3, "streamed token %q has %d top entries; want 3", tl.Token, len(tl.TopLogprobs))
 				}
 			}
 			if ch.FinishReason != "" {
@@ -231,9 +219,7 @@ func TestSDKChat(t *testing.T) {
 	}
 	want := resp.Choices[0]
 	assert.False(t, role != "assistant" || content != want.Message.Content || strings.Join(toks, "") != content || fin != want.FinishReason, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
-	if streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content) {
-		t.Errorf("stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
-	}
+	assert.False(t, streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content), "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
 	got := up.Calls().Chat
 	assert.Equal(t, 2, got, "Calls().Chat = %d; want 2", got)
 }

@@ -213,9 +213,7 @@ func TestCountersRequestsReset(t *testing.T) {
 		t.Errorf("Prompts() = %d; want 7", got)
 	}
 	reqs := up.Requests()
-	if len(reqs) != 4 {
-		t.Fatalf("Requests() has %d entries; want 4", len(reqs))
-	}
+	require.Len(t, reqs, 4, "Requests() has %d entries; want 4", len(reqs))
 	last := reqs[3]
 	assert.False(t, last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1", "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
 	assert.Contains(t, string(last.Body), `"messages"`, "last body = %s; want the chat body", last.Body)
@@ -227,9 +225,7 @@ func TestCountersRequestsReset(t *testing.T) {
 	up.Reset()
 	got = up.Calls()
 	assert.True(t, got == (upstreamtest.Calls{}), "after Reset, Calls() = %+v; want zero", got)
-	if up.Prompts() != 0 || len(up.Requests()) != 0 {
-		t.Errorf("after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
-	}
+	assert.False(t, up.Prompts() != 0 || len(up.Requests()) != 0, "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
 }
 
 func TestCompletionsGreedyAndLogprobs(t *testing.T) {
@@ -305,9 +301,7 @@ func TestArrayPromptsAndIndexes(t *testing.T) {
 	pj, _ := json.Marshal(prompts)
 	var batch wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%s,"max_tokens":6,"temperature":0,"n":2,"logprobs":1}`, pj), &batch)
-	if len(batch.Choices) != 6 {
-		t.Fatalf("%d choices; want 3 prompts x n=2", len(batch.Choices))
-	}
+	require.Len(t, batch.Choices, 6, "%d choices; want 3 prompts x n=2", len(batch.Choices))
 	completionTokens := 0
 	for i, c := range batch.Choices {
 		assert.Equal(t, i, c.Index, "choice %d has index %d", i, c.Index)
@@ -331,9 +325,7 @@ func TestTokenIDPrompts(t *testing.T) {
 	assert.Equal(t, 2, ids.Usage.PromptTokens, "prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
-	if len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3 {
-		t.Errorf("array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
-	}
+	assert.False(t, len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
 }
 
 func TestStopSequences(t *testing.T) {
@@ -359,9 +351,7 @@ func TestStopSequences(t *testing.T) {
 		postOK(t, up, "/completions", fmt.Sprintf(body, `,"stop":`+string(stop)), &got)
 		c := got.Choices[0]
 		want := strings.Join(toks[:tt.keep], "")
-		if strings.Index(strings.Join(toks, ""), tt.stop) < len(want) {
-			t.Fatalf("%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
-		}
+		require.GreaterOrEqual(t, strings.Index(strings.Join(toks, ""), tt.stop), len(want), "%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
 		assert.False(t, c.Text != want || *c.FinishReason != "stop", "%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
 		checkLogprobs(t, c.Text, c.Logprobs, 0, true, 0)
 	}
@@ -386,9 +376,7 @@ func TestEndsOnItsOwn(t *testing.T) {
 				t.Errorf("stopped after %q", last)
 			}
 		case "length":
-			if len(ch.Logprobs.Tokens) != 16 {
-				t.Errorf("length with %d tokens", len(ch.Logprobs.Tokens))
-			}
+			assert.Len(t, ch.Logprobs.Tokens, 16, "length with %d tokens", len(ch.Logprobs.Tokens))
 		default:
 			t.Errorf("finish_reason %q", *ch.FinishReason)
 		}
@@ -443,15 +431,11 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 		require.NoError(t, json.Unmarshal(data, &c), "event %d %s", i, data)
 		assert.Equal(t, "text_completion", c.Object, "event %d object %q", i, c.Object)
 		if c.Usage != nil {
-			if i != len(events)-1 || len(c.Choices) != 0 {
-				t.Errorf("usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
-			}
+			assert.False(t, i != len(events)-1 || len(c.Choices) != 0, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
 			streamUsage = c.Usage
 			continue
 		}
-		if len(c.Choices) != 1 {
-			t.Fatalf("event %d has %d choices; want 1", i, len(c.Choices))
-		}
+		require.Len(t, c.Choices, 1, "event %d has %d choices; want 1", i, len(c.Choices))
 		ch := c.Choices[0]
 		a := got[ch.Index]
 		if a == nil {
@@ -461,9 +445,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 		assert.Equal(t, "", a.finish, "choice %d has a chunk after its finish_reason", ch.Index)
 		require.NotNil(t, ch.Logprobs, "event %d: logprobs null", i)
 		for j, off := range ch.Logprobs.TextOffset {
-			if off != len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")) {
-				t.Errorf("choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
-			}
+			assert.Equal(t, len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")), off, "choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
 		}
 		a.text += ch.Text
 		a.lp.Tokens = append(a.lp.Tokens, ch.Logprobs.Tokens...)
@@ -474,9 +456,7 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 			a.finish = *ch.FinishReason
 		}
 	}
-	if len(got) != len(whole.Choices) {
-		t.Fatalf("stream has %d choices; want %d", len(got), len(whole.Choices))
-	}
+	require.Len(t, got, len(whole.Choices), "stream has %d choices; want %d", len(got), len(whole.Choices))
 	for _, w := range whole.Choices {
 		a := got[w.Index]
 		assert.False(t, a.text != w.Text || a.finish != *w.FinishReason, "choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
@@ -509,9 +489,7 @@ func TestChat(t *testing.T) {
 	for i, tl := range lc.Logprobs.Content {
 		joined += tl.Token
 		assert.Equal(t, tl.Token, string(bytesOf(tl.Bytes)), "token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
-		if len(tl.TopLogprobs) != 4 {
-			t.Fatalf("token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
-		}
+		require.Len(t, tl.TopLogprobs, 4, "token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
 		assert.False(t, tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0, "greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
 		var mass float64
 		for j, top := range tl.TopLogprobs {
@@ -524,16 +502,12 @@ func TestChat(t *testing.T) {
 	assert.Equal(t, lc.Message.Content, joined, "logprob tokens join to %q; content %q", joined, lc.Message.Content)
 	n := len(short.Choices[0].Logprobs.Content)
 	assert.False(t, !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop"), "5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
-	if long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens {
-		t.Errorf("usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
-	}
+	assert.False(t, long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
 	// logprobs without top_logprobs: the content list with empty tops.
 	var bare wire.ChatResponse
 	postOK(t, up, "/chat/completions", `{"model":"quill-large","messages":[{"role":"user","content":"hi"}],"max_tokens":3,"logprobs":true}`, &bare)
 	for _, tl := range bare.Choices[0].Logprobs.Content {
-		if len(tl.TopLogprobs) != 0 {
-			t.Errorf("top_logprobs %v; want none", tl.TopLogprobs)
-		}
+		assert.Len(t, tl.TopLogprobs, 0, "top_logprobs %v; want none", tl.TopLogprobs)
 	}
 }
 
@@ -566,9 +540,7 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 		require.NoError(t, json.Unmarshal(data, &c))
 		assert.Equal(t, "chat.completion.chunk", c.Object, "object %q", c.Object)
 		if c.Usage != nil {
-			if i != len(events)-1 || len(c.Choices) != 0 {
-				t.Errorf("usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
-			}
+			assert.False(t, i != len(events)-1 || len(c.Choices) != 0, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
 			streamUsage = c.Usage
 			continue
 		}
