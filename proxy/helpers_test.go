@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/stintlab/stint/cache"
@@ -43,9 +46,7 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 	up := upstreamtest.New(upstreamtest.Options{Key: upstreamKey})
 	t.Cleanup(up.Close)
 	disk, err := boltstore.Open(filepath.Join(t.TempDir(), "stint.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatalf("open store: %v", err)
-	}
+	require.NoError(t, err, "open store")
 	store := cache.NewHot(disk, cache.HotOptions{MaxBytes: 8 << 20})
 	t.Cleanup(func() { _ = store.Close() }) // stops the tier's goroutines and closes disk
 	reg := prometheus.NewRegistry()
@@ -59,13 +60,9 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 		fn(&o)
 	}
 	p, err := proxy.New(o)
-	if err != nil {
-		t.Fatalf("proxy.New: %v", err)
-	}
+	require.NoError(t, err, "proxy.New")
 	t.Cleanup(func() {
-		if err := p.Close(context.Background()); err != nil {
-			t.Errorf("proxy.Close: %v", err)
-		}
+		assert.NoError(t, p.Close(context.Background()), "proxy.Close")
 	})
 	srv := httptest.NewServer(p)
 	t.Cleanup(srv.Close)
@@ -226,9 +223,7 @@ type completionLP struct {
 func decodeCompletion(t *testing.T, b []byte) completion {
 	t.Helper()
 	var c completion
-	if err := json.Unmarshal(b, &c); err != nil {
-		t.Fatalf("decode completion %s: %v", b, err)
-	}
+	require.NoError(t, json.Unmarshal(b, &c), "decode completion %s", b)
 	return c
 }
 
@@ -260,9 +255,7 @@ type chatAnswer struct {
 func decodeChat(t *testing.T, b []byte) chatAnswer {
 	t.Helper()
 	var c chatAnswer
-	if err := json.Unmarshal(b, &c); err != nil {
-		t.Fatalf("decode chat %s: %v", b, err)
-	}
+	require.NoError(t, json.Unmarshal(b, &c), "decode chat %s", b)
 	return c
 }
 
@@ -277,14 +270,10 @@ func events(t *testing.T, body []byte) []string {
 		if err == io.EOF {
 			break
 		}
-		if err != nil {
-			t.Fatalf("read stream: %v\n%s", err, body)
-		}
+		require.NoError(t, err, "read stream: %v\n%s", err, body)
 		out = append(out, ev.Data)
 	}
-	if len(out) == 0 || out[len(out)-1] != sse.Done {
-		t.Fatalf("stream does not end with [DONE]:\n%s", body)
-	}
+	require.False(t, len(out) == 0 || out[len(out)-1] != sse.Done, "stream does not end with [DONE]:\n%s", body)
 	return out[:len(out)-1]
 }
 
@@ -304,9 +293,7 @@ func streamedText(t *testing.T, chat bool, datas []string) (map[int]string, *com
 			} `json:"choices"`
 			Usage json.RawMessage `json:"usage"`
 		}
-		if err := json.Unmarshal([]byte(d), &c); err != nil {
-			t.Fatalf("chunk %s: %v", d, err)
-		}
+		require.NoError(t, json.Unmarshal([]byte(d), &c), "chunk %s", d)
 		if len(c.Choices) == 0 && len(c.Usage) > 0 && string(c.Usage) != "null" {
 			u := decodeCompletion(t, []byte(d))
 			usageChunk = &u
