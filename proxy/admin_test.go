@@ -115,9 +115,7 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 		return st.Total.Requests == 4
 	})
 	assert.False(t, st.Total.Requests != 4 || st.Total.UpstreamCalls != 3 || st.Total.SpentUSD != budget.Nanos(spent).String(), "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
-	if len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String() {
-		t.Errorf("standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
-	}
+	assert.False(t, len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String(), "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
 
 	// A budget below what is spent: the next miss is refused.
 	status, b := r.adminDo("PUT", "budgets/lab", adminKey, `{"usd":0.000001,"per":"total"}`)

@@ -190,9 +190,7 @@ func TestBatchMergeWithSeveralChoicesPerPrompt(t *testing.T) {
 	mixed := r.complete(body("p three", "p two", "p one"))
 	require.Equal(t, proxy.OutcomePartial, mixed.cache(), "cache %q, want partial", mixed.cache())
 	m := decodeCompletion(t, mixed.body)
-	if len(m.Choices) != 6 {
-		t.Fatalf("%d choices, want 6", len(m.Choices))
-	}
+	require.Len(t, m.Choices, 6, "%d choices, want 6", len(m.Choices))
 	for i, ch := range m.Choices {
 		assert.Equal(t, i, ch.Index, "choice %d has index %d", i, ch.Index)
 	}
@@ -212,9 +210,7 @@ func TestFewerLogprobsServedFromLargerAnswer(t *testing.T) {
 	got := decodeCompletion(t, small.body)
 	require.Equal(t, want.Choices[0].Text, got.Choices[0].Text, "text %q, want %q", got.Choices[0].Text, want.Choices[0].Text)
 	for i, top := range got.Choices[0].Logprobs.TopLogprobs {
-		if len(top) != 2 {
-			t.Fatalf("position %d has %d top logprobs, want 2", i, len(top))
-		}
+		require.Len(t, top, 2, "position %d has %d top logprobs, want 2", i, len(top))
 		for tok, lp := range want.Choices[0].Logprobs.TopLogprobs[i] {
 			assert.Equal(t, lp, top[tok], "position %d token %q: %v, want %v", i, tok, top[tok], lp)
 		}
@@ -255,9 +251,7 @@ func TestChatFewerTopLogprobs(t *testing.T) {
 	require.Equal(t, want.Choices[0].Message.Content, g.Choices[0].Message.Content, "content %q, want %q", g.Choices[0].Message.Content, want.Choices[0].Message.Content)
 	for i, c := range g.Choices[0].Logprobs.Content {
 		w := want.Choices[0].Logprobs.Content[i]
-		if len(c.TopLogprobs) != 1 || c.TopLogprobs[0].Token != w.TopLogprobs[0].Token {
-			t.Errorf("token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
-		}
+		assert.False(t, len(c.TopLogprobs) != 1 || c.TopLogprobs[0].Token != w.TopLogprobs[0].Token, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
 	}
 	if plain := r.chat(body(-1)); plain.cache() != proxy.OutcomeHit || decodeChat(t, plain.body).Choices[0].Logprobs != nil {
 		t.Errorf("no logprobs after 4: cache %q body %s", plain.cache(), plain.body)

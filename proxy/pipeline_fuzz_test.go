@@ -81,9 +81,7 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 	require.False(t, req.model == "" || req.n < 1 || req.n > maxN, "parsed model %q n %d", req.model, req.n)
 	items := []json.RawMessage{nil}
 	if ep == endpointCompletions {
-		if len(req.prompts) == 0 || len(req.prompts) > fuzzMaxPrompts {
-			t.Fatalf("%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
-		}
+		require.False(t, len(req.prompts) == 0 || len(req.prompts) > fuzzMaxPrompts, "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
 		items = req.prompts
 	}
 	keys := make([]string, len(items))
@@ -107,9 +105,7 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 		if ep == endpointCompletions {
 			backItems = back.prompts
 		}
-		if len(backItems) != len(items) {
-			t.Fatalf("upstream body has %d prompt items, want %d", len(backItems), len(items))
-		}
+		require.Len(t, backItems, len(items), "upstream body has %d prompt items, want %d", len(backItems), len(items))
 		for i, it := range backItems {
 			k, err := keyBody(back, it)
 			if err != nil || string(k) != keys[i] {
@@ -180,9 +176,7 @@ func checkSplitMerge(t *testing.T, m *material) {
 
 	parts, err := splitAnswer(req, full, k, prompts)
 	require.NoError(t, err, "split %s", full)
-	if len(parts) != k {
-		t.Fatalf("split into %d answers, want %d", len(parts), k)
-	}
+	require.Len(t, parts, k, "split into %d answers, want %d", len(parts), k)
 	var sum wire.Usage
 	for j, p := range parts {
 		var a struct {
@@ -341,9 +335,7 @@ func checkShape(t *testing.T, m *material) {
 	}
 	require.False(t, c.Logprobs == nil || !slices.Equal(c.Logprobs.Tokens, tokens[:wantMax]) || len(c.Logprobs.TopLogprobs) != wantMax, "shaped logprobs %s, want the first %d tokens", body, wantMax)
 	for i, top := range c.Logprobs.TopLogprobs {
-		if len(top) != min(wantLP, k) {
-			t.Fatalf("position %d kept %d top entries, want %d", i, len(top), min(wantLP, k))
-		}
+		require.Len(t, top, min(wantLP, k), "position %d kept %d top entries, want %d", i, len(top), min(wantLP, k))
 		best := slices.Clone(entries[i])
 		sort.Sort(sort.Reverse(sort.Float64Slice(best)))
 		var kept []float64

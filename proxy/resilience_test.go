@@ -271,9 +271,7 @@ func TestRetryBackoffAndLimits(t *testing.T) {
 			n := r.upstreamGenerations()
 			assert.Equal(t, tt.wantCalls, n, "upstream calls %d, want %d", n, tt.wantCalls)
 			w := sl.waits()
-			if len(w) != tt.waits {
-				t.Fatalf("waits %v, want %d", w, tt.waits)
-			}
+			require.Len(t, w, tt.waits, "waits %v, want %d", w, tt.waits)
 			for n, d := range w {
 				// Full jitter: retry n waits within [0, min(cap, base·2^n)].
 				ceil := min(p.MaxDelay, p.Base<<n)

@@ -42,9 +42,7 @@ func TestRealClientLibrary(t *testing.T) {
 		req.Temperature = math.SmallestNonzeroFloat32
 		a, err := client.CreateCompletion(ctx, req)
 		require.NoError(t, err)
-		if len(a.Choices) != 3 {
-			t.Fatalf("%d choices, want 3", len(a.Choices))
-		}
+		require.Len(t, a.Choices, 3, "%d choices, want 3", len(a.Choices))
 		req.Prompt = []string{"hive three", "hive four"}
 		before := r.up.Prompts()
 		b, err := client.CreateCompletion(ctx, req)

@@ -108,9 +108,7 @@ func TestStreamedBatchAllMissAndPartial(t *testing.T) {
 	all := r.complete(greedy([]string{"four barges", "five barges"}, "stream", true))
 	require.Equal(t, proxy.OutcomeMiss, all.cache(), "cache %q, want miss", all.cache())
 	texts, _ = streamedText(t, false, events(t, all.body))
-	if len(texts) != 2 {
-		t.Fatalf("streamed %d choices, want 2", len(texts))
-	}
+	require.Len(t, texts, 2, "streamed %d choices, want 2", len(texts))
 	got := r.complete(greedy([]string{"five barges"}))
 	assert.Equal(t, proxy.OutcomeHit, got.cache(), "prompt from a streamed batch: cache %q, want hit", got.cache())
 }
