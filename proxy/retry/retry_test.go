@@ -41,9 +41,8 @@ func TestRetryAfter(t *testing.T) {
 				h.Set("Retry-After", tt.header)
 			}
 			got, ok := retry.RetryAfter(h, now)
-			if got != tt.want || ok != tt.ok {
-				t.Errorf("RetryAfter(%q) = %v, %v; want %v, %v", tt.header, got, ok, tt.want, tt.ok)
-			}
+			assert.Equal(t, tt.want, got, "RetryAfter(%q) wait", tt.header)
+			assert.Equal(t, tt.ok, ok, "RetryAfter(%q) ok", tt.header)
 		})
 	}
 }
