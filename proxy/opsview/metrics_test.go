@@ -53,9 +53,7 @@ func TestQuantileFollowsHistogramQuantile(t *testing.T) {
 	}
 	var empty histogram
 	empty.add(histogramOf(t, buckets))
-	if got := empty.quantile(0.5); got != nil {
-		t.Errorf("quantile of nothing = %v, want nil", *got)
-	}
+	assert.Nil(t, empty.quantile(0.5), "quantile of nothing, want nil")
 }
 
 // TestHistogramsAddAcrossEndpoints: an upstream's latency is the sum of

@@ -100,12 +100,11 @@ func TestAssetsAndTypes(t *testing.T) {
 		assert.False(t, resp.StatusCode != http.StatusOK || !strings.Contains(resp.Header.Get("Content-Type"), want) || body == "", "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
 	}
 	srv.Client().CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
-	if resp, _ := get(t, srv, "/ui/", ""); resp.StatusCode != http.StatusMovedPermanently || resp.Header.Get("Location") != "/ui" {
-		t.Errorf("/ui/: %d to %q, want a redirect to /ui", resp.StatusCode, resp.Header.Get("Location"))
-	}
-	if resp, _ := get(t, srv, "/ui/static/page.html", auth); resp.StatusCode != http.StatusNotFound {
-		t.Errorf("the template is served as an asset: %d", resp.StatusCode)
-	}
+	redirect, _ := get(t, srv, "/ui/", "")
+	assert.Equal(t, http.StatusMovedPermanently, redirect.StatusCode, "/ui/: want a redirect")
+	assert.Equal(t, "/ui", redirect.Header.Get("Location"), "/ui/: want a redirect to /ui")
+	asset, _ := get(t, srv, "/ui/static/page.html", auth)
+	assert.Equal(t, http.StatusNotFound, asset.StatusCode, "the template is served as an asset")
 	resp, body := get(t, srv, "/ui/snapshot.json?since=fortnight", auth)
 	assert.False(t, resp.StatusCode != http.StatusBadRequest || !strings.Contains(body, "since"), "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
 }
@@ -137,9 +136,7 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 	require.Len(t, s.Upstreams, len(want), "upstreams %+v, want %d", s.Upstreams, len(want))
 	for _, u := range s.Upstreams {
 		assert.Equal(t, want[u.Name], u.Breaker, "%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
-		if (u.Name == "east") != (u.Trips != nil && *u.Trips == 3) {
-			t.Errorf("%s: trips %v", u.Name, u.Trips)
-		}
+		assert.Equal(t, u.Name == "east", u.Trips != nil && *u.Trips == 3, "%s: trips %v, want 3 for east alone", u.Name, u.Trips)
 	}
 	_, page := get(t, srv, "/ui", "Bearer "+adminKey)
 	for _, frag := range []string{`data-figure="breaker-east" data-value="open">open<`, `data-figure="breaker-west" data-value="none">no breaker<`, `data-figure="breaker-south" data-value="half-open"`} {
