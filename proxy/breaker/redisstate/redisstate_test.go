@@ -48,13 +48,13 @@ func TestStateRoundTripAndKeysShareASlot(t *testing.T) {
 			c := be.start(t).client(t)
 			s, err := redisstate.New(c, redisstate.Options{Prefix: "st"})
 			require.NoError(t, err)
-			if b, err := s.GetData("gobreaker:state:main"); err != nil || b != nil {
-				t.Fatalf("no state yet: %q %v, want nil nil", b, err)
-			}
+			state, err := s.GetData("gobreaker:state:main")
+			require.NoError(t, err, "no state yet")
+			require.Nil(t, state, "no state yet: %q, want nil", state)
 			require.NoError(t, s.SetData("gobreaker:state:main", []byte(`{"state":2}`)))
-			if b, err := s.GetData("gobreaker:state:main"); err != nil || string(b) != `{"state":2}` {
-				t.Fatalf("GetData = %q %v", b, err)
-			}
+			state, err = s.GetData("gobreaker:state:main")
+			require.NoError(t, err, "GetData")
+			require.Equal(t, `{"state":2}`, string(state), "GetData")
 			require.NoError(t, s.Lock("gobreaker:mutex:main"))
 			ctx := context.Background()
 			// Named keys, not KEYS: a cluster client sends KEYS to one node.
