@@ -118,7 +118,7 @@ func awaitState(t *testing.T, b *breaker.Breaker, want gobreaker.State) {
 		}
 		if time.Now().After(deadline) {
 			st, _ := b.State()
-			t.Fatalf("breaker stayed %v, want %v", st, want)
+			require.Failf(t, "breaker did not change state", "breaker stayed %v, want %v", st, want)
 		}
 		time.Sleep(5 * time.Millisecond)
 	}
@@ -172,7 +172,7 @@ func testSharedStateAcrossReplicas(t *testing.T, client func(t *testing.T) redis
 		st, err := redisstate.New(client(t), redisstate.Options{Prefix: "t"})
 		require.NoError(t, err)
 		b, err := breaker.New("shared-up", breaker.Settings{ConsecutiveFailures: 4, FailureRatio: -1, OpenFor: 1500 * time.Millisecond}, st,
-			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { t.Errorf("store error: %v", err) }})
+			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { assert.Failf(t, "store error", "%v", err) }})
 		require.NoError(t, err)
 		return b
 	}
