@@ -171,9 +171,8 @@ func TestBodyDroppedEarly(t *testing.T) {
 	req, _ := http.NewRequestWithContext(t.Context(), http.MethodGet, srv.URL, nil)
 	resp, err := tr.RoundTrip(req)
 	require.NoError(t, err)
-	if _, err := resp.Body.Read(make([]byte, 10)); err != nil {
-		t.Fatal(err)
-	}
+	_, err = resp.Body.Read(make([]byte, 10))
+	require.NoError(t, err)
 	resp.Body.Close()
 	n := tr.idleCount()
 	assert.Equal(t, 0, n, "%d idle connections after an early close, want 0", n)
@@ -324,7 +323,7 @@ func TestConcurrentCalls(t *testing.T) {
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Error(err)
+		assert.NoError(t, err)
 	}
 	n := tr.idleCount()
 	assert.LessOrEqual(t, n, 4, "%d idle connections kept, cap 4", n)
