@@ -145,8 +145,9 @@ func TestPrefixCacheExact(t *testing.T) {
 			require.Equal(t, b.lps[j].lp, a.lps[j].lp, "request %d: prompt logprob %d differs", i, j)
 		}
 		want := map[int]int{0: 0, 1: len(m.tok.Encode(shared)), 2: len(toks)}[i]
-		if i == 1 && (a.reused < want-1 || a.reused >= len(toks)) {
-			t.Errorf("request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
+		if i == 1 {
+			assert.GreaterOrEqual(t, a.reused, want-1, "request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
+			assert.Less(t, a.reused, len(toks), "request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
 		}
 		assert.False(t, i != 1 && a.reused != want, "request %d: reused %d positions, want %d", i, a.reused, want)
 	}
@@ -162,10 +163,10 @@ func TestPrefixCacheEviction(t *testing.T) {
 	c.add(mk(1, 2)) // covered
 	require.Len(t, c.entries, 1, "covered prefix was added")
 	c.add(mk(7, 8, 9, 10, 11)) // evicts the oldest
-	if _, n := c.longest([]int{1, 2, 3}); n != 0 || c.size != 5 {
-		t.Errorf("after eviction: prefix %d size %d; want 0, 5", n, c.size)
-	}
-	_, n := c.longest([]int{7, 8, 0})
+	_, n := c.longest([]int{1, 2, 3})
+	assert.Equal(t, 0, n, "after eviction: prefix %d, want 0", n)
+	assert.Equal(t, 5, c.size, "after eviction: size %d, want 5", c.size)
+	_, n = c.longest([]int{7, 8, 0})
 	assert.Equal(t, 2, n, "longest: got %d, want 2", n)
 }
 

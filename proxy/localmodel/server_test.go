@@ -62,9 +62,9 @@ func TestEchoLogprobs(t *testing.T) {
 	ptoks := m.tok.Encode(prompt)
 	lp := c.Logprobs
 	require.Len(t, lp.Tokens, len(ptoks)+3, "got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
-	if lp.TokenLogprobs[0] != nil || lp.TopLogprobs[0] != nil || lp.TextOffset[0] != 0 {
-		t.Errorf("first prompt token: logprob %v top %v offset %d; want null, null, 0", lp.TokenLogprobs[0], lp.TopLogprobs[0], lp.TextOffset[0])
-	}
+	assert.Nil(t, lp.TokenLogprobs[0], "first prompt token: logprob, want null")
+	assert.Nil(t, lp.TopLogprobs[0], "first prompt token: top_logprobs, want null")
+	assert.Equal(t, 0, lp.TextOffset[0], "first prompt token: offset")
 	out, err := m.Forward(context.Background(), append([]int{1}, ptoks...))
 	require.NoError(t, err)
 	for i := 1; i < len(ptoks); i++ {
