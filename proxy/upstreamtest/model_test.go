@@ -122,9 +122,8 @@ func TestStopCut(t *testing.T) {
 	for _, tt := range tests {
 		text := joinTokens(tt.toks)
 		got, ok := stopCut(tt.toks, text, tt.stops)
-		if got != tt.want || ok != tt.wantOK {
-			t.Errorf("stopCut(%q, %q) = %d, %v; want %d, %v", text, tt.stops, got, ok, tt.want, tt.wantOK)
-		}
+		assert.Equal(t, tt.want, got, "stopCut(%q, %q) cut", text, tt.stops)
+		assert.Equal(t, tt.wantOK, ok, "stopCut(%q, %q) ok", text, tt.stops)
 	}
 }
 
