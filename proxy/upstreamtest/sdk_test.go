@@ -76,9 +76,7 @@ func TestSDKCompletion(t *testing.T) {
 		}
 	}
 	assert.False(t, batch.Usage.PromptTokens != promptTokens || batch.Usage.CompletionTokens != completionTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
-	if got := up.Prompts(); got != 2+3+3 {
-		t.Errorf("Prompts() = %d; want 8", got)
-	}
+	assert.Equal(t, 2+3+3, up.Prompts(), "Prompts()")
 
 	// Errors decode as the SDK's APIError.
 	_, err = c.CreateCompletion(ctx, openai.CompletionRequest{Model: "quill-huge", Prompt: "x"})

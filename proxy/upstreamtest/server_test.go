@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/base64"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io"
 	"net/http"
@@ -205,13 +204,9 @@ func TestCountersRequestsReset(t *testing.T) {
 	_ = chat
 	got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1})
 	assert.True(t, got == want, "Calls() = %+v; want %+v", got, want)
-	if got, want := up.Calls().Total(), 4; got != want {
-		t.Errorf("Calls().Total() = %d; want %d", got, want)
-	}
+	assert.Equal(t, 4, up.Calls().Total(), "Calls().Total()")
 	// 3 + 2 + 1 prompts, and the chat call counts one.
-	if got := up.Prompts(); got != 7 {
-		t.Errorf("Prompts() = %d; want 7", got)
-	}
+	assert.Equal(t, 7, up.Prompts(), "Prompts()")
 	reqs := up.Requests()
 	require.Len(t, reqs, 4, "Requests() has %d entries; want 4", len(reqs))
 	last := reqs[3]
@@ -250,8 +245,8 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 		checkLogprobs(t, sc.Text, sc.Logprobs, 3, true, 0)
 		wantToks := lc.Logprobs.Tokens[:min(n, len(lc.Logprobs.Tokens))]
 		assert.True(t, slices.Equal(sc.Logprobs.Tokens, wantToks), "max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
-		if n < len(lc.Logprobs.Tokens) && *sc.FinishReason != "length" {
-			t.Errorf("max_tokens %d: finish_reason %q; want length", n, *sc.FinishReason)
+		if n < len(lc.Logprobs.Tokens) {
+			assert.Equal(t, "length", *sc.FinishReason, "max_tokens %d: finish_reason", n)
 		}
 	}
 	// Echo: the prompt's tokens first, the first without a log-probability,
@@ -260,21 +255,16 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	postOK(t, up, "/completions", req(4, 2, true), &echoed)
 	ec := echoed.Choices[0]
 	checkLogprobs(t, ec.Text, ec.Logprobs, 2, false, 0)
-	if !strings.HasPrefix(ec.Text, prompt) || ec.Text[len(prompt):] != strings.Join(lc.Logprobs.Tokens[:4], "") {
-		t.Errorf("echoed text %q; want the prompt then %q", ec.Text, strings.Join(lc.Logprobs.Tokens[:4], ""))
-	}
-	if ec.Logprobs.TokenLogprobs[0] != nil || len(ec.Logprobs.Tokens) != 7+4 {
-		t.Errorf("echo tokens %q, first logprob %v; want 11 tokens, the first null", ec.Logprobs.Tokens, ec.Logprobs.TokenLogprobs[0])
-	}
+	assert.Equal(t, prompt+strings.Join(lc.Logprobs.Tokens[:4], ""), ec.Text, "echoed text: want the prompt then the first 4 tokens")
+	assert.Nil(t, ec.Logprobs.TokenLogprobs[0], "echo: first logprob, want null")
+	assert.Len(t, ec.Logprobs.Tokens, 7+4, "echo tokens %q, want 11", ec.Logprobs.Tokens)
 	assert.False(t, echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
 	// Without logprobs the field is null.
 	var plain wire.CompletionResponse
 	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
 	assert.False(t, resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`), "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
 	json.Unmarshal(b, &plain)
-	if got := strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""); plain.Choices[0].Text != got {
-		t.Errorf("default max_tokens answer %q; want the first 16 tokens %q", plain.Choices[0].Text, got)
-	}
+	assert.Equal(t, strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""), plain.Choices[0].Text, "default max_tokens answer: want the first 16 tokens")
 }
 
 func TestModelsDiffer(t *testing.T) {
@@ -372,13 +362,11 @@ func TestEndsOnItsOwn(t *testing.T) {
 		case "stop":
 			stops++
 			n := len(ch.Logprobs.Tokens)
-			if last := ch.Logprobs.Tokens[n-1]; !slices.Contains([]string{".", "!", "?"}, last) {
-				t.Errorf("stopped after %q", last)
-			}
+			assert.Contains(t, []string{".", "!", "?"}, ch.Logprobs.Tokens[n-1], "stopped after a token that ends no sentence")
 		case "length":
 			assert.Len(t, ch.Logprobs.Tokens, 16, "length with %d tokens", len(ch.Logprobs.Tokens))
 		default:
-			t.Errorf("finish_reason %q", *ch.FinishReason)
+			assert.Failf(t, "unexpected finish_reason", "finish_reason %q", *ch.FinishReason)
 		}
 	}
 	assert.False(t, stops == 0 || stops == 40, "%d of 40 answers ended on their own; want some but not all", stops)
@@ -585,15 +573,13 @@ func TestFaultStatus(t *testing.T) {
 		json.Unmarshal(b, &env)
 		assert.False(t, resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error", "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
 	}
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("third call: %d; want 200 once the two faults are used", resp.StatusCode)
-	}
+	third, _ := post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, third.StatusCode, "third call: want 200 once the two faults are used")
 	assert.False(t, up.Calls().Completions != 3 || up.Prompts() != 1, "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
 
 	up.FailNext(1, upstreamtest.Fault{Path: upstreamtest.PathChat, Status: 503, Body: "upstream busy"})
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("completions call under a chat-only fault: %d; want 200", resp.StatusCode)
-	}
+	completion, _ := post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, completion.StatusCode, "completions call under a chat-only fault")
 	resp, b := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}]}`, nil)
 	assert.False(t, resp.StatusCode != 503 || string(b) != "upstream busy", "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
 
@@ -682,9 +668,9 @@ func TestFaultCut(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	up.FailNext(1, upstreamtest.Fault{Cut: 20})
-	if _, b, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); !errors.Is(err, io.ErrUnexpectedEOF) || len(b) != 20 {
-		t.Errorf("cut JSON answer: %d bytes, error %v; want 20 bytes and an unexpected EOF", len(b), err)
-	}
+	_, cut, cutErr := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.ErrorIs(t, cutErr, io.ErrUnexpectedEOF, "cut JSON answer")
+	assert.Len(t, cut, 20, "cut JSON answer: %d bytes, want 20", len(cut))
 	up.FailNext(1, upstreamtest.Fault{Cut: 3})
 	req, _ := http.NewRequest(http.MethodPost, up.URL()+"/completions", strings.NewReader(`{"model":"quill-small","prompt":"hi","stream":true,"max_tokens":10}`))
 	resp, err := http.DefaultClient.Do(req)
@@ -714,8 +700,7 @@ func TestBlockRelease(t *testing.T) {
 	for range callers {
 		wg.Go(func() {
 			resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi","max_tokens":2}`)
-			if err != nil {
-				t.Error(err)
+			if !assert.NoError(t, err) {
 				results <- 0
 				return
 			}
@@ -731,7 +716,7 @@ func TestBlockRelease(t *testing.T) {
 	assert.Equal(t, callers, got, "held calls counted %d; want %d (counted on arrival)", got, callers)
 	select {
 	case s := <-results:
-		t.Fatalf("a held call answered (%d) before Release", s)
+		require.Failf(t, "a held call answered before Release", "status %d", s)
 	default:
 	}
 	assert.Equal(t, 0, up.Prompts(), "Prompts() = %d while held; want 0", up.Prompts())
