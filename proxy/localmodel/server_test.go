@@ -97,9 +97,9 @@ func TestStop(t *testing.T) {
 	// Logprobs cover the tokens whose text starts before the cut (the
 	// last one, " g", straddles it).
 	lp := c.Logprobs
-	if got := strings.TrimPrefix(strings.Join(lp.Tokens, ""), " "); !strings.HasPrefix(got, c.Text) || lp.TextOffset[len(lp.TextOffset)-1] >= len(c.Text) {
-		t.Errorf("tokens %q offsets %v do not end at the cut of %q", got, lp.TextOffset, c.Text)
-	}
+	joined := strings.TrimPrefix(strings.Join(lp.Tokens, ""), " ")
+	assert.True(t, strings.HasPrefix(joined, c.Text), "tokens %q do not start with the text %q", joined, c.Text)
+	assert.Less(t, lp.TextOffset[len(lp.TextOffset)-1], len(c.Text), "offsets %v do not end at the cut of %q", lp.TextOffset, c.Text)
 	body["stream"] = true
 	events, _ := stream(t, srv.URL+"/v1/completions", body)
 	got := joinCompletionStream(t, events)
