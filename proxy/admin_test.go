@@ -20,16 +20,12 @@ import (
 func (r *rig) adminDo(method, path, key, body string) (int, []byte) {
 	r.t.Helper()
 	req, err := http.NewRequest(method, r.srv.URL+proxy.AdminPrefix+path, strings.NewReader(body))
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	if key != "" {
 		req.Header.Set("Authorization", "Bearer "+key)
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return resp.StatusCode, b

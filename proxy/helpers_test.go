@@ -111,9 +111,7 @@ func (r *rig) post(path string, body any, headers ...string) response {
 		}
 	}
 	req, err := http.NewRequest(http.MethodPost, r.srv.URL+path, bytes.NewReader(raw))
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	req.Header.Set("Content-Type", "application/json")
 	if r.key != "" {
 		req.Header.Set("Authorization", "Bearer "+r.key)
@@ -122,9 +120,7 @@ func (r *rig) post(path string, body any, headers ...string) response {
 		req.Header.Set(headers[i], headers[i+1])
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatalf("POST %s: %v", path, err)
-	}
+	require.NoError(r.t, err, "POST %s", path)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b, readErr: err}
@@ -147,9 +143,7 @@ func (r *rig) direct(path string, body any) response {
 	req, _ := http.NewRequest(http.MethodPost, strings.TrimSuffix(r.up.URL(), "/v1")+path, bytes.NewReader(raw))
 	req.Header.Set("Authorization", "Bearer "+upstreamKey)
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatalf("direct: %v", err)
-	}
+	require.NoError(r.t, err, "direct")
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b}
@@ -163,9 +157,7 @@ func (r *rig) upstreamGenerations() int {
 func (r *rig) metric(name string, labels ...string) float64 {
 	r.t.Helper()
 	mfs, err := r.reg.Gather()
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	total := 0.0
 	for _, mf := range mfs {
 		if mf.GetName() != name {
