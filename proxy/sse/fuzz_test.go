@@ -49,7 +49,9 @@ func FuzzReader(f *testing.F) {
 		require.NoError(t, sse.NewWriter(&buf).WriteData(in))
 		got, err := readAll(t, sse.NewReaderSize(&buf, 1<<20))
 		want := strings.NewReplacer("\r\n", "\n", "\r", "\n").Replace(string(in))
-		require.False(t, len(got) != 1 || got[0].Data != want || err != io.EOF, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
+		require.Len(t, got, 1, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
+		require.Equal(t, want, got[0].Data, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
+		require.True(t, err == io.EOF, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
 	})
 }
 
