@@ -58,11 +58,13 @@ func TestBackoffStaysWithinFullJitterBounds(t *testing.T) {
 		var lo, hi time.Duration = ceil, 0
 		for range 2000 {
 			d := p.Backoff(n, r)
-			require.False(t, d < 0 || d > ceil, "Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
+			require.GreaterOrEqual(t, d, time.Duration(0), "Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
+			require.LessOrEqual(t, d, ceil, "Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
 			lo, hi = min(lo, d), max(hi, d)
 		}
 		// Full jitter spreads over the whole range, not just near the top.
-		assert.False(t, lo > ceil/10 || hi < ceil*9/10, "retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
+		assert.LessOrEqual(t, lo, ceil/10, "retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
+		assert.GreaterOrEqual(t, hi, ceil*9/10, "retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
 	}
 	got := p.Ceiling(200)
 	assert.Equal(t, time.Second, got, "Ceiling(200) = %v, want the cap (no overflow)", got)
