@@ -86,7 +86,8 @@ func TestPageNeedsAnAdminKey(t *testing.T) {
 			ch := resp.Header.Get("WWW-Authenticate")
 			assert.Equal(t, strings.HasPrefix(ch, `Basic realm="stint operator page"`), tt.challenge, "WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
 			assert.False(t, tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys"), "403 body %q does not say how to turn the page on", body)
-			assert.False(t, resp.Header.Get("Cache-Control") != "no-store" || !strings.Contains(resp.Header.Get("Content-Security-Policy"), "default-src 'none'"), "headers %v: want no-store and a strict content security policy", resp.Header)
+			assert.Equal(t, "no-store", resp.Header.Get("Cache-Control"), "headers %v: want no-store and a strict content security policy", resp.Header)
+			assert.Contains(t, resp.Header.Get("Content-Security-Policy"), "default-src 'none'", "headers %v: want no-store and a strict content security policy", resp.Header)
 		})
 	}
 }
@@ -97,7 +98,9 @@ func TestAssetsAndTypes(t *testing.T) {
 	for path, want := range map[string]string{"/ui": "text/html", "/ui/snapshot.json": "application/json",
 		"/ui/static/stint.css": "text/css", "/ui/static/live.js": "javascript"} {
 		resp, body := get(t, srv, path, auth)
-		assert.False(t, resp.StatusCode != http.StatusOK || !strings.Contains(resp.Header.Get("Content-Type"), want) || body == "", "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
+		assert.Equal(t, http.StatusOK, resp.StatusCode, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
+		assert.Contains(t, resp.Header.Get("Content-Type"), want, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
+		assert.NotEqual(t, "", body, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
 	}
 	srv.Client().CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
 	redirect, _ := get(t, srv, "/ui/", "")
@@ -106,7 +109,8 @@ func TestAssetsAndTypes(t *testing.T) {
 	asset, _ := get(t, srv, "/ui/static/page.html", auth)
 	assert.Equal(t, http.StatusNotFound, asset.StatusCode, "the template is served as an asset")
 	resp, body := get(t, srv, "/ui/snapshot.json?since=fortnight", auth)
-	assert.False(t, resp.StatusCode != http.StatusBadRequest || !strings.Contains(body, "since"), "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
+	assert.Equal(t, http.StatusBadRequest, resp.StatusCode, "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
+	assert.Contains(t, body, "since", "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
 }
 
 func snapshot(t *testing.T, srv *httptest.Server) (opsview.Snapshot, string) {
@@ -163,9 +167,11 @@ func TestSidecarStates(t *testing.T) {
 			s, raw := snapshot(t, srv)
 			assert.False(t, s.Search.Reachable || (tt.sidecar != "" && s.Search.Error != "sidecar unreachable"), "search %+v", s.Search)
 			_, page := get(t, srv, "/ui", "Bearer "+adminKey)
-			assert.False(t, !strings.Contains(page, tt.wantFigure) || !strings.Contains(page, tt.wantText), "page lacks %q / %q", tt.wantFigure, tt.wantText)
+			assert.Contains(t, page, tt.wantFigure, "page lacks %q / %q", tt.wantFigure, tt.wantText)
+			assert.Contains(t, page, tt.wantText, "page lacks %q / %q", tt.wantFigure, tt.wantText)
 			for _, secret := range []string{"sk-sidecar-secret", adminKey} {
-				assert.False(t, strings.Contains(page, secret) || strings.Contains(raw, secret), "%q leaked onto the page or snapshot", secret)
+				assert.NotContains(t, page, secret, "%q leaked onto the page or snapshot", secret)
+				assert.NotContains(t, raw, secret, "%q leaked onto the page or snapshot", secret)
 			}
 		})
 	}
