@@ -107,7 +107,9 @@ func TestRoundTripReuse(t *testing.T) {
 				body := fmt.Sprintf("call %d", i)
 				status, got, err := call(t.Context(), tr, srv.URL+"/v1/completions", body)
 				want := fmt.Sprintf(`{"path":"/v1/completions","got":%q}`, body)
-				require.False(t, err != nil || status != http.StatusOK || got != want, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
+				require.NoError(t, err, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
+				require.Equal(t, http.StatusOK, status, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
+				require.Equal(t, want, got, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
 			}
 			n := srv.conns.Load()
 			assert.Equal(t, tc.wantConns, n, "server saw %d connections, want %d", n, tc.wantConns)
@@ -137,7 +139,8 @@ func TestServerClosedIdleConnection(t *testing.T) {
 		return true
 	})
 	status, _, err := call(t.Context(), tr, srv.URL, "second")
-	require.False(t, err != nil || status != http.StatusOK, "call after the server closed the idle connection: %d %v", status, err)
+	require.NoError(t, err, "call after the server closed the idle connection: %d %v", status, err)
+	require.Equal(t, http.StatusOK, status, "call after the server closed the idle connection: %d %v", status, err)
 	n := srv.conns.Load()
 	assert.Equal(t, int32(2), n, "server saw %d connections, want 2 (the closed one replaced)", n)
 }
@@ -177,7 +180,9 @@ func TestBodyDroppedEarly(t *testing.T) {
 	n := tr.idleCount()
 	assert.Equal(t, 0, n, "%d idle connections after an early close, want 0", n)
 	status, got, err := call(t.Context(), tr, srv.URL, "")
-	require.False(t, err != nil || status != http.StatusOK || len(got) != 64<<10, "next call: %d, %d bytes, %v", status, len(got), err)
+	require.NoError(t, err, "next call: %d, %d bytes, %v", status, len(got), err)
+	require.Equal(t, http.StatusOK, status, "next call: %d, %d bytes, %v", status, len(got), err)
+	require.Len(t, got, 64<<10, "next call: %d, %d bytes, %v", status, len(got), err)
 	n = tr.idleCount()
 	assert.Equal(t, 1, n, "%d idle connections after a whole answer, want 1", n)
 }
@@ -244,11 +249,13 @@ func TestStreamArrivesAsSent(t *testing.T) {
 	defer resp.Body.Close()
 	sc := bufio.NewScanner(resp.Body)
 	for i := range 3 {
-		require.False(t, !sc.Scan() || sc.Text() != fmt.Sprintf("data: %d", i), "event %d: %q %v", i, sc.Text(), sc.Err())
+		require.True(t, sc.Scan(), "event %d: %q %v", i, sc.Text(), sc.Err())
+		require.Equal(t, fmt.Sprintf("data: %d", i), sc.Text(), "event %d: %q %v", i, sc.Text(), sc.Err())
 		sc.Scan() // the blank line ending the event
 		next <- struct{}{}
 	}
-	require.False(t, !sc.Scan() || sc.Text() != "data: [DONE]", "last event: %q %v", sc.Text(), sc.Err())
+	require.True(t, sc.Scan(), "last event: %q %v", sc.Text(), sc.Err())
+	require.Equal(t, "data: [DONE]", sc.Text(), "last event: %q %v", sc.Text(), sc.Err())
 }
 
 // recordingTransport answers every request itself and remembers it.
@@ -282,7 +289,8 @@ func TestFallback(t *testing.T) {
 			status, _, err := call(t.Context(), tr, tc.url, "x")
 			require.NoError(t, err)
 			got := fb.got.Load() == 1
-			assert.False(t, got != tc.wantFallback || (status == http.StatusTeapot) != tc.wantFallback, "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
+			assert.Equal(t, tc.wantFallback, got, "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
+			assert.Equal(t, tc.wantFallback, (status == http.StatusTeapot), "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
 		})
 	}
 }
@@ -295,7 +303,8 @@ func TestUnreachable(t *testing.T) {
 	ln.Close()
 	tr := New(Options{})
 	_, _, err = call(t.Context(), tr, "http://"+addr+"/v1/completions", "x")
-	require.False(t, err == nil || !strings.Contains(err.Error(), "/v1/completions"), "err = %v, want a dial error naming the URL", err)
+	require.Error(t, err, "err = %v, want a dial error naming the URL", err)
+	require.Contains(t, err.Error(), "/v1/completions", "err = %v, want a dial error naming the URL", err)
 	var op *net.OpError
 	assert.True(t, errors.As(err, &op), "err = %v, want it to wrap the *net.OpError", err)
 }
@@ -388,7 +397,8 @@ func TestNoBodyAnswerReturnsConnection(t *testing.T) {
 	for i := range 3 {
 		req, _ := http.NewRequestWithContext(t.Context(), http.MethodPost, srv.URL, strings.NewReader("x"))
 		resp, err := tr.RoundTrip(req)
-		require.False(t, err != nil || resp.StatusCode != http.StatusNoContent, "call %d: %v %v", i, resp, err)
+		require.NoError(t, err, "call %d: %v %v", i, resp, err)
+		require.Equal(t, http.StatusNoContent, resp.StatusCode, "call %d: %v %v", i, resp, err)
 		resp.Body.Close()
 	}
 	n := srv.conns.Load()
