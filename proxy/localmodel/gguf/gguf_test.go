@@ -82,7 +82,8 @@ func TestParseSmallFile(t *testing.T) {
 	require.NoError(t, err)
 	assert.True(t, equalF32(a, []float32{1, 2, 3, 4, 5, 6}), "tensor a: got %v, want 1..6", a)
 	ti, _ := f.Tensor("b")
-	assert.False(t, ti.Offset%DefaultAlignment != 0 || ti.Offset == 0, "tensor b offset %d not aligned", ti.Offset)
+	assert.Equal(t, uint64(0), ti.Offset%DefaultAlignment, "tensor b offset %d not aligned", ti.Offset)
+	assert.NotEqual(t, uint64(0), ti.Offset, "tensor b offset %d not aligned", ti.Offset)
 	_, err = f.Float32s("zz")
 	assert.ErrorIs(t, err, ErrNotFound, "missing tensor: got %v", err)
 }
