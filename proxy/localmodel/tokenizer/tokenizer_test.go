@@ -133,7 +133,8 @@ func TestDisplayUnique(t *testing.T) {
 		prev, dup := seen[d]
 		assert.False(t, dup, "display %q shared by %d and %d", d, prev, id)
 		seen[d] = id
-		assert.False(t, !utf8.ValidString(d) || d == "", "display of %d is %q", id, d)
+		assert.True(t, utf8.ValidString(d), "display of %d is %q", id, d)
+		assert.NotEqual(t, "", d, "display of %d is %q", id, d)
 	}
 	got := tok.Display(tok.pieces["e"])
 	assert.Equal(t, "e", got, "display of e: got %q", got)
@@ -174,7 +175,10 @@ func TestRoundTripProperty(t *testing.T) {
 		got := tok.Decode(ids)
 		require.Equal(t, s, got, "round trip: got %q, want %q (ids %v)", got, s, ids)
 		for _, id := range ids {
-			require.False(t, id < 0 || id >= tok.Len() || id == tok.BOS() || id == tok.EOS(), "Encode(%q) gave id %d", s, id)
+			require.GreaterOrEqual(t, id, 0, "Encode(%q) gave id %d", s, id)
+			require.Less(t, id, tok.Len(), "Encode(%q) gave id %d", s, id)
+			require.NotEqual(t, tok.BOS(), id, "Encode(%q) gave id %d", s, id)
+			require.NotEqual(t, tok.EOS(), id, "Encode(%q) gave id %d", s, id)
 		}
 	}
 }
