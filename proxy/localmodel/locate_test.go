@@ -3,7 +3,6 @@ package localmodel
 import (
 	"bytes"
 	"context"
-	"errors"
 	"net/http"
 	"net/http/httptest"
 	"os"
@@ -33,7 +32,8 @@ func TestFetch(t *testing.T) {
 	// The SHA-256 recorded in MODEL-SOURCE.md.
 	require.NoError(t, Fetch(context.Background(), srv.Client(), srv.URL+"/stories260K.gguf", dst, ModelSHA256))
 	got, err := os.ReadFile(dst)
-	require.False(t, err != nil || !bytes.Equal(got, data), "downloaded file differs (%v)", err)
+	require.NoError(t, err, "downloaded file differs (%v)", err)
+	require.True(t, bytes.Equal(got, data), "downloaded file differs (%v)", err)
 	_, err = Load(dst)
 	require.NoError(t, err)
 	bad := filepath.Join(dir, "bad.gguf")
@@ -69,6 +69,7 @@ func TestLocate(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Locate(tc.flag, env(tc.env))
-		assert.False(t, got != tc.want || !errors.Is(err, tc.err), "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
+		assert.Equal(t, tc.want, got, "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
+		assert.ErrorIs(t, err, tc.err, "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
 	}
 }

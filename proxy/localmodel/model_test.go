@@ -78,7 +78,8 @@ func TestBatchedEqualsTokenByToken(t *testing.T) {
 	for i, tok := range toks {
 		hidden, logits, err := m.forward(context.Background(), &ws, []*sequence{seq}, []int{tok}, []int{0})
 		require.NoError(t, err)
-		require.False(t, !sameBits(logits.Row(0), batch.Logits.Row(i)) || !sameBits(hidden.Row(0), batch.Hidden.Row(i)), "position %d: token-by-token result differs from batched", i)
+		require.True(t, sameBits(logits.Row(0), batch.Logits.Row(i)), "position %d: token-by-token result differs from batched", i)
+		require.True(t, sameBits(hidden.Row(0), batch.Hidden.Row(i)), "position %d: token-by-token result differs from batched", i)
 	}
 }
 
@@ -101,7 +102,10 @@ func TestForwardOutputs(t *testing.T) {
 	out, err := m.Forward(context.Background(), []int{m.tok.BOS(), 300, 400})
 	require.NoError(t, err)
 	head := m.OutputHead()
-	require.False(t, head.Rows != m.VocabSize() || head.Cols != m.EmbeddingSize() || out.Hidden.Cols != m.EmbeddingSize() || out.Logits.Cols != m.VocabSize(), "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.VocabSize(), head.Rows, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.EmbeddingSize(), head.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.EmbeddingSize(), out.Hidden.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.VocabSize(), out.Logits.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
 	for i := 0; i < out.Hidden.Rows; i++ {
 		for v := 0; v < head.Rows; v += 37 {
 			var s float64
@@ -137,9 +141,11 @@ func TestPrefixCacheExact(t *testing.T) {
 		require.NoError(t, err)
 		b, lb, err := plain.prefill(context.Background(), &ws, toks, true, 3)
 		require.NoError(t, err)
-		require.False(t, !sameBits(la, lb) || !sameBits(a.seq.hidden, b.seq.hidden), "request %d: cached and uncached results differ", i)
+		require.True(t, sameBits(la, lb), "request %d: cached and uncached results differ", i)
+		require.True(t, sameBits(a.seq.hidden, b.seq.hidden), "request %d: cached and uncached results differ", i)
 		for l := range a.seq.k {
-			require.False(t, !sameBits(a.seq.k[l], b.seq.k[l]) || !sameBits(a.seq.v[l], b.seq.v[l]), "request %d layer %d: KV differs", i, l)
+			require.True(t, sameBits(a.seq.k[l], b.seq.k[l]), "request %d layer %d: KV differs", i, l)
+			require.True(t, sameBits(a.seq.v[l], b.seq.v[l]), "request %d layer %d: KV differs", i, l)
 		}
 		for j := range a.lps {
 			require.Equal(t, b.lps[j].lp, a.lps[j].lp, "request %d: prompt logprob %d differs", i, j)
@@ -159,7 +165,8 @@ func TestPrefixCacheEviction(t *testing.T) {
 	mk := func(toks ...int) *sequence { s := m.newSequence(); s.tokens = toks; return s }
 	c.add(mk(1, 2, 3, 4))
 	c.add(mk(1, 2, 3, 4, 5, 6)) // extends and replaces the first
-	require.False(t, len(c.entries) != 1 || c.size != 6, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
+	require.Len(t, c.entries, 1, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
+	require.Equal(t, 6, c.size, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
 	c.add(mk(1, 2)) // covered
 	require.Len(t, c.entries, 1, "covered prefix was added")
 	c.add(mk(7, 8, 9, 10, 11)) // evicts the oldest
@@ -181,5 +188,8 @@ func TestExpf(t *testing.T) {
 		rel := math.Abs(got-want) / want
 		require.LessOrEqual(t, rel, 4e-7, "expf(%v) = %v, want %v (relative error %.2g)", x, got, want, rel)
 	}
-	assert.False(t, expf(0) != 1 || expf(-100) != 0 || !math.IsInf(float64(expf(100)), 1) || !math.IsNaN(float64(expf(float32(math.NaN())))), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.Equal(t, float32(1), expf(0), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.Equal(t, float32(0), expf(-100), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.True(t, math.IsInf(float64(expf(100)), 1), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.True(t, math.IsNaN(float64(expf(float32(math.NaN())))), "special values: %v %v %v", expf(0), expf(-100), expf(100))
 }

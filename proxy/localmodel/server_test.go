@@ -37,8 +37,12 @@ func TestArrayPromptsAndN(t *testing.T) {
 		}
 		wantPrompt += 1 + len(m.tok.Encode(p))
 	}
-	assert.False(t, r.Usage.PromptTokens != wantPrompt || r.Usage.CompletionTokens != 24 || r.Usage.TotalTokens != wantPrompt+24, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
-	assert.False(t, r.Object != "text_completion" || r.Model != DefaultName || !strings.HasPrefix(r.ID, "cmpl-"), "envelope: %+v", r)
+	assert.Equal(t, wantPrompt, r.Usage.PromptTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, 24, r.Usage.CompletionTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, wantPrompt+24, r.Usage.TotalTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, "text_completion", r.Object, "envelope: %+v", r)
+	assert.Equal(t, DefaultName, r.Model, "envelope: %+v", r)
+	assert.True(t, strings.HasPrefix(r.ID, "cmpl-"), "envelope: %+v", r)
 }
 
 func TestTokenPrompt(t *testing.T) {
@@ -58,7 +62,8 @@ func TestEchoLogprobs(t *testing.T) {
 	prompt := "Once upon a time"
 	r := complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 2, "max_tokens": 3, "temperature": 0})
 	c := r.Choices[0]
-	require.False(t, !strings.HasPrefix(c.Text, prompt) || len(c.Text) <= len(prompt), "text %q does not start with the prompt", c.Text)
+	require.True(t, strings.HasPrefix(c.Text, prompt), "text %q does not start with the prompt", c.Text)
+	require.Greater(t, len(c.Text), len(prompt), "text %q does not start with the prompt", c.Text)
 	ptoks := m.tok.Encode(prompt)
 	lp := c.Logprobs
 	require.Len(t, lp.Tokens, len(ptoks)+3, "got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
@@ -108,7 +113,8 @@ func TestStop(t *testing.T) {
 
 func joinCompletionStream(tb testing.TB, events []string) string {
 	tb.Helper()
-	require.False(tb, len(events) == 0 || events[len(events)-1] != "[DONE]", "stream does not end with [DONE]: %q", events)
+	require.NotEqual(tb, 0, len(events), "stream does not end with [DONE]: %q", events)
+	require.Equal(tb, "[DONE]", events[len(events)-1], "stream does not end with [DONE]: %q", events)
 	var b strings.Builder
 	for _, e := range events[:len(events)-1] {
 		var c wire.CompletionResponse
@@ -284,7 +290,8 @@ func TestContextTooLong(t *testing.T) {
 		ids[i] = 300
 	}
 	status, out, hdr := post(t, srv.URL+"/v1/completions", map[string]any{"prompt": ids})
-	assert.False(t, status != 400 || !strings.Contains(string(out), "context_length_exceeded"), "status %d body %s", status, out)
+	assert.Equal(t, 400, status, "status %d body %s", status, out)
+	assert.Contains(t, string(out), "context_length_exceeded", "status %d body %s", status, out)
 	checkErrorBody(t, out, hdr)
 }
 
@@ -385,7 +392,8 @@ func TestWorkerPoolBound(t *testing.T) {
 	close(a.release)
 	<-doneA
 	<-doneB
-	assert.False(t, recB.Code != http.StatusOK || h.maxActive.Load() != 1, "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	assert.Equal(t, http.StatusOK, recB.Code, "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	assert.Equal(t, int64(1), h.maxActive.Load(), "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
 	assert.True(t, strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n"), "A's stream did not finish: %q", a.buf.String())
 	// A waiting request whose context ends gives up.
 	h.waitHook = nil
@@ -465,12 +473,15 @@ func TestHealthzLikeTheProxy(t *testing.T) {
 	require.NoError(t, err)
 	b, _ := io.ReadAll(resp.Body)
 	resp.Body.Close()
-	assert.False(t, resp.StatusCode != http.StatusOK || string(b) != "ok\n" || resp.Header.Get("Content-Type") != "text/plain; charset=utf-8", "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	assert.Equal(t, http.StatusOK, resp.StatusCode, "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	assert.Equal(t, "ok\n", string(b), "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	assert.Equal(t, "text/plain; charset=utf-8", resp.Header.Get("Content-Type"), "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
 	resp, err = http.Post(srv.URL+"/healthz", "text/plain", nil)
 	require.NoError(t, err)
 	b, _ = io.ReadAll(resp.Body)
 	resp.Body.Close()
-	assert.False(t, resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "GET, HEAD", "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
+	assert.Equal(t, http.StatusMethodNotAllowed, resp.StatusCode, "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
+	assert.Equal(t, "GET, HEAD", resp.Header.Get("Allow"), "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
 	checkErrorBody(t, b, resp.Header)
 }
 
