@@ -77,7 +77,9 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 	tb.Helper()
 	require.NotNil(tb, lp, "logprobs = null; want an object")
 	n := len(lp.Tokens)
-	require.False(tb, len(lp.TokenLogprobs) != n || len(lp.TopLogprobs) != n || len(lp.TextOffset) != n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	require.Len(tb, lp.TokenLogprobs, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	require.Len(tb, lp.TopLogprobs, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	require.Len(tb, lp.TextOffset, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
 	joined, off := "", base
 	for i, tok := range lp.Tokens {
 		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)

@@ -57,7 +57,8 @@ func TestRankInvariants(t *testing.T) {
 			require.False(t, seen[c.toks[i]], "state %x: candidate %q twice", h, c.toks[i])
 			seen[c.toks[i]] = true
 			require.Equal(t, m.vocab[c.ids[i]], c.toks[i], "state %x: toks[%d] = %q; want %q", h, i, c.toks[i], m.vocab[c.ids[i]])
-			require.False(t, c.lps[i] >= 0 || math.IsNaN(c.lps[i]), "state %x: logprob %v not negative", h, c.lps[i])
+			require.Less(t, c.lps[i], float64(0), "state %x: logprob %v not negative", h, c.lps[i])
+			require.False(t, math.IsNaN(c.lps[i]), "state %x: logprob %v not negative", h, c.lps[i])
 			require.False(t, i > 0 && c.lps[i] >= c.lps[i-1], "state %x: logprobs not strictly decreasing at %d", h, i)
 			mass += math.Exp(c.lps[i])
 		}
@@ -94,7 +95,8 @@ func TestGenerateEndsOnItsOwn(t *testing.T) {
 			assert.Len(t, toks, 16, "finish length with %d tokens; want 16", len(toks))
 		}
 	}
-	assert.False(t, stops == 0 || lengths == 0, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
+	assert.NotEqual(t, 0, stops, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
+	assert.NotEqual(t, 0, lengths, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
 }
 
 func TestStopCut(t *testing.T) {

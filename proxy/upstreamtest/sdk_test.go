@@ -41,7 +41,9 @@ func TestSDKCompletion(t *testing.T) {
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 30, Temperature: greedy, LogProbs: 5,
 	})
 	require.NoError(t, err)
-	assert.False(t, long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "", "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
+	assert.Equal(t, "text_completion", long.Object, "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
+	assert.Equal(t, upstreamtest.ModelSmall, long.Model, "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
+	assert.NotEqual(t, "", long.Header().Get("x-request-id"), "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	lc := long.Choices[0]
 	checkSDKLogprobs(t, lc.Text, lc.LogProbs, 5)
 	assert.False(t, long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens), "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
@@ -75,7 +77,8 @@ func TestSDKCompletion(t *testing.T) {
 			completionTokens += len(ch.LogProbs.Tokens)
 		}
 	}
-	assert.False(t, batch.Usage.PromptTokens != promptTokens || batch.Usage.CompletionTokens != completionTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
+	assert.Equal(t, promptTokens, batch.Usage.PromptTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
+	assert.Equal(t, completionTokens, batch.Usage.CompletionTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
 	assert.Equal(t, 2+3+3, up.Prompts(), "Prompts()")
 
 	// Errors decode as the SDK's APIError.
@@ -164,10 +167,13 @@ func TestSDKChat(t *testing.T) {
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3, N: 2,
 	})
 	require.NoError(t, err)
-	require.False(t, resp.Object != "chat.completion" || len(resp.Choices) != 2, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
+	require.Equal(t, "chat.completion", resp.Object, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
+	require.Len(t, resp.Choices, 2, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
 	total := 0
 	for j, ch := range resp.Choices {
-		require.False(t, ch.Index != j || ch.Message.Role != openai.ChatMessageRoleAssistant || ch.LogProbs == nil, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
+		require.Equal(t, j, ch.Index, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
+		require.Equal(t, openai.ChatMessageRoleAssistant, ch.Message.Role, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
+		require.NotNil(t, ch.LogProbs, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
 		joined := ""
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
@@ -178,7 +184,8 @@ func TestSDKChat(t *testing.T) {
 		total += len(ch.LogProbs.Content)
 	}
 	assert.Equal(t, resp.Choices[1].Message.Content, resp.Choices[0].Message.Content, "greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
-	assert.False(t, resp.Usage.CompletionTokens != total || resp.Usage.TotalTokens != resp.Usage.PromptTokens+total, "usage %+v; want %d completion tokens", resp.Usage, total)
+	assert.Equal(t, total, resp.Usage.CompletionTokens, "usage %+v; want %d completion tokens", resp.Usage, total)
+	assert.Equal(t, resp.Usage.PromptTokens+total, resp.Usage.TotalTokens, "usage %+v; want %d completion tokens", resp.Usage, total)
 
 	stream, err := c.CreateChatCompletionStream(context.Background(), openai.ChatCompletionRequest{
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3,
@@ -216,7 +223,10 @@ func TestSDKChat(t *testing.T) {
 		}
 	}
 	want := resp.Choices[0]
-	assert.False(t, role != "assistant" || content != want.Message.Content || strings.Join(toks, "") != content || fin != want.FinishReason, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, "assistant", role, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, want.Message.Content, content, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, content, strings.Join(toks, ""), "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, want.FinishReason, fin, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
 	assert.False(t, streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content), "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
 	got := up.Calls().Chat
 	assert.Equal(t, 2, got, "Calls().Chat = %d; want 2", got)

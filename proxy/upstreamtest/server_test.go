@@ -83,9 +83,11 @@ func TestValidation(t *testing.T) {
 			}
 			var env errorEnvelope
 			err := json.Unmarshal(body, &env)
-			require.False(t, err != nil || env.Error == nil, "error body %s does not have the error shape (%v)", body, err)
+			require.NoError(t, err, "error body %s does not have the error shape (%v)", body, err)
+			require.NotNil(t, env.Error, "error body %s does not have the error shape (%v)", body, err)
 			e := env.Error
-			assert.False(t, e.Message == "" || e.Type != "invalid_request_error", "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
+			assert.NotEqual(t, "", e.Message, "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
+			assert.Equal(t, "invalid_request_error", e.Type, "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
 			got := deref(e.Param)
 			assert.Equal(t, tt.param, got, "param = %q; want %q", got, tt.param)
 			got = string(e.Code)
@@ -155,7 +157,8 @@ func TestModelsList(t *testing.T) {
 			got = append(got, m.ID)
 			assert.Equal(t, "model", m.Object, "model object = %q; want model", m.Object)
 		}
-		assert.False(t, list.Object != "list" || !slices.Equal(got, tt.want), "models = %q (%s); want %q (list)", got, list.Object, tt.want)
+		assert.Equal(t, "list", list.Object, "models = %q (%s); want %q (list)", got, list.Object, tt.want)
+		assert.True(t, slices.Equal(got, tt.want), "models = %q (%s); want %q (list)", got, list.Object, tt.want)
 	}
 }
 
@@ -210,17 +213,22 @@ func TestCountersRequestsReset(t *testing.T) {
 	reqs := up.Requests()
 	require.Len(t, reqs, 4, "Requests() has %d entries; want 4", len(reqs))
 	last := reqs[3]
-	assert.False(t, last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1", "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, "POST", last.Method, "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, upstreamtest.PathChat, last.Path, "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, "Bearer team-key", last.Header.Get("Authorization"), "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, "t1", last.Header.Get("X-Trace"), "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
 	assert.Contains(t, string(last.Body), `"messages"`, "last body = %s; want the chat body", last.Body)
 	// Copies: changing them does not change what the server holds.
 	last.Body[0] = 'X'
 	last.Header.Set("Authorization", "changed")
 	again := up.Requests()[3]
-	assert.False(t, again.Body[0] != '{' || again.Header.Get("Authorization") != "Bearer team-key", "Requests() returned the server's own slices or headers, not copies")
+	assert.Equal(t, byte('{'), again.Body[0], "Requests() returned the server's own slices or headers, not copies")
+	assert.Equal(t, "Bearer team-key", again.Header.Get("Authorization"), "Requests() returned the server's own slices or headers, not copies")
 	up.Reset()
 	got = up.Calls()
 	assert.True(t, got == (upstreamtest.Calls{}), "after Reset, Calls() = %+v; want zero", got)
-	assert.False(t, up.Prompts() != 0 || len(up.Requests()) != 0, "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
+	assert.Equal(t, 0, up.Prompts(), "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
+	assert.Len(t, up.Requests(), 0, "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
 }
 
 func TestCompletionsGreedyAndLogprobs(t *testing.T) {
@@ -232,7 +240,10 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	}
 	var long wire.CompletionResponse
 	postOK(t, up, "/completions", req(40, 5, false), &long)
-	assert.False(t, long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.Equal(t, "text_completion", long.Object, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.True(t, strings.HasPrefix(long.ID, "cmpl-"), "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.Equal(t, "quill-large", long.Model, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.NotEqual(t, int64(0), long.Created, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
 	lc := long.Choices[0]
 	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
 	got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)})
@@ -258,11 +269,13 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	assert.Equal(t, prompt+strings.Join(lc.Logprobs.Tokens[:4], ""), ec.Text, "echoed text: want the prompt then the first 4 tokens")
 	assert.Nil(t, ec.Logprobs.TokenLogprobs[0], "echo: first logprob, want null")
 	assert.Len(t, ec.Logprobs.Tokens, 7+4, "echo tokens %q, want 11", ec.Logprobs.Tokens)
-	assert.False(t, echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
+	assert.Equal(t, 4, echoed.Usage.CompletionTokens, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
+	assert.Equal(t, 7, echoed.Usage.PromptTokens, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
 	// Without logprobs the field is null.
 	var plain wire.CompletionResponse
 	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
-	assert.False(t, resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`), "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
+	assert.Equal(t, 200, resp.StatusCode, "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
+	assert.Contains(t, string(b), `"logprobs":null`, "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
 	json.Unmarshal(b, &plain)
 	assert.Equal(t, strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""), plain.Choices[0].Text, "default max_tokens answer: want the first 16 tokens")
 }
@@ -369,7 +382,8 @@ func TestEndsOnItsOwn(t *testing.T) {
 			assert.Failf(t, "unexpected finish_reason", "finish_reason %q", *ch.FinishReason)
 		}
 	}
-	assert.False(t, stops == 0 || stops == 40, "%d of 40 answers ended on their own; want some but not all", stops)
+	assert.NotEqual(t, 0, stops, "%d of 40 answers ended on their own; want some but not all", stops)
+	assert.NotEqual(t, 40, stops, "%d of 40 answers ended on their own; want some but not all", stops)
 }
 
 func TestSampling(t *testing.T) {
@@ -470,9 +484,11 @@ func TestChat(t *testing.T) {
 	var long, short wire.ChatResponse
 	postOK(t, up, "/chat/completions", base+`,"max_completion_tokens":12}`, &long)
 	postOK(t, up, "/chat/completions", base+`,"max_tokens":5}`, &short)
-	assert.False(t, long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-"), "envelope %q %q", long.Object, long.ID)
+	assert.Equal(t, "chat.completion", long.Object, "envelope %q %q", long.Object, long.ID)
+	assert.True(t, strings.HasPrefix(long.ID, "chatcmpl-"), "envelope %q %q", long.Object, long.ID)
 	lc := long.Choices[0]
-	require.False(t, lc.Message == nil || lc.Message.Role != "assistant", "message = %+v; want an assistant message", lc.Message)
+	require.NotNil(t, lc.Message, "message = %+v; want an assistant message", lc.Message)
+	require.Equal(t, "assistant", lc.Message.Role, "message = %+v; want an assistant message", lc.Message)
 	var joined string
 	for i, tl := range lc.Logprobs.Content {
 		joined += tl.Token
@@ -554,7 +570,9 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	}
 	for _, w := range whole.Choices {
 		a := got[w.Index]
-		require.False(t, a == nil || a.content != w.Message.Content || a.finish != *w.FinishReason, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		require.NotNil(t, a, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		require.Equal(t, w.Message.Content, a.content, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		require.Equal(t, *w.FinishReason, a.finish, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
 		al, _ := json.Marshal(a.tokens)
 		wl, _ := json.Marshal(w.Logprobs.Content)
 		assert.Equal(t, string(wl), string(al), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
@@ -575,13 +593,15 @@ func TestFaultStatus(t *testing.T) {
 	}
 	third, _ := post(t, up, "/completions", body, nil)
 	assert.Equal(t, 200, third.StatusCode, "third call: want 200 once the two faults are used")
-	assert.False(t, up.Calls().Completions != 3 || up.Prompts() != 1, "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
+	assert.Equal(t, 3, up.Calls().Completions, "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
+	assert.Equal(t, 1, up.Prompts(), "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
 
 	up.FailNext(1, upstreamtest.Fault{Path: upstreamtest.PathChat, Status: 503, Body: "upstream busy"})
 	completion, _ := post(t, up, "/completions", body, nil)
 	assert.Equal(t, 200, completion.StatusCode, "completions call under a chat-only fault")
 	resp, b := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}]}`, nil)
-	assert.False(t, resp.StatusCode != 503 || string(b) != "upstream busy", "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
+	assert.Equal(t, 503, resp.StatusCode, "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
+	assert.Equal(t, "upstream busy", string(b), "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
 
 	up.FailNext(5, upstreamtest.Fault{Status: 500})
 	up.ClearFaults()
@@ -726,7 +746,8 @@ func TestBlockRelease(t *testing.T) {
 	for s := range results {
 		assert.Equal(t, 200, s, "released call: status %d", s)
 	}
-	assert.False(t, up.Held() != 0 || up.Prompts() != callers, "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
+	assert.Equal(t, 0, up.Held(), "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
+	assert.Equal(t, callers, up.Prompts(), "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
 	// Not blocked any more.
 	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
 	assert.False(t, err != nil || resp.StatusCode != 200, "call after Release: %v", err)
