@@ -65,18 +65,21 @@ func TestAdminRefusals(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			status, b := r.adminDo(tt.method, tt.path, tt.key, tt.body)
-			assert.False(t, status != tt.status || errorCode(t, b) != tt.code, "%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
+			assert.Equal(t, tt.status, status, "%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
+			assert.Equal(t, tt.code, errorCode(t, b), "%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
 		})
 	}
 	// None of the refused changes took: the configured budget stands.
 	status, b := r.adminDo("GET", "budgets", adminKey, "")
-	assert.False(t, status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`), "budgets after refusals: %d %s, want the configured 1.00", status, b)
+	assert.Equal(t, 200, status, "budgets after refusals: %d %s, want the configured 1.00", status, b)
+	assert.Contains(t, string(b), `"limit_usd":"1.00"`, "budgets after refusals: %d %s, want the configured 1.00", status, b)
 }
 
 func TestAdminOffWithoutKeys(t *testing.T) {
 	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")))
 	status, b := r.adminDo("GET", "statement", "anything", "")
-	assert.False(t, status != http.StatusForbidden || errorCode(t, b) != "admin_off", "admin without keys: %d %s, want 403 admin_off", status, b)
+	assert.Equal(t, http.StatusForbidden, status, "admin without keys: %d %s, want 403 admin_off", status, b)
+	assert.Equal(t, "admin_off", errorCode(t, b), "admin without keys: %d %s, want 403 admin_off", status, b)
 }
 
 // TestAdminOpenInOpenMode: a proxy without teams (open mode: no key needed
@@ -85,7 +88,9 @@ func TestAdminOffWithoutKeys(t *testing.T) {
 func TestAdminOpenInOpenMode(t *testing.T) {
 	r := newRig(t)
 	status, b := r.adminDo("GET", "statement", "", "")
-	assert.False(t, status != http.StatusNotFound || errorCode(t, b) != "spend_off" || !strings.Contains(string(b), "nothing is recorded"), "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	assert.Equal(t, http.StatusNotFound, status, "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	assert.Equal(t, "spend_off", errorCode(t, b), "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	assert.Contains(t, string(b), "nothing is recorded", "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
 }
 
 // TestAdminSetsBudgetAndReadsStatement lowers a team's budget at run time (the
@@ -110,7 +115,9 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 		}
 		return st.Total.Requests == 4
 	})
-	assert.False(t, st.Total.Requests != 4 || st.Total.UpstreamCalls != 3 || st.Total.SpentUSD != budget.Nanos(spent).String(), "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	assert.Equal(t, int64(4), st.Total.Requests, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	assert.Equal(t, int64(3), st.Total.UpstreamCalls, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	assert.Equal(t, budget.Nanos(spent).String(), st.Total.SpentUSD, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
 	assert.False(t, len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String(), "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
 
 	// A budget below what is spent: the next miss is refused.
@@ -122,12 +129,14 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	assert.Equal(t, before, r.upstreamGenerations(), "a refused call reached the upstream")
 	// Cleared: the configured 1 USD applies again.
 	status, b = r.adminDo("DELETE", "budgets/lab", adminKey, "")
-	require.False(t, status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`), "clear budget: %d %s", status, b)
+	require.Equal(t, 200, status, "clear budget: %d %s", status, b)
+	require.Contains(t, string(b), `"limit_usd":"1.00"`, "clear budget: %d %s", status, b)
 	got = r.complete(greedy("a new line after the cut", "max_tokens", 8))
 	assert.Equal(t, 200, got.status, "after clearing the override: %d %s, want 200", got.status, got.body)
 	// A team without a configured budget can be given one.
 	status, b = r.adminDo("PUT", "budgets/kiln", adminKey, `{"usd":2.5,"per":"week"}`)
-	assert.False(t, status != 200 || !strings.Contains(string(b), `"team":"kiln"`), "budget for kiln: %d %s", status, b)
+	assert.Equal(t, 200, status, "budget for kiln: %d %s", status, b)
+	assert.Contains(t, string(b), `"team":"kiln"`, "budget for kiln: %d %s", status, b)
 }
 
 // TestAdminPeriodChangeKeepsTheSpend is the reported case: after a team has

@@ -27,9 +27,11 @@ func greedy(prompt any, extra ...any) map[string]any {
 func TestRepeatedGreedyCallIsAnsweredFromCache(t *testing.T) {
 	r := newRig(t)
 	first := r.complete(greedy("The barge left the lock at dawn"))
-	require.False(t, first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss, "first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
+	require.Equal(t, http.StatusOK, first.status, "first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
 	second := r.complete(greedy("The barge left the lock at dawn"))
-	require.False(t, second.status != http.StatusOK || second.cache() != proxy.OutcomeHit, "second call: status %d cache %q, want 200 hit", second.status, second.cache())
+	require.Equal(t, http.StatusOK, second.status, "second call: status %d cache %q, want 200 hit", second.status, second.cache())
+	require.Equal(t, proxy.OutcomeHit, second.cache(), "second call: status %d cache %q, want 200 hit", second.status, second.cache())
 	assert.True(t, bytes.Equal(first.body, second.body), "hit body differs from the miss body:\n%s\n%s", first.body, second.body)
 	got := r.upstreamGenerations()
 	assert.Equal(t, 1, got, "upstream calls = %d, want 1", got)
@@ -65,7 +67,8 @@ func TestCacheSampledSwitch(t *testing.T) {
 	body := greedy("hives", "temperature", 0.9, "n", 3)
 	a := r.complete(body)
 	b := r.complete(body)
-	require.False(t, b.cache() != proxy.OutcomeHit || !bytes.Equal(a.body, b.body), "sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
+	require.Equal(t, proxy.OutcomeHit, b.cache(), "sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
+	require.True(t, bytes.Equal(a.body, b.body), "sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
 }
 
 func TestKeyIgnoresTransportFieldsAndFormatting(t *testing.T) {
@@ -146,12 +149,14 @@ func TestClientKeyIsNotForwarded(t *testing.T) {
 func TestBatchSplitSendsOnlyMissingPrompts(t *testing.T) {
 	r := newRig(t)
 	first := r.complete(greedy([]string{"alpha hive", "beta hive"}, "logprobs", 2))
-	require.False(t, first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss, "first batch: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, http.StatusOK, first.status, "first batch: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first batch: %d %q %s", first.status, first.cache(), first.body)
 	if got := r.up.Prompts(); got != 2 {
 		t.Fatalf("upstream prompts after first batch = %d, want 2", got)
 	}
 	second := r.complete(greedy([]string{"beta hive", "gamma hive", "alpha hive"}, "logprobs", 2))
-	require.False(t, second.status != http.StatusOK || second.cache() != proxy.OutcomePartial, "second batch: %d %q %s", second.status, second.cache(), second.body)
+	require.Equal(t, http.StatusOK, second.status, "second batch: %d %q %s", second.status, second.cache(), second.body)
+	require.Equal(t, proxy.OutcomePartial, second.cache(), "second batch: %d %q %s", second.status, second.cache(), second.body)
 	if got := second.header.Get(proxy.HeaderCachedPrompt); got != "2/3" {
 		t.Errorf("%s = %q, want 2/3", proxy.HeaderCachedPrompt, got)
 	}
@@ -175,10 +180,13 @@ func TestBatchSplitSendsOnlyMissingPrompts(t *testing.T) {
 		sumPrompt += want.Usage.PromptTokens
 		sumCompletion += want.Usage.CompletionTokens
 	}
-	assert.False(t, got.Usage.PromptTokens != sumPrompt || got.Usage.CompletionTokens != sumCompletion || got.Usage.TotalTokens != sumPrompt+sumCompletion, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
+	assert.Equal(t, sumPrompt, got.Usage.PromptTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
+	assert.Equal(t, sumCompletion, got.Usage.CompletionTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
+	assert.Equal(t, sumPrompt+sumCompletion, got.Usage.TotalTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
 	before := r.up.Prompts()
 	third := r.complete(greedy([]string{"gamma hive", "alpha hive"}, "logprobs", 2))
-	assert.False(t, third.cache() != proxy.OutcomeHit || r.up.Prompts() != before, "third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
+	assert.Equal(t, proxy.OutcomeHit, third.cache(), "third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
+	assert.Equal(t, before, r.up.Prompts(), "third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
 }
 
 func TestBatchMergeWithSeveralChoicesPerPrompt(t *testing.T) {
@@ -341,7 +349,8 @@ func TestModelsIsPassedThroughAndCachedBriefly(t *testing.T) {
 		}
 		err = json.NewDecoder(resp.Body).Decode(&list)
 		resp.Body.Close()
-		require.False(t, err != nil || len(list.Data) != 2, "models: %v %+v", err, list)
+		require.NoError(t, err, "models: %v %+v", err, list)
+		require.Len(t, list.Data, 2, "models: %v %+v", err, list)
 	}
 	got := r.up.Calls().Models
 	assert.Equal(t, 1, got, "upstream /models calls = %d, want 1", got)

@@ -33,11 +33,15 @@ func TestSplitOneFacts(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			got, err := splitOne(tc.req, []byte(tc.body))
-			require.False(t, err != nil || len(got) != 1 || got[0].facts == nil, "splitOne: %v %+v", err, got)
+			require.NoError(t, err, "splitOne: %v %+v", err, got)
+			require.Len(t, got, 1, "splitOne: %v %+v", err, got)
+			require.NotNil(t, got[0].facts, "splitOne: %v %+v", err, got)
 			f := got[0].facts
-			assert.False(t, f.finish != tc.wantFinish || f.tokens != tc.wantTokens, "facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
+			assert.Equal(t, tc.wantFinish, f.finish, "facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
+			assert.Equal(t, tc.wantTokens, f.tokens, "facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
 			fin, tok := tokenFacts(tc.req, []byte(tc.body))
-			assert.False(t, fin != f.finish || tok != f.tokens, "tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
+			assert.Equal(t, f.finish, fin, "tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
+			assert.Equal(t, f.tokens, tok, "tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
 			assert.Equal(t, tc.body, string(got[0].body), "the answer was not served as it came")
 		})
 	}

@@ -123,7 +123,8 @@ func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
 			shared++
 		}
 	}
-	assert.False(t, misses != 1 || shared != clients-1, "outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
+	assert.Equal(t, 1, misses, "outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
+	assert.Equal(t, clients-1, shared, "outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
 }
 
 func TestNothingIsCachedFromAFailedCall(t *testing.T) {
@@ -131,9 +132,12 @@ func TestNothingIsCachedFromAFailedCall(t *testing.T) {
 	r := newRig(t)
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "7", Body: `{"error":{"message":"slow down","type":"rate_limit","code":"rate_limited"}}`})
 	got := r.complete(greedy("queen cell"))
-	require.False(t, got.status != http.StatusTooManyRequests || got.header.Get("Retry-After") != "7" || !strings.Contains(string(got.body), "slow down"), "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	require.Equal(t, http.StatusTooManyRequests, got.status, "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	require.Equal(t, "7", got.header.Get("Retry-After"), "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	require.Contains(t, string(got.body), "slow down", "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
 	again := r.complete(greedy("queen cell"))
-	require.False(t, again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss, "after a failed call: %d %q, want 200 miss", again.status, again.cache())
+	require.Equal(t, http.StatusOK, again.status, "after a failed call: %d %q, want 200 miss", again.status, again.cache())
+	require.Equal(t, proxy.OutcomeMiss, again.cache(), "after a failed call: %d %q, want 200 miss", again.status, again.cache())
 }
 
 func TestUpstreamUnreachableOrSlow(t *testing.T) {
@@ -150,7 +154,8 @@ func TestUpstreamUnreachableOrSlow(t *testing.T) {
 		got := r.complete(greedy("x"))
 		require.Equal(t, http.StatusGatewayTimeout, got.status, "status %d, want 504: %s", got.status, got.body)
 		again := r.complete(greedy("x"))
-		require.False(t, again.cache() != proxy.OutcomeMiss || again.status != http.StatusOK, "after timeout: %d %q", again.status, again.cache())
+		require.Equal(t, proxy.OutcomeMiss, again.cache(), "after timeout: %d %q", again.status, again.cache())
+		require.Equal(t, http.StatusOK, again.status, "after timeout: %d %q", again.status, again.cache())
 	})
 }
 
@@ -187,7 +192,8 @@ func TestCutShortAnswersAreNotCached(t *testing.T) {
 			got := r.complete(body)
 			require.False(t, got.status == http.StatusOK && got.readErr == nil, "a cut-short answer reached the client as a whole one: %s", got.body)
 			again := r.complete(body)
-			require.False(t, again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss, "after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
+			require.Equal(t, http.StatusOK, again.status, "after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
+			require.Equal(t, proxy.OutcomeMiss, again.cache(), "after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
 		})
 	}
 }

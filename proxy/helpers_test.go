@@ -265,7 +265,8 @@ func events(t *testing.T, body []byte) []string {
 		require.NoError(t, err, "read stream: %v\n%s", err, body)
 		out = append(out, ev.Data)
 	}
-	require.False(t, len(out) == 0 || out[len(out)-1] != sse.Done, "stream does not end with [DONE]:\n%s", body)
+	require.NotEqual(t, 0, len(out), "stream does not end with [DONE]:\n%s", body)
+	require.Equal(t, sse.Done, out[len(out)-1], "stream does not end with [DONE]:\n%s", body)
 	return out[:len(out)-1]
 }
 

@@ -69,7 +69,8 @@ func FuzzPipeline(f *testing.F) {
 func checkParse(t *testing.T, ep endpoint, body []byte) {
 	req, aerr := parseRequest(ep, body, fuzzMaxPrompts)
 	if aerr != nil {
-		require.False(t, aerr.status != 400 || aerr.message == "", "%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
+		require.Equal(t, 400, aerr.status, "%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
+		require.NotEqual(t, "", aerr.message, "%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
 		rec := httptest.NewRecorder()
 		writeError(rec, aerr)
 		var e wire.ErrorBody
@@ -78,10 +79,13 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 		}
 		return
 	}
-	require.False(t, req.model == "" || req.n < 1 || req.n > maxN, "parsed model %q n %d", req.model, req.n)
+	require.NotEqual(t, "", req.model, "parsed model %q n %d", req.model, req.n)
+	require.GreaterOrEqual(t, req.n, 1, "parsed model %q n %d", req.model, req.n)
+	require.LessOrEqual(t, req.n, maxN, "parsed model %q n %d", req.model, req.n)
 	items := []json.RawMessage{nil}
 	if ep == endpointCompletions {
-		require.False(t, len(req.prompts) == 0 || len(req.prompts) > fuzzMaxPrompts, "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
+		require.NotEqual(t, 0, len(req.prompts), "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
+		require.LessOrEqual(t, len(req.prompts), fuzzMaxPrompts, "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
 		items = req.prompts
 	}
 	keys := make([]string, len(items))
@@ -189,15 +193,19 @@ func checkSplitMerge(t *testing.T, m *material) {
 			t.Fatalf("answer %d: %s (%v), want %d choices", j, p.body, err, n)
 		}
 		for _, ch := range a.Choices {
-			require.False(t, ch.Index < 0 || ch.Index >= n || ch.Text != canonText(texts[j*n+ch.Index]), "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
+			require.GreaterOrEqual(t, ch.Index, 0, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
+			require.Less(t, ch.Index, n, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
+			require.Equal(t, canonText(texts[j*n+ch.Index]), ch.Text, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
 		}
 		sum = sum.Add(p.usage)
 	}
-	require.False(t, sum.PromptTokens != total.PromptTokens || sum.CompletionTokens != total.CompletionTokens, "split usage adds up to %+v, want %+v", sum, total)
+	require.Equal(t, total.PromptTokens, sum.PromptTokens, "split usage adds up to %+v, want %+v", sum, total)
+	require.Equal(t, total.CompletionTokens, sum.CompletionTokens, "split usage adds up to %+v, want %+v", sum, total)
 
 	merged, mu, err := mergeAnswers(req, parts)
 	require.NoError(t, err, "merge")
-	require.False(t, mu.PromptTokens != total.PromptTokens || mu.CompletionTokens != total.CompletionTokens, "merged usage %+v, want %+v", mu, total)
+	require.Equal(t, total.PromptTokens, mu.PromptTokens, "merged usage %+v, want %+v", mu, total)
+	require.Equal(t, total.CompletionTokens, mu.CompletionTokens, "merged usage %+v, want %+v", mu, total)
 	got := choiceTexts(t, endpointCompletions, merged)
 	want := make(map[int]string, len(texts))
 	for i, s := range texts {
@@ -273,7 +281,9 @@ func checkStream(t *testing.T, ep endpoint, body []byte, want map[int]string, u 
 	got := choiceTexts(t, ep, again)
 	require.True(t, mapsEqual(got, want), "streamed and assembled texts %v, want %v", got, want)
 	ru, ok := asm.reportedUsage()
-	require.False(t, !ok || ru.PromptTokens != u.PromptTokens || ru.CompletionTokens != u.CompletionTokens, "streamed usage %+v (%v), want %+v", ru, ok, u)
+	require.True(t, ok, "streamed usage %+v (%v), want %+v", ru, ok, u)
+	require.Equal(t, u.PromptTokens, ru.PromptTokens, "streamed usage %+v (%v), want %+v", ru, ok, u)
+	require.Equal(t, u.CompletionTokens, ru.CompletionTokens, "streamed usage %+v (%v), want %+v", ru, ok, u)
 }
 
 // checkShape is the shaping property of FuzzPipeline.
@@ -324,7 +334,8 @@ func checkShape(t *testing.T, m *material) {
 		} `json:"choices"`
 	}
 	err = json.Unmarshal(body, &a)
-	require.False(t, err != nil || len(a.Choices) != 1, "shaped answer %s: %v", body, err)
+	require.NoError(t, err, "shaped answer %s: %v", body, err)
+	require.Len(t, a.Choices, 1, "shaped answer %s: %v", body, err)
 	c := a.Choices[0]
 	want := strings.Join(tokens[:wantMax], "")
 	require.Equal(t, want, c.Text, "shaped text %q, want the first %d tokens %q", c.Text, wantMax, want)
@@ -333,7 +344,9 @@ func checkShape(t *testing.T, m *material) {
 		require.Nil(t, c.Logprobs, "log-probabilities kept when none were asked for: %s", body)
 		return
 	}
-	require.False(t, c.Logprobs == nil || !slices.Equal(c.Logprobs.Tokens, tokens[:wantMax]) || len(c.Logprobs.TopLogprobs) != wantMax, "shaped logprobs %s, want the first %d tokens", body, wantMax)
+	require.NotNil(t, c.Logprobs, "shaped logprobs %s, want the first %d tokens", body, wantMax)
+	require.True(t, slices.Equal(c.Logprobs.Tokens, tokens[:wantMax]), "shaped logprobs %s, want the first %d tokens", body, wantMax)
+	require.Len(t, c.Logprobs.TopLogprobs, wantMax, "shaped logprobs %s, want the first %d tokens", body, wantMax)
 	for i, top := range c.Logprobs.TopLogprobs {
 		require.Len(t, top, min(wantLP, k), "position %d kept %d top entries, want %d", i, len(top), min(wantLP, k))
 		best := slices.Clone(entries[i])

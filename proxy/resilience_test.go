@@ -82,7 +82,8 @@ func (r *rig) breakerState() float64 {
 // and a Retry-After of whole seconds no longer than openFor.
 func assertOpenAnswer(t *testing.T, got response, openFor time.Duration) {
 	t.Helper()
-	require.False(t, got.status != http.StatusServiceUnavailable || errorCode(t, got.body) != "upstream_circuit_open", "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
+	require.Equal(t, http.StatusServiceUnavailable, got.status, "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
+	require.Equal(t, "upstream_circuit_open", errorCode(t, got.body), "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
 	ra, err := strconv.Atoi(got.header.Get("Retry-After"))
 	if err != nil || ra < 1 || time.Duration(ra)*time.Second > openFor {
 		t.Fatalf("Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
@@ -275,7 +276,8 @@ func TestRetryBackoffAndLimits(t *testing.T) {
 			for n, d := range w {
 				// Full jitter: retry n waits within [0, min(cap, base·2^n)].
 				ceil := min(p.MaxDelay, p.Base<<n)
-				assert.False(t, d < 0 || d > ceil, "wait %d = %v, outside [0, %v]", n, d, ceil)
+				assert.GreaterOrEqual(t, d, time.Duration(0), "wait %d = %v, outside [0, %v]", n, d, ceil)
+				assert.LessOrEqual(t, d, ceil, "wait %d = %v, outside [0, %v]", n, d, ceil)
 			}
 			assert.False(t, tt.status == 429 && got.header.Get("Retry-After") != "9", "Retry-After %q, want the upstream's 9", got.header.Get("Retry-After"))
 		})
@@ -450,10 +452,14 @@ func TestModelsMergeAndSurviveADeadUpstream(t *testing.T) {
 		return resp.StatusCode, ids, resp.Header.Get(proxy.HeaderModelsMissing)
 	}
 	code, ids, missing := models()
-	require.False(t, code != 200 || !slices.Equal(ids, []string{"quill-small", "shared-model", "ledger-large"}) || missing != "", "merged: %d %v missing %q", code, ids, missing)
+	require.Equal(t, 200, code, "merged: %d %v missing %q", code, ids, missing)
+	require.True(t, slices.Equal(ids, []string{"quill-small", "shared-model", "ledger-large"}), "merged: %d %v missing %q", code, ids, missing)
+	require.Equal(t, "", missing, "merged: %d %v missing %q", code, ids, missing)
 	b.Close()
 	code, ids, missing = models()
-	assert.False(t, code != 200 || !slices.Equal(ids, []string{"quill-small", "shared-model"}) || missing != "b", "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	assert.Equal(t, 200, code, "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	assert.True(t, slices.Equal(ids, []string{"quill-small", "shared-model"}), "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	assert.Equal(t, "b", missing, "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
 	n := r.metric("stint_upstream_model_list_errors_total", "upstream", "b")
 	assert.Equal(t, float64(1), n, "model list errors for b = %v, want 1", n)
 	a.Close()

@@ -100,7 +100,8 @@ func TestRoutingByModel(t *testing.T) {
 				}
 				after := calls()
 				if s.want == "" {
-					assert.False(t, got.status != http.StatusBadRequest || errorCode(t, got.body) != "model_not_routed", "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
+					assert.Equal(t, http.StatusBadRequest, got.status, "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
+					assert.Equal(t, "model_not_routed", errorCode(t, got.body), "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
 				} else if got.status != http.StatusOK {
 					t.Errorf("%s (chat %v): %d %s, want 200 from %s", s.model, s.chat, got.status, got.body, s.want)
 				}

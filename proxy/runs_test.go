@@ -101,7 +101,8 @@ func TestRunReplaysBitForBitWithoutUpstream(t *testing.T) {
 	for round := range 2 { // a second replay in the same session wraps around to the first answers
 		for i, c := range script() {
 			got := c.send(r, proxy.HeaderRun, "orchard-7", proxy.HeaderRunMode, "replay")
-			require.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay, "round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
+			require.Equal(t, http.StatusOK, got.status, "round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
+			require.Equal(t, proxy.OutcomeReplay, got.cache(), "round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
 			assert.True(t, bytes.Equal(got.body, recorded[i]), "round %d replay %d differs:\n got %s\nwant %s", round, i, got.body, recorded[i])
 		}
 	}
@@ -123,10 +124,13 @@ func TestReplayCarriesTheRecordedCost(t *testing.T) {
 		charged = append(charged, headerNanos(t, got.header, proxy.HeaderCost))
 		saved = append(saved, headerNanos(t, got.header, proxy.HeaderSaved))
 	}
-	require.False(t, charged[0] == 0 || charged[1] != 0 || saved[1] == 0, "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
+	require.NotEqual(t, int64(0), charged[0], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
+	require.Equal(t, int64(0), charged[1], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
+	require.NotEqual(t, int64(0), saved[1], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
 	for i, body := range calls {
 		got := r.complete(body, proxy.HeaderRun, "ledger-1", proxy.HeaderRunMode, "replay")
-		require.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay, "replay %d: %d %q", i, got.status, got.cache())
+		require.Equal(t, http.StatusOK, got.status, "replay %d: %d %q", i, got.status, got.cache())
+		require.Equal(t, proxy.OutcomeReplay, got.cache(), "replay %d: %d %q", i, got.status, got.cache())
 		c := headerNanos(t, got.header, proxy.HeaderCost)
 		assert.Equal(t, int64(0), c, "replay %d charged %d nanos, want 0", i, c)
 		rec := headerNanos(t, got.header, proxy.HeaderRecordedCost)
@@ -166,7 +170,8 @@ func TestReplayRefusals(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			got := r.complete(tt.body, tt.headers...)
-			assert.False(t, got.status != tt.status || errorCode(t, got.body) != tt.code, "%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
+			assert.Equal(t, tt.status, got.status, "%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
+			assert.Equal(t, tt.code, errorCode(t, got.body), "%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
 		})
 	}
 	assert.True(t, r.up.Calls() == calls, "refused replays reached the upstream: %+v → %+v", calls, r.up.Calls())
@@ -231,7 +236,8 @@ func TestUnrecordedAnswerIsNotAcknowledged(t *testing.T) {
 	r, db := newRunRigDB(t)
 	require.NoError(t, db.Close())
 	got := r.complete(greedy("the orchard ledger opens", "max_tokens", 6), proxy.HeaderRun, "broken")
-	assert.False(t, got.status != http.StatusServiceUnavailable || errorCode(t, got.body) != "run_journal_unavailable", "plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
+	assert.Equal(t, http.StatusServiceUnavailable, got.status, "plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
+	assert.Equal(t, "run_journal_unavailable", errorCode(t, got.body), "plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
 	got = r.complete(greedy("the orchard ledger opens", "max_tokens", 6, "stream", true), proxy.HeaderRun, "broken")
 	assert.False(t, bytes.Contains(got.body, []byte("[DONE]")), "stream with the journal down ended normally:\n%s", got.body)
 	// Without a run header the same proxy answers as usual.

@@ -74,9 +74,12 @@ func TestSharedStoreHitOnAnotherReplica(t *testing.T) {
 	sr := newSharedRigs(t, 2, 8<<20)
 	a, b := sr.rigs[0], sr.rigs[1]
 	first := a.complete(greedy("the ferry leaves at dawn"))
-	require.False(t, first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss, "first call on a: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, http.StatusOK, first.status, "first call on a: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first call on a: %d %q %s", first.status, first.cache(), first.body)
 	got := b.complete(greedy("the ferry leaves at dawn"))
-	assert.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeHit || string(got.body) != string(first.body), "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	assert.Equal(t, http.StatusOK, got.status, "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	assert.Equal(t, proxy.OutcomeHit, got.cache(), "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	assert.Equal(t, string(first.body), string(got.body), "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
 	calls := sr.up.Calls().Completions
 	assert.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 }
@@ -104,7 +107,8 @@ func TestSharedFlightsMakeOneCall(t *testing.T) {
 	require.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 	count := map[string]int{}
 	for i, g := range got {
-		require.False(t, g.status != http.StatusOK || string(g.body) != string(got[0].body), "client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
+		require.Equal(t, http.StatusOK, g.status, "client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
+		require.Equal(t, string(got[0].body), string(g.body), "client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
 		count[g.cache()]++
 	}
 	assert.False(t, count[proxy.OutcomeMiss] != 1 || count[proxy.OutcomeShared] != clients-1, "outcomes %v, want 1 miss and %d shared", count, clients-1)
@@ -131,7 +135,8 @@ func TestSharedFlightsHolderFailure(t *testing.T) {
 	got := <-ra
 	assert.Equal(t, http.StatusInternalServerError, got.status, "a: %d %s, want the upstream's 500", got.status, got.body)
 	got = <-rb
-	assert.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss, "b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
+	assert.Equal(t, http.StatusOK, got.status, "b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
 	calls := sr.up.Calls().Completions
 	assert.Equal(t, 2, calls, "upstream calls = %d, want 2 (a's failed one, b's)", calls)
 }
@@ -154,7 +159,9 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	sr.redis.Stop()
 	for i, body := range []map[string]any{greedy("before the outage"), greedy("during the outage"), greedy("streamed during the outage", "stream", true)} {
 		got := completeWithin(t, r, 10*time.Second, body)
-		assert.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss || got.detail() != proxy.DetailStoreUnavailable, "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
+		assert.Equal(t, http.StatusOK, got.status, "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
+		assert.Equal(t, proxy.OutcomeMiss, got.cache(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
+		assert.Equal(t, proxy.DetailStoreUnavailable, got.detail(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
 	}
 	if resp, err := http.Get(r.srv.URL + "/readyz"); err != nil || resp.StatusCode != http.StatusOK {
 		t.Errorf("/readyz with the shared store down: %v %v, want 200 (the replica still answers)", resp, err)
@@ -201,9 +208,11 @@ func TestSharedFlightsAfterAStream(t *testing.T) {
 	waitFor(t, "b waiting on a's call", func() bool { return b.metric("stint_coalesced_remote_waiting") == 1 })
 	sr.up.Release()
 	gotA, gotB := <-ra, <-rb
-	require.False(t, gotA.status != http.StatusOK || gotA.cache() != proxy.OutcomeMiss, "a's stream: %d %q", gotA.status, gotA.cache())
+	require.Equal(t, http.StatusOK, gotA.status, "a's stream: %d %q", gotA.status, gotA.cache())
+	require.Equal(t, proxy.OutcomeMiss, gotA.cache(), "a's stream: %d %q", gotA.status, gotA.cache())
 	texts, _ := streamedText(t, false, events(t, gotA.body))
-	require.False(t, gotB.status != http.StatusOK || gotB.cache() != proxy.OutcomeShared, "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	require.Equal(t, http.StatusOK, gotB.status, "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	require.Equal(t, proxy.OutcomeShared, gotB.cache(), "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
 	if c := decodeCompletion(t, gotB.body); len(c.Choices) != 1 || c.Choices[0].Text != texts[0] {
 		t.Errorf("b's text %+v, a streamed %q", c.Choices, texts[0])
 	}
@@ -223,5 +232,6 @@ func TestSharedStoreSlowIsBounded(t *testing.T) {
 	require.NoError(t, admin.Do(t.Context(), "CLIENT", "PAUSE", 4000, "ALL").Err())
 	defer admin.Do(context.Background(), "CLIENT", "UNPAUSE")
 	got := completeWithin(t, r, 2500*time.Millisecond, greedy("while the lock is jammed"))
-	assert.False(t, got.status != http.StatusOK || got.detail() != proxy.DetailStoreUnavailable, "with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
+	assert.Equal(t, http.StatusOK, got.status, "with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
+	assert.Equal(t, proxy.DetailStoreUnavailable, got.detail(), "with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
 }

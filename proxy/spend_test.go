@@ -121,9 +121,11 @@ func TestSpendHeadersOnMissAndHit(t *testing.T) {
 	require.NoError(t, r.proxy.Close(context.Background()))
 	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
 	require.NoError(t, err)
-	assert.False(t, int64(b.Spent) != want || b.Held != 0, "ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
+	assert.Equal(t, want, int64(b.Spent), "ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
+	assert.Equal(t, budget.Nanos(0), b.Held, "ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
 	rows, err := budget.Report(context.Background(), r.ledger, budget.Query{By: budget.ByTeam})
-	require.False(t, err != nil || len(rows) != 1, "report: %v %+v", err, rows)
+	require.NoError(t, err, "report: %v %+v", err, rows)
+	require.Len(t, rows, 1, "report: %v %+v", err, rows)
 	assert.False(t, rows[0].Requests != 2 || rows[0].UpstreamCalls != 1 || int64(rows[0].Saved) != want, "journal row %+v, want 2 requests, 1 upstream call, saved %d", rows[0], want)
 }
 
@@ -167,14 +169,17 @@ func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
 	}
 	wg.Wait()
 	limit, _ := budget.FromUSD(budgetUSD)
-	require.False(t, ok == 0 || refused == 0, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	require.NotEqual(t, 0, ok, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	require.NotEqual(t, 0, refused, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
 	assert.LessOrEqual(t, billed, int64(limit), "the upstream billed %d nanos, over the %d budget", billed, limit)
 	if r.upstreamGenerations() != ok {
 		t.Errorf("upstream calls %d, answered %d: a refused call reached the upstream", r.upstreamGenerations(), ok)
 	}
 	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
 	require.NoError(t, err)
-	assert.False(t, int64(b.Spent) != billed || cost != billed || b.Held != 0, "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	assert.Equal(t, billed, int64(b.Spent), "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	assert.Equal(t, billed, cost, "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	assert.Equal(t, budget.Nanos(0), b.Held, "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
 }
 
 func TestSpendRefusals(t *testing.T) {
@@ -190,12 +195,14 @@ func TestSpendRefusals(t *testing.T) {
 			t.Errorf("Retry-After %q", got.header.Get("Retry-After"))
 		}
 		hit := r.complete(greedy("first"))
-		assert.False(t, hit.status != http.StatusOK || hit.cache() != proxy.OutcomeHit, "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
+		assert.Equal(t, http.StatusOK, hit.status, "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
+		assert.Equal(t, proxy.OutcomeHit, hit.cache(), "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
 	})
 	t.Run("unpriced model", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{})
 		got := r.complete(map[string]any{"model": "quill-large", "prompt": "x", "temperature": 0})
-		require.False(t, got.status != http.StatusBadRequest || r.upstreamGenerations() != 0, "unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
+		require.Equal(t, http.StatusBadRequest, got.status, "unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
+		require.Equal(t, 0, r.upstreamGenerations(), "unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
 	})
 	t.Run("bypass is settled from usage", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
@@ -205,7 +212,8 @@ func TestSpendRefusals(t *testing.T) {
 				body["stream_options"] = map[string]any{"include_usage": false}
 			}
 			got := r.complete(body)
-			require.False(t, got.status != http.StatusOK || got.cache() != proxy.OutcomeBypass, "stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
+			require.Equal(t, http.StatusOK, got.status, "stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
+			require.Equal(t, proxy.OutcomeBypass, got.cache(), "stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
 			if stream {
 				_, usageChunk := streamedText(t, false, events(t, got.body))
 				assert.Nil(t, usageChunk, "the client did not ask for usage but got a usage chunk")

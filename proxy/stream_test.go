@@ -18,7 +18,9 @@ func TestStreamedMissRelaysAndIsStoredForPlainRequests(t *testing.T) {
 	streamed := greedy("the river rose overnight", "logprobs", 1, "max_tokens", 10, "stream", true)
 
 	miss := r.complete(streamed)
-	require.False(t, miss.status != http.StatusOK || miss.cache() != proxy.OutcomeMiss || !strings.HasPrefix(miss.header.Get("Content-Type"), "text/event-stream"), "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
+	require.Equal(t, http.StatusOK, miss.status, "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
+	require.Equal(t, proxy.OutcomeMiss, miss.cache(), "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
+	require.True(t, strings.HasPrefix(miss.header.Get("Content-Type"), "text/event-stream"), "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
 	texts, usageChunk := streamedText(t, false, events(t, miss.body))
 	want := decodeCompletion(t, r.direct("/v1/completions", plain).body)
 	require.Equal(t, want.Choices[0].Text, texts[0], "streamed text %q, want %q", texts[0], want.Choices[0].Text)
@@ -54,7 +56,8 @@ func TestStreamedHitIsSynthesized(t *testing.T) {
 				streamed[k] = v
 			}
 			hit := r.post(path, streamed)
-			require.False(t, hit.cache() != proxy.OutcomeHit || !strings.HasPrefix(hit.header.Get("Content-Type"), "text/event-stream"), "streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
+			require.Equal(t, proxy.OutcomeHit, hit.cache(), "streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
+			require.True(t, strings.HasPrefix(hit.header.Get("Content-Type"), "text/event-stream"), "streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
 			texts, usageChunk := streamedText(t, tc.chat, events(t, hit.body))
 			var wantText string
 			var wantPrompt, wantCompletion int
