@@ -110,9 +110,8 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	// The hit's saving is journaled in the background; wait until it is.
 	waitFor(t, "the hit in the journal", func() bool {
 		status, b := r.adminDo("GET", "statement?by=team", adminKey, "")
-		if status != 200 || json.Unmarshal(b, &st) != nil {
-			t.Fatalf("statement: %d %s", status, b)
-		}
+		require.Equal(t, 200, status, "statement: %s", b)
+		require.NoError(t, json.Unmarshal(b, &st), "statement: %s", b)
 		return st.Total.Requests == 4
 	})
 	assert.Equal(t, int64(4), st.Total.Requests, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))

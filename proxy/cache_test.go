@@ -151,25 +151,18 @@ func TestBatchSplitSendsOnlyMissingPrompts(t *testing.T) {
 	first := r.complete(greedy([]string{"alpha hive", "beta hive"}, "logprobs", 2))
 	require.Equal(t, http.StatusOK, first.status, "first batch: %d %q %s", first.status, first.cache(), first.body)
 	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first batch: %d %q %s", first.status, first.cache(), first.body)
-	if got := r.up.Prompts(); got != 2 {
-		t.Fatalf("upstream prompts after first batch = %d, want 2", got)
-	}
+	require.Equal(t, 2, r.up.Prompts(), "upstream prompts after first batch")
 	second := r.complete(greedy([]string{"beta hive", "gamma hive", "alpha hive"}, "logprobs", 2))
 	require.Equal(t, http.StatusOK, second.status, "second batch: %d %q %s", second.status, second.cache(), second.body)
 	require.Equal(t, proxy.OutcomePartial, second.cache(), "second batch: %d %q %s", second.status, second.cache(), second.body)
-	if got := second.header.Get(proxy.HeaderCachedPrompt); got != "2/3" {
-		t.Errorf("%s = %q, want 2/3", proxy.HeaderCachedPrompt, got)
-	}
-	if got := r.up.Prompts(); got != 3 {
-		t.Errorf("upstream prompts after second batch = %d, want 3 (only gamma is new)", got)
-	}
+	assert.Equal(t, "2/3", second.header.Get(proxy.HeaderCachedPrompt), proxy.HeaderCachedPrompt)
+	assert.Equal(t, 3, r.up.Prompts(), "upstream prompts after second batch (only gamma is new)")
 	reqs := r.up.Requests()
 	var last struct {
 		Prompt []string `json:"prompt"`
 	}
-	if err := json.Unmarshal(reqs[len(reqs)-1].Body, &last); err != nil || len(last.Prompt) != 1 || last.Prompt[0] != "gamma hive" {
-		t.Errorf("upstream got prompt %v (%v), want [gamma hive]", last.Prompt, err)
-	}
+	assert.NoError(t, json.Unmarshal(reqs[len(reqs)-1].Body, &last), "upstream request body")
+	assert.Equal(t, []string{"gamma hive"}, last.Prompt, "upstream got prompt")
 	// Every choice matches what the upstream answers for that prompt alone.
 	got := decodeCompletion(t, second.body)
 	sumPrompt, sumCompletion := 0, 0
@@ -261,8 +254,9 @@ func TestChatFewerTopLogprobs(t *testing.T) {
 		w := want.Choices[0].Logprobs.Content[i]
 		assert.False(t, len(c.TopLogprobs) != 1 || c.TopLogprobs[0].Token != w.TopLogprobs[0].Token, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
 	}
-	if plain := r.chat(body(-1)); plain.cache() != proxy.OutcomeHit || decodeChat(t, plain.body).Choices[0].Logprobs != nil {
-		t.Errorf("no logprobs after 4: cache %q body %s", plain.cache(), plain.body)
+	plain := r.chat(body(-1))
+	if assert.Equal(t, proxy.OutcomeHit, plain.cache(), "no logprobs after 4: cache") {
+		assert.Nil(t, decodeChat(t, plain.body).Choices[0].Logprobs, "no logprobs after 4: body %s", plain.body)
 	}
 }
 
@@ -276,7 +270,7 @@ func promptEnding(t *testing.T, r *rig, finish string, from int) string {
 			return p
 		}
 	}
-	t.Fatalf("no prompt found whose answer ends with %q", finish)
+	require.Failf(t, "no prompt found", "no prompt found whose answer ends with %q", finish)
 	return ""
 }
 
@@ -291,8 +285,7 @@ func TestShorterGreedyAnswerCutFromLongerOne(t *testing.T) {
 		t.Helper()
 		short := greedy(prompt, "logprobs", 1, "max_tokens", n)
 		got := r.complete(short)
-		if got.cache() != wantCache {
-			t.Errorf("%q max_tokens %d after 24: cache %q, want %q", prompt, n, got.cache(), wantCache)
+		if !assert.Equal(t, wantCache, got.cache(), "%q max_tokens %d after 24: cache", prompt, n) {
 			return
 		}
 		want := decodeCompletion(t, r.direct("/v1/completions", short).body)

@@ -67,9 +67,9 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 					Code    *string `json:"code"`
 				} `json:"error"`
 			}
-			if err := json.Unmarshal(got.body, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
-				t.Fatalf("not the wire error shape: %s (%v)", got.body, err)
-			}
+			require.NoError(t, json.Unmarshal(got.body, &e), "not the wire error shape: %s", got.body)
+			require.NotEqual(t, "", e.Error.Message, "no error message: %s", got.body)
+			require.NotEqual(t, "", e.Error.Type, "no error type: %s", got.body)
 			assert.False(t, tt.param != "" && (e.Error.Param == nil || *e.Error.Param != tt.param), "param %v, want %q", e.Error.Param, tt.param)
 		})
 	}
@@ -294,11 +294,11 @@ func TestNoRequestOutlivesItsDeadline(t *testing.T) {
 			for n, res := range results {
 				switch {
 				case errors.Is(res.err, context.DeadlineExceeded):
-					t.Errorf("request %d outlived its deadline of the timeout %v + %v: %v", n, timeout, margin, res.err)
+					assert.Failf(t, "request outlived its deadline", "request %d outlived its deadline of the timeout %v + %v: %v", n, timeout, margin, res.err)
 				case res.err != nil:
-					t.Errorf("request %d got no whole answer: %v", n, res.err)
+					assert.Failf(t, "request got no whole answer", "request %d: %v", n, res.err)
 				case !allowed[res.status]:
-					t.Errorf("request %d: status %d, want one of %v", n, res.status, allowed)
+					assert.Failf(t, "unexpected status", "request %d: status %d, want one of %v", n, res.status, allowed)
 				}
 				seen[res.status]++
 			}

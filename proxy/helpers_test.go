@@ -106,9 +106,8 @@ func (r *rig) post(path string, body any, headers ...string) response {
 		raw = b
 	default:
 		var err error
-		if raw, err = json.Marshal(b); err != nil {
-			r.t.Fatalf("marshal: %v", err)
-		}
+		raw, err = json.Marshal(b)
+		require.NoError(r.t, err, "marshal")
 	}
 	req, err := http.NewRequest(http.MethodPost, r.srv.URL+path, bytes.NewReader(raw))
 	require.NoError(r.t, err)
@@ -309,7 +308,7 @@ func waitFor(t *testing.T, what string, cond func() bool) {
 	for !cond() {
 		select {
 		case <-ctx.Done():
-			t.Fatalf("timed out waiting for %s", what)
+			require.Failf(t, "timed out", "timed out waiting for %s", what)
 		case <-time.After(time.Millisecond):
 		}
 	}

@@ -74,9 +74,9 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 		rec := httptest.NewRecorder()
 		writeError(rec, aerr)
 		var e wire.ErrorBody
-		if err := json.Unmarshal(rec.Body.Bytes(), &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
-			t.Fatalf("refusal body %s is not the wire error shape (%v)", rec.Body.Bytes(), err)
-		}
+		require.NoError(t, json.Unmarshal(rec.Body.Bytes(), &e), "refusal body %s is not the wire error shape", rec.Body.Bytes())
+		require.NotEqual(t, "", e.Error.Message, "refusal body %s has no message", rec.Body.Bytes())
+		require.NotEqual(t, "", e.Error.Type, "refusal body %s has no type", rec.Body.Bytes())
 		return
 	}
 	require.NotEqual(t, "", req.model, "parsed model %q n %d", req.model, req.n)
@@ -112,9 +112,8 @@ func checkParse(t *testing.T, ep endpoint, body []byte) {
 		require.Len(t, backItems, len(items), "upstream body has %d prompt items, want %d", len(backItems), len(items))
 		for i, it := range backItems {
 			k, err := keyBody(back, it)
-			if err != nil || string(k) != keys[i] {
-				t.Fatalf("upstream body changes the key of item %d:\n%s\n%s (%v)", i, k, keys[i], err)
-			}
+			require.NoError(t, err, "key of upstream item %d", i)
+			require.Equal(t, keys[i], string(k), "upstream body changes the key of item %d", i)
 		}
 	}
 }
@@ -189,9 +188,8 @@ func checkSplitMerge(t *testing.T, m *material) {
 				Text  string `json:"text"`
 			} `json:"choices"`
 		}
-		if err := json.Unmarshal(p.body, &a); err != nil || len(a.Choices) != n {
-			t.Fatalf("answer %d: %s (%v), want %d choices", j, p.body, err, n)
-		}
+		require.NoError(t, json.Unmarshal(p.body, &a), "answer %d: %s", j, p.body)
+		require.Len(t, a.Choices, n, "answer %d: %s", j, p.body)
 		for _, ch := range a.Choices {
 			require.GreaterOrEqual(t, ch.Index, 0, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
 			require.Less(t, ch.Index, n, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
@@ -358,9 +356,7 @@ func checkShape(t *testing.T, m *material) {
 			kept = append(kept, f)
 		}
 		sort.Sort(sort.Reverse(sort.Float64Slice(kept)))
-		if !slices.Equal(kept, best[:len(kept)]) {
-			t.Fatalf("position %d kept %v, want the most likely %v", i, kept, best[:len(kept)])
-		}
+		require.True(t, slices.Equal(kept, best[:len(kept)]), "position %d kept %v, want the most likely %v", i, kept, best[:len(kept)])
 	}
 }
 

@@ -41,9 +41,8 @@ func TestReadAllSized(t *testing.T) {
 				require.ErrorIs(t, err, tc.wantErr, "err = %v, want %v", err, tc.wantErr)
 				return
 			}
-			if err != nil || string(got) != tc.want {
-				t.Fatalf("got %d bytes, %v; want %d bytes", len(got), err, len(tc.want))
-			}
+			require.NoError(t, err)
+			require.True(t, string(got) == tc.want, "got %d bytes; want the %d bytes sent", len(got), len(tc.want))
 		})
 	}
 }

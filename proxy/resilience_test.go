@@ -85,9 +85,9 @@ func assertOpenAnswer(t *testing.T, got response, openFor time.Duration) {
 	require.Equal(t, http.StatusServiceUnavailable, got.status, "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
 	require.Equal(t, "upstream_circuit_open", errorCode(t, got.body), "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
 	ra, err := strconv.Atoi(got.header.Get("Retry-After"))
-	if err != nil || ra < 1 || time.Duration(ra)*time.Second > openFor {
-		t.Fatalf("Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
-	}
+	require.NoError(t, err, "Retry-After %q, want whole seconds", got.header.Get("Retry-After"))
+	require.GreaterOrEqual(t, ra, 1, "Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
+	require.LessOrEqual(t, time.Duration(ra)*time.Second, openFor, "Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
 }
 
 func TestBreakerOpensWithinTheConfiguredCount(t *testing.T) {
@@ -123,9 +123,7 @@ func TestBreakerOpensWithinTheConfiguredCount(t *testing.T) {
 			assert.Equal(t, trip, n, "upstream saw %d calls, want %d (none once open)", n, trip)
 			s := r.breakerState()
 			assert.Equal(t, float64(2), s, "stint_upstream_breaker_state = %v, want 2 (open)", s)
-			if n := r.metric("stint_upstream_breaker_trips_total", "upstream", "fake"); n != 1 {
-				t.Errorf("trips = %v, want 1", n)
-			}
+			assert.Equal(t, float64(1), r.metric("stint_upstream_breaker_trips_total", "upstream", "fake"), "trips")
 		})
 	}
 }
@@ -168,26 +166,26 @@ func TestHitsAreServedWhileOpenAndAProbeClosesIt(t *testing.T) {
 	const openFor = 1500 * time.Millisecond
 	r := newRig(t, withResilience(breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1, OpenFor: openFor}, noRetries, nil))
 	cached := greedy("the lock keeper's ledger")
-	if got := r.complete(cached); got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss {
-		t.Fatalf("warming the cache: %d %q", got.status, got.cache())
-	}
+	warm := r.complete(cached)
+	require.Equal(t, http.StatusOK, warm.status, "warming the cache: %s", warm.body)
+	require.Equal(t, proxy.OutcomeMiss, warm.cache(), "warming the cache")
 	r.up.FailRatio(1, upstreamtest.Fault{Status: 500})
 	r.complete(greedy("fail one"))
 	r.complete(greedy("fail two"))
 	s := r.breakerState()
 	require.Equal(t, float64(2), s, "breaker state %v, want open", s)
 	calls := r.upstreamGenerations()
-	if got := r.complete(cached); got.status != http.StatusOK || got.cache() != proxy.OutcomeHit {
-		t.Errorf("cached answer while open: %d %q, want 200 hit", got.status, got.cache())
-	}
+	whileOpen := r.complete(cached)
+	assert.Equal(t, http.StatusOK, whileOpen.status, "cached answer while open")
+	assert.Equal(t, proxy.OutcomeHit, whileOpen.cache(), "cached answer while open")
 	assertOpenAnswer(t, r.complete(greedy("a miss while open")), 2*time.Second)
 	assert.Equal(t, calls, r.upstreamGenerations(), "the upstream was called while open")
 	// After openFor the breaker lets a probe through; its success closes it.
 	r.up.ClearFaults()
 	waitFor(t, "half-open", func() bool { return r.breakerState() == 1 })
-	if got := r.complete(greedy("the probe")); got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss {
-		t.Fatalf("probe: %d %s", got.status, got.body)
-	}
+	probe := r.complete(greedy("the probe"))
+	require.Equal(t, http.StatusOK, probe.status, "probe: %s", probe.body)
+	require.Equal(t, proxy.OutcomeMiss, probe.cache(), "probe: %s", probe.body)
 	s = r.breakerState()
 	assert.Equal(t, float64(0), s, "after a good probe: state %v, want 0 (closed)", s)
 	got := r.complete(greedy("after closing"))
@@ -221,9 +219,7 @@ func TestRetriesHonourRetryAfter(t *testing.T) {
 			assert.Equal(t, 3, n, "upstream calls %d, want 3", n)
 			w := sl.waits()
 			assert.True(t, slices.Equal(w, []time.Duration{tt.wait, tt.wait}), "waits %v, want the Retry-After %v twice", w, tt.wait)
-			if n := r.metric("stint_upstream_retries_total", "upstream", "fake", "reason", strconv.Itoa(tt.status)); n != 2 {
-				t.Errorf("retries metric %v, want 2", n)
-			}
+			assert.Equal(t, float64(2), r.metric("stint_upstream_retries_total", "upstream", "fake", "reason", strconv.Itoa(tt.status)), "retries metric")
 		})
 	}
 }
@@ -311,7 +307,7 @@ func TestRetryWaitEndsWhenTheClientLeaves(t *testing.T) {
 	select {
 	case <-started:
 	case <-time.After(20 * time.Second):
-		t.Fatal("no retry wait began")
+		require.Fail(t, "no retry wait began")
 	}
 	cancel() // the client gives up during the wait
 	err := <-done
@@ -319,7 +315,7 @@ func TestRetryWaitEndsWhenTheClientLeaves(t *testing.T) {
 	select {
 	case <-ended:
 	case <-time.After(20 * time.Second):
-		t.Fatal("the retry wait went on after the client left")
+		require.Fail(t, "the retry wait went on after the client left")
 	}
 	n := r.upstreamGenerations()
 	assert.Equal(t, 1, n, "upstream calls %d, want 1 (no retry once the client left)", n)
@@ -384,9 +380,7 @@ func TestFallbackWhenTheBreakerIsOpen(t *testing.T) {
 			assert.Equal(t, int(tt.fallback), n, "fallback calls %d, want %v", n, tt.fallback)
 			n = r.upstreamGenerations()
 			assert.Equal(t, 2, n, "first upstream calls %d, want 2", n)
-			if n := r.metric("stint_upstream_fallbacks_total", "from", "fake", "to", "second"); n != tt.fallback {
-				t.Errorf("fallbacks metric %v, want %v", n, tt.fallback)
-			}
+			assert.Equal(t, tt.fallback, r.metric("stint_upstream_fallbacks_total", "from", "fake", "to", "second"), "fallbacks metric")
 			if tt.want == http.StatusOK {
 				// The fallback's answer is cached under the routed upstream.
 				again := r.complete(greedy("sent elsewhere"))
@@ -527,9 +521,7 @@ func TestSharedBreakerWithRedisDownUsesLocalState(t *testing.T) {
 	srv := redistest.Start(t)
 	r := newRig(t, func(o *proxy.Options) {
 		st, err := redisstate.New(srv.Client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		o.BreakerStore = st
 		o.Upstreams[0].Breaker = breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}
 		o.Upstreams[0].Retry = noRetries

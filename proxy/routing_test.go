@@ -102,8 +102,8 @@ func TestRoutingByModel(t *testing.T) {
 				if s.want == "" {
 					assert.Equal(t, http.StatusBadRequest, got.status, "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
 					assert.Equal(t, "model_not_routed", errorCode(t, got.body), "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
-				} else if got.status != http.StatusOK {
-					t.Errorf("%s (chat %v): %d %s, want 200 from %s", s.model, s.chat, got.status, got.body, s.want)
+				} else {
+					assert.Equal(t, http.StatusOK, got.status, "%s (chat %v): %s, want 200 from %s", s.model, s.chat, got.body, s.want)
 				}
 				for name := range ups {
 					want := 0

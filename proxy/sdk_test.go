@@ -78,9 +78,8 @@ func TestRealClientLibrary(t *testing.T) {
 		require.NoError(t, err)
 		resp, err := client.CreateChatCompletion(ctx, req)
 		require.NoError(t, err)
-		if resp.Choices[0].Message.Content != a.Choices[0].Message.Content || len(resp.Choices[0].LogProbs.Content) == 0 {
-			t.Errorf("chat answers differ or lack logprobs: %+v", resp.Choices[0])
-		}
+		assert.Equal(t, a.Choices[0].Message.Content, resp.Choices[0].Message.Content, "chat answers differ")
+		assert.NotEmpty(t, resp.Choices[0].LogProbs.Content, "chat answer lacks logprobs: %+v", resp.Choices[0])
 		hdr := resp.Header().Get(proxy.HeaderCacheStatus)
 		cs, ok := proxy.ParseCacheStatus(resp.Header())
 		assert.False(t, !ok || !cs.Hit || cs.Fwd != "", "second chat call: Cache-Status %q, want stint's member with hit (RFC 9211 §2.1)", hdr)

@@ -149,9 +149,9 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	noLeaks(t)
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
-	if got := r.complete(greedy("before the outage")); got.status != http.StatusOK || got.detail() != "" {
-		t.Fatalf("with Redis up: %d %q", got.status, got.detail())
-	}
+	before := r.complete(greedy("before the outage"))
+	require.Equal(t, http.StatusOK, before.status, "with Redis up: %s", before.body)
+	require.Equal(t, "", before.detail(), "with Redis up")
 	// A write still landing is served from memory, so the first answer's
 	// write must be in Redis before it stops, and each call during the
 	// outage asks for a different text.
@@ -163,9 +163,8 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 		assert.Equal(t, proxy.OutcomeMiss, got.cache(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
 		assert.Equal(t, proxy.DetailStoreUnavailable, got.detail(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
 	}
-	if resp, err := http.Get(r.srv.URL + "/readyz"); err != nil || resp.StatusCode != http.StatusOK {
-		t.Errorf("/readyz with the shared store down: %v %v, want 200 (the replica still answers)", resp, err)
-	} else {
+	if resp, err := http.Get(r.srv.URL + "/readyz"); assert.NoError(t, err, "/readyz with the shared store down") {
+		assert.Equal(t, http.StatusOK, resp.StatusCode, "/readyz with the shared store down: want 200 (the replica still answers)")
 		resp.Body.Close()
 	}
 	n := r.metric("stint_store_degraded_requests_total")
@@ -213,8 +212,8 @@ func TestSharedFlightsAfterAStream(t *testing.T) {
 	texts, _ := streamedText(t, false, events(t, gotA.body))
 	require.Equal(t, http.StatusOK, gotB.status, "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
 	require.Equal(t, proxy.OutcomeShared, gotB.cache(), "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
-	if c := decodeCompletion(t, gotB.body); len(c.Choices) != 1 || c.Choices[0].Text != texts[0] {
-		t.Errorf("b's text %+v, a streamed %q", c.Choices, texts[0])
+	if c := decodeCompletion(t, gotB.body); assert.Len(t, c.Choices, 1, "b's choices") {
+		assert.Equal(t, texts[0], c.Choices[0].Text, "b's text, want what a streamed")
 	}
 	calls := sr.up.Calls().Completions
 	assert.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)

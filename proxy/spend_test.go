@@ -159,11 +159,10 @@ func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
 						Code string `json:"code"`
 					} `json:"error"`
 				}
-				if json.Unmarshal(got.body, &e) != nil || e.Error.Code != "budget_exhausted" {
-					t.Errorf("402 body %s", got.body)
-				}
+				assert.NoError(t, json.Unmarshal(got.body, &e), "402 body %s", got.body)
+				assert.Equal(t, "budget_exhausted", e.Error.Code, "402 body %s", got.body)
 			default:
-				t.Errorf("status %d: %s", got.status, got.body)
+				assert.Failf(t, "unexpected status", "status %d: %s", got.status, got.body)
 			}
 		}()
 	}
@@ -172,9 +171,7 @@ func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
 	require.NotEqual(t, 0, ok, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
 	require.NotEqual(t, 0, refused, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
 	assert.LessOrEqual(t, billed, int64(limit), "the upstream billed %d nanos, over the %d budget", billed, limit)
-	if r.upstreamGenerations() != ok {
-		t.Errorf("upstream calls %d, answered %d: a refused call reached the upstream", r.upstreamGenerations(), ok)
-	}
+	assert.Equal(t, ok, r.upstreamGenerations(), "upstream calls vs answered: a refused call reached the upstream")
 	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
 	require.NoError(t, err)
 	assert.Equal(t, billed, int64(b.Spent), "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
@@ -185,15 +182,14 @@ func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
 func TestSpendRefusals(t *testing.T) {
 	t.Run("rate limit", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{Limits: guard.Limits{RequestsPerMinute: 1}}, func(c *guard.Config) { c.MaxWait = -1 })
-		if got := r.complete(greedy("first")); got.status != http.StatusOK {
-			t.Fatalf("first: %d %s", got.status, got.body)
-		}
+		first := r.complete(greedy("first"))
+		require.Equal(t, http.StatusOK, first.status, "first: %s", first.body)
 		got := r.complete(greedy("second"))
 		require.Equal(t, http.StatusTooManyRequests, got.status, "second: %d %s, want 429", got.status, got.body)
 		// RFC 9110 §10.2.3: delay-seconds, a whole number.
-		if s, err := strconv.Atoi(got.header.Get("Retry-After")); err != nil || s < 1 {
-			t.Errorf("Retry-After %q", got.header.Get("Retry-After"))
-		}
+		retryAfter, raErr := strconv.Atoi(got.header.Get("Retry-After"))
+		assert.NoError(t, raErr, "Retry-After %q", got.header.Get("Retry-After"))
+		assert.GreaterOrEqual(t, retryAfter, 1, "Retry-After %q", got.header.Get("Retry-After"))
 		hit := r.complete(greedy("first"))
 		assert.Equal(t, http.StatusOK, hit.status, "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
 		assert.Equal(t, proxy.OutcomeHit, hit.cache(), "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
@@ -221,8 +217,9 @@ func TestSpendRefusals(t *testing.T) {
 		}
 		require.NoError(t, r.proxy.Close(context.Background()))
 		b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-		if err != nil || b.Spent <= 0 || b.Held != 0 {
-			t.Errorf("after two bypassed calls: spent %d held %d (%v)", b.Spent, b.Held, err)
+		if assert.NoError(t, err, "after two bypassed calls") {
+			assert.Greater(t, b.Spent, budget.Nanos(0), "after two bypassed calls: spent")
+			assert.Equal(t, budget.Nanos(0), b.Held, "after two bypassed calls: held")
 		}
 	})
 }

@@ -89,10 +89,9 @@ func TestStreamedChatMissAssembles(t *testing.T) {
 	require.Equal(t, proxy.OutcomeHit, hit.cache(), "cache %q, want hit", hit.cache())
 	got := decodeChat(t, hit.body)
 	want := decodeChat(t, r.direct("/v1/chat/completions", body).body)
-	assert.False(t, texts[0] != want.Choices[0].Message.Content || got.Choices[0].Message.Content != want.Choices[0].Message.Content, "streamed %q, assembled %q, want %q", texts[0], got.Choices[0].Message.Content, want.Choices[0].Message.Content)
-	if len(got.Choices[0].Logprobs.Content) != len(want.Choices[0].Logprobs.Content) {
-		t.Errorf("assembled %d logprob entries, want %d", len(got.Choices[0].Logprobs.Content), len(want.Choices[0].Logprobs.Content))
-	}
+	assert.Equal(t, want.Choices[0].Message.Content, texts[0], "streamed text")
+	assert.Equal(t, want.Choices[0].Message.Content, got.Choices[0].Message.Content, "assembled text")
+	assert.Len(t, got.Choices[0].Logprobs.Content, len(want.Choices[0].Logprobs.Content), "assembled logprob entries")
 	gb, _ := json.Marshal(got.Choices[0].Logprobs)
 	wb, _ := json.Marshal(want.Choices[0].Logprobs)
 	assert.Equal(t, string(wb), string(gb), "assembled logprobs\n%s\nwant\n%s", gb, wb)
