@@ -76,12 +76,20 @@ func TestNextPrefersRetryAfterUpToTheCap(t *testing.T) {
 	now := time.Now()
 	h := http.Header{"Retry-After": {"7"}}
 	d, ok := p.Next(0, h, now, r)
-	assert.False(t, !ok || d.Wait != 7*time.Second || !d.FromHeader, "Retry-After 7: got %+v %v", d, ok)
+	if assert.True(t, ok, "Retry-After 7: got %+v %v", d, ok) {
+		assert.Equal(t, 7*time.Second, d.Wait, "Retry-After 7: got %+v %v", d, ok)
+		assert.True(t, d.FromHeader, "Retry-After 7: got %+v %v", d, ok)
+	}
 	h.Set("Retry-After", "11")
 	d, ok = p.Next(0, h, now, r)
-	assert.False(t, ok || d.Wait != 11*time.Second, "Retry-After above the cap: got %+v %v, want not ok", d, ok)
+	if assert.False(t, ok, "Retry-After above the cap: got %+v %v, want not ok", d, ok) {
+		assert.Equal(t, 11*time.Second, d.Wait, "Retry-After above the cap: got %+v %v, want not ok", d, ok)
+	}
 	d, ok = p.Next(2, nil, now, r)
-	assert.False(t, !ok || d.FromHeader || d.Wait > p.Ceiling(2), "no header: got %+v %v", d, ok)
+	if assert.True(t, ok, "no header: got %+v %v", d, ok) {
+		assert.False(t, d.FromHeader, "no header: got %+v %v", d, ok)
+		assert.LessOrEqual(t, d.Wait, p.Ceiling(2), "no header: got %+v %v", d, ok)
+	}
 }
 
 func TestMaxAttempts(t *testing.T) {
