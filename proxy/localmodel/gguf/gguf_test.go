@@ -105,12 +105,22 @@ func equalF32(a, b []float32) bool {
 func TestRealModelHeader(t *testing.T) {
 	f, err := Open(modelPath(t))
 	require.NoError(t, err)
-	assert.False(t, f.Version != 3 || len(f.Keys) != 19 || len(f.Tensors) != 48 || f.DataOffset != 14176, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
+	assert.Equal(t, uint32(3), f.Version, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
+	if assert.Len(t, f.Keys, 19, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset) {
+		if assert.Len(t, f.Tensors, 48, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset) {
+			assert.Equal(t, uint64(14176), f.DataOffset, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
+		}
+	}
 	for _, ti := range f.Tensors {
 		assert.Equal(t, TensorF32, ti.Type, "tensor %s: type %v, want F32", ti.Name, ti.Type)
 	}
 	ti, err := f.Tensor("blk.0.ffn_gate.weight")
-	assert.False(t, err != nil || len(ti.Dims) != 2 || ti.Dims[0] != 64 || ti.Dims[1] != 172, "ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+	if assert.NoError(t, err, "ffn_gate: got %+v, %v; want dims [64 172]", ti, err) {
+		if assert.Len(t, ti.Dims, 2, "ffn_gate: got %+v, %v; want dims [64 172]", ti, err) {
+			assert.Equal(t, uint64(64), ti.Dims[0], "ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+			assert.Equal(t, uint64(172), ti.Dims[1], "ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+		}
+	}
 }
 
 func TestParseErrors(t *testing.T) {
