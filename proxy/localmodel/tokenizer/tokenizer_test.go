@@ -119,7 +119,9 @@ func TestByteTokensCoverEveryByte(t *testing.T) {
 	for b := 0; b < 256; b++ {
 		id := tok.byteTok[b]
 		got := tok.Bytes(id)
-		assert.False(t, len(got) != 1 || got[0] != byte(b), "byte 0x%02X: token %d gives %q", b, id, got)
+		if assert.Len(t, got, 1, "byte 0x%02X: token %d gives %q", b, id, got) {
+			assert.Equal(t, byte(b), got[0], "byte 0x%02X: token %d gives %q", b, id, got)
+		}
 		s := string([]byte{'x', byte(b)})
 		assert.Equal(t, s, tok.Decode(tok.Encode(s)), "round trip of %q", s)
 	}
