@@ -89,7 +89,11 @@ func TestEchoLogprobs(t *testing.T) {
 	// max_tokens 0 with echo scores the prompt without generating.
 	r = complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 0, "max_tokens": 0})
 	c = r.Choices[0]
-	assert.False(t, c.Text != prompt || len(c.Logprobs.Tokens) != len(ptoks) || r.Usage.CompletionTokens != 0 || *c.FinishReason != "length", "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	assert.Equal(t, prompt, c.Text, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	if assert.Len(t, c.Logprobs.Tokens, len(ptoks), "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage) {
+		assert.Equal(t, 0, r.Usage.CompletionTokens, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+		assert.Equal(t, "length", *c.FinishReason, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	}
 }
 
 func TestStop(t *testing.T) {
@@ -309,13 +313,20 @@ func checkErrorBody(tb testing.TB, out []byte, hdr http.Header) {
 func TestUnknownFieldsAndModels(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{Name: "story-box"})
 	r := complete(t, srv, `{"prompt": "a", "max_tokens": 1, "frobnicate": {"x": [1, 2]}, "user": "u1"}`)
-	assert.False(t, len(r.Choices) != 1 || r.Model != "story-box", "got %+v", r)
+	if assert.Len(t, r.Choices, 1, "got %+v", r) {
+		assert.Equal(t, "story-box", r.Model, "got %+v", r)
+	}
 	resp, err := http.Get(srv.URL + "/v1/models")
 	require.NoError(t, err)
 	defer resp.Body.Close()
 	var l wire.ModelList
 	err = json.NewDecoder(resp.Body).Decode(&l)
-	assert.False(t, err != nil || len(l.Data) != 1 || l.Data[0].ID != "story-box" || l.Object != "list", "models: %+v %v", l, err)
+	if assert.NoError(t, err, "models: %+v %v", l, err) {
+		if assert.Len(t, l.Data, 1, "models: %+v %v", l, err) {
+			assert.Equal(t, "story-box", l.Data[0].ID, "models: %+v %v", l, err)
+			assert.Equal(t, "list", l.Object, "models: %+v %v", l, err)
+		}
+	}
 }
 
 // cancelWriter is a ResponseWriter that cancels the request on its first
@@ -438,7 +449,11 @@ func TestOpenAIClient(t *testing.T) {
 	seed := 3
 	cr, err := client.CreateCompletion(ctx, openai.CompletionRequest{Model: DefaultName, Prompt: []string{"Lily", "Tim"}, MaxTokens: 5, Seed: &seed, LogProbs: 2})
 	require.NoError(t, err)
-	assert.False(t, len(cr.Choices) != 2 || len(cr.Choices[1].LogProbs.Tokens) != 5 || cr.Usage.CompletionTokens != 10, "completion: %+v", cr)
+	if assert.Len(t, cr.Choices, 2, "completion: %+v", cr) {
+		if assert.Len(t, cr.Choices[1].LogProbs.Tokens, 5, "completion: %+v", cr) {
+			assert.Equal(t, 10, cr.Usage.CompletionTokens, "completion: %+v", cr)
+		}
+	}
 	st, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{
 		//lint:ignore SA1019 max_tokens is the field of the wire format stint serves; the SDK sends it through MaxTokens
 		Model: DefaultName, MaxTokens: 6, Seed: &seed,
@@ -462,7 +477,10 @@ func TestOpenAIClient(t *testing.T) {
 			u = resp.Usage
 		}
 	}
-	assert.False(t, text == "" || u == nil || u.CompletionTokens != 6, "chat stream: text %q usage %+v", text, u)
+	assert.NotEqual(t, "", text, "chat stream: text %q usage %+v", text, u)
+	if assert.NotNil(t, u, "chat stream: text %q usage %+v", text, u) {
+		assert.Equal(t, 6, u.CompletionTokens, "chat stream: text %q usage %+v", text, u)
+	}
 }
 
 // TestHealthzLikeTheProxy: stint local answers GET /healthz as the proxy
