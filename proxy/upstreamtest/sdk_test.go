@@ -46,7 +46,12 @@ func TestSDKCompletion(t *testing.T) {
 	assert.NotEqual(t, "", long.Header().Get("x-request-id"), "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	lc := long.Choices[0]
 	checkSDKLogprobs(t, lc.Text, lc.LogProbs, 5)
-	assert.False(t, long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens), "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+	if assert.NotNil(t, long.Usage, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens)) {
+		assert.Equal(t, 5, long.Usage.PromptTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+		if assert.Equal(t, len(lc.LogProbs.Tokens), long.Usage.CompletionTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens)) {
+			assert.Equal(t, 5+len(lc.LogProbs.Tokens), long.Usage.TotalTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+		}
+	}
 
 	// Greedy prefix property through the SDK.
 	short, err := c.CreateCompletion(ctx, openai.CompletionRequest{
@@ -84,9 +89,14 @@ func TestSDKCompletion(t *testing.T) {
 	// Errors decode as the SDK's APIError.
 	_, err = c.CreateCompletion(ctx, openai.CompletionRequest{Model: "quill-huge", Prompt: "x"})
 	var apiErr *openai.APIError
-	assert.False(t, !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusNotFound || apiErr.Code != "model_not_found", "unknown model: %v; want an APIError 404 model_not_found", err)
+	if assert.True(t, errors.As(err, &apiErr), "unknown model: %v; want an APIError 404 model_not_found", err) {
+		assert.Equal(t, http.StatusNotFound, apiErr.HTTPStatusCode, "unknown model: %v; want an APIError 404 model_not_found", err)
+		assert.True(t, apiErr.Code == "model_not_found", "unknown model: %v; want an APIError 404 model_not_found", err)
+	}
 	_, err = sdkClient(t, up, "wrong").CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: "x"})
-	assert.False(t, !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusUnauthorized, "wrong key: %v; want an APIError 401", err)
+	if assert.True(t, errors.As(err, &apiErr), "wrong key: %v; want an APIError 401", err) {
+		assert.Equal(t, http.StatusUnauthorized, apiErr.HTTPStatusCode, "wrong key: %v; want an APIError 401", err)
+	}
 	for _, r := range up.Requests() {
 		got := r.Header.Get("Authorization")
 		assert.False(t, got != "Bearer up-key" && got != "Bearer wrong", "request carried Authorization %q", got)
@@ -152,7 +162,9 @@ func TestSDKCompletionStream(t *testing.T) {
 	for _, w := range whole.Choices {
 		assert.False(t, texts[w.Index] != w.Text || finish[w.Index] != w.FinishReason || !slices.Equal(tokens[w.Index], w.LogProbs.Tokens), "choice %d streamed %q %q (%s); answered %q %q (%s)", w.Index, texts[w.Index], tokens[w.Index], finish[w.Index], w.Text, w.LogProbs.Tokens, w.FinishReason)
 	}
-	assert.False(t, gotUsage == nil || *gotUsage != *whole.Usage, "stream usage %+v; want %+v", gotUsage, whole.Usage)
+	if assert.NotNil(t, gotUsage, "stream usage %+v; want %+v", gotUsage, whole.Usage) {
+		assert.True(t, *gotUsage == *whole.Usage, "stream usage %+v; want %+v", gotUsage, whole.Usage)
+	}
 }
 
 func TestSDKChat(t *testing.T) {
@@ -178,7 +190,10 @@ func TestSDKChat(t *testing.T) {
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
 			assert.Equal(t, tl.Token, string(tl.Bytes), "bytes %v do not spell %q", tl.Bytes, tl.Token)
-			assert.False(t, len(tl.TopLogProbs) != 3 || tl.TopLogProbs[0].Token != tl.Token || tl.TopLogProbs[0].LogProb != tl.LogProb, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
+			if assert.Len(t, tl.TopLogProbs, 3, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs) {
+				assert.Equal(t, tl.Token, tl.TopLogProbs[0].Token, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
+				assert.Equal(t, tl.LogProb, tl.TopLogProbs[0].LogProb, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
+			}
 		}
 		assert.Equal(t, ch.Message.Content, joined, "tokens join to %q; content %q", joined, ch.Message.Content)
 		total += len(ch.LogProbs.Content)
@@ -227,7 +242,9 @@ func TestSDKChat(t *testing.T) {
 	assert.Equal(t, want.Message.Content, content, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
 	assert.Equal(t, content, strings.Join(toks, ""), "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
 	assert.Equal(t, want.FinishReason, fin, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
-	assert.False(t, streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content), "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content)) {
+		assert.Equal(t, len(want.LogProbs.Content), streamUsage.CompletionTokens, "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
+	}
 	got := up.Calls().Chat
 	assert.Equal(t, 2, got, "Calls().Chat = %d; want 2", got)
 }

@@ -184,7 +184,11 @@ func TestAuth(t *testing.T) {
 		assert.Equal(t, tt.status, resp.StatusCode, "Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
 		if tt.status == 401 {
 			var env errorEnvelope
-			assert.False(t, json.Unmarshal(b, &env) != nil || env.Error == nil || string(env.Error.Code) != "invalid_api_key", "401 body %s; want code invalid_api_key", b)
+			if assert.NoError(t, json.Unmarshal(b, &env), "401 body %s; want code invalid_api_key", b) {
+				if assert.NotNil(t, env.Error, "401 body %s; want code invalid_api_key", b) {
+					assert.Equal(t, "invalid_api_key", string(env.Error.Code), "401 body %s; want code invalid_api_key", b)
+				}
+			}
 		}
 	}
 	got := up.Calls().Completions
@@ -328,7 +332,9 @@ func TestTokenIDPrompts(t *testing.T) {
 	assert.Equal(t, 2, ids.Usage.PromptTokens, "prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
-	assert.False(t, len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
+	if assert.Len(t, lists.Choices, 2, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens) {
+		assert.Equal(t, 3, lists.Usage.PromptTokens, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
+	}
 }
 
 func TestStopSequences(t *testing.T) {
@@ -433,7 +439,9 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 		require.NoError(t, json.Unmarshal(data, &c), "event %d %s", i, data)
 		assert.Equal(t, "text_completion", c.Object, "event %d object %q", i, c.Object)
 		if c.Usage != nil {
-			assert.False(t, i != len(events)-1 || len(c.Choices) != 0, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
+			if assert.Equal(t, len(events)-1, i, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices)) {
+				assert.Len(t, c.Choices, 0, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
+			}
 			streamUsage = c.Usage
 			continue
 		}
@@ -466,14 +474,18 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 		al, _ := json.Marshal(a.lp)
 		assert.Equal(t, string(al), string(wl), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	assert.False(t, streamUsage == nil || *streamUsage != *whole.Usage, "stream usage %+v; want %+v", streamUsage, *whole.Usage)
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %+v", streamUsage, *whole.Usage) {
+		assert.True(t, *streamUsage == *whole.Usage, "stream usage %+v; want %+v", streamUsage, *whole.Usage)
+	}
 
 	// Without include_usage there is no usage chunk.
 	_, body = post(t, up, "/completions", base+`,"stream":true}`, nil)
 	for _, data := range streamEvents(t, body) {
 		var c wire.CompletionResponse
 		json.Unmarshal(data, &c)
-		assert.False(t, c.Usage != nil || len(c.Choices) != 1, "event %s without include_usage; want one choice and no usage", data)
+		if assert.Nil(t, c.Usage, "event %s without include_usage; want one choice and no usage", data) {
+			assert.Len(t, c.Choices, 1, "event %s without include_usage; want one choice and no usage", data)
+		}
 	}
 }
 
@@ -506,7 +518,10 @@ func TestChat(t *testing.T) {
 	assert.Equal(t, lc.Message.Content, joined, "logprob tokens join to %q; content %q", joined, lc.Message.Content)
 	n := len(short.Choices[0].Logprobs.Content)
 	assert.False(t, !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop"), "5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
-	assert.False(t, long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+	if assert.Equal(t, len(lc.Logprobs.Content), long.Usage.CompletionTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content)) {
+		assert.NotEqual(t, 0, long.Usage.PromptTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+		assert.Equal(t, long.Usage.PromptTokens+long.Usage.CompletionTokens, long.Usage.TotalTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+	}
 	// logprobs without top_logprobs: the content list with empty tops.
 	var bare wire.ChatResponse
 	postOK(t, up, "/chat/completions", `{"model":"quill-large","messages":[{"role":"user","content":"hi"}],"max_tokens":3,"logprobs":true}`, &bare)
@@ -544,7 +559,9 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 		require.NoError(t, json.Unmarshal(data, &c))
 		assert.Equal(t, "chat.completion.chunk", c.Object, "object %q", c.Object)
 		if c.Usage != nil {
-			assert.False(t, i != len(events)-1 || len(c.Choices) != 0, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
+			if assert.Equal(t, len(events)-1, i, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices)) {
+				assert.Len(t, c.Choices, 0, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
+			}
 			streamUsage = c.Usage
 			continue
 		}
@@ -577,7 +594,9 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 		wl, _ := json.Marshal(w.Logprobs.Content)
 		assert.Equal(t, string(wl), string(al), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	assert.False(t, streamUsage == nil || *streamUsage != *whole.Usage, "stream usage %+v; want %+v", streamUsage, whole.Usage)
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %+v", streamUsage, whole.Usage) {
+		assert.True(t, *streamUsage == *whole.Usage, "stream usage %+v; want %+v", streamUsage, whole.Usage)
+	}
 }
 
 func TestFaultStatus(t *testing.T) {
@@ -589,7 +608,11 @@ func TestFaultStatus(t *testing.T) {
 		resp, b := post(t, up, "/completions", body, nil)
 		var env errorEnvelope
 		json.Unmarshal(b, &env)
-		assert.False(t, resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error", "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		assert.Equal(t, 429, resp.StatusCode, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		assert.Equal(t, "3", resp.Header.Get("Retry-After"), "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		if assert.NotNil(t, env.Error, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b) {
+			assert.Equal(t, "rate_limit_error", env.Error.Type, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		}
 	}
 	third, _ := post(t, up, "/completions", body, nil)
 	assert.Equal(t, 200, third.StatusCode, "third call: want 200 once the two faults are used")
@@ -654,7 +677,9 @@ func TestFaultHangAndDelay(t *testing.T) {
 	}
 	up.FailNext(1, upstreamtest.Fault{Delay: time.Millisecond})
 	resp, _, err := do(context.Background(), up, body)
-	assert.False(t, err != nil || resp.StatusCode != 200, "short delay: %v; want a normal answer", err)
+	if assert.NoError(t, err, "short delay: %v; want a normal answer", err) {
+		assert.Equal(t, 200, resp.StatusCode, "short delay: %v; want a normal answer", err)
+	}
 	got := up.Calls().Completions
 	assert.Equal(t, 3, got, "Calls().Completions = %d; want 3", got)
 }
@@ -681,7 +706,9 @@ func TestFaultReset(t *testing.T) {
 	_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
 	assert.Error(t, err, "reset connection: no error; want the client to see the connection drop")
 	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
-	assert.False(t, err != nil || resp.StatusCode != 200, "next call: %v; want a normal answer", err)
+	if assert.NoError(t, err, "next call: %v; want a normal answer", err) {
+		assert.Equal(t, 200, resp.StatusCode, "next call: %v; want a normal answer", err)
+	}
 }
 
 func TestFaultCut(t *testing.T) {
@@ -750,7 +777,9 @@ func TestBlockRelease(t *testing.T) {
 	assert.Equal(t, callers, up.Prompts(), "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
 	// Not blocked any more.
 	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
-	assert.False(t, err != nil || resp.StatusCode != 200, "call after Release: %v", err)
+	if assert.NoError(t, err, "call after Release: %v", err) {
+		assert.Equal(t, 200, resp.StatusCode, "call after Release: %v", err)
+	}
 }
 
 func TestHeldCallGivesUp(t *testing.T) {
