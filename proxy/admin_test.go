@@ -117,7 +117,10 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	assert.Equal(t, int64(4), st.Total.Requests, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
 	assert.Equal(t, int64(3), st.Total.UpstreamCalls, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
 	assert.Equal(t, budget.Nanos(spent).String(), st.Total.SpentUSD, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
-	assert.False(t, len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String(), "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+	if assert.Len(t, st.Budgets, 1, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent)) {
+		assert.Equal(t, "lab", st.Budgets[0].Team, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+		assert.Equal(t, budget.Nanos(spent).String(), st.Budgets[0].SpentUSD, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+	}
 
 	// A budget below what is spent: the next miss is refused.
 	status, b := r.adminDo("PUT", "budgets/lab", adminKey, `{"usd":0.000001,"per":"total"}`)

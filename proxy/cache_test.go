@@ -252,7 +252,9 @@ func TestChatFewerTopLogprobs(t *testing.T) {
 	require.Equal(t, want.Choices[0].Message.Content, g.Choices[0].Message.Content, "content %q, want %q", g.Choices[0].Message.Content, want.Choices[0].Message.Content)
 	for i, c := range g.Choices[0].Logprobs.Content {
 		w := want.Choices[0].Logprobs.Content[i]
-		assert.False(t, len(c.TopLogprobs) != 1 || c.TopLogprobs[0].Token != w.TopLogprobs[0].Token, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
+		if assert.Len(t, c.TopLogprobs, 1, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs) {
+			assert.Equal(t, w.TopLogprobs[0].Token, c.TopLogprobs[0].Token, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
+		}
 	}
 	plain := r.chat(body(-1))
 	if assert.Equal(t, proxy.OutcomeHit, plain.cache(), "no logprobs after 4: cache") {
