@@ -55,7 +55,7 @@ func TestLogprobsAreADistribution(t *testing.T) {
 				best, bestLP = tok, v
 			}
 		}
-		assert.LessOrEqual(t, math.Abs(sum-1), 1e-4, "token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
+		assert.False(t, math.Abs(sum-1) > 1e-4, "token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
 		assert.False(t, best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i], "token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
 	}
 }
