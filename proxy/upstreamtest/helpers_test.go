@@ -89,7 +89,7 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 			assert.False(tb, i != 0 || lp.TopLogprobs[i] != nil, "token %d %q has a null logprob; only the first echoed token may", i, tok)
 			continue
 		}
-		assert.Less(tb, *lp.TokenLogprobs[i], float64(0), "token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
+		assert.False(tb, *lp.TokenLogprobs[i] >= 0, "token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
 		top := lp.TopLogprobs[i].Map()
 		assert.Len(tb, top, k, "top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		var mass float64
@@ -100,7 +100,7 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 				best, bestLP = t, v
 			}
 		}
-		assert.LessOrEqual(tb, mass, float64(1), "top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
+		assert.False(tb, mass > 1, "top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
 		assert.False(tb, greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]), "greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
 	}
 	assert.Equal(tb, text, joined, "tokens join to %q; want the text %q", joined, text)
