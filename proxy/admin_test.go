@@ -20,16 +20,12 @@ import (
 func (r *rig) adminDo(method, path, key, body string) (int, []byte) {
 	r.t.Helper()
 	req, err := http.NewRequest(method, r.srv.URL+proxy.AdminPrefix+path, strings.NewReader(body))
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	if key != "" {
 		req.Header.Set("Authorization", "Bearer "+key)
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return resp.StatusCode, b
@@ -42,9 +38,7 @@ func errorCode(t *testing.T, b []byte) string {
 			Code string `json:"code"`
 		} `json:"error"`
 	}
-	if err := json.Unmarshal(b, &e); err != nil {
-		t.Fatalf("error body %s: %v", b, err)
-	}
+	require.NoError(t, json.Unmarshal(b, &e), "error body %s", b)
 	return e.Error.Code
 }
 
@@ -71,24 +65,21 @@ func TestAdminRefusals(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			status, b := r.adminDo(tt.method, tt.path, tt.key, tt.body)
-			if status != tt.status || errorCode(t, b) != tt.code {
-				t.Errorf("%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
-			}
+			assert.Equal(t, tt.status, status, "%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
+			assert.Equal(t, tt.code, errorCode(t, b), "%s %s: %d %s, want %d %s", tt.method, tt.path, status, b, tt.status, tt.code)
 		})
 	}
 	// None of the refused changes took: the configured budget stands.
 	status, b := r.adminDo("GET", "budgets", adminKey, "")
-	if status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`) {
-		t.Errorf("budgets after refusals: %d %s, want the configured 1.00", status, b)
-	}
+	assert.Equal(t, 200, status, "budgets after refusals: %d %s, want the configured 1.00", status, b)
+	assert.Contains(t, string(b), `"limit_usd":"1.00"`, "budgets after refusals: %d %s, want the configured 1.00", status, b)
 }
 
 func TestAdminOffWithoutKeys(t *testing.T) {
 	r := newRig(t, withTeams(teamWithKey("lab", "lab-key")))
 	status, b := r.adminDo("GET", "statement", "anything", "")
-	if status != http.StatusForbidden || errorCode(t, b) != "admin_off" {
-		t.Errorf("admin without keys: %d %s, want 403 admin_off", status, b)
-	}
+	assert.Equal(t, http.StatusForbidden, status, "admin without keys: %d %s, want 403 admin_off", status, b)
+	assert.Equal(t, "admin_off", errorCode(t, b), "admin without keys: %d %s, want 403 admin_off", status, b)
 }
 
 // TestAdminOpenInOpenMode: a proxy without teams (open mode: no key needed
@@ -97,9 +88,9 @@ func TestAdminOffWithoutKeys(t *testing.T) {
 func TestAdminOpenInOpenMode(t *testing.T) {
 	r := newRig(t)
 	status, b := r.adminDo("GET", "statement", "", "")
-	if status != http.StatusNotFound || errorCode(t, b) != "spend_off" || !strings.Contains(string(b), "nothing is recorded") {
-		t.Errorf("open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
-	}
+	assert.Equal(t, http.StatusNotFound, status, "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	assert.Equal(t, "spend_off", errorCode(t, b), "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
+	assert.Contains(t, string(b), "nothing is recorded", "open-mode statement without spend control: %d %s, want 404 spend_off", status, b)
 }
 
 // TestAdminSetsBudgetAndReadsStatement lowers a team's budget at run time (the
@@ -110,9 +101,7 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	var spent int64
 	for i := range 3 {
 		got := r.complete(greedy(fmt.Sprintf("ledger line %d for the kiln", i), "max_tokens", 8))
-		if got.status != 200 {
-			t.Fatalf("call %d: %d %s", i, got.status, got.body)
-		}
+		require.Equal(t, 200, got.status, "call %d: %d %s", i, got.status, got.body)
 		spent += headerNanos(t, got.header, proxy.HeaderCost)
 	}
 	r.complete(greedy("ledger line 0 for the kiln", "max_tokens", 8)) // a hit
@@ -121,40 +110,35 @@ func TestAdminSetsBudgetAndReadsStatement(t *testing.T) {
 	// The hit's saving is journaled in the background; wait until it is.
 	waitFor(t, "the hit in the journal", func() bool {
 		status, b := r.adminDo("GET", "statement?by=team", adminKey, "")
-		if status != 200 || json.Unmarshal(b, &st) != nil {
-			t.Fatalf("statement: %d %s", status, b)
-		}
+		require.Equal(t, 200, status, "statement: %s", b)
+		require.NoError(t, json.Unmarshal(b, &st), "statement: %s", b)
 		return st.Total.Requests == 4
 	})
-	if st.Total.Requests != 4 || st.Total.UpstreamCalls != 3 || st.Total.SpentUSD != budget.Nanos(spent).String() {
-		t.Errorf("statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
-	}
-	if len(st.Budgets) != 1 || st.Budgets[0].Team != "lab" || st.Budgets[0].SpentUSD != budget.Nanos(spent).String() {
-		t.Errorf("standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+	assert.Equal(t, int64(4), st.Total.Requests, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	assert.Equal(t, int64(3), st.Total.UpstreamCalls, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	assert.Equal(t, budget.Nanos(spent).String(), st.Total.SpentUSD, "statement total %+v, want 4 requests, 3 upstream calls, spent %s", st.Total, budget.Nanos(spent))
+	if assert.Len(t, st.Budgets, 1, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent)) {
+		assert.Equal(t, "lab", st.Budgets[0].Team, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
+		assert.Equal(t, budget.Nanos(spent).String(), st.Budgets[0].SpentUSD, "standings %+v, want lab having spent %s", st.Budgets, budget.Nanos(spent))
 	}
 
 	// A budget below what is spent: the next miss is refused.
-	if status, b := r.adminDo("PUT", "budgets/lab", adminKey, `{"usd":0.000001,"per":"total"}`); status != 200 {
-		t.Fatalf("set budget: %d %s", status, b)
-	}
+	status, b := r.adminDo("PUT", "budgets/lab", adminKey, `{"usd":0.000001,"per":"total"}`)
+	require.Equal(t, 200, status, "set budget: %d %s", status, b)
 	before := r.upstreamGenerations()
-	if got := r.complete(greedy("a new line after the cut", "max_tokens", 8)); got.status != http.StatusPaymentRequired {
-		t.Errorf("after lowering the budget: %d %s, want 402", got.status, got.body)
-	}
-	if r.upstreamGenerations() != before {
-		t.Error("a refused call reached the upstream")
-	}
+	got := r.complete(greedy("a new line after the cut", "max_tokens", 8))
+	assert.Equal(t, http.StatusPaymentRequired, got.status, "after lowering the budget: %d %s, want 402", got.status, got.body)
+	assert.Equal(t, before, r.upstreamGenerations(), "a refused call reached the upstream")
 	// Cleared: the configured 1 USD applies again.
-	if status, b := r.adminDo("DELETE", "budgets/lab", adminKey, ""); status != 200 || !strings.Contains(string(b), `"limit_usd":"1.00"`) {
-		t.Fatalf("clear budget: %d %s", status, b)
-	}
-	if got := r.complete(greedy("a new line after the cut", "max_tokens", 8)); got.status != 200 {
-		t.Errorf("after clearing the override: %d %s, want 200", got.status, got.body)
-	}
+	status, b = r.adminDo("DELETE", "budgets/lab", adminKey, "")
+	require.Equal(t, 200, status, "clear budget: %d %s", status, b)
+	require.Contains(t, string(b), `"limit_usd":"1.00"`, "clear budget: %d %s", status, b)
+	got = r.complete(greedy("a new line after the cut", "max_tokens", 8))
+	assert.Equal(t, 200, got.status, "after clearing the override: %d %s, want 200", got.status, got.body)
 	// A team without a configured budget can be given one.
-	if status, b := r.adminDo("PUT", "budgets/kiln", adminKey, `{"usd":2.5,"per":"week"}`); status != 200 || !strings.Contains(string(b), `"team":"kiln"`) {
-		t.Errorf("budget for kiln: %d %s", status, b)
-	}
+	status, b = r.adminDo("PUT", "budgets/kiln", adminKey, `{"usd":2.5,"per":"week"}`)
+	assert.Equal(t, 200, status, "budget for kiln: %d %s", status, b)
+	assert.Contains(t, string(b), `"team":"kiln"`, "budget for kiln: %d %s", status, b)
 }
 
 // TestAdminPeriodChangeKeepsTheSpend is the reported case: after a team has

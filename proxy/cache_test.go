@@ -5,8 +5,10 @@ import (
 	"encoding/json"
 	"fmt"
 	"net/http"
-	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -25,19 +27,14 @@ func greedy(prompt any, extra ...any) map[string]any {
 func TestRepeatedGreedyCallIsAnsweredFromCache(t *testing.T) {
 	r := newRig(t)
 	first := r.complete(greedy("The barge left the lock at dawn"))
-	if first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss {
-		t.Fatalf("first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
-	}
+	require.Equal(t, http.StatusOK, first.status, "first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first call: status %d cache %q, want 200 miss: %s", first.status, first.cache(), first.body)
 	second := r.complete(greedy("The barge left the lock at dawn"))
-	if second.status != http.StatusOK || second.cache() != proxy.OutcomeHit {
-		t.Fatalf("second call: status %d cache %q, want 200 hit", second.status, second.cache())
-	}
-	if !bytes.Equal(first.body, second.body) {
-		t.Errorf("hit body differs from the miss body:\n%s\n%s", first.body, second.body)
-	}
-	if got := r.upstreamGenerations(); got != 1 {
-		t.Errorf("upstream calls = %d, want 1", got)
-	}
+	require.Equal(t, http.StatusOK, second.status, "second call: status %d cache %q, want 200 hit", second.status, second.cache())
+	require.Equal(t, proxy.OutcomeHit, second.cache(), "second call: status %d cache %q, want 200 hit", second.status, second.cache())
+	assert.True(t, bytes.Equal(first.body, second.body), "hit body differs from the miss body:\n%s\n%s", first.body, second.body)
+	got := r.upstreamGenerations()
+	assert.Equal(t, 1, got, "upstream calls = %d, want 1", got)
 }
 
 func TestWhatIsCached(t *testing.T) {
@@ -57,15 +54,10 @@ func TestWhatIsCached(t *testing.T) {
 			r := newRig(t)
 			r.complete(tt.body)
 			got := r.complete(tt.body)
-			if got.status != http.StatusOK {
-				t.Fatalf("status %d: %s", got.status, got.body)
-			}
-			if got.cache() != tt.wantCache {
-				t.Errorf("Stint-Cache = %q, want %q", got.cache(), tt.wantCache)
-			}
-			if calls := r.upstreamGenerations(); calls != tt.wantCalls {
-				t.Errorf("upstream calls = %d, want %d", calls, tt.wantCalls)
-			}
+			require.Equal(t, http.StatusOK, got.status, "status %d: %s", got.status, got.body)
+			assert.Equal(t, tt.wantCache, got.cache(), "Stint-Cache = %q, want %q", got.cache(), tt.wantCache)
+			calls := r.upstreamGenerations()
+			assert.Equal(t, tt.wantCalls, calls, "upstream calls = %d, want %d", calls, tt.wantCalls)
 		})
 	}
 }
@@ -75,17 +67,15 @@ func TestCacheSampledSwitch(t *testing.T) {
 	body := greedy("hives", "temperature", 0.9, "n", 3)
 	a := r.complete(body)
 	b := r.complete(body)
-	if b.cache() != proxy.OutcomeHit || !bytes.Equal(a.body, b.body) {
-		t.Fatalf("sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
-	}
+	require.Equal(t, proxy.OutcomeHit, b.cache(), "sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
+	require.True(t, bytes.Equal(a.body, b.body), "sampled call with cache.sampled on: cache %q, bodies equal %v", b.cache(), bytes.Equal(a.body, b.body))
 }
 
 func TestKeyIgnoresTransportFieldsAndFormatting(t *testing.T) {
 	r := newRig(t)
 	base := `{"model":"quill-small","prompt":"honey by the crate","temperature":0,"max_tokens":6}`
-	if got := r.complete(base); got.cache() != proxy.OutcomeMiss {
-		t.Fatalf("first: %q %s", got.cache(), got.body)
-	}
+	got := r.complete(base)
+	require.Equal(t, proxy.OutcomeMiss, got.cache(), "first: %q %s", got.cache(), got.body)
 	same := []string{
 		// Member order and white space (RFC 8785 §3.2.3 sorting, §3.2.1 no insignificant white space).
 		`{ "max_tokens": 6, "temperature": 0, "prompt": "honey by the crate", "model": "quill-small" }`,
@@ -100,9 +90,8 @@ func TestKeyIgnoresTransportFieldsAndFormatting(t *testing.T) {
 		`{"model":"quill-small","prompt":["honey by the crate"],"temperature":0,"max_tokens":6}`,
 	}
 	for _, b := range same {
-		if got := r.complete(b); got.cache() != proxy.OutcomeHit {
-			t.Errorf("%s: Stint-Cache %q, want hit", b, got.cache())
-		}
+		got := r.complete(b)
+		assert.Equal(t, proxy.OutcomeHit, got.cache(), "%s: Stint-Cache %q, want hit", b, got.cache())
 	}
 	different := []string{
 		`{"model":"quill-small","prompt":"honey by the crate","temperature":0,"max_tokens":6,"seed":7}`,
@@ -112,9 +101,8 @@ func TestKeyIgnoresTransportFieldsAndFormatting(t *testing.T) {
 		`{"model":"quill-small","prompt":"honey by the crate","temperature":0,"max_tokens":6,"echo":true}`,
 	}
 	for _, b := range different {
-		if got := r.complete(b); got.cache() != proxy.OutcomeMiss {
-			t.Errorf("%s: Stint-Cache %q, want miss", b, got.cache())
-		}
+		got := r.complete(b)
+		assert.Equal(t, proxy.OutcomeMiss, got.cache(), "%s: Stint-Cache %q, want miss", b, got.cache())
 	}
 	// Unknown fields reach the upstream untouched.
 	reqs := r.up.Requests()
@@ -124,9 +112,7 @@ func TestKeyIgnoresTransportFieldsAndFormatting(t *testing.T) {
 			found = true
 		}
 	}
-	if !found {
-		t.Error("the unknown field x_unknown did not reach the upstream")
-	}
+	assert.True(t, found, "the unknown field x_unknown did not reach the upstream")
 }
 
 func TestNamespacesSeparateTeamsUnlessShared(t *testing.T) {
@@ -143,76 +129,57 @@ func TestNamespacesSeparateTeamsUnlessShared(t *testing.T) {
 		{"key-c", proxy.OutcomeHit},  // beta and gamma share a namespace
 	} {
 		r.key = step.key
-		if got := r.complete(body); got.cache() != step.want {
-			t.Errorf("team key %s: Stint-Cache %q, want %q", step.key, got.cache(), step.want)
-		}
+		got := r.complete(body)
+		assert.Equal(t, step.want, got.cache(), "team key %s: Stint-Cache %q, want %q", step.key, got.cache(), step.want)
 	}
 }
 
 func TestClientKeyIsNotForwarded(t *testing.T) {
 	r := newRig(t, withTeams(teamWithKey("lab", "client-key-123")))
 	r.key = "client-key-123"
-	if got := r.complete(greedy("wax")); got.status != http.StatusOK {
-		t.Fatalf("status %d: %s", got.status, got.body)
-	}
+	got := r.complete(greedy("wax"))
+	require.Equal(t, http.StatusOK, got.status, "status %d: %s", got.status, got.body)
 	for _, q := range r.up.Requests() {
-		if auth := q.Header.Get("Authorization"); auth != "Bearer "+upstreamKey {
-			t.Errorf("upstream saw Authorization %q, want the upstream key", auth)
-		}
-		if bytes.Contains(q.Body, []byte("client-key-123")) {
-			t.Error("client key reached the upstream in the body")
-		}
+		auth := q.Header.Get("Authorization")
+		assert.Equal(t, "Bearer "+upstreamKey, auth, "upstream saw Authorization %q, want the upstream key", auth)
+		assert.False(t, bytes.Contains(q.Body, []byte("client-key-123")), "client key reached the upstream in the body")
 	}
 }
 
 func TestBatchSplitSendsOnlyMissingPrompts(t *testing.T) {
 	r := newRig(t)
 	first := r.complete(greedy([]string{"alpha hive", "beta hive"}, "logprobs", 2))
-	if first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss {
-		t.Fatalf("first batch: %d %q %s", first.status, first.cache(), first.body)
-	}
-	if got := r.up.Prompts(); got != 2 {
-		t.Fatalf("upstream prompts after first batch = %d, want 2", got)
-	}
+	require.Equal(t, http.StatusOK, first.status, "first batch: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first batch: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, 2, r.up.Prompts(), "upstream prompts after first batch")
 	second := r.complete(greedy([]string{"beta hive", "gamma hive", "alpha hive"}, "logprobs", 2))
-	if second.status != http.StatusOK || second.cache() != proxy.OutcomePartial {
-		t.Fatalf("second batch: %d %q %s", second.status, second.cache(), second.body)
-	}
-	if got := second.header.Get(proxy.HeaderCachedPrompt); got != "2/3" {
-		t.Errorf("%s = %q, want 2/3", proxy.HeaderCachedPrompt, got)
-	}
-	if got := r.up.Prompts(); got != 3 {
-		t.Errorf("upstream prompts after second batch = %d, want 3 (only gamma is new)", got)
-	}
+	require.Equal(t, http.StatusOK, second.status, "second batch: %d %q %s", second.status, second.cache(), second.body)
+	require.Equal(t, proxy.OutcomePartial, second.cache(), "second batch: %d %q %s", second.status, second.cache(), second.body)
+	assert.Equal(t, "2/3", second.header.Get(proxy.HeaderCachedPrompt), proxy.HeaderCachedPrompt)
+	assert.Equal(t, 3, r.up.Prompts(), "upstream prompts after second batch (only gamma is new)")
 	reqs := r.up.Requests()
 	var last struct {
 		Prompt []string `json:"prompt"`
 	}
-	if err := json.Unmarshal(reqs[len(reqs)-1].Body, &last); err != nil || len(last.Prompt) != 1 || last.Prompt[0] != "gamma hive" {
-		t.Errorf("upstream got prompt %v (%v), want [gamma hive]", last.Prompt, err)
-	}
+	assert.NoError(t, json.Unmarshal(reqs[len(reqs)-1].Body, &last), "upstream request body")
+	assert.Equal(t, []string{"gamma hive"}, last.Prompt, "upstream got prompt")
 	// Every choice matches what the upstream answers for that prompt alone.
 	got := decodeCompletion(t, second.body)
 	sumPrompt, sumCompletion := 0, 0
 	for i, p := range []string{"beta hive", "gamma hive", "alpha hive"} {
 		want := decodeCompletion(t, r.direct("/v1/completions", greedy(p, "logprobs", 2)).body)
-		if got.Choices[i].Index != i || got.Choices[i].Text != want.Choices[0].Text {
-			t.Errorf("choice %d: index %d text %q, want index %d text %q", i, got.Choices[i].Index, got.Choices[i].Text, i, want.Choices[0].Text)
-		}
-		if fmt.Sprint(got.Choices[i].Logprobs.Tokens) != fmt.Sprint(want.Choices[0].Logprobs.Tokens) {
-			t.Errorf("choice %d tokens %v, want %v", i, got.Choices[i].Logprobs.Tokens, want.Choices[0].Logprobs.Tokens)
-		}
+		assert.False(t, got.Choices[i].Index != i || got.Choices[i].Text != want.Choices[0].Text, "choice %d: index %d text %q, want index %d text %q", i, got.Choices[i].Index, got.Choices[i].Text, i, want.Choices[0].Text)
+		assert.Equal(t, fmt.Sprint(want.Choices[0].Logprobs.Tokens), fmt.Sprint(got.Choices[i].Logprobs.Tokens), "choice %d tokens %v, want %v", i, got.Choices[i].Logprobs.Tokens, want.Choices[0].Logprobs.Tokens)
 		sumPrompt += want.Usage.PromptTokens
 		sumCompletion += want.Usage.CompletionTokens
 	}
-	if got.Usage.PromptTokens != sumPrompt || got.Usage.CompletionTokens != sumCompletion || got.Usage.TotalTokens != sumPrompt+sumCompletion {
-		t.Errorf("usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
-	}
+	assert.Equal(t, sumPrompt, got.Usage.PromptTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
+	assert.Equal(t, sumCompletion, got.Usage.CompletionTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
+	assert.Equal(t, sumPrompt+sumCompletion, got.Usage.TotalTokens, "usage %+v, want prompt %d completion %d", got.Usage, sumPrompt, sumCompletion)
 	before := r.up.Prompts()
 	third := r.complete(greedy([]string{"gamma hive", "alpha hive"}, "logprobs", 2))
-	if third.cache() != proxy.OutcomeHit || r.up.Prompts() != before {
-		t.Errorf("third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
-	}
+	assert.Equal(t, proxy.OutcomeHit, third.cache(), "third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
+	assert.Equal(t, before, r.up.Prompts(), "third batch: cache %q, upstream prompts %d; want hit, %d", third.cache(), r.up.Prompts(), before)
 }
 
 func TestBatchMergeWithSeveralChoicesPerPrompt(t *testing.T) {
@@ -222,24 +189,16 @@ func TestBatchMergeWithSeveralChoicesPerPrompt(t *testing.T) {
 	}
 	a := decodeCompletion(t, r.complete(body("p one", "p two")).body)
 	mixed := r.complete(body("p three", "p two", "p one"))
-	if mixed.cache() != proxy.OutcomePartial {
-		t.Fatalf("cache %q, want partial", mixed.cache())
-	}
+	require.Equal(t, proxy.OutcomePartial, mixed.cache(), "cache %q, want partial", mixed.cache())
 	m := decodeCompletion(t, mixed.body)
-	if len(m.Choices) != 6 {
-		t.Fatalf("%d choices, want 6", len(m.Choices))
-	}
+	require.Len(t, m.Choices, 6, "%d choices, want 6", len(m.Choices))
 	for i, ch := range m.Choices {
-		if ch.Index != i {
-			t.Errorf("choice %d has index %d", i, ch.Index)
-		}
+		assert.Equal(t, i, ch.Index, "choice %d has index %d", i, ch.Index)
 	}
 	// "p two" was prompt 1 of the first call (choices 2,3), now prompt 1 again;
 	// "p one" was prompt 0 (choices 0,1), now prompt 2 (choices 4,5).
 	for j := range 2 {
-		if m.Choices[2+j].Text != a.Choices[2+j].Text || m.Choices[4+j].Text != a.Choices[j].Text {
-			t.Errorf("sample %d: merged texts do not match the cached answers", j)
-		}
+		assert.False(t, m.Choices[2+j].Text != a.Choices[2+j].Text || m.Choices[4+j].Text != a.Choices[j].Text, "sample %d: merged texts do not match the cached answers", j)
 	}
 }
 
@@ -247,48 +206,31 @@ func TestFewerLogprobsServedFromLargerAnswer(t *testing.T) {
 	r := newRig(t)
 	big := decodeCompletion(t, r.complete(greedy("smoke calms the bees", "logprobs", 5)).body)
 	small := r.complete(greedy("smoke calms the bees", "logprobs", 2))
-	if small.cache() != proxy.OutcomeHit {
-		t.Fatalf("logprobs 2 after 5: cache %q, want hit", small.cache())
-	}
+	require.Equal(t, proxy.OutcomeHit, small.cache(), "logprobs 2 after 5: cache %q, want hit", small.cache())
 	want := decodeCompletion(t, r.direct("/v1/completions", greedy("smoke calms the bees", "logprobs", 2)).body)
 	got := decodeCompletion(t, small.body)
-	if got.Choices[0].Text != want.Choices[0].Text {
-		t.Fatalf("text %q, want %q", got.Choices[0].Text, want.Choices[0].Text)
-	}
+	require.Equal(t, want.Choices[0].Text, got.Choices[0].Text, "text %q, want %q", got.Choices[0].Text, want.Choices[0].Text)
 	for i, top := range got.Choices[0].Logprobs.TopLogprobs {
-		if len(top) != 2 {
-			t.Fatalf("position %d has %d top logprobs, want 2", i, len(top))
-		}
+		require.Len(t, top, 2, "position %d has %d top logprobs, want 2", i, len(top))
 		for tok, lp := range want.Choices[0].Logprobs.TopLogprobs[i] {
-			if top[tok] != lp {
-				t.Errorf("position %d token %q: %v, want %v", i, tok, top[tok], lp)
-			}
+			assert.Equal(t, lp, top[tok], "position %d token %q: %v, want %v", i, tok, top[tok], lp)
 		}
 		for tok := range top {
-			if _, ok := big.Choices[0].Logprobs.TopLogprobs[i][tok]; !ok {
-				t.Errorf("token %q was not in the stored answer", tok)
-			}
+			_, ok := big.Choices[0].Logprobs.TopLogprobs[i][tok]
+			assert.True(t, ok, "token %q was not in the stored answer", tok)
 		}
 	}
 	// Order: most likely first, as stored.
 	raw := string(small.body)
-	if !strings.Contains(raw, `"top_logprobs":[{`) {
-		t.Fatalf("no top_logprobs in %s", raw)
-	}
+	require.Contains(t, raw, `"top_logprobs":[{`, "no top_logprobs in %s", raw)
 	none := r.complete(greedy("smoke calms the bees"))
-	if none.cache() != proxy.OutcomeHit {
-		t.Errorf("no logprobs after 5: cache %q, want hit", none.cache())
-	}
-	if lp := decodeCompletion(t, none.body).Choices[0].Logprobs; lp != nil {
-		t.Errorf("logprobs %+v, want null", lp)
-	}
+	assert.Equal(t, proxy.OutcomeHit, none.cache(), "no logprobs after 5: cache %q, want hit", none.cache())
+	lp := decodeCompletion(t, none.body).Choices[0].Logprobs
+	assert.Nil(t, lp, "logprobs %+v, want null", lp)
 	more := r.complete(greedy("smoke calms the bees", "logprobs", 8))
-	if more.cache() != proxy.OutcomeMiss {
-		t.Errorf("logprobs 8 after 5: cache %q, want miss", more.cache())
-	}
-	if r.upstreamGenerations() != 1+2 { // 1 direct call + 2 through the proxy
-		t.Errorf("upstream calls = %d, want 3", r.upstreamGenerations())
-	}
+	assert.Equal(t, proxy.OutcomeMiss, more.cache(), "logprobs 8 after 5: cache %q, want miss", more.cache())
+	// 1 direct call + 2 through the proxy
+	assert.Equal(t, 1+2, r.upstreamGenerations(), "upstream calls = %d, want 3", r.upstreamGenerations())
 }
 
 func TestChatFewerTopLogprobs(t *testing.T) {
@@ -304,22 +246,19 @@ func TestChatFewerTopLogprobs(t *testing.T) {
 	}
 	r.chat(body(4))
 	got := r.chat(body(1))
-	if got.cache() != proxy.OutcomeHit {
-		t.Fatalf("top_logprobs 1 after 4: cache %q", got.cache())
-	}
+	require.Equal(t, proxy.OutcomeHit, got.cache(), "top_logprobs 1 after 4: cache %q", got.cache())
 	want := decodeChat(t, r.direct("/v1/chat/completions", body(1)).body)
 	g := decodeChat(t, got.body)
-	if g.Choices[0].Message.Content != want.Choices[0].Message.Content {
-		t.Fatalf("content %q, want %q", g.Choices[0].Message.Content, want.Choices[0].Message.Content)
-	}
+	require.Equal(t, want.Choices[0].Message.Content, g.Choices[0].Message.Content, "content %q, want %q", g.Choices[0].Message.Content, want.Choices[0].Message.Content)
 	for i, c := range g.Choices[0].Logprobs.Content {
 		w := want.Choices[0].Logprobs.Content[i]
-		if len(c.TopLogprobs) != 1 || c.TopLogprobs[0].Token != w.TopLogprobs[0].Token {
-			t.Errorf("token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
+		if assert.Len(t, c.TopLogprobs, 1, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs) {
+			assert.Equal(t, w.TopLogprobs[0].Token, c.TopLogprobs[0].Token, "token %d: top %+v, want %+v", i, c.TopLogprobs, w.TopLogprobs)
 		}
 	}
-	if plain := r.chat(body(-1)); plain.cache() != proxy.OutcomeHit || decodeChat(t, plain.body).Choices[0].Logprobs != nil {
-		t.Errorf("no logprobs after 4: cache %q body %s", plain.cache(), plain.body)
+	plain := r.chat(body(-1))
+	if assert.Equal(t, proxy.OutcomeHit, plain.cache(), "no logprobs after 4: cache") {
+		assert.Nil(t, decodeChat(t, plain.body).Choices[0].Logprobs, "no logprobs after 4: body %s", plain.body)
 	}
 }
 
@@ -333,7 +272,7 @@ func promptEnding(t *testing.T, r *rig, finish string, from int) string {
 			return p
 		}
 	}
-	t.Fatalf("no prompt found whose answer ends with %q", finish)
+	require.Failf(t, "no prompt found", "no prompt found whose answer ends with %q", finish)
 	return ""
 }
 
@@ -348,21 +287,14 @@ func TestShorterGreedyAnswerCutFromLongerOne(t *testing.T) {
 		t.Helper()
 		short := greedy(prompt, "logprobs", 1, "max_tokens", n)
 		got := r.complete(short)
-		if got.cache() != wantCache {
-			t.Errorf("%q max_tokens %d after 24: cache %q, want %q", prompt, n, got.cache(), wantCache)
+		if !assert.Equal(t, wantCache, got.cache(), "%q max_tokens %d after 24: cache", prompt, n) {
 			return
 		}
 		want := decodeCompletion(t, r.direct("/v1/completions", short).body)
 		g := decodeCompletion(t, got.body)
-		if g.Choices[0].Text != want.Choices[0].Text || g.Choices[0].FinishReason != want.Choices[0].FinishReason {
-			t.Errorf("max_tokens %d: got %q (%s), want %q (%s)", n, g.Choices[0].Text, g.Choices[0].FinishReason, want.Choices[0].Text, want.Choices[0].FinishReason)
-		}
-		if g.Usage != want.Usage {
-			t.Errorf("max_tokens %d: usage %+v, want %+v", n, g.Usage, want.Usage)
-		}
-		if fmt.Sprint(g.Choices[0].Logprobs.Tokens) != fmt.Sprint(want.Choices[0].Logprobs.Tokens) {
-			t.Errorf("max_tokens %d: tokens differ", n)
-		}
+		assert.False(t, g.Choices[0].Text != want.Choices[0].Text || g.Choices[0].FinishReason != want.Choices[0].FinishReason, "max_tokens %d: got %q (%s), want %q (%s)", n, g.Choices[0].Text, g.Choices[0].FinishReason, want.Choices[0].Text, want.Choices[0].FinishReason)
+		assert.True(t, g.Usage == want.Usage, "max_tokens %d: usage %+v, want %+v", n, g.Usage, want.Usage)
+		assert.Equal(t, fmt.Sprint(want.Choices[0].Logprobs.Tokens), fmt.Sprint(g.Choices[0].Logprobs.Tokens), "max_tokens %d: tokens differ", n)
 	}
 	for _, n := range []int{1, 5, 12} {
 		check(capped, n, proxy.OutcomeHit)
@@ -375,48 +307,36 @@ func TestShorterGreedyAnswerCutFromLongerOne(t *testing.T) {
 
 	// Without token data there is nothing to cut exactly.
 	r.complete(greedy(plain, "max_tokens", 24))
-	if got := r.complete(greedy(plain, "max_tokens", 5)); got.cache() != proxy.OutcomeMiss {
-		t.Errorf("cut without token data: cache %q, want miss", got.cache())
-	}
+	got := r.complete(greedy(plain, "max_tokens", 5))
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "cut without token data: cache %q, want miss", got.cache())
 }
 
 func TestCacheControlDirectives(t *testing.T) {
 	r := newRig(t)
 	body := greedy("pollen count")
 	// RFC 9111 §5.2.1.7 only-if-cached: 504 when not stored.
-	if got := r.complete(body, "Cache-Control", "only-if-cached"); got.status != http.StatusGatewayTimeout {
-		t.Errorf("only-if-cached on a miss: status %d, want 504", got.status)
-	}
-	if r.upstreamGenerations() != 0 {
-		t.Fatalf("only-if-cached reached the upstream")
-	}
+	got := r.complete(body, "Cache-Control", "only-if-cached")
+	assert.Equal(t, http.StatusGatewayTimeout, got.status, "only-if-cached on a miss: status %d, want 504", got.status)
+	require.Equal(t, 0, r.upstreamGenerations(), "only-if-cached reached the upstream")
 	// RFC 9111 §5.2.1.5 no-store: answer, do not store.
-	if got := r.complete(body, "Cache-Control", "no-store"); got.cache() != proxy.OutcomeMiss {
-		t.Errorf("no-store: cache %q", got.cache())
-	}
-	if got := r.complete(body); got.cache() != proxy.OutcomeMiss {
-		t.Errorf("after no-store: cache %q, want miss (nothing stored)", got.cache())
-	}
-	if got := r.complete(body, "Cache-Control", "only-if-cached"); got.cache() != proxy.OutcomeHit {
-		t.Errorf("only-if-cached on a hit: status %d cache %q", got.status, got.cache())
-	}
+	got = r.complete(body, "Cache-Control", "no-store")
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "no-store: cache %q", got.cache())
+	got = r.complete(body)
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "after no-store: cache %q, want miss (nothing stored)", got.cache())
+	got = r.complete(body, "Cache-Control", "only-if-cached")
+	assert.Equal(t, proxy.OutcomeHit, got.cache(), "only-if-cached on a hit: status %d cache %q", got.status, got.cache())
 	// RFC 9111 §5.2.1.4 no-cache: go upstream even though stored.
 	before := r.upstreamGenerations()
-	if got := r.complete(body, "Cache-Control", "no-cache"); got.cache() != proxy.OutcomeMiss {
-		t.Errorf("no-cache: cache %q, want miss", got.cache())
-	}
-	if r.upstreamGenerations() != before+1 {
-		t.Errorf("no-cache did not reach the upstream")
-	}
+	got = r.complete(body, "Cache-Control", "no-cache")
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "no-cache: cache %q, want miss", got.cache())
+	assert.Equal(t, before+1, r.upstreamGenerations(), "no-cache did not reach the upstream")
 }
 
 func TestModelsIsPassedThroughAndCachedBriefly(t *testing.T) {
 	r := newRig(t)
 	for range 3 {
 		resp, err := http.Get(r.srv.URL + "/v1/models")
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var list struct {
 			Data []struct {
 				ID string `json:"id"`
@@ -424,11 +344,9 @@ func TestModelsIsPassedThroughAndCachedBriefly(t *testing.T) {
 		}
 		err = json.NewDecoder(resp.Body).Decode(&list)
 		resp.Body.Close()
-		if err != nil || len(list.Data) != 2 {
-			t.Fatalf("models: %v %+v", err, list)
-		}
+		require.NoError(t, err, "models: %v %+v", err, list)
+		require.Len(t, list.Data, 2, "models: %v %+v", err, list)
 	}
-	if got := r.up.Calls().Models; got != 1 {
-		t.Errorf("upstream /models calls = %d, want 1", got)
-	}
+	got := r.up.Calls().Models
+	assert.Equal(t, 1, got, "upstream /models calls = %d, want 1", got)
 }

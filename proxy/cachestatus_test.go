@@ -85,10 +85,10 @@ func checkCacheStatus(t *testing.T, value string) proxy.CacheStatus {
 			switch v.(type) {
 			case httpsfv.Token, string:
 			default:
-				t.Errorf("detail %v is neither a Token nor a String", v)
+				assert.Failf(t, "detail of the wrong type", "detail %v is neither a Token nor a String", v)
 			}
 		default:
-			t.Errorf("parameter %q is not one of RFC 9211 §2's", name)
+			assert.Failf(t, "unknown parameter", "parameter %q is not one of RFC 9211 §2's", name)
 		}
 	}
 	hit, _ := it.Params.Get("hit")

@@ -1,6 +1,11 @@
 package proxy
 
-import "testing"
+import (
+	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
 
 // TestSplitOneFacts: the facts found while splitting a one-prompt answer
 // are what tokenFacts reads from the stored body, and an answer whose
@@ -28,22 +33,18 @@ func TestSplitOneFacts(t *testing.T) {
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			got, err := splitOne(tc.req, []byte(tc.body))
-			if err != nil || len(got) != 1 || got[0].facts == nil {
-				t.Fatalf("splitOne: %v %+v", err, got)
-			}
+			require.NoError(t, err, "splitOne: %v %+v", err, got)
+			require.Len(t, got, 1, "splitOne: %v %+v", err, got)
+			require.NotNil(t, got[0].facts, "splitOne: %v %+v", err, got)
 			f := got[0].facts
-			if f.finish != tc.wantFinish || f.tokens != tc.wantTokens {
-				t.Errorf("facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
-			}
-			if fin, tok := tokenFacts(tc.req, []byte(tc.body)); fin != f.finish || tok != f.tokens {
-				t.Errorf("tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
-			}
-			if string(got[0].body) != tc.body {
-				t.Error("the answer was not served as it came")
-			}
+			assert.Equal(t, tc.wantFinish, f.finish, "facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
+			assert.Equal(t, tc.wantTokens, f.tokens, "facts (%q, %d), want (%q, %d)", f.finish, f.tokens, tc.wantFinish, tc.wantTokens)
+			fin, tok := tokenFacts(tc.req, []byte(tc.body))
+			assert.Equal(t, f.finish, fin, "tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
+			assert.Equal(t, f.tokens, tok, "tokenFacts (%q, %d) differs from splitOne's (%q, %d)", fin, tok, f.finish, f.tokens)
+			assert.Equal(t, tc.body, string(got[0].body), "the answer was not served as it came")
 		})
 	}
-	if _, err := splitOne(completions, []byte(`{"choices":[]}`)); err == nil {
-		t.Error("an answer with no choice for the prompt was accepted")
-	}
+	_, err := splitOne(completions, []byte(`{"choices":[]}`))
+	assert.Error(t, err, "an answer with no choice for the prompt was accepted")
 }

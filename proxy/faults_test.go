@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -55,9 +58,7 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			got := r.post(tt.path, tt.body)
-			if got.status != tt.status {
-				t.Fatalf("status %d, want %d: %s", got.status, tt.status, got.body)
-			}
+			require.Equal(t, tt.status, got.status, "status %d, want %d: %s", got.status, tt.status, got.body)
 			var e struct {
 				Error struct {
 					Message string  `json:"message"`
@@ -66,17 +67,13 @@ func TestBadRequestsGetWireErrors(t *testing.T) {
 					Code    *string `json:"code"`
 				} `json:"error"`
 			}
-			if err := json.Unmarshal(got.body, &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
-				t.Fatalf("not the wire error shape: %s (%v)", got.body, err)
-			}
-			if tt.param != "" && (e.Error.Param == nil || *e.Error.Param != tt.param) {
-				t.Errorf("param %v, want %q", e.Error.Param, tt.param)
-			}
+			require.NoError(t, json.Unmarshal(got.body, &e), "not the wire error shape: %s", got.body)
+			require.NotEqual(t, "", e.Error.Message, "no error message: %s", got.body)
+			require.NotEqual(t, "", e.Error.Type, "no error type: %s", got.body)
+			assert.False(t, tt.param != "" && (e.Error.Param == nil || *e.Error.Param != tt.param), "param %v, want %q", e.Error.Param, tt.param)
 		})
 	}
-	if r.upstreamGenerations() != 0 {
-		t.Errorf("bad requests reached the upstream %d times", r.upstreamGenerations())
-	}
+	assert.Equal(t, 0, r.upstreamGenerations(), "bad requests reached the upstream %d times", r.upstreamGenerations())
 }
 
 func TestUnknownKeyIs401(t *testing.T) {
@@ -84,14 +81,12 @@ func TestUnknownKeyIs401(t *testing.T) {
 	r := newRig(t, withTeams(teamWithKey("lab", "good-key")))
 	for _, key := range []string{"", "wrong-key"} {
 		r.key = key
-		if got := r.complete(greedy("a")); got.status != http.StatusUnauthorized {
-			t.Errorf("key %q: status %d, want 401", key, got.status)
-		}
+		got := r.complete(greedy("a"))
+		assert.Equal(t, http.StatusUnauthorized, got.status, "key %q: status %d, want 401", key, got.status)
 	}
 	r.key = "good-key"
-	if got := r.complete(greedy("a")); got.status != http.StatusOK {
-		t.Errorf("good key: status %d", got.status)
-	}
+	got := r.complete(greedy("a"))
+	assert.Equal(t, http.StatusOK, got.status, "good key: status %d", got.status)
 }
 
 func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
@@ -112,20 +107,15 @@ func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
-	if err := r.up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, r.up.AwaitHeld(ctx, 1))
 	waitFor(t, "63 coalesced waiters", func() bool { return r.metric("stint_coalesced_waiting") == clients-1 })
 	r.up.Release()
 	wg.Wait()
-	if got := r.upstreamGenerations(); got != 1 {
-		t.Fatalf("upstream calls = %d, want 1", got)
-	}
+	got := r.upstreamGenerations()
+	require.Equal(t, 1, got, "upstream calls = %d, want 1", got)
 	misses, shared := 0, 0
 	for i := range clients {
-		if string(bodies[i]) != string(bodies[0]) {
-			t.Fatalf("client %d got a different answer", i)
-		}
+		require.Equal(t, string(bodies[0]), string(bodies[i]), "client %d got a different answer", i)
 		switch outcomes[i] {
 		case proxy.OutcomeMiss:
 			misses++
@@ -133,9 +123,8 @@ func TestConcurrentIdenticalMissesMakeOneCall(t *testing.T) {
 			shared++
 		}
 	}
-	if misses != 1 || shared != clients-1 {
-		t.Errorf("outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
-	}
+	assert.Equal(t, 1, misses, "outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
+	assert.Equal(t, clients-1, shared, "outcomes: %d miss, %d shared; want 1 and %d", misses, shared, clients-1)
 }
 
 func TestNothingIsCachedFromAFailedCall(t *testing.T) {
@@ -143,13 +132,12 @@ func TestNothingIsCachedFromAFailedCall(t *testing.T) {
 	r := newRig(t)
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusTooManyRequests, RetryAfter: "7", Body: `{"error":{"message":"slow down","type":"rate_limit","code":"rate_limited"}}`})
 	got := r.complete(greedy("queen cell"))
-	if got.status != http.StatusTooManyRequests || got.header.Get("Retry-After") != "7" || !strings.Contains(string(got.body), "slow down") {
-		t.Fatalf("upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
-	}
+	require.Equal(t, http.StatusTooManyRequests, got.status, "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	require.Equal(t, "7", got.header.Get("Retry-After"), "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
+	require.Contains(t, string(got.body), "slow down", "upstream 429 not passed through: %d %q %s", got.status, got.header.Get("Retry-After"), got.body)
 	again := r.complete(greedy("queen cell"))
-	if again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss {
-		t.Fatalf("after a failed call: %d %q, want 200 miss", again.status, again.cache())
-	}
+	require.Equal(t, http.StatusOK, again.status, "after a failed call: %d %q, want 200 miss", again.status, again.cache())
+	require.Equal(t, proxy.OutcomeMiss, again.cache(), "after a failed call: %d %q, want 200 miss", again.status, again.cache())
 }
 
 func TestUpstreamUnreachableOrSlow(t *testing.T) {
@@ -158,20 +146,16 @@ func TestUpstreamUnreachableOrSlow(t *testing.T) {
 		r := newRig(t)
 		r.up.Close()
 		got := r.complete(greedy("x"))
-		if got.status != http.StatusBadGateway {
-			t.Fatalf("status %d, want 502: %s", got.status, got.body)
-		}
+		require.Equal(t, http.StatusBadGateway, got.status, "status %d, want 502: %s", got.status, got.body)
 	})
 	t.Run("timeout", func(t *testing.T) {
 		r := newRig(t, func(o *proxy.Options) { o.Upstreams[0].Timeout = 200 * time.Millisecond })
 		r.up.FailNext(1, upstreamtest.Fault{Hang: true})
 		got := r.complete(greedy("x"))
-		if got.status != http.StatusGatewayTimeout {
-			t.Fatalf("status %d, want 504: %s", got.status, got.body)
-		}
-		if again := r.complete(greedy("x")); again.cache() != proxy.OutcomeMiss || again.status != http.StatusOK {
-			t.Fatalf("after timeout: %d %q", again.status, again.cache())
-		}
+		require.Equal(t, http.StatusGatewayTimeout, got.status, "status %d, want 504: %s", got.status, got.body)
+		again := r.complete(greedy("x"))
+		require.Equal(t, proxy.OutcomeMiss, again.cache(), "after timeout: %d %q", again.status, again.cache())
+		require.Equal(t, http.StatusOK, again.status, "after timeout: %d %q", again.status, again.cache())
 	})
 }
 
@@ -182,26 +166,17 @@ func TestHealthReadyMetrics(t *testing.T) {
 	r.complete(greedy("metrics please"))
 	for _, path := range []string{"/healthz", "/readyz", "/metrics"} {
 		resp, err := http.Get(r.srv.URL + path)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		resp.Body.Close()
-		if resp.StatusCode != http.StatusOK {
-			t.Errorf("%s: %d", path, resp.StatusCode)
-		}
+		assert.Equal(t, http.StatusOK, resp.StatusCode, "%s: %d", path, resp.StatusCode)
 	}
-	if got := r.metric("stint_requests_total", "cache", "hit"); got != 1 {
-		t.Errorf("stint_requests_total{cache=hit} = %v, want 1", got)
-	}
+	got := r.metric("stint_requests_total", "cache", "hit")
+	assert.Equal(t, float64(1), got, "stint_requests_total{cache=hit} = %v, want 1", got)
 	r.proxy.Drain()
 	resp, err := http.Get(r.srv.URL + "/readyz")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusServiceUnavailable {
-		t.Errorf("/readyz while draining: %d, want 503", resp.StatusCode)
-	}
+	assert.Equal(t, http.StatusServiceUnavailable, resp.StatusCode, "/readyz while draining: %d, want 503", resp.StatusCode)
 }
 
 func TestCutShortAnswersAreNotCached(t *testing.T) {
@@ -215,13 +190,10 @@ func TestCutShortAnswersAreNotCached(t *testing.T) {
 			r.up.FailNext(1, upstreamtest.Fault{Cut: 3})
 			body := greedy("the hive went quiet", "max_tokens", 12, "stream", tc.stream)
 			got := r.complete(body)
-			if got.status == http.StatusOK && got.readErr == nil {
-				t.Fatalf("a cut-short answer reached the client as a whole one: %s", got.body)
-			}
+			require.False(t, got.status == http.StatusOK && got.readErr == nil, "a cut-short answer reached the client as a whole one: %s", got.body)
 			again := r.complete(body)
-			if again.status != http.StatusOK || again.cache() != proxy.OutcomeMiss {
-				t.Fatalf("after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
-			}
+			require.Equal(t, http.StatusOK, again.status, "after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
+			require.Equal(t, proxy.OutcomeMiss, again.cache(), "after a cut-short answer: %d %q, want 200 miss (nothing stored)", again.status, again.cache())
 		})
 	}
 }
@@ -322,18 +294,16 @@ func TestNoRequestOutlivesItsDeadline(t *testing.T) {
 			for n, res := range results {
 				switch {
 				case errors.Is(res.err, context.DeadlineExceeded):
-					t.Errorf("request %d outlived its deadline of the timeout %v + %v: %v", n, timeout, margin, res.err)
+					assert.Failf(t, "request outlived its deadline", "request %d outlived its deadline of the timeout %v + %v: %v", n, timeout, margin, res.err)
 				case res.err != nil:
-					t.Errorf("request %d got no whole answer: %v", n, res.err)
+					assert.Failf(t, "request got no whole answer", "request %d: %v", n, res.err)
 				case !allowed[res.status]:
-					t.Errorf("request %d: status %d, want one of %v", n, res.status, allowed)
+					assert.Failf(t, "unexpected status", "request %d: status %d, want one of %v", n, res.status, allowed)
 				}
 				seen[res.status]++
 			}
 			for _, status := range tt.mustSee {
-				if seen[status] == 0 {
-					t.Errorf("no request answered %d (statuses seen: %v)", status, seen)
-				}
+				assert.NotEqual(t, 0, seen[status], "no request answered %d (statuses seen: %v)", status, seen)
 			}
 			t.Logf("statuses %v over %d upstream calls", seen, r.upstreamGenerations())
 		})

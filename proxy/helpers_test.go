@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/stintlab/stint/cache"
@@ -43,9 +46,7 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 	up := upstreamtest.New(upstreamtest.Options{Key: upstreamKey})
 	t.Cleanup(up.Close)
 	disk, err := boltstore.Open(filepath.Join(t.TempDir(), "stint.db"), boltstore.Options{})
-	if err != nil {
-		t.Fatalf("open store: %v", err)
-	}
+	require.NoError(t, err, "open store")
 	store := cache.NewHot(disk, cache.HotOptions{MaxBytes: 8 << 20})
 	t.Cleanup(func() { _ = store.Close() }) // stops the tier's goroutines and closes disk
 	reg := prometheus.NewRegistry()
@@ -59,13 +60,9 @@ func newRig(t *testing.T, opts ...rigOption) *rig {
 		fn(&o)
 	}
 	p, err := proxy.New(o)
-	if err != nil {
-		t.Fatalf("proxy.New: %v", err)
-	}
+	require.NoError(t, err, "proxy.New")
 	t.Cleanup(func() {
-		if err := p.Close(context.Background()); err != nil {
-			t.Errorf("proxy.Close: %v", err)
-		}
+		assert.NoError(t, p.Close(context.Background()), "proxy.Close")
 	})
 	srv := httptest.NewServer(p)
 	t.Cleanup(srv.Close)
@@ -109,14 +106,11 @@ func (r *rig) post(path string, body any, headers ...string) response {
 		raw = b
 	default:
 		var err error
-		if raw, err = json.Marshal(b); err != nil {
-			r.t.Fatalf("marshal: %v", err)
-		}
+		raw, err = json.Marshal(b)
+		require.NoError(r.t, err, "marshal")
 	}
 	req, err := http.NewRequest(http.MethodPost, r.srv.URL+path, bytes.NewReader(raw))
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	req.Header.Set("Content-Type", "application/json")
 	if r.key != "" {
 		req.Header.Set("Authorization", "Bearer "+r.key)
@@ -125,9 +119,7 @@ func (r *rig) post(path string, body any, headers ...string) response {
 		req.Header.Set(headers[i], headers[i+1])
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatalf("POST %s: %v", path, err)
-	}
+	require.NoError(r.t, err, "POST %s", path)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b, readErr: err}
@@ -150,9 +142,7 @@ func (r *rig) direct(path string, body any) response {
 	req, _ := http.NewRequest(http.MethodPost, strings.TrimSuffix(r.up.URL(), "/v1")+path, bytes.NewReader(raw))
 	req.Header.Set("Authorization", "Bearer "+upstreamKey)
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		r.t.Fatalf("direct: %v", err)
-	}
+	require.NoError(r.t, err, "direct")
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b}
@@ -166,9 +156,7 @@ func (r *rig) upstreamGenerations() int {
 func (r *rig) metric(name string, labels ...string) float64 {
 	r.t.Helper()
 	mfs, err := r.reg.Gather()
-	if err != nil {
-		r.t.Fatal(err)
-	}
+	require.NoError(r.t, err)
 	total := 0.0
 	for _, mf := range mfs {
 		if mf.GetName() != name {
@@ -226,9 +214,7 @@ type completionLP struct {
 func decodeCompletion(t *testing.T, b []byte) completion {
 	t.Helper()
 	var c completion
-	if err := json.Unmarshal(b, &c); err != nil {
-		t.Fatalf("decode completion %s: %v", b, err)
-	}
+	require.NoError(t, json.Unmarshal(b, &c), "decode completion %s", b)
 	return c
 }
 
@@ -260,9 +246,7 @@ type chatAnswer struct {
 func decodeChat(t *testing.T, b []byte) chatAnswer {
 	t.Helper()
 	var c chatAnswer
-	if err := json.Unmarshal(b, &c); err != nil {
-		t.Fatalf("decode chat %s: %v", b, err)
-	}
+	require.NoError(t, json.Unmarshal(b, &c), "decode chat %s", b)
 	return c
 }
 
@@ -277,14 +261,11 @@ func events(t *testing.T, body []byte) []string {
 		if err == io.EOF {
 			break
 		}
-		if err != nil {
-			t.Fatalf("read stream: %v\n%s", err, body)
-		}
+		require.NoError(t, err, "read stream: %v\n%s", err, body)
 		out = append(out, ev.Data)
 	}
-	if len(out) == 0 || out[len(out)-1] != sse.Done {
-		t.Fatalf("stream does not end with [DONE]:\n%s", body)
-	}
+	require.NotEqual(t, 0, len(out), "stream does not end with [DONE]:\n%s", body)
+	require.Equal(t, sse.Done, out[len(out)-1], "stream does not end with [DONE]:\n%s", body)
 	return out[:len(out)-1]
 }
 
@@ -304,9 +285,7 @@ func streamedText(t *testing.T, chat bool, datas []string) (map[int]string, *com
 			} `json:"choices"`
 			Usage json.RawMessage `json:"usage"`
 		}
-		if err := json.Unmarshal([]byte(d), &c); err != nil {
-			t.Fatalf("chunk %s: %v", d, err)
-		}
+		require.NoError(t, json.Unmarshal([]byte(d), &c), "chunk %s", d)
 		if len(c.Choices) == 0 && len(c.Usage) > 0 && string(c.Usage) != "null" {
 			u := decodeCompletion(t, []byte(d))
 			usageChunk = &u
@@ -329,7 +308,7 @@ func waitFor(t *testing.T, what string, cond func() bool) {
 	for !cond() {
 		select {
 		case <-ctx.Done():
-			t.Fatalf("timed out waiting for %s", what)
+			require.Failf(t, "timed out", "timed out waiting for %s", what)
 		case <-time.After(time.Millisecond):
 		}
 	}

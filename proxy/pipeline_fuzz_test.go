@@ -13,6 +13,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/sse"
 	"github.com/stintlab/stint/proxy/wire"
 )
@@ -67,72 +69,51 @@ func FuzzPipeline(f *testing.F) {
 func checkParse(t *testing.T, ep endpoint, body []byte) {
 	req, aerr := parseRequest(ep, body, fuzzMaxPrompts)
 	if aerr != nil {
-		if aerr.status != 400 || aerr.message == "" {
-			t.Fatalf("%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
-		}
+		require.Equal(t, 400, aerr.status, "%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
+		require.NotEqual(t, "", aerr.message, "%s refusal %d %q, want a 400 with a message", ep, aerr.status, aerr.message)
 		rec := httptest.NewRecorder()
 		writeError(rec, aerr)
 		var e wire.ErrorBody
-		if err := json.Unmarshal(rec.Body.Bytes(), &e); err != nil || e.Error.Message == "" || e.Error.Type == "" {
-			t.Fatalf("refusal body %s is not the wire error shape (%v)", rec.Body.Bytes(), err)
-		}
+		require.NoError(t, json.Unmarshal(rec.Body.Bytes(), &e), "refusal body %s is not the wire error shape", rec.Body.Bytes())
+		require.NotEqual(t, "", e.Error.Message, "refusal body %s has no message", rec.Body.Bytes())
+		require.NotEqual(t, "", e.Error.Type, "refusal body %s has no type", rec.Body.Bytes())
 		return
 	}
-	if req.model == "" || req.n < 1 || req.n > maxN {
-		t.Fatalf("parsed model %q n %d", req.model, req.n)
-	}
+	require.NotEqual(t, "", req.model, "parsed model %q n %d", req.model, req.n)
+	require.GreaterOrEqual(t, req.n, 1, "parsed model %q n %d", req.model, req.n)
+	require.LessOrEqual(t, req.n, maxN, "parsed model %q n %d", req.model, req.n)
 	items := []json.RawMessage{nil}
 	if ep == endpointCompletions {
-		if len(req.prompts) == 0 || len(req.prompts) > fuzzMaxPrompts {
-			t.Fatalf("%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
-		}
+		require.NotEqual(t, 0, len(req.prompts), "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
+		require.LessOrEqual(t, len(req.prompts), fuzzMaxPrompts, "%d prompt items, want 1 to %d", len(req.prompts), fuzzMaxPrompts)
 		items = req.prompts
 	}
 	keys := make([]string, len(items))
 	for i, it := range items {
-		if it != nil && !json.Valid(it) {
-			t.Fatalf("prompt item %d is not JSON: %q", i, it)
-		}
+		require.False(t, it != nil && !json.Valid(it), "prompt item %d is not JSON: %q", i, it)
 		k, err := keyBody(req, it)
-		if err != nil {
-			t.Fatalf("key of a parsed request: %v", err)
-		}
-		if !json.Valid(k) {
-			t.Fatalf("key %q is not JSON", k)
-		}
+		require.NoError(t, err, "key of a parsed request")
+		require.True(t, json.Valid(k), "key %q is not JSON", k)
 		again, _ := keyBody(req, it)
-		if !bytes.Equal(k, again) {
-			t.Fatalf("key differs between two computations: %q, %q", k, again)
-		}
+		require.True(t, bytes.Equal(k, again), "key differs between two computations: %q, %q", k, again)
 		keys[i] = string(k)
 	}
 	for _, stream := range []bool{false, true} {
 		up, err := upstreamBody(req, nil, stream)
-		if err != nil {
-			t.Fatalf("upstream body: %v", err)
-		}
+		require.NoError(t, err, "upstream body")
 		back, aerr := parseRequest(ep, up, fuzzMaxPrompts)
-		if aerr != nil {
-			t.Fatalf("the upstream body %s does not parse again: %v", up, aerr)
-		}
-		if back.stream != stream {
-			t.Fatalf("upstream body stream = %v, want %v", back.stream, stream)
-		}
-		if stream && !back.includeUsage {
-			t.Fatalf("a relayed stream does not ask for the usage chunk: %s", up)
-		}
+		require.Nil(t, aerr, "the upstream body %s does not parse again: %v", up, aerr)
+		require.Equal(t, stream, back.stream, "upstream body stream = %v, want %v", back.stream, stream)
+		require.False(t, stream && !back.includeUsage, "a relayed stream does not ask for the usage chunk: %s", up)
 		backItems := []json.RawMessage{nil}
 		if ep == endpointCompletions {
 			backItems = back.prompts
 		}
-		if len(backItems) != len(items) {
-			t.Fatalf("upstream body has %d prompt items, want %d", len(backItems), len(items))
-		}
+		require.Len(t, backItems, len(items), "upstream body has %d prompt items, want %d", len(backItems), len(items))
 		for i, it := range backItems {
 			k, err := keyBody(back, it)
-			if err != nil || string(k) != keys[i] {
-				t.Fatalf("upstream body changes the key of item %d:\n%s\n%s (%v)", i, k, keys[i], err)
-			}
+			require.NoError(t, err, "key of upstream item %d", i)
+			require.Equal(t, keys[i], string(k), "upstream body changes the key of item %d", i)
 		}
 	}
 }
@@ -197,12 +178,8 @@ func checkSplitMerge(t *testing.T, m *material) {
 	full, _ := json.Marshal(map[string]any{"id": "cmpl-f", "object": "text_completion", "model": "m", "choices": choices, "usage": total})
 
 	parts, err := splitAnswer(req, full, k, prompts)
-	if err != nil {
-		t.Fatalf("split %s: %v", full, err)
-	}
-	if len(parts) != k {
-		t.Fatalf("split into %d answers, want %d", len(parts), k)
-	}
+	require.NoError(t, err, "split %s", full)
+	require.Len(t, parts, k, "split into %d answers, want %d", len(parts), k)
 	var sum wire.Usage
 	for j, p := range parts {
 		var a struct {
@@ -211,35 +188,28 @@ func checkSplitMerge(t *testing.T, m *material) {
 				Text  string `json:"text"`
 			} `json:"choices"`
 		}
-		if err := json.Unmarshal(p.body, &a); err != nil || len(a.Choices) != n {
-			t.Fatalf("answer %d: %s (%v), want %d choices", j, p.body, err, n)
-		}
+		require.NoError(t, json.Unmarshal(p.body, &a), "answer %d: %s", j, p.body)
+		require.Len(t, a.Choices, n, "answer %d: %s", j, p.body)
 		for _, ch := range a.Choices {
-			if ch.Index < 0 || ch.Index >= n || ch.Text != canonText(texts[j*n+ch.Index]) {
-				t.Fatalf("answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
-			}
+			require.GreaterOrEqual(t, ch.Index, 0, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
+			require.Less(t, ch.Index, n, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
+			require.Equal(t, canonText(texts[j*n+ch.Index]), ch.Text, "answer %d choice %d has text %q, want %q", j, ch.Index, ch.Text, canonText(texts[j*n+ch.Index]))
 		}
 		sum = sum.Add(p.usage)
 	}
-	if sum.PromptTokens != total.PromptTokens || sum.CompletionTokens != total.CompletionTokens {
-		t.Fatalf("split usage adds up to %+v, want %+v", sum, total)
-	}
+	require.Equal(t, total.PromptTokens, sum.PromptTokens, "split usage adds up to %+v, want %+v", sum, total)
+	require.Equal(t, total.CompletionTokens, sum.CompletionTokens, "split usage adds up to %+v, want %+v", sum, total)
 
 	merged, mu, err := mergeAnswers(req, parts)
-	if err != nil {
-		t.Fatalf("merge: %v", err)
-	}
-	if mu.PromptTokens != total.PromptTokens || mu.CompletionTokens != total.CompletionTokens {
-		t.Fatalf("merged usage %+v, want %+v", mu, total)
-	}
+	require.NoError(t, err, "merge")
+	require.Equal(t, total.PromptTokens, mu.PromptTokens, "merged usage %+v, want %+v", mu, total)
+	require.Equal(t, total.CompletionTokens, mu.CompletionTokens, "merged usage %+v, want %+v", mu, total)
 	got := choiceTexts(t, endpointCompletions, merged)
 	want := make(map[int]string, len(texts))
 	for i, s := range texts {
 		want[i] = canonText(s)
 	}
-	if !mapsEqual(got, want) {
-		t.Fatalf("merged texts %v, want %v", got, want)
-	}
+	require.True(t, mapsEqual(got, want), "merged texts %v, want %v", got, want)
 	checkStream(t, endpointCompletions, merged, want, total)
 }
 
@@ -255,14 +225,11 @@ func choiceTexts(t *testing.T, ep endpoint, body []byte) map[int]string {
 			} `json:"message"`
 		} `json:"choices"`
 	}
-	if err := json.Unmarshal(body, &a); err != nil {
-		t.Fatalf("answer %s: %v", body, err)
-	}
+	require.NoError(t, json.Unmarshal(body, &a), "answer %s", body)
 	out := map[int]string{}
 	for _, c := range a.Choices {
-		if _, dup := out[c.Index]; dup {
-			t.Fatalf("index %d twice in %s", c.Index, body)
-		}
+		_, dup := out[c.Index]
+		require.False(t, dup, "index %d twice in %s", c.Index, body)
 		if ep == endpointChat {
 			out[c.Index] = c.Message.Content
 		} else {
@@ -289,9 +256,7 @@ func mapsEqual(a, b map[int]string) bool {
 func checkStream(t *testing.T, ep endpoint, body []byte, want map[int]string, u wire.Usage) {
 	t.Helper()
 	rec := httptest.NewRecorder()
-	if err := writeStream(rec, ep, body, true, OutcomeHit); err != nil {
-		t.Fatalf("write stream of %s: %v", body, err)
-	}
+	require.NoError(t, writeStream(rec, ep, body, true, OutcomeHit), "write stream of %s", body)
 	asm := newAssembler(ep)
 	rd := sse.NewReader(bytes.NewReader(rec.Body.Bytes()))
 	done := false
@@ -300,30 +265,23 @@ func checkStream(t *testing.T, ep endpoint, body []byte, want map[int]string, u 
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatalf("read the stream: %v\n%s", err, rec.Body.Bytes())
-		}
+		require.NoError(t, err, "read the stream: %v\n%s", err, rec.Body.Bytes())
 		if ev.IsDone() {
 			done = true
 			continue
 		}
-		if _, err := asm.add([]byte(ev.Data)); err != nil {
-			t.Fatalf("assemble: %v", err)
-		}
+		_, err = asm.add([]byte(ev.Data))
+		require.NoError(t, err, "assemble")
 	}
-	if !done {
-		t.Fatalf("stream without [DONE]:\n%s", rec.Body.Bytes())
-	}
+	require.True(t, done, "stream without [DONE]:\n%s", rec.Body.Bytes())
 	again, err := asm.result()
-	if err != nil {
-		t.Fatalf("assembled: %v", err)
-	}
-	if got := choiceTexts(t, ep, again); !mapsEqual(got, want) {
-		t.Fatalf("streamed and assembled texts %v, want %v", got, want)
-	}
-	if ru, ok := asm.reportedUsage(); !ok || ru.PromptTokens != u.PromptTokens || ru.CompletionTokens != u.CompletionTokens {
-		t.Fatalf("streamed usage %+v (%v), want %+v", ru, ok, u)
-	}
+	require.NoError(t, err, "assembled")
+	got := choiceTexts(t, ep, again)
+	require.True(t, mapsEqual(got, want), "streamed and assembled texts %v, want %v", got, want)
+	ru, ok := asm.reportedUsage()
+	require.True(t, ok, "streamed usage %+v (%v), want %+v", ru, ok, u)
+	require.Equal(t, u.PromptTokens, ru.PromptTokens, "streamed usage %+v (%v), want %+v", ru, ok, u)
+	require.Equal(t, u.CompletionTokens, ru.CompletionTokens, "streamed usage %+v (%v), want %+v", ru, ok, u)
 }
 
 // checkShape is the shaping property of FuzzPipeline.
@@ -363,9 +321,7 @@ func checkShape(t *testing.T, m *material) {
 
 	wantMax, wantLP := 1+m.intn(ntok), m.intn(k+1)-1 // wantLP -1: no log-probabilities
 	body, su, err := shape(endpointCompletions, v, wantLP, wantMax)
-	if err != nil {
-		t.Fatalf("shape %s to %d tokens, %d top: %v", stored, wantMax, wantLP, err)
-	}
+	require.NoError(t, err, "shape %s to %d tokens, %d top", stored, wantMax, wantLP)
 	var a struct {
 		Choices []struct {
 			Text     string `json:"text"`
@@ -375,29 +331,22 @@ func checkShape(t *testing.T, m *material) {
 			} `json:"logprobs"`
 		} `json:"choices"`
 	}
-	if err := json.Unmarshal(body, &a); err != nil || len(a.Choices) != 1 {
-		t.Fatalf("shaped answer %s: %v", body, err)
-	}
+	err = json.Unmarshal(body, &a)
+	require.NoError(t, err, "shaped answer %s: %v", body, err)
+	require.Len(t, a.Choices, 1, "shaped answer %s: %v", body, err)
 	c := a.Choices[0]
-	if want := strings.Join(tokens[:wantMax], ""); c.Text != want {
-		t.Fatalf("shaped text %q, want the first %d tokens %q", c.Text, wantMax, want)
-	}
-	if wantMax < ntok && su.CompletionTokens != wantMax {
-		t.Fatalf("shaped usage %+v, want %d completion tokens", su, wantMax)
-	}
+	want := strings.Join(tokens[:wantMax], "")
+	require.Equal(t, want, c.Text, "shaped text %q, want the first %d tokens %q", c.Text, wantMax, want)
+	require.False(t, wantMax < ntok && su.CompletionTokens != wantMax, "shaped usage %+v, want %d completion tokens", su, wantMax)
 	if wantLP == noLevel {
-		if c.Logprobs != nil {
-			t.Fatalf("log-probabilities kept when none were asked for: %s", body)
-		}
+		require.Nil(t, c.Logprobs, "log-probabilities kept when none were asked for: %s", body)
 		return
 	}
-	if c.Logprobs == nil || !slices.Equal(c.Logprobs.Tokens, tokens[:wantMax]) || len(c.Logprobs.TopLogprobs) != wantMax {
-		t.Fatalf("shaped logprobs %s, want the first %d tokens", body, wantMax)
-	}
+	require.NotNil(t, c.Logprobs, "shaped logprobs %s, want the first %d tokens", body, wantMax)
+	require.True(t, slices.Equal(c.Logprobs.Tokens, tokens[:wantMax]), "shaped logprobs %s, want the first %d tokens", body, wantMax)
+	require.Len(t, c.Logprobs.TopLogprobs, wantMax, "shaped logprobs %s, want the first %d tokens", body, wantMax)
 	for i, top := range c.Logprobs.TopLogprobs {
-		if len(top) != min(wantLP, k) {
-			t.Fatalf("position %d kept %d top entries, want %d", i, len(top), min(wantLP, k))
-		}
+		require.Len(t, top, min(wantLP, k), "position %d kept %d top entries, want %d", i, len(top), min(wantLP, k))
 		best := slices.Clone(entries[i])
 		sort.Sort(sort.Reverse(sort.Float64Slice(best)))
 		var kept []float64
@@ -407,9 +356,7 @@ func checkShape(t *testing.T, m *material) {
 			kept = append(kept, f)
 		}
 		sort.Sort(sort.Reverse(sort.Float64Slice(kept)))
-		if !slices.Equal(kept, best[:len(kept)]) {
-			t.Fatalf("position %d kept %v, want the most likely %v", i, kept, best[:len(kept)])
-		}
+		require.True(t, slices.Equal(kept, best[:len(kept)]), "position %d kept %v, want the most likely %v", i, kept, best[:len(kept)])
 	}
 }
 

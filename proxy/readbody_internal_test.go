@@ -1,13 +1,16 @@
 package proxy
 
 import (
-	"errors"
 	"io"
 	"net/http"
 	"net/textproto"
 	"strings"
 	"testing"
 	"testing/iotest"
+
+	"github.com/stretchr/testify/require"
+
+	"github.com/stretchr/testify/assert"
 )
 
 // TestReadAllSized: whatever the announced length says, the whole body and
@@ -35,14 +38,11 @@ func TestReadAllSized(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			got, err := readAllSized(tc.r(), tc.announced, tc.limit)
 			if tc.wantErr != nil {
-				if !errors.Is(err, tc.wantErr) {
-					t.Fatalf("err = %v, want %v", err, tc.wantErr)
-				}
+				require.ErrorIs(t, err, tc.wantErr, "err = %v, want %v", err, tc.wantErr)
 				return
 			}
-			if err != nil || string(got) != tc.want {
-				t.Fatalf("got %d bytes, %v; want %d bytes", len(got), err, len(tc.want))
-			}
+			require.NoError(t, err)
+			require.True(t, string(got) == tc.want, "got %d bytes; want the %d bytes sent", len(got), len(tc.want))
 		})
 	}
 }
@@ -51,11 +51,9 @@ func TestReadAllSized(t *testing.T) {
 // header map directly, which is right only for canonical names.
 func TestHeaderNamesCanonical(t *testing.T) {
 	for _, name := range []string{HeaderCacheStatus, HeaderCachedPrompt, HeaderRun, HeaderRunMode, HeaderReplaySession, HeaderRecordedCost, HeaderRecordedSaved, HeaderCost, HeaderSaved, HeaderBudgetLeft, HeaderModelsMissing, "Content-Type", "Content-Length", "Cache-Control"} {
-		if c := textproto.CanonicalMIMEHeaderKey(name); c != name {
-			t.Errorf("%q is not canonical (%q)", name, c)
-		}
+		c := textproto.CanonicalMIMEHeaderKey(name)
+		assert.Equal(t, name, c, "%q is not canonical (%q)", name, c)
 	}
-	if h := (http.Header{"Stint-Run": {"r1"}}); h.Get(HeaderRun) != "r1" {
-		t.Error("direct map key does not match Header.Get")
-	}
+	h := (http.Header{"Stint-Run": {"r1"}})
+	assert.Equal(t, "r1", h.Get(HeaderRun), "direct map key does not match Header.Get")
 }

@@ -66,8 +66,7 @@ func FuzzRequestLine(f *testing.F) {
 	f.Fuzz(func(t *testing.T, team, prompt string) {
 		ll := logLine{team: team, model: team, outcome: OutcomeHit, endpoint: endpointCompletions, status: 200, promptText: prompt}
 		want := slogLine(t, now, &ll, time.Microsecond)
-		if got := appendRequestLine(nil, now, &ll, time.Microsecond); !bytes.Equal(got, want) {
-			t.Errorf("line differs from slog's JSON handler\n got: %q\nwant: %q", got, want)
-		}
+		got := appendRequestLine(nil, now, &ll, time.Microsecond)
+		assert.True(t, bytes.Equal(got, want), "line differs from slog's JSON handler\n got: %q\nwant: %q", got, want)
 	})
 }

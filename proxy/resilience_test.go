@@ -4,7 +4,6 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"math/rand/v2"
 	"net/http"
@@ -14,6 +13,9 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"go.uber.org/goleak"
@@ -80,13 +82,12 @@ func (r *rig) breakerState() float64 {
 // and a Retry-After of whole seconds no longer than openFor.
 func assertOpenAnswer(t *testing.T, got response, openFor time.Duration) {
 	t.Helper()
-	if got.status != http.StatusServiceUnavailable || errorCode(t, got.body) != "upstream_circuit_open" {
-		t.Fatalf("status %d %s, want 503 upstream_circuit_open", got.status, got.body)
-	}
+	require.Equal(t, http.StatusServiceUnavailable, got.status, "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
+	require.Equal(t, "upstream_circuit_open", errorCode(t, got.body), "status %d %s, want 503 upstream_circuit_open", got.status, got.body)
 	ra, err := strconv.Atoi(got.header.Get("Retry-After"))
-	if err != nil || ra < 1 || time.Duration(ra)*time.Second > openFor {
-		t.Fatalf("Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
-	}
+	require.NoError(t, err, "Retry-After %q, want whole seconds", got.header.Get("Retry-After"))
+	require.GreaterOrEqual(t, ra, 1, "Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
+	require.LessOrEqual(t, time.Duration(ra)*time.Second, openFor, "Retry-After %q, want 1 to %v in whole seconds", got.header.Get("Retry-After"), openFor)
 }
 
 func TestBreakerOpensWithinTheConfiguredCount(t *testing.T) {
@@ -114,21 +115,15 @@ func TestBreakerOpensWithinTheConfiguredCount(t *testing.T) {
 			r.up.FailRatio(1, tt.fault)
 			for i := range trip {
 				got := r.complete(greedy(fmt.Sprintf("failing call %d", i)))
-				if got.status != tt.status {
-					t.Fatalf("call %d: status %d, want %d: %s", i, got.status, tt.status, got.body)
-				}
+				require.Equal(t, tt.status, got.status, "call %d: status %d, want %d: %s", i, got.status, tt.status, got.body)
 			}
 			got := r.complete(greedy("after the trip"))
 			assertOpenAnswer(t, got, breaker.DefaultOpenFor)
-			if n := r.upstreamGenerations(); n != trip {
-				t.Errorf("upstream saw %d calls, want %d (none once open)", n, trip)
-			}
-			if s := r.breakerState(); s != 2 {
-				t.Errorf("stint_upstream_breaker_state = %v, want 2 (open)", s)
-			}
-			if n := r.metric("stint_upstream_breaker_trips_total", "upstream", "fake"); n != 1 {
-				t.Errorf("trips = %v, want 1", n)
-			}
+			n := r.upstreamGenerations()
+			assert.Equal(t, trip, n, "upstream saw %d calls, want %d (none once open)", n, trip)
+			s := r.breakerState()
+			assert.Equal(t, float64(2), s, "stint_upstream_breaker_state = %v, want 2 (open)", s)
+			assert.Equal(t, float64(1), r.metric("stint_upstream_breaker_trips_total", "upstream", "fake"), "trips")
 		})
 	}
 }
@@ -142,9 +137,8 @@ func TestFailureRatioTrips(t *testing.T) {
 		r.complete(greedy(fmt.Sprintf("ratio call %d", i)))
 	}
 	assertOpenAnswer(t, r.complete(greedy("one more")), breaker.DefaultOpenFor)
-	if n := r.upstreamGenerations(); n != 10 {
-		t.Errorf("upstream saw %d calls, want 10", n)
-	}
+	n := r.upstreamGenerations()
+	assert.Equal(t, 10, n, "upstream saw %d calls, want 10", n)
 }
 
 func TestClientErrorsDoNotTrip(t *testing.T) {
@@ -154,16 +148,13 @@ func TestClientErrorsDoNotTrip(t *testing.T) {
 			r := newRig(t, withResilience(breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, noRetries, nil))
 			r.up.FailRatio(1, upstreamtest.Fault{Status: status})
 			for i := range 6 {
-				if got := r.complete(greedy(fmt.Sprintf("call %d", i))); got.status != status {
-					t.Fatalf("call %d: status %d, want the upstream's %d passed through", i, got.status, status)
-				}
+				got := r.complete(greedy(fmt.Sprintf("call %d", i)))
+				require.Equal(t, status, got.status, "call %d: status %d, want the upstream's %d passed through", i, got.status, status)
 			}
-			if n := r.upstreamGenerations(); n != 6 {
-				t.Errorf("upstream saw %d calls, want 6", n)
-			}
-			if s := r.breakerState(); s != 0 {
-				t.Errorf("breaker state %v, want 0 (closed)", s)
-			}
+			n := r.upstreamGenerations()
+			assert.Equal(t, 6, n, "upstream saw %d calls, want 6", n)
+			s := r.breakerState()
+			assert.Equal(t, float64(0), s, "breaker state %v, want 0 (closed)", s)
 		})
 	}
 }
@@ -175,35 +166,30 @@ func TestHitsAreServedWhileOpenAndAProbeClosesIt(t *testing.T) {
 	const openFor = 1500 * time.Millisecond
 	r := newRig(t, withResilience(breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1, OpenFor: openFor}, noRetries, nil))
 	cached := greedy("the lock keeper's ledger")
-	if got := r.complete(cached); got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss {
-		t.Fatalf("warming the cache: %d %q", got.status, got.cache())
-	}
+	warm := r.complete(cached)
+	require.Equal(t, http.StatusOK, warm.status, "warming the cache: %s", warm.body)
+	require.Equal(t, proxy.OutcomeMiss, warm.cache(), "warming the cache")
 	r.up.FailRatio(1, upstreamtest.Fault{Status: 500})
 	r.complete(greedy("fail one"))
 	r.complete(greedy("fail two"))
-	if s := r.breakerState(); s != 2 {
-		t.Fatalf("breaker state %v, want open", s)
-	}
+	s := r.breakerState()
+	require.Equal(t, float64(2), s, "breaker state %v, want open", s)
 	calls := r.upstreamGenerations()
-	if got := r.complete(cached); got.status != http.StatusOK || got.cache() != proxy.OutcomeHit {
-		t.Errorf("cached answer while open: %d %q, want 200 hit", got.status, got.cache())
-	}
+	whileOpen := r.complete(cached)
+	assert.Equal(t, http.StatusOK, whileOpen.status, "cached answer while open")
+	assert.Equal(t, proxy.OutcomeHit, whileOpen.cache(), "cached answer while open")
 	assertOpenAnswer(t, r.complete(greedy("a miss while open")), 2*time.Second)
-	if r.upstreamGenerations() != calls {
-		t.Errorf("the upstream was called while open")
-	}
+	assert.Equal(t, calls, r.upstreamGenerations(), "the upstream was called while open")
 	// After openFor the breaker lets a probe through; its success closes it.
 	r.up.ClearFaults()
 	waitFor(t, "half-open", func() bool { return r.breakerState() == 1 })
-	if got := r.complete(greedy("the probe")); got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss {
-		t.Fatalf("probe: %d %s", got.status, got.body)
-	}
-	if s := r.breakerState(); s != 0 {
-		t.Errorf("after a good probe: state %v, want 0 (closed)", s)
-	}
-	if got := r.complete(greedy("after closing")); got.status != http.StatusOK {
-		t.Errorf("after closing: %d", got.status)
-	}
+	probe := r.complete(greedy("the probe"))
+	require.Equal(t, http.StatusOK, probe.status, "probe: %s", probe.body)
+	require.Equal(t, proxy.OutcomeMiss, probe.cache(), "probe: %s", probe.body)
+	s = r.breakerState()
+	assert.Equal(t, float64(0), s, "after a good probe: state %v, want 0 (closed)", s)
+	got := r.complete(greedy("after closing"))
+	assert.Equal(t, http.StatusOK, got.status, "after closing: %d", got.status)
 }
 
 func TestRetriesHonourRetryAfter(t *testing.T) {
@@ -228,18 +214,12 @@ func TestRetriesHonourRetryAfter(t *testing.T) {
 			})
 			r.up.FailNext(2, upstreamtest.Fault{Status: tt.status, RetryAfter: tt.retryAfter})
 			got := r.complete(greedy("patience"))
-			if got.status != http.StatusOK {
-				t.Fatalf("status %d, want 200 after two retries: %s", got.status, got.body)
-			}
-			if n := r.upstreamGenerations(); n != 3 {
-				t.Errorf("upstream calls %d, want 3", n)
-			}
-			if w := sl.waits(); !slices.Equal(w, []time.Duration{tt.wait, tt.wait}) {
-				t.Errorf("waits %v, want the Retry-After %v twice", w, tt.wait)
-			}
-			if n := r.metric("stint_upstream_retries_total", "upstream", "fake", "reason", strconv.Itoa(tt.status)); n != 2 {
-				t.Errorf("retries metric %v, want 2", n)
-			}
+			require.Equal(t, http.StatusOK, got.status, "status %d, want 200 after two retries: %s", got.status, got.body)
+			n := r.upstreamGenerations()
+			assert.Equal(t, 3, n, "upstream calls %d, want 3", n)
+			w := sl.waits()
+			assert.True(t, slices.Equal(w, []time.Duration{tt.wait, tt.wait}), "waits %v, want the Retry-After %v twice", w, tt.wait)
+			assert.Equal(t, float64(2), r.metric("stint_upstream_retries_total", "upstream", "fake", "reason", strconv.Itoa(tt.status)), "retries metric")
 		})
 	}
 }
@@ -283,28 +263,19 @@ func TestRetryBackoffAndLimits(t *testing.T) {
 			r.up.FailNext(tt.failures, tt.fault)
 			body := greedy("the weir gate", "stream", tt.fault.Cut > 0)
 			got := r.complete(body)
-			if got.status != tt.status {
-				t.Fatalf("status %d, want %d: %s", got.status, tt.status, got.body)
-			}
-			if tt.fault.Cut > 0 && got.readErr == nil {
-				t.Errorf("the cut stream reached the client whole")
-			}
-			if n := r.upstreamGenerations(); n != tt.wantCalls {
-				t.Errorf("upstream calls %d, want %d", n, tt.wantCalls)
-			}
+			require.Equal(t, tt.status, got.status, "status %d, want %d: %s", got.status, tt.status, got.body)
+			assert.False(t, tt.fault.Cut > 0 && got.readErr == nil, "the cut stream reached the client whole")
+			n := r.upstreamGenerations()
+			assert.Equal(t, tt.wantCalls, n, "upstream calls %d, want %d", n, tt.wantCalls)
 			w := sl.waits()
-			if len(w) != tt.waits {
-				t.Fatalf("waits %v, want %d", w, tt.waits)
-			}
+			require.Len(t, w, tt.waits, "waits %v, want %d", w, tt.waits)
 			for n, d := range w {
 				// Full jitter: retry n waits within [0, min(cap, base·2^n)].
-				if ceil := min(p.MaxDelay, p.Base<<n); d < 0 || d > ceil {
-					t.Errorf("wait %d = %v, outside [0, %v]", n, d, ceil)
-				}
+				ceil := min(p.MaxDelay, p.Base<<n)
+				assert.GreaterOrEqual(t, d, time.Duration(0), "wait %d = %v, outside [0, %v]", n, d, ceil)
+				assert.LessOrEqual(t, d, ceil, "wait %d = %v, outside [0, %v]", n, d, ceil)
 			}
-			if tt.status == 429 && got.header.Get("Retry-After") != "9" {
-				t.Errorf("Retry-After %q, want the upstream's 9", got.header.Get("Retry-After"))
-			}
+			assert.False(t, tt.status == 429 && got.header.Get("Retry-After") != "9", "Retry-After %q, want the upstream's 9", got.header.Get("Retry-After"))
 		})
 	}
 }
@@ -336,20 +307,18 @@ func TestRetryWaitEndsWhenTheClientLeaves(t *testing.T) {
 	select {
 	case <-started:
 	case <-time.After(20 * time.Second):
-		t.Fatal("no retry wait began")
+		require.Fail(t, "no retry wait began")
 	}
 	cancel() // the client gives up during the wait
-	if err := <-done; !errors.Is(err, context.Canceled) {
-		t.Fatalf("client call: %v, want its own cancellation", err)
-	}
+	err := <-done
+	require.ErrorIs(t, err, context.Canceled, "client call: %v, want its own cancellation", err)
 	select {
 	case <-ended:
 	case <-time.After(20 * time.Second):
-		t.Fatal("the retry wait went on after the client left")
+		require.Fail(t, "the retry wait went on after the client left")
 	}
-	if n := r.upstreamGenerations(); n != 1 {
-		t.Errorf("upstream calls %d, want 1 (no retry once the client left)", n)
-	}
+	n := r.upstreamGenerations()
+	assert.Equal(t, 1, n, "upstream calls %d, want 1 (no retry once the client left)", n)
 }
 
 func TestRetriedCallsAreChargedConservatively(t *testing.T) {
@@ -371,22 +340,14 @@ func TestRetriedCallsAreChargedConservatively(t *testing.T) {
 			r2 := newRigOn(t, r.rig, withResilience(breaker.Settings{}, retry.Policy{Attempts: 2}, sl))
 			r2.up.FailNext(1, tt.fault)
 			got := r2.complete(greedy("who pays for the retry"))
-			if got.status != http.StatusOK {
-				t.Fatalf("status %d: %s", got.status, got.body)
-			}
+			require.Equal(t, http.StatusOK, got.status, "status %d: %s", got.status, got.body)
 			c := decodeCompletion(t, got.body)
 			answer := billedNanos(c.Usage.PromptTokens, c.Usage.CompletionTokens)
 			cost := headerNanos(t, got.header, proxy.HeaderCost)
 			left := headerNanos(t, got.header, proxy.HeaderBudgetLeft)
-			if cost+left != int64(budget.Nanos(1e9)) {
-				t.Errorf("cost %d + left %d != the $1 budget: the header does not show every charge", cost, left)
-			}
-			if tt.billed && cost <= answer {
-				t.Errorf("cost %d, want more than the answer's %d (the failed attempt's reservation)", cost, answer)
-			}
-			if !tt.billed && cost != answer {
-				t.Errorf("cost %d, want exactly the answer's %d", cost, answer)
-			}
+			assert.Equal(t, int64(budget.Nanos(1e9)), cost+left, "cost %d + left %d != the $1 budget: the header does not show every charge", cost, left)
+			assert.False(t, tt.billed && cost <= answer, "cost %d, want more than the answer's %d (the failed attempt's reservation)", cost, answer)
+			assert.False(t, !tt.billed && cost != answer, "cost %d, want exactly the answer's %d", cost, answer)
 		})
 	}
 }
@@ -414,23 +375,16 @@ func TestFallbackWhenTheBreakerIsOpen(t *testing.T) {
 			r.complete(greedy("first failure"))
 			r.complete(greedy("second failure"))
 			got := r.complete(greedy("sent elsewhere"))
-			if got.status != tt.want {
-				t.Fatalf("status %d, want %d: %s", got.status, tt.want, got.body)
-			}
-			if n := second.Calls().Completions; n != int(tt.fallback) {
-				t.Errorf("fallback calls %d, want %v", n, tt.fallback)
-			}
-			if n := r.upstreamGenerations(); n != 2 {
-				t.Errorf("first upstream calls %d, want 2", n)
-			}
-			if n := r.metric("stint_upstream_fallbacks_total", "from", "fake", "to", "second"); n != tt.fallback {
-				t.Errorf("fallbacks metric %v, want %v", n, tt.fallback)
-			}
+			require.Equal(t, tt.want, got.status, "status %d, want %d: %s", got.status, tt.want, got.body)
+			n := second.Calls().Completions
+			assert.Equal(t, int(tt.fallback), n, "fallback calls %d, want %v", n, tt.fallback)
+			n = r.upstreamGenerations()
+			assert.Equal(t, 2, n, "first upstream calls %d, want 2", n)
+			assert.Equal(t, tt.fallback, r.metric("stint_upstream_fallbacks_total", "from", "fake", "to", "second"), "fallbacks metric")
 			if tt.want == http.StatusOK {
 				// The fallback's answer is cached under the routed upstream.
-				if again := r.complete(greedy("sent elsewhere")); again.cache() != proxy.OutcomeHit {
-					t.Errorf("repeat: %q, want hit", again.cache())
-				}
+				again := r.complete(greedy("sent elsewhere"))
+				assert.Equal(t, proxy.OutcomeHit, again.cache(), "repeat: %q, want hit", again.cache())
 			}
 		})
 	}
@@ -448,28 +402,21 @@ func TestConcurrencyCapHolds(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 20*time.Second)
 	defer cancel()
-	if err := r.up.AwaitHeld(ctx, capN); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, r.up.AwaitHeld(ctx, capN))
 	waitFor(t, "the rest queued for a slot", func() bool {
 		return r.metric("stint_upstream_slot_waiting", "upstream", "fake") == clients-capN
 	})
-	if held := r.up.Held(); held != capN {
-		t.Fatalf("upstream holds %d calls, want %d", held, capN)
-	}
+	held := r.up.Held()
+	require.Equal(t, capN, held, "upstream holds %d calls, want %d", held, capN)
 	r.up.Release()
 	wg.Wait()
 	for i, s := range statuses {
-		if s != http.StatusOK {
-			t.Errorf("client %d: status %d", i, s)
-		}
+		assert.Equal(t, http.StatusOK, s, "client %d: status %d", i, s)
 	}
-	if m := r.up.MaxConcurrent(); m > capN {
-		t.Errorf("upstream saw %d calls at once, cap %d", m, capN)
-	}
-	if n := r.upstreamGenerations(); n != clients {
-		t.Errorf("upstream calls %d, want %d", n, clients)
-	}
+	m := r.up.MaxConcurrent()
+	assert.LessOrEqual(t, m, capN, "upstream saw %d calls at once, cap %d", m, capN)
+	n := r.upstreamGenerations()
+	assert.Equal(t, clients, n, "upstream calls %d, want %d", n, clients)
 }
 
 func TestModelsMergeAndSurviveADeadUpstream(t *testing.T) {
@@ -484,9 +431,7 @@ func TestModelsMergeAndSurviveADeadUpstream(t *testing.T) {
 	})
 	models := func() (int, []string, string) {
 		resp, err := http.Get(r.srv.URL + "/v1/models")
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		defer resp.Body.Close()
 		var list struct {
 			Data []struct {
@@ -501,21 +446,19 @@ func TestModelsMergeAndSurviveADeadUpstream(t *testing.T) {
 		return resp.StatusCode, ids, resp.Header.Get(proxy.HeaderModelsMissing)
 	}
 	code, ids, missing := models()
-	if code != 200 || !slices.Equal(ids, []string{"quill-small", "shared-model", "ledger-large"}) || missing != "" {
-		t.Fatalf("merged: %d %v missing %q", code, ids, missing)
-	}
+	require.Equal(t, 200, code, "merged: %d %v missing %q", code, ids, missing)
+	require.True(t, slices.Equal(ids, []string{"quill-small", "shared-model", "ledger-large"}), "merged: %d %v missing %q", code, ids, missing)
+	require.Equal(t, "", missing, "merged: %d %v missing %q", code, ids, missing)
 	b.Close()
 	code, ids, missing = models()
-	if code != 200 || !slices.Equal(ids, []string{"quill-small", "shared-model"}) || missing != "b" {
-		t.Errorf("with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
-	}
-	if n := r.metric("stint_upstream_model_list_errors_total", "upstream", "b"); n != 1 {
-		t.Errorf("model list errors for b = %v, want 1", n)
-	}
+	assert.Equal(t, 200, code, "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	assert.True(t, slices.Equal(ids, []string{"quill-small", "shared-model"}), "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	assert.Equal(t, "b", missing, "with b down: %d %v missing %q, want a's list and missing b", code, ids, missing)
+	n := r.metric("stint_upstream_model_list_errors_total", "upstream", "b")
+	assert.Equal(t, float64(1), n, "model list errors for b = %v, want 1", n)
 	a.Close()
-	if code, _, _ := models(); code != http.StatusBadGateway {
-		t.Errorf("every upstream down: %d, want 502", code)
-	}
+	code, _, _ = models()
+	assert.Equal(t, http.StatusBadGateway, code, "every upstream down: %d, want 502", code)
 }
 
 func TestSharedBreakerAcrossTwoProxies(t *testing.T) {
@@ -524,9 +467,7 @@ func TestSharedBreakerAcrossTwoProxies(t *testing.T) {
 	settings := breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}
 	withShared := func(o *proxy.Options) {
 		st, err := redisstate.New(srv.Client(t), redisstate.Options{Prefix: "shared-test"})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		o.BreakerStore = st
 		o.Upstreams[0].Breaker = settings
 		o.Upstreams[0].Retry = noRetries
@@ -539,18 +480,13 @@ func TestSharedBreakerAcrossTwoProxies(t *testing.T) {
 	calls := a.upstreamGenerations()
 	got := b.complete(greedy("replica B asks"))
 	assertOpenAnswer(t, got, breaker.DefaultOpenFor)
-	if a.upstreamGenerations() != calls {
-		t.Errorf("replica B called the upstream although A had tripped the shared breaker")
-	}
-	if s := b.breakerState(); s != 2 {
-		t.Errorf("B's breaker state metric %v, want 2", s)
-	}
-	if n := a.metric("stint_upstream_breaker_trips_total") + b.metric("stint_upstream_breaker_trips_total"); n != 1 {
-		t.Errorf("trips over both replicas %v, want 1", n)
-	}
-	if n := b.metric("stint_upstream_breaker_store_errors_total"); n != 0 {
-		t.Errorf("store errors %v", n)
-	}
+	assert.Equal(t, calls, a.upstreamGenerations(), "replica B called the upstream although A had tripped the shared breaker")
+	s := b.breakerState()
+	assert.Equal(t, float64(2), s, "B's breaker state metric %v, want 2", s)
+	n := a.metric("stint_upstream_breaker_trips_total") + b.metric("stint_upstream_breaker_trips_total")
+	assert.Equal(t, float64(1), n, "trips over both replicas %v, want 1", n)
+	n = b.metric("stint_upstream_breaker_store_errors_total")
+	assert.Equal(t, float64(0), n, "store errors %v", n)
 }
 
 // newRigOn builds a second proxy (a replica) in front of base's upstream
@@ -573,9 +509,7 @@ func newRigOn(t *testing.T, base *rig, opts ...rigOption) *rig {
 		fn(&o)
 	}
 	p, err := proxy.New(o)
-	if err != nil {
-		t.Fatalf("proxy.New: %v", err)
-	}
+	require.NoError(t, err, "proxy.New")
 	t.Cleanup(func() { _ = p.Close(context.Background()) })
 	srv := httptest.NewServer(p)
 	t.Cleanup(srv.Close)
@@ -587,20 +521,16 @@ func TestSharedBreakerWithRedisDownUsesLocalState(t *testing.T) {
 	srv := redistest.Start(t)
 	r := newRig(t, func(o *proxy.Options) {
 		st, err := redisstate.New(srv.Client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		o.BreakerStore = st
 		o.Upstreams[0].Breaker = breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}
 		o.Upstreams[0].Retry = noRetries
 	})
 	srv.Stop()
-	if got := r.complete(greedy("redis is away")); got.status != http.StatusOK {
-		t.Fatalf("with Redis down: %d %s, want the answer", got.status, got.body)
-	}
-	if n := r.metric("stint_upstream_breaker_store_errors_total", "upstream", "fake"); n < 1 {
-		t.Errorf("store errors %v, want at least 1", n)
-	}
+	got := r.complete(greedy("redis is away"))
+	require.Equal(t, http.StatusOK, got.status, "with Redis down: %d %s, want the answer", got.status, got.body)
+	n := r.metric("stint_upstream_breaker_store_errors_total", "upstream", "fake")
+	assert.False(t, n < 1, "store errors %v, want at least 1", n)
 	r.up.FailRatio(1, upstreamtest.Fault{Status: 500})
 	r.complete(greedy("fails once"))
 	r.complete(greedy("fails twice"))

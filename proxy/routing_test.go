@@ -5,6 +5,8 @@ import (
 	"net/http"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
@@ -98,25 +100,22 @@ func TestRoutingByModel(t *testing.T) {
 				}
 				after := calls()
 				if s.want == "" {
-					if got.status != http.StatusBadRequest || errorCode(t, got.body) != "model_not_routed" {
-						t.Errorf("%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
-					}
-				} else if got.status != http.StatusOK {
-					t.Errorf("%s (chat %v): %d %s, want 200 from %s", s.model, s.chat, got.status, got.body, s.want)
+					assert.Equal(t, http.StatusBadRequest, got.status, "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
+					assert.Equal(t, "model_not_routed", errorCode(t, got.body), "%s (chat %v): %d %s, want 400 model_not_routed", s.model, s.chat, got.status, got.body)
+				} else {
+					assert.Equal(t, http.StatusOK, got.status, "%s (chat %v): %s, want 200 from %s", s.model, s.chat, got.body, s.want)
 				}
 				for name := range ups {
 					want := 0
 					if name == s.want {
 						want = 1
 					}
-					if n := after[name] - before[name]; n != want {
-						t.Errorf("%s (chat %v): upstream %s got %d calls, want %d", s.model, s.chat, name, n, want)
-					}
+					n := after[name] - before[name]
+					assert.Equal(t, want, n, "%s (chat %v): upstream %s got %d calls, want %d", s.model, s.chat, name, n, want)
 				}
 			}
-			if n := r.upstreamGenerations(); n != 0 {
-				t.Errorf("the rig's own upstream, not configured, got %d calls", n)
-			}
+			n := r.upstreamGenerations()
+			assert.Equal(t, 0, n, "the rig's own upstream, not configured, got %d calls", n)
 		})
 	}
 }

@@ -69,9 +69,8 @@ func TestRunStorageQuota(t *testing.T) {
 	r.key = "lab-key"
 
 	// Another team's quota is its own.
-	if got := r.complete(sampled("kiln's call"), proxy.HeaderRun, "k1", "Authorization", "Bearer kiln-key"); got.status != http.StatusOK {
-		t.Errorf("another team: %d %s", got.status, got.body)
-	}
+	other := r.complete(sampled("kiln's call"), proxy.HeaderRun, "k1", "Authorization", "Bearer kiln-key")
+	assert.Equal(t, http.StatusOK, other.status, "another team: %s", other.body)
 
 	// An import that does not fit: 403.
 	archive := craftRunArchive(t, "crafted", []craftedCall{{request: canonicalCall, status: 200, ctype: "application/json", size: 40 << 10, mark: 1}})

@@ -9,6 +9,9 @@ import (
 	"sync"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget/guard"
@@ -29,14 +32,10 @@ func newRunRig(t *testing.T) *rig {
 func newBoltJournal(t *testing.T) (*bbolt.DB, *runs.BoltJournal) {
 	t.Helper()
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "runs.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	t.Cleanup(func() { _ = db.Close() })
 	j, err := runs.NewBolt(db, runs.BoltOptions{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return db, j
 }
 
@@ -94,29 +93,20 @@ func TestRunReplaysBitForBitWithoutUpstream(t *testing.T) {
 	var recorded [][]byte
 	for i, c := range script() {
 		got := c.send(r, proxy.HeaderRun, "orchard-7")
-		if got.status != http.StatusOK {
-			t.Fatalf("call %d: %d %s", i, got.status, got.body)
-		}
+		require.Equal(t, http.StatusOK, got.status, "call %d: %d %s", i, got.status, got.body)
 		recorded = append(recorded, got.body)
 	}
-	if bytes.Equal(recorded[1], recorded[2]) {
-		t.Fatal("two sampled calls gave the same answer: the test would not tell their replays apart")
-	}
+	require.False(t, bytes.Equal(recorded[1], recorded[2]), "two sampled calls gave the same answer: the test would not tell their replays apart")
 	calls := r.up.Calls()
 	for round := range 2 { // a second replay in the same session wraps around to the first answers
 		for i, c := range script() {
 			got := c.send(r, proxy.HeaderRun, "orchard-7", proxy.HeaderRunMode, "replay")
-			if got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay {
-				t.Fatalf("round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
-			}
-			if !bytes.Equal(got.body, recorded[i]) {
-				t.Errorf("round %d replay %d differs:\n got %s\nwant %s", round, i, got.body, recorded[i])
-			}
+			require.Equal(t, http.StatusOK, got.status, "round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
+			require.Equal(t, proxy.OutcomeReplay, got.cache(), "round %d replay %d: %d %q %s", round, i, got.status, got.cache(), got.body)
+			assert.True(t, bytes.Equal(got.body, recorded[i]), "round %d replay %d differs:\n got %s\nwant %s", round, i, got.body, recorded[i])
 		}
 	}
-	if r.up.Calls() != calls {
-		t.Errorf("upstream calls went from %+v to %+v during replay; want none", calls, r.up.Calls())
-	}
+	assert.True(t, r.up.Calls() == calls, "upstream calls went from %+v to %+v during replay; want none", calls, r.up.Calls())
 }
 
 // TestReplayCarriesTheRecordedCost: a replayed answer costs nothing
@@ -130,37 +120,30 @@ func TestReplayCarriesTheRecordedCost(t *testing.T) {
 	var charged, saved []int64
 	for i, body := range calls {
 		got := r.complete(body, proxy.HeaderRun, "ledger-1")
-		if got.status != http.StatusOK {
-			t.Fatalf("call %d: %d %s", i, got.status, got.body)
-		}
+		require.Equal(t, http.StatusOK, got.status, "call %d: %d %s", i, got.status, got.body)
 		charged = append(charged, headerNanos(t, got.header, proxy.HeaderCost))
 		saved = append(saved, headerNanos(t, got.header, proxy.HeaderSaved))
 	}
-	if charged[0] == 0 || charged[1] != 0 || saved[1] == 0 {
-		t.Fatalf("recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
-	}
+	require.NotEqual(t, int64(0), charged[0], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
+	require.Equal(t, int64(0), charged[1], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
+	require.NotEqual(t, int64(0), saved[1], "recorded charges %v, savings %v: want a miss that costs and a hit that does not but saves", charged, saved)
 	for i, body := range calls {
 		got := r.complete(body, proxy.HeaderRun, "ledger-1", proxy.HeaderRunMode, "replay")
-		if got.status != http.StatusOK || got.cache() != proxy.OutcomeReplay {
-			t.Fatalf("replay %d: %d %q", i, got.status, got.cache())
-		}
-		if c := headerNanos(t, got.header, proxy.HeaderCost); c != 0 {
-			t.Errorf("replay %d charged %d nanos, want 0", i, c)
-		}
-		if rec := headerNanos(t, got.header, proxy.HeaderRecordedCost); rec != charged[i] {
-			t.Errorf("replay %d: %s %d nanos, want the recorded charge %d", i, proxy.HeaderRecordedCost, rec, charged[i])
-		}
-		if rec := headerNanos(t, got.header, proxy.HeaderRecordedSaved); rec != saved[i] {
-			t.Errorf("replay %d: %s %d nanos, want the recorded saving %d", i, proxy.HeaderRecordedSaved, rec, saved[i])
-		}
+		require.Equal(t, http.StatusOK, got.status, "replay %d: %d %q", i, got.status, got.cache())
+		require.Equal(t, proxy.OutcomeReplay, got.cache(), "replay %d: %d %q", i, got.status, got.cache())
+		c := headerNanos(t, got.header, proxy.HeaderCost)
+		assert.Equal(t, int64(0), c, "replay %d charged %d nanos, want 0", i, c)
+		rec := headerNanos(t, got.header, proxy.HeaderRecordedCost)
+		assert.Equal(t, charged[i], rec, "replay %d: %s %d nanos, want the recorded charge %d", i, proxy.HeaderRecordedCost, rec, charged[i])
+		rec = headerNanos(t, got.header, proxy.HeaderRecordedSaved)
+		assert.Equal(t, saved[i], rec, "replay %d: %s %d nanos, want the recorded saving %d", i, proxy.HeaderRecordedSaved, rec, saved[i])
 	}
 }
 
 func TestReplayRefusals(t *testing.T) {
 	r := newRunRig(t)
-	if got := r.complete(greedy("the cider press starts", "max_tokens", 4), proxy.HeaderRun, "press-1"); got.status != 200 {
-		t.Fatalf("record: %d %s", got.status, got.body)
-	}
+	got := r.complete(greedy("the cider press starts", "max_tokens", 4), proxy.HeaderRun, "press-1")
+	require.Equal(t, 200, got.status, "record: %d %s", got.status, got.body)
 	calls := r.up.Calls()
 	tests := []struct {
 		name    string
@@ -187,14 +170,11 @@ func TestReplayRefusals(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			got := r.complete(tt.body, tt.headers...)
-			if got.status != tt.status || errorCode(t, got.body) != tt.code {
-				t.Errorf("%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
-			}
+			assert.Equal(t, tt.status, got.status, "%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
+			assert.Equal(t, tt.code, errorCode(t, got.body), "%d %s, want %d %s", got.status, got.body, tt.status, tt.code)
 		})
 	}
-	if r.up.Calls() != calls {
-		t.Errorf("refused replays reached the upstream: %+v → %+v", calls, r.up.Calls())
-	}
+	assert.True(t, r.up.Calls() == calls, "refused replays reached the upstream: %+v → %+v", calls, r.up.Calls())
 }
 
 // TestConcurrentRunReplays records 12 identical sampled calls at once and
@@ -218,9 +198,7 @@ func TestConcurrentRunReplays(t *testing.T) {
 		for _, i := range order {
 			wg.Go(func() {
 				got := r.complete(bodies[i], headers...)
-				if got.status != http.StatusOK {
-					t.Errorf("call %d: %d %s", i, got.status, got.body)
-				}
+				assert.Equal(t, http.StatusOK, got.status, "call %d: %d %s", i, got.status, got.body)
 				out[i] = got.body
 			})
 		}
@@ -243,17 +221,11 @@ func TestConcurrentRunReplays(t *testing.T) {
 		slices.Sort(s)
 		return s
 	}
-	if !slices.Equal(sortedStrings(rep[:same]), sortedStrings(rec[:same])) {
-		t.Error("the replayed identical calls are not the recorded answers, each once")
-	}
+	assert.True(t, slices.Equal(sortedStrings(rep[:same]), sortedStrings(rec[:same])), "the replayed identical calls are not the recorded answers, each once")
 	for i := same; i < len(bodies); i++ {
-		if !bytes.Equal(rep[i], rec[i]) {
-			t.Errorf("distinct call %d replayed another answer", i)
-		}
+		assert.True(t, bytes.Equal(rep[i], rec[i]), "distinct call %d replayed another answer", i)
 	}
-	if r.up.Calls() != calls {
-		t.Errorf("replay reached the upstream: %+v → %+v", calls, r.up.Calls())
-	}
+	assert.True(t, r.up.Calls() == calls, "replay reached the upstream: %+v → %+v", calls, r.up.Calls())
 }
 
 // TestUnrecordedAnswerIsNotAcknowledged breaks the journal (its file is
@@ -262,19 +234,13 @@ func TestConcurrentRunReplays(t *testing.T) {
 // final event.
 func TestUnrecordedAnswerIsNotAcknowledged(t *testing.T) {
 	r, db := newRunRigDB(t)
-	if err := db.Close(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, db.Close())
 	got := r.complete(greedy("the orchard ledger opens", "max_tokens", 6), proxy.HeaderRun, "broken")
-	if got.status != http.StatusServiceUnavailable || errorCode(t, got.body) != "run_journal_unavailable" {
-		t.Errorf("plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
-	}
+	assert.Equal(t, http.StatusServiceUnavailable, got.status, "plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
+	assert.Equal(t, "run_journal_unavailable", errorCode(t, got.body), "plain answer with the journal down: %d %s, want 503 run_journal_unavailable", got.status, got.body)
 	got = r.complete(greedy("the orchard ledger opens", "max_tokens", 6, "stream", true), proxy.HeaderRun, "broken")
-	if bytes.Contains(got.body, []byte("[DONE]")) {
-		t.Errorf("stream with the journal down ended normally:\n%s", got.body)
-	}
+	assert.False(t, bytes.Contains(got.body, []byte("[DONE]")), "stream with the journal down ended normally:\n%s", got.body)
 	// Without a run header the same proxy answers as usual.
-	if got := r.complete(greedy("the orchard ledger opens", "max_tokens", 6)); got.status != http.StatusOK {
-		t.Errorf("unrecorded call: %d %s", got.status, got.body)
-	}
+	got = r.complete(greedy("the orchard ledger opens", "max_tokens", 6))
+	assert.Equal(t, http.StatusOK, got.status, "unrecorded call: %d %s", got.status, got.body)
 }

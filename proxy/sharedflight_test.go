@@ -10,6 +10,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/cache"
@@ -39,9 +42,7 @@ func newSharedRigs(t *testing.T, n int, hotBytes int64) *sharedRigs {
 	sr := &sharedRigs{redis: srv}
 	for i := range n {
 		rs, err := redisstore.New(c, redisstore.Options{Prefix: "replicas", Timeout: 300 * time.Millisecond, LeaseTTL: 2 * time.Second})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		store := cache.NewHot(rs, cache.HotOptions{MaxBytes: hotBytes, MaxAge: time.Second})
 		t.Cleanup(func() { _ = store.Close() })
 		r := newRig(t, func(o *proxy.Options) {
@@ -73,16 +74,14 @@ func TestSharedStoreHitOnAnotherReplica(t *testing.T) {
 	sr := newSharedRigs(t, 2, 8<<20)
 	a, b := sr.rigs[0], sr.rigs[1]
 	first := a.complete(greedy("the ferry leaves at dawn"))
-	if first.status != http.StatusOK || first.cache() != proxy.OutcomeMiss {
-		t.Fatalf("first call on a: %d %q %s", first.status, first.cache(), first.body)
-	}
+	require.Equal(t, http.StatusOK, first.status, "first call on a: %d %q %s", first.status, first.cache(), first.body)
+	require.Equal(t, proxy.OutcomeMiss, first.cache(), "first call on a: %d %q %s", first.status, first.cache(), first.body)
 	got := b.complete(greedy("the ferry leaves at dawn"))
-	if got.status != http.StatusOK || got.cache() != proxy.OutcomeHit || string(got.body) != string(first.body) {
-		t.Errorf("same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
-	}
-	if calls := sr.up.Calls().Completions; calls != 1 {
-		t.Errorf("upstream calls = %d, want 1", calls)
-	}
+	assert.Equal(t, http.StatusOK, got.status, "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	assert.Equal(t, proxy.OutcomeHit, got.cache(), "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	assert.Equal(t, string(first.body), string(got.body), "same call on b: %d %q, same body %v; want a hit with a's answer", got.status, got.cache(), string(got.body) == string(first.body))
+	calls := sr.up.Calls().Completions
+	assert.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 }
 
 // TestSharedFlightsMakeOneCall sends identical misses to two replicas at
@@ -100,25 +99,19 @@ func TestSharedFlightsMakeOneCall(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := sr.up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, sr.up.AwaitHeld(ctx, 1))
 	waitFor(t, "19 waiting requests", func() bool { return sr.waiting() == clients-1 })
 	sr.up.Release()
 	wg.Wait()
-	if calls := sr.up.Calls().Completions; calls != 1 {
-		t.Fatalf("upstream calls = %d, want 1", calls)
-	}
+	calls := sr.up.Calls().Completions
+	require.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 	count := map[string]int{}
 	for i, g := range got {
-		if g.status != http.StatusOK || string(g.body) != string(got[0].body) {
-			t.Fatalf("client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
-		}
+		require.Equal(t, http.StatusOK, g.status, "client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
+		require.Equal(t, string(got[0].body), string(g.body), "client %d: %d %s; want 200 with the one answer", i, g.status, g.body)
 		count[g.cache()]++
 	}
-	if count[proxy.OutcomeMiss] != 1 || count[proxy.OutcomeShared] != clients-1 {
-		t.Errorf("outcomes %v, want 1 miss and %d shared", count, clients-1)
-	}
+	assert.False(t, count[proxy.OutcomeMiss] != 1 || count[proxy.OutcomeShared] != clients-1, "outcomes %v, want 1 miss and %d shared", count, clients-1)
 }
 
 // TestSharedFlightsHolderFailure: the replica holding the key gets an
@@ -134,22 +127,18 @@ func TestSharedFlightsHolderFailure(t *testing.T) {
 	go func() { ra <- a.complete(body) }()
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := sr.up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, sr.up.AwaitHeld(ctx, 1))
 	rb := make(chan response, 1)
 	go func() { rb <- b.complete(body) }()
 	waitFor(t, "b waiting on a's call", func() bool { return b.metric("stint_coalesced_remote_waiting") == 1 })
 	sr.up.Release()
-	if got := <-ra; got.status != http.StatusInternalServerError {
-		t.Errorf("a: %d %s, want the upstream's 500", got.status, got.body)
-	}
-	if got := <-rb; got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss {
-		t.Errorf("b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
-	}
-	if calls := sr.up.Calls().Completions; calls != 2 {
-		t.Errorf("upstream calls = %d, want 2 (a's failed one, b's)", calls)
-	}
+	got := <-ra
+	assert.Equal(t, http.StatusInternalServerError, got.status, "a: %d %s, want the upstream's 500", got.status, got.body)
+	got = <-rb
+	assert.Equal(t, http.StatusOK, got.status, "b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
+	assert.Equal(t, proxy.OutcomeMiss, got.cache(), "b: %d %q %s, want 200 from its own call", got.status, got.cache(), got.body)
+	calls := sr.up.Calls().Completions
+	assert.Equal(t, 2, calls, "upstream calls = %d, want 2 (a's failed one, b's)", calls)
 }
 
 // TestSharedStoreDownDegrades stops Redis under a replica (hot tier off, so
@@ -160,9 +149,9 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	noLeaks(t)
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
-	if got := r.complete(greedy("before the outage")); got.status != http.StatusOK || got.detail() != "" {
-		t.Fatalf("with Redis up: %d %q", got.status, got.detail())
-	}
+	before := r.complete(greedy("before the outage"))
+	require.Equal(t, http.StatusOK, before.status, "with Redis up: %s", before.body)
+	require.Equal(t, "", before.detail(), "with Redis up")
 	// A write still landing is served from memory, so the first answer's
 	// write must be in Redis before it stops, and each call during the
 	// outage asks for a different text.
@@ -170,25 +159,22 @@ func TestSharedStoreDownDegrades(t *testing.T) {
 	sr.redis.Stop()
 	for i, body := range []map[string]any{greedy("before the outage"), greedy("during the outage"), greedy("streamed during the outage", "stream", true)} {
 		got := completeWithin(t, r, 10*time.Second, body)
-		if got.status != http.StatusOK || got.cache() != proxy.OutcomeMiss || got.detail() != proxy.DetailStoreUnavailable {
-			t.Errorf("call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
-		}
+		assert.Equal(t, http.StatusOK, got.status, "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
+		assert.Equal(t, proxy.OutcomeMiss, got.cache(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
+		assert.Equal(t, proxy.DetailStoreUnavailable, got.detail(), "call %d with Redis down: %d %q %q %s; want 200 miss, store unavailable", i, got.status, got.cache(), got.detail(), got.body)
 	}
-	if resp, err := http.Get(r.srv.URL + "/readyz"); err != nil || resp.StatusCode != http.StatusOK {
-		t.Errorf("/readyz with the shared store down: %v %v, want 200 (the replica still answers)", resp, err)
-	} else {
+	if resp, err := http.Get(r.srv.URL + "/readyz"); assert.NoError(t, err, "/readyz with the shared store down") {
+		assert.Equal(t, http.StatusOK, resp.StatusCode, "/readyz with the shared store down: want 200 (the replica still answers)")
 		resp.Body.Close()
 	}
-	if n := r.metric("stint_store_degraded_requests_total"); n != 3 {
-		t.Errorf("degraded requests = %v, want 3", n)
-	}
+	n := r.metric("stint_store_degraded_requests_total")
+	assert.Equal(t, float64(3), n, "degraded requests = %v, want 3", n)
 	sr.redis.Restart(t)
 	waitFor(t, "a call with the store back", func() bool {
 		return r.complete(greedy("after the outage")).detail() == ""
 	})
-	if got := r.complete(greedy("after the outage")); got.cache() != proxy.OutcomeHit {
-		t.Errorf("repeat after Redis came back: %q, want a hit without a restart", got.cache())
-	}
+	got := r.complete(greedy("after the outage"))
+	assert.Equal(t, proxy.OutcomeHit, got.cache(), "repeat after Redis came back: %q, want a hit without a restart", got.cache())
 }
 
 // completeWithin posts a completions call that must be answered within d.
@@ -197,9 +183,7 @@ func completeWithin(t *testing.T, r *rig, d time.Duration, body map[string]any) 
 	raw, _ := json.Marshal(body)
 	c := &http.Client{Timeout: d}
 	resp, err := c.Post(r.srv.URL+"/v1/completions", "application/json", bytes.NewReader(raw))
-	if err != nil {
-		t.Fatalf("no answer within %v: %v", d, err)
-	}
+	require.NoError(t, err, "no answer within %v", d)
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
 	return response{status: resp.StatusCode, header: resp.Header, body: b, readErr: err}
@@ -217,27 +201,22 @@ func TestSharedFlightsAfterAStream(t *testing.T) {
 	go func() { ra <- a.complete(greedy("the barge sings as it streams", "stream", true)) }()
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := sr.up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, sr.up.AwaitHeld(ctx, 1))
 	rb := make(chan response, 1)
 	go func() { rb <- b.complete(greedy("the barge sings as it streams")) }()
 	waitFor(t, "b waiting on a's call", func() bool { return b.metric("stint_coalesced_remote_waiting") == 1 })
 	sr.up.Release()
 	gotA, gotB := <-ra, <-rb
-	if gotA.status != http.StatusOK || gotA.cache() != proxy.OutcomeMiss {
-		t.Fatalf("a's stream: %d %q", gotA.status, gotA.cache())
-	}
+	require.Equal(t, http.StatusOK, gotA.status, "a's stream: %d %q", gotA.status, gotA.cache())
+	require.Equal(t, proxy.OutcomeMiss, gotA.cache(), "a's stream: %d %q", gotA.status, gotA.cache())
 	texts, _ := streamedText(t, false, events(t, gotA.body))
-	if gotB.status != http.StatusOK || gotB.cache() != proxy.OutcomeShared {
-		t.Fatalf("b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	require.Equal(t, http.StatusOK, gotB.status, "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	require.Equal(t, proxy.OutcomeShared, gotB.cache(), "b: %d %q %s; want 200 shared", gotB.status, gotB.cache(), gotB.body)
+	if c := decodeCompletion(t, gotB.body); assert.Len(t, c.Choices, 1, "b's choices") {
+		assert.Equal(t, texts[0], c.Choices[0].Text, "b's text, want what a streamed")
 	}
-	if c := decodeCompletion(t, gotB.body); len(c.Choices) != 1 || c.Choices[0].Text != texts[0] {
-		t.Errorf("b's text %+v, a streamed %q", c.Choices, texts[0])
-	}
-	if calls := sr.up.Calls().Completions; calls != 1 {
-		t.Errorf("upstream calls = %d, want 1", calls)
-	}
+	calls := sr.up.Calls().Completions
+	assert.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 }
 
 // TestSharedStoreSlowIsBounded pauses Redis (CLIENT PAUSE: it accepts
@@ -249,12 +228,9 @@ func TestSharedStoreSlowIsBounded(t *testing.T) {
 	sr := newSharedRigs(t, 1, -1)
 	r := sr.rigs[0]
 	admin := sr.redis.Client(t)
-	if err := admin.Do(t.Context(), "CLIENT", "PAUSE", 4000, "ALL").Err(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, admin.Do(t.Context(), "CLIENT", "PAUSE", 4000, "ALL").Err())
 	defer admin.Do(context.Background(), "CLIENT", "UNPAUSE")
 	got := completeWithin(t, r, 2500*time.Millisecond, greedy("while the lock is jammed"))
-	if got.status != http.StatusOK || got.detail() != proxy.DetailStoreUnavailable {
-		t.Errorf("with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
-	}
+	assert.Equal(t, http.StatusOK, got.status, "with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
+	assert.Equal(t, proxy.DetailStoreUnavailable, got.detail(), "with Redis paused: %d %q %s; want 200 from upstream, store unavailable", got.status, got.detail(), got.body)
 }

@@ -12,6 +12,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -46,14 +49,10 @@ func newSpendRig(t *testing.T, policy guard.TeamPolicy, extra ...func(*guard.Con
 func newSpendRigWith(t *testing.T, policy guard.TeamPolicy, opt func(*proxy.Options), extra ...func(*guard.Config)) *spendRig {
 	t.Helper()
 	db, err := bbolt.Open(filepath.Join(t.TempDir(), "ledger.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	t.Cleanup(func() { _ = db.Close() })
 	ledger, err := boltledger.New(db, boltledger.Options{Update: boltgroup.New(db).Update})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	cfg := guard.Config{
 		Prices: budget.PriceTable{Models: map[string]budget.Price{model: {Input: testInputPrice, Output: testOutputPrice}}},
 		Teams:  map[string]guard.TeamPolicy{"lab": policy, "kiln": {}},
@@ -64,9 +63,7 @@ func newSpendRigWith(t *testing.T, policy guard.TeamPolicy, opt func(*proxy.Opti
 		fn(&cfg)
 	}
 	g, err := guard.New(cfg, ledger, ledger, &ratelimit.Local{}, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	r := newRig(t, withTeams(teamWithKey("lab", "lab-key"), teamWithKey("kiln", "kiln-key")), func(o *proxy.Options) {
 		o.Spend = g
 		o.AdminKeyHashes = [][sha256.Size]byte{sha256.Sum256([]byte(adminKey))}
@@ -84,9 +81,7 @@ const adminKey = "admin-key-of-the-depot"
 func usdCap(t *testing.T, usd float64) *budget.Cap {
 	t.Helper()
 	n, err := budget.FromUSD(usd)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return &budget.Cap{Limit: n, Period: budget.Total}
 }
 
@@ -99,61 +94,39 @@ func billedNanos(promptTokens, completionTokens int) int64 {
 func headerNanos(t *testing.T, h http.Header, name string) int64 {
 	t.Helper()
 	v := h.Get(name)
-	if v == "" {
-		t.Fatalf("no %s header", name)
-	}
+	require.NotEqual(t, "", v, "no %s header", name)
 	f, err := strconv.ParseFloat(v, 64)
-	if err != nil {
-		t.Fatalf("%s = %q: %v", name, v, err)
-	}
+	require.NoError(t, err, "%s = %q", name, v)
 	n, err := budget.FromUSD(f)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return int64(n)
 }
 
 func TestSpendHeadersOnMissAndHit(t *testing.T) {
 	r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
 	miss := r.complete(greedy("price of a crate of honey"))
-	if miss.status != http.StatusOK {
-		t.Fatalf("miss: %d %s", miss.status, miss.body)
-	}
+	require.Equal(t, http.StatusOK, miss.status, "miss: %d %s", miss.status, miss.body)
 	u := decodeCompletion(t, miss.body).Usage
 	want := billedNanos(u.PromptTokens, u.CompletionTokens)
-	if got := headerNanos(t, miss.header, proxy.HeaderCost); got != want {
-		t.Errorf("miss %s = %d nanos, want %d (usage %+v at the test prices)", proxy.HeaderCost, got, want, u)
-	}
-	if got := headerNanos(t, miss.header, proxy.HeaderBudgetLeft); got != int64(budget.NanosPerUSD)-want {
-		t.Errorf("budget left %d nanos, want %d", got, int64(budget.NanosPerUSD)-want)
-	}
+	got := headerNanos(t, miss.header, proxy.HeaderCost)
+	assert.Equal(t, want, got, "miss %s = %d nanos, want %d (usage %+v at the test prices)", proxy.HeaderCost, got, want, u)
+	got = headerNanos(t, miss.header, proxy.HeaderBudgetLeft)
+	assert.Equal(t, int64(budget.NanosPerUSD)-want, got, "budget left %d nanos, want %d", got, int64(budget.NanosPerUSD)-want)
 	hit := r.complete(greedy("price of a crate of honey"))
-	if hit.cache() != proxy.OutcomeHit {
-		t.Fatalf("second call: %q", hit.cache())
-	}
-	if got := headerNanos(t, hit.header, proxy.HeaderCost); got != 0 {
-		t.Errorf("hit cost %d, want 0", got)
-	}
-	if got := headerNanos(t, hit.header, proxy.HeaderSaved); got != want {
-		t.Errorf("hit saved %d, want %d (what the call costs now)", got, want)
-	}
-	if err := r.proxy.Close(context.Background()); err != nil {
-		t.Fatal(err)
-	}
+	require.Equal(t, proxy.OutcomeHit, hit.cache(), "second call: %q", hit.cache())
+	got = headerNanos(t, hit.header, proxy.HeaderCost)
+	assert.Equal(t, int64(0), got, "hit cost %d, want 0", got)
+	got = headerNanos(t, hit.header, proxy.HeaderSaved)
+	assert.Equal(t, want, got, "hit saved %d, want %d (what the call costs now)", got, want)
+	require.NoError(t, r.proxy.Close(context.Background()))
 	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if int64(b.Spent) != want || b.Held != 0 {
-		t.Errorf("ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
-	}
+	require.NoError(t, err)
+	assert.Equal(t, want, int64(b.Spent), "ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
+	assert.Equal(t, budget.Nanos(0), b.Held, "ledger spent %d held %d, want %d and 0: a hit must not touch it", b.Spent, b.Held, want)
 	rows, err := budget.Report(context.Background(), r.ledger, budget.Query{By: budget.ByTeam})
-	if err != nil || len(rows) != 1 {
-		t.Fatalf("report: %v %+v", err, rows)
-	}
-	if rows[0].Requests != 2 || rows[0].UpstreamCalls != 1 || int64(rows[0].Saved) != want {
-		t.Errorf("journal row %+v, want 2 requests, 1 upstream call, saved %d", rows[0], want)
-	}
+	require.NoError(t, err, "report: %v %+v", err, rows)
+	require.Len(t, rows, 1, "report: %v %+v", err, rows)
+	assert.False(t, rows[0].Requests != 2 || rows[0].UpstreamCalls != 1 || int64(rows[0].Saved) != want, "journal row %+v, want 2 requests, 1 upstream call, saved %d", rows[0], want)
 }
 
 func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
@@ -186,58 +159,46 @@ func TestBudgetRunsOutWithoutOverspend(t *testing.T) {
 						Code string `json:"code"`
 					} `json:"error"`
 				}
-				if json.Unmarshal(got.body, &e) != nil || e.Error.Code != "budget_exhausted" {
-					t.Errorf("402 body %s", got.body)
-				}
+				assert.NoError(t, json.Unmarshal(got.body, &e), "402 body %s", got.body)
+				assert.Equal(t, "budget_exhausted", e.Error.Code, "402 body %s", got.body)
 			default:
-				t.Errorf("status %d: %s", got.status, got.body)
+				assert.Failf(t, "unexpected status", "status %d: %s", got.status, got.body)
 			}
 		}()
 	}
 	wg.Wait()
 	limit, _ := budget.FromUSD(budgetUSD)
-	if ok == 0 || refused == 0 {
-		t.Fatalf("%d answered, %d refused: the budget should run out mid-test", ok, refused)
-	}
-	if billed > int64(limit) {
-		t.Errorf("the upstream billed %d nanos, over the %d budget", billed, limit)
-	}
-	if r.upstreamGenerations() != ok {
-		t.Errorf("upstream calls %d, answered %d: a refused call reached the upstream", r.upstreamGenerations(), ok)
-	}
+	require.NotEqual(t, 0, ok, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	require.NotEqual(t, 0, refused, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
+	assert.LessOrEqual(t, billed, int64(limit), "the upstream billed %d nanos, over the %d budget", billed, limit)
+	assert.Equal(t, ok, r.upstreamGenerations(), "upstream calls vs answered: a refused call reached the upstream")
 	b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if int64(b.Spent) != billed || cost != billed || b.Held != 0 {
-		t.Errorf("ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
-	}
+	require.NoError(t, err)
+	assert.Equal(t, billed, int64(b.Spent), "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	assert.Equal(t, billed, cost, "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
+	assert.Equal(t, budget.Nanos(0), b.Held, "ledger spent %d, headers %d, upstream billed %d, held %d: all three must agree exactly, nothing held", b.Spent, cost, billed, b.Held)
 }
 
 func TestSpendRefusals(t *testing.T) {
 	t.Run("rate limit", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{Limits: guard.Limits{RequestsPerMinute: 1}}, func(c *guard.Config) { c.MaxWait = -1 })
-		if got := r.complete(greedy("first")); got.status != http.StatusOK {
-			t.Fatalf("first: %d %s", got.status, got.body)
-		}
+		first := r.complete(greedy("first"))
+		require.Equal(t, http.StatusOK, first.status, "first: %s", first.body)
 		got := r.complete(greedy("second"))
-		if got.status != http.StatusTooManyRequests {
-			t.Fatalf("second: %d %s, want 429", got.status, got.body)
-		}
+		require.Equal(t, http.StatusTooManyRequests, got.status, "second: %d %s, want 429", got.status, got.body)
 		// RFC 9110 §10.2.3: delay-seconds, a whole number.
-		if s, err := strconv.Atoi(got.header.Get("Retry-After")); err != nil || s < 1 {
-			t.Errorf("Retry-After %q", got.header.Get("Retry-After"))
-		}
-		if hit := r.complete(greedy("first")); hit.status != http.StatusOK || hit.cache() != proxy.OutcomeHit {
-			t.Errorf("a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
-		}
+		retryAfter, raErr := strconv.Atoi(got.header.Get("Retry-After"))
+		assert.NoError(t, raErr, "Retry-After %q", got.header.Get("Retry-After"))
+		assert.GreaterOrEqual(t, retryAfter, 1, "Retry-After %q", got.header.Get("Retry-After"))
+		hit := r.complete(greedy("first"))
+		assert.Equal(t, http.StatusOK, hit.status, "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
+		assert.Equal(t, proxy.OutcomeHit, hit.cache(), "a cache hit under the rate limit: %d %q, want 200 hit (hits are not limited)", hit.status, hit.cache())
 	})
 	t.Run("unpriced model", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{})
 		got := r.complete(map[string]any{"model": "quill-large", "prompt": "x", "temperature": 0})
-		if got.status != http.StatusBadRequest || r.upstreamGenerations() != 0 {
-			t.Fatalf("unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
-		}
+		require.Equal(t, http.StatusBadRequest, got.status, "unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
+		require.Equal(t, 0, r.upstreamGenerations(), "unpriced model: %d %s, upstream calls %d", got.status, got.body, r.upstreamGenerations())
 	})
 	t.Run("bypass is settled from usage", func(t *testing.T) {
 		r := newSpendRig(t, guard.TeamPolicy{Budget: usdCap(t, 1)})
@@ -247,21 +208,18 @@ func TestSpendRefusals(t *testing.T) {
 				body["stream_options"] = map[string]any{"include_usage": false}
 			}
 			got := r.complete(body)
-			if got.status != http.StatusOK || got.cache() != proxy.OutcomeBypass {
-				t.Fatalf("stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
-			}
+			require.Equal(t, http.StatusOK, got.status, "stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
+			require.Equal(t, proxy.OutcomeBypass, got.cache(), "stream=%v: %d %q %s", stream, got.status, got.cache(), got.body)
 			if stream {
-				if _, usageChunk := streamedText(t, false, events(t, got.body)); usageChunk != nil {
-					t.Error("the client did not ask for usage but got a usage chunk")
-				}
+				_, usageChunk := streamedText(t, false, events(t, got.body))
+				assert.Nil(t, usageChunk, "the client did not ask for usage but got a usage chunk")
 			}
 		}
-		if err := r.proxy.Close(context.Background()); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, r.proxy.Close(context.Background()))
 		b, err := r.ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-		if err != nil || b.Spent <= 0 || b.Held != 0 {
-			t.Errorf("after two bypassed calls: spent %d held %d (%v)", b.Spent, b.Held, err)
+		if assert.NoError(t, err, "after two bypassed calls") {
+			assert.Greater(t, b.Spent, budget.Nanos(0), "after two bypassed calls: spent")
+			assert.Equal(t, budget.Nanos(0), b.Held, "after two bypassed calls: held")
 		}
 	})
 }

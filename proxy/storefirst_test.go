@@ -82,7 +82,7 @@ func TestStoreBeforeAnswerWaitsForTheEntry(t *testing.T) {
 			// moment to show up if it was already sent.
 			select {
 			case <-done:
-				t.Fatal("the client had its answer while its entry was still being stored")
+				require.Fail(t, "the client had its answer while its entry was still being stored")
 			case <-time.After(200 * time.Millisecond):
 			}
 			gate.open()

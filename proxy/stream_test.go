@@ -6,6 +6,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy"
 )
 
@@ -15,29 +18,19 @@ func TestStreamedMissRelaysAndIsStoredForPlainRequests(t *testing.T) {
 	streamed := greedy("the river rose overnight", "logprobs", 1, "max_tokens", 10, "stream", true)
 
 	miss := r.complete(streamed)
-	if miss.status != http.StatusOK || miss.cache() != proxy.OutcomeMiss || !strings.HasPrefix(miss.header.Get("Content-Type"), "text/event-stream") {
-		t.Fatalf("streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
-	}
+	require.Equal(t, http.StatusOK, miss.status, "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
+	require.Equal(t, proxy.OutcomeMiss, miss.cache(), "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
+	require.True(t, strings.HasPrefix(miss.header.Get("Content-Type"), "text/event-stream"), "streamed miss: %d %q %q", miss.status, miss.cache(), miss.header.Get("Content-Type"))
 	texts, usageChunk := streamedText(t, false, events(t, miss.body))
 	want := decodeCompletion(t, r.direct("/v1/completions", plain).body)
-	if texts[0] != want.Choices[0].Text {
-		t.Fatalf("streamed text %q, want %q", texts[0], want.Choices[0].Text)
-	}
-	if usageChunk != nil {
-		t.Error("client did not ask for usage but got a usage chunk")
-	}
+	require.Equal(t, want.Choices[0].Text, texts[0], "streamed text %q, want %q", texts[0], want.Choices[0].Text)
+	assert.Nil(t, usageChunk, "client did not ask for usage but got a usage chunk")
 
 	hit := r.complete(plain)
-	if hit.cache() != proxy.OutcomeHit {
-		t.Fatalf("plain request after streamed miss: cache %q, want hit", hit.cache())
-	}
+	require.Equal(t, proxy.OutcomeHit, hit.cache(), "plain request after streamed miss: cache %q, want hit", hit.cache())
 	got := decodeCompletion(t, hit.body)
-	if got.Choices[0].Text != want.Choices[0].Text || got.Usage != want.Usage || got.Choices[0].FinishReason != want.Choices[0].FinishReason {
-		t.Errorf("assembled answer %+v, want %+v", got, want)
-	}
-	if strings.Join(got.Choices[0].Logprobs.Tokens, "") != got.Choices[0].Text {
-		t.Error("assembled tokens do not join to the text")
-	}
+	assert.False(t, got.Choices[0].Text != want.Choices[0].Text || got.Usage != want.Usage || got.Choices[0].FinishReason != want.Choices[0].FinishReason, "assembled answer %+v, want %+v", got, want)
+	assert.Equal(t, got.Choices[0].Text, strings.Join(got.Choices[0].Logprobs.Tokens, ""), "assembled tokens do not join to the text")
 }
 
 func TestStreamedHitIsSynthesized(t *testing.T) {
@@ -57,17 +50,14 @@ func TestStreamedHitIsSynthesized(t *testing.T) {
 				plain = greedy("count the hives", "logprobs", 2)
 			}
 			first := r.post(path, plain)
-			if first.cache() != proxy.OutcomeMiss {
-				t.Fatalf("first: %q %s", first.cache(), first.body)
-			}
+			require.Equal(t, proxy.OutcomeMiss, first.cache(), "first: %q %s", first.cache(), first.body)
 			streamed := map[string]any{"stream": true, "stream_options": map[string]any{"include_usage": true}}
 			for k, v := range plain {
 				streamed[k] = v
 			}
 			hit := r.post(path, streamed)
-			if hit.cache() != proxy.OutcomeHit || !strings.HasPrefix(hit.header.Get("Content-Type"), "text/event-stream") {
-				t.Fatalf("streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
-			}
+			require.Equal(t, proxy.OutcomeHit, hit.cache(), "streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
+			require.True(t, strings.HasPrefix(hit.header.Get("Content-Type"), "text/event-stream"), "streamed hit: %q %q %s", hit.cache(), hit.header.Get("Content-Type"), hit.body)
 			texts, usageChunk := streamedText(t, tc.chat, events(t, hit.body))
 			var wantText string
 			var wantPrompt, wantCompletion int
@@ -78,15 +68,12 @@ func TestStreamedHitIsSynthesized(t *testing.T) {
 				a := decodeCompletion(t, first.body)
 				wantText, wantPrompt, wantCompletion = a.Choices[0].Text, a.Usage.PromptTokens, a.Usage.CompletionTokens
 			}
-			if texts[0] != wantText {
-				t.Errorf("synthesized text %q, want %q", texts[0], wantText)
+			assert.Equal(t, wantText, texts[0], "synthesized text %q, want %q", texts[0], wantText)
+			if assert.NotNil(t, usageChunk, "usage chunk %+v, want prompt %d completion %d", usageChunk, wantPrompt, wantCompletion) {
+				assert.Equal(t, wantPrompt, usageChunk.Usage.PromptTokens, "usage chunk %+v, want prompt %d completion %d", usageChunk, wantPrompt, wantCompletion)
+				assert.Equal(t, wantCompletion, usageChunk.Usage.CompletionTokens, "usage chunk %+v, want prompt %d completion %d", usageChunk, wantPrompt, wantCompletion)
 			}
-			if usageChunk == nil || usageChunk.Usage.PromptTokens != wantPrompt || usageChunk.Usage.CompletionTokens != wantCompletion {
-				t.Errorf("usage chunk %+v, want prompt %d completion %d", usageChunk, wantPrompt, wantCompletion)
-			}
-			if r.upstreamGenerations() != 1 {
-				t.Errorf("upstream calls %d, want 1", r.upstreamGenerations())
-			}
+			assert.Equal(t, 1, r.upstreamGenerations(), "upstream calls %d, want 1", r.upstreamGenerations())
 		})
 	}
 }
@@ -102,47 +89,31 @@ func TestStreamedChatMissAssembles(t *testing.T) {
 	miss := r.chat(streamed)
 	texts, _ := streamedText(t, true, events(t, miss.body))
 	hit := r.chat(body)
-	if hit.cache() != proxy.OutcomeHit {
-		t.Fatalf("cache %q, want hit", hit.cache())
-	}
+	require.Equal(t, proxy.OutcomeHit, hit.cache(), "cache %q, want hit", hit.cache())
 	got := decodeChat(t, hit.body)
 	want := decodeChat(t, r.direct("/v1/chat/completions", body).body)
-	if texts[0] != want.Choices[0].Message.Content || got.Choices[0].Message.Content != want.Choices[0].Message.Content {
-		t.Errorf("streamed %q, assembled %q, want %q", texts[0], got.Choices[0].Message.Content, want.Choices[0].Message.Content)
-	}
-	if len(got.Choices[0].Logprobs.Content) != len(want.Choices[0].Logprobs.Content) {
-		t.Errorf("assembled %d logprob entries, want %d", len(got.Choices[0].Logprobs.Content), len(want.Choices[0].Logprobs.Content))
-	}
+	assert.Equal(t, want.Choices[0].Message.Content, texts[0], "streamed text")
+	assert.Equal(t, want.Choices[0].Message.Content, got.Choices[0].Message.Content, "assembled text")
+	assert.Len(t, got.Choices[0].Logprobs.Content, len(want.Choices[0].Logprobs.Content), "assembled logprob entries")
 	gb, _ := json.Marshal(got.Choices[0].Logprobs)
 	wb, _ := json.Marshal(want.Choices[0].Logprobs)
-	if string(gb) != string(wb) {
-		t.Errorf("assembled logprobs\n%s\nwant\n%s", gb, wb)
-	}
+	assert.Equal(t, string(wb), string(gb), "assembled logprobs\n%s\nwant\n%s", gb, wb)
 }
 
 func TestStreamedBatchAllMissAndPartial(t *testing.T) {
 	r := newRig(t)
 	r.complete(greedy([]string{"one barge"}))
 	resp := r.complete(greedy([]string{"two barges", "one barge", "three barges"}, "stream", true))
-	if resp.cache() != proxy.OutcomePartial {
-		t.Fatalf("cache %q, want partial", resp.cache())
-	}
+	require.Equal(t, proxy.OutcomePartial, resp.cache(), "cache %q, want partial", resp.cache())
 	texts, _ := streamedText(t, false, events(t, resp.body))
 	for i, p := range []string{"two barges", "one barge", "three barges"} {
 		want := decodeCompletion(t, r.direct("/v1/completions", greedy(p)).body)
-		if texts[i] != want.Choices[0].Text {
-			t.Errorf("prompt %d: streamed %q, want %q", i, texts[i], want.Choices[0].Text)
-		}
+		assert.Equal(t, want.Choices[0].Text, texts[i], "prompt %d: streamed %q, want %q", i, texts[i], want.Choices[0].Text)
 	}
 	all := r.complete(greedy([]string{"four barges", "five barges"}, "stream", true))
-	if all.cache() != proxy.OutcomeMiss {
-		t.Fatalf("cache %q, want miss", all.cache())
-	}
+	require.Equal(t, proxy.OutcomeMiss, all.cache(), "cache %q, want miss", all.cache())
 	texts, _ = streamedText(t, false, events(t, all.body))
-	if len(texts) != 2 {
-		t.Fatalf("streamed %d choices, want 2", len(texts))
-	}
-	if got := r.complete(greedy([]string{"five barges"})); got.cache() != proxy.OutcomeHit {
-		t.Errorf("prompt from a streamed batch: cache %q, want hit", got.cache())
-	}
+	require.Len(t, texts, 2, "streamed %d choices, want 2", len(texts))
+	got := r.complete(greedy([]string{"five barges"}))
+	assert.Equal(t, proxy.OutcomeHit, got.cache(), "prompt from a streamed batch: cache %q, want hit", got.cache())
 }

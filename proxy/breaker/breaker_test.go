@@ -8,6 +8,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/redis/go-redis/v9"
 	"github.com/sony/gobreaker/v2"
 	"go.uber.org/goleak"
@@ -26,9 +29,7 @@ func run(t *testing.T, b *breaker.Breaker, outcomes ...breaker.Outcome) int {
 	for i, o := range outcomes {
 		p, err := b.Allow()
 		if err != nil {
-			if !errors.Is(err, breaker.ErrOpen) {
-				t.Fatalf("Allow: %v, want an OpenError", err)
-			}
+			assert.ErrorIs(t, err, breaker.ErrOpen, "Allow: %v, want an OpenError", err)
 			return i
 		}
 		p.Done(o)
@@ -66,39 +67,29 @@ func TestTripRules(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			var trips atomic.Int32
 			b, err := breaker.New("up", tt.set, nil, breaker.Hooks{OnTrip: func() { trips.Add(1) }})
-			if err != nil {
-				t.Fatal(err)
-			}
-			if got := run(t, b, tt.outcomes...); got != tt.allowed {
-				t.Errorf("allowed %d calls, want %d", got, tt.allowed)
-			}
+			require.NoError(t, err)
+			got := run(t, b, tt.outcomes...)
+			assert.Equal(t, tt.allowed, got, "allowed %d calls, want %d", got, tt.allowed)
 			wantTrips := int32(0)
 			if tt.allowed < len(tt.outcomes) {
 				wantTrips = 1
 			}
-			if trips.Load() != wantTrips {
-				t.Errorf("trips = %d, want %d", trips.Load(), wantTrips)
-			}
+			assert.Equal(t, wantTrips, trips.Load(), "trips = %d, want %d", trips.Load(), wantTrips)
 		})
 	}
 }
 
 func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
 	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 30 * time.Second}, nil, breaker.Hooks{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	t0 := time.Date(2026, 6, 1, 9, 0, 0, 0, time.UTC)
 	b.SetClock(func() time.Time { return t0 })
 	run(t, b, breaker.Failure)
 	_, err = b.Allow()
 	var oe *breaker.OpenError
-	if !errors.As(err, &oe) {
-		t.Fatalf("Allow after a trip: %v", err)
-	}
-	if want := t0.Add(30 * time.Second); !oe.Until.Equal(want) {
-		t.Errorf("Until = %v, want the trip's time plus OpenFor, %v", oe.Until, want)
-	}
+	require.True(t, errors.As(err, &oe), "Allow after a trip: %v", err)
+	want := t0.Add(30 * time.Second)
+	assert.True(t, oe.Until.Equal(want), "Until = %v, want the trip's time plus OpenFor, %v", oe.Until, want)
 	// RFC 9110 section 10.2.3: Retry-After in whole seconds, so the time
 	// left rounds up, and never below one second.
 	for _, tc := range []struct {
@@ -111,9 +102,8 @@ func TestOpenErrorSaysWhenProbesStart(t *testing.T) {
 		{30 * time.Second, time.Second},
 		{time.Minute, time.Second},
 	} {
-		if got := oe.RetryAfter(t0.Add(tc.at)); got != tc.want {
-			t.Errorf("RetryAfter(trip + %v) = %v, want %v", tc.at, got, tc.want)
-		}
+		got := oe.RetryAfter(t0.Add(tc.at))
+		assert.Equal(t, tc.want, got, "RetryAfter(trip + %v) = %v, want %v", tc.at, got, tc.want)
 	}
 }
 
@@ -128,7 +118,7 @@ func awaitState(t *testing.T, b *breaker.Breaker, want gobreaker.State) {
 		}
 		if time.Now().After(deadline) {
 			st, _ := b.State()
-			t.Fatalf("breaker stayed %v, want %v", st, want)
+			require.Failf(t, "breaker did not change state", "breaker stayed %v, want %v", st, want)
 		}
 		time.Sleep(5 * time.Millisecond)
 	}
@@ -142,22 +132,16 @@ func TestHalfOpenProbe(t *testing.T) {
 	}{{"success closes", breaker.Success, gobreaker.StateClosed}, {"failure reopens", breaker.Failure, gobreaker.StateOpen}} {
 		t.Run(tc.name, func(t *testing.T) {
 			b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 1, OpenFor: 50 * time.Millisecond}, nil, breaker.Hooks{})
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			run(t, b, breaker.Failure)
 			awaitState(t, b, gobreaker.StateHalfOpen)
 			probe, err := b.Allow()
-			if err != nil {
-				t.Fatalf("first half-open call: %v", err)
-			}
-			if _, err := b.Allow(); !errors.Is(err, breaker.ErrOpen) {
-				t.Fatalf("second call while the probe is out: %v, want refused", err)
-			}
+			require.NoError(t, err, "first half-open call")
+			_, err = b.Allow()
+			require.ErrorIs(t, err, breaker.ErrOpen, "second call while the probe is out: %v, want refused", err)
 			probe.Done(tc.probe)
-			if st, _ := b.State(); st != tc.want {
-				t.Errorf("after the probe: %v, want %v", st, tc.want)
-			}
+			st, _ := b.State()
+			assert.Equal(t, tc.want, st, "after the probe: %v, want %v", st, tc.want)
 		})
 	}
 }
@@ -186,14 +170,10 @@ func TestSharedStateAcrossReplicas(t *testing.T) {
 func testSharedStateAcrossReplicas(t *testing.T, client func(t *testing.T) redis.UniversalClient) {
 	newReplica := func(c *atomic.Int32) *breaker.Breaker {
 		st, err := redisstate.New(client(t), redisstate.Options{Prefix: "t"})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		b, err := breaker.New("shared-up", breaker.Settings{ConsecutiveFailures: 4, FailureRatio: -1, OpenFor: 1500 * time.Millisecond}, st,
-			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { t.Errorf("store error: %v", err) }})
-		if err != nil {
-			t.Fatal(err)
-		}
+			breaker.Hooks{OnTrip: func() { c.Add(1) }, OnStoreError: func(err error) { assert.Failf(t, "store error", "%v", err) }})
+		require.NoError(t, err)
 		return b
 	}
 	var tripsA, tripsB atomic.Int32
@@ -201,51 +181,37 @@ func testSharedStateAcrossReplicas(t *testing.T, client func(t *testing.T) redis
 	// Failures split between the replicas add up: A sees two, B two.
 	run(t, a, breaker.Failure, breaker.Failure)
 	run(t, b, breaker.Failure)
-	if st, _ := a.State(); st != gobreaker.StateClosed {
-		t.Fatalf("after 3 of 4 failures: %v", st)
-	}
+	st, _ := a.State()
+	require.Equal(t, gobreaker.StateClosed, st, "after 3 of 4 failures: %v", st)
 	run(t, b, breaker.Failure)
 	for name, r := range map[string]*breaker.Breaker{"A": a, "B": b} {
-		if _, err := r.Allow(); !errors.Is(err, breaker.ErrOpen) {
-			t.Errorf("replica %s after the 4th failure: %v, want open", name, err)
-		}
+		_, err := r.Allow()
+		assert.ErrorIs(t, err, breaker.ErrOpen, "replica %s after the 4th failure: %v, want open", name, err)
 	}
-	if tripsA.Load()+tripsB.Load() != 1 {
-		t.Errorf("trips A %d + B %d, want 1 in all", tripsA.Load(), tripsB.Load())
-	}
+	assert.Equal(t, int32(1), tripsA.Load()+tripsB.Load(), "trips A %d + B %d, want 1 in all", tripsA.Load(), tripsB.Load())
 	// A probe on A closes it for B too.
 	awaitState(t, b, gobreaker.StateHalfOpen)
 	p, err := a.Allow()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	p.Done(breaker.Success)
-	if st, _ := b.State(); st != gobreaker.StateClosed {
-		t.Errorf("B after A's probe succeeded: %v, want closed", st)
-	}
+	st, _ = b.State()
+	assert.Equal(t, gobreaker.StateClosed, st, "B after A's probe succeeded: %v, want closed", st)
 }
 
 func TestStoreOutageFallsBackToLocalState(t *testing.T) {
 	srv := redistest.Start(t)
 	st, err := redisstate.New(srv.Client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	var storeErrs atomic.Int32
 	b, err := breaker.New("up", breaker.Settings{ConsecutiveFailures: 2, FailureRatio: -1}, st,
 		breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	run(t, b, breaker.Success)
 	srv.Stop()
 	// Local state counts from the outage on and still trips.
-	if got := run(t, b, repeat(breaker.Failure, 5)...); got != 2 {
-		t.Errorf("allowed %d failing calls during the outage, want 2", got)
-	}
-	if storeErrs.Load() == 0 {
-		t.Error("no store error reported")
-	}
+	got := run(t, b, repeat(breaker.Failure, 5)...)
+	assert.Equal(t, 2, got, "allowed %d failing calls during the outage, want 2", got)
+	assert.NotEqual(t, int32(0), storeErrs.Load(), "no store error reported")
 }
 
 func TestSettingsValidate(t *testing.T) {
@@ -258,9 +224,8 @@ func TestSettingsValidate(t *testing.T) {
 		{Probes: -1},
 		{ConsecutiveFailures: -1, FailureRatio: -1},
 	} {
-		if _, err := breaker.New("x", s, nil, breaker.Hooks{}); err == nil {
-			t.Errorf("%+v accepted", s)
-		}
+		_, err := breaker.New("x", s, nil, breaker.Hooks{})
+		assert.Error(t, err, "%+v accepted", s)
 	}
 }
 
@@ -273,14 +238,10 @@ func TestSharedRecordsLoseNoUpdate(t *testing.T) {
 	var replicas []*breaker.Breaker
 	for range 2 {
 		st, err := redisstate.New(c, redisstate.Options{Prefix: "count"})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		b, err := breaker.New("busy-up", breaker.Settings{ConsecutiveFailures: 100000, FailureRatio: -1, Window: time.Hour}, st,
 			breaker.Hooks{OnStoreError: func(error) { storeErrs.Add(1) }})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		replicas = append(replicas, b)
 	}
 	const workers, each = 32, 10
@@ -293,18 +254,11 @@ func TestSharedRecordsLoseNoUpdate(t *testing.T) {
 		})
 	}
 	wg.Wait()
-	if n := storeErrs.Load(); n != 0 {
-		t.Fatalf("%d store errors under contention", n)
-	}
+	n := storeErrs.Load()
+	require.Equal(t, int32(0), n, "%d store errors under contention", n)
 	raw, err := c.Get(t.Context(), "count:breaker:{busy-up}:state").Bytes()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	var s gobreaker.SharedState
-	if err := json.Unmarshal(raw, &s); err != nil {
-		t.Fatal(err)
-	}
-	if s.Counts.TotalFailures != workers*each {
-		t.Errorf("shared state counts %d failures, want %d", s.Counts.TotalFailures, workers*each)
-	}
+	require.NoError(t, json.Unmarshal(raw, &s))
+	assert.Equal(t, uint32(workers*each), s.Counts.TotalFailures, "shared state counts %d failures, want %d", s.Counts.TotalFailures, workers*each)
 }

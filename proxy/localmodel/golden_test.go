@@ -4,6 +4,9 @@ import (
 	"math"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // The model's published greedy output: llama2.c doc/stories260K.md, for
@@ -19,15 +22,9 @@ func TestGoldenGreedy256(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "", "temperature": 0, "max_tokens": 256})
 	got := r.Choices[0].Text
-	if !strings.HasPrefix(got, goldenStart) {
-		t.Errorf("text starts %q, want %q", got[:min(len(got), len(goldenStart))], goldenStart)
-	}
-	if !strings.HasSuffix(got, goldenEnd) {
-		t.Errorf("text ends %q, want %q", got[max(0, len(got)-len(goldenEnd)):], goldenEnd)
-	}
-	if r.Usage.CompletionTokens != 256 || r.Usage.PromptTokens != 1 || *r.Choices[0].FinishReason != "length" {
-		t.Errorf("usage %+v finish %s; want 1 prompt (BOS), 256 completion, length", r.Usage, *r.Choices[0].FinishReason)
-	}
+	assert.True(t, strings.HasPrefix(got, goldenStart), "text starts %q, want %q", got[:min(len(got), len(goldenStart))], goldenStart)
+	assert.True(t, strings.HasSuffix(got, goldenEnd), "text ends %q, want %q", got[max(0, len(got)-len(goldenEnd)):], goldenEnd)
+	assert.False(t, r.Usage.CompletionTokens != 256 || r.Usage.PromptTokens != 1 || *r.Choices[0].FinishReason != "length", "usage %+v finish %s; want 1 prompt (BOS), 256 completion, length", r.Usage, *r.Choices[0].FinishReason)
 }
 
 // TestFirstSentence checks that the model's published first sentence comes out
@@ -35,9 +32,8 @@ func TestGoldenGreedy256(t *testing.T) {
 func TestFirstSentence(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "", "temperature": 0, "max_tokens": 20, "stop": "."})
-	if got, want := r.Choices[0].Text+".", "Once upon a time, there was a little girl named Lily."; got != want {
-		t.Errorf("got %q, want %q", got, want)
-	}
+	got, want := r.Choices[0].Text+".", "Once upon a time, there was a little girl named Lily."
+	assert.Equal(t, want, got, "got %q, want %q", got, want)
 }
 
 // TestLogprobsAreADistribution: over the full vocabulary the returned
@@ -48,13 +44,9 @@ func TestLogprobsAreADistribution(t *testing.T) {
 	srv, _ := testServer(t, m, HandlerOptions{})
 	r := complete(t, srv, map[string]any{"prompt": "Lily and Tim", "temperature": 0, "max_tokens": 6, "logprobs": m.VocabSize()})
 	lp := r.Choices[0].Logprobs
-	if len(lp.Tokens) != 6 {
-		t.Fatalf("got %d tokens, want 6", len(lp.Tokens))
-	}
+	require.Len(t, lp.Tokens, 6, "got %d tokens, want 6", len(lp.Tokens))
 	for i, top := range lp.TopLogprobs {
-		if top.Len() != m.VocabSize() {
-			t.Fatalf("token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
-		}
+		require.Equal(t, m.VocabSize(), top.Len(), "token %d: %d alternatives, want %d", i, top.Len(), m.VocabSize())
 		var sum float64
 		best, bestLP := "", math.Inf(-1)
 		for tok, v := range top.Map() {
@@ -63,11 +55,7 @@ func TestLogprobsAreADistribution(t *testing.T) {
 				best, bestLP = tok, v
 			}
 		}
-		if math.Abs(sum-1) > 1e-4 {
-			t.Errorf("token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
-		}
-		if best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i] {
-			t.Errorf("token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
-		}
+		assert.False(t, math.Abs(sum-1) > 1e-4, "token %d: probabilities sum to %v, want 1 ± 1e-4", i, sum)
+		assert.False(t, best != lp.Tokens[i] || bestLP != *lp.TokenLogprobs[i], "token %d: greedy %q (%v), top-1 %q (%v)", i, lp.Tokens[i], *lp.TokenLogprobs[i], best, bestLP)
 	}
 }

@@ -3,12 +3,14 @@ package localmodel
 import (
 	"bytes"
 	"context"
-	"errors"
 	"net/http"
 	"net/http/httptest"
 	"os"
 	"path/filepath"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // TestFetch runs the download path against a loopback server holding the
@@ -16,9 +18,7 @@ import (
 // test machines have no internet.
 func TestFetch(t *testing.T) {
 	data, err := os.ReadFile(modelPath(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	srv := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		if r.URL.Path != "/stories260K.gguf" {
 			http.NotFound(w, r)
@@ -30,30 +30,21 @@ func TestFetch(t *testing.T) {
 	dir := t.TempDir()
 	dst := filepath.Join(dir, "models", ModelFileName)
 	// The SHA-256 recorded in MODEL-SOURCE.md.
-	if err := Fetch(context.Background(), srv.Client(), srv.URL+"/stories260K.gguf", dst, ModelSHA256); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, Fetch(context.Background(), srv.Client(), srv.URL+"/stories260K.gguf", dst, ModelSHA256))
 	got, err := os.ReadFile(dst)
-	if err != nil || !bytes.Equal(got, data) {
-		t.Fatalf("downloaded file differs (%v)", err)
-	}
-	if _, err := Load(dst); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err, "downloaded file differs (%v)", err)
+	require.True(t, bytes.Equal(got, data), "downloaded file differs (%v)", err)
+	_, err = Load(dst)
+	require.NoError(t, err)
 	bad := filepath.Join(dir, "bad.gguf")
-	if err := Fetch(context.Background(), srv.Client(), srv.URL+"/stories260K.gguf", bad, "00"); !errors.Is(err, ErrChecksum) {
-		t.Errorf("wrong checksum: got %v, want ErrChecksum", err)
-	}
-	if _, err := os.Stat(bad); !errors.Is(err, os.ErrNotExist) {
-		t.Errorf("file kept after a checksum mismatch: %v", err)
-	}
-	if err := Fetch(context.Background(), srv.Client(), srv.URL+"/missing", bad, ModelSHA256); err == nil {
-		t.Error("404 gave no error")
-	}
+	err = Fetch(context.Background(), srv.Client(), srv.URL+"/stories260K.gguf", bad, "00")
+	assert.ErrorIs(t, err, ErrChecksum, "wrong checksum: got %v, want ErrChecksum", err)
+	_, err = os.Stat(bad)
+	assert.ErrorIs(t, err, os.ErrNotExist, "file kept after a checksum mismatch: %v", err)
+	err = Fetch(context.Background(), srv.Client(), srv.URL+"/missing", bad, ModelSHA256)
+	assert.Error(t, err, "404 gave no error")
 	entries, _ := os.ReadDir(filepath.Join(dir, "models"))
-	if len(entries) != 1 {
-		t.Errorf("temporary files left: %v", entries)
-	}
+	assert.Len(t, entries, 1, "temporary files left: %v", entries)
 }
 
 func TestLocate(t *testing.T) {
@@ -78,8 +69,7 @@ func TestLocate(t *testing.T) {
 	}
 	for _, tc := range tests {
 		got, err := Locate(tc.flag, env(tc.env))
-		if got != tc.want || !errors.Is(err, tc.err) {
-			t.Errorf("%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
-		}
+		assert.Equal(t, tc.want, got, "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
+		assert.ErrorIs(t, err, tc.err, "%s: got %q, %v; want %q, %v", tc.name, got, err, tc.want, tc.err)
 	}
 }

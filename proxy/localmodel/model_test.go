@@ -2,11 +2,13 @@ package localmodel
 
 import (
 	"context"
-	"errors"
 	"math"
 	"os"
 	"path/filepath"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/localmodel/gguf"
 )
@@ -16,22 +18,16 @@ func TestConfig(t *testing.T) {
 	got := loadModel(t).Config()
 	want := Config{Dim: 64, HiddenDim: 172, Layers: 5, Heads: 8, KVHeads: 4, HeadDim: 8, VocabSize: 512,
 		ContextLength: 2048, RopeBase: 10000, NormEps: float32(1e-5)}
-	if got != want {
-		t.Errorf("got %+v, want %+v", got, want)
-	}
+	assert.True(t, got == want, "got %+v, want %+v", got, want)
 }
 
 func TestLoadErrors(t *testing.T) {
 	dir := t.TempDir()
 	write := func(name string, meta []gguf.KeyValue) string {
 		b, err := gguf.Encode(meta, []gguf.F32Tensor{{Name: "x", Dims: []uint64{1}, Data: []float32{0}}})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		p := filepath.Join(dir, name)
-		if err := os.WriteFile(p, b, 0o644); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, os.WriteFile(p, b, 0o644))
 		return p
 	}
 	str := func(s string) gguf.Value { return gguf.Value{Type: gguf.TypeString, V: s} }
@@ -62,9 +58,8 @@ func TestLoadErrors(t *testing.T) {
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
-			if _, err := Load(tc.path); !errors.Is(err, tc.want) {
-				t.Errorf("got %v, want %v", err, tc.want)
-			}
+			_, err := Load(tc.path)
+			assert.ErrorIs(t, err, tc.want, "got %v, want %v", err, tc.want)
 		})
 	}
 }
@@ -77,19 +72,14 @@ func TestBatchedEqualsTokenByToken(t *testing.T) {
 	m := loadModel(t)
 	toks := benchPrompt(m, 300)
 	batch, err := m.Forward(context.Background(), toks)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	seq := m.newSequence()
 	var ws workspace
 	for i, tok := range toks {
 		hidden, logits, err := m.forward(context.Background(), &ws, []*sequence{seq}, []int{tok}, []int{0})
-		if err != nil {
-			t.Fatal(err)
-		}
-		if !sameBits(logits.Row(0), batch.Logits.Row(i)) || !sameBits(hidden.Row(0), batch.Hidden.Row(i)) {
-			t.Fatalf("position %d: token-by-token result differs from batched", i)
-		}
+		require.NoError(t, err)
+		require.True(t, sameBits(logits.Row(0), batch.Logits.Row(i)), "position %d: token-by-token result differs from batched", i)
+		require.True(t, sameBits(hidden.Row(0), batch.Hidden.Row(i)), "position %d: token-by-token result differs from batched", i)
 	}
 }
 
@@ -110,36 +100,31 @@ func sameBits(a, b []float32) bool {
 func TestForwardOutputs(t *testing.T) {
 	m := loadModel(t)
 	out, err := m.Forward(context.Background(), []int{m.tok.BOS(), 300, 400})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	head := m.OutputHead()
-	if head.Rows != m.VocabSize() || head.Cols != m.EmbeddingSize() || out.Hidden.Cols != m.EmbeddingSize() || out.Logits.Cols != m.VocabSize() {
-		t.Fatalf("shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
-	}
+	require.Equal(t, m.VocabSize(), head.Rows, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.EmbeddingSize(), head.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.EmbeddingSize(), out.Hidden.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
+	require.Equal(t, m.VocabSize(), out.Logits.Cols, "shapes: head %dx%d hidden %dx%d logits %dx%d", head.Rows, head.Cols, out.Hidden.Rows, out.Hidden.Cols, out.Logits.Rows, out.Logits.Cols)
 	for i := 0; i < out.Hidden.Rows; i++ {
 		for v := 0; v < head.Rows; v += 37 {
 			var s float64
 			for d, h := range out.Hidden.Row(i) {
 				s += float64(h) * float64(head.Row(v)[d])
 			}
-			if got := float64(out.Logits.Row(i)[v]); math.Abs(got-s) > 1e-4 {
-				t.Errorf("row %d vocab %d: logit %v, head·hidden %v", i, v, got, s)
-			}
+			got := float64(out.Logits.Row(i)[v])
+			assert.False(t, math.Abs(got-s) > 1e-4, "row %d vocab %d: logit %v, head·hidden %v", i, v, got, s)
 		}
 	}
-	if _, err := m.Forward(context.Background(), []int{1, 512}); !errors.Is(err, ErrBadToken) {
-		t.Errorf("token 512: got %v, want ErrBadToken", err)
-	}
+	_, err = m.Forward(context.Background(), []int{1, 512})
+	assert.ErrorIs(t, err, ErrBadToken, "token 512: got %v, want ErrBadToken", err)
 	ctx, cancel := context.WithCancel(context.Background())
 	cancel()
-	if _, err := m.Forward(ctx, []int{1, 2}); !errors.Is(err, context.Canceled) {
-		t.Errorf("cancelled: got %v, want context.Canceled", err)
-	}
+	_, err = m.Forward(ctx, []int{1, 2})
+	assert.ErrorIs(t, err, context.Canceled, "cancelled: got %v, want context.Canceled", err)
 	long := make([]int, m.Config().ContextLength+1)
-	if _, err := m.Forward(context.Background(), long); !errors.Is(err, ErrContextFull) {
-		t.Errorf("too long: got %v, want ErrContextFull", err)
-	}
+	_, err = m.Forward(context.Background(), long)
+	assert.ErrorIs(t, err, ErrContextFull, "too long: got %v, want ErrContextFull", err)
 }
 
 // TestPrefixCacheExact: a prompt served with a cached prefix gives the same
@@ -153,33 +138,24 @@ func TestPrefixCacheExact(t *testing.T) {
 	for i, suffix := range []string{"Tim said", "The ball was", "Tim said"} {
 		toks := append([]int{1}, m.tok.Encode(shared+suffix)...)
 		a, la, err := cached.prefill(context.Background(), &ws, toks, true, 3)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		b, lb, err := plain.prefill(context.Background(), &ws, toks, true, 3)
-		if err != nil {
-			t.Fatal(err)
-		}
-		if !sameBits(la, lb) || !sameBits(a.seq.hidden, b.seq.hidden) {
-			t.Fatalf("request %d: cached and uncached results differ", i)
-		}
+		require.NoError(t, err)
+		require.True(t, sameBits(la, lb), "request %d: cached and uncached results differ", i)
+		require.True(t, sameBits(a.seq.hidden, b.seq.hidden), "request %d: cached and uncached results differ", i)
 		for l := range a.seq.k {
-			if !sameBits(a.seq.k[l], b.seq.k[l]) || !sameBits(a.seq.v[l], b.seq.v[l]) {
-				t.Fatalf("request %d layer %d: KV differs", i, l)
-			}
+			require.True(t, sameBits(a.seq.k[l], b.seq.k[l]), "request %d layer %d: KV differs", i, l)
+			require.True(t, sameBits(a.seq.v[l], b.seq.v[l]), "request %d layer %d: KV differs", i, l)
 		}
 		for j := range a.lps {
-			if a.lps[j].lp != b.lps[j].lp {
-				t.Fatalf("request %d: prompt logprob %d differs", i, j)
-			}
+			require.Equal(t, b.lps[j].lp, a.lps[j].lp, "request %d: prompt logprob %d differs", i, j)
 		}
 		want := map[int]int{0: 0, 1: len(m.tok.Encode(shared)), 2: len(toks)}[i]
-		if i == 1 && (a.reused < want-1 || a.reused >= len(toks)) {
-			t.Errorf("request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
+		if i == 1 {
+			assert.GreaterOrEqual(t, a.reused, want-1, "request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
+			assert.Less(t, a.reused, len(toks), "request 1: reused %d positions, want about the %d-token shared prefix", a.reused, want)
 		}
-		if i != 1 && a.reused != want {
-			t.Errorf("request %d: reused %d positions, want %d", i, a.reused, want)
-		}
+		assert.False(t, i != 1 && a.reused != want, "request %d: reused %d positions, want %d", i, a.reused, want)
 	}
 }
 
@@ -189,20 +165,16 @@ func TestPrefixCacheEviction(t *testing.T) {
 	mk := func(toks ...int) *sequence { s := m.newSequence(); s.tokens = toks; return s }
 	c.add(mk(1, 2, 3, 4))
 	c.add(mk(1, 2, 3, 4, 5, 6)) // extends and replaces the first
-	if len(c.entries) != 1 || c.size != 6 {
-		t.Fatalf("after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
-	}
+	require.Len(t, c.entries, 1, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
+	require.Equal(t, 6, c.size, "after extend: %d entries, size %d; want 1, 6", len(c.entries), c.size)
 	c.add(mk(1, 2)) // covered
-	if len(c.entries) != 1 {
-		t.Fatalf("covered prefix was added")
-	}
+	require.Len(t, c.entries, 1, "covered prefix was added")
 	c.add(mk(7, 8, 9, 10, 11)) // evicts the oldest
-	if _, n := c.longest([]int{1, 2, 3}); n != 0 || c.size != 5 {
-		t.Errorf("after eviction: prefix %d size %d; want 0, 5", n, c.size)
-	}
-	if _, n := c.longest([]int{7, 8, 0}); n != 2 {
-		t.Errorf("longest: got %d, want 2", n)
-	}
+	_, n := c.longest([]int{1, 2, 3})
+	assert.Equal(t, 0, n, "after eviction: prefix %d, want 0", n)
+	assert.Equal(t, 5, c.size, "after eviction: size %d, want 5", c.size)
+	_, n = c.longest([]int{7, 8, 0})
+	assert.Equal(t, 2, n, "longest: got %d, want 2", n)
 }
 
 // TestExpf compares expf with math.Exp (float64) across its range.
@@ -210,16 +182,14 @@ func TestExpf(t *testing.T) {
 	for x := -90.0; x < 90; x += 0.01237 {
 		got, want := float64(expf(float32(x))), math.Exp(float64(float32(x)))
 		if want < 1.2e-38 || want > 3.4e38 {
-			if want < 1.2e-38 && got != 0 && math.Abs(got-want) > 1e-38 {
-				t.Fatalf("expf(%v) = %v, want about %v", x, got, want)
-			}
+			require.False(t, want < 1.2e-38 && got != 0 && math.Abs(got-want) > 1e-38, "expf(%v) = %v, want about %v", x, got, want)
 			continue
 		}
-		if rel := math.Abs(got-want) / want; rel > 4e-7 {
-			t.Fatalf("expf(%v) = %v, want %v (relative error %.2g)", x, got, want, rel)
-		}
+		rel := math.Abs(got-want) / want
+		require.False(t, rel > 4e-7, "expf(%v) = %v, want %v (relative error %.2g)", x, got, want, rel)
 	}
-	if expf(0) != 1 || expf(-100) != 0 || !math.IsInf(float64(expf(100)), 1) || !math.IsNaN(float64(expf(float32(math.NaN())))) {
-		t.Errorf("special values: %v %v %v", expf(0), expf(-100), expf(100))
-	}
+	assert.Equal(t, float32(1), expf(0), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.Equal(t, float32(0), expf(-100), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.True(t, math.IsInf(float64(expf(100)), 1), "special values: %v %v %v", expf(0), expf(-100), expf(100))
+	assert.True(t, math.IsNaN(float64(expf(float32(math.NaN())))), "special values: %v %v %v", expf(0), expf(-100), expf(100))
 }

@@ -26,27 +26,23 @@ func TestArrayPromptsAndN(t *testing.T) {
 	srv, _ := testServer(t, m, HandlerOptions{})
 	prompts := []string{"Lily saw", "Tim had a big"}
 	r := complete(t, srv, map[string]any{"prompt": prompts, "n": 2, "temperature": 0, "max_tokens": 6})
-	if len(r.Choices) != 4 {
-		t.Fatalf("got %d choices, want 4", len(r.Choices))
-	}
+	require.Len(t, r.Choices, 4, "got %d choices, want 4", len(r.Choices))
 	wantPrompt := 0
 	for pi, p := range prompts {
 		// Greedy output is the same whatever batch it ran in.
 		single := complete(t, srv, map[string]any{"prompt": p, "temperature": 0, "max_tokens": 6})
 		for j := 0; j < 2; j++ {
 			c := r.Choices[pi*2+j]
-			if c.Index != pi*2+j || c.Text != single.Choices[0].Text {
-				t.Errorf("choice %d: index %d text %q; want index %d text %q", pi*2+j, c.Index, c.Text, pi*2+j, single.Choices[0].Text)
-			}
+			assert.False(t, c.Index != pi*2+j || c.Text != single.Choices[0].Text, "choice %d: index %d text %q; want index %d text %q", pi*2+j, c.Index, c.Text, pi*2+j, single.Choices[0].Text)
 		}
 		wantPrompt += 1 + len(m.tok.Encode(p))
 	}
-	if r.Usage.PromptTokens != wantPrompt || r.Usage.CompletionTokens != 24 || r.Usage.TotalTokens != wantPrompt+24 {
-		t.Errorf("usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
-	}
-	if r.Object != "text_completion" || r.Model != DefaultName || !strings.HasPrefix(r.ID, "cmpl-") {
-		t.Errorf("envelope: %+v", r)
-	}
+	assert.Equal(t, wantPrompt, r.Usage.PromptTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, 24, r.Usage.CompletionTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, wantPrompt+24, r.Usage.TotalTokens, "usage %+v; want prompt %d, completion 24", *r.Usage, wantPrompt)
+	assert.Equal(t, "text_completion", r.Object, "envelope: %+v", r)
+	assert.Equal(t, DefaultName, r.Model, "envelope: %+v", r)
+	assert.True(t, strings.HasPrefix(r.ID, "cmpl-"), "envelope: %+v", r)
 }
 
 func TestTokenPrompt(t *testing.T) {
@@ -55,9 +51,7 @@ func TestTokenPrompt(t *testing.T) {
 	text := complete(t, srv, map[string]any{"prompt": "Once upon", "temperature": 0, "max_tokens": 4})
 	ids := complete(t, srv, map[string]any{"prompt": m.tok.Encode("Once upon"), "temperature": 0, "max_tokens": 4})
 	nested := complete(t, srv, map[string]any{"prompt": [][]int{m.tok.Encode("Once upon")}, "temperature": 0, "max_tokens": 4})
-	if ids.Choices[0].Text != text.Choices[0].Text || nested.Choices[0].Text != text.Choices[0].Text {
-		t.Errorf("token prompt gave %q / %q, text prompt %q", ids.Choices[0].Text, nested.Choices[0].Text, text.Choices[0].Text)
-	}
+	assert.False(t, ids.Choices[0].Text != text.Choices[0].Text || nested.Choices[0].Text != text.Choices[0].Text, "token prompt gave %q / %q, text prompt %q", ids.Choices[0].Text, nested.Choices[0].Text, text.Choices[0].Text)
 }
 
 // TestEchoLogprobs: echo puts the prompt first with its token logprobs (the
@@ -68,44 +62,37 @@ func TestEchoLogprobs(t *testing.T) {
 	prompt := "Once upon a time"
 	r := complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 2, "max_tokens": 3, "temperature": 0})
 	c := r.Choices[0]
-	if !strings.HasPrefix(c.Text, prompt) || len(c.Text) <= len(prompt) {
-		t.Fatalf("text %q does not start with the prompt", c.Text)
-	}
+	require.True(t, strings.HasPrefix(c.Text, prompt), "text %q does not start with the prompt", c.Text)
+	require.Greater(t, len(c.Text), len(prompt), "text %q does not start with the prompt", c.Text)
 	ptoks := m.tok.Encode(prompt)
 	lp := c.Logprobs
-	if len(lp.Tokens) != len(ptoks)+3 {
-		t.Fatalf("got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
-	}
-	if lp.TokenLogprobs[0] != nil || lp.TopLogprobs[0] != nil || lp.TextOffset[0] != 0 {
-		t.Errorf("first prompt token: logprob %v top %v offset %d; want null, null, 0", lp.TokenLogprobs[0], lp.TopLogprobs[0], lp.TextOffset[0])
-	}
+	require.Len(t, lp.Tokens, len(ptoks)+3, "got %d tokens, want %d", len(lp.Tokens), len(ptoks)+3)
+	assert.Nil(t, lp.TokenLogprobs[0], "first prompt token: logprob, want null")
+	assert.Nil(t, lp.TopLogprobs[0], "first prompt token: top_logprobs, want null")
+	assert.Equal(t, 0, lp.TextOffset[0], "first prompt token: offset")
 	out, err := m.Forward(context.Background(), append([]int{1}, ptoks...))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	for i := 1; i < len(ptoks); i++ {
 		row := out.Logits.Row(i) // position i predicts prompt token i (BOS is position 0)
 		want := float64(row[ptoks[i]]) - logSumExp(row)
-		if got := *lp.TokenLogprobs[i]; math.Abs(got-want) > 1e-9 {
-			t.Errorf("prompt token %d: logprob %v, want %v", i, got, want)
-		}
-		if lp.TopLogprobs[i].Len() != 2 {
-			t.Errorf("prompt token %d: %d alternatives, want 2", i, lp.TopLogprobs[i].Len())
-		}
+		got := *lp.TokenLogprobs[i]
+		assert.False(t, math.Abs(got-want) > 1e-9, "prompt token %d: logprob %v, want %v", i, got, want)
+		assert.Equal(t, 2, lp.TopLogprobs[i].Len(), "prompt token %d: %d alternatives, want 2", i, lp.TopLogprobs[i].Len())
 	}
 	for i := range lp.Tokens {
 		tok, off := lp.Tokens[i], lp.TextOffset[i]
 		if i == 0 {
 			tok = strings.TrimPrefix(tok, " ")
 		}
-		if !strings.HasPrefix(c.Text[off:], tok) {
-			t.Errorf("token %d %q not at offset %d of %q", i, tok, off, c.Text)
-		}
+		assert.True(t, strings.HasPrefix(c.Text[off:], tok), "token %d %q not at offset %d of %q", i, tok, off, c.Text)
 	}
 	// max_tokens 0 with echo scores the prompt without generating.
 	r = complete(t, srv, map[string]any{"prompt": prompt, "echo": true, "logprobs": 0, "max_tokens": 0})
-	if c := r.Choices[0]; c.Text != prompt || len(c.Logprobs.Tokens) != len(ptoks) || r.Usage.CompletionTokens != 0 || *c.FinishReason != "length" {
-		t.Errorf("scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	c = r.Choices[0]
+	assert.Equal(t, prompt, c.Text, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+	if assert.Len(t, c.Logprobs.Tokens, len(ptoks), "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage) {
+		assert.Equal(t, 0, r.Usage.CompletionTokens, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
+		assert.Equal(t, "length", *c.FinishReason, "scoring: text %q, %d tokens, usage %+v", c.Text, len(c.Logprobs.Tokens), *r.Usage)
 	}
 }
 
@@ -114,33 +101,28 @@ func TestStop(t *testing.T) {
 	body := map[string]any{"prompt": "", "temperature": 0, "max_tokens": 40, "stop": []string{"girl", "zebra"}, "logprobs": 0}
 	r := complete(t, srv, body)
 	c := r.Choices[0]
-	if want := "Once upon a time, there was a little "; c.Text != want || *c.FinishReason != "stop" {
-		t.Errorf("got %q (%s), want %q (stop)", c.Text, *c.FinishReason, want)
-	}
+	want := "Once upon a time, there was a little "
+	assert.False(t, c.Text != want || *c.FinishReason != "stop", "got %q (%s), want %q (stop)", c.Text, *c.FinishReason, want)
 	// Logprobs cover the tokens whose text starts before the cut (the
 	// last one, " g", straddles it).
 	lp := c.Logprobs
-	if got := strings.TrimPrefix(strings.Join(lp.Tokens, ""), " "); !strings.HasPrefix(got, c.Text) || lp.TextOffset[len(lp.TextOffset)-1] >= len(c.Text) {
-		t.Errorf("tokens %q offsets %v do not end at the cut of %q", got, lp.TextOffset, c.Text)
-	}
+	joined := strings.TrimPrefix(strings.Join(lp.Tokens, ""), " ")
+	assert.True(t, strings.HasPrefix(joined, c.Text), "tokens %q do not start with the text %q", joined, c.Text)
+	assert.Less(t, lp.TextOffset[len(lp.TextOffset)-1], len(c.Text), "offsets %v do not end at the cut of %q", lp.TextOffset, c.Text)
 	body["stream"] = true
 	events, _ := stream(t, srv.URL+"/v1/completions", body)
-	if got := joinCompletionStream(t, events); got != c.Text {
-		t.Errorf("stream text %q, want %q", got, c.Text)
-	}
+	got := joinCompletionStream(t, events)
+	assert.Equal(t, c.Text, got, "stream text %q, want %q", got, c.Text)
 }
 
 func joinCompletionStream(tb testing.TB, events []string) string {
 	tb.Helper()
-	if len(events) == 0 || events[len(events)-1] != "[DONE]" {
-		tb.Fatalf("stream does not end with [DONE]: %q", events)
-	}
+	require.NotEqual(tb, 0, len(events), "stream does not end with [DONE]: %q", events)
+	require.Equal(tb, "[DONE]", events[len(events)-1], "stream does not end with [DONE]: %q", events)
 	var b strings.Builder
 	for _, e := range events[:len(events)-1] {
 		var c wire.CompletionResponse
-		if err := json.Unmarshal([]byte(e), &c); err != nil {
-			tb.Fatalf("event %q: %v", e, err)
-		}
+		require.NoError(tb, json.Unmarshal([]byte(e), &c), "event %q", e)
 		for _, ch := range c.Choices {
 			b.WriteString(ch.Text)
 		}
@@ -159,18 +141,12 @@ func TestSeededSampling(t *testing.T) {
 		return out
 	}
 	a, b, other := texts(42, 1), texts(42, 1), texts(43, 1)
-	if strings.Join(a, "|") != strings.Join(b, "|") {
-		t.Errorf("same seed gave %q and %q", a, b)
-	}
-	if strings.Join(a, "|") == strings.Join(other, "|") || a[0] == a[1] {
-		t.Errorf("seeds 42 and 43 (or two choices) gave the same samples: %q %q", a, other)
-	}
+	assert.Equal(t, strings.Join(b, "|"), strings.Join(a, "|"), "same seed gave %q and %q", a, b)
+	assert.False(t, strings.Join(a, "|") == strings.Join(other, "|") || a[0] == a[1], "seeds 42 and 43 (or two choices) gave the same samples: %q %q", a, other)
 	// A nucleus this small holds only the top token: sampling is greedy.
 	greedy := complete(t, srv, map[string]any{"prompt": "Tim", "temperature": 0, "max_tokens": 20}).Choices[0].Text
 	for _, s := range texts(7, 1e-9) {
-		if s != greedy {
-			t.Errorf("top_p 1e-9 gave %q, want greedy %q", s, greedy)
-		}
+		assert.Equal(t, greedy, s, "top_p 1e-9 gave %q, want greedy %q", s, greedy)
 	}
 }
 
@@ -318,9 +294,8 @@ func TestContextTooLong(t *testing.T) {
 		ids[i] = 300
 	}
 	status, out, hdr := post(t, srv.URL+"/v1/completions", map[string]any{"prompt": ids})
-	if status != 400 || !strings.Contains(string(out), "context_length_exceeded") {
-		t.Errorf("status %d body %s", status, out)
-	}
+	assert.Equal(t, 400, status, "status %d body %s", status, out)
+	assert.Contains(t, string(out), "context_length_exceeded", "status %d body %s", status, out)
 	checkErrorBody(t, out, hdr)
 }
 
@@ -338,17 +313,19 @@ func checkErrorBody(tb testing.TB, out []byte, hdr http.Header) {
 func TestUnknownFieldsAndModels(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{Name: "story-box"})
 	r := complete(t, srv, `{"prompt": "a", "max_tokens": 1, "frobnicate": {"x": [1, 2]}, "user": "u1"}`)
-	if len(r.Choices) != 1 || r.Model != "story-box" {
-		t.Errorf("got %+v", r)
+	if assert.Len(t, r.Choices, 1, "got %+v", r) {
+		assert.Equal(t, "story-box", r.Model, "got %+v", r)
 	}
 	resp, err := http.Get(srv.URL + "/v1/models")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	var l wire.ModelList
-	if err := json.NewDecoder(resp.Body).Decode(&l); err != nil || len(l.Data) != 1 || l.Data[0].ID != "story-box" || l.Object != "list" {
-		t.Errorf("models: %+v %v", l, err)
+	err = json.NewDecoder(resp.Body).Decode(&l)
+	if assert.NoError(t, err, "models: %+v %v", l, err) {
+		if assert.Len(t, l.Data, 1, "models: %+v %v", l, err) {
+			assert.Equal(t, "story-box", l.Data[0].ID, "models: %+v %v", l, err)
+			assert.Equal(t, "list", l.Object, "models: %+v %v", l, err)
+		}
 	}
 }
 
@@ -380,9 +357,7 @@ func TestCancellationStopsGeneration(t *testing.T) {
 	h.ServeHTTP(w, req)
 	// Generation checks the context before every token, so after the
 	// first event at most one more token's event (and an error) follow.
-	if w.writes > 3 {
-		t.Errorf("%d events written after cancellation, want at most 3", w.writes)
-	}
+	assert.LessOrEqual(t, w.writes, 3, "%d events written after cancellation, want at most 3", w.writes)
 }
 
 // blockingWriter blocks its first Write until release is closed.
@@ -428,12 +403,9 @@ func TestWorkerPoolBound(t *testing.T) {
 	close(a.release)
 	<-doneA
 	<-doneB
-	if recB.Code != http.StatusOK || h.maxActive.Load() != 1 {
-		t.Errorf("B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
-	}
-	if !strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n") {
-		t.Errorf("A's stream did not finish: %q", a.buf.String())
-	}
+	assert.Equal(t, http.StatusOK, recB.Code, "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	assert.Equal(t, int64(1), h.maxActive.Load(), "B status %d, peak active %d; want 200, 1", recB.Code, h.maxActive.Load())
+	assert.True(t, strings.HasSuffix(a.buf.String(), "data: [DONE]\n\n"), "A's stream did not finish: %q", a.buf.String())
 	// A waiting request whose context ends gives up.
 	h.waitHook = nil
 	ctx, cancel := context.WithCancel(context.Background())
@@ -442,9 +414,7 @@ func TestWorkerPoolBound(t *testing.T) {
 	rec := httptest.NewRecorder()
 	h.ServeHTTP(rec, httptest.NewRequestWithContext(ctx, http.MethodPost, "/v1/completions", strings.NewReader(`{"prompt": "c"}`)))
 	<-h.slots
-	if rec.Code != http.StatusServiceUnavailable {
-		t.Errorf("cancelled while waiting: status %d, want 503", rec.Code)
-	}
+	assert.Equal(t, http.StatusServiceUnavailable, rec.Code, "cancelled while waiting: status %d, want 503", rec.Code)
 }
 
 // TestConcurrentGreedy: concurrent identical greedy requests (sharing the
@@ -464,9 +434,7 @@ func TestConcurrentGreedy(t *testing.T) {
 	}
 	wg.Wait()
 	for i, g := range got {
-		if g != want {
-			t.Errorf("request %d: %q, want %q", i, g, want)
-		}
+		assert.Equal(t, want, g, "request %d: %q, want %q", i, g, want)
 	}
 }
 
@@ -480,11 +448,11 @@ func TestOpenAIClient(t *testing.T) {
 	ctx := context.Background()
 	seed := 3
 	cr, err := client.CreateCompletion(ctx, openai.CompletionRequest{Model: DefaultName, Prompt: []string{"Lily", "Tim"}, MaxTokens: 5, Seed: &seed, LogProbs: 2})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(cr.Choices) != 2 || len(cr.Choices[1].LogProbs.Tokens) != 5 || cr.Usage.CompletionTokens != 10 {
-		t.Errorf("completion: %+v", cr)
+	require.NoError(t, err)
+	if assert.Len(t, cr.Choices, 2, "completion: %+v", cr) {
+		if assert.Len(t, cr.Choices[1].LogProbs.Tokens, 5, "completion: %+v", cr) {
+			assert.Equal(t, 10, cr.Usage.CompletionTokens, "completion: %+v", cr)
+		}
 	}
 	st, err := client.CreateChatCompletionStream(ctx, openai.ChatCompletionRequest{
 		//lint:ignore SA1019 max_tokens is the field of the wire format stint serves; the SDK sends it through MaxTokens
@@ -492,9 +460,7 @@ func TestOpenAIClient(t *testing.T) {
 		Messages:      []openai.ChatCompletionMessage{{Role: openai.ChatMessageRoleUser, Content: "Hello"}},
 		StreamOptions: &openai.StreamOptions{IncludeUsage: true},
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer st.Close()
 	var text string
 	var u *openai.Usage
@@ -503,9 +469,7 @@ func TestOpenAIClient(t *testing.T) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		for _, c := range resp.Choices {
 			text += c.Delta.Content
 		}
@@ -513,8 +477,9 @@ func TestOpenAIClient(t *testing.T) {
 			u = resp.Usage
 		}
 	}
-	if text == "" || u == nil || u.CompletionTokens != 6 {
-		t.Errorf("chat stream: text %q usage %+v", text, u)
+	assert.NotEqual(t, "", text, "chat stream: text %q usage %+v", text, u)
+	if assert.NotNil(t, u, "chat stream: text %q usage %+v", text, u) {
+		assert.Equal(t, 6, u.CompletionTokens, "chat stream: text %q usage %+v", text, u)
 	}
 }
 
@@ -523,23 +488,18 @@ func TestOpenAIClient(t *testing.T) {
 func TestHealthzLikeTheProxy(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{})
 	resp, err := http.Get(srv.URL + "/healthz")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	b, _ := io.ReadAll(resp.Body)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusOK || string(b) != "ok\n" || resp.Header.Get("Content-Type") != "text/plain; charset=utf-8" {
-		t.Errorf("GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
-	}
+	assert.Equal(t, http.StatusOK, resp.StatusCode, "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	assert.Equal(t, "ok\n", string(b), "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
+	assert.Equal(t, "text/plain; charset=utf-8", resp.Header.Get("Content-Type"), "GET /healthz: %d %q %q, want 200 \"ok\\n\" text/plain", resp.StatusCode, b, resp.Header.Get("Content-Type"))
 	resp, err = http.Post(srv.URL+"/healthz", "text/plain", nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	b, _ = io.ReadAll(resp.Body)
 	resp.Body.Close()
-	if resp.StatusCode != http.StatusMethodNotAllowed || resp.Header.Get("Allow") != "GET, HEAD" {
-		t.Errorf("POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
-	}
+	assert.Equal(t, http.StatusMethodNotAllowed, resp.StatusCode, "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
+	assert.Equal(t, "GET, HEAD", resp.Header.Get("Allow"), "POST /healthz: %d Allow %q", resp.StatusCode, resp.Header.Get("Allow"))
 	checkErrorBody(t, b, resp.Header)
 }
 

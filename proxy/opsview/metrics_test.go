@@ -4,6 +4,9 @@ import (
 	"math"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 	dto "github.com/prometheus/client_model/go"
 )
@@ -17,9 +20,7 @@ func histogramOf(t *testing.T, buckets []float64, xs ...float64) *dto.Histogram 
 		h.Observe(x)
 	}
 	var m dto.Metric
-	if err := h.Write(&m); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, h.Write(&m))
 	return m.GetHistogram()
 }
 
@@ -47,16 +48,14 @@ func TestQuantileFollowsHistogramQuantile(t *testing.T) {
 			var h histogram
 			h.add(histogramOf(t, buckets, tt.xs...))
 			got := h.quantile(tt.q)
-			if got == nil || math.Abs(*got-tt.want) > 1e-12 {
-				t.Errorf("quantile(%v) = %v, want %v", tt.q, got, tt.want)
+			if assert.NotNil(t, got, "quantile(%v) = %v, want %v", tt.q, got, tt.want) {
+				assert.False(t, math.Abs(*got-tt.want) > 1e-12, "quantile(%v) = %v, want %v", tt.q, got, tt.want)
 			}
 		})
 	}
 	var empty histogram
 	empty.add(histogramOf(t, buckets))
-	if got := empty.quantile(0.5); got != nil {
-		t.Errorf("quantile of nothing = %v, want nil", *got)
-	}
+	assert.Nil(t, empty.quantile(0.5), "quantile of nothing, want nil")
 }
 
 // TestHistogramsAddAcrossEndpoints: an upstream's latency is the sum of
@@ -66,11 +65,11 @@ func TestHistogramsAddAcrossEndpoints(t *testing.T) {
 	var h histogram
 	h.add(histogramOf(t, buckets, 0.05, 0.05))
 	h.add(histogramOf(t, buckets, 0.3, 0.3))
-	if h.count != 4 || math.Abs(h.sum-0.7) > 1e-12 {
-		t.Fatalf("count %d sum %v, want 4 and 0.7", h.count, h.sum)
-	}
+	require.Equal(t, uint64(4), h.count, "count %d sum %v, want 4 and 0.7", h.count, h.sum)
+	require.False(t, math.Abs(h.sum-0.7) > 1e-12, "count %d sum %v, want 4 and 0.7", h.count, h.sum)
 	// Rank 2 of 4 is the last of the first bucket.
-	if got := h.quantile(0.5); got == nil || math.Abs(*got-0.1) > 1e-12 {
-		t.Errorf("median %v, want 0.1", got)
+	got := h.quantile(0.5)
+	if assert.NotNil(t, got, "median %v, want 0.1", got) {
+		assert.False(t, math.Abs(*got-0.1) > 1e-12, "median %v, want 0.1", got)
 	}
 }

@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/stintlab/stint/proxy/opsview"
@@ -40,9 +43,7 @@ func get(t *testing.T, srv *httptest.Server, path, auth string) (*http.Response,
 		req.Header.Set("Authorization", auth)
 	}
 	resp, err := srv.Client().Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return resp, string(b)
@@ -81,19 +82,12 @@ func TestPageNeedsAnAdminKey(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			resp, body := get(t, tt.srv, tt.path, tt.auth)
-			if resp.StatusCode != tt.want {
-				t.Fatalf("status %d (%s), want %d", resp.StatusCode, body, tt.want)
-			}
+			require.Equal(t, tt.want, resp.StatusCode, "status %d (%s), want %d", resp.StatusCode, body, tt.want)
 			ch := resp.Header.Get("WWW-Authenticate")
-			if tt.challenge != strings.HasPrefix(ch, `Basic realm="stint operator page"`) {
-				t.Errorf("WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
-			}
-			if tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys") {
-				t.Errorf("403 body %q does not say how to turn the page on", body)
-			}
-			if resp.Header.Get("Cache-Control") != "no-store" || !strings.Contains(resp.Header.Get("Content-Security-Policy"), "default-src 'none'") {
-				t.Errorf("headers %v: want no-store and a strict content security policy", resp.Header)
-			}
+			assert.Equal(t, strings.HasPrefix(ch, `Basic realm="stint operator page"`), tt.challenge, "WWW-Authenticate %q, challenge wanted: %v", ch, tt.challenge)
+			assert.False(t, tt.want == http.StatusForbidden && !strings.Contains(body, "admin.keys"), "403 body %q does not say how to turn the page on", body)
+			assert.Equal(t, "no-store", resp.Header.Get("Cache-Control"), "headers %v: want no-store and a strict content security policy", resp.Header)
+			assert.Contains(t, resp.Header.Get("Content-Security-Policy"), "default-src 'none'", "headers %v: want no-store and a strict content security policy", resp.Header)
 		})
 	}
 }
@@ -104,33 +98,27 @@ func TestAssetsAndTypes(t *testing.T) {
 	for path, want := range map[string]string{"/ui": "text/html", "/ui/snapshot.json": "application/json",
 		"/ui/static/stint.css": "text/css", "/ui/static/live.js": "javascript"} {
 		resp, body := get(t, srv, path, auth)
-		if resp.StatusCode != http.StatusOK || !strings.Contains(resp.Header.Get("Content-Type"), want) || body == "" {
-			t.Errorf("%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
-		}
+		assert.Equal(t, http.StatusOK, resp.StatusCode, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
+		assert.Contains(t, resp.Header.Get("Content-Type"), want, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
+		assert.NotEqual(t, "", body, "%s: %d %q, want 200 %s", path, resp.StatusCode, resp.Header.Get("Content-Type"), want)
 	}
 	srv.Client().CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
-	if resp, _ := get(t, srv, "/ui/", ""); resp.StatusCode != http.StatusMovedPermanently || resp.Header.Get("Location") != "/ui" {
-		t.Errorf("/ui/: %d to %q, want a redirect to /ui", resp.StatusCode, resp.Header.Get("Location"))
-	}
-	if resp, _ := get(t, srv, "/ui/static/page.html", auth); resp.StatusCode != http.StatusNotFound {
-		t.Errorf("the template is served as an asset: %d", resp.StatusCode)
-	}
+	redirect, _ := get(t, srv, "/ui/", "")
+	assert.Equal(t, http.StatusMovedPermanently, redirect.StatusCode, "/ui/: want a redirect")
+	assert.Equal(t, "/ui", redirect.Header.Get("Location"), "/ui/: want a redirect to /ui")
+	asset, _ := get(t, srv, "/ui/static/page.html", auth)
+	assert.Equal(t, http.StatusNotFound, asset.StatusCode, "the template is served as an asset")
 	resp, body := get(t, srv, "/ui/snapshot.json?since=fortnight", auth)
-	if resp.StatusCode != http.StatusBadRequest || !strings.Contains(body, "since") {
-		t.Errorf("bad since: %d %q, want 400 naming since", resp.StatusCode, body)
-	}
+	assert.Equal(t, http.StatusBadRequest, resp.StatusCode, "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
+	assert.Contains(t, body, "since", "bad since: %d %q, want 400 naming since", resp.StatusCode, body)
 }
 
 func snapshot(t *testing.T, srv *httptest.Server) (opsview.Snapshot, string) {
 	t.Helper()
 	resp, body := get(t, srv, "/ui/snapshot.json", "Bearer "+adminKey)
-	if resp.StatusCode != http.StatusOK {
-		t.Fatalf("snapshot: %d %s", resp.StatusCode, body)
-	}
+	require.Equal(t, http.StatusOK, resp.StatusCode, "snapshot: %d %s", resp.StatusCode, body)
 	var s opsview.Snapshot
-	if err := json.Unmarshal([]byte(body), &s); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal([]byte(body), &s))
 	return s, body
 }
 
@@ -149,22 +137,14 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 	srv := serve(t, withKey(opsview.Options{Gatherer: reg, Upstreams: []string{"north", "south", "east", "west"}}))
 	s, _ := snapshot(t, srv)
 	want := map[string]string{"north": "closed", "south": "half-open", "east": "open", "west": "none"}
-	if len(s.Upstreams) != len(want) {
-		t.Fatalf("upstreams %+v, want %d", s.Upstreams, len(want))
-	}
+	require.Len(t, s.Upstreams, len(want), "upstreams %+v, want %d", s.Upstreams, len(want))
 	for _, u := range s.Upstreams {
-		if u.Breaker != want[u.Name] {
-			t.Errorf("%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
-		}
-		if (u.Name == "east") != (u.Trips != nil && *u.Trips == 3) {
-			t.Errorf("%s: trips %v", u.Name, u.Trips)
-		}
+		assert.Equal(t, want[u.Name], u.Breaker, "%s: breaker %q, want %q", u.Name, u.Breaker, want[u.Name])
+		assert.Equal(t, u.Name == "east", u.Trips != nil && *u.Trips == 3, "%s: trips %v, want 3 for east alone", u.Name, u.Trips)
 	}
 	_, page := get(t, srv, "/ui", "Bearer "+adminKey)
 	for _, frag := range []string{`data-figure="breaker-east" data-value="open">open<`, `data-figure="breaker-west" data-value="none">no breaker<`, `data-figure="breaker-south" data-value="half-open"`} {
-		if !strings.Contains(page, frag) {
-			t.Errorf("page lacks %s", frag)
-		}
+		assert.Contains(t, page, frag, "page lacks %s", frag)
 	}
 }
 
@@ -172,9 +152,7 @@ func TestBreakerStateComesFromItsGauge(t *testing.T) {
 // in its address never shown.
 func TestSidecarStates(t *testing.T) {
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	down := "http://ops:sk-sidecar-secret@" + ln.Addr().String()
 	ln.Close() // nothing listens there now
 	tests := []struct {
@@ -187,17 +165,13 @@ func TestSidecarStates(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			srv := serve(t, withKey(opsview.Options{Sidecar: tt.sidecar}))
 			s, raw := snapshot(t, srv)
-			if s.Search.Reachable || (tt.sidecar != "" && s.Search.Error != "sidecar unreachable") {
-				t.Errorf("search %+v", s.Search)
-			}
+			assert.False(t, s.Search.Reachable || (tt.sidecar != "" && s.Search.Error != "sidecar unreachable"), "search %+v", s.Search)
 			_, page := get(t, srv, "/ui", "Bearer "+adminKey)
-			if !strings.Contains(page, tt.wantFigure) || !strings.Contains(page, tt.wantText) {
-				t.Errorf("page lacks %q / %q", tt.wantFigure, tt.wantText)
-			}
+			assert.Contains(t, page, tt.wantFigure, "page lacks %q / %q", tt.wantFigure, tt.wantText)
+			assert.Contains(t, page, tt.wantText, "page lacks %q / %q", tt.wantFigure, tt.wantText)
 			for _, secret := range []string{"sk-sidecar-secret", adminKey} {
-				if strings.Contains(page, secret) || strings.Contains(raw, secret) {
-					t.Errorf("%q leaked onto the page or snapshot", secret)
-				}
+				assert.NotContains(t, page, secret, "%q leaked onto the page or snapshot", secret)
+				assert.NotContains(t, raw, secret, "%q leaked onto the page or snapshot", secret)
 			}
 		})
 	}

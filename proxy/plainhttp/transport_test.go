@@ -16,6 +16,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"go.uber.org/goleak"
 )
 
@@ -104,13 +107,12 @@ func TestRoundTripReuse(t *testing.T) {
 				body := fmt.Sprintf("call %d", i)
 				status, got, err := call(t.Context(), tr, srv.URL+"/v1/completions", body)
 				want := fmt.Sprintf(`{"path":"/v1/completions","got":%q}`, body)
-				if err != nil || status != http.StatusOK || got != want {
-					t.Fatalf("call %d: %d %q %v; want 200 %q", i, status, got, err, want)
-				}
+				require.NoError(t, err, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
+				require.Equal(t, http.StatusOK, status, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
+				require.Equal(t, want, got, "call %d: %d %q %v; want 200 %q", i, status, got, err, want)
 			}
-			if n := srv.conns.Load(); n != tc.wantConns {
-				t.Errorf("server saw %d connections, want %d", n, tc.wantConns)
-			}
+			n := srv.conns.Load()
+			assert.Equal(t, tc.wantConns, n, "server saw %d connections, want %d", n, tc.wantConns)
 		})
 	}
 }
@@ -121,9 +123,8 @@ func TestServerClosedIdleConnection(t *testing.T) {
 	srv := newCountingServer(t, echo)
 	tr := New(Options{})
 	defer tr.CloseIdleConnections()
-	if _, _, err := call(t.Context(), tr, srv.URL, "first"); err != nil {
-		t.Fatal(err)
-	}
+	_, _, err := call(t.Context(), tr, srv.URL, "first")
+	require.NoError(t, err)
 	srv.CloseClientConnections()
 	waitFor(t, "the server to close its side", func() bool {
 		tr.mu.Lock()
@@ -137,12 +138,11 @@ func TestServerClosedIdleConnection(t *testing.T) {
 		}
 		return true
 	})
-	if status, _, err := call(t.Context(), tr, srv.URL, "second"); err != nil || status != http.StatusOK {
-		t.Fatalf("call after the server closed the idle connection: %d %v", status, err)
-	}
-	if n := srv.conns.Load(); n != 2 {
-		t.Errorf("server saw %d connections, want 2 (the closed one replaced)", n)
-	}
+	status, _, err := call(t.Context(), tr, srv.URL, "second")
+	require.NoError(t, err, "call after the server closed the idle connection: %d %v", status, err)
+	require.Equal(t, http.StatusOK, status, "call after the server closed the idle connection: %d %v", status, err)
+	n := srv.conns.Load()
+	assert.Equal(t, int32(2), n, "server saw %d connections, want 2 (the closed one replaced)", n)
 }
 
 // TestIdleTimeout: a connection idle longer than IdleTimeout is dropped,
@@ -155,13 +155,11 @@ func TestIdleTimeout(t *testing.T) {
 	tr.now = func() time.Time { return now }
 	for i, step := range []time.Duration{0, 30 * time.Minute, 2 * time.Hour} {
 		now = now.Add(step)
-		if _, _, err := call(t.Context(), tr, srv.URL, "x"); err != nil {
-			t.Fatalf("call %d: %v", i, err)
-		}
+		_, _, err := call(t.Context(), tr, srv.URL, "x")
+		require.NoError(t, err, "call %d", i)
 	}
-	if n := srv.conns.Load(); n != 2 {
-		t.Errorf("server saw %d connections, want 2 (reused after 30 min, replaced after 2 h)", n)
-	}
+	n := srv.conns.Load()
+	assert.Equal(t, int32(2), n, "server saw %d connections, want 2 (reused after 30 min, replaced after 2 h)", n)
 }
 
 // TestBodyDroppedEarly: a caller that closes the body before its end does
@@ -175,23 +173,18 @@ func TestBodyDroppedEarly(t *testing.T) {
 	defer tr.CloseIdleConnections()
 	req, _ := http.NewRequestWithContext(t.Context(), http.MethodGet, srv.URL, nil)
 	resp, err := tr.RoundTrip(req)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := resp.Body.Read(make([]byte, 10)); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	_, err = resp.Body.Read(make([]byte, 10))
+	require.NoError(t, err)
 	resp.Body.Close()
-	if n := tr.idleCount(); n != 0 {
-		t.Errorf("%d idle connections after an early close, want 0", n)
-	}
+	n := tr.idleCount()
+	assert.Equal(t, 0, n, "%d idle connections after an early close, want 0", n)
 	status, got, err := call(t.Context(), tr, srv.URL, "")
-	if err != nil || status != http.StatusOK || len(got) != 64<<10 {
-		t.Fatalf("next call: %d, %d bytes, %v", status, len(got), err)
-	}
-	if n := tr.idleCount(); n != 1 {
-		t.Errorf("%d idle connections after a whole answer, want 1", n)
-	}
+	require.NoError(t, err, "next call: %d, %d bytes, %v", status, len(got), err)
+	require.Equal(t, http.StatusOK, status, "next call: %d, %d bytes, %v", status, len(got), err)
+	require.Len(t, got, 64<<10, "next call: %d, %d bytes, %v", status, len(got), err)
+	n = tr.idleCount()
+	assert.Equal(t, 1, n, "%d idle connections after a whole answer, want 1", n)
 }
 
 // TestCancellation: a call whose context ends while the server is silent
@@ -227,12 +220,9 @@ func TestCancellation(t *testing.T) {
 			ctx, cancel := tc.ctx()
 			defer cancel()
 			_, _, err := call(ctx, tr, srv.URL+"/hang", "x")
-			if !errors.Is(err, tc.want) {
-				t.Fatalf("err = %v, want %v", err, tc.want)
-			}
-			if n := tr.idleCount(); n != 0 {
-				t.Errorf("%d idle connections after a cancelled call, want 0", n)
-			}
+			require.ErrorIs(t, err, tc.want, "err = %v, want %v", err, tc.want)
+			n := tr.idleCount()
+			assert.Equal(t, 0, n, "%d idle connections after a cancelled call, want 0", n)
 		})
 	}
 	once.Do(func() { close(release) })
@@ -255,21 +245,17 @@ func TestStreamArrivesAsSent(t *testing.T) {
 	defer tr.CloseIdleConnections()
 	req, _ := http.NewRequestWithContext(t.Context(), http.MethodPost, srv.URL, strings.NewReader("{}"))
 	resp, err := tr.RoundTrip(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	sc := bufio.NewScanner(resp.Body)
 	for i := range 3 {
-		if !sc.Scan() || sc.Text() != fmt.Sprintf("data: %d", i) {
-			t.Fatalf("event %d: %q %v", i, sc.Text(), sc.Err())
-		}
+		require.True(t, sc.Scan(), "event %d: %q %v", i, sc.Text(), sc.Err())
+		require.Equal(t, fmt.Sprintf("data: %d", i), sc.Text(), "event %d: %q %v", i, sc.Text(), sc.Err())
 		sc.Scan() // the blank line ending the event
 		next <- struct{}{}
 	}
-	if !sc.Scan() || sc.Text() != "data: [DONE]" {
-		t.Fatalf("last event: %q %v", sc.Text(), sc.Err())
-	}
+	require.True(t, sc.Scan(), "last event: %q %v", sc.Text(), sc.Err())
+	require.Equal(t, "data: [DONE]", sc.Text(), "last event: %q %v", sc.Text(), sc.Err())
 }
 
 // recordingTransport answers every request itself and remembers it.
@@ -301,12 +287,10 @@ func TestFallback(t *testing.T) {
 			tr := New(Options{Fallback: fb, Proxy: tc.proxy})
 			defer tr.CloseIdleConnections()
 			status, _, err := call(t.Context(), tr, tc.url, "x")
-			if err != nil {
-				t.Fatal(err)
-			}
-			if got := fb.got.Load() == 1; got != tc.wantFallback || (status == http.StatusTeapot) != tc.wantFallback {
-				t.Errorf("fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
-			}
+			require.NoError(t, err)
+			got := fb.got.Load() == 1
+			assert.Equal(t, tc.wantFallback, got, "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
+			assert.Equal(t, tc.wantFallback, (status == http.StatusTeapot), "fallback used = %v (status %d), want %v", got, status, tc.wantFallback)
 		})
 	}
 }
@@ -314,20 +298,15 @@ func TestFallback(t *testing.T) {
 // TestUnreachable: a refused connection is an error naming the call.
 func TestUnreachable(t *testing.T) {
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	addr := ln.Addr().String()
 	ln.Close()
 	tr := New(Options{})
 	_, _, err = call(t.Context(), tr, "http://"+addr+"/v1/completions", "x")
-	if err == nil || !strings.Contains(err.Error(), "/v1/completions") {
-		t.Fatalf("err = %v, want a dial error naming the URL", err)
-	}
+	require.Error(t, err, "err = %v, want a dial error naming the URL", err)
+	require.Contains(t, err.Error(), "/v1/completions", "err = %v, want a dial error naming the URL", err)
 	var op *net.OpError
-	if !errors.As(err, &op) {
-		t.Errorf("err = %v, want it to wrap the *net.OpError", err)
-	}
+	assert.True(t, errors.As(err, &op), "err = %v, want it to wrap the *net.OpError", err)
 }
 
 // TestConcurrentCalls: many goroutines share the pool without mixing up
@@ -353,11 +332,10 @@ func TestConcurrentCalls(t *testing.T) {
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Error(err)
+		assert.NoError(t, err)
 	}
-	if n := tr.idleCount(); n > 4 {
-		t.Errorf("%d idle connections kept, cap 4", n)
-	}
+	n := tr.idleCount()
+	assert.LessOrEqual(t, n, 4, "%d idle connections kept, cap 4", n)
 }
 
 // idleCount reports the connections tr holds in its pool.
@@ -375,9 +353,7 @@ func waitFor(t *testing.T, what string, cond func() bool) {
 	t.Helper()
 	deadline := time.Now().Add(10 * time.Second)
 	for !cond() {
-		if time.Now().After(deadline) {
-			t.Fatalf("timed out waiting for %s", what)
-		}
+		require.False(t, time.Now().After(deadline), "timed out waiting for %s", what)
 		time.Sleep(time.Millisecond)
 	}
 }
@@ -400,18 +376,14 @@ func TestCancelledWhileReadingBody(t *testing.T) {
 	ctx, cancel := context.WithCancel(t.Context())
 	req, _ := http.NewRequestWithContext(ctx, http.MethodGet, srv.URL, nil)
 	resp, err := tr.RoundTrip(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	buf := make([]byte, 9)
-	if _, err := io.ReadFull(resp.Body, buf); err != nil {
-		t.Fatal(err)
-	}
+	_, err = io.ReadFull(resp.Body, buf)
+	require.NoError(t, err)
 	time.AfterFunc(20*time.Millisecond, cancel)
-	if _, err := resp.Body.Read(buf); !errors.Is(err, context.Canceled) {
-		t.Fatalf("read after cancel: %v, want context.Canceled", err)
-	}
+	_, err = resp.Body.Read(buf)
+	require.ErrorIs(t, err, context.Canceled, "read after cancel: %v, want context.Canceled", err)
 }
 
 // TestNoBodyAnswerReturnsConnection: an answer without a body gives its
@@ -425,12 +397,10 @@ func TestNoBodyAnswerReturnsConnection(t *testing.T) {
 	for i := range 3 {
 		req, _ := http.NewRequestWithContext(t.Context(), http.MethodPost, srv.URL, strings.NewReader("x"))
 		resp, err := tr.RoundTrip(req)
-		if err != nil || resp.StatusCode != http.StatusNoContent {
-			t.Fatalf("call %d: %v %v", i, resp, err)
-		}
+		require.NoError(t, err, "call %d: %v %v", i, resp, err)
+		require.Equal(t, http.StatusNoContent, resp.StatusCode, "call %d: %v %v", i, resp, err)
 		resp.Body.Close()
 	}
-	if n := srv.conns.Load(); n != 1 {
-		t.Errorf("server saw %d connections, want 1", n)
-	}
+	n := srv.conns.Load()
+	assert.Equal(t, int32(1), n, "server saw %d connections, want 1", n)
 }

@@ -6,6 +6,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/retry"
 )
 
@@ -38,9 +41,8 @@ func TestRetryAfter(t *testing.T) {
 				h.Set("Retry-After", tt.header)
 			}
 			got, ok := retry.RetryAfter(h, now)
-			if got != tt.want || ok != tt.ok {
-				t.Errorf("RetryAfter(%q) = %v, %v; want %v, %v", tt.header, got, ok, tt.want, tt.ok)
-			}
+			assert.Equal(t, tt.want, got, "RetryAfter(%q) wait", tt.header)
+			assert.Equal(t, tt.ok, ok, "RetryAfter(%q) ok", tt.header)
 		})
 	}
 }
@@ -51,25 +53,21 @@ func TestBackoffStaysWithinFullJitterBounds(t *testing.T) {
 	r := rand.New(rand.NewPCG(1, 2))
 	for n, ms := range wantCeil {
 		ceil := ms * time.Millisecond
-		if got := p.Ceiling(n); got != ceil {
-			t.Fatalf("Ceiling(%d) = %v, want %v", n, got, ceil)
-		}
+		got := p.Ceiling(n)
+		require.Equal(t, ceil, got, "Ceiling(%d) = %v, want %v", n, got, ceil)
 		var lo, hi time.Duration = ceil, 0
 		for range 2000 {
 			d := p.Backoff(n, r)
-			if d < 0 || d > ceil {
-				t.Fatalf("Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
-			}
+			require.GreaterOrEqual(t, d, time.Duration(0), "Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
+			require.LessOrEqual(t, d, ceil, "Backoff(%d) = %v, outside [0, %v]", n, d, ceil)
 			lo, hi = min(lo, d), max(hi, d)
 		}
 		// Full jitter spreads over the whole range, not just near the top.
-		if lo > ceil/10 || hi < ceil*9/10 {
-			t.Errorf("retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
-		}
+		assert.LessOrEqual(t, lo, ceil/10, "retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
+		assert.GreaterOrEqual(t, hi, ceil*9/10, "retry %d: 2000 draws span [%v, %v] of [0, %v]", n, lo, hi, ceil)
 	}
-	if got := p.Ceiling(200); got != time.Second {
-		t.Errorf("Ceiling(200) = %v, want the cap (no overflow)", got)
-	}
+	got := p.Ceiling(200)
+	assert.Equal(t, time.Second, got, "Ceiling(200) = %v, want the cap (no overflow)", got)
 }
 
 func TestNextPrefersRetryAfterUpToTheCap(t *testing.T) {
@@ -77,23 +75,27 @@ func TestNextPrefersRetryAfterUpToTheCap(t *testing.T) {
 	r := rand.New(rand.NewPCG(3, 4))
 	now := time.Now()
 	h := http.Header{"Retry-After": {"7"}}
-	if d, ok := p.Next(0, h, now, r); !ok || d.Wait != 7*time.Second || !d.FromHeader {
-		t.Errorf("Retry-After 7: got %+v %v", d, ok)
+	d, ok := p.Next(0, h, now, r)
+	if assert.True(t, ok, "Retry-After 7: got %+v %v", d, ok) {
+		assert.Equal(t, 7*time.Second, d.Wait, "Retry-After 7: got %+v %v", d, ok)
+		assert.True(t, d.FromHeader, "Retry-After 7: got %+v %v", d, ok)
 	}
 	h.Set("Retry-After", "11")
-	if d, ok := p.Next(0, h, now, r); ok || d.Wait != 11*time.Second {
-		t.Errorf("Retry-After above the cap: got %+v %v, want not ok", d, ok)
+	d, ok = p.Next(0, h, now, r)
+	if assert.False(t, ok, "Retry-After above the cap: got %+v %v, want not ok", d, ok) {
+		assert.Equal(t, 11*time.Second, d.Wait, "Retry-After above the cap: got %+v %v, want not ok", d, ok)
 	}
-	if d, ok := p.Next(2, nil, now, r); !ok || d.FromHeader || d.Wait > p.Ceiling(2) {
-		t.Errorf("no header: got %+v %v", d, ok)
+	d, ok = p.Next(2, nil, now, r)
+	if assert.True(t, ok, "no header: got %+v %v", d, ok) {
+		assert.False(t, d.FromHeader, "no header: got %+v %v", d, ok)
+		assert.LessOrEqual(t, d.Wait, p.Ceiling(2), "no header: got %+v %v", d, ok)
 	}
 }
 
 func TestMaxAttempts(t *testing.T) {
 	for _, tt := range []struct{ in, want int }{{0, retry.DefaultAttempts}, {-1, 1}, {1, 1}, {5, 5}} {
-		if got := (retry.Policy{Attempts: tt.in}).MaxAttempts(); got != tt.want {
-			t.Errorf("Attempts %d: MaxAttempts = %d, want %d", tt.in, got, tt.want)
-		}
+		got := (retry.Policy{Attempts: tt.in}).MaxAttempts()
+		assert.Equal(t, tt.want, got, "Attempts %d: MaxAttempts = %d, want %d", tt.in, got, tt.want)
 	}
 }
 
@@ -119,28 +121,19 @@ func TestBudgetPaysRetriesFromCalls(t *testing.T) {
 			for b.Retry() {
 				got++
 			}
-			if got != tt.want {
-				t.Errorf("retries allowed = %d, want %d", got, tt.want)
-			}
+			assert.Equal(t, tt.want, got, "retries allowed = %d, want %d", got, tt.want)
 		})
 	}
 	// Emptied, it refills by share per call: four calls at 0.25 pay one.
 	b := retry.NewBudget(0.25, 1)
 	b.Retry()
 	for i := range 4 {
-		if b.Retry() {
-			t.Fatalf("a retry after %d calls, want one only after 4", i)
-		}
+		require.False(t, b.Retry(), "a retry after %d calls, want one only after 4", i)
 		b.Called()
 	}
-	if !b.Retry() {
-		t.Error("no retry after four calls at a share of 0.25")
-	}
+	assert.True(t, b.Retry(), "no retry after four calls at a share of 0.25")
 	var none *retry.Budget
-	if !none.Retry() {
-		t.Error("a nil Budget refused a retry")
-	}
-	if p := (retry.Policy{BudgetReserve: -1}); p.Budget() != nil {
-		t.Error("BudgetReserve -1 made a budget")
-	}
+	assert.True(t, none.Retry(), "a nil Budget refused a retry")
+	p := (retry.Policy{BudgetReserve: -1})
+	assert.Nil(t, p.Budget(), "BudgetReserve -1 made a budget")
 }

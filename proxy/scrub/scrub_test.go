@@ -167,13 +167,9 @@ func FuzzReader(f *testing.F) {
 			if err == io.EOF {
 				break
 			}
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 		}
-		if !bytes.Equal(got, want) {
-			t.Fatalf("read %q, want %q", got, want)
-		}
+		require.True(t, bytes.Equal(got, want), "read %q, want %q", got, want)
 	})
 }
 

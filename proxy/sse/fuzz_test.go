@@ -4,10 +4,11 @@ import (
 	"bytes"
 	"errors"
 	"io"
-	"reflect"
 	"strings"
 	"testing"
 	"testing/iotest"
+
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/sse"
 )
@@ -37,28 +38,20 @@ func FuzzReader(f *testing.F) {
 	f.Fuzz(func(t *testing.T, in []byte) {
 		whole, wholeErr := readAll(t, sse.NewReaderSize(bytes.NewReader(in), limit))
 		split, splitErr := readAll(t, sse.NewReaderSize(iotest.OneByteReader(bytes.NewReader(in)), limit))
-		if !reflect.DeepEqual(whole, split) {
-			t.Fatalf("events differ by read size: whole %#v, one byte at a time %#v", whole, split)
-		}
-		if !sameOutcome(wholeErr, splitErr) {
-			t.Fatalf("end differs by read size: %v vs %v", wholeErr, splitErr)
-		}
+		require.Equal(t, split, whole, "events differ by read size: whole %#v, one byte at a time %#v", whole, split)
+		require.True(t, sameOutcome(wholeErr, splitErr), "end differs by read size: %v vs %v", wholeErr, splitErr)
 		for _, ev := range whole {
-			if len(ev.Data) > limit {
-				t.Fatalf("event data of %d bytes passed a bound of %d", len(ev.Data), limit)
-			}
+			require.LessOrEqual(t, len(ev.Data), limit, "event data of %d bytes passed a bound of %d", len(ev.Data), limit)
 		}
 
 		// Round trip: in as the data of one event.
 		var buf bytes.Buffer
-		if err := sse.NewWriter(&buf).WriteData(in); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, sse.NewWriter(&buf).WriteData(in))
 		got, err := readAll(t, sse.NewReaderSize(&buf, 1<<20))
 		want := strings.NewReplacer("\r\n", "\n", "\r", "\n").Replace(string(in))
-		if len(got) != 1 || got[0].Data != want || err != io.EOF {
-			t.Fatalf("round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
-		}
+		require.Len(t, got, 1, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
+		require.Equal(t, want, got[0].Data, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
+		require.True(t, err == io.EOF, "round trip of %q: events %#v, end %v; want one event with data %q then io.EOF", in, got, err, want)
 	})
 }
 

@@ -3,11 +3,13 @@ package sse_test
 import (
 	"errors"
 	"io"
-	"reflect"
 	"strings"
 	"testing"
 	"testing/iotest"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/sse"
 )
@@ -161,12 +163,8 @@ func TestReaderRules(t *testing.T) {
 					src = iotest.OneByteReader(src)
 				}
 				got, err := readAll(t, sse.NewReader(src))
-				if !reflect.DeepEqual(got, tt.want) {
-					t.Errorf("WHATWG %s: events = %#v; want %#v", tt.section, got, tt.want)
-				}
-				if !errors.Is(err, tt.wantErr) {
-					t.Errorf("WHATWG %s: end error = %v; want %v", tt.section, err, tt.wantErr)
-				}
+				assert.Equal(t, tt.want, got, "WHATWG %s: events = %#v; want %#v", tt.section, got, tt.want)
+				assert.ErrorIs(t, err, tt.wantErr, "WHATWG %s: end error = %v; want %v", tt.section, err, tt.wantErr)
 			})
 		}
 	}
@@ -186,12 +184,10 @@ func TestReaderRetry(t *testing.T) {
 	}
 	for _, tt := range tests {
 		r := sse.NewReader(strings.NewReader(tt.in))
-		if _, err := readAll(t, r); err != io.EOF {
-			t.Fatalf("%q: err = %v; want io.EOF", tt.in, err)
-		}
-		if got := r.Retry(); got != tt.want {
-			t.Errorf("%q: Retry() = %v; want %v", tt.in, got, tt.want)
-		}
+		_, err := readAll(t, r)
+		require.True(t, err == io.EOF, "%q: err = %v; want io.EOF", tt.in, err)
+		got := r.Retry()
+		assert.Equal(t, tt.want, got, "%q: Retry() = %v; want %v", tt.in, got, tt.want)
 	}
 }
 
@@ -213,15 +209,10 @@ func TestReaderSizeBound(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			r := sse.NewReaderSize(iotest.HalfReader(strings.NewReader(tt.in)), 16)
 			got, err := readAll(t, r)
-			if !reflect.DeepEqual(got, tt.want) {
-				t.Errorf("events = %#v; want %#v", got, tt.want)
-			}
-			if !errors.Is(err, tt.wantErr) {
-				t.Errorf("error = %v; want %v", err, tt.wantErr)
-			}
-			if _, again := r.Next(); !errors.Is(again, tt.wantErr) {
-				t.Errorf("second Next error = %v; want the same %v", again, tt.wantErr)
-			}
+			assert.Equal(t, tt.want, got, "events = %#v; want %#v", got, tt.want)
+			assert.ErrorIs(t, err, tt.wantErr, "error = %v; want %v", err, tt.wantErr)
+			_, again := r.Next()
+			assert.ErrorIs(t, again, tt.wantErr, "second Next error = %v; want the same %v", again, tt.wantErr)
 		})
 	}
 }
@@ -230,19 +221,15 @@ func TestReaderReadError(t *testing.T) {
 	boom := errors.New("connection reset")
 	r := sse.NewReader(io.MultiReader(strings.NewReader("data: a\n\ndata: b"), iotest.ErrReader(boom)))
 	got, err := readAll(t, r)
-	if want := []sse.Event{{Data: "a"}}; !reflect.DeepEqual(got, want) {
-		t.Errorf("events = %#v; want %#v", got, want)
-	}
-	if !errors.Is(err, boom) {
-		t.Errorf("error = %v; want it to wrap %v", err, boom)
-	}
+	want := []sse.Event{{Data: "a"}}
+	assert.Equal(t, want, got, "events = %#v; want %#v", got, want)
+	assert.ErrorIs(t, err, boom, "error = %v; want it to wrap %v", err, boom)
 }
 
 func TestReaderNoProgress(t *testing.T) {
 	r := sse.NewReader(zeroReader{})
-	if _, err := r.Next(); !errors.Is(err, io.ErrNoProgress) {
-		t.Errorf("error = %v; want io.ErrNoProgress", err)
-	}
+	_, err := r.Next()
+	assert.ErrorIs(t, err, io.ErrNoProgress, "error = %v; want io.ErrNoProgress", err)
 }
 
 // zeroReader returns (0, nil) forever.
@@ -262,8 +249,7 @@ func TestEventIsDone(t *testing.T) {
 		{"", false},
 	}
 	for _, tt := range tests {
-		if got := (sse.Event{Data: tt.data}).IsDone(); got != tt.want {
-			t.Errorf("Event{Data: %q}.IsDone() = %v; want %v", tt.data, got, tt.want)
-		}
+		got := (sse.Event{Data: tt.data}).IsDone()
+		assert.Equal(t, tt.want, got, "Event{Data: %q}.IsDone() = %v; want %v", tt.data, got, tt.want)
 	}
 }

@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/sse"
 )
 
@@ -32,12 +35,9 @@ func TestWriterOutput(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			var buf bytes.Buffer
-			if err := tt.write(sse.NewWriter(&buf)); err != nil {
-				t.Fatal(err)
-			}
-			if got := buf.String(); got != tt.want {
-				t.Errorf("wrote %q; want %q", got, tt.want)
-			}
+			require.NoError(t, tt.write(sse.NewWriter(&buf)))
+			got := buf.String()
+			assert.Equal(t, tt.want, got, "wrote %q; want %q", got, tt.want)
 		})
 	}
 }
@@ -45,12 +45,9 @@ func TestWriterOutput(t *testing.T) {
 func TestWriterInvalidField(t *testing.T) {
 	for _, ev := range []sse.Event{{Name: "a\nb"}, {Name: "a\rb"}, {ID: "1\n2"}, {ID: "1\x002"}} {
 		var buf bytes.Buffer
-		if err := sse.NewWriter(&buf).WriteEvent(ev); !errors.Is(err, sse.ErrInvalidField) {
-			t.Errorf("WriteEvent(%#v) error = %v; want ErrInvalidField", ev, err)
-		}
-		if buf.Len() != 0 {
-			t.Errorf("WriteEvent(%#v) wrote %q; want nothing", ev, buf.String())
-		}
+		err := sse.NewWriter(&buf).WriteEvent(ev)
+		assert.ErrorIs(t, err, sse.ErrInvalidField, "WriteEvent(%#v) error = %v; want ErrInvalidField", ev, err)
+		assert.Equal(t, 0, buf.Len(), "WriteEvent(%#v) wrote %q; want nothing", ev, buf.String())
 	}
 }
 
@@ -59,21 +56,14 @@ func TestWriterFlushesEachEvent(t *testing.T) {
 		var out bytes.Buffer
 		bw := bufio.NewWriterSize(&out, 4096)
 		w := sse.NewWriter(bw)
-		if err := w.WriteData([]byte("a")); err != nil {
-			t.Fatal(err)
-		}
-		if got, want := out.String(), "data: a\n\n"; got != want {
-			t.Errorf("after one event the underlying writer holds %q; want %q", got, want)
-		}
+		require.NoError(t, w.WriteData([]byte("a")))
+		got, want := out.String(), "data: a\n\n"
+		assert.Equal(t, want, got, "after one event the underlying writer holds %q; want %q", got, want)
 	})
 	t.Run("ResponseRecorder", func(t *testing.T) {
 		rec := httptest.NewRecorder()
-		if err := sse.NewWriter(rec).WriteDone(); err != nil {
-			t.Fatal(err)
-		}
-		if !rec.Flushed {
-			t.Error("ResponseRecorder.Flushed = false; want true")
-		}
+		require.NoError(t, sse.NewWriter(rec).WriteDone())
+		assert.True(t, rec.Flushed, "ResponseRecorder.Flushed = false; want true")
 	})
 }
 
@@ -86,8 +76,7 @@ func TestWriterOverHTTP(t *testing.T) {
 		rw.Header().Set("Content-Type", "text/event-stream")
 		w := sse.NewWriter(rw)
 		for _, d := range []string{`{"n":1}`, `{"n":2}`, "multi\nline"} {
-			if err := w.WriteData([]byte(d)); err != nil {
-				t.Error(err)
+			if !assert.NoError(t, w.WriteData([]byte(d))) {
 				return
 			}
 			select {
@@ -96,36 +85,28 @@ func TestWriterOverHTTP(t *testing.T) {
 				return
 			}
 		}
-		if err := w.WriteDone(); err != nil {
-			t.Error(err)
-		}
+		assert.NoError(t, w.WriteDone())
 	}))
 	defer srv.Close()
 
 	resp, err := http.Get(srv.URL)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	r := sse.NewReader(resp.Body)
 	var got []string
 	for {
 		ev, err := r.Next()
-		if err != nil {
-			t.Fatalf("Next: %v (events so far %q)", err, got)
-		}
+		require.NoError(t, err, "Next: %v (events so far %q)", err, got)
 		if ev.IsDone() {
 			break
 		}
 		got = append(got, ev.Data)
 		ack <- struct{}{}
 	}
-	if want := []string{`{"n":1}`, `{"n":2}`, "multi\nline"}; strings.Join(got, "|") != strings.Join(want, "|") {
-		t.Errorf("events = %q; want %q", got, want)
-	}
-	if _, err := r.Next(); err != io.EOF {
-		t.Errorf("after [DONE]: %v; want io.EOF", err)
-	}
+	want := []string{`{"n":1}`, `{"n":2}`, "multi\nline"}
+	assert.Equal(t, strings.Join(want, "|"), strings.Join(got, "|"), "events = %q; want %q", got, want)
+	_, err = r.Next()
+	assert.True(t, err == io.EOF, "after [DONE]: %v; want io.EOF", err)
 }
 
 type failingWriter struct{ err error }
@@ -134,7 +115,6 @@ func (f failingWriter) Write([]byte) (int, error) { return 0, f.err }
 
 func TestWriterWriteError(t *testing.T) {
 	boom := errors.New("broken pipe")
-	if err := sse.NewWriter(failingWriter{boom}).WriteData([]byte("x")); !errors.Is(err, boom) {
-		t.Errorf("error = %v; want it to wrap %v", err, boom)
-	}
+	err := sse.NewWriter(failingWriter{boom}).WriteData([]byte("x"))
+	assert.ErrorIs(t, err, boom, "error = %v; want it to wrap %v", err, boom)
 }

@@ -8,6 +8,8 @@ import (
 	"net/http"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+
 	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/sse"
@@ -73,33 +75,23 @@ func streamEvents(tb testing.TB, body []byte) [][]byte {
 // to at most one, and (greedy) the chosen token is the most likely.
 func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k int, greedy bool, base int) {
 	tb.Helper()
-	if lp == nil {
-		tb.Fatal("logprobs = null; want an object")
-	}
+	require.NotNil(tb, lp, "logprobs = null; want an object")
 	n := len(lp.Tokens)
-	if len(lp.TokenLogprobs) != n || len(lp.TopLogprobs) != n || len(lp.TextOffset) != n {
-		tb.Fatalf("logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
-	}
+	require.Len(tb, lp.TokenLogprobs, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	require.Len(tb, lp.TopLogprobs, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
+	require.Len(tb, lp.TextOffset, n, "logprobs lists have lengths %d/%d/%d/%d; want all equal", n, len(lp.TokenLogprobs), len(lp.TopLogprobs), len(lp.TextOffset))
 	joined, off := "", base
 	for i, tok := range lp.Tokens {
-		if lp.TextOffset[i] != off {
-			tb.Errorf("text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
-		}
+		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
 		joined += tok
 		off += len(tok)
 		if lp.TokenLogprobs[i] == nil {
-			if i != 0 || lp.TopLogprobs[i] != nil {
-				tb.Errorf("token %d %q has a null logprob; only the first echoed token may", i, tok)
-			}
+			assert.False(tb, i != 0 || lp.TopLogprobs[i] != nil, "token %d %q has a null logprob; only the first echoed token may", i, tok)
 			continue
 		}
-		if *lp.TokenLogprobs[i] >= 0 {
-			tb.Errorf("token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
-		}
+		assert.False(tb, *lp.TokenLogprobs[i] >= 0, "token_logprobs[%d] = %v; want < 0", i, *lp.TokenLogprobs[i])
 		top := lp.TopLogprobs[i].Map()
-		if len(top) != k {
-			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
-		}
+		assert.Len(tb, top, k, "top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		var mass float64
 		best, bestLP := "", -1e300
 		for t, v := range top {
@@ -108,16 +100,10 @@ func checkLogprobs(tb testing.TB, text string, lp *wire.CompletionLogprobs, k in
 				best, bestLP = t, v
 			}
 		}
-		if mass > 1 {
-			tb.Errorf("top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
-		}
-		if greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]) {
-			tb.Errorf("greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
-		}
+		assert.False(tb, mass > 1, "top_logprobs[%d] probabilities sum to %v; want <= 1", i, mass)
+		assert.False(tb, greedy && k > 0 && (best != tok || bestLP != *lp.TokenLogprobs[i]), "greedy token %d = %q (%v); most likely top entry %q (%v)", i, tok, *lp.TokenLogprobs[i], best, bestLP)
 	}
-	if joined != text {
-		tb.Errorf("tokens join to %q; want the text %q", joined, text)
-	}
+	assert.Equal(tb, text, joined, "tokens join to %q; want the text %q", joined, text)
 }
 
 func exp(x float64) float64 { return math.Exp(x) }

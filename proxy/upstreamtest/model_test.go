@@ -6,27 +6,22 @@ import (
 	"slices"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestVocabulary(t *testing.T) {
 	v := vocabulary()
 	seen := map[string]bool{}
 	for i, tok := range v {
-		if seen[tok] {
-			t.Errorf("token %q appears twice", tok)
-		}
+		assert.False(t, seen[tok], "token %q appears twice", tok)
 		seen[tok] = true
 		word := i < len(v)-punctuationTokens
-		if word && (!strings.HasPrefix(tok, " ") || strings.TrimSpace(tok) != tok[1:] || tok == " ") {
-			t.Errorf("word token %d = %q; want one space then a word", i, tok)
-		}
-		if !word && len(tok) != 1 {
-			t.Errorf("punctuation token %d = %q; want one mark", i, tok)
-		}
+		assert.False(t, word && (!strings.HasPrefix(tok, " ") || strings.TrimSpace(tok) != tok[1:] || tok == " "), "word token %d = %q; want one space then a word", i, tok)
+		assert.False(t, !word && len(tok) != 1, "punctuation token %d = %q; want one mark", i, tok)
 	}
-	if len(v) < 200 {
-		t.Errorf("vocabulary has %d tokens; want a few hundred", len(v))
-	}
+	assert.GreaterOrEqual(t, len(v), 200, "vocabulary has %d tokens; want a few hundred", len(v))
 }
 
 func TestTokenizeConcatenates(t *testing.T) {
@@ -43,12 +38,9 @@ func TestTokenizeConcatenates(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got := m.tokenize(tt.in)
-		if !slices.Equal(got, tt.want) {
-			t.Errorf("tokenize(%q) = %q; want %q", tt.in, got, tt.want)
-		}
-		if j := strings.Join(got, ""); j != tt.in {
-			t.Errorf("tokens of %q join to %q", tt.in, j)
-		}
+		assert.True(t, slices.Equal(got, tt.want), "tokenize(%q) = %q; want %q", tt.in, got, tt.want)
+		j := strings.Join(got, "")
+		assert.Equal(t, tt.in, j, "tokens of %q join to %q", tt.in, j)
 	}
 }
 
@@ -58,30 +50,19 @@ func TestRankInvariants(t *testing.T) {
 	for range 500 {
 		h := rng.Uint64()
 		c := m.rank(h)
-		if c != m.rank(h) {
-			t.Fatal("rank is not deterministic")
-		}
+		require.True(t, c == m.rank(h), "rank is not deterministic")
 		seen := map[string]bool{}
 		var mass float64
 		for i := range maxTop {
-			if seen[c.toks[i]] {
-				t.Fatalf("state %x: candidate %q twice", h, c.toks[i])
-			}
+			require.False(t, seen[c.toks[i]], "state %x: candidate %q twice", h, c.toks[i])
 			seen[c.toks[i]] = true
-			if c.toks[i] != m.vocab[c.ids[i]] {
-				t.Fatalf("state %x: toks[%d] = %q; want %q", h, i, c.toks[i], m.vocab[c.ids[i]])
-			}
-			if c.lps[i] >= 0 || math.IsNaN(c.lps[i]) {
-				t.Fatalf("state %x: logprob %v not negative", h, c.lps[i])
-			}
-			if i > 0 && c.lps[i] >= c.lps[i-1] {
-				t.Fatalf("state %x: logprobs not strictly decreasing at %d", h, i)
-			}
+			require.Equal(t, m.vocab[c.ids[i]], c.toks[i], "state %x: toks[%d] = %q; want %q", h, i, c.toks[i], m.vocab[c.ids[i]])
+			require.Less(t, c.lps[i], float64(0), "state %x: logprob %v not negative", h, c.lps[i])
+			require.False(t, math.IsNaN(c.lps[i]), "state %x: logprob %v not negative", h, c.lps[i])
+			require.False(t, i > 0 && c.lps[i] >= c.lps[i-1], "state %x: logprobs not strictly decreasing at %d", h, i)
 			mass += math.Exp(c.lps[i])
 		}
-		if mass >= 1 {
-			t.Fatalf("state %x: candidate probabilities sum to %v; want < 1", h, mass)
-		}
+		require.False(t, mass >= 1, "state %x: candidate probabilities sum to %v; want < 1", h, mass)
 	}
 }
 
@@ -92,12 +73,8 @@ func TestGenerateGreedyPrefix(t *testing.T) {
 		long, _ := m.generate(p, 40, nil, nil)
 		for n := 0; n <= len(long); n++ {
 			short, finish := m.generate(p, n, nil, nil)
-			if joinTokens(short) != joinTokens(long[:n]) {
-				t.Fatalf("%q: %d-token answer %q is not the prefix of the longer %q", text, n, joinTokens(short), joinTokens(long))
-			}
-			if n < len(long) && finish != "length" {
-				t.Errorf("%q: max %d tokens ended with %q before the longer answer did", text, n, finish)
-			}
+			require.Equal(t, joinTokens(long[:n]), joinTokens(short), "%q: %d-token answer %q is not the prefix of the longer %q", text, n, joinTokens(short), joinTokens(long))
+			assert.False(t, n < len(long) && finish != "length", "%q: max %d tokens ended with %q before the longer answer did", text, n, finish)
 		}
 	}
 }
@@ -112,19 +89,14 @@ func TestGenerateEndsOnItsOwn(t *testing.T) {
 		case "stop":
 			stops++
 			last := toks[len(toks)-1].text
-			if !strings.Contains(".!?", last) {
-				t.Errorf("ended on its own after %q; want a sentence end", last)
-			}
+			assert.Contains(t, ".!?", last, "ended on its own after %q; want a sentence end", last)
 		case "length":
 			lengths++
-			if len(toks) != 16 {
-				t.Errorf("finish length with %d tokens; want 16", len(toks))
-			}
+			assert.Len(t, toks, 16, "finish length with %d tokens; want 16", len(toks))
 		}
 	}
-	if stops == 0 || lengths == 0 {
-		t.Errorf("of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
-	}
+	assert.NotEqual(t, 0, stops, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
+	assert.NotEqual(t, 0, lengths, "of 200 prompts, %d ended on their own and %d at the length; want some of each", stops, lengths)
 }
 
 func TestStopCut(t *testing.T) {
@@ -152,9 +124,8 @@ func TestStopCut(t *testing.T) {
 	for _, tt := range tests {
 		text := joinTokens(tt.toks)
 		got, ok := stopCut(tt.toks, text, tt.stops)
-		if got != tt.want || ok != tt.wantOK {
-			t.Errorf("stopCut(%q, %q) = %d, %v; want %d, %v", text, tt.stops, got, ok, tt.want, tt.wantOK)
-		}
+		assert.Equal(t, tt.want, got, "stopCut(%q, %q) cut", text, tt.stops)
+		assert.Equal(t, tt.wantOK, ok, "stopCut(%q, %q) ok", text, tt.stops)
 	}
 }
 
@@ -163,16 +134,13 @@ func TestSamplingTopP(t *testing.T) {
 	c := m.rank(42)
 	s := &sampling{temperature: 1, topP: 0, rng: rand.New(rand.NewPCG(3, 4))}
 	for range 50 {
-		if i := s.pick(&c); i != 0 {
-			t.Fatalf("top_p 0 picked candidate %d; want 0 (only the top one is kept)", i)
-		}
+		i := s.pick(&c)
+		require.Equal(t, 0, i, "top_p 0 picked candidate %d; want 0 (only the top one is kept)", i)
 	}
 	s.topP = 1
 	picked := map[int]bool{}
 	for range 500 {
 		picked[s.pick(&c)] = true
 	}
-	if len(picked) < 3 {
-		t.Errorf("temperature 1 picked %d distinct candidates in 500 draws; want several", len(picked))
-	}
+	assert.GreaterOrEqual(t, len(picked), 3, "temperature 1 picked %d distinct candidates in 500 draws; want several", len(picked))
 }

@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	openai "github.com/sashabaranov/go-openai"
 
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -37,29 +40,27 @@ func TestSDKCompletion(t *testing.T) {
 	long, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 30, Temperature: greedy, LogProbs: 5,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if long.Object != "text_completion" || long.Model != upstreamtest.ModelSmall || long.Header().Get("x-request-id") == "" {
-		t.Errorf("object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
-	}
+	require.NoError(t, err)
+	assert.Equal(t, "text_completion", long.Object, "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
+	assert.Equal(t, upstreamtest.ModelSmall, long.Model, "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
+	assert.NotEqual(t, "", long.Header().Get("x-request-id"), "object %q model %q request id %q", long.Object, long.Model, long.Header().Get("x-request-id"))
 	lc := long.Choices[0]
 	checkSDKLogprobs(t, lc.Text, lc.LogProbs, 5)
-	if long.Usage == nil || long.Usage.PromptTokens != 5 || long.Usage.CompletionTokens != len(lc.LogProbs.Tokens) || long.Usage.TotalTokens != 5+len(lc.LogProbs.Tokens) {
-		t.Errorf("usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+	if assert.NotNil(t, long.Usage, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens)) {
+		assert.Equal(t, 5, long.Usage.PromptTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+		if assert.Equal(t, len(lc.LogProbs.Tokens), long.Usage.CompletionTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens)) {
+			assert.Equal(t, 5+len(lc.LogProbs.Tokens), long.Usage.TotalTokens, "usage %+v; want 5 prompt tokens and %d completion tokens", long.Usage, len(lc.LogProbs.Tokens))
+		}
 	}
 
 	// Greedy prefix property through the SDK.
 	short, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: "The apprentice lifts the frame", MaxTokens: 10, Temperature: greedy, LogProbs: 1,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	n := min(10, len(lc.LogProbs.Tokens))
-	if got, want := short.Choices[0].Text, strings.Join(lc.LogProbs.Tokens[:n], ""); got != want {
-		t.Errorf("10-token answer %q; want the first 10 tokens of the 30-token answer, %q", got, want)
-	}
+	got, want := short.Choices[0].Text, strings.Join(lc.LogProbs.Tokens[:n], "")
+	assert.Equal(t, want, got, "10-token answer %q; want the first 10 tokens of the 30-token answer, %q", got, want)
 
 	// Array prompt with n=2: index = prompt*n + j, and each prompt's
 	// choices match its single answer.
@@ -67,76 +68,57 @@ func TestSDKCompletion(t *testing.T) {
 	batch, err := c.CreateCompletion(ctx, openai.CompletionRequest{
 		Model: upstreamtest.ModelSmall, Prompt: prompts, MaxTokens: 8, Temperature: greedy, N: 2, LogProbs: 2,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(batch.Choices) != 6 {
-		t.Fatalf("%d choices; want 6", len(batch.Choices))
-	}
+	require.NoError(t, err)
+	require.Len(t, batch.Choices, 6, "%d choices; want 6", len(batch.Choices))
 	promptTokens, completionTokens := 0, 0
 	for i, p := range prompts {
 		one, err := c.CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: p, MaxTokens: 8, Temperature: greedy})
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		promptTokens += one.Usage.PromptTokens
 		for j := range 2 {
 			ch := batch.Choices[i*2+j]
-			if ch.Index != i*2+j || ch.Text != one.Choices[0].Text {
-				t.Errorf("choice %d (index %d) = %q; want prompt %d's answer %q", i*2+j, ch.Index, ch.Text, i, one.Choices[0].Text)
-			}
+			assert.False(t, ch.Index != i*2+j || ch.Text != one.Choices[0].Text, "choice %d (index %d) = %q; want prompt %d's answer %q", i*2+j, ch.Index, ch.Text, i, one.Choices[0].Text)
 			checkSDKLogprobs(t, ch.Text, ch.LogProbs, 2)
 			completionTokens += len(ch.LogProbs.Tokens)
 		}
 	}
-	if batch.Usage.PromptTokens != promptTokens || batch.Usage.CompletionTokens != completionTokens {
-		t.Errorf("batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
-	}
-	if got := up.Prompts(); got != 2+3+3 {
-		t.Errorf("Prompts() = %d; want 8", got)
-	}
+	assert.Equal(t, promptTokens, batch.Usage.PromptTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
+	assert.Equal(t, completionTokens, batch.Usage.CompletionTokens, "batch usage %+v; want %d prompt and %d completion tokens", batch.Usage, promptTokens, completionTokens)
+	assert.Equal(t, 2+3+3, up.Prompts(), "Prompts()")
 
 	// Errors decode as the SDK's APIError.
 	_, err = c.CreateCompletion(ctx, openai.CompletionRequest{Model: "quill-huge", Prompt: "x"})
 	var apiErr *openai.APIError
-	if !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusNotFound || apiErr.Code != "model_not_found" {
-		t.Errorf("unknown model: %v; want an APIError 404 model_not_found", err)
+	if assert.True(t, errors.As(err, &apiErr), "unknown model: %v; want an APIError 404 model_not_found", err) {
+		assert.Equal(t, http.StatusNotFound, apiErr.HTTPStatusCode, "unknown model: %v; want an APIError 404 model_not_found", err)
+		assert.True(t, apiErr.Code == "model_not_found", "unknown model: %v; want an APIError 404 model_not_found", err)
 	}
 	_, err = sdkClient(t, up, "wrong").CreateCompletion(ctx, openai.CompletionRequest{Model: upstreamtest.ModelSmall, Prompt: "x"})
-	if !errors.As(err, &apiErr) || apiErr.HTTPStatusCode != http.StatusUnauthorized {
-		t.Errorf("wrong key: %v; want an APIError 401", err)
+	if assert.True(t, errors.As(err, &apiErr), "wrong key: %v; want an APIError 401", err) {
+		assert.Equal(t, http.StatusUnauthorized, apiErr.HTTPStatusCode, "wrong key: %v; want an APIError 401", err)
 	}
 	for _, r := range up.Requests() {
-		if got := r.Header.Get("Authorization"); got != "Bearer up-key" && got != "Bearer wrong" {
-			t.Errorf("request carried Authorization %q", got)
-		}
+		got := r.Header.Get("Authorization")
+		assert.False(t, got != "Bearer up-key" && got != "Bearer wrong", "request carried Authorization %q", got)
 	}
 }
 
 func checkSDKLogprobs(tb testing.TB, text string, lp openai.LogprobResult, k int) {
 	tb.Helper()
-	if strings.Join(lp.Tokens, "") != text {
-		tb.Errorf("tokens %q do not join to %q", lp.Tokens, text)
-	}
+	assert.Equal(tb, text, strings.Join(lp.Tokens, ""), "tokens %q do not join to %q", lp.Tokens, text)
 	off := 0
 	for i, tok := range lp.Tokens {
-		if lp.TextOffset[i] != off {
-			tb.Errorf("text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
-		}
+		assert.Equal(tb, off, lp.TextOffset[i], "text_offset[%d] = %d; want %d", i, lp.TextOffset[i], off)
 		off += len(tok)
 		top := lp.TopLogprobs[i]
-		if len(top) != k {
-			tb.Errorf("top_logprobs[%d] has %d entries; want %d", i, len(top), k)
-		}
+		assert.Len(tb, top, k, "top_logprobs[%d] has %d entries; want %d", i, len(top), k)
 		best := ""
 		for t, v := range top {
 			if best == "" || v > top[best] {
 				best = t
 			}
 		}
-		if lp.TokenLogprobs[i] >= 0 || best != tok || top[tok] != lp.TokenLogprobs[i] {
-			tb.Errorf("token %d %q (%v): most likely top entry %q", i, tok, lp.TokenLogprobs[i], best)
-		}
+		assert.False(tb, lp.TokenLogprobs[i] >= 0 || best != tok || top[tok] != lp.TokenLogprobs[i], "token %d %q (%v): most likely top entry %q", i, tok, lp.TokenLogprobs[i], best)
 	}
 }
 
@@ -150,14 +132,10 @@ func TestSDKCompletionStream(t *testing.T) {
 		Temperature: greedy, N: 2, LogProbs: 3,
 	}
 	whole, err := c.CreateCompletion(ctx, req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	req.StreamOptions = &openai.StreamOptions{IncludeUsage: true}
 	stream, err := c.CreateCompletionStream(ctx, req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer stream.Close()
 	texts := map[int]string{}
 	tokens := map[int][]string{}
@@ -168,9 +146,7 @@ func TestSDKCompletionStream(t *testing.T) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if chunk.Usage != nil {
 			gotUsage = chunk.Usage
 			continue
@@ -184,12 +160,10 @@ func TestSDKCompletionStream(t *testing.T) {
 		}
 	}
 	for _, w := range whole.Choices {
-		if texts[w.Index] != w.Text || finish[w.Index] != w.FinishReason || !slices.Equal(tokens[w.Index], w.LogProbs.Tokens) {
-			t.Errorf("choice %d streamed %q %q (%s); answered %q %q (%s)", w.Index, texts[w.Index], tokens[w.Index], finish[w.Index], w.Text, w.LogProbs.Tokens, w.FinishReason)
-		}
+		assert.False(t, texts[w.Index] != w.Text || finish[w.Index] != w.FinishReason || !slices.Equal(tokens[w.Index], w.LogProbs.Tokens), "choice %d streamed %q %q (%s); answered %q %q (%s)", w.Index, texts[w.Index], tokens[w.Index], finish[w.Index], w.Text, w.LogProbs.Tokens, w.FinishReason)
 	}
-	if gotUsage == nil || *gotUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", gotUsage, whole.Usage)
+	if assert.NotNil(t, gotUsage, "stream usage %+v; want %+v", gotUsage, whole.Usage) {
+		assert.True(t, *gotUsage == *whole.Usage, "stream usage %+v; want %+v", gotUsage, whole.Usage)
 	}
 }
 
@@ -204,46 +178,35 @@ func TestSDKChat(t *testing.T) {
 	resp, err := c.CreateChatCompletion(context.Background(), openai.ChatCompletionRequest{
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3, N: 2,
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if resp.Object != "chat.completion" || len(resp.Choices) != 2 {
-		t.Fatalf("object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
-	}
+	require.NoError(t, err)
+	require.Equal(t, "chat.completion", resp.Object, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
+	require.Len(t, resp.Choices, 2, "object %q with %d choices; want chat.completion with 2", resp.Object, len(resp.Choices))
 	total := 0
 	for j, ch := range resp.Choices {
-		if ch.Index != j || ch.Message.Role != openai.ChatMessageRoleAssistant || ch.LogProbs == nil {
-			t.Fatalf("choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
-		}
+		require.Equal(t, j, ch.Index, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
+		require.Equal(t, openai.ChatMessageRoleAssistant, ch.Message.Role, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
+		require.NotNil(t, ch.LogProbs, "choice %d: index %d role %q logprobs %v", j, ch.Index, ch.Message.Role, ch.LogProbs)
 		joined := ""
 		for _, tl := range ch.LogProbs.Content {
 			joined += tl.Token
-			if string(tl.Bytes) != tl.Token {
-				t.Errorf("bytes %v do not spell %q", tl.Bytes, tl.Token)
-			}
-			if len(tl.TopLogProbs) != 3 || tl.TopLogProbs[0].Token != tl.Token || tl.TopLogProbs[0].LogProb != tl.LogProb {
-				t.Errorf("token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
+			assert.Equal(t, tl.Token, string(tl.Bytes), "bytes %v do not spell %q", tl.Bytes, tl.Token)
+			if assert.Len(t, tl.TopLogProbs, 3, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs) {
+				assert.Equal(t, tl.Token, tl.TopLogProbs[0].Token, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
+				assert.Equal(t, tl.LogProb, tl.TopLogProbs[0].LogProb, "token %q (%v): top %+v; want 3 entries led by it", tl.Token, tl.LogProb, tl.TopLogProbs)
 			}
 		}
-		if joined != ch.Message.Content {
-			t.Errorf("tokens join to %q; content %q", joined, ch.Message.Content)
-		}
+		assert.Equal(t, ch.Message.Content, joined, "tokens join to %q; content %q", joined, ch.Message.Content)
 		total += len(ch.LogProbs.Content)
 	}
-	if resp.Choices[0].Message.Content != resp.Choices[1].Message.Content {
-		t.Errorf("greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
-	}
-	if resp.Usage.CompletionTokens != total || resp.Usage.TotalTokens != resp.Usage.PromptTokens+total {
-		t.Errorf("usage %+v; want %d completion tokens", resp.Usage, total)
-	}
+	assert.Equal(t, resp.Choices[1].Message.Content, resp.Choices[0].Message.Content, "greedy choices differ: %q, %q", resp.Choices[0].Message.Content, resp.Choices[1].Message.Content)
+	assert.Equal(t, total, resp.Usage.CompletionTokens, "usage %+v; want %d completion tokens", resp.Usage, total)
+	assert.Equal(t, resp.Usage.PromptTokens+total, resp.Usage.TotalTokens, "usage %+v; want %d completion tokens", resp.Usage, total)
 
 	stream, err := c.CreateChatCompletionStream(context.Background(), openai.ChatCompletionRequest{
 		Model: upstreamtest.ModelLarge, Messages: msgs, MaxCompletionTokens: 12, Temperature: greedy, LogProbs: true, TopLogProbs: 3,
 		StreamOptions: &openai.StreamOptions{IncludeUsage: true},
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer stream.Close()
 	var content, role string
 	var toks []string
@@ -254,9 +217,7 @@ func TestSDKChat(t *testing.T) {
 		if errors.Is(err, io.EOF) {
 			break
 		}
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if chunk.Usage != nil {
 			streamUsage = chunk.Usage
 		}
@@ -268,9 +229,7 @@ func TestSDKChat(t *testing.T) {
 			if ch.Logprobs != nil {
 				for _, tl := range ch.Logprobs.Content {
 					toks = append(toks, tl.Token)
-					if len(tl.TopLogprobs) != 3 {
-						t.Errorf("streamed token %q has %d top entries; want 3", tl.Token, len(tl.TopLogprobs))
-					}
+					assert.Len(t, tl.TopLogprobs, 3, "streamed token %q has %d top entries; want 3", tl.Token, len(tl.TopLogprobs))
 				}
 			}
 			if ch.FinishReason != "" {
@@ -279,13 +238,13 @@ func TestSDKChat(t *testing.T) {
 		}
 	}
 	want := resp.Choices[0]
-	if role != "assistant" || content != want.Message.Content || strings.Join(toks, "") != content || fin != want.FinishReason {
-		t.Errorf("stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, "assistant", role, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, want.Message.Content, content, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, content, strings.Join(toks, ""), "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	assert.Equal(t, want.FinishReason, fin, "stream: role %q content %q tokens %q finish %q; want assistant, %q, %q", role, content, toks, fin, want.Message.Content, want.FinishReason)
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content)) {
+		assert.Equal(t, len(want.LogProbs.Content), streamUsage.CompletionTokens, "stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
 	}
-	if streamUsage == nil || streamUsage.CompletionTokens != len(want.LogProbs.Content) {
-		t.Errorf("stream usage %+v; want %d completion tokens", streamUsage, len(want.LogProbs.Content))
-	}
-	if got := up.Calls().Chat; got != 2 {
-		t.Errorf("Calls().Chat = %d; want 2", got)
-	}
+	got := up.Calls().Chat
+	assert.Equal(t, 2, got, "Calls().Chat = %d; want 2", got)
 }

@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/base64"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io"
 	"net/http"
@@ -13,6 +12,8 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/require"
 
 	"github.com/stretchr/testify/assert"
 
@@ -73,37 +74,28 @@ func TestValidation(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			resp, body := post(t, up, tt.path, tt.body, nil)
-			if resp.StatusCode != tt.status {
-				t.Fatalf("status = %d; want %d (body %s)", resp.StatusCode, tt.status, body)
-			}
-			if ct := resp.Header.Get("Content-Type"); ct != "application/json" {
-				t.Errorf("Content-Type = %q; want application/json", ct)
-			}
-			if resp.Header.Get("x-request-id") == "" {
-				t.Error("no x-request-id header")
-			}
+			require.Equal(t, tt.status, resp.StatusCode, "status = %d; want %d (body %s)", resp.StatusCode, tt.status, body)
+			ct := resp.Header.Get("Content-Type")
+			assert.Equal(t, "application/json", ct, "Content-Type = %q; want application/json", ct)
+			assert.NotEqual(t, "", resp.Header.Get("x-request-id"), "no x-request-id header")
 			if tt.status == 200 {
 				return
 			}
 			var env errorEnvelope
-			if err := json.Unmarshal(body, &env); err != nil || env.Error == nil {
-				t.Fatalf("error body %s does not have the error shape (%v)", body, err)
-			}
+			err := json.Unmarshal(body, &env)
+			require.NoError(t, err, "error body %s does not have the error shape (%v)", body, err)
+			require.NotNil(t, env.Error, "error body %s does not have the error shape (%v)", body, err)
 			e := env.Error
-			if e.Message == "" || e.Type != "invalid_request_error" {
-				t.Errorf("error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
-			}
-			if got := deref(e.Param); got != tt.param {
-				t.Errorf("param = %q; want %q", got, tt.param)
-			}
-			if got := string(e.Code); got != tt.code {
-				t.Errorf("code = %q; want %q", got, tt.code)
-			}
+			assert.NotEqual(t, "", e.Message, "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
+			assert.Equal(t, "invalid_request_error", e.Type, "error message %q, type %q; want a message and invalid_request_error", e.Message, e.Type)
+			got := deref(e.Param)
+			assert.Equal(t, tt.param, got, "param = %q; want %q", got, tt.param)
+			got = string(e.Code)
+			assert.Equal(t, tt.code, got, "code = %q; want %q", got, tt.code)
 		})
 	}
-	if got := up.Prompts(); got != 4 {
-		t.Errorf("Prompts() = %d after four accepted requests; want 4 (refused ones count none)", got)
-	}
+	got := up.Prompts()
+	assert.Equal(t, 4, got, "Prompts() = %d after four accepted requests; want 4 (refused ones count none)", got)
 }
 
 func deref(s *string) string {
@@ -130,17 +122,12 @@ func TestRoutes(t *testing.T) {
 	for _, tt := range tests {
 		req, _ := http.NewRequest(tt.method, up.URL()+tt.path, nil)
 		resp, err := http.DefaultClient.Do(req)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		resp.Body.Close()
-		if resp.StatusCode != tt.status {
-			t.Errorf("%s %s: status %d; want %d", tt.method, tt.path, resp.StatusCode, tt.status)
-		}
+		assert.Equal(t, tt.status, resp.StatusCode, "%s %s: status %d; want %d", tt.method, tt.path, resp.StatusCode, tt.status)
 	}
-	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 1, Chat: 1, Models: 3, Other: 1}); got != want {
-		t.Errorf("Calls() = %+v; want %+v", got, want)
-	}
+	got, want := up.Calls(), (upstreamtest.Calls{Completions: 1, Chat: 1, Models: 3, Other: 1})
+	assert.True(t, got == want, "Calls() = %+v; want %+v", got, want)
 }
 
 func TestModelsList(t *testing.T) {
@@ -153,9 +140,7 @@ func TestModelsList(t *testing.T) {
 	} {
 		up := upstreamtest.New(tt.opts)
 		resp, err := http.Get(up.URL() + "/models")
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var list struct {
 			Object string `json:"object"`
 			Data   []struct {
@@ -166,19 +151,14 @@ func TestModelsList(t *testing.T) {
 		err = json.NewDecoder(resp.Body).Decode(&list)
 		resp.Body.Close()
 		up.Close()
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var got []string
 		for _, m := range list.Data {
 			got = append(got, m.ID)
-			if m.Object != "model" {
-				t.Errorf("model object = %q; want model", m.Object)
-			}
+			assert.Equal(t, "model", m.Object, "model object = %q; want model", m.Object)
 		}
-		if list.Object != "list" || !slices.Equal(got, tt.want) {
-			t.Errorf("models = %q (%s); want %q (list)", got, list.Object, tt.want)
-		}
+		assert.Equal(t, "list", list.Object, "models = %q (%s); want %q (list)", got, list.Object, tt.want)
+		assert.True(t, slices.Equal(got, tt.want), "models = %q (%s); want %q (list)", got, list.Object, tt.want)
 	}
 }
 
@@ -201,22 +181,20 @@ func TestAuth(t *testing.T) {
 			h.Set("Authorization", tt.auth)
 		}
 		resp, b := post(t, up, "/completions", body, h)
-		if resp.StatusCode != tt.status {
-			t.Errorf("Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
-		}
+		assert.Equal(t, tt.status, resp.StatusCode, "Authorization %q: status %d; want %d", tt.auth, resp.StatusCode, tt.status)
 		if tt.status == 401 {
 			var env errorEnvelope
-			if json.Unmarshal(b, &env) != nil || env.Error == nil || string(env.Error.Code) != "invalid_api_key" {
-				t.Errorf("401 body %s; want code invalid_api_key", b)
+			if assert.NoError(t, json.Unmarshal(b, &env), "401 body %s; want code invalid_api_key", b) {
+				if assert.NotNil(t, env.Error, "401 body %s; want code invalid_api_key", b) {
+					assert.Equal(t, "invalid_api_key", string(env.Error.Code), "401 body %s; want code invalid_api_key", b)
+				}
 			}
 		}
 	}
-	if got := up.Calls().Completions; got != 4 {
-		t.Errorf("Calls().Completions = %d; want 4 (refused calls reached it too)", got)
-	}
-	if got := up.Prompts(); got != 1 {
-		t.Errorf("Prompts() = %d; want 1", got)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, 4, got, "Calls().Completions = %d; want 4 (refused calls reached it too)", got)
+	got = up.Prompts()
+	assert.Equal(t, 1, got, "Prompts() = %d; want 1", got)
 }
 
 func TestCountersRequestsReset(t *testing.T) {
@@ -229,45 +207,32 @@ func TestCountersRequestsReset(t *testing.T) {
 	var chat wire.ChatResponse
 	h := http.Header{"Authorization": {"Bearer team-key"}, "X-Trace": {"t1"}}
 	resp, _ := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}],"max_tokens":1}`, h)
-	if resp.StatusCode != 200 {
-		t.Fatalf("chat status %d", resp.StatusCode)
-	}
+	require.Equal(t, 200, resp.StatusCode, "chat status %d", resp.StatusCode)
 	_ = chat
-	if got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1}); got != want {
-		t.Errorf("Calls() = %+v; want %+v", got, want)
-	}
-	if got, want := up.Calls().Total(), 4; got != want {
-		t.Errorf("Calls().Total() = %d; want %d", got, want)
-	}
+	got, want := up.Calls(), (upstreamtest.Calls{Completions: 3, Chat: 1})
+	assert.True(t, got == want, "Calls() = %+v; want %+v", got, want)
+	assert.Equal(t, 4, up.Calls().Total(), "Calls().Total()")
 	// 3 + 2 + 1 prompts, and the chat call counts one.
-	if got := up.Prompts(); got != 7 {
-		t.Errorf("Prompts() = %d; want 7", got)
-	}
+	assert.Equal(t, 7, up.Prompts(), "Prompts()")
 	reqs := up.Requests()
-	if len(reqs) != 4 {
-		t.Fatalf("Requests() has %d entries; want 4", len(reqs))
-	}
+	require.Len(t, reqs, 4, "Requests() has %d entries; want 4", len(reqs))
 	last := reqs[3]
-	if last.Method != "POST" || last.Path != upstreamtest.PathChat || last.Header.Get("Authorization") != "Bearer team-key" || last.Header.Get("X-Trace") != "t1" {
-		t.Errorf("last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
-	}
-	if !strings.Contains(string(last.Body), `"messages"`) {
-		t.Errorf("last body = %s; want the chat body", last.Body)
-	}
+	assert.Equal(t, "POST", last.Method, "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, upstreamtest.PathChat, last.Path, "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, "Bearer team-key", last.Header.Get("Authorization"), "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Equal(t, "t1", last.Header.Get("X-Trace"), "last request = %s %s %v; want POST %s with its headers", last.Method, last.Path, last.Header, upstreamtest.PathChat)
+	assert.Contains(t, string(last.Body), `"messages"`, "last body = %s; want the chat body", last.Body)
 	// Copies: changing them does not change what the server holds.
 	last.Body[0] = 'X'
 	last.Header.Set("Authorization", "changed")
 	again := up.Requests()[3]
-	if again.Body[0] != '{' || again.Header.Get("Authorization") != "Bearer team-key" {
-		t.Error("Requests() returned the server's own slices or headers, not copies")
-	}
+	assert.Equal(t, byte('{'), again.Body[0], "Requests() returned the server's own slices or headers, not copies")
+	assert.Equal(t, "Bearer team-key", again.Header.Get("Authorization"), "Requests() returned the server's own slices or headers, not copies")
 	up.Reset()
-	if got := up.Calls(); got != (upstreamtest.Calls{}) {
-		t.Errorf("after Reset, Calls() = %+v; want zero", got)
-	}
-	if up.Prompts() != 0 || len(up.Requests()) != 0 {
-		t.Errorf("after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
-	}
+	got = up.Calls()
+	assert.True(t, got == (upstreamtest.Calls{}), "after Reset, Calls() = %+v; want zero", got)
+	assert.Equal(t, 0, up.Prompts(), "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
+	assert.Len(t, up.Requests(), 0, "after Reset, Prompts() = %d, %d requests; want 0, 0", up.Prompts(), len(up.Requests()))
 }
 
 func TestCompletionsGreedyAndLogprobs(t *testing.T) {
@@ -279,14 +244,14 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	}
 	var long wire.CompletionResponse
 	postOK(t, up, "/completions", req(40, 5, false), &long)
-	if long.Object != "text_completion" || !strings.HasPrefix(long.ID, "cmpl-") || long.Model != "quill-large" || long.Created == 0 {
-		t.Errorf("envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
-	}
+	assert.Equal(t, "text_completion", long.Object, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.True(t, strings.HasPrefix(long.ID, "cmpl-"), "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.Equal(t, "quill-large", long.Model, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
+	assert.NotEqual(t, int64(0), long.Created, "envelope = %q %q %q %d", long.Object, long.ID, long.Model, long.Created)
 	lc := long.Choices[0]
 	checkLogprobs(t, lc.Text, lc.Logprobs, 5, true, 0)
-	if got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)}); got != want {
-		t.Errorf("usage = %+v; want %+v", got, want)
-	}
+	got, want := *long.Usage, (wire.Usage{PromptTokens: 7, CompletionTokens: len(lc.Logprobs.Tokens), TotalTokens: 7 + len(lc.Logprobs.Tokens)})
+	assert.True(t, got == want, "usage = %+v; want %+v", got, want)
 	// Same prompt, same answer; fewer tokens give a prefix.
 	for _, n := range []int{0, 1, 5, 16} {
 		var short wire.CompletionResponse
@@ -294,11 +259,9 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 		sc := short.Choices[0]
 		checkLogprobs(t, sc.Text, sc.Logprobs, 3, true, 0)
 		wantToks := lc.Logprobs.Tokens[:min(n, len(lc.Logprobs.Tokens))]
-		if !slices.Equal(sc.Logprobs.Tokens, wantToks) {
-			t.Errorf("max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
-		}
-		if n < len(lc.Logprobs.Tokens) && *sc.FinishReason != "length" {
-			t.Errorf("max_tokens %d: finish_reason %q; want length", n, *sc.FinishReason)
+		assert.True(t, slices.Equal(sc.Logprobs.Tokens, wantToks), "max_tokens %d: tokens %q; want the first %d of %q", n, sc.Logprobs.Tokens, n, lc.Logprobs.Tokens)
+		if n < len(lc.Logprobs.Tokens) {
+			assert.Equal(t, "length", *sc.FinishReason, "max_tokens %d: finish_reason", n)
 		}
 	}
 	// Echo: the prompt's tokens first, the first without a log-probability,
@@ -307,25 +270,18 @@ func TestCompletionsGreedyAndLogprobs(t *testing.T) {
 	postOK(t, up, "/completions", req(4, 2, true), &echoed)
 	ec := echoed.Choices[0]
 	checkLogprobs(t, ec.Text, ec.Logprobs, 2, false, 0)
-	if !strings.HasPrefix(ec.Text, prompt) || ec.Text[len(prompt):] != strings.Join(lc.Logprobs.Tokens[:4], "") {
-		t.Errorf("echoed text %q; want the prompt then %q", ec.Text, strings.Join(lc.Logprobs.Tokens[:4], ""))
-	}
-	if ec.Logprobs.TokenLogprobs[0] != nil || len(ec.Logprobs.Tokens) != 7+4 {
-		t.Errorf("echo tokens %q, first logprob %v; want 11 tokens, the first null", ec.Logprobs.Tokens, ec.Logprobs.TokenLogprobs[0])
-	}
-	if echoed.Usage.CompletionTokens != 4 || echoed.Usage.PromptTokens != 7 {
-		t.Errorf("echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
-	}
+	assert.Equal(t, prompt+strings.Join(lc.Logprobs.Tokens[:4], ""), ec.Text, "echoed text: want the prompt then the first 4 tokens")
+	assert.Nil(t, ec.Logprobs.TokenLogprobs[0], "echo: first logprob, want null")
+	assert.Len(t, ec.Logprobs.Tokens, 7+4, "echo tokens %q, want 11", ec.Logprobs.Tokens)
+	assert.Equal(t, 4, echoed.Usage.CompletionTokens, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
+	assert.Equal(t, 7, echoed.Usage.PromptTokens, "echo usage = %+v; want 7 prompt and 4 completion tokens", *echoed.Usage)
 	// Without logprobs the field is null.
 	var plain wire.CompletionResponse
 	resp, b := post(t, up, "/completions", fmt.Sprintf(`{"model":"quill-large","prompt":%q,"temperature":0}`, prompt), nil)
-	if resp.StatusCode != 200 || !strings.Contains(string(b), `"logprobs":null`) {
-		t.Errorf("answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
-	}
+	assert.Equal(t, 200, resp.StatusCode, "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
+	assert.Contains(t, string(b), `"logprobs":null`, "answer without logprobs: %d %s; want logprobs null", resp.StatusCode, b)
 	json.Unmarshal(b, &plain)
-	if got := strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""); plain.Choices[0].Text != got {
-		t.Errorf("default max_tokens answer %q; want the first 16 tokens %q", plain.Choices[0].Text, got)
-	}
+	assert.Equal(t, strings.Join(lc.Logprobs.Tokens[:min(16, len(lc.Logprobs.Tokens))], ""), plain.Choices[0].Text, "default max_tokens answer: want the first 16 tokens")
 }
 
 func TestModelsDiffer(t *testing.T) {
@@ -334,9 +290,7 @@ func TestModelsDiffer(t *testing.T) {
 	var a, b wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":"hive","max_tokens":30,"temperature":0}`, &a)
 	postOK(t, up, "/completions", `{"model":"quill-large","prompt":"hive","max_tokens":30,"temperature":0}`, &b)
-	if a.Choices[0].Text == b.Choices[0].Text {
-		t.Errorf("both models answered %q; want different answers", a.Choices[0].Text)
-	}
+	assert.NotEqual(t, b.Choices[0].Text, a.Choices[0].Text, "both models answered %q; want different answers", a.Choices[0].Text)
 }
 
 func TestArrayPromptsAndIndexes(t *testing.T) {
@@ -354,22 +308,16 @@ func TestArrayPromptsAndIndexes(t *testing.T) {
 	pj, _ := json.Marshal(prompts)
 	var batch wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(`{"model":"quill-small","prompt":%s,"max_tokens":6,"temperature":0,"n":2,"logprobs":1}`, pj), &batch)
-	if len(batch.Choices) != 6 {
-		t.Fatalf("%d choices; want 3 prompts x n=2", len(batch.Choices))
-	}
+	require.Len(t, batch.Choices, 6, "%d choices; want 3 prompts x n=2", len(batch.Choices))
 	completionTokens := 0
 	for i, c := range batch.Choices {
-		if c.Index != i {
-			t.Errorf("choice %d has index %d", i, c.Index)
-		}
-		if want := single[c.Index/2]; c.Text != want {
-			t.Errorf("choice %d (prompt %d) = %q; want %q", c.Index, c.Index/2, c.Text, want)
-		}
+		assert.Equal(t, i, c.Index, "choice %d has index %d", i, c.Index)
+		want := single[c.Index/2]
+		assert.Equal(t, want, c.Text, "choice %d (prompt %d) = %q; want %q", c.Index, c.Index/2, c.Text, want)
 		completionTokens += len(c.Logprobs.Tokens)
 	}
-	if got, want := *batch.Usage, wire.NewUsage(promptTokens, completionTokens); got != want {
-		t.Errorf("usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
-	}
+	got, want := *batch.Usage, wire.NewUsage(promptTokens, completionTokens)
+	assert.True(t, got == want, "usage = %+v; want %+v (prompt tokens once per prompt)", got, want)
 }
 
 func TestTokenIDPrompts(t *testing.T) {
@@ -380,16 +328,12 @@ func TestTokenIDPrompts(t *testing.T) {
 	var ids, text wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[24,56],"max_tokens":5,"temperature":0,"echo":true}`, &ids)
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":" barge hive","max_tokens":5,"temperature":0,"echo":true}`, &text)
-	if ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive") {
-		t.Errorf("token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
-	}
-	if ids.Usage.PromptTokens != 2 {
-		t.Errorf("prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
-	}
+	assert.False(t, ids.Choices[0].Text != text.Choices[0].Text || !strings.HasPrefix(ids.Choices[0].Text, " barge hive"), "token-id prompt answered %q; string prompt %q; want the same, starting with the prompt", ids.Choices[0].Text, text.Choices[0].Text)
+	assert.Equal(t, 2, ids.Usage.PromptTokens, "prompt_tokens = %d; want 2", ids.Usage.PromptTokens)
 	var lists wire.CompletionResponse
 	postOK(t, up, "/completions", `{"model":"quill-small","prompt":[[24,56],[24]],"max_tokens":5,"temperature":0}`, &lists)
-	if len(lists.Choices) != 2 || lists.Usage.PromptTokens != 3 {
-		t.Errorf("array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
+	if assert.Len(t, lists.Choices, 2, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens) {
+		assert.Equal(t, 3, lists.Usage.PromptTokens, "array of token lists: %d choices, %d prompt tokens; want 2, 3", len(lists.Choices), lists.Usage.PromptTokens)
 	}
 }
 
@@ -400,9 +344,7 @@ func TestStopSequences(t *testing.T) {
 	var full wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, ""), &full)
 	toks := full.Choices[0].Logprobs.Tokens
-	if len(toks) < 6 {
-		t.Fatalf("answer %q too short for the test", toks)
-	}
+	require.GreaterOrEqual(t, len(toks), 6, "answer %q too short for the test", toks)
 	tests := []struct {
 		name string
 		stop string
@@ -418,19 +360,13 @@ func TestStopSequences(t *testing.T) {
 		postOK(t, up, "/completions", fmt.Sprintf(body, `,"stop":`+string(stop)), &got)
 		c := got.Choices[0]
 		want := strings.Join(toks[:tt.keep], "")
-		if strings.Index(strings.Join(toks, ""), tt.stop) < len(want) {
-			t.Fatalf("%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
-		}
-		if c.Text != want || *c.FinishReason != "stop" {
-			t.Errorf("%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
-		}
+		require.GreaterOrEqual(t, strings.Index(strings.Join(toks, ""), tt.stop), len(want), "%s: stop %q occurs earlier in %q; the test needs another prompt", tt.name, tt.stop, toks)
+		assert.False(t, c.Text != want || *c.FinishReason != "stop", "%s: stop %q gave %q (%s); want %q (stop)", tt.name, tt.stop, c.Text, *c.FinishReason, want)
 		checkLogprobs(t, c.Text, c.Logprobs, 0, true, 0)
 	}
 	var one wire.CompletionResponse
 	postOK(t, up, "/completions", fmt.Sprintf(body, fmt.Sprintf(`,"stop":%q`, toks[1])), &one)
-	if strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop" {
-		t.Errorf("stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
-	}
+	assert.False(t, strings.Contains(one.Choices[0].Text, toks[1]) || *one.Choices[0].FinishReason != "stop", "stop as a string: %q (%s); want no %q and stop", one.Choices[0].Text, *one.Choices[0].FinishReason, toks[1])
 }
 
 func TestEndsOnItsOwn(t *testing.T) {
@@ -445,20 +381,15 @@ func TestEndsOnItsOwn(t *testing.T) {
 		case "stop":
 			stops++
 			n := len(ch.Logprobs.Tokens)
-			if last := ch.Logprobs.Tokens[n-1]; !slices.Contains([]string{".", "!", "?"}, last) {
-				t.Errorf("stopped after %q", last)
-			}
+			assert.Contains(t, []string{".", "!", "?"}, ch.Logprobs.Tokens[n-1], "stopped after a token that ends no sentence")
 		case "length":
-			if len(ch.Logprobs.Tokens) != 16 {
-				t.Errorf("length with %d tokens", len(ch.Logprobs.Tokens))
-			}
+			assert.Len(t, ch.Logprobs.Tokens, 16, "length with %d tokens", len(ch.Logprobs.Tokens))
 		default:
-			t.Errorf("finish_reason %q", *ch.FinishReason)
+			assert.Failf(t, "unexpected finish_reason", "finish_reason %q", *ch.FinishReason)
 		}
 	}
-	if stops == 0 || stops == 40 {
-		t.Errorf("%d of 40 answers ended on their own; want some but not all", stops)
-	}
+	assert.NotEqual(t, 0, stops, "%d of 40 answers ended on their own; want some but not all", stops)
+	assert.NotEqual(t, 40, stops, "%d of 40 answers ended on their own; want some but not all", stops)
 }
 
 func TestSampling(t *testing.T) {
@@ -474,23 +405,13 @@ func TestSampling(t *testing.T) {
 		return out
 	}
 	a, b := text(`,"temperature":1`), text("") // the default temperature is 1
-	if slices.Equal(a, b) {
-		t.Errorf("two unseeded sampled calls both answered %q; want them to differ", a)
-	}
-	if a[0] == a[1] && a[1] == a[2] {
-		t.Errorf("n=3 sampled choices are all %q; want them to differ", a[0])
-	}
+	assert.False(t, slices.Equal(a, b), "two unseeded sampled calls both answered %q; want them to differ", a)
+	assert.False(t, a[0] == a[1] && a[1] == a[2], "n=3 sampled choices are all %q; want them to differ", a[0])
 	s1, s2, s3 := text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":7`), text(`,"temperature":0.8,"seed":8`)
-	if !slices.Equal(s1, s2) {
-		t.Errorf("seed 7 answered %q, then %q; want the same", s1, s2)
-	}
-	if slices.Equal(s1, s3) {
-		t.Errorf("seeds 7 and 8 both answered %q; want them to differ", s1)
-	}
+	assert.True(t, slices.Equal(s1, s2), "seed 7 answered %q, then %q; want the same", s1, s2)
+	assert.False(t, slices.Equal(s1, s3), "seeds 7 and 8 both answered %q; want them to differ", s1)
 	g1, g2 := text(`,"temperature":0`), text(`,"temperature":0,"seed":99`)
-	if !slices.Equal(g1, g2) || g1[0] != g1[1] {
-		t.Errorf("greedy answers %q and %q; want all equal", g1, g2)
-	}
+	assert.False(t, !slices.Equal(g1, g2) || g1[0] != g1[1], "greedy answers %q and %q; want all equal", g1, g2)
 }
 
 // assembled is a streamed choice put back together.
@@ -508,46 +429,33 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	postOK(t, up, "/completions", base+`}`, &whole)
 
 	resp, body := post(t, up, "/completions", base+`,"stream":true,"stream_options":{"include_usage":true}}`, nil)
-	if ct := resp.Header.Get("Content-Type"); !strings.HasPrefix(ct, "text/event-stream") {
-		t.Fatalf("Content-Type = %q; want text/event-stream", ct)
-	}
+	ct := resp.Header.Get("Content-Type")
+	require.True(t, strings.HasPrefix(ct, "text/event-stream"), "Content-Type = %q; want text/event-stream", ct)
 	events := streamEvents(t, body)
 	got := map[int]*assembled{}
 	var streamUsage *wire.Usage
 	for i, data := range events {
 		var c wire.CompletionResponse
-		if err := json.Unmarshal(data, &c); err != nil {
-			t.Fatalf("event %d %s: %v", i, data, err)
-		}
-		if c.Object != "text_completion" {
-			t.Errorf("event %d object %q", i, c.Object)
-		}
+		require.NoError(t, json.Unmarshal(data, &c), "event %d %s", i, data)
+		assert.Equal(t, "text_completion", c.Object, "event %d object %q", i, c.Object)
 		if c.Usage != nil {
-			if i != len(events)-1 || len(c.Choices) != 0 {
-				t.Errorf("usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
+			if assert.Equal(t, len(events)-1, i, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices)) {
+				assert.Len(t, c.Choices, 0, "usage in event %d of %d with %d choices; want only the last, with none", i, len(events), len(c.Choices))
 			}
 			streamUsage = c.Usage
 			continue
 		}
-		if len(c.Choices) != 1 {
-			t.Fatalf("event %d has %d choices; want 1", i, len(c.Choices))
-		}
+		require.Len(t, c.Choices, 1, "event %d has %d choices; want 1", i, len(c.Choices))
 		ch := c.Choices[0]
 		a := got[ch.Index]
 		if a == nil {
 			a = &assembled{}
 			got[ch.Index] = a
 		}
-		if a.finish != "" {
-			t.Errorf("choice %d has a chunk after its finish_reason", ch.Index)
-		}
-		if ch.Logprobs == nil {
-			t.Fatalf("event %d: logprobs null", i)
-		}
+		assert.Equal(t, "", a.finish, "choice %d has a chunk after its finish_reason", ch.Index)
+		require.NotNil(t, ch.Logprobs, "event %d: logprobs null", i)
 		for j, off := range ch.Logprobs.TextOffset {
-			if off != len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")) {
-				t.Errorf("choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
-			}
+			assert.Equal(t, len(a.text)+len(strings.Join(ch.Logprobs.Tokens[:j], "")), off, "choice %d: chunk offset %d does not continue the text so far (%d bytes)", ch.Index, off, len(a.text))
 		}
 		a.text += ch.Text
 		a.lp.Tokens = append(a.lp.Tokens, ch.Logprobs.Tokens...)
@@ -558,22 +466,16 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 			a.finish = *ch.FinishReason
 		}
 	}
-	if len(got) != len(whole.Choices) {
-		t.Fatalf("stream has %d choices; want %d", len(got), len(whole.Choices))
-	}
+	require.Len(t, got, len(whole.Choices), "stream has %d choices; want %d", len(got), len(whole.Choices))
 	for _, w := range whole.Choices {
 		a := got[w.Index]
-		if a.text != w.Text || a.finish != *w.FinishReason {
-			t.Errorf("choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
-		}
+		assert.False(t, a.text != w.Text || a.finish != *w.FinishReason, "choice %d streamed %q (%s); answered %q (%s)", w.Index, a.text, a.finish, w.Text, *w.FinishReason)
 		wl, _ := json.Marshal(w.Logprobs)
 		al, _ := json.Marshal(a.lp)
-		if string(wl) != string(al) {
-			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
-		}
+		assert.Equal(t, string(al), string(wl), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	if streamUsage == nil || *streamUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", streamUsage, *whole.Usage)
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %+v", streamUsage, *whole.Usage) {
+		assert.True(t, *streamUsage == *whole.Usage, "stream usage %+v; want %+v", streamUsage, *whole.Usage)
 	}
 
 	// Without include_usage there is no usage chunk.
@@ -581,8 +483,8 @@ func TestCompletionStreamMatchesAnswer(t *testing.T) {
 	for _, data := range streamEvents(t, body) {
 		var c wire.CompletionResponse
 		json.Unmarshal(data, &c)
-		if c.Usage != nil || len(c.Choices) != 1 {
-			t.Errorf("event %s without include_usage; want one choice and no usage", data)
+		if assert.Nil(t, c.Usage, "event %s without include_usage; want one choice and no usage", data) {
+			assert.Len(t, c.Choices, 1, "event %s without include_usage; want one choice and no usage", data)
 		}
 	}
 }
@@ -594,56 +496,37 @@ func TestChat(t *testing.T) {
 	var long, short wire.ChatResponse
 	postOK(t, up, "/chat/completions", base+`,"max_completion_tokens":12}`, &long)
 	postOK(t, up, "/chat/completions", base+`,"max_tokens":5}`, &short)
-	if long.Object != "chat.completion" || !strings.HasPrefix(long.ID, "chatcmpl-") {
-		t.Errorf("envelope %q %q", long.Object, long.ID)
-	}
+	assert.Equal(t, "chat.completion", long.Object, "envelope %q %q", long.Object, long.ID)
+	assert.True(t, strings.HasPrefix(long.ID, "chatcmpl-"), "envelope %q %q", long.Object, long.ID)
 	lc := long.Choices[0]
-	if lc.Message == nil || lc.Message.Role != "assistant" {
-		t.Fatalf("message = %+v; want an assistant message", lc.Message)
-	}
+	require.NotNil(t, lc.Message, "message = %+v; want an assistant message", lc.Message)
+	require.Equal(t, "assistant", lc.Message.Role, "message = %+v; want an assistant message", lc.Message)
 	var joined string
 	for i, tl := range lc.Logprobs.Content {
 		joined += tl.Token
-		if string(bytesOf(tl.Bytes)) != tl.Token {
-			t.Errorf("token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
-		}
-		if len(tl.TopLogprobs) != 4 {
-			t.Fatalf("token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
-		}
-		if tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0 {
-			t.Errorf("greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
-		}
+		assert.Equal(t, tl.Token, string(bytesOf(tl.Bytes)), "token %d bytes %v; want the bytes of %q", i, tl.Bytes, tl.Token)
+		require.Len(t, tl.TopLogprobs, 4, "token %d has %d top_logprobs; want 4", i, len(tl.TopLogprobs))
+		assert.False(t, tl.TopLogprobs[0].Token != tl.Token || tl.TopLogprobs[0].Logprob != tl.Logprob || tl.Logprob >= 0, "greedy token %q (%v); most likely %q (%v)", tl.Token, tl.Logprob, tl.TopLogprobs[0].Token, tl.TopLogprobs[0].Logprob)
 		var mass float64
 		for j, top := range tl.TopLogprobs {
 			mass += exp(top.Logprob)
-			if j > 0 && top.Logprob >= tl.TopLogprobs[j-1].Logprob {
-				t.Errorf("token %d: top_logprobs not in decreasing order", i)
-			}
-			if string(bytesOf(top.Bytes)) != top.Token {
-				t.Errorf("top entry bytes %v; want the bytes of %q", top.Bytes, top.Token)
-			}
+			assert.False(t, j > 0 && top.Logprob >= tl.TopLogprobs[j-1].Logprob, "token %d: top_logprobs not in decreasing order", i)
+			assert.Equal(t, top.Token, string(bytesOf(top.Bytes)), "top entry bytes %v; want the bytes of %q", top.Bytes, top.Token)
 		}
-		if mass > 1 {
-			t.Errorf("token %d: top probabilities sum to %v", i, mass)
-		}
+		assert.False(t, mass > 1, "token %d: top probabilities sum to %v", i, mass)
 	}
-	if joined != lc.Message.Content {
-		t.Errorf("logprob tokens join to %q; content %q", joined, lc.Message.Content)
-	}
+	assert.Equal(t, lc.Message.Content, joined, "logprob tokens join to %q; content %q", joined, lc.Message.Content)
 	n := len(short.Choices[0].Logprobs.Content)
-	if !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop") {
-		t.Errorf("5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
-	}
-	if long.Usage.CompletionTokens != len(lc.Logprobs.Content) || long.Usage.PromptTokens == 0 || long.Usage.TotalTokens != long.Usage.PromptTokens+long.Usage.CompletionTokens {
-		t.Errorf("usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+	assert.False(t, !strings.HasPrefix(lc.Message.Content, short.Choices[0].Message.Content) || (n < 5 && *short.Choices[0].FinishReason != "stop"), "5-token answer %q is not a prefix of the 12-token %q", short.Choices[0].Message.Content, lc.Message.Content)
+	if assert.Equal(t, len(lc.Logprobs.Content), long.Usage.CompletionTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content)) {
+		assert.NotEqual(t, 0, long.Usage.PromptTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
+		assert.Equal(t, long.Usage.PromptTokens+long.Usage.CompletionTokens, long.Usage.TotalTokens, "usage %+v for %d tokens", *long.Usage, len(lc.Logprobs.Content))
 	}
 	// logprobs without top_logprobs: the content list with empty tops.
 	var bare wire.ChatResponse
 	postOK(t, up, "/chat/completions", `{"model":"quill-large","messages":[{"role":"user","content":"hi"}],"max_tokens":3,"logprobs":true}`, &bare)
 	for _, tl := range bare.Choices[0].Logprobs.Content {
-		if len(tl.TopLogprobs) != 0 {
-			t.Errorf("top_logprobs %v; want none", tl.TopLogprobs)
-		}
+		assert.Len(t, tl.TopLogprobs, 0, "top_logprobs %v; want none", tl.TopLogprobs)
 	}
 }
 
@@ -673,15 +556,11 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	var streamUsage *wire.Usage
 	for i, data := range events {
 		var c wire.ChatResponse
-		if err := json.Unmarshal(data, &c); err != nil {
-			t.Fatal(err)
-		}
-		if c.Object != "chat.completion.chunk" {
-			t.Errorf("object %q", c.Object)
-		}
+		require.NoError(t, json.Unmarshal(data, &c))
+		assert.Equal(t, "chat.completion.chunk", c.Object, "object %q", c.Object)
 		if c.Usage != nil {
-			if i != len(events)-1 || len(c.Choices) != 0 {
-				t.Errorf("usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
+			if assert.Equal(t, len(events)-1, i, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices)) {
+				assert.Len(t, c.Choices, 0, "usage chunk at %d of %d with %d choices", i, len(events), len(c.Choices))
 			}
 			streamUsage = c.Usage
 			continue
@@ -693,15 +572,9 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 			got[ch.Index] = a
 		}
 		a.chunks++
-		if ch.Delta == nil {
-			t.Fatalf("chunk %s has no delta", data)
-		}
-		if a.chunks == 1 && ch.Delta.Role != "assistant" {
-			t.Errorf("choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
-		}
-		if a.chunks > 1 && ch.Delta.Role != "" {
-			t.Errorf("choice %d role repeated in chunk %d", ch.Index, a.chunks)
-		}
+		require.NotNil(t, ch.Delta, "chunk %s has no delta", data)
+		assert.False(t, a.chunks == 1 && ch.Delta.Role != "assistant", "choice %d first delta role %q; want assistant", ch.Index, ch.Delta.Role)
+		assert.False(t, a.chunks > 1 && ch.Delta.Role != "", "choice %d role repeated in chunk %d", ch.Index, a.chunks)
 		if ch.Delta.Content != nil {
 			a.content += *ch.Delta.Content
 		}
@@ -714,17 +587,15 @@ func TestChatStreamMatchesAnswer(t *testing.T) {
 	}
 	for _, w := range whole.Choices {
 		a := got[w.Index]
-		if a == nil || a.content != w.Message.Content || a.finish != *w.FinishReason {
-			t.Fatalf("choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
-		}
+		require.NotNil(t, a, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		require.Equal(t, w.Message.Content, a.content, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
+		require.Equal(t, *w.FinishReason, a.finish, "choice %d streamed %+v; answered %q (%s)", w.Index, a, w.Message.Content, *w.FinishReason)
 		al, _ := json.Marshal(a.tokens)
 		wl, _ := json.Marshal(w.Logprobs.Content)
-		if string(al) != string(wl) {
-			t.Errorf("choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
-		}
+		assert.Equal(t, string(wl), string(al), "choice %d streamed logprobs %s; answered %s", w.Index, al, wl)
 	}
-	if streamUsage == nil || *streamUsage != *whole.Usage {
-		t.Errorf("stream usage %+v; want %+v", streamUsage, whole.Usage)
+	if assert.NotNil(t, streamUsage, "stream usage %+v; want %+v", streamUsage, whole.Usage) {
+		assert.True(t, *streamUsage == *whole.Usage, "stream usage %+v; want %+v", streamUsage, whole.Usage)
 	}
 }
 
@@ -737,31 +608,28 @@ func TestFaultStatus(t *testing.T) {
 		resp, b := post(t, up, "/completions", body, nil)
 		var env errorEnvelope
 		json.Unmarshal(b, &env)
-		if resp.StatusCode != 429 || resp.Header.Get("Retry-After") != "3" || env.Error == nil || env.Error.Type != "rate_limit_error" {
-			t.Errorf("call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		assert.Equal(t, 429, resp.StatusCode, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		assert.Equal(t, "3", resp.Header.Get("Retry-After"), "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
+		if assert.NotNil(t, env.Error, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b) {
+			assert.Equal(t, "rate_limit_error", env.Error.Type, "call %d: %d Retry-After %q body %s; want 429, 3, a rate_limit_error body", i, resp.StatusCode, resp.Header.Get("Retry-After"), b)
 		}
 	}
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("third call: %d; want 200 once the two faults are used", resp.StatusCode)
-	}
-	if up.Calls().Completions != 3 || up.Prompts() != 1 {
-		t.Errorf("Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
-	}
+	third, _ := post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, third.StatusCode, "third call: want 200 once the two faults are used")
+	assert.Equal(t, 3, up.Calls().Completions, "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
+	assert.Equal(t, 1, up.Prompts(), "Calls %+v, Prompts %d; want 3 calls, 1 prompt", up.Calls(), up.Prompts())
 
 	up.FailNext(1, upstreamtest.Fault{Path: upstreamtest.PathChat, Status: 503, Body: "upstream busy"})
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("completions call under a chat-only fault: %d; want 200", resp.StatusCode)
-	}
+	completion, _ := post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, completion.StatusCode, "completions call under a chat-only fault")
 	resp, b := post(t, up, "/chat/completions", `{"model":"quill-small","messages":[{"role":"user","content":"hi"}]}`, nil)
-	if resp.StatusCode != 503 || string(b) != "upstream busy" {
-		t.Errorf("chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
-	}
+	assert.Equal(t, 503, resp.StatusCode, "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
+	assert.Equal(t, "upstream busy", string(b), "chat call: %d %q; want 503 with the given body", resp.StatusCode, b)
 
 	up.FailNext(5, upstreamtest.Fault{Status: 500})
 	up.ClearFaults()
-	if resp, _ := post(t, up, "/completions", body, nil); resp.StatusCode != 200 {
-		t.Errorf("after ClearFaults: %d; want 200", resp.StatusCode)
-	}
+	resp, _ = post(t, up, "/completions", body, nil)
+	assert.Equal(t, 200, resp.StatusCode, "after ClearFaults: %d; want 200", resp.StatusCode)
 }
 
 func TestFaultRatio(t *testing.T) {
@@ -773,13 +641,11 @@ func TestFaultRatio(t *testing.T) {
 		resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil)
 		got = append(got, resp.StatusCode)
 	}
-	if want := []int{200, 502, 200, 502, 200, 502}; !slices.Equal(got, want) {
-		t.Errorf("statuses %v; want %v", got, want)
-	}
+	want := []int{200, 502, 200, 502, 200, 502}
+	assert.True(t, slices.Equal(got, want), "statuses %v; want %v", got, want)
 	up.Reset()
-	if resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil); resp.StatusCode != 200 {
-		t.Errorf("after Reset: %d; want 200", resp.StatusCode)
-	}
+	resp, _ := post(t, up, "/completions", `{"model":"quill-small","prompt":"hi","max_tokens":1}`, nil)
+	assert.Equal(t, 200, resp.StatusCode, "after Reset: %d; want 200", resp.StatusCode)
 }
 
 // do sends a completions request under ctx and returns the response with
@@ -807,17 +673,15 @@ func TestFaultHangAndDelay(t *testing.T) {
 		ctx, cancel := context.WithTimeout(context.Background(), 50*time.Millisecond)
 		_, _, err := do(ctx, up, body)
 		cancel()
-		if !errors.Is(err, context.DeadlineExceeded) {
-			t.Errorf("fault %+v: error %v; want the client's deadline", f, err)
-		}
+		assert.ErrorIs(t, err, context.DeadlineExceeded, "fault %+v: error %v; want the client's deadline", f, err)
 	}
 	up.FailNext(1, upstreamtest.Fault{Delay: time.Millisecond})
-	if resp, _, err := do(context.Background(), up, body); err != nil || resp.StatusCode != 200 {
-		t.Errorf("short delay: %v; want a normal answer", err)
+	resp, _, err := do(context.Background(), up, body)
+	if assert.NoError(t, err, "short delay: %v; want a normal answer", err) {
+		assert.Equal(t, 200, resp.StatusCode, "short delay: %v; want a normal answer", err)
 	}
-	if got := up.Calls().Completions; got != 3 {
-		t.Errorf("Calls().Completions = %d; want 3", got)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, 3, got, "Calls().Completions = %d; want 3", got)
 }
 
 func TestFaultHangReleasedByClose(t *testing.T) {
@@ -829,9 +693,7 @@ func TestFaultHangReleasedByClose(t *testing.T) {
 		_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
 		errc <- err
 	}()
-	if err := up.AwaitHeld(context.Background(), 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(context.Background(), 1))
 	up.Release() // now it hangs in the fault
 	up.Close()   // must not wait for the hanging call forever
 	<-errc
@@ -841,11 +703,11 @@ func TestFaultReset(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	up.FailNext(1, upstreamtest.Fault{Reset: true})
-	if _, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err == nil {
-		t.Error("reset connection: no error; want the client to see the connection drop")
-	}
-	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
-		t.Errorf("next call: %v; want a normal answer", err)
+	_, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.Error(t, err, "reset connection: no error; want the client to see the connection drop")
+	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	if assert.NoError(t, err, "next call: %v; want a normal answer", err) {
+		assert.Equal(t, 200, resp.StatusCode, "next call: %v; want a normal answer", err)
 	}
 }
 
@@ -853,34 +715,26 @@ func TestFaultCut(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	up.FailNext(1, upstreamtest.Fault{Cut: 20})
-	if _, b, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); !errors.Is(err, io.ErrUnexpectedEOF) || len(b) != 20 {
-		t.Errorf("cut JSON answer: %d bytes, error %v; want 20 bytes and an unexpected EOF", len(b), err)
-	}
+	_, cut, cutErr := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	assert.ErrorIs(t, cutErr, io.ErrUnexpectedEOF, "cut JSON answer")
+	assert.Len(t, cut, 20, "cut JSON answer: %d bytes, want 20", len(cut))
 	up.FailNext(1, upstreamtest.Fault{Cut: 3})
 	req, _ := http.NewRequest(http.MethodPost, up.URL()+"/completions", strings.NewReader(`{"model":"quill-small","prompt":"hi","stream":true,"max_tokens":10}`))
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	r := sse.NewReader(resp.Body)
 	n := 0
 	for {
 		ev, err := r.Next()
 		if err != nil {
-			if !errors.Is(err, io.ErrUnexpectedEOF) {
-				t.Errorf("cut stream ended with %v; want an unexpected EOF", err)
-			}
+			assert.ErrorIs(t, err, io.ErrUnexpectedEOF, "cut stream ended with %v; want an unexpected EOF", err)
 			break
 		}
-		if ev.IsDone() {
-			t.Fatal("cut stream sent [DONE]")
-		}
+		require.False(t, ev.IsDone(), "cut stream sent [DONE]")
 		n++
 	}
-	if n != 3 {
-		t.Errorf("cut stream gave %d events; want 3", n)
-	}
+	assert.Equal(t, 3, n, "cut stream gave %d events; want 3", n)
 }
 
 func TestBlockRelease(t *testing.T) {
@@ -893,8 +747,7 @@ func TestBlockRelease(t *testing.T) {
 	for range callers {
 		wg.Go(func() {
 			resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi","max_tokens":2}`)
-			if err != nil {
-				t.Error(err)
+			if !assert.NoError(t, err) {
 				results <- 0
 				return
 			}
@@ -903,37 +756,29 @@ func TestBlockRelease(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, callers); err != nil {
-		t.Fatal(err)
-	}
-	if got := up.Held(); got != callers {
-		t.Errorf("Held() = %d; want %d", got, callers)
-	}
-	if got := up.Calls().Completions; got != callers {
-		t.Errorf("held calls counted %d; want %d (counted on arrival)", got, callers)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, callers))
+	got := up.Held()
+	assert.Equal(t, callers, got, "Held() = %d; want %d", got, callers)
+	got = up.Calls().Completions
+	assert.Equal(t, callers, got, "held calls counted %d; want %d (counted on arrival)", got, callers)
 	select {
 	case s := <-results:
-		t.Fatalf("a held call answered (%d) before Release", s)
+		require.Failf(t, "a held call answered before Release", "status %d", s)
 	default:
 	}
-	if up.Prompts() != 0 {
-		t.Errorf("Prompts() = %d while held; want 0", up.Prompts())
-	}
+	assert.Equal(t, 0, up.Prompts(), "Prompts() = %d while held; want 0", up.Prompts())
 	up.Release()
 	wg.Wait()
 	close(results)
 	for s := range results {
-		if s != 200 {
-			t.Errorf("released call: status %d", s)
-		}
+		assert.Equal(t, 200, s, "released call: status %d", s)
 	}
-	if up.Held() != 0 || up.Prompts() != callers {
-		t.Errorf("after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
-	}
+	assert.Equal(t, 0, up.Held(), "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
+	assert.Equal(t, callers, up.Prompts(), "after Release: Held %d, Prompts %d; want 0, %d", up.Held(), up.Prompts(), callers)
 	// Not blocked any more.
-	if resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`); err != nil || resp.StatusCode != 200 {
-		t.Errorf("call after Release: %v", err)
+	resp, _, err := do(context.Background(), up, `{"model":"quill-small","prompt":"hi"}`)
+	if assert.NoError(t, err, "call after Release: %v", err) {
+		assert.Equal(t, 200, resp.StatusCode, "call after Release: %v", err)
 	}
 }
 
@@ -948,24 +793,18 @@ func TestHeldCallGivesUp(t *testing.T) {
 		_, _, err := do(ctx, up, `{"model":"quill-small","prompt":"hi"}`)
 		errc <- err
 	}()
-	if err := up.AwaitHeld(context.Background(), 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(context.Background(), 1))
 	cancel()
-	if err := <-errc; !errors.Is(err, context.Canceled) {
-		t.Errorf("error %v; want context.Canceled", err)
-	}
+	err := <-errc
+	assert.ErrorIs(t, err, context.Canceled, "error %v; want context.Canceled", err)
 	// The server notices the client leaving and stops holding the call.
 	waitCtx, stop := context.WithTimeout(context.Background(), 10*time.Second)
 	defer stop()
-	if err := up.AwaitHeld(waitCtx, 0); err != nil {
-		t.Fatalf("held call not released after the client left: %v", err)
-	}
+	require.NoError(t, up.AwaitHeld(waitCtx, 0), "held call not released after the client left")
 	short, stop2 := context.WithCancel(context.Background())
 	stop2()
-	if err := up.AwaitHeld(short, 1); !errors.Is(err, context.Canceled) {
-		t.Errorf("AwaitHeld with a done context: %v; want context.Canceled", err)
-	}
+	err = up.AwaitHeld(short, 1)
+	assert.ErrorIs(t, err, context.Canceled, "AwaitHeld with a done context: %v; want context.Canceled", err)
 }
 
 // TestTopLogprobsOrder checks that each top_logprobs object lists its
@@ -982,13 +821,9 @@ func TestTopLogprobsOrder(t *testing.T) {
 			} `json:"logprobs"`
 		} `json:"choices"`
 	}
-	if err := json.Unmarshal(body, &raw); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal(body, &raw))
 	tops := raw.Choices[0].Logprobs.TopLogprobs
-	if len(tops) == 0 {
-		t.Fatalf("no top_logprobs in %s", body)
-	}
+	require.NotEqual(t, 0, len(tops), "no top_logprobs in %s", body)
 	for i, obj := range tops {
 		dec := json.NewDecoder(strings.NewReader(string(obj)))
 		dec.Token() // {
@@ -996,18 +831,12 @@ func TestTopLogprobsOrder(t *testing.T) {
 		for dec.More() {
 			dec.Token() // key
 			var v float64
-			if err := dec.Decode(&v); err != nil {
-				t.Fatal(err)
-			}
-			if n > 0 && v >= prev {
-				t.Errorf("position %d: entry %d (%v) not below the one before (%v) in %s", i, n, v, prev, obj)
-			}
+			require.NoError(t, dec.Decode(&v))
+			assert.False(t, n > 0 && v >= prev, "position %d: entry %d (%v) not below the one before (%v) in %s", i, n, v, prev, obj)
 			prev = v
 			n++
 		}
-		if n != 8 {
-			t.Errorf("position %d: %d entries; want 8", i, n)
-		}
+		assert.Equal(t, 8, n, "position %d: %d entries; want 8", i, n)
 	}
 }
 
@@ -1027,18 +856,14 @@ func TestMaxConcurrentCountsCallsServedAtOnce(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
-	if err := s.AwaitHeld(ctx, n); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, s.AwaitHeld(ctx, n))
 	s.Release()
 	wg.Wait()
-	if got := s.MaxConcurrent(); got != n {
-		t.Errorf("MaxConcurrent = %d, want %d", got, n)
-	}
+	got := s.MaxConcurrent()
+	assert.Equal(t, n, got, "MaxConcurrent = %d, want %d", got, n)
 	s.Reset()
-	if got := s.MaxConcurrent(); got != 0 {
-		t.Errorf("after Reset: MaxConcurrent = %d, want 0", got)
-	}
+	got = s.MaxConcurrent()
+	assert.Equal(t, 0, got, "after Reset: MaxConcurrent = %d, want 0", got)
 }
 
 func TestFaultEchoAuth(t *testing.T) {

@@ -2,9 +2,11 @@ package redisstate_test
 
 import (
 	"context"
-	"errors"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/redis/go-redis/v9"
 	"go.uber.org/goleak"
@@ -44,41 +46,29 @@ func TestStateRoundTripAndKeysShareASlot(t *testing.T) {
 		t.Run(be.name, func(t *testing.T) {
 			c := be.start(t).client(t)
 			s, err := redisstate.New(c, redisstate.Options{Prefix: "st"})
-			if err != nil {
-				t.Fatal(err)
-			}
-			if b, err := s.GetData("gobreaker:state:main"); err != nil || b != nil {
-				t.Fatalf("no state yet: %q %v, want nil nil", b, err)
-			}
-			if err := s.SetData("gobreaker:state:main", []byte(`{"state":2}`)); err != nil {
-				t.Fatal(err)
-			}
-			if b, err := s.GetData("gobreaker:state:main"); err != nil || string(b) != `{"state":2}` {
-				t.Fatalf("GetData = %q %v", b, err)
-			}
-			if err := s.Lock("gobreaker:mutex:main"); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
+			state, err := s.GetData("gobreaker:state:main")
+			require.NoError(t, err, "no state yet")
+			require.Nil(t, state, "no state yet: %q, want nil", state)
+			require.NoError(t, s.SetData("gobreaker:state:main", []byte(`{"state":2}`)))
+			state, err = s.GetData("gobreaker:state:main")
+			require.NoError(t, err, "GetData")
+			require.Equal(t, `{"state":2}`, string(state), "GetData")
+			require.NoError(t, s.Lock("gobreaker:mutex:main"))
 			ctx := context.Background()
 			// Named keys, not KEYS: a cluster client sends KEYS to one node.
 			keys := []string{"st:breaker:{main}:state", "st:breaker:{main}:lock"}
-			if n, err := c.Exists(ctx, keys...).Result(); err != nil || n != 2 {
-				t.Fatalf("EXISTS %v = %d %v, want the state and the lock", keys, n, err)
-			}
+			n, err := c.Exists(ctx, keys...).Result()
+			require.NoError(t, err, "EXISTS %v = %d %v, want the state and the lock", keys, n, err)
+			require.Equal(t, int64(2), n, "EXISTS %v = %d %v, want the state and the lock", keys, n, err)
 			a, _ := c.ClusterKeySlot(ctx, keys[0]).Result()
 			b, _ := c.ClusterKeySlot(ctx, keys[1]).Result()
-			if a != b {
-				t.Errorf("%s in slot %d, %s in slot %d: want one slot (hash tag)", keys[0], a, keys[1], b)
-			}
-			if ttl, _ := c.TTL(ctx, keys[0]).Result(); ttl <= 0 {
-				t.Errorf("state TTL %v, want the StateTTL", ttl)
-			}
-			if err := s.Unlock("gobreaker:mutex:main"); err != nil {
-				t.Fatal(err)
-			}
-			if n, _ := c.Exists(ctx, keys[1]).Result(); n != 0 {
-				t.Errorf("lock still there after Unlock")
-			}
+			assert.Equal(t, b, a, "%s in slot %d, %s in slot %d: want one slot (hash tag)", keys[0], a, keys[1], b)
+			ttl, _ := c.TTL(ctx, keys[0]).Result()
+			assert.Greater(t, ttl, time.Duration(0), "state TTL %v, want the StateTTL", ttl)
+			require.NoError(t, s.Unlock("gobreaker:mutex:main"))
+			n, _ = c.Exists(ctx, keys[1]).Result()
+			assert.Equal(t, int64(0), n, "lock still there after Unlock")
 		})
 	}
 }
@@ -92,39 +82,25 @@ func TestLockIsExclusiveAndExpires(t *testing.T) {
 			opts := redisstate.Options{LockTTL: time.Minute, LockWait: 50 * time.Millisecond}
 			a, _ := redisstate.New(srv.client(t), opts)
 			b, _ := redisstate.New(srv.client(t), opts)
-			if err := a.Lock("gobreaker:mutex:x"); err != nil {
-				t.Fatal(err)
-			}
-			if err := b.Lock("gobreaker:mutex:x"); !errors.Is(err, redisstate.ErrLockBusy) {
-				t.Fatalf("second holder: %v, want ErrLockBusy", err)
-			}
+			require.NoError(t, a.Lock("gobreaker:mutex:x"))
+			err := b.Lock("gobreaker:mutex:x")
+			require.ErrorIs(t, err, redisstate.ErrLockBusy, "second holder: %v, want ErrLockBusy", err)
 			// b cannot release a's lock.
 			_ = b.Unlock("gobreaker:mutex:x")
-			if err := b.Lock("gobreaker:mutex:x"); !errors.Is(err, redisstate.ErrLockBusy) {
-				t.Fatalf("after b's unlock: %v, want still busy", err)
-			}
-			if err := a.Unlock("gobreaker:mutex:x"); err != nil {
-				t.Fatal(err)
-			}
-			if err := b.Lock("gobreaker:mutex:x"); err != nil {
-				t.Fatalf("after a's unlock: %v", err)
-			}
+			err = b.Lock("gobreaker:mutex:x")
+			require.ErrorIs(t, err, redisstate.ErrLockBusy, "after b's unlock: %v, want still busy", err)
+			require.NoError(t, a.Unlock("gobreaker:mutex:x"))
+			require.NoError(t, b.Lock("gobreaker:mutex:x"), "after a's unlock")
 			// A holder that never unlocks loses the lock after LockTTL.
 			short := redisstate.Options{LockTTL: 200 * time.Millisecond, LockWait: 50 * time.Millisecond}
 			c, _ := redisstate.New(srv.client(t), short)
 			d, _ := redisstate.New(srv.client(t), short)
-			if err := c.Lock("gobreaker:mutex:y"); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, c.Lock("gobreaker:mutex:y"))
 			deadline := time.Now().Add(10 * time.Second)
 			for d.Lock("gobreaker:mutex:y") != nil {
-				if time.Now().After(deadline) {
-					t.Fatal("the lock never expired")
-				}
+				require.False(t, time.Now().After(deadline), "the lock never expired")
 			}
-			if err := d.Unlock("gobreaker:mutex:y"); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, d.Unlock("gobreaker:mutex:y"))
 		})
 	}
 }
@@ -136,22 +112,18 @@ func TestOutageIsAnErrorNotAnEmptyState(t *testing.T) {
 			s, _ := redisstate.New(srv.client(t), redisstate.Options{Timeout: 100 * time.Millisecond})
 			srv.stop()
 			b, err := s.GetData("gobreaker:state:x")
-			if err == nil {
-				t.Fatal("GetData on a stopped Redis: no error")
-			}
+			require.Error(t, err, "GetData on a stopped Redis: no error")
 			// gobreaker reads empty data as "no state" before it looks at err.
-			if len(b) == 0 {
-				t.Error("GetData returned empty data with its error")
-			}
-			if err := s.Lock("gobreaker:mutex:x"); err == nil || errors.Is(err, redisstate.ErrLockBusy) {
-				t.Errorf("Lock on a stopped Redis: %v, want the connection error", err)
+			assert.NotEqual(t, 0, len(b), "GetData returned empty data with its error")
+			err = s.Lock("gobreaker:mutex:x")
+			if assert.Error(t, err, "Lock on a stopped Redis: %v, want the connection error", err) {
+				assert.NotErrorIs(t, err, redisstate.ErrLockBusy, "Lock on a stopped Redis: %v, want the connection error", err)
 			}
 		})
 	}
 }
 
 func TestPrefixWithBracesIsRefused(t *testing.T) {
-	if _, err := redisstate.New(nil, redisstate.Options{Prefix: "a{b}"}); err == nil {
-		t.Error("prefix with braces accepted")
-	}
+	_, err := redisstate.New(nil, redisstate.Options{Prefix: "a{b}"})
+	assert.Error(t, err, "prefix with braces accepted")
 }

@@ -3,11 +3,13 @@ package gguf
 import (
 	"bytes"
 	"encoding/binary"
-	"errors"
 	"math"
 	"math/rand/v2"
 	"os"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 )
@@ -42,60 +44,48 @@ func smallFile(tb testing.TB) []byte {
 		{Name: "a", Dims: []uint64{3, 2}, Data: []float32{1, 2, 3, 4, 5, 6}},
 		{Name: "b", Dims: []uint64{1}, Data: []float32{-1}},
 	})
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return b
 }
 
 func TestParseSmallFile(t *testing.T) {
 	f, err := Parse(smallFile(t))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if got, want := len(f.Keys), 15; got != want {
-		t.Errorf("keys: got %d, want %d", got, want)
-	}
-	if s, err := f.String("general.architecture"); err != nil || s != "llama" {
-		t.Errorf("architecture: got %q, %v; want llama", s, err)
-	}
+	require.NoError(t, err)
+	got, want := len(f.Keys), 15
+	assert.Equal(t, want, got, "keys: got %d, want %d", got, want)
+	arch, archErr := f.String("general.architecture")
+	assert.NoError(t, archErr, "architecture")
+	assert.Equal(t, "llama", arch, "architecture")
 	for _, tc := range []struct {
 		key  string
 		want uint64
 	}{{"u8", 7}, {"u16", 700}, {"u32", 70000}, {"u64", 1 << 40}} {
-		if got, err := f.Uint(tc.key); err != nil || got != tc.want {
-			t.Errorf("Uint(%q): got %d, %v; want %d", tc.key, got, err, tc.want)
-		}
+		got, err := f.Uint(tc.key)
+		assert.NoError(t, err, "Uint(%q)", tc.key)
+		assert.Equal(t, tc.want, got, "Uint(%q)", tc.key)
 	}
-	if _, err := f.Uint("i8"); !errors.Is(err, ErrWrongType) {
-		t.Errorf("Uint of negative: got %v, want ErrWrongType", err)
-	}
-	if _, err := f.String("u8"); !errors.Is(err, ErrWrongType) {
-		t.Errorf("String of uint8: got %v, want ErrWrongType", err)
-	}
-	if _, err := f.Value("missing"); !errors.Is(err, ErrNotFound) {
-		t.Errorf("missing key: got %v, want ErrNotFound", err)
-	}
-	if got, err := f.Float("f64"); err != nil || got != 2.25 {
-		t.Errorf("Float(f64): got %v, %v", got, err)
-	}
+	_, uintErr := f.Uint("i8")
+	assert.ErrorIs(t, uintErr, ErrWrongType, "Uint of negative")
+	_, strErr := f.String("u8")
+	assert.ErrorIs(t, strErr, ErrWrongType, "String of uint8")
+	_, missErr := f.Value("missing")
+	assert.ErrorIs(t, missErr, ErrNotFound, "missing key")
+	f64, f64Err := f.Float("f64")
+	assert.NoError(t, f64Err, "Float(f64)")
+	assert.Equal(t, 2.25, f64, "Float(f64)")
 	v, _ := f.Value("strs")
-	if s, ok := v.V.([]string); !ok || len(s) != 3 || s[1] != "bc" {
-		t.Errorf("strs: got %#v", v.V)
+	strs, ok := v.V.([]string)
+	if assert.True(t, ok, "strs: got %#v", v.V) && assert.Len(t, strs, 3, "strs") {
+		assert.Equal(t, "bc", strs[1], "strs")
 	}
 	a, err := f.Float32s("a")
-	if err != nil {
-		t.Fatal(err)
-	}
-	if want := []float32{1, 2, 3, 4, 5, 6}; !equalF32(a, want) {
-		t.Errorf("tensor a: got %v, want %v", a, want)
-	}
-	if ti, _ := f.Tensor("b"); ti.Offset%DefaultAlignment != 0 || ti.Offset == 0 {
-		t.Errorf("tensor b offset %d not aligned", ti.Offset)
-	}
-	if _, err := f.Float32s("zz"); !errors.Is(err, ErrNotFound) {
-		t.Errorf("missing tensor: got %v", err)
-	}
+	require.NoError(t, err)
+	assert.True(t, equalF32(a, []float32{1, 2, 3, 4, 5, 6}), "tensor a: got %v, want 1..6", a)
+	ti, _ := f.Tensor("b")
+	assert.Equal(t, uint64(0), ti.Offset%DefaultAlignment, "tensor b offset %d not aligned", ti.Offset)
+	assert.NotEqual(t, uint64(0), ti.Offset, "tensor b offset %d not aligned", ti.Offset)
+	_, err = f.Float32s("zz")
+	assert.ErrorIs(t, err, ErrNotFound, "missing tensor: got %v", err)
 }
 
 func equalF32(a, b []float32) bool {
@@ -114,21 +104,22 @@ func equalF32(a, b []float32) bool {
 // (checked by parsing the header)"): v3, 19 keys, 48 F32 tensors, data at 14176.
 func TestRealModelHeader(t *testing.T) {
 	f, err := Open(modelPath(t))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if f.Version != 3 || len(f.Keys) != 19 || len(f.Tensors) != 48 || f.DataOffset != 14176 {
-		t.Errorf("got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176",
-			f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
-	}
-	for _, ti := range f.Tensors {
-		if ti.Type != TensorF32 {
-			t.Errorf("tensor %s: type %v, want F32", ti.Name, ti.Type)
+	require.NoError(t, err)
+	assert.Equal(t, uint32(3), f.Version, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
+	if assert.Len(t, f.Keys, 19, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset) {
+		if assert.Len(t, f.Tensors, 48, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset) {
+			assert.Equal(t, uint64(14176), f.DataOffset, "got version %d, %d keys, %d tensors, data at %d; want 3, 19, 48, 14176", f.Version, len(f.Keys), len(f.Tensors), f.DataOffset)
 		}
 	}
+	for _, ti := range f.Tensors {
+		assert.Equal(t, TensorF32, ti.Type, "tensor %s: type %v, want F32", ti.Name, ti.Type)
+	}
 	ti, err := f.Tensor("blk.0.ffn_gate.weight")
-	if err != nil || len(ti.Dims) != 2 || ti.Dims[0] != 64 || ti.Dims[1] != 172 {
-		t.Errorf("ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+	if assert.NoError(t, err, "ffn_gate: got %+v, %v; want dims [64 172]", ti, err) {
+		if assert.Len(t, ti.Dims, 2, "ffn_gate: got %+v, %v; want dims [64 172]", ti, err) {
+			assert.Equal(t, uint64(64), ti.Dims[0], "ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+			assert.Equal(t, uint64(172), ti.Dims[1], "ffn_gate: got %+v, %v; want dims [64 172]", ti, err)
+		}
 	}
 }
 
@@ -142,9 +133,7 @@ func TestParseErrors(t *testing.T) {
 		return b
 	}
 	f, err := Parse(good)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	// Offset of tensor "a"'s type field: the directory ends right before
 	// the aligned data start; find it by re-encoding a file without tensors.
 	dirStart := len(mustEncodeMeta(t))
@@ -171,9 +160,7 @@ func TestParseErrors(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			_, err := Parse(tc.in)
-			if !errors.Is(err, tc.want) {
-				t.Errorf("got %v, want %v", err, tc.want)
-			}
+			assert.ErrorIs(t, err, tc.want, "got %v, want %v", err, tc.want)
 		})
 	}
 }
@@ -181,18 +168,14 @@ func TestParseErrors(t *testing.T) {
 func mustEncodeMeta(tb testing.TB) []byte {
 	tb.Helper()
 	f, err := Parse(smallFile(tb))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	var meta []KeyValue
 	for _, k := range f.Keys {
 		v, _ := f.Value(k)
 		meta = append(meta, KeyValue{k, v})
 	}
 	b, err := Encode(meta, nil)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	// Encode pads to the alignment; find the unpadded end by re-parsing:
 	// with no tensors the directory is empty, so the header ends where the
 	// reader stopped. Recompute it from the last value instead of padding.
@@ -211,9 +194,8 @@ func mustEncodeMeta(tb testing.TB) []byte {
 func TestTruncatedEveryOffset(t *testing.T) {
 	good := smallFile(t)
 	for n := 0; n < len(good); n++ {
-		if _, err := Parse(good[:n]); err == nil {
-			t.Fatalf("prefix of %d/%d bytes parsed without error", n, len(good))
-		}
+		_, err := Parse(good[:n])
+		require.Error(t, err, "prefix of %d/%d bytes parsed without error", n, len(good))
 	}
 }
 
@@ -221,20 +203,16 @@ func TestTruncatedEveryOffset(t *testing.T) {
 // at every offset, and at a sample of offsets in the data section.
 func TestTruncatedRealModel(t *testing.T) {
 	b, err := os.ReadFile(modelPath(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	for n := 0; n < 14176+64; n++ {
-		if _, err := Parse(b[:n]); err == nil {
-			t.Fatalf("prefix of %d bytes parsed without error", n)
-		}
+		_, err := Parse(b[:n])
+		require.Error(t, err, "prefix of %d bytes parsed without error", n)
 	}
 	rng := rand.New(rand.NewPCG(1, 2))
 	for range 200 {
 		n := rng.IntN(len(b))
-		if _, err := Parse(b[:n]); err == nil {
-			t.Fatalf("prefix of %d bytes parsed without error", n)
-		}
+		_, err := Parse(b[:n])
+		require.Error(t, err, "prefix of %d bytes parsed without error", n)
 	}
 }
 
@@ -325,24 +303,15 @@ func q8File(tb testing.TB) []byte {
 
 func TestDequantize(t *testing.T) {
 	f, err := Parse(q8File(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	q, err := f.Float32s("q")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	for i, got := range q {
-		if want := 0.5 * float32(i-16); got != want {
-			t.Errorf("q[%d]: got %v, want %v", i, got, want)
-		}
+		want := 0.5 * float32(i-16)
+		assert.Equal(t, want, got, "q[%d]: got %v, want %v", i, got, want)
 	}
 	h, err := f.Float32s("h")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	want := []float32{1, -2, float32(math.Inf(1)), float32(math.Ldexp(1, -24)), 65504}
-	if !equalF32(h, want) {
-		t.Errorf("f16: got %v, want %v", h, want)
-	}
+	assert.True(t, equalF32(h, want), "f16: got %v, want %v", h, want)
 }

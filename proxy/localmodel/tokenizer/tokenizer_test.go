@@ -1,12 +1,14 @@
 package tokenizer
 
 import (
-	"errors"
 	"fmt"
 	"math/rand/v2"
 	"strings"
 	"testing"
 	"unicode/utf8"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/localmodel/gguf"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
@@ -21,14 +23,10 @@ func modelPath(tb testing.TB) string {
 func realTokenizer(tb testing.TB) *Tokenizer {
 	tb.Helper()
 	f, err := gguf.Open(modelPath(tb))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	get := func(k string) gguf.Value {
 		v, err := f.Value(k)
-		if err != nil {
-			tb.Fatal(err)
-		}
+		require.NoError(tb, err)
 		return v
 	}
 	tok, err := New(Vocab{
@@ -37,9 +35,7 @@ func realTokenizer(tb testing.TB) *Tokenizer {
 		Types:  get("tokenizer.ggml.token_type").V.([]int32),
 		BOS:    1, EOS: 2, Unknown: 0,
 	})
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return tok
 }
 
@@ -63,9 +59,7 @@ func handVocab(tb testing.TB, extra map[string]float32) *Tokenizer {
 		v.Scores = append(v.Scores, s)
 	}
 	tok, err := New(v)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return tok
 }
 
@@ -99,28 +93,23 @@ func TestEncodeHandVocab(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			tok := handVocab(t, tc.extra)
 			ids := tok.Encode(tc.in)
-			if got := strings.Join(pieces(tok, ids), "|"); got != tc.want {
-				t.Errorf("Encode(%q): got %s, want %s", tc.in, got, tc.want)
-			}
-			if got := tok.Decode(ids); got != tc.in {
-				t.Errorf("Decode: got %q, want %q", got, tc.in)
-			}
+			got := strings.Join(pieces(tok, ids), "|")
+			assert.Equal(t, tc.want, got, "Encode(%q): got %s, want %s", tc.in, got, tc.want)
+			got = tok.Decode(ids)
+			assert.Equal(t, tc.in, got, "Decode: got %q, want %q", got, tc.in)
 		})
 	}
 }
 
 func TestEncodeRealVocab(t *testing.T) {
 	tok := realTokenizer(t)
-	if got := tok.Encode(""); len(got) != 0 {
-		t.Errorf("Encode(\"\"): got %v, want none", got)
-	}
+	got := tok.Encode("")
+	assert.Len(t, got, 0, "Encode(\"\"): got %v, want none", got)
 	// The opening words of the model's published greedy output (llama2.c
 	// doc/stories260K.md, via MODEL-SOURCE.md) are whole pieces of this
 	// vocabulary, so BPE must reach them.
 	ids := tok.Encode("Once upon a time")
-	if got, want := strings.Join(pieces(tok, ids), "|"), "▁Once|▁upon|▁a|▁time"; got != want {
-		t.Errorf("got %s, want %s", got, want)
-	}
+	assert.Equal(t, "▁Once|▁upon|▁a|▁time", strings.Join(pieces(tok, ids), "|"))
 }
 
 // TestByteTokensCoverEveryByte checks each byte value has a token that
@@ -129,13 +118,12 @@ func TestByteTokensCoverEveryByte(t *testing.T) {
 	tok := realTokenizer(t)
 	for b := 0; b < 256; b++ {
 		id := tok.byteTok[b]
-		if got := tok.Bytes(id); len(got) != 1 || got[0] != byte(b) {
-			t.Errorf("byte 0x%02X: token %d gives %q", b, id, got)
+		got := tok.Bytes(id)
+		if assert.Len(t, got, 1, "byte 0x%02X: token %d gives %q", b, id, got) {
+			assert.Equal(t, byte(b), got[0], "byte 0x%02X: token %d gives %q", b, id, got)
 		}
 		s := string([]byte{'x', byte(b)})
-		if got := tok.Decode(tok.Encode(s)); got != s {
-			t.Errorf("round trip of %q: got %q", s, got)
-		}
+		assert.Equal(t, s, tok.Decode(tok.Encode(s)), "round trip of %q", s)
 	}
 }
 
@@ -144,17 +132,14 @@ func TestDisplayUnique(t *testing.T) {
 	seen := map[string]int{}
 	for id := 0; id < tok.Len(); id++ {
 		d := tok.Display(id)
-		if prev, dup := seen[d]; dup {
-			t.Errorf("display %q shared by %d and %d", d, prev, id)
-		}
+		prev, dup := seen[d]
+		assert.False(t, dup, "display %q shared by %d and %d", d, prev, id)
 		seen[d] = id
-		if !utf8.ValidString(d) || d == "" {
-			t.Errorf("display of %d is %q", id, d)
-		}
+		assert.True(t, utf8.ValidString(d), "display of %d is %q", id, d)
+		assert.NotEqual(t, "", d, "display of %d is %q", id, d)
 	}
-	if got := tok.Display(tok.pieces["e"]); got != "e" {
-		t.Errorf("display of e: got %q", got)
-	}
+	got := tok.Display(tok.pieces["e"])
+	assert.Equal(t, "e", got, "display of e: got %q", got)
 }
 
 // randomText mixes ASCII, spaces, the "▁" mark, multi-byte runes and
@@ -189,13 +174,13 @@ func TestRoundTripProperty(t *testing.T) {
 	for i := range 3000 {
 		s := randomText(rng, i%2 == 1)
 		ids := tok.Encode(s)
-		if got := tok.Decode(ids); got != s {
-			t.Fatalf("round trip: got %q, want %q (ids %v)", got, s, ids)
-		}
+		got := tok.Decode(ids)
+		require.Equal(t, s, got, "round trip: got %q, want %q (ids %v)", got, s, ids)
 		for _, id := range ids {
-			if id < 0 || id >= tok.Len() || id == tok.BOS() || id == tok.EOS() {
-				t.Fatalf("Encode(%q) gave id %d", s, id)
-			}
+			require.GreaterOrEqual(t, id, 0, "Encode(%q) gave id %d", s, id)
+			require.Less(t, id, tok.Len(), "Encode(%q) gave id %d", s, id)
+			require.NotEqual(t, tok.BOS(), id, "Encode(%q) gave id %d", s, id)
+			require.NotEqual(t, tok.EOS(), id, "Encode(%q) gave id %d", s, id)
 		}
 	}
 }
@@ -206,9 +191,8 @@ func FuzzRoundTrip(f *testing.F) {
 		f.Add(s)
 	}
 	f.Fuzz(func(t *testing.T, s string) {
-		if got := tok.Decode(tok.Encode(s)); got != s {
-			t.Errorf("got %q, want %q", got, s)
-		}
+		got := tok.Decode(tok.Encode(s))
+		assert.Equal(t, s, got, "got %q, want %q", got, s)
 	})
 }
 
@@ -224,8 +208,7 @@ func TestNewErrors(t *testing.T) {
 		{"bos out of range", Vocab{Pieces: []string{"a"}, Scores: []float32{0}, Types: []int32{1}, BOS: 5}},
 	}
 	for _, tc := range tests {
-		if _, err := New(tc.v); !errors.Is(err, ErrInvalid) {
-			t.Errorf("%s: got %v, want ErrInvalid", tc.name, err)
-		}
+		_, err := New(tc.v)
+		assert.ErrorIs(t, err, ErrInvalid, "%s: got %v, want ErrInvalid", tc.name, err)
 	}
 }
