@@ -423,13 +423,24 @@ func TestConcurrentGreedy(t *testing.T) {
 	srv, _ := testServer(t, loadModel(t), HandlerOptions{Workers: 3})
 	body := map[string]any{"prompt": "The little bird", "temperature": 0, "max_tokens": 10}
 	want := complete(t, srv, body).Choices[0].Text
+	reqBody, err := json.Marshal(body)
+	require.NoError(t, err)
 	var wg sync.WaitGroup
 	got := make([]string, 8)
 	for i := range got {
 		wg.Add(1)
-		go func() {
+		go func() { // off the test's goroutine: assert, never require
 			defer wg.Done()
-			got[i] = complete(t, srv, body).Choices[0].Text
+			resp, err := http.Post(srv.URL+"/v1/completions", "application/json", bytes.NewReader(reqBody))
+			if !assert.NoError(t, err) {
+				return
+			}
+			defer resp.Body.Close()
+			var r wire.CompletionResponse
+			if assert.Equal(t, http.StatusOK, resp.StatusCode) && assert.NoError(t, json.NewDecoder(resp.Body).Decode(&r)) &&
+				assert.NotEmpty(t, r.Choices) {
+				got[i] = r.Choices[0].Text
+			}
 		}()
 	}
 	wg.Wait()

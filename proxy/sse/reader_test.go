@@ -66,7 +66,7 @@ func TestReaderRules(t *testing.T) {
 			want: []sse.Event{{Data: "b"}}, wantErr: io.EOF,
 		},
 		{
-			// WHATWG 9.2.6 example (from memory): three data lines of a
+			// WHATWG 9.2.6 example (from memory: the HTML standard is not at hand here): three data lines of a
 			// stock ticker are one event joined with LF.
 			name: "data lines joined with LF", section: "9.2.6 data field",
 			in:   "data: YHOO\ndata: +2\ndata: 10\n\n",

@@ -295,8 +295,10 @@ func q8File(tb testing.TB) []byte {
 	for b.Len()%32 != 0 {
 		b.WriteByte(0)
 	}
-	// IEEE 754 binary16 encodings (from memory): 1.0, -2.0, +Inf,
-	// smallest subnormal 2^-24, 65504 (largest finite).
+	// IEEE 754 binary16 encodings of 1.0, -2.0, +Inf, the smallest
+	// subnormal 2^-24 and 65504 (the largest finite), as Python's struct
+	// module gives them (format "<e", binary16 in its documentation):
+	// struct.pack("<e", v) for each v.
 	w([]uint16{0x3C00, 0xC000, 0x7C00, 0x0001, 0x7BFF})
 	return b.Bytes()
 }
