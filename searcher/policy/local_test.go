@@ -134,7 +134,7 @@ func TestLocalConcurrent(t *testing.T) {
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Error(err)
+		assert.NoError(t, err)
 	}
 	n := l.CacheLen()
 	assert.Falsef(t, n > 8, "cache holds %d entries, bound 8", n)

@@ -199,9 +199,8 @@ func TestAllowList(t *testing.T) {
 	assert.Len(t, seen, len(allowed), "150 near-uniform draws used %d of %d allowed ids", len(seen), len(allowed))
 	q, _ := tr.QValues(ctx, nil)
 	assert.Len(t, q, len(allowed), "got %d Q values, want %d", len(q), len(allowed))
-	if _, err := tr.Update(ctx, [][]int{{12, 4, 0}}, []float64{1}); !errors.Is(err, policy.ErrBatch) {
-		t.Errorf("Update with disallowed id 4: got %v, want ErrBatch", err)
-	}
+	_, err = tr.Update(ctx, [][]int{{12, 4, 0}}, []float64{1})
+	assert.ErrorIs(t, err, policy.ErrBatch, "Update with disallowed id 4")
 }
 
 // TestUpdateErrors: bad batches are refused and leave the trainer as it
