@@ -11,6 +11,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	appsv1 "k8s.io/api/apps/v1"
 	autoscalingv2 "k8s.io/api/autoscaling/v2"
 	corev1 "k8s.io/api/core/v1"
@@ -133,9 +136,7 @@ spec:
 				}
 				return
 			}
-			if err == nil || !strings.Contains(err.Error(), tc.wantErr) {
-				t.Fatalf("got %v, want an error containing %q", err, tc.wantErr)
-			}
+			require.Falsef(t, err == nil || !strings.Contains(err.Error(), tc.wantErr), "got %v, want an error containing %q", err, tc.wantErr)
 		})
 	}
 }
@@ -160,14 +161,10 @@ func loadManifests(t *testing.T) manifests {
 	}
 	files, _ := filepath.Glob("k8s/*.yaml")
 	examples, _ := filepath.Glob("k8s/examples/*.yaml")
-	if len(files) == 0 || len(examples) == 0 {
-		t.Fatal("no manifests under k8s/ or k8s/examples/")
-	}
+	require.False(t, len(files) == 0 || len(examples) == 0, "no manifests under k8s/ or k8s/examples/")
 	for _, f := range append(files, examples...) {
 		objs, err := decodeManifests(readFile(t, f))
-		if err != nil {
-			t.Fatalf("%s: %v", f, err)
-		}
+		require.NoError(t, err, "%s", f)
 		inExamples := strings.HasPrefix(f, "k8s/examples/")
 		for _, o := range objs {
 			switch v := o.(type) {
@@ -184,9 +181,7 @@ func loadManifests(t *testing.T) manifests {
 			case *autoscalingv2.HorizontalPodAutoscaler:
 				m.hpas = append(m.hpas, v)
 			case *corev1.Secret:
-				if !inExamples {
-					t.Errorf("%s: Secret %s belongs under k8s/examples, out of `kubectl apply -f k8s/`", f, v.Name)
-				}
+				assert.Truef(t, inExamples, "%s: Secret %s belongs under k8s/examples, out of `kubectl apply -f k8s/`", f, v.Name)
 				m.secrets[v.Name] = v
 			}
 		}
@@ -198,18 +193,14 @@ func loadManifests(t *testing.T) manifests {
 func k8sProxyConfig(t *testing.T, m manifests) []byte {
 	t.Helper()
 	cm := m.configMaps["stint-config"]
-	if cm == nil || cm.Data["stint.yaml"] == "" {
-		t.Fatal("ConfigMap stint-config has no stint.yaml")
-	}
+	require.False(t, cm == nil || cm.Data["stint.yaml"] == "", "ConfigMap stint-config has no stint.yaml")
 	return []byte(cm.Data["stint.yaml"])
 }
 
 func selects(t *testing.T, sel *metav1.LabelSelector, podLabels map[string]string) bool {
 	t.Helper()
 	s, err := metav1.LabelSelectorAsSelector(sel)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return !s.Empty() && s.Matches(labels.Set(podLabels))
 }
 
@@ -291,9 +282,7 @@ func secretName(name string) bool {
 func TestHardeningChecksCatchGaps(t *testing.T) {
 	m := loadManifests(t)
 	base := m.deployments["stint-proxy"]
-	if base == nil {
-		t.Fatal("no Deployment stint-proxy")
-	}
+	require.False(t, base == nil, "no Deployment stint-proxy")
 	tests := []struct {
 		name    string
 		breakIt func(*corev1.PodSpec)
@@ -310,17 +299,14 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 			s.Containers[0].Env = append(s.Containers[0].Env, corev1.EnvVar{Name: "STINT_UPSTREAM_KEY", Value: "x"})
 		}, "inline value"},
 	}
-	if p := hardeningProblems(base.Spec.Template.Spec); len(p) > 0 {
-		t.Fatalf("the real Deployment already has problems: %v", p)
-	}
+	p := hardeningProblems(base.Spec.Template.Spec)
+	require.Falsef(t, len(p) > 0, "the real Deployment already has problems: %v", p)
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			spec := *base.Spec.Template.Spec.DeepCopy()
 			tc.breakIt(&spec)
 			p := hardeningProblems(spec)
-			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
-				t.Errorf("problems %v do not mention %q", p, tc.want)
-			}
+			assert.Truef(t, slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }), "problems %v do not mention %q", p, tc.want)
 		})
 	}
 }
@@ -339,9 +325,7 @@ func TestKubernetesManifests(t *testing.T) {
 
 	for name, d := range m.deployments {
 		pod := d.Spec.Template
-		if !selects(t, d.Spec.Selector, pod.Labels) {
-			t.Errorf("Deployment %s: selector does not select its own pods", name)
-		}
+		assert.Truef(t, selects(t, d.Spec.Selector, pod.Labels), "Deployment %s: selector does not select its own pods", name)
 		if p := hardeningProblems(pod.Spec); len(p) > 0 {
 			t.Errorf("Deployment %s: %s", name, strings.Join(p, "; "))
 		}
@@ -391,12 +375,8 @@ func TestKubernetesManifests(t *testing.T) {
 		}
 	}
 	svc := m.services["stint"]
-	if svc == nil || len(svc.Spec.Ports) != 1 {
-		t.Fatal("want Service stint with one port")
-	}
-	if !selects(t, &metav1.LabelSelector{MatchLabels: svc.Spec.Selector}, proxy.Spec.Template.Labels) {
-		t.Error("Service stint does not select the proxy pods")
-	}
+	require.False(t, svc == nil || len(svc.Spec.Ports) != 1, "want Service stint with one port")
+	assert.True(t, selects(t, &metav1.LabelSelector{MatchLabels: svc.Spec.Selector}, proxy.Spec.Template.Labels), "Service stint does not select the proxy pods")
 	if got, ok := containerPort(c, svc.Spec.Ports[0].TargetPort); !ok || fmt.Sprint(got) != listenPort {
 		t.Errorf("Service stint targets %s, which is not the listen port %s", svc.Spec.Ports[0].TargetPort.String(), listenPort)
 	}
@@ -409,15 +389,11 @@ func TestKubernetesManifests(t *testing.T) {
 		t.Fatalf("want one HorizontalPodAutoscaler, have %d", len(m.hpas))
 	}
 	hpa := m.hpas[0].Spec
-	if hpa.ScaleTargetRef.Kind != "Deployment" || hpa.ScaleTargetRef.Name != proxy.Name || hpa.ScaleTargetRef.APIVersion != "apps/v1" {
-		t.Errorf("HPA targets %+v, want the stint-proxy Deployment", hpa.ScaleTargetRef)
-	}
+	assert.Falsef(t, hpa.ScaleTargetRef.Kind != "Deployment" || hpa.ScaleTargetRef.Name != proxy.Name || hpa.ScaleTargetRef.APIVersion != "apps/v1", "HPA targets %+v, want the stint-proxy Deployment", hpa.ScaleTargetRef)
 	if hpa.MinReplicas == nil || *hpa.MinReplicas < 2 || hpa.MaxReplicas <= *hpa.MinReplicas {
 		t.Errorf("HPA replicas %v..%d: want a minimum of at least 2 and room above it", hpa.MinReplicas, hpa.MaxReplicas)
 	}
-	if len(hpa.Metrics) == 0 || hpa.Metrics[0].Resource == nil || hpa.Metrics[0].Resource.Name != corev1.ResourceCPU {
-		t.Error("HPA does not scale on CPU (the requests it is relative to are set)")
-	}
+	assert.False(t, len(hpa.Metrics) == 0 || hpa.Metrics[0].Resource == nil || hpa.Metrics[0].Resource.Name != corev1.ResourceCPU, "HPA does not scale on CPU (the requests it is relative to are set)")
 
 	// Sizes against the config.
 	memReq, memLim := c.Resources.Requests[corev1.ResourceMemory], c.Resources.Limits[corev1.ResourceMemory]
@@ -439,42 +415,29 @@ func TestKubernetesManifests(t *testing.T) {
 			dataLimit = v.EmptyDir.SizeLimit
 		}
 	}
-	if dataLimit == nil || byteSize(t, cfg.Cache.MaxBytes) >= dataLimit.Value() {
-		t.Errorf("data emptyDir sizeLimit %v must be above cache.max_bytes %s (the file grows past its cap between evictions)", dataLimit, cfg.Cache.MaxBytes)
-	}
+	assert.Falsef(t, dataLimit == nil || byteSize(t, cfg.Cache.MaxBytes) >= dataLimit.Value(), "data emptyDir sizeLimit %v must be above cache.max_bytes %s (the file grows past its cap between evictions)", dataLimit, cfg.Cache.MaxBytes)
 	grace := proxy.Spec.Template.Spec.TerminationGracePeriodSeconds
 	preStop := int64(0)
 	if l := c.Lifecycle; l != nil && l.PreStop != nil && l.PreStop.Sleep != nil {
 		preStop = l.PreStop.Sleep.Seconds
 	}
-	if grace == nil || float64(*grace) <= duration(t, cfg.Server.ShutdownTimeout).Seconds()+float64(preStop) {
-		t.Errorf("terminationGracePeriodSeconds %v must exceed preStop %ds + server.shutdown_timeout %s", grace, preStop, cfg.Server.ShutdownTimeout)
-	}
-	if r := cfg.Store.Redis; r == nil || len(r.Addrs) < 2 {
-		t.Error("the Kubernetes config should name several Redis Cluster seeds under store.redis.addrs")
-	}
+	assert.Falsef(t, grace == nil || float64(*grace) <= duration(t, cfg.Server.ShutdownTimeout).Seconds()+float64(preStop), "terminationGracePeriodSeconds %v must exceed preStop %ds + server.shutdown_timeout %s", grace, preStop, cfg.Server.ShutdownTimeout)
+	r := cfg.Store.Redis
+	assert.False(t, r == nil || len(r.Addrs) < 2, "the Kubernetes config should name several Redis Cluster seeds under store.redis.addrs")
 
 	// The sidecars: several replicas sharing one job queue on the proxies'
 	// Redis (their config's store.redis), reaching the proxies through
 	// their Service.
-	if search.Spec.Replicas == nil || *search.Spec.Replicas < 2 || search.Spec.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType {
-		t.Error("stint-search should run several replicas sharing the queue, replaced in a rolling update")
-	}
+	assert.False(t, search.Spec.Replicas == nil || *search.Spec.Replicas < 2 || search.Spec.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType, "stint-search should run several replicas sharing the queue, replaced in a rolling update")
 	sc := search.Spec.Template.Spec.Containers[0]
-	if got := flagValue(sc.Args, "--config"); got != mountPath(sc, "config")+"/stint.yaml" {
-		t.Errorf("stint-search --config %q, want the proxies' config mounted from ConfigMap stint-config", got)
-	}
-	if !slices.ContainsFunc(sc.Env, func(e corev1.EnvVar) bool { return e.Name == "STINT_REDIS_PASSWORD" }) {
-		t.Error("stint-search needs STINT_REDIS_PASSWORD, the password_env of store.redis")
-	}
+	got := flagValue(sc.Args, "--config")
+	assert.Equal(t, mountPath(sc, "config")+"/stint.yaml", got, "stint-search --config %q, want the proxies' config mounted from ConfigMap stint-config", got)
+	assert.True(t, slices.ContainsFunc(sc.Env, func(e corev1.EnvVar) bool { return e.Name == "STINT_REDIS_PASSWORD" }), "stint-search needs STINT_REDIS_PASSWORD, the password_env of store.redis")
 	for _, v := range search.Spec.Template.Spec.Volumes {
-		if v.Name == "data" && v.EmptyDir == nil {
-			t.Error("stint-search's data volume should be an emptyDir: its state is in Redis, and replicas cannot share one ReadWriteOnce claim")
-		}
+		assert.False(t, v.Name == "data" && v.EmptyDir == nil, "stint-search's data volume should be an emptyDir: its state is in Redis, and replicas cannot share one ReadWriteOnce claim")
 	}
-	if got, want := flagValue(sc.Args, "--proxy"), fmt.Sprintf("http://%s:%d/v1", svc.Name, svc.Spec.Ports[0].Port); got != want {
-		t.Errorf("stint-search --proxy %q, want the proxies' Service %q", got, want)
-	}
+	got, want := flagValue(sc.Args, "--proxy"), fmt.Sprintf("http://%s:%d/v1", svc.Name, svc.Spec.Ports[0].Port)
+	assert.Equal(t, want, got, "stint-search --proxy %q, want the proxies' Service %q", got, want)
 	searchPort := port(t, flagValue(sc.Args, "--listen"))
 	for _, pr := range []*corev1.Probe{sc.ReadinessProbe, sc.LivenessProbe} {
 		if pr == nil || pr.HTTPGet == nil || pr.HTTPGet.Path != "/healthz" {
@@ -485,24 +448,17 @@ func TestKubernetesManifests(t *testing.T) {
 			t.Errorf("stint-search probe port %s is not the --listen port %s", pr.HTTPGet.Port.String(), searchPort)
 		}
 	}
-	if ss := m.services["stint-search"]; ss == nil || !selects(t, &metav1.LabelSelector{MatchLabels: ss.Spec.Selector}, search.Spec.Template.Labels) {
-		t.Error("want Service stint-search selecting the sidecar")
-	}
+	ss := m.services["stint-search"]
+	assert.False(t, ss == nil || !selects(t, &metav1.LabelSelector{MatchLabels: ss.Spec.Selector}, search.Spec.Template.Labels), "want Service stint-search selecting the sidecar")
 	for _, mnt := range sc.VolumeMounts {
-		if mnt.MountPath == "/models" && !mnt.ReadOnly {
-			t.Error("the model volume must be mounted read-only")
-		}
+		assert.False(t, mnt.MountPath == "/models" && !mnt.ReadOnly, "the model volume must be mounted read-only")
 	}
 
 	// The example Secret holds placeholders only.
 	for name, s := range m.secrets {
-		if len(s.Data) > 0 {
-			t.Errorf("example Secret %s has data: values; use placeholder stringData", name)
-		}
+		assert.Falsef(t, len(s.Data) > 0, "example Secret %s has data: values; use placeholder stringData", name)
 		for k, v := range s.StringData {
-			if !strings.HasPrefix(v, "replace-") {
-				t.Errorf("example Secret %s key %s is %q, not a replace-… placeholder", name, k, v)
-			}
+			assert.Truef(t, strings.HasPrefix(v, "replace-"), "example Secret %s key %s is %q, not a replace-… placeholder", name, k, v)
 		}
 	}
 }
