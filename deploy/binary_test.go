@@ -74,7 +74,7 @@ func TestEveryMountedConfigPassesCheckConfig(t *testing.T) {
 	for _, p := range f.Progs {
 		assert.False(t, p.Type == elf.PT_INTERP, "stint is dynamically linked (has an interpreter); the distroless static image needs CGO_ENABLED=0")
 	}
-	assert.Falsef(t, len(libs) > 0, "stint links shared libraries %v", libs)
+	assert.Emptyf(t, libs, "stint links shared libraries %v", libs)
 	f.Close()
 
 	dir := t.TempDir()
@@ -152,9 +152,9 @@ func start(t *testing.T, addrRE *regexp.Regexp, bin string, args ...string) *sta
 	select {
 	case s.addr = <-addrc:
 	case <-s.exited:
-		t.Fatalf("%s %v exited before listening:\n%s", bin, args, logs.String())
+		require.FailNowf(t, "exited before listening", "%s %v exited before listening:\n%s", bin, args, logs.String())
 	case <-time.After(60 * time.Second):
-		t.Fatalf("%s %v did not announce its address", bin, args)
+		require.FailNowf(t, "no address", "%s %v did not announce its address", bin, args)
 	}
 	return s
 }

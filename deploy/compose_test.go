@@ -193,7 +193,7 @@ func TestComposeDecodingIsStrict(t *testing.T) {
 func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 	c := loadCompose(t)
 	p := composeSecretProblems(c)
-	require.Falsef(t, len(p) > 0, "compose.yaml: %v", p)
+	require.Emptyf(t, p, "compose.yaml: %v", p)
 	tests := []struct {
 		name    string
 		breakIt func(*composeService)
@@ -231,16 +231,13 @@ func TestCompose(t *testing.T) {
 	for name, s := range c.Services {
 		assert.Falsef(t, s.Healthcheck == nil || len(s.Healthcheck.Test) < 2, "service %s has no health check", name)
 		for dep, d := range s.DependsOn {
-			if _, ok := c.Services[dep]; !ok || d.Condition != "service_healthy" {
-				t.Errorf("service %s depends on %s (%q): want an existing service and condition service_healthy", name, dep, d.Condition)
-			}
+			assert.Containsf(t, c.Services, dep, "service %s depends on %s, which does not exist", name, dep)
+			assert.Equalf(t, "service_healthy", d.Condition, "service %s depends on %s: condition", name, dep)
 		}
 		assert.Falsef(t, !s.ReadOnly || !slices.Equal(s.CapDrop, []string{"ALL"}) || !slices.Contains(s.SecurityOpt, "no-new-privileges:true"), "service %s: want read_only, cap_drop [ALL] and no-new-privileges", name)
 		for _, v := range s.Volumes {
 			src, tgt, mode := splitVolume(v)
-			if (strings.HasPrefix(src, "./") || strings.HasPrefix(src, "${")) && mode != "ro" {
-				t.Errorf("service %s mounts host path %s at %s writable; host files are mounted :ro", name, src, tgt)
-			}
+			assert.Falsef(t, (strings.HasPrefix(src, "./") || strings.HasPrefix(src, "${")) && mode != "ro", "service %s mounts host path %s at %s writable; host files are mounted :ro", name, src, tgt)
 			switch {
 			case strings.HasPrefix(src, "./"):
 				_, err := os.Stat(src)
@@ -258,15 +255,12 @@ func TestCompose(t *testing.T) {
 	}
 	// The search sidecars: replicas sharing one queue on the Redis of the
 	// config they are given.
-	if s := c.Services["search"]; s.Deploy == nil || s.Deploy.Replicas < 2 {
-		t.Error("service search should run several replicas sharing the job queue")
-	} else if cfg := parseStintConfig(t, readFile(t, mustSource(t, "search", s, flagValue(s.Command, "--config")))); cfg.Store.Redis == nil {
-		t.Error("service search's --config has no store.redis: its replicas would not share a queue")
+	if s := c.Services["search"]; assert.False(t, s.Deploy == nil || s.Deploy.Replicas < 2, "service search should run several replicas sharing the job queue") {
+		cfg := parseStintConfig(t, readFile(t, mustSource(t, "search", s, flagValue(s.Command, "--config"))))
+		assert.NotNil(t, cfg.Store.Redis, "service search's --config has no store.redis: its replicas would not share a queue")
 	}
 	stint := stintServices(c)
-	if len(stint) != 4 {
-		t.Errorf("stint services %v, want proxy-a, proxy-b, local and search", slices.Collect(mapsKeys(stint)))
-	}
+	assert.Len(t, stint, 4, "stint services %v, want proxy-a, proxy-b, local and search", slices.Collect(mapsKeys(stint)))
 	for name, s := range stint {
 		paths := []string{}
 		for _, e := range s.EnvFile {

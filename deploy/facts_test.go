@@ -109,9 +109,7 @@ func TestFilesAgree(t *testing.T) {
 			}
 		}
 	}
-	if len(chownUID) != 2 {
-		t.Fatalf("the final stage copies %d directories with --chown, want the two data directories", len(chownUID))
-	}
+	require.Len(t, chownUID, 2, "the final stage copies %d directories with --chown, want the two data directories", len(chownUID))
 	var nginxUpstreamPorts []string
 	nginxListen, nginxBody := "", ""
 	var nginxServers []string

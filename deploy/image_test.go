@@ -30,9 +30,7 @@ func TestDockerfile(t *testing.T) {
 			build = append(build, in)
 		}
 	}
-	if len(froms) != 2 {
-		t.Fatalf("%d stages, want a builder and a final image", len(froms))
-	}
+	require.Len(t, froms, 2, "%d stages, want a builder and a final image", len(froms))
 	for _, in := range ins {
 		if in.Stage == 1 {
 			final = append(final, in)
@@ -50,7 +48,7 @@ func TestDockerfile(t *testing.T) {
 	for _, in := range final {
 		switch in.Cmd {
 		case "RUN", "ADD", "ARG", "ENV":
-			t.Errorf("final stage has %s %s: it has no shell, and build settings or secrets do not belong in it", in.Cmd, in.Args)
+			assert.Failf(t, "final stage has "+in.Cmd, "final stage has %s %s: it has no shell, and build settings or secrets do not belong in it", in.Cmd, in.Args)
 		case "COPY":
 			assert.Contains(t, in.Args, "--from=build", "final stage copies %q from the build context; only built files go in", in.Args)
 		}

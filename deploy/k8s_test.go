@@ -131,9 +131,7 @@ spec:
 		t.Run(tc.name, func(t *testing.T) {
 			objs, err := decodeManifests([]byte(tc.src))
 			if tc.wantErr == "" {
-				if err != nil || len(objs) != 1 {
-					t.Fatalf("got %d objects, %v; want 1 and no error", len(objs), err)
-				}
+				require.Falsef(t, err != nil || len(objs) != 1, "got %d objects, %v; want 1 and no error", len(objs), err)
 				return
 			}
 			require.Falsef(t, err == nil || !strings.Contains(err.Error(), tc.wantErr), "got %v, want an error containing %q", err, tc.wantErr)
@@ -300,7 +298,7 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 		}, "inline value"},
 	}
 	p := hardeningProblems(base.Spec.Template.Spec)
-	require.Falsef(t, len(p) > 0, "the real Deployment already has problems: %v", p)
+	require.Emptyf(t, p, "the real Deployment already has problems: %v", p)
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			spec := *base.Spec.Template.Spec.DeepCopy()
@@ -318,17 +316,14 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 func TestKubernetesManifests(t *testing.T) {
 	m := loadManifests(t)
 	proxy, search := m.deployments["stint-proxy"], m.deployments["stint-search"]
-	if proxy == nil || search == nil {
-		t.Fatalf("want Deployments stint-proxy and stint-search, have %v", slices.Collect(mapsKeys(m.deployments)))
-	}
+	require.Falsef(t, proxy == nil || search == nil, "want Deployments stint-proxy and stint-search, have %v", slices.Collect(mapsKeys(m.deployments)))
 	cfg := parseStintConfig(t, k8sProxyConfig(t, m))
 
 	for name, d := range m.deployments {
 		pod := d.Spec.Template
 		assert.Truef(t, selects(t, d.Spec.Selector, pod.Labels), "Deployment %s: selector does not select its own pods", name)
-		if p := hardeningProblems(pod.Spec); len(p) > 0 {
-			t.Errorf("Deployment %s: %s", name, strings.Join(p, "; "))
-		}
+		p := hardeningProblems(pod.Spec)
+		assert.Emptyf(t, p, "Deployment %s: %s", name, strings.Join(p, "; "))
 		for _, c := range pod.Spec.Containers {
 			for _, e := range c.Env {
 				if e.ValueFrom == nil || e.ValueFrom.SecretKeyRef == nil {
@@ -336,27 +331,23 @@ func TestKubernetesManifests(t *testing.T) {
 				}
 				ref := e.ValueFrom.SecretKeyRef
 				s := m.secrets[ref.Name]
-				if s == nil {
-					t.Errorf("Deployment %s: env %s refers to Secret %s, which k8s/examples does not show", name, e.Name, ref.Name)
-				} else if _, ok := s.StringData[ref.Key]; !ok {
-					t.Errorf("Deployment %s: env %s refers to key %s, missing from the example Secret", name, e.Name, ref.Key)
+				if assert.NotNilf(t, s, "Deployment %s: env %s refers to Secret %s, which k8s/examples does not show", name, e.Name, ref.Name) {
+					assert.Containsf(t, s.StringData, ref.Key, "Deployment %s: env %s refers to key %s, missing from the example Secret", name, e.Name, ref.Key)
 				}
 			}
 			for _, v := range pod.Spec.Volumes {
-				if v.PersistentVolumeClaim != nil && m.pvcs[v.PersistentVolumeClaim.ClaimName] == nil {
-					t.Errorf("Deployment %s: volume %s claims %s, which no manifest defines", name, v.Name, v.PersistentVolumeClaim.ClaimName)
+				if v.PersistentVolumeClaim != nil {
+					assert.NotNilf(t, m.pvcs[v.PersistentVolumeClaim.ClaimName], "Deployment %s: volume %s claims %s, which no manifest defines", name, v.Name, v.PersistentVolumeClaim.ClaimName)
 				}
 			}
 		}
 	}
 
 	// The proxies.
-	if proxy.Spec.Replicas == nil || *proxy.Spec.Replicas < 2 {
-		t.Errorf("stint-proxy replicas %v, want at least 2", proxy.Spec.Replicas)
+	if assert.NotNil(t, proxy.Spec.Replicas, "stint-proxy replicas") {
+		assert.GreaterOrEqual(t, *proxy.Spec.Replicas, int32(2), "stint-proxy replicas, want at least 2")
 	}
-	if len(proxy.Spec.Template.Spec.Containers) != 1 {
-		t.Fatalf("stint-proxy has %d containers, want 1", len(proxy.Spec.Template.Spec.Containers))
-	}
+	require.Len(t, proxy.Spec.Template.Spec.Containers, 1, "stint-proxy has %d containers, want 1", len(proxy.Spec.Template.Spec.Containers))
 	c := proxy.Spec.Template.Spec.Containers[0]
 	listenPort := port(t, cfg.Listen)
 	for _, pr := range []struct {
@@ -364,50 +355,39 @@ func TestKubernetesManifests(t *testing.T) {
 		probe *corev1.Probe
 		path  string
 	}{{"readiness", c.ReadinessProbe, "/readyz"}, {"liveness", c.LivenessProbe, "/healthz"}} {
-		if pr.probe == nil || pr.probe.HTTPGet == nil {
-			t.Errorf("stint-proxy: no HTTP %s probe", pr.name)
+		if !assert.Falsef(t, pr.probe == nil || pr.probe.HTTPGet == nil, "stint-proxy: no HTTP %s probe", pr.name) {
 			continue
 		}
 		got, ok := containerPort(c, pr.probe.HTTPGet.Port)
-		if pr.probe.HTTPGet.Path != pr.path || !ok || fmt.Sprint(got) != listenPort {
-			t.Errorf("stint-proxy %s probe: %s on port %v (resolves to %d), want %s on the config's listen port %s",
-				pr.name, pr.probe.HTTPGet.Path, pr.probe.HTTPGet.Port.String(), got, pr.path, listenPort)
-		}
+		assert.Falsef(t, pr.probe.HTTPGet.Path != pr.path || !ok || fmt.Sprint(got) != listenPort, "stint-proxy %s probe: %s on port %v (resolves to %d), want %s on the config's listen port %s",
+			pr.name, pr.probe.HTTPGet.Path, pr.probe.HTTPGet.Port.String(), got, pr.path, listenPort)
 	}
 	svc := m.services["stint"]
 	require.False(t, svc == nil || len(svc.Spec.Ports) != 1, "want Service stint with one port")
 	assert.True(t, selects(t, &metav1.LabelSelector{MatchLabels: svc.Spec.Selector}, proxy.Spec.Template.Labels), "Service stint does not select the proxy pods")
-	if got, ok := containerPort(c, svc.Spec.Ports[0].TargetPort); !ok || fmt.Sprint(got) != listenPort {
-		t.Errorf("Service stint targets %s, which is not the listen port %s", svc.Spec.Ports[0].TargetPort.String(), listenPort)
+	target, ok := containerPort(c, svc.Spec.Ports[0].TargetPort)
+	assert.Falsef(t, !ok || fmt.Sprint(target) != listenPort, "Service stint targets %s, which is not the listen port %s", svc.Spec.Ports[0].TargetPort.String(), listenPort)
+	if assert.False(t, len(m.pdbs) != 1 || !selects(t, m.pdbs[0].Spec.Selector, proxy.Spec.Template.Labels), "want one PodDisruptionBudget selecting the proxy pods") {
+		mi := m.pdbs[0].Spec.MinAvailable
+		assert.Falsef(t, mi == nil || mi.IntValue() < 1 || mi.IntValue() >= int(*proxy.Spec.Replicas), "PodDisruptionBudget minAvailable %v: want at least 1 and fewer than the replicas, so a drain can proceed", mi)
 	}
-	if len(m.pdbs) != 1 || !selects(t, m.pdbs[0].Spec.Selector, proxy.Spec.Template.Labels) {
-		t.Error("want one PodDisruptionBudget selecting the proxy pods")
-	} else if mi := m.pdbs[0].Spec.MinAvailable; mi == nil || mi.IntValue() < 1 || mi.IntValue() >= int(*proxy.Spec.Replicas) {
-		t.Errorf("PodDisruptionBudget minAvailable %v: want at least 1 and fewer than the replicas, so a drain can proceed", mi)
-	}
-	if len(m.hpas) != 1 {
-		t.Fatalf("want one HorizontalPodAutoscaler, have %d", len(m.hpas))
-	}
+	require.Len(t, m.hpas, 1, "want one HorizontalPodAutoscaler, have %d", len(m.hpas))
 	hpa := m.hpas[0].Spec
 	assert.Falsef(t, hpa.ScaleTargetRef.Kind != "Deployment" || hpa.ScaleTargetRef.Name != proxy.Name || hpa.ScaleTargetRef.APIVersion != "apps/v1", "HPA targets %+v, want the stint-proxy Deployment", hpa.ScaleTargetRef)
-	if hpa.MinReplicas == nil || *hpa.MinReplicas < 2 || hpa.MaxReplicas <= *hpa.MinReplicas {
-		t.Errorf("HPA replicas %v..%d: want a minimum of at least 2 and room above it", hpa.MinReplicas, hpa.MaxReplicas)
-	}
+	assert.Falsef(t, hpa.MinReplicas == nil || *hpa.MinReplicas < 2 || hpa.MaxReplicas <= *hpa.MinReplicas, "HPA replicas %v..%d: want a minimum of at least 2 and room above it", hpa.MinReplicas, hpa.MaxReplicas)
 	assert.False(t, len(hpa.Metrics) == 0 || hpa.Metrics[0].Resource == nil || hpa.Metrics[0].Resource.Name != corev1.ResourceCPU, "HPA does not scale on CPU (the requests it is relative to are set)")
 
 	// Sizes against the config.
 	memReq, memLim := c.Resources.Requests[corev1.ResourceMemory], c.Resources.Limits[corev1.ResourceMemory]
-	if hot := byteSize(t, cfg.Cache.HotBytes); hot >= memReq.Value() {
-		t.Errorf("cache.hot_bytes %s does not fit in the memory request %s", cfg.Cache.HotBytes, memReq.String())
-	}
+	assert.Lessf(t, byteSize(t, cfg.Cache.HotBytes), memReq.Value(), "cache.hot_bytes %s does not fit in the memory request %s", cfg.Cache.HotBytes, memReq.String())
 	goMem := ""
 	for _, e := range c.Env {
 		if e.Name == "GOMEMLIMIT" {
 			goMem = e.Value
 		}
 	}
-	if goMem == "" || byteSize(t, goMem) >= memLim.Value() {
-		t.Errorf("GOMEMLIMIT %q is missing or not below the memory limit %s", goMem, memLim.String())
+	if assert.NotEmptyf(t, goMem, "GOMEMLIMIT is missing") {
+		assert.Lessf(t, byteSize(t, goMem), memLim.Value(), "GOMEMLIMIT %q is not below the memory limit %s", goMem, memLim.String())
 	}
 	var dataLimit *resource.Quantity
 	for _, v := range proxy.Spec.Template.Spec.Volumes {
@@ -440,13 +420,11 @@ func TestKubernetesManifests(t *testing.T) {
 	assert.Equal(t, want, got, "stint-search --proxy %q, want the proxies' Service %q", got, want)
 	searchPort := port(t, flagValue(sc.Args, "--listen"))
 	for _, pr := range []*corev1.Probe{sc.ReadinessProbe, sc.LivenessProbe} {
-		if pr == nil || pr.HTTPGet == nil || pr.HTTPGet.Path != "/healthz" {
-			t.Error("stint-search: want readiness and liveness probes on /healthz")
+		if !assert.False(t, pr == nil || pr.HTTPGet == nil || pr.HTTPGet.Path != "/healthz", "stint-search: want readiness and liveness probes on /healthz") {
 			continue
 		}
-		if got, ok := containerPort(sc, pr.HTTPGet.Port); !ok || fmt.Sprint(got) != searchPort {
-			t.Errorf("stint-search probe port %s is not the --listen port %s", pr.HTTPGet.Port.String(), searchPort)
-		}
+		got, ok := containerPort(sc, pr.HTTPGet.Port)
+		assert.Falsef(t, !ok || fmt.Sprint(got) != searchPort, "stint-search probe port %s is not the --listen port %s", pr.HTTPGet.Port.String(), searchPort)
 	}
 	ss := m.services["stint-search"]
 	assert.False(t, ss == nil || !selects(t, &metav1.LabelSelector{MatchLabels: ss.Spec.Selector}, search.Spec.Template.Labels), "want Service stint-search selecting the sidecar")
@@ -456,7 +434,7 @@ func TestKubernetesManifests(t *testing.T) {
 
 	// The example Secret holds placeholders only.
 	for name, s := range m.secrets {
-		assert.Falsef(t, len(s.Data) > 0, "example Secret %s has data: values; use placeholder stringData", name)
+		assert.Emptyf(t, s.Data, "example Secret %s has data: values; use placeholder stringData", name)
 		for k, v := range s.StringData {
 			assert.Truef(t, strings.HasPrefix(v, "replace-"), "example Secret %s key %s is %q, not a replace-… placeholder", name, k, v)
 		}

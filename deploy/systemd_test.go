@@ -72,9 +72,8 @@ func TestSystemdUnit(t *testing.T) {
 	src := readFile(t, "systemd/stint.service")
 	u, err := parseUnit(src)
 	require.NoError(t, err)
-	if p := unitProblems(u); len(p) > 0 {
-		t.Errorf("systemd/stint.service:\n  %s", strings.Join(p, "\n  "))
-	}
+	p := unitProblems(u)
+	assert.Emptyf(t, p, "systemd/stint.service:\n  %s", strings.Join(p, "\n  "))
 	host := parseStintConfig(t, readFile(t, "config/host.yaml"))
 	stop := duration(t, u["Service"]["TimeoutStopSec"][0])
 	assert.Falsef(t, stop <= duration(t, host.Server.ShutdownTimeout), "TimeoutStopSec %v does not outlast server.shutdown_timeout %s", stop, host.Server.ShutdownTimeout)

@@ -20,9 +20,7 @@ import (
 func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
 	const n = 3
 	cl := redistest.StartCluster(t, n)
-	if len(cl.Addrs) != n {
-		t.Fatalf("%d addresses, want %d", len(cl.Addrs), n)
-	}
+	require.Len(t, cl.Addrs, n, "%d addresses, want %d", len(cl.Addrs), n)
 	ctx := context.Background()
 	c := cl.Client(t)
 	//lint:ignore SA1019 CLUSTER SLOTS lists a replica only once it is synced, which is what this waits for; CLUSTER SHARDS lists it at once
@@ -30,9 +28,7 @@ func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
 	require.NoError(t, err)
 	owned := map[string]int{}
 	for _, s := range slots {
-		if len(s.Nodes) != 1 {
-			t.Errorf("slots %d-%d have %d nodes, want 1 master and no replica", s.Start, s.End, len(s.Nodes))
-		}
+		assert.Lenf(t, s.Nodes, 1, "slots %d-%d: want 1 master and no replica", s.Start, s.End)
 		owned[s.Nodes[0].Addr] += s.End - s.Start + 1
 	}
 	total := 0
@@ -61,9 +57,7 @@ func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
 		require.NoError(t, err)
 		seen[node.Options().Addr] = true
 	}
-	if len(seen) != n {
-		t.Errorf("three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
-	}
+	assert.Len(t, seen, n, "three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
 }
 
 // TestClusterWithReplicasFailsOver checks StartClusterWith's replicas and
