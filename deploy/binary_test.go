@@ -14,6 +14,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 )
 
@@ -22,18 +25,15 @@ import (
 func buildBinaries(t *testing.T) (stint, probe string) {
 	t.Helper()
 	goTool, err := exec.LookPath("go")
-	if err != nil {
-		t.Fatalf("the go tool is needed to build the binaries under test: %v", err)
-	}
+	require.NoError(t, err, "the go tool is needed to build the binaries under test")
 	dir := t.TempDir()
 	stint, probe = filepath.Join(dir, "stint"), filepath.Join(dir, "stint-probe")
 	for _, b := range []struct{ out, pkg string }{{stint, "./cmd/stint"}, {probe, "./deploy/probe"}} {
 		cmd := exec.Command(goTool, "build", "-trimpath", "-o", b.out, b.pkg)
 		cmd.Dir = ".."
 		cmd.Env = append(os.Environ(), "CGO_ENABLED=0")
-		if out, err := cmd.CombinedOutput(); err != nil {
-			t.Fatalf("go build %s: %v\n%s", b.pkg, err, out)
-		}
+		out, err := cmd.CombinedOutput()
+		require.NoError(t, err, "go build %s: %v\n%s", b.pkg, err, out)
 	}
 	return stint, probe
 }
@@ -59,9 +59,7 @@ func run(t *testing.T, bin string, args ...string) (string, string, int) {
 	cmd.Stdout, cmd.Stderr = &out, &errOut
 	err := cmd.Run()
 	var exit *exec.ExitError
-	if err != nil && !errors.As(err, &exit) {
-		t.Fatalf("run %s: %v", bin, err)
-	}
+	require.Falsef(t, err != nil && !errors.As(err, &exit), "run %s: %v", bin, err)
 	return out.String(), errOut.String(), cmd.ProcessState.ExitCode()
 }
 
@@ -71,35 +69,23 @@ func run(t *testing.T, bin string, args ...string) (string, string, int) {
 func TestEveryMountedConfigPassesCheckConfig(t *testing.T) {
 	stint, _ := buildBinaries(t)
 	f, err := elf.Open(stint)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	libs, _ := f.ImportedLibraries()
 	for _, p := range f.Progs {
-		if p.Type == elf.PT_INTERP {
-			t.Error("stint is dynamically linked (has an interpreter); the distroless static image needs CGO_ENABLED=0")
-		}
+		assert.False(t, p.Type == elf.PT_INTERP, "stint is dynamically linked (has an interpreter); the distroless static image needs CGO_ENABLED=0")
 	}
-	if len(libs) > 0 {
-		t.Errorf("stint links shared libraries %v", libs)
-	}
+	assert.Emptyf(t, libs, "stint links shared libraries %v", libs)
 	f.Close()
 
 	dir := t.TempDir()
 	k8s := filepath.Join(dir, "k8s-stint.yaml")
 	k8sSrc := string(k8sProxyConfig(t, loadManifests(t)))
-	if err := os.WriteFile(k8s, []byte(k8sSrc), 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, os.WriteFile(k8s, []byte(k8sSrc), 0o600))
 	for _, path := range []string{"config/proxy.yaml", "config/host.yaml", k8s} {
 		t.Run(filepath.Base(path), func(t *testing.T) {
 			stdout, stderr, code := run(t, stint, "serve", "--config", path, "--check-config")
-			if code != 0 {
-				t.Fatalf("exit %d:\n%s", code, stderr)
-			}
-			if !strings.HasPrefix(stdout, "config ok: listen 0.0.0.0:8787, data /var/lib/stint,") {
-				t.Errorf("summary %q", stdout)
-			}
+			require.Equal(t, 0, code, "exit %d:\n%s", code, stderr)
+			assert.Truef(t, strings.HasPrefix(stdout, "config ok: listen 0.0.0.0:8787, data /var/lib/stint,"), "summary %q", stdout)
 			t.Log(strings.TrimSpace(stdout))
 		})
 	}
@@ -115,21 +101,13 @@ func TestEveryMountedConfigPassesCheckConfig(t *testing.T) {
 	}
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
-			if !strings.Contains(k8sSrc, tc.old) {
-				t.Fatalf("the config has no %q", tc.old)
-			}
+			require.Contains(t, k8sSrc, tc.old, "the config has no %q", tc.old)
 			bad := filepath.Join(t.TempDir(), "bad.yaml")
-			if err := os.WriteFile(bad, []byte(strings.Replace(k8sSrc, tc.old, tc.new, 1)), 0o600); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, os.WriteFile(bad, []byte(strings.Replace(k8sSrc, tc.old, tc.new, 1)), 0o600))
 			stdout, stderr, code := run(t, stint, "serve", "--config", bad, "--check-config")
-			if code == 0 {
-				t.Fatalf("exit 0 for a broken config:\n%s", stdout)
-			}
+			require.Falsef(t, code == 0, "exit 0 for a broken config:\n%s", stdout)
 			for _, w := range tc.want {
-				if !strings.Contains(stderr, w) {
-					t.Errorf("error %q does not contain %q", stderr, w)
-				}
+				assert.Contains(t, stderr, w, "error %q does not contain %q", stderr, w)
 			}
 		})
 	}
@@ -148,12 +126,8 @@ func start(t *testing.T, addrRE *regexp.Regexp, bin string, args ...string) *sta
 	cmd := exec.Command(bin, args...)
 	cmd.Env = cleanEnv()
 	stderr, err := cmd.StderrPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.NoError(t, cmd.Start())
 	s := &started{cmd: cmd, exited: make(chan struct{})}
 	addrc := make(chan string, 1)
 	var logs strings.Builder
@@ -178,9 +152,9 @@ func start(t *testing.T, addrRE *regexp.Regexp, bin string, args ...string) *sta
 	select {
 	case s.addr = <-addrc:
 	case <-s.exited:
-		t.Fatalf("%s %v exited before listening:\n%s", bin, args, logs.String())
+		require.FailNowf(t, "exited before listening", "%s %v exited before listening:\n%s", bin, args, logs.String())
 	case <-time.After(60 * time.Second):
-		t.Fatalf("%s %v did not announce its address", bin, args)
+		require.FailNowf(t, "no address", "%s %v did not announce its address", bin, args)
 	}
 	return s
 }
@@ -215,24 +189,17 @@ func TestHealthChecksAnswerOnTheRealProcesses(t *testing.T) {
 		{"k8s search liveness", search.addr, sc.LivenessProbe.HTTPGet.Path},
 	}
 	for _, ch := range checks {
-		if _, stderr, code := run(t, probe, "http://"+ch.addr+ch.path); code != 0 {
-			t.Errorf("%s: stint-probe %s exit %d: %s", ch.from, ch.path, code, stderr)
-		}
+		_, stderr, code := run(t, probe, "http://"+ch.addr+ch.path)
+		assert.Equal(t, 0, code, "%s: stint-probe %s exit %d: %s", ch.from, ch.path, code, stderr)
 	}
-	if _, _, code := run(t, probe, "http://"+proxy.addr+"/no-such-path"); code != 1 {
-		t.Errorf("stint-probe on a missing path: exit %d, want 1", code)
-	}
-	if _, _, code := run(t, probe); code != 2 {
-		t.Errorf("stint-probe without a URL: exit %d, want 2", code)
-	}
-	if err := proxy.cmd.Process.Signal(syscall.SIGTERM); err != nil {
-		t.Fatal(err)
-	}
+	_, _, code := run(t, probe, "http://"+proxy.addr+"/no-such-path")
+	assert.Equal(t, 1, code, "stint-probe on a missing path: exit %d, want 1", code)
+	_, _, code = run(t, probe)
+	assert.Equal(t, 2, code, "stint-probe without a URL: exit %d, want 2", code)
+	require.NoError(t, proxy.cmd.Process.Signal(syscall.SIGTERM))
 	<-proxy.exited
-	if code := proxy.cmd.ProcessState.ExitCode(); code != 0 {
-		t.Errorf("stint serve exited %d after SIGTERM, want a clean drain", code)
-	}
-	if _, _, code := run(t, probe, "http://"+proxy.addr+"/healthz"); code != 1 {
-		t.Errorf("stint-probe after shutdown: exit %d, want 1", code)
-	}
+	code = proxy.cmd.ProcessState.ExitCode()
+	assert.Equal(t, 0, code, "stint serve exited %d after SIGTERM, want a clean drain", code)
+	_, _, code = run(t, probe, "http://"+proxy.addr+"/healthz")
+	assert.Equal(t, 1, code, "stint-probe after shutdown: exit %d, want 1", code)
 }

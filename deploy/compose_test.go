@@ -11,6 +11,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"go.yaml.in/yaml/v3"
 )
 
@@ -85,9 +88,7 @@ func decodeCompose(src []byte) (composeFile, error) {
 func loadCompose(t *testing.T) composeFile {
 	t.Helper()
 	c, err := decodeCompose(readFile(t, "compose.yaml"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return c
 }
 
@@ -106,13 +107,9 @@ func stintServices(c composeFile) map[string]composeService {
 func healthURL(t *testing.T, name string, s composeService) *url.URL {
 	t.Helper()
 	h := s.Healthcheck
-	if h == nil || len(h.Test) != 3 || h.Test[0] != "CMD" || h.Test[1] != "/usr/local/bin/stint-probe" {
-		t.Fatalf("service %s: health check %v is not [CMD, /usr/local/bin/stint-probe, URL]", name, h)
-	}
+	require.Falsef(t, h == nil || len(h.Test) != 3 || h.Test[0] != "CMD" || h.Test[1] != "/usr/local/bin/stint-probe", "service %s: health check %v is not [CMD, /usr/local/bin/stint-probe, URL]", name, h)
 	u, err := url.Parse(h.Test[2])
-	if err != nil {
-		t.Fatalf("service %s: %v", name, err)
-	}
+	require.NoError(t, err, "service %s", name)
 	return u
 }
 
@@ -187,21 +184,16 @@ func TestComposeDecodingIsStrict(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			_, err := decodeCompose([]byte(tc.src))
-			if tc.wantErr == "" && err != nil {
-				t.Fatal(err)
-			}
-			if tc.wantErr != "" && (err == nil || !strings.Contains(err.Error(), tc.wantErr)) {
-				t.Fatalf("got %v, want an error containing %q", err, tc.wantErr)
-			}
+			require.False(t, tc.wantErr == "" && err != nil)
+			require.Falsef(t, tc.wantErr != "" && (err == nil || !strings.Contains(err.Error(), tc.wantErr)), "got %v, want an error containing %q", err, tc.wantErr)
 		})
 	}
 }
 
 func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 	c := loadCompose(t)
-	if p := composeSecretProblems(c); len(p) > 0 {
-		t.Fatalf("compose.yaml: %v", p)
-	}
+	p := composeSecretProblems(c)
+	require.Emptyf(t, p, "compose.yaml: %v", p)
 	tests := []struct {
 		name    string
 		breakIt func(*composeService)
@@ -219,9 +211,7 @@ func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 			tc.breakIt(&s)
 			broken.Services["search"] = s
 			p := composeSecretProblems(broken)
-			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
-				t.Errorf("problems %v do not mention %q", p, tc.want)
-			}
+			assert.Truef(t, slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }), "problems %v do not mention %q", p, tc.want)
 		})
 	}
 }
@@ -233,101 +223,76 @@ func TestComposeSecretChecksCatchInlineKeys(t *testing.T) {
 func TestCompose(t *testing.T) {
 	c := loadCompose(t)
 	for _, want := range []string{"redis", "proxy-a", "proxy-b", "lb", "local", "search"} {
-		if _, ok := c.Services[want]; !ok {
-			t.Errorf("no service %s", want)
-		}
+		_, ok := c.Services[want]
+		assert.Truef(t, ok, "no service %s", want)
 	}
-	if b := c.XStint.Build; b == nil || filepath.Join(b.Context, b.Dockerfile) != "../deploy/Dockerfile" {
-		t.Errorf("stint services build %+v, want context .. and deploy/Dockerfile", b)
-	}
+	build := c.XStint.Build
+	assert.Falsef(t, build == nil || filepath.Join(build.Context, build.Dockerfile) != "../deploy/Dockerfile", "stint services build %+v, want context .. and deploy/Dockerfile", build)
 	for name, s := range c.Services {
-		if s.Healthcheck == nil || len(s.Healthcheck.Test) < 2 {
-			t.Errorf("service %s has no health check", name)
-		}
+		assert.Falsef(t, s.Healthcheck == nil || len(s.Healthcheck.Test) < 2, "service %s has no health check", name)
 		for dep, d := range s.DependsOn {
-			if _, ok := c.Services[dep]; !ok || d.Condition != "service_healthy" {
-				t.Errorf("service %s depends on %s (%q): want an existing service and condition service_healthy", name, dep, d.Condition)
-			}
+			assert.Containsf(t, c.Services, dep, "service %s depends on %s, which does not exist", name, dep)
+			assert.Equalf(t, "service_healthy", d.Condition, "service %s depends on %s: condition", name, dep)
 		}
-		if !s.ReadOnly || !slices.Equal(s.CapDrop, []string{"ALL"}) || !slices.Contains(s.SecurityOpt, "no-new-privileges:true") {
-			t.Errorf("service %s: want read_only, cap_drop [ALL] and no-new-privileges", name)
-		}
+		assert.Falsef(t, !s.ReadOnly || !slices.Equal(s.CapDrop, []string{"ALL"}) || !slices.Contains(s.SecurityOpt, "no-new-privileges:true"), "service %s: want read_only, cap_drop [ALL] and no-new-privileges", name)
 		for _, v := range s.Volumes {
 			src, tgt, mode := splitVolume(v)
-			if (strings.HasPrefix(src, "./") || strings.HasPrefix(src, "${")) && mode != "ro" {
-				t.Errorf("service %s mounts host path %s at %s writable; host files are mounted :ro", name, src, tgt)
-			}
+			assert.Falsef(t, (strings.HasPrefix(src, "./") || strings.HasPrefix(src, "${")) && mode != "ro", "service %s mounts host path %s at %s writable; host files are mounted :ro", name, src, tgt)
 			switch {
 			case strings.HasPrefix(src, "./"):
-				if _, err := os.Stat(src); err != nil {
-					t.Errorf("service %s mounts %s: %v", name, src, err)
-				}
+				_, err := os.Stat(src)
+				assert.NoError(t, err, "service %s mounts %s: %v", name, src, err)
 			case strings.HasPrefix(src, "${"):
 				// a host path the operator chooses (model, tasks)
 			default:
-				if _, ok := c.Volumes[src]; !ok {
-					t.Errorf("service %s mounts volume %s, not declared under volumes", name, src)
-				}
+				_, ok := c.Volumes[src]
+				assert.Truef(t, ok, "service %s mounts volume %s, not declared under volumes", name, src)
 			}
 		}
 		for _, p := range s.Ports {
-			if !strings.HasPrefix(p, "127.0.0.1:") {
-				t.Errorf("service %s publishes %s on every interface; bind 127.0.0.1 and put TLS in front for more", name, p)
-			}
+			assert.Truef(t, strings.HasPrefix(p, "127.0.0.1:"), "service %s publishes %s on every interface; bind 127.0.0.1 and put TLS in front for more", name, p)
 		}
 	}
 	// The search sidecars: replicas sharing one queue on the Redis of the
 	// config they are given.
-	if s := c.Services["search"]; s.Deploy == nil || s.Deploy.Replicas < 2 {
-		t.Error("service search should run several replicas sharing the job queue")
-	} else if cfg := parseStintConfig(t, readFile(t, mustSource(t, "search", s, flagValue(s.Command, "--config")))); cfg.Store.Redis == nil {
-		t.Error("service search's --config has no store.redis: its replicas would not share a queue")
+	if s := c.Services["search"]; assert.False(t, s.Deploy == nil || s.Deploy.Replicas < 2, "service search should run several replicas sharing the job queue") {
+		cfg := parseStintConfig(t, readFile(t, mustSource(t, "search", s, flagValue(s.Command, "--config"))))
+		assert.NotNil(t, cfg.Store.Redis, "service search's --config has no store.redis: its replicas would not share a queue")
 	}
 	stint := stintServices(c)
-	if len(stint) != 4 {
-		t.Errorf("stint services %v, want proxy-a, proxy-b, local and search", slices.Collect(mapsKeys(stint)))
-	}
+	assert.Len(t, stint, 4, "stint services %v, want proxy-a, proxy-b, local and search", slices.Collect(mapsKeys(stint)))
 	for name, s := range stint {
 		paths := []string{}
 		for _, e := range s.EnvFile {
 			paths = append(paths, e.Path)
 		}
-		if !slices.Equal(paths, []string{"stint.env.example", "stint.env"}) || s.EnvFile[1].Required == nil || *s.EnvFile[1].Required {
-			t.Errorf("service %s env_file %v: want the placeholders, then an optional stint.env", name, paths)
-		}
+		assert.Falsef(t, !slices.Equal(paths, []string{"stint.env.example", "stint.env"}) || s.EnvFile[1].Required == nil || *s.EnvFile[1].Required, "service %s env_file %v: want the placeholders, then an optional stint.env", name, paths)
 		// Every stint service's health check asks its own --listen port.
 		listen := flagValue(s.Command, "--listen")
 		if slices.Contains(s.Command, "serve") && s.Command[0] == "serve" {
 			listen = parseStintConfig(t, readFile(t, mustSource(t, name, s, flagValue(s.Command, "--config")))).Listen
 		}
-		if u := healthURL(t, name, s); u.Port() != port(t, listen) || u.Hostname() != "127.0.0.1" {
-			t.Errorf("service %s health check %s does not ask its listen address %s", name, u, listen)
-		}
+		u := healthURL(t, name, s)
+		assert.Falsef(t, u.Port() != port(t, listen) || u.Hostname() != "127.0.0.1", "service %s health check %s does not ask its listen address %s", name, u, listen)
 		if m := flagValue(s.Command, "--model"); m != "" {
-			if _, ok := volumeSource(s, filepath.Dir(m)); !ok {
-				t.Errorf("service %s reads the model %s from no mounted volume", name, m)
-			}
+			_, ok := volumeSource(s, filepath.Dir(m))
+			assert.Truef(t, ok, "service %s reads the model %s from no mounted volume", name, m)
 		}
 	}
-	if _, err := os.Stat("stint.env.example"); err != nil {
-		t.Error(err)
-	}
+	_, err := os.Stat("stint.env.example")
+	assert.NoError(t, err)
 	// Each proxy replica has its own data volume: bbolt allows one process
 	// per file.
 	a, _ := volumeSource(c.Services["proxy-a"], "/var/lib/stint")
 	b, _ := volumeSource(c.Services["proxy-b"], "/var/lib/stint")
-	if a == "" || a == b {
-		t.Errorf("proxy-a and proxy-b data volumes %q and %q: want one each", a, b)
-	}
+	assert.Falsef(t, a == "" || a == b, "proxy-a and proxy-b data volumes %q and %q: want one each", a, b)
 }
 
 // mustSource returns the host file mounted at target in service s.
 func mustSource(t *testing.T, name string, s composeService, target string) string {
 	t.Helper()
 	src, ok := volumeSource(s, target)
-	if !ok {
-		t.Fatalf("service %s mounts nothing at %s", name, target)
-	}
+	require.Truef(t, ok, "service %s mounts nothing at %s", name, target)
 	return src
 }
 
@@ -336,12 +301,8 @@ func mustSource(t *testing.T, name string, s composeService, target string) stri
 func TestNoSecretsInDeployFiles(t *testing.T) {
 	for _, f := range deployFiles(t) {
 		b := readFile(t, f)
-		if loc := stintKeyRE.FindIndex(b); loc != nil {
-			t.Errorf("%s holds a stint client key at byte %d; configs hold sha256 hashes only", f, loc[0])
-		}
-		if loc := keyLikeRE.FindIndex(b); loc != nil {
-			t.Errorf("%s holds something shaped like a key at byte %d: %q", f, loc[0], b[loc[0]:loc[1]])
-		}
+		assert.Nilf(t, stintKeyRE.FindIndex(b), "%s holds a stint client key at these byte offsets; configs hold sha256 hashes only", f)
+		assert.Nilf(t, keyLikeRE.Find(b), "%s holds something shaped like a key", f)
 	}
 	lines := strings.Split(string(readFile(t, "stint.env.example")), "\n")
 	n := 0
@@ -351,21 +312,11 @@ func TestNoSecretsInDeployFiles(t *testing.T) {
 			continue
 		}
 		k, v, ok := strings.Cut(line, "=")
-		if !ok || !strings.HasPrefix(v, "replace-") {
-			t.Errorf("stint.env.example: %q is not NAME=replace-… (placeholders only)", line)
-		}
-		if !strings.HasPrefix(k, "STINT_") {
-			t.Errorf("stint.env.example: %s is not a STINT_ variable", k)
-		}
+		assert.Falsef(t, !ok || !strings.HasPrefix(v, "replace-"), "stint.env.example: %q is not NAME=replace-… (placeholders only)", line)
+		assert.Truef(t, strings.HasPrefix(k, "STINT_"), "stint.env.example: %s is not a STINT_ variable", k)
 		n++
 	}
-	if n == 0 {
-		t.Error("stint.env.example sets nothing")
-	}
-	if !strings.Contains(string(readFile(t, ".gitignore")), "/stint.env") {
-		t.Error("deploy/.gitignore does not ignore stint.env")
-	}
-	if !strings.Contains(string(readFile(t, "../.dockerignore")), "/deploy/stint.env") {
-		t.Error(".dockerignore does not keep deploy/stint.env out of the build context")
-	}
+	assert.False(t, n == 0, "stint.env.example sets nothing")
+	assert.Contains(t, string(readFile(t, ".gitignore")), "/stint.env", "deploy/.gitignore does not ignore stint.env")
+	assert.Contains(t, string(readFile(t, "../.dockerignore")), "/deploy/stint.env", ".dockerignore does not keep deploy/stint.env out of the build context")
 }

@@ -9,6 +9,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	corev1 "k8s.io/api/core/v1"
 )
 
@@ -25,9 +28,7 @@ type fact struct {
 func finalStage(t *testing.T) []instruction {
 	t.Helper()
 	ins, err := parseDockerfile(readFile(t, "Dockerfile"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	last := ins[len(ins)-1].Stage
 	var out []instruction
 	for _, in := range ins {
@@ -51,9 +52,7 @@ func instructionArgs(stage []instruction, cmd string) []string {
 func hostPort(t *testing.T, rawURL string) (host, port string) {
 	t.Helper()
 	u, err := url.Parse(rawURL)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return u.Hostname(), u.Port()
 }
 
@@ -84,9 +83,7 @@ func TestFilesAgree(t *testing.T) {
 	c := loadCompose(t)
 	m := loadManifests(t)
 	u, err := parseUnit(readFile(t, "systemd/stint.service"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	svc := u["Service"]
 
 	composeCfg := parseStintConfig(t, readFile(t, mustSource(t, "proxy-a", c.Services["proxy-a"], flagValue(c.Services["proxy-a"].Command, "--config"))))
@@ -100,9 +97,7 @@ func TestFilesAgree(t *testing.T) {
 	_, dockerHealthPort := hostPort(t, execForm(t, strings.TrimPrefix(instructionArgs(final, "HEALTHCHECK")[0][strings.Index(instructionArgs(final, "HEALTHCHECK")[0], "CMD "):], "CMD "))[1])
 	dockerUser, _, _ := strings.Cut(instructionArgs(final, "USER")[0], ":")
 	dockerTag := regexp.MustCompile(`docker build -f deploy/Dockerfile -t (\S+) \.`).FindSubmatch(readFile(t, "Dockerfile"))
-	if dockerTag == nil {
-		t.Fatal("the Dockerfile's header does not show its docker build -t command")
-	}
+	require.False(t, dockerTag == nil, "the Dockerfile's header does not show its docker build -t command")
 	var chownUID, chownTargets []string
 	for _, a := range instructionArgs(final, "COPY") {
 		f := strings.Fields(a)
@@ -114,9 +109,7 @@ func TestFilesAgree(t *testing.T) {
 			}
 		}
 	}
-	if len(chownUID) != 2 {
-		t.Fatalf("the final stage copies %d directories with --chown, want the two data directories", len(chownUID))
-	}
+	require.Len(t, chownUID, 2, "the final stage copies %d directories with --chown, want the two data directories", len(chownUID))
 	var nginxUpstreamPorts []string
 	nginxListen, nginxBody := "", ""
 	var nginxServers []string
@@ -134,9 +127,7 @@ func TestFilesAgree(t *testing.T) {
 			nginxBody = d[1]
 		}
 	}
-	if !slices.Equal(nginxServers, []string{"proxy-a", "proxy-b"}) {
-		t.Errorf("nginx upstream servers %v, want the compose proxies proxy-a and proxy-b", nginxServers)
-	}
+	assert.Truef(t, slices.Equal(nginxServers, []string{"proxy-a", "proxy-b"}), "nginx upstream servers %v, want the compose proxies proxy-a and proxy-b", nginxServers)
 	localHost, localPort := "", ""
 	for _, up := range composeCfg.Upstreams {
 		if up.Name == "local" {
@@ -145,9 +136,7 @@ func TestFilesAgree(t *testing.T) {
 	}
 	searchProxyHost, searchProxyPort := hostPort(t, flagValue(c.Services["search"].Command, "--proxy"))
 	k8sSearchProxyHost, k8sSearchProxyPort := hostPort(t, flagValue(sc.Args, "--proxy"))
-	if searchProxyHost != "lb" || k8sSearchProxyHost != k8sService.Name {
-		t.Errorf("the sidecar's --proxy hosts are %s (compose) and %s (k8s), want lb and %s", searchProxyHost, k8sSearchProxyHost, k8sService.Name)
-	}
+	assert.Falsef(t, searchProxyHost != "lb" || k8sSearchProxyHost != k8sService.Name, "the sidecar's --proxy hosts are %s (compose) and %s (k8s), want lb and %s", searchProxyHost, k8sSearchProxyHost, k8sService.Name)
 	// The operator page's sidecar URL: host and port, and nothing that
 	// would make the page ask another path than the job API's root.
 	sidecarAddr := func(rawURL string) string {
@@ -275,9 +264,7 @@ func TestFilesAgree(t *testing.T) {
 		want := f.sources[0].value
 		for _, s := range f.sources {
 			fmt.Fprintf(&table, "%-26s %-48s %s\n", f.name, s.from, s.value)
-			if s.value != want || s.value == "" {
-				t.Errorf("%s: %s says %q, %s says %q", f.name, f.sources[0].from, want, s.from, s.value)
-			}
+			assert.Falsef(t, s.value != want || s.value == "", "%s: %s says %q, %s says %q", f.name, f.sources[0].from, want, s.from, s.value)
 		}
 	}
 	t.Logf("facts read from the files:\n%s", table.String())
@@ -312,16 +299,10 @@ func TestSecretsTheConfigsNameAreProvided(t *testing.T) {
 			env = append(env, r.PasswordEnv)
 		}
 		for _, e := range env {
-			if !strings.Contains(example, "\n"+e+"=") {
-				t.Errorf("%s names %s, which stint.env.example does not list", name, e)
-			}
-			if name == "k8s ConfigMap" && !k8sEnv[e] {
-				t.Errorf("%s names %s, which the stint-proxy Deployment does not set from a Secret", name, e)
-			}
+			assert.Contains(t, example, "\n"+e+"=", "%s names %s, which stint.env.example does not list", name, e)
+			assert.Falsef(t, name == "k8s ConfigMap" && !k8sEnv[e], "%s names %s, which the stint-proxy Deployment does not set from a Secret", name, e)
 		}
 	}
 	// The sidecar's key.
-	if !strings.Contains(example, "\nSTINT_KEY=") {
-		t.Error("stint.env.example does not list STINT_KEY for the search sidecar")
-	}
+	assert.Contains(t, example, "\nSTINT_KEY=", "stint.env.example does not list STINT_KEY for the search sidecar")
 }

@@ -13,6 +13,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/require"
+
 	"go.yaml.in/yaml/v3"
 )
 
@@ -20,9 +22,7 @@ import (
 func readFile(t *testing.T, path string) []byte {
 	t.Helper()
 	b, err := os.ReadFile(path)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return b
 }
 
@@ -60,9 +60,7 @@ type stintConfig struct {
 func parseStintConfig(t *testing.T, src []byte) stintConfig {
 	t.Helper()
 	var c stintConfig
-	if err := yaml.Unmarshal(src, &c); err != nil {
-		t.Fatalf("stint config: %v", err)
-	}
+	require.NoError(t, yaml.Unmarshal(src, &c), "stint config")
 	return c
 }
 
@@ -70,9 +68,7 @@ func parseStintConfig(t *testing.T, src []byte) stintConfig {
 func port(t *testing.T, addr string) string {
 	t.Helper()
 	_, p, err := net.SplitHostPort(addr)
-	if err != nil {
-		t.Fatalf("address %q: %v", addr, err)
-	}
+	require.NoError(t, err, "address %q", addr)
 	return p
 }
 
@@ -87,25 +83,19 @@ func byteSize(t *testing.T, s string) int64 {
 	}{{"KiB", 1 << 10}, {"MiB", 1 << 20}, {"GiB", 1 << 30}, {"k", 1 << 10}, {"m", 1 << 20}, {"g", 1 << 30}, {"B", 1}} {
 		if num, ok := strings.CutSuffix(s, u.suffix); ok {
 			n, err := strconv.ParseInt(num, 10, 64)
-			if err != nil {
-				t.Fatalf("size %q: %v", s, err)
-			}
+			require.NoError(t, err, "size %q", s)
 			return n * u.mult
 		}
 	}
 	n, err := strconv.ParseInt(s, 10, 64)
-	if err != nil {
-		t.Fatalf("size %q: %v", s, err)
-	}
+	require.NoError(t, err, "size %q", s)
 	return n
 }
 
 func duration(t *testing.T, s string) time.Duration {
 	t.Helper()
 	d, err := time.ParseDuration(s)
-	if err != nil {
-		t.Fatalf("duration %q: %v", s, err)
-	}
+	require.NoError(t, err, "duration %q", s)
 	return d
 }
 
@@ -165,9 +155,8 @@ func parseDockerfile(src []byte) ([]instruction, error) {
 func execForm(t *testing.T, args string) []string {
 	t.Helper()
 	var v []string
-	if err := json.Unmarshal([]byte(args), &v); err != nil {
-		t.Fatalf("%q is not an exec-form JSON array: %v", args, err)
-	}
+	err := json.Unmarshal([]byte(args), &v)
+	require.NoError(t, err, "%q is not an exec-form JSON array: %v", args, err)
 	return v
 }
 
@@ -236,8 +225,6 @@ func deployFiles(t *testing.T) []string {
 		}
 		return nil
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return out
 }

@@ -11,6 +11,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	appsv1 "k8s.io/api/apps/v1"
 	autoscalingv2 "k8s.io/api/autoscaling/v2"
 	corev1 "k8s.io/api/core/v1"
@@ -128,14 +131,10 @@ spec:
 		t.Run(tc.name, func(t *testing.T) {
 			objs, err := decodeManifests([]byte(tc.src))
 			if tc.wantErr == "" {
-				if err != nil || len(objs) != 1 {
-					t.Fatalf("got %d objects, %v; want 1 and no error", len(objs), err)
-				}
+				require.Falsef(t, err != nil || len(objs) != 1, "got %d objects, %v; want 1 and no error", len(objs), err)
 				return
 			}
-			if err == nil || !strings.Contains(err.Error(), tc.wantErr) {
-				t.Fatalf("got %v, want an error containing %q", err, tc.wantErr)
-			}
+			require.Falsef(t, err == nil || !strings.Contains(err.Error(), tc.wantErr), "got %v, want an error containing %q", err, tc.wantErr)
 		})
 	}
 }
@@ -160,14 +159,10 @@ func loadManifests(t *testing.T) manifests {
 	}
 	files, _ := filepath.Glob("k8s/*.yaml")
 	examples, _ := filepath.Glob("k8s/examples/*.yaml")
-	if len(files) == 0 || len(examples) == 0 {
-		t.Fatal("no manifests under k8s/ or k8s/examples/")
-	}
+	require.False(t, len(files) == 0 || len(examples) == 0, "no manifests under k8s/ or k8s/examples/")
 	for _, f := range append(files, examples...) {
 		objs, err := decodeManifests(readFile(t, f))
-		if err != nil {
-			t.Fatalf("%s: %v", f, err)
-		}
+		require.NoError(t, err, "%s", f)
 		inExamples := strings.HasPrefix(f, "k8s/examples/")
 		for _, o := range objs {
 			switch v := o.(type) {
@@ -184,9 +179,7 @@ func loadManifests(t *testing.T) manifests {
 			case *autoscalingv2.HorizontalPodAutoscaler:
 				m.hpas = append(m.hpas, v)
 			case *corev1.Secret:
-				if !inExamples {
-					t.Errorf("%s: Secret %s belongs under k8s/examples, out of `kubectl apply -f k8s/`", f, v.Name)
-				}
+				assert.Truef(t, inExamples, "%s: Secret %s belongs under k8s/examples, out of `kubectl apply -f k8s/`", f, v.Name)
 				m.secrets[v.Name] = v
 			}
 		}
@@ -198,18 +191,14 @@ func loadManifests(t *testing.T) manifests {
 func k8sProxyConfig(t *testing.T, m manifests) []byte {
 	t.Helper()
 	cm := m.configMaps["stint-config"]
-	if cm == nil || cm.Data["stint.yaml"] == "" {
-		t.Fatal("ConfigMap stint-config has no stint.yaml")
-	}
+	require.False(t, cm == nil || cm.Data["stint.yaml"] == "", "ConfigMap stint-config has no stint.yaml")
 	return []byte(cm.Data["stint.yaml"])
 }
 
 func selects(t *testing.T, sel *metav1.LabelSelector, podLabels map[string]string) bool {
 	t.Helper()
 	s, err := metav1.LabelSelectorAsSelector(sel)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return !s.Empty() && s.Matches(labels.Set(podLabels))
 }
 
@@ -291,9 +280,7 @@ func secretName(name string) bool {
 func TestHardeningChecksCatchGaps(t *testing.T) {
 	m := loadManifests(t)
 	base := m.deployments["stint-proxy"]
-	if base == nil {
-		t.Fatal("no Deployment stint-proxy")
-	}
+	require.False(t, base == nil, "no Deployment stint-proxy")
 	tests := []struct {
 		name    string
 		breakIt func(*corev1.PodSpec)
@@ -310,17 +297,14 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 			s.Containers[0].Env = append(s.Containers[0].Env, corev1.EnvVar{Name: "STINT_UPSTREAM_KEY", Value: "x"})
 		}, "inline value"},
 	}
-	if p := hardeningProblems(base.Spec.Template.Spec); len(p) > 0 {
-		t.Fatalf("the real Deployment already has problems: %v", p)
-	}
+	p := hardeningProblems(base.Spec.Template.Spec)
+	require.Emptyf(t, p, "the real Deployment already has problems: %v", p)
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			spec := *base.Spec.Template.Spec.DeepCopy()
 			tc.breakIt(&spec)
 			p := hardeningProblems(spec)
-			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
-				t.Errorf("problems %v do not mention %q", p, tc.want)
-			}
+			assert.Truef(t, slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }), "problems %v do not mention %q", p, tc.want)
 		})
 	}
 }
@@ -332,19 +316,14 @@ func TestHardeningChecksCatchGaps(t *testing.T) {
 func TestKubernetesManifests(t *testing.T) {
 	m := loadManifests(t)
 	proxy, search := m.deployments["stint-proxy"], m.deployments["stint-search"]
-	if proxy == nil || search == nil {
-		t.Fatalf("want Deployments stint-proxy and stint-search, have %v", slices.Collect(mapsKeys(m.deployments)))
-	}
+	require.Falsef(t, proxy == nil || search == nil, "want Deployments stint-proxy and stint-search, have %v", slices.Collect(mapsKeys(m.deployments)))
 	cfg := parseStintConfig(t, k8sProxyConfig(t, m))
 
 	for name, d := range m.deployments {
 		pod := d.Spec.Template
-		if !selects(t, d.Spec.Selector, pod.Labels) {
-			t.Errorf("Deployment %s: selector does not select its own pods", name)
-		}
-		if p := hardeningProblems(pod.Spec); len(p) > 0 {
-			t.Errorf("Deployment %s: %s", name, strings.Join(p, "; "))
-		}
+		assert.Truef(t, selects(t, d.Spec.Selector, pod.Labels), "Deployment %s: selector does not select its own pods", name)
+		p := hardeningProblems(pod.Spec)
+		assert.Emptyf(t, p, "Deployment %s: %s", name, strings.Join(p, "; "))
 		for _, c := range pod.Spec.Containers {
 			for _, e := range c.Env {
 				if e.ValueFrom == nil || e.ValueFrom.SecretKeyRef == nil {
@@ -352,27 +331,23 @@ func TestKubernetesManifests(t *testing.T) {
 				}
 				ref := e.ValueFrom.SecretKeyRef
 				s := m.secrets[ref.Name]
-				if s == nil {
-					t.Errorf("Deployment %s: env %s refers to Secret %s, which k8s/examples does not show", name, e.Name, ref.Name)
-				} else if _, ok := s.StringData[ref.Key]; !ok {
-					t.Errorf("Deployment %s: env %s refers to key %s, missing from the example Secret", name, e.Name, ref.Key)
+				if assert.NotNilf(t, s, "Deployment %s: env %s refers to Secret %s, which k8s/examples does not show", name, e.Name, ref.Name) {
+					assert.Containsf(t, s.StringData, ref.Key, "Deployment %s: env %s refers to key %s, missing from the example Secret", name, e.Name, ref.Key)
 				}
 			}
 			for _, v := range pod.Spec.Volumes {
-				if v.PersistentVolumeClaim != nil && m.pvcs[v.PersistentVolumeClaim.ClaimName] == nil {
-					t.Errorf("Deployment %s: volume %s claims %s, which no manifest defines", name, v.Name, v.PersistentVolumeClaim.ClaimName)
+				if v.PersistentVolumeClaim != nil {
+					assert.NotNilf(t, m.pvcs[v.PersistentVolumeClaim.ClaimName], "Deployment %s: volume %s claims %s, which no manifest defines", name, v.Name, v.PersistentVolumeClaim.ClaimName)
 				}
 			}
 		}
 	}
 
 	// The proxies.
-	if proxy.Spec.Replicas == nil || *proxy.Spec.Replicas < 2 {
-		t.Errorf("stint-proxy replicas %v, want at least 2", proxy.Spec.Replicas)
+	if assert.NotNil(t, proxy.Spec.Replicas, "stint-proxy replicas") {
+		assert.GreaterOrEqual(t, *proxy.Spec.Replicas, int32(2), "stint-proxy replicas, want at least 2")
 	}
-	if len(proxy.Spec.Template.Spec.Containers) != 1 {
-		t.Fatalf("stint-proxy has %d containers, want 1", len(proxy.Spec.Template.Spec.Containers))
-	}
+	require.Len(t, proxy.Spec.Template.Spec.Containers, 1, "stint-proxy has %d containers, want 1", len(proxy.Spec.Template.Spec.Containers))
 	c := proxy.Spec.Template.Spec.Containers[0]
 	listenPort := port(t, cfg.Listen)
 	for _, pr := range []struct {
@@ -380,58 +355,39 @@ func TestKubernetesManifests(t *testing.T) {
 		probe *corev1.Probe
 		path  string
 	}{{"readiness", c.ReadinessProbe, "/readyz"}, {"liveness", c.LivenessProbe, "/healthz"}} {
-		if pr.probe == nil || pr.probe.HTTPGet == nil {
-			t.Errorf("stint-proxy: no HTTP %s probe", pr.name)
+		if !assert.Falsef(t, pr.probe == nil || pr.probe.HTTPGet == nil, "stint-proxy: no HTTP %s probe", pr.name) {
 			continue
 		}
 		got, ok := containerPort(c, pr.probe.HTTPGet.Port)
-		if pr.probe.HTTPGet.Path != pr.path || !ok || fmt.Sprint(got) != listenPort {
-			t.Errorf("stint-proxy %s probe: %s on port %v (resolves to %d), want %s on the config's listen port %s",
-				pr.name, pr.probe.HTTPGet.Path, pr.probe.HTTPGet.Port.String(), got, pr.path, listenPort)
-		}
+		assert.Falsef(t, pr.probe.HTTPGet.Path != pr.path || !ok || fmt.Sprint(got) != listenPort, "stint-proxy %s probe: %s on port %v (resolves to %d), want %s on the config's listen port %s",
+			pr.name, pr.probe.HTTPGet.Path, pr.probe.HTTPGet.Port.String(), got, pr.path, listenPort)
 	}
 	svc := m.services["stint"]
-	if svc == nil || len(svc.Spec.Ports) != 1 {
-		t.Fatal("want Service stint with one port")
+	require.False(t, svc == nil || len(svc.Spec.Ports) != 1, "want Service stint with one port")
+	assert.True(t, selects(t, &metav1.LabelSelector{MatchLabels: svc.Spec.Selector}, proxy.Spec.Template.Labels), "Service stint does not select the proxy pods")
+	target, ok := containerPort(c, svc.Spec.Ports[0].TargetPort)
+	assert.Falsef(t, !ok || fmt.Sprint(target) != listenPort, "Service stint targets %s, which is not the listen port %s", svc.Spec.Ports[0].TargetPort.String(), listenPort)
+	if assert.False(t, len(m.pdbs) != 1 || !selects(t, m.pdbs[0].Spec.Selector, proxy.Spec.Template.Labels), "want one PodDisruptionBudget selecting the proxy pods") {
+		mi := m.pdbs[0].Spec.MinAvailable
+		assert.Falsef(t, mi == nil || mi.IntValue() < 1 || mi.IntValue() >= int(*proxy.Spec.Replicas), "PodDisruptionBudget minAvailable %v: want at least 1 and fewer than the replicas, so a drain can proceed", mi)
 	}
-	if !selects(t, &metav1.LabelSelector{MatchLabels: svc.Spec.Selector}, proxy.Spec.Template.Labels) {
-		t.Error("Service stint does not select the proxy pods")
-	}
-	if got, ok := containerPort(c, svc.Spec.Ports[0].TargetPort); !ok || fmt.Sprint(got) != listenPort {
-		t.Errorf("Service stint targets %s, which is not the listen port %s", svc.Spec.Ports[0].TargetPort.String(), listenPort)
-	}
-	if len(m.pdbs) != 1 || !selects(t, m.pdbs[0].Spec.Selector, proxy.Spec.Template.Labels) {
-		t.Error("want one PodDisruptionBudget selecting the proxy pods")
-	} else if mi := m.pdbs[0].Spec.MinAvailable; mi == nil || mi.IntValue() < 1 || mi.IntValue() >= int(*proxy.Spec.Replicas) {
-		t.Errorf("PodDisruptionBudget minAvailable %v: want at least 1 and fewer than the replicas, so a drain can proceed", mi)
-	}
-	if len(m.hpas) != 1 {
-		t.Fatalf("want one HorizontalPodAutoscaler, have %d", len(m.hpas))
-	}
+	require.Len(t, m.hpas, 1, "want one HorizontalPodAutoscaler, have %d", len(m.hpas))
 	hpa := m.hpas[0].Spec
-	if hpa.ScaleTargetRef.Kind != "Deployment" || hpa.ScaleTargetRef.Name != proxy.Name || hpa.ScaleTargetRef.APIVersion != "apps/v1" {
-		t.Errorf("HPA targets %+v, want the stint-proxy Deployment", hpa.ScaleTargetRef)
-	}
-	if hpa.MinReplicas == nil || *hpa.MinReplicas < 2 || hpa.MaxReplicas <= *hpa.MinReplicas {
-		t.Errorf("HPA replicas %v..%d: want a minimum of at least 2 and room above it", hpa.MinReplicas, hpa.MaxReplicas)
-	}
-	if len(hpa.Metrics) == 0 || hpa.Metrics[0].Resource == nil || hpa.Metrics[0].Resource.Name != corev1.ResourceCPU {
-		t.Error("HPA does not scale on CPU (the requests it is relative to are set)")
-	}
+	assert.Falsef(t, hpa.ScaleTargetRef.Kind != "Deployment" || hpa.ScaleTargetRef.Name != proxy.Name || hpa.ScaleTargetRef.APIVersion != "apps/v1", "HPA targets %+v, want the stint-proxy Deployment", hpa.ScaleTargetRef)
+	assert.Falsef(t, hpa.MinReplicas == nil || *hpa.MinReplicas < 2 || hpa.MaxReplicas <= *hpa.MinReplicas, "HPA replicas %v..%d: want a minimum of at least 2 and room above it", hpa.MinReplicas, hpa.MaxReplicas)
+	assert.False(t, len(hpa.Metrics) == 0 || hpa.Metrics[0].Resource == nil || hpa.Metrics[0].Resource.Name != corev1.ResourceCPU, "HPA does not scale on CPU (the requests it is relative to are set)")
 
 	// Sizes against the config.
 	memReq, memLim := c.Resources.Requests[corev1.ResourceMemory], c.Resources.Limits[corev1.ResourceMemory]
-	if hot := byteSize(t, cfg.Cache.HotBytes); hot >= memReq.Value() {
-		t.Errorf("cache.hot_bytes %s does not fit in the memory request %s", cfg.Cache.HotBytes, memReq.String())
-	}
+	assert.Lessf(t, byteSize(t, cfg.Cache.HotBytes), memReq.Value(), "cache.hot_bytes %s does not fit in the memory request %s", cfg.Cache.HotBytes, memReq.String())
 	goMem := ""
 	for _, e := range c.Env {
 		if e.Name == "GOMEMLIMIT" {
 			goMem = e.Value
 		}
 	}
-	if goMem == "" || byteSize(t, goMem) >= memLim.Value() {
-		t.Errorf("GOMEMLIMIT %q is missing or not below the memory limit %s", goMem, memLim.String())
+	if assert.NotEmptyf(t, goMem, "GOMEMLIMIT is missing") {
+		assert.Lessf(t, byteSize(t, goMem), memLim.Value(), "GOMEMLIMIT %q is not below the memory limit %s", goMem, memLim.String())
 	}
 	var dataLimit *resource.Quantity
 	for _, v := range proxy.Spec.Template.Spec.Volumes {
@@ -439,70 +395,48 @@ func TestKubernetesManifests(t *testing.T) {
 			dataLimit = v.EmptyDir.SizeLimit
 		}
 	}
-	if dataLimit == nil || byteSize(t, cfg.Cache.MaxBytes) >= dataLimit.Value() {
-		t.Errorf("data emptyDir sizeLimit %v must be above cache.max_bytes %s (the file grows past its cap between evictions)", dataLimit, cfg.Cache.MaxBytes)
-	}
+	assert.Falsef(t, dataLimit == nil || byteSize(t, cfg.Cache.MaxBytes) >= dataLimit.Value(), "data emptyDir sizeLimit %v must be above cache.max_bytes %s (the file grows past its cap between evictions)", dataLimit, cfg.Cache.MaxBytes)
 	grace := proxy.Spec.Template.Spec.TerminationGracePeriodSeconds
 	preStop := int64(0)
 	if l := c.Lifecycle; l != nil && l.PreStop != nil && l.PreStop.Sleep != nil {
 		preStop = l.PreStop.Sleep.Seconds
 	}
-	if grace == nil || float64(*grace) <= duration(t, cfg.Server.ShutdownTimeout).Seconds()+float64(preStop) {
-		t.Errorf("terminationGracePeriodSeconds %v must exceed preStop %ds + server.shutdown_timeout %s", grace, preStop, cfg.Server.ShutdownTimeout)
-	}
-	if r := cfg.Store.Redis; r == nil || len(r.Addrs) < 2 {
-		t.Error("the Kubernetes config should name several Redis Cluster seeds under store.redis.addrs")
-	}
+	assert.Falsef(t, grace == nil || float64(*grace) <= duration(t, cfg.Server.ShutdownTimeout).Seconds()+float64(preStop), "terminationGracePeriodSeconds %v must exceed preStop %ds + server.shutdown_timeout %s", grace, preStop, cfg.Server.ShutdownTimeout)
+	r := cfg.Store.Redis
+	assert.False(t, r == nil || len(r.Addrs) < 2, "the Kubernetes config should name several Redis Cluster seeds under store.redis.addrs")
 
 	// The sidecars: several replicas sharing one job queue on the proxies'
 	// Redis (their config's store.redis), reaching the proxies through
 	// their Service.
-	if search.Spec.Replicas == nil || *search.Spec.Replicas < 2 || search.Spec.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType {
-		t.Error("stint-search should run several replicas sharing the queue, replaced in a rolling update")
-	}
+	assert.False(t, search.Spec.Replicas == nil || *search.Spec.Replicas < 2 || search.Spec.Strategy.Type != appsv1.RollingUpdateDeploymentStrategyType, "stint-search should run several replicas sharing the queue, replaced in a rolling update")
 	sc := search.Spec.Template.Spec.Containers[0]
-	if got := flagValue(sc.Args, "--config"); got != mountPath(sc, "config")+"/stint.yaml" {
-		t.Errorf("stint-search --config %q, want the proxies' config mounted from ConfigMap stint-config", got)
-	}
-	if !slices.ContainsFunc(sc.Env, func(e corev1.EnvVar) bool { return e.Name == "STINT_REDIS_PASSWORD" }) {
-		t.Error("stint-search needs STINT_REDIS_PASSWORD, the password_env of store.redis")
-	}
+	got := flagValue(sc.Args, "--config")
+	assert.Equal(t, mountPath(sc, "config")+"/stint.yaml", got, "stint-search --config %q, want the proxies' config mounted from ConfigMap stint-config", got)
+	assert.True(t, slices.ContainsFunc(sc.Env, func(e corev1.EnvVar) bool { return e.Name == "STINT_REDIS_PASSWORD" }), "stint-search needs STINT_REDIS_PASSWORD, the password_env of store.redis")
 	for _, v := range search.Spec.Template.Spec.Volumes {
-		if v.Name == "data" && v.EmptyDir == nil {
-			t.Error("stint-search's data volume should be an emptyDir: its state is in Redis, and replicas cannot share one ReadWriteOnce claim")
-		}
+		assert.False(t, v.Name == "data" && v.EmptyDir == nil, "stint-search's data volume should be an emptyDir: its state is in Redis, and replicas cannot share one ReadWriteOnce claim")
 	}
-	if got, want := flagValue(sc.Args, "--proxy"), fmt.Sprintf("http://%s:%d/v1", svc.Name, svc.Spec.Ports[0].Port); got != want {
-		t.Errorf("stint-search --proxy %q, want the proxies' Service %q", got, want)
-	}
+	got, want := flagValue(sc.Args, "--proxy"), fmt.Sprintf("http://%s:%d/v1", svc.Name, svc.Spec.Ports[0].Port)
+	assert.Equal(t, want, got, "stint-search --proxy %q, want the proxies' Service %q", got, want)
 	searchPort := port(t, flagValue(sc.Args, "--listen"))
 	for _, pr := range []*corev1.Probe{sc.ReadinessProbe, sc.LivenessProbe} {
-		if pr == nil || pr.HTTPGet == nil || pr.HTTPGet.Path != "/healthz" {
-			t.Error("stint-search: want readiness and liveness probes on /healthz")
+		if !assert.False(t, pr == nil || pr.HTTPGet == nil || pr.HTTPGet.Path != "/healthz", "stint-search: want readiness and liveness probes on /healthz") {
 			continue
 		}
-		if got, ok := containerPort(sc, pr.HTTPGet.Port); !ok || fmt.Sprint(got) != searchPort {
-			t.Errorf("stint-search probe port %s is not the --listen port %s", pr.HTTPGet.Port.String(), searchPort)
-		}
+		got, ok := containerPort(sc, pr.HTTPGet.Port)
+		assert.Falsef(t, !ok || fmt.Sprint(got) != searchPort, "stint-search probe port %s is not the --listen port %s", pr.HTTPGet.Port.String(), searchPort)
 	}
-	if ss := m.services["stint-search"]; ss == nil || !selects(t, &metav1.LabelSelector{MatchLabels: ss.Spec.Selector}, search.Spec.Template.Labels) {
-		t.Error("want Service stint-search selecting the sidecar")
-	}
+	ss := m.services["stint-search"]
+	assert.False(t, ss == nil || !selects(t, &metav1.LabelSelector{MatchLabels: ss.Spec.Selector}, search.Spec.Template.Labels), "want Service stint-search selecting the sidecar")
 	for _, mnt := range sc.VolumeMounts {
-		if mnt.MountPath == "/models" && !mnt.ReadOnly {
-			t.Error("the model volume must be mounted read-only")
-		}
+		assert.False(t, mnt.MountPath == "/models" && !mnt.ReadOnly, "the model volume must be mounted read-only")
 	}
 
 	// The example Secret holds placeholders only.
 	for name, s := range m.secrets {
-		if len(s.Data) > 0 {
-			t.Errorf("example Secret %s has data: values; use placeholder stringData", name)
-		}
+		assert.Emptyf(t, s.Data, "example Secret %s has data: values; use placeholder stringData", name)
 		for k, v := range s.StringData {
-			if !strings.HasPrefix(v, "replace-") {
-				t.Errorf("example Secret %s key %s is %q, not a replace-… placeholder", name, k, v)
-			}
+			assert.Truef(t, strings.HasPrefix(v, "replace-"), "example Secret %s key %s is %q, not a replace-… placeholder", name, k, v)
 		}
 	}
 }

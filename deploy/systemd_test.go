@@ -5,6 +5,9 @@ import (
 	"slices"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // unitProblems lists the hardening a stint unit lacks.
@@ -68,19 +71,13 @@ func unitProblems(u unit) []string {
 func TestSystemdUnit(t *testing.T) {
 	src := readFile(t, "systemd/stint.service")
 	u, err := parseUnit(src)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if p := unitProblems(u); len(p) > 0 {
-		t.Errorf("systemd/stint.service:\n  %s", strings.Join(p, "\n  "))
-	}
+	require.NoError(t, err)
+	p := unitProblems(u)
+	assert.Emptyf(t, p, "systemd/stint.service:\n  %s", strings.Join(p, "\n  "))
 	host := parseStintConfig(t, readFile(t, "config/host.yaml"))
-	if stop := duration(t, u["Service"]["TimeoutStopSec"][0]); stop <= duration(t, host.Server.ShutdownTimeout) {
-		t.Errorf("TimeoutStopSec %v does not outlast server.shutdown_timeout %s", stop, host.Server.ShutdownTimeout)
-	}
-	if u["Install"]["WantedBy"][0] != "multi-user.target" {
-		t.Error("the unit is not wanted by multi-user.target")
-	}
+	stop := duration(t, u["Service"]["TimeoutStopSec"][0])
+	assert.Falsef(t, stop <= duration(t, host.Server.ShutdownTimeout), "TimeoutStopSec %v does not outlast server.shutdown_timeout %s", stop, host.Server.ShutdownTimeout)
+	assert.Equal(t, "multi-user.target", u["Install"]["WantedBy"][0], "the unit is not wanted by multi-user.target")
 
 	tests := []struct {
 		name, drop, add, want string
@@ -96,25 +93,18 @@ func TestSystemdUnit(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			s := string(src)
 			if tc.drop != "" {
-				if !strings.Contains(s, "\n"+tc.drop+"\n") {
-					t.Fatalf("the unit has no line %q", tc.drop)
-				}
+				require.Contains(t, s, "\n"+tc.drop+"\n", "the unit has no line %q", tc.drop)
 				s = strings.Replace(s, "\n"+tc.drop+"\n", "\n", 1)
 			}
 			if tc.add != "" {
 				s = strings.Replace(s, "[Service]\n", "[Service]\n"+tc.add+"\n", 1)
 			}
 			u, err := parseUnit([]byte(s))
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			p := unitProblems(u)
-			if !slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }) {
-				t.Errorf("problems %v do not mention %q", p, tc.want)
-			}
+			assert.Truef(t, slices.ContainsFunc(p, func(s string) bool { return strings.Contains(s, tc.want) }), "problems %v do not mention %q", p, tc.want)
 		})
 	}
-	if _, err := parseUnit([]byte("Description=x\n")); err == nil {
-		t.Error("a key outside any section parsed")
-	}
+	_, err = parseUnit([]byte("Description=x\n"))
+	assert.Error(t, err, "a key outside any section parsed")
 }

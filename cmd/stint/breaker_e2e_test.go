@@ -7,6 +7,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/internal/redistest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
@@ -37,20 +40,14 @@ store:
 	b := startStint(t, nil, "serve", "--config", config())
 	up.FailRatio(1, upstreamtest.Fault{Status: http.StatusBadGateway})
 	for i := range 3 {
-		if status, _, body := a.complete(t, greedyBody(i)); status != http.StatusBadGateway {
-			t.Fatalf("A call %d: %d %s, want the upstream's 502", i, status, body)
-		}
+		status, _, body := a.complete(t, greedyBody(i))
+		require.Equal(t, http.StatusBadGateway, status, "A call %d: %d %s, want the upstream's 502", i, status, body)
 	}
 	resp, err := http.Post("http://"+b.addr+"/v1/completions", "application/json", strings.NewReader(greedyBody(99)))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	resp.Body.Close()
 	ra, _ := strconv.Atoi(resp.Header.Get("Retry-After"))
-	if resp.StatusCode != http.StatusServiceUnavailable || ra < 1 || ra > 60 {
-		t.Fatalf("B after A tripped: %d Retry-After %q, want 503 with 1..60", resp.StatusCode, resp.Header.Get("Retry-After"))
-	}
-	if n := up.Calls().Completions; n != 3 {
-		t.Errorf("upstream calls %d, want 3 (none from B)", n)
-	}
+	require.Falsef(t, resp.StatusCode != http.StatusServiceUnavailable || ra < 1 || ra > 60, "B after A tripped: %d Retry-After %q, want 503 with 1..60", resp.StatusCode, resp.Header.Get("Retry-After"))
+	n := up.Calls().Completions
+	assert.Equal(t, 3, n, "upstream calls %d, want 3 (none from B)", n)
 }

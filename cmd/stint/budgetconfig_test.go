@@ -8,6 +8,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/boltledger"
 	"github.com/stintlab/stint/budget/guard"
@@ -56,15 +59,9 @@ func TestStatementConfigErrorsNameFieldAndLine(t *testing.T) {
 		t.Run(tt.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(tt.yaml))
 			var ce *ConfigError
-			if !errors.As(err, &ce) {
-				t.Fatalf("got %v, want a ConfigError", err)
-			}
-			if ce.Field != tt.wantField || ce.Line != tt.wantLine {
-				t.Errorf("error on %s line %d, want %s line %d (%v)", ce.Field, ce.Line, tt.wantField, tt.wantLine, err)
-			}
-			if !strings.Contains(err.Error(), tt.wantText) || !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
-				t.Errorf("error %q does not mention %q and line %d", err, tt.wantText, tt.wantLine)
-			}
+			require.Truef(t, errors.As(err, &ce), "got %v, want a ConfigError", err)
+			assert.Falsef(t, ce.Field != tt.wantField || ce.Line != tt.wantLine, "error on %s line %d, want %s line %d (%v)", ce.Field, ce.Line, tt.wantField, tt.wantLine, err)
+			assert.Falsef(t, !strings.Contains(err.Error(), tt.wantText) || !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)), "error %q does not mention %q and line %d", err, tt.wantText, tt.wantLine)
 		})
 	}
 }
@@ -90,13 +87,9 @@ budget:
   default_output_cap: 1000
   tokenizers: {demo-model: o200k_base}
 `))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	g, err := guardConfig(cfg)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	lab := g.Teams["lab"]
 	checks := []struct {
 		what      string
@@ -118,9 +111,7 @@ budget:
 		{"default price", g.Prices.Default.Output, 30.0},
 	}
 	for _, c := range checks {
-		if c.got != c.want {
-			t.Errorf("%s = %v, want %v", c.what, c.got, c.want)
-		}
+		assert.Equal(t, c.want, c.got, "%s = %v, want %v", c.what, c.got, c.want)
 	}
 }
 
@@ -128,40 +119,24 @@ budget:
 // settings are accepted by the guard itself, not only by ParseConfig.
 func TestExampleConfigBuildsAGuard(t *testing.T) {
 	cfg, err := ParseConfig(strings.NewReader(exampleConfig))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	gc, err := guardConfig(cfg)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	l, err := boltledger.New(openTestDB(t), boltledger.Options{Location: gc.Location})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := guard.New(gc, l, l, &ratelimit.Local{}, nil); err != nil {
-		t.Errorf("example config: guard.New: %v", err)
-	}
-	if gc.Teams["lab"].Budget == nil || gc.Teams["lab"].Keys["000000000000"] == nil {
-		t.Errorf("example team lab: %+v, want a budget and a key budget", gc.Teams["lab"])
-	}
+	require.NoError(t, err)
+	_, err = guard.New(gc, l, l, &ratelimit.Local{}, nil)
+	assert.NoError(t, err, "example config: guard.New: %v", err)
+	assert.Falsef(t, gc.Teams["lab"].Budget == nil || gc.Teams["lab"].Keys["000000000000"] == nil, "example team lab: %+v, want a budget and a key budget", gc.Teams["lab"])
 }
 
 // TestPricesExampleParses checks that the shipped price file is valid
 // config as it stands.
 func TestPricesExampleParses(t *testing.T) {
 	src, err := os.ReadFile("../../deploy/prices.example.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
-	if !strings.HasPrefix(string(src), "# example prices, verify before use") {
-		t.Error("deploy/prices.example.yaml must start with its warning")
-	}
+	require.NoError(t, err)
+	assert.True(t, strings.HasPrefix(string(src), "# example prices, verify before use"), "deploy/prices.example.yaml must start with its warning")
 	cfg, err := ParseConfig(strings.NewReader(string(src)))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := guardConfig(cfg); err != nil || len(cfg.Prices) == 0 {
-		t.Errorf("guardConfig: %v, %d prices", err, len(cfg.Prices))
-	}
+	require.NoError(t, err)
+	_, err = guardConfig(cfg)
+	assert.Falsef(t, err != nil || len(cfg.Prices) == 0, "guardConfig: %v, %d prices", err, len(cfg.Prices))
 }

@@ -10,6 +10,9 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // runStintToExit runs `stint args...` in a child process to its end and
@@ -26,8 +29,8 @@ func runStintToExit(t *testing.T, env []string, args ...string) (stdout, stderr 
 	switch {
 	case errors.As(err, &exit):
 		code = exit.ExitCode()
-	case err != nil:
-		t.Fatalf("run stint: %v", err)
+	default:
+		require.NoError(t, err, "run stint")
 	}
 	return out.String(), errOut.String(), code
 }
@@ -40,14 +43,10 @@ func runStintToExit(t *testing.T, env []string, args ...string) (stdout, stderr 
 // are reported as set or not set, never printed.
 func TestCheckConfigExitsWithoutOpeningAnything(t *testing.T) {
 	held, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer held.Close()
 	closed, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	redisAddr := closed.Addr().String()
 	closed.Close()
 
@@ -88,30 +87,21 @@ store:
 	for i, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			path := filepath.Join(dir, "case"+string(rune('a'+i))+".yaml")
-			if err := os.WriteFile(path, []byte(tc.config), 0o600); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, os.WriteFile(path, []byte(tc.config), 0o600))
 			stdout, stderr, code := runStintToExit(t, tc.env, "serve", "--config", path, "--check-config")
 			got := stderr
 			if tc.wantCode0 {
 				got = stdout
-				if code != 0 {
-					t.Fatalf("exit %d, want 0; stderr:\n%s", code, stderr)
-				}
-			} else if code == 0 {
-				t.Fatalf("exit 0 for a bad config; stdout:\n%s", stdout)
+				require.Equal(t, 0, code, "exit %d, want 0; stderr:\n%s", code, stderr)
+			} else {
+				require.NotEqualf(t, 0, code, "exit 0 for a bad config; stdout:\n%s", stdout)
 			}
 			for _, w := range tc.want {
-				if !strings.Contains(got, w) {
-					t.Errorf("output %q does not contain %q", got, w)
-				}
+				assert.Contains(t, got, w, "output %q does not contain %q", got, w)
 			}
-			if strings.Contains(stdout+stderr, secret) {
-				t.Errorf("a secret's value was printed:\n%s%s", stdout, stderr)
-			}
-			if _, err := os.Stat(data); !errors.Is(err, os.ErrNotExist) {
-				t.Errorf("--check-config touched the data dir: %v", err)
-			}
+			assert.Falsef(t, strings.Contains(stdout+stderr, secret), "a secret's value was printed:\n%s%s", stdout, stderr)
+			_, err := os.Stat(data)
+			assert.ErrorIs(t, err, os.ErrNotExist, "--check-config touched the data dir: %v", err)
 		})
 	}
 }

@@ -9,6 +9,9 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestParseConfigErrorsNameFieldAndLine(t *testing.T) {
@@ -38,15 +41,9 @@ func TestParseConfigErrorsNameFieldAndLine(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(tt.yaml))
-			if err == nil {
-				t.Fatal("got no error")
-			}
-			if !strings.Contains(err.Error(), tt.wantText) {
-				t.Errorf("error %q does not mention %q", err, tt.wantText)
-			}
-			if tt.wantLine > 0 && !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
-				t.Errorf("error %q does not name line %d", err, tt.wantLine)
-			}
+			require.Error(t, err, "got no error")
+			assert.Contains(t, err.Error(), tt.wantText, "error %q does not mention %q", err, tt.wantText)
+			assert.Falsef(t, tt.wantLine > 0 && !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)), "error %q does not name line %d", err, tt.wantLine)
 		})
 	}
 }
@@ -61,20 +58,12 @@ cache:
 server:
   max_body_bytes: 1048576
 `))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if cfg.Listen != "127.0.0.1:9000" || time.Duration(cfg.Cache.TTL) != 36*time.Hour || cfg.Cache.MaxBytes != 512<<20 || cfg.Cache.HotBytes != 1e9 || cfg.Server.MaxBodyBytes != 1<<20 {
-		t.Errorf("parsed %+v", cfg)
-	}
-	if cfg.Data != DefaultConfig().Data {
-		t.Errorf("data %q, want the default kept", cfg.Data)
-	}
+	require.NoError(t, err)
+	assert.Falsef(t, cfg.Listen != "127.0.0.1:9000" || time.Duration(cfg.Cache.TTL) != 36*time.Hour || cfg.Cache.MaxBytes != 512<<20 || cfg.Cache.HotBytes != 1e9 || cfg.Server.MaxBodyBytes != 1<<20, "parsed %+v", cfg)
+	assert.Equal(t, DefaultConfig().Data, cfg.Data, "data %q, want the default kept", cfg.Data)
 	var ce *ConfigError
 	_, err = ParseConfig(strings.NewReader("server:\n  max_body_bytes: 0\n"))
-	if !errors.As(err, &ce) || ce.Field != "server.max_body_bytes" {
-		t.Errorf("got %v, want a ConfigError on server.max_body_bytes", err)
-	}
+	assert.Falsef(t, !errors.As(err, &ce) || ce.Field != "server.max_body_bytes", "got %v, want a ConfigError on server.max_body_bytes", err)
 }
 
 func TestKeysNewPrintsAKeyThatMatchesItsHash(t *testing.T) {
@@ -82,9 +71,7 @@ func TestKeysNewPrintsAKeyThatMatchesItsHash(t *testing.T) {
 	var out bytes.Buffer
 	cmd.SetOut(&out)
 	cmd.SetArgs([]string{"keys", "new", "--team", "lab"})
-	if err := cmd.Execute(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, cmd.Execute())
 	lines := strings.Split(out.String(), "\n")
 	key := strings.TrimSpace(lines[1])
 	var stored string
@@ -94,12 +81,9 @@ func TestKeysNewPrintsAKeyThatMatchesItsHash(t *testing.T) {
 		}
 	}
 	sum := sha256.Sum256([]byte(key))
-	if stored != "sha256:"+hex.EncodeToString(sum[:]) {
-		t.Errorf("stored form %q does not hash key %q", stored, key)
-	}
-	if _, err := parseKeyHash(stored); err != nil {
-		t.Errorf("printed line does not parse: %v", err)
-	}
+	assert.Equal(t, "sha256:"+hex.EncodeToString(sum[:]), stored, "stored form %q does not hash key %q", stored, key)
+	_, err := parseKeyHash(stored)
+	assert.NoError(t, err, "printed line does not parse: %v", err)
 }
 
 // TestConfigErrorsNameThePathAndSuggest: a misspelt key or a value of the
@@ -128,19 +112,11 @@ func TestConfigErrorsNameThePathAndSuggest(t *testing.T) {
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(c.yaml))
-			if err == nil {
-				t.Fatal("got no error")
-			}
-			if !strings.Contains(err.Error(), c.want) {
-				t.Errorf("error %q\n  does not say %q", err, c.want)
-			}
-			if !strings.Contains(err.Error(), "line "+strconv.Itoa(c.line)) {
-				t.Errorf("error %q does not name line %d", err, c.line)
-			}
+			require.Error(t, err, "got no error")
+			assert.Contains(t, err.Error(), c.want, "error %q\n  does not say %q", err, c.want)
+			assert.Contains(t, err.Error(), "line "+strconv.Itoa(c.line), "error %q does not name line %d", err, c.line)
 			for _, internal := range []string{"main.", "!!", "unmarshal", "[]string", "yaml:"} {
-				if strings.Contains(err.Error(), internal) {
-					t.Errorf("error %q shows %q", err, internal)
-				}
+				assert.Falsef(t, strings.Contains(err.Error(), internal), "error %q shows %q", err, internal)
 			}
 		})
 	}

@@ -274,7 +274,7 @@ func (e *evidence) addRedis(t *testing.T, rdb *redis.Client) (keys int) {
 		case "none":
 			continue
 		default:
-			t.Fatalf("redis key %s of type %s: the test does not read that type", k, typ)
+			require.FailNowf(t, "unread redis type", "redis key %s of type %s: the test does not read that type", k, typ)
 		}
 		for _, p := range parts {
 			e.add(where, []byte(p))

@@ -152,7 +152,7 @@ func TestClusterPrimaryFailover(t *testing.T) {
 		if time.Now().After(giveUp) {
 			close(stop)
 			load.Wait()
-			t.Fatalf("a minute after the kill, replicas answered again at %v (zero: never); the last answers:\n%s", recovered, lastShots(shots, 6))
+			require.FailNowf(t, "replicas did not recover", "a minute after the kill, replicas answered again at %v (zero: never); the last answers:\n%s", recovered, lastShots(shots, 6))
 		}
 		time.Sleep(20 * time.Millisecond) // polling interval
 	}
@@ -178,14 +178,14 @@ func TestClusterPrimaryFailover(t *testing.T) {
 	for _, s := range shots {
 		switch {
 		case s.err != nil:
-			t.Errorf("call to replica %d during the failover: %v", s.replica, s.err)
+			assert.NoErrorf(t, s.err, "call to replica %d during the failover", s.replica)
 		case s.status == http.StatusServiceUnavailable:
 			unavailable++
 			if s.retryAfter == "" {
 				noRetryAfter++
 			}
 		case s.status != http.StatusOK:
-			t.Errorf("call to replica %d during the failover: %d %s, want 200 or 503", s.replica, s.status, s.body)
+			assert.Failf(t, "neither 200 nor 503", "call to replica %d during the failover: %d %s, want 200 or 503", s.replica, s.status, s.body)
 		}
 	}
 	assert.Zero(t, noRetryAfter, "503s during the failover without Retry-After")
@@ -298,7 +298,7 @@ func showLab(t *testing.T, c *child) []string {
 		}
 		return []string{f[0], f[1], f[2], f[6]}
 	}
-	t.Fatalf("no row of team lab in:\n%s", out)
+	require.FailNowf(t, "no row of team lab", "no row of team lab in:\n%s", out)
 	return nil
 }
 

@@ -7,6 +7,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -43,13 +46,10 @@ func TestRequestLogLines(t *testing.T) {
 				req.Header.Set("Authorization", "Bearer "+key)
 				req.Header.Set("Content-Type", "application/json")
 				resp, err := http.DefaultClient.Do(req)
-				if err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, err)
 				resp.Body.Close()
-				if got := cacheOutcome(resp.Header); resp.StatusCode != 200 || got != want {
-					t.Fatalf("status %d, cache outcome %q; want 200 %q", resp.StatusCode, got, want)
-				}
+				got := cacheOutcome(resp.Header)
+				require.Falsef(t, resp.StatusCode != 200 || got != want, "status %d, cache outcome %q; want 200 %q", resp.StatusCode, got, want)
 			}
 			// Request lines are buffered for at most a tenth of a second.
 			waitForLog(t, c, map[string]string{"json": `"cache":"hit"`, "text": "cache=hit"}[tc.format])
@@ -59,32 +59,23 @@ func TestRequestLogLines(t *testing.T) {
 					lines = append(lines, l)
 				}
 			}
-			if len(lines) != 2 {
-				t.Fatalf("want 2 request lines, got %d:\n%s", len(lines), c.output())
-			}
+			require.Lenf(t, lines, 2, "request lines in:\n%s", c.output())
 			for i, l := range lines {
-				if strings.Contains(l, key) {
-					t.Errorf("line %d holds the client key: %s", i, l)
-				}
-				if got := strings.Contains(l, prompt); got != tc.prompts {
-					t.Errorf("line %d: prompt text present=%v, want %v: %s", i, got, tc.prompts, l)
-				}
+				assert.Falsef(t, strings.Contains(l, key), "line %d holds the client key: %s", i, l)
+				got := strings.Contains(l, prompt)
+				assert.Equal(t, tc.prompts, got, "line %d: prompt text present=%v, want %v: %s", i, got, tc.prompts, l)
 				if tc.format == "json" {
 					var rec map[string]any
-					if err := json.Unmarshal([]byte(l), &rec); err != nil {
-						t.Fatalf("line %d is not JSON: %v: %s", i, err, l)
-					}
+					err := json.Unmarshal([]byte(l), &rec)
+					require.NoError(t, err, "line %d is not JSON: %v: %s", i, err, l)
 					want := map[string]any{"msg": "request", "level": "INFO", "team": "corner", "model": "quill-small", "cache": []string{"miss", "hit"}[i], "status": 200.0}
 					for k, v := range want {
-						if rec[k] != v {
-							t.Errorf("line %d: %s = %v, want %v", i, k, rec[k], v)
-						}
+						assert.Equal(t, v, rec[k], "line %d: %s = %v, want %v", i, k, rec[k], v)
 					}
-					if rec["prompt_tokens"].(float64) <= 0 || rec["completion_tokens"].(float64) <= 0 {
-						t.Errorf("line %d: no token counts: %s", i, l)
-					}
-				} else if !strings.Contains(l, "team=corner") || !strings.Contains(l, "model=quill-small") {
-					t.Errorf("line %d lacks team or model: %s", i, l)
+					assert.Falsef(t, rec["prompt_tokens"].(float64) <= 0 || rec["completion_tokens"].(float64) <= 0, "line %d: no token counts: %s", i, l)
+				} else {
+					assert.Containsf(t, l, "team=corner", "line %d lacks the team", i)
+					assert.Containsf(t, l, "model=quill-small", "line %d lacks the model", i)
 				}
 			}
 		})

@@ -19,6 +19,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/proxy/upstreamtest"
@@ -94,14 +97,10 @@ func startStint(t *testing.T, env []string, args ...string) *child {
 	cmd := exec.Command(os.Args[0], "-test.run=^$")
 	cmd.Env = append(append(os.Environ(), "STINT_TEST_MAIN="+string(argv)), env...)
 	stderr, err := cmd.StderrPipe()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	c := &child{cmd: cmd, exited: make(chan struct{})}
 	cmd.Stdout = childStdout{c} // what it prints on stdout joins its log
-	if err := cmd.Start(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, cmd.Start())
 	addrc := make(chan string, 1)
 	go func() {
 		sc := bufio.NewScanner(stderr)
@@ -127,9 +126,9 @@ func startStint(t *testing.T, env []string, args ...string) *child {
 	select {
 	case c.addr = <-addrc:
 	case <-c.exited:
-		t.Fatalf("stint exited before listening (%v):\n%s", c.err, c.output())
+		require.FailNowf(t, "stint exited before listening", "stint exited before listening (%v):\n%s", c.err, c.output())
 	case <-time.After(30 * time.Second):
-		t.Fatalf("stint did not start listening:\n%s", c.output())
+		require.FailNowf(t, "stint did not start listening", "stint did not start listening:\n%s", c.output())
 	}
 	return c
 }
@@ -152,9 +151,7 @@ func (c *child) output() string {
 func (c *child) complete(t *testing.T, body string) (int, string, []byte) {
 	t.Helper()
 	resp, err := http.Post("http://"+c.addr+"/v1/completions", "application/json", strings.NewReader(body))
-	if err != nil {
-		t.Fatalf("POST: %v", err)
-	}
+	require.NoError(t, err, "POST")
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	return resp.StatusCode, cacheOutcome(resp.Header), b
@@ -175,28 +172,23 @@ func TestKilledProcessKeepsAcknowledgedEntries(t *testing.T) {
 	first := startStint(t, nil, args...)
 	const n = 40
 	for i := range n {
-		if status, outcome, body := first.complete(t, greedyBody(i)); status != 200 || outcome != "miss" {
-			t.Fatalf("call %d: %d %s %s", i, status, outcome, body)
-		}
+		status, outcome, body := first.complete(t, greedyBody(i))
+		require.Falsef(t, status != 200 || outcome != "miss", "call %d: %d %s %s", i, status, outcome, body)
 	}
 	// Answers are stored right after they are sent: kill only once the
 	// store has acknowledged every write.
 	waitForMetric(t, first, "stint_store_pending_writes 0")
-	if err := first.cmd.Process.Signal(syscall.SIGKILL); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, first.cmd.Process.Signal(syscall.SIGKILL))
 	<-first.exited
 	calls := up.Calls().Completions
 
 	second := startStint(t, nil, args...)
 	for i := range n {
-		if status, outcome, body := second.complete(t, greedyBody(i)); status != 200 || outcome != "hit" {
-			t.Errorf("after SIGKILL, call %d: %d %s %s", i, status, outcome, body)
-		}
+		status, outcome, body := second.complete(t, greedyBody(i))
+		assert.Falsef(t, status != 200 || outcome != "hit", "after SIGKILL, call %d: %d %s %s", i, status, outcome, body)
 	}
-	if got := up.Calls().Completions; got != calls {
-		t.Errorf("upstream calls went from %d to %d after restart", calls, got)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, calls, got, "upstream calls went from %d to %d after restart", calls, got)
 }
 
 // TestGracefulShutdownFinishesInFlight sends SIGTERM while a call is held
@@ -223,22 +215,14 @@ func TestGracefulShutdownFinishesInFlight(t *testing.T) {
 	}()
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
-	if err := c.cmd.Process.Signal(syscall.SIGTERM); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, 1))
+	require.NoError(t, c.cmd.Process.Signal(syscall.SIGTERM))
 	waitForLog(t, c, "shutting down")
 	up.Release()
 	res := <-resc
-	if res.err != nil || res.status != 200 {
-		t.Fatalf("in-flight call during shutdown: %d %v", res.status, res.err)
-	}
+	require.Falsef(t, res.err != nil || res.status != 200, "in-flight call during shutdown: %d %v", res.status, res.err)
 	<-c.exited
-	if c.err != nil {
-		t.Fatalf("stint exited with %v:\n%s", c.err, c.output())
-	}
+	require.NoErrorf(t, c.err, "stint exited with an error:\n%s", c.output())
 }
 
 func waitForMetric(t *testing.T, c *child, line string) {
@@ -253,9 +237,7 @@ func waitForMetric(t *testing.T, c *child, line string) {
 				return
 			}
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("metrics never showed %q", line)
-		}
+		require.Falsef(t, time.Now().After(deadline), "metrics never showed %q", line)
 		time.Sleep(5 * time.Millisecond)
 	}
 }
@@ -264,44 +246,32 @@ func waitForLog(t *testing.T, c *child, text string) {
 	t.Helper()
 	deadline := time.Now().Add(30 * time.Second)
 	for !strings.Contains(c.output(), text) {
-		if time.Now().After(deadline) {
-			t.Fatalf("log never said %q:\n%s", text, c.output())
-		}
+		require.Falsef(t, time.Now().After(deadline), "log never said %q:\n%s", text, c.output())
 		time.Sleep(5 * time.Millisecond)
 	}
 }
 
 func TestServeRefusesOpenModeOffLoopback(t *testing.T) {
 	_, err := resolveConfig(serveFlags{listen: "0.0.0.0:8787", upstream: "http://127.0.0.1:1/v1"})
-	if err == nil || !strings.Contains(err.Error(), "refusing to listen") {
-		t.Fatalf("got %v, want a refusal", err)
-	}
+	require.Falsef(t, err == nil || !strings.Contains(err.Error(), "refusing to listen"), "got %v, want a refusal", err)
 	for _, addr := range []string{"127.0.0.1:8787", "[::1]:8787", "localhost:8787"} {
-		if _, err := resolveConfig(serveFlags{listen: addr, upstream: "http://127.0.0.1:1/v1"}); err != nil {
-			t.Errorf("%s: %v", addr, err)
-		}
+		_, err := resolveConfig(serveFlags{listen: addr, upstream: "http://127.0.0.1:1/v1"})
+		assert.NoError(t, err, "%s: %v", addr, err)
 	}
-	if _, err := resolveConfig(serveFlags{}); err == nil || !strings.Contains(err.Error(), "no upstream") {
-		t.Errorf("no upstream: got %v", err)
-	}
+	_, err = resolveConfig(serveFlags{})
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "no upstream"), "no upstream: got %v", err)
 }
 
 func TestCheckConfigAndExample(t *testing.T) {
 	dir := t.TempDir()
 	path := filepath.Join(dir, "stint.yaml")
-	if err := os.WriteFile(path, []byte(exampleConfig), 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, os.WriteFile(path, []byte(exampleConfig), 0o600))
 	cmd := newRootCmd()
 	var out bytes.Buffer
 	cmd.SetOut(&out)
 	cmd.SetArgs([]string{"serve", "--config", path, "--check-config"})
-	if err := cmd.Execute(); err != nil {
-		t.Fatalf("example config fails --check-config: %v", err)
-	}
-	if !strings.Contains(out.String(), "config ok") {
-		t.Errorf("output %q", out.String())
-	}
+	require.NoError(t, cmd.Execute(), "example config fails --check-config")
+	assert.Contains(t, out.String(), "config ok", "output")
 }
 
 // TestServeWithLocalModelUpstream runs the proxy with the real local model
@@ -315,24 +285,17 @@ func TestServeWithLocalModelUpstream(t *testing.T) {
 	var texts [2]string
 	for i, want := range []string{"miss", "hit"} {
 		status, outcome, b := c.complete(t, body)
-		if status != 200 || outcome != want {
-			t.Fatalf("call %d: %d %s %s", i, status, outcome, b)
-		}
+		require.Falsef(t, status != 200 || outcome != want, "call %d: %d %s %s", i, status, outcome, b)
 		var a struct {
 			Choices []struct {
 				Text string `json:"text"`
 			} `json:"choices"`
 		}
-		if err := json.Unmarshal(b, &a); err != nil || len(a.Choices) != 1 {
-			t.Fatalf("answer %s: %v", b, err)
-		}
+		err := json.Unmarshal(b, &a)
+		require.Falsef(t, err != nil || len(a.Choices) != 1, "answer %s: %v", b, err)
 		texts[i] = a.Choices[0].Text
 	}
 	const published = "Once upon a time, there was a little girl named Lily."
-	if !strings.HasPrefix(strings.TrimSpace(texts[0]), published) {
-		t.Errorf("greedy text %q does not start with %q", texts[0], published)
-	}
-	if texts[0] != texts[1] {
-		t.Errorf("hit %q differs from miss %q", texts[1], texts[0])
-	}
+	assert.Truef(t, strings.HasPrefix(strings.TrimSpace(texts[0]), published), "greedy text %q does not start with %q", texts[0], published)
+	assert.Equal(t, texts[1], texts[0], "hit %q differs from miss %q", texts[1], texts[0])
 }

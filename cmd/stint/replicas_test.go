@@ -11,6 +11,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/redis/go-redis/v9"
 
 	"github.com/stintlab/stint/budget"
@@ -134,31 +137,22 @@ func testNeverOverspend(t *testing.T, redisAddrs string, client redis.UniversalC
 			case http.StatusPaymentRequired:
 				refused++
 			default:
-				t.Errorf("status %d: %s", resp.StatusCode, b)
+				assert.Failf(t, "neither 200 nor 402", "status %d: %s", resp.StatusCode, b)
 			}
 		})
 	}
 	wg.Wait()
-	if ok == 0 || refused == 0 {
-		t.Fatalf("%d answered, %d refused: the budget should run out mid-test", ok, refused)
-	}
+	require.Falsef(t, ok == 0 || refused == 0, "%d answered, %d refused: the budget should run out mid-test", ok, refused)
 	billed := billedNanos(up.Billed())
 	limit := usdNanos(t, budgetUSD)
-	if billed > limit {
-		t.Errorf("the upstream billed %d nano-USD, over the %d budget", billed, limit)
-	}
-	if got := up.Calls().Completions; got != ok {
-		t.Errorf("%d upstream calls for %d answers: a refused call reached the upstream", got, ok)
-	}
+	assert.Falsef(t, billed > limit, "the upstream billed %d nano-USD, over the %d budget", billed, limit)
+	got := up.Calls().Completions
+	assert.Equal(t, ok, got, "%d upstream calls for %d answers: a refused call reached the upstream", got, ok)
 	ledger := redisledger.New(client, redisledger.Options{})
 	b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if int64(b.Spent) != billed || cost != billed || b.Held != 0 {
-		t.Errorf("ledger spent %d, headers %d, upstream billed %d, held %d: all must agree exactly, nothing held",
-			b.Spent, cost, billed, b.Held)
-	}
+	require.NoError(t, err)
+	assert.Falsef(t, int64(b.Spent) != billed || cost != billed || b.Held != 0, "ledger spent %d, headers %d, upstream billed %d, held %d: all must agree exactly, nothing held",
+		b.Spent, cost, billed, b.Held)
 }
 
 // TestDeadRedisFailsClosedAndRecovers stops the Redis that holds the
@@ -172,34 +166,27 @@ func TestDeadRedisFailsClosedAndRecovers(t *testing.T) {
 	path, key := redisConfigWith(t, up.URL(), rs.Addr, "1.00", "    cache: false\n")
 	c := startStint(t, nil, "serve", "--config", path)
 	cached := greedyBody(1)
-	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK {
-		t.Fatalf("first call: %d %s", resp.StatusCode, b)
-	}
+	resp, b := post(t, c, key, cached)
+	require.Equal(t, http.StatusOK, resp.StatusCode, "first call: %d %s", resp.StatusCode, b)
 	before := up.Calls().Completions
 
 	rs.Stop()
-	resp, b := post(t, c, key, greedyBody(2))
+	resp, b = post(t, c, key, greedyBody(2))
 	var e struct {
 		Error struct {
 			Code    string `json:"code"`
 			Message string `json:"message"`
 		} `json:"error"`
 	}
-	if resp.StatusCode != http.StatusServiceUnavailable || json.Unmarshal(b, &e) != nil || e.Error.Code != "spend_control_unavailable" {
-		t.Errorf("miss with Redis down: %d %s, want 503 spend_control_unavailable", resp.StatusCode, b)
-	}
-	if resp, b := post(t, c, key, cached); resp.StatusCode != http.StatusOK || cacheOutcome(resp.Header) != "hit" {
-		t.Errorf("hit with Redis down: %d %q %s, want 200 hit", resp.StatusCode, cacheOutcome(resp.Header), b)
-	}
-	if got := up.Calls().Completions; got != before {
-		t.Errorf("upstream calls went from %d to %d with the budget store down: nothing may be forwarded unbudgeted", before, got)
-	}
+	assert.Falsef(t, resp.StatusCode != http.StatusServiceUnavailable || json.Unmarshal(b, &e) != nil || e.Error.Code != "spend_control_unavailable", "miss with Redis down: %d %s, want 503 spend_control_unavailable", resp.StatusCode, b)
+	resp, b = post(t, c, key, cached)
+	assert.Falsef(t, resp.StatusCode != http.StatusOK || cacheOutcome(resp.Header) != "hit", "hit with Redis down: %d %q %s, want 200 hit", resp.StatusCode, cacheOutcome(resp.Header), b)
+	got := up.Calls().Completions
+	assert.Equal(t, before, got, "upstream calls went from %d to %d with the budget store down: nothing may be forwarded unbudgeted", before, got)
 
 	rs.Restart(t)
 	resp, b = post(t, c, key, greedyBody(3))
-	if resp.StatusCode != http.StatusOK {
-		t.Errorf("after Redis came back: %d %s, want 200 without a restart", resp.StatusCode, b)
-	}
+	assert.Equal(t, http.StatusOK, resp.StatusCode, "after Redis came back: %d %s, want 200 without a restart", resp.StatusCode, b)
 }
 
 // runCLI runs a stint command in-process and returns its output.
@@ -229,27 +216,19 @@ func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 	var cost int64
 	for i, c := range []*child{a, b} {
 		resp, body := post(t, c, key, greedyBody(10+i))
-		if resp.StatusCode != http.StatusOK {
-			t.Fatalf("call on replica %d: %d %s", i, resp.StatusCode, body)
-		}
+		require.Equal(t, http.StatusOK, resp.StatusCode, "call on replica %d: %d %s", i, resp.StatusCode, body)
 		cost += usdNanos(t, resp.Header.Get("Stint-Cost-Usd"))
 	}
 	t.Setenv(adminKeyEnv, replicaAdminKey)
 	out, err := runCLI(t, "statement", "--proxy", "http://"+b.addr, "--json")
-	if err != nil {
-		t.Fatalf("stint statement --proxy: %v\n%s", err, out)
-	}
+	require.NoError(t, err, "stint statement --proxy: %v\n%s", err, out)
 	var rep statement
-	if err := json.Unmarshal([]byte(out), &rep); err != nil {
-		t.Fatalf("spend JSON %s: %v", out, err)
-	}
-	if rep.Total.UpstreamCalls != 2 || usdNanos(t, rep.Total.SpentUSD) != cost {
-		t.Errorf("spend via the proxy %+v, want 2 upstream calls costing %d nano-USD", rep.Total, cost)
-	}
+	err = json.Unmarshal([]byte(out), &rep)
+	require.NoError(t, err, "spend JSON %s: %v", out, err)
+	assert.Falsef(t, rep.Total.UpstreamCalls != 2 || usdNanos(t, rep.Total.SpentUSD) != cost, "spend via the proxy %+v, want 2 upstream calls costing %d nano-USD", rep.Total, cost)
 
-	if out, err := runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "lab", "--usd", "0.000001", "--per", "total"); err != nil || !strings.Contains(out, "0.000001") {
-		t.Fatalf("stint budget set: %v\n%s", err, out)
-	}
+	out, err = runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "lab", "--usd", "0.000001", "--per", "total")
+	require.Falsef(t, err != nil || !strings.Contains(out, "0.000001"), "stint budget set: %v\n%s", err, out)
 	// Replica b rereads budgets set elsewhere within a second; poll for
 	// its refusal (bounded), asserting no timing.
 	before := up.Calls().Completions
@@ -259,22 +238,17 @@ func TestBudgetSetThroughOneReplicaHoldsOnAll(t *testing.T) {
 		if resp.StatusCode == http.StatusPaymentRequired {
 			break
 		}
-		if resp.StatusCode != http.StatusOK || time.Now().After(deadline) {
-			t.Fatalf("replica b after the budget was lowered: %d %s", resp.StatusCode, body)
-		}
+		require.Falsef(t, resp.StatusCode != http.StatusOK || time.Now().After(deadline), "replica b after the budget was lowered: %d %s", resp.StatusCode, body)
 		before++ // admitted before the change reached b
 		time.Sleep(100 * time.Millisecond)
 	}
-	if got := up.Calls().Completions; got != before {
-		t.Errorf("upstream calls %d, want %d: the refused call was forwarded", got, before)
-	}
-	if _, err := runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "nobody", "--usd", "1"); err == nil || !strings.Contains(err.Error(), "no team") {
-		t.Errorf("budget for an unknown team: %v, want a clear refusal", err)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, before, got, "upstream calls %d, want %d: the refused call was forwarded", got, before)
+	_, err = runCLI(t, "budget", "set", "--proxy", "http://"+a.addr, "--team", "nobody", "--usd", "1")
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "no team"), "budget for an unknown team: %v, want a clear refusal", err)
 	t.Setenv(adminKeyEnv, "not-the-admin-key")
-	if _, err := runCLI(t, "budget", "show", "--proxy", "http://"+a.addr); err == nil || !strings.Contains(err.Error(), "401") {
-		t.Errorf("budget show with a wrong key: %v, want 401", err)
-	}
+	_, err = runCLI(t, "budget", "show", "--proxy", "http://"+a.addr)
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "401"), "budget show with a wrong key: %v, want 401", err)
 }
 
 // TestOutageAllowanceCarriesSpendOver stops Redis under a proxy that has
@@ -303,15 +277,12 @@ func TestOutageAllowanceCarriesSpendOver(t *testing.T) {
 		case http.StatusServiceUnavailable:
 			refused++
 		default:
-			t.Fatalf("call %d during the outage: %d %s", i, resp.StatusCode, body)
+			require.FailNowf(t, "neither 200 nor 503", "call %d during the outage: %d %s", i, resp.StatusCode, body)
 		}
 	}
-	if ok == 0 || refused == 0 {
-		t.Fatalf("%d admitted, %d refused during the outage: want the allowance to admit some and run out", ok, refused)
-	}
-	if billed := billedNanos(up.Billed()); billed != spent {
-		t.Errorf("upstream billed %d, headers say %d", billed, spent)
-	}
+	require.Falsef(t, ok == 0 || refused == 0, "%d admitted, %d refused during the outage: want the allowance to admit some and run out", ok, refused)
+	billed := billedNanos(up.Billed())
+	assert.Equal(t, spent, billed, "upstream billed %d, headers say %d", billed, spent)
 	rs.Restart(t) // empty: only what the proxy carries over will be there
 	ledger := redisledger.New(rs.Client(t), redisledger.Options{})
 	deadline := time.Now().Add(30 * time.Second)
@@ -320,9 +291,7 @@ func TestOutageAllowanceCarriesSpendOver(t *testing.T) {
 		if err == nil && int64(b.Spent) == spent {
 			break
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("shared ledger shows %+v (%v) after Redis came back, want %d spent carried over", b, err, spent)
-		}
+		require.Falsef(t, time.Now().After(deadline), "shared ledger shows %+v (%v) after Redis came back, want %d spent carried over", b, err, spent)
 		time.Sleep(200 * time.Millisecond)
 	}
 }

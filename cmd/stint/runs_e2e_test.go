@@ -10,6 +10,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy"
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
@@ -37,9 +40,7 @@ func runPost(t *testing.T, c *child, key, body string, headers ...string) (int, 
 		req.Header.Set(headers[i], headers[i+1])
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatalf("POST: %v", err)
-	}
+	require.NoError(t, err, "POST")
 	defer resp.Body.Close()
 	var b bytes.Buffer
 	_, _ = b.ReadFrom(resp.Body)
@@ -64,9 +65,7 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 	var recorded [][]byte
 	for i, b := range bodies {
 		status, _, body := runPost(t, c, "lab-run-key", b, "Stint-Run", "quince-1")
-		if status != http.StatusOK {
-			t.Fatalf("record %d: %d %s", i, status, body)
-		}
+		require.Equal(t, http.StatusOK, status, "record %d: %d %s", i, status, body)
 		recorded = append(recorded, body)
 	}
 	replayAll := func(c *child, where string) {
@@ -74,13 +73,9 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 		calls := up.Calls()
 		for i, b := range bodies {
 			status, outcome, body := runPost(t, c, "lab-run-key", b, "Stint-Run", "quince-1", "Stint-Run-Mode", "replay", "Stint-Replay-Session", where)
-			if status != http.StatusOK || outcome != "replay" || !bytes.Equal(body, recorded[i]) {
-				t.Errorf("%s: replay %d: %d %q, identical %v", where, i, status, outcome, bytes.Equal(body, recorded[i]))
-			}
+			assert.Falsef(t, status != http.StatusOK || outcome != "replay" || !bytes.Equal(body, recorded[i]), "%s: replay %d: %d %q, identical %v", where, i, status, outcome, bytes.Equal(body, recorded[i]))
 		}
-		if up.Calls() != calls {
-			t.Errorf("%s: the replay reached the upstream", where)
-		}
+		assert.Equal(t, calls, up.Calls(), "%s: the replay reached the upstream", where)
 	}
 	stop(t, c)
 	c = startStint(t, nil, "serve", "--config", cfg)
@@ -89,84 +84,59 @@ func TestRunSurvivesRestartAndExportImport(t *testing.T) {
 	proxyAt := "http://" + c.addr
 	t.Setenv(teamKeyEnv, "lab-run-key")
 	out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt)
-	if err != nil || !strings.Contains(out, "quince-1") {
-		t.Fatalf("runs show: %v\n%s", err, out)
-	}
+	require.Falsef(t, err != nil || !strings.Contains(out, "quince-1"), "runs show: %v\n%s", err, out)
 	// The detail: calls by model and by cache outcome, and the replay
 	// session this process answered (the sampled calls are bypass, the
 	// greedy one a miss).
 	for _, want := range []string{"MODEL", "quill-small", "CACHE", "bypass", "miss", "REPLAY SESSION", "after-restart"} {
-		if !strings.Contains(out, want) {
-			t.Errorf("runs show does not show %q:\n%s", want, out)
-		}
+		assert.Contains(t, out, want, "runs show does not show %q:\n%s", want, out)
 	}
 	out, err = runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt+"/v1", "--json")
 	var d proxy.RunDetail
-	if err != nil || json.Unmarshal([]byte(out), &d) != nil {
-		t.Fatalf("runs show --json: %v\n%s", err, out)
-	}
+	require.Falsef(t, err != nil || json.Unmarshal([]byte(out), &d) != nil, "runs show --json: %v\n%s", err, out)
 	outcomes := map[string]int64{}
 	for _, g := range d.ByOutcome {
 		outcomes[g.Name] = g.Calls
 	}
-	if d.Calls != 4 || len(d.ByModel) != 1 || d.ByModel[0].Name != "quill-small" || d.ByModel[0].Calls != 4 ||
-		outcomes["bypass"] != 3 || outcomes["miss"] != 1 || len(d.Replays) != 1 || d.Replays[0] != (proxy.ReplaySession{Session: "after-restart", Calls: 4}) {
-		t.Errorf("runs show --json: %+v", d)
-	}
+	assert.Falsef(t, d.Calls != 4 || len(d.ByModel) != 1 || d.ByModel[0].Name != "quill-small" || d.ByModel[0].Calls != 4 ||
+		outcomes["bypass"] != 3 || outcomes["miss"] != 1 || len(d.Replays) != 1 || d.Replays[0] != (proxy.ReplaySession{Session: "after-restart", Calls: 4}), "runs show --json: %+v", d)
 	archive := filepath.Join(t.TempDir(), "quince-1.stintrun")
-	if out, err := runCLI(t, "runs", "export", "quince-1", "-o", archive, "--proxy", proxyAt); err != nil {
-		t.Fatalf("runs export: %v\n%s", err, out)
-	}
+	out, err = runCLI(t, "runs", "export", "quince-1", "-o", archive, "--proxy", proxyAt)
+	require.NoError(t, err, "runs export: %v\n%s", err, out)
 
 	// The spend journal names the run of each call it recorded.
 	t.Setenv(adminKeyEnv, replicaAdminKey)
 	out, err = runCLI(t, "statement", "--proxy", proxyAt, "--by", "run", "--json")
 	var rep statement
-	if err != nil || json.Unmarshal([]byte(out), &rep) != nil {
-		t.Fatalf("spend by run: %v\n%s", err, out)
-	}
+	require.Falsef(t, err != nil || json.Unmarshal([]byte(out), &rep) != nil, "spend by run: %v\n%s", err, out)
 	var found bool
 	for _, row := range rep.Rows {
 		found = found || (row.Group == "quince-1" && row.Requests == int64(len(bodies)))
 	}
-	if !found {
-		t.Errorf("spend by run %+v: want a row for quince-1 with %d requests", rep.Rows, len(bodies))
-	}
+	assert.Truef(t, found, "spend by run %+v: want a row for quince-1 with %d requests", rep.Rows, len(bodies))
 
 	t.Setenv(teamKeyEnv, "kiln-run-key")
-	if out, err := runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt); err == nil || !strings.Contains(err.Error(), "404") {
-		t.Errorf("another team's runs show: %v\n%s, want 404", err, out)
-	}
-	if out, err := runCLI(t, "runs", "list", "--proxy", proxyAt); err != nil || strings.Contains(out, "quince-1") {
-		t.Errorf("another team's runs list shows the run: %v\n%s", err, out)
-	}
-	if status, _, body := runPost(t, c, "kiln-run-key", bodies[0], "Stint-Run", "quince-1", "Stint-Run-Mode", "replay"); status != http.StatusNotFound {
-		t.Errorf("another team's replay: %d %s, want 404", status, body)
-	}
+	out, err = runCLI(t, "runs", "show", "quince-1", "--proxy", proxyAt)
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "404"), "another team's runs show: %v\n%s, want 404", err, out)
+	out, err = runCLI(t, "runs", "list", "--proxy", proxyAt)
+	assert.Falsef(t, err != nil || strings.Contains(out, "quince-1"), "another team's runs list shows the run: %v\n%s", err, out)
+	status, _, body := runPost(t, c, "kiln-run-key", bodies[0], "Stint-Run", "quince-1", "Stint-Run-Mode", "replay")
+	assert.Equal(t, http.StatusNotFound, status, "another team's replay: %d %s, want 404", status, body)
 
 	fresh := startStint(t, nil, "serve", "--config", twoTeamConfig(t, up.URL(), t.TempDir()))
 	t.Setenv(teamKeyEnv, "lab-run-key")
 	raw, err := os.ReadFile(archive)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	cut := filepath.Join(t.TempDir(), "cut.stintrun")
-	if err := os.WriteFile(cut, raw[:len(raw)/2], 0o600); err != nil {
-		t.Fatal(err)
-	}
-	if out, err := runCLI(t, "runs", "import", cut, "--proxy", "http://"+fresh.addr); err == nil || !strings.Contains(err.Error(), "corrupt") {
-		t.Errorf("import of a cut archive: %v\n%s, want a corrupt-archive refusal", err, out)
-	}
-	if out, err := runCLI(t, "runs", "import", archive, "--proxy", "http://"+fresh.addr); err != nil {
-		t.Fatalf("runs import: %v\n%s", err, out)
-	}
+	require.NoError(t, os.WriteFile(cut, raw[:len(raw)/2], 0o600))
+	out, err = runCLI(t, "runs", "import", cut, "--proxy", "http://"+fresh.addr)
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "corrupt"), "import of a cut archive: %v\n%s, want a corrupt-archive refusal", err, out)
+	out, err = runCLI(t, "runs", "import", archive, "--proxy", "http://"+fresh.addr)
+	require.NoError(t, err, "runs import: %v\n%s", err, out)
 	replayAll(fresh, "after-import")
 	// Importing it again says what to do in the command's own flags.
 	_, err = runCLI(t, "runs", "import", archive, "--proxy", "http://"+fresh.addr)
-	if err == nil || !strings.Contains(err.Error(), "--as NEW-ID") || !strings.Contains(err.Error(), "--replace") || strings.Contains(err.Error(), "as=") || strings.Contains(err.Error(), "replace=") {
-		t.Errorf("a second import: %v, want a refusal naming --as and --replace, not the API's query names", err)
-	}
-	if out, err := runCLI(t, "runs", "import", archive, "--replace", "--json", "--proxy", "http://"+fresh.addr); err != nil || !strings.Contains(out, `"run": "quince-1"`) {
-		t.Errorf("runs import --replace --json: %v\n%s", err, out)
-	}
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "--as NEW-ID") || !strings.Contains(err.Error(), "--replace") || strings.Contains(err.Error(), "as=") || strings.Contains(err.Error(), "replace="), "a second import: %v, want a refusal naming --as and --replace, not the API's query names", err)
+	out, err = runCLI(t, "runs", "import", archive, "--replace", "--json", "--proxy", "http://"+fresh.addr)
+	assert.Falsef(t, err != nil || !strings.Contains(out, `"run": "quince-1"`), "runs import --replace --json: %v\n%s", err, out)
 }

@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/search"
@@ -23,9 +26,7 @@ import (
 func upstreamCalls(t *testing.T, c *child) int {
 	t.Helper()
 	resp, err := http.Get("http://" + c.addr + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
 	total := 0
@@ -58,56 +59,35 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 	proxyURL := "http://" + c.addr + "/v1"
 	first, second := t.TempDir(), t.TempDir()
 	out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", first, "--run", "reading-e2e")
-	if err != nil {
-		t.Fatalf("search run: %v\n%s", err, out)
-	}
+	require.NoError(t, err, "search run: %v\n%s", err, out)
 	assertProgressInEveryPhase(t, out)
 	recorded := upstreamCalls(t, c)
-	if recorded == 0 {
-		t.Fatal("the search made no upstream call")
-	}
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", second, "--run", "reading-e2e", "--replay"); err != nil {
-		t.Fatalf("search replay: %v\n%s", err, out)
-	}
-	if got := upstreamCalls(t, c); got != recorded {
-		t.Errorf("upstream calls went from %d to %d during the replay", recorded, got)
-	}
+	require.False(t, recorded == 0, "the search made no upstream call")
+	out, err = runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", second, "--run", "reading-e2e", "--replay")
+	require.NoError(t, err, "search replay: %v\n%s", err, out)
+	got := upstreamCalls(t, c)
+	assert.Equal(t, recorded, got, "upstream calls went from %d to %d during the replay", recorded, got)
 	a, err := os.ReadFile(filepath.Join(first, "results.json"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	b, err := os.ReadFile(filepath.Join(second, "results.json"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	// Source: the record/replay contract (README "Record and replay a
 	// run"): a replay answers every call from the journal, byte for byte.
-	if !bytes.Equal(a, b) {
-		t.Errorf("replayed results differ:\n%s\nvs\n%s", a, b)
-	}
+	assert.Truef(t, bytes.Equal(a, b), "replayed results differ:\n%s\nvs\n%s", a, b)
 	var res search.Results
-	if err := json.Unmarshal(a, &res); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal(a, &res))
 	for _, ct := range res.Ranking {
-		if ct.EvalCalls == 0 || ct.EvalSpendUSD <= 0 {
-			t.Errorf("%s: %d evaluation calls, %v USD; want the evaluation's calls and their cost", ct.Method, ct.EvalCalls, ct.EvalSpendUSD)
-		}
+		assert.Falsef(t, ct.EvalCalls == 0 || ct.EvalSpendUSD <= 0, "%s: %d evaluation calls, %v USD; want the evaluation's calls and their cost", ct.Method, ct.EvalCalls, ct.EvalSpendUSD)
 		searched := ct.Method != search.MethodEmpty && ct.Method != search.MethodManual
-		if searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0) {
-			t.Errorf("%s: %d search calls, %v USD", ct.Method, ct.SearchCalls, ct.SearchSpendUSD)
-		}
+		assert.Falsef(t, searched != (ct.SearchCalls > 0 && ct.SearchSpendUSD > 0), "%s: %d search calls, %v USD", ct.Method, ct.SearchCalls, ct.SearchSpendUSD)
 		// On its own a contender pays for every text it had judged first,
 		// at the proxy's price before the cache: at least what it was
 		// charged here, where some came from others' calls.
-		if searched != (ct.SearchNewTexts > 0 && ct.SearchAloneUSD >= ct.SearchSpendUSD*(1-1e-9)) {
-			t.Errorf("%s: %d new texts, %v USD alone for %v charged", ct.Method, ct.SearchNewTexts, ct.SearchAloneUSD, ct.SearchSpendUSD)
-		}
+		assert.Falsef(t, searched != (ct.SearchNewTexts > 0 && ct.SearchAloneUSD >= ct.SearchSpendUSD*(1-1e-9)), "%s: %d new texts, %v USD alone for %v charged", ct.Method, ct.SearchNewTexts, ct.SearchAloneUSD, ct.SearchSpendUSD)
 	}
 	for _, name := range []string{"history.csv", "report.md", "learning-curve.png", "learning-curve.svg"} {
-		if st, err := os.Stat(filepath.Join(first, name)); err != nil || st.Size() == 0 {
-			t.Errorf("%s missing or empty: %v", name, err)
-		}
+		st, err := os.Stat(filepath.Join(first, name))
+		assert.Falsef(t, err != nil || st.Size() == 0, "%s missing or empty: %v", name, err)
 	}
 }
 
@@ -117,9 +97,7 @@ func TestSearchReplaysToTheSameResults(t *testing.T) {
 // the evaluation.
 func assertProgressInEveryPhase(t *testing.T, out string) {
 	t.Helper()
-	if strings.Contains(out, "\r") {
-		t.Errorf("progress redrawn with carriage returns on a non-terminal:\n%q", out)
-	}
+	assert.Falsef(t, strings.Contains(out, "\r"), "progress redrawn with carriage returns on a non-terminal:\n%q", out)
 	for _, phase := range []*regexp.Regexp{
 		regexp.MustCompile(`(?m)^\[[#.]+\] step \d+/\d+ .* eta \S+$`),
 		regexp.MustCompile(`(?m)^\[[#.]+\] choice +\d+/\d+ judgements .* eta \S+$`),
@@ -127,9 +105,7 @@ func assertProgressInEveryPhase(t *testing.T, out string) {
 		regexp.MustCompile(`(?m)^\[[#.]+\] halving +\d+/\d+ judgements .* eta \S+$`),
 		regexp.MustCompile(`(?m)^\[[#.]+\] evaluation +\d+/\d+ contenders .* eta \S+$`),
 	} {
-		if !phase.MatchString(out) {
-			t.Errorf("no progress line like %s in:\n%s", phase, out)
-		}
+		assert.Truef(t, phase.MatchString(out), "no progress line like %s in:\n%s", phase, out)
 	}
 }
 
@@ -140,23 +116,15 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 	t.Setenv("STINT_MODEL", modeltest.Path(t))
 	out, err := runCLI(t, "demo", "--steps", "3", "--data", t.TempDir(), "--out", t.TempDir(),
 		"--dataset", filepath.Join("..", "..", "testdata", "search"))
-	if err != nil {
-		t.Fatalf("stint demo: %v\n%s", err, out)
-	}
+	require.NoError(t, err, "stint demo: %v\n%s", err, out)
 	m := regexp.MustCompile(`upstream calls (\d+), [0-9.]+% of calls from the cache, calls saved (\d+)`).FindStringSubmatch(out)
-	if m == nil {
-		t.Fatalf("no savings line in:\n%s", out)
-	}
+	require.Falsef(t, m == nil, "no savings line in:\n%s", out)
 	upstream, _ := strconv.Atoi(m[1])
 	saved, _ := strconv.Atoi(m[2])
 	// Source: hand-reasoned from the demo: its second search repeats the
 	// first call for call, so every one of its calls is saved.
-	if upstream == 0 || saved < upstream {
-		t.Errorf("demo: %d upstream calls, %d saved; the repeated search should be served from the cache", upstream, saved)
-	}
-	if !strings.Contains(out, "100.0% of texts from the cache") {
-		t.Errorf("the second search was not served from the cache:\n%s", out)
-	}
+	assert.Falsef(t, upstream == 0 || saved < upstream, "demo: %d upstream calls, %d saved; the repeated search should be served from the cache", upstream, saved)
+	assert.Contains(t, out, "100.0% of texts from the cache", "the second search was not served from the cache:\n%s", out)
 }
 
 // TestDemoWithoutModelSaysHowToGetIt runs the demo without its model
@@ -169,9 +137,7 @@ func TestDemoRunsOfflineAndSaves(t *testing.T) {
 func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
 	model := modeltest.Path(t)
 	blob, err := os.ReadFile(model)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	tests := []struct {
 		name      string
 		flag, env string // --model and $STINT_MODEL given to the demo
@@ -192,38 +158,25 @@ func TestDemoWithoutModelSaysHowToGetIt(t *testing.T) {
 				args = append(args, "--model", tt.flag)
 			}
 			_, err := runCLI(t, args...)
-			if err == nil {
-				t.Fatal("the demo ran without its model")
-			}
+			require.Error(t, err, "the demo ran without its model")
 			msg := err.Error()
 			cmdLine := regexp.MustCompile(`(?m)^ +(stint local .*)$`).FindStringSubmatch(msg)
 			target := regexp.MustCompile(`it writes (\S+) `).FindStringSubmatch(msg)
-			if cmdLine == nil || target == nil || !strings.HasPrefix(cmdLine[1], tt.want) {
-				t.Fatalf("message names no %q command and target:\n%s", tt.want, msg)
-			}
+			require.Falsef(t, cmdLine == nil || target == nil || !strings.HasPrefix(cmdLine[1], tt.want), "message names no %q command and target:\n%s", tt.want, msg)
 			want := tt.flag + tt.env
 			if tt.cache {
 				want = filepath.Join(cacheDir, "stint", "models", "stories260K.gguf")
 			}
 			// Source: localmodel.Locate's order (--model, STINT_MODEL,
 			// the cached download) is where the demo looks.
-			if target[1] != want {
-				t.Errorf("the message says the download writes %s, want %s (where the demo looks)", target[1], want)
-			}
+			assert.Equal(t, want, target[1], "the message says the download writes %s, want %s (where the demo looks)", target[1], want)
 			// Stand in for the download, then run the named command.
-			if err := os.MkdirAll(filepath.Dir(target[1]), 0o755); err != nil {
-				t.Fatal(err)
-			}
-			if err := os.WriteFile(target[1], blob, 0o600); err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, os.MkdirAll(filepath.Dir(target[1]), 0o755))
+			require.NoError(t, os.WriteFile(target[1], blob, 0o600))
 			out, err := runCLI(t, strings.Fields(cmdLine[1])[1:]...)
-			if err != nil || !strings.Contains(out, "already there") {
-				t.Errorf("%s: %v\n%s, want it to find the file and exit", cmdLine[1], err, out)
-			}
-			if got, err := localmodel.Locate(tt.flag, os.Getenv); err != nil || got != want {
-				t.Errorf("after the instructions the demo finds %q, %v; want %s", got, err, want)
-			}
+			assert.Falsef(t, err != nil || !strings.Contains(out, "already there"), "%s: %v\n%s, want it to find the file and exit", cmdLine[1], err, out)
+			got, err := localmodel.Locate(tt.flag, os.Getenv)
+			assert.Falsef(t, err != nil || got != want, "after the instructions the demo finds %q, %v; want %s", got, err, want)
 		})
 	}
 }
@@ -235,16 +188,10 @@ func TestSearchRefusesToStartOverOrWithoutAPrice(t *testing.T) {
 	t.Setenv("STINT_MODEL", modeltest.Path(t))
 	unpriced := shortTask(t)
 	raw, err := os.ReadFile(unpriced)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	noPrices := regexp.MustCompile(`(?m)^prices:\n(  .*\n)+`).ReplaceAll(raw, nil)
-	if bytes.Equal(noPrices, raw) {
-		t.Fatal("the example task has no prices section to remove")
-	}
-	if err := os.WriteFile(unpriced, noPrices, 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.False(t, bytes.Equal(noPrices, raw), "the example task has no prices section to remove")
+	require.NoError(t, os.WriteFile(unpriced, noPrices, 0o600))
 	tests := []struct {
 		name string
 		args []string
@@ -258,13 +205,9 @@ func TestSearchRefusesToStartOverOrWithoutAPrice(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			out, err := runCLI(t, append(append([]string{"search", "run"}, tt.args...), "--proxy", "http://127.0.0.1:1/v1", "--out", t.TempDir())...)
-			if err == nil || !strings.Contains(out, "forecast:") {
-				t.Fatalf("search: %v\n%s, want a refusal after the forecast", err, out)
-			}
+			require.Falsef(t, err == nil || !strings.Contains(out, "forecast:"), "search: %v\n%s, want a refusal after the forecast", err, out)
 			for _, w := range tt.want {
-				if !strings.Contains(err.Error(), w) {
-					t.Errorf("refusal %q does not name %q", err, w)
-				}
+				assert.Contains(t, err.Error(), w, "refusal %q does not name %q", err, w)
 			}
 		})
 	}
@@ -280,22 +223,14 @@ func TestSearchStopsAtItsSpendCap(t *testing.T) {
 	c := startStint(t, nil, "serve", "--config", cfg)
 	path := shortTask(t)
 	raw, err := os.ReadFile(path)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	tiny := regexp.MustCompile(`(?m)^spend_cap_usd: [0-9.]+`).ReplaceAll(raw, []byte("spend_cap_usd: 0.000001"))
-	if bytes.Equal(tiny, raw) {
-		t.Fatal("the example task has no spend_cap_usd line to change")
-	}
-	if err := os.WriteFile(path, tiny, 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.False(t, bytes.Equal(tiny, raw), "the example task has no spend_cap_usd line to change")
+	require.NoError(t, os.WriteFile(path, tiny, 0o600))
 	out, err := runCLI(t, "search", "run", path, "--proxy", "http://"+c.addr+"/v1", "--out", t.TempDir(), "--over-cap")
 	// Source: the task's spend_cap_usd is held by the spend the proxy
 	// reports (Stint-Cost-Usd); one priced miss is over 10⁻⁶ USD.
-	if err == nil || !strings.Contains(err.Error(), "spend cap is reached") || !strings.Contains(out, "starting over the cap") {
-		t.Errorf("search with a tiny cap: %v\n%s, want it started over the cap and stopped there", err, out)
-	}
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "spend cap is reached") || !strings.Contains(out, "starting over the cap"), "search with a tiny cap: %v\n%s, want it started over the cap and stopped there", err, out)
 }
 
 // TestResumedSearchFollowsTheSameTrajectory records an uninterrupted
@@ -311,37 +246,28 @@ func TestResumedSearchFollowsTheSameTrajectory(t *testing.T) {
 	taskPath := shortTask(t)
 	proxyURL := "http://" + c.addr + "/v1"
 	whole, pieces := t.TempDir(), t.TempDir()
-	if out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", whole, "--run", "reading-resume"); err != nil {
-		t.Fatalf("search run: %v\n%s", err, out)
-	}
+	out, err := runCLI(t, "search", "run", taskPath, "--proxy", proxyURL, "--out", whole, "--run", "reading-resume")
+	require.NoError(t, err, "search run: %v\n%s", err, out)
 	calls := upstreamCalls(t, c)
 	replay := []string{"search", "run", taskPath, "--proxy", proxyURL, "--out", pieces, "--run", "reading-resume", "--replay", "--checkpoint-every", "1"}
-	if out, err := runCLI(t, append(replay, "--stop-after", "2")...); err != nil || !strings.Contains(out, "stopped early") {
-		t.Fatalf("first piece: %v\n%s", err, out)
-	}
-	if _, err := os.Stat(filepath.Join(pieces, "results.json")); err == nil {
-		t.Fatal("a stopped search wrote results")
-	}
-	if out, err := runCLI(t, append(replay, "--resume")...); err != nil || !strings.Contains(out, "resuming after step 2") {
-		t.Fatalf("resumed piece: %v\n%s", err, out)
-	}
+	out, err = runCLI(t, append(replay, "--stop-after", "2")...)
+	require.Falsef(t, err != nil || !strings.Contains(out, "stopped early"), "first piece: %v\n%s", err, out)
+	_, err = os.Stat(filepath.Join(pieces, "results.json"))
+	require.Error(t, err, "a stopped search wrote results")
+	out, err = runCLI(t, append(replay, "--resume")...)
+	require.Falsef(t, err != nil || !strings.Contains(out, "resuming after step 2"), "resumed piece: %v\n%s", err, out)
 	// Source: the checkpoint contract (README "Prompt search"): a resumed
 	// run follows exactly the trajectory of an uninterrupted one.
 	// results.json has the end; history.csv every step's reward, loss,
 	// accuracies and greedy prompt, so the whole trajectory is compared.
 	for _, name := range []string{"results.json", "history.csv"} {
 		a, err := os.ReadFile(filepath.Join(whole, name))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		b, err := os.ReadFile(filepath.Join(pieces, name))
-		if err != nil || !bytes.Equal(a, b) {
-			t.Errorf("resumed %s differs (%v):\n%s\nvs\n%s", name, err, a, b)
-		}
+		assert.Falsef(t, err != nil || !bytes.Equal(a, b), "resumed %s differs (%v):\n%s\nvs\n%s", name, err, a, b)
 	}
-	if got := upstreamCalls(t, c); got != calls {
-		t.Errorf("upstream calls %d → %d during the replayed pieces", calls, got)
-	}
+	got := upstreamCalls(t, c)
+	assert.Equal(t, calls, got, "upstream calls %d → %d during the replayed pieces", calls, got)
 }
 
 // TestSearchRunAndServeTakeTheSamePriceFlags: both commands override the
@@ -351,22 +277,18 @@ func TestSearchRunAndServeTakeTheSamePriceFlags(t *testing.T) {
 	root := newRootCmd()
 	for _, path := range [][]string{{"search", "run"}, {"search", "serve"}} {
 		cmd, _, err := root.Find(path)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		for _, name := range []string{"input-price", "output-price"} {
 			fl := cmd.Flags().Lookup(name)
-			if fl == nil {
-				t.Errorf("%s has no --%s", strings.Join(path, " "), name)
+			if !assert.NotNilf(t, fl, "%s has no --%s", strings.Join(path, " "), name) {
 				continue
 			}
 			for _, tt := range []struct {
 				value string
 				ok    bool
 			}{{"0.5", true}, {"0", true}, {"-1", false}, {"NaN", false}, {"+Inf", false}, {"cheap", false}} {
-				if err := fl.Value.Set(tt.value); (err == nil) != tt.ok {
-					t.Errorf("%s --%s %s: %v, want ok=%v", strings.Join(path, " "), name, tt.value, err, tt.ok)
-				}
+				err := fl.Value.Set(tt.value)
+				assert.Falsef(t, (err == nil) != tt.ok, "%s --%s %s: %v, want ok=%v", strings.Join(path, " "), name, tt.value, err, tt.ok)
 			}
 		}
 	}
@@ -389,15 +311,12 @@ func TestProgressLine(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			p := search.Progress{Step: tt.step, Steps: 10, ResumedAfter: tt.resume}
-			if got := eta(40*time.Second, p); got != tt.want {
-				t.Errorf("eta = %v, want %v", got, tt.want)
-			}
+			got := eta(40*time.Second, p)
+			assert.Equal(t, tt.want, got, "eta = %v, want %v", got, tt.want)
 		})
 	}
 	line := progressText(search.Progress{Phase: search.PhaseSearch, Step: 1, Steps: 2, DevAcc: -1, FlooredShare: 0.125}, time.Now(), time.Now())
-	if !strings.Contains(line, "floored 12.5%") {
-		t.Errorf("progress line %q lacks the floored share", line)
-	}
+	assert.Contains(t, line, "floored 12.5%", "progress line %q lacks the floored share", line)
 }
 
 // TestSidecarAndLocalListenApart: `stint search serve` and `stint local`
@@ -408,14 +327,11 @@ func TestSidecarAndLocalListenApart(t *testing.T) {
 	listen := map[string]string{}
 	for _, path := range [][]string{{"search", "serve"}, {"local"}, {"serve"}} {
 		cmd, _, err := root.Find(path)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if fl := cmd.Flags().Lookup("listen"); fl != nil {
 			listen[strings.Join(path, " ")] = fl.DefValue
 		}
 	}
-	if got := listen["search serve"]; got != "127.0.0.1:8789" || got == listen["local"] {
-		t.Errorf("defaults: %v, want search serve on 127.0.0.1:8789, apart from local's", listen)
-	}
+	got := listen["search serve"]
+	assert.Falsef(t, got != "127.0.0.1:8789" || got == listen["local"], "defaults: %v, want search serve on 127.0.0.1:8789, apart from local's", listen)
 }

@@ -12,6 +12,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/budget"
 	"github.com/stintlab/stint/budget/redisledger"
 	"github.com/stintlab/stint/internal/redistest"
@@ -76,14 +79,10 @@ func call(c *child, d time.Duration, body string, extra ...string) answer {
 func scrape(t *testing.T, c *child, metric string) float64 {
 	t.Helper()
 	req, err := http.NewRequest(http.MethodGet, "http://"+c.addr+"/metrics", nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	req.Header.Set("Authorization", "Bearer "+replicaAdminKey)
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatalf("GET /metrics: %v", err)
-	}
+	require.NoError(t, err, "GET /metrics")
 	defer resp.Body.Close()
 	total := 0.0
 	sc := bufio.NewScanner(resp.Body)
@@ -94,9 +93,7 @@ func scrape(t *testing.T, c *child, metric string) float64 {
 			continue
 		}
 		f, err := strconv.ParseFloat(value, 64)
-		if err != nil {
-			t.Fatalf("metric line %q: %v", line, err)
-		}
+		require.NoError(t, err, "metric line %q", line)
 		total += f
 	}
 	return total
@@ -116,9 +113,7 @@ func awaitMetric(t *testing.T, cs []*child, want float64, metrics ...string) {
 		if got == want {
 			return
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("%v summed over the replicas = %v, want %v", metrics, got, want)
-		}
+		require.Falsef(t, time.Now().After(deadline), "%v summed over the replicas = %v, want %v", metrics, got, want)
 		time.Sleep(20 * time.Millisecond) // polling interval
 	}
 }
@@ -136,30 +131,20 @@ func TestClusterReplicasShareCacheAndRuns(t *testing.T) {
 	for i := range 5 { // several keys, on different nodes
 		body := greedyBody(300 + i)
 		first := call(a, 10*time.Second, body)
-		if first.err != nil || first.status != http.StatusOK || cacheOutcome(first.header) != "miss" {
-			t.Fatalf("call %d on a: %v %d %q %s", i, first.err, first.status, cacheOutcome(first.header), first.body)
-		}
+		require.Falsef(t, first.err != nil || first.status != http.StatusOK || cacheOutcome(first.header) != "miss", "call %d on a: %v %d %q %s", i, first.err, first.status, cacheOutcome(first.header), first.body)
 		got := call(b, 10*time.Second, body)
-		if got.err != nil || got.status != http.StatusOK || cacheOutcome(got.header) != "hit" || string(got.body) != string(first.body) {
-			t.Errorf("call %d on b: %v %d %q; want a hit with a's answer", i, got.err, got.status, cacheOutcome(got.header))
-		}
+		assert.Falsef(t, got.err != nil || got.status != http.StatusOK || cacheOutcome(got.header) != "hit" || string(got.body) != string(first.body), "call %d on b: %v %d %q; want a hit with a's answer", i, got.err, got.status, cacheOutcome(got.header))
 	}
-	if calls := up.Calls().Completions; calls != 5 {
-		t.Errorf("upstream calls = %d, want 5", calls)
-	}
+	calls := up.Calls().Completions
+	assert.Equal(t, 5, calls, "upstream calls = %d, want 5", calls)
 	sampled := `{"model":"quill-small","prompt":"the hives cross at the weir","temperature":1,"max_tokens":6}`
 	rec := call(a, 10*time.Second, sampled, "Stint-Run", "weir-run")
-	if rec.err != nil || rec.status != http.StatusOK {
-		t.Fatalf("recorded call on a: %v %d %s", rec.err, rec.status, rec.body)
-	}
+	require.Falsef(t, rec.err != nil || rec.status != http.StatusOK, "recorded call on a: %v %d %s", rec.err, rec.status, rec.body)
 	before := up.Calls().Completions
 	rep := call(b, 10*time.Second, sampled, "Stint-Run", "weir-run", "Stint-Run-Mode", "replay")
-	if rep.err != nil || rep.status != http.StatusOK || string(rep.body) != string(rec.body) {
-		t.Errorf("replay on b: %v %d %s; want a's recorded answer %s", rep.err, rep.status, rep.body, rec.body)
-	}
-	if calls := up.Calls().Completions; calls != before {
-		t.Errorf("the replay made %d upstream calls, want 0", calls-before)
-	}
+	assert.Falsef(t, rep.err != nil || rep.status != http.StatusOK || string(rep.body) != string(rec.body), "replay on b: %v %d %s; want a's recorded answer %s", rep.err, rep.status, rep.body, rec.body)
+	calls = up.Calls().Completions
+	assert.Equal(t, before, calls, "the replay made %d upstream calls, want 0", calls-before)
 }
 
 // TestClusterFiftyMissesOneCall sends 50 identical misses at once, spread
@@ -180,27 +165,20 @@ func TestClusterFiftyMissesOneCall(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, 1))
 	// Every other request waits: on its replica's own call, or on the
 	// replica holding the key.
 	awaitMetric(t, rs, clients-1, "stint_coalesced_waiting", "stint_coalesced_remote_waiting")
 	up.Release()
 	wg.Wait()
-	if calls := up.Calls().Completions; calls != 1 {
-		t.Fatalf("upstream calls = %d for %d identical misses, want 1", calls, clients)
-	}
+	calls := up.Calls().Completions
+	require.Equal(t, 1, calls, "upstream calls = %d for %d identical misses, want 1", calls, clients)
 	count := map[string]int{}
 	for i, g := range got {
-		if g.err != nil || g.status != http.StatusOK || string(g.body) != string(got[0].body) {
-			t.Fatalf("client %d: %v %d %s; want 200 with the one answer", i, g.err, g.status, g.body)
-		}
+		require.Falsef(t, g.err != nil || g.status != http.StatusOK || string(g.body) != string(got[0].body), "client %d: %v %d %s; want 200 with the one answer", i, g.err, g.status, g.body)
 		count[cacheOutcome(g.header)]++
 	}
-	if count["miss"] != 1 || count["shared"] != clients-1 {
-		t.Errorf("outcomes %v, want 1 miss and %d shared", count, clients-1)
-	}
+	assert.Falsef(t, count["miss"] != 1 || count["shared"] != clients-1, "outcomes %v, want 1 miss and %d shared", count, clients-1)
 }
 
 // TestClusterLeaseHolderKilled kills (SIGKILL) the replica that holds a
@@ -217,27 +195,18 @@ func TestClusterLeaseHolderKilled(t *testing.T) {
 	go call(a, 60*time.Second, body) // never answered: a dies
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, 1))
 	gotB := make(chan answer, 1)
 	go func() { gotB <- call(b, 60*time.Second, body) }()
 	awaitMetric(t, []*child{b}, 1, "stint_coalesced_remote_waiting")
-	if err := a.cmd.Process.Kill(); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, a.cmd.Process.Kill())
 	<-a.exited
-	if err := up.AwaitHeld(ctx, 0); err != nil { // a's call left with its connection
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, 0)) // a's call left with its connection
 	up.Release()
 	g := <-gotB
-	if g.err != nil || g.status != http.StatusOK || cacheOutcome(g.header) != "miss" {
-		t.Fatalf("b after a died: %v %d %q %s; want 200 from b's own call", g.err, g.status, cacheOutcome(g.header), g.body)
-	}
-	if calls := up.Calls().Completions; calls != 2 {
-		t.Errorf("upstream calls = %d, want 2 (a's lost one, b's)", calls)
-	}
+	require.Falsef(t, g.err != nil || g.status != http.StatusOK || cacheOutcome(g.header) != "miss", "b after a died: %v %d %q %s; want 200 from b's own call", g.err, g.status, cacheOutcome(g.header), g.body)
+	calls := up.Calls().Completions
+	assert.Equal(t, 2, calls, "upstream calls = %d, want 2 (a's lost one, b's)", calls)
 }
 
 // TestClusterDownDegradesAndRecovers stops every node of the cluster while
@@ -295,19 +264,14 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 	wg.Wait()
 	degraded := 0
 	for i, g := range results {
-		if g.err != nil || g.status != http.StatusOK {
-			t.Fatalf("request %d under load: %v %d %s; want every one answered before its deadline", i, g.err, g.status, g.body)
-		}
+		require.Falsef(t, g.err != nil || g.status != http.StatusOK, "request %d under load: %v %d %s; want every one answered before its deadline", i, g.err, g.status, g.body)
 		if storeDown(g.header) {
 			degraded++
 		}
 	}
-	if degraded < 30 {
-		t.Errorf("%d of the requests after the stop said the store was unavailable, want most of 40", degraded)
-	}
-	if n := scrape(t, rs[0], "stint_store_degraded_requests_total") + scrape(t, rs[1], "stint_store_degraded_requests_total"); n < float64(degraded) {
-		t.Errorf("degraded-requests metric %v, below the %d degraded answers", n, degraded)
-	}
+	assert.Falsef(t, degraded < 30, "%d of the requests after the stop said the store was unavailable, want most of 40", degraded)
+	n := scrape(t, rs[0], "stint_store_degraded_requests_total") + scrape(t, rs[1], "stint_store_degraded_requests_total")
+	assert.Falsef(t, n < float64(degraded), "degraded-requests metric %v, below the %d degraded answers", n, degraded)
 	// Back without a restart: once each replica reaches the cluster again
 	// (each waits out its own cool-down after its last failure), a fresh
 	// answer stored through one replica is a hit on the other.
@@ -319,19 +283,15 @@ func TestClusterDownDegradesAndRecovers(t *testing.T) {
 			if g.err == nil && g.status == http.StatusOK && !storeDown(g.header) {
 				break
 			}
-			if time.Now().After(wait) {
-				t.Fatalf("replica %d after the cluster came back: %v %d %q", i, g.err, g.status, g.header.Get("Cache-Status"))
-			}
+			require.Falsef(t, time.Now().After(wait), "replica %d after the cluster came back: %v %d %q", i, g.err, g.status, g.header.Get("Cache-Status"))
 			time.Sleep(50 * time.Millisecond) // polling interval
 		}
 	}
 	body := greedyBody(5000)
-	if g := call(rs[0], deadline, body); g.err != nil || g.status != http.StatusOK || storeDown(g.header) {
-		t.Fatalf("store through replica 0 after recovery: %v %d %q", g.err, g.status, g.header.Get("Cache-Status"))
-	}
-	if g := call(rs[1], deadline, body); g.err != nil || cacheOutcome(g.header) != "hit" {
-		t.Errorf("repeat on the other replica after recovery: %v %q, want a hit", g.err, cacheOutcome(g.header))
-	}
+	g := call(rs[0], deadline, body)
+	require.Falsef(t, g.err != nil || g.status != http.StatusOK || storeDown(g.header), "store through replica 0 after recovery: %v %d %q", g.err, g.status, g.header.Get("Cache-Status"))
+	g = call(rs[1], deadline, body)
+	assert.Falsef(t, g.err != nil || cacheOutcome(g.header) != "hit", "repeat on the other replica after recovery: %v %q, want a hit", g.err, cacheOutcome(g.header))
 }
 
 // TestClusterCoalescedMissesChargeOnce is TestClusterFiftyMissesOneCall
@@ -359,30 +319,21 @@ func TestClusterCoalescedMissesChargeOnce(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(t.Context(), 30*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, 1))
 	awaitMetric(t, rs, clients-1, "stint_coalesced_waiting", "stint_coalesced_remote_waiting")
 	up.Release()
 	wg.Wait()
-	if calls := up.Calls().Completions; calls != 1 {
-		t.Fatalf("upstream calls = %d, want 1", calls)
-	}
+	calls := up.Calls().Completions
+	require.Equal(t, 1, calls, "upstream calls = %d, want 1", calls)
 	var cost int64
 	for i, g := range got {
-		if g.err != nil || g.status != http.StatusOK {
-			t.Fatalf("client %d: %v %d %s", i, g.err, g.status, g.body)
-		}
+		require.Falsef(t, g.err != nil || g.status != http.StatusOK, "client %d: %v %d %s", i, g.err, g.status, g.body)
 		cost += usdNanos(t, g.header.Get("Stint-Cost-Usd"))
 	}
 	billed := billedNanos(up.Billed())
 	ledger := redisledger.New(cl.Client(t), redisledger.Options{})
 	b, err := ledger.Balance(context.Background(), time.Now(), budget.Scope{Team: "lab"}, budget.Total)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if billed == 0 || cost != billed || int64(b.Spent) != billed || b.Held != 0 {
-		t.Errorf("upstream billed %d nano-USD, answers' cost headers sum to %d, ledger spent %d, held %d: want all equal, nothing held",
-			billed, cost, b.Spent, b.Held)
-	}
+	require.NoError(t, err)
+	assert.Falsef(t, billed == 0 || cost != billed || int64(b.Spent) != billed || b.Held != 0, "upstream billed %d nano-USD, answers' cost headers sum to %d, ledger spent %d, held %d: want all equal, nothing held",
+		billed, cost, b.Spent, b.Held)
 }

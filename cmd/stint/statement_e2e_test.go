@@ -16,6 +16,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -35,9 +38,7 @@ func keyHash(key string) string {
 func writeConfig(t *testing.T, text string) string {
 	t.Helper()
 	path := filepath.Join(t.TempDir(), "stint.yaml")
-	if err := os.WriteFile(path, []byte(text), 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, os.WriteFile(path, []byte(text), 0o600))
 	return path
 }
 
@@ -77,21 +78,15 @@ func statementJSON(t *testing.T, data string) statement {
 	var out bytes.Buffer
 	cmd.SetOut(&out)
 	cmd.SetArgs([]string{"statement", "--data", data, "--json"})
-	if err := cmd.Execute(); err != nil {
-		t.Fatalf("stint statement: %v", err)
-	}
+	require.NoError(t, cmd.Execute(), "stint statement")
 	var rep statement
-	if err := json.Unmarshal(out.Bytes(), &rep); err != nil {
-		t.Fatalf("spend JSON %s: %v", out.Bytes(), err)
-	}
+	require.NoErrorf(t, json.Unmarshal(out.Bytes(), &rep), "spend JSON %s", out.Bytes())
 	return rep
 }
 
 func stop(t *testing.T, c *child) {
 	t.Helper()
-	if err := c.cmd.Process.Signal(syscall.SIGTERM); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, c.cmd.Process.Signal(syscall.SIGTERM))
 	<-c.exited
 }
 
@@ -104,19 +99,14 @@ func TestServeChargesBudgetAndReportsSpend(t *testing.T) {
 	body := `{"model":"quill-small","prompt":"the co-op pays for its crates","temperature":0,"max_tokens":6}`
 	miss, _ := post(t, c, key, body)
 	hit, _ := post(t, c, key, body)
-	if miss.StatusCode != 200 || cacheOutcome(hit.Header) != "hit" {
-		t.Fatalf("miss %d, then %q", miss.StatusCode, cacheOutcome(hit.Header))
-	}
+	require.Falsef(t, miss.StatusCode != 200 || cacheOutcome(hit.Header) != "hit", "miss %d, then %q", miss.StatusCode, cacheOutcome(hit.Header))
 	cost := miss.Header.Get("Stint-Cost-Usd")
-	if zero, _ := strconv.ParseFloat(hit.Header.Get("Stint-Cost-Usd"), 64); cost == "" || cost == "0.00" || zero != 0 || hit.Header.Get("Stint-Saved-Usd") != cost {
-		t.Errorf("miss cost %q; hit cost %q saved %q: a hit costs nothing and saves what the miss cost",
-			cost, hit.Header.Get("Stint-Cost-Usd"), hit.Header.Get("Stint-Saved-Usd"))
-	}
+	zero, _ := strconv.ParseFloat(hit.Header.Get("Stint-Cost-Usd"), 64)
+	assert.Falsef(t, cost == "" || cost == "0.00" || zero != 0 || hit.Header.Get("Stint-Saved-Usd") != cost, "miss cost %q; hit cost %q saved %q: a hit costs nothing and saves what the miss cost",
+		cost, hit.Header.Get("Stint-Cost-Usd"), hit.Header.Get("Stint-Saved-Usd"))
 	stop(t, c)
 	rep := statementJSON(t, data)
-	if rep.Total.Requests != 2 || rep.Total.UpstreamCalls != 1 || rep.Total.SpentUSD != cost || rep.Total.SavedUSD != cost {
-		t.Errorf("spend report %+v, want 2 requests, 1 upstream call, spent = saved = %s", rep.Total, cost)
-	}
+	assert.Falsef(t, rep.Total.Requests != 2 || rep.Total.UpstreamCalls != 1 || rep.Total.SpentUSD != cost || rep.Total.SavedUSD != cost, "spend report %+v, want 2 requests, 1 upstream call, spent = saved = %s", rep.Total, cost)
 }
 
 // TestKilledProxyReservationsSettleConservatively kills a proxy while its
@@ -129,12 +119,9 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	cfgPath, key := spendConfig(t, up.URL(), data, "1s")
 	// An admin key, so the test can watch the statement while it waits.
 	f, err := os.OpenFile(cfgPath, os.O_APPEND|os.O_WRONLY, 0)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := fmt.Fprintf(f, "admin:\n  keys: [\"sha256:%s\"]\n", keyHash(replicaAdminKey)); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	_, err = fmt.Fprintf(f, "admin:\n  keys: [\"sha256:%s\"]\n", keyHash(replicaAdminKey))
+	require.NoError(t, err)
 	f.Close()
 	first := startStint(t, nil, "serve", "--config", cfgPath)
 	up.Block()
@@ -151,12 +138,8 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
-	if err := up.AwaitHeld(ctx, held); err != nil {
-		t.Fatal(err)
-	}
-	if err := first.cmd.Process.Signal(syscall.SIGKILL); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(ctx, held))
+	require.NoError(t, first.cmd.Process.Signal(syscall.SIGKILL))
 	<-first.exited
 	up.Release()
 
@@ -169,12 +152,8 @@ func TestKilledProxyReservationsSettleConservatively(t *testing.T) {
 	// 6 USD per million (hand-worked: 3 × 50 × 6e-6 = 0.0009 USD); expiry
 	// charges the whole reservation, so the spend is at least that.
 	spent, err := strconv.ParseFloat(rep.Total.SpentUSD, 64)
-	if err != nil || spent < 0.0009 {
-		t.Fatalf("after the lease expired %q was charged, want at least 0.0009: %+v", rep.Total.SpentUSD, rep.Total)
-	}
-	if rep.Total.Requests != 0 {
-		t.Errorf("expired reservations counted as %d requests, want 0", rep.Total.Requests)
-	}
+	require.Falsef(t, err != nil || spent < 0.0009, "after the lease expired %q was charged, want at least 0.0009: %+v", rep.Total.SpentUSD, rep.Total)
+	assert.Equal(t, int64(0), rep.Total.Requests, "expired reservations counted as %d requests, want 0", rep.Total.Requests)
 }
 
 // awaitSpend polls c's admin statement (with replicaAdminKey) until its
@@ -193,9 +172,7 @@ func awaitSpend(t *testing.T, c *child, usd float64) {
 				return
 			}
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("the statement's spend never reached %v USD: %+v", usd, st.Total)
-		}
+		require.Falsef(t, time.Now().After(deadline), "the statement's spend never reached %v USD: %+v", usd, st.Total)
 		time.Sleep(20 * time.Millisecond) // polling interval
 	}
 }

@@ -10,6 +10,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"go.etcd.io/bbolt"
 
 	"github.com/stintlab/stint/budget"
@@ -19,9 +22,7 @@ import (
 func openTestDB(tb testing.TB) *bbolt.DB {
 	tb.Helper()
 	db, err := bbolt.Open(filepath.Join(tb.TempDir(), "stint.db"), 0o600, nil)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	tb.Cleanup(func() { db.Close() })
 	return db
 }
@@ -32,14 +33,10 @@ func fillStore(t *testing.T, now time.Time) string {
 	t.Helper()
 	dir := t.TempDir()
 	db, err := bbolt.Open(filepath.Join(dir, "stint.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer db.Close()
 	l, err := boltledger.New(db, boltledger.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ctx := context.Background()
 	entries := []budget.Entry{
 		{Time: now.Add(-time.Hour), Team: "lab", Model: "quill-small", Run: "r1", InputTokens: 100, OutputTokens: 50, Cost: 125_000, Outcome: budget.Miss, Upstream: true},
@@ -49,18 +46,13 @@ func fillStore(t *testing.T, now time.Time) string {
 		{Time: now.Add(-20 * 24 * time.Hour), Team: "lab", Model: "quill-small", InputTokens: 1, Cost: 1_000_000_000, Outcome: budget.Miss, Upstream: true},
 	}
 	for _, e := range entries {
-		if err := l.Append(ctx, e); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, l.Append(ctx, e))
 	}
 	// A reservation settled through the ledger, for the budget-left column.
 	res, err := l.Reserve(ctx, now, budget.Request{Team: "lab", Amount: 215_000, Caps: budget.Caps{Team: &budget.Cap{Limit: 25 * budget.NanosPerUSD, Period: budget.Month}}, Lease: time.Minute})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := l.Settle(ctx, now, res, 215_000); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	_, err = l.Settle(ctx, now, res, 215_000)
+	require.NoError(t, err)
 	return dir
 }
 
@@ -100,26 +92,17 @@ func TestStatementJSON(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			out, err := runStatementCmd(t, append([]string{"--data", dir, "--json"}, tt.args...)...)
-			if err != nil {
-				t.Fatalf("%v\n%s", err, out)
-			}
+			require.NoError(t, err, "%v\n%s", err, out)
 			var rep statement
-			if err := json.Unmarshal([]byte(out), &rep); err != nil {
-				t.Fatalf("%v\n%s", err, out)
-			}
-			if len(rep.Rows) != len(tt.wantRows) {
-				t.Fatalf("rows %+v, want %d", rep.Rows, len(tt.wantRows))
-			}
+			err = json.Unmarshal([]byte(out), &rep)
+			require.NoError(t, err, "%v\n%s", err, out)
+			require.Len(t, rep.Rows, len(tt.wantRows), "rows")
 			for _, r := range rep.Rows {
 				want := tt.wantRows[r.Group]
 				want.Group = r.Group
-				if r != want {
-					t.Errorf("row %+v, want %+v", r, want)
-				}
+				assert.Equal(t, want, r, "row %+v, want %+v", r, want)
 			}
-			if rep.Total.SpentUSD != tt.wantTotal {
-				t.Errorf("total spent %s, want %s", rep.Total.SpentUSD, tt.wantTotal)
-			}
+			assert.Equal(t, tt.wantTotal, rep.Total.SpentUSD, "total spent %s, want %s", rep.Total.SpentUSD, tt.wantTotal)
 		})
 	}
 }
@@ -128,18 +111,12 @@ func TestStatementTableWithBudgetLeft(t *testing.T) {
 	dir := fillStore(t, time.Now())
 	cfgPath := filepath.Join(t.TempDir(), "stint.yaml")
 	cfg := "data: " + dir + "\n" + teamKey + "    budget: {usd: 25.00, per: month}\n"
-	if err := os.WriteFile(cfgPath, []byte(cfg), 0o600); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, os.WriteFile(cfgPath, []byte(cfg), 0o600))
 	out, err := runStatementCmd(t, "--config", cfgPath, "--by", "team")
-	if err != nil {
-		t.Fatalf("%v\n%s", err, out)
-	}
+	require.NoError(t, err, "%v\n%s", err, out)
 	// 25.00 minus the 0.000215 settled in fillStore = 24.999785.
 	for _, want := range []string{"TEAM", "SPENT USD", "glossary", "0.0000035", "total", "0.0002185", "33.3%", "24.999785", "provider's bill is the record"} {
-		if !strings.Contains(out, want) {
-			t.Errorf("output lacks %q:\n%s", want, out)
-		}
+		assert.Contains(t, out, want, "output lacks %q:\n%s", want, out)
 	}
 }
 
@@ -148,14 +125,10 @@ func TestStatementRefusesLockedStore(t *testing.T) {
 	// Hold the file lock as a running proxy does (bbolt's flock is per
 	// open file, so this conflicts within one process too).
 	db, err := bbolt.Open(filepath.Join(dir, "stint.db"), 0o600, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer db.Close()
 	_, err = runStatementCmd(t, "--data", dir)
-	if err == nil || !strings.Contains(err.Error(), "locked") || !strings.Contains(err.Error(), "stint serve") {
-		t.Errorf("got %v, want an error saying the store is locked by stint serve", err)
-	}
+	assert.Falsef(t, err == nil || !strings.Contains(err.Error(), "locked") || !strings.Contains(err.Error(), "stint serve"), "got %v, want an error saying the store is locked by stint serve", err)
 }
 
 func TestStatementErrors(t *testing.T) {
@@ -169,9 +142,8 @@ func TestStatementErrors(t *testing.T) {
 		{[]string{"--data", dir, "--since", "soon"}, "--since"},
 	}
 	for _, tt := range tests {
-		if _, err := runStatementCmd(t, tt.args...); err == nil || !strings.Contains(err.Error(), tt.want) {
-			t.Errorf("%v: got %v, want an error mentioning %q", tt.args, err, tt.want)
-		}
+		_, err := runStatementCmd(t, tt.args...)
+		assert.Falsef(t, err == nil || !strings.Contains(err.Error(), tt.want), "%v: got %v, want an error mentioning %q", tt.args, err, tt.want)
 	}
 }
 
@@ -190,13 +162,10 @@ func TestParseSince(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got, err := parseSince(tt.in, now)
-		if err != nil || !got.Equal(tt.want) {
-			t.Errorf("parseSince(%q) = %v, %v; want %v", tt.in, got, err, tt.want)
-		}
+		assert.Falsef(t, err != nil || !got.Equal(tt.want), "parseSince(%q) = %v, %v; want %v", tt.in, got, err, tt.want)
 	}
 	for _, in := range []string{"", "-3d", "-1h", "7days", "d"} {
-		if _, err := parseSince(in, now); err == nil {
-			t.Errorf("parseSince(%q): want an error", in)
-		}
+		_, err := parseSince(in, now)
+		assert.Error(t, err, "parseSince(%q): want an error", in)
 	}
 }

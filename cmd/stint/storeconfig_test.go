@@ -5,6 +5,9 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestStoreConfigErrorsNameField(t *testing.T) {
@@ -28,15 +31,9 @@ func TestStoreConfigErrorsNameField(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(tt.yaml))
-			if err == nil {
-				t.Fatal("got no error")
-			}
-			if !strings.Contains(err.Error(), tt.wantText) {
-				t.Errorf("error %q does not mention %q", err, tt.wantText)
-			}
-			if !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
-				t.Errorf("error %q does not name line %d", err, tt.wantLine)
-			}
+			require.Error(t, err, "got no error")
+			assert.Contains(t, err.Error(), tt.wantText, "error %q does not mention %q", err, tt.wantText)
+			assert.Contains(t, err.Error(), "line "+strconv.Itoa(tt.wantLine), "error %q does not name line %d", err, tt.wantLine)
 		})
 	}
 }
@@ -58,19 +55,12 @@ func TestStoreConfigValues(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			cfg, err := ParseConfig(strings.NewReader("store:\n  redis:\n    addrs: [\"127.0.0.1:7000\"]\n" + tt.extra))
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			r := cfg.Store.Redis
-			if r.sharedCache() != tt.shared || r.hotTTL() != tt.hotTTL || r.lease() != tt.lease {
-				t.Errorf("shared %v, hot_ttl %v, lease %v; want %v, %v, %v", r.sharedCache(), r.hotTTL(), r.lease(), tt.shared, tt.hotTTL, tt.lease)
-			}
-			if r.slotRefresh() != tt.slotRefresh || r.ledgerReplicas() != tt.replicas {
-				t.Errorf("slot_refresh %v, ledger_replicas %d; want %v, %d", r.slotRefresh(), r.ledgerReplicas(), tt.slotRefresh, tt.replicas)
-			}
-			if got := r.ledgerOptions(nil); got.Replicas != tt.replicas || got.ReplicaWait != r.timeout()/2 {
-				t.Errorf("ledger options %+v, want %d replicas waited for up to %v", got, tt.replicas, r.timeout()/2)
-			}
+			assert.Falsef(t, r.sharedCache() != tt.shared || r.hotTTL() != tt.hotTTL || r.lease() != tt.lease, "shared %v, hot_ttl %v, lease %v; want %v, %v, %v", r.sharedCache(), r.hotTTL(), r.lease(), tt.shared, tt.hotTTL, tt.lease)
+			assert.Falsef(t, r.slotRefresh() != tt.slotRefresh || r.ledgerReplicas() != tt.replicas, "slot_refresh %v, ledger_replicas %d; want %v, %d", r.slotRefresh(), r.ledgerReplicas(), tt.slotRefresh, tt.replicas)
+			got := r.ledgerOptions(nil)
+			assert.Falsef(t, got.Replicas != tt.replicas || got.ReplicaWait != r.timeout()/2, "ledger options %+v, want %d replicas waited for up to %v", got, tt.replicas, r.timeout()/2)
 		})
 	}
 }
@@ -79,9 +69,7 @@ func TestStoreConfigValues(t *testing.T) {
 // section and parses it, so the keys it documents are the real ones.
 func TestExampleStoreSectionParses(t *testing.T) {
 	_, section, ok := strings.Cut(exampleConfig, "\n# store:\n")
-	if !ok {
-		t.Fatal("example config has no commented store section")
-	}
+	require.True(t, ok, "example config has no commented store section")
 	var b strings.Builder
 	b.WriteString("store:\n")
 	for _, line := range strings.Split(section, "\n") {
@@ -92,11 +80,7 @@ func TestExampleStoreSectionParses(t *testing.T) {
 		b.WriteString(rest + "\n")
 	}
 	cfg, err := ParseConfig(strings.NewReader(b.String()))
-	if err != nil {
-		t.Fatalf("example store section: %v\n%s", err, b.String())
-	}
+	require.NoErrorf(t, err, "example store section:\n%s", b.String())
 	r := cfg.Store.Redis
-	if r == nil || !r.sharedCache() || r.hotTTL() != 2*time.Second || r.lease() != 10*time.Second || r.timeout() != 500*time.Millisecond {
-		t.Errorf("example store section parsed as %+v", r)
-	}
+	assert.Falsef(t, r == nil || !r.sharedCache() || r.hotTTL() != 2*time.Second || r.lease() != 10*time.Second || r.timeout() != 500*time.Millisecond, "example store section parsed as %+v", r)
 }

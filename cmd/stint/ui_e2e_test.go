@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/base64"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io"
 	"log/slog"
@@ -22,6 +21,9 @@ import (
 	"sync"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/chromedp/cdproto/cdp"
 	"github.com/chromedp/cdproto/emulation"
@@ -58,9 +60,7 @@ func chromiumPath(t *testing.T) string {
 			return p
 		}
 	}
-	if os.Getenv("CI") == "true" {
-		t.Fatal("chromium is not installed; .ci/run installs it (apt-get install chromium)")
-	}
+	require.False(t, os.Getenv("CI") == "true", "chromium is not installed; .ci/run installs it (apt-get install chromium)")
 	t.Skip("chromium is not installed (apt-get install chromium); the operator page's browser test needs it")
 	return ""
 }
@@ -70,9 +70,7 @@ func chromiumPath(t *testing.T) string {
 func artifactDir(t *testing.T) string {
 	t.Helper()
 	if d := os.Getenv("STINT_ARTIFACTS"); d != "" {
-		if err := os.MkdirAll(d, 0o755); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, os.MkdirAll(d, 0o755))
 		return d
 	}
 	return t.TempDir()
@@ -152,19 +150,13 @@ func newUIRig(t *testing.T) *uiRig {
 	proxySrv := httptest.NewUnstartedServer(nil)
 	proxyURL := "http://" + proxySrv.Listener.Addr().String()
 	m, err := localmodel.Load(modelPath)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	target, err := url.Parse(proxyURL)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	gate := newStepGate(httputil.NewSingleHostReverseProxy(target))
 	gateSrv := httptest.NewServer(gate)
 	mgr, err := jobs.Open(t.TempDir(), m, jobs.Options{Proxy: gateSrv.URL + "/v1", Key: uiLabKey, CheckpointEvery: 1})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	sidecar := httptest.NewServer(mgr.Handler())
 
 	text := fmt.Sprintf(`listen: 127.0.0.1:0
@@ -197,35 +189,23 @@ ui:
   refresh: 250ms
 `, t.TempDir(), up.URL(), modelPath, keyHash(uiLabKey), keyHash(uiKilnKey), keyHash("sk-quarry-unused"), keyHash(uiAdminKey), sidecar.URL)
 	cfg, err := ParseConfig(strings.NewReader(text))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 
 	ctx := context.Background()
 	s := &server{cfg: cfg, log: slog.New(slog.DiscardHandler)}
 	disk, err := boltstore.Open(filepath.Join(cfg.Data, "stint.db"), boltstore.Options{BatchDelay: time.Millisecond})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	s.closers = append(s.closers, disk.Close)
 	s.commits = disk.Update
 	ups, closers, err := buildUpstreams(ctx, cfg.Upstreams)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	s.closers = append(s.closers, closers...)
 	teams, err := buildTeams(cfg.Teams)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	spend, err := s.buildSpend(ctx, cfg, disk)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	journal, err := runs.NewBolt(disk.DB(), runs.BoltOptions{Update: s.commits})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	adminHash, _ := parseKeyHash(cfg.Admin.Keys[0])
 	reg := prometheus.NewRegistry()
 	p, err := proxy.New(proxy.Options{
@@ -233,9 +213,7 @@ ui:
 		AdminKeyHashes: [][32]byte{adminHash},
 		UI:             proxy.UIOptions{SearchSidecar: cfg.UI.SearchSidecar, Refresh: time.Duration(cfg.UI.Refresh)},
 	})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	r := &uiRig{url: proxyURL, proxy: p, reg: reg, up: up, sidecar: sidecar.URL, jobs: mgr, gate: gate}
 	proxySrv.Config.Handler = p
 	proxySrv.Start()
@@ -291,9 +269,7 @@ func (r *uiRig) traffic(t *testing.T) {
 	t.Helper()
 	want := func(got, outcome string) {
 		t.Helper()
-		if got != outcome {
-			t.Fatalf("cache outcome %q, want %q", got, outcome)
-		}
+		require.Equal(t, outcome, got, "cache outcome %q, want %q", got, outcome)
 	}
 	want(r.call(t, uiLabKey, quillBody("the barge leaves at dawn")), "miss")
 	want(r.call(t, uiLabKey, quillBody("the hives are counted twice")), "miss")
@@ -317,28 +293,23 @@ func (r *uiRig) traffic(t *testing.T) {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	if err := r.up.AwaitHeld(ctx, 1); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, r.up.AwaitHeld(ctx, 1))
 	for gaugeOf(t, r.reg, "stint_coalesced_waiting") != 1 {
 		select {
 		case <-ctx.Done():
-			t.Fatal("the second call never waited on the first")
+			require.FailNow(t, "the second call never waited on the first")
 		case <-time.After(5 * time.Millisecond):
 		}
 	}
 	r.up.Release()
 	wg.Wait()
-	if !(outcomes[0] == "miss" && outcomes[1] == "shared" || outcomes[0] == "shared" && outcomes[1] == "miss") {
-		t.Fatalf("concurrent identical calls: %v, want one miss and one shared", outcomes)
-	}
+	require.Falsef(t, !(outcomes[0] == "miss" && outcomes[1] == "shared" || outcomes[0] == "shared" && outcomes[1] == "miss"), "concurrent identical calls: %v, want one miss and one shared", outcomes)
 
 	// One call the upstream refuses: the page counts it as failed (a 4xx
 	// is the caller's fault, so the breaker does not count it).
 	r.up.FailNext(1, upstreamtest.Fault{Status: http.StatusBadRequest})
-	if status, b, _ := r.post(t, uiLabKey, quillBody("a line the upstream refuses")); status != http.StatusBadRequest {
-		t.Fatalf("refused call: %d %s, want the upstream's 400 passed through", status, b)
-	}
+	status, b, _ := r.post(t, uiLabKey, quillBody("a line the upstream refuses"))
+	require.Equal(t, http.StatusBadRequest, status, "refused call: %d %s, want the upstream's 400 passed through", status, b)
 
 	// A recorded run: a miss, then the same call again from the cache.
 	want(r.call(t, uiLabKey, quillBody("pear orchard rota"), proxy.HeaderRun, "pear-tune"), "miss")
@@ -348,25 +319,20 @@ func (r *uiRig) traffic(t *testing.T) {
 	// consecutive_failures), then a miss is refused without reaching it.
 	r.up.FailNext(2, upstreamtest.Fault{Status: http.StatusInternalServerError})
 	for _, prompt := range []string{"the mill wheel stalls", "the mill wheel stalls again"} {
-		if status, b, _ := r.post(t, uiLabKey, quillBody(prompt)); status != http.StatusInternalServerError {
-			t.Fatalf("failing call: %d %s, want the upstream's 500 passed through", status, b)
-		}
+		status, b, _ := r.post(t, uiLabKey, quillBody(prompt))
+		require.Equal(t, http.StatusInternalServerError, status, "failing call: %d %s, want the upstream's 500 passed through", status, b)
 	}
 	reached := r.up.Calls()
-	if status, b, _ := r.post(t, uiLabKey, quillBody("the mill wheel is mended")); status != http.StatusServiceUnavailable {
-		t.Fatalf("call after two failures: %d %s, want 503 from quill's open breaker", status, b)
-	}
-	if got := r.up.Calls(); got != reached {
-		t.Fatalf("the open breaker let a call through: upstream calls %+v, then %+v", reached, got)
-	}
+	status, b, _ = r.post(t, uiLabKey, quillBody("the mill wheel is mended"))
+	require.Equal(t, http.StatusServiceUnavailable, status, "call after two failures: %d %s, want 503 from quill's open breaker", status, b)
+	got := r.up.Calls()
+	require.Equal(t, reached, got, "the open breaker let a call through: upstream calls %+v, then %+v", reached, got)
 }
 
 func gaugeOf(t *testing.T, g prometheus.Gatherer, name string) float64 {
 	t.Helper()
 	mfs, err := g.Gather()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	for _, mf := range mfs {
 		if mf.GetName() == name && len(mf.GetMetric()) > 0 {
 			return mf.GetMetric()[0].GetGauge().GetValue()
@@ -383,37 +349,26 @@ func getJSON(t *testing.T, url, auth string, dst any) {
 		req.Header.Set("Authorization", auth)
 	}
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	b, _ := io.ReadAll(resp.Body)
-	if resp.StatusCode != http.StatusOK {
-		t.Fatalf("GET %s: %d %s", url, resp.StatusCode, b)
-	}
-	if err := json.Unmarshal(b, dst); err != nil {
-		t.Fatalf("GET %s: %v", url, err)
-	}
+	require.Equal(t, http.StatusOK, resp.StatusCode, "GET %s: %d %s", url, resp.StatusCode, b)
+	err = json.Unmarshal(b, dst)
+	require.NoError(t, err, "GET %s: %v", url, err)
 }
 
 // scrape parses the proxy's /metrics with the Prometheus text parser.
 func (r *uiRig) scrape(t *testing.T) map[string]*dto.MetricFamily {
 	t.Helper()
 	req, err := http.NewRequest(http.MethodGet, r.url+"/metrics", nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	req.Header.Set("Authorization", "Bearer "+uiAdminKey) // the config has teams: metrics need a key
 	resp, err := http.DefaultClient.Do(req)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer resp.Body.Close()
 	p := expfmt.NewTextParser(model.UTF8Validation)
 	fams, err := p.TextToMetricFamilies(resp.Body)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return fams
 }
 
@@ -464,12 +419,9 @@ func TestOperatorPageInABrowser(t *testing.T) {
 	r.gate.Hold(curvePoints, 1)
 	body := fmt.Sprintf(`{"task": %q, "run": "reading-ui"}`, shortTask(t))
 	resp, err := http.Post(r.sidecar+"/jobs", "application/json", strings.NewReader(body))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := json.NewDecoder(resp.Body).Decode(&job); err != nil || resp.StatusCode != http.StatusCreated {
-		t.Fatalf("submit the search: %d %v", resp.StatusCode, err)
-	}
+	require.NoError(t, err)
+	err = json.NewDecoder(resp.Body).Decode(&job)
+	require.Falsef(t, err != nil || resp.StatusCode != http.StatusCreated, "submit the search: %d %v", resp.StatusCode, err)
 	resp.Body.Close()
 	submitted.Done()
 
@@ -480,9 +432,7 @@ func TestOperatorPageInABrowser(t *testing.T) {
 	defer cancelTab()
 	// The first action starts the browser and lives as long as its context:
 	// no timeout on that one.
-	if err := chromedp.Do(tab); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, chromedp.Do(tab))
 	ctx, cancel := context.WithTimeout(tab, 4*time.Minute)
 	defer cancel()
 
@@ -498,25 +448,22 @@ func TestOperatorPageInABrowser(t *testing.T) {
 			return err
 		}),
 		chromedp.Navigate(r.url+"/ui"), chromedp.WaitVisible(chromedp.CSS(`main[data-digest]`))); err != nil {
-		t.Fatal(err)
+		require.NoError(t, err)
 	}
 
 	// Marks of this load: a reload would drop the window's property, and a
 	// body swapped in by the page's script is another main element.
-	if _, err := chromedp.Run(ctx, chromedp.Evaluate[bool](`(window.stintLoad = {main: document.querySelector("main")}, true)`)); err != nil {
-		t.Fatal(err)
-	}
+	_, err = chromedp.Run(ctx, chromedp.Evaluate[bool](`(window.stintLoad = {main: document.querySelector("main")}, true)`))
+	require.NoError(t, err)
 
 	// Live: a request made after the page loaded shows up without a reload.
 	before, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]figure](readFigures))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	loaded, _ := strconv.Atoi(before["requests-total"].Value)
 	r.call(t, uiKilnKey, quillBody("kiln fires on thursday"))
 	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(
 		`Number(document.querySelector('[data-figure="requests-total"]').getAttribute("data-value")) > %d`, loaded)))); err != nil {
-		t.Fatalf("the page never showed the new request: %v", err)
+		require.NoError(t, err, "the page never showed the new request")
 	}
 
 	// Live: the search's curve grows on the page while the search runs.
@@ -536,36 +483,27 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`(%s).points >= %d`, readSearch, n),
 			chromedp.WithPollingTimeout(2*time.Minute)))); err != nil {
 			st, _ := r.jobs.Get(job.ID)
-			t.Fatalf("the page never showed %d curve points (sidecar says %+v): %v", n, st, err)
+			require.NoErrorf(t, err, "the page never showed %d curve points (sidecar says %+v)", n, st)
 		}
 		shown, err := chromedp.Run(ctx, chromedp.Evaluate[searchShown](readSearch))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		return shown
 	}
 	first := awaitPoints(1)
 	r.gate.Hold(curvePoints, first.Points+1)
 	second := awaitPoints(first.Points + 1)
-	if st, _ := r.jobs.Get(job.ID); first.State != string(jobs.Running) || second.State != string(jobs.Running) || second.Points <= first.Points || st.State != jobs.Running {
-		t.Fatalf("page showed %+v, then %+v (sidecar now %s); want the curve grown on the page while the search runs", first, second, st.State)
-	}
+	st, _ := r.jobs.Get(job.ID)
+	require.Falsef(t, first.State != string(jobs.Running) || second.State != string(jobs.Running) || second.Points <= first.Points || st.State != jobs.Running, "page showed %+v, then %+v (sidecar now %s); want the curve grown on the page while the search runs", first, second, st.State)
 	r.gate.Hold(nil, -1)
 	if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`(%s).state === "done"`, readSearch),
 		chromedp.WithPollingTimeout(3*time.Minute)))); err != nil {
 		st, _ := r.jobs.Get(job.ID)
-		t.Fatalf("the page never showed the search done (sidecar says %+v): %v", st, err)
+		require.NoErrorf(t, err, "the page never showed the search done (sidecar says %+v)", st)
 	}
 	reloaded, err := chromedp.Run(ctx, chromedp.Evaluate[string](`window.stintLoad === undefined ? "reloaded" : window.stintLoad.main === document.querySelector("main") ? "never swapped" : "swapped"`))
-	if err != nil {
-		t.Fatal(err)
-	}
-	if reloaded != "swapped" {
-		t.Fatalf("page %s; want the first load still open with fresh bodies swapped in by its script", reloaded)
-	}
-	if err := r.proxy.Flush(ctx); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
+	require.Equal(t, "swapped", reloaded, "page %s; want the first load still open with fresh bodies swapped in by its script", reloaded)
+	require.NoError(t, r.proxy.Flush(ctx))
 	// Settled: wait until the page shows the current snapshot.
 	var snap struct {
 		Digest string `json:"digest"`
@@ -575,22 +513,18 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		if err := chromedp.Do(ctx, voidOf(chromedp.Poll[bool](fmt.Sprintf(`document.querySelector("main").getAttribute("data-digest") === %q`, snap.Digest),
 			chromedp.WithPollingTimeout(5*time.Second)))); err == nil {
 			break
-		} else if !errors.Is(err, chromedp.ErrPollingTimeout) {
-			t.Fatal(err)
+		} else {
+			require.ErrorIs(t, err, chromedp.ErrPollingTimeout)
 		}
 		shown, _ := chromedp.Run(ctx, chromedp.AttributeValue(chromedp.CSS("main"), "data-digest"))
 		t.Logf("page shows digest %s, snapshot %s: waiting", shown.Value, snap.Digest)
 	}
 	figs, err := chromedp.Run(ctx, chromedp.Evaluate[map[string]figure](readFigures))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	fig := func(name string) figure {
 		t.Helper()
 		f, ok := figs[name]
-		if !ok {
-			t.Errorf("the page shows no figure %q", name)
-		}
+		assert.Truef(t, ok, "the page shows no figure %q", name)
 		return f
 	}
 
@@ -605,13 +539,10 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		}
 		for _, o := range []string{"hit", "miss", "shared", "partial", "bypass"} {
 			got := fig("outcome-" + o)
-			if got.Value != strconv.FormatInt(byOutcome[o], 10) || got.Text != got.Value || byOutcome[o] == 0 {
-				t.Errorf("outcome %s: page %+v, /metrics %d (each outcome was made at least once)", o, got, byOutcome[o])
-			}
+			assert.Falsef(t, got.Value != strconv.FormatInt(byOutcome[o], 10) || got.Text != got.Value || byOutcome[o] == 0, "outcome %s: page %+v, /metrics %d (each outcome was made at least once)", o, got, byOutcome[o])
 		}
-		if got := fig("requests-total"); got.Value != strconv.FormatInt(total, 10) {
-			t.Errorf("requests: page %+v, /metrics %d", got, total)
-		}
+		got := fig("requests-total")
+		assert.Equal(t, strconv.FormatInt(total, 10), got.Value, "requests: page %+v, /metrics %d", got, total)
 	})
 
 	t.Run("upstreams match /metrics", func(t *testing.T) {
@@ -624,9 +555,7 @@ func TestOperatorPageInABrowser(t *testing.T) {
 				failed[labelOf(m, "upstream")] += n
 			}
 		}
-		if failed["quill"] == 0 {
-			t.Errorf("/metrics counts no failed call on quill: %v", failed)
-		}
+		assert.Falsef(t, failed["quill"] == 0, "/metrics counts no failed call on quill: %v", failed)
 		type hist struct {
 			count  uint64
 			sum    float64
@@ -646,30 +575,23 @@ func TestOperatorPageInABrowser(t *testing.T) {
 			}
 		}
 		for _, u := range []string{"quill", "local"} {
-			if got := fig("upstream-calls-" + u); got.Value != strconv.FormatInt(calls[u], 10) || calls[u] == 0 {
-				t.Errorf("%s calls: page %+v, /metrics %d", u, got, calls[u])
-			}
-			if got := fig("upstream-failed-" + u); got.Value != strconv.FormatInt(failed[u], 10) {
-				t.Errorf("%s failed calls: page %+v, /metrics %d", u, got, failed[u])
-			}
+			got := fig("upstream-calls-" + u)
+			assert.Falsef(t, got.Value != strconv.FormatInt(calls[u], 10) || calls[u] == 0, "%s calls: page %+v, /metrics %d", u, got, calls[u])
+			got = fig("upstream-failed-" + u)
+			assert.Equal(t, strconv.FormatInt(failed[u], 10), got.Value, "%s failed calls: page %+v, /metrics %d", u, got, failed[u])
 			h := hists[u]
-			if h == nil || h.count == 0 {
-				t.Errorf("%s: no latency in /metrics", u)
+			if !assert.Falsef(t, h == nil || h.count == 0, "%s: no latency in /metrics", u) {
 				continue
 			}
 			mean, err := strconv.ParseFloat(fig("upstream-mean-"+u).Value, 64)
-			if want := h.sum / float64(h.count); err != nil || math.Abs(mean-want) > 1e-9*want {
-				t.Errorf("%s mean latency: page %v (%v), /metrics sum/count %v", u, mean, err, want)
-			}
+			want := h.sum / float64(h.count)
+			assert.Falsef(t, err != nil || math.Abs(mean-want) > 1e-9*want, "%s mean latency: page %v (%v), /metrics sum/count %v", u, mean, err, want)
 			// The p95 lies in the bucket holding the 95th percentile's rank.
 			p95, err := strconv.ParseFloat(fig("upstream-p95-"+u).Value, 64)
 			lo, hi := bucketOfRank(h.bounds, 0.95*float64(h.count))
-			if err != nil || p95 < lo || p95 > hi {
-				t.Errorf("%s p95: page %v (%v), want within its bucket [%v, %v]", u, p95, err, lo, hi)
-			}
-			if text := fig("upstream-p95-" + u).Text; !strings.HasSuffix(text, "s") {
-				t.Errorf("%s p95 shown as %q, want a unit", u, text)
-			}
+			assert.Falsef(t, err != nil || p95 < lo || p95 > hi, "%s p95: page %v (%v), want within its bucket [%v, %v]", u, p95, err, lo, hi)
+			text := fig("upstream-p95-" + u).Text
+			assert.Truef(t, strings.HasSuffix(text, "s"), "%s p95 shown as %q, want a unit", u, text)
 		}
 		// The gauge's values are the proxy's (0 closed, 1 half-open, 2
 		// open); quill tripped in the traffic and stays open for an hour,
@@ -692,61 +614,43 @@ func TestOperatorPageInABrowser(t *testing.T) {
 			trips    int64
 		}{{"quill", 2, "open", 1}, {"local", 0, "closed", 0}} {
 			g, ok := states[tt.upstream]
-			if !ok || g != tt.gauge {
-				t.Errorf("%s: /metrics stint_upstream_breaker_state %v (present %v), want %v", tt.upstream, g, ok, tt.gauge)
-			}
-			if got := fig("breaker-" + tt.upstream); got.Value != tt.shown || got.Text != tt.shown {
-				t.Errorf("%s breaker: page %+v, /metrics %v; want %s", tt.upstream, got, g, tt.shown)
-			}
-			if trips[tt.upstream] != tt.trips {
-				t.Errorf("%s: /metrics counts %d breaker trips, want %d", tt.upstream, trips[tt.upstream], tt.trips)
-			}
-			if got := fig("breaker-trips-" + tt.upstream); got.Value != tripsShown[tt.upstream] {
-				t.Errorf("%s breaker trips: page %+v, /metrics %q", tt.upstream, got, tripsShown[tt.upstream])
-			}
+			assert.Truef(t, ok, "%s: no /metrics stint_upstream_breaker_state", tt.upstream)
+			assert.Equalf(t, tt.gauge, g, "%s: /metrics stint_upstream_breaker_state", tt.upstream)
+			got := fig("breaker-" + tt.upstream)
+			assert.Falsef(t, got.Value != tt.shown || got.Text != tt.shown, "%s breaker: page %+v, /metrics %v; want %s", tt.upstream, got, g, tt.shown)
+			assert.Equal(t, tt.trips, trips[tt.upstream], "%s: /metrics counts %d breaker trips, want %d", tt.upstream, trips[tt.upstream], tt.trips)
+			got = fig("breaker-trips-" + tt.upstream)
+			assert.Equal(t, tripsShown[tt.upstream], got.Value, "%s breaker trips: page %+v, /metrics %q", tt.upstream, got, tripsShown[tt.upstream])
 		}
 	})
 
 	t.Run("spend matches stint statement", func(t *testing.T) {
 		t.Setenv(adminKeyEnv, uiAdminKey)
 		out, err := runCLI(t, "statement", "--proxy", r.url, "--json")
-		if err != nil {
-			t.Fatalf("stint statement: %v\n%s", err, out)
-		}
+		require.NoError(t, err, "stint statement: %v\n%s", err, out)
 		var rep statement
-		if err := json.Unmarshal([]byte(out), &rep); err != nil {
-			t.Fatal(err)
-		}
-		if got := fig("saved-usd"); got.Value != rep.Total.SavedUSD || got.Text != "$"+rep.Total.SavedUSD || rep.Total.SavedUSD == "0.00" {
-			t.Errorf("saved: page %+v, stint statement %s", got, rep.Total.SavedUSD)
-		}
-		if got := fig("spent-usd"); got.Value != rep.Total.SpentUSD || rep.Total.SpentUSD == "0.00" {
-			t.Errorf("spent: page %+v, stint statement %s", got, rep.Total.SpentUSD)
-		}
+		require.NoError(t, json.Unmarshal([]byte(out), &rep))
+		got := fig("saved-usd")
+		assert.Falsef(t, got.Value != rep.Total.SavedUSD || got.Text != "$"+rep.Total.SavedUSD || rep.Total.SavedUSD == "0.00", "saved: page %+v, stint statement %s", got, rep.Total.SavedUSD)
+		got = fig("spent-usd")
+		assert.Falsef(t, got.Value != rep.Total.SpentUSD || rep.Total.SpentUSD == "0.00", "spent: page %+v, stint statement %s", got, rep.Total.SpentUSD)
 		for _, row := range rep.Rows {
-			if got := fig("team-spent-" + row.Group); got.Value != row.SpentUSD {
-				t.Errorf("team %s spent: page %+v, stint statement %s", row.Group, got, row.SpentUSD)
-			}
-			if got := fig("team-saved-" + row.Group); got.Value != row.SavedUSD {
-				t.Errorf("team %s saved: page %+v, stint statement %s", row.Group, got, row.SavedUSD)
-			}
-			if got := fig("team-requests-" + row.Group); got.Value != strconv.FormatInt(row.Requests, 10) {
-				t.Errorf("team %s requests: page %+v, stint statement %d", row.Group, got, row.Requests)
-			}
+			got := fig("team-spent-" + row.Group)
+			assert.Equal(t, row.SpentUSD, got.Value, "team %s spent: page %+v, stint statement %s", row.Group, got, row.SpentUSD)
+			got = fig("team-saved-" + row.Group)
+			assert.Equal(t, row.SavedUSD, got.Value, "team %s saved: page %+v, stint statement %s", row.Group, got, row.SavedUSD)
+			got = fig("team-requests-" + row.Group)
+			assert.Equal(t, strconv.FormatInt(row.Requests, 10), got.Value, "team %s requests: page %+v, stint statement %d", row.Group, got, row.Requests)
 		}
-		if len(rep.Budgets) != 2 {
-			t.Fatalf("budgets %+v, want lab's and kiln's", rep.Budgets)
-		}
+		require.Len(t, rep.Budgets, 2, "budgets, want lab's and kiln's")
 		for _, b := range rep.Budgets {
 			for name, want := range map[string]string{"spent": b.SpentUSD, "limit": b.LimitUSD, "left": b.LeftUSD} {
-				if got := fig("budget-" + name + "-" + b.Team); got.Value != want || got.Text != "$"+want {
-					t.Errorf("%s budget %s: page %+v, stint statement %s", b.Team, name, got, want)
-				}
+				got := fig("budget-" + name + "-" + b.Team)
+				assert.Falsef(t, got.Value != want || got.Text != "$"+want, "%s budget %s: page %+v, stint statement %s", b.Team, name, got, want)
 			}
 		}
-		if _, ok := figs["budget-limit-quarry"]; ok {
-			t.Error("quarry has no budget but the page shows one")
-		}
+		_, ok := figs["budget-limit-quarry"]
+		assert.False(t, ok, "quarry has no budget but the page shows one")
 	})
 
 	t.Run("runs match the run API", func(t *testing.T) {
@@ -756,23 +660,16 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		for _, run := range list.Runs {
 			seen[run.Run] = true
 			id := "lab/" + run.Run
-			if got := fig("run-calls-" + id); got.Value != strconv.FormatInt(run.Calls, 10) {
-				t.Errorf("run %s calls: page %+v, API %d", run.Run, got, run.Calls)
-			}
-			if got := fig("run-upstream-" + id); got.Value != strconv.FormatInt(run.UpstreamCalls, 10) {
-				t.Errorf("run %s upstream calls: page %+v, API %d", run.Run, got, run.UpstreamCalls)
-			}
+			got := fig("run-calls-" + id)
+			assert.Equal(t, strconv.FormatInt(run.Calls, 10), got.Value, "run %s calls: page %+v, API %d", run.Run, got, run.Calls)
+			got = fig("run-upstream-" + id)
+			assert.Equal(t, strconv.FormatInt(run.UpstreamCalls, 10), got.Value, "run %s upstream calls: page %+v, API %d", run.Run, got, run.UpstreamCalls)
 			share, err := strconv.ParseFloat(fig("run-share-"+id).Value, 64)
-			if err != nil || math.Abs(share-run.CacheShare) > 1e-12 {
-				t.Errorf("run %s cache share: page %v, API %v", run.Run, share, run.CacheShare)
-			}
+			assert.Falsef(t, err != nil || math.Abs(share-run.CacheShare) > 1e-12, "run %s cache share: page %v, API %v", run.Run, share, run.CacheShare)
 		}
-		if !seen["pear-tune"] || !seen["reading-ui"] {
-			t.Fatalf("runs %+v, want pear-tune and reading-ui", list.Runs)
-		}
-		if got := fig("run-share-lab/pear-tune"); got.Value != "0.5" || got.Text != "50.0%" {
-			t.Errorf("pear-tune: %+v, want half its 2 calls from the cache", got)
-		}
+		require.Falsef(t, !seen["pear-tune"] || !seen["reading-ui"], "runs %+v, want pear-tune and reading-ui", list.Runs)
+		got := fig("run-share-lab/pear-tune")
+		assert.Falsef(t, got.Value != "0.5" || got.Text != "50.0%", "pear-tune: %+v, want half its 2 calls from the cache", got)
 	})
 
 	t.Run("searches match the sidecar", func(t *testing.T) {
@@ -780,39 +677,26 @@ func TestOperatorPageInABrowser(t *testing.T) {
 		getJSON(t, r.sidecar+"/jobs/"+job.ID, "", &st)
 		var hist jobs.History
 		getJSON(t, r.sidecar+"/jobs/"+job.ID+"/history", "", &hist)
-		if st.State != jobs.Done || len(hist.Points) != st.Steps || st.Steps == 0 {
-			t.Fatalf("sidecar: %+v, %d points", st, len(hist.Points))
-		}
-		if got := fig("search-step-" + job.ID); got.Value != strconv.Itoa(st.Step) {
-			t.Errorf("step: page %+v, sidecar %d", got, st.Step)
-		}
-		if got := fig("curve-points-" + job.ID); got.Value != strconv.Itoa(len(hist.Points)) {
-			t.Errorf("curve: page %+v points, sidecar history %d", got, len(hist.Points))
-		}
-		if got := fig("sidecar"); got.Value != "ok" {
-			t.Errorf("sidecar: %+v", got)
-		}
+		require.Falsef(t, st.State != jobs.Done || len(hist.Points) != st.Steps || st.Steps == 0, "sidecar: %+v, %d points", st, len(hist.Points))
+		got := fig("search-step-" + job.ID)
+		assert.Equal(t, strconv.Itoa(st.Step), got.Value, "step: page %+v, sidecar %d", got, st.Step)
+		got = fig("curve-points-" + job.ID)
+		assert.Equal(t, strconv.Itoa(len(hist.Points)), got.Value, "curve: page %+v points, sidecar history %d", got, len(hist.Points))
+		got = fig("sidecar")
+		assert.Equal(t, "ok", got.Value, "sidecar: %+v", got)
 		polyline, err := chromedp.Run(ctx, chromedp.Evaluate[int](fmt.Sprintf(
 			`document.querySelector('[data-search="%s"] polyline.train').getAttribute("points").trim().split(/\s+/).length`, job.ID)))
-		if err != nil {
-			t.Fatal(err)
-		}
-		if polyline != max(len(hist.Points), 2) {
-			t.Errorf("the drawn curve has %d points, the history %d", polyline, len(hist.Points))
-		}
+		require.NoError(t, err)
+		assert.Equal(t, max(len(hist.Points), 2), polyline, "the drawn curve has %d points, the history %d", polyline, len(hist.Points))
 	})
 
 	t.Run("no key on the page", func(t *testing.T) {
 		html, err := chromedp.Run(ctx, chromedp.OuterHTML(chromedp.CSS("html")))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		var raw json.RawMessage
 		getJSON(t, r.url+"/ui/snapshot.json", "Bearer "+uiAdminKey, &raw)
 		for _, k := range []string{uiAdminKey, uiLabKey, uiKilnKey, uiUpKey, keyHash(uiAdminKey), keyHash(uiLabKey)} {
-			if strings.Contains(html, k) || strings.Contains(string(raw), k) {
-				t.Errorf("a key (%.10s…) is on the page or in the snapshot", k)
-			}
+			assert.Falsef(t, strings.Contains(html, k) || strings.Contains(string(raw), k), "a key (%.10s…) is on the page or in the snapshot", k)
 		}
 	})
 
@@ -823,17 +707,11 @@ func TestOperatorPageInABrowser(t *testing.T) {
 				Features: []*emulation.MediaFeature{{Name: "prefers-color-scheme", Value: scheme}}})
 			return err
 		})
-		if err := chromedp.Do(ctx, media, voidOf(chromedp.Poll[bool](fmt.Sprintf(`matchMedia("(prefers-color-scheme: %s)").matches`, scheme)))); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, chromedp.Do(ctx, media, voidOf(chromedp.Poll[bool](fmt.Sprintf(`matchMedia("(prefers-color-scheme: %s)").matches`, scheme)))))
 		png, err := chromedp.Run(ctx, chromedp.FullScreenshot(100))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		path := filepath.Join(dir, "operator-page-"+scheme+".png")
-		if err := os.WriteFile(path, png, 0o644); err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, os.WriteFile(path, png, 0o644))
 		t.Logf("screenshot: %s", path)
 	}
 }

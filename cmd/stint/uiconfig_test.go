@@ -5,6 +5,9 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestUIConfigErrorsNameFieldAndLine(t *testing.T) {
@@ -24,30 +27,18 @@ func TestUIConfigErrorsNameFieldAndLine(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(tt.yaml))
-			if err == nil {
-				t.Fatal("got no error")
-			}
-			if !strings.Contains(err.Error(), tt.wantText) || !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
-				t.Errorf("error %q, want it to name %q and line %d", err, tt.wantText, tt.wantLine)
-			}
+			require.Error(t, err, "got no error")
+			assert.Falsef(t, !strings.Contains(err.Error(), tt.wantText) || !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)), "error %q, want it to name %q and line %d", err, tt.wantText, tt.wantLine)
 		})
 	}
 }
 
 func TestUIConfigValues(t *testing.T) {
 	cfg, err := ParseConfig(strings.NewReader("ui:\n  search_sidecar: http://10.0.0.7:8789\n  sidecar_timeout: 750ms\n  refresh: 10s\n"))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	want := UIConfig{SearchSidecar: "http://10.0.0.7:8789", SidecarTimeout: Duration(750 * time.Millisecond), Refresh: Duration(10 * time.Second)}
-	if cfg.UI != want {
-		t.Errorf("ui: %+v, want %+v", cfg.UI, want)
-	}
+	assert.Equal(t, want, cfg.UI, "ui: %+v, want %+v", cfg.UI, want)
 	ex, err := ParseConfig(strings.NewReader(exampleConfig))
-	if err != nil {
-		t.Fatalf("example config: %v", err)
-	}
-	if ex.UI.SidecarTimeout != Duration(2*time.Second) || ex.UI.Refresh != Duration(5*time.Second) {
-		t.Errorf("example ui section: %+v, want the documented 2s timeout and 5s refresh", ex.UI)
-	}
+	require.NoError(t, err, "example config")
+	assert.Falsef(t, ex.UI.SidecarTimeout != Duration(2*time.Second) || ex.UI.Refresh != Duration(5*time.Second), "example ui section: %+v, want the documented 2s timeout and 5s refresh", ex.UI)
 }

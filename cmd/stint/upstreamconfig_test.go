@@ -7,6 +7,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/breaker"
 	"github.com/stintlab/stint/proxy/retry"
 )
@@ -42,15 +45,9 @@ func TestUpstreamResilienceErrorsNameFieldAndLine(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			_, err := ParseConfig(strings.NewReader(tt.yaml))
-			if err == nil {
-				t.Fatal("got no error")
-			}
-			if !strings.Contains(err.Error(), tt.wantText) {
-				t.Errorf("error %q does not mention %q", err, tt.wantText)
-			}
-			if !strings.Contains(err.Error(), "line "+strconv.Itoa(tt.wantLine)) {
-				t.Errorf("error %q does not name line %d", err, tt.wantLine)
-			}
+			require.Error(t, err, "got no error")
+			assert.Contains(t, err.Error(), tt.wantText, "error %q does not mention %q", err, tt.wantText)
+			assert.Contains(t, err.Error(), "line "+strconv.Itoa(tt.wantLine), "error %q does not name line %d", err, tt.wantLine)
 		})
 	}
 }
@@ -76,50 +73,31 @@ upstreams:
   - name: plain
     url: http://127.0.0.1:3/v1
 `))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ups, _, err := buildUpstreams(t.Context(), cfg.Upstreams)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	main, spare, plain := ups[0], ups[1], ups[2]
-	if want := (breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1, OpenFor: 10 * time.Second, Probes: 2, ProbeEvery: 10 * time.Second / 6}); main.Breaker != want {
-		t.Errorf("main breaker %+v, want %+v", main.Breaker, want)
-	}
-	if main.Retry.MaxAttempts() != 1 || main.MaxConcurrent != 8 || !slices.Equal(main.Fallback, []string{"spare"}) {
-		t.Errorf("main: attempts %d, max_concurrent %d, fallback %v", main.Retry.MaxAttempts(), main.MaxConcurrent, main.Fallback)
-	}
-	if !spare.Breaker.Off {
-		t.Error("spare: enabled: false did not turn the breaker off")
-	}
-	if want := (retry.Policy{Attempts: 4, Base: 100 * time.Millisecond, MaxDelay: 2 * time.Second}); spare.Retry != want {
-		t.Errorf("spare retry %+v, want %+v", spare.Retry, want)
-	}
+	assert.Equal(t, breaker.Settings{ConsecutiveFailures: 3, FailureRatio: -1, OpenFor: 10 * time.Second, Probes: 2, ProbeEvery: 10 * time.Second / 6}, main.Breaker, "main breaker")
+	assert.Falsef(t, main.Retry.MaxAttempts() != 1 || main.MaxConcurrent != 8 || !slices.Equal(main.Fallback, []string{"spare"}), "main: attempts %d, max_concurrent %d, fallback %v", main.Retry.MaxAttempts(), main.MaxConcurrent, main.Fallback)
+	assert.True(t, spare.Breaker.Off, "spare: enabled: false did not turn the breaker off")
+	assert.Equal(t, retry.Policy{Attempts: 4, Base: 100 * time.Millisecond, MaxDelay: 2 * time.Second}, spare.Retry, "spare retry")
 	// Nothing said: breaker on and retries on, with the defaults.
-	if plain.Breaker != (breaker.Settings{ProbeEvery: breaker.DefaultOpenFor / 6}) || plain.Retry.MaxAttempts() != retry.DefaultAttempts || plain.MaxConcurrent != 0 {
-		t.Errorf("plain: %+v %+v %d, want the defaults", plain.Breaker, plain.Retry, plain.MaxConcurrent)
-	}
+	assert.Falsef(t, plain.Breaker != (breaker.Settings{ProbeEvery: breaker.DefaultOpenFor / 6}) || plain.Retry.MaxAttempts() != retry.DefaultAttempts || plain.MaxConcurrent != 0, "plain: %+v %+v %d, want the defaults", plain.Breaker, plain.Retry, plain.MaxConcurrent)
 }
 
 // The example config's upstream section spells out the defaults: parsing it
 // gives the same settings as leaving the sections out.
 func TestExampleUpstreamSpellsOutTheDefaults(t *testing.T) {
 	cfg, err := ParseConfig(strings.NewReader(exampleConfig))
-	if err != nil {
-		t.Fatalf("example config: %v", err)
-	}
+	require.NoError(t, err, "example config")
 	u := cfg.Upstreams[0]
 	want := breaker.Settings{
 		ConsecutiveFailures: breaker.DefaultConsecutiveFailures, FailureRatio: breaker.DefaultFailureRatio,
 		MinRequests: breaker.DefaultMinRequests, Window: breaker.DefaultWindow, OpenFor: breaker.DefaultOpenFor, Probes: breaker.DefaultProbes,
 		ProbeEvery: breaker.DefaultOpenFor / 6,
 	}
-	if got := u.breakerSettings(); got != want {
-		t.Errorf("example breaker %+v, want the defaults %+v", got, want)
-	}
-	if got := u.retryPolicy(); got != (retry.Policy{Attempts: retry.DefaultAttempts, Base: retry.DefaultBase, MaxDelay: retry.DefaultMaxDelay,
-		BudgetShare: retry.DefaultBudgetShare, BudgetReserve: retry.DefaultBudgetReserve}) {
-		t.Errorf("example retry %+v, want the defaults", got)
-	}
+	got := u.breakerSettings()
+	assert.Equal(t, want, got, "example breaker %+v, want the defaults %+v", got, want)
+	assert.Equal(t, retry.Policy{Attempts: retry.DefaultAttempts, Base: retry.DefaultBase, MaxDelay: retry.DefaultMaxDelay,
+		BudgetShare: retry.DefaultBudgetShare, BudgetReserve: retry.DefaultBudgetReserve}, u.retryPolicy(), "example retry, want the defaults")
 }

@@ -2,13 +2,14 @@ package main
 
 import (
 	"context"
-	"errors"
 	"net"
 	"net/http"
 	"net/http/httptest"
-	"strings"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestCheck(t *testing.T) {
@@ -33,9 +34,7 @@ func TestCheck(t *testing.T) {
 	}))
 	defer srv.Close()
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	closedURL := "http://" + ln.Addr().String() + "/healthz"
 	ln.Close()
 
@@ -60,13 +59,11 @@ func TestCheck(t *testing.T) {
 			err := check(ctx, srv.Client(), tc.url)
 			switch {
 			case tc.isCtx:
-				if !errors.Is(err, context.DeadlineExceeded) {
-					t.Errorf("got %v, want the deadline", err)
-				}
-			case tc.wantErr == "" && err != nil:
-				t.Errorf("got %v, want success", err)
-			case tc.wantErr != "" && (err == nil || !strings.Contains(err.Error(), tc.wantErr)):
-				t.Errorf("got %v, want an error containing %q", err, tc.wantErr)
+				assert.ErrorIs(t, err, context.DeadlineExceeded, "got %v, want the deadline", err)
+			case tc.wantErr == "":
+				assert.NoError(t, err, "want success")
+			default:
+				assert.ErrorContains(t, err, tc.wantErr)
 			}
 		})
 	}

@@ -20,61 +20,44 @@ import (
 func TestClusterSplitsTheSlotsOverEveryMaster(t *testing.T) {
 	const n = 3
 	cl := redistest.StartCluster(t, n)
-	if len(cl.Addrs) != n {
-		t.Fatalf("%d addresses, want %d", len(cl.Addrs), n)
-	}
+	require.Len(t, cl.Addrs, n, "%d addresses, want %d", len(cl.Addrs), n)
 	ctx := context.Background()
 	c := cl.Client(t)
 	//lint:ignore SA1019 CLUSTER SLOTS lists a replica only once it is synced, which is what this waits for; CLUSTER SHARDS lists it at once
 	slots, err := c.ClusterSlots(ctx).Result()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	owned := map[string]int{}
 	for _, s := range slots {
-		if len(s.Nodes) != 1 {
-			t.Errorf("slots %d-%d have %d nodes, want 1 master and no replica", s.Start, s.End, len(s.Nodes))
-		}
+		assert.Lenf(t, s.Nodes, 1, "slots %d-%d: want 1 master and no replica", s.Start, s.End)
 		owned[s.Nodes[0].Addr] += s.End - s.Start + 1
 	}
 	total := 0
 	for _, addr := range cl.Addrs {
 		// The slots are split evenly: 5461 or 5462 for each of 3.
-		if got, want := owned[addr], 16384/n; got < want || got > want+1 {
-			t.Errorf("%s owns %d slots, want %d or %d", addr, got, want, want+1)
-		}
+		got, want := owned[addr], 16384/n
+		assert.Falsef(t, got < want || got > want+1, "%s owns %d slots, want %d or %d", addr, got, want, want+1)
 		total += owned[addr]
 	}
-	if total != 16384 {
-		t.Errorf("%d slots covered, want 16384", total)
-	}
+	assert.Equal(t, 16384, total, "%d slots covered, want 16384", total)
 	// Every node answers with the same map.
 	for _, addr := range cl.Addrs {
 		node := (&redistest.Server{Addr: addr}).Client(t)
 		info, err := node.ClusterInfo(ctx).Result()
-		if err != nil || !strings.Contains(info, "cluster_state:ok") || !strings.Contains(info, "cluster_known_nodes:3") {
-			t.Errorf("%s: %v %q, want ok with 3 known nodes", addr, err, info)
-		}
+		assert.Falsef(t, err != nil || !strings.Contains(info, "cluster_state:ok") || !strings.Contains(info, "cluster_known_nodes:3"), "%s: %v %q, want ok with 3 known nodes", addr, err, info)
 	}
 	// {a}, {b} and {c} hash to slots 15495, 3300 and 7365 (CRC16 mod
 	// 16384, the cluster spec), one in each third of the slots.
 	seen := map[string]bool{}
 	for k, slot := range map[string]int64{"k:{a}": 15495, "k:{b}": 3300, "k:{c}": 7365} {
-		if got, err := c.ClusterKeySlot(ctx, k).Result(); err != nil || got != slot {
-			t.Fatalf("CLUSTER KEYSLOT %s = %d %v, want %d", k, got, err, slot)
-		}
-		if err := c.Set(ctx, k, "1", 0).Err(); err != nil {
-			t.Fatalf("SET %s: %v", k, err)
-		}
+		got, err := c.ClusterKeySlot(ctx, k).Result()
+		require.Falsef(t, err != nil || got != slot, "CLUSTER KEYSLOT %s = %d %v, want %d", k, got, err, slot)
+		err = c.Set(ctx, k, "1", 0).Err()
+		require.NoError(t, err, "SET %s: %v", k, err)
 		node, err := c.MasterForKey(ctx, k)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		seen[node.Options().Addr] = true
 	}
-	if len(seen) != n {
-		t.Errorf("three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
-	}
+	assert.Len(t, seen, n, "three keys over the thirds of the slots landed on %d nodes, want %d", len(seen), n)
 }
 
 // TestClusterWithReplicasFailsOver checks StartClusterWith's replicas and

@@ -13,6 +13,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/jobs"
@@ -31,9 +34,7 @@ type rig struct {
 func newRig(t *testing.T, steps int) rig {
 	t.Helper()
 	m, err := localmodel.Load(modeltest.Path(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	t.Cleanup(srv.Close)
 	path := tasktest.WriteExample(t, "steps: 90", "steps: "+strconv.Itoa(steps), "prompts_per_step: 16", "prompts_per_step: 4",
@@ -47,15 +48,11 @@ func waitFor(t *testing.T, m *jobs.Manager, id string, what string, cond func(jo
 	deadline := time.Now().Add(2 * time.Minute)
 	for {
 		st, err := m.Get(id)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		if cond(st) {
 			return st
 		}
-		if time.Now().After(deadline) {
-			t.Fatalf("job %s never %s: %+v", id, what, st)
-		}
+		require.Falsef(t, time.Now().After(deadline), "job %s never %s: %+v", id, what, st)
 		time.Sleep(20 * time.Millisecond)
 	}
 }
@@ -63,63 +60,43 @@ func waitFor(t *testing.T, m *jobs.Manager, id string, what string, cond func(jo
 func TestJobAPIRunsASearch(t *testing.T) {
 	r := newRig(t, 3)
 	m, err := jobs.Open(t.TempDir(), r.model, jobs.Options{Proxy: r.api})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer m.Close()
 	api := httptest.NewServer(m.Handler())
 	defer api.Close()
 
 	post := func(path, body string) (int, []byte) {
 		resp, err := http.Post(api.URL+path, "application/json", strings.NewReader(body))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		defer resp.Body.Close()
 		var b bytes.Buffer
 		_, _ = b.ReadFrom(resp.Body)
 		return resp.StatusCode, b.Bytes()
 	}
 	for _, bad := range []string{`{"task": 7}`, `{"task": "/no/such/task.yaml"}`, `{"task": "x", "colour": 1}`, `{`} {
-		if status, b := post("/jobs", bad); status != http.StatusBadRequest {
-			t.Errorf("submit %s: %d %s, want 400", bad, status, b)
-		}
+		status, b := post("/jobs", bad)
+		assert.Equal(t, http.StatusBadRequest, status, "submit %s: %d %s, want 400", bad, status, b)
 	}
 	status, b := post("/jobs", `{"task": "`+r.task+`"}`)
 	var st jobs.Status
-	if status != http.StatusCreated || json.Unmarshal(b, &st) != nil || st.State != jobs.Queued {
-		t.Fatalf("submit: %d %s", status, b)
-	}
+	require.Falsef(t, status != http.StatusCreated || json.Unmarshal(b, &st) != nil || st.State != jobs.Queued, "submit: %d %s", status, b)
 	done := waitFor(t, m, st.ID, "finished", func(s jobs.Status) bool { return s.State != jobs.Queued && s.State != jobs.Running })
-	if done.State != jobs.Done || done.Step != 3 || done.Calls == 0 {
-		t.Fatalf("finished job: %+v", done)
-	}
+	require.Falsef(t, done.State != jobs.Done || done.Step != 3 || done.Calls == 0, "finished job: %+v", done)
 	raw, err := os.ReadFile(filepath.Join(m.Out(st.ID), "results.json"))
-	if err != nil {
-		t.Fatalf("no results: %v", err)
-	}
+	require.NoError(t, err, "no results")
 	var res search.Results
-	if err := json.Unmarshal(raw, &res); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal(raw, &res))
 	// The status's floored share is the search's own count, as results.json
 	// has it.
-	if res.Lookups == 0 || math.Abs(done.FlooredShare-float64(res.Floored)/float64(res.Lookups)) > 1e-12 {
-		t.Errorf("floored share %v, want %d of %d look-ups", done.FlooredShare, res.Floored, res.Lookups)
-	}
+	assert.Falsef(t, res.Lookups == 0 || math.Abs(done.FlooredShare-float64(res.Floored)/float64(res.Lookups)) > 1e-12, "floored share %v, want %d of %d look-ups", done.FlooredShare, res.Floored, res.Lookups)
 	resp, err := http.Get(api.URL + "/jobs/" + st.ID)
-	if err != nil || resp.StatusCode != http.StatusOK {
-		t.Errorf("GET job: %v %v", err, resp.Status)
-	}
+	assert.Falsef(t, err != nil || resp.StatusCode != http.StatusOK, "GET job: %v %v", err, resp.Status)
 	resp.Body.Close()
 	resp, _ = http.Get(api.URL + "/jobs/job-unknown")
-	if resp.StatusCode != http.StatusNotFound {
-		t.Errorf("unknown job: %d, want 404", resp.StatusCode)
-	}
+	assert.Equal(t, http.StatusNotFound, resp.StatusCode, "unknown job: %d, want 404", resp.StatusCode)
 	resp.Body.Close()
-	if status, _ := post("/jobs/job-unknown/cancel", ""); status != http.StatusNotFound {
-		t.Errorf("cancel unknown: %d, want 404", status)
-	}
+	status, _ = post("/jobs/job-unknown/cancel", "")
+	assert.Equal(t, http.StatusNotFound, status, "cancel unknown: %d, want 404", status)
 }
 
 // TestJobResumesAfterRestart closes the manager while a job runs; a new
@@ -129,71 +106,46 @@ func TestJobResumesAfterRestart(t *testing.T) {
 	r := newRig(t, 8)
 	dir := t.TempDir()
 	m, err := jobs.Open(dir, r.model, jobs.Options{Proxy: r.api, CheckpointEvery: 1})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	st, err := m.Submit(jobs.Spec{Task: r.task})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	waitFor(t, m, st.ID, "reached step 2", func(s jobs.Status) bool { return s.Step >= 2 })
 	m.Close()
-	if got, _ := m.Get(st.ID); got.State != jobs.Running {
-		t.Fatalf("after close the job is %q, want it left running to resume", got.State)
-	}
+	got, _ := m.Get(st.ID)
+	require.Equal(t, jobs.Running, got.State, "after close the job is %q, want it left running to resume", got.State)
 	// The step the job goes on from is its checkpoint's, whatever step
 	// the status last showed.
 	f, err := os.Open(filepath.Join(m.Out(st.ID), search.CheckpointFile))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ckpt, err := search.ReadState(f, "reading-corner", 7) // the example task's name and seed
 	f.Close()
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 
 	m2, err := jobs.Open(dir, r.model, jobs.Options{Proxy: r.api, CheckpointEvery: 1})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer m2.Close()
 	done := waitFor(t, m2, st.ID, "finished", func(s jobs.Status) bool { return s.State != jobs.Queued && s.State != jobs.Running })
-	if done.State != jobs.Done || done.Step != 8 || done.Resumed != ckpt.Step {
-		t.Errorf("resumed job: %+v, want done at step 8, resumed after step %d (the checkpoint's)", done, ckpt.Step)
-	}
+	assert.Falsef(t, done.State != jobs.Done || done.Step != 8 || done.Resumed != ckpt.Step, "resumed job: %+v, want done at step 8, resumed after step %d (the checkpoint's)", done, ckpt.Step)
 	// The best prompt so far is the greedy prompt with the highest dev
 	// accuracy in the whole curve, the part before the restart included.
 	h, err := m2.History(st.ID)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	want := search.BestByDev(h.Points)
-	if want.Step == 0 || done.BestPrompt != want.Prompt || done.BestStep != want.Step || math.Abs(done.DevAcc-want.DevAcc) > 1e-6 {
-		t.Errorf("best so far: %q at step %d (dev %v), want %q at step %d (dev %v) from the history", done.BestPrompt, done.BestStep, done.DevAcc, want.Prompt, want.Step, want.DevAcc)
-	}
-	if last := h.Points[len(h.Points)-1]; done.LatestPrompt != last.Prompt || math.Abs(done.LatestDevAcc-last.DevAcc) > 1e-6 {
-		t.Errorf("latest: %q (dev %v), want the last step's %q (dev %v)", done.LatestPrompt, done.LatestDevAcc, last.Prompt, last.DevAcc)
-	}
+	assert.Falsef(t, want.Step == 0 || done.BestPrompt != want.Prompt || done.BestStep != want.Step || math.Abs(done.DevAcc-want.DevAcc) > 1e-6, "best so far: %q at step %d (dev %v), want %q at step %d (dev %v) from the history", done.BestPrompt, done.BestStep, done.DevAcc, want.Prompt, want.Step, want.DevAcc)
+	last := h.Points[len(h.Points)-1]
+	assert.Falsef(t, done.LatestPrompt != last.Prompt || math.Abs(done.LatestDevAcc-last.DevAcc) > 1e-6, "latest: %q (dev %v), want the last step's %q (dev %v)", done.LatestPrompt, done.LatestDevAcc, last.Prompt, last.DevAcc)
 }
 
 func TestCancelStopsAJob(t *testing.T) {
 	r := newRig(t, 200)
 	m, err := jobs.Open(t.TempDir(), r.model, jobs.Options{Proxy: r.api})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	defer m.Close()
 	st, err := m.Submit(jobs.Spec{Task: r.task, OverCap: true})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	waitFor(t, m, st.ID, "started", func(s jobs.Status) bool { return s.Step >= 1 })
-	if _, err := m.Cancel(st.ID); err != nil {
-		t.Fatal(err)
-	}
+	_, err = m.Cancel(st.ID)
+	require.NoError(t, err)
 	got := waitFor(t, m, st.ID, "stopped", func(s jobs.Status) bool { return s.State == jobs.Canceled })
-	if got.Step >= 200 {
-		t.Errorf("canceled job ran to the end: %+v", got)
-	}
+	assert.Falsef(t, got.Step >= 200, "canceled job ran to the end: %+v", got)
 }

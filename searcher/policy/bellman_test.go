@@ -7,6 +7,9 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -81,14 +84,10 @@ func TestSoftBellman(t *testing.T) {
 			for key, wq := range want {
 				p := parsePrefix(key)
 				gq, err := tr.QValues(context.Background(), p)
-				if err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, err)
 				for a := range wq {
 					worst = max(worst, math.Abs(gq[a]-wq[a]))
-					if math.Abs(gq[a]-wq[a]) > tol {
-						t.Errorf("Q(%v, %d) = %.4f, want %.4f (soft Bellman)", p, a, gq[a], wq[a])
-					}
+					assert.Falsef(t, math.Abs(gq[a]-wq[a]) > tol, "Q(%v, %d) = %.4f, want %.4f (soft Bellman)", p, a, gq[a], wq[a])
 				}
 			}
 			t.Logf("largest |Q − Q*| = %.2g", worst)

@@ -4,6 +4,8 @@ import (
 	"context"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -12,9 +14,7 @@ import (
 func benchTrainer(b *testing.B, cache int) *policy.Trainer {
 	b.Helper()
 	l, err := policy.NewLocal(realModel(b), policy.LocalOptions{CacheEntries: cache})
-	if err != nil {
-		b.Fatal(err)
-	}
+	require.NoError(b, err)
 	return newTrainer(b, l, policy.Config{Seed: 1})
 }
 
@@ -44,9 +44,7 @@ func BenchmarkUpdate(b *testing.B) {
 	tr := benchTrainer(b, 0)
 	ctx := context.Background()
 	prompts, err := tr.Sample(ctx, 16)
-	if err != nil {
-		b.Fatal(err)
-	}
+	require.NoError(b, err)
 	rewards := make([]float64, len(prompts))
 	for i := range rewards {
 		rewards[i] = float64(i % 3)

@@ -14,6 +14,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -36,17 +39,13 @@ func run(t *testing.T, tr *policy.Trainer, steps int) ([][][]int, []policy.Stats
 	var stats []policy.Stats
 	for range steps {
 		p, err := tr.Sample(ctx, 6)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		rs := make([]float64, len(p))
 		for i := range p {
 			rs[i] = matchReward(p[i])
 		}
 		st, err := tr.Update(ctx, p, rs)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		samples, stats = append(samples, p), append(stats, st)
 	}
 	return samples, stats
@@ -55,9 +54,7 @@ func run(t *testing.T, tr *policy.Trainer, steps int) ([][][]int, []policy.Stats
 func save(t *testing.T, tr *policy.Trainer) []byte {
 	t.Helper()
 	var buf bytes.Buffer
-	if err := tr.Save(&buf); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, tr.Save(&buf))
 	return buf.Bytes()
 }
 
@@ -72,24 +69,14 @@ func TestResume(t *testing.T) {
 	wantSamples, wantStats := run(t, a, 5)
 
 	r, err := policy.Load(bytes.NewReader(ckpt), b)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if r.Step() != 5 || !reflect.DeepEqual(r.Config(), a.Config()) {
-		t.Errorf("restored step %d config %+v, want 5 and %+v", r.Step(), r.Config(), a.Config())
-	}
+	require.NoError(t, err)
+	assert.Falsef(t, r.Step() != 5 || !reflect.DeepEqual(r.Config(), a.Config()), "restored step %d config %+v, want 5 and %+v", r.Step(), r.Config(), a.Config())
 	gotSamples, gotStats := run(t, r, 5)
-	if !reflect.DeepEqual(gotSamples, wantSamples) {
-		t.Errorf("samples after resume differ:\ngot  %v\nwant %v", gotSamples, wantSamples)
-	}
-	if !reflect.DeepEqual(gotStats, wantStats) {
-		t.Errorf("stats after resume differ:\ngot  %+v\nwant %+v", gotStats, wantStats)
-	}
+	assert.Truef(t, reflect.DeepEqual(gotSamples, wantSamples), "samples after resume differ:\ngot  %v\nwant %v", gotSamples, wantSamples)
+	assert.Truef(t, reflect.DeepEqual(gotStats, wantStats), "stats after resume differ:\ngot  %+v\nwant %+v", gotStats, wantStats)
 	// The checkpoint holds parameters, target, moments, RNG and step as
 	// exact bits, so equal checkpoints mean bit-for-bit equal trainers.
-	if !bytes.Equal(save(t, r), save(t, a)) {
-		t.Errorf("final states differ")
-	}
+	assert.True(t, bytes.Equal(save(t, r), save(t, a)), "final states differ")
 }
 
 // reencode rewrites a checkpoint's payload with edit and a valid header.
@@ -97,14 +84,10 @@ func reencode(t *testing.T, ckpt []byte, edit func(map[string]any)) []byte {
 	t.Helper()
 	i := bytes.IndexByte(ckpt, '\n')
 	var st map[string]any
-	if err := json.Unmarshal(ckpt[i+1:], &st); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, json.Unmarshal(ckpt[i+1:], &st))
 	edit(st)
 	payload, err := json.Marshal(st)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	return withHeader(1, payload)
 }
 
@@ -144,9 +127,7 @@ func TestLoadRefuses(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			_, err := policy.Load(bytes.NewReader(tc.data), tc.b)
-			if !errors.Is(err, tc.want) || !strings.Contains(err.Error(), tc.msg) {
-				t.Errorf("got %v, want %v saying %q", err, tc.want, tc.msg)
-			}
+			assert.Falsef(t, !errors.Is(err, tc.want) || !strings.Contains(err.Error(), tc.msg), "got %v, want %v saying %q", err, tc.want, tc.msg)
 		})
 	}
 }
@@ -157,16 +138,10 @@ func TestSaveFile(t *testing.T) {
 	b := newPosBackbone(16, 3, 5)
 	tr := newTrainer(t, b, policy.Config{PromptLength: 3, Hidden: 8})
 	run(t, tr, 2)
-	if err := tr.SaveFile(path); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, tr.SaveFile(path))
 	r, err := policy.LoadFile(path, b)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if !bytes.Equal(save(t, r), save(t, tr)) {
-		t.Errorf("LoadFile(SaveFile) changed the state")
-	}
+	require.NoError(t, err)
+	assert.True(t, bytes.Equal(save(t, r), save(t, tr)), "LoadFile(SaveFile) changed the state")
 	// A failing writer leaves the old file whole and no temporary file.
 	old, _ := os.ReadFile(path)
 	boom := errors.New("boom")
@@ -174,18 +149,11 @@ func TestSaveFile(t *testing.T) {
 		w.Write([]byte("partial"))
 		return boom
 	})
-	if !errors.Is(err, boom) {
-		t.Errorf("WriteFileAtomic: got %v, want the writer's error", err)
-	}
+	assert.ErrorIs(t, err, boom, "WriteFileAtomic: got %v, want the writer's error", err)
 	now, _ := os.ReadFile(path)
-	if !bytes.Equal(now, old) {
-		t.Errorf("failed write changed the file")
-	}
+	assert.True(t, bytes.Equal(now, old), "failed write changed the file")
 	entries, _ := os.ReadDir(dir)
-	if len(entries) != 1 {
-		t.Errorf("directory holds %d entries after a failed write, want 1", len(entries))
-	}
-	if _, err := policy.LoadFile(filepath.Join(dir, "missing"), b); !errors.Is(err, os.ErrNotExist) {
-		t.Errorf("LoadFile(missing): got %v", err)
-	}
+	assert.Len(t, entries, 1, "directory holds %d entries after a failed write, want 1", len(entries))
+	_, err = policy.LoadFile(filepath.Join(dir, "missing"), b)
+	assert.ErrorIs(t, err, os.ErrNotExist, "LoadFile(missing): got %v", err)
 }

@@ -6,6 +6,9 @@ import (
 	"math"
 	"math/rand/v2"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // noiseBackbone gives every prompt a fixed pseudo-random hidden state (a
@@ -58,30 +61,23 @@ func TestGradient(t *testing.T) {
 	for _, tc := range tests {
 		t.Run(tc.name, func(t *testing.T) {
 			tr, err := NewTrainer(newNoiseBackbone(7, 6), tc.cfg)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			rng := rand.New(rand.NewPCG(9, 9))
 			for i := range tr.params {
 				tr.params[i] = 0.5 * rng.NormFloat64()
 				tr.target[i] = 0.5 * rng.NormFloat64()
 			}
 			acts, err := tr.checkBatch(tc.prompts, tc.rewards)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			norm := 1 / float64(2*len(tc.prompts)*tc.cfg.PromptLength)
 			loss := func(p []float64) float64 {
 				s, err := tr.lossGrad(ctx, p, tc.prompts, acts, tc.rewards, make([]float64, len(p)))
-				if err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, err)
 				return (s.single + s.multi) * norm
 			}
 			grad := make([]float64, len(tr.params))
-			if _, err := tr.lossGrad(ctx, tr.params, tc.prompts, acts, tc.rewards, grad); err != nil {
-				t.Fatal(err)
-			}
+			_, err = tr.lossGrad(ctx, tr.params, tc.prompts, acts, tc.rewards, grad)
+			require.NoError(t, err)
 			const h = 1e-5
 			p := append([]float64(nil), tr.params...)
 			var diff, size float64
@@ -99,12 +95,8 @@ func TestGradient(t *testing.T) {
 			rel := math.Sqrt(diff) / math.Sqrt(size)
 			// Common practice: a gradient check against central finite
 			// differences, the bound from the error estimate above.
-			if !(rel < 1e-7) {
-				t.Errorf("relative gradient error %.3g, want < 1e-7 (central differences)", rel)
-			}
-			if size == 0 {
-				t.Errorf("gradient is zero: the check proves nothing")
-			}
+			assert.Falsef(t, !(rel < 1e-7), "relative gradient error %.3g, want < 1e-7 (central differences)", rel)
+			assert.False(t, size == 0, "gradient is zero: the check proves nothing")
 			t.Logf("relative error %.2g over %d parameters", rel, len(p))
 		})
 	}

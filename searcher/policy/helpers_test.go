@@ -6,6 +6,8 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -99,9 +101,7 @@ func (b *posBackbone) OutputHead() (int, int, []float32) { return b.vocab, b.dim
 func newTrainer(tb testing.TB, b policy.Backbone, cfg policy.Config) *policy.Trainer {
 	tb.Helper()
 	tr, err := policy.NewTrainer(b, cfg)
-	if err != nil {
-		tb.Fatalf("NewTrainer: %v", err)
-	}
+	require.NoError(tb, err, "NewTrainer")
 	return tr
 }
 
@@ -113,17 +113,14 @@ func train(tb testing.TB, tr *policy.Trainer, steps, batch int, reward func([]in
 	calls := 0
 	for range steps {
 		prompts, err := tr.Sample(ctx, batch)
-		if err != nil {
-			tb.Fatalf("Sample: %v", err)
-		}
+		require.NoError(tb, err, "Sample")
 		rs := make([]float64, len(prompts))
 		for i, p := range prompts {
 			rs[i] = reward(p)
 			calls++
 		}
-		if _, err := tr.Update(ctx, prompts, rs); err != nil {
-			tb.Fatalf("Update: %v", err)
-		}
+		_, err = tr.Update(ctx, prompts, rs)
+		require.NoError(tb, err, "Update")
 	}
 	return calls
 }

@@ -5,6 +5,9 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -49,9 +52,7 @@ func TestLearnsTarget(t *testing.T) {
 		})
 		calls := train(t, tr, steps, batch, reward)
 		g, err := tr.Greedy(ctx)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		calls++
 		got := reward(g)
 		sqlSum += got
@@ -71,10 +72,6 @@ func TestLearnsTarget(t *testing.T) {
 	}
 	// Common practice: assert a statistic over several seeds (hits in at
 	// least 4 of 5, mean against mean), not the outcome of one lucky seed.
-	if exact < seeds-1 {
-		t.Errorf("greedy prompt hit the target in %d of %d seeds, want ≥ %d", exact, seeds, seeds-1)
-	}
-	if sqlSum <= randSum {
-		t.Errorf("mean final reward %.2f ≤ random search's mean best %.2f", sqlSum/seeds, randSum/seeds)
-	}
+	assert.Falsef(t, exact < seeds-1, "greedy prompt hit the target in %d of %d seeds, want ≥ %d", exact, seeds, seeds-1)
+	assert.Falsef(t, sqlSum <= randSum, "mean final reward %.2f ≤ random search's mean best %.2f", sqlSum/seeds, randSum/seeds)
 }

@@ -3,12 +3,14 @@ package policy_test
 import (
 	"bytes"
 	"context"
-	"errors"
 	"fmt"
 	"math"
 	"slices"
 	"sync"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
@@ -20,9 +22,7 @@ import (
 func realModel(tb testing.TB) *localmodel.Model {
 	tb.Helper()
 	m, err := localmodel.Load(modeltest.Path(tb))
-	if err != nil {
-		tb.Fatalf("load model: %v", err)
-	}
+	require.NoError(tb, err, "load model")
 	return m
 }
 
@@ -35,90 +35,56 @@ func TestLocal(t *testing.T) {
 	m := realModel(t)
 	bos := m.Tokenizer().BOS()
 	l, err := policy.NewLocal(m, policy.LocalOptions{})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	prompt := m.Tokenizer().Encode("Once upon a time")
 	h, err := l.Hidden(ctx, prompt)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	// Every prefix (the empty one included) was cached by that one pass.
-	if got := l.CacheLen(); got != len(prompt)+1 {
-		t.Errorf("cache holds %d prompts, want %d", got, len(prompt)+1)
-	}
+	assert.Equal(t, len(prompt)+1, l.CacheLen(), "prompts in the cache")
 	for i := 0; i <= len(prompt); i++ {
 		out, err := m.Forward(ctx, append([]int{bos}, prompt[:i]...))
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		want := out.Hidden.Row(i)
 		got, err := l.Hidden(ctx, prompt[:i])
-		if err != nil {
-			t.Fatal(err)
-		}
-		if !slices.Equal(got, want) {
-			t.Errorf("prefix of %d tokens: hidden state differs from Forward(BOS+prefix)", i)
-		}
-		if i == len(prompt) && !slices.Equal(h, want) {
-			t.Errorf("first Hidden call differs from Forward")
-		}
+		require.NoError(t, err)
+		assert.Truef(t, slices.Equal(got, want), "prefix of %d tokens: hidden state differs from Forward(BOS+prefix)", i)
+		assert.False(t, i == len(prompt) && !slices.Equal(h, want), "first Hidden call differs from Forward")
 	}
 	rows, cols, _ := l.OutputHead()
-	if rows != m.VocabSize() || cols != m.EmbeddingSize() {
-		t.Errorf("head %d×%d, want %d×%d", rows, cols, m.VocabSize(), m.EmbeddingSize())
-	}
+	assert.Falsef(t, rows != m.VocabSize() || cols != m.EmbeddingSize(), "head %d×%d, want %d×%d", rows, cols, m.VocabSize(), m.EmbeddingSize())
 
 	// Off: nothing cached, same values.
 	off, err := policy.NewLocal(m, policy.LocalOptions{Start: []int{bos}, CacheEntries: -1})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if got, _ := off.Hidden(ctx, prompt); !slices.Equal(got, h) || off.CacheLen() != 0 {
-		t.Errorf("uncached adapter: equal %v, cache %d", slices.Equal(got, h), off.CacheLen())
-	}
+	require.NoError(t, err)
+	got, _ := off.Hidden(ctx, prompt)
+	assert.Falsef(t, !slices.Equal(got, h) || off.CacheLen() != 0, "uncached adapter: equal %v, cache %d", slices.Equal(got, h), off.CacheLen())
 
 	// A short run over the whole 512-token vocabulary: the policy starts
 	// near uniform, losses are finite and the checkpoint round-trips.
 	tr := newTrainer(t, l, policy.Config{PromptLength: 3, Hidden: 32, LearningRate: 1e-2, Seed: 1})
 	q, err := tr.QValues(ctx, nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if spread := slices.Max(q) - slices.Min(q); len(q) != 512 || spread > 0.1 {
-		t.Errorf("initial Q: %d values spread over %.3g, want 512 within 0.1", len(q), spread)
-	}
+	require.NoError(t, err)
+	spread := slices.Max(q) - slices.Min(q)
+	assert.Falsef(t, len(q) != 512 || spread > 0.1, "initial Q: %d values spread over %.3g, want 512 within 0.1", len(q), spread)
 	reward := func(p []int) float64 { return float64(len(m.Tokenizer().Decode(p))) / 4 }
 	for range 3 {
 		prompts, err := tr.Sample(ctx, 4)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		rs := make([]float64, len(prompts))
 		for i, p := range prompts {
 			rs[i] = reward(p)
 		}
 		st, err := tr.Update(ctx, prompts, rs)
-		if err != nil {
-			t.Fatal(err)
-		}
-		if math.IsNaN(st.Loss) || math.IsInf(st.Loss, 0) {
-			t.Fatalf("loss %v", st.Loss)
-		}
+		require.NoError(t, err)
+		require.Falsef(t, math.IsNaN(st.Loss) || math.IsInf(st.Loss, 0), "loss %v", st.Loss)
 	}
 	var buf bytes.Buffer
-	if err := tr.Save(&buf); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, tr.Save(&buf))
 	r, err := policy.Load(bytes.NewReader(buf.Bytes()), off)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	g1, _ := tr.Greedy(ctx)
 	g2, err := r.Greedy(ctx)
-	if err != nil || !slices.Equal(g1, g2) || len(g1) != 3 {
-		t.Errorf("greedy %v, restored %v (%v)", g1, g2, err)
-	}
+	assert.Falsef(t, err != nil || !slices.Equal(g1, g2) || len(g1) != 3, "greedy %v, restored %v (%v)", g1, g2, err)
 }
 
 func TestNewLocalErrors(t *testing.T) {
@@ -128,17 +94,13 @@ func TestNewLocalErrors(t *testing.T) {
 		{Start: []int{1, 512}},
 		{CacheEntries: -2},
 	} {
-		if _, err := policy.NewLocal(m, opts); !errors.Is(err, policy.ErrConfig) {
-			t.Errorf("%+v: got %v, want ErrConfig", opts, err)
-		}
+		_, err := policy.NewLocal(m, opts)
+		assert.ErrorIs(t, err, policy.ErrConfig, "%+v: got %v, want ErrConfig", opts, err)
 	}
 	l, err := policy.NewLocal(m, policy.LocalOptions{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if _, err := l.Hidden(context.Background(), []int{600}); !errors.Is(err, localmodel.ErrBadToken) {
-		t.Errorf("Hidden(600): got %v, want ErrBadToken", err)
-	}
+	require.NoError(t, err)
+	_, err = l.Hidden(context.Background(), []int{600})
+	assert.ErrorIs(t, err, localmodel.ErrBadToken, "Hidden(600): got %v, want ErrBadToken", err)
 }
 
 // TestLocalConcurrent: concurrent callers sharing prefixes get the same
@@ -147,13 +109,9 @@ func TestLocalConcurrent(t *testing.T) {
 	ctx := context.Background()
 	m := realModel(t)
 	l, err := policy.NewLocal(m, policy.LocalOptions{CacheEntries: 8})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	ref, err := policy.NewLocal(m, policy.LocalOptions{CacheEntries: -1})
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	prompts := [][]int{{300, 301, 302}, {300, 301}, {300, 400}, {}, {511, 3, 4, 5}}
 	var wg sync.WaitGroup
 	errs := make(chan error, 4*len(prompts))
@@ -176,9 +134,8 @@ func TestLocalConcurrent(t *testing.T) {
 	wg.Wait()
 	close(errs)
 	for err := range errs {
-		t.Error(err)
+		assert.NoError(t, err)
 	}
-	if n := l.CacheLen(); n > 8 {
-		t.Errorf("cache holds %d entries, bound 8", n)
-	}
+	n := l.CacheLen()
+	assert.Falsef(t, n > 8, "cache holds %d entries, bound 8", n)
 }

@@ -9,6 +9,9 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/policy"
 )
 
@@ -35,9 +38,7 @@ func TestConfigDefaults(t *testing.T) {
 					tc.want.Actions = append(tc.want.Actions, i)
 				}
 			}
-			if !reflect.DeepEqual(got, tc.want) {
-				t.Errorf("got %+v\nwant %+v", got, tc.want)
-			}
+			assert.Truef(t, reflect.DeepEqual(got, tc.want), "got %+v\nwant %+v", got, tc.want)
 		})
 	}
 }
@@ -60,9 +61,7 @@ func TestConfigErrors(t *testing.T) {
 	}
 	for _, tc := range tests {
 		_, err := policy.NewTrainer(newPosBackbone(16, 2, 1), tc.cfg)
-		if !errors.Is(err, policy.ErrConfig) || !strings.Contains(err.Error(), tc.field) {
-			t.Errorf("%+v: got %v, want ErrConfig naming %s", tc.cfg, err, tc.field)
-		}
+		assert.Falsef(t, !errors.Is(err, policy.ErrConfig) || !strings.Contains(err.Error(), tc.field), "%+v: got %v, want ErrConfig naming %s", tc.cfg, err, tc.field)
 	}
 }
 
@@ -82,14 +81,12 @@ func (b badBackbone) OutputHead() (int, int, []float32) {
 func TestBackboneErrors(t *testing.T) {
 	ctx := context.Background()
 	for _, b := range []badBackbone{{rows: 4, cols: 3, values: 11, hidden: 3}, {rows: 0, cols: 3, hidden: 3}} {
-		if _, err := policy.NewTrainer(b, policy.Config{Hidden: 4}); !errors.Is(err, policy.ErrBackbone) {
-			t.Errorf("%+v: NewTrainer got %v, want ErrBackbone", b, err)
-		}
+		_, err := policy.NewTrainer(b, policy.Config{Hidden: 4})
+		assert.ErrorIs(t, err, policy.ErrBackbone, "%+v: NewTrainer got %v, want ErrBackbone", b, err)
 	}
 	tr := newTrainer(t, badBackbone{rows: 4, cols: 3, values: 12, hidden: 5}, policy.Config{Hidden: 4})
-	if _, err := tr.Sample(ctx, 1); !errors.Is(err, policy.ErrBackbone) {
-		t.Errorf("Sample with 5-wide hidden state for a 3-column head: got %v, want ErrBackbone", err)
-	}
+	_, err := tr.Sample(ctx, 1)
+	assert.ErrorIs(t, err, policy.ErrBackbone, "Sample with 5-wide hidden state for a 3-column head: got %v, want ErrBackbone", err)
 }
 
 // TestInitialPolicy: the documented initialisation gives a policy within
@@ -99,20 +96,14 @@ func TestInitialPolicy(t *testing.T) {
 	tr := newTrainer(t, newPosBackbone(32, 3, 1), policy.Config{PromptLength: 3, Hidden: 64})
 	for _, p := range [][]int{nil, {5}, {31, 0}} {
 		q, err := tr.QValues(ctx, p)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		v := logSumExp(q)
 		spread := 0.0
 		for _, x := range q {
 			spread = max(spread, math.Abs(math.Exp(x-v)*float64(len(q))-1))
 		}
-		if spread > 0.05 {
-			t.Errorf("state %v: max |π·|A| − 1| = %.3g, want ≤ 0.05", p, spread)
-		}
-		if slices.Min(q) == slices.Max(q) {
-			t.Errorf("state %v: all Q values equal %v: top-k ties would follow action order", p, q[0])
-		}
+		assert.Falsef(t, spread > 0.05, "state %v: max |π·|A| − 1| = %.3g, want ≤ 0.05", p, spread)
+		assert.Falsef(t, slices.Min(q) == slices.Max(q), "state %v: all Q values equal %v: top-k ties would follow action order", p, q[0])
 	}
 }
 
@@ -146,40 +137,28 @@ func TestTopK(t *testing.T) {
 	for _, k := range []int{1, 3, 16} {
 		tr := trained(t, policy.Config{PromptLength: 3, Hidden: 16, TopK: k, LearningRate: 0.05, Seed: 3})
 		prompts, err := tr.Sample(ctx, 20)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		greedy, err := tr.Greedy(ctx)
-		if err != nil {
-			t.Fatal(err)
-		}
+		require.NoError(t, err)
 		distinct := map[int]bool{}
 		for _, p := range prompts {
-			if k == 1 && !slices.Equal(p, greedy) {
-				t.Errorf("k=1: sampled %v, greedy %v", p, greedy)
-			}
+			assert.Falsef(t, k == 1 && !slices.Equal(p, greedy), "k=1: sampled %v, greedy %v", p, greedy)
 			for s, tok := range p {
 				q, err := tr.QValues(ctx, p[:s])
-				if err != nil {
-					t.Fatal(err)
-				}
+				require.NoError(t, err)
 				rank := 0
 				for _, v := range q {
 					if v > q[tok] {
 						rank++
 					}
 				}
-				if rank >= k {
-					t.Errorf("k=%d: token %d at step %d of %v has rank %d", k, tok, s, p, rank)
-				}
+				assert.Falsef(t, rank >= k, "k=%d: token %d at step %d of %v has rank %d", k, tok, s, p, rank)
 				if s == 2 {
 					distinct[tok] = true
 				}
 			}
 		}
-		if k > 1 && len(distinct) < 2 {
-			t.Errorf("k=%d: 20 samples used one last token only: no exploration", k)
-		}
+		assert.Falsef(t, k > 1 && len(distinct) < 2, "k=%d: 20 samples used one last token only: no exploration", k)
 	}
 }
 
@@ -190,24 +169,16 @@ func TestDeterminism(t *testing.T) {
 	cfg := policy.Config{PromptLength: 3, Hidden: 16, LearningRate: 0.05, Seed: 11}
 	a, b := trained(t, cfg), trained(t, cfg)
 	g1, err := a.Greedy(ctx)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	g2, _ := a.Greedy(ctx)
 	gb, _ := b.Greedy(ctx)
-	if !slices.Equal(g1, g2) || !slices.Equal(g1, gb) {
-		t.Errorf("greedy prompts differ: %v, %v, twin %v", g1, g2, gb)
-	}
+	assert.Falsef(t, !slices.Equal(g1, g2) || !slices.Equal(g1, gb), "greedy prompts differ: %v, %v, twin %v", g1, g2, gb)
 	sa, _ := a.Sample(ctx, 10)
 	sb, _ := b.Sample(ctx, 10)
-	if !reflect.DeepEqual(sa, sb) {
-		t.Errorf("equal seeds sampled differently (b skipped Greedy only once): %v vs %v", sa, sb)
-	}
+	assert.Truef(t, reflect.DeepEqual(sa, sb), "equal seeds sampled differently (b skipped Greedy only once): %v vs %v", sa, sb)
 	cfg.Seed = 12
 	sc, _ := trained(t, cfg).Sample(ctx, 10)
-	if reflect.DeepEqual(sa, sc) {
-		t.Errorf("seeds 11 and 12 sampled the same prompts %v", sa)
-	}
+	assert.Falsef(t, reflect.DeepEqual(sa, sc), "seeds 11 and 12 sampled the same prompts %v", sa)
 }
 
 // TestAllowList: only allowed ids are sampled or accepted, and Q has one
@@ -217,27 +188,19 @@ func TestAllowList(t *testing.T) {
 	allowed := []int{12, 3, 9, 0}
 	tr := newTrainer(t, newPosBackbone(16, 3, 1), policy.Config{PromptLength: 3, Hidden: 8, Actions: allowed})
 	prompts, err := tr.Sample(ctx, 50)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	seen := map[int]bool{}
 	for _, p := range prompts {
 		for _, tok := range p {
-			if !slices.Contains(allowed, tok) {
-				t.Fatalf("sampled %d, not in %v", tok, allowed)
-			}
+			require.Truef(t, slices.Contains(allowed, tok), "sampled %d, not in %v", tok, allowed)
 			seen[tok] = true
 		}
 	}
-	if len(seen) != len(allowed) {
-		t.Errorf("150 near-uniform draws used %d of %d allowed ids", len(seen), len(allowed))
-	}
-	if q, _ := tr.QValues(ctx, nil); len(q) != len(allowed) {
-		t.Errorf("got %d Q values, want %d", len(q), len(allowed))
-	}
-	if _, err := tr.Update(ctx, [][]int{{12, 4, 0}}, []float64{1}); !errors.Is(err, policy.ErrBatch) {
-		t.Errorf("Update with disallowed id 4: got %v, want ErrBatch", err)
-	}
+	assert.Len(t, seen, len(allowed), "150 near-uniform draws used %d of %d allowed ids", len(seen), len(allowed))
+	q, _ := tr.QValues(ctx, nil)
+	assert.Len(t, q, len(allowed), "got %d Q values, want %d", len(q), len(allowed))
+	_, err = tr.Update(ctx, [][]int{{12, 4, 0}}, []float64{1})
+	assert.ErrorIs(t, err, policy.ErrBatch, "Update with disallowed id 4")
 }
 
 // TestUpdateErrors: bad batches are refused and leave the trainer as it
@@ -264,17 +227,13 @@ func TestUpdateErrors(t *testing.T) {
 		{"context canceled", canceled, [][]int{{1, 2}}, []float64{1}, context.Canceled},
 	}
 	for _, tc := range tests {
-		if _, err := tr.Update(tc.ctx, tc.prompts, tc.rewards); !errors.Is(err, tc.want) {
-			t.Errorf("%s: got %v, want %v", tc.name, err, tc.want)
-		}
+		_, err := tr.Update(tc.ctx, tc.prompts, tc.rewards)
+		assert.ErrorIs(t, err, tc.want, "%s: got %v, want %v", tc.name, err, tc.want)
 	}
-	if _, err := tr.Sample(canceled, 1); !errors.Is(err, context.Canceled) {
-		t.Errorf("Sample with canceled context: got %v", err)
-	}
+	_, err := tr.Sample(canceled, 1)
+	assert.ErrorIs(t, err, context.Canceled, "Sample with canceled context: got %v", err)
 	after, _ := tr.QValues(ctx, nil)
-	if !slices.Equal(before, after) || tr.Step() != 0 {
-		t.Errorf("refused updates changed the trainer (step %d)", tr.Step())
-	}
+	assert.Falsef(t, !slices.Equal(before, after) || tr.Step() != 0, "refused updates changed the trainer (step %d)", tr.Step())
 }
 
 // TestStats: the reported figures follow from the batch, and clipping is
@@ -286,21 +245,12 @@ func TestStats(t *testing.T) {
 	for _, clip := range []float64{1e-9, -1} {
 		tr := newTrainer(t, newPosBackbone(8, 2, 1), policy.Config{PromptLength: 2, Hidden: 8, ClipNorm: clip})
 		st, err := tr.Update(ctx, prompts, rewards)
-		if err != nil {
-			t.Fatal(err)
-		}
-		if st.Step != 1 || st.MeanReward != 1 || st.MaxReward != 4 {
-			t.Errorf("clip %g: step %d, mean %v, max %v; want 1, 1, 4", clip, st.Step, st.MeanReward, st.MaxReward)
-		}
-		if st.Loss != (st.SingleLoss+st.MultiLoss)/2 || !(st.Loss > 0) {
-			t.Errorf("clip %g: loss %v is not the mean of %v and %v", clip, st.Loss, st.SingleLoss, st.MultiLoss)
-		}
+		require.NoError(t, err)
+		assert.Falsef(t, st.Step != 1 || st.MeanReward != 1 || st.MaxReward != 4, "clip %g: step %d, mean %v, max %v; want 1, 1, 4", clip, st.Step, st.MeanReward, st.MaxReward)
+		assert.Falsef(t, st.Loss != (st.SingleLoss+st.MultiLoss)/2 || !(st.Loss > 0), "clip %g: loss %v is not the mean of %v and %v", clip, st.Loss, st.SingleLoss, st.MultiLoss)
 		// Near-uniform over 8 actions: entropy ≈ log 8.
-		if math.Abs(st.Entropy-math.Log(8)) > 1e-3 {
-			t.Errorf("clip %g: entropy %v, want ≈ log 8 = %v", clip, st.Entropy, math.Log(8))
-		}
-		if want := clip > 0; st.Clipped != want || !(st.GradNorm > 0) {
-			t.Errorf("clip %g: clipped %v (grad norm %v), want %v", clip, st.Clipped, st.GradNorm, want)
-		}
+		assert.Falsef(t, math.Abs(st.Entropy-math.Log(8)) > 1e-3, "clip %g: entropy %v, want ≈ log 8 = %v", clip, st.Entropy, math.Log(8))
+		want := clip > 0
+		assert.Falsef(t, st.Clipped != want || !(st.GradNorm > 0), "clip %g: clipped %v (grad norm %v), want %v", clip, st.Clipped, st.GradNorm, want)
 	}
 }

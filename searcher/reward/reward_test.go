@@ -1,9 +1,11 @@
 package reward
 
 import (
-	"errors"
 	"math"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 // near reports whether a and b agree to 1e-9.
@@ -70,22 +72,13 @@ func TestRawReward(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			probs, floored, err := tt.cfg.Probabilities(tt.top, tt.verbs)
-			if err != nil {
-				t.Fatal(err)
-			}
-			if floored != tt.floored {
-				t.Errorf("floored = %d, want %d", floored, tt.floored)
-			}
+			require.NoError(t, err)
+			assert.Equal(t, tt.floored, floored, "floored = %d, want %d", floored, tt.floored)
 			j, err := Judge(probs, tt.truth)
-			if err != nil {
-				t.Fatal(err)
-			}
-			if !near(j.Gap, tt.gap) || j.Correct != tt.correct {
-				t.Errorf("gap, correct = %v, %v; want %v, %v", j.Gap, j.Correct, tt.gap, tt.correct)
-			}
-			if got := tt.cfg.Raw(j); !near(got, tt.reward) {
-				t.Errorf("reward = %v, want %v", got, tt.reward)
-			}
+			require.NoError(t, err)
+			assert.Falsef(t, !near(j.Gap, tt.gap) || j.Correct != tt.correct, "gap, correct = %v, %v; want %v, %v", j.Gap, j.Correct, tt.gap, tt.correct)
+			got := tt.cfg.Raw(j)
+			assert.Truef(t, near(got, tt.reward), "reward = %v, want %v", got, tt.reward)
 		})
 	}
 }
@@ -114,14 +107,10 @@ func TestNormalize(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			got := tt.cfg.Normalize(tt.raw)
-			if len(got) != len(tt.want) {
-				t.Fatalf("got %d rows, want %d", len(got), len(tt.want))
-			}
+			require.Len(t, got, len(tt.want), "got %d rows, want %d", len(got), len(tt.want))
 			for p := range got {
 				for i := range got[p] {
-					if !near(got[p][i], tt.want[p][i]) {
-						t.Errorf("[%d][%d] = %v, want %v", p, i, got[p][i], tt.want[p][i])
-					}
+					assert.Truef(t, near(got[p][i], tt.want[p][i]), "[%d][%d] = %v, want %v", p, i, got[p][i], tt.want[p][i])
 				}
 			}
 		})
@@ -143,28 +132,19 @@ func TestScore(t *testing.T) {
 		{{" happy": ln(0.1), " big": ln(0.3)}, {" happy": ln(0.1), " big": ln(0.3)}},
 	}
 	s, err := Config{}.Score(top, []int{0, 1}, verbs)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	z0, z1 := 95/(95+StdEpsilon), 104/(104+StdEpsilon)
 	wantRaw := [][]float64{{100, -108}, {-90, 100}}
 	wantZ := [][]float64{{z0, -z1}, {-z0, z1}}
 	for p := range wantRaw {
 		for i := range wantRaw[p] {
-			if !near(s.Raw[p][i], wantRaw[p][i]) || !near(s.Rewards[p][i], wantZ[p][i]) {
-				t.Errorf("[%d][%d] raw %v z %v; want %v, %v", p, i, s.Raw[p][i], s.Rewards[p][i], wantRaw[p][i], wantZ[p][i])
-			}
+			assert.Falsef(t, !near(s.Raw[p][i], wantRaw[p][i]) || !near(s.Rewards[p][i], wantZ[p][i]), "[%d][%d] raw %v z %v; want %v, %v", p, i, s.Raw[p][i], s.Rewards[p][i], wantRaw[p][i], wantZ[p][i])
 		}
 	}
-	if want := (z0 - z1) / 2; !near(s.PerPrompt[0], want) {
-		t.Errorf("PerPrompt[0] = %v, want %v", s.PerPrompt[0], want)
-	}
-	if s.Accuracy[0] != 0.5 || s.Accuracy[1] != 0.5 {
-		t.Errorf("accuracy = %v, want [0.5 0.5]", s.Accuracy)
-	}
-	if s.Lookups != 8 || s.Floored != 1 {
-		t.Errorf("lookups, floored = %d, %d; want 8, 1", s.Lookups, s.Floored)
-	}
+	want := (z0 - z1) / 2
+	assert.Truef(t, near(s.PerPrompt[0], want), "PerPrompt[0] = %v, want %v", s.PerPrompt[0], want)
+	assert.Falsef(t, s.Accuracy[0] != 0.5 || s.Accuracy[1] != 0.5, "accuracy = %v, want [0.5 0.5]", s.Accuracy)
+	assert.Falsef(t, s.Lookups != 8 || s.Floored != 1, "lookups, floored = %d, %d; want 8, 1", s.Lookups, s.Floored)
 }
 
 func TestErrors(t *testing.T) {
@@ -186,9 +166,8 @@ func TestErrors(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			if err := tt.run(); !errors.Is(err, tt.want) {
-				t.Errorf("err = %v, want %v", err, tt.want)
-			}
+			err := tt.run()
+			assert.ErrorIs(t, err, tt.want, "err = %v, want %v", err, tt.want)
 		})
 	}
 }

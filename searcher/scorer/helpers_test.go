@@ -4,6 +4,8 @@ import (
 	"net/http/httptest"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 	"github.com/stintlab/stint/searcher/task"
@@ -14,9 +16,7 @@ import (
 func localServer(tb testing.TB) string {
 	tb.Helper()
 	m, err := localmodel.Load(modeltest.Path(tb))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	ts := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	tb.Cleanup(ts.Close)
 	return ts.URL + "/v1"
@@ -27,9 +27,7 @@ func localServer(tb testing.TB) string {
 func exampleTexts(tb testing.TB, n int, prompts ...string) (*task.Task, []string) {
 	tb.Helper()
 	tk, err := task.Parse([]byte(task.ExampleFile), "../../testdata/search", nil)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	var texts []string
 	for _, p := range prompts {
 		for _, ex := range tk.Dev[:n] {
@@ -42,8 +40,6 @@ func exampleTexts(tb testing.TB, n int, prompts ...string) (*task.Task, []string
 func newClient(tb testing.TB, o Options) *Client {
 	tb.Helper()
 	c, err := New(o)
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return c
 }

@@ -5,6 +5,9 @@ import (
 	"math"
 	"testing"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/searcher/reward"
 )
 
@@ -19,34 +22,22 @@ func TestBatchedEqualsOneByOne(t *testing.T) {
 	_, texts := exampleTexts(t, 4, "Note:", "the little tree")
 	ctx := context.Background()
 	batched, err := newClient(t, Options{BaseURL: base, Model: "stories260K", TopLogprobs: 8, BatchSize: 8}).Score(ctx, texts)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	single, err := newClient(t, Options{BaseURL: base, Model: "stories260K", TopLogprobs: 8, BatchSize: 1, Concurrency: 3}).Score(ctx, texts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(batched.Calls) != 1 || len(single.Calls) != len(texts) {
-		t.Fatalf("calls = %d and %d, want 1 and %d", len(batched.Calls), len(single.Calls), len(texts))
-	}
+	require.NoError(t, err)
+	require.Falsef(t, len(batched.Calls) != 1 || len(single.Calls) != len(texts), "calls = %d and %d, want 1 and %d", len(batched.Calls), len(single.Calls), len(texts))
 	for i := range texts {
 		b, s := batched.Top[i], single.Top[i]
-		if len(b) != 8 || len(s) != 8 {
-			t.Fatalf("text %d: %d and %d log-probabilities, want 8", i, len(b), len(s))
-		}
+		require.Falsef(t, len(b) != 8 || len(s) != 8, "text %d: %d and %d log-probabilities, want 8", i, len(b), len(s))
 		for tok, lp := range s {
-			if b[tok] != lp {
-				t.Errorf("text %d token %q: batched %v, single %v", i, tok, b[tok], lp)
-			}
+			assert.Equal(t, lp, b[tok], "text %d token %q: batched %v, single %v", i, tok, b[tok], lp)
 		}
 	}
 	// Usage: one call's prompt_tokens is the sum of the single calls'.
-	if bt, st := Sum(batched.Calls).Usage.PromptTokens, Sum(single.Calls).Usage.PromptTokens; bt != st || bt == 0 {
-		t.Errorf("prompt tokens batched %d, single %d", bt, st)
-	}
-	if got := Sum(batched.Calls).CachedPrompts; got != 0 {
-		t.Errorf("cached prompts without a proxy = %d, want 0", got)
-	}
+	bt, st := Sum(batched.Calls).Usage.PromptTokens, Sum(single.Calls).Usage.PromptTokens
+	assert.Falsef(t, bt != st || bt == 0, "prompt tokens batched %d, single %d", bt, st)
+	got := Sum(batched.Calls).CachedPrompts
+	assert.Equal(t, 0, got, "cached prompts without a proxy = %d, want 0", got)
 }
 
 // With the whole vocabulary asked for, every verbalizer is present and the
@@ -58,26 +49,19 @@ func TestVerbalizersAndFullDistribution(t *testing.T) {
 		t.Run(string(ep), func(t *testing.T) {
 			c := newClient(t, Options{BaseURL: base, Model: "stories260K", Endpoint: ep, TopLogprobs: vocabSize})
 			res, err := c.Score(context.Background(), texts)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			for i, top := range res.Top {
 				var sum float64
 				for _, lp := range top {
 					sum += math.Exp(lp)
 				}
-				if math.Abs(sum-1) > 1e-3 {
-					t.Errorf("text %d: probabilities sum to %v, want 1", i, sum)
-				}
+				assert.Falsef(t, math.Abs(sum-1) > 1e-3, "text %d: probabilities sum to %v, want 1", i, sum)
 				for _, v := range tk.Verbalizers() {
-					if lp, ok := top[v]; !ok || lp >= 0 {
-						t.Errorf("text %d: verbalizer %q log-probability %v, %v", i, v, lp, ok)
-					}
+					lp, ok := top[v]
+					assert.Falsef(t, !ok || lp >= 0, "text %d: verbalizer %q log-probability %v, %v", i, v, lp, ok)
 				}
 			}
-			if ep == Chat && len(res.Calls) != len(texts) {
-				t.Errorf("chat made %d calls for %d texts", len(res.Calls), len(texts))
-			}
+			assert.Falsef(t, ep == Chat && len(res.Calls) != len(texts), "chat made %d calls for %d texts", len(res.Calls), len(texts))
 		})
 	}
 }
@@ -88,30 +72,22 @@ func TestShallowTopKFeedsReward(t *testing.T) {
 	base := localServer(t)
 	tk, texts := exampleTexts(t, 4, "Note:", "the big day")
 	res, err := newClient(t, Options{BaseURL: base, Model: "stories260K", TopLogprobs: 2}).Score(context.Background(), texts)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	top := [][]map[string]float64{res.Top[:4], res.Top[4:]}
 	truth := make([]int, 4)
 	for i, ex := range tk.Dev[:4] {
 		truth[i] = tk.LabelIndex(ex.Label)
 	}
 	step, err := reward.Config{}.Score(top, truth, tk.Verbalizers())
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	missing := 0
 	for _, m := range res.Top {
-		if len(m) != 2 {
-			t.Fatalf("%d log-probabilities, want 2", len(m))
-		}
+		require.Len(t, m, 2, "%d log-probabilities, want 2", len(m))
 		for _, v := range tk.Verbalizers() {
 			if _, ok := m[v]; !ok {
 				missing++
 			}
 		}
 	}
-	if step.Floored != missing || step.Lookups != 16 {
-		t.Errorf("floored %d of %d look-ups, counted %d missing of 16", step.Floored, step.Lookups, missing)
-	}
+	assert.Falsef(t, step.Floored != missing || step.Lookups != 16, "floored %d of %d look-ups, counted %d missing of 16", step.Floored, step.Lookups, missing)
 }

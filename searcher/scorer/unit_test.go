@@ -4,6 +4,8 @@ import (
 	"net/http"
 	"testing"
 	"time"
+
+	"github.com/stretchr/testify/assert"
 )
 
 func TestReadCall(t *testing.T) {
@@ -34,9 +36,8 @@ func TestReadCall(t *testing.T) {
 			for k, v := range tt.headers {
 				h.Set(k, v)
 			}
-			if got := readCall(h, tt.prompts); got != tt.want {
-				t.Errorf("readCall = %+v, want %+v", got, tt.want)
-			}
+			got := readCall(h, tt.prompts)
+			assert.Equal(t, tt.want, got, "readCall = %+v, want %+v", got, tt.want)
 		})
 	}
 }
@@ -50,15 +51,11 @@ func TestSum(t *testing.T) {
 	})
 	// 5 of 11 prompts cached; 70 prompt tokens; $0.75 charged, and the
 	// replayed call's recorded $0.125 on top for the run's cost.
-	if tot.Calls != 4 || tot.Prompts != 11 || tot.CachedPrompts != 5 || tot.Usage.PromptTokens != 70 || tot.Usage.TotalTokens != 78 || tot.CostUSD != 0.75 || tot.RunCostUSD != 0.875 {
-		t.Errorf("Sum = %+v", tot)
-	}
-	if got := tot.CacheShare(); got != 5.0/11 {
-		t.Errorf("CacheShare = %v, want 5/11", got)
-	}
-	if got := (Totals{}).CacheShare(); got != 0 {
-		t.Errorf("empty CacheShare = %v, want 0", got)
-	}
+	assert.Falsef(t, tot.Calls != 4 || tot.Prompts != 11 || tot.CachedPrompts != 5 || tot.Usage.PromptTokens != 70 || tot.Usage.TotalTokens != 78 || tot.CostUSD != 0.75 || tot.RunCostUSD != 0.875, "Sum = %+v", tot)
+	got := tot.CacheShare()
+	assert.Equal(t, 5.0/11, got, "CacheShare = %v, want 5/11", got)
+	got = (Totals{}).CacheShare()
+	assert.Equal(t, 0.0, got, "empty CacheShare = %v, want 0", got)
 }
 
 func TestRetryAfter(t *testing.T) {
@@ -76,9 +73,8 @@ func TestRetryAfter(t *testing.T) {
 		{"-3", 0},
 	}
 	for _, tt := range tests {
-		if got := retryAfter(tt.v, now); got != tt.want {
-			t.Errorf("retryAfter(%q) = %v, want %v", tt.v, got, tt.want)
-		}
+		got := retryAfter(tt.v, now)
+		assert.Equal(t, tt.want, got, "retryAfter(%q) = %v, want %v", tt.v, got, tt.want)
 	}
 }
 
@@ -96,14 +92,12 @@ func TestForecast(t *testing.T) {
 		{"nothing", 0, 30, Price{1, 1}, 0},
 	}
 	for _, tt := range tests {
-		if got := Forecast(tt.texts, tt.tokens, tt.price); !closeTo(got, tt.want) {
-			t.Errorf("%s: Forecast = %v, want %v", tt.name, got, tt.want)
-		}
+		got := Forecast(tt.texts, tt.tokens, tt.price)
+		assert.Truef(t, closeTo(got, tt.want), "%s: Forecast = %v, want %v", tt.name, got, tt.want)
 	}
 	// "Ripe pears." is 11 bytes: at most 12 tokens with BOS.
-	if got := EstimateTokens("Ripe pears."); got != 12 {
-		t.Errorf("EstimateTokens = %d, want 12", got)
-	}
+	got := EstimateTokens("Ripe pears.")
+	assert.Equal(t, 12, got, "EstimateTokens = %d, want 12", got)
 }
 
 func closeTo(a, b float64) bool { d := a - b; return d < 1e-9 && d > -1e-9 }
@@ -119,8 +113,7 @@ func TestNewRefuses(t *testing.T) {
 		{"negative", Options{BaseURL: "http://x/v1", Model: "m", Concurrency: -1}},
 	}
 	for _, tt := range tests {
-		if _, err := New(tt.o); err == nil {
-			t.Errorf("%s: New accepted %+v", tt.name, tt.o)
-		}
+		_, err := New(tt.o)
+		assert.Error(t, err, "%s: New accepted %+v", tt.name, tt.o)
 	}
 }

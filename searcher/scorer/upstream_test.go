@@ -8,6 +8,9 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/upstreamtest"
 )
 
@@ -21,38 +24,25 @@ func TestHeadersSent(t *testing.T) {
 			up.Reset()
 			c := newClient(t, Options{BaseURL: up.URL(), Key: "up-key", Run: "run-7", Model: upstreamtest.ModelSmall, Endpoint: ep, TopLogprobs: 5, BatchSize: 2})
 			res, err := c.Score(context.Background(), barges)
-			if err != nil {
-				t.Fatal(err)
-			}
+			require.NoError(t, err)
 			wantCalls := map[Endpoint]int{Completions: 3, Chat: 5}[ep] // ⌈5/2⌉ batches; one per text
-			if len(res.Calls) != wantCalls || up.Calls().Total() != wantCalls {
-				t.Fatalf("calls = %d (upstream saw %d), want %d", len(res.Calls), up.Calls().Total(), wantCalls)
-			}
+			require.Falsef(t, len(res.Calls) != wantCalls || up.Calls().Total() != wantCalls, "calls = %d (upstream saw %d), want %d", len(res.Calls), up.Calls().Total(), wantCalls)
 			for _, r := range up.Requests() {
-				if got := r.Header.Get(HeaderRun); got != "run-7" {
-					t.Errorf("%s: Stint-Run = %q, want run-7", r.Path, got)
-				}
-				if !strings.Contains(string(r.Body), `"max_tokens":1`) || !strings.Contains(string(r.Body), `"temperature":0`) {
-					t.Errorf("%s: body %s lacks max_tokens 1 or temperature 0", r.Path, r.Body)
-				}
+				got := r.Header.Get(HeaderRun)
+				assert.Equal(t, "run-7", got, "%s: Stint-Run = %q, want run-7", r.Path, got)
+				assert.Falsef(t, !strings.Contains(string(r.Body), `"max_tokens":1`) || !strings.Contains(string(r.Body), `"temperature":0`), "%s: body %s lacks max_tokens 1 or temperature 0", r.Path, r.Body)
 			}
 			// upstreamtest: top_logprobs hold exactly k entries.
 			for i, m := range res.Top {
-				if len(m) != 5 {
-					t.Errorf("text %d: %d log-probabilities, want 5", i, len(m))
-				}
+				assert.Len(t, m, 5, "text %d: %d log-probabilities, want 5", i, len(m))
 			}
-			if Sum(res.Calls).Usage.PromptTokens == 0 {
-				t.Error("usage not read")
-			}
+			assert.False(t, Sum(res.Calls).Usage.PromptTokens == 0, "usage not read")
 		})
 	}
 	// A wrong key is the fake's 401 (invalid_api_key), surfaced as ErrStatus.
 	_, err := newClient(t, Options{BaseURL: up.URL(), Key: "wrong", Model: upstreamtest.ModelSmall}).Score(context.Background(), barges[:1])
 	var ae *APIError
-	if !errors.As(err, &ae) || ae.Status != http.StatusUnauthorized || ae.Code != "invalid_api_key" || !errors.Is(err, ErrStatus) {
-		t.Errorf("wrong key: err = %v", err)
-	}
+	assert.Falsef(t, !errors.As(err, &ae) || ae.Status != http.StatusUnauthorized || ae.Code != "invalid_api_key" || !errors.Is(err, ErrStatus), "wrong key: err = %v", err)
 }
 
 func TestErrorStatuses(t *testing.T) {
@@ -79,19 +69,13 @@ func TestErrorStatuses(t *testing.T) {
 			up.ClearFaults()
 			up.FailNext(1, tt.fault)
 			_, err := newClient(t, Options{BaseURL: up.URL(), Model: upstreamtest.ModelSmall, TopLogprobs: 3}).Score(context.Background(), barges[:2])
-			if err == nil {
-				t.Fatal("no error")
-			}
+			require.Error(t, err, "no error")
 			if tt.want == nil {
 				return // a cut body: any error will do, as long as there is one
 			}
 			var ae *APIError
-			if !errors.Is(err, tt.want) || !errors.As(err, &ae) {
-				t.Fatalf("err = %v, want %v", err, tt.want)
-			}
-			if ae.RetryAfter != tt.retry || !strings.Contains(ae.Message, tt.msg) {
-				t.Errorf("retry %v message %q; want %v, %q", ae.RetryAfter, ae.Message, tt.retry, tt.msg)
-			}
+			require.Falsef(t, !errors.Is(err, tt.want) || !errors.As(err, &ae), "err = %v, want %v", err, tt.want)
+			assert.Falsef(t, ae.RetryAfter != tt.retry || !strings.Contains(ae.Message, tt.msg), "retry %v message %q; want %v, %q", ae.RetryAfter, ae.Message, tt.retry, tt.msg)
 		})
 	}
 }
@@ -100,9 +84,7 @@ func TestAnswerTooLarge(t *testing.T) {
 	up := upstreamtest.New(upstreamtest.Options{})
 	defer up.Close()
 	_, err := newClient(t, Options{BaseURL: up.URL(), Model: upstreamtest.ModelSmall, MaxResponseBytes: 64}).Score(context.Background(), barges[:1])
-	if !errors.Is(err, ErrTooLarge) {
-		t.Errorf("err = %v, want ErrTooLarge", err)
-	}
+	assert.ErrorIs(t, err, ErrTooLarge, "err = %v, want ErrTooLarge", err)
 }
 
 func TestCancel(t *testing.T) {
@@ -119,17 +101,13 @@ func TestCancel(t *testing.T) {
 	}()
 	wait, stop := context.WithTimeout(context.Background(), time.Minute)
 	defer stop()
-	if err := up.AwaitHeld(wait, 2); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(wait, 2))
 	cancel()
-	if err := <-done; !errors.Is(err, context.Canceled) {
-		t.Errorf("err = %v, want context.Canceled", err)
-	}
+	err := <-done
+	assert.ErrorIs(t, err, context.Canceled, "err = %v, want context.Canceled", err)
 	// Two calls were in flight when the context ended, and no more started.
-	if got := up.Calls().Completions; got != 2 {
-		t.Errorf("upstream saw %d calls, want 2", got)
-	}
+	got := up.Calls().Completions
+	assert.Equal(t, 2, got, "upstream saw %d calls, want 2", got)
 }
 
 func TestConcurrencyBound(t *testing.T) {
@@ -144,17 +122,11 @@ func TestConcurrencyBound(t *testing.T) {
 	}()
 	wait, stop := context.WithTimeout(context.Background(), time.Minute)
 	defer stop()
-	if err := up.AwaitHeld(wait, 2); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, up.AwaitHeld(wait, 2))
 	up.Release()
-	if err := <-done; err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, <-done)
 	c.mu.Lock()
 	peak := c.peak
 	c.mu.Unlock()
-	if peak != 2 || up.Calls().Completions != len(barges) {
-		t.Errorf("peak in flight %d (want 2), calls %d (want %d)", peak, up.Calls().Completions, len(barges))
-	}
+	assert.Falsef(t, peak != 2 || up.Calls().Completions != len(barges), "peak in flight %d (want 2), calls %d (want %d)", peak, up.Calls().Completions, len(barges))
 }

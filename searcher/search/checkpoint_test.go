@@ -1,16 +1,17 @@
 package search
 
 import (
-	"errors"
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestReadStateRefuses(t *testing.T) {
 	good := `{"version":3,"task":"orchard","seed":7,"step":3,"random":"AAAA","policy":"AAAA"}`
-	if _, err := ReadState(strings.NewReader(good), "orchard", 7); err != nil {
-		t.Fatalf("good checkpoint: %v", err)
-	}
+	_, err := ReadState(strings.NewReader(good), "orchard", 7)
+	require.NoError(t, err, "good checkpoint")
 	tests := []struct{ name, text string }{
 		{"truncated", good[:len(good)/2]},
 		{"another version", strings.Replace(good, `"version":3`, `"version":2`, 1)},
@@ -23,9 +24,8 @@ func TestReadStateRefuses(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			if _, err := ReadState(strings.NewReader(tt.text), "orchard", 7); !errors.Is(err, ErrCheckpoint) {
-				t.Errorf("ReadState: %v, want ErrCheckpoint", err)
-			}
+			_, err := ReadState(strings.NewReader(tt.text), "orchard", 7)
+			assert.ErrorIs(t, err, ErrCheckpoint, "ReadState: %v, want ErrCheckpoint", err)
 		})
 	}
 }

@@ -7,6 +7,7 @@ import (
 	"testing"
 
 	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/searcher/scorer"
 	"github.com/stintlab/stint/searcher/task"
@@ -14,9 +15,7 @@ import (
 
 func TestPlanForTheExampleTask(t *testing.T) {
 	tk, err := task.Parse([]byte(task.ExampleFile), filepath.Join("..", "..", "testdata", "search"), nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	p := PlanFor(tk, 0)
 	// Hand-worked from the example: 90 steps × 16 prompts × 8 examples =
 	// 11,520 judgements; dev (20 sentences) every 9 steps is 10 × 20 = 200;
@@ -29,15 +28,12 @@ func TestPlanForTheExampleTask(t *testing.T) {
 	assert.Equal(t, Budget{Steps: 11520, Curve: 200, EvalEvery: 9, Choice: 3907}, b)
 	assert.Equal(t, Plan{Search: 15627, Baselines: 31254, Evaluation: 700, TokensPerJudgement: p.TokensPerJudgement}, p)
 	assert.Equal(t, 47581, p.Judgements())
-	if p.TokensPerJudgement <= 0 {
-		t.Errorf("tokens per judgement %d", p.TokensPerJudgement)
-	}
+	assert.Falsef(t, p.TokensPerJudgement <= 0, "tokens per judgement %d", p.TokensPerJudgement)
 	// 47,581 scorings × T tokens at 1 USD per million in, plus one output
 	// token each at 2 USD per million.
 	want := (47581*float64(p.TokensPerJudgement)*1 + 47581*2) / 1e6
-	if got := p.Cost(scorer.Price{InputPerMillion: 1, OutputPerMillion: 2}); got != want {
-		t.Errorf("cost %v, want %v", got, want)
-	}
+	got := p.Cost(scorer.Price{InputPerMillion: 1, OutputPerMillion: 2})
+	assert.Equal(t, want, got, "cost %v, want %v", got, want)
 }
 
 // TestCheckCapRefusals: a search with a spend cap starts only when its
@@ -48,9 +44,7 @@ func TestPlanForTheExampleTask(t *testing.T) {
 // starts either); the amounts are made up to fall either side.
 func TestCheckCapRefusals(t *testing.T) {
 	tk, err := task.Parse([]byte(task.ExampleFile), filepath.Join("..", "..", "testdata", "search"), nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	plan := PlanFor(tk, 0)
 	f := func(x float64) *float64 { return &x }
 	atTask := plan.Cost(scorer.Price{InputPerMillion: 0.5, OutputPerMillion: 1.5}) // the example's prices
@@ -84,22 +78,16 @@ func TestCheckCapRefusals(t *testing.T) {
 				forecast = plan.Cost(p.Price)
 			}
 			note, err := CheckCap(tt.capUSD, forecast, p, tt.overCap)
-			if !errors.Is(err, tt.want) || (tt.want == nil) != (err == nil) {
-				t.Fatalf("CheckCap: %v, want %v", err, tt.want)
-			}
+			require.Falsef(t, !errors.Is(err, tt.want) || (tt.want == nil) != (err == nil), "CheckCap: %v, want %v", err, tt.want)
 			text := note
 			if err != nil {
 				text = err.Error()
 			}
 			for _, m := range tt.mention {
-				if !strings.Contains(text, m) {
-					t.Errorf("%q does not name %q", text, m)
-				}
+				assert.Contains(t, text, m, "%q does not name %q", text, m)
 			}
 			for _, m := range tt.notMention {
-				if strings.Contains(text, m) {
-					t.Errorf("%q names %q, which is set", text, m)
-				}
+				assert.Falsef(t, strings.Contains(text, m), "%q names %q, which is set", text, m)
 			}
 		})
 	}

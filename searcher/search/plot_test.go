@@ -32,23 +32,15 @@ func TestPlotShowsTheBaselinesAndBothPanels(t *testing.T) {
 			{Method: "halving", Prompt: "gate pear", DevAcc: 0.72},
 		}}
 	var b bytes.Buffer
-	if err := WritePlot(&b, r, SVG); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, WritePlot(&b, r, SVG))
 	svg := html.UnescapeString(b.String())
 	want := []string{"orchard: prompt search (seed 3)", "dev accuracy: the search's greedy prompt and the baselines", "rl search (greedy prompt)",
 		`empty ""`, `manual "Pick the fruit."`, `manual "Orchard"`, `random "crate gate"`, `best-of-n "crate pear"`, `halving "gate pear"`, `rl (chosen) "ripe pears"`}
 	for _, w := range want {
-		if !strings.Contains(svg, w) {
-			t.Errorf("the SVG lacks %q", w)
-		}
+		assert.Contains(t, svg, w, "the SVG lacks %q", w)
 	}
-	if strings.Contains(svg, "ripe apples") {
-		t.Error("the SVG shows rl-greedy, which has no line of its own (the curve is the greedy prompt's)")
-	}
-	if !strings.Contains(b.String(), "<svg") {
-		t.Errorf("not an SVG document: %.80s", b.String())
-	}
+	assert.False(t, strings.Contains(svg, "ripe apples"), "the SVG shows rl-greedy, which has no line of its own (the curve is the greedy prompt's)")
+	assert.Contains(t, b.String(), "<svg", "not an SVG document: %.80s", b.String())
 }
 
 // TestEveryLineHasItsOwnLook: the first eight lines of the learning curve
@@ -74,9 +66,8 @@ func TestEveryLineHasItsOwnLook(t *testing.T) {
 	for i := range 64 {
 		st := styleOf(i)
 		k := fmt.Sprint(st.Color, st.Dashes)
-		if j, ok := seen[k]; ok {
-			t.Errorf("lines %d and %d share colour and dash", j, i)
-		}
+		j, ok := seen[k]
+		assert.Falsef(t, ok, "lines %d and %d share colour and dash", j, i)
 		seen[k] = i
 	}
 

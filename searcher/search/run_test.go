@@ -26,9 +26,7 @@ type rig struct {
 func newRig(t *testing.T) rig {
 	t.Helper()
 	m, err := localmodel.Load(modeltest.Path(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	srv := httptest.NewServer(localmodel.NewHandler(m, localmodel.HandlerOptions{}))
 	t.Cleanup(srv.Close)
 	return rig{model: m, api: srv.URL + "/v1"}

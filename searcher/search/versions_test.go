@@ -6,8 +6,10 @@ import (
 	"io"
 	"path/filepath"
 	"runtime"
-	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
@@ -50,9 +52,7 @@ func TestSettingsRecordTheLearnerInForce(t *testing.T) {
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			s := settingsOf(tk, 90, tt.pol)
-			if s.LearningRate != tt.lr || s.TopK != tt.topK || s.TargetRate != tt.rate || s.Actions != 90 {
-				t.Errorf("settings %+v, want learning rate %v, top-k %d, target rate %v", s, tt.lr, tt.topK, tt.rate)
-			}
+			assert.Falsef(t, s.LearningRate != tt.lr || s.TopK != tt.topK || s.TargetRate != tt.rate || s.Actions != 90, "settings %+v, want learning rate %v, top-k %d, target rate %v", s, tt.lr, tt.topK, tt.rate)
 		})
 	}
 	var _ configured = (*policy.Trainer)(nil) // the real learner reports its settings
@@ -64,27 +64,16 @@ func TestSettingsRecordTheLearnerInForce(t *testing.T) {
 // shared models folder's MODEL-SOURCE.md (and localmodel.ModelSHA256).
 func TestVersionsNameTheBuildAndTheBackbone(t *testing.T) {
 	b, err := IdentifyBackbone(modeltest.Path(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	want := Backbone{File: "stories260K.gguf", Bytes: 1185376, SHA256: localmodel.ModelSHA256}
-	if b != want {
-		t.Errorf("backbone %+v, want %+v", b, want)
-	}
+	assert.Equal(t, want, b, "backbone %+v, want %+v", b, want)
 	v := versions(b)
-	if v.Go != runtime.Version() || v.Backbone != want || v.Format != resultsFormat || v.Stint == "" {
-		t.Errorf("versions %+v, want Go %s and the backbone", v, runtime.Version())
-	}
+	assert.Falsef(t, v.Go != runtime.Version() || v.Backbone != want || v.Format != resultsFormat || v.Stint == "", "versions %+v, want Go %s and the backbone", v, runtime.Version())
 	var out bytes.Buffer
-	if err := WriteResults(&out, Results{Versions: v}); err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, WriteResults(&out, Results{Versions: v}))
 	for _, key := range []string{`"go": "` + runtime.Version() + `"`, `"sha256": "` + want.SHA256 + `"`, `"bytes": 1185376`, `"file": "stories260K.gguf"`} {
-		if !strings.Contains(out.String(), key) {
-			t.Errorf("results.json lacks %s:\n%s", key, out.String())
-		}
+		assert.Contains(t, out.String(), key, "results.json lacks %s:\n%s", key, out.String())
 	}
-	if _, err := IdentifyBackbone(filepath.Join(t.TempDir(), "absent.gguf")); err == nil {
-		t.Error("identified a missing file")
-	}
+	_, err = IdentifyBackbone(filepath.Join(t.TempDir(), "absent.gguf"))
+	assert.Error(t, err, "identified a missing file")
 }

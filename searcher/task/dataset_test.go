@@ -3,6 +3,9 @@ package task
 import (
 	"strings"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 )
 
 func TestReadJSONL(t *testing.T) {
@@ -49,20 +52,12 @@ func TestReadCSV(t *testing.T) {
 func check(t *testing.T, got []Example, err error, want []Example, wantErr string) {
 	t.Helper()
 	if wantErr != "" {
-		if err == nil || !strings.Contains(err.Error(), wantErr) {
-			t.Fatalf("err = %v, want one containing %q", err, wantErr)
-		}
+		require.Falsef(t, err == nil || !strings.Contains(err.Error(), wantErr), "err = %v, want one containing %q", err, wantErr)
 		return
 	}
-	if err != nil {
-		t.Fatal(err)
-	}
-	if len(got) != len(want) {
-		t.Fatalf("got %q, want %q", got, want)
-	}
+	require.NoError(t, err)
+	require.Len(t, got, len(want), "got %q, want %q", got, want)
 	for i := range got {
-		if got[i] != want[i] {
-			t.Errorf("row %d = %q, want %q", i, got[i], want[i])
-		}
+		assert.Equal(t, want[i], got[i], "row %d = %q, want %q", i, got[i], want[i])
 	}
 }

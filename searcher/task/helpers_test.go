@@ -5,6 +5,8 @@ import (
 	"path/filepath"
 	"testing"
 
+	"github.com/stretchr/testify/require"
+
 	"github.com/stintlab/stint/proxy/localmodel"
 	"github.com/stintlab/stint/proxy/localmodel/modeltest"
 )
@@ -13,9 +15,7 @@ import (
 func localTokenizer(tb testing.TB) LocalTokenizer {
 	tb.Helper()
 	m, err := localmodel.Load(modeltest.Path(tb))
-	if err != nil {
-		tb.Fatal(err)
-	}
+	require.NoError(tb, err)
 	return NewLocalTokenizer(m.Tokenizer())
 }
 
@@ -24,9 +24,7 @@ func writeFiles(tb testing.TB, files map[string]string) string {
 	tb.Helper()
 	dir := tb.TempDir()
 	for name, content := range files {
-		if err := os.WriteFile(filepath.Join(dir, name), []byte(content), 0o644); err != nil {
-			tb.Fatal(err)
-		}
+		require.NoError(tb, os.WriteFile(filepath.Join(dir, name), []byte(content), 0o644))
 	}
 	return dir
 }

@@ -68,9 +68,8 @@ func TestTaskSuite(t *testing.T) {
 				count := map[string]int{}
 				for _, e := range set {
 					count[e.Label]++
-					if where, ok := seen[e.Text]; ok {
-						t.Errorf("%q is in %s and %s", e.Text, where, split)
-					}
+					where, ok := seen[e.Text]
+					assert.Falsef(t, ok, "%q is in %s and %s", e.Text, where, split)
 					seen[e.Text] = split
 				}
 				for _, l := range tk.Labels {

@@ -7,48 +7,30 @@ import (
 	"testing"
 
 	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
 
 	"github.com/stintlab/stint/searcher/reward"
 )
 
 func TestExampleFileParses(t *testing.T) {
 	task, err := Parse([]byte(ExampleFile), searchTestdata, localTokenizer(t))
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	// Sizes of testdata/search/reading-corner-{train,dev,test}.jsonl.
-	if len(task.Train) != 40 || len(task.Dev) != 20 || len(task.Test) != 40 {
-		t.Errorf("sizes = %d/%d/%d, want 40/20/40", len(task.Train), len(task.Dev), len(task.Test))
-	}
+	assert.Falsef(t, len(task.Train) != 40 || len(task.Dev) != 20 || len(task.Test) != 40, "sizes = %d/%d/%d, want 40/20/40", len(task.Train), len(task.Dev), len(task.Test))
 	want := []Label{{"lily", " Lily"}, {"tim", " Tim"}}
-	if len(task.Labels) != 2 || task.Labels[0] != want[0] || task.Labels[1] != want[1] {
-		t.Errorf("labels = %q, want %q (file order)", task.Labels, want)
-	}
-	if task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 5 {
-		t.Errorf("endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
-	}
+	assert.Falsef(t, len(task.Labels) != 2 || task.Labels[0] != want[0] || task.Labels[1] != want[1], "labels = %q, want %q (file order)", task.Labels, want)
+	assert.Falsef(t, task.Endpoint != Completions || task.Model != "stories260K" || task.Seed != 7 || task.SpendCapUSD != 5, "endpoint, model, seed, cap = %q, %q, %d, %v", task.Endpoint, task.Model, task.Seed, task.SpendCapUSD)
 	assert.Equal(t, reward.Config{Kind: reward.KindMargin, Margin: 0.5}, task.Reward, "reward")
 	assert.True(t, task.AutoFactor, "auto factor")
 	assert.Equal(t, ChooseSettings{Share: 0.25, Candidates: 64}, task.Choose, "choose")
 	assert.Equal(t, BaselineSettings{Run: []string{BestOfN, Halving}, HalvingFirst: 4}, task.Baselines, "baselines")
-	if !task.AllowList.WordInitial || task.AllowList.MinChars != 2 || len(task.ManualPrompts) != 2 {
-		t.Errorf("allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
-	}
-	if task.Prices == nil || *task.Prices != (Prices{InputPerMillion: 0.5, OutputPerMillion: 1.5}) {
-		t.Errorf("prices = %+v, want the example's 0.50 / 1.50 USD per million", task.Prices)
-	}
-	if want := (PolicySettings{LearningRate: 0.003, TopK: 256, TargetRate: 0.001}); task.Policy != want {
-		t.Errorf("policy = %+v, want %+v", task.Policy, want)
-	}
-	if got, want := task.Fill("She hugged her doll.", "Story:"), "She hugged her doll. Story: The name was"; got != want {
-		t.Errorf("Fill = %q, want %q", got, want)
-	}
-	if got := task.Verbalizers(); len(got) != 2 || got[1] != " Tim" {
-		t.Errorf("Verbalizers = %q", got)
-	}
-	if task.LabelIndex("tim") != 1 || task.LabelIndex("tom") != -1 {
-		t.Error("LabelIndex: wrong index")
-	}
+	assert.Falsef(t, !task.AllowList.WordInitial || task.AllowList.MinChars != 2 || len(task.ManualPrompts) != 2, "allow list %+v, manual prompts %q", task.AllowList, task.ManualPrompts)
+	assert.Falsef(t, task.Prices == nil || *task.Prices != (Prices{InputPerMillion: 0.5, OutputPerMillion: 1.5}), "prices = %+v, want the example's 0.50 / 1.50 USD per million", task.Prices)
+	assert.Equal(t, PolicySettings{LearningRate: 0.003, TopK: 256, TargetRate: 0.001}, task.Policy, "policy")
+	assert.Equal(t, "She hugged her doll. Story: The name was", task.Fill("She hugged her doll.", "Story:"), "Fill")
+	verbs := task.Verbalizers()
+	assert.Falsef(t, len(verbs) != 2 || verbs[1] != " Tim", "Verbalizers = %q", verbs)
+	assert.False(t, task.LabelIndex("tim") != 1 || task.LabelIndex("tom") != -1, "LabelIndex: wrong index")
 }
 
 // minimal is the smallest valid task file over the files of minimalData.
@@ -73,39 +55,26 @@ var minimalData = map[string]string{
 
 func TestDefaults(t *testing.T) {
 	task, err := Parse([]byte(minimal), writeFiles(t, minimalData), nil)
-	if err != nil {
-		t.Fatal(err)
-	}
+	require.NoError(t, err)
 	got := []int{task.PromptLength, task.Steps, task.PromptsPerStep, task.ExamplesPerStep, task.Concurrency, task.TopLogprobs}
 	want := []int{DefaultPromptLength, DefaultSteps, DefaultPromptsPerStep, DefaultExamplesPerStep, DefaultConcurrency, DefaultTopLogprobs}
 	for i := range got {
-		if got[i] != want[i] {
-			t.Errorf("default %d = %d, want %d", i, got[i], want[i])
-		}
+		assert.Equal(t, want[i], got[i], "default %d = %d, want %d", i, got[i], want[i])
 	}
-	if task.Prices != nil {
-		t.Errorf("prices = %+v, want nil when the file has none", task.Prices)
-	}
-	if task.Endpoint != Completions || task.Test != nil || len(task.Train) != 2 {
-		t.Errorf("endpoint %q, test %v, train %d", task.Endpoint, task.Test, len(task.Train))
-	}
+	assert.Falsef(t, task.Prices != nil, "prices = %+v, want nil when the file has none", task.Prices)
+	assert.Falsef(t, task.Endpoint != Completions || task.Test != nil || len(task.Train) != 2, "endpoint %q, test %v, train %d", task.Endpoint, task.Test, len(task.Train))
 	// No policy section: the task's learning rate, the policy's own top-k
 	// and target rate (zero); no reward scale: the automatic factor.
-	if want := (PolicySettings{LearningRate: DefaultLearningRate}); task.Policy != want || !task.AutoFactor || task.AllowList.MinChars != 0 {
-		t.Errorf("policy %+v, auto factor %v, min chars %d", task.Policy, task.AutoFactor, task.AllowList.MinChars)
-	}
+	assert.Falsef(t, task.Policy != (PolicySettings{LearningRate: DefaultLearningRate}) || !task.AutoFactor || task.AllowList.MinChars != 0, "policy %+v, auto factor %v, min chars %d", task.Policy, task.AutoFactor, task.AllowList.MinChars)
 }
 
 func TestCSVData(t *testing.T) {
 	src := strings.Replace(minimal, "  train: train.jsonl\n", "  train: notes.csv\n  text_field: note\n  label_field: kind\n", 1)
 	src = strings.Replace(src, "  dev: dev.jsonl\n", "  dev: notes.csv\n", 1)
 	task, err := Parse([]byte(src), writeFiles(t, minimalData), nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	if want := (Example{"We picked plums, lots.", "harvest"}); len(task.Train) != 2 || task.Train[0] != want {
-		t.Errorf("train = %q, want first %q", task.Train, want)
-	}
+	require.NoError(t, err)
+	want := (Example{"We picked plums, lots.", "harvest"})
+	assert.Falsef(t, len(task.Train) != 2 || task.Train[0] != want, "train = %q, want first %q", task.Train, want)
 }
 
 func TestParseErrors(t *testing.T) {
@@ -190,19 +159,11 @@ func TestParseErrors(t *testing.T) {
 				tk = tok
 			}
 			_, err := Parse([]byte(tt.edit(minimal)), dir, tk)
-			if !errors.Is(err, tt.want) {
-				t.Fatalf("err = %v, want %v", err, tt.want)
-			}
+			require.ErrorIs(t, err, tt.want, "err = %v, want %v", err, tt.want)
 			var fe *FieldError
-			if !errors.As(err, &fe) {
-				t.Fatalf("err = %v, want a *FieldError", err)
-			}
-			if fe.Field != tt.field || fe.Line != tt.line {
-				t.Errorf("at %s line %d, want %s line %d (%v)", fe.Field, fe.Line, tt.field, tt.line, err)
-			}
-			if tt.line > 0 && !strings.Contains(err.Error(), "line ") {
-				t.Errorf("message %q does not name the line", err)
-			}
+			require.Truef(t, errors.As(err, &fe), "err = %v, want a *FieldError", err)
+			assert.Falsef(t, fe.Field != tt.field || fe.Line != tt.line, "at %s line %d, want %s line %d (%v)", fe.Field, fe.Line, tt.field, tt.line, err)
+			assert.Falsef(t, tt.line > 0 && !strings.Contains(err.Error(), "line "), "message %q does not name the line", err)
 		})
 	}
 }
@@ -211,9 +172,7 @@ func TestSeveralErrorsJoined(t *testing.T) {
 	src := strings.Replace(minimal, "name: t\n", "", 1) + "prompt_length: 0\n"
 	_, err := Parse([]byte(src), writeFiles(t, minimalData), nil)
 	for _, want := range []string{"name:", "prompt_length:"} {
-		if err == nil || !strings.Contains(err.Error(), want) {
-			t.Errorf("err = %v, want it to mention %q", err, want)
-		}
+		assert.Falsef(t, err == nil || !strings.Contains(err.Error(), want), "err = %v, want it to mention %q", err, want)
 	}
 }
 

@@ -3,6 +3,8 @@ package task
 import (
 	"slices"
 	"testing"
+
+	"github.com/stretchr/testify/assert"
 )
 
 // Check values are pieces of the stories260K vocabulary stored in the GGUF
@@ -22,20 +24,15 @@ func TestLocalTokenizer(t *testing.T) {
 	}
 	for _, tt := range tests {
 		got := tok.Tokens(tt.text)
-		if !slices.Equal(got, tt.want) {
-			t.Errorf("Tokens(%q) = %q, want %q", tt.text, got, tt.want)
-		}
+		assert.Truef(t, slices.Equal(got, tt.want), "Tokens(%q) = %q, want %q", tt.text, got, tt.want)
 	}
 	// Multi-token and space-less texts: more than one token, or one token
 	// that is not the text itself; either way, joined they give the text back.
 	for _, text := range []string{" harvest", "big", " repair it", "happy"} {
 		got := tok.Tokens(text)
-		if len(got) == 1 && got[0] == text {
-			t.Errorf("Tokens(%q) = %q, want it not to be one token", text, got)
-		}
-		if joined := join(got); joined != text {
-			t.Errorf("Tokens(%q) joins to %q", text, joined)
-		}
+		assert.Falsef(t, len(got) == 1 && got[0] == text, "Tokens(%q) = %q, want it not to be one token", text, got)
+		joined := join(got)
+		assert.Equal(t, text, joined, "Tokens(%q) joins to %q", text, joined)
 	}
 }
 
@@ -72,9 +69,8 @@ func TestAllowList(t *testing.T) {
 		{AllowList{MinChars: 3}, " é", false},
 	}
 	for _, tt := range tests {
-		if got := tt.list.Allowed(tt.token); got != tt.want {
-			t.Errorf("%+v.Allowed(%q) = %v, want %v", tt.list, tt.token, got, tt.want)
-		}
+		got := tt.list.Allowed(tt.token)
+		assert.Equal(t, tt.want, got, "%+v.Allowed(%q) = %v, want %v", tt.list, tt.token, got, tt.want)
 	}
 }
 
@@ -85,8 +81,7 @@ func TestFill(t *testing.T) {
 		{"{input}|{input} {prompt}", "x", "", "x|x "},
 	}
 	for _, tt := range tests {
-		if got := Fill(tt.template, tt.input, tt.prompt); got != tt.want {
-			t.Errorf("Fill(%q, %q, %q) = %q, want %q", tt.template, tt.input, tt.prompt, got, tt.want)
-		}
+		got := Fill(tt.template, tt.input, tt.prompt)
+		assert.Equal(t, tt.want, got, "Fill(%q, %q, %q) = %q, want %q", tt.template, tt.input, tt.prompt, got, tt.want)
 	}
 }
