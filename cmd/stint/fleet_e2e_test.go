@@ -9,9 +9,12 @@ import (
 	"io"
 	"net/http"
 	"net/http/httptest"
+	"net/http/httputil"
+	"net/url"
 	"os"
 	"strconv"
 	"strings"
+	"sync"
 	"syscall"
 	"testing"
 	"time"
@@ -43,6 +46,75 @@ type fleet struct {
 	client   *http.Client // bounded: a stopped sidecar never answers
 	// proxyChild is the proxy's process.
 	proxyChild *child
+	// gate stands between the sidecars and the proxy (proxy is its
+	// address), so a test can hold a search at a step it has seen.
+	gate *callGate
+}
+
+// callGate passes scoring calls on to the proxy. While it is shut, each
+// call waits for a pass the test hands out (or for its client to go away),
+// so a search stops between two calls until the test lets it go on: "in
+// the middle of a search" is a state the test holds, not a moment it
+// hopes to catch.
+type callGate struct {
+	mu     sync.Mutex
+	opened chan struct{} // closed while the gate is open
+	passes chan struct{}
+}
+
+func newCallGate() *callGate {
+	g := &callGate{opened: make(chan struct{}), passes: make(chan struct{})}
+	close(g.opened)
+	return g
+}
+
+// wrap makes next wait at the gate.
+func (g *callGate) wrap(next http.Handler) http.Handler {
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		g.mu.Lock()
+		opened := g.opened
+		g.mu.Unlock()
+		select {
+		case <-opened:
+		case <-g.passes:
+		case <-r.Context().Done():
+			return
+		}
+		next.ServeHTTP(w, r)
+	})
+}
+
+// shut makes every call from now on wait for a pass.
+func (g *callGate) shut() {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	select {
+	case <-g.opened:
+		g.opened = make(chan struct{})
+	default:
+	}
+}
+
+// open lets every call through, the waiting ones included.
+func (g *callGate) open() {
+	g.mu.Lock()
+	defer g.mu.Unlock()
+	select {
+	case <-g.opened:
+	default:
+		close(g.opened)
+	}
+}
+
+// pass lets one waiting call through, if one comes within wait, and
+// says whether one did.
+func (g *callGate) pass(wait time.Duration) bool {
+	select {
+	case g.passes <- struct{}{}:
+		return true
+	case <-time.After(wait):
+		return false
+	}
 }
 
 // fleetTask is the demo task cut to a few small steps, so a search runs
@@ -62,8 +134,59 @@ func newFleet(t *testing.T, addrs []string, rdb redis.UniversalClient, steps int
 		quoted[i] = strconv.Quote(a)
 	}
 	cfg := writeConfig(t, fmt.Sprintf("store:\n  redis:\n    addrs: [%s]\n    timeout: 300ms\n    prefix: fleettest\n", strings.Join(quoted, ", ")))
-	return &fleet{t: t, proxy: "http://" + p.addr + "/v1", config: cfg, task: fleetTask(t, steps), rdb: rdb, sidecars: map[string]*child{},
-		client: &http.Client{Timeout: 5 * time.Second}, proxyChild: p}
+	target, err := url.Parse("http://" + p.addr)
+	require.NoError(t, err)
+	gate := newCallGate()
+	front := httptest.NewServer(gate.wrap(httputil.NewSingleHostReverseProxy(target)))
+	t.Cleanup(front.Close)
+	t.Cleanup(gate.open) // first: no call left waiting when the front closes
+	return &fleet{t: t, proxy: front.URL + "/v1", config: cfg, task: fleetTask(t, steps), rdb: rdb, sidecars: map[string]*child{},
+		client: &http.Client{Timeout: 5 * time.Second}, proxyChild: p, gate: gate}
+}
+
+// hold shuts the gate before the proxy: searches go on only by the passes
+// awaitHeld hands out.
+func (f *fleet) hold() { f.gate.shut() }
+
+// release opens the gate again.
+func (f *fleet) release() { f.gate.open() }
+
+// awaitHeld hands out one scoring call at a time until the fleet's jobs
+// satisfy cond, and returns them; with the gate shut nothing moves on
+// after that until release.
+func (f *fleet) awaitHeld(what string, cond func([]jobs.Status) bool) []jobs.Status {
+	f.t.Helper()
+	deadline := time.Now().Add(5 * time.Minute)
+	for {
+		l := f.list()
+		if l != nil && cond(l) {
+			return l
+		}
+		if time.Now().After(deadline) {
+			f.t.Fatalf("never %s: %+v", what, l)
+		}
+		if !f.gate.pass(50 * time.Millisecond) {
+			continue
+		}
+		// One call more: wait until a status shows it (statuses are
+		// stored on the heartbeat), so the jobs never run ahead of what
+		// cond has seen by more than a call or two.
+		calls := callsOf(l)
+		for seen := time.Now(); time.Since(seen) < 3*time.Second; time.Sleep(50 * time.Millisecond) {
+			if now := f.list(); now != nil && callsOf(now) > calls {
+				break
+			}
+		}
+	}
+}
+
+// callsOf is the scoring calls the jobs' statuses count.
+func callsOf(l []jobs.Status) int {
+	n := 0
+	for _, s := range l {
+		n += s.Calls
+	}
+	return n
 }
 
 // start runs sidecar name; extra flags override the test's.
@@ -249,13 +372,14 @@ func TestFleetResumesAKilledSidecarsSearch(t *testing.T) {
 			for i := range 3 {
 				f.start("sidecar-" + strconv.Itoa(i))
 			}
+			f.hold()
 			for range 6 {
 				f.submit()
 			}
 			// SIGKILL the sidecar of a job past its second step (with a
 			// checkpoint every step) and before its end.
 			var victim jobs.Status
-			f.await("a job in the middle", func(l []jobs.Status) bool {
+			f.awaitHeld("a job in the middle", func(l []jobs.Status) bool {
 				for _, s := range l {
 					if s.State == jobs.Running && s.Step >= 2 && s.Step < s.Steps-2 {
 						victim = s
@@ -268,6 +392,7 @@ func TestFleetResumesAKilledSidecarsSearch(t *testing.T) {
 			require.NotNil(t, killed, "job %s runs on %q", victim.ID, victim.Sidecar)
 			require.NoError(t, killed.cmd.Process.Signal(syscall.SIGKILL))
 			<-killed.exited
+			f.release()
 			died := time.Now()
 			f.await("the killed sidecar's job taken over", func(l []jobs.Status) bool {
 				for _, s := range l {
@@ -330,14 +455,16 @@ func TestFleetFencesAPausedSidecar(t *testing.T) {
 func testFencesAPausedSidecar(t *testing.T, f *fleet) {
 	f.start("sidecar-a")
 	f.start("sidecar-b")
+	f.hold()
 	job := f.submit()
 	var owner jobs.Status
-	f.await("the job in the middle", func(l []jobs.Status) bool {
+	f.awaitHeld("the job in the middle", func(l []jobs.Status) bool {
 		owner = l[0]
 		return owner.State == jobs.Running && owner.Step >= 2 && owner.Step < owner.Steps-3
 	})
 	paused := f.sidecars[owner.Sidecar]
 	require.NoError(t, paused.cmd.Process.Signal(syscall.SIGSTOP))
+	f.release()
 	f.await("the job taken over", func(l []jobs.Status) bool {
 		return l[0].Attempts > owner.Attempts && l[0].Sidecar != owner.Sidecar
 	})
@@ -364,9 +491,10 @@ func TestFleetCancelReachesTheRunningSidecar(t *testing.T) {
 	f := newFleet(t, []string{rs.Addr}, rs.Client(t), 40)
 	f.start("sidecar-a")
 	f.start("sidecar-b")
+	f.hold()
 	job := f.submit()
 	var owner jobs.Status
-	f.await("the job running", func(l []jobs.Status) bool {
+	f.awaitHeld("the job running", func(l []jobs.Status) bool {
 		owner = l[0]
 		return owner.State == jobs.Running && owner.Step >= 1
 	})
@@ -375,6 +503,7 @@ func TestFleetCancelReachesTheRunningSidecar(t *testing.T) {
 		other = "sidecar-b"
 	}
 	resp, err := f.client.Post("http://"+f.sidecars[other].addr+"/jobs/"+job.ID+"/cancel", "application/json", nil)
+	f.release()
 	require.NoError(t, err)
 	resp.Body.Close()
 	require.Equal(t, http.StatusOK, resp.StatusCode)
@@ -402,10 +531,11 @@ func TestFleetRidesOutARedisRestart(t *testing.T) {
 	f := newFleet(t, []string{rs.Addr}, rdb, 6)
 	f.start("sidecar-a")
 	f.start("sidecar-b")
+	f.hold()
 	for range 3 {
 		f.submit()
 	}
-	f.await("a job running", func(l []jobs.Status) bool {
+	f.awaitHeld("a job running", func(l []jobs.Status) bool {
 		for _, s := range l {
 			if s.State == jobs.Running && s.Step >= 1 {
 				return true
@@ -413,6 +543,7 @@ func TestFleetRidesOutARedisRestart(t *testing.T) {
 		}
 		return false
 	})
+	f.release() // the jobs go on as Redis goes away and comes back
 	// SHUTDOWN SAVE writes the data set and exits, as a restart does.
 	_ = rdb.ShutdownSave(context.Background()).Err()
 	rs.Stop()
@@ -516,15 +647,17 @@ func TestFleetHandsBackOnShutdown(t *testing.T) {
 	f := newFleet(t, []string{rs.Addr}, rs.Client(t), 40)
 	f.start("sidecar-a", "--lease", "1m")
 	f.start("sidecar-b", "--lease", "1m")
+	f.hold()
 	job := f.submit()
 	var owner jobs.Status
-	f.await("the job in the middle", func(l []jobs.Status) bool {
+	f.awaitHeld("the job in the middle", func(l []jobs.Status) bool {
 		owner = l[0]
 		return owner.State == jobs.Running && owner.Step >= 2 && owner.Step < owner.Steps-15
 	})
 	stopped := f.sidecars[owner.Sidecar]
 	require.NoError(t, stopped.cmd.Process.Signal(syscall.SIGTERM))
 	<-stopped.exited
+	f.release()
 	assert.Contains(t, stopped.output(), "job="+job.ID+" handed back to the queue")
 	l := f.await("the job ended", allEnded)
 	assert.NotEqual(t, owner.Sidecar, l[0].Sidecar)
