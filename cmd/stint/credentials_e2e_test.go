@@ -371,8 +371,11 @@ admin:
 	// do sends one request and adds its answer to the evidence.
 	do := func(t *testing.T, name, method, path, auth, body string, header ...string) (int, http.Header, []byte) {
 		t.Helper()
+		// assert, not require: the coalesced calls run do off the test's goroutine.
 		req, err := http.NewRequest(method, base+path, strings.NewReader(body))
-		require.NoError(t, err)
+		if !assert.NoError(t, err, name) {
+			return 0, nil, nil
+		}
 		if auth != "" {
 			req.Header.Set("Authorization", auth)
 		}
@@ -383,7 +386,9 @@ admin:
 			req.Header.Set(header[i], header[i+1])
 		}
 		resp, err := http.DefaultClient.Do(req)
-		require.NoError(t, err, name)
+		if !assert.NoError(t, err, name) {
+			return 0, nil, nil
+		}
 		b, err := io.ReadAll(resp.Body) // an answer cut short counts as far as it came
 		resp.Body.Close()
 		ev.addResponse("answer to "+name, resp, b)
