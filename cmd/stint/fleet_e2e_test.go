@@ -156,17 +156,9 @@ func (f *fleet) release() { f.gate.open() }
 // after that until release.
 func (f *fleet) awaitHeld(what string, cond func([]jobs.Status) bool) []jobs.Status {
 	f.t.Helper()
-	deadline := time.Now().Add(5 * time.Minute)
-	for {
-		l := f.list()
-		if l != nil && cond(l) {
-			return l
-		}
-		if time.Now().After(deadline) {
-			f.t.Fatalf("never %s: %+v", what, l)
-		}
+	return f.poll(what, cond, func(l []jobs.Status) {
 		if !f.gate.pass(50 * time.Millisecond) {
-			continue
+			return
 		}
 		// One call more: wait until a status shows it (statuses are
 		// stored on the heartbeat), so the jobs never run ahead of what
@@ -174,10 +166,10 @@ func (f *fleet) awaitHeld(what string, cond func([]jobs.Status) bool) []jobs.Sta
 		calls := callsOf(l)
 		for seen := time.Now(); time.Since(seen) < 3*time.Second; time.Sleep(50 * time.Millisecond) {
 			if now := f.list(); now != nil && callsOf(now) > calls {
-				break
+				return
 			}
 		}
-	}
+	})
 }
 
 // callsOf is the scoring calls the jobs' statuses count.
@@ -277,6 +269,13 @@ func (f *fleet) list() []jobs.Status {
 // await polls the job list (bounded) until cond holds of it.
 func (f *fleet) await(what string, cond func([]jobs.Status) bool) []jobs.Status {
 	f.t.Helper()
+	return f.poll(what, cond, func([]jobs.Status) { time.Sleep(50 * time.Millisecond) })
+}
+
+// poll lists the fleet's jobs until cond holds of them (for at most five
+// minutes), doing between after every list that does not satisfy it.
+func (f *fleet) poll(what string, cond func([]jobs.Status) bool, between func([]jobs.Status)) []jobs.Status {
+	f.t.Helper()
 	deadline := time.Now().Add(5 * time.Minute)
 	for {
 		l := f.list()
@@ -286,7 +285,7 @@ func (f *fleet) await(what string, cond func([]jobs.Status) bool) []jobs.Status 
 		if time.Now().After(deadline) {
 			f.t.Fatalf("never %s: %+v", what, l)
 		}
-		time.Sleep(50 * time.Millisecond)
+		between(l)
 	}
 }
 
