@@ -38,10 +38,10 @@ func TestPlanForTheExampleTask(t *testing.T) {
 
 // TestCheckCapRefusals: a search with a spend cap starts only when its
 // forecast is priced and under the cap, or when told to (--over-cap), and
-// a refusal names what to change. The cases are the decision table of the
-// issue that asked for the refusal (a cap with no price is refused, a
-// priced forecast under the cap runs, one over is refused, --over-cap
-// starts either); the amounts are made up to fall either side.
+// a refusal names what to change. The cases are the whole decision table
+// (a cap with no price is refused, a priced forecast under the cap runs,
+// one over is refused, --over-cap starts either); the amounts are made up
+// to fall either side.
 func TestCheckCapRefusals(t *testing.T) {
 	tk, err := task.Parse([]byte(task.ExampleFile), filepath.Join("..", "..", "testdata", "search"), nil)
 	require.NoError(t, err)
