@@ -29,6 +29,17 @@ func apiOnly(t *testing.T, rdb redis.UniversalClient, name string, lease time.Du
 	return q
 }
 
+// submitStub queues a job whose task file is a stub: these tests claim and
+// fence jobs, they never run one.
+func submitStub(t *testing.T, ctx context.Context, q *Queue) jobs.Status {
+	t.Helper()
+	taskFile := filepath.Join(t.TempDir(), "task.yaml")
+	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
+	st, err := q.Submit(ctx, jobs.Spec{Task: taskFile})
+	require.NoError(t, err)
+	return st
+}
+
 // TestWritesOfALostClaimAreRefused: sidecar a takes a job, its claim runs
 // past the lease, b takes it; every write of a's (checkpoint, end,
 // heartbeat, hand-back) is then refused and b's land. On a standalone
@@ -47,10 +58,7 @@ func TestWritesOfALostClaimAreRefused(t *testing.T) {
 			rdb := tt.redis(t)
 			const lease = 300 * time.Millisecond
 			a, b := apiOnly(t, rdb, "a", lease), apiOnly(t, rdb, "b", lease)
-			taskFile := filepath.Join(t.TempDir(), "task.yaml")
-			require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
-			st, err := a.Submit(ctx, jobs.Spec{Task: taskFile})
-			require.NoError(t, err)
+			st := submitStub(t, ctx, a)
 
 			ca, err := a.claim(ctx)
 			require.NoError(t, err)
@@ -111,10 +119,7 @@ func TestCanceledJobIsNeverTaken(t *testing.T) {
 	ctx := context.Background()
 	rdb := redistest.Start(t).Client(t)
 	q := apiOnly(t, rdb, "a", time.Second)
-	taskFile := filepath.Join(t.TempDir(), "task.yaml")
-	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
-	st, err := q.Submit(ctx, jobs.Spec{Task: taskFile})
-	require.NoError(t, err)
+	st := submitStub(t, ctx, q)
 	got, err := q.Cancel(ctx, st.ID)
 	require.NoError(t, err)
 	assert.Equal(t, jobs.Canceled, got.State)
@@ -136,12 +141,9 @@ func TestStaleClaimFoundBehindLiveOnes(t *testing.T) {
 	rdb := redistest.Start(t).Client(t)
 	const lease = 400 * time.Millisecond
 	a, b := apiOnly(t, rdb, "a", lease), apiOnly(t, rdb, "b", lease)
-	taskFile := filepath.Join(t.TempDir(), "task.yaml")
-	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
 	const n = 12
 	for range n {
-		_, err := a.Submit(ctx, jobs.Spec{Task: taskFile})
-		require.NoError(t, err)
+		submitStub(t, ctx, a)
 	}
 	var claims []*claim
 	for range n {
@@ -171,10 +173,7 @@ func TestRetriedEndCountsOnce(t *testing.T) {
 	ctx := context.Background()
 	rdb := redistest.Start(t).Client(t)
 	q := apiOnly(t, rdb, "a", time.Second)
-	taskFile := filepath.Join(t.TempDir(), "task.yaml")
-	require.NoError(t, os.WriteFile(taskFile, []byte("name: x\n"), 0o600))
-	st, err := q.Submit(ctx, jobs.Spec{Task: taskFile})
-	require.NoError(t, err)
+	st := submitStub(t, ctx, q)
 	c, err := q.claim(ctx)
 	require.NoError(t, err)
 	require.NotNil(t, c)
